@@ -1,0 +1,162 @@
+"""Command line: a thin typer layer over :mod:`lshjob.api`. Options are parsed here, work is done there."""
+
+from __future__ import annotations
+
+import json
+import sys
+from functools import wraps
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+
+from . import __version__, api
+from .demo import write_demo
+from .errors import LshjobError
+from .ingest import EventSpec
+from .progress import StageProgress
+from .signatures import SignatureParams
+
+app = typer.Typer(
+    help=(
+        "Build a neighbour index over large collections of sets (MinHash + LSH).\n\n"
+        "Example: lshjob demo --out demo-run"
+    ),
+    no_args_is_help=True,
+    add_completion=False,
+    rich_markup_mode=None,
+)
+
+Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or summary text.")]
+AsJson = Annotated[bool, typer.Option("--json", help="Print the summary as JSON on stdout.")]
+
+
+def _fail_cleanly(func):
+    """Print lshjob's own errors as one line on stderr and exit 2 (no traceback)."""
+
+    @wraps(func)
+    def wrapper(*args, **kwargs):
+        try:
+            return func(*args, **kwargs)
+        except LshjobError as exc:
+            typer.echo(f"error: {exc}", err=True)
+            raise typer.Exit(2)
+
+    return wrapper
+
+
+def _emit(summary: dict, as_json: bool, quiet: bool, text: str) -> None:
+    if as_json:
+        typer.echo(json.dumps(summary, indent=2, sort_keys=True, default=str))
+    elif not quiet:
+        typer.echo(text)
+
+
+def _progress(quiet: bool, as_json: bool) -> StageProgress:
+    return StageProgress(enabled=False if (quiet or as_json) else None)
+
+
+@app.callback(invoke_without_command=True)
+def main(
+    version: Annotated[bool, typer.Option("--version", help="Print the version and exit.")] = False,
+) -> None:
+    if version:
+        typer.echo(__version__)
+        raise typer.Exit(0)
+
+
+@app.command()
+@_fail_cleanly
+def sign(
+    events: Annotated[str, typer.Argument(help="Event file, glob or directory (Parquet, CSV or NDJSON).")],
+    out: Annotated[Path, typer.Option("--out", "-o", help="Signature file to write (Parquet).")],
+    entity: Annotated[str, typer.Option(help="Column holding the entity key (e.g. patron).")],
+    element: Annotated[str, typer.Option(help="Column holding the element key (e.g. title).")],
+    count: Annotated[Optional[str], typer.Option(help="Column with a count or weight per event.")] = None,
+    min_count: Annotated[float, typer.Option(help="Keep elements seen at least this often per set.")] = 1,
+    segment: Annotated[Optional[str], typer.Option(help="Column to sign separately by (e.g. branch).")] = None,
+    time: Annotated[Optional[str], typer.Option(help="Column with each event's date/time.")] = None,
+    period: Annotated[Optional[str], typer.Option(help="Sign each day, week or month separately.")] = None,
+    perms: Annotated[int, typer.Option(help="Signature length k.")] = 128,
+    seed: Annotated[int, typer.Option(help="Seed of the hash family.")] = 1,
+    on_null: Annotated[str, typer.Option(help="Null keys: 'error' or 'drop' the row.")] = "error",
+    quiet: Quiet = False,
+    as_json: AsJson = False,
+) -> None:
+    """Sign each entity's set of elements with MinHash.
+
+    Example: lshjob sign demo-run/events.parquet --entity patron --element title
+    --time borrowed_at --period month --out sigs.parquet
+    """
+    spec = EventSpec(
+        entity=entity, element=element, count=count, min_count=min_count,
+        segment=segment, time=time, period=period, on_null=on_null,
+    )
+    params = SignatureParams(perms=perms, seed=seed)
+    with _progress(quiet, as_json) as progress:
+        summary = api.sign_file(events, out, spec, params, progress)
+    ing = summary["ingest"]
+    text = (
+        f"signed {summary['signatures']} sets (k={params.perms}, seed={params.seed}) "
+        f"from {ing['rows_read']} events -> {out}"
+    )
+    if ing["empty_after_filter"]:
+        text += f"\n{ing['empty_after_filter']} set(s) empty after filtering, not signed (e.g. {ing['empty_examples'][0]})"
+    if ing["null_rows_dropped"]:
+        text += f"\n{ing['null_rows_dropped']} row(s) with null keys dropped"
+    _emit(summary, as_json, quiet, text)
+
+
+@app.command()
+@_fail_cleanly
+def merge(
+    sources: Annotated[list[str], typer.Argument(help="One or more signature files.")],
+    out: Annotated[Path, typer.Option("--out", "-o", help="Merged signature file to write.")],
+    keep: Annotated[
+        str, typer.Option(help="Key columns to keep, comma separated; the others are folded together.")
+    ] = "entity",
+    since: Annotated[Optional[str], typer.Option(help="First period to include (ISO date).")] = None,
+    until: Annotated[Optional[str], typer.Option(help="Last period to include (ISO date).")] = None,
+    quiet: Quiet = False,
+    as_json: AsJson = False,
+) -> None:
+    """Fold signatures of segments, periods or files into one per key (element-wise minimum).
+
+    Example (last six months, all branches): lshjob merge sigs.parquet --since 2026-07-01
+    --until 2026-12-01 --out recent.parquet
+    """
+    summary = api.merge_files(sources, out, [c.strip() for c in keep.split(",")], since, until)
+    _emit(summary, as_json, quiet, f"merged {summary['rows_in']} rows into {summary['rows_out']} -> {out}")
+
+
+@app.command()
+@_fail_cleanly
+def demo(
+    out: Annotated[Path, typer.Option("--out", "-o", help="Folder for the demo data and results.")] = Path(
+        "lshjob-demo"
+    ),
+    patrons: Annotated[int, typer.Option(help="Number of patrons to generate.")] = 2000,
+    seed: Annotated[int, typer.Option(help="Seed of the generator.")] = 7,
+    quiet: Quiet = False,
+    as_json: AsJson = False,
+) -> None:
+    """Generate the library-network demo (patrons, titles, branches, months) and run the job on it.
+
+    Example: lshjob demo --out demo-run --patrons 5000 --seed 3
+    """
+    data = write_demo(out, patrons, seed)
+    spec = EventSpec(entity="patron", element="title")
+    with _progress(quiet, as_json) as progress:
+        signed = api.sign_file(data["events"], out / "signatures.parquet", spec, progress=progress)
+    summary = {"data": data, "sign": signed}
+    _emit(
+        summary,
+        as_json,
+        quiet,
+        f"wrote {data['rows']} loans by {patrons} patrons to {data['events']}\n"
+        f"signed {signed['signatures']} patrons -> {signed['out']}",
+    )
+
+
+def run() -> None:  # console-script entry point
+    sys.exit(app())
