@@ -4,10 +4,11 @@ Output contract of :func:`load_sets` (a polars DataFrame):
 
 * ``entity``: the entity key as given (String or an integer type), never null;
 * ``segment`` (String), ``period`` (Date): present only when asked for;
-* ``element``: canonical element key text (integers in decimal), never null;
+* ``element``: the element key as given (String or an integer type), never null;
 * ``weight``: Float64, events (or the summed count column) for that key and element.
 
-Rows are unique on (entity, [segment], [period], element) and every kept row has
+Rows are unique on (entity, [segment], [period], element), sorted by the key columns
+(order of elements within a set is unspecified), and every row has
 ``weight >= min_count``. Repeated events therefore count once in the set.
 """
 
@@ -182,25 +183,23 @@ def load_sets(source: str | Path, spec: EventSpec) -> tuple[pl.DataFrame, Ingest
 
     frame = lf.select(_select_exprs(spec, schema))
     keys = spec.key_columns
-    grouped = frame.group_by([*keys, "element"]).agg(pl.col("weight").sum())
-    all_keys = grouped.select(keys).unique()
-    kept = grouped.filter(pl.col("weight") >= spec.min_count)
     try:
-        sets, kept_keys, every_key = pl.collect_all(
-            [kept.sort([*keys, "element"]), kept.select(keys).unique(), all_keys]
-        )
+        grouped = frame.group_by([*keys, "element"]).agg(pl.col("weight").sum()).collect()
     except pl.exceptions.PolarsError as exc:
         raise InputError(f"{where}: could not read the events: {_short(exc)}") from exc
+    sets = grouped.filter(pl.col("weight") >= spec.min_count).sort(keys)
     if sets.height == 0:
         raise InputError(
             f"{where}: no element is left after filtering (--min-count {spec.min_count}); "
             "nothing to sign"
         )
-    empty = every_key.join(kept_keys, on=keys, how="anti", nulls_equal=True)
-    report.empty_after_filter = empty.height
-    report.empty_examples = [str(r) for r in empty.sort(keys).head(5).rows()]
+    n_sets = sets.select(keys).n_unique() if len(keys) > 1 else sets["entity"].n_unique()
+    if sets.height < grouped.height:
+        empty = grouped.select(keys).unique().join(sets.select(keys).unique(), on=keys, how="anti")
+        report.empty_after_filter = empty.height
+        report.empty_examples = [str(r) for r in empty.sort(keys).head(5).rows()]
     report.membership_rows = sets.height
-    report.sets = kept_keys.height
+    report.sets = n_sets
     return sets, report
 
 
@@ -262,7 +261,10 @@ def _select_exprs(spec: EventSpec, schema: pl.Schema) -> list[pl.Expr]:
         if schema[spec.time] == pl.String:
             t = t.str.to_datetime(strict=False)
         exprs.append(t.dt.truncate(PERIODS[spec.period]).cast(pl.Date).alias("period"))
-    exprs.append(pl.col(spec.element).cast(pl.String).alias("element"))
+    element = pl.col(spec.element)
+    if schema[spec.element] == pl.Categorical:
+        element = element.cast(pl.String)
+    exprs.append(element.alias("element"))
     weight = pl.col(spec.count).cast(pl.Float64) if spec.count is not None else pl.lit(1.0)
     exprs.append(weight.alias("weight"))
     return exprs

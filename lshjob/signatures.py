@@ -101,12 +101,10 @@ def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:
 
 def sign_sets(sets: pl.DataFrame, keys: list[str], params: SignatureParams) -> pl.DataFrame:
     """Membership rows (ingest contract, sorted by keys) -> signature table (module contract)."""
-    elements = sets.get_column("element")
-    uniq = elements.unique(maintain_order=False).sort()
+    uniq = sets.get_column("element").unique()
     lookup = pl.DataFrame({"element": uniq, "h0": xxh64_strings(element_key_strings(uniq))})
     hashed = sets.select([*keys, "element"]).join(lookup, on="element", how="left", maintain_order="left")
-    run = hashed.select(pl.struct(keys).rle_id().alias("run"))["run"].to_numpy()
-    sizes = np.bincount(run)
+    sizes = run_lengths(hashed, keys)
     offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
     np.cumsum(sizes, out=offsets[1:])
     matrix = signature_matrix(hashed["h0"].to_numpy(), offsets, params)
@@ -115,6 +113,12 @@ def sign_sets(sets: pl.DataFrame, keys: list[str], params: SignatureParams) -> p
         signature_column(matrix),
         pl.Series("set_size", sizes, dtype=pl.UInt32),
     )
+
+
+def run_lengths(table: pl.DataFrame, keys: list[str]) -> np.ndarray:
+    """Lengths of the runs of equal keys in a table sorted by ``keys``."""
+    key = pl.col(keys[0]) if len(keys) == 1 else pl.struct(keys)
+    return table.select(key.rle().struct.field("len"))["len"].to_numpy().astype(np.int64)
 
 
 def signature_column(matrix: np.ndarray) -> pl.Series:
@@ -176,8 +180,7 @@ def merge_signatures(
             )
     frames = [t.select([*keep, "signature"]) for t, _ in tables]
     combined = pl.concat(frames, how="vertical_relaxed").sort(keep)
-    run = combined.select(pl.struct(keep).rle_id().alias("run"))["run"].to_numpy()
-    starts = np.flatnonzero(np.r_[True, run[1:] != run[:-1]])
+    starts = np.r_[0, np.cumsum(run_lengths(combined, keep))[:-1]]
     matrix = np.minimum.reduceat(signature_array(combined), starts, axis=0)
     merged = combined.select(keep).gather(starts).with_columns(
         signature_column(matrix),
@@ -223,7 +226,9 @@ def write_signatures(table: pl.DataFrame, path: str | Path, meta: dict) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     try:
-        table.write_parquet(tmp, metadata={METADATA_KEY: json.dumps(meta, sort_keys=True)})
+        table.write_parquet(
+            tmp, compression="snappy", metadata={METADATA_KEY: json.dumps(meta, sort_keys=True)}
+        )
         os.replace(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)

@@ -1,0 +1,59 @@
+"""Shared helpers for benchmarks: machine facts, generated data, timing, RESULTS.md."""
+
+from __future__ import annotations
+
+import os
+import platform
+import resource
+import time
+from contextlib import contextmanager
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+CACHE = Path(__file__).parent / "cache"
+
+
+def machine() -> str:
+    mem_gb = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
+    return (
+        f"{platform.machine()}, {os.cpu_count()} cores, {mem_gb:.0f} GiB, Python {platform.python_version()}, "
+        f"polars {pl.__version__}, numpy {np.__version__}"
+    )
+
+
+def long_tailed_events(entities: int, mean_size: float = 40.0, seed: int = 0) -> Path:
+    """Events (entity, element) with log-normal set sizes (mean ~ mean_size) and
+    power-law element popularity; cached as Parquet under bench/cache/."""
+    CACHE.mkdir(exist_ok=True)
+    path = CACHE / f"events_{entities}_{int(mean_size)}_{seed}.parquet"
+    if path.exists():
+        return path
+    rng = np.random.default_rng(seed)
+    sigma = 1.0
+    mu = np.log(mean_size) - sigma**2 / 2
+    sizes = np.clip(np.round(rng.lognormal(mu, sigma, entities)), 1, 5000).astype(np.int64)
+    n = int(sizes.sum())
+    universe = max(10_000, entities * 2)
+    element = np.minimum((rng.random(n) ** (-1 / 0.7)).astype(np.int64), universe) + rng.integers(0, 50, n) * universe
+    frame = pl.DataFrame({"entity": np.repeat(np.arange(entities, dtype=np.int64), sizes), "element": element})
+    frame.write_parquet(path)
+    return path
+
+
+@contextmanager
+def timed(results: dict, name: str):
+    start = time.perf_counter()
+    yield
+    results[name] = time.perf_counter() - start
+
+
+def peak_rss_gb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20
+
+
+def append_results(section: str, body: str) -> None:
+    path = Path(__file__).parent / "RESULTS.md"
+    text = path.read_text() if path.exists() else "# Benchmark results\n\nNewest first within each section.\n"
+    path.write_text(text.rstrip() + f"\n\n## {section}\n\n{body.strip()}\n")

@@ -1,0 +1,33 @@
+"""Shared fixtures: small event tables written in each supported format."""
+
+from __future__ import annotations
+
+import polars as pl
+import pytest
+
+from lshjob.demo import generate_events
+
+
+@pytest.fixture(scope="session")
+def demo_events() -> tuple[pl.DataFrame, pl.DataFrame]:
+    """The library demo at 1000 patrons (seeded): (events, planted)."""
+    return generate_events(1000, seed=11)
+
+
+@pytest.fixture
+def small_events(tmp_path):
+    """A tiny hand-made loan table, written as Parquet; returns its path."""
+    frame = pl.DataFrame(
+        {
+            "patron": ["ann", "ann", "ann", "bob", "bob", "cy"],
+            "title": ["t1", "t2", "t2", "t1", "t3", "t9"],
+            "branch": ["Harbour", "Harbour", "Hilltop", "Harbour", "Harbour", "Hilltop"],
+            "borrowed_at": pl.Series(
+                ["2026-01-03", "2026-02-11", "2026-02-12", "2026-01-05", "2026-03-01", "2026-03-02"]
+            ).str.to_datetime(),
+            "loans": [1, 2, 1, 1, 1, 3],
+        }
+    )
+    path = tmp_path / "loans.parquet"
+    frame.write_parquet(path)
+    return path

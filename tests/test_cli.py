@@ -1,0 +1,59 @@
+"""The command line: help with examples, JSON summaries, exit codes, no half-written output."""
+
+import json
+
+import polars as pl
+import pytest
+from typer.testing import CliRunner
+
+from lshjob.cli import app
+
+runner = CliRunner()
+COMMANDS = [c.name or c.callback.__name__ for c in app.registered_commands]
+
+
+def test_top_level_help_has_an_example():
+    result = runner.invoke(app, ["--help"])
+    assert result.exit_code == 0 and "Example: lshjob" in result.output
+
+
+@pytest.mark.parametrize("command", COMMANDS)
+def test_every_command_help_has_an_example(command):
+    result = runner.invoke(app, [command, "--help"])
+    assert result.exit_code == 0
+    assert "Example" in result.output and "lshjob " + command in result.output
+
+
+def test_sign_json_summary_and_merge(tmp_path, small_events):
+    out = tmp_path / "sigs.parquet"
+    result = runner.invoke(
+        app,
+        ["sign", str(small_events), "--entity", "patron", "--element", "title", "--time", "borrowed_at",
+         "--period", "month", "--perms", "16", "--out", str(out), "--json"],
+    )
+    assert result.exit_code == 0, result.output
+    summary = json.loads(result.stdout)
+    assert summary["signatures"] == 5 and summary["k"] == 16
+    merged = tmp_path / "all.parquet"
+    result = runner.invoke(app, ["merge", str(out), "--out", str(merged), "--json"])
+    assert result.exit_code == 0, result.output
+    assert json.loads(result.stdout)["rows_out"] == 3
+    assert pl.read_parquet(merged)["entity"].to_list() == ["ann", "bob", "cy"]
+
+
+def test_bad_column_exits_non_zero_with_a_clear_message(tmp_path, small_events):
+    out = tmp_path / "sigs.parquet"
+    result = runner.invoke(app, ["sign", str(small_events), "--entity", "reader", "--element", "title",
+                                 "--out", str(out)])
+    assert result.exit_code == 2
+    assert "column 'reader'" in result.stderr and "columns are: patron" in result.stderr
+    assert "Traceback" not in result.output
+    assert not out.exists()
+
+
+def test_demo_writes_events_and_signatures(tmp_path):
+    result = runner.invoke(app, ["demo", "--out", str(tmp_path / "d"), "--patrons", "300", "--json", "--quiet"])
+    assert result.exit_code == 0, result.output
+    summary = json.loads(result.stdout)
+    assert summary["sign"]["signatures"] == 300
+    assert (tmp_path / "d" / "events.parquet").exists()

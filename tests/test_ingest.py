@@ -1,0 +1,142 @@
+"""Ingest: formats, options and every kind of bad input (clear error, nothing written)."""
+
+import polars as pl
+import pytest
+
+from lshjob import EventSpec, InputError, ParameterError, load_sets, sign_file
+
+SPEC = EventSpec(entity="patron", element="title")
+
+
+def test_repeated_events_count_once(small_events):
+    sets, report = load_sets(small_events, SPEC)
+    assert sets.filter(pl.col("entity") == "ann")["element"].to_list() == ["t1", "t2"]
+    assert report.rows_read == 6 and report.sets == 3 and report.membership_rows == 5
+
+
+@pytest.mark.parametrize("fmt", ["csv", "ndjson", "parquet"])
+def test_formats_glob_and_directory_agree(tmp_path, small_events, fmt):
+    frame = pl.read_parquet(small_events)
+    folder = tmp_path / "in"
+    folder.mkdir()
+    half = frame.height // 2
+    for i, part in enumerate((frame[:half], frame[half:])):
+        path = folder / f"part{i}.{fmt}"
+        getattr(part, f"write_{fmt}")(path)
+    expected, _ = load_sets(small_events, SPEC)
+    for source in (folder, str(folder / f"*.{fmt}")):
+        got, report = load_sets(source, SPEC)
+        assert got.equals(expected)
+        assert len(report.files) == 2
+
+
+def test_min_count_uses_the_count_column_and_reports_emptied_sets(small_events):
+    spec = EventSpec(entity="patron", element="title", count="loans", min_count=2)
+    sets, report = load_sets(small_events, spec)
+    # ann/t2 has loans 2+1, cy/t9 has 3; bob has nothing left.
+    assert sorted(sets.select("entity", "element").rows()) == [("ann", "t2"), ("cy", "t9")]
+    assert report.empty_after_filter == 1 and "bob" in report.empty_examples[0]
+
+
+def test_segment_and_period_sign_separately(small_events):
+    spec = EventSpec(entity="patron", element="title", segment="branch", time="borrowed_at", period="month")
+    sets, _ = load_sets(small_events, spec)
+    ann = sets.filter(pl.col("entity") == "ann").select("segment", "period", "element").rows()
+    assert [(s, str(p), e) for s, p, e in ann] == [
+        ("Harbour", "2026-01-01", "t1"),
+        ("Harbour", "2026-02-01", "t2"),
+        ("Hilltop", "2026-02-01", "t2"),
+    ]
+
+
+def test_integer_keys_are_accepted(tmp_path):
+    path = tmp_path / "ints.csv"
+    path.write_text("patron,title\n1,100\n1,200\n2,100\n")
+    sets, _ = load_sets(path, SPEC)
+    assert sets["entity"].dtype.is_integer() and sets["element"].dtype.is_integer()
+    assert sorted(sets.select("entity", "element").rows()) == [(1, 100), (1, 200), (2, 100)]
+
+
+def expect_input_error(tmp_path, source, spec, *fragments):
+    out = tmp_path / "out" / "sig.parquet"
+    with pytest.raises(InputError) as err:
+        sign_file(source, out, spec)
+    for fragment in fragments:
+        assert fragment in str(err.value)
+    assert not out.parent.exists() or not any(out.parent.iterdir()), "nothing may be written"
+
+
+def test_missing_path(tmp_path):
+    expect_input_error(tmp_path, tmp_path / "nope.parquet", SPEC, "nope.parquet", "no such file")
+
+
+def test_unreadable_file(tmp_path):
+    bad = tmp_path / "broken.parquet"
+    bad.write_bytes(b"this is not parquet")
+    expect_input_error(tmp_path, bad, SPEC, "broken.parquet", "cannot be read as parquet")
+
+
+def test_unknown_extension(tmp_path):
+    bad = tmp_path / "loans.xlsx"
+    bad.write_bytes(b"x")
+    expect_input_error(tmp_path, bad, SPEC, "loans.xlsx", "unknown file type")
+
+
+def test_missing_column_lists_the_columns(tmp_path, small_events):
+    spec = EventSpec(entity="reader", element="title")
+    expect_input_error(
+        tmp_path, small_events, spec, "loans.parquet", "'reader'", "columns are: patron, title, branch"
+    )
+
+
+def test_wrong_type(tmp_path):
+    path = tmp_path / "floats.parquet"
+    pl.DataFrame({"patron": ["a"], "title": [1.5]}).write_parquet(path)
+    expect_input_error(tmp_path, path, SPEC, "floats.parquet", "'title'", "Float64")
+
+
+def test_null_keys_counted_and_located(tmp_path):
+    path = tmp_path / "nulls.parquet"
+    pl.DataFrame({"patron": ["a", None, "b", None], "title": ["x", "y", "z", "w"]}).write_parquet(path)
+    expect_input_error(tmp_path, path, SPEC, "nulls.parquet", "'patron'", "2 null", "row 1", "--on-null drop")
+
+
+def test_null_keys_dropped_on_request(tmp_path):
+    path = tmp_path / "nulls.parquet"
+    pl.DataFrame({"patron": ["a", None, "b"], "title": ["x", "y", None]}).write_parquet(path)
+    sets, report = load_sets(path, EventSpec(entity="patron", element="title", on_null="drop"))
+    assert sets.select("entity", "element").rows() == [("a", "x")]
+    assert report.null_rows_dropped == 2
+
+
+def test_empty_input(tmp_path):
+    path = tmp_path / "empty.parquet"
+    pl.DataFrame(schema={"patron": pl.String, "title": pl.String}).write_parquet(path)
+    expect_input_error(tmp_path, path, SPEC, "empty.parquet", "0 rows")
+
+
+def test_everything_filtered_out(tmp_path, small_events):
+    spec = EventSpec(entity="patron", element="title", count="loans", min_count=50)
+    expect_input_error(tmp_path, small_events, spec, "loans.parquet", "--min-count 50")
+
+
+def test_bad_time_text(tmp_path):
+    path = tmp_path / "times.csv"
+    path.write_text("patron,title,at\na,x,2026-01-02\nb,y,last tuesday\n")
+    spec = EventSpec(entity="patron", element="title", time="at", period="week")
+    expect_input_error(tmp_path, path, spec, "times.csv", "'at'", "'last tuesday'")
+
+
+@pytest.mark.parametrize(
+    "kwargs, message",
+    [
+        ({"on_null": "skip"}, "--on-null"),
+        ({"period": "month"}, "--period needs --time"),
+        ({"time": "t"}, "--time needs --period"),
+        ({"period": "year", "time": "t"}, "--period must be one of"),
+        ({"min_count": 0}, "--min-count"),
+    ],
+)
+def test_bad_options(kwargs, message):
+    with pytest.raises(ParameterError, match=message):
+        EventSpec(entity="patron", element="title", **kwargs)
