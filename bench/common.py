@@ -54,6 +54,10 @@ def peak_rss_gb() -> float:
 
 
 def append_results(section: str, body: str) -> None:
+    """Add a section to bench/RESULTS.md, newest first (older runs stay below)."""
     path = Path(__file__).parent / "RESULTS.md"
-    text = path.read_text() if path.exists() else "# Benchmark results\n\nNewest first within each section.\n"
-    path.write_text(text.rstrip() + f"\n\n## {section}\n\n{body.strip()}\n")
+    header = "# Benchmark results\n\nNewest first. Each section: machine, data, command, figures.\n"
+    text = path.read_text() if path.exists() else header
+    head, _, rest = text.partition("\n## ")
+    rest = ("## " + rest) if rest else ""
+    path.write_text(head.rstrip() + f"\n\n## {section}\n\n{body.strip()}\n\n" + rest)
