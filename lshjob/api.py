@@ -3,12 +3,15 @@
 from __future__ import annotations
 
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 import polars as pl
 
-from .errors import ParameterError
+from . import planner, similarity
+from .errors import InputError, ParameterError
 from .ingest import EventSpec, load_sets
+from .planner import PairHistogram
 from .progress import QUIET, StageProgress
 from .signatures import (
     SignatureParams,
@@ -100,3 +103,117 @@ def _window(table: pl.DataFrame, meta: dict, since: str | None, until: str | Non
             raise ParameterError(f"--since/--until must be ISO dates like 2026-03-01; got {bound!r}") from exc
         cond = cond & getattr(pl.col("period"), op)(day)
     return table.filter(cond)
+
+
+@dataclass
+class PlanResult:
+    """What ``lshjob plan`` decided and why."""
+
+    mode: str
+    threshold: float
+    perms: int
+    bands: int
+    rows: int
+    chosen: dict
+    runners_up: list[dict]
+    sample: dict | None = None
+    histogram: PairHistogram | None = None
+
+    def as_dict(self) -> dict:
+        return {
+            "mode": self.mode,
+            "threshold": self.threshold,
+            "perms": self.perms,
+            "bands": self.bands,
+            "rows": self.rows,
+            "chosen": self.chosen,
+            "runners_up": self.runners_up,
+            "sample": self.sample,
+        }
+
+
+def plan_banding(
+    threshold: float,
+    perms: int | None = None,
+    recall: float = 0.95,
+    sample: str | Path | None = None,
+    spec: EventSpec | None = None,
+    sample_size: int = 2000,
+    entities: int | None = None,
+    fp_weight: float = 0.5,
+    fn_weight: float = 0.5,
+    seed: int = 0,
+    runners_up: int = 5,
+) -> PlanResult:
+    """Choose (k, b, r). Without ``sample``: theory mode (weighted FP/FN areas, k default 128).
+    With ``sample`` (a signature file, or events read with ``spec``): data mode, the plan that
+    meets ``recall`` with the fewest expected candidate pairs, scaled to ``entities``
+    (default: the entity count of the sample file)."""
+    planner.validate(threshold, perms, fp_weight, fn_weight)
+    if sample_size < 2:
+        raise ParameterError(f"--sample-size must be at least 2; got {sample_size}")
+    if entities is not None and entities < 2:
+        raise ParameterError(f"--entities must be at least 2; got {entities}")
+    if sample is None:
+        ranked = planner.theory_plans(threshold, perms or 128, fp_weight, fn_weight)
+        rows = [_banding_dict(p, threshold) for p in ranked[: runners_up + 1]]
+        best = ranked[0]
+        return PlanResult("theory", threshold, best.perms, best.bands, best.rows, rows[0], rows[1:])
+    if _is_signature_file(sample):
+        table, meta = read_signatures(sample)
+        if perms is not None and perms > meta["k"]:
+            raise ParameterError(f"--perms {perms} exceeds the signature length k={meta['k']} of {sample}")
+        hist = similarity.sample_histogram_from_signatures(table, sample_size, seed, entities)
+        basis = "signature estimates"
+        choices = (perms or meta["k"],)
+    else:
+        if spec is None:
+            raise ParameterError(
+                f"{sample}: is not a signature file; to plan from events give --entity and --element"
+            )
+        sets, _ = load_sets(sample, spec)
+        if sets["entity"].n_unique() < 2:
+            raise InputError(f"{sample}: the sample needs at least 2 entities; got 1")
+        hist = similarity.sample_histogram_from_sets(sets, sample_size, seed, entities)
+        basis = "exact Jaccard"
+        choices = (perms,) if perms is not None else planner.DEFAULT_PERMS_CHOICES
+    ranked = planner.data_plans(threshold, hist, choices, recall)
+    best = ranked[0]
+    info = {
+        "path": str(sample),
+        "similarity": basis,
+        "sampled_entities": hist.sample_entities,
+        "total_entities": hist.total_entities,
+        "sampled_pairs": int(hist.counts.sum()) + hist.identical_pairs,
+        "sampled_identical_pairs": hist.identical_pairs,
+        "expected_identical_pairs": hist.identical_pairs * hist.scale,
+        "sampled_pairs_at_or_above_threshold": int(hist.pairs_at_or_above(threshold)),
+        "recall_target": recall,
+    }
+    return PlanResult(
+        "data", threshold, best.perms, best.bands, best.rows,
+        best.as_dict(), [p.as_dict() for p in ranked[1 : runners_up + 1]], info, hist,
+    )
+
+
+def _banding_dict(p: planner.Banding, threshold: float) -> dict:
+    return {
+        "perms": p.perms,
+        "bands": p.bands,
+        "rows": p.rows,
+        "false_positive_area": p.false_positive,
+        "false_negative_area": p.false_negative,
+        "weighted_error": p.weighted_error,
+        "approximate_threshold": p.approximate_threshold,
+        "probability_at_threshold": float(planner.candidate_probability(threshold, p.bands, p.rows)),
+    }
+
+
+def _is_signature_file(path: str | Path) -> bool:
+    path = Path(path)
+    if not path.is_file() or path.suffix.lower() not in (".parquet", ".pq"):
+        return False
+    try:
+        return "lshjob" in pl.read_parquet_metadata(path)
+    except Exception:
+        return False

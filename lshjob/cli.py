@@ -11,7 +11,9 @@ from typing import Annotated, Optional
 import typer
 
 from . import __version__, api
+from .charts import write_chart
 from .demo import write_demo
+from .reports import plan_report
 from .errors import LshjobError
 from .ingest import EventSpec
 from .progress import StageProgress
@@ -127,6 +129,42 @@ def merge(
     """
     summary = api.merge_files(sources, out, [c.strip() for c in keep.split(",")], since, until)
     _emit(summary, as_json, quiet, f"merged {summary['rows_in']} rows into {summary['rows_out']} -> {out}")
+
+
+@app.command()
+@_fail_cleanly
+def plan(
+    threshold: Annotated[float, typer.Option(help="Jaccard similarity a pair must reach, in (0, 1).")],
+    perms: Annotated[Optional[int], typer.Option(help="Signature length k (default: 128 in theory mode; chosen in data mode).")] = None,
+    recall: Annotated[float, typer.Option(help="Data mode: expected recall of pairs at or above the threshold.")] = 0.95,
+    sample: Annotated[Optional[str], typer.Option(help="Signature file or events to plan from (data mode).")] = None,
+    entity: Annotated[Optional[str], typer.Option(help="Events sample: entity column.")] = None,
+    element: Annotated[Optional[str], typer.Option(help="Events sample: element column.")] = None,
+    sample_size: Annotated[int, typer.Option(help="Entities drawn from the sample.")] = 2000,
+    entities: Annotated[Optional[int], typer.Option(help="Scale pair counts to this many entities (e.g. next quarter's).")] = None,
+    fp_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-positive area.")] = 0.5,
+    fn_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-negative area.")] = 0.5,
+    chart: Annotated[Optional[Path], typer.Option(help="Write the S-curve chart (.svg, or .png with matplotlib).")] = None,
+    seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
+    quiet: Quiet = False,
+    as_json: AsJson = False,
+) -> None:
+    """Choose bands b and rows r (and k) for a Jaccard threshold.
+
+    Example (theory): lshjob plan --threshold 0.5 --perms 128
+
+    Example (data, scaled to 5 million patrons): lshjob plan --threshold 0.5
+    --sample demo_data/loans.parquet --entity patron --element title --entities 5000000
+    """
+    spec = EventSpec(entity=entity, element=element) if entity and element else None
+    result = api.plan_banding(
+        threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed
+    )
+    summary = result.as_dict()
+    if chart is not None:
+        write_chart(chart, result.bands, result.rows, threshold, result.histogram)
+        summary["chart"] = str(chart)
+    _emit(summary, as_json, quiet, plan_report(result))
 
 
 @app.command()
