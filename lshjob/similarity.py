@@ -13,6 +13,7 @@ import numpy as np
 import polars as pl
 
 from .errors import InputError
+from .membership import Membership
 from .planner import PairHistogram
 from .signatures import signature_array
 
@@ -26,16 +27,6 @@ def sample_keys(keys: pl.Series, m: int, seed: int = 0) -> pl.Series:
         return uniq
     idx = np.sort(np.random.default_rng(seed).choice(uniq.len(), size=m, replace=False))
     return uniq.gather(idx)
-
-
-def csr_sets(sets: pl.DataFrame) -> tuple[np.ndarray, np.ndarray, int]:
-    """(offsets, element ids) of each entity's set, entities in sorted order; and element count."""
-    frame = sets.select("entity", "element").sort("entity")
-    ids = frame.select(pl.col("element").rank("dense").cast(pl.Int64) - 1)["element"].to_numpy()
-    sizes = frame.select(pl.col("entity").rle().struct.field("len"))["len"].to_numpy()
-    offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
-    np.cumsum(sizes, out=offsets[1:])
-    return offsets, np.ascontiguousarray(ids), int(ids.max()) + 1 if len(ids) else 0
 
 
 @numba.njit(cache=True)
@@ -90,12 +81,18 @@ def _all_pairs_estimate(sig):
 
 
 def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:
-    """All pairwise exact Jaccard similarities among the entities of membership rows."""
-    offsets, elems, n_elements = csr_sets(sets)
-    if len(offsets) < 3:
-        raise InputError(f"the sample needs at least 2 entities; got {len(offsets) - 1}")
-    starts, members = _postings(offsets, elems, n_elements)
-    return _all_pairs_jaccard(offsets, elems, starts, members)
+    """All pairwise exact Jaccard similarities among the entities of membership rows,
+    pairs (i, j), i < j, in row-major order of sorted entity keys."""
+    sets = Membership.from_sets(sets)
+    if sets.size < 2:
+        raise InputError(f"the sample needs at least 2 entities; got {sets.size}")
+    starts, members = postings(sets)
+    return _all_pairs_jaccard(sets.offsets, sets.elements, starts, members)
+
+
+def postings(sets: Membership) -> tuple[np.ndarray, np.ndarray]:
+    """Inverted index: entities holding element e are ``members[starts[e]:starts[e+1]]``."""
+    return _postings(sets.offsets, sets.elements, sets.n_elements)
 
 
 def estimated_pair_similarities(signatures: pl.DataFrame) -> np.ndarray:

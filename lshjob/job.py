@@ -1,0 +1,250 @@
+"""The whole job: ingest -> sign -> plan -> band -> join -> verify -> publish.
+
+:func:`run_job` is what ``lshjob run`` calls. Each stage is timed, its peak resident memory
+recorded, and its counts kept for the manifest. Scratch files live in a work folder inside
+the output folder and are removed at the end; the published index changes only by the
+atomic renames of :func:`lshjob.publish.publish_index`.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import platform
+import shutil
+import time
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+from . import __version__, planner, similarity
+from .band import write_bucket_rows
+from .errors import ParameterError
+from .identical import collapse_identical
+from .ingest import EventSpec, load_sets
+from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
+from .membership import Membership
+from .progress import QUIET, StageProgress
+from .publish import neighbour_table, publish_index
+from .resources import default_memory, parse_size, peak_bytes, reset_peak
+from .signatures import SignatureParams, sign_sets, signature_array
+from .verify import verify_pairs
+
+MIN_PLANNING_THRESHOLD = 1e-6
+
+
+@dataclass(frozen=True)
+class RunOptions:
+    threshold: float
+    top_k: int = 50
+    perms: int | None = None
+    bands: int | None = None
+    rows: int | None = None
+    recall: float = 0.95
+    sample_size: int = 2000
+    seed: int = 1
+    max_bucket: int = DEFAULT_MAX_BUCKET
+    max_candidates: float = 2e9
+    memory: str | None = None
+
+    def validate(self) -> None:
+        if not 0.0 < self.threshold <= 1.0:
+            raise ParameterError(f"--threshold must be in (0, 1]; got {self.threshold}")
+        if self.top_k < 1:
+            raise ParameterError(f"--top-k must be at least 1; got {self.top_k}")
+        if (self.bands is None) != (self.rows is None):
+            raise ParameterError("--bands and --rows go together; give both or neither")
+        if self.bands is not None:
+            planner.check_explicit(self.perms or 128, self.bands, self.rows)
+        if self.perms is not None and self.perms < 1:
+            raise ParameterError(f"--perms must be at least 1; got {self.perms}")
+        if self.max_bucket < 2:
+            raise ParameterError(f"--max-bucket must be at least 2; got {self.max_bucket}")
+        if self.sample_size < 2:
+            raise ParameterError(f"--sample-size must be at least 2; got {self.sample_size}")
+        if self.memory is not None:
+            parse_size(self.memory)
+
+
+class _Stages:
+    """Timings, peak memory and counts per stage."""
+
+    def __init__(self, progress: StageProgress) -> None:
+        self.progress = progress
+        self.seconds: dict[str, float] = {}
+        self.peak: dict[str, int] = {}
+
+    def __call__(self, name: str, total: int = 1):
+        stages = self
+
+        class _Ctx:
+            def __enter__(self):
+                reset_peak()
+                self.start = time.perf_counter()
+                self.task = stages.progress.stage(name, total)
+                return self.task.__enter__()
+
+            def __exit__(self, *exc):
+                self.task.__exit__(*exc)
+                stages.seconds[name] = round(time.perf_counter() - self.start, 3)
+                stages.peak[name] = peak_bytes()
+
+        return _Ctx()
+
+
+def run_job(
+    events: str | Path,
+    spec: EventSpec,
+    options: RunOptions,
+    out: str | Path,
+    progress: StageProgress = QUIET,
+) -> dict:
+    """Build and publish the neighbour index of ``events`` into ``out``; return the manifest."""
+    options.validate()
+    if spec.segment is not None or spec.period is not None:
+        raise ParameterError("lshjob run signs one set per entity; sign segments or periods with lshjob sign")
+    out = Path(out)
+    memory = parse_size(options.memory) if options.memory else default_memory()
+    work = out / f".work-{os.getpid()}"
+    stages = _Stages(progress)
+    counts: dict[str, object] = {}
+    started = time.perf_counter()
+    try:
+        with stages("ingest"):
+            sets_rows, report = load_sets(events, spec)
+            sets = Membership.from_sets(sets_rows)
+        counts.update(events=report.rows_read, entities=sets.size, membership_rows=report.membership_rows,
+                      empty_after_filter=report.empty_after_filter, null_rows_dropped=report.null_rows_dropped)
+
+        with stages("collapse"):
+            rep_of, reps = collapse_identical(sets)
+        counts.update(representatives=len(reps), entities_in_identical_groups=int(sets.size - len(reps)))
+
+        with stages("plan"):
+            plan = _choose_plan(sets_rows, sets.size, options)
+        predicted = plan.get("predicted", {})
+        if predicted.get("expected_candidates", 0) > options.max_candidates:
+            raise ParameterError(
+                f"the plan (k={plan['perms']}, b={plan['bands']}, r={plan['rows']}) predicts "
+                f"{predicted['expected_candidates']:.3g} candidate pairs at threshold {options.threshold}, "
+                f"more than --max-candidates {options.max_candidates:.3g}; raise the threshold or --max-candidates"
+            )
+
+        if plan["mode"] == "identical-only":
+            verified = pl.DataFrame(schema={"left_rep": pl.Int64, "right_rep": pl.Int64, "jaccard": pl.Float64,
+                                            "estimate": pl.Float64, "bands_shared": pl.Int32})
+            counts.update(bucket_rows=0, candidate_pairs=0, verified_pairs=0)
+            skew = None
+        else:
+            params = SignatureParams(perms=plan["perms"], seed=options.seed)
+            with stages("sign"):
+                rep_keys = sets.keys.gather(reps)
+                rep_rows = sets_rows.filter(pl.col("entity").is_in(rep_keys.implode()))
+                matrix = signature_array(sign_sets(rep_rows, ["entity"], params))
+            row_of = np.full(sets.size, -1, dtype=np.int64)
+            row_of[reps] = np.arange(len(reps))
+
+            with stages("band", plan["bands"]) as task:
+                files, n_bucket_rows = write_bucket_rows(
+                    matrix, reps, plan["bands"], plan["rows"], work / "buckets",
+                    batch_bytes=max(64 << 20, memory // 4), progress=task,
+                )
+            counts["bucket_rows"] = n_bucket_rows
+
+            with stages("join"):
+                settings = JoinSettings(memory_limit=f"{max(1, memory // 2**20)}MiB",
+                                        temp_directory=str(work / "spill"), max_bucket=options.max_bucket)
+                joined = candidate_pairs(files, work / "candidates.parquet", settings)
+            skew = joined["skew"]
+            counts["candidate_pairs"] = joined["candidate_pairs"]
+
+            with stages("verify"):
+                candidates = pl.read_parquet(work / "candidates.parquet")
+                verified = verify_pairs(candidates, sets, matrix, row_of, options.threshold)
+                del candidates
+            counts["verified_pairs"] = verified.height
+
+        with stages("publish"):
+            bands_for_identical = plan.get("bands", 0)
+            table = neighbour_table(verified, rep_of, sets.keys, options.top_k, bands_for_identical)
+            counts["published_rows"] = table.height
+            manifest = {
+                "format": "lshjob-index",
+                "format_version": 1,
+                "inputs": _inputs(events, report),
+                "spec": asdict(spec),
+                "options": asdict(options),
+                "memory_budget_bytes": memory,
+                "plan": plan,
+                "counts": counts,
+                "skew": skew,
+                "seconds": stages.seconds,
+                "peak_memory_bytes": stages.peak,
+                "versions": _versions(),
+            }
+            facts = publish_index(out, table, manifest)
+        manifest["output"] = facts
+        manifest["seconds"]["total"] = round(time.perf_counter() - started, 3)
+        manifest["out"] = str(out)
+        return manifest
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+
+
+def _choose_plan(sets_rows: pl.DataFrame, n_entities: int, options: RunOptions) -> dict:
+    if options.threshold >= 1.0:
+        return {"mode": "identical-only", "why": "threshold 1.0: only identical sets qualify; "
+                "they are grouped exactly, no signatures or bands are needed"}
+    hist = similarity.sample_histogram_from_sets(sets_rows, options.sample_size, seed=0)
+    if options.bands is not None:
+        perms = options.perms or 128
+        chosen = _judge(options.threshold, hist, perms, options.bands, options.rows)
+        why = f"given by --bands {options.bands} --rows {options.rows}"
+        mode = "explicit"
+    else:
+        choices = (options.perms,) if options.perms else planner.DEFAULT_PERMS_CHOICES
+        chosen = planner.data_plans(options.threshold, hist, choices, options.recall)[0].as_dict()
+        why = (f"data mode: fewest expected candidates with expected recall >= {options.recall} on an "
+               f"exact sample of {hist.sample_entities} of {n_entities} entities")
+        mode = "data"
+    return {
+        "mode": mode,
+        "why": why,
+        "perms": chosen["perms"],
+        "bands": chosen["bands"],
+        "rows": chosen["rows"],
+        "predicted": chosen,
+        "sample": {"entities": hist.sample_entities, "identical_pairs": hist.identical_pairs,
+                   "pairs_at_or_above_threshold": hist.pairs_at_or_above(options.threshold)},
+    }
+
+
+def _judge(threshold, hist, perms, bands, rows) -> dict:
+    plans = planner.data_plans(threshold, hist, (perms,), recall=1e-9)
+    for p in plans:
+        if p.bands == bands and p.rows == rows:
+            return p.as_dict()
+    raise AssertionError("explicit plan missing from the enumeration")
+
+
+def _inputs(events, report) -> dict:
+    digest = hashlib.sha256()
+    sizes = 0
+    for name in report.files:
+        digest.update(name.encode() + b"\0")
+        with open(name, "rb") as fh:
+            while block := fh.read(1 << 22):
+                digest.update(block)
+                sizes += len(block)
+    return {"source": str(events), "files": report.files, "bytes": sizes, "rows": report.rows_read,
+            "sha256": digest.hexdigest()}
+
+
+def _versions() -> dict:
+    import duckdb
+    import numba
+
+    return {"lshjob": __version__, "python": platform.python_version(), "polars": pl.__version__,
+            "numpy": np.__version__, "duckdb": duckdb.__version__, "numba": numba.__version__}

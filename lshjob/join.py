@@ -1,0 +1,58 @@
+"""Join stage (DuckDB): bucket rows -> candidate pairs of representatives.
+
+The SQL lives in ``sql/candidates.sql`` and ``sql/bucket_skew.sql``. DuckDB runs with a
+memory limit and a spill directory, so a join larger than memory spills to disk instead
+of failing.
+
+Output contract of :func:`candidate_pairs`: a Parquet file with ``left_rep`` < ``right_rep``
+(Int64 entity ids of representatives), ``bands_shared`` Int32 >= 1, one row per unordered
+pair, sorted by (left_rep, right_rep); and a skew report (dict).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import duckdb
+
+from .sqlfiles import load_sql, string_literal
+
+DEFAULT_MAX_BUCKET = 2000
+
+
+@dataclass(frozen=True)
+class JoinSettings:
+    memory_limit: str = "4GB"
+    temp_directory: str | None = None
+    threads: int | None = None
+    max_bucket: int = DEFAULT_MAX_BUCKET
+
+
+def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
+    config = {"memory_limit": settings.memory_limit, "preserve_insertion_order": False}
+    if settings.temp_directory is not None:
+        config["temp_directory"] = settings.temp_directory
+    if settings.threads is not None:
+        config["threads"] = settings.threads
+    return duckdb.connect(config=config)
+
+
+def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings) -> dict:
+    """Write candidate pairs to ``out`` (Parquet); return counts and the skew report."""
+    files = [str(p) for p in bucket_files]
+    params = {"bucket_files": files, "max_bucket": settings.max_bucket}
+    con = connect(settings)
+    try:
+        skew_row = con.execute(load_sql("bucket_skew"), params).fetchone()
+        columns = [d[0] for d in con.description]
+        skew = {name: int(value) for name, value in zip(columns, skew_row)}
+        query = load_sql("candidates").strip().rstrip(";")
+        tmp = out.with_name(f".{out.name}.tmp")
+        con.execute(f"COPY ({query}) TO {string_literal(str(tmp))} (FORMAT parquet)", params)
+        tmp.replace(out)
+        count = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": str(out)}).fetchone()[0]
+    finally:
+        con.close()
+    skew["max_bucket"] = settings.max_bucket
+    return {"candidate_pairs": int(count), "skew": skew}

@@ -1,0 +1,54 @@
+"""Memory sizes, the machine's memory, and per-stage peak resident memory (Linux)."""
+
+from __future__ import annotations
+
+import os
+import re
+import resource
+
+from .errors import ParameterError
+
+_UNITS = {"": 1, "B": 1, "KB": 10**3, "MB": 10**6, "GB": 10**9, "TB": 10**12,
+          "KIB": 2**10, "MIB": 2**20, "GIB": 2**30, "TIB": 2**40}
+
+
+def parse_size(text: str) -> int:
+    """'8GB' -> 8e9 bytes; '512MiB' -> 512 * 2**20. Decimal and binary units."""
+    match = re.fullmatch(r"\s*([0-9]*\.?[0-9]+)\s*([A-Za-z]*)\s*", str(text))
+    if not match or match.group(2).upper() not in _UNITS:
+        raise ParameterError(f"--memory must be a size like 8GB or 512MiB; got {text!r}")
+    value = float(match.group(1)) * _UNITS[match.group(2).upper()]
+    if value < 64 * 2**20:
+        raise ParameterError(f"--memory must be at least 64MiB; got {text!r}")
+    return int(value)
+
+
+def physical_memory() -> int:
+    return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+
+
+def default_memory() -> int:
+    """Half the machine's memory (common practice for a job sharing its host)."""
+    return physical_memory() // 2
+
+
+def reset_peak() -> bool:
+    """Reset the kernel's resident-memory high-water mark (Linux clear_refs '5')."""
+    try:
+        with open("/proc/self/clear_refs", "w") as fh:
+            fh.write("5")
+        return True
+    except OSError:
+        return False
+
+
+def peak_bytes() -> int:
+    """Peak resident memory since the last reset (VmHWM), else the process's lifetime peak."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
