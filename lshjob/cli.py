@@ -12,8 +12,12 @@ import typer
 
 from . import __version__, api
 from .charts import write_chart
+from .audit import audit_index
+from .config import load_run_config, merge_settings
 from .demo import write_demo
-from .reports import plan_report
+from .errors import ParameterError
+from .job import RunOptions, run_job
+from .reports import audit_report, plan_report, run_report
 from .errors import LshjobError
 from .ingest import EventSpec
 from .progress import StageProgress
@@ -167,6 +171,81 @@ def plan(
     _emit(summary, as_json, quiet, plan_report(result))
 
 
+RUN_DEFAULTS = {
+    "count": None, "min_count": 1, "on_null": "error", "top_k": 50, "perms": None, "bands": None,
+    "rows": None, "recall": 0.95, "sample_size": 2000, "seed": 1, "max_bucket": 2000,
+    "max_candidates": 2e9, "memory": None,
+}
+
+
+@app.command()
+@_fail_cleanly
+def run(
+    events: Annotated[Optional[str], typer.Argument(help="Event file, glob or directory.")] = None,
+    entity: Annotated[Optional[str], typer.Option(help="Entity column (e.g. patron).")] = None,
+    element: Annotated[Optional[str], typer.Option(help="Element column (e.g. title).")] = None,
+    threshold: Annotated[Optional[float], typer.Option(help="Jaccard similarity a neighbour must reach, in (0, 1].")] = None,
+    out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Index folder (neighbours.parquet, manifest.json).")] = None,
+    top_k: Annotated[Optional[int], typer.Option(help="Neighbours kept per entity.  [default: 50]")] = None,
+    perms: Annotated[Optional[int], typer.Option(help="Signature length k (default: chosen by the planner).")] = None,
+    bands: Annotated[Optional[int], typer.Option(help="Override the planner: number of bands b.")] = None,
+    rows: Annotated[Optional[int], typer.Option(help="Override the planner: rows per band r.")] = None,
+    recall: Annotated[Optional[float], typer.Option(help="Planner's expected-recall target.  [default: 0.95]")] = None,
+    count: Annotated[Optional[str], typer.Option(help="Column with a count or weight per event.")] = None,
+    min_count: Annotated[Optional[float], typer.Option(help="Keep elements seen at least this often.  [default: 1]")] = None,
+    on_null: Annotated[Optional[str], typer.Option(help="Null keys: error or drop.  [default: error]")] = None,
+    sample_size: Annotated[Optional[int], typer.Option(help="Entities the planner samples.  [default: 2000]")] = None,
+    seed: Annotated[Optional[int], typer.Option(help="Seed of the hash family.  [default: 1]")] = None,
+    max_bucket: Annotated[Optional[int], typer.Option(help="Skip buckets holding more entities.  [default: 2000]")] = None,
+    max_candidates: Annotated[Optional[float], typer.Option(help="Refuse plans predicting more candidate pairs.  [default: 2e9]")] = None,
+    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB.  [default: half the machine]")] = None,
+    config: Annotated[Optional[Path], typer.Option(help="TOML file with any of these options; flags override it.")] = None,
+    quiet: Quiet = False,
+    as_json: AsJson = False,
+) -> None:
+    """Build the neighbour index: ingest, sign, plan, band, join, verify, publish.
+
+    Example: lshjob run demo_data/loans.parquet --entity patron --element title
+    --threshold 0.5 --top-k 20 --out index
+
+    Example (scheduled): lshjob run --config nightly.toml
+    """
+    flags = dict(events=events, entity=entity, element=element, threshold=threshold, out=out,
+                 top_k=top_k, perms=perms, bands=bands, rows=rows, recall=recall, count=count,
+                 min_count=min_count, on_null=on_null, sample_size=sample_size, seed=seed,
+                 max_bucket=max_bucket, max_candidates=max_candidates, memory=memory)
+    settings = merge_settings(RUN_DEFAULTS, load_run_config(config) if config else {}, flags)
+    missing = [name for name in ("events", "entity", "element", "threshold", "out") if settings.get(name) is None]
+    if missing:
+        raise ParameterError(f"lshjob run needs {', '.join(missing)} (as options or in --config)")
+    spec = EventSpec(entity=settings["entity"], element=settings["element"], count=settings["count"],
+                     min_count=settings["min_count"], on_null=settings["on_null"])
+    options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__})
+    with _progress(quiet, as_json) as progress:
+        manifest = run_job(settings["events"], spec, options, settings["out"], progress)
+    _emit(manifest, as_json, quiet, run_report(manifest))
+
+
+@app.command()
+@_fail_cleanly
+def audit(
+    index: Annotated[Path, typer.Argument(help="Index folder written by lshjob run.")],
+    events: Annotated[Optional[str], typer.Option(help="Events to check against (default: the run's input).")] = None,
+    sample: Annotated[int, typer.Option(help="Entities to check by brute force.")] = 200,
+    seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
+    quiet: Quiet = False,
+    as_json: AsJson = False,
+) -> None:
+    """Check an index by exact brute force on a sample: recall, predicted recall, wrong pairs.
+
+    Example: lshjob audit index --events demo_data/loans.parquet --sample 300
+    """
+    report = audit_index(index, events, sample, seed)
+    _emit(report, as_json, quiet, audit_report(report))
+    if report["wrong_pairs"]:
+        raise typer.Exit(1)
+
+
 @app.command()
 @_fail_cleanly
 def demo(
@@ -180,19 +259,25 @@ def demo(
 ) -> None:
     """Generate the library-network demo (patrons, titles, branches, months) and run the job on it.
 
+    Writes DIR/events.parquet and DIR/planted.parquet, signs the patrons
+    (DIR/signatures.parquet), builds the index at threshold 0.5 (DIR/index) and audits it.
+
     Example: lshjob demo --out demo-run --patrons 5000 --seed 3
     """
     data = write_demo(out, patrons, seed)
     spec = EventSpec(entity="patron", element="title")
     with _progress(quiet, as_json) as progress:
         signed = api.sign_file(data["events"], out / "signatures.parquet", spec, progress=progress)
-    summary = {"data": data, "sign": signed}
+        manifest = run_job(data["events"], spec, RunOptions(threshold=0.5, top_k=20), out / "index", progress)
+    checked = audit_index(out / "index", sample=min(300, patrons))
+    summary = {"data": data, "sign": signed, "run": manifest, "audit": checked}
     _emit(
         summary,
         as_json,
         quiet,
         f"wrote {data['rows']} loans by {patrons} patrons to {data['events']}\n"
-        f"signed {signed['signatures']} patrons -> {signed['out']}",
+        f"signed {signed['signatures']} patrons -> {signed['out']}\n\n"
+        + run_report(manifest) + "\n\n" + audit_report(checked),
     )
 
 

@@ -167,24 +167,25 @@ def run_job(
             counts["verified_pairs"] = verified.height
 
         with stages("publish"):
-            bands_for_identical = plan.get("bands", 0)
-            table = neighbour_table(verified, rep_of, sets.keys, options.top_k, bands_for_identical)
-            counts["published_rows"] = table.height
-            manifest = {
-                "format": "lshjob-index",
-                "format_version": 1,
-                "inputs": _inputs(events, report),
-                "spec": asdict(spec),
-                "options": asdict(options),
-                "memory_budget_bytes": memory,
-                "plan": plan,
-                "counts": counts,
-                "skew": skew,
-                "seconds": stages.seconds,
-                "peak_memory_bytes": stages.peak,
-                "versions": _versions(),
-            }
-            facts = publish_index(out, table, manifest)
+            table = neighbour_table(verified, rep_of, sets.keys, options.top_k, plan.get("bands", 0))
+        counts["published_rows"] = table.height
+        manifest = {
+            "format": "lshjob-index",
+            "format_version": 1,
+            "inputs": _inputs(events, report),
+            "spec": asdict(spec),
+            "options": asdict(options),
+            "memory_budget_bytes": memory,
+            "plan": plan,
+            "counts": counts,
+            "skew": skew,
+            "seconds": stages.seconds,
+            "peak_memory_bytes": stages.peak,
+            "versions": _versions(),
+        }
+        write_start = time.perf_counter()
+        facts = publish_index(out, table, manifest)
+        manifest["seconds"] = dict(stages.seconds, write=round(time.perf_counter() - write_start, 3))
         manifest["output"] = facts
         manifest["seconds"]["total"] = round(time.perf_counter() - started, 3)
         manifest["out"] = str(out)

@@ -51,3 +51,57 @@ def plan_report(result) -> str:
             lines.append(f"note: {note}")
     lines += ["", text_s_curve(result.bands, result.rows, t)]
     return "\n".join(lines)
+
+
+def _mib(n: int) -> str:
+    return f"{n / 2**20:,.0f} MiB"
+
+
+def run_report(m: dict) -> str:
+    """Summary of a run: plan, counts per stage, skew handling, time and memory."""
+    plan, c = m["plan"], m["counts"]
+    lines = [f"index -> {m['out']} ({m['output']['rows']:,} neighbour rows)"]
+    if plan["mode"] == "identical-only":
+        lines.append(f"plan: {plan['why']}")
+    else:
+        p = plan["predicted"]
+        lines.append(
+            f"plan ({plan['mode']}): k={plan['perms']}, b={plan['bands']}, r={plan['rows']}; predicted recall "
+            f"{p['expected_recall']:.3f}, {p['expected_candidates']:,.0f} candidate pairs"
+        )
+    lines.append(
+        f"entities {c['entities']:,} ({c['representatives']:,} after collapsing identical sets), "
+        f"events {c['events']:,}"
+    )
+    lines.append(
+        f"bucket rows {c['bucket_rows']:,} -> candidates {c['candidate_pairs']:,} -> verified "
+        f"{c['verified_pairs']:,} -> published {c['published_rows']:,}"
+    )
+    skew = m.get("skew")
+    if skew:
+        lines.append(
+            f"skew: largest bucket {skew['largest_bucket']:,}; {skew['oversize_buckets']:,} bucket(s) over "
+            f"--max-bucket {skew['max_bucket']:,} skipped ({skew['skipped_pairs']:,} potential pairs)"
+        )
+    lines.append("stage      seconds   peak memory")
+    for stage, secs in m["seconds"].items():
+        if stage == "total":
+            continue
+        lines.append(f"{stage:<10}{secs:>8.2f}   {_mib(m['peak_memory_bytes'].get(stage, 0)):>11}")
+    lines.append(f"{'total':<10}{m['seconds']['total']:>8.2f}")
+    return "\n".join(lines)
+
+
+def audit_report(r: dict) -> str:
+    rec = "n/a" if r["recall"] is None else f"{r['recall']:.4f}"
+    pred = "n/a" if r["predicted_recall"] is None else f"{r['predicted_recall']:.4f}"
+    lines = [
+        f"audit of {r['index']}: {r['sampled_entities']} sampled entities against {r['compared_against']}",
+        f"true pairs at or above {r['threshold']}: {r['true_pairs']:,}; expected in index (top-{r['top_k']}): "
+        f"{r['expected_in_index']:,}; found {r['found']:,}",
+        f"recall {rec} (S-curve predicts {pred})",
+        f"published pairs checked {r['published_pairs_checked']:,}; wrong {r['wrong_pairs']}",
+    ]
+    for row in r["wrong_examples"]:
+        lines.append(f"  wrong: {row}")
+    return "\n".join(lines)

@@ -1,0 +1,63 @@
+"""Job configuration from a TOML file, for scheduled runs; command-line flags override it.
+
+Keys are the long option names of ``lshjob run`` with dashes or underscores, for example::
+
+    events = "exports/loans/*.parquet"
+    entity = "patron"
+    element = "title"
+    threshold = 0.5
+    out = "index/nightly"
+    top-k = 50
+    memory = "8GB"
+"""
+
+from __future__ import annotations
+
+import tomllib
+from pathlib import Path
+
+from .errors import ParameterError
+
+RUN_KEYS = {
+    "events": str, "entity": str, "element": str, "count": str, "min_count": (int, float),
+    "on_null": str, "threshold": (int, float), "out": str, "top_k": int, "perms": int, "bands": int,
+    "rows": int, "recall": float, "sample_size": int, "seed": int, "max_bucket": int,
+    "max_candidates": (int, float), "memory": str,
+}
+
+
+def load_run_config(path: str | Path) -> dict:
+    """Read and check a run configuration; keys normalised to underscores."""
+    path = Path(path)
+    if not path.is_file():
+        raise ParameterError(f"{path}: no such configuration file")
+    try:
+        raw = tomllib.loads(path.read_text())
+    except tomllib.TOMLDecodeError as exc:
+        raise ParameterError(f"{path}: not valid TOML: {exc}") from exc
+    config = {}
+    for key, value in raw.items():
+        name = key.replace("-", "_")
+        if name not in RUN_KEYS:
+            raise ParameterError(
+                f"{path}: unknown key {key!r}; known keys are: {', '.join(k.replace('_', '-') for k in RUN_KEYS)}"
+            )
+        if not isinstance(value, RUN_KEYS[name]) or isinstance(value, bool):
+            raise ParameterError(f"{path}: key {key!r} has value {value!r}; expected {_kind(RUN_KEYS[name])}")
+        config[name] = value
+    return config
+
+
+def _kind(t) -> str:
+    names = {str: "text", int: "a whole number", float: "a number"}
+    if isinstance(t, tuple):
+        return " or ".join(names[x] for x in t)
+    return names[t]
+
+
+def merge_settings(defaults: dict, config: dict, flags: dict) -> dict:
+    """defaults < config file < flags given on the command line (None means not given)."""
+    merged = dict(defaults)
+    merged.update(config)
+    merged.update({k: v for k, v in flags.items() if v is not None})
+    return merged

@@ -1,0 +1,29 @@
+"""Data builders shared by the pipeline tests."""
+
+from __future__ import annotations
+
+import numpy as np
+import polars as pl
+
+
+def planted_pairs(n_pairs: int, low: float, seed: int, background: int = 1000) -> pl.DataFrame:
+    """Events (patron, title): n_pairs pairs of patrons with Jaccard spread over [low, 1)
+    and titles private to each pair, plus background patrons drawing titles with long-tailed
+    popularity (sets of 8 to 40, so background pairs rarely reach Jaccard 0.3)."""
+    rng = np.random.default_rng(seed)
+    rows_p, rows_t = [], []
+    for i in range(n_pairs):
+        x = int(rng.integers(1, 6))
+        target = rng.uniform(low, 0.97)
+        shared = max(1, int(round(2 * x * target / (1 - target))))
+        base = [f"pair{i}-s{j}" for j in range(shared)]
+        for side in ("a", "b"):
+            titles = base + [f"pair{i}-{side}{j}" for j in range(x)]
+            rows_p += [f"P{i:05d}{side}"] * len(titles)
+            rows_t += titles
+    for j in range(background):
+        size = int(rng.integers(8, 40))
+        titles = {f"T{int(t):05d}" for t in rng.zipf(1.15, size) % 20000}
+        rows_p += [f"B{j:05d}"] * len(titles)
+        rows_t += sorted(titles)
+    return pl.DataFrame({"patron": rows_p, "title": rows_t})
