@@ -61,3 +61,29 @@ def append_results(section: str, body: str) -> None:
     head, _, rest = text.partition("\n## ")
     rest = ("## " + rest) if rest else ""
     path.write_text(head.rstrip() + f"\n\n## {section}\n\n{body.strip()}\n\n" + rest)
+
+
+def events_with_similar_pairs(entities: int, mean_size: float = 40.0, share: float = 0.1, seed: int = 0) -> Path:
+    """Long-tailed events where a fraction ``share`` of entities are perturbed copies of
+    another entity (each element replaced with probability q ~ U(0, 0.6)), so that pair
+    similarities spread over (0, 1]; cached under bench/cache/."""
+    CACHE.mkdir(exist_ok=True)
+    path = CACHE / f"similar_{entities}_{int(mean_size)}_{share}_{seed}.parquet"
+    if path.exists():
+        return path
+    base = pl.read_parquet(long_tailed_events(entities, mean_size, seed))
+    rng = np.random.default_rng(seed + 1)
+    n_copies = int(entities * share)
+    targets = rng.choice(entities, size=n_copies, replace=False)  # entities overwritten
+    sources = rng.integers(0, entities, size=n_copies)
+    mapping = pl.DataFrame({"entity": sources, "copy": targets})
+    copies = base.join(mapping, on="entity").select(pl.col("copy").alias("entity"), "element")
+    q = pl.DataFrame({"entity": targets, "q": rng.uniform(0, 0.6, n_copies)})
+    copies = copies.join(q, on="entity").with_columns(u=pl.Series(rng.random(copies.height)))
+    fresh = pl.Series(rng.integers(10**12, 2 * 10**12, copies.height))
+    copies = copies.with_columns(
+        element=pl.when(pl.col("u") < pl.col("q")).then(fresh).otherwise(pl.col("element"))
+    ).select("entity", "element")
+    kept = base.filter(~pl.col("entity").is_in(pl.Series(targets).implode()))
+    pl.concat([kept, copies]).sort("entity").write_parquet(path)
+    return path

@@ -163,7 +163,7 @@ def plan_banding(
         table, meta = read_signatures(sample)
         if perms is not None and perms > meta["k"]:
             raise ParameterError(f"--perms {perms} exceeds the signature length k={meta['k']} of {sample}")
-        hist = similarity.sample_histogram_from_signatures(table, sample_size, seed, entities)
+        hist = similarity.sample_histogram_from_signatures(table, sample_size, seed, entities, threshold)
         basis = "signature estimates"
         choices = (perms or meta["k"],)
     else:
@@ -174,7 +174,7 @@ def plan_banding(
         sets, _ = load_sets(sample, spec)
         if sets["entity"].n_unique() < 2:
             raise InputError(f"{sample}: the sample needs at least 2 entities; got 1")
-        hist = similarity.sample_histogram_from_sets(sets, sample_size, seed, entities)
+        hist = similarity.sample_histogram_from_sets(sets, sample_size, seed, entities, threshold)
         basis = "exact Jaccard"
         choices = (perms,) if perms is not None else planner.DEFAULT_PERMS_CHOICES
     ranked = planner.data_plans(threshold, hist, choices, recall)
@@ -184,8 +184,9 @@ def plan_banding(
         "similarity": basis,
         "sampled_entities": hist.sample_entities,
         "total_entities": hist.total_entities,
-        "sampled_pairs": int(hist.counts.sum()) + hist.identical_pairs,
-        "sampled_identical_pairs": hist.identical_pairs,
+        "design": hist.design,
+        "sampled_pairs": int(hist.counts.sum() + hist.identical_pairs),
+        "sampled_identical_pairs": int(hist.identical_pairs),
         "expected_identical_pairs": hist.identical_pairs * hist.scale,
         "sampled_pairs_at_or_above_threshold": int(hist.pairs_at_or_above(threshold)),
         "recall_target": recall,

@@ -123,7 +123,7 @@ def run_job(
         counts.update(representatives=len(reps), entities_in_identical_groups=int(sets.size - len(reps)))
 
         with stages("plan"):
-            plan = _choose_plan(sets_rows, sets.size, options)
+            plan = _choose_plan(sets, options)
         predicted = plan.get("predicted", {})
         if predicted.get("expected_candidates", 0) > options.max_candidates:
             raise ParameterError(
@@ -194,11 +194,12 @@ def run_job(
         shutil.rmtree(work, ignore_errors=True)
 
 
-def _choose_plan(sets_rows: pl.DataFrame, n_entities: int, options: RunOptions) -> dict:
+def _choose_plan(sets: Membership, options: RunOptions) -> dict:
     if options.threshold >= 1.0:
         return {"mode": "identical-only", "why": "threshold 1.0: only identical sets qualify; "
                 "they are grouped exactly, no signatures or bands are needed"}
-    hist = similarity.sample_histogram_from_sets(sets_rows, options.sample_size, seed=0)
+    n_entities = sets.size
+    hist = similarity.sample_histogram_from_sets(sets, options.sample_size, seed=0, threshold=options.threshold)
     if options.bands is not None:
         perms = options.perms or 128
         chosen = _judge(options.threshold, hist, perms, options.bands, options.rows)
@@ -207,8 +208,9 @@ def _choose_plan(sets_rows: pl.DataFrame, n_entities: int, options: RunOptions) 
     else:
         choices = (options.perms,) if options.perms else planner.DEFAULT_PERMS_CHOICES
         chosen = planner.data_plans(options.threshold, hist, choices, options.recall)[0].as_dict()
-        why = (f"data mode: fewest expected candidates with expected recall >= {options.recall} on an "
-               f"exact sample of {hist.sample_entities} of {n_entities} entities")
+        why = (f"data mode: fewest expected candidates with expected recall >= {options.recall}; exact "
+               f"Jaccard of {hist.sample_entities} sampled entities against "
+               f"{'all' if hist.design == 'against_all' else 'each other'} ({n_entities} entities)")
         mode = "data"
     return {
         "mode": mode,
@@ -217,7 +219,8 @@ def _choose_plan(sets_rows: pl.DataFrame, n_entities: int, options: RunOptions) 
         "bands": chosen["bands"],
         "rows": chosen["rows"],
         "predicted": chosen,
-        "sample": {"entities": hist.sample_entities, "identical_pairs": hist.identical_pairs,
+        "sample": {"entities": hist.sample_entities, "design": hist.design,
+                   "identical_pairs": hist.identical_pairs,
                    "pairs_at_or_above_threshold": hist.pairs_at_or_above(options.threshold)},
     }
 

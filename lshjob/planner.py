@@ -134,26 +134,45 @@ def theory_plan(threshold: float, perms: int, fp_weight: float = 0.5, fn_weight:
 class PairHistogram:
     """Pair-similarity distribution of a sample, scaled to the full entity count.
 
-    ``counts[i]`` sampled pairs have mean similarity ``similarity[i]``; ``scale`` turns
+    ``counts[i]`` sampled pairs have mean similarity ``similarity[i]``. ``scale`` turns
     sampled pair counts into expected pair counts of the whole collection:
-    N(N-1) / (m(m-1)) for m sampled of N entities. Pairs of identical sets are counted
-    apart in ``identical_pairs``: the run collapses identical signatures before banding
-    and pairs them up afterwards, so banding neither finds nor misses them.
+
+    * ``design="within"`` (all pairs among m sampled entities): N(N-1) / (m(m-1));
+    * ``design="against_all"`` (each of m sampled entities paired with every entity): each
+      unordered pair is seen from either end it has in the sample, 2m/N in expectation,
+      so the scale is N / (2m). Pairs sharing no element are not listed (P(0) = 0).
+
+    Pairs of identical sets are counted apart in ``identical_pairs``: the run collapses
+    identical sets before banding and pairs them up afterwards, so banding neither finds
+    nor misses them.
     """
 
     similarity: np.ndarray
     counts: np.ndarray
     sample_entities: int
     total_entities: int
-    identical_pairs: int = 0
+    identical_pairs: float = 0
+    design: str = "within"
+    threshold: float | None = None
+    at_or_above: np.ndarray | None = None
+
+    def mask(self, threshold: float) -> np.ndarray:
+        """Which entries hold pairs at or above ``threshold``. A histogram built for that
+        threshold keeps the pairs on either side of it apart, so the answer is exact;
+        otherwise the bin means decide (with a 1e-9 allowance for rounding in the means)."""
+        if self.at_or_above is not None and self.threshold == threshold:
+            return self.at_or_above
+        return self.similarity >= threshold - 1e-9
 
     @property
     def scale(self) -> float:
         n, m = self.total_entities, self.sample_entities
+        if self.design == "against_all":
+            return n / (2.0 * m)
         return n * (n - 1) / (m * (m - 1))
 
     def pairs_at_or_above(self, threshold: float) -> float:
-        return float(self.counts[self.similarity >= threshold].sum())
+        return float(self.counts[self.mask(threshold)].sum())
 
 
 @dataclass
@@ -191,7 +210,7 @@ def data_plans(
         raise ParameterError(f"--recall must be in (0, 1); got {recall}")
     sim = histogram.similarity
     cnt = histogram.counts.astype(np.float64)
-    above = sim >= threshold
+    above = histogram.mask(threshold)
     uniform_basis = cnt[above].sum() < 20
     s_hi, w_hi = _nodes(threshold, 1.0)
     plans = []

@@ -80,6 +80,46 @@ def _all_pairs_estimate(sig):
     return out
 
 
+@numba.njit(cache=True)
+def _against_all_histogram(offsets, elements, starts, members, sample, nbins, threshold):
+    n = offsets.shape[0] - 1
+    inter = np.zeros(n, dtype=np.int32)
+    touched = np.empty(n, dtype=np.int64)
+    counts = np.zeros(2 * nbins, dtype=np.int64)
+    sums = np.zeros(2 * nbins, dtype=np.float64)
+    identical = 0
+    for a in sample:
+        nt = 0
+        for j in range(offsets[a], offsets[a + 1]):
+            e = elements[j]
+            for t in range(starts[e], starts[e + 1]):
+                b = members[t]
+                if b == a:
+                    continue
+                if inter[b] == 0:
+                    touched[nt] = b
+                    nt += 1
+                inter[b] += 1
+        size_a = offsets[a + 1] - offsets[a]
+        for q in range(nt):
+            b = touched[q]
+            jac = inter[b] / (size_a + offsets[b + 1] - offsets[b] - inter[b])
+            inter[b] = 0
+            if jac >= 1.0:
+                identical += 1
+            else:
+                k = 2 * min(int(jac * nbins), nbins - 1) + (1 if jac >= threshold else 0)
+                counts[k] += 1
+                sums[k] += jac
+    return counts, sums, identical
+
+
+def against_all_work(sets: Membership, starts: np.ndarray, sample: np.ndarray) -> float:
+    """Posting visits needed to pair ``sample`` with every entity."""
+    lengths = np.diff(starts)
+    return float(sum(lengths[sets.elements[sets.offsets[a] : sets.offsets[a + 1]]].sum() for a in sample))
+
+
 def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:
     """All pairwise exact Jaccard similarities among the entities of membership rows,
     pairs (i, j), i < j, in row-major order of sorted entity keys."""
@@ -102,40 +142,83 @@ def estimated_pair_similarities(signatures: pl.DataFrame) -> np.ndarray:
     return _all_pairs_estimate(signature_array(signatures))
 
 
-def histogram(similarities: np.ndarray, sample_entities: int, total_entities: int) -> PairHistogram:
+def histogram(
+    similarities: np.ndarray, sample_entities: int, total_entities: int, threshold: float | None = None
+) -> PairHistogram:
     """Bin similarities below 1 (1000 bins) keeping each bin's mean similarity; pairs of
-    identical sets (similarity 1) are counted apart (see :class:`PairHistogram`)."""
+    identical sets (similarity 1) are counted apart (see :class:`PairHistogram`). With a
+    threshold, pairs on either side of it are kept in separate entries."""
     identical = similarities >= 1.0
     rest = similarities[~identical]
-    bins = np.minimum((rest * HISTOGRAM_BINS).astype(np.int64), HISTOGRAM_BINS - 1)
-    counts = np.bincount(bins, minlength=HISTOGRAM_BINS)
-    sums = np.bincount(bins, weights=rest, minlength=HISTOGRAM_BINS)
+    side = (rest >= threshold) if threshold is not None else np.zeros(len(rest), dtype=bool)
+    bins = 2 * np.minimum((rest * HISTOGRAM_BINS).astype(np.int64), HISTOGRAM_BINS - 1) + side
+    counts = np.bincount(bins, minlength=2 * HISTOGRAM_BINS)
+    sums = np.bincount(bins, weights=rest, minlength=2 * HISTOGRAM_BINS)
+    return _make(counts, sums, sample_entities, total_entities, int(identical.sum()), "within", threshold)
+
+
+def _make(counts, sums, sample_entities, total_entities, identical, design, threshold, factor=1.0):
     keep = counts > 0
+    flags = (np.arange(len(counts)) % 2 == 1)[keep]
     return PairHistogram(
         similarity=sums[keep] / counts[keep],
-        counts=counts[keep],
+        counts=counts[keep] * factor,
         sample_entities=sample_entities,
         total_entities=total_entities,
-        identical_pairs=int(identical.sum()),
+        identical_pairs=identical * factor,
+        design=design,
+        threshold=threshold,
+        at_or_above=flags if threshold is not None else None,
     )
 
 
+MAX_AGAINST_ALL_WORK = 2e9
+
+
 def sample_histogram_from_sets(
-    sets: pl.DataFrame, sample: int = 2000, seed: int = 0, total_entities: int | None = None
+    sets: pl.DataFrame | Membership,
+    sample: int = 2000,
+    seed: int = 0,
+    total_entities: int | None = None,
+    threshold: float | None = None,
 ) -> PairHistogram:
-    """Exact pair-similarity histogram of ``sample`` entities drawn from membership rows."""
-    picked = sample_keys(sets["entity"], sample, seed)
-    sub = sets.filter(pl.col("entity").is_in(picked.implode()))
-    n_total = total_entities or sets["entity"].n_unique()
-    sims = exact_pair_similarities(sub)
-    return histogram(sims, picked.len(), n_total)
+    """Exact pair-similarity histogram of ``sample`` entities drawn from membership rows.
+
+    Each sampled entity is paired with every entity of the input (exact Jaccard through an
+    inverted index), which sees m x N pairs instead of the m^2 within the sample: similar
+    pairs are rare, and a within-sample histogram often holds too few to plan on. If that
+    would visit more than 2e9 postings, the sample is paired within itself instead.
+    """
+    members = sets if isinstance(sets, Membership) else Membership.from_sets(sets)
+    if members.size < 2:
+        raise InputError(f"the sample needs at least 2 entities; got {members.size}")
+    n_total = total_entities or members.size
+    rng = np.random.default_rng(seed)
+    picked = np.sort(rng.choice(members.size, size=min(sample, members.size), replace=False))
+    starts, posted = postings(members)
+    if members.size > len(picked) and against_all_work(members, starts, picked) <= MAX_AGAINST_ALL_WORK:
+        counts, sums, identical = _against_all_histogram(
+            members.offsets, members.elements, starts, posted, picked, HISTOGRAM_BINS,
+            2.0 if threshold is None else threshold,
+        )
+        # factor rescales from the input's own entity count to the requested total.
+        return _make(counts, sums, len(picked), n_total, identical, "against_all", threshold,
+                     factor=n_total / members.size)
+    sub = members.subset(picked)
+    starts, posted = postings(sub)
+    sims = _all_pairs_jaccard(sub.offsets, sub.elements, starts, posted)
+    return histogram(sims, len(picked), n_total, threshold)
 
 
 def sample_histogram_from_signatures(
-    signatures: pl.DataFrame, sample: int = 2000, seed: int = 0, total_entities: int | None = None
+    signatures: pl.DataFrame,
+    sample: int = 2000,
+    seed: int = 0,
+    total_entities: int | None = None,
+    threshold: float | None = None,
 ) -> PairHistogram:
     """Estimated pair-similarity histogram of ``sample`` rows of a signature table."""
     picked = sample_keys(signatures["entity"], sample, seed)
     sub = signatures.filter(pl.col("entity").is_in(picked.implode())).sort("entity")
     n_total = total_entities or signatures["entity"].n_unique()
-    return histogram(estimated_pair_similarities(sub), sub.height, n_total)
+    return histogram(estimated_pair_similarities(sub), sub.height, n_total, threshold)

@@ -163,3 +163,26 @@ def test_plan_cli_json_and_svg_chart(tmp_path, demo_events):
     assert out["bands"] * out["rows"] <= out["perms"]
     root = ET.parse(chart).getroot()
     assert root.tag.endswith("svg") and any(el.tag.endswith("polyline") for el in root.iter())
+
+
+def test_against_all_sample_estimates_population_pair_counts(tmp_path):
+    # Oracle: exact pair counts from scipy sparse products over the whole input.
+    import sys
+
+    sys.path.insert(0, str(__import__("pathlib").Path(__file__).parent))
+    from helpers import planted_pairs
+    from test_run import brute_force_pairs
+
+    from lshjob.membership import Membership
+    from lshjob.similarity import sample_histogram_from_sets
+
+    events = planted_pairs(600, 0.3, seed=12, background=400)
+    truth = brute_force_pairs(events, 0.5)
+    sets = Membership.from_sets(events.rename({"patron": "entity", "title": "element"}).unique())
+    n = sets.size
+    nearly_all = sample_histogram_from_sets(sets, n - 1, seed=1, threshold=0.5)
+    assert nearly_all.design == "against_all"
+    # Pairs at exactly J = 0.5 sit on the threshold and must count as at-or-above.
+    assert nearly_all.pairs_at_or_above(0.5) * nearly_all.scale == pytest.approx(len(truth), rel=0.01)
+    half = sample_histogram_from_sets(sets, n // 2, seed=2, threshold=0.5)
+    assert half.pairs_at_or_above(0.5) * half.scale == pytest.approx(len(truth), rel=0.12)
