@@ -80,38 +80,40 @@ def _all_pairs_estimate(sig):
     return out
 
 
-@numba.njit(cache=True)
-def _against_all_histogram(offsets, elements, starts, members, sample, nbins, threshold):
+@numba.njit(parallel=True, cache=True)
+def _against_all_histogram(offsets, elements, starts, members, sample, nbins, threshold, chunks):
     n = offsets.shape[0] - 1
-    inter = np.zeros(n, dtype=np.int32)
-    touched = np.empty(n, dtype=np.int64)
-    counts = np.zeros(2 * nbins, dtype=np.int64)
-    sums = np.zeros(2 * nbins, dtype=np.float64)
-    identical = 0
-    for a in sample:
-        nt = 0
-        for j in range(offsets[a], offsets[a + 1]):
-            e = elements[j]
-            for t in range(starts[e], starts[e + 1]):
-                b = members[t]
-                if b == a:
-                    continue
-                if inter[b] == 0:
-                    touched[nt] = b
-                    nt += 1
-                inter[b] += 1
-        size_a = offsets[a + 1] - offsets[a]
-        for q in range(nt):
-            b = touched[q]
-            jac = inter[b] / (size_a + offsets[b + 1] - offsets[b] - inter[b])
-            inter[b] = 0
-            if jac >= 1.0:
-                identical += 1
-            else:
-                k = 2 * min(int(jac * nbins), nbins - 1) + (1 if jac >= threshold else 0)
-                counts[k] += 1
-                sums[k] += jac
-    return counts, sums, identical
+    counts = np.zeros((chunks, 2 * nbins), dtype=np.int64)
+    sums = np.zeros((chunks, 2 * nbins), dtype=np.float64)
+    identical = np.zeros(chunks, dtype=np.int64)
+    for c in numba.prange(chunks):
+        inter = np.zeros(n, dtype=np.int32)
+        touched = np.empty(n, dtype=np.int64)
+        for s in range(c, len(sample), chunks):
+            a = sample[s]
+            nt = 0
+            for j in range(offsets[a], offsets[a + 1]):
+                e = elements[j]
+                for t in range(starts[e], starts[e + 1]):
+                    b = members[t]
+                    if b == a:
+                        continue
+                    if inter[b] == 0:
+                        touched[nt] = b
+                        nt += 1
+                    inter[b] += 1
+            size_a = offsets[a + 1] - offsets[a]
+            for q in range(nt):
+                b = touched[q]
+                jac = inter[b] / (size_a + offsets[b + 1] - offsets[b] - inter[b])
+                inter[b] = 0
+                if jac >= 1.0:
+                    identical[c] += 1
+                else:
+                    k = 2 * min(int(jac * nbins), nbins - 1) + (1 if jac >= threshold else 0)
+                    counts[c, k] += 1
+                    sums[c, k] += jac
+    return counts.sum(axis=0), sums.sum(axis=0), identical.sum()
 
 
 def against_all_work(sets: Membership, starts: np.ndarray, sample: np.ndarray) -> float:
@@ -199,7 +201,7 @@ def sample_histogram_from_sets(
     if members.size > len(picked) and against_all_work(members, starts, picked) <= MAX_AGAINST_ALL_WORK:
         counts, sums, identical = _against_all_histogram(
             members.offsets, members.elements, starts, posted, picked, HISTOGRAM_BINS,
-            2.0 if threshold is None else threshold,
+            2.0 if threshold is None else threshold, min(len(picked), 2 * numba.get_num_threads()),
         )
         # factor rescales from the input's own entity count to the requested total.
         return _make(counts, sums, len(picked), n_total, identical, "against_all", threshold,
