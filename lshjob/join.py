@@ -1,12 +1,13 @@
 """Join stage (DuckDB): bucket rows -> candidate pairs of representatives.
 
-The SQL lives in ``sql/candidates.sql`` and ``sql/bucket_skew.sql``. DuckDB runs with a
+The SQL lives in ``sql/sized_bucket_rows.sql`` (reads the bucket files once, with each
+bucket's size), ``sql/bucket_skew.sql`` and ``sql/candidates.sql``. DuckDB runs with a
 memory limit and a spill directory, so a join larger than memory spills to disk instead
 of failing.
 
 Output contract of :func:`candidate_pairs`: a Parquet file with ``left_rep`` < ``right_rep``
 (Int64 entity ids of representatives), ``bands_shared`` Int32 >= 1, one row per unordered
-pair, sorted by (left_rep, right_rep); and a skew report (dict).
+pair, in no particular order; and a skew report (dict).
 """
 
 from __future__ import annotations
@@ -41,9 +42,10 @@ def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
 def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings) -> dict:
     """Write candidate pairs to ``out`` (Parquet); return counts and the skew report."""
     files = [str(p) for p in bucket_files]
-    params = {"bucket_files": files, "max_bucket": settings.max_bucket}
+    params = {"max_bucket": settings.max_bucket}
     con = connect(settings)
     try:
+        con.execute(load_sql("sized_bucket_rows"), {"bucket_files": files})
         skew_row = con.execute(load_sql("bucket_skew"), params).fetchone()
         columns = [d[0] for d in con.description]
         skew = {name: int(value) for name, value in zip(columns, skew_row)}

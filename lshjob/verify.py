@@ -5,8 +5,8 @@ both cores); the signature estimate (fraction of equal positions) is computed be
 
 Output contract of :func:`verify_pairs`: DataFrame ``left_rep`` < ``right_rep`` (Int64),
 ``jaccard`` Float64 (exact: intersection / union of integer counts), ``estimate`` Float64,
-``bands_shared`` Int32; only pairs with ``jaccard >= threshold``; sorted by
-(left_rep, right_rep).
+``bands_shared`` Int32; only pairs with ``jaccard >= threshold``; in the
+order of the candidates.
 """
 
 from __future__ import annotations

@@ -1,10 +1,10 @@
 -- sql/bucket_skew.sql: what the bucket-size cap left out, and the bucket-size profile.
--- Input : read_parquet($bucket_files) (band, bucket, rep); $max_bucket.
+-- Input : sized_bucket_rows (sql/sized_bucket_rows.sql); $max_bucket.
 -- Output: one row: buckets, buckets with a pair, oversize buckets, the rows in them,
---         the pairs they would have produced, the largest bucket.
+--         the pairs they would have produced, the pairs of usable buckets, the largest bucket.
 WITH bucket_sizes AS (
-    SELECT band, bucket, count(*) AS size
-    FROM read_parquet($bucket_files)
+    SELECT band, bucket, any_value(size) AS size
+    FROM sized_bucket_rows
     GROUP BY band, bucket
 )
 SELECT
