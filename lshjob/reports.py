@@ -87,7 +87,8 @@ def run_report(m: dict) -> str:
     for stage, secs in m["seconds"].items():
         if stage == "total":
             continue
-        lines.append(f"{stage:<10}{secs:>8.2f}   {_mib(m['peak_memory_bytes'].get(stage, 0)):>11}")
+        peak = m["peak_memory_bytes"].get(stage)
+        lines.append(f"{stage:<10}{secs:>8.2f}   {_mib(peak) if peak else '':>11}")
     lines.append(f"{'total':<10}{m['seconds']['total']:>8.2f}")
     return "\n".join(lines)
 
