@@ -18,7 +18,7 @@ from .ingest import EventSpec, load_sets
 from .membership import Membership
 from .planner import candidate_probability
 from .publish import NEIGHBOURS, read_manifest
-from .similarity import postings
+from .similarity import overlap_counts, postings
 from .verify import exact_jaccard
 
 MAX_BRUTE_FORCE_WORK = 5e9  # posting visits; beyond this the audit compares within the sample
@@ -33,17 +33,7 @@ def _neighbours_above(offsets, elements, starts, members, sample, allowed, thres
     out_b = []
     out_j = []
     for a in sample:
-        nt = 0
-        for j in range(offsets[a], offsets[a + 1]):
-            e = elements[j]
-            for t in range(starts[e], starts[e + 1]):
-                b = members[t]
-                if b == a or not allowed[b]:
-                    continue
-                if inter[b] == 0:
-                    touched[nt] = b
-                    nt += 1
-                inter[b] += 1
+        nt = overlap_counts(offsets, elements, starts, members, a, allowed, inter, touched)
         size_a = offsets[a + 1] - offsets[a]
         for q in range(nt):
             b = touched[q]

@@ -80,9 +80,28 @@ def _all_pairs_estimate(sig):
     return out
 
 
+@numba.njit(inline="always")
+def overlap_counts(offsets, elements, starts, members, a, allowed, inter, touched):
+    """For entity a, add |A n B| into inter[b] for every allowed b != a sharing an element;
+    list those b in touched[:returned count]. The caller resets inter for them."""
+    nt = 0
+    for j in range(offsets[a], offsets[a + 1]):
+        e = elements[j]
+        for t in range(starts[e], starts[e + 1]):
+            b = members[t]
+            if b == a or not allowed[b]:
+                continue
+            if inter[b] == 0:
+                touched[nt] = b
+                nt += 1
+            inter[b] += 1
+    return nt
+
+
 @numba.njit(parallel=True, cache=True)
 def _against_all_histogram(offsets, elements, starts, members, sample, nbins, threshold, chunks):
     n = offsets.shape[0] - 1
+    allowed = np.ones(n, dtype=np.bool_)
     counts = np.zeros((chunks, 2 * nbins), dtype=np.int64)
     sums = np.zeros((chunks, 2 * nbins), dtype=np.float64)
     identical = np.zeros(chunks, dtype=np.int64)
@@ -91,17 +110,7 @@ def _against_all_histogram(offsets, elements, starts, members, sample, nbins, th
         touched = np.empty(n, dtype=np.int64)
         for s in range(c, len(sample), chunks):
             a = sample[s]
-            nt = 0
-            for j in range(offsets[a], offsets[a + 1]):
-                e = elements[j]
-                for t in range(starts[e], starts[e + 1]):
-                    b = members[t]
-                    if b == a:
-                        continue
-                    if inter[b] == 0:
-                        touched[nt] = b
-                        nt += 1
-                    inter[b] += 1
+            nt = overlap_counts(offsets, elements, starts, members, a, allowed, inter, touched)
             size_a = offsets[a + 1] - offsets[a]
             for q in range(nt):
                 b = touched[q]
