@@ -239,3 +239,11 @@ def test_sql_ships_with_the_package():
         package = Path(lshjob.__file__).resolve().parent
         assert "site-packages" in str(package)
         assert folder == package / "sql"
+
+
+def test_explicit_bands_and_rows_are_checked(tmp_path, small_events):
+    with pytest.raises(ParameterError, match="20 x 7 = 140 > 128"):
+        run_job(small_events, SPEC, RunOptions(threshold=0.5, perms=128, bands=20, rows=7), tmp_path / "idx")
+    with pytest.raises(ParameterError, match="--bands and --rows go together"):
+        run_job(small_events, SPEC, RunOptions(threshold=0.5, bands=20), tmp_path / "idx")
+    assert not (tmp_path / "idx").exists()
