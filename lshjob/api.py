@@ -16,6 +16,7 @@ from .progress import QUIET, StageProgress
 from .signatures import (
     SignatureParams,
     merge_signatures,
+    params_from_metadata,
     read_signatures,
     sign_sets,
     signature_metadata,
@@ -163,7 +164,9 @@ def plan_banding(
         table, meta = read_signatures(sample)
         if perms is not None and perms > meta["k"]:
             raise ParameterError(f"--perms {perms} exceeds the signature length k={meta['k']} of {sample}")
-        hist = similarity.sample_histogram_from_signatures(table, sample_size, seed, entities, threshold)
+        hist = similarity.sample_histogram_from_signatures(
+            table, params_from_metadata(meta), sample_size, seed, entities, threshold
+        )
         basis = "signature estimates"
         choices = (perms or meta["k"],)
     else:

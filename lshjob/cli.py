@@ -84,6 +84,7 @@ def sign(
     time: Annotated[Optional[str], typer.Option(help="Column with each event's date/time.")] = None,
     period: Annotated[Optional[str], typer.Option(help="Sign each day, week or month separately.")] = None,
     perms: Annotated[int, typer.Option(help="Signature length k.")] = 128,
+    scheme: Annotated[str, typer.Option(help="kperm (k hashes per element) or oph (one hash, densified).")] = "kperm",
     seed: Annotated[int, typer.Option(help="Seed of the hash family.")] = 1,
     on_null: Annotated[str, typer.Option(help="Null keys: 'error' or 'drop' the row.")] = "error",
     quiet: Quiet = False,
@@ -98,7 +99,7 @@ def sign(
         entity=entity, element=element, count=count, min_count=min_count,
         segment=segment, time=time, period=period, on_null=on_null,
     )
-    params = SignatureParams(perms=perms, seed=seed)
+    params = SignatureParams(scheme=scheme, perms=perms, seed=seed)
     with _progress(quiet, as_json) as progress:
         summary = api.sign_file(events, out, spec, params, progress)
     ing = summary["ingest"]
@@ -173,7 +174,7 @@ def plan(
 
 RUN_DEFAULTS = {
     "count": None, "min_count": 1, "on_null": "error", "top_k": 50, "perms": None, "bands": None,
-    "rows": None, "recall": 0.95, "sample_size": 2000, "seed": 1, "max_bucket": 2000,
+    "rows": None, "recall": 0.95, "sample_size": 2000, "seed": 1, "scheme": "kperm", "max_bucket": 2000,
     "max_candidates": 2e9, "memory": None,
 }
 
@@ -196,6 +197,7 @@ def run(
     on_null: Annotated[Optional[str], typer.Option(help="Null keys: error or drop.  [default: error]")] = None,
     sample_size: Annotated[Optional[int], typer.Option(help="Entities the planner samples.  [default: 2000]")] = None,
     seed: Annotated[Optional[int], typer.Option(help="Seed of the hash family.  [default: 1]")] = None,
+    scheme: Annotated[Optional[str], typer.Option(help="Signature scheme: kperm or oph.  [default: kperm]")] = None,
     max_bucket: Annotated[Optional[int], typer.Option(help="Skip buckets holding more entities.  [default: 2000]")] = None,
     max_candidates: Annotated[Optional[float], typer.Option(help="Refuse plans predicting more candidate pairs.  [default: 2e9]")] = None,
     memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB.  [default: half the machine]")] = None,
@@ -212,7 +214,7 @@ def run(
     """
     flags = dict(events=events, entity=entity, element=element, threshold=threshold, out=out,
                  top_k=top_k, perms=perms, bands=bands, rows=rows, recall=recall, count=count,
-                 min_count=min_count, on_null=on_null, sample_size=sample_size, seed=seed,
+                 min_count=min_count, on_null=on_null, sample_size=sample_size, seed=seed, scheme=scheme,
                  max_bucket=max_bucket, max_candidates=max_candidates, memory=memory)
     settings = merge_settings(RUN_DEFAULTS, load_run_config(config) if config else {}, flags)
     missing = [name for name in ("events", "entity", "element", "threshold", "out") if settings.get(name) is None]

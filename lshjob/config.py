@@ -21,7 +21,7 @@ from .errors import ParameterError
 RUN_KEYS = {
     "events": str, "entity": str, "element": str, "count": str, "min_count": (int, float),
     "on_null": str, "threshold": (int, float), "out": str, "top_k": int, "perms": int, "bands": int,
-    "rows": int, "recall": float, "sample_size": int, "seed": int, "max_bucket": int,
+    "rows": int, "recall": float, "sample_size": int, "seed": int, "scheme": str, "max_bucket": int,
     "max_candidates": (int, float), "memory": str,
 }
 

@@ -29,7 +29,7 @@ from .membership import Membership
 from .progress import QUIET, StageProgress
 from .publish import neighbour_table, publish_index
 from .resources import default_memory, parse_size, peak_bytes, reset_peak
-from .signatures import SignatureParams, sign_sets, signature_array
+from .signatures import SignatureParams, comparable, sign_sets, signature_array
 from .verify import verify_pairs
 
 MIN_PLANNING_THRESHOLD = 1e-6
@@ -45,6 +45,7 @@ class RunOptions:
     recall: float = 0.95
     sample_size: int = 2000
     seed: int = 1
+    scheme: str = "kperm"
     max_bucket: int = DEFAULT_MAX_BUCKET
     max_candidates: float = 2e9
     memory: str | None = None
@@ -66,6 +67,7 @@ class RunOptions:
             raise ParameterError(f"--sample-size must be at least 2; got {self.sample_size}")
         if self.memory is not None:
             parse_size(self.memory)
+        SignatureParams(scheme=self.scheme)
 
 
 class _Stages:
@@ -138,11 +140,11 @@ def run_job(
             counts.update(bucket_rows=0, candidate_pairs=0, verified_pairs=0)
             skew = None
         else:
-            params = SignatureParams(perms=plan["perms"], seed=options.seed)
+            params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
             with stages("sign"):
                 rep_keys = sets.keys.gather(reps)
                 rep_rows = sets_rows.filter(pl.col("entity").is_in(rep_keys.implode()))
-                matrix = signature_array(sign_sets(rep_rows, ["entity"], params))
+                matrix = comparable(signature_array(sign_sets(rep_rows, ["entity"], params)), params)
             row_of = np.full(sets.size, -1, dtype=np.int64)
             row_of[reps] = np.arange(len(reps))
 

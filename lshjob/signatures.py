@@ -1,5 +1,8 @@
 """Sign stage: membership rows -> MinHash signatures; merging; the signature file.
 
+Two schemes, recorded in every signature file and never mixed. Scheme ``oph`` (one
+permutation hashing with densification at comparison time) is in :mod:`lshjob.oph`.
+
 Scheme ``kperm`` (k-permutation MinHash; Broder, "On the resemblance and containment
 of documents", 1997). Position i of a set's signature is
 
@@ -30,6 +33,7 @@ import numba
 import numpy as np
 import polars as pl
 
+from . import oph
 from .errors import IncompatibleSignatures, InputError, ParameterError
 from .hashing import element_key_strings, fmix64, splitmix64_sequence, xxh64_strings
 
@@ -37,7 +41,7 @@ FORMAT_NAME = "lshjob-signatures"
 FORMAT_VERSION = 1
 METADATA_KEY = "lshjob"
 HASH_FAMILY = "xxh64-seed0+fmix64-xor-splitmix64-salt"
-SCHEMES = ("kperm",)
+SCHEMES = ("kperm", "oph")
 MAX_U64 = np.iinfo(np.uint64).max
 
 
@@ -84,7 +88,21 @@ def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params: SignatureParam
     """
     h0 = np.ascontiguousarray(h0, dtype=np.uint64)
     offsets = np.ascontiguousarray(offsets, dtype=np.int64)
+    if params.scheme == "oph":
+        return oph.sign_oph(h0, offsets, params.perms, oph_salts(params))
     return _sign_kperm(h0, offsets, params.salts())
+
+
+def oph_salts(params: SignatureParams) -> np.ndarray:
+    """Salts of the oph scheme: bin, value and densification probes (SplitMix64 of the seed)."""
+    return splitmix64_sequence(params.seed, 3)
+
+
+def comparable(matrix: np.ndarray, params: SignatureParams) -> np.ndarray:
+    """Signatures ready to compare or band: densified for ``oph``, unchanged for ``kperm``."""
+    if params.scheme == "oph":
+        return oph.densify(np.ascontiguousarray(matrix), oph_salts(params)[2])
+    return matrix
 
 
 def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:
@@ -137,7 +155,9 @@ def signature_array(table: pl.DataFrame) -> np.ndarray:
 
 
 def estimate_jaccard(a: np.ndarray, b: np.ndarray) -> np.ndarray | float:
-    """Fraction of equal positions: an unbiased estimate of Jaccard (Broder 1997)."""
+    """Fraction of equal positions: an unbiased estimate of Jaccard (Broder 1997).
+
+    For the ``oph`` scheme, pass signatures through :func:`comparable` first."""
     return np.mean(np.asarray(a) == np.asarray(b), axis=-1)
 
 
@@ -182,9 +202,10 @@ def merge_signatures(
     combined = pl.concat(frames, how="vertical_relaxed").sort(keep)
     starts = np.r_[0, np.cumsum(run_lengths(combined, keep))[:-1]]
     matrix = np.minimum.reduceat(signature_array(combined), starts, axis=0)
+    sizes = oph.set_size_estimate(matrix) if first_meta["scheme"] == "oph" else estimate_set_size(matrix)
     merged = combined.select(keep).gather(starts).with_columns(
         signature_column(matrix),
-        pl.Series("set_size", np.round(estimate_set_size(matrix)), dtype=pl.UInt32),
+        pl.Series("set_size", np.round(sizes), dtype=pl.UInt32),
     )
     meta = {k: v for k, v in first_meta.items() if k != "path"}
     meta.update(keys=list(keep), set_size="estimated")

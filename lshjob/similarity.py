@@ -15,7 +15,7 @@ import polars as pl
 from .errors import InputError
 from .membership import Membership
 from .planner import PairHistogram
-from .signatures import signature_array
+from .signatures import SignatureParams, comparable, signature_array
 
 HISTOGRAM_BINS = 1000
 
@@ -146,11 +146,11 @@ def postings(sets: Membership) -> tuple[np.ndarray, np.ndarray]:
     return _postings(sets.offsets, sets.elements, sets.n_elements)
 
 
-def estimated_pair_similarities(signatures: pl.DataFrame) -> np.ndarray:
+def estimated_pair_similarities(signatures: pl.DataFrame, params: SignatureParams) -> np.ndarray:
     """All pairwise signature estimates among the rows of a signature table."""
     if signatures.height < 2:
         raise InputError(f"the sample needs at least 2 entities; got {signatures.height}")
-    return _all_pairs_estimate(signature_array(signatures))
+    return _all_pairs_estimate(comparable(signature_array(signatures), params))
 
 
 def histogram(
@@ -223,6 +223,7 @@ def sample_histogram_from_sets(
 
 def sample_histogram_from_signatures(
     signatures: pl.DataFrame,
+    params: SignatureParams,
     sample: int = 2000,
     seed: int = 0,
     total_entities: int | None = None,
@@ -232,4 +233,4 @@ def sample_histogram_from_signatures(
     picked = sample_keys(signatures["entity"], sample, seed)
     sub = signatures.filter(pl.col("entity").is_in(picked.implode())).sort("entity")
     n_total = total_entities or signatures["entity"].n_unique()
-    return histogram(estimated_pair_similarities(sub), sub.height, n_total, threshold)
+    return histogram(estimated_pair_similarities(sub, params), sub.height, n_total, threshold)

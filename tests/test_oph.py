@@ -1,0 +1,124 @@
+"""One-permutation hashing with densification: accuracy, composability, never mixed."""
+
+import numpy as np
+import polars as pl
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from test_signatures import bias_z, long_tailed_pairs
+
+from lshjob import IncompatibleSignatures, SignatureParams
+from lshjob.job import RunOptions, run_job
+from lshjob.oph import EMPTY, densify
+from lshjob.signatures import (
+    comparable,
+    estimate_jaccard,
+    merge_signatures,
+    sign_element_lists,
+    sign_sets,
+    signature_metadata,
+)
+
+K = 128
+OPH = SignatureParams(scheme="oph", perms=K, seed=1)
+
+
+def oph_estimates(pairs, params=OPH):
+    sigs = comparable(sign_element_lists([s for p in pairs for s in p], params), params)
+    return estimate_jaccard(sigs[0::2], sigs[1::2])
+
+
+def designed_pairs(shared: int, own: int, n: int):
+    """Pairs sharing `shared` elements, each with `own` of its own: J = shared/(shared+2*own)."""
+    pairs = []
+    for i in range(n):
+        base = [f"d{i}-s{j}" for j in range(shared)]
+        pairs.append((base + [f"d{i}-a{j}" for j in range(own)], base + [f"d{i}-b{j}" for j in range(own)]))
+    return pairs, np.full(n, shared / (shared + 2 * own))
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_oph_unbiased_on_long_tailed_sets(seed):
+    # Oracle: exact Jaccard by set intersection. Optimal densification is unbiased
+    # (Shrivastava, ICML 2017, Theorem 3); its variance is close to binomial for sets of
+    # at least k elements, so the tolerance is the one used for k-permutation, widened by 20%.
+    pairs, truth = long_tailed_pairs(seed)
+    est = oph_estimates(pairs, SignatureParams(scheme="oph", perms=K, seed=seed))
+    assert abs(bias_z(est, truth)) < 4.0
+    sigma = np.sqrt(truth * (1 - truth) / K)
+    assert np.abs(est - truth).mean() < 1.2 * 1.15 * (sigma * np.sqrt(2 / np.pi)).mean()
+
+
+@pytest.mark.parametrize("shared, own", [(2, 1), (12, 6), (40, 10)])
+def test_oph_unbiased_for_sets_smaller_than_k(shared, own):
+    # Oracle: the designed Jaccard. Sets of 3 to 60 elements leave most of the 128 bins
+    # empty, so densification does most of the work. Unbiasedness: the mean error over 1500
+    # independent pairs is within 4 empirical standard errors of 0.
+    pairs, truth = designed_pairs(shared, own, 1500)
+    err = oph_estimates(pairs) - truth
+    assert abs(err.mean()) < 4 * err.std(ddof=1) / np.sqrt(len(err))
+    # Densified bins repeat values, so the error exceeds the binomial one: allow 1.5x.
+    assert np.abs(err).mean() < 1.5 * np.sqrt(truth[0] * (1 - truth[0]) / K) * np.sqrt(2 / np.pi)
+
+
+def test_bias_check_catches_a_naive_densification():
+    # The check above must be able to fail: filling empty bins with a constant makes two
+    # small sets agree wherever both are empty, biasing estimates upward.
+    pairs, truth = designed_pairs(2, 1, 500)
+    raw = sign_element_lists([s for p in pairs for s in p], OPH)
+    naive = np.where(raw == EMPTY, np.uint64(0), raw)
+    err = estimate_jaccard(naive[0::2], naive[1::2]) - truth
+    assert err.mean() > 4 * err.std(ddof=1) / np.sqrt(len(err))
+
+
+element_sets = st.lists(st.integers(0, 10**6), min_size=1, max_size=60)
+
+
+@settings(max_examples=60, deadline=None)
+@given(element_sets, element_sets)
+def test_stored_oph_signatures_merge_as_the_union(a, b):
+    # Algebra: per bin, min over A u B = min(min over A, min over B); an empty bin is
+    # 2**64 - 1, the identity of min. Densified signatures are compared, never stored.
+    p = SignatureParams(scheme="oph", perms=32, seed=4)
+    sa, sb, su = sign_element_lists([a, b, a + b], p)
+    assert np.array_equal(np.minimum(sa, sb), su)
+    assert np.array_equal(comparable(np.minimum(sa, sb)[None, :], p), comparable(su[None, :], p))
+
+
+def test_densifying_before_merging_would_break_the_union():
+    # Why densification waits until comparison: for two disjoint small sets, merging
+    # densified signatures differs from densifying the merged one.
+    p = SignatureParams(scheme="oph", perms=64, seed=4)
+    sa, sb, su = sign_element_lists([["x1"], ["y1"], ["x1", "y1"]], p)
+    salt = np.uint64(12345)
+    early = np.minimum(densify(sa[None, :], salt), densify(sb[None, :], salt))
+    assert not np.array_equal(early, densify(su[None, :], salt))
+
+
+def test_schemes_are_never_mixed():
+    sets = pl.DataFrame({"entity": ["a", "b"], "element": ["x", "y"]})
+    k = SignatureParams(scheme="kperm", perms=16)
+    o = SignatureParams(scheme="oph", perms=16)
+    tables = [(sign_sets(sets, ["entity"], p), signature_metadata(p, ["entity"])) for p in (k, o)]
+    with pytest.raises(IncompatibleSignatures, match="different scheme"):
+        merge_signatures(tables, ["entity"])
+
+
+def test_run_with_oph_finds_planted_pairs(tmp_path):
+    # Oracle: scipy brute force (shared helper); prediction from the S-curve.
+    from helpers import planted_pairs
+    from test_run import SPEC, brute_force_pairs, published_pairs
+
+    from lshjob.planner import candidate_probability
+
+    events = planted_pairs(1000, 0.3, seed=6)
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    m = run_job(src, SPEC, RunOptions(threshold=0.5, scheme="oph", perms=128, bands=20, rows=5, top_k=500),
+                tmp_path / "idx")
+    truth = brute_force_pairs(events, 0.5)
+    got = published_pairs(tmp_path / "idx")
+    measured = sum(p in got for p in truth) / len(truth)
+    predicted = float(np.mean(candidate_probability(np.array(list(truth.values())), 20, 5)))
+    assert abs(measured - predicted) < 0.04, (measured, predicted)
+    assert m["options"]["scheme"] == "oph"
