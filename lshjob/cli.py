@@ -285,3 +285,7 @@ def demo(
 
 def run() -> None:  # console-script entry point
     sys.exit(app())
+
+
+if __name__ == "__main__":
+    run()

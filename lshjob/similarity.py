@@ -125,10 +125,10 @@ def _against_all_histogram(offsets, elements, starts, members, sample, nbins, th
     return counts.sum(axis=0), sums.sum(axis=0), identical.sum()
 
 
-def against_all_work(sets: Membership, starts: np.ndarray, sample: np.ndarray) -> float:
-    """Posting visits needed to pair ``sample`` with every entity."""
-    lengths = np.diff(starts)
-    return float(sum(lengths[sets.elements[sets.offsets[a] : sets.offsets[a + 1]]].sum() for a in sample))
+def visit_costs(sets: Membership, starts: np.ndarray) -> np.ndarray:
+    """Per entity, the posting visits needed to pair it with every entity."""
+    lengths = np.diff(starts)[sets.elements]
+    return np.add.reduceat(lengths, sets.offsets[:-1]) if len(lengths) else np.zeros(sets.size)
 
 
 def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:
@@ -183,7 +183,8 @@ def _make(counts, sums, sample_entities, total_entities, identical, design, thre
     )
 
 
-MAX_AGAINST_ALL_WORK = 2e9
+AGAINST_ALL_BUDGET = 1e9  # posting visits, a few seconds on two cores
+MIN_AGAINST_ALL = 200
 
 
 def sample_histogram_from_sets(
@@ -193,21 +194,25 @@ def sample_histogram_from_sets(
     total_entities: int | None = None,
     threshold: float | None = None,
 ) -> PairHistogram:
-    """Exact pair-similarity histogram of ``sample`` entities drawn from membership rows.
+    """Exact pair-similarity histogram of up to ``sample`` entities drawn from membership rows.
 
-    Each sampled entity is paired with every entity of the input (exact Jaccard through an
+    Sampled entities are paired with every entity of the input (exact Jaccard through an
     inverted index), which sees m x N pairs instead of the m^2 within the sample: similar
-    pairs are rare, and a within-sample histogram often holds too few to plan on. If that
-    would visit more than 2e9 postings, the sample is paired within itself instead.
+    pairs are rare, and a within-sample histogram often holds too few to plan on. The sample
+    is a prefix of a random order of entities, cut where its posting visits would pass
+    1e9 (so it stays a uniform sample); if fewer than 200 entities fit, the sample of
+    ``sample`` entities is paired within itself instead.
     """
     members = sets if isinstance(sets, Membership) else Membership.from_sets(sets)
     if members.size < 2:
         raise InputError(f"the sample needs at least 2 entities; got {members.size}")
     n_total = total_entities or members.size
     rng = np.random.default_rng(seed)
-    picked = np.sort(rng.choice(members.size, size=min(sample, members.size), replace=False))
+    order = rng.permutation(members.size)[: min(sample, members.size)]
     starts, posted = postings(members)
-    if members.size > len(picked) and against_all_work(members, starts, picked) <= MAX_AGAINST_ALL_WORK:
+    affordable = int(np.searchsorted(np.cumsum(visit_costs(members, starts)[order]), AGAINST_ALL_BUDGET, "right"))
+    if members.size > len(order) and affordable >= min(MIN_AGAINST_ALL, len(order)):
+        picked = np.sort(order[:affordable])
         counts, sums, identical = _against_all_histogram(
             members.offsets, members.elements, starts, posted, picked, HISTOGRAM_BINS,
             2.0 if threshold is None else threshold, min(len(picked), 2 * numba.get_num_threads()),
@@ -215,6 +220,7 @@ def sample_histogram_from_sets(
         # factor rescales from the input's own entity count to the requested total.
         return _make(counts, sums, len(picked), n_total, identical, "against_all", threshold,
                      factor=n_total / members.size)
+    picked = np.sort(order)
     sub = members.subset(picked)
     starts, posted = postings(sub)
     sims = _all_pairs_jaccard(sub.offsets, sub.elements, starts, posted)

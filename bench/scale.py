@@ -1,0 +1,93 @@
+"""Scale: the whole run at a given size, per-stage time and peak memory, against a floor pass.
+
+    python bench/scale.py --entities 1000000 [--scheme kperm|oph] [--memory 8GB]
+
+Generates long-tailed data once into bench/cache/ (log-normal set sizes, mean ~40, power-law
+elements, 10% perturbed copies), times a floor pass (polars reads the events, one 64-bit
+hash per event, minimum per entity), runs ``lshjob run`` at threshold 0.5 in a fresh
+process, and audits recall on a sample with ``lshjob audit``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import polars as pl
+
+sys.path.insert(0, str(Path(__file__).parent))
+from common import append_results, events_with_similar_pairs, machine  # noqa: E402
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--entities", type=int, default=100_000)
+    ap.add_argument("--scheme", default="kperm")
+    ap.add_argument("--memory", default=None)
+    ap.add_argument("--threshold", type=float, default=0.5)
+    ap.add_argument("--audit", type=int, default=300)
+    ap.add_argument("--no-write", action="store_true")
+    args = ap.parse_args()
+    start = time.perf_counter()
+    path = events_with_similar_pairs(args.entities)
+    generated = time.perf_counter() - start
+    n_events = pl.scan_parquet(path).select(pl.len()).collect().item()
+
+    start = time.perf_counter()
+    pl.scan_parquet(path).group_by("entity").agg(pl.col("element").hash(1).min()).collect()
+    floor = time.perf_counter() - start
+
+    with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
+        cmd = [sys.executable, "-m", "lshjob.cli", "run", str(path), "--entity", "entity", "--element", "element",
+               "--threshold", str(args.threshold), "--scheme", args.scheme, "--out", f"{tmp}/idx", "--json",
+               "--quiet"]
+        if args.memory:
+            cmd += ["--memory", args.memory]
+        start = time.perf_counter()
+        done = subprocess.run(cmd, check=True, capture_output=True, text=True)
+        wall = time.perf_counter() - start
+        m = json.loads(done.stdout)
+        audit = json.loads(subprocess.run(
+            [sys.executable, "-m", "lshjob.cli", "audit", f"{tmp}/idx", "--sample", str(args.audit), "--json"],
+            check=True, capture_output=True, text=True).stdout)
+
+    plan = m["plan"]
+    lines = [
+        f"Machine: {machine()}",
+        f"Data: {args.entities:,} entities, {n_events:,} events (generated in {generated:.0f} s, cached)",
+        f"Command: `python bench/scale.py --entities {args.entities} --scheme {args.scheme}"
+        + (f" --memory {args.memory}" if args.memory else "") + "`",
+        f"Plan: {plan['mode']}, k={plan['perms']}, b={plan['bands']}, r={plan['rows']}, predicted recall "
+        f"{plan['predicted']['expected_recall']:.3f}; memory budget {m['memory_budget_bytes'] / 2**30:.1f} GiB",
+        "",
+        "| stage | seconds | peak resident memory |",
+        "| --- | ---: | ---: |",
+    ]
+    order = ["ingest", "collapse", "plan", "sign", "band", "join", "verify", "publish", "write"]
+    for stage in [s for s in order if s in m["seconds"]]:
+        secs = m["seconds"][stage]
+        peak = m["peak_memory_bytes"].get(stage)
+        lines.append(f"| {stage} | {secs:.2f} | {'' if peak is None else f'{peak / 2**30:.2f} GiB'} |")
+    c = m["counts"]
+    lines += [
+        f"| total (process wall clock) | {wall:.2f} | {max(m['peak_memory_bytes'].values()) / 2**30:.2f} GiB |",
+        "",
+        f"Counts: bucket rows {c['bucket_rows']:,}, candidates {c['candidate_pairs']:,}, verified "
+        f"{c['verified_pairs']:,}, published {c['published_rows']:,}.",
+        f"Floor pass {floor:.2f} s; run / floor = {wall / floor:.1f}x.",
+        f"Audit ({audit['sampled_entities']} entities against {audit['compared_against']}): recall "
+        f"{audit['recall']:.4f}, S-curve predicts {audit['predicted_recall']:.4f}, wrong pairs {audit['wrong_pairs']}.",
+    ]
+    report = "\n".join(lines)
+    print(report)
+    if not args.no_write:
+        append_results(f"Scale, {args.entities:,} entities, {args.scheme} ({time.strftime('%Y-%m-%d')})", report)
+
+
+if __name__ == "__main__":
+    main()
