@@ -28,7 +28,7 @@ from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
 from .membership import Membership
 from .progress import QUIET, StageProgress
 from .publish import neighbour_table, publish_index
-from .resources import default_memory, parse_size, peak_bytes, reset_peak
+from .resources import current_bytes, default_memory, parse_size, peak_bytes, reset_peak
 from .signatures import SignatureParams, comparable, sign_sets, signature_array
 from .verify import verify_pairs
 
@@ -156,16 +156,17 @@ def run_job(
             counts["bucket_rows"] = n_bucket_rows
 
             with stages("join"):
-                settings = JoinSettings(memory_limit=f"{max(1, memory // 2**20)}MiB",
+                # DuckDB gets what the budget leaves beside the sets and signatures held here.
+                duck = max(memory - current_bytes(), memory // 4, 128 * 2**20)
+                settings = JoinSettings(memory_limit=f"{duck // 2**20}MiB",
                                         temp_directory=str(work / "spill"), max_bucket=options.max_bucket)
                 joined = candidate_pairs(files, work / "candidates.parquet", settings)
             skew = joined["skew"]
             counts["candidate_pairs"] = joined["candidate_pairs"]
 
             with stages("verify"):
-                candidates = pl.read_parquet(work / "candidates.parquet")
-                verified = verify_pairs(candidates, sets, matrix, row_of, options.threshold)
-                del candidates
+                verified = _verify_in_chunks(work / "candidates.parquet", joined["candidate_pairs"], sets,
+                                             matrix, row_of, options.threshold, memory)
             counts["verified_pairs"] = verified.height
 
         with stages("publish"):
@@ -194,6 +195,21 @@ def run_job(
         return manifest
     finally:
         shutil.rmtree(work, ignore_errors=True)
+
+
+VERIFY_BYTES_PER_PAIR = 64  # candidate row in polars and numpy, plus the float results
+MIN_VERIFY_SLICE = 1_000_000
+
+
+def _verify_in_chunks(path, n_pairs, sets, matrix, row_of, threshold, memory) -> pl.DataFrame:
+    """Verify candidates a slice at a time so memory stays bounded whatever their number;
+    a slice is sized to a quarter of the budget."""
+    step = max(MIN_VERIFY_SLICE, memory // 4 // VERIFY_BYTES_PER_PAIR)
+    parts = []
+    for offset in range(0, max(n_pairs, 1), step):
+        chunk = pl.scan_parquet(path).slice(offset, step).collect()
+        parts.append(verify_pairs(chunk, sets, matrix, row_of, threshold))
+    return pl.concat(parts)
 
 
 def _choose_plan(sets: Membership, options: RunOptions) -> dict:

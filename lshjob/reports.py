@@ -83,6 +83,11 @@ def run_report(m: dict) -> str:
             f"skew: largest bucket {skew['largest_bucket']:,}; {skew['oversize_buckets']:,} bucket(s) over "
             f"--max-bucket {skew['max_bucket']:,} skipped ({skew['skipped_pairs']:,} potential pairs)"
         )
+        if skew["oversize_buckets"]:
+            lines.append(
+                "warning: pairs that meet only in skipped buckets are not found, so recall can fall below "
+                "the prediction; check with lshjob audit, and raise --max-bucket or use more rows per band"
+            )
     lines.append("stage      seconds   peak memory")
     for stage, secs in m["seconds"].items():
         if stage == "total":

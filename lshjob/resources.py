@@ -52,3 +52,15 @@ def peak_bytes() -> int:
     except OSError:
         pass
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+def current_bytes() -> int:
+    """Resident memory now (VmRSS), 0 where /proc is unavailable."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmRSS:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 0

@@ -247,3 +247,13 @@ def test_explicit_bands_and_rows_are_checked(tmp_path, small_events):
     with pytest.raises(ParameterError, match="--bands and --rows go together"):
         run_job(small_events, SPEC, RunOptions(threshold=0.5, bands=20), tmp_path / "idx")
     assert not (tmp_path / "idx").exists()
+
+
+def test_verifying_in_slices_gives_the_same_index(tmp_path, demo_events, monkeypatch):
+    src = write(demo_events[0], tmp_path)
+    run_job(src, SPEC, RunOptions(threshold=0.4), tmp_path / "whole")
+    monkeypatch.setattr("lshjob.job.MIN_VERIFY_SLICE", 50)
+    monkeypatch.setattr("lshjob.job.VERIFY_BYTES_PER_PAIR", 10**12)
+    m = run_job(src, SPEC, RunOptions(threshold=0.4), tmp_path / "sliced")
+    assert m["counts"]["candidate_pairs"] > 500  # many slices of 50
+    assert (tmp_path / "whole/neighbours.parquet").read_bytes() == (tmp_path / "sliced/neighbours.parquet").read_bytes()
