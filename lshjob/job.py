@@ -160,7 +160,7 @@ def run_job(
                 duck = max(memory - current_bytes(), memory // 4, 128 * 2**20)
                 settings = JoinSettings(memory_limit=f"{duck // 2**20}MiB",
                                         temp_directory=str(work / "spill"), max_bucket=options.max_bucket)
-                joined = candidate_pairs(files, work / "candidates.parquet", settings)
+                joined = candidate_pairs(files, work / "candidates.parquet", settings, plan["bands"])
             skew = joined["skew"]
             counts["candidate_pairs"] = joined["candidate_pairs"]
 

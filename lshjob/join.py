@@ -1,7 +1,8 @@
 """Join stage (DuckDB): bucket rows -> candidate pairs of representatives.
 
 The SQL lives in ``sql/sized_bucket_rows.sql`` (reads the bucket files once, with each
-bucket's size), ``sql/bucket_skew.sql`` and ``sql/candidates.sql``. DuckDB runs with a
+bucket's size), ``sql/split_oversize.sql`` (splits buckets over the cap by the next band's
+bucket), ``sql/bucket_skew.sql`` and ``sql/candidates.sql``. DuckDB runs with a
 memory limit and a spill directory, so a join larger than memory spills to disk instead
 of failing.
 
@@ -39,13 +40,14 @@ def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
     return duckdb.connect(config=config)
 
 
-def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings) -> dict:
+def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings, bands: int) -> dict:
     """Write candidate pairs to ``out`` (Parquet); return counts and the skew report."""
     files = [str(p) for p in bucket_files]
     params = {"max_bucket": settings.max_bucket}
     con = connect(settings)
     try:
         con.execute(load_sql("sized_bucket_rows"), {"bucket_files": files})
+        con.execute(load_sql("split_oversize"), {"max_bucket": settings.max_bucket, "bands": bands})
         skew_row = con.execute(load_sql("bucket_skew"), params).fetchone()
         columns = [d[0] for d in con.description]
         skew = {name: int(value) for name, value in zip(columns, skew_row)}

@@ -81,9 +81,10 @@ def run_report(m: dict) -> str:
     if skew:
         lines.append(
             f"skew: largest bucket {skew['largest_bucket']:,}; {skew['oversize_buckets']:,} bucket(s) over "
-            f"--max-bucket {skew['max_bucket']:,} skipped ({skew['skipped_pairs']:,} potential pairs)"
+            f"--max-bucket {skew['max_bucket']:,} split by the next band ({skew['split_pairs']:,} of "
+            f"{skew['oversize_pairs']:,} potential pairs kept, {skew['skipped_pairs']:,} left out)"
         )
-        if skew["oversize_buckets"]:
+        if skew["skipped_pairs"]:
             lines.append(
                 "warning: pairs that meet only in skipped buckets are not found, so recall can fall below "
                 "the prediction; check with lshjob audit, and raise --max-bucket or use more rows per band"

@@ -1,19 +1,24 @@
 -- sql/candidates.sql: bucket rows -> candidate pairs, one row per unordered pair.
--- Input : sized_bucket_rows (sql/sized_bucket_rows.sql); $max_bucket.
--- Output: left_rep < right_rep, bands_shared = number of bands whose bucket they share;
---         in no particular order (later stages sort what they publish).
--- Buckets holding more than $max_bucket representatives are left out (reported by
--- sql/bucket_skew.sql); buckets of one yield no pair.
+-- Input : sized_bucket_rows (sql/sized_bucket_rows.sql), split_rows (sql/split_oversize.sql);
+--         $max_bucket.
+-- Output: left_rep < right_rep, bands_shared = number of bands through which the pair met
+--         (a bucket within the cap, or a sub-bucket of an oversize one); in no particular
+--         order (later stages sort what they publish).
+-- Sub-buckets still over the cap are left out (reported by sql/bucket_skew.sql).
 WITH usable_rows AS (
-    SELECT band, bucket, rep
+    SELECT band, bucket, 0::UBIGINT AS sub, rep
     FROM sized_bucket_rows
+    WHERE size BETWEEN 2 AND $max_bucket
+    UNION ALL
+    SELECT band, bucket, sub, rep
+    FROM split_rows
     WHERE size BETWEEN 2 AND $max_bucket
 ),
 pairs_per_band AS (
     SELECT a.rep AS left_rep, b.rep AS right_rep
     FROM usable_rows AS a
     JOIN usable_rows AS b
-      ON a.band = b.band AND a.bucket = b.bucket AND a.rep < b.rep
+      ON a.band = b.band AND a.bucket = b.bucket AND a.sub = b.sub AND a.rep < b.rep
 )
 SELECT left_rep, right_rep, count(*)::INTEGER AS bands_shared
 FROM pairs_per_band
