@@ -53,6 +53,13 @@ def peak_rss_gb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20
 
 
+def finish(section: str, report: str, write: bool) -> None:
+    """Print a benchmark's report and, unless told not to, add it to RESULTS.md."""
+    print(report)
+    if write:
+        append_results(f"{section} ({time.strftime('%Y-%m-%d')})", report)
+
+
 def append_results(section: str, body: str) -> None:
     """Add a section to bench/RESULTS.md, newest first (older runs stay below)."""
     path = Path(__file__).parent / "RESULTS.md"

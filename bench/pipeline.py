@@ -25,7 +25,7 @@ import polars as pl
 import scipy.sparse as sp
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import append_results, events_with_similar_pairs, machine, peak_rss_gb  # noqa: E402
+from common import finish, events_with_similar_pairs, machine, peak_rss_gb  # noqa: E402
 
 from lshjob import EventSpec  # noqa: E402
 from lshjob.job import RunOptions, run_job  # noqa: E402
@@ -176,10 +176,7 @@ def main() -> None:
         + ", ".join(f"{k} {v:.2f}" for k, v in manifest["seconds"].items() if k != "total"),
         f"Peak resident memory of the benchmark process: {peak_rss_gb():.2f} GiB",
     ]
-    report = "\n".join(lines)
-    print(report)
-    if not args.no_write:
-        append_results(f"End to end, lshjob run vs datasketch vs scipy ({time.strftime('%Y-%m-%d')})", report)
+    finish("End to end, lshjob run vs datasketch vs scipy", "\n".join(lines), not args.no_write)
 
 
 if __name__ == "__main__":

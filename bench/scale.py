@@ -21,7 +21,7 @@ from pathlib import Path
 import polars as pl
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import append_results, events_with_similar_pairs, machine  # noqa: E402
+from common import finish, events_with_similar_pairs, machine  # noqa: E402
 
 
 def main() -> None:
@@ -83,10 +83,7 @@ def main() -> None:
         f"Audit ({audit['sampled_entities']} entities against {audit['compared_against']}): recall "
         f"{audit['recall']:.4f}, S-curve predicts {audit['predicted_recall']:.4f}, wrong pairs {audit['wrong_pairs']}.",
     ]
-    report = "\n".join(lines)
-    print(report)
-    if not args.no_write:
-        append_results(f"Scale, {args.entities:,} entities, {args.scheme} ({time.strftime('%Y-%m-%d')})", report)
+    finish(f"Scale, {args.entities:,} entities, {args.scheme}", "\n".join(lines), not args.no_write)
 
 
 if __name__ == "__main__":

@@ -19,7 +19,7 @@ from pathlib import Path
 import polars as pl
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import append_results, long_tailed_events, machine, timed  # noqa: E402
+from common import finish, long_tailed_events, machine, timed  # noqa: E402
 
 from lshjob import EventSpec, SignatureParams, load_sets, sign_file, sign_sets  # noqa: E402
 
@@ -92,10 +92,7 @@ def main() -> None:
         "datasketch is given pre-grouped element lists (its reading and grouping are not timed); "
         "the floor uses polars' own hash, which has no stability promise, only as a yardstick."
     )
-    report = "\n".join(lines)
-    print(report)
-    if not args.no_write:
-        append_results(f"Signing, k-permutation ({time.strftime('%Y-%m-%d')})", report)
+    finish("Signing, k-permutation and oph", "\n".join(lines), not args.no_write)
 
 
 if __name__ == "__main__":

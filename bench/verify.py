@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import append_results, events_with_similar_pairs, machine  # noqa: E402
+from common import finish, events_with_similar_pairs, machine  # noqa: E402
 
 from lshjob import EventSpec, load_sets  # noqa: E402
 from lshjob.membership import Membership  # noqa: E402
@@ -64,10 +64,7 @@ def main() -> None:
     ]
     for name, (secs, n) in t.items():
         lines.append(f"| {name} | {n:,} | {secs:.2f} | {n / secs:,.0f} | {(n / secs) / ref:.2f}x |")
-    report = "\n".join(lines)
-    print(report)
-    if not args.no_write:
-        append_results(f"Verification throughput ({time.strftime('%Y-%m-%d')})", report)
+    finish("Verification throughput", "\n".join(lines), not args.no_write)
 
 
 if __name__ == "__main__":

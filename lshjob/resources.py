@@ -42,25 +42,24 @@ def reset_peak() -> bool:
         return False
 
 
-def peak_bytes() -> int:
-    """Peak resident memory since the last reset (VmHWM), else the process's lifetime peak."""
+def _status_bytes(field: str) -> int | None:
+    """A memory line of /proc/self/status (in kB there) as bytes; None where unavailable."""
     try:
         with open("/proc/self/status") as fh:
             for line in fh:
-                if line.startswith("VmHWM:"):
+                if line.startswith(field + ":"):
                     return int(line.split()[1]) * 1024
     except OSError:
         pass
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+    return None
+
+
+def peak_bytes() -> int:
+    """Peak resident memory since the last reset (VmHWM), else the process's lifetime peak."""
+    peak = _status_bytes("VmHWM")
+    return peak if peak is not None else resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
 
 
 def current_bytes() -> int:
     """Resident memory now (VmRSS), 0 where /proc is unavailable."""
-    try:
-        with open("/proc/self/status") as fh:
-            for line in fh:
-                if line.startswith("VmRSS:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return 0
+    return _status_bytes("VmRSS") or 0
