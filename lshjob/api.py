@@ -145,21 +145,31 @@ def plan_banding(
     fn_weight: float = 0.5,
     seed: int = 0,
     runners_up: int = 5,
+    bands: int | None = None,
+    rows: int | None = None,
 ) -> PlanResult:
     """Choose (k, b, r). Without ``sample``: theory mode (weighted FP/FN areas, k default 128).
     With ``sample`` (a signature file, or events read with ``spec``): data mode, the plan that
     meets ``recall`` with the fewest expected candidate pairs, scaled to ``entities``
-    (default: the entity count of the sample file)."""
+    (default: the entity count of the sample file). With ``bands`` and ``rows`` that plan is
+    judged instead of chosen; the runners-up are then the recommended plans."""
     planner.validate(threshold, perms, fp_weight, fn_weight)
+    if (bands is None) != (rows is None):
+        raise ParameterError("--bands and --rows go together; give both or neither")
+    explicit = (bands, rows) if bands is not None else None
     if sample_size < 2:
         raise ParameterError(f"--sample-size must be at least 2; got {sample_size}")
     if entities is not None and entities < 2:
         raise ParameterError(f"--entities must be at least 2; got {entities}")
     if sample is None:
-        ranked = planner.theory_plans(threshold, perms or 128, fp_weight, fn_weight)
-        rows = [_banding_dict(p, threshold) for p in ranked[: runners_up + 1]]
-        best = ranked[0]
-        return PlanResult("theory", threshold, best.perms, best.bands, best.rows, rows[0], rows[1:])
+        k = perms or 128
+        if explicit:
+            planner.check_explicit(k, *explicit)
+        ranked = planner.theory_plans(threshold, k, fp_weight, fn_weight)
+        best = next(p for p in ranked if (p.bands, p.rows) == explicit) if explicit else ranked[0]
+        others = [_banding_dict(p, threshold) for p in ranked if p is not best][:runners_up]
+        return PlanResult("theory", threshold, best.perms, best.bands, best.rows,
+                          _banding_dict(best, threshold), others)
     if _is_signature_file(sample):
         table, meta = read_signatures(sample)
         if perms is not None and perms > meta["k"]:
@@ -180,8 +190,19 @@ def plan_banding(
         hist = similarity.sample_histogram_from_sets(sets, sample_size, seed, entities, threshold)
         basis = "exact Jaccard"
         choices = (perms,) if perms is not None else planner.DEFAULT_PERMS_CHOICES
-    ranked = planner.data_plans(threshold, hist, choices, recall)
-    best = ranked[0]
+    if explicit:
+        planner.check_explicit(choices[0] if len(choices) == 1 else 128, *explicit)
+        k = choices[0] if len(choices) == 1 else 128
+        best = next(p for p in planner.data_plans(threshold, hist, (k,), 1e-12)
+                    if (p.bands, p.rows) == explicit)
+        best.meets_target = best.expected_recall >= recall
+        try:
+            ranked = [best, *planner.data_plans(threshold, hist, choices, recall)]
+        except ParameterError:
+            ranked = [best]
+    else:
+        ranked = planner.data_plans(threshold, hist, choices, recall)
+        best = ranked[0]
     info = {
         "path": str(sample),
         "similarity": basis,

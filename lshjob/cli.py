@@ -149,6 +149,8 @@ def plan(
     entities: Annotated[Optional[int], typer.Option(help="Scale pair counts to this many entities (e.g. next quarter's).")] = None,
     fp_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-positive area.")] = 0.5,
     fn_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-negative area.")] = 0.5,
+    bands: Annotated[Optional[int], typer.Option(help="Judge this number of bands instead of choosing.")] = None,
+    rows: Annotated[Optional[int], typer.Option(help="Judge this number of rows per band instead of choosing.")] = None,
     chart: Annotated[Optional[Path], typer.Option(help="Write the S-curve chart (.svg, or .png with matplotlib).")] = None,
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
     quiet: Quiet = False,
@@ -160,10 +162,13 @@ def plan(
 
     Example (data, scaled to 5 million patrons): lshjob plan --threshold 0.5
     --sample demo_data/loans.parquet --entity patron --element title --entities 5000000
+
+    Example (judge a given plan): lshjob plan --threshold 0.5 --perms 128 --bands 20 --rows 5
     """
     spec = EventSpec(entity=entity, element=element) if entity and element else None
     result = api.plan_banding(
-        threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed
+        threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed,
+        bands=bands, rows=rows,
     )
     summary = result.as_dict()
     if chart is not None:

@@ -16,6 +16,8 @@ def plan_report(result) -> str:
     t = result.threshold
     lines = [f"{result.mode} mode, threshold {t}: k={result.perms}, b={result.bands}, r={result.rows} "
              f"(approximate threshold {result.chosen['approximate_threshold']:.3f})", ""]
+    if result.chosen.get("meets_target") is False:
+        lines[0] += f"; does NOT reach the recall target {result.sample['recall_target']}"
     rows = [result.chosen, *result.runners_up]
     if result.mode == "theory":
         header = f"{'':2}{'k':>5}{'b':>5}{'r':>4}{'FP area':>11}{'FN area':>11}{'weighted':>11}{'P(t)':>8}"

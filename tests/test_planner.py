@@ -186,3 +186,21 @@ def test_against_all_sample_estimates_population_pair_counts(tmp_path):
     assert nearly_all.pairs_at_or_above(0.5) * nearly_all.scale == pytest.approx(len(truth), rel=0.01)
     half = sample_histogram_from_sets(sets, n // 2, seed=2, threshold=0.5)
     assert half.pairs_at_or_above(0.5) * half.scale == pytest.approx(len(truth), rel=0.12)
+
+
+def test_plan_judges_a_given_banding(tmp_path, demo_events):
+    runner = CliRunner()
+    result = runner.invoke(app, ["plan", "--threshold", "0.5", "--perms", "128", "--bands", "20", "--rows", "5", "--json"])
+    assert result.exit_code == 0, result.output
+    out = json.loads(result.stdout)
+    assert (out["bands"], out["rows"]) == (20, 5)
+    # Oracle: MMDS 3.4 value quoted above, P(0.5) for b=20, r=5 is 0.470.
+    assert round(out["chosen"]["probability_at_threshold"], 3) == 0.470
+    result = runner.invoke(app, ["plan", "--threshold", "0.5", "--perms", "128", "--bands", "20", "--rows", "7"])
+    assert result.exit_code == 2 and "20 x 7 = 140 > 128" in result.stderr
+    src = tmp_path / "loans.parquet"
+    demo_events[0].write_parquet(src)
+    result = runner.invoke(app, ["plan", "--threshold", "0.5", "--sample", str(src), "--entity", "patron",
+                                 "--element", "title", "--perms", "64", "--bands", "2", "--rows", "32", "--json"])
+    out = json.loads(result.stdout)
+    assert out["chosen"]["meets_target"] is False and out["runners_up"][0]["meets_target"] is True
