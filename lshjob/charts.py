@@ -57,7 +57,7 @@ def write_chart(
 
 
 def _svg(bands, rows, threshold, histogram) -> str:
-    w, h, left, right, top, bottom = 640, 400, 60, 60, 30, 50
+    w, h, left, right, top, bottom = 680, 400, 60, 100, 30, 50
     pw, ph = w - left - right, h - top - bottom
 
     def x(s):
@@ -84,9 +84,13 @@ def _svg(bands, rows, threshold, histogram) -> str:
                 f'<rect x="{x(edges[i]):.1f}" y="{top + ph - bh:.1f}" width="{pw / 50 - 1:.1f}" '
                 f'height="{bh:.1f}" fill="#c6d8ef"/>'
             )
+        for e in range(int(np.floor(top_log)) + 1):
+            ty = top + ph - e / top_log * ph
+            parts.append(f'<text x="{left + pw + 6}" y="{ty + 4:.1f}" fill="#5b7fae">1e{e}</text>')
         parts.append(
-            f'<text x="{w - right + 8}" y="{top + 10}" fill="#5b7fae">log10(pairs+1)</text>'
-            f'<text x="{w - right + 8}" y="{top + 26}" fill="#5b7fae">max {top_log:.1f}</text>'
+            f'<text x="{left + pw + 42}" y="{top + ph / 2:.1f}" fill="#5b7fae" '
+            f'transform="rotate(90 {left + pw + 42} {top + ph / 2:.1f})" text-anchor="middle">'
+            "sampled pairs (log scale)</text>"
         )
     s = np.linspace(0, 1, 201)
     p = candidate_probability(s, bands, rows)
@@ -105,6 +109,8 @@ def _svg(bands, rows, threshold, histogram) -> str:
     parts += [
         f'<text x="{left}" y="{top - 10}" font-weight="bold">{title}</text>',
         f'<text x="{left + pw / 2 - 50}" y="{h - 10}">Jaccard similarity s</text>',
+        f'<text x="14" y="{top + ph / 2:.1f}" transform="rotate(-90 14 {top + ph / 2:.1f})" '
+        'text-anchor="middle">P(candidate)</text>',
         "</svg>",
     ]
     return "\n".join(parts) + "\n"
