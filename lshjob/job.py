@@ -21,7 +21,7 @@ import polars as pl
 
 from . import __version__, planner, similarity
 from .band import write_bucket_rows
-from .errors import ParameterError
+from .errors import InputError, ParameterError
 from .identical import collapse_identical
 from .ingest import EventSpec, load_sets
 from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
@@ -117,6 +117,8 @@ def run_job(
         with stages("ingest"):
             sets_rows, report = load_sets(events, spec)
             sets = Membership.from_sets(sets_rows)
+        if sets.size < 2:
+            raise InputError(f"{events}: only {sets.size} entity after ingest; a neighbour index needs at least 2")
         counts.update(events=report.rows_read, entities=sets.size, membership_rows=report.membership_rows,
                       empty_after_filter=report.empty_after_filter, null_rows_dropped=report.null_rows_dropped)
 

@@ -81,11 +81,16 @@ def run_report(m: dict) -> str:
     )
     skew = m.get("skew")
     if skew:
-        lines.append(
-            f"skew: largest bucket {skew['largest_bucket']:,}; {skew['oversize_buckets']:,} bucket(s) over "
-            f"--max-bucket {skew['max_bucket']:,} split by the next band ({skew['split_pairs']:,} of "
-            f"{skew['oversize_pairs']:,} potential pairs kept, {skew['skipped_pairs']:,} left out)"
-        )
+        text = f"skew: largest bucket {skew['largest_bucket']:,}"
+        if skew["oversize_buckets"]:
+            text += (
+                f"; {skew['oversize_buckets']:,} bucket(s) over --max-bucket {skew['max_bucket']:,} split by the "
+                f"next band ({skew['split_pairs']:,} of {skew['oversize_pairs']:,} potential pairs kept, "
+                f"{skew['skipped_pairs']:,} left out)"
+            )
+        else:
+            text += f", within --max-bucket {skew['max_bucket']:,}"
+        lines.append(text)
         if skew["skipped_pairs"]:
             lines.append(
                 "warning: pairs that meet only in skipped buckets are not found, so recall can fall below "

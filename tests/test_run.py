@@ -273,3 +273,9 @@ def test_verifying_in_slices_gives_the_same_index(tmp_path, demo_events, monkeyp
     m = run_job(src, SPEC, RunOptions(threshold=0.4), tmp_path / "sliced")
     assert m["counts"]["candidate_pairs"] > 500  # many slices of 50
     assert (tmp_path / "whole/neighbours.parquet").read_bytes() == (tmp_path / "sliced/neighbours.parquet").read_bytes()
+
+
+def test_one_entity_is_refused_clearly(tmp_path):
+    src = write(pl.DataFrame({"patron": ["a", "a"], "title": ["x", "y"]}), tmp_path)
+    with pytest.raises(lshjob.InputError, match="only 1 entity"):
+        run_job(src, SPEC, RunOptions(threshold=0.5), tmp_path / "idx")
