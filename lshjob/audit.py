@@ -14,6 +14,7 @@ import numpy as np
 import polars as pl
 
 from .errors import ParameterError
+from .identical import collapse_identical
 from .ingest import EventSpec, load_sets
 from .membership import Membership
 from .planner import candidate_probability
@@ -44,6 +45,31 @@ def _neighbours_above(offsets, elements, starts, members, sample, allowed, thres
                 out_j.append(jac)
             inter[b] = 0
     return np.array(out_a, dtype=np.int64), np.array(out_b, dtype=np.int64), np.array(out_j, dtype=np.float64)
+
+
+def _distinct_set_pairs(sets: Membership, truth: pl.DataFrame, published: pl.DataFrame, plan: dict) -> dict:
+    """Recall over distinct pairs of different sets. Entities with identical sets share one
+    outcome (they are banded as one), so per-entity recall can swing with a single pair of
+    sets; over distinct set pairs the outcomes are independent and the S-curve prediction
+    comes with a binomial standard error sqrt(p(1-p)/n)."""
+    rep_of, _ = collapse_identical(sets)
+    hit = truth.join(published.select("a", "b", pl.lit(True).alias("hit")), on=["a", "b"], how="left")
+    pairs = hit.with_columns(
+        ra=pl.Series(rep_of[truth["a"].to_numpy()]), rb=pl.Series(rep_of[truth["b"].to_numpy()])
+    ).filter(pl.col("ra") != pl.col("rb"))
+    groups = pairs.group_by(pl.min_horizontal("ra", "rb").alias("x"), pl.max_horizontal("ra", "rb").alias("y")).agg(
+        pl.col("hit").fill_null(False).any(), pl.first("jaccard")
+    )
+    n = groups.height
+    if n == 0 or plan["mode"] == "identical-only":
+        return {"distinct_set_pairs": n, "distinct_recall": None, "distinct_predicted": None, "distinct_se": None}
+    p = float(candidate_probability(groups["jaccard"].to_numpy(), plan["bands"], plan["rows"]).mean())
+    return {
+        "distinct_set_pairs": n,
+        "distinct_recall": float(groups["hit"].mean()),
+        "distinct_predicted": p,
+        "distinct_se": float(np.sqrt(p * (1 - p) / n)),
+    }
 
 
 def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0) -> dict:
@@ -99,6 +125,7 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0) -> dic
         p = candidate_probability(jac, plan["bands"], plan["rows"])
         p[jac >= 1.0] = 1.0  # identical sets are grouped exactly, whatever the bands
         predicted = float(p.mean())
+    distinct = _distinct_set_pairs(sets, truth, published, plan)
     return {
         "index": str(index_dir),
         "events": str(source),
@@ -112,6 +139,7 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0) -> dic
         "found": int(tally["found"].sum()),
         "recall": measured,
         "predicted_recall": predicted,
+        **distinct,
         "published_pairs_checked": published.height,
         "wrong_pairs": wrong.height,
         "wrong_examples": wrong.head(5).select("entity", "neighbour", "jaccard", "exact").rows(),

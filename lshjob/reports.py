@@ -114,6 +114,13 @@ def audit_report(r: dict) -> str:
         f"true pairs at or above {r['threshold']}: {r['true_pairs']:,}; expected in index (top-{r['top_k']}): "
         f"{r['expected_in_index']:,}; found {r['found']:,}",
         f"recall {rec} (S-curve predicts {pred})",
+    ]
+    if r.get("distinct_recall") is not None:
+        lines.append(
+            f"over {r['distinct_set_pairs']:,} distinct pairs of different sets: recall {r['distinct_recall']:.4f}, "
+            f"S-curve predicts {r['distinct_predicted']:.4f} +/- {r['distinct_se']:.4f} (one s.e.)"
+        )
+    lines += [
         f"published pairs checked {r['published_pairs_checked']:,}; wrong {r['wrong_pairs']}",
     ]
     for row in r["wrong_examples"]:

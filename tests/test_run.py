@@ -221,6 +221,9 @@ def test_audit_reports_recall_and_catches_a_wrong_pair(tmp_path):
     report = audit_index(tmp_path / "idx", sample=400)
     assert report["wrong_pairs"] == 0 and report["recall"] >= 0.9
     assert abs(report["recall"] - report["predicted_recall"]) < 0.05
+    # No identical sets here: distinct set pairs are the unordered true pairs seen.
+    assert report["true_pairs"] / 2 <= report["distinct_set_pairs"] <= report["true_pairs"]
+    assert abs(report["distinct_recall"] - report["distinct_predicted"]) < 4 * report["distinct_se"] + 0.01
     path = tmp_path / "idx/neighbours.parquet"
     table = pl.read_parquet(path)
     table.with_columns(pl.when(pl.int_range(pl.len()) == 0).then(0.99).otherwise(pl.col("jaccard"))
