@@ -288,9 +288,9 @@ def demo(
     )
 
 
-def run() -> None:  # console-script entry point
+def entry_point() -> None:  # console script `lshjob`
     sys.exit(app())
 
 
 if __name__ == "__main__":
-    run()
+    entry_point()
