@@ -19,14 +19,14 @@ from .ingest import EventSpec, load_sets
 from .membership import Membership
 from .planner import candidate_probability
 from .publish import NEIGHBOURS, read_manifest
-from .similarity import overlap_counts, postings
+from .similarity import overlap_counts, postings_of, restricted_index, visit_costs
 from .verify import exact_jaccard
 
 MAX_BRUTE_FORCE_WORK = 5e9  # posting visits; beyond this the audit compares within the sample
 
 
 @numba.njit(cache=True)
-def _neighbours_above(offsets, elements, starts, members, sample, allowed, threshold):
+def _neighbours_above(offsets, elements, starts, members, sizes, sample, allowed, threshold):
     n = offsets.shape[0] - 1
     inter = np.zeros(n, dtype=np.int32)
     touched = np.empty(n, dtype=np.int64)
@@ -35,10 +35,10 @@ def _neighbours_above(offsets, elements, starts, members, sample, allowed, thres
     out_j = []
     for a in sample:
         nt = overlap_counts(offsets, elements, starts, members, a, allowed, inter, touched)
-        size_a = offsets[a + 1] - offsets[a]
+        size_a = sizes[a]
         for q in range(nt):
             b = touched[q]
-            jac = inter[b] / (size_a + offsets[b + 1] - offsets[b] - inter[b])
+            jac = inter[b] / (size_a + sizes[b] - inter[b])
             if jac >= threshold:
                 out_a.append(a)
                 out_b.append(b)
@@ -86,16 +86,16 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0) -> dic
     sets = Membership.from_sets(rows)
     rng = np.random.default_rng(seed)
     picked = np.sort(rng.choice(sets.size, size=min(sample, sets.size), replace=False))
-    starts, members = postings(sets)
-    work = float(np.diff(starts)[sets.elements[np.concatenate(
-        [np.arange(sets.offsets[i], sets.offsets[i + 1]) for i in picked])]].sum())
+    offsets, dense, n_ids = restricted_index(sets, sets.subset(picked).elements)
+    starts, members = postings_of(offsets, dense, n_ids)
+    work = float(visit_costs(offsets, dense, starts)[picked].sum())
     allowed = np.ones(sets.size, dtype=np.bool_)
     scope = "all entities"
     if work > MAX_BRUTE_FORCE_WORK:
         allowed[:] = False
         allowed[picked] = True
         scope = f"the {len(picked)} sampled entities only (comparing against all would visit {work:.3g} postings)"
-    a, b, jac = _neighbours_above(sets.offsets, sets.elements, starts, members, picked, allowed, threshold)
+    a, b, jac = _neighbours_above(offsets, dense, starts, members, sets.set_sizes, picked, allowed, threshold)
     truth = pl.DataFrame({"a": a, "b": b, "jaccard": jac})
 
     index = pl.read_parquet(f"{index_dir}/{NEIGHBOURS}")

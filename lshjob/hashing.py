@@ -138,6 +138,85 @@ def xxh64_strings(values: pl.Series, seed: int = 0) -> np.ndarray:
     return _xxh64_many(buf, offsets, U64(seed))
 
 
+_PAIRS = np.frombuffer("".join(f"{i:02d}" for i in range(100)).encode(), dtype=np.uint8).copy()
+
+
+@numba.njit(inline="always")
+def _decimal_digits(v, negative, buf):
+    """Write the decimal text of magnitude ``v`` (uint64), after a '-' if ``negative``, at
+    the start of buf (24 bytes); return its length. Two digits per division."""
+    tmp = np.empty(20, dtype=np.uint8)
+    pos = 20
+    while v >= U64(100):
+        r = np.int64(v % U64(100))
+        v //= U64(100)
+        pos -= 2
+        tmp[pos] = _PAIRS[2 * r]
+        tmp[pos + 1] = _PAIRS[2 * r + 1]
+    if v >= U64(10):
+        r = np.int64(v)
+        pos -= 2
+        tmp[pos] = _PAIRS[2 * r]
+        tmp[pos + 1] = _PAIRS[2 * r + 1]
+    else:
+        pos -= 1
+        tmp[pos] = 48 + np.uint8(v)
+    n = 0
+    if negative:
+        buf[0] = 45  # '-'
+        n = 1
+    for i in range(pos, 20):
+        buf[n] = tmp[i]
+        n += 1
+    return n
+
+
+@numba.njit(parallel=True, cache=True)
+def _xxh64_signed(values, seed):
+    n = values.shape[0]
+    out = np.empty(n, dtype=np.uint64)
+    chunks = max(1, min(n // 4096, 64))
+    for c in numba.prange(chunks):
+        buf = np.empty(24, dtype=np.uint8)
+        for j in range(c * n // chunks, (c + 1) * n // chunks):
+            x = values[j]
+            if x < 0:
+                length = _decimal_digits(U64(0) - U64(x), True, buf)
+            else:
+                length = _decimal_digits(U64(x), False, buf)
+            out[j] = _xxh64_one(buf, 0, length, seed)
+    return out
+
+
+@numba.njit(parallel=True, cache=True)
+def _xxh64_unsigned(values, seed):
+    n = values.shape[0]
+    out = np.empty(n, dtype=np.uint64)
+    chunks = max(1, min(n // 4096, 64))
+    for c in numba.prange(chunks):
+        buf = np.empty(24, dtype=np.uint8)
+        for j in range(c * n // chunks, (c + 1) * n // chunks):
+            out[j] = _xxh64_one(buf, 0, _decimal_digits(values[j], False, buf), seed)
+    return out
+
+
+def xxh64_integers(values: np.ndarray, seed: int = 0) -> np.ndarray:
+    """XXH64 of each integer's decimal text (``-`` for negatives), computed without building
+    strings: equal to ``xxh64_strings`` of the values cast to text, so an element read as
+    integer 42 and as string "42" hash alike."""
+    values = np.ascontiguousarray(values)
+    if values.dtype == np.uint64:
+        return _xxh64_unsigned(values, U64(seed))
+    return _xxh64_signed(values.astype(np.int64, copy=False), U64(seed))
+
+
+def element_hashes(values: pl.Series, seed: int = 0) -> np.ndarray:
+    """XXH64 of each element key's canonical text (integers in decimal, strings as given)."""
+    if values.dtype.is_integer():
+        return xxh64_integers(values.to_numpy(), seed)
+    return xxh64_strings(element_key_strings(values), seed)
+
+
 def element_key_strings(values: pl.Series) -> pl.Series:
     """Canonical text of element keys: integers in decimal, strings as given.
 

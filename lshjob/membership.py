@@ -1,37 +1,63 @@
-"""Entity sets in compressed sparse row form: the exact data verification and audits read.
+"""Entity sets in compressed sparse row form: the exact data signing, verification and
+audits read.
 
-Entity id i is the position of the entity key in sorted order (the order signature tables
-use); elements are dense ids 0..n_elements-1, sorted within each entity.
+Entity id i is the position of the entity key in ``keys``. Elements are stored as int64
+*codes*, sorted within each entity: for integer element keys the code is the key itself;
+for text keys it is the position of the key in the sorted list of distinct keys, and
+``text_hashes[code]`` is the XXH64 of that text. Either way two elements are equal exactly
+when their codes are, so intersections counted on codes are exact, and
+:meth:`Membership.element_hashes` gives the hash every signature starts from
+(:mod:`lshjob.hashing`).
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 import polars as pl
+
+from .hashing import xxh64_integers, xxh64_strings
+
+INT64_MAX = np.iinfo(np.int64).max
 
 
 @dataclass
 class Membership:
-    keys: pl.Series  # sorted, unique entity keys; entity id = position
+    keys: pl.Series  # unique entity keys; entity id = position
     offsets: np.ndarray  # int64, length n + 1
-    elements: np.ndarray  # int64 dense element ids, sorted within each entity
-    n_elements: int
+    elements: np.ndarray  # int64 element codes, sorted within each entity
+    text_hashes: np.ndarray | None = None  # XXH64 per code when elements are text keys
 
     @classmethod
     def from_sets(cls, sets: pl.DataFrame) -> "Membership":
-        """From membership rows with columns ``entity`` and ``element`` (ingest contract)."""
-        frame = sets.select(
-            "entity", (pl.col("element").rank("dense").cast(pl.Int64) - 1).alias("eid")
-        ).sort("entity", "eid")
+        """From membership rows with columns ``entity`` and ``element`` (ingest contract);
+        entities in sorted key order."""
+        codes, text_hashes = element_codes(sets.get_column("element"))
+        frame = sets.select("entity").with_columns(code=codes).sort("entity", "code")
+        return cls.from_sorted(frame, text_hashes)
+
+    @classmethod
+    def from_sorted(cls, frame: pl.DataFrame, text_hashes: np.ndarray | None) -> "Membership":
+        """From rows (entity, code) sorted by entity, then code."""
         runs = frame.select(pl.col("entity").rle()).unnest("entity")
         sizes = runs["len"].to_numpy().astype(np.int64)
         offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
         np.cumsum(sizes, out=offsets[1:])
-        elements = np.ascontiguousarray(frame["eid"].to_numpy())
-        n_elements = int(elements.max()) + 1 if len(elements) else 0
-        return cls(runs["value"].alias("entity"), offsets, elements, n_elements)
+        elements = np.ascontiguousarray(frame["code"].to_numpy(), dtype=np.int64)
+        return cls(runs["value"].alias("entity"), offsets, elements, text_hashes)
+
+    @classmethod
+    def concat(cls, parts: list["Membership"]) -> "Membership":
+        """Entities of several memberships (same coding, disjoint keys), one after another."""
+        if len(parts) == 1:
+            return parts[0]
+        sizes = np.concatenate([np.diff(p.offsets) for p in parts])
+        offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
+        np.cumsum(sizes, out=offsets[1:])
+        return cls(pl.concat([p.keys for p in parts]), offsets,
+                   np.concatenate([p.elements for p in parts]), parts[0].text_hashes)
 
     @property
     def size(self) -> int:
@@ -41,14 +67,41 @@ class Membership:
     def set_sizes(self) -> np.ndarray:
         return np.diff(self.offsets)
 
+    def element_hashes(self, elements: np.ndarray | None = None) -> np.ndarray:
+        """XXH64 of the canonical text of each element (all of them by default)."""
+        codes = self.elements if elements is None else elements
+        if self.text_hashes is not None:
+            return self.text_hashes[codes]
+        return xxh64_integers(codes)
+
     def subset(self, ids: np.ndarray) -> "Membership":
         """The sets of the given entity ids (kept in the given order)."""
-        ids = np.asarray(ids, dtype=np.int64)
-        sizes = self.set_sizes[ids]
-        offsets = np.zeros(len(ids) + 1, dtype=np.int64)
-        np.cumsum(sizes, out=offsets[1:])
-        if len(ids):
-            idx = np.concatenate([np.arange(self.offsets[i], self.offsets[i + 1]) for i in ids])
-        else:
-            idx = np.empty(0, dtype=np.int64)
-        return Membership(self.keys.gather(ids), offsets, self.elements[idx], self.n_elements)
+        ids = np.ascontiguousarray(ids, dtype=np.int64)
+        offsets, elements = gather_sets(self.offsets, self.elements, ids)
+        return Membership(self.keys.gather(ids), offsets, elements, self.text_hashes)
+
+
+def element_codes(values: pl.Series) -> tuple[pl.Series, np.ndarray | None]:
+    """(codes, text_hashes): see the module docstring. Integer keys that do not fit int64
+    (UInt64 above 2**63 - 1) are coded as text, which hashes alike."""
+    if values.dtype.is_integer() and (values.dtype != pl.UInt64 or len(values) == 0
+                                      or values.max() <= INT64_MAX):
+        return values.cast(pl.Int64).alias("code"), None
+    text = values.cast(pl.String)
+    dictionary = text.unique().sort()
+    codes = text.rank("dense").cast(pl.Int64) - 1  # position in the sorted distinct keys
+    return codes.alias("code"), xxh64_strings(dictionary)
+
+
+@numba.njit(cache=True)
+def gather_sets(offsets, elements, ids):
+    """CSR of the sets ``ids`` (in that order)."""
+    out_offsets = np.zeros(len(ids) + 1, dtype=np.int64)
+    for t in range(len(ids)):
+        out_offsets[t + 1] = out_offsets[t] + offsets[ids[t] + 1] - offsets[ids[t]]
+    out = np.empty(out_offsets[-1], dtype=np.int64)
+    for t in range(len(ids)):
+        a = offsets[ids[t]]
+        for j in range(offsets[ids[t] + 1] - a):
+            out[out_offsets[t] + j] = elements[a + j]
+    return out_offsets, out

@@ -35,7 +35,8 @@ import polars as pl
 
 from . import oph
 from .errors import IncompatibleSignatures, InputError, ParameterError
-from .hashing import element_key_strings, fmix64, splitmix64_sequence, xxh64_strings
+from .hashing import element_hashes, fmix64, splitmix64_sequence, xxh64_strings
+from .membership import Membership, gather_sets
 
 FORMAT_NAME = "lshjob-signatures"
 FORMAT_VERSION = 1
@@ -105,6 +106,12 @@ def comparable(matrix: np.ndarray, params: SignatureParams) -> np.ndarray:
     return matrix
 
 
+def sign_membership(sets: Membership, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
+    """Signatures (len(ids) x k) of the sets ``ids`` of a :class:`~lshjob.membership.Membership`."""
+    offsets, codes = gather_sets(sets.offsets, sets.elements, np.ascontiguousarray(ids, dtype=np.int64))
+    return signature_matrix(sets.element_hashes(codes), offsets, params)
+
+
 def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:
     """Convenience for small inputs and tests: one signature row per list of element keys."""
     flat = [str(x) for s in sets for x in dict.fromkeys(s)]
@@ -119,14 +126,12 @@ def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:
 
 def sign_sets(sets: pl.DataFrame, keys: list[str], params: SignatureParams) -> pl.DataFrame:
     """Membership rows (ingest contract, sorted by keys) -> signature table (module contract)."""
-    uniq = sets.get_column("element").unique()
-    lookup = pl.DataFrame({"element": uniq, "h0": xxh64_strings(element_key_strings(uniq))})
-    hashed = sets.select([*keys, "element"]).join(lookup, on="element", how="left", maintain_order="left")
-    sizes = run_lengths(hashed, keys)
+    h0 = element_hashes(sets.get_column("element"))
+    sizes = run_lengths(sets, keys)
     offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
     np.cumsum(sizes, out=offsets[1:])
-    matrix = signature_matrix(hashed["h0"].to_numpy(), offsets, params)
-    key_frame = hashed.select(keys).gather(offsets[:-1])
+    matrix = signature_matrix(h0, offsets, params)
+    key_frame = sets.select(keys).gather(offsets[:-1])
     return key_frame.with_columns(
         signature_column(matrix),
         pl.Series("set_size", sizes, dtype=pl.UInt32),

@@ -30,7 +30,9 @@ def sample_keys(keys: pl.Series, m: int, seed: int = 0) -> pl.Series:
 
 
 @numba.njit(cache=True)
-def _postings(offsets, elems, n_elements):
+def postings_of(offsets, elems, n_elements):
+    """Inverted index of a CSR with dense element ids: entities holding element e are
+    ``members[starts[e]:starts[e+1]]``."""
     counts = np.zeros(n_elements + 1, dtype=np.int64)
     for e in elems:
         counts[e + 1] += 1
@@ -99,7 +101,7 @@ def overlap_counts(offsets, elements, starts, members, a, allowed, inter, touche
 
 
 @numba.njit(parallel=True, cache=True)
-def _against_all_histogram(offsets, elements, starts, members, sample, nbins, threshold, chunks):
+def _against_all_histogram(offsets, elements, starts, members, sizes, sample, nbins, threshold, chunks):
     n = offsets.shape[0] - 1
     allowed = np.ones(n, dtype=np.bool_)
     counts = np.zeros((chunks, 2 * nbins), dtype=np.int64)
@@ -111,10 +113,10 @@ def _against_all_histogram(offsets, elements, starts, members, sample, nbins, th
         for s in range(c, len(sample), chunks):
             a = sample[s]
             nt = overlap_counts(offsets, elements, starts, members, a, allowed, inter, touched)
-            size_a = offsets[a + 1] - offsets[a]
+            size_a = sizes[a]
             for q in range(nt):
                 b = touched[q]
-                jac = inter[b] / (size_a + offsets[b + 1] - offsets[b] - inter[b])
+                jac = inter[b] / (size_a + sizes[b] - inter[b])
                 inter[b] = 0
                 if jac >= 1.0:
                     identical[c] += 1
@@ -125,10 +127,29 @@ def _against_all_histogram(offsets, elements, starts, members, sample, nbins, th
     return counts.sum(axis=0), sums.sum(axis=0), identical.sum()
 
 
-def visit_costs(sets: Membership, starts: np.ndarray) -> np.ndarray:
+def visit_costs(offsets: np.ndarray, dense: np.ndarray, starts: np.ndarray) -> np.ndarray:
     """Per entity, the posting visits needed to pair it with every entity."""
-    lengths = np.diff(starts)[sets.elements]
-    return np.add.reduceat(lengths, sets.offsets[:-1]) if len(lengths) else np.zeros(sets.size)
+    return segment_sums(np.diff(starts)[dense], offsets)
+
+
+def segment_sums(values: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Sum of values[offsets[i]:offsets[i+1]] for each i (empty segments sum to 0)."""
+    total = np.zeros(len(values) + 1, dtype=np.int64)
+    np.cumsum(values, out=total[1:])
+    return total[offsets[1:]] - total[offsets[:-1]]
+
+
+def restricted_index(sets: Membership, wanted: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
+    """Each entity's elements that are among ``wanted`` codes, renumbered 0..len(wanted)-1:
+    (offsets, dense ids, number of ids). Pairing sampled entities with all entities needs
+    only the elements the sampled sets hold."""
+    wanted = np.unique(wanted)
+    keep = pl.Series(sets.elements).is_in(pl.Series(wanted).implode()).to_numpy()
+    counts = segment_sums(keep, sets.offsets)
+    offsets = np.zeros(sets.size + 1, dtype=np.int64)
+    np.cumsum(counts, out=offsets[1:])
+    dense = np.searchsorted(wanted, sets.elements[keep]).astype(np.int64)
+    return offsets, dense, len(wanted)
 
 
 def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:
@@ -137,13 +158,14 @@ def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:
     sets = Membership.from_sets(sets)
     if sets.size < 2:
         raise InputError(f"the sample needs at least 2 entities; got {sets.size}")
-    starts, members = postings(sets)
-    return _all_pairs_jaccard(sets.offsets, sets.elements, starts, members)
+    return _within_jaccard(sets)
 
 
-def postings(sets: Membership) -> tuple[np.ndarray, np.ndarray]:
-    """Inverted index: entities holding element e are ``members[starts[e]:starts[e+1]]``."""
-    return _postings(sets.offsets, sets.elements, sets.n_elements)
+def _within_jaccard(sets: Membership) -> np.ndarray:
+    uniq, dense = np.unique(sets.elements, return_inverse=True)
+    dense = dense.astype(np.int64)
+    starts, members = postings_of(sets.offsets, dense, len(uniq))
+    return _all_pairs_jaccard(sets.offsets, dense, starts, members)
 
 
 def estimated_pair_similarities(signatures: pl.DataFrame, params: SignatureParams) -> np.ndarray:
@@ -209,21 +231,24 @@ def sample_histogram_from_sets(
     n_total = total_entities or members.size
     rng = np.random.default_rng(seed)
     order = rng.permutation(members.size)[: min(sample, members.size)]
-    starts, posted = postings(members)
-    affordable = int(np.searchsorted(np.cumsum(visit_costs(members, starts)[order]), AGAINST_ALL_BUDGET, "right"))
+    if members.size > len(order):
+        offsets, dense, n_ids = restricted_index(members, members.subset(order).elements)
+        starts, posted = postings_of(offsets, dense, n_ids)
+        costs = visit_costs(offsets, dense, starts)[order]
+        affordable = int(np.searchsorted(np.cumsum(costs), AGAINST_ALL_BUDGET, "right"))
+    else:
+        affordable = 0
     if members.size > len(order) and affordable >= min(MIN_AGAINST_ALL, len(order)):
         picked = np.sort(order[:affordable])
         counts, sums, identical = _against_all_histogram(
-            members.offsets, members.elements, starts, posted, picked, HISTOGRAM_BINS,
+            offsets, dense, starts, posted, members.set_sizes, picked, HISTOGRAM_BINS,
             2.0 if threshold is None else threshold, min(len(picked), 2 * numba.get_num_threads()),
         )
         # factor rescales from the input's own entity count to the requested total.
         return _make(counts, sums, len(picked), n_total, identical, "against_all", threshold,
                      factor=n_total / members.size)
     picked = np.sort(order)
-    sub = members.subset(picked)
-    starts, posted = postings(sub)
-    sims = _all_pairs_jaccard(sub.offsets, sub.elements, starts, posted)
+    sims = _within_jaccard(members.subset(picked))
     return histogram(sims, len(picked), n_total, threshold)
 
 

@@ -6,7 +6,7 @@ import xxhash
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from lshjob.hashing import fmix64_expr, fmix64_np, splitmix64_sequence, xxh64_strings
+from lshjob.hashing import fmix64_expr, fmix64_np, splitmix64_sequence, xxh64_integers, xxh64_strings
 
 MASK = (1 << 64) - 1
 
@@ -53,3 +53,19 @@ def test_splitmix64_first_outputs():
         0x6E789E6AA1B965F4,
         0x06C45D188009454F,
     ]
+
+
+@settings(max_examples=50, deadline=None)
+@given(st.lists(st.integers(min_value=-(2**63), max_value=2**63 - 1), min_size=1, max_size=300))
+def test_integer_hash_is_xxh64_of_decimal_text(values):
+    # Reference: the xxhash package (PyPI) over Python's own decimal text of each integer.
+    got = xxh64_integers(np.array(values, dtype=np.int64))
+    assert got.tolist() == [xxhash.xxh64_intdigest(str(v).encode()) for v in values]
+
+
+def test_unsigned_integer_hash_edges():
+    # Reference: the xxhash package; 0, the powers of ten around each digit count, 2**63 and 2**64 - 1.
+    values = [0, 2**63, 2**64 - 1] + [10**d + e for d in range(19) for e in (-1, 0)]
+    values = sorted(v for v in set(values) if 0 <= v < 2**64)
+    got = xxh64_integers(np.array(values, dtype=np.uint64))
+    assert got.tolist() == [xxhash.xxh64_intdigest(str(v).encode()) for v in values]

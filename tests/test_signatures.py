@@ -125,11 +125,27 @@ def test_signature_ignores_order_and_repeats(a, rnd):
     assert np.array_equal(x, y)
 
 
-def test_integer_and_text_keys_sign_alike():
-    p = SignatureParams(perms=16)
-    ints = pl.DataFrame({"entity": [1, 1, 2], "element": pl.Series([10, 20, 10]).cast(pl.String)})
-    text = pl.DataFrame({"entity": [1, 1, 2], "element": ["10", "20", "10"]})
-    assert sign_sets(ints, ["entity"], p)["signature"].to_list() == sign_sets(text, ["entity"], p)["signature"].to_list()
+@pytest.mark.parametrize("scheme", ["kperm", "oph"])
+def test_integer_and_text_keys_sign_alike(scheme):
+    # Integers hash through their decimal text (hashing.py), so both readings of a column agree;
+    # the membership path (codes, dictionary hashes) must agree with the row path too.
+    from lshjob.membership import Membership
+    from lshjob.signatures import sign_membership
+
+    p = SignatureParams(scheme=scheme, perms=16)
+    values = [10, 20, 10, -7, 0, 2**62]
+    ints = pl.DataFrame({"entity": [1, 1, 2, 2, 3, 3], "element": values})
+    text = ints.with_columns(pl.col("element").cast(pl.String))
+    unsigned = pl.DataFrame({"entity": [1, 1, 2], "element": pl.Series([2**64 - 1, 5, 5], dtype=pl.UInt64)})
+    by_rows = sign_sets(ints, ["entity"], p)["signature"].to_list()
+    assert by_rows == sign_sets(text, ["entity"], p)["signature"].to_list()
+    for rows in (ints, text):
+        sets = Membership.from_sets(rows)
+        assert sign_membership(sets, np.arange(sets.size), p).tolist() == by_rows
+    big = Membership.from_sets(unsigned)  # above int64: coded as text
+    assert big.text_hashes is not None
+    assert sign_membership(big, np.arange(2), p).tolist() == sign_sets(
+        unsigned.with_columns(pl.col("element").cast(pl.String)), ["entity"], p)["signature"].to_list()
 
 
 def test_set_size_estimate_within_its_error():
