@@ -94,3 +94,77 @@ def events_with_similar_pairs(entities: int, mean_size: float = 40.0, share: flo
     kept = base.filter(~pl.col("entity").is_in(pl.Series(targets).implode()))
     pl.concat([kept, copies]).sort("entity").write_parquet(path)
     return path
+
+
+BRANCH_PATRONS = 10_000
+
+
+def branch_network_events(entities: int, mean_size: float = 40.0, seed: int = 0) -> Path:
+    """A library network that grows by branches: a directory of Parquet files of
+    (entity, element) loans, generated a million patrons at a time (memory stays bounded at
+    any size) and cached under bench/cache/.
+
+    Each branch serves 10,000 patrons. A loan is of a title from the patron's own branch
+    catalogue with probability 0.85 (power-law popularity, as in :func:`long_tailed_events`)
+    and otherwise of a title from the network-wide catalogue (uniform over 20 titles per
+    patron). Set sizes are log-normal with mean ~mean_size; 10% of patrons are perturbed
+    copies of another patron of their branch (each loan replaced with probability
+    q ~ U(0, 0.6)). Patron numbers are a random permutation, so the file order says nothing.
+
+    Why branches: with one shared catalogue, the number of pairs above any threshold grows
+    with the square of the patron count and no method can be near-linear; here each patron
+    has a bounded number of look-alikes, as in a network that grows by adding branches.
+    """
+    CACHE.mkdir(exist_ok=True)
+    root = CACHE / f"branches_{entities}_{int(mean_size)}_{seed}"
+    if (root / "_done").exists():
+        return root
+    root.mkdir(exist_ok=True)
+    rng = np.random.default_rng(seed)
+    patron_ids = rng.permutation(entities).astype(np.int64)
+    step = 1_000_000
+    for part, first in enumerate(range(0, entities, step)):
+        n = min(step, entities - first)
+        _branch_chunk(first, n, patron_ids, mean_size, np.random.default_rng([seed, part])).write_parquet(
+            root / f"loans-{part:04d}.parquet", compression="zstd")
+    (root / "_done").touch()
+    return root
+
+
+def _branch_chunk(first, n, patron_ids, mean_size, rng) -> pl.DataFrame:
+    sigma = 1.0
+    mu = np.log(mean_size) - sigma**2 / 2
+    sizes = np.clip(np.round(rng.lognormal(mu, sigma, n)), 1, 5000).astype(np.int64)
+    local_index = np.arange(first, first + n)
+    branch = local_index // BRANCH_PATRONS
+    # perturbed copies: 10% of patrons copy another patron of the same branch
+    copy = rng.random(n) < 0.1
+    source = np.where(copy, branch * BRANCH_PATRONS + rng.integers(0, BRANCH_PATRONS, n) - first, np.arange(n))
+    source = np.clip(source, 0, n - 1)
+    sizes = np.where(copy, sizes[source], sizes)
+    total = int(sizes.sum())
+    owner = np.repeat(np.arange(n), sizes)
+    # loans of the "source" patron are drawn by the source's own stream: rebuild per owner
+    src_owner = source[owner]
+    row_in_set = np.arange(total) - np.repeat(np.cumsum(sizes) - sizes, sizes)
+    key = src_owner * 5000 + row_in_set  # same (source, position) -> same loan
+    u = _uniform_from_key(key, 1)
+    universe = 2 * BRANCH_PATRONS
+    local = np.minimum((u ** (-1 / 0.7)).astype(np.int64), universe) + (_uniform_from_key(key, 2) * 50).astype(np.int64) * universe
+    local_title = (first + src_owner) // BRANCH_PATRONS * (50 * universe + 1) + local
+    global_title = 10**12 + (_uniform_from_key(key, 3) * 20 * len(patron_ids)).astype(np.int64)
+    title = np.where(_uniform_from_key(key, 4) < 0.85, local_title, global_title)
+    q = rng.uniform(0, 0.6, n)[owner]
+    replaced = copy[owner] & (rng.random(total) < q)
+    title = np.where(replaced, 2 * 10**12 + rng.integers(0, 10**12, total), title)
+    return pl.DataFrame({"entity": patron_ids[first + owner], "element": title})
+
+
+def _uniform_from_key(key: np.ndarray, stream: int) -> np.ndarray:
+    """Uniforms in (0, 1) from a keyed mix (SplitMix64 finaliser), so a copy draws its
+    source's loans without storing them."""
+    z = (key.astype(np.uint64) * np.uint64(4) + np.uint64(stream)) * np.uint64(0x9E3779B97F4A7C15)
+    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    z = z ^ (z >> np.uint64(31))
+    return ((z >> np.uint64(11)).astype(np.float64) + 0.5) / 2.0**53

@@ -2,8 +2,8 @@
 
     python bench/scale.py --entities 1000000 [--scheme kperm|oph] [--memory 8GB]
 
-Generates long-tailed data once into bench/cache/ (log-normal set sizes, mean ~40, power-law
-elements, 10% perturbed copies), times a floor pass (polars reads the events, one 64-bit
+Generates a branch network once into bench/cache/ (bench/common.py branch_network_events:
+log-normal set sizes, mean ~40, power-law titles per branch, 10% perturbed copies), times a floor pass (polars reads the events, one 64-bit
 hash per event, minimum per entity), runs ``lshjob run`` at threshold 0.5 in a fresh
 process, and audits recall on a sample with ``lshjob audit``.
 """
@@ -21,30 +21,31 @@ from pathlib import Path
 import polars as pl
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import finish, events_with_similar_pairs, machine  # noqa: E402
+from common import branch_network_events, finish, machine  # noqa: E402
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--entities", type=int, default=100_000)
     ap.add_argument("--scheme", default="kperm")
+    ap.add_argument("--perms", type=int, default=128)
     ap.add_argument("--memory", default=None)
     ap.add_argument("--threshold", type=float, default=0.5)
     ap.add_argument("--audit", type=int, default=300)
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     start = time.perf_counter()
-    path = events_with_similar_pairs(args.entities)
+    path = branch_network_events(args.entities)
     generated = time.perf_counter() - start
-    n_events = pl.scan_parquet(path).select(pl.len()).collect().item()
+    n_events = pl.scan_parquet(f"{path}/*.parquet").select(pl.len()).collect().item()
 
     start = time.perf_counter()
-    pl.scan_parquet(path).group_by("entity").agg(pl.col("element").hash(1).min()).collect()
+    pl.scan_parquet(f"{path}/*.parquet").group_by("entity").agg(pl.col("element").hash(1).min()).collect()
     floor = time.perf_counter() - start
 
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
         cmd = [sys.executable, "-m", "lshjob.cli", "run", str(path), "--entity", "entity", "--element", "element",
-               "--threshold", str(args.threshold), "--scheme", args.scheme, "--out", f"{tmp}/idx", "--json",
+               "--threshold", str(args.threshold), "--scheme", args.scheme, "--perms", str(args.perms), "--out", f"{tmp}/idx", "--json",
                "--quiet"]
         if args.memory:
             cmd += ["--memory", args.memory]
@@ -60,7 +61,7 @@ def main() -> None:
     lines = [
         f"Machine: {machine()}",
         f"Data: {args.entities:,} entities, {n_events:,} events (generated in {generated:.0f} s, cached)",
-        f"Command: `python bench/scale.py --entities {args.entities} --scheme {args.scheme}"
+        f"Command: `python bench/scale.py --entities {args.entities} --scheme {args.scheme} --perms {args.perms}"
         + (f" --memory {args.memory}" if args.memory else "") + "`",
         f"Plan: {plan['mode']}, k={plan['perms']}, b={plan['bands']}, r={plan['rows']}, predicted recall "
         f"{plan['predicted']['expected_recall']:.3f}; memory budget {m['memory_budget_bytes'] / 2**30:.1f} GiB",

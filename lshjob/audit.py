@@ -15,7 +15,8 @@ import polars as pl
 
 from .errors import ParameterError
 from .identical import collapse_identical
-from .ingest import EventSpec, load_sets
+from .ingest import EventSpec
+from .loading import load_membership
 from .membership import Membership
 from .planner import candidate_probability
 from .publish import NEIGHBOURS, read_manifest
@@ -82,8 +83,7 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0) -> dic
     top_k = manifest["options"]["top_k"]
     plan = manifest["plan"]
     source = events if events is not None else manifest["inputs"]["source"]
-    rows, _ = load_sets(source, spec)
-    sets = Membership.from_sets(rows)
+    sets, _ = load_membership(source, spec)
     rng = np.random.default_rng(seed)
     picked = np.sort(rng.choice(sets.size, size=min(sample, sets.size), replace=False))
     offsets, dense, n_ids = restricted_index(sets, sets.subset(picked).elements)

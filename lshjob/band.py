@@ -11,7 +11,8 @@ Output contract (Parquet files, one per batch of bands): ``band`` Int32, ``bucke
 
 Memory: a batch of B bands holds n x B bucket keys (8 bytes each) plus polars' unpivoted
 copy (about 20 bytes a row), on top of the n x k signature matrix the caller holds; the
-batch size is chosen so that n x B x 28 bytes stays under ``batch_bytes``.
+batch size is chosen so that n x B x 28 bytes stays under ``batch_bytes``. The run calls
+this on slices of representatives, so the full signature matrix is never held.
 """
 
 from __future__ import annotations
@@ -53,6 +54,7 @@ def write_bucket_rows(
     out_dir: Path,
     batch_bytes: int = 1 << 30,
     progress=None,
+    prefix: str = "",
 ) -> tuple[list[Path], int]:
     """Hash each band of each representative's signature; write Parquet batches to out_dir.
 
@@ -74,7 +76,7 @@ def write_bucket_rows(
         long = wide.unpivot(index="rep", variable_name="band", value_name="bucket").select(
             pl.col("band").cast(pl.Int32), "bucket", "rep"
         )
-        path = out_dir / f"buckets-{first:05d}.parquet"
+        path = out_dir / f"buckets-{prefix}{first:05d}.parquet"
         long.write_parquet(path, compression="lz4", statistics=False)
         files.append(path)
         total += long.height

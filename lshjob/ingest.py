@@ -138,6 +138,14 @@ def scan_events(source: str | Path) -> tuple[pl.LazyFrame, list[Path]]:
 
 def load_sets(source: str | Path, spec: EventSpec) -> tuple[pl.DataFrame, IngestReport]:
     """Read events and return membership rows (contract in the module docstring)."""
+    frame, report, where = validated_events(source, spec)
+    return group_events(frame, spec, where, report), report
+
+
+def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame, IngestReport, str]:
+    """Check the event files against the spec (columns, types, nulls, time text) and return
+    the events as a lazy frame of the output columns (entity, [segment], [period], element,
+    weight), with the report so far and a short name of the input for messages."""
     lf, paths = scan_events(source)
     where = _where(paths)
     schema = lf.collect_schema()
@@ -149,7 +157,6 @@ def load_sets(source: str | Path, spec: EventSpec) -> tuple[pl.DataFrame, Ingest
             )
     _check_types(where, schema, spec)
     report = IngestReport(files=[str(p) for p in paths])
-
     key_names = [n for _, n in _named_columns(spec) if _ != "--count"]
     stats = lf.select(
         pl.len().alias("rows"),
@@ -177,18 +184,21 @@ def load_sets(source: str | Path, spec: EventSpec) -> tuple[pl.DataFrame, Ingest
             )
         report.null_rows_dropped = int(stats["__any_null"][0])
         lf = lf.drop_nulls(key_names)
-
     if spec.time is not None and schema[spec.time] == pl.String:
         _check_time_strings(lf, spec.time)
+    return lf.select(_select_exprs(spec, schema)), report, where
 
-    frame = lf.select(_select_exprs(spec, schema))
+
+def group_events(frame: pl.LazyFrame, spec: EventSpec, where: str, report: IngestReport,
+                 allow_empty: bool = False) -> pl.DataFrame:
+    """Events -> membership rows (module contract); adds its counts to ``report``."""
     keys = spec.key_columns
     try:
         grouped = frame.group_by([*keys, "element"]).agg(pl.col("weight").sum()).collect()
     except pl.exceptions.PolarsError as exc:
         raise InputError(f"{where}: could not read the events: {_short(exc)}") from exc
     sets = grouped.filter(pl.col("weight") >= spec.min_count).sort(keys)
-    if sets.height == 0:
+    if sets.height == 0 and not allow_empty:
         raise InputError(
             f"{where}: no element is left after filtering (--min-count {spec.min_count}); "
             "nothing to sign"
@@ -196,11 +206,11 @@ def load_sets(source: str | Path, spec: EventSpec) -> tuple[pl.DataFrame, Ingest
     n_sets = sets.select(keys).n_unique() if len(keys) > 1 else sets["entity"].n_unique()
     if sets.height < grouped.height:
         empty = grouped.select(keys).unique().join(sets.select(keys).unique(), on=keys, how="anti")
-        report.empty_after_filter = empty.height
-        report.empty_examples = [str(r) for r in empty.sort(keys).head(5).rows()]
-    report.membership_rows = sets.height
-    report.sets = n_sets
-    return sets, report
+        report.empty_after_filter += empty.height
+        report.empty_examples = (report.empty_examples + [str(r) for r in empty.sort(keys).head(5).rows()])[:5]
+    report.membership_rows += sets.height
+    report.sets += n_sets
+    return sets
 
 
 def _named_columns(spec: EventSpec) -> list[tuple[str, str]]:

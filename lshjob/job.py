@@ -20,17 +20,18 @@ import numpy as np
 import polars as pl
 
 from . import __version__, planner, similarity
-from .band import write_bucket_rows
+from . import band
 from .errors import InputError, ParameterError
 from .identical import collapse_identical
-from .ingest import EventSpec, load_sets
+from .ingest import EventSpec
 from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
+from .loading import load_membership
 from .membership import Membership
 from .progress import QUIET, StageProgress
 from .publish import neighbour_table, publish_index
 from .resources import current_bytes, default_memory, parse_size, peak_bytes, reset_peak
-from .signatures import SignatureParams, comparable, sign_sets, signature_array
-from .verify import verify_pairs
+from .signatures import SignatureParams, comparable, sign_membership
+from .verify import add_estimates, verify_pairs
 
 MIN_PLANNING_THRESHOLD = 1e-6
 
@@ -95,6 +96,21 @@ class _Stages:
 
         return _Ctx()
 
+    def part(self, name: str):
+        """Time one more piece of a stage that runs in pieces (seconds add up, peaks max)."""
+        stages = self
+
+        class _Part:
+            def __enter__(self):
+                reset_peak()
+                self.start = time.perf_counter()
+
+            def __exit__(self, *exc):
+                stages.seconds[name] = round(stages.seconds.get(name, 0.0) + time.perf_counter() - self.start, 3)
+                stages.peak[name] = max(stages.peak.get(name, 0), peak_bytes())
+
+        return _Part()
+
 
 def run_job(
     events: str | Path,
@@ -115,8 +131,7 @@ def run_job(
     started = time.perf_counter()
     try:
         with stages("ingest"):
-            sets_rows, report = load_sets(events, spec)
-            sets = Membership.from_sets(sets_rows)
+            sets, report = load_membership(events, spec)
         if sets.size < 2:
             raise InputError(f"{events}: only {sets.size} entity after ingest; a neighbour index needs at least 2")
         counts.update(events=report.rows_read, entities=sets.size, membership_rows=report.membership_rows,
@@ -143,18 +158,7 @@ def run_job(
             skew = None
         else:
             params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
-            with stages("sign"):
-                rep_keys = sets.keys.gather(reps)
-                rep_rows = sets_rows.filter(pl.col("entity").is_in(rep_keys.implode()))
-                matrix = comparable(signature_array(sign_sets(rep_rows, ["entity"], params)), params)
-            row_of = np.full(sets.size, -1, dtype=np.int64)
-            row_of[reps] = np.arange(len(reps))
-
-            with stages("band", plan["bands"]) as task:
-                files, n_bucket_rows = write_bucket_rows(
-                    matrix, reps, plan["bands"], plan["rows"], work / "buckets",
-                    batch_bytes=max(64 << 20, memory // 4), progress=task,
-                )
+            files, n_bucket_rows = _sign_and_band(sets, reps, params, plan, work / "buckets", memory, stages)
             counts["bucket_rows"] = n_bucket_rows
 
             with stages("join"):
@@ -168,7 +172,8 @@ def run_job(
 
             with stages("verify"):
                 verified = _verify_in_chunks(work / "candidates.parquet", joined["candidate_pairs"], sets,
-                                             matrix, row_of, options.threshold, memory)
+                                             options.threshold, memory)
+                verified = add_estimates(verified, sets, params)
             counts["verified_pairs"] = verified.height
 
         with stages("publish"):
@@ -203,14 +208,36 @@ VERIFY_BYTES_PER_PAIR = 64  # candidate row in polars and numpy, plus the float 
 MIN_VERIFY_SLICE = 1_000_000
 
 
-def _verify_in_chunks(path, n_pairs, sets, matrix, row_of, threshold, memory) -> pl.DataFrame:
+def _sign_and_band(sets, reps, params, plan, out_dir, memory, stages) -> tuple[list[Path], int]:
+    """Sign and band the representatives a slice at a time: a slice's signatures (raw,
+    densified, and polars' copy: about 3 x 8k bytes a row) take at most an eighth of the
+    budget, so memory does not grow with the number of entities beyond the sets themselves."""
+    per_row = 3 * 8 * params.perms + band.ROW_BYTES * plan["bands"]
+    step = int(max(10_000, memory // 8 // per_row))
+    files, total = [], 0
+    with stages.progress.stage("sign and band", len(reps)) as task:
+        for piece, lo in enumerate(range(0, len(reps), step)):
+            ids = reps[lo:lo + step]
+            with stages.part("sign"):
+                matrix = comparable(sign_membership(sets, ids, params), params)
+            with stages.part("band"):
+                got, rows = band.write_bucket_rows(matrix, ids, plan["bands"], plan["rows"], out_dir,
+                                                   batch_bytes=max(64 << 20, memory // 8), prefix=f"{piece:05d}-")
+            del matrix
+            files += got
+            total += rows
+            task.advance(len(ids))
+    return files, total
+
+
+def _verify_in_chunks(path, n_pairs, sets, threshold, memory) -> pl.DataFrame:
     """Verify candidates a slice at a time so memory stays bounded whatever their number;
     a slice is sized to a quarter of the budget."""
     step = max(MIN_VERIFY_SLICE, memory // 4 // VERIFY_BYTES_PER_PAIR)
     parts = []
     for offset in range(0, max(n_pairs, 1), step):
         chunk = pl.scan_parquet(path).slice(offset, step).collect()
-        parts.append(verify_pairs(chunk, sets, matrix, row_of, threshold))
+        parts.append(verify_pairs(chunk, sets, threshold))
     return pl.concat(parts)
 
 

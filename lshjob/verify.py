@@ -1,7 +1,7 @@
 """Verify stage: candidate pairs -> exact Jaccard from the element sets (not signatures).
 
 Each candidate's sets are intersected by a merge of their sorted element ids (compiled,
-both cores); the signature estimate (fraction of equal positions) is computed beside it.
+both cores); the signature estimate (fraction of equal positions) is added for the pairs kept.
 
 Output contract of :func:`verify_pairs`: DataFrame ``left_rep`` < ``right_rep`` (Int64),
 ``jaccard`` Float64 (exact: intersection / union of integer counts), ``estimate`` Float64,
@@ -16,6 +16,7 @@ import numpy as np
 import polars as pl
 
 from .membership import Membership
+from .signatures import SignatureParams, comparable, sign_membership
 
 
 @numba.njit(inline="always")
@@ -91,28 +92,32 @@ def signature_agreement(signatures, row_of, left, right):
     return out
 
 
-def verify_pairs(
-    candidates: pl.DataFrame,
-    sets: Membership,
-    signatures: np.ndarray,
-    row_of: np.ndarray,
-    threshold: float,
-) -> pl.DataFrame:
-    """Exact Jaccard and signature estimate for each candidate; keep those >= threshold.
-
-    ``signatures[row_of[e]]`` is entity e's signature.
-    """
+def verify_pairs(candidates: pl.DataFrame, sets: Membership, threshold: float) -> pl.DataFrame:
+    """Exact Jaccard of each candidate; keep those >= threshold (``estimate`` is filled by
+    :func:`add_estimates` once all candidates are verified)."""
     left = np.ascontiguousarray(candidates["left_rep"].to_numpy(), dtype=np.int64)
     right = np.ascontiguousarray(candidates["right_rep"].to_numpy(), dtype=np.int64)
     jac = jaccard_at_least(sets.offsets, sets.elements, left, right, threshold)
     keep = jac >= threshold
-    est = signature_agreement(signatures, row_of, left[keep], right[keep])
     return pl.DataFrame(
         {
             "left_rep": left[keep],
             "right_rep": right[keep],
             "jaccard": jac[keep],
-            "estimate": est,
             "bands_shared": candidates["bands_shared"].to_numpy()[keep].astype(np.int32),
         }
     )
+
+
+def add_estimates(verified: pl.DataFrame, sets: Membership, params: SignatureParams) -> pl.DataFrame:
+    """Add ``estimate``, the signature estimate of each verified pair, by signing again only
+    the sets that appear in a verified pair (no n x k matrix is kept for this)."""
+    left = verified["left_rep"].to_numpy()
+    right = verified["right_rep"].to_numpy()
+    ids = np.unique(np.concatenate([left, right]))
+    matrix = comparable(sign_membership(sets, ids, params), params)
+    row_of = np.full(sets.size, -1, dtype=np.int64)
+    row_of[ids] = np.arange(len(ids))
+    est = signature_agreement(matrix, row_of, np.ascontiguousarray(left), np.ascontiguousarray(right))
+    return verified.with_columns(pl.Series("estimate", est)).select(
+        "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
