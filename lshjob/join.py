@@ -32,7 +32,8 @@ class JoinSettings:
 
 
 def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
-    config = {"memory_limit": settings.memory_limit, "preserve_insertion_order": False}
+    config = {"memory_limit": settings.memory_limit, "preserve_insertion_order": False,
+              "enable_progress_bar": False}
     if settings.temp_directory is not None:
         config["temp_directory"] = settings.temp_directory
     if settings.threads is not None:
@@ -43,12 +44,14 @@ def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
 def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings, bands: int) -> dict:
     """Write candidate pairs to ``out`` (Parquet); return counts and the skew report."""
     files = [str(p) for p in bucket_files]
+
     params = {"max_bucket": settings.max_bucket}
     con = connect(settings)
     try:
+        bucket_rows = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": files}).fetchone()[0]
         con.execute(load_sql("sized_bucket_rows"), {"bucket_files": files})
         con.execute(load_sql("split_oversize"), {"max_bucket": settings.max_bucket, "bands": bands})
-        skew_row = con.execute(load_sql("bucket_skew"), params).fetchone()
+        skew_row = con.execute(load_sql("bucket_skew"), {**params, "bucket_rows": bucket_rows}).fetchone()
         columns = [d[0] for d in con.description]
         skew = {name: int(value) for name, value in zip(columns, skew_row)}
         query = load_sql("candidates").strip().rstrip(";")

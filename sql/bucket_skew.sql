@@ -1,5 +1,6 @@
 -- sql/bucket_skew.sql: the bucket-size profile and what the size cap cost.
--- Input : sized_bucket_rows, split_rows; $max_bucket.
+-- Input : sized_bucket_rows (shared buckets only), split_rows; $max_bucket; $bucket_rows, the
+--         number of all bucket rows (buckets of one = $bucket_rows - rows in shared buckets).
 -- Output: one row: buckets, buckets with a pair, oversize buckets, the rows in them, the pairs
 --         they hold, the pairs their split keeps, the pairs left out (held minus kept),
 --         sub-buckets still over the cap, the pairs of buckets within the cap, the largest bucket.
@@ -22,8 +23,8 @@ split_summary AS (
 ),
 bucket_summary AS (
     SELECT
-        count(*) AS buckets,
-        count(*) FILTER (WHERE size >= 2) AS buckets_with_pairs,
+        $bucket_rows - coalesce(sum(size), 0) + count(*) AS buckets,
+        count(*) AS buckets_with_pairs,
         count(*) FILTER (WHERE size > $max_bucket) AS oversize_buckets,
         coalesce(sum(size) FILTER (WHERE size > $max_bucket), 0)::BIGINT AS oversize_rows,
         coalesce(sum(size * (size - 1) // 2) FILTER (WHERE size > $max_bucket), 0)::HUGEINT AS oversize_pairs,

@@ -3,7 +3,9 @@
 -- Output: temporary table split_rows(band, bucket, sub, rep, size): each row of an oversize
 --         bucket of band j, keyed further by the representative's bucket in band (j+1) mod b.
 -- Members of one sub-bucket agree on 2r signature positions instead of r, so a crowd of
--- weakly similar sets falls apart while strongly similar pairs stay together.
+-- weakly similar sets falls apart while strongly similar pairs stay together. A member
+-- alone in its next-band bucket (not in sized_bucket_rows) would be alone in its
+-- sub-bucket too, so the inner join drops it without losing a pair.
 CREATE OR REPLACE TEMP TABLE split_rows AS
 WITH oversize_rows AS (
     SELECT band, bucket, rep
