@@ -50,7 +50,9 @@ def main() -> None:
         if args.memory:
             cmd += ["--memory", args.memory]
         start = time.perf_counter()
-        done = subprocess.run(cmd, check=True, capture_output=True, text=True)
+        done = subprocess.run(cmd, capture_output=True, text=True)
+        if done.returncode != 0:
+            sys.exit(f"lshjob run failed (exit {done.returncode}):\n{done.stderr[-3000:]}")
         wall = time.perf_counter() - start
         m = json.loads(done.stdout)
         audit = json.loads(subprocess.run(

@@ -11,6 +11,7 @@ import polars as pl
 from . import planner, similarity
 from .errors import InputError, ParameterError
 from .ingest import EventSpec, load_sets
+from .loading import load_membership
 from .planner import PairHistogram
 from .progress import QUIET, StageProgress
 from .signatures import (
@@ -19,6 +20,7 @@ from .signatures import (
     params_from_metadata,
     read_signatures,
     sign_sets,
+    signature_table,
     signature_metadata,
     write_signatures,
 )
@@ -37,11 +39,18 @@ def sign_file(
     Nothing is written when the input is rejected.
     """
     started = time.perf_counter()
+    one_set_per_entity = spec.key_columns == ["entity"]
     with progress.stage("ingest"):
-        sets, report = load_sets(events, spec)
+        if one_set_per_entity:  # streaming loader: no group-by over (entity, element)
+            members, report = load_membership(events, spec)
+        else:
+            sets, report = load_sets(events, spec)
     ingested = time.perf_counter()
     with progress.stage("sign"):
-        table = sign_sets(sets, spec.key_columns, params)
+        if one_set_per_entity:
+            table = signature_table(members, params)
+        else:
+            table = sign_sets(sets, spec.key_columns, params)
     signed = time.perf_counter()
     meta = signature_metadata(params, spec.key_columns, period_unit=spec.period)
     write_signatures(table, out, meta)

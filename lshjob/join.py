@@ -32,13 +32,14 @@ class JoinSettings:
 
 
 def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
-    config = {"memory_limit": settings.memory_limit, "preserve_insertion_order": False,
-              "enable_progress_bar": False}
+    config = {"memory_limit": settings.memory_limit, "preserve_insertion_order": False}
     if settings.temp_directory is not None:
         config["temp_directory"] = settings.temp_directory
     if settings.threads is not None:
         config["threads"] = settings.threads
-    return duckdb.connect(config=config)
+    con = duckdb.connect(config=config)
+    con.execute("SET enable_progress_bar = false")  # lshjob shows its own progress
+    return con
 
 
 def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings, bands: int) -> dict:

@@ -112,6 +112,14 @@ def sign_membership(sets: Membership, ids: np.ndarray, params: SignatureParams) 
     return signature_matrix(sets.element_hashes(codes), offsets, params)
 
 
+def signature_table(sets: Membership, params: SignatureParams) -> pl.DataFrame:
+    """The signature table (module contract, key ``entity``) of every set of a Membership."""
+    matrix = sign_membership(sets, np.arange(sets.size), params)
+    return pl.DataFrame({"entity": sets.keys}).with_columns(
+        signature_column(matrix), pl.Series("set_size", sets.set_sizes, dtype=pl.UInt32)
+    )
+
+
 def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:
     """Convenience for small inputs and tests: one signature row per list of element keys."""
     flat = [str(x) for s in sets for x in dict.fromkeys(s)]
