@@ -41,7 +41,12 @@ def neighbour_table(
 ) -> pl.DataFrame:
     """Expand representative pairs to entities, rank and cut at top_k (module contract)."""
     cap = top_k + 1
-    members = pl.DataFrame({"id": np.arange(len(rep_of), dtype=np.int64), "rep": rep_of.astype(np.int64)})
+    # Only entities of a verified pair or of a group of identical sets can have neighbours.
+    involved = np.bincount(rep_of, minlength=len(rep_of)) > 1
+    involved[verified["left_rep"].to_numpy()] = True
+    involved[verified["right_rep"].to_numpy()] = True
+    ids = np.flatnonzero(involved[rep_of])
+    members = pl.DataFrame({"id": ids.astype(np.int64), "rep": rep_of[ids].astype(np.int64)})
     group_size = members.group_by("rep").len()
     head = members.with_columns(pos=pl.int_range(pl.len()).over("rep")).filter(pl.col("pos") < cap)
 

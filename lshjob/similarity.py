@@ -145,11 +145,21 @@ def restricted_index(sets: Membership, wanted: np.ndarray) -> tuple[np.ndarray, 
     only the elements the sampled sets hold."""
     wanted = np.unique(wanted)
     keep = pl.Series(sets.elements).is_in(pl.Series(wanted).implode()).to_numpy()
-    counts = segment_sums(keep, sets.offsets)
-    offsets = np.zeros(sets.size + 1, dtype=np.int64)
-    np.cumsum(counts, out=offsets[1:])
+    offsets = _kept_offsets(sets.offsets, keep)
     dense = np.searchsorted(wanted, sets.elements[keep]).astype(np.int64)
     return offsets, dense, len(wanted)
+
+
+@numba.njit(parallel=True, cache=True)
+def _kept_offsets(offsets, keep):
+    n = len(offsets) - 1
+    counts = np.zeros(n + 1, dtype=np.int64)
+    for i in numba.prange(n):
+        c = 0
+        for j in range(offsets[i], offsets[i + 1]):
+            c += keep[j]
+        counts[i + 1] = c
+    return np.cumsum(counts)
 
 
 def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:
