@@ -7,12 +7,15 @@ band share its bucket; different rows collide with probability about 2**-64 per 
 verification rejects such pairs anyway.
 
 Output contract (Parquet files, one per batch of bands): ``band`` Int32, ``bucket`` UInt64,
-``rep`` Int64; one row per (band, representative).
+``rep`` Int64; one row per (band, representative) whose bucket holds at least one other
+representative. The run first builds the wide key table (``rep`` and one key column per band;
+8 bytes per band and representative) a slice of representatives at a time, so the full
+signature matrix is never held; then writes each band's shared buckets. Buckets of one,
+most of them, are never written: the join would only discard them.
 
 Memory: a batch of B bands holds n x B bucket keys (8 bytes each) plus polars' unpivoted
 copy (about 20 bytes a row), on top of the n x k signature matrix the caller holds; the
-batch size is chosen so that n x B x 28 bytes stays under ``batch_bytes``. The run calls
-this on slices of representatives, so the full signature matrix is never held.
+batch size is chosen so that n x B x 28 bytes stays under ``batch_bytes``.
 """
 
 from __future__ import annotations
@@ -42,44 +45,55 @@ def bucket_columns(frame: pl.DataFrame, bands: range, rows: int) -> pl.DataFrame
     return frame.select("rep", *names)
 
 
-def bands_per_batch(n_rows: int, bands: int, batch_bytes: int) -> int:
-    return int(max(1, min(bands, batch_bytes // max(1, n_rows * ROW_BYTES))))
-
-
-def write_bucket_rows(
-    signatures: np.ndarray,
-    rep_ids: np.ndarray,
-    bands: int,
-    rows: int,
-    out_dir: Path,
-    batch_bytes: int = 1 << 30,
-    progress=None,
-    prefix: str = "",
-) -> tuple[list[Path], int]:
-    """Hash each band of each representative's signature; write Parquet batches to out_dir.
-
-    Returns the files written and the number of bucket rows.
-    """
-    out_dir.mkdir(parents=True, exist_ok=True)
-    n, k = signatures.shape
+def bucket_keys(signatures: np.ndarray, rep_ids: np.ndarray, bands: int, rows: int) -> pl.DataFrame:
+    """The wide key table of a slice of representatives: ``rep`` and one UInt64 column per
+    band (named by the band number) holding its bucket key."""
     frame = pl.DataFrame(
         {
             "rep": rep_ids.astype(np.int64),
             "sig": pl.Series(signatures[:, : bands * rows], dtype=pl.Array(pl.UInt64, bands * rows)),
         }
     )
-    step = bands_per_batch(n, bands, batch_bytes)
+    return bucket_columns(frame, range(bands), rows)
+
+
+def bucket_rows(signatures: np.ndarray, rep_ids: np.ndarray, bands: int, rows: int) -> pl.DataFrame:
+    """Every bucket row (``band``, ``bucket``, ``rep``) of the given signatures."""
+    return _long(bucket_keys(signatures, rep_ids, bands, rows), range(bands))
+
+
+def _long(keys: pl.DataFrame, bands: range) -> pl.DataFrame:
+    return keys.select("rep", *[str(j) for j in bands]).unpivot(
+        index="rep", variable_name="band", value_name="bucket"
+    ).select(pl.col("band").cast(pl.Int32), "bucket", "rep")
+
+
+def write_shared_bucket_rows(
+    keys: pl.DataFrame, bands: int, out_dir: Path, batch_bytes: int = 1 << 30, progress=None
+) -> tuple[list[Path], int]:
+    """Write the rows of buckets holding two or more representatives (one Parquet file per
+    batch of bands); buckets of one can form no pair and are only counted. ``keys`` is the
+    wide key table of all representatives (:func:`bucket_keys`, slices concatenated).
+
+    Returns the files written and the number of rows written."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    step = bands_per_batch(keys.height, bands, batch_bytes)
     files, total = [], 0
     for first in range(0, bands, step):
         batch = range(first, min(bands, first + step))
-        wide = bucket_columns(frame, batch, rows)
-        long = wide.unpivot(index="rep", variable_name="band", value_name="bucket").select(
-            pl.col("band").cast(pl.Int32), "bucket", "rep"
-        )
-        path = out_dir / f"buckets-{prefix}{first:05d}.parquet"
-        long.write_parquet(path, compression="lz4", statistics=False)
+        shared = pl.concat([
+            keys.select(pl.lit(j, dtype=pl.Int32).alias("band"), pl.col(str(j)).alias("bucket"), "rep")
+            .filter(pl.col("bucket").is_duplicated())
+            for j in batch
+        ])
+        path = out_dir / f"buckets-{first:05d}.parquet"
+        shared.write_parquet(path, compression="lz4", statistics=False)
         files.append(path)
-        total += long.height
+        total += shared.height
         if progress is not None:
             progress.advance(len(batch))
     return files, total
+
+
+def bands_per_batch(n_rows: int, bands: int, batch_bytes: int) -> int:
+    return int(max(1, min(bands, batch_bytes // max(1, n_rows * ROW_BYTES))))

@@ -158,15 +158,17 @@ def run_job(
             skew = None
         else:
             params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
-            files, n_bucket_rows = _sign_and_band(sets, reps, params, plan, work / "buckets", memory, stages)
+            files, shared_rows, n_bucket_rows = _sign_and_band(sets, reps, params, plan, work / "buckets",
+                                                               memory, stages)
             counts["bucket_rows"] = n_bucket_rows
+            counts["shared_bucket_rows"] = shared_rows
 
             with stages("join"):
                 # DuckDB gets what the budget leaves beside the sets and signatures held here.
                 duck = max(memory - current_bytes(), memory // 4, 128 * 2**20)
                 settings = JoinSettings(memory_limit=f"{duck // 2**20}MiB",
                                         temp_directory=str(work / "spill"), max_bucket=options.max_bucket)
-                joined = candidate_pairs(files, work / "candidates.parquet", settings, plan["bands"])
+                joined = candidate_pairs(files, work / "candidates.parquet", settings, plan["bands"], n_bucket_rows)
             skew = joined["skew"]
             counts["candidate_pairs"] = joined["candidate_pairs"]
 
@@ -208,26 +210,29 @@ VERIFY_BYTES_PER_PAIR = 64  # candidate row in polars and numpy, plus the float 
 MIN_VERIFY_SLICE = 1_000_000
 
 
-def _sign_and_band(sets, reps, params, plan, out_dir, memory, stages) -> tuple[list[Path], int]:
-    """Sign and band the representatives a slice at a time: a slice's signatures (raw,
-    densified, and polars' copy: about 3 x 8k bytes a row) take at most an eighth of the
-    budget, so memory does not grow with the number of entities beyond the sets themselves."""
-    per_row = 3 * 8 * params.perms + band.ROW_BYTES * plan["bands"]
+def _sign_and_band(sets, reps, params, plan, out_dir, memory, stages) -> tuple[list[Path], int, int]:
+    """Sign the representatives a slice at a time and keep only their bucket keys (8 bytes
+    per band): a slice's signatures (raw, densified and polars' copy: about 3 x 8k bytes a
+    row) take at most an eighth of the budget. Then write the shared buckets' rows.
+    Returns (files, rows written, all bucket rows)."""
+    bands, rows = plan["bands"], plan["rows"]
+    per_row = 3 * 8 * params.perms + band.ROW_BYTES * bands
     step = int(max(10_000, memory // 8 // per_row))
-    files, total = [], 0
+    slices = []
     with stages.progress.stage("sign and band", len(reps)) as task:
-        for piece, lo in enumerate(range(0, len(reps), step)):
+        for lo in range(0, len(reps), step):
             ids = reps[lo:lo + step]
             with stages.part("sign"):
                 matrix = comparable(sign_membership(sets, ids, params), params)
             with stages.part("band"):
-                got, rows = band.write_bucket_rows(matrix, ids, plan["bands"], plan["rows"], out_dir,
-                                                   batch_bytes=max(64 << 20, memory // 8), prefix=f"{piece:05d}-")
+                slices.append(band.bucket_keys(matrix, ids, bands, rows))
             del matrix
-            files += got
-            total += rows
             task.advance(len(ids))
-    return files, total
+    with stages.part("band"):
+        keys = pl.concat(slices)
+        del slices
+        files, written = band.write_shared_bucket_rows(keys, bands, out_dir, batch_bytes=max(64 << 20, memory // 8))
+    return files, written, keys.height * bands
 
 
 def _verify_in_chunks(path, n_pairs, sets, threshold, memory) -> pl.DataFrame:

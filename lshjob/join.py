@@ -42,14 +42,19 @@ def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
     return con
 
 
-def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings, bands: int) -> dict:
-    """Write candidate pairs to ``out`` (Parquet); return counts and the skew report."""
+def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings, bands: int,
+                    bucket_rows: int | None = None) -> dict:
+    """Write candidate pairs to ``out`` (Parquet); return counts and the skew report.
+
+    ``bucket_rows`` is the number of all bucket rows when the files hold only the rows of
+    shared buckets (lshjob/band.py); by default, the files' own row count."""
     files = [str(p) for p in bucket_files]
 
     params = {"max_bucket": settings.max_bucket}
     con = connect(settings)
     try:
-        bucket_rows = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": files}).fetchone()[0]
+        if bucket_rows is None:
+            bucket_rows = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": files}).fetchone()[0]
         con.execute(load_sql("sized_bucket_rows"), {"bucket_files": files})
         con.execute(load_sql("split_oversize"), {"max_bucket": settings.max_bucket, "bands": bands})
         skew_row = con.execute(load_sql("bucket_skew"), {**params, "bucket_rows": bucket_rows}).fetchone()

@@ -14,7 +14,7 @@ from typer.testing import CliRunner
 import lshjob
 from lshjob import EventSpec, ParameterError
 from lshjob.audit import audit_index
-from lshjob.band import write_bucket_rows
+from lshjob.band import bucket_rows
 from lshjob.cli import app
 from lshjob.job import RunOptions, run_job
 from lshjob.planner import candidate_probability
@@ -135,8 +135,7 @@ def test_oversize_buckets_are_split_and_counted(tmp_path):
 
     sets = lshjob.load_sets(src, SPEC)[0]
     matrix = signature_array(sign_sets(sets, ["entity"], SignatureParams(perms=64, seed=1)))
-    files, _ = write_bucket_rows(matrix, np.arange(40), 16, 4, tmp_path / "b")
-    rows_ = pl.read_parquet(files).with_columns(size=pl.len().over("band", "bucket"))
+    rows_ = bucket_rows(matrix, np.arange(40), 16, 4).with_columns(size=pl.len().over("band", "bucket"))
     sizes = rows_.group_by("band", "bucket").agg(pl.first("size"))["size"]
     big = sizes.filter(sizes > 10)
     nxt = rows_.select(pl.col("rep"), ((pl.col("band") - 1) % 16).alias("band"), pl.col("bucket").alias("sub"))
