@@ -16,7 +16,8 @@ Hashing", ICML 2017): an empty bin i takes the value of bin j for the first atte
 a = 1, 2, ... whose probe ``j = fast_range(fmix64(salt[2] XOR (i << 32 | a)), k)`` is not
 empty. The probe sequence depends only on (i, a) and the seed, so two sets that agree on
 the borrowed bin agree on the filled one, and the fraction of equal positions stays an
-unbiased estimate of Jaccard.
+unbiased estimate of Jaccard. The first 32 probes of every bin are tabled once per call
+(they depend only on the seed); later probes are computed as needed.
 """
 
 from __future__ import annotations
@@ -49,10 +50,30 @@ def sign_oph(h0, offsets, k, salts):
     return out
 
 
+PROBE_TABLE_DEPTH = 32
+
+
+@numba.njit(inline="always")
+def _probe(salt, i, a, k):
+    return fast_range(fmix64(salt ^ ((np.uint64(i) << np.uint64(32)) | np.uint64(a))), k)
+
+
+@numba.njit(cache=True)
+def probe_table(salt, k, depth):
+    """The first ``depth`` probes of every bin: they depend only on the seed, so they are
+    computed once per call instead of once per empty bin of every set."""
+    table = np.empty((k, depth), dtype=np.int64)
+    for i in range(k):
+        for a in range(depth):
+            table[i, a] = _probe(salt, i, a + 1, k)
+    return table
+
+
 @numba.njit(parallel=True, cache=True)
 def densify(signatures, salt):
     n, k = signatures.shape
     out = signatures.copy()
+    table = probe_table(salt, k, PROBE_TABLE_DEPTH)
     for g in numba.prange(n):
         row = signatures[g]
         filled = 0
@@ -64,13 +85,20 @@ def densify(signatures, salt):
         for i in range(k):
             if row[i] != EMPTY:
                 continue
-            a = np.uint64(1)
-            while True:
-                j = fast_range(fmix64(salt ^ ((np.uint64(i) << np.uint64(32)) | a)), k)
-                if row[j] != EMPTY:
-                    out[g, i] = row[j]
+            found = False
+            for a in range(PROBE_TABLE_DEPTH):
+                v = row[table[i, a]]
+                if v != EMPTY:
+                    out[g, i] = v
+                    found = True
                     break
-                a += np.uint64(1)
+            a = PROBE_TABLE_DEPTH + 1
+            while not found:  # rare: every tabled probe hit an empty bin
+                v = row[_probe(salt, i, a, k)]
+                if v != EMPTY:
+                    out[g, i] = v
+                    found = True
+                a += 1
     return out
 
 
