@@ -48,10 +48,11 @@ def load_membership(source: str | Path, spec: EventSpec) -> tuple[Membership, In
     codes = np.empty(n, dtype=np.int64)
     weights = np.empty(n if weighted else 0, dtype=np.float64)
     pos = 0
+    positions = _key_positions(keys)
     try:
         for batch in frame.collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
             m = batch.height
-            ids[pos:pos + m] = _positions(keys, batch["entity"])
+            ids[pos:pos + m] = positions(batch["entity"])
             element = batch["element"]
             if dictionary is None:
                 codes[pos:pos + m] = element.cast(pl.Int64).to_numpy()
@@ -64,7 +65,7 @@ def load_membership(source: str | Path, spec: EventSpec) -> tuple[Membership, In
         raise InputError(f"{where}: could not read the events: {exc}") from exc
     if pos != n:
         raise InputError(f"{where}: the files changed while being read ({n} events counted, {pos} read)")
-    offsets, elements, kept_weights = _group_by_entity(ids, codes, weights, len(keys))
+    offsets, elements, kept_weights = _group_by_entity(ids, codes, weights, len(keys), numba.get_num_threads())
     del ids, codes, weights
     sizes = _sort_and_merge(offsets, elements, kept_weights, float(spec.min_count), weighted)
     offsets, elements = _compact(offsets, elements, sizes)
@@ -84,17 +85,18 @@ def load_membership(source: str | Path, spec: EventSpec) -> tuple[Membership, In
     return Membership(keys.alias("entity"), offsets, elements, text_hashes), report
 
 
-def _positions(keys: pl.Series, values: pl.Series) -> np.ndarray:
-    """Position of each value in the sorted keys (every value is a key)."""
-    if keys.dtype.is_integer() and values.dtype == keys.dtype:
+def _key_positions(keys: pl.Series):
+    """A function mapping a batch of entity keys to their positions in the sorted ``keys``
+    (every value is a key). Dense-ish integer keys use a direct table built once."""
+    if keys.dtype.is_integer() and len(keys):
         k = keys.to_numpy().astype(np.int64)
-        span = int(k[-1]) - int(k[0]) if len(k) else 0
-        if span < DIRECT_TABLE_FACTOR * len(k):  # dense-ish integer keys: a direct table
+        span = int(k[-1]) - int(k[0])
+        if span < DIRECT_TABLE_FACTOR * len(k):
             table = np.full(span + 1, -1, dtype=np.int64)
             table[k - k[0]] = np.arange(len(k))
-            return _lookup(table, k[0], values.to_numpy().astype(np.int64))
-        return _search_sorted(k, values.to_numpy().astype(np.int64))
-    return keys.search_sorted(values).to_numpy()
+            return lambda values: _lookup(table, k[0], values.to_numpy().astype(np.int64, copy=False))
+        return lambda values: _search_sorted(k, values.to_numpy().astype(np.int64, copy=False))
+    return lambda values: keys.search_sorted(values).to_numpy()
 
 
 DIRECT_TABLE_FACTOR = 4
@@ -129,24 +131,36 @@ def _text_dictionary(frame: pl.LazyFrame) -> pl.Series | None:
     return frame.select(text.unique()).collect(engine="streaming")["element"].sort()
 
 
-@numba.njit(cache=True)
-def _group_by_entity(ids, codes, weights, n_keys):
-    """Counting sort of the events by entity id: (offsets, codes, weights) grouped."""
+@numba.njit(parallel=True, cache=True)
+def _group_by_entity(ids, codes, weights, n_keys, shares):
+    """Counting sort of the events by entity id: (offsets, codes, weights) grouped.
+
+    Parallel: each thread counts its share of the events per entity, the counts give each
+    (entity, share) its own output range, and each thread scatters its share there."""
+    n = len(codes)
+    counts = np.zeros((shares, n_keys), dtype=np.int64)
+    for s in numba.prange(shares):
+        for j in range(s * n // shares, (s + 1) * n // shares):
+            counts[s, ids[j]] += 1
     offsets = np.zeros(n_keys + 1, dtype=np.int64)
-    for i in ids:
-        offsets[i + 1] += 1
     for g in range(n_keys):
-        offsets[g + 1] += offsets[g]
-    fill = offsets[:-1].copy()
-    out = np.empty(len(codes), dtype=np.int64)
+        total = offsets[g]
+        for s in range(shares):
+            c = counts[s, g]
+            counts[s, g] = total  # now: where share s writes entity g
+            total += c
+        offsets[g + 1] = total
+    out = np.empty(n, dtype=np.int64)
     out_w = np.empty(len(weights), dtype=np.float64)
     weighted = len(weights) > 0
-    for j in range(len(codes)):
-        g = ids[j]
-        out[fill[g]] = codes[j]
-        if weighted:
-            out_w[fill[g]] = weights[j]
-        fill[g] += 1
+    for s in numba.prange(shares):
+        fill = counts[s]
+        for j in range(s * n // shares, (s + 1) * n // shares):
+            g = ids[j]
+            out[fill[g]] = codes[j]
+            if weighted:
+                out_w[fill[g]] = weights[j]
+            fill[g] += 1
     return offsets, out, out_w
 
 
