@@ -39,9 +39,12 @@ def main() -> None:
     generated = time.perf_counter() - start
     n_events = pl.scan_parquet(f"{path}/*.parquet").select(pl.len()).collect().item()
 
-    start = time.perf_counter()
-    pl.scan_parquet(f"{path}/*.parquet").group_by("entity").agg(pl.col("element").hash(1).min()).collect()
-    floor = time.perf_counter() - start
+    floors = []
+    for _ in range(3):  # the floor is short and noisy: best of three
+        start = time.perf_counter()
+        pl.scan_parquet(f"{path}/*.parquet").group_by("entity").agg(pl.col("element").hash(1).min()).collect()
+        floors.append(time.perf_counter() - start)
+    floor = min(floors)
 
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
         cmd = [sys.executable, "-m", "lshjob.cli", "run", str(path), "--entity", "entity", "--element", "element",
@@ -82,7 +85,8 @@ def main() -> None:
         "",
         f"Counts: bucket rows {c['bucket_rows']:,}, candidates {c['candidate_pairs']:,}, verified "
         f"{c['verified_pairs']:,}, published {c['published_rows']:,}.",
-        f"Floor pass {floor:.2f} s; run / floor = {wall / floor:.1f}x.",
+        f"Floor pass {floor:.2f} s (best of 3: {', '.join(f'{x:.2f}' for x in floors)}); "
+        f"run / floor = {wall / floor:.1f}x.",
         f"Audit ({audit['sampled_entities']} entities against {audit['compared_against']}): recall "
         f"{audit['recall']:.4f}, S-curve predicts {audit['predicted_recall']:.4f}, wrong pairs {audit['wrong_pairs']}.",
     ]

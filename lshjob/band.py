@@ -88,9 +88,11 @@ def write_shared_bucket_rows(
     files, total = [], 0
     for first in range(0, bands, step):
         batch = range(first, min(bands, first + step))
+        # one select, so polars finds the shared buckets of several bands at once
+        masks = keys.select([pl.col(str(j)).is_duplicated() for j in batch])
         shared = pl.concat([
             keys.select(pl.lit(j, dtype=pl.Int32).alias("band"), pl.col(str(j)).alias("bucket"), "rep")
-            .filter(pl.col("bucket").is_duplicated())
+            .filter(masks[str(j)])
             for j in batch
         ])
         path = out_dir / f"buckets-{first:05d}.parquet"
