@@ -31,7 +31,7 @@ def main() -> None:
     ap.add_argument("--perms", type=int, default=128)
     ap.add_argument("--memory", default=None)
     ap.add_argument("--threshold", type=float, default=0.5)
-    ap.add_argument("--audit", type=int, default=300)
+    ap.add_argument("--audit", type=int, default=2000, help="entities the audit samples")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     start = time.perf_counter()
@@ -87,8 +87,11 @@ def main() -> None:
         f"{c['verified_pairs']:,}, published {c['published_rows']:,}.",
         f"Floor pass {floor:.2f} s (best of 3: {', '.join(f'{x:.2f}' for x in floors)}); "
         f"run / floor = {wall / floor:.1f}x.",
-        f"Audit ({audit['sampled_entities']} entities against {audit['compared_against']}): recall "
-        f"{audit['recall']:.4f}, S-curve predicts {audit['predicted_recall']:.4f}, wrong pairs {audit['wrong_pairs']}.",
+        f"Audit ({audit['sampled_entities']} entities against {audit['compared_against']}, "
+        f"{audit['true_pairs']} true pairs): recall {audit['recall']:.4f}, S-curve predicts "
+        f"{audit['predicted_recall']:.4f}; over {audit['distinct_set_pairs']} distinct pairs of different sets "
+        f"{audit['distinct_recall']:.4f} vs {audit['distinct_predicted']:.4f} +/- {audit['distinct_se']:.4f} "
+        f"predicted; wrong pairs {audit['wrong_pairs']}.",
     ]
     finish(f"Scale, {args.entities:,} entities, {args.scheme}", "\n".join(lines), not args.no_write)
 
