@@ -58,7 +58,8 @@ def bucket_keys(signatures: np.ndarray, rep_ids: np.ndarray, bands: int, rows: i
     frame = pl.DataFrame(
         {
             "rep": rep_ids.astype(np.int64),
-            "sig": pl.Series(signatures[:, : bands * rows], dtype=pl.Array(pl.UInt64, bands * rows)),
+            # the whole (contiguous) matrix: a column slice would be copied first
+            "sig": pl.Series(np.ascontiguousarray(signatures), dtype=pl.Array(pl.UInt64, signatures.shape[1])),
         }
     )
     return bucket_columns(frame, range(bands), rows)
