@@ -216,6 +216,10 @@ def _sign_and_band(sets, reps, params, plan, out_dir, memory, stages) -> tuple[l
     row) take at most an eighth of the budget. Then write the shared buckets' rows.
     Returns (files, rows written, all bucket rows)."""
     bands, rows = plan["bands"], plan["rows"]
+    if params.scheme == "kperm":
+        # Bands read only the first b*r positions; k-permutation positions are independent
+        # (salts are a prefix of one sequence), so the rest is not computed here.
+        params = SignatureParams(scheme="kperm", perms=bands * rows, seed=params.seed)
     per_row = 3 * 8 * params.perms + band.ROW_BYTES * bands
     step = int(max(10_000, memory // 8 // per_row))
     slices = []

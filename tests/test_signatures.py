@@ -238,3 +238,12 @@ def test_sign_file_streaming_path_equals_the_grouped_path(tmp_path, demo_events,
     got, _ = read_signatures(tmp_path / "s.parquet")
     expected = sign_sets(load_sets(src, spec)[0], ["entity"], p)
     assert got.equals(expected)
+
+
+def test_kperm_positions_are_a_prefix_of_longer_signatures():
+    # Algebra: salts are one SplitMix64 sequence, so signing with k'=96 gives the first 96
+    # positions of k=128 (the run signs only the positions its bands read).
+    sets = [[f"t{i}" for i in range(n)] for n in (1, 7, 300)]
+    long = sign_element_lists(sets, SignatureParams(perms=128, seed=5))
+    short = sign_element_lists(sets, SignatureParams(perms=96, seed=5))
+    assert np.array_equal(long[:, :96], short)
