@@ -40,3 +40,22 @@ def test_rows_differing_in_one_position_never_share_a_bucket():
         sig[t + 1, t] ^= np.uint64(1 << (t * 7))
     rows = bucket_rows(sig, np.arange(9), bands=1, rows=8)
     assert rows["bucket"].n_unique() == 9
+
+
+def test_shared_bucket_rows_are_exactly_the_buckets_of_two_or_more(tmp_path):
+    # Oracle: polars group-by counts per (band, bucket) over every bucket row.
+    import polars as pl
+
+    from lshjob.band import write_shared_bucket_rows
+
+    rng = np.random.default_rng(6)
+    sig = rng.integers(0, 3, size=(500, 8), dtype=np.uint64)  # few values: many shared buckets
+    sig[:100] = rng.integers(0, 2**63, size=(100, 8), dtype=np.uint64)  # and many of one
+    keys = bucket_keys(sig, np.arange(500), bands=4, rows=2)
+    files, written = write_shared_bucket_rows(keys, 4, tmp_path / "b", batch_bytes=500 * 28 * 3)
+    assert len(files) == 2  # batches of three bands, then one
+    got = pl.read_parquet(files).sort("band", "bucket", "rep")
+    every = bucket_rows(sig, np.arange(500), bands=4, rows=2)
+    expected = every.filter(pl.len().over("band", "bucket") >= 2).sort("band", "bucket", "rep")
+    assert written == got.height == expected.height > 0
+    assert got.equals(expected)
