@@ -131,7 +131,7 @@ def run_job(
     started = time.perf_counter()
     try:
         with stages("ingest"):
-            sets, report = load_membership(events, spec)
+            sets, report = load_membership(events, spec, memory)
         if sets.size < 2:
             raise InputError(f"{events}: only {sets.size} entity after ingest; a neighbour index needs at least 2")
         counts.update(events=report.rows_read, entities=sets.size, membership_rows=report.membership_rows,

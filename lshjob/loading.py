@@ -32,16 +32,31 @@ from .ingest import EventSpec, IngestReport, validated_events
 from .membership import INT64_MAX, Membership
 
 BATCH_ROWS = 4_000_000
+BYTES_PER_EVENT = {False: 20, True: 36}  # id + code + grouped code (+ weights, twice)
 
 
-def load_membership(source: str | Path, spec: EventSpec) -> tuple[Membership, IngestReport]:
-    """Read events into a Membership (entities in sorted key order); see the module docstring."""
+def grouping_bytes(events: int, weighted: bool) -> int:
+    """Memory the loader needs at its peak for this many events (module docstring)."""
+    return events * BYTES_PER_EVENT[weighted]
+
+
+def load_membership(source: str | Path, spec: EventSpec, memory: int | None = None) -> tuple[Membership, IngestReport]:
+    """Read events into a Membership (entities in sorted key order); see the module docstring.
+
+    With ``memory`` (bytes), refuse before reading when grouping the events would need more."""
     if spec.key_columns != ["entity"]:
         raise ParameterError("load_membership builds one set per entity; segments and periods go through load_sets")
     frame, report, where = validated_events(source, spec)
+    weighted = spec.count is not None or spec.min_count > 1
+    need = grouping_bytes(report.rows_read - report.null_rows_dropped, weighted)
+    if memory is not None and need > memory:
+        raise ParameterError(
+            f"{where}: grouping {report.rows_read:,} events into sets needs about {need / 2**30:.1f} GiB "
+            f"({BYTES_PER_EVENT[weighted]} bytes an event), more than the memory budget of "
+            f"{memory / 2**30:.1f} GiB; raise --memory, or split the input by entity and run each part"
+        )
     keys = frame.select(pl.col("entity").unique()).collect(engine="streaming")["entity"].sort()
     dictionary = _text_dictionary(frame)
-    weighted = spec.count is not None or spec.min_count > 1
     n = report.rows_read - report.null_rows_dropped
     id_type = np.uint32 if len(keys) < 2**32 else np.int64
     ids = np.empty(n, dtype=id_type)

@@ -281,3 +281,17 @@ def test_one_entity_is_refused_clearly(tmp_path):
     src = write(pl.DataFrame({"patron": ["a", "a"], "title": ["x", "y"]}), tmp_path)
     with pytest.raises(lshjob.InputError, match="only 1 entity"):
         run_job(src, SPEC, RunOptions(threshold=0.5), tmp_path / "idx")
+
+
+def test_a_budget_too_small_for_the_sets_is_refused_before_reading(tmp_path, demo_events):
+    # The loader needs 20 bytes an event (lshjob/loading.py); a budget below that is refused
+    # with the figures, naming the input.
+    from lshjob import ParameterError
+    from lshjob.loading import load_membership
+
+    src = write(demo_events[0], tmp_path)
+    n = demo_events[0].height
+    with pytest.raises(ParameterError, match=rf"{src}: grouping {n:,} events into sets needs about"):
+        load_membership(src, SPEC, memory=20 * n - 1)
+    sets, _ = load_membership(src, SPEC, memory=20 * n)
+    assert sets.size > 0
