@@ -38,9 +38,10 @@ def fast_range(h, k):
 @numba.njit(parallel=True, cache=True)
 def sign_oph(h0, offsets, k, salts):
     n = offsets.shape[0] - 1
-    out = np.full((n, k), EMPTY, dtype=np.uint64)
+    out = np.empty((n, k), dtype=np.uint64)  # filled row by row: pages first touched in parallel
     for g in numba.prange(n):
         row = out[g]
+        row[:] = EMPTY
         for j in range(offsets[g], offsets[g + 1]):
             x = h0[j]
             b = fast_range(fmix64(x ^ salts[0]), k)

@@ -70,9 +70,10 @@ class SignatureParams:
 def _sign_kperm(h0, offsets, salts):
     n = offsets.shape[0] - 1
     k = salts.shape[0]
-    out = np.full((n, k), np.uint64(0xFFFFFFFFFFFFFFFF), dtype=np.uint64)
+    out = np.empty((n, k), dtype=np.uint64)  # filled row by row: pages first touched in parallel
     for g in numba.prange(n):
         row = out[g]
+        row[:] = np.uint64(0xFFFFFFFFFFFFFFFF)
         for j in range(offsets[g], offsets[g + 1]):
             x = h0[j]
             for i in range(k):
@@ -108,7 +109,12 @@ def comparable(matrix: np.ndarray, params: SignatureParams) -> np.ndarray:
 
 def sign_membership(sets: Membership, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
     """Signatures (len(ids) x k) of the sets ``ids`` of a :class:`~lshjob.membership.Membership`."""
-    offsets, codes = gather_sets(sets.offsets, sets.elements, np.ascontiguousarray(ids, dtype=np.int64))
+    ids = np.ascontiguousarray(ids, dtype=np.int64)
+    if len(ids) and ids[-1] - ids[0] == len(ids) - 1 and np.all(np.diff(ids) == 1):  # a run: no copy
+        lo, hi = sets.offsets[ids[0]], sets.offsets[ids[-1] + 1]
+        offsets, codes = sets.offsets[ids[0]:ids[-1] + 2] - lo, sets.elements[lo:hi]
+    else:
+        offsets, codes = gather_sets(sets.offsets, sets.elements, ids)
     return signature_matrix(sets.element_hashes(codes), offsets, params)
 
 
