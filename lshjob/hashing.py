@@ -172,7 +172,8 @@ def _decimal_digits(v, negative, buf):
 
 
 @numba.njit(parallel=True, cache=True)
-def _xxh64_signed(values, seed):
+def _xxh64_decimal(values, seed):
+    """Compiled once per dtype (int64, uint64); for uint64 the sign test is always false."""
     n = values.shape[0]
     out = np.empty(n, dtype=np.uint64)
     chunks = max(1, min(n // 4096, 64))
@@ -188,26 +189,14 @@ def _xxh64_signed(values, seed):
     return out
 
 
-@numba.njit(parallel=True, cache=True)
-def _xxh64_unsigned(values, seed):
-    n = values.shape[0]
-    out = np.empty(n, dtype=np.uint64)
-    chunks = max(1, min(n // 4096, 64))
-    for c in numba.prange(chunks):
-        buf = np.empty(24, dtype=np.uint8)
-        for j in range(c * n // chunks, (c + 1) * n // chunks):
-            out[j] = _xxh64_one(buf, 0, _decimal_digits(values[j], False, buf), seed)
-    return out
-
-
 def xxh64_integers(values: np.ndarray, seed: int = 0) -> np.ndarray:
     """XXH64 of each integer's decimal text (``-`` for negatives), computed without building
     strings: equal to ``xxh64_strings`` of the values cast to text, so an element read as
     integer 42 and as string "42" hash alike."""
     values = np.ascontiguousarray(values)
-    if values.dtype == np.uint64:
-        return _xxh64_unsigned(values, U64(seed))
-    return _xxh64_signed(values.astype(np.int64, copy=False), U64(seed))
+    if values.dtype != np.uint64:
+        values = values.astype(np.int64, copy=False)
+    return _xxh64_decimal(values, U64(seed))
 
 
 def element_hashes(values: pl.Series, seed: int = 0) -> np.ndarray:
