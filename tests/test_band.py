@@ -3,17 +3,9 @@
 import numpy as np
 
 from lshjob.band import BAND_MULTIPLIER, bucket_keys, bucket_rows
+from test_hashing import fmix64_reference as fmix64  # MurmurHash3 fmix64 in Python integers
 
 MASK = (1 << 64) - 1
-
-
-def fmix64(x: int) -> int:
-    # MurmurHash3 fmix64 written from its published definition with Python integers.
-    x ^= x >> 33
-    x = (x * 0xFF51AFD7ED558CCD) & MASK
-    x ^= x >> 33
-    x = (x * 0xC4CEB9FE1A85EC53) & MASK
-    return x ^ (x >> 33)
 
 
 def test_bucket_keys_follow_the_definition():
