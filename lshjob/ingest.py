@@ -189,8 +189,7 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
     return lf.select(_select_exprs(spec, schema)), report, where
 
 
-def group_events(frame: pl.LazyFrame, spec: EventSpec, where: str, report: IngestReport,
-                 allow_empty: bool = False) -> pl.DataFrame:
+def group_events(frame: pl.LazyFrame, spec: EventSpec, where: str, report: IngestReport) -> pl.DataFrame:
     """Events -> membership rows (module contract); adds its counts to ``report``."""
     keys = spec.key_columns
     try:
@@ -198,7 +197,7 @@ def group_events(frame: pl.LazyFrame, spec: EventSpec, where: str, report: Inges
     except pl.exceptions.PolarsError as exc:
         raise InputError(f"{where}: could not read the events: {_short(exc)}") from exc
     sets = grouped.filter(pl.col("weight") >= spec.min_count).sort(keys)
-    if sets.height == 0 and not allow_empty:
+    if sets.height == 0:
         raise InputError(
             f"{where}: no element is left after filtering (--min-count {spec.min_count}); "
             "nothing to sign"

@@ -48,17 +48,6 @@ class Membership:
         elements = np.ascontiguousarray(frame["code"].to_numpy(), dtype=np.int64)
         return cls(runs["value"].alias("entity"), offsets, elements, text_hashes)
 
-    @classmethod
-    def concat(cls, parts: list["Membership"]) -> "Membership":
-        """Entities of several memberships (same coding, disjoint keys), one after another."""
-        if len(parts) == 1:
-            return parts[0]
-        sizes = np.concatenate([np.diff(p.offsets) for p in parts])
-        offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
-        np.cumsum(sizes, out=offsets[1:])
-        return cls(pl.concat([p.keys for p in parts]), offsets,
-                   np.concatenate([p.elements for p in parts]), parts[0].text_hashes)
-
     @property
     def size(self) -> int:
         return len(self.offsets) - 1
