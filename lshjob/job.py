@@ -30,7 +30,7 @@ from .membership import Membership
 from .progress import QUIET, StageProgress
 from .publish import neighbour_table, publish_index
 from .resources import current_bytes, default_memory, parse_size, peak_bytes, reset_peak
-from .signatures import SignatureParams, comparable, sign_membership
+from .signatures import SignatureParams, comparable_by_position
 from .verify import add_estimates, verify_pairs
 
 MIN_PLANNING_THRESHOLD = 1e-6
@@ -212,7 +212,7 @@ MIN_VERIFY_SLICE = 1_000_000
 
 def _sign_and_band(sets, reps, params, plan, out_dir, memory, stages) -> tuple[list[Path], int, int]:
     """Sign the representatives a slice at a time and keep only their bucket keys (8 bytes
-    per band): a slice's signatures (raw, densified and polars' copy: about 3 x 8k bytes a
+    per band): a slice's signatures (raw and densified, laid out by position; polars reads them without a copy: at most 2 x 8k bytes a
     row) take at most an eighth of the budget. Then write the shared buckets' rows.
     Returns (files, rows written, all bucket rows)."""
     bands, rows = plan["bands"], plan["rows"]
@@ -227,10 +227,10 @@ def _sign_and_band(sets, reps, params, plan, out_dir, memory, stages) -> tuple[l
         for lo in range(0, len(reps), step):
             ids = reps[lo:lo + step]
             with stages.part("sign"):
-                matrix = comparable(sign_membership(sets, ids, params), params)
+                columns = comparable_by_position(sets, ids, params)
             with stages.part("band"):
-                slices.append(band.bucket_keys(matrix, ids, bands, rows))
-            del matrix
+                slices.append(band.bucket_keys_by_position(columns, ids, bands, rows))
+            del columns
             task.advance(len(ids))
     with stages.part("band"):
         keys = pl.concat(slices)

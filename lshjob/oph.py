@@ -70,37 +70,49 @@ def probe_table(salt, k, depth):
     return table
 
 
+CHUNK = 256  # sets per parallel task: one row buffer each
+
+
 @numba.njit(parallel=True, cache=True)
-def densify(signatures, salt):
+def densify(signatures, salt, by_position):
+    """Densified copy of (n x k) stored signatures; (k x n) when ``by_position``."""
     n, k = signatures.shape
-    out = signatures.copy()
+    out = np.empty((k, n) if by_position else (n, k), dtype=np.uint64)
     table = probe_table(salt, k, PROBE_TABLE_DEPTH)
-    for g in numba.prange(n):
-        row = signatures[g]
-        filled = 0
-        for i in range(k):
-            if row[i] != EMPTY:
-                filled += 1
-        if filled == k or filled == 0:
-            continue
-        for i in range(k):
-            if row[i] != EMPTY:
-                continue
-            found = False
-            for a in range(PROBE_TABLE_DEPTH):
-                v = row[table[i, a]]
-                if v != EMPTY:
-                    out[g, i] = v
-                    found = True
-                    break
-            a = PROBE_TABLE_DEPTH + 1
-            while not found:  # rare: every tabled probe hit an empty bin
-                v = row[_probe(salt, i, a, k)]
-                if v != EMPTY:
-                    out[g, i] = v
-                    found = True
-                a += 1
+    for c in numba.prange((n + CHUNK - 1) // CHUNK):
+        filled_row = np.empty(k, dtype=np.uint64)
+        for g in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
+            row = signatures[g]
+            filled_row[:] = row
+            filled = 0
+            for i in range(k):
+                if row[i] != EMPTY:
+                    filled += 1
+            if 0 < filled < k:
+                for i in range(k):
+                    if row[i] == EMPTY:
+                        filled_row[i] = _borrow(row, table, salt, i, k)
+            if by_position:
+                for i in range(k):
+                    out[i, g] = filled_row[i]
+            else:
+                out[g] = filled_row
     return out
+
+
+@numba.njit(inline="always")
+def _borrow(row, table, salt, i, k):
+    """The value an empty bin i takes: that of its first non-empty probe."""
+    for a in range(PROBE_TABLE_DEPTH):
+        v = row[table[i, a]]
+        if v != EMPTY:
+            return v
+    a = PROBE_TABLE_DEPTH + 1
+    while True:  # rare: every tabled probe hit an empty bin
+        v = row[_probe(salt, i, a, k)]
+        if v != EMPTY:
+            return v
+        a += 1
 
 
 def set_size_estimate(signatures: np.ndarray) -> np.ndarray:

@@ -66,20 +66,30 @@ class SignatureParams:
         return splitmix64_sequence(self.seed, self.perms)
 
 
+CHUNK = 256  # entities per parallel task: one row buffer each
+
+
 @numba.njit(parallel=True, cache=True)
-def _sign_kperm(h0, offsets, salts):
+def _sign_kperm(h0, offsets, salts, by_position):
     n = offsets.shape[0] - 1
     k = salts.shape[0]
-    out = np.empty((n, k), dtype=np.uint64)  # filled row by row: pages first touched in parallel
-    for g in numba.prange(n):
-        row = out[g]
-        row[:] = np.uint64(0xFFFFFFFFFFFFFFFF)
-        for j in range(offsets[g], offsets[g + 1]):
-            x = h0[j]
-            for i in range(k):
-                v = fmix64(x ^ salts[i])
-                if v < row[i]:
-                    row[i] = v
+    # filled a chunk at a time in parallel, so pages are first touched by the threads
+    out = np.empty((k, n) if by_position else (n, k), dtype=np.uint64)
+    for c in numba.prange((n + CHUNK - 1) // CHUNK):
+        row = np.empty(k, dtype=np.uint64)
+        for g in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
+            row[:] = np.uint64(0xFFFFFFFFFFFFFFFF)
+            for j in range(offsets[g], offsets[g + 1]):
+                x = h0[j]
+                for i in range(k):
+                    v = fmix64(x ^ salts[i])
+                    if v < row[i]:
+                        row[i] = v
+            if by_position:
+                for i in range(k):
+                    out[i, g] = row[i]
+            else:
+                out[g] = row
     return out
 
 
@@ -92,7 +102,7 @@ def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params: SignatureParam
     offsets = np.ascontiguousarray(offsets, dtype=np.int64)
     if params.scheme == "oph":
         return oph.sign_oph(h0, offsets, params.perms, oph_salts(params))
-    return _sign_kperm(h0, offsets, params.salts())
+    return _sign_kperm(h0, offsets, params.salts(), False)
 
 
 def oph_salts(params: SignatureParams) -> np.ndarray:
@@ -103,19 +113,35 @@ def oph_salts(params: SignatureParams) -> np.ndarray:
 def comparable(matrix: np.ndarray, params: SignatureParams) -> np.ndarray:
     """Signatures ready to compare or band: densified for ``oph``, unchanged for ``kperm``."""
     if params.scheme == "oph":
-        return oph.densify(np.ascontiguousarray(matrix), oph_salts(params)[2])
+        return oph.densify(np.ascontiguousarray(matrix), oph_salts(params)[2], False)
     return matrix
 
 
 def sign_membership(sets: Membership, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
     """Signatures (len(ids) x k) of the sets ``ids`` of a :class:`~lshjob.membership.Membership`."""
+    return signature_matrix(*_hashed_sets(sets, ids), params)
+
+
+def comparable_by_position(sets: Membership, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
+    """Comparable signatures (densified for ``oph``) of the sets ``ids``, laid out by
+    position: a (k x len(ids)) matrix whose row i holds position i of every signature, so
+    each row is a contiguous column for polars (the band stage reads positions, not rows)."""
+    h0, offsets = _hashed_sets(sets, ids)
+    if params.scheme == "oph":
+        raw = oph.sign_oph(h0, offsets, params.perms, oph_salts(params))
+        return oph.densify(raw, oph_salts(params)[2], True)
+    return _sign_kperm(h0, offsets, params.salts(), True)
+
+
+def _hashed_sets(sets: Membership, ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Element hashes and offsets (CSR) of the sets ``ids``."""
     ids = np.ascontiguousarray(ids, dtype=np.int64)
     if len(ids) and ids[-1] - ids[0] == len(ids) - 1 and np.all(np.diff(ids) == 1):  # a run: no copy
         lo, hi = sets.offsets[ids[0]], sets.offsets[ids[-1] + 1]
         offsets, codes = sets.offsets[ids[0]:ids[-1] + 2] - lo, sets.elements[lo:hi]
     else:
         offsets, codes = gather_sets(sets.offsets, sets.elements, ids)
-    return signature_matrix(sets.element_hashes(codes), offsets, params)
+    return np.ascontiguousarray(sets.element_hashes(codes), dtype=np.uint64), offsets.astype(np.int64, copy=False)
 
 
 def signature_table(sets: Membership, params: SignatureParams) -> pl.DataFrame:

@@ -51,3 +51,42 @@ def test_shared_bucket_rows_are_exactly_the_buckets_of_two_or_more(tmp_path):
     expected = every.filter(pl.len().over("band", "bucket") >= 2).sort("band", "bucket", "rep")
     assert written == got.height == expected.height > 0
     assert got.equals(expected)
+
+
+def test_collision_marks_cover_every_repeated_key():
+    # Oracle: polars is_duplicated. A bitmap of 2**8 slots over 2,000 keys forces many false
+    # marks; the marks must still include every repeated key (no false negatives), and with
+    # 2**26 slots almost no unrepeated key is marked.
+    import polars as pl
+
+    from lshjob.band import _colliding
+    from lshjob.hashing import fmix64_np
+
+    rng = np.random.default_rng(8)
+    keys = fmix64_np(rng.integers(0, 1500, size=2000).astype(np.uint64))  # ~500 repeats
+    repeated = pl.Series(keys).is_duplicated().to_numpy()
+    for log2_slots in (8, 26):
+        marked = _colliding(keys, log2_slots)
+        assert np.all(marked[repeated])
+    assert marked.sum() - repeated.sum() < 5
+    assert _colliding(keys, 8).sum() > repeated.sum()
+
+
+def test_signatures_by_position_are_the_transposed_comparable_signatures():
+    # Oracle: the row layout (signed and densified separately), transposed.
+    from lshjob.membership import Membership
+    from lshjob.signatures import SignatureParams, comparable, comparable_by_position, sign_membership
+
+    import polars as pl
+
+    rng = np.random.default_rng(9)
+    sizes = rng.integers(1, 60, size=700)
+    sets = Membership.from_sets(pl.DataFrame({
+        "entity": np.repeat(np.arange(700), sizes),
+        "element": np.concatenate([rng.choice(300, size=s, replace=False) for s in sizes]),
+    }))
+    ids = rng.choice(700, size=600, replace=False)
+    for scheme in ("kperm", "oph"):
+        p = SignatureParams(scheme=scheme, perms=64, seed=5)
+        rows = comparable(sign_membership(sets, ids, p), p)
+        assert np.array_equal(comparable_by_position(sets, ids, p), rows.T)
