@@ -21,7 +21,7 @@ import numpy as np
 from .errors import ParameterError
 
 DEFAULT_PERMS_CHOICES = (32, 64, 128, 256)
-QUADRATURE_POINTS = 2048  # Gauss-Legendre: exact for polynomials of degree < 4096
+MAX_QUADRATURE_POINTS = 2048  # Gauss-Legendre: exact for polynomials of degree < 4096
 TIE_TOLERANCE = 0.01  # plans within 1% of the fewest candidates count as tied
 
 
@@ -39,13 +39,18 @@ def approximate_threshold(bands: int, rows: int) -> float:
     return (1.0 / bands) ** (1.0 / rows)
 
 
-@lru_cache(maxsize=1)
-def _legendre() -> tuple[np.ndarray, np.ndarray]:
-    return np.polynomial.legendre.leggauss(QUADRATURE_POINTS)
+@lru_cache(maxsize=16)
+def _legendre(points: int) -> tuple[np.ndarray, np.ndarray]:
+    return np.polynomial.legendre.leggauss(points)
 
 
-def _nodes(a: float, b: float) -> tuple[np.ndarray, np.ndarray]:
-    x, w = _legendre()
+def _nodes(a: float, b: float, degree: int) -> tuple[np.ndarray, np.ndarray]:
+    """Gauss-Legendre nodes and weights on [a, b], exact for polynomials up to ``degree``:
+    n points integrate degree 2n - 1 exactly. n is rounded up to a power of two so a plan
+    enumeration computes few node sets (leggauss(2048) alone takes half a second)."""
+    need = (degree + 2) // 2
+    points = min(MAX_QUADRATURE_POINTS, 1 << (need - 1).bit_length())
+    x, w = _legendre(points)
     half = (b - a) / 2.0
     return a + half * (x + 1.0), w * half
 
@@ -53,16 +58,16 @@ def _nodes(a: float, b: float) -> tuple[np.ndarray, np.ndarray]:
 def false_positive_area(threshold: float, bands: int, rows: int) -> float:
     """Integral of P(s) over [0, t]: the weight of dissimilar pairs that become candidates.
 
-    P is a polynomial of degree b*r, so Gauss-Legendre with 2048 nodes is exact up to
-    rounding for b*r < 4096 (Abramowitz and Stegun 25.4.29).
+    P is a polynomial of degree b*r, so Gauss-Legendre with n nodes, 2n > b*r, is exact up
+    to rounding (Abramowitz and Stegun 25.4.29).
     """
-    s, w = _nodes(0.0, threshold)
+    s, w = _nodes(0.0, threshold, bands * rows)
     return float(np.dot(w, candidate_probability(s, bands, rows)))
 
 
 def false_negative_area(threshold: float, bands: int, rows: int) -> float:
     """Integral of 1 - P(s) over [t, 1]: the weight of similar pairs that are missed."""
-    s, w = _nodes(threshold, 1.0)
+    s, w = _nodes(threshold, 1.0, bands * rows)
     return float(np.dot(w, 1.0 - candidate_probability(s, bands, rows)))
 
 
@@ -113,8 +118,8 @@ def theory_plans(threshold: float, perms: int, fp_weight: float = 0.5, fn_weight
     pairs = all_bandings(perms)
     b = np.array([p[0] for p in pairs], dtype=np.float64)[:, None]
     r = np.array([p[1] for p in pairs], dtype=np.float64)[:, None]
-    s_lo, w_lo = _nodes(0.0, threshold)
-    s_hi, w_hi = _nodes(threshold, 1.0)
+    s_lo, w_lo = _nodes(0.0, threshold, perms)
+    s_hi, w_hi = _nodes(threshold, 1.0, perms)
     fp = (candidate_probability(s_lo[None, :], b, r) * w_lo).sum(axis=1)
     fn = ((1.0 - candidate_probability(s_hi[None, :], b, r)) * w_hi).sum(axis=1)
     err = fp_weight * fp + fn_weight * fn
@@ -212,7 +217,7 @@ def data_plans(
     cnt = histogram.counts.astype(np.float64)
     above = histogram.mask(threshold)
     uniform_basis = cnt[above].sum() < 20
-    s_hi, w_hi = _nodes(threshold, 1.0)
+    s_hi, w_hi = _nodes(threshold, 1.0, max(perms_choices))
     plans = []
     for k in perms_choices:
         pairs = all_bandings(k)
