@@ -81,9 +81,11 @@ class IngestReport:
     sets: int = 0
     empty_after_filter: int = 0
     empty_examples: list[str] = field(default_factory=list)
+    # smallest and largest integer entity key (None for text keys), for the loader; not reported
+    entity_range: tuple[int, int] | None = field(default=None, repr=False)
 
     def as_dict(self) -> dict:
-        return dict(self.__dict__)
+        return {k: v for k, v in self.__dict__.items() if k != "entity_range"}
 
 
 def resolve_paths(source: str | Path) -> tuple[list[Path], str]:
@@ -158,12 +160,17 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
     _check_types(where, schema, spec)
     report = IngestReport(files=[str(p) for p in paths])
     key_names = [n for _, n in _named_columns(spec) if _ != "--count"]
+    integer_entity = schema[spec.entity].is_integer()
     stats = lf.select(
         pl.len().alias("rows"),
         *[pl.col(n).null_count().alias(n) for n in key_names],
         pl.any_horizontal([pl.col(n).is_null() for n in key_names]).sum().alias("__any_null"),
+        *([pl.col(spec.entity).min().alias("__entity_min"), pl.col(spec.entity).max().alias("__entity_max")]
+          if integer_entity else []),
     ).collect()
     report.rows_read = int(stats["rows"][0])
+    if integer_entity and stats["__entity_min"][0] is not None:
+        report.entity_range = (int(stats["__entity_min"][0]), int(stats["__entity_max"][0]))
     if report.rows_read == 0:
         raise InputError(f"{where}: no events (0 rows)")
     nulls = {n: int(stats[n][0]) for n in key_names if stats[n][0] > 0}

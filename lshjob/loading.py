@@ -6,7 +6,9 @@ costs several seconds and about 100 bytes per event:
 
 1. a pass collects the distinct entity keys (and, for text elements, the distinct element
    keys), sorted: entity id = position of the key, element code as in
-   :mod:`lshjob.membership`;
+   :mod:`lshjob.membership`. Integer entity keys whose range is at most a quarter of the
+   event count skip this pass: each event keeps its key minus the smallest key, and after
+   reading, a table over the range (5 bytes per key value) turns those into positions;
 2. the events stream through in batches; each is turned into (entity id, element code
    [, weight]) and copied into arrays sized from the event count: 12 bytes per event
    (20 with weights);
@@ -48,22 +50,29 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
         raise ParameterError("load_membership builds one set per entity; segments and periods go through load_sets")
     frame, report, where = validated_events(source, spec)
     weighted = spec.count is not None or spec.min_count > 1
-    need = grouping_bytes(report.rows_read - report.null_rows_dropped, weighted)
+    n = report.rows_read - report.null_rows_dropped
+    span = _dense_span(report.entity_range, n)
+    need = grouping_bytes(n, weighted) + 5 * span
     if memory is not None and need > memory:
         raise ParameterError(
             f"{where}: grouping {report.rows_read:,} events into sets needs about {need / 2**30:.1f} GiB "
             f"({BYTES_PER_EVENT[weighted]} bytes an event), more than the memory budget of "
             f"{memory / 2**30:.1f} GiB; raise --memory, or split the input by entity and run each part"
         )
-    keys = frame.select(pl.col("entity").unique()).collect(engine="streaming")["entity"].sort()
+    if span:  # integer keys in a small range: positions are found after reading
+        first = report.entity_range[0]
+        ids = np.empty(n, dtype=np.uint32)
+
+        def positions(values: pl.Series) -> np.ndarray:
+            return values.to_numpy() - first
+    else:
+        keys = frame.select(pl.col("entity").unique()).collect(engine="streaming")["entity"].sort()
+        ids = np.empty(n, dtype=np.uint32 if len(keys) < 2**32 else np.int64)
+        positions = _key_positions(keys)
     dictionary = _text_dictionary(frame)
-    n = report.rows_read - report.null_rows_dropped
-    id_type = np.uint32 if len(keys) < 2**32 else np.int64
-    ids = np.empty(n, dtype=id_type)
     codes = np.empty(n, dtype=np.int64)
     weights = np.empty(n if weighted else 0, dtype=np.float64)
     pos = 0
-    positions = _key_positions(keys)
     try:
         for batch in frame.collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
             m = batch.height
@@ -80,6 +89,9 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
         raise InputError(f"{where}: could not read the events: {exc}") from exc
     if pos != n:
         raise InputError(f"{where}: the files changed while being read ({n} events counted, {pos} read)")
+    if span:
+        present = _rank_in_place(ids, span)
+        keys = pl.Series("entity", present + first, dtype=frame.collect_schema()["entity"])
     offsets, elements, kept_weights = _group_by_entity(ids, codes, weights, len(keys), numba.get_num_threads())
     del ids, codes, weights
     sizes = _sort_and_merge(offsets, elements, kept_weights, float(spec.min_count), weighted)
@@ -98,6 +110,37 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
     report.sets = len(keys)
     text_hashes = None if dictionary is None else xxh64_strings(dictionary)
     return Membership(keys.alias("entity"), offsets, elements, text_hashes), report
+
+
+def _dense_span(entity_range: tuple[int, int] | None, events: int) -> int:
+    """Size of the table over the integer key range when the single-pass path applies, else 0."""
+    if entity_range is None:
+        return 0
+    span = entity_range[1] - entity_range[0] + 1
+    return span if span <= max(events // 4, DENSE_MIN_SPAN) and span < 2**32 else 0
+
+
+DENSE_MIN_SPAN = 1 << 16  # a table this small (320 KiB) is always worth it
+
+
+@numba.njit(parallel=True, cache=True)
+def _rank_in_place(ids, span):
+    """``ids`` hold key - smallest key; replace each by the rank of its key among the keys
+    present, and return the present offsets (sorted)."""
+    seen = np.zeros(span, dtype=np.bool_)
+    for j in range(len(ids)):  # a byte store per event; racing threads would write the same value
+        seen[ids[j]] = True
+    rank = np.empty(span, dtype=np.uint32)
+    present = np.empty(span, dtype=np.int64)
+    r = 0
+    for v in range(span):
+        rank[v] = r
+        if seen[v]:
+            present[r] = v
+            r += 1
+    for j in numba.prange(len(ids)):
+        ids[j] = rank[ids[j]]
+    return present[:r]
 
 
 def _key_positions(keys: pl.Series):
@@ -217,15 +260,17 @@ def _sort_and_merge(offsets, elements, weights, min_count, weighted):
     return sizes
 
 
-@numba.njit(cache=True)
+@numba.njit(parallel=True, cache=True)
 def _compact(offsets, elements, sizes):
-    """Move each set's kept elements together: (new offsets, elements) without gaps."""
+    """Each set's kept elements, without gaps: (new offsets, elements). Unchanged when no
+    set lost an element."""
     n = len(offsets) - 1
     new_offsets = np.zeros(n + 1, dtype=np.int64)
     for g in range(n):
         new_offsets[g + 1] = new_offsets[g] + sizes[g]
-    for g in range(n):
-        a, t = offsets[g], new_offsets[g]
-        for j in range(sizes[g]):
-            elements[t + j] = elements[a + j]
-    return new_offsets, elements[: new_offsets[n]].copy()
+    if new_offsets[n] == offsets[n] - offsets[0]:
+        return new_offsets, elements
+    out = np.empty(new_offsets[n], dtype=elements.dtype)
+    for g in numba.prange(n):
+        out[new_offsets[g]:new_offsets[g + 1]] = elements[offsets[g]:offsets[g] + sizes[g]]
+    return new_offsets, out

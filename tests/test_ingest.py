@@ -172,12 +172,17 @@ def test_streaming_loader_matches_the_grouped_rows(small_events, spec):
 
 
 def test_streaming_loader_integer_keys_and_batches(tmp_path, monkeypatch):
-    # Oracle: a Python dict of sets. Integer entities that are sparse (binary search) and dense
-    # (direct table), repeated events, and batches smaller than the input.
+    # Oracle: a Python dict of sets. Integer entities that are sparse (binary search), in a
+    # small range with gaps and negative keys (positions ranked after reading), and dense
+    # but read with a separate key pass (direct table); repeated events, and batches smaller
+    # than the input.
     import lshjob.loading as loading
 
     rng = np.random.default_rng(5)
-    for entities in (rng.integers(-10**15, 10**15, 300), np.arange(300)):
+    cases = [(rng.integers(-10**15, 10**15, 300), 1 << 16), (np.arange(300), 1 << 16),
+             (rng.choice(np.arange(-2000, 2000), 300, replace=False), 1 << 16), (np.arange(3000) + 7, 0)]
+    for entities, min_span in cases:
+        monkeypatch.setattr(loading, "DENSE_MIN_SPAN", min_span)
         ent = rng.choice(entities, 5000)
         elem = rng.integers(-50, 200, 5000)
         path = tmp_path / "e.parquet"
