@@ -22,6 +22,7 @@ count above 1), plus the batch polars holds and the distinct keys.
 
 from __future__ import annotations
 
+import threading
 from pathlib import Path
 
 import numba
@@ -48,6 +49,7 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
     With ``memory`` (bytes), refuse before reading when grouping the events would need more."""
     if spec.key_columns != ["entity"]:
         raise ParameterError("load_membership builds one set per entity; segments and periods go through load_sets")
+    start_compiled_code()
     frame, report, where = validated_events(source, spec)
     weighted = spec.count is not None or spec.min_count > 1
     n = report.rows_read - report.null_rows_dropped
@@ -110,6 +112,17 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
     report.sets = len(keys)
     text_hashes = None if dictionary is None else xxh64_strings(dictionary)
     return Membership(keys.alias("entity"), offsets, elements, text_hashes), report
+
+
+def start_compiled_code() -> threading.Thread:
+    """Start numba's parallel runtime in a background thread. Its first parallel call in a
+    process costs about 0.3 s of Python work (typing registries, thread pool); done while
+    polars reads the events (which releases the GIL), it is mostly hidden."""
+    thread = threading.Thread(
+        target=_lookup, args=(np.zeros(1, np.int64), 0, np.zeros(1, np.int64)), daemon=True
+    )
+    thread.start()
+    return thread
 
 
 def _dense_span(entity_range: tuple[int, int] | None, events: int) -> int:
