@@ -144,30 +144,30 @@ _PAIRS = np.frombuffer("".join(f"{i:02d}" for i in range(100)).encode(), dtype=n
 @numba.njit(inline="always")
 def _decimal_digits(v, negative, buf):
     """Write the decimal text of magnitude ``v`` (uint64), after a '-' if ``negative``, at
-    the start of buf (24 bytes); return its length. Two digits per division."""
-    tmp = np.empty(20, dtype=np.uint8)
-    pos = 20
+    the start of buf (24 bytes); return its length. Counts the digits first, then writes
+    them from the right, two per division, with no temporary array."""
+    digits = 1
+    bound = U64(10)
+    while digits < 20 and v >= bound:
+        digits += 1
+        bound *= U64(10)
+    n = digits
+    if negative:
+        buf[0] = 45  # '-'
+        n += 1
+    pos = n
     while v >= U64(100):
         r = np.int64(v % U64(100))
         v //= U64(100)
         pos -= 2
-        tmp[pos] = _PAIRS[2 * r]
-        tmp[pos + 1] = _PAIRS[2 * r + 1]
+        buf[pos] = _PAIRS[2 * r]
+        buf[pos + 1] = _PAIRS[2 * r + 1]
     if v >= U64(10):
         r = np.int64(v)
-        pos -= 2
-        tmp[pos] = _PAIRS[2 * r]
-        tmp[pos + 1] = _PAIRS[2 * r + 1]
+        buf[pos - 2] = _PAIRS[2 * r]
+        buf[pos - 1] = _PAIRS[2 * r + 1]
     else:
-        pos -= 1
-        tmp[pos] = 48 + np.uint8(v)
-    n = 0
-    if negative:
-        buf[0] = 45  # '-'
-        n = 1
-    for i in range(pos, 20):
-        buf[n] = tmp[i]
-        n += 1
+        buf[pos - 1] = 48 + np.uint8(v)
     return n
 
 
