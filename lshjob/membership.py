@@ -82,15 +82,14 @@ def element_codes(values: pl.Series) -> tuple[pl.Series, np.ndarray | None]:
     return codes.alias("code"), xxh64_strings(dictionary)
 
 
-@numba.njit(cache=True)
+@numba.njit(parallel=True, cache=True)
 def gather_sets(offsets, elements, ids):
-    """CSR of the sets ``ids`` (in that order)."""
+    """CSR of the sets ``ids`` (in that order); the copy runs on all cores."""
     out_offsets = np.zeros(len(ids) + 1, dtype=np.int64)
     for t in range(len(ids)):
         out_offsets[t + 1] = out_offsets[t] + offsets[ids[t] + 1] - offsets[ids[t]]
     out = np.empty(out_offsets[-1], dtype=np.int64)
-    for t in range(len(ids)):
+    for t in numba.prange(len(ids)):
         a = offsets[ids[t]]
-        for j in range(offsets[ids[t] + 1] - a):
-            out[out_offsets[t] + j] = elements[a + j]
+        out[out_offsets[t]:out_offsets[t + 1]] = elements[a:a + out_offsets[t + 1] - out_offsets[t]]
     return out_offsets, out
