@@ -86,27 +86,32 @@ def _long(keys: pl.DataFrame, bands: range) -> pl.DataFrame:
 
 
 def write_shared_bucket_rows(
-    keys: pl.DataFrame, bands: int, out_dir: Path, batch_bytes: int = 1 << 30, progress=None
+    keys: pl.DataFrame | list[pl.DataFrame], bands: int, out_dir: Path, batch_bytes: int = 1 << 30, progress=None
 ) -> tuple[list[Path], int]:
     """Write the rows of buckets holding two or more representatives (one Parquet file per
     batch of bands); buckets of one can form no pair and are only counted. ``keys`` is the
-    wide key table of all representatives (:func:`bucket_keys`, slices concatenated).
+    wide key table of all representatives (:func:`bucket_keys`), or its slices in order
+    (never concatenated: no copy of the whole table).
 
     Returns the files written and the number of rows written."""
     out_dir.mkdir(parents=True, exist_ok=True)
-    keys = keys.rechunk()  # one chunk per column: read by the compiled pass without a copy
-    step = bands_per_batch(keys.height, bands, batch_bytes)
-    log2_slots = max(16, int(np.ceil(np.log2(max(2, keys.height)))) + 5)  # about 32 bits a row
+    slices = [s.rechunk() for s in ([keys] if isinstance(keys, pl.DataFrame) else keys)]  # no-op for one chunk
+    height = sum(s.height for s in slices)
+    step = bands_per_batch(height, bands, batch_bytes)
+    log2_slots = max(16, int(np.ceil(np.log2(max(2, height)))) + 5)  # about 32 bits a row
     files, total = [], 0
     for first in range(0, bands, step):
         batch = range(first, min(bands, first + step))
         bucket = pl.col("bucket")
         parts = []
         for j in batch:
-            marked = _colliding(keys.get_column(str(j)).to_numpy(), log2_slots)
+            columns = [s.get_column(str(j)).to_numpy() for s in slices]
+            seen, again = _bitmaps(log2_slots)
+            for c in columns:
+                _count_twice(c, seen, again)
+            marked = pl.concat([s.lazy().filter(pl.Series(_marked(c, again))) for s, c in zip(slices, columns)])
             parts.append(
-                keys.lazy().filter(pl.Series(marked))
-                .select(pl.lit(j, dtype=pl.Int32).alias("band"), pl.col(str(j)).alias("bucket"), "rep")
+                marked.select(pl.lit(j, dtype=pl.Int32).alias("band"), pl.col(str(j)).alias("bucket"), "rep")
                 .sort("bucket", "rep")
                 .filter((bucket == bucket.shift(1)) | (bucket == bucket.shift(-1)))
             )
@@ -120,26 +125,47 @@ def write_shared_bucket_rows(
     return files, total
 
 
+# Marks: the keys whose top log2_slots bits are also those of another key, a superset of the
+# keys that occur twice or more (keys are fmix64 outputs, so their top bits are uniform).
+# Two bitmaps: bits seen once, bits seen again.
+
+def _bitmaps(log2_slots: int) -> tuple[np.ndarray, np.ndarray]:
+    words = 1 << (log2_slots - 6)
+    return np.zeros(words, dtype=np.uint64), np.zeros(words, dtype=np.uint64)
+
+
+@numba.njit(inline="always")
+def _slot(key, log2_words):
+    s = key >> np.uint64(58 - log2_words)
+    return s >> np.uint64(6), np.uint64(1) << (s & np.uint64(63))
+
+
 @numba.njit(cache=True)
-def _colliding(keys, log2_slots):
-    """Mark the keys whose top ``log2_slots`` bits are also those of another key: a superset
-    of the keys that occur twice or more (keys are fmix64 outputs, so their top bits are
-    uniform). Two bitmaps: seen once, seen again."""
-    shift = np.uint64(64 - log2_slots)
-    seen = np.zeros(1 << (log2_slots - 6), dtype=np.uint64)
-    again = np.zeros(1 << (log2_slots - 6), dtype=np.uint64)
+def _count_twice(keys, seen, again):
+    log2_words = np.int64(np.log2(seen.shape[0]))
     for key in keys:
-        s = key >> shift
-        word, bit = s >> np.uint64(6), np.uint64(1) << (s & np.uint64(63))
+        word, bit = _slot(key, log2_words)
         if seen[word] & bit:
             again[word] |= bit
         else:
             seen[word] |= bit
-    marked = np.zeros(keys.shape[0], dtype=np.bool_)
+
+
+@numba.njit(cache=True)
+def _marked(keys, again):
+    log2_words = np.int64(np.log2(again.shape[0]))
+    out = np.zeros(keys.shape[0], dtype=np.bool_)
     for i in range(keys.shape[0]):
-        s = keys[i] >> shift
-        marked[i] = (again[s >> np.uint64(6)] & (np.uint64(1) << (s & np.uint64(63)))) != 0
-    return marked
+        word, bit = _slot(keys[i], log2_words)
+        out[i] = (again[word] & bit) != 0
+    return out
+
+
+def _colliding(keys: np.ndarray, log2_slots: int) -> np.ndarray:
+    """The marks of one array of keys (see above)."""
+    seen, again = _bitmaps(log2_slots)
+    _count_twice(keys, seen, again)
+    return _marked(keys, again)
 
 
 def bands_per_batch(n_rows: int, bands: int, batch_bytes: int) -> int:

@@ -233,10 +233,8 @@ def _sign_and_band(sets, reps, params, plan, out_dir, memory, stages) -> tuple[l
             del columns
             task.advance(len(ids))
     with stages.part("band"):
-        keys = pl.concat(slices)
-        del slices
-        files, written = band.write_shared_bucket_rows(keys, bands, out_dir, batch_bytes=max(64 << 20, memory // 8))
-    return files, written, keys.height * bands
+        files, written = band.write_shared_bucket_rows(slices, bands, out_dir, batch_bytes=max(64 << 20, memory // 8))
+    return files, written, len(reps) * bands
 
 
 def _verify_in_chunks(path, n_pairs, sets, threshold, memory) -> pl.DataFrame:

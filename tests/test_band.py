@@ -44,13 +44,15 @@ def test_shared_bucket_rows_are_exactly_the_buckets_of_two_or_more(tmp_path):
     sig = rng.integers(0, 3, size=(500, 8), dtype=np.uint64)  # few values: many shared buckets
     sig[:100] = rng.integers(0, 2**63, size=(100, 8), dtype=np.uint64)  # and many of one
     keys = bucket_keys(sig, np.arange(500), bands=4, rows=2)
-    files, written = write_shared_bucket_rows(keys, 4, tmp_path / "b", batch_bytes=500 * 28 * 3)
-    assert len(files) == 2  # batches of three bands, then one
-    got = pl.read_parquet(files).sort("band", "bucket", "rep")
     every = bucket_rows(sig, np.arange(500), bands=4, rows=2)
     expected = every.filter(pl.len().over("band", "bucket") >= 2).sort("band", "bucket", "rep")
-    assert written == got.height == expected.height > 0
-    assert got.equals(expected)
+    # the whole key table, and the same table given as three slices
+    for n, given in enumerate((keys, [keys[:150], keys[150:151], keys[151:]])):
+        files, written = write_shared_bucket_rows(given, 4, tmp_path / f"b{n}", batch_bytes=500 * 28 * 3)
+        assert len(files) == 2  # batches of three bands, then one
+        got = pl.read_parquet(files).sort("band", "bucket", "rep")
+        assert written == got.height == expected.height > 0
+        assert got.equals(expected)
 
 
 def test_collision_marks_cover_every_repeated_key():
