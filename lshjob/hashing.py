@@ -171,6 +171,16 @@ def _decimal_digits(v, negative, buf):
     return n
 
 
+@numba.njit(inline="always")
+def xxh64_of_integer(x, buf, seed):
+    """XXH64 of the decimal text of integer ``x``; ``buf`` is scratch space of 24 bytes."""
+    if x < 0:
+        length = _decimal_digits(U64(0) - U64(x), True, buf)
+    else:
+        length = _decimal_digits(U64(x), False, buf)
+    return _xxh64_one(buf, 0, length, seed)
+
+
 @numba.njit(parallel=True, cache=True)
 def _xxh64_decimal(values, seed):
     """Compiled once per dtype (int64, uint64); for uint64 the sign test is always false."""
@@ -180,12 +190,7 @@ def _xxh64_decimal(values, seed):
     for c in numba.prange(chunks):
         buf = np.empty(24, dtype=np.uint8)
         for j in range(c * n // chunks, (c + 1) * n // chunks):
-            x = values[j]
-            if x < 0:
-                length = _decimal_digits(U64(0) - U64(x), True, buf)
-            else:
-                length = _decimal_digits(U64(x), False, buf)
-            out[j] = _xxh64_one(buf, 0, length, seed)
+            out[j] = xxh64_of_integer(values[j], buf, seed)
     return out
 
 

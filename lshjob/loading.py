@@ -23,6 +23,7 @@ count above 1), plus the batch polars holds and the distinct keys.
 from __future__ import annotations
 
 import threading
+from dataclasses import dataclass
 from pathlib import Path
 
 import numba
@@ -47,6 +48,43 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
     """Read events into a Membership (entities in sorted key order); see the module docstring.
 
     With ``memory`` (bytes), refuse before reading when grouping the events would need more."""
+    grouped = read_grouped(source, spec, memory)
+    keys, offsets, elements, report, where = grouped.keys, grouped.offsets, grouped.codes, grouped.report, grouped.where
+    sizes = _sort_and_merge(offsets, elements, grouped.weights, float(spec.min_count), grouped.weighted)
+    offsets, elements = _compact(offsets, elements, sizes)
+    empty = sizes == 0
+    if empty.all():
+        raise InputError(
+            f"{where}: no element is left after filtering (--min-count {spec.min_count}); nothing to sign"
+        )
+    if empty.any():
+        report.empty_after_filter = int(empty.sum())
+        report.empty_examples = [str((k,)) for k in keys.filter(pl.Series(empty)).head(5).to_list()]
+        keys = keys.filter(pl.Series(~empty))
+        offsets = np.concatenate([[0], offsets[1:][~empty]])
+    report.membership_rows = int(len(elements))
+    report.sets = len(keys)
+    return Membership(keys.alias("entity"), offsets, elements, grouped.text_hashes), report
+
+
+@dataclass
+class GroupedEvents:
+    """Events grouped by entity, not yet sorted or deduplicated within a set: the codes of
+    entity ``keys[g]`` are ``codes[offsets[g]:offsets[g + 1]]`` (``weights`` beside them when
+    ``weighted``); ``text_hashes`` as in :class:`~lshjob.membership.Membership`."""
+
+    keys: pl.Series
+    offsets: np.ndarray
+    codes: np.ndarray
+    weights: np.ndarray
+    weighted: bool
+    text_hashes: np.ndarray | None
+    report: IngestReport
+    where: str
+
+
+def read_grouped(source: str | Path, spec: EventSpec, memory: int | None = None) -> GroupedEvents:
+    """Steps 1-3 of the module docstring up to the counting sort (one set per entity)."""
     if spec.key_columns != ["entity"]:
         raise ParameterError("load_membership builds one set per entity; segments and periods go through load_sets")
     start_compiled_code()
@@ -96,22 +134,8 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
         keys = pl.Series("entity", present + first, dtype=frame.collect_schema()["entity"])
     offsets, elements, kept_weights = _group_by_entity(ids, codes, weights, len(keys), numba.get_num_threads())
     del ids, codes, weights
-    sizes = _sort_and_merge(offsets, elements, kept_weights, float(spec.min_count), weighted)
-    offsets, elements = _compact(offsets, elements, sizes)
-    empty = sizes == 0
-    if empty.all():
-        raise InputError(
-            f"{where}: no element is left after filtering (--min-count {spec.min_count}); nothing to sign"
-        )
-    if empty.any():
-        report.empty_after_filter = int(empty.sum())
-        report.empty_examples = [str((k,)) for k in keys.filter(pl.Series(empty)).head(5).to_list()]
-        keys = keys.filter(pl.Series(~empty))
-        offsets = np.concatenate([[0], offsets[1:][~empty]])
-    report.membership_rows = int(len(elements))
-    report.sets = len(keys)
     text_hashes = None if dictionary is None else xxh64_strings(dictionary)
-    return Membership(keys.alias("entity"), offsets, elements, text_hashes), report
+    return GroupedEvents(keys.alias("entity"), offsets, elements, kept_weights, weighted, text_hashes, report, where)
 
 
 def start_compiled_code() -> threading.Thread:
