@@ -79,10 +79,9 @@ def _sign_grouped(offsets, codes, text_hashes, salts, k, oph_scheme):
 
 @numba.njit(cache=True)
 def _sign_chunk(lo, hi, offsets, codes, text_hashes, salts, k, oph_scheme, out, sizes):
-    """Sets lo..hi-1 (one task: its own scratch row, table and digit buffer)."""
+    """Sets lo..hi-1 (one task: its own table and digit buffer); rows filled in place."""
     use_text = text_hashes.shape[0] > 0
     buf = np.empty(24, dtype=np.uint8)
-    row = np.empty(k, dtype=np.uint64)
     largest = 1
     for g in range(lo, hi):
         largest = max(largest, offsets[g + 1] - offsets[g])
@@ -97,6 +96,7 @@ def _sign_chunk(lo, hi, offsets, codes, text_hashes, salts, k, oph_scheme, out, 
         while (1 << bits) < 2 * (b - a):
             bits += 1
         mask = (1 << bits) - 1
+        row = out[g]
         row[:] = EMPTY
         count = 0
         for j in range(a, b):
@@ -124,5 +124,4 @@ def _sign_chunk(lo, hi, offsets, codes, text_hashes, salts, k, oph_scheme, out, 
                     v = fmix64(h ^ salts[i])
                     if v < row[i]:
                         row[i] = v
-        out[g] = row
         sizes[g] = count
