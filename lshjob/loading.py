@@ -297,17 +297,19 @@ def _sort_and_merge(offsets, elements, weights, min_count, weighted):
     return sizes
 
 
-@numba.njit(parallel=True, cache=True)
+@numba.njit(cache=True)
 def _compact(offsets, elements, sizes):
-    """Each set's kept elements, without gaps: (new offsets, elements). Unchanged when no
-    set lost an element."""
+    """Each set's kept elements, without gaps: (new offsets, elements), moved left in place
+    and returned as a view (no new array: at 10M entities a fresh 3 GB array cost more in
+    first-touch page faults than the serial move)."""
     n = len(offsets) - 1
     new_offsets = np.zeros(n + 1, dtype=np.int64)
     for g in range(n):
         new_offsets[g + 1] = new_offsets[g] + sizes[g]
     if new_offsets[n] == offsets[n] - offsets[0]:
         return new_offsets, elements
-    out = np.empty(new_offsets[n], dtype=elements.dtype)
-    for g in numba.prange(n):
-        out[new_offsets[g]:new_offsets[g + 1]] = elements[offsets[g]:offsets[g] + sizes[g]]
-    return new_offsets, out
+    for g in range(n):
+        a, t = offsets[g], new_offsets[g]
+        for j in range(sizes[g]):
+            elements[t + j] = elements[a + j]
+    return new_offsets, elements[: new_offsets[n]]
