@@ -6,9 +6,7 @@ costs several seconds and about 100 bytes per event:
 
 1. a pass collects the distinct entity keys (and, for text elements, the distinct element
    keys), sorted: entity id = position of the key, element code as in
-   :mod:`lshjob.membership`. Integer entity keys whose range is at most a quarter of the
-   event count skip this pass: each event keeps its key minus the smallest key, and after
-   reading, a table over the range (5 bytes per key value) turns those into positions;
+   :mod:`lshjob.membership`;
 2. the events stream through in batches; each is turned into (entity id, element code
    [, weight]) and copied into arrays sized from the event count: 12 bytes per event
    (20 with weights);
@@ -18,6 +16,13 @@ costs several seconds and about 100 bytes per event:
 
 Peak memory is therefore about 20 bytes per event (36 with a count column or a minimum
 count above 1), plus the batch polars holds and the distinct keys.
+
+Integer entity keys whose range is at most a quarter of the event count (the common case of
+numbered customers) take a shorter way: one pass reads only the entity column and counts
+events per key value (8 bytes per value of the range); the counts give each key its slot
+range; a second pass reads the events again and writes each element code straight into its
+entity's slots. No id or code array is kept: about 8 bytes per event at the peak (16 with
+weights) plus 8 per key value, and step 3's sort and merge as above.
 """
 
 from __future__ import annotations
@@ -37,10 +42,15 @@ from .membership import INT64_MAX, Membership
 
 BATCH_ROWS = 4_000_000
 BYTES_PER_EVENT = {False: 20, True: 36}  # id + code + grouped code (+ weights, twice)
+BYTES_PER_EVENT_IN_RANGE = {False: 8, True: 16}  # grouped code (+ weight): keys in a small range
+BYTES_PER_KEY_VALUE = 8  # slot pointer per value of the key range
 
 
-def grouping_bytes(events: int, weighted: bool) -> int:
-    """Memory the loader needs at its peak for this many events (module docstring)."""
+def grouping_bytes(events: int, weighted: bool, span: int = 0) -> int:
+    """Memory the loader needs at its peak for this many events (module docstring); ``span``
+    is the size of the integer key range when the two-pass way applies, else 0."""
+    if span:
+        return events * BYTES_PER_EVENT_IN_RANGE[weighted] + span * BYTES_PER_KEY_VALUE
     return events * BYTES_PER_EVENT[weighted]
 
 
@@ -92,50 +102,118 @@ def read_grouped(source: str | Path, spec: EventSpec, memory: int | None = None)
     weighted = spec.count is not None or spec.min_count > 1
     n = report.rows_read - report.null_rows_dropped
     span = _dense_span(report.entity_range, n)
-    need = grouping_bytes(n, weighted) + 5 * span
+    need = grouping_bytes(n, weighted, span)
     if memory is not None and need > memory:
         raise ParameterError(
             f"{where}: grouping {report.rows_read:,} events into sets needs about {need / 2**30:.1f} GiB "
-            f"({BYTES_PER_EVENT[weighted]} bytes an event), more than the memory budget of "
-            f"{memory / 2**30:.1f} GiB; raise --memory, or split the input by entity and run each part"
+            f"({(BYTES_PER_EVENT_IN_RANGE if span else BYTES_PER_EVENT)[weighted]} bytes an event), more "
+            f"than the memory budget of {memory / 2**30:.1f} GiB; raise --memory, or split the input by "
+            "entity and run each part"
         )
-    if span:  # integer keys in a small range: positions are found after reading
-        first = report.entity_range[0]
-        ids = np.empty(n, dtype=np.uint32)
-
-        def positions(values: pl.Series) -> np.ndarray:
-            return values.to_numpy() - first
-    else:
-        keys = frame.select(pl.col("entity").unique()).collect(engine="streaming")["entity"].sort()
-        ids = np.empty(n, dtype=np.uint32 if len(keys) < 2**32 else np.int64)
-        positions = _key_positions(keys)
     dictionary = _text_dictionary(frame)
+    try:
+        if span:
+            keys, offsets, elements, kept_weights = _read_in_range(frame, report.entity_range[0], span, n,
+                                                                   weighted, dictionary, where)
+        else:
+            keys, offsets, elements, kept_weights = _read_and_group(frame, n, weighted, dictionary, where)
+    except pl.exceptions.PolarsError as exc:
+        raise InputError(f"{where}: could not read the events: {exc}") from exc
+    text_hashes = None if dictionary is None else xxh64_strings(dictionary)
+    return GroupedEvents(keys.alias("entity"), offsets, elements, kept_weights, weighted, text_hashes, report, where)
+
+
+def _codes(element: pl.Series, dictionary: pl.Series | None) -> np.ndarray:
+    """Element codes of a batch (:mod:`lshjob.membership`)."""
+    if dictionary is None:
+        return element.cast(pl.Int64).to_numpy()
+    return dictionary.search_sorted(element.cast(pl.String)).to_numpy()
+
+
+def _read_in_range(frame, first, span, n, weighted, dictionary, where):
+    """The two-pass way for integer keys in a small range (module docstring)."""
+    slots = np.zeros(span, dtype=np.int64)
+    for batch in frame.select("entity").collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
+        v = batch["entity"].to_numpy()
+        _count_keys(slots, v, v.dtype.type(first))
+    counted = int(slots.sum())
+    present = np.flatnonzero(slots)
+    offsets = np.zeros(len(present) + 1, dtype=np.int64)
+    np.cumsum(slots[present], out=offsets[1:])
+    slots[:] = -1  # a key value not counted in the first pass
+    slots[present] = offsets[:-1]  # now: where the next event of each key value goes
+    elements = np.empty(counted, dtype=np.int64)
+    kept_weights = np.empty(counted if weighted else 0, dtype=np.float64)
+    no_weights = np.empty(0, dtype=np.float64)
+    shares = numba.get_num_threads()
+    misplaced = 0
+    for batch in frame.collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
+        v = batch["entity"].to_numpy()
+        w = batch["weight"].to_numpy() if weighted else no_weights
+        misplaced += _place(slots, v, v.dtype.type(first), _codes(batch["element"], dictionary), w,
+                            elements, kept_weights, shares)
+    if misplaced or counted != n or not np.array_equal(slots[present], offsets[1:]):
+        raise InputError(f"{where}: the files changed while being read ({n} events counted, then read again)")
+    keys = pl.Series("entity", present + first, dtype=frame.collect_schema()["entity"])
+    return keys, offsets, elements, kept_weights
+
+
+@numba.njit(cache=True)
+def _count_keys(slots, values, first):
+    for x in values:
+        slots[x - first] += 1
+
+
+@numba.njit(parallel=True, cache=True)
+def _place(slots, values, first, codes, weights, out, out_weights, shares):
+    """Write each event's code (and weight) into its key's next slot. Share s of the threads
+    takes the key values v with v % shares == s (shares a power of two), so no two threads
+    move one slot pointer.
+    Returns how many events had no slot (the files changed since they were counted)."""
+    weighted = len(weights) > 0
+    low_bits = shares - 1
+    missed = np.zeros(shares, dtype=np.int64)
+    for s in numba.prange(shares):
+        for j in range(len(values)):
+            if values[j] < first or values[j] - first >= len(slots):
+                if s == 0:
+                    missed[0] += 1
+                continue
+            v = values[j] - first
+            if (v & low_bits) != s:
+                continue
+            at = slots[v]
+            if at < 0 or at >= len(out):
+                missed[s] += 1
+                continue
+            out[at] = codes[j]
+            if weighted:
+                out_weights[at] = weights[j]
+            slots[v] = at + 1
+    return missed.sum()
+
+
+def _read_and_group(frame, n, weighted, dictionary, where):
+    """Steps 1-3 of the module docstring up to the counting sort."""
+    keys = frame.select(pl.col("entity").unique()).collect(engine="streaming")["entity"].sort()
+    ids = np.empty(n, dtype=np.uint32 if len(keys) < 2**32 else np.int64)
+    positions = _key_positions(keys)
     codes = np.empty(n, dtype=np.int64)
     weights = np.empty(n if weighted else 0, dtype=np.float64)
     pos = 0
-    try:
-        for batch in frame.collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
-            m = batch.height
-            ids[pos:pos + m] = positions(batch["entity"])
-            element = batch["element"]
-            if dictionary is None:
-                codes[pos:pos + m] = element.cast(pl.Int64).to_numpy()
-            else:
-                codes[pos:pos + m] = dictionary.search_sorted(element.cast(pl.String)).to_numpy()
-            if weighted:
-                weights[pos:pos + m] = batch["weight"].to_numpy()
-            pos += m
-    except pl.exceptions.PolarsError as exc:
-        raise InputError(f"{where}: could not read the events: {exc}") from exc
+    for batch in frame.collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
+        m = batch.height
+        if pos + m > n:
+            raise InputError(f"{where}: the files changed while being read ({n} events counted, more read)")
+        ids[pos:pos + m] = positions(batch["entity"])
+        codes[pos:pos + m] = _codes(batch["element"], dictionary)
+        if weighted:
+            weights[pos:pos + m] = batch["weight"].to_numpy()
+        pos += m
     if pos != n:
         raise InputError(f"{where}: the files changed while being read ({n} events counted, {pos} read)")
-    if span:
-        present = _rank_in_place(ids, span)
-        keys = pl.Series("entity", present + first, dtype=frame.collect_schema()["entity"])
     offsets, elements, kept_weights = _group_by_entity(ids, codes, weights, len(keys), numba.get_num_threads())
-    del ids, codes, weights
-    text_hashes = None if dictionary is None else xxh64_strings(dictionary)
-    return GroupedEvents(keys.alias("entity"), offsets, elements, kept_weights, weighted, text_hashes, report, where)
+    return keys, offsets, elements, kept_weights
 
 
 def start_compiled_code() -> threading.Thread:
@@ -157,27 +235,7 @@ def _dense_span(entity_range: tuple[int, int] | None, events: int) -> int:
     return span if span <= max(events // 4, DENSE_MIN_SPAN) and span < 2**32 else 0
 
 
-DENSE_MIN_SPAN = 1 << 16  # a table this small (320 KiB) is always worth it
-
-
-@numba.njit(parallel=True, cache=True)
-def _rank_in_place(ids, span):
-    """``ids`` hold key - smallest key; replace each by the rank of its key among the keys
-    present, and return the present offsets (sorted)."""
-    seen = np.zeros(span, dtype=np.bool_)
-    for j in range(len(ids)):  # a byte store per event; racing threads would write the same value
-        seen[ids[j]] = True
-    rank = np.empty(span, dtype=np.uint32)
-    present = np.empty(span, dtype=np.int64)
-    r = 0
-    for v in range(span):
-        rank[v] = r
-        if seen[v]:
-            present[r] = v
-            r += 1
-    for j in numba.prange(len(ids)):
-        ids[j] = rank[ids[j]]
-    return present[:r]
+DENSE_MIN_SPAN = 1 << 16  # a table this small (512 KiB) is always worth it
 
 
 def _key_positions(keys: pl.Series):

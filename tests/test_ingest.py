@@ -195,3 +195,34 @@ def test_streaming_loader_integer_keys_and_batches(tmp_path, monkeypatch):
         assert got.keys.to_list() == sorted(truth)
         for i, key in enumerate(got.keys.to_list()):
             assert got.elements[got.offsets[i]:got.offsets[i + 1]].tolist() == sorted(truth[key])
+
+
+def test_events_without_a_counted_slot_are_reported_not_written():
+    # Algebra: key values outside the counted range, or counted zero times, have no slot;
+    # the two-pass reader must count them as misplaced (the input changed between passes)
+    # and write nothing outside the slots.
+    from lshjob.loading import _place
+
+    slots = np.array([0, -1, 2], dtype=np.int64)  # key 10 owns slots 0-1, key 12 slot 2
+    out = np.full(3, -7, dtype=np.int64)
+    values = np.array([10, 11, 12, 9, 13, 10], dtype=np.int64)
+    codes = np.array([100, 101, 102, 103, 104, 105], dtype=np.int64)
+    missed = _place(slots, values, np.int64(10), codes, np.empty(0), out, np.empty(0), 2)
+    assert missed == 3  # 11 (not counted), 9 and 13 (outside the range)
+    assert sorted(out.tolist()) == [100, 102, 105]
+    assert slots.tolist() == [2, -1, 3]
+
+
+def test_integer_keys_in_a_small_range_need_8_bytes_an_event(tmp_path):
+    # Arithmetic of the two-pass reader (lshjob/loading.py docstring): 8 bytes per event plus
+    # 8 per value of the key range; a budget one byte short is refused before reading.
+    from lshjob import ParameterError
+    from lshjob.loading import load_membership
+
+    path = tmp_path / "loans.parquet"
+    pl.DataFrame({"patron": np.arange(1000) % 300 + 5000, "title": np.arange(1000)}).write_parquet(path)
+    need = 1000 * 8 + 300 * 8
+    with pytest.raises(ParameterError, match=r"\(8 bytes an event\)"):
+        load_membership(path, EventSpec(entity="patron", element="title"), memory=need - 1)
+    sets, _ = load_membership(path, EventSpec(entity="patron", element="title"), memory=need)
+    assert sets.size == 300 and sets.keys[0] == 5000
