@@ -20,10 +20,11 @@ Input layout: polars reads signatures by position (``v0``, ``v1``, ... one conti
 each, from a (positions x n) matrix without a copy); reading positions out of an Array column
 costs about three times as much (measured at 1M x 96).
 
-Finding shared buckets: a compiled pass over each band's keys marks the rows whose key's top
-bits collide in a bitmap of about 32 bits per row (no false negatives; a few percent false
-positives); polars then sorts only those rows and keeps the exact matches. Sorting every key
-of every band cost four times as much at 1M rows (measured).
+Finding shared buckets (compiled, one band per thread): a pass over the band's keys marks
+the rows whose key's top bits collide in a bitmap of about 32 bits per row (no false
+negatives; a few percent false positives); only those are sorted to keep the exact matches.
+Sorting every key of every band in polars cost about four times as much at 1M rows, and
+sorting the marked rows in polars twice as much (measured).
 
 Memory: a batch of B bands holds n x B bucket keys (8 bytes each) plus the marked rows
 (about 20 bytes each); the batch size keeps n x B x 28 bytes under ``batch_bytes``.
@@ -31,6 +32,7 @@ Memory: a batch of B bands holds n x B bucket keys (8 bytes each) plus the marke
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numba
@@ -91,81 +93,76 @@ def write_shared_bucket_rows(
     """Write the rows of buckets holding two or more representatives (one Parquet file per
     batch of bands); buckets of one can form no pair and are only counted. ``keys`` is the
     wide key table of all representatives (:func:`bucket_keys`), or its slices in order
-    (never concatenated: no copy of the whole table).
+    (never concatenated whole: one band's keys at a time).
 
     Returns the files written and the number of rows written."""
     out_dir.mkdir(parents=True, exist_ok=True)
-    slices = [s.rechunk() for s in ([keys] if isinstance(keys, pl.DataFrame) else keys)]  # no-op for one chunk
+    slices = [keys] if isinstance(keys, pl.DataFrame) else list(keys)
     height = sum(s.height for s in slices)
+    reps = np.concatenate([s.get_column("rep").to_numpy() for s in slices]) if slices else np.empty(0, np.int64)
     step = bands_per_batch(height, bands, batch_bytes)
     log2_slots = max(16, int(np.ceil(np.log2(max(2, height)))) + 5)  # about 32 bits a row
+
+    def shared_rows(j: int) -> pl.DataFrame:
+        column = np.concatenate([s.get_column(str(j)).to_numpy() for s in slices])
+        rows = _shared(column, log2_slots)
+        return pl.DataFrame({
+            "band": np.full(len(rows), j, dtype=np.int32), "bucket": column[rows], "rep": reps[rows],
+        })
+
     files, total = [], 0
-    for first in range(0, bands, step):
-        batch = range(first, min(bands, first + step))
-        bucket = pl.col("bucket")
-        parts = []
-        for j in batch:
-            columns = [s.get_column(str(j)).to_numpy() for s in slices]
-            seen, again = _bitmaps(log2_slots)
-            for c in columns:
-                _count_twice(c, seen, again)
-            marked = pl.concat([s.lazy().filter(pl.Series(_marked(c, again))) for s, c in zip(slices, columns)])
-            parts.append(
-                marked.select(pl.lit(j, dtype=pl.Int32).alias("band"), pl.col(str(j)).alias("bucket"), "rep")
-                .sort("bucket", "rep")
-                .filter((bucket == bucket.shift(1)) | (bucket == bucket.shift(-1)))
-            )
-        shared = pl.concat(parts).collect()  # one lazy concat runs the bands in parallel
-        path = out_dir / f"buckets-{first:05d}.parquet"
-        shared.write_parquet(path, compression="lz4", statistics=False)
-        files.append(path)
-        total += shared.height
-        if progress is not None:
-            progress.advance(len(batch))
+    with ThreadPoolExecutor(max_workers=numba.get_num_threads()) as pool:  # kernels release the GIL
+        for first in range(0, bands, step):
+            batch = range(first, min(bands, first + step))
+            shared = pl.concat(list(pool.map(shared_rows, batch)))
+            path = out_dir / f"buckets-{first:05d}.parquet"
+            shared.write_parquet(path, compression="lz4", statistics=False)
+            files.append(path)
+            total += shared.height
+            if progress is not None:
+                progress.advance(len(batch))
     return files, total
 
 
-# Marks: the keys whose top log2_slots bits are also those of another key, a superset of the
-# keys that occur twice or more (keys are fmix64 outputs, so their top bits are uniform).
-# Two bitmaps: bits seen once, bits seen again.
+@numba.njit(nogil=True, cache=True)
+def _shared(keys, log2_slots):
+    """Positions of the keys that occur twice or more, ordered by key, then position.
 
-def _bitmaps(log2_slots: int) -> tuple[np.ndarray, np.ndarray]:
-    words = 1 << (log2_slots - 6)
-    return np.zeros(words, dtype=np.uint64), np.zeros(words, dtype=np.uint64)
-
-
-@numba.njit(inline="always")
-def _slot(key, log2_words):
-    s = key >> np.uint64(58 - log2_words)
-    return s >> np.uint64(6), np.uint64(1) << (s & np.uint64(63))
-
-
-@numba.njit(cache=True)
-def _count_twice(keys, seen, again):
-    log2_words = np.int64(np.log2(seen.shape[0]))
+    A first pass marks the keys whose top ``log2_slots`` bits are also those of another key
+    (two bitmaps: bits seen once, bits seen again; keys are fmix64 outputs, so their top bits
+    are uniform). The marks are a superset of the repeated keys, a few percent of all at
+    about 32 bits a key; only they are sorted to find the exact repeats."""
+    shift = np.uint64(64 - log2_slots)
+    seen = np.zeros(1 << (log2_slots - 6), dtype=np.uint64)
+    again = np.zeros(1 << (log2_slots - 6), dtype=np.uint64)
     for key in keys:
-        word, bit = _slot(key, log2_words)
+        s = key >> shift
+        word, bit = s >> np.uint64(6), np.uint64(1) << (s & np.uint64(63))
         if seen[word] & bit:
             again[word] |= bit
         else:
             seen[word] |= bit
-
-
-@numba.njit(cache=True)
-def _marked(keys, again):
-    log2_words = np.int64(np.log2(again.shape[0]))
-    out = np.zeros(keys.shape[0], dtype=np.bool_)
+    marked = np.empty(keys.shape[0], dtype=np.int64)
+    m = 0
     for i in range(keys.shape[0]):
-        word, bit = _slot(keys[i], log2_words)
-        out[i] = (again[word] & bit) != 0
-    return out
-
-
-def _colliding(keys: np.ndarray, log2_slots: int) -> np.ndarray:
-    """The marks of one array of keys (see above)."""
-    seen, again = _bitmaps(log2_slots)
-    _count_twice(keys, seen, again)
-    return _marked(keys, again)
+        s = keys[i] >> shift
+        if again[s >> np.uint64(6)] & (np.uint64(1) << (s & np.uint64(63))):
+            marked[m] = i
+            m += 1
+    marked = marked[:m]
+    order = marked[np.argsort(keys[marked], kind="mergesort")]  # stable: ties by position
+    out = np.empty(m, dtype=np.int64)
+    kept = 0
+    i = 0
+    while i < m:
+        j = i + 1
+        while j < m and keys[order[j]] == keys[order[i]]:
+            j += 1
+        if j - i >= 2:
+            out[kept:kept + j - i] = order[i:j]
+            kept += j - i
+        i = j
+    return out[:kept]
 
 
 def bands_per_batch(n_rows: int, bands: int, batch_bytes: int) -> int:

@@ -1,6 +1,7 @@
 """Band stage: bucket keys follow their documented definition (lshjob/band.py)."""
 
 import numpy as np
+import polars as pl
 
 from lshjob.band import BAND_MULTIPLIER, bucket_keys, bucket_rows
 from test_hashing import fmix64_reference as fmix64  # MurmurHash3 fmix64 in Python integers
@@ -55,23 +56,20 @@ def test_shared_bucket_rows_are_exactly_the_buckets_of_two_or_more(tmp_path):
         assert got.equals(expected)
 
 
-def test_collision_marks_cover_every_repeated_key():
-    # Oracle: polars is_duplicated. A bitmap of 2**8 slots over 2,000 keys forces many false
-    # marks; the marks must still include every repeated key (no false negatives), and with
-    # 2**26 slots almost no unrepeated key is marked.
-    import polars as pl
-
-    from lshjob.band import _colliding
+def test_shared_positions_are_exactly_the_repeated_keys():
+    # Oracle: polars is_duplicated, and a sort by (key, position). A bitmap of 2**8 slots over
+    # 2,000 keys marks far more rows than repeat (every false mark must be dropped); 2**26
+    # slots marks almost none but the repeats.
+    from lshjob.band import _shared
     from lshjob.hashing import fmix64_np
 
     rng = np.random.default_rng(8)
     keys = fmix64_np(rng.integers(0, 1500, size=2000).astype(np.uint64))  # ~500 repeats
-    repeated = pl.Series(keys).is_duplicated().to_numpy()
+    frame = pl.DataFrame({"key": keys, "pos": np.arange(2000)})
+    expected = frame.filter(pl.col("key").is_duplicated()).sort("key", "pos")["pos"].to_list()
+    assert len(expected) > 500
     for log2_slots in (8, 26):
-        marked = _colliding(keys, log2_slots)
-        assert np.all(marked[repeated])
-    assert marked.sum() - repeated.sum() < 5
-    assert _colliding(keys, 8).sum() > repeated.sum()
+        assert _shared(keys, log2_slots).tolist() == expected
 
 
 def test_signatures_by_position_are_the_transposed_comparable_signatures():
