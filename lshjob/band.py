@@ -26,8 +26,10 @@ negatives; a few percent false positives); only those are sorted to keep the exa
 Sorting every key of every band in polars cost about four times as much at 1M rows, and
 sorting the marked rows in polars twice as much (measured).
 
-Memory: a batch of B bands holds n x B bucket keys (8 bytes each) plus the marked rows
-(about 20 bytes each); the batch size keeps n x B x 28 bytes under ``batch_bytes``.
+Memory, beside the key table: each band being searched holds one copy of its key column and
+the positions of its marked rows (8 bytes a representative, 16 a marked row; one band per
+thread), and a batch of B bands keeps its shared rows until written; the batch size keeps
+n x B x 28 bytes under ``batch_bytes``.
 """
 
 from __future__ import annotations
