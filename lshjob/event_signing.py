@@ -23,9 +23,10 @@ import numba
 import numpy as np
 import polars as pl
 
-from .hashing import fmix64, xxh64_of_integer
+from .hashing import fmix64
 from .ingest import EventSpec, IngestReport
 from .loading import GroupedEvents, read_grouped
+from .membership import element_hash
 from .oph import EMPTY, fast_range
 from .signatures import SignatureParams, oph_salts, signature_column
 
@@ -80,7 +81,6 @@ def _sign_grouped(offsets, codes, text_hashes, salts, k, oph_scheme):
 @numba.njit(cache=True)
 def _sign_chunk(lo, hi, offsets, codes, text_hashes, salts, k, oph_scheme, out, sizes):
     """Sets lo..hi-1 (one task: its own table and digit buffer); rows filled in place."""
-    use_text = text_hashes.shape[0] > 0
     buf = np.empty(24, dtype=np.uint8)
     largest = 1
     for g in range(lo, hi):
@@ -113,7 +113,7 @@ def _sign_chunk(lo, hi, offsets, codes, text_hashes, salts, k, oph_scheme, out, 
             stamp[s] = g + 1
             seen[s] = x
             count += 1
-            h = text_hashes[x] if use_text else xxh64_of_integer(x, buf, np.uint64(0))
+            h = element_hash(j, codes, text_hashes, buf)
             if oph_scheme:
                 i = fast_range(fmix64(h ^ salts[0]), k)
                 v = fmix64(h ^ salts[1])

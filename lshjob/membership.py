@@ -18,7 +18,7 @@ import numba
 import numpy as np
 import polars as pl
 
-from .hashing import xxh64_integers, xxh64_strings
+from .hashing import xxh64_of_integer, xxh64_integers, xxh64_strings
 
 INT64_MAX = np.iinfo(np.int64).max
 
@@ -80,6 +80,20 @@ def element_codes(values: pl.Series) -> tuple[pl.Series, np.ndarray | None]:
     dictionary = text.unique().sort()
     codes = text.rank("dense").cast(pl.Int64) - 1  # position in the sorted distinct keys
     return codes.alias("code"), xxh64_strings(dictionary)
+
+
+@numba.njit(inline="always")
+def element_hash(j, codes, table, buf):
+    """The XXH64 every signature starts from, of element j of a CSR element array, inside
+    compiled loops. Three forms: ``codes`` empty, ``table`` holds the hashes in place
+    (``table[j]``); ``table`` empty, ``codes`` are integer elements, hashed from their
+    decimal text here (``buf``: 24 bytes of scratch); both given, ``codes`` index the
+    dictionary hashes (``table[codes[j]]``)."""
+    if codes.shape[0] == 0:
+        return table[j]
+    if table.shape[0] == 0:
+        return xxh64_of_integer(codes[j], buf, np.uint64(0))
+    return table[codes[j]]
 
 
 @numba.njit(parallel=True, cache=True)

@@ -26,8 +26,10 @@ import numba
 import numpy as np
 
 from .hashing import fmix64
+from .membership import element_hash
 
 EMPTY = np.uint64(0xFFFFFFFFFFFFFFFF)
+CHUNK = 256  # sets per parallel task: one scratch buffer each
 
 
 @numba.njit(inline="always")
@@ -36,18 +38,23 @@ def fast_range(h, k):
 
 
 @numba.njit(parallel=True, cache=True)
-def sign_oph(h0, offsets, k, salts):
-    n = offsets.shape[0] - 1
-    out = np.empty((n, k), dtype=np.uint64)  # filled row by row: pages first touched in parallel
-    for g in numba.prange(n):
-        row = out[g]
-        row[:] = EMPTY
-        for j in range(offsets[g], offsets[g + 1]):
-            x = h0[j]
-            b = fast_range(fmix64(x ^ salts[0]), k)
-            v = fmix64(x ^ salts[1])
-            if v < row[b]:
-                row[b] = v
+def sign_oph(offsets, codes, table, ids, k, salts):
+    """Stored (not densified) signatures of the sets ids[t] of a CSR element array (elements
+    as in :func:`lshjob.membership.element_hash`)."""
+    n = ids.shape[0]
+    out = np.empty((n, k), dtype=np.uint64)  # filled a chunk at a time: pages first touched in parallel
+    for c in numba.prange((n + CHUNK - 1) // CHUNK):
+        buf = np.empty(24, dtype=np.uint8)
+        for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
+            g = ids[t]
+            row = out[t]
+            row[:] = EMPTY
+            for j in range(offsets[g], offsets[g + 1]):
+                x = element_hash(j, codes, table, buf)
+                b = fast_range(fmix64(x ^ salts[0]), k)
+                v = fmix64(x ^ salts[1])
+                if v < row[b]:
+                    row[b] = v
     return out
 
 
@@ -68,9 +75,6 @@ def probe_table(salt, k, depth):
         for a in range(depth):
             table[i, a] = _probe(salt, i, a + 1, k)
     return table
-
-
-CHUNK = 256  # sets per parallel task: one row buffer each
 
 
 @numba.njit(parallel=True, cache=True)

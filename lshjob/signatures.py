@@ -36,7 +36,7 @@ import polars as pl
 from . import oph
 from .errors import IncompatibleSignatures, InputError, ParameterError
 from .hashing import element_hashes, fmix64, splitmix64_sequence, xxh64_strings
-from .membership import Membership, gather_sets
+from .membership import Membership, element_hash
 
 FORMAT_NAME = "lshjob-signatures"
 FORMAT_VERSION = 1
@@ -70,27 +70,33 @@ CHUNK = 256  # entities per parallel task: one row buffer each
 
 
 @numba.njit(parallel=True, cache=True)
-def _sign_kperm(h0, offsets, salts, by_position):
-    n = offsets.shape[0] - 1
+def _sign_kperm(offsets, codes, table, ids, salts, by_position):
+    """Sets ids[t] of a CSR element array (elements as in :func:`membership.element_hash`)."""
+    n = ids.shape[0]
     k = salts.shape[0]
     # filled a chunk at a time in parallel, so pages are first touched by the threads
     out = np.empty((k, n) if by_position else (n, k), dtype=np.uint64)
     for c in numba.prange((n + CHUNK - 1) // CHUNK):
         row = np.empty(k, dtype=np.uint64)
-        for g in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
+        buf = np.empty(24, dtype=np.uint8)
+        for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
+            g = ids[t]
             row[:] = np.uint64(0xFFFFFFFFFFFFFFFF)
             for j in range(offsets[g], offsets[g + 1]):
-                x = h0[j]
+                x = element_hash(j, codes, table, buf)
                 for i in range(k):
                     v = fmix64(x ^ salts[i])
                     if v < row[i]:
                         row[i] = v
             if by_position:
                 for i in range(k):
-                    out[i, g] = row[i]
+                    out[i, t] = row[i]
             else:
-                out[g] = row
+                out[t] = row
     return out
+
+
+NO_ARRAY = np.empty(0, dtype=np.uint64)
 
 
 def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params: SignatureParams) -> np.ndarray:
@@ -100,9 +106,14 @@ def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params: SignatureParam
     """
     h0 = np.ascontiguousarray(h0, dtype=np.uint64)
     offsets = np.ascontiguousarray(offsets, dtype=np.int64)
+    return _sign(offsets, np.empty(0, dtype=np.int64), h0, np.arange(len(offsets) - 1), params, False)
+
+
+def _sign(offsets, codes, table, ids, params: SignatureParams, by_position: bool) -> np.ndarray:
     if params.scheme == "oph":
-        return oph.sign_oph(h0, offsets, params.perms, oph_salts(params))
-    return _sign_kperm(h0, offsets, params.salts(), False)
+        raw = oph.sign_oph(offsets, codes, table, ids, params.perms, oph_salts(params))
+        return oph.densify(raw, oph_salts(params)[2], True) if by_position else raw
+    return _sign_kperm(offsets, codes, table, ids, params.salts(), by_position)
 
 
 def oph_salts(params: SignatureParams) -> np.ndarray:
@@ -118,30 +129,21 @@ def comparable(matrix: np.ndarray, params: SignatureParams) -> np.ndarray:
 
 
 def sign_membership(sets: Membership, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
-    """Signatures (len(ids) x k) of the sets ``ids`` of a :class:`~lshjob.membership.Membership`."""
-    return signature_matrix(*_hashed_sets(sets, ids), params)
+    """Signatures (len(ids) x k) of the sets ``ids`` of a :class:`~lshjob.membership.Membership`.
+    Elements are hashed inside the signing loop: no copy of the sets, no array of hashes."""
+    return _sign(*_membership_source(sets, ids), params, False)
 
 
 def comparable_by_position(sets: Membership, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
     """Comparable signatures (densified for ``oph``) of the sets ``ids``, laid out by
     position: a (k x len(ids)) matrix whose row i holds position i of every signature, so
     each row is a contiguous column for polars (the band stage reads positions, not rows)."""
-    h0, offsets = _hashed_sets(sets, ids)
-    if params.scheme == "oph":
-        raw = oph.sign_oph(h0, offsets, params.perms, oph_salts(params))
-        return oph.densify(raw, oph_salts(params)[2], True)
-    return _sign_kperm(h0, offsets, params.salts(), True)
+    return _sign(*_membership_source(sets, ids), params, True)
 
 
-def _hashed_sets(sets: Membership, ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Element hashes and offsets (CSR) of the sets ``ids``."""
-    ids = np.ascontiguousarray(ids, dtype=np.int64)
-    if len(ids) and ids[-1] - ids[0] == len(ids) - 1 and np.all(np.diff(ids) == 1):  # a run: no copy
-        lo, hi = sets.offsets[ids[0]], sets.offsets[ids[-1] + 1]
-        offsets, codes = sets.offsets[ids[0]:ids[-1] + 2] - lo, sets.elements[lo:hi]
-    else:
-        offsets, codes = gather_sets(sets.offsets, sets.elements, ids)
-    return np.ascontiguousarray(sets.element_hashes(codes), dtype=np.uint64), offsets.astype(np.int64, copy=False)
+def _membership_source(sets: Membership, ids: np.ndarray) -> tuple:
+    table = NO_ARRAY if sets.text_hashes is None else np.ascontiguousarray(sets.text_hashes, dtype=np.uint64)
+    return sets.offsets, sets.elements, table, np.ascontiguousarray(ids, dtype=np.int64)
 
 
 def signature_table(sets: Membership, params: SignatureParams) -> pl.DataFrame:
