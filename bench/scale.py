@@ -11,6 +11,7 @@ process, and audits recall on a sample with ``lshjob audit``.
 from __future__ import annotations
 
 import argparse
+import resource
 import json
 import subprocess
 import sys
@@ -44,12 +45,13 @@ def main() -> None:
     generated = time.perf_counter() - start
     n_events = pl.scan_parquet(f"{path}/*.parquet").select(pl.len()).collect().item()
 
-    floors = []
+    floors, floor_cpu = [], []
 
     def floor_pass() -> None:
-        start = time.perf_counter()
+        start, cpu = time.perf_counter(), _cpu(resource.RUSAGE_SELF)
         pl.scan_parquet(f"{path}/*.parquet").group_by("entity").agg(pl.col("element").hash(1).min()).collect()
         floors.append(time.perf_counter() - start)
+        floor_cpu.append(_cpu(resource.RUSAGE_SELF) - cpu)
 
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
         cmd = [sys.executable, "-m", "lshjob.cli", "run", str(path), "--entity", "entity", "--element", "element",
@@ -57,12 +59,13 @@ def main() -> None:
                "--quiet"]
         if args.memory:
             cmd += ["--memory", args.memory]
-        walls, m = [], None
+        walls, run_cpu, m = [], [], None
         for _ in range(args.repeat):
             for _ in range(2):  # the floor is short and noisy: two passes beside each run, best of all
                 floor_pass()
-            start = time.perf_counter()
+            start, cpu = time.perf_counter(), _cpu(resource.RUSAGE_CHILDREN)
             done = subprocess.run(cmd, capture_output=True, text=True)
+            run_cpu.append(_cpu(resource.RUSAGE_CHILDREN) - cpu)
             if done.returncode != 0:
                 sys.exit(f"lshjob run failed (exit {done.returncode}):\n{done.stderr[-3000:]}")
             walls.append(time.perf_counter() - start)
@@ -99,7 +102,9 @@ def main() -> None:
         f"Counts: bucket rows {c['bucket_rows']:,}, candidates {c['candidate_pairs']:,}, verified "
         f"{c['verified_pairs']:,}, published {c['published_rows']:,}.",
         f"Floor pass {floor:.2f} s (best of {len(floors)}, two beside each run: {', '.join(f'{x:.2f}' for x in floors)}); "
-        f"run / floor = {wall / floor:.1f}x.",
+        f"run / floor = {wall / floor:.1f}x. CPU time (user + system, both cores; steadier than the "
+        f"wall clock on this machine): run {min(run_cpu):.2f} s, floor {min(floor_cpu):.2f} s, "
+        f"ratio {min(run_cpu) / min(floor_cpu):.1f}x (best of each).",
         f"Audit ({audit['sampled_entities']} entities against {audit['compared_against']}, "
         f"{audit['true_pairs']} true pairs): recall {_f(audit['recall'])}, S-curve predicts "
         f"{_f(audit['predicted_recall'])}; over {audit['distinct_set_pairs']} distinct pairs of different sets "
@@ -107,6 +112,11 @@ def main() -> None:
         f"predicted; wrong pairs {audit['wrong_pairs']}.",
     ]
     finish(f"Scale, {args.entities:,} entities, {args.scheme}", "\n".join(lines), not args.no_write)
+
+
+def _cpu(who: int) -> float:
+    usage = resource.getrusage(who)
+    return usage.ru_utime + usage.ru_stime
 
 
 if __name__ == "__main__":
