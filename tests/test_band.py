@@ -70,6 +70,12 @@ def test_shared_positions_are_exactly_the_repeated_keys():
     assert len(expected) > 500
     for log2_slots in (8, 26):
         assert _shared(keys, log2_slots).tolist() == expected
+    # 200,000 keys are split into partitions (about 2**15 keys each) before the search
+    many = fmix64_np(rng.integers(0, 150_000, size=200_000).astype(np.uint64))
+    frame = pl.DataFrame({"key": many, "pos": np.arange(len(many))})
+    expected = frame.filter(pl.col("key").is_duplicated()).sort("key", "pos")["pos"].to_list()
+    for log2_slots in (16, 23):
+        assert _shared(many, log2_slots).tolist() == expected
 
 
 def test_signatures_by_position_are_the_transposed_comparable_signatures():
