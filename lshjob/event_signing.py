@@ -80,8 +80,7 @@ def _sign_grouped(offsets, codes, text_hashes, salts, k, oph_scheme):
 
 @numba.njit(cache=True)
 def _sign_chunk(lo, hi, offsets, codes, text_hashes, salts, k, oph_scheme, out, sizes):
-    """Sets lo..hi-1 (one task: its own table and digit buffer); rows filled in place."""
-    buf = np.empty(24, dtype=np.uint8)
+    """Sets lo..hi-1 (one task: its own table); rows filled in place."""
     largest = 1
     for g in range(lo, hi):
         largest = max(largest, offsets[g + 1] - offsets[g])
@@ -113,7 +112,7 @@ def _sign_chunk(lo, hi, offsets, codes, text_hashes, salts, k, oph_scheme, out, 
             stamp[s] = g + 1
             seen[s] = x
             count += 1
-            h = element_hash(j, codes, text_hashes, buf)
+            h = element_hash(j, codes, text_hashes)
             if oph_scheme:
                 i = fast_range(fmix64(h ^ salts[0]), k)
                 v = fmix64(h ^ salts[1])

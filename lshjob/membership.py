@@ -83,16 +83,16 @@ def element_codes(values: pl.Series) -> tuple[pl.Series, np.ndarray | None]:
 
 
 @numba.njit(inline="always")
-def element_hash(j, codes, table, buf):
+def element_hash(j, codes, table):
     """The XXH64 every signature starts from, of element j of a CSR element array, inside
     compiled loops. Three forms: ``codes`` empty, ``table`` holds the hashes in place
     (``table[j]``); ``table`` empty, ``codes`` are integer elements, hashed from their
-    decimal text here (``buf``: 24 bytes of scratch); both given, ``codes`` index the
+    decimal text here; both given, ``codes`` index the
     dictionary hashes (``table[codes[j]]``)."""
     if codes.shape[0] == 0:
         return table[j]
     if table.shape[0] == 0:
-        return xxh64_of_integer(codes[j], buf, np.uint64(0))
+        return xxh64_of_integer(codes[j], np.uint64(0))
     return table[codes[j]]
 
 

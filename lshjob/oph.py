@@ -29,7 +29,7 @@ from .hashing import fmix64
 from .membership import element_hash
 
 EMPTY = np.uint64(0xFFFFFFFFFFFFFFFF)
-CHUNK = 256  # sets per parallel task: one scratch buffer each
+CHUNK = 256  # sets per parallel task
 
 
 @numba.njit(inline="always")
@@ -44,13 +44,12 @@ def sign_oph(offsets, codes, table, ids, k, salts):
     n = ids.shape[0]
     out = np.empty((n, k), dtype=np.uint64)  # filled a chunk at a time: pages first touched in parallel
     for c in numba.prange((n + CHUNK - 1) // CHUNK):
-        buf = np.empty(24, dtype=np.uint8)
         for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
             g = ids[t]
             row = out[t]
             row[:] = EMPTY
             for j in range(offsets[g], offsets[g + 1]):
-                x = element_hash(j, codes, table, buf)
+                x = element_hash(j, codes, table)
                 b = fast_range(fmix64(x ^ salts[0]), k)
                 v = fmix64(x ^ salts[1])
                 if v < row[b]:

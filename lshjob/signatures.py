@@ -78,12 +78,11 @@ def _sign_kperm(offsets, codes, table, ids, salts, by_position):
     out = np.empty((k, n) if by_position else (n, k), dtype=np.uint64)
     for c in numba.prange((n + CHUNK - 1) // CHUNK):
         row = np.empty(k, dtype=np.uint64)
-        buf = np.empty(24, dtype=np.uint8)
         for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
             g = ids[t]
             row[:] = np.uint64(0xFFFFFFFFFFFFFFFF)
             for j in range(offsets[g], offsets[g + 1]):
-                x = element_hash(j, codes, table, buf)
+                x = element_hash(j, codes, table)
                 for i in range(k):
                     v = fmix64(x ^ salts[i])
                     if v < row[i]:
