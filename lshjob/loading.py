@@ -133,9 +133,13 @@ def _codes(element: pl.Series, dictionary: pl.Series | None) -> np.ndarray:
 def _read_in_range(frame, first, span, n, weighted, dictionary, where):
     """The two-pass way for integer keys in a small range (module docstring)."""
     slots = np.zeros(span, dtype=np.int64)
+    shares = 1 << (numba.get_num_threads().bit_length() - 1)  # a power of two: shares by bit mask
+    outside = 0
     for batch in frame.select("entity").collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
         v = batch["entity"].to_numpy()
-        _count_keys(slots, v, v.dtype.type(first))
+        outside += _count_keys(slots, v, v.dtype.type(first), shares)
+    if outside:
+        raise InputError(f"{where}: the files changed while being read ({outside} keys outside the range first seen)")
     counted = int(slots.sum())
     present = np.flatnonzero(slots)
     offsets = np.zeros(len(present) + 1, dtype=np.int64)
@@ -145,7 +149,6 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where):
     elements = np.empty(counted, dtype=np.int64)
     kept_weights = np.empty(counted if weighted else 0, dtype=np.float64)
     no_weights = np.empty(0, dtype=np.float64)
-    shares = numba.get_num_threads()
     misplaced = 0
     for batch in frame.collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
         v = batch["entity"].to_numpy()
@@ -158,10 +161,21 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where):
     return keys, offsets, elements, kept_weights
 
 
-@numba.njit(cache=True)
-def _count_keys(slots, values, first):
-    for x in values:
-        slots[x - first] += 1
+@numba.njit(parallel=True, cache=True)
+def _count_keys(slots, values, first, shares):
+    """Count events per key value (share s of the threads takes the values v with
+    v % shares == s, as :func:`_place`); returns how many values fall outside the range."""
+    low_bits = shares - 1
+    outside = np.zeros(shares, dtype=np.int64)
+    for s in numba.prange(shares):
+        for x in values:
+            if x < first or x - first >= len(slots):
+                outside[s] += 1
+                continue
+            v = x - first
+            if (v & low_bits) == s:
+                slots[v] += 1
+    return outside[0]
 
 
 @numba.njit(parallel=True, cache=True)

@@ -226,3 +226,27 @@ def test_integer_keys_in_a_small_range_need_8_bytes_an_event(tmp_path):
         load_membership(path, EventSpec(entity="patron", element="title"), memory=need - 1)
     sets, _ = load_membership(path, EventSpec(entity="patron", element="title"), memory=need)
     assert sets.size == 300 and sets.keys[0] == 5000
+
+
+def test_the_two_pass_reader_gives_the_same_sets_on_one_thread_and_on_several(tmp_path):
+    # Oracle: the one-thread result. Threads share key values by their low bits; every key
+    # must still be counted and placed (three threads where the machine has them: a count
+    # that is not a power of two).
+    import numba
+
+    from lshjob.loading import load_membership
+
+    rng = np.random.default_rng(12)
+    path = tmp_path / "loans.parquet"
+    pl.DataFrame({"patron": rng.integers(0, 500, 20_000), "title": rng.integers(0, 900, 20_000)}).write_parquet(path)
+    spec = EventSpec(entity="patron", element="title")
+    before = numba.get_num_threads()
+    try:
+        numba.set_num_threads(1)
+        one, _ = load_membership(path, spec)
+        numba.set_num_threads(min(3, numba.config.NUMBA_NUM_THREADS))
+        many, _ = load_membership(path, spec)
+    finally:
+        numba.set_num_threads(before)
+    assert many.keys.to_list() == one.keys.to_list()
+    assert np.array_equal(many.offsets, one.offsets) and np.array_equal(many.elements, one.elements)
