@@ -70,6 +70,16 @@ def _merge_round(acc, val):
     return acc * P1 + P4
 
 
+@numba.njit(inline="always")
+def _avalanche(h):
+    h ^= h >> U64(33)
+    h *= P2
+    h ^= h >> U64(29)
+    h *= P3
+    h ^= h >> U64(32)
+    return h
+
+
 @numba.njit(cache=True)
 def _xxh64_one(buf, start, end, seed):
     length = end - start
@@ -106,12 +116,7 @@ def _xxh64_one(buf, start, end, seed):
         h ^= U64(buf[i]) * P5
         h = _rotl(h, 11) * P1
         i += 1
-    h ^= h >> U64(33)
-    h *= P2
-    h ^= h >> U64(29)
-    h *= P3
-    h ^= h >> U64(32)
-    return h
+    return _avalanche(h)
 
 
 @numba.njit(cache=True)
@@ -203,12 +208,7 @@ def xxh64_of_integer(x, seed):
         h = _rotl(h, 11) * P1
         current >>= U64(8)
         rest -= 1
-    h ^= h >> U64(33)
-    h *= P2
-    h ^= h >> U64(29)
-    h *= P3
-    h ^= h >> U64(32)
-    return h
+    return _avalanche(h)
 
 
 @numba.njit(parallel=True, cache=True)
