@@ -136,8 +136,8 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where):
     shares = 1 << (numba.get_num_threads().bit_length() - 1)  # a power of two: shares by bit mask
     outside = 0
     for batch in frame.select("entity").collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
-        v = batch["entity"].to_numpy()
-        outside += _count_keys(slots, v, v.dtype.type(first), shares)
+        v = _wide(batch["entity"])
+        outside += _count_keys(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1), shares)
     if outside:
         raise InputError(f"{where}: the files changed while being read ({outside} keys outside the range first seen)")
     counted = int(slots.sum())
@@ -151,25 +151,32 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where):
     no_weights = np.empty(0, dtype=np.float64)
     misplaced = 0
     for batch in frame.collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
-        v = batch["entity"].to_numpy()
+        v = _wide(batch["entity"])
         w = batch["weight"].to_numpy() if weighted else no_weights
-        misplaced += _place(slots, v, v.dtype.type(first), _codes(batch["element"], dictionary), w,
-                            elements, kept_weights, shares)
+        misplaced += _place(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1),
+                            _codes(batch["element"], dictionary), w, elements, kept_weights, shares)
     if misplaced or counted != n or not np.array_equal(slots[present], offsets[1:]):
         raise InputError(f"{where}: the files changed while being read ({n} events counted, then read again)")
     keys = pl.Series("entity", present + first, dtype=frame.collect_schema()["entity"])
     return keys, offsets, elements, kept_weights
 
 
+def _wide(values: pl.Series) -> np.ndarray:
+    """Integer keys as int64 (uint64 kept): differences of narrower types could overflow."""
+    v = values.to_numpy()
+    return v if v.dtype in (np.int64, np.uint64) else v.astype(np.int64)
+
+
 @numba.njit(parallel=True, cache=True)
-def _count_keys(slots, values, first, shares):
+def _count_keys(slots, values, first, last, shares):
     """Count events per key value (share s of the threads takes the values v with
-    v % shares == s, as :func:`_place`); returns how many values fall outside the range."""
+    v % shares == s, as :func:`_place`); returns how many values fall outside
+    [first, last] (compared before subtracting, so nothing overflows)."""
     low_bits = shares - 1
     outside = np.zeros(shares, dtype=np.int64)
     for s in numba.prange(shares):
         for x in values:
-            if x < first or x - first >= len(slots):
+            if x < first or x > last:
                 outside[s] += 1
                 continue
             v = x - first
@@ -179,7 +186,7 @@ def _count_keys(slots, values, first, shares):
 
 
 @numba.njit(parallel=True, cache=True)
-def _place(slots, values, first, codes, weights, out, out_weights, shares):
+def _place(slots, values, first, last, codes, weights, out, out_weights, shares):
     """Write each event's code (and weight) into its key's next slot. Share s of the threads
     takes the key values v with v % shares == s (shares a power of two), so no two threads
     move one slot pointer.
@@ -189,7 +196,7 @@ def _place(slots, values, first, codes, weights, out, out_weights, shares):
     missed = np.zeros(shares, dtype=np.int64)
     for s in numba.prange(shares):
         for j in range(len(values)):
-            if values[j] < first or values[j] - first >= len(slots):
+            if values[j] < first or values[j] > last:
                 if s == 0:
                     missed[0] += 1
                 continue

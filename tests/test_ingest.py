@@ -180,7 +180,8 @@ def test_streaming_loader_integer_keys_and_batches(tmp_path, monkeypatch):
 
     rng = np.random.default_rng(5)
     cases = [(rng.integers(-10**15, 10**15, 300), 1 << 16), (np.arange(300), 1 << 16),
-             (rng.choice(np.arange(-2000, 2000), 300, replace=False), 1 << 16), (np.arange(3000) + 7, 0)]
+             (rng.choice(np.arange(-2000, 2000), 300, replace=False), 1 << 16), (np.arange(3000) + 7, 0),
+             (np.arange(-120, 120, dtype=np.int8), 1 << 16)]  # int8 keys: a range wider than int8
     for entities, min_span in cases:
         monkeypatch.setattr(loading, "DENSE_MIN_SPAN", min_span)
         ent = rng.choice(entities, 5000)
@@ -207,7 +208,7 @@ def test_events_without_a_counted_slot_are_reported_not_written():
     out = np.full(3, -7, dtype=np.int64)
     values = np.array([10, 11, 12, 9, 13, 10], dtype=np.int64)
     codes = np.array([100, 101, 102, 103, 104, 105], dtype=np.int64)
-    missed = _place(slots, values, np.int64(10), codes, np.empty(0), out, np.empty(0), 2)
+    missed = _place(slots, values, np.int64(10), np.int64(12), codes, np.empty(0), out, np.empty(0), 2)
     assert missed == 3  # 11 (not counted), 9 and 13 (outside the range)
     assert sorted(out.tolist()) == [100, 102, 105]
     assert slots.tolist() == [2, -1, 3]
