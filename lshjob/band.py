@@ -26,10 +26,10 @@ negatives; a few percent false positives); only those are sorted to keep the exa
 Sorting every key of every band in polars cost about four times as much at 1M rows, and
 sorting the marked rows in polars twice as much (measured).
 
-Memory, beside the key table: each band being searched holds one copy of its key column and
-the positions of its marked rows (8 bytes a representative, 16 a marked row; one band per
-thread), and a batch of B bands keeps its shared rows until written; the batch size keeps
-n x B x 28 bytes under ``batch_bytes``.
+Memory, beside the key table: each band being searched (one per thread) holds a copy of its
+key column, the keys and positions split by partition and the positions kept: 32 bytes a
+representative (0.6 GB for two threads at 10 million). A batch of B bands keeps its shared
+rows until written; the batch size keeps n x B x 28 bytes under ``batch_bytes``.
 """
 
 from __future__ import annotations
@@ -169,7 +169,10 @@ def _shared(keys, log2_slots):
     again = np.empty(max(1, (1 << bits) >> 6), dtype=np.uint64)
     out = np.empty(n, dtype=np.int64)
     kept = 0
-    marked = np.empty(n, dtype=np.int64)
+    largest = 0
+    for p in range(parts):
+        largest = max(largest, starts[p + 1] - starts[p])
+    marked = np.empty(largest, dtype=np.int64)
     for p in range(parts):
         a, b = starts[p], starts[p + 1]
         seen[:] = 0

@@ -30,7 +30,7 @@ from .membership import element_hash
 from .oph import EMPTY, fast_range
 from .signatures import SignatureParams, oph_salts, signature_column
 
-CHUNK = 256  # sets per parallel task: one scratch row and table each
+CHUNK = 256  # sets per parallel task: one table of seen codes each
 GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 
 
