@@ -97,7 +97,7 @@ def read_grouped(source: str | Path, spec: EventSpec, memory: int | None = None)
     """Steps 1-3 of the module docstring up to the counting sort (one set per entity)."""
     if spec.key_columns != ["entity"]:
         raise ParameterError("load_membership builds one set per entity; segments and periods go through load_sets")
-    start_compiled_code()
+    warming = start_compiled_code()
     frame, report, where = validated_events(source, spec)
     weighted = spec.count is not None or spec.min_count > 1
     n = report.rows_read - report.null_rows_dropped
@@ -111,6 +111,7 @@ def read_grouped(source: str | Path, spec: EventSpec, memory: int | None = None)
             "entity and run each part"
         )
     dictionary = _text_dictionary(frame)
+    warming.join()  # before any compiled call here: one threading layer (workqueue) must not be entered twice at once
     try:
         if span:
             keys, offsets, elements, kept_weights = _read_in_range(frame, report.entity_range[0], span, n,
@@ -240,7 +241,9 @@ def _read_and_group(frame, n, weighted, dictionary, where):
 def start_compiled_code() -> threading.Thread:
     """Start numba's parallel runtime in a background thread. Its first parallel call in a
     process costs about 0.3 s of Python work (typing registries, thread pool); done while
-    polars reads the events (which releases the GIL), it is mostly hidden."""
+    polars checks the events (which releases the GIL), it is mostly hidden. The caller must
+    join the thread before its own first compiled call: numba's ``workqueue`` threading
+    layer aborts the process when two threads run parallel code at once."""
     thread = threading.Thread(
         target=_lookup, args=(np.zeros(1, np.int64), 0, np.zeros(1, np.int64)), daemon=True
     )

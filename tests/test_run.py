@@ -295,3 +295,30 @@ def test_a_budget_too_small_for_the_sets_is_refused_before_reading(tmp_path, dem
         load_membership(src, SPEC, memory=20 * n - 1)
     sets, _ = load_membership(src, SPEC, memory=20 * n)
     assert sets.size > 0
+
+
+def test_a_run_never_enters_the_parallel_runtime_from_two_threads(tmp_path, demo_events):
+    # Reference: numba's documentation of threading layers: `workqueue` is not thread-safe
+    # and terminates the process on concurrent parallel launches. The run starts numba in a
+    # background thread (joined before any other compiled call) and searches bands in a
+    # thread pool (serial kernels only); under that layer it must finish and give the same
+    # index as under the default one. A parallel kernel called from the pool would abort it.
+    import os
+    import subprocess
+    import sys
+
+    src = write(demo_events[0], tmp_path)
+    outs = {}
+    for layer in ("workqueue", None):
+        env = dict(os.environ)
+        if layer:
+            env["NUMBA_THREADING_LAYER"] = layer
+        out = tmp_path / f"idx-{layer}"
+        done = subprocess.run(
+            [sys.executable, "-m", "lshjob.cli", "run", str(src), "--entity", "patron", "--element", "title",
+             "--threshold", "0.5", "--out", str(out), "--quiet"],
+            env=env, capture_output=True, text=True, timeout=300,
+        )
+        assert done.returncode == 0, done.stderr[-2000:]
+        outs[layer] = pl.read_parquet(out / "neighbours.parquet")
+    assert outs["workqueue"].equals(outs[None])
