@@ -96,6 +96,17 @@ def element_hash(j, codes, table):
     return table[codes[j]]
 
 
+@numba.njit(inline="always")
+def store_row(out, t, row, by_position):
+    """Write signature row ``row`` as signature t of ``out``: column t of a (k x n) matrix
+    laid out by position, or row t of an (n x k) one."""
+    if by_position:
+        for i in range(row.shape[0]):
+            out[i, t] = row[i]
+    else:
+        out[t] = row
+
+
 @numba.njit(parallel=True, cache=True)
 def gather_sets(offsets, elements, ids):
     """CSR of the sets ``ids`` (in that order); the copy runs on all cores."""

@@ -26,7 +26,7 @@ import numba
 import numpy as np
 
 from .hashing import fmix64
-from .membership import element_hash
+from .membership import element_hash, store_row
 
 EMPTY = np.uint64(0xFFFFFFFFFFFFFFFF)
 CHUNK = 256  # sets per parallel task
@@ -95,11 +95,7 @@ def densify(signatures, salt, by_position):
                 for i in range(k):
                     if row[i] == EMPTY:
                         filled_row[i] = _borrow(row, table, salt, i, k)
-            if by_position:
-                for i in range(k):
-                    out[i, g] = filled_row[i]
-            else:
-                out[g] = filled_row
+            store_row(out, g, filled_row, by_position)
     return out
 
 

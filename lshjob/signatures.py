@@ -36,7 +36,7 @@ import polars as pl
 from . import oph
 from .errors import IncompatibleSignatures, InputError, ParameterError
 from .hashing import element_hashes, fmix64, splitmix64_sequence, xxh64_strings
-from .membership import Membership, element_hash
+from .membership import Membership, element_hash, store_row
 
 FORMAT_NAME = "lshjob-signatures"
 FORMAT_VERSION = 1
@@ -87,11 +87,7 @@ def _sign_kperm(offsets, codes, table, ids, salts, by_position):
                     v = fmix64(x ^ salts[i])
                     if v < row[i]:
                         row[i] = v
-            if by_position:
-                for i in range(k):
-                    out[i, t] = row[i]
-            else:
-                out[t] = row
+            store_row(out, t, row, by_position)
     return out
 
 
