@@ -181,7 +181,7 @@ def plan(
 RUN_DEFAULTS = {
     "count": None, "min_count": 1, "on_null": "error", "top_k": 50, "perms": None, "bands": None,
     "rows": None, "recall": 0.95, "sample_size": 2000, "seed": 1, "scheme": "kperm", "max_bucket": 2000,
-    "max_candidates": 2e9, "memory": None,
+    "max_candidates": 2e9, "memory": None, "parts": None,
 }
 
 
@@ -206,7 +206,8 @@ def run(
     scheme: Annotated[Optional[str], typer.Option(help="Signature scheme: kperm or oph.  [default: kperm]")] = None,
     max_bucket: Annotated[Optional[int], typer.Option(help="Skip buckets holding more entities.  [default: 2000]")] = None,
     max_candidates: Annotated[Optional[float], typer.Option(help="Refuse plans predicting more candidate pairs.  [default: 2e9]")] = None,
-    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB.  [default: half the machine]")] = None,
+    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time.  [default: half the machine]")] = None,
+    parts: Annotated[Optional[int], typer.Option(help="Read the entities in this many key ranges, one at a time.  [default: as few as --memory allows]")] = None,
     config: Annotated[Optional[Path], typer.Option(help="TOML file with any of these options; flags override it.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
@@ -217,11 +218,14 @@ def run(
     --threshold 0.5 --top-k 20 --out index
 
     Example (scheduled): lshjob run --config nightly.toml
+
+    Example (sets larger than memory): lshjob run loans/ --entity patron --element title
+    --threshold 0.5 --memory 4GB --out index
     """
     flags = dict(events=events, entity=entity, element=element, threshold=threshold, out=out,
                  top_k=top_k, perms=perms, bands=bands, rows=rows, recall=recall, count=count,
                  min_count=min_count, on_null=on_null, sample_size=sample_size, seed=seed, scheme=scheme,
-                 max_bucket=max_bucket, max_candidates=max_candidates, memory=memory)
+                 max_bucket=max_bucket, max_candidates=max_candidates, memory=memory, parts=parts)
     settings = merge_settings(RUN_DEFAULTS, load_run_config(config) if config else {}, flags)
     missing = [name for name in ("events", "entity", "element", "threshold", "out") if settings.get(name) is None]
     if missing:

@@ -23,15 +23,15 @@ from . import __version__, planner, similarity
 from . import band
 from .errors import InputError, ParameterError
 from .identical import collapse_identical
-from .ingest import EventSpec
+from . import parts
+from .ingest import EventSpec, IngestReport
 from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
-from .loading import load_membership
+from .loading import grouping_need, membership_of, open_events
 from .membership import Membership
 from .progress import QUIET, StageProgress
 from .publish import neighbour_table, publish_index
 from .resources import current_bytes, default_memory, parse_size, peak_bytes, reset_peak
 from .signatures import SignatureParams, comparable_by_position
-from .verify import add_estimates, verify_pairs
 
 MIN_PLANNING_THRESHOLD = 1e-6
 
@@ -50,6 +50,7 @@ class RunOptions:
     max_bucket: int = DEFAULT_MAX_BUCKET
     max_candidates: float = 2e9
     memory: str | None = None
+    parts: int | None = None  # key ranges held one at a time; None: as the memory budget needs
 
     def validate(self) -> None:
         if not 0.0 < self.threshold <= 1.0:
@@ -68,6 +69,8 @@ class RunOptions:
             raise ParameterError(f"--sample-size must be at least 2; got {self.sample_size}")
         if self.memory is not None:
             parse_size(self.memory)
+        if self.parts is not None and self.parts < 1:
+            raise ParameterError(f"--parts must be at least 1; got {self.parts}")
         SignatureParams(scheme=self.scheme)
 
 
@@ -80,6 +83,7 @@ class _Stages:
         self.peak: dict[str, int] = {}
 
     def __call__(self, name: str, total: int = 1):
+        """Time a stage, with its own progress bar; a stage entered again adds up."""
         stages = self
 
         class _Ctx:
@@ -91,8 +95,8 @@ class _Stages:
 
             def __exit__(self, *exc):
                 self.task.__exit__(*exc)
-                stages.seconds[name] = round(time.perf_counter() - self.start, 3)
-                stages.peak[name] = peak_bytes()
+                stages.seconds[name] = round(stages.seconds.get(name, 0.0) + time.perf_counter() - self.start, 3)
+                stages.peak[name] = max(stages.peak.get(name, 0), peak_bytes())
 
         return _Ctx()
 
@@ -131,55 +135,41 @@ def run_job(
     started = time.perf_counter()
     try:
         with stages("ingest"):
-            sets, report = load_membership(events, spec, memory)
-        if sets.size < 2:
-            raise InputError(f"{events}: only {sets.size} entity after ingest; a neighbour index needs at least 2")
-        counts.update(events=report.rows_read, entities=sets.size, membership_rows=report.membership_rows,
-                      empty_after_filter=report.empty_after_filter, null_rows_dropped=report.null_rows_dropped)
+            source = open_events(events, spec)
+        in_parts = (options.parts or 0) > 1 or (
+            options.parts is None and grouping_need(source) > parts.ONE_PART_SHARE * memory)
+        built = (_build_in_parts if in_parts else _build_in_one_part)(source, options, memory, work, stages)
+        report, plan = built.report, built.plan
+        counts.update(events=report.rows_read, entities=len(built.keys), membership_rows=report.membership_rows,
+                      empty_after_filter=report.empty_after_filter, null_rows_dropped=report.null_rows_dropped,
+                      parts=len(built.store.ranges), representatives=built.representatives,
+                      entities_in_identical_groups=int(len(built.keys) - built.representatives))
 
-        with stages("collapse"):
-            rep_of, reps = collapse_identical(sets)
-        counts.update(representatives=len(reps), entities_in_identical_groups=int(sets.size - len(reps)))
-
-        with stages("plan"):
-            plan = _choose_plan(sets, options)
-        predicted = plan.get("predicted", {})
-        if predicted.get("expected_candidates", 0) > options.max_candidates:
-            raise ParameterError(
-                f"the plan (k={plan['perms']}, b={plan['bands']}, r={plan['rows']}) predicts "
-                f"{predicted['expected_candidates']:.3g} candidate pairs at threshold {options.threshold}, "
-                f"more than --max-candidates {options.max_candidates:.3g}; raise the threshold or --max-candidates"
-            )
-
-        if plan["mode"] == "identical-only":
+        if built.bucket_files is None:
             verified = pl.DataFrame(schema={"left_rep": pl.Int64, "right_rep": pl.Int64, "jaccard": pl.Float64,
                                             "estimate": pl.Float64, "bands_shared": pl.Int32})
             counts.update(bucket_rows=0, candidate_pairs=0, verified_pairs=0)
             skew = None
         else:
-            params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
-            files, shared_rows, n_bucket_rows = _sign_and_band(sets, reps, params, plan, work / "buckets",
-                                                               memory, stages)
-            counts["bucket_rows"] = n_bucket_rows
-            counts["shared_bucket_rows"] = shared_rows
-
+            counts["bucket_rows"] = built.bucket_rows
+            counts["shared_bucket_rows"] = built.shared_rows
             with stages("join"):
-                # DuckDB gets what the budget leaves beside the sets and signatures held here.
+                # DuckDB gets what the budget leaves beside the sets and keys held here.
                 duck = max(memory - current_bytes(), memory // 4, 128 * 2**20)
                 settings = JoinSettings(memory_limit=f"{duck // 2**20}MiB",
                                         temp_directory=str(work / "spill"), max_bucket=options.max_bucket)
-                joined = candidate_pairs(files, work / "candidates.parquet", settings, plan["bands"], n_bucket_rows)
+                candidates = work / ("candidates" if in_parts else "candidates.parquet")
+                joined = candidate_pairs(built.bucket_files, candidates, settings, plan["bands"], built.bucket_rows,
+                                         part_ranges=built.store.ranges if in_parts else None)
             skew = joined["skew"]
             counts["candidate_pairs"] = joined["candidate_pairs"]
 
             with stages("verify"):
-                verified = _verify_in_chunks(work / "candidates.parquet", joined["candidate_pairs"], sets,
-                                             options.threshold, memory)
-                verified = add_estimates(verified, sets, params)
+                verified = parts.verify_blocks(candidates, built.store, options.threshold, built.params, memory)
             counts["verified_pairs"] = verified.height
 
         with stages("publish"):
-            table = neighbour_table(verified, rep_of, sets.keys, options.top_k, plan.get("bands", 0))
+            table = neighbour_table(verified, built.rep_of, built.keys, options.top_k, plan.get("bands", 0))
         counts["published_rows"] = table.height
         manifest = {
             "format": "lshjob-index",
@@ -206,54 +196,160 @@ def run_job(
         shutil.rmtree(work, ignore_errors=True)
 
 
-VERIFY_BYTES_PER_PAIR = 64  # candidate row in polars and numpy, plus the float results
-MIN_VERIFY_SLICE = 1_000_000
+@dataclass
+class _Built:
+    """What ingest, collapse, plan, sign and band leave for the join and later stages."""
+
+    keys: pl.Series  # every entity key; entity id = position
+    rep_of: np.ndarray
+    representatives: int
+    store: parts.PartStore | parts.HeldSets
+    report: IngestReport
+    plan: dict
+    params: SignatureParams | None = None
+    bucket_files: list[Path] | None = None  # None: no bands (identical sets only)
+    shared_rows: int = 0
+    bucket_rows: int = 0
 
 
-def _sign_and_band(sets, reps, params, plan, out_dir, memory, stages) -> tuple[list[Path], int, int]:
-    """Sign the representatives a slice at a time and keep only their bucket keys (8 bytes
-    per band): a slice's signatures (raw and densified, laid out by position; polars reads them without a copy: at most 2 x 8k bytes a
-    row) take at most an eighth of the budget. Then write the shared buckets' rows.
-    Returns (files, rows written, all bucket rows)."""
-    bands, rows = plan["bands"], plan["rows"]
-    if params.scheme == "kperm":
-        # Bands read only the first b*r positions; k-permutation positions are independent
-        # (salts are a prefix of one sequence), so the rest is not computed here.
-        params = SignatureParams(scheme="kperm", perms=bands * rows, seed=params.seed)
-    per_row = 3 * 8 * params.perms + band.ROW_BYTES * bands
-    step = int(max(10_000, memory // 8 // per_row))
-    slices = []
-    with stages.progress.stage("sign and band", len(reps)) as task:
-        for lo in range(0, len(reps), step):
-            ids = reps[lo:lo + step]
-            with stages.part("sign"):
-                columns = comparable_by_position(sets, ids, params)
-            with stages.part("band"):
-                slices.append(band.bucket_keys_by_position(columns, ids, bands, rows))
+def _build_in_one_part(source, options, memory, work, stages) -> _Built:
+    with stages("ingest"):
+        sets, report = membership_of(source, None)
+    _check_entities(source, sets.size)
+    with stages("collapse"):
+        rep_of, reps = collapse_identical(sets)
+    with stages("plan"):
+        plan = _choose_plan(sets, options)
+    _check_predicted(plan, options)
+    built = _Built(sets.keys, rep_of, len(reps), parts.HeldSets(sets), report, plan)
+    if plan["mode"] != "identical-only":
+        built.params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
+        bands = _Bander(built.params, plan, memory, stages)
+        with stages.progress.stage("sign and band", len(reps)) as task:
+            bands.add(sets, reps, 0, task)
+        built.bucket_files, built.shared_rows = bands.write(work / "buckets")
+        built.bucket_rows = len(reps) * plan["bands"]
+    return built
+
+
+def _build_in_parts(source, options, memory, work, stages) -> _Built:
+    """The run a key range at a time (:mod:`lshjob.parts`)."""
+    with stages("count"):
+        per_entity = parts.events_per_entity(source)
+    _check_entities(source, per_entity.height)
+    with stages("plan"):
+        budget_events = int(parts.part_budget(memory, per_entity.height, 0) / parts.bytes_per_event(source))
+        sample, _ = membership_of(source, parts.planning_sample(per_entity, budget_events))
+        plan = _choose_plan(sample, options, total_entities=per_entity.height)
+        del sample
+    if plan["mode"] == "identical-only":
+        raise ParameterError(
+            f"{source.where}: threshold 1.0 (identical sets only) runs in one part; the sets need more than "
+            f"half the memory budget of {memory / 2**30:.1f} GiB: raise --memory, or use a threshold below 1.0 "
+            "(identical sets still pair up, through the bands)")
+    _check_predicted(plan, options)
+    params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
+    ranges = parts.key_ranges(per_entity, source, parts.part_budget(memory, per_entity.height, plan["bands"]),
+                              options.parts)
+    del per_entity
+    store = parts.PartStore(work / "sets", source.text_hashes)
+    report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
+                          null_rows_dropped=source.report.null_rows_dropped)
+    keys, rep_of, representatives = [], [], 0
+    bands = _Bander(params, plan, memory, stages)
+    with stages.progress.stage("parts", len(ranges)) as task:
+        for selection in ranges:
+            with stages.part("ingest"):
+                sets, part_report = membership_of(source, selection)
+            _merge_report(report, part_report)
+            first = store.ranges[-1][1] + 1 if store.ranges else 0
+            with stages.part("collapse"):
+                part_rep_of, reps = collapse_identical(sets)
+            keys.append(sets.keys)
+            rep_of.append(part_rep_of + first)
+            representatives += len(reps)
+            bands.add(sets, reps, first, None)
+            with stages.part("ingest"):
+                store.save(sets)
+            del sets, part_rep_of, reps
+            task.advance()
+    if report.membership_rows == 0:
+        raise InputError(f"{source.where}: no element is left after filtering (--min-count {source.min_count}); "
+                         "nothing to sign")
+    keys = pl.concat(keys)
+    _check_entities(source, len(keys))
+    files, shared = bands.write(work / "buckets")
+    return _Built(keys, np.concatenate(rep_of), representatives, store, report, plan, params, files, shared,
+                  representatives * plan["bands"])
+
+
+def _merge_report(total: IngestReport, part: IngestReport) -> None:
+    total.membership_rows += part.membership_rows
+    total.sets += part.sets
+    total.empty_after_filter += part.empty_after_filter
+    total.empty_examples = (total.empty_examples + part.empty_examples)[:5]
+
+
+def _check_entities(source, n: int) -> None:
+    if n < 2:
+        raise InputError(f"{source.where}: only {n} entity after ingest; a neighbour index needs at least 2")
+
+
+def _check_predicted(plan: dict, options: RunOptions) -> None:
+    predicted = plan.get("predicted", {})
+    if predicted.get("expected_candidates", 0) > options.max_candidates:
+        raise ParameterError(
+            f"the plan (k={plan['perms']}, b={plan['bands']}, r={plan['rows']}) predicts "
+            f"{predicted['expected_candidates']:.3g} candidate pairs at threshold {options.threshold}, "
+            f"more than --max-candidates {options.max_candidates:.3g}; raise the threshold or --max-candidates"
+        )
+
+
+class _Bander:
+    """Signs representatives a slice at a time and keeps only their bucket keys (8 bytes per
+    band): a slice's signatures (raw and densified, laid out by position; polars reads them
+    without a copy: at most 2 x 8k bytes a row) take at most an eighth of the budget. Then
+    :meth:`write` writes the shared buckets' rows."""
+
+    def __init__(self, params, plan, memory, stages) -> None:
+        self.bands, self.rows = plan["bands"], plan["rows"]
+        if params.scheme == "kperm":
+            # Bands read only the first b*r positions; k-permutation positions are independent
+            # (salts are a prefix of one sequence), so the rest is not computed here.
+            params = SignatureParams(scheme="kperm", perms=self.bands * self.rows, seed=params.seed)
+        self.params, self.memory, self.stages = params, memory, stages
+        self.step = int(max(10_000, memory // 8 // (3 * 8 * params.perms + band.ROW_BYTES * self.bands)))
+        self.slices: list[pl.DataFrame] = []
+
+    def add(self, sets: Membership, reps: np.ndarray, first: int, task) -> None:
+        """Sign and band ``reps`` (ids within ``sets``); entity ids in the keys are ``first + id``."""
+        for lo in range(0, len(reps), self.step):
+            ids = reps[lo:lo + self.step]
+            with self.stages.part("sign"):
+                columns = comparable_by_position(sets, ids, self.params)
+            with self.stages.part("band"):
+                self.slices.append(band.bucket_keys_by_position(columns, ids + first, self.bands, self.rows))
             del columns
-            task.advance(len(ids))
-    with stages.part("band"):
-        files, written = band.write_shared_bucket_rows(slices, bands, out_dir, batch_bytes=max(64 << 20, memory // 8))
-    return files, written, len(reps) * bands
+            if task is not None:
+                task.advance(len(ids))
+
+    def write(self, out_dir: Path) -> tuple[list[Path], int]:
+        with self.stages.part("band"):
+            files, written = band.write_shared_bucket_rows(self.slices, self.bands, out_dir,
+                                                          batch_bytes=max(64 << 20, self.memory // 8))
+        self.slices = []
+        return files, written
 
 
-def _verify_in_chunks(path, n_pairs, sets, threshold, memory) -> pl.DataFrame:
-    """Verify candidates a slice at a time so memory stays bounded whatever their number;
-    a slice is sized to a quarter of the budget."""
-    step = max(MIN_VERIFY_SLICE, memory // 4 // VERIFY_BYTES_PER_PAIR)
-    parts = []
-    for offset in range(0, max(n_pairs, 1), step):
-        chunk = pl.scan_parquet(path).slice(offset, step).collect()
-        parts.append(verify_pairs(chunk, sets, threshold))
-    return pl.concat(parts)
-
-
-def _choose_plan(sets: Membership, options: RunOptions) -> dict:
+def _choose_plan(sets: Membership, options: RunOptions, total_entities: int | None = None) -> dict:
+    """The plan, from exact Jaccard of a sample of ``sets`` (all entities, or a uniform sample
+    of ``total_entities``)."""
     if options.threshold >= 1.0:
         return {"mode": "identical-only", "why": "threshold 1.0: only identical sets qualify; "
                 "they are grouped exactly, no signatures or bands are needed"}
-    n_entities = sets.size
-    hist = similarity.sample_histogram_from_sets(sets, options.sample_size, seed=0, threshold=options.threshold)
+    n_entities = total_entities or sets.size
+    hist = similarity.sample_histogram_from_sets(sets, options.sample_size, seed=0, total_entities=n_entities,
+                                                 threshold=options.threshold)
     if options.bands is not None:
         perms = options.perms or 128
         chosen = _judge(options.threshold, hist, perms, options.bands, options.rows)
@@ -264,7 +360,8 @@ def _choose_plan(sets: Membership, options: RunOptions) -> dict:
         chosen = planner.data_plans(options.threshold, hist, choices, options.recall)[0].as_dict()
         why = (f"data mode: fewest expected candidates with expected recall >= {options.recall}; exact "
                f"Jaccard of {hist.sample_entities} sampled entities against "
-               f"{'all' if hist.design == 'against_all' else 'each other'} ({n_entities} entities)")
+               f"{'all' if hist.design == 'against_all' else 'each other'} ({n_entities} entities"
+               + (f"; pairs scaled from a uniform sample of {sets.size}" if n_entities != sets.size else "") + ")")
         mode = "data"
     return {
         "mode": mode,

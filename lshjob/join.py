@@ -8,7 +8,9 @@ of failing.
 
 Output contract of :func:`candidate_pairs`: a Parquet file with ``left_rep`` < ``right_rep``
 (Int64 entity ids of representatives), ``bands_shared`` Int32 >= 1, one row per unordered
-pair, in no particular order; and a skew report (dict).
+pair, in no particular order; and a skew report (dict). Given the entity id ranges of a
+run's parts (:mod:`lshjob.parts`), a folder instead, the same rows split by the parts of
+their two sides: ``left_part=i/right_part=j/*.parquet`` (``i <= j``; ``sql/candidate_blocks.sql``).
 """
 
 from __future__ import annotations
@@ -43,11 +45,13 @@ def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
 
 
 def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings, bands: int,
-                    bucket_rows: int | None = None) -> dict:
+                    bucket_rows: int | None = None, part_ranges: list[tuple[int, int]] | None = None) -> dict:
     """Write candidate pairs to ``out`` (Parquet); return counts and the skew report.
 
     ``bucket_rows`` is the number of all bucket rows when the files hold only the rows of
-    shared buckets (lshjob/band.py); by default, the files' own row count."""
+    shared buckets (lshjob/band.py); by default, the files' own row count. ``part_ranges``
+    (first and last entity id of each part, consecutive) makes ``out`` a folder split by
+    the parts of each pair (module contract)."""
     files = [str(p) for p in bucket_files]
 
     params = {"max_bucket": settings.max_bucket}
@@ -62,9 +66,21 @@ def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings,
         skew = {name: int(value) for name, value in zip(columns, skew_row)}
         query = load_sql("candidates").strip().rstrip(";")
         tmp = out.with_name(f".{out.name}.tmp")
-        con.execute(f"COPY ({query}) TO {string_literal(str(tmp))} (FORMAT parquet)", params)
+        if part_ranges is None:
+            con.execute(f"COPY ({query}) TO {string_literal(str(tmp))} (FORMAT parquet)", params)
+            pattern = str(out)
+        else:
+            con.execute("CREATE TEMP TABLE part_ranges (part INTEGER, first_id BIGINT, last_id BIGINT)")
+            con.executemany("INSERT INTO part_ranges VALUES (?, ?, ?)",
+                            [(i, a, b) for i, (a, b) in enumerate(part_ranges)])
+            blocks = load_sql("candidate_blocks").strip().rstrip(";")
+            con.execute(f"COPY (WITH candidate_rows AS ({query}) {blocks}) TO {string_literal(str(tmp))} "
+                        "(FORMAT parquet, PARTITION_BY (left_part, right_part))", params)
+            pattern = str(out / "**" / "*.parquet")
+            tmp.mkdir(exist_ok=True)  # no pair, no file
         tmp.replace(out)
-        count = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": str(out)}).fetchone()[0]
+        found = part_ranges is None or any(out.rglob("*.parquet"))
+        count = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": pattern}).fetchone()[0] if found else 0
     finally:
         con.close()
     skew["max_bucket"] = settings.max_bucket

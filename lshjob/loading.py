@@ -58,14 +58,21 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
     """Read events into a Membership (entities in sorted key order); see the module docstring.
 
     With ``memory`` (bytes), refuse before reading when grouping the events would need more."""
-    grouped = read_grouped(source, spec, memory)
+    events = open_events(source, spec)
+    check_budget(events, None, memory)
+    return membership_of(events, None)
+
+
+def membership_of(events: "EventSource", selection: "EntitySelection | None") -> tuple[Membership, IngestReport]:
+    """The sets of the selected entities (all by default), entities in sorted key order."""
+    grouped = group_events(events, selection)
     keys, offsets, elements, report, where = grouped.keys, grouped.offsets, grouped.codes, grouped.report, grouped.where
-    sizes = _sort_and_merge(offsets, elements, grouped.weights, float(spec.min_count), grouped.weighted)
+    sizes = _sort_and_merge(offsets, elements, grouped.weights, float(events.min_count), grouped.weighted)
     offsets, elements = _compact(offsets, elements, sizes)
     empty = sizes == 0
-    if empty.all():
+    if empty.all() and selection is None:
         raise InputError(
-            f"{where}: no element is left after filtering (--min-count {spec.min_count}); nothing to sign"
+            f"{where}: no element is left after filtering (--min-count {events.min_count}); nothing to sign"
         )
     if empty.any():
         report.empty_after_filter = int(empty.sum())
@@ -93,35 +100,103 @@ class GroupedEvents:
     where: str
 
 
-def read_grouped(source: str | Path, spec: EventSpec, memory: int | None = None) -> GroupedEvents:
-    """Steps 1-3 of the module docstring up to the counting sort (one set per entity)."""
+@dataclass
+class EventSource:
+    """Checked events, ready to be grouped whole or a selection of entities at a time: the
+    lazy frame of :func:`~lshjob.ingest.validated_events`, its report, and what every
+    selection shares (the text element dictionary, so codes agree across selections)."""
+
+    frame: pl.LazyFrame
+    report: IngestReport
+    where: str
+    weighted: bool
+    min_count: float
+    dictionary: pl.Series | None
+    text_hashes: np.ndarray | None
+
+    @property
+    def events(self) -> int:
+        """Events left after dropping rows with null keys."""
+        return self.report.rows_read - self.report.null_rows_dropped
+
+
+@dataclass(frozen=True)
+class EntitySelection:
+    """The events of some entities: those matching ``condition`` (on the ``entity`` column),
+    exactly ``events`` of them (counted beforehand), keys within ``entity_range`` when the
+    keys are integers."""
+
+    condition: pl.Expr
+    events: int
+    entity_range: tuple[int, int] | None = None
+
+
+def open_events(source: str | Path, spec: EventSpec) -> EventSource:
+    """Check the events (one set per entity) and prepare what grouping them needs."""
     if spec.key_columns != ["entity"]:
         raise ParameterError("load_membership builds one set per entity; segments and periods go through load_sets")
     warming = start_compiled_code()
     frame, report, where = validated_events(source, spec)
     weighted = spec.count is not None or spec.min_count > 1
-    n = report.rows_read - report.null_rows_dropped
-    span = _dense_span(report.entity_range, n)
-    need = grouping_bytes(n, weighted, span)
+    dictionary = _text_dictionary(frame)
+    warming.join()  # before any compiled call here: one threading layer (workqueue) must not be entered twice at once
+    text_hashes = None if dictionary is None else xxh64_strings(dictionary)
+    return EventSource(frame, report, where, weighted, float(spec.min_count), dictionary, text_hashes)
+
+
+def check_budget(events: EventSource, selection: EntitySelection | None, memory: int | None) -> None:
+    """Refuse, with the figures, when grouping the selection would need more than ``memory``."""
+    n, entity_range = _extent(events, selection)
+    span = _dense_span(entity_range, n)
+    need = grouping_bytes(n, events.weighted, span)
     if memory is not None and need > memory:
         raise ParameterError(
-            f"{where}: grouping {report.rows_read:,} events into sets needs about {need / 2**30:.1f} GiB "
-            f"({(BYTES_PER_EVENT_IN_RANGE if span else BYTES_PER_EVENT)[weighted]} bytes an event), more "
+            f"{events.where}: grouping {n:,} events into sets needs about {need / 2**30:.1f} GiB "
+            f"({(BYTES_PER_EVENT_IN_RANGE if span else BYTES_PER_EVENT)[events.weighted]} bytes an event), more "
             f"than the memory budget of {memory / 2**30:.1f} GiB; raise --memory, or split the input by "
             "entity and run each part"
         )
-    dictionary = _text_dictionary(frame)
-    warming.join()  # before any compiled call here: one threading layer (workqueue) must not be entered twice at once
+
+
+def grouping_need(events: EventSource, selection: EntitySelection | None = None) -> int:
+    """Bytes the loader needs at its peak to group the selection (all events by default)."""
+    n, entity_range = _extent(events, selection)
+    return grouping_bytes(n, events.weighted, _dense_span(entity_range, n))
+
+
+def _extent(events: EventSource, selection: EntitySelection | None) -> tuple[int, tuple[int, int] | None]:
+    if selection is None:
+        return events.events, events.report.entity_range
+    return selection.events, selection.entity_range
+
+
+def read_grouped(source: str | Path, spec: EventSpec, memory: int | None = None) -> GroupedEvents:
+    """Steps 1-3 of the module docstring up to the counting sort (one set per entity)."""
+    events = open_events(source, spec)
+    check_budget(events, None, memory)
+    return group_events(events, None)
+
+
+def group_events(events: EventSource, selection: EntitySelection | None) -> GroupedEvents:
+    """Group the selected entities' events (all by default) up to the counting sort."""
+    frame, where = events.frame, events.where
+    n, entity_range = _extent(events, selection)
+    report = events.report
+    if selection is not None:
+        frame = frame.filter(selection.condition)
+        report = IngestReport(files=report.files, rows_read=n, entity_range=entity_range)
+    span = _dense_span(entity_range, n)
     try:
         if span:
-            keys, offsets, elements, kept_weights = _read_in_range(frame, report.entity_range[0], span, n,
-                                                                   weighted, dictionary, where)
+            keys, offsets, elements, kept_weights = _read_in_range(frame, entity_range[0], span, n,
+                                                                   events.weighted, events.dictionary, where)
         else:
-            keys, offsets, elements, kept_weights = _read_and_group(frame, n, weighted, dictionary, where)
+            keys, offsets, elements, kept_weights = _read_and_group(frame, n, events.weighted,
+                                                                    events.dictionary, where)
     except pl.exceptions.PolarsError as exc:
         raise InputError(f"{where}: could not read the events: {exc}") from exc
-    text_hashes = None if dictionary is None else xxh64_strings(dictionary)
-    return GroupedEvents(keys.alias("entity"), offsets, elements, kept_weights, weighted, text_hashes, report, where)
+    return GroupedEvents(keys.alias("entity"), offsets, elements, kept_weights, events.weighted,
+                         events.text_hashes, report, where)
 
 
 def _codes(element: pl.Series, dictionary: pl.Series | None) -> np.ndarray:

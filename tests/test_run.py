@@ -189,7 +189,7 @@ def test_failed_rerun_keeps_the_last_good_index(tmp_path, demo_events, monkeypat
     def broken(*args, **kwargs):
         raise RuntimeError("disk full")
 
-    monkeypatch.setattr("lshjob.job.verify_pairs", broken)
+    monkeypatch.setattr("lshjob.parts.verify_between", broken)
     with pytest.raises(RuntimeError):
         run_job(src, SPEC, RunOptions(threshold=0.6), out)
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before  # no staging or work left
@@ -270,8 +270,8 @@ def test_explicit_bands_and_rows_are_checked(tmp_path, small_events):
 def test_verifying_in_slices_gives_the_same_index(tmp_path, demo_events, monkeypatch):
     src = write(demo_events[0], tmp_path)
     run_job(src, SPEC, RunOptions(threshold=0.4), tmp_path / "whole")
-    monkeypatch.setattr("lshjob.job.MIN_VERIFY_SLICE", 50)
-    monkeypatch.setattr("lshjob.job.VERIFY_BYTES_PER_PAIR", 10**12)
+    monkeypatch.setattr("lshjob.parts.MIN_VERIFY_SLICE", 50)
+    monkeypatch.setattr("lshjob.parts.VERIFY_BYTES_PER_PAIR", 10**12)
     m = run_job(src, SPEC, RunOptions(threshold=0.4), tmp_path / "sliced")
     assert m["counts"]["candidate_pairs"] > 500  # many slices of 50
     assert (tmp_path / "whole/neighbours.parquet").read_bytes() == (tmp_path / "sliced/neighbours.parquet").read_bytes()

@@ -1,0 +1,194 @@
+"""Runs whose sets do not fit the memory budget: the entities a key range at a time.
+
+When grouping every event at once would take more than half the budget, the run cuts the
+entities, in key order, into consecutive key ranges (*parts*) of about equal grouping cost,
+each within what is left of the budget (:func:`key_ranges`). Then, a part at a time:
+
+1. its events are read (a filtered pass over the input: two for integer keys in a small
+   range, :mod:`lshjob.loading`) and grouped into sets;
+2. identical sets are collapsed within the part (:mod:`lshjob.identical`);
+3. its representatives are signed and their bucket keys kept (8 bytes a band);
+4. its sets are saved to the work folder (:class:`PartStore`) and dropped.
+
+Entity ids stay global (position of the key among all keys), and a part holds consecutive
+ids, so the join is unchanged; it only writes the candidates split by the parts of their two
+sides (``sql/candidate_blocks.sql``), and verification holds two parts at a time
+(:func:`verify_blocks`): P parts cost P + P(P-1)/2 loads of saved sets.
+
+Identical sets in different parts keep one representative each. Their signatures agree, so
+they share every band, and verification finds Jaccard 1.0 between them; the published index
+is the same as in one part (tested).
+
+The planner sees a uniform random sample of entities (as many as one part holds), read in
+one more filtered pass; pair counts are scaled to all entities
+(:func:`lshjob.similarity.sample_histogram_from_sets`).
+
+Cost: besides the validation pass, a pass counts events per entity (polars, streaming),
+one reads the sample, and each part reads the events again. What the run keeps across parts:
+the entity keys, 8 bytes per entity (representative of each), the per-entity event counts,
+and the bucket keys (8 bytes per band and representative).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+from .loading import (BYTES_PER_EVENT, BYTES_PER_EVENT_IN_RANGE, BYTES_PER_KEY_VALUE, EntitySelection,
+                      EventSource, _dense_span)
+from .membership import Membership
+from .signatures import SignatureParams
+from .verify import add_estimates_between, verify_between
+
+ONE_PART_SHARE = 0.5  # grouping all events may take this share of the budget, else parts
+PART_SHARE = 0.5  # what grouping one part may take, of what the run does not hold across parts
+HELD_BYTES_PER_ENTITY = 32  # representative, event count and key (about 8 bytes of a key)
+VERIFY_BYTES_PER_PAIR = 64  # candidate row in polars and numpy, plus the float results
+MIN_VERIFY_SLICE = 1_000_000
+
+
+def events_per_entity(events: EventSource) -> pl.DataFrame:
+    """``entity`` (sorted) and ``events`` (UInt32): one row per entity key, one streaming pass."""
+    return (events.frame.group_by("entity").agg(pl.len().alias("events"))
+            .collect(engine="streaming").sort("entity"))
+
+
+def bytes_per_event(events: EventSource) -> float:
+    """Grouping cost of an event: 8 bytes (16 weighted) when the integer keys lie in a small
+    range, plus the range's table spread over the events; else 20 (36)."""
+    span = _dense_span(events.report.entity_range, events.events)
+    if span:
+        return BYTES_PER_EVENT_IN_RANGE[events.weighted] + BYTES_PER_KEY_VALUE * span / max(events.events, 1)
+    return BYTES_PER_EVENT[events.weighted]
+
+
+def held_bytes(entities: int, bands: int) -> int:
+    """What a run in parts holds across parts (module docstring)."""
+    return entities * (HELD_BYTES_PER_ENTITY + 8 * bands)
+
+
+def part_budget(memory: int, entities: int, bands: int) -> int:
+    """Bytes grouping one part may take: a share of what is not held across parts, and never
+    under a tenth of the budget (parts smaller than that would cost more passes than the
+    budget saves)."""
+    return int(max(PART_SHARE * (memory - held_bytes(entities, bands)), memory // 10))
+
+
+def key_ranges(counts: pl.DataFrame, events: EventSource, budget: int, parts: int | None = None) -> list[EntitySelection]:
+    """Cut the entities (``counts`` from :func:`events_per_entity`) into consecutive key ranges
+    of about equal events: as few as keep each part's grouping within ``budget`` bytes, or
+    exactly ``parts`` of them (fewer if there are fewer entities)."""
+    n = counts.height
+    per_entity = counts["events"].to_numpy().astype(np.int64)
+    cum = np.cumsum(per_entity)
+    total = int(cum[-1]) if n else 0
+    if parts is None:
+        parts = max(1, math.ceil(total * bytes_per_event(events) / max(budget, 1)))
+    parts = max(1, min(parts, n))
+    cuts = np.searchsorted(cum, [total * i / parts for i in range(1, parts)], side="left") + 1
+    bounds = np.unique(np.concatenate([[0], np.clip(cuts, 1, n), [n]]))
+    keys = counts["entity"]
+    integer = keys.dtype.is_integer()
+    out = []
+    for a, b in zip(bounds[:-1], bounds[1:]):
+        first, last = keys[int(a)], keys[int(b) - 1]
+        out.append(EntitySelection(
+            condition=pl.col("entity").is_between(pl.lit(first, dtype=keys.dtype), pl.lit(last, dtype=keys.dtype)),
+            events=int(per_entity[a:b].sum()),
+            entity_range=(int(first), int(last)) if integer else None,
+        ))
+    return out
+
+
+def planning_sample(counts: pl.DataFrame, budget_events: int, seed: int = 0) -> EntitySelection:
+    """A uniform random sample of entities whose events number about ``budget_events`` (all
+    entities when they fit)."""
+    n = counts.height
+    total = int(counts["events"].sum())
+    m = n if total <= budget_events else max(2, int(n * budget_events / max(total, 1)))
+    picked = np.sort(np.random.default_rng(seed).choice(n, size=min(m, n), replace=False))
+    keys = counts["entity"].gather(picked)
+    integer = keys.dtype.is_integer()
+    return EntitySelection(
+        condition=pl.col("entity").is_in(keys.implode()),
+        events=int(counts["events"].gather(picked).sum()),
+        entity_range=(int(keys[0]), int(keys[-1])) if integer else None,
+    )
+
+
+@dataclass
+class PartStore:
+    """The sets of each part, saved in the work folder between the part's reading and the
+    verification. Part i holds entity ids ``ranges[i][0]..ranges[i][1]``."""
+
+    folder: Path
+    text_hashes: np.ndarray | None
+    ranges: list[tuple[int, int]] = field(default_factory=list)
+
+    def save(self, sets: Membership) -> None:
+        i = len(self.ranges)
+        first = self.ranges[-1][1] + 1 if self.ranges else 0
+        self.folder.mkdir(parents=True, exist_ok=True)
+        np.save(self.folder / f"part-{i}-offsets.npy", sets.offsets)
+        np.save(self.folder / f"part-{i}-elements.npy", sets.elements)
+        self.ranges.append((first, first + sets.size - 1))
+
+    def load(self, i: int) -> Membership:
+        offsets = np.load(self.folder / f"part-{i}-offsets.npy")
+        elements = np.load(self.folder / f"part-{i}-elements.npy")
+        return Membership(pl.Series("entity", [], dtype=pl.Int64), offsets, elements, self.text_hashes)
+
+
+class HeldSets:
+    """All sets in memory, as one part (the usual run)."""
+
+    def __init__(self, sets: Membership) -> None:
+        self.sets = sets
+        self.ranges = [(0, sets.size - 1)]
+
+    def load(self, i: int) -> Membership:
+        return self.sets
+
+
+def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: float, params: SignatureParams,
+                  memory: int) -> pl.DataFrame:
+    """Exact Jaccard of every candidate (:mod:`lshjob.verify`), two parts' sets held at a time;
+    candidates are read a slice at a time (a quarter of the budget), so memory stays bounded
+    whatever their number. ``candidates`` is the join's file (one part) or folder (parts)."""
+    step = max(MIN_VERIFY_SLICE, memory // 4 // VERIFY_BYTES_PER_PAIR)
+    pieces = []
+    parts = len(store.ranges)
+    for i in range(parts):
+        left = None
+        for j in range(i, parts):
+            files = _block_files(candidates, parts, i, j)
+            if not files:
+                continue
+            left = store.load(i) if left is None else left
+            right = left if j == i else store.load(j)
+            frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
+            kept = []
+            for offset in range(0, _rows(files), step):
+                chunk = frame.slice(offset, step).collect()
+                kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
+            block = pl.concat(kept)
+            pieces.append(add_estimates_between(block, left, store.ranges[i][0], right, store.ranges[j][0], params))
+            del right
+    if not pieces:
+        return pl.DataFrame(schema={"left_rep": pl.Int64, "right_rep": pl.Int64, "jaccard": pl.Float64,
+                                    "estimate": pl.Float64, "bands_shared": pl.Int32})
+    return pl.concat(pieces)
+
+
+def _block_files(candidates: Path, parts: int, i: int, j: int) -> list[str]:
+    if parts == 1 and candidates.is_file():
+        return [str(candidates)]
+    return sorted(str(p) for p in (candidates / f"left_part={i}" / f"right_part={j}").glob("*.parquet"))
+
+
+def _rows(files: list[str]) -> int:
+    return pl.scan_parquet(files, hive_partitioning=False).select(pl.len()).collect().item()

@@ -1,0 +1,189 @@
+"""Runs a key range at a time (lshjob/parts.py): the same index as one part, exact sets,
+every event in exactly one part."""
+
+import json
+
+import numpy as np
+import polars as pl
+import pytest
+from helpers import planted_pairs
+from test_run import brute_force_pairs, published_pairs
+
+from lshjob import EventSpec, ParameterError
+from lshjob import parts as parts_module
+from lshjob.job import RunOptions, run_job
+from lshjob.loading import membership_of, open_events
+from lshjob.membership import Membership
+from lshjob.verify import jaccard_between
+
+SPEC = EventSpec(entity="patron", element="title")
+
+
+def loans_with_identical_groups(seed: int, integer_patrons: bool) -> pl.DataFrame:
+    """Planted pairs and background patrons, plus groups of patrons with identical sets spread
+    over the whole key order (so they fall into different parts), and repeated loans."""
+    events = planted_pairs(300, 0.3, seed=seed, background=400)
+    rng = np.random.default_rng(seed)
+    names = events["patron"].unique().sort().to_list()
+    extra_p, extra_t = [], []
+    for g in range(6):  # six groups of identical sets, members spread over the key order
+        titles = [f"G{g}-{t}" for t in range(int(rng.integers(3, 9)))]
+        for m in range(int(rng.integers(2, 7))):
+            name = f"{names[int(rng.integers(len(names)))]}~{g}{m}"
+            extra_p += [name] * len(titles)
+            extra_t += titles
+    events = pl.concat([events, pl.DataFrame({"patron": extra_p, "title": extra_t})])
+    events = pl.concat([events, events.sample(2000, seed=seed)])  # repeated loans count once
+    if integer_patrons:
+        order = events["patron"].unique().sort()
+        events = events.with_columns(patron=(order.search_sorted(events["patron"]) * 3 + 1000).cast(pl.Int32))
+    return events.sample(fraction=1.0, shuffle=True, seed=seed)
+
+
+@pytest.mark.parametrize("integer_patrons", [False, True])
+@pytest.mark.parametrize("scheme", ["kperm", "oph"])
+def test_an_index_built_in_parts_equals_the_index_built_in_one(tmp_path, integer_patrons, scheme):
+    # Reference: the same run holding every set at once (itself checked against scipy brute
+    # force in test_run.py); published pairs are also checked against brute force here.
+    events = loans_with_identical_groups(5, integer_patrons)
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    options = dict(threshold=0.4, perms=64, bands=16, rows=4, scheme=scheme, top_k=200)
+    one = run_job(src, SPEC, RunOptions(**options), tmp_path / "one")
+    four = run_job(src, SPEC, RunOptions(**options, parts=4), tmp_path / "four")
+    assert one["counts"]["parts"] == 1 and four["counts"]["parts"] == 4
+    # Identical sets in different parts keep a representative each, and meet through the bands.
+    assert four["counts"]["representatives"] > one["counts"]["representatives"]
+    for name in ("events", "entities", "membership_rows"):
+        assert four["counts"][name] == one["counts"][name]
+    assert (tmp_path / "one/neighbours.parquet").read_bytes() == (tmp_path / "four/neighbours.parquet").read_bytes()
+    truth = brute_force_pairs(events.with_columns(pl.col("patron").cast(pl.String)), 0.4)
+    got = {tuple(sorted(map(str, k))): v for k, v in published_pairs(tmp_path / "four").items()}
+    assert len(got) > 200
+    for pair, jac in got.items():
+        assert abs(truth[pair] - jac) <= 1e-12
+
+
+def test_weighted_events_and_empty_sets_in_parts(tmp_path):
+    # Reference: one part. A count column and --min-count drop elements, and leave some
+    # patrons with nothing; the run in parts reports the same counts and index.
+    rng = np.random.default_rng(2)
+    n = 6000
+    events = pl.DataFrame({
+        "patron": [f"p{int(x):04d}" for x in rng.integers(0, 400, n)],
+        "title": rng.integers(0, 300, n).astype(np.int64),
+        "loans": rng.integers(1, 4, n),
+    })
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    spec = EventSpec(entity="patron", element="title", count="loans", min_count=4)
+    options = dict(threshold=0.2, perms=64, bands=32, rows=2, top_k=100)
+    one = run_job(src, spec, RunOptions(**options), tmp_path / "one")
+    three = run_job(src, spec, RunOptions(**options, parts=3), tmp_path / "three")
+    assert one["counts"]["empty_after_filter"] > 0
+    for name in ("entities", "membership_rows", "empty_after_filter", "published_rows"):
+        assert three["counts"][name] == one["counts"][name], name
+    assert (tmp_path / "one/neighbours.parquet").read_bytes() == (tmp_path / "three/neighbours.parquet").read_bytes()
+
+
+def test_a_small_budget_turns_to_parts_by_itself(tmp_path, demo_events, monkeypatch):
+    # The budget (not an option) decides: with shares shrunk so that these few events
+    # exceed them, the run goes in parts and records how many; the index is the same.
+    src = tmp_path / "loans.parquet"
+    demo_events[0].write_parquet(src)
+    options = RunOptions(threshold=0.5, perms=64, bands=16, rows=4)
+    run_job(src, SPEC, options, tmp_path / "one")
+    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e-6)
+    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, bands: 200_000)
+    manifest = run_job(src, SPEC, options, tmp_path / "parts")
+    assert manifest["counts"]["parts"] > 1
+    written = json.loads((tmp_path / "parts/manifest.json").read_text())
+    assert written["counts"]["parts"] == manifest["counts"]["parts"]
+    assert "count" in written["seconds"] and "count" in written["peak_memory_bytes"]
+    assert (tmp_path / "one/neighbours.parquet").read_bytes() == (tmp_path / "parts/neighbours.parquet").read_bytes()
+
+
+@pytest.mark.parametrize("integer_patrons", [False, True])
+def test_key_ranges_hold_every_event_once_in_key_order(tmp_path, integer_patrons):
+    # Reference: brute force over the events (polars filter per range).
+    events = loans_with_identical_groups(9, integer_patrons)
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    source = open_events(src, SPEC)
+    counts = parts_module.events_per_entity(source)
+    ranges = parts_module.key_ranges(counts, source, budget=1, parts=5)
+    assert len(ranges) == 5
+    seen = []
+    for r in ranges:
+        inside = events.rename({"patron": "entity"}).filter(r.condition)
+        assert inside.height == r.events
+        seen.append(inside["entity"].unique().sort())
+    assert sum(r.events for r in ranges) == events.height
+    joined = pl.concat(seen)
+    assert joined.is_sorted() and joined.n_unique() == joined.len() == events["patron"].n_unique()
+    sizes = [r.events for r in ranges]
+    assert max(sizes) < 1.5 * events.height / 5  # about equal events a part
+    # The sets of the parts, one after the other, are the sets read whole.
+    whole, _ = membership_of(source, None)
+    pieces = [membership_of(source, r)[0] for r in ranges]
+    assert pl.concat([p.keys for p in pieces]).equals(whole.keys)
+    assert np.array_equal(np.concatenate([p.elements for p in pieces]), whole.elements)
+
+
+def test_parts_are_sized_from_the_budget(tmp_path, demo_events):
+    src = tmp_path / "loans.parquet"
+    demo_events[0].write_parquet(src)
+    source = open_events(src, SPEC)
+    counts = parts_module.events_per_entity(source)
+    per_event = parts_module.bytes_per_event(source)
+    assert per_event == 20  # text keys: the one-pass loader's 20 bytes an event (lshjob/loading.py)
+    budget = int(source.events * per_event / 3.5)
+    ranges = parts_module.key_ranges(counts, source, budget)
+    assert len(ranges) == 4
+    assert all(r.events * per_event <= 1.2 * budget for r in ranges)
+
+
+def test_jaccard_between_two_set_tables_matches_brute_force():
+    # Reference: Python set arithmetic.
+    rng = np.random.default_rng(7)
+
+    def table(n):
+        sets = [np.unique(rng.integers(0, 30, int(rng.integers(1, 15)))) for _ in range(n)]
+        offsets = np.concatenate([[0], np.cumsum([len(s) for s in sets])]).astype(np.int64)
+        return sets, Membership(pl.Series([], dtype=pl.Int64), offsets, np.concatenate(sets).astype(np.int64))
+
+    a_sets, a = table(60)
+    b_sets, b = table(40)
+    left = rng.integers(0, 60, 3000)
+    right = rng.integers(0, 40, 3000)
+    for t in (0.1, 0.3, 0.6):
+        got = jaccard_between(a.offsets, a.elements, left, b.offsets, b.elements, right, t)
+        for p in range(len(left)):
+            x, y = set(a_sets[left[p]].tolist()), set(b_sets[right[p]].tolist())
+            j = len(x & y) / len(x | y)
+            assert got[p] == (j if j >= t else -1.0)
+
+
+def test_threshold_one_in_parts_is_refused_with_a_way_out(tmp_path, demo_events):
+    src = tmp_path / "loans.parquet"
+    demo_events[0].write_parquet(src)
+    with pytest.raises(ParameterError, match="threshold 1.0 .* runs in one part"):
+        run_job(src, SPEC, RunOptions(threshold=1.0, parts=2), tmp_path / "idx")
+    assert not (tmp_path / "idx" / "neighbours.parquet").exists()
+
+
+def test_no_candidate_in_any_part(tmp_path):
+    # Disjoint sets: no pair shares a bucket; the run in parts publishes an empty index.
+    events = pl.DataFrame({"patron": [f"p{i}" for i in range(50) for _ in range(3)],
+                           "title": [f"t{i}-{j}" for i in range(50) for j in range(3)]})
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    manifest = run_job(src, SPEC, RunOptions(threshold=0.5, perms=32, bands=8, rows=4, parts=3), tmp_path / "idx")
+    assert manifest["counts"]["candidate_pairs"] == 0
+    assert pl.read_parquet(tmp_path / "idx/neighbours.parquet").height == 0
+
+
+def test_parts_option_is_checked():
+    with pytest.raises(ParameterError, match="--parts must be at least 1; got 0"):
+        RunOptions(threshold=0.5, parts=0).validate()
+
