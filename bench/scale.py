@@ -90,7 +90,7 @@ def main() -> None:
         "| stage | seconds | peak resident memory |",
         "| --- | ---: | ---: |",
     ]
-    order = ["ingest", "collapse", "plan", "sign", "band", "join", "verify", "publish", "write"]
+    order = ["ingest", "count", "collapse", "plan", "sign", "band", "join", "verify", "publish", "write"]
     for stage in [s for s in order if s in m["seconds"]]:
         secs = m["seconds"][stage]
         peak = m["peak_memory_bytes"].get(stage)
@@ -99,7 +99,7 @@ def main() -> None:
     lines += [
         f"| total (process wall clock{'' if args.repeat == 1 else f', best of {args.repeat}'}) | {wall:.2f} | {max(m['peak_memory_bytes'].values()) / 2**30:.2f} GiB |",
         "",
-        f"Counts: bucket rows {c['bucket_rows']:,}, candidates {c['candidate_pairs']:,}, verified "
+        f"Counts: parts {c.get('parts', 1)}, bucket rows {c['bucket_rows']:,}, candidates {c['candidate_pairs']:,}, verified "
         f"{c['verified_pairs']:,}, published {c['published_rows']:,}.",
         f"Floor pass {floor:.2f} s (best of {len(floors)}, two beside each run: {', '.join(f'{x:.2f}' for x in floors)}); "
         f"run / floor = {wall / floor:.1f}x. CPU time (user + system, both cores; steadier than the "

@@ -1,6 +1,15 @@
 """lshjob: a neighbour index over very large collections of sets (MinHash + LSH)."""
 
+import os
+
 __version__ = "0.1.0"
+
+# polars' allocator (jemalloc) keeps freed pages resident by default ("muzzy_decay_ms:-1"),
+# so a run's resident memory only grows; a job held to a memory budget returns them at
+# once. Polars reads this variable when it is first imported, after its own settings, so
+# this takes effect when lshjob is imported first (as by the lshjob command); a value the
+# user set is kept.
+os.environ.setdefault("_RJEM_MALLOC_CONF", "muzzy_decay_ms:0")
 
 from .api import merge_files, sign_file  # noqa: E402
 from .errors import IncompatibleSignatures, InputError, LshjobError, ParameterError  # noqa: E402

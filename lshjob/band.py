@@ -95,18 +95,19 @@ def write_shared_bucket_rows(
     """Write the rows of buckets holding two or more representatives (one Parquet file per
     batch of bands); buckets of one can form no pair and are only counted. ``keys`` is the
     wide key table of all representatives (:func:`bucket_keys`), or its slices in order
-    (never concatenated whole: one band's keys at a time).
+    (never concatenated whole: one band's keys at a time), each a table or a Parquet file
+    written by :func:`save_keys` (then only one band's keys are ever in memory).
 
     Returns the files written and the number of rows written."""
     out_dir.mkdir(parents=True, exist_ok=True)
     slices = [keys] if isinstance(keys, pl.DataFrame) else list(keys)
-    height = sum(s.height for s in slices)
-    reps = np.concatenate([s.get_column("rep").to_numpy() for s in slices]) if slices else np.empty(0, np.int64)
+    reps = np.concatenate([_column(s, "rep") for s in slices]) if slices else np.empty(0, np.int64)
+    height = len(reps)
     step = bands_per_batch(height, bands, batch_bytes)
     log2_slots = max(16, int(np.ceil(np.log2(max(2, height)))) + 5)  # about 32 bits a row
 
     def shared_rows(j: int) -> pl.DataFrame:
-        column = np.concatenate([s.get_column(str(j)).to_numpy() for s in slices])
+        column = np.concatenate([_column(s, str(j)) for s in slices])
         rows = _shared(column, log2_slots)
         return pl.DataFrame({
             "band": np.full(len(rows), j, dtype=np.int32), "bucket": column[rows], "rep": reps[rows],
@@ -124,6 +125,19 @@ def write_shared_bucket_rows(
             if progress is not None:
                 progress.advance(len(batch))
     return files, total
+
+
+def save_keys(keys: pl.DataFrame, path: Path) -> Path:
+    """Write a slice of the wide key table for :func:`write_shared_bucket_rows` to read back a
+    band at a time (a run in parts keeps no key table in memory)."""
+    keys.write_parquet(path, compression="lz4", statistics=False)
+    return path
+
+
+def _column(keys: pl.DataFrame | Path, name: str) -> np.ndarray:
+    if isinstance(keys, pl.DataFrame):
+        return keys.get_column(name).to_numpy()
+    return pl.read_parquet(keys, columns=[name]).get_column(name).to_numpy()
 
 
 PART_ROWS = 1 << 15  # keys per partition: its two bitmaps (about 8 KiB) and keys stay in cache

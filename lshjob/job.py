@@ -238,7 +238,8 @@ def _build_in_parts(source, options, memory, work, stages) -> _Built:
         per_entity = parts.events_per_entity(source)
     _check_entities(source, per_entity.height)
     with stages("plan"):
-        budget_events = int(parts.part_budget(memory, per_entity.height, 0) / parts.bytes_per_event(source))
+        # Half a part: the planner's histogram adds an inverted index of the sample.
+        budget_events = int(parts.part_budget(memory, per_entity.height) / 2 / parts.bytes_per_event(source))
         sample, _ = membership_of(source, parts.planning_sample(per_entity, budget_events))
         plan = _choose_plan(sample, options, total_entities=per_entity.height)
         del sample
@@ -249,14 +250,14 @@ def _build_in_parts(source, options, memory, work, stages) -> _Built:
             "(identical sets still pair up, through the bands)")
     _check_predicted(plan, options)
     params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
-    ranges = parts.key_ranges(per_entity, source, parts.part_budget(memory, per_entity.height, plan["bands"]),
+    ranges = parts.key_ranges(per_entity, source, parts.part_budget(memory, per_entity.height),
                               options.parts)
     del per_entity
     store = parts.PartStore(work / "sets", source.text_hashes)
     report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
                           null_rows_dropped=source.report.null_rows_dropped)
     keys, rep_of, representatives = [], [], 0
-    bands = _Bander(params, plan, memory, stages)
+    bands = _Bander(params, plan, memory, stages, spill=work / "keys")
     with stages.progress.stage("parts", len(ranges)) as task:
         for selection in ranges:
             with stages.part("ingest"):
@@ -307,11 +308,11 @@ def _check_predicted(plan: dict, options: RunOptions) -> None:
 
 class _Bander:
     """Signs representatives a slice at a time and keeps only their bucket keys (8 bytes per
-    band): a slice's signatures (raw and densified, laid out by position; polars reads them
+    band; in a file each under ``spill``, for a run in parts): a slice's signatures (raw and densified, laid out by position; polars reads them
     without a copy: at most 2 x 8k bytes a row) take at most an eighth of the budget. Then
     :meth:`write` writes the shared buckets' rows."""
 
-    def __init__(self, params, plan, memory, stages) -> None:
+    def __init__(self, params, plan, memory, stages, spill: Path | None = None) -> None:
         self.bands, self.rows = plan["bands"], plan["rows"]
         if params.scheme == "kperm":
             # Bands read only the first b*r positions; k-permutation positions are independent
@@ -319,7 +320,8 @@ class _Bander:
             params = SignatureParams(scheme="kperm", perms=self.bands * self.rows, seed=params.seed)
         self.params, self.memory, self.stages = params, memory, stages
         self.step = int(max(10_000, memory // 8 // (3 * 8 * params.perms + band.ROW_BYTES * self.bands)))
-        self.slices: list[pl.DataFrame] = []
+        self.slices: list[pl.DataFrame | Path] = []
+        self.spill = spill  # keys saved here (a run in parts), else kept in memory
 
     def add(self, sets: Membership, reps: np.ndarray, first: int, task) -> None:
         """Sign and band ``reps`` (ids within ``sets``); entity ids in the keys are ``first + id``."""
@@ -328,7 +330,11 @@ class _Bander:
             with self.stages.part("sign"):
                 columns = comparable_by_position(sets, ids, self.params)
             with self.stages.part("band"):
-                self.slices.append(band.bucket_keys_by_position(columns, ids + first, self.bands, self.rows))
+                keys = band.bucket_keys_by_position(columns, ids + first, self.bands, self.rows)
+                if self.spill is not None:
+                    self.spill.mkdir(parents=True, exist_ok=True)
+                    keys = band.save_keys(keys, self.spill / f"keys-{len(self.slices):06d}.parquet")
+                self.slices.append(keys)
             del columns
             if task is not None:
                 task.advance(len(ids))

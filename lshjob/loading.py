@@ -40,7 +40,7 @@ from .hashing import xxh64_strings
 from .ingest import EventSpec, IngestReport, validated_events
 from .membership import INT64_MAX, Membership
 
-BATCH_ROWS = 4_000_000
+BATCH_ROWS = 1_000_000  # as fast as 4M here, and a quarter of the memory in flight (measured)
 BYTES_PER_EVENT = {False: 20, True: 36}  # id + code + grouped code (+ weights, twice)
 BYTES_PER_EVENT_IN_RANGE = {False: 8, True: 16}  # grouped code (+ weight): keys in a small range
 BYTES_PER_KEY_VALUE = 8  # slot pointer per value of the key range
@@ -226,7 +226,8 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where):
     kept_weights = np.empty(counted if weighted else 0, dtype=np.float64)
     no_weights = np.empty(0, dtype=np.float64)
     misplaced = 0
-    for batch in frame.collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
+    columns = ["entity", "element", "weight"] if weighted else ["entity", "element"]
+    for batch in frame.select(columns).collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
         v = _wide(batch["entity"])
         w = batch["weight"].to_numpy() if weighted else no_weights
         misplaced += _place(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1),
@@ -298,7 +299,8 @@ def _read_and_group(frame, n, weighted, dictionary, where):
     codes = np.empty(n, dtype=np.int64)
     weights = np.empty(n if weighted else 0, dtype=np.float64)
     pos = 0
-    for batch in frame.collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
+    columns = ["entity", "element", "weight"] if weighted else ["entity", "element"]
+    for batch in frame.select(columns).collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
         m = batch.height
         if pos + m > n:
             raise InputError(f"{where}: the files changed while being read ({n} events counted, more read)")

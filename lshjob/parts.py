@@ -7,26 +7,29 @@ each within what is left of the budget (:func:`key_ranges`). Then, a part at a t
 1. its events are read (a filtered pass over the input: two for integer keys in a small
    range, :mod:`lshjob.loading`) and grouped into sets;
 2. identical sets are collapsed within the part (:mod:`lshjob.identical`);
-3. its representatives are signed and their bucket keys kept (8 bytes a band);
+3. its representatives are signed and their bucket keys saved to the work folder (8 bytes
+   a band and representative; :func:`lshjob.band.save_keys`);
 4. its sets are saved to the work folder (:class:`PartStore`) and dropped.
 
 Entity ids stay global (position of the key among all keys), and a part holds consecutive
 ids, so the join is unchanged; it only writes the candidates split by the parts of their two
-sides (``sql/candidate_blocks.sql``), and verification holds two parts at a time
+sides (``sql/candidate_blocks.sql``); the band search reads the saved keys one band at a
+time, and verification holds two parts at a time
 (:func:`verify_blocks`): P parts cost P + P(P-1)/2 loads of saved sets.
 
 Identical sets in different parts keep one representative each. Their signatures agree, so
 they share every band, and verification finds Jaccard 1.0 between them; the published index
 is the same as in one part (tested).
 
-The planner sees a uniform random sample of entities (as many as one part holds), read in
+The planner sees a uniform random sample of entities (as many as half a part holds), read in
 one more filtered pass; pair counts are scaled to all entities
 (:func:`lshjob.similarity.sample_histogram_from_sets`).
 
 Cost: besides the validation pass, a pass counts events per entity (polars, streaming),
 one reads the sample, and each part reads the events again. What the run keeps across parts:
-the entity keys, 8 bytes per entity (representative of each), the per-entity event counts,
-and the bucket keys (8 bytes per band and representative).
+the entity keys, 8 bytes per entity (representative of each) and the per-entity event
+counts; the band search then holds 8 bytes per entity and about 40 a thread
+(:mod:`lshjob.band`).
 """
 
 from __future__ import annotations
@@ -47,6 +50,7 @@ from .verify import add_estimates_between, verify_between
 ONE_PART_SHARE = 0.5  # grouping all events may take this share of the budget, else parts
 PART_SHARE = 0.5  # what grouping one part may take, of what the run does not hold across parts
 HELD_BYTES_PER_ENTITY = 32  # representative, event count and key (about 8 bytes of a key)
+PROCESS_BYTES = 256 << 20  # the interpreter with polars, numba and DuckDB loaded: about 200 MiB measured
 VERIFY_BYTES_PER_PAIR = 64  # candidate row in polars and numpy, plus the float results
 MIN_VERIFY_SLICE = 1_000_000
 
@@ -66,16 +70,16 @@ def bytes_per_event(events: EventSource) -> float:
     return BYTES_PER_EVENT[events.weighted]
 
 
-def held_bytes(entities: int, bands: int) -> int:
-    """What a run in parts holds across parts (module docstring)."""
-    return entities * (HELD_BYTES_PER_ENTITY + 8 * bands)
+def held_bytes(entities: int) -> int:
+    """What a run in parts holds across parts (module docstring), beside the process itself."""
+    return PROCESS_BYTES + entities * HELD_BYTES_PER_ENTITY
 
 
-def part_budget(memory: int, entities: int, bands: int) -> int:
-    """Bytes grouping one part may take: a share of what is not held across parts, and never
-    under a tenth of the budget (parts smaller than that would cost more passes than the
-    budget saves)."""
-    return int(max(PART_SHARE * (memory - held_bytes(entities, bands)), memory // 10))
+def part_budget(memory: int, entities: int) -> int:
+    """Bytes grouping one part may take: a share of what is not held across parts (the rest
+    is for signing a slice, polars' batches and the saved part's copy), and never under a
+    tenth of the budget (parts smaller than that would cost more passes than they save)."""
+    return int(max(PART_SHARE * (memory - held_bytes(entities)), memory // 10))
 
 
 def key_ranges(counts: pl.DataFrame, events: EventSource, budget: int, parts: int | None = None) -> list[EntitySelection]:

@@ -94,7 +94,7 @@ def test_a_small_budget_turns_to_parts_by_itself(tmp_path, demo_events, monkeypa
     options = RunOptions(threshold=0.5, perms=64, bands=16, rows=4)
     run_job(src, SPEC, options, tmp_path / "one")
     monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e-6)
-    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, bands: 200_000)
+    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities: 200_000)
     manifest = run_job(src, SPEC, options, tmp_path / "parts")
     assert manifest["counts"]["parts"] > 1
     written = json.loads((tmp_path / "parts/manifest.json").read_text())
