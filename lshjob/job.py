@@ -354,7 +354,10 @@ def _choose_plan(sets: Membership, options: RunOptions, total_entities: int | No
         return {"mode": "identical-only", "why": "threshold 1.0: only identical sets qualify; "
                 "they are grouped exactly, no signatures or bands are needed"}
     n_entities = total_entities or sets.size
-    hist = similarity.sample_histogram_from_sets(sets, options.sample_size, seed=0, total_entities=n_entities,
+    # Against a uniform sample of a fraction f of the entities, a sampled entity meets only
+    # a fraction f of its similar pairs: 1/f times as many sampled entities see as many pairs.
+    sample = min(sets.size, int(options.sample_size * n_entities / sets.size))
+    hist = similarity.sample_histogram_from_sets(sets, sample, seed=0, total_entities=n_entities,
                                                  threshold=options.threshold)
     if options.bands is not None:
         perms = options.perms or 128

@@ -187,3 +187,25 @@ def test_parts_option_is_checked():
     with pytest.raises(ParameterError, match="--parts must be at least 1; got 0"):
         RunOptions(threshold=0.5, parts=0).validate()
 
+
+
+def test_the_planner_in_parts_meets_its_recall_target(tmp_path, monkeypatch):
+    # Oracle: scipy brute force (test_run.brute_force_pairs). In parts the planner sees a
+    # uniform sample of a quarter of the patrons (budget shrunk here), with four times as
+    # many sampled patrons; its plan must still find the true pairs at the target recall
+    # (0.95 expected; 0.9 allows for the binomial noise of ~1000 pairs).
+    events = planted_pairs(1000, 0.3, seed=8, background=2000)
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    source = open_events(src, SPEC)
+    quarter = int(source.events * parts_module.bytes_per_event(source) / 4)
+    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities: 2 * quarter)  # a sample: half a part
+    manifest = run_job(src, SPEC, RunOptions(threshold=0.5, sample_size=300, top_k=100, parts=3), tmp_path / "idx")
+    sample = manifest["plan"]["sample"]
+    assert manifest["counts"]["parts"] == 3
+    assert 0.2 * 4000 < sample["entities"] <= 0.3 * 4000 + 1, sample  # about a quarter of the 4000 patrons
+    assert "scaled from a uniform sample" in manifest["plan"]["why"]
+    truth = brute_force_pairs(events, 0.5)
+    got = published_pairs(tmp_path / "idx")
+    assert len(truth) > 500
+    assert sum(pair in got for pair in truth) / len(truth) >= 0.9
