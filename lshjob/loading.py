@@ -129,6 +129,9 @@ class EntitySelection:
     condition: pl.Expr
     events: int
     entity_range: tuple[int, int] | None = None
+    # integer keys and their event counts, when counted beforehand: the two-pass reader
+    # then skips its counting pass
+    key_counts: tuple[np.ndarray, np.ndarray] | None = None
 
 
 def open_events(source: str | Path, spec: EventSpec) -> EventSource:
@@ -188,8 +191,9 @@ def group_events(events: EventSource, selection: EntitySelection | None) -> Grou
     span = _dense_span(entity_range, n)
     try:
         if span:
-            keys, offsets, elements, kept_weights = _read_in_range(frame, entity_range[0], span, n,
-                                                                   events.weighted, events.dictionary, where)
+            keys, offsets, elements, kept_weights = _read_in_range(
+                frame, entity_range[0], span, n, events.weighted, events.dictionary, where,
+                None if selection is None else selection.key_counts)
         else:
             keys, offsets, elements, kept_weights = _read_and_group(frame, n, events.weighted,
                                                                     events.dictionary, where)
@@ -206,16 +210,21 @@ def _codes(element: pl.Series, dictionary: pl.Series | None) -> np.ndarray:
     return dictionary.search_sorted(element.cast(pl.String)).to_numpy()
 
 
-def _read_in_range(frame, first, span, n, weighted, dictionary, where):
-    """The two-pass way for integer keys in a small range (module docstring)."""
+def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=None):
+    """The two-pass way for integer keys in a small range (module docstring); with ``known``
+    (keys and their event counts, counted beforehand) the counting pass is skipped."""
     slots = np.zeros(span, dtype=np.int64)
     shares = 1 << (numba.get_num_threads().bit_length() - 1)  # a power of two: shares by bit mask
-    outside = 0
-    for batch in frame.select("entity").collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
-        v = _wide(batch["entity"])
-        outside += _count_keys(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1), shares)
-    if outside:
-        raise InputError(f"{where}: the files changed while being read ({outside} keys outside the range first seen)")
+    if known is not None:
+        k = known[0] if known[0].dtype in (np.int64, np.uint64) else known[0].astype(np.int64)
+        slots[(k - k.dtype.type(first)).astype(np.int64)] = known[1]  # keys within the range: no overflow
+    else:
+        outside = 0
+        for batch in frame.select("entity").collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
+            v = _wide(batch["entity"])
+            outside += _count_keys(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1), shares)
+        if outside:
+            raise InputError(f"{where}: the files changed while being read ({outside} keys outside the range first seen)")
     counted = int(slots.sum())
     present = np.flatnonzero(slots)
     offsets = np.zeros(len(present) + 1, dtype=np.int64)

@@ -4,8 +4,9 @@ When grouping every event at once would take more than half the budget, the run 
 entities, in key order, into consecutive key ranges (*parts*) of about equal grouping cost,
 each within what is left of the budget (:func:`key_ranges`). Then, a part at a time:
 
-1. its events are read (a filtered pass over the input: two for integer keys in a small
-   range, :mod:`lshjob.loading`) and grouped into sets;
+1. its events are read (a filtered pass over the input; for integer keys in a small range
+   the counts of the counting pass give each key its slots, :mod:`lshjob.loading`) and
+   grouped into sets;
 2. identical sets are collapsed within the part (:mod:`lshjob.identical`);
 3. its representatives are signed and their bucket keys saved to the work folder (8 bytes
    a band and representative; :func:`lshjob.band.save_keys`);
@@ -97,6 +98,7 @@ def key_ranges(counts: pl.DataFrame, events: EventSource, budget: int, parts: in
     bounds = np.unique(np.concatenate([[0], np.clip(cuts, 1, n), [n]]))
     keys = counts["entity"]
     integer = keys.dtype.is_integer()
+    values = keys.to_numpy() if integer else None
     out = []
     for a, b in zip(bounds[:-1], bounds[1:]):
         first, last = keys[int(a)], keys[int(b) - 1]
@@ -104,6 +106,7 @@ def key_ranges(counts: pl.DataFrame, events: EventSource, budget: int, parts: in
             condition=pl.col("entity").is_between(pl.lit(first, dtype=keys.dtype), pl.lit(last, dtype=keys.dtype)),
             events=int(per_entity[a:b].sum()),
             entity_range=(int(first), int(last)) if integer else None,
+            key_counts=(values[a:b], per_entity[a:b]) if integer else None,
         ))
     return out
 
@@ -116,11 +119,13 @@ def planning_sample(counts: pl.DataFrame, budget_events: int, seed: int = 0) -> 
     m = n if total <= budget_events else max(2, int(n * budget_events / max(total, 1)))
     picked = np.sort(np.random.default_rng(seed).choice(n, size=min(m, n), replace=False))
     keys = counts["entity"].gather(picked)
+    per_entity = counts["events"].gather(picked).to_numpy().astype(np.int64)
     integer = keys.dtype.is_integer()
     return EntitySelection(
         condition=pl.col("entity").is_in(keys.implode()),
-        events=int(counts["events"].gather(picked).sum()),
+        events=int(per_entity.sum()),
         entity_range=(int(keys[0]), int(keys[-1])) if integer else None,
+        key_counts=(keys.to_numpy(), per_entity) if integer else None,
     )
 
 
