@@ -130,7 +130,9 @@ def write_shared_bucket_rows(
 def save_keys(keys: pl.DataFrame, path: Path) -> Path:
     """Write a slice of the wide key table for :func:`write_shared_bucket_rows` to read back a
     band at a time (a run in parts keeps no key table in memory)."""
-    keys.write_parquet(path, compression="lz4", statistics=False)
+    # Uncompressed: random 64-bit keys do not compress, and lz4 doubled the write time
+    # (3M rows x 25 bands: 0.83 s against 0.37 s; reading a band back 8 ms either way).
+    keys.write_parquet(path, compression="uncompressed", statistics=False)
     return path
 
 
