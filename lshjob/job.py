@@ -13,6 +13,7 @@ import os
 import platform
 import shutil
 import time
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
@@ -136,6 +137,7 @@ def run_job(
     try:
         with stages("ingest"):
             source = open_events(events, spec)
+        digest = _digest_in_background(source.report.files)
         in_parts = (options.parts or 0) > 1 or (
             options.parts is None and grouping_need(source) > parts.ONE_PART_SHARE * memory)
         built = (_build_in_parts if in_parts else _build_in_one_part)(source, options, memory, work, stages)
@@ -174,7 +176,7 @@ def run_job(
         manifest = {
             "format": "lshjob-index",
             "format_version": 1,
-            "inputs": _inputs(events, report),
+            "inputs": _inputs(events, report, digest.result()),
             "spec": asdict(spec),
             "options": asdict(options),
             "memory_budget_bytes": memory,
@@ -393,17 +395,30 @@ def _judge(threshold, hist, perms, bands, rows) -> dict:
     raise AssertionError("explicit plan missing from the enumeration")
 
 
-def _inputs(events, report) -> dict:
-    digest = hashlib.sha256()
-    sizes = 0
-    for name in report.files:
-        digest.update(name.encode() + b"\0")
-        with open(name, "rb") as fh:
-            while block := fh.read(1 << 22):
-                digest.update(block)
-                sizes += len(block)
+def _inputs(events, report, digest: tuple[int, str]) -> dict:
+    sizes, sha256 = digest
     return {"source": str(events), "files": report.files, "bytes": sizes, "rows": report.rows_read,
-            "sha256": digest.hexdigest()}
+            "sha256": sha256}
+
+
+def _digest_in_background(files: list[str]) -> Future:
+    """(bytes, sha256) of the input files, computed in a thread while the run works (hashlib
+    releases the GIL on large blocks): 0.3 s of serial time at 1M entities otherwise."""
+    def digest() -> tuple[int, str]:
+        h = hashlib.sha256()
+        sizes = 0
+        for name in files:
+            h.update(name.encode() + b"\0")
+            with open(name, "rb") as fh:
+                while block := fh.read(1 << 22):
+                    h.update(block)
+                    sizes += len(block)
+        return sizes, h.hexdigest()
+
+    pool = ThreadPoolExecutor(max_workers=1)
+    future = pool.submit(digest)
+    pool.shutdown(wait=False)
+    return future
 
 
 def _versions() -> dict:

@@ -203,13 +203,17 @@ def test_manifest_records_inputs_plan_counts_timings_memory(tmp_path, demo_event
     src = write(demo_events[0], tmp_path)
     m = run_job(src, SPEC, RunOptions(threshold=0.5), tmp_path / "idx")
     saved = json.loads((tmp_path / "idx/manifest.json").read_text())
-    assert saved["inputs"]["rows"] == demo_events[0].height and len(saved["inputs"]["sha256"]) == 64
+    assert saved["inputs"]["rows"] == demo_events[0].height
+    # The input digest (computed in a thread during the run): sha256 of each file's name, a
+    # zero byte, then its bytes (hashlib as reference).
+    import hashlib
+
+    expected = hashlib.sha256(str(src).encode() + b"\0" + src.read_bytes()).hexdigest()
+    assert saved["inputs"]["sha256"] == expected and saved["inputs"]["bytes"] == src.stat().st_size
     for stage in ("ingest", "sign", "plan", "band", "join", "verify", "publish"):
         assert saved["seconds"][stage] >= 0 and saved["peak_memory_bytes"][stage] > 0
     assert saved["plan"]["why"] and saved["versions"]["duckdb"]
     assert saved["output"]["sha256"] == m["output"]["sha256"]
-    import hashlib
-
     assert hashlib.sha256((tmp_path / "idx/neighbours.parquet").read_bytes()).hexdigest() == saved["output"]["sha256"]
 
 
