@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+import shutil
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -10,8 +12,10 @@ import polars as pl
 
 from . import event_signing, planner, similarity
 from .errors import InputError, ParameterError
-from .ingest import EventSpec, load_sets
-from .loading import load_membership, read_grouped
+from . import parts as parts_module
+from .ingest import EventSpec, IngestReport, load_sets
+from .loading import group_events, membership_of, open_events
+from .resources import default_memory
 from .planner import PairHistogram
 from .progress import QUIET, StageProgress
 from .signatures import (
@@ -32,21 +36,35 @@ def sign_file(
     spec: EventSpec,
     params: SignatureParams = SignatureParams(),
     progress: StageProgress = QUIET,
+    memory: int | None = None,
+    parts: int | None = None,
 ) -> dict:
     """Ingest ``events``, sign every (entity[, segment][, period]) set, write ``out``.
 
-    Returns a summary: counts from ingest, the signature parameters and timings.
+    One set per entity whose sets and signatures need more than half of ``memory`` (bytes;
+    default half the machine), or ``parts`` > 1, is signed a key range at a time
+    (:mod:`lshjob.parts`): each range's signatures go to a file beside ``out``, and the files
+    are then copied into ``out`` in key order by a streaming pass. The signatures are the
+    same. Returns a summary: counts from ingest, the signature parameters and timings.
     Nothing is written when the input is rejected.
     """
     started = time.perf_counter()
+    memory = memory or default_memory()
+    meta = signature_metadata(params, spec.key_columns, period_unit=spec.period)
+    ranges = None
     direct = event_signing.applies(spec)  # one unweighted set per entity: no sorted sets built
     with progress.stage("ingest"):
-        if direct:
-            grouped = read_grouped(events, spec)
-        elif spec.key_columns == ["entity"]:  # streaming loader: no group-by over (entity, element)
-            members, report = load_membership(events, spec)
+        if spec.key_columns == ["entity"]:  # streaming loader: no group-by over (entity, element)
+            source = open_events(events, spec)
+            ranges = parts_module.signing_ranges(source, params.perms, memory, parts)
+            if ranges is None and direct:
+                grouped = group_events(source, None)
+            elif ranges is None:
+                members, report = membership_of(source, None)
         else:
             sets, report = load_sets(events, spec)
+    if ranges is not None:
+        return _sign_in_parts(source, ranges, out, spec, params, meta, progress, started)
     ingested = time.perf_counter()
     with progress.stage("sign"):
         if direct:
@@ -57,20 +75,76 @@ def sign_file(
         else:
             table = sign_sets(sets, spec.key_columns, params)
     signed = time.perf_counter()
-    meta = signature_metadata(params, spec.key_columns, period_unit=spec.period)
     write_signatures(table, out, meta)
     written = time.perf_counter()
+    return _sign_summary(out, table.height, params, report, 1, started, ingested, signed, written)
+
+
+def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -> dict:
+    out = Path(out)
+    folder = out.with_name(f".{out.name}.parts-{os.getpid()}")
+    report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
+                          null_rows_dropped=source.report.null_rows_dropped)
+    direct = event_signing.applies(spec)
+    seconds = {"ingest": 0.0, "sign": 0.0}
+    rows = 0
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        files = []
+        with progress.stage("sign", len(ranges)) as task:
+            for i, selection in enumerate(ranges):
+                t0 = time.perf_counter()
+                if direct:
+                    grouped = group_events(source, selection)
+                else:
+                    members, part = membership_of(source, selection)
+                t1 = time.perf_counter()
+                if direct:
+                    table, part = event_signing.sign_grouped(grouped, params)
+                    del grouped
+                else:
+                    table = signature_table(members, params)
+                    del members
+                seconds["ingest"] += t1 - t0
+                seconds["sign"] += time.perf_counter() - t1
+                _add_counts(report, part)
+                files.append(folder / f"part-{i:05d}.parquet")
+                table.write_parquet(files[-1], compression="uncompressed", statistics=False)
+                rows += table.height
+                del table
+                task.advance()
+        if rows == 0:
+            raise InputError(f"{source.where}: no element is left after filtering (--min-count {spec.min_count}); "
+                             "nothing to sign")
+        signed = time.perf_counter()
+        write_signatures(pl.scan_parquet(files), out, meta)
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+    ingested = started + seconds["ingest"]
+    return _sign_summary(out, rows, params, report, len(ranges), started, ingested, ingested + seconds["sign"],
+                         time.perf_counter(), write_from=signed)
+
+
+def _add_counts(total: IngestReport, part: IngestReport) -> None:
+    total.membership_rows += part.membership_rows
+    total.sets += part.sets
+    total.empty_after_filter += part.empty_after_filter
+    total.empty_examples = (total.empty_examples + part.empty_examples)[:5]
+
+
+def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, written, write_from=None) -> dict:
     return {
         "out": str(out),
-        "signatures": table.height,
+        "signatures": n,
         "scheme": params.scheme,
         "k": params.perms,
         "seed": params.seed,
+        "parts": n_parts,
         "ingest": report.as_dict(),
         "seconds": {
             "ingest": round(ingested - started, 3),
             "sign": round(signed - ingested, 3),
-            "write": round(written - signed, 3),
+            "write": round(written - (write_from or signed), 3),
             "total": round(written - started, 3),
         },
     }

@@ -22,6 +22,7 @@ from .reports import audit_report, plan_report, run_report
 from .errors import LshjobError
 from .ingest import EventSpec
 from .progress import StageProgress
+from .resources import parse_size
 from .signatures import SignatureParams
 
 app = typer.Typer(
@@ -88,6 +89,8 @@ def sign(
     scheme: Annotated[str, typer.Option(help="kperm (k hashes per element) or oph (one hash, densified).")] = "kperm",
     seed: Annotated[int, typer.Option(help="Seed of the hash family.")] = 1,
     on_null: Annotated[str, typer.Option(help="Null keys: 'error' or 'drop' the row.")] = "error",
+    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; one set per entity that does not fit is signed a key range at a time.  [default: half the machine]")] = None,
+    parts: Annotated[Optional[int], typer.Option(help="Sign the entities in this many key ranges, one at a time (one set per entity).")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -95,14 +98,20 @@ def sign(
 
     Example: lshjob sign demo-run/events.parquet --entity patron --element title
     --time borrowed_at --period month --out sigs.parquet
+
+    Example (larger than memory): lshjob sign loans/ --entity patron --element title
+    --memory 4GB --out sigs.parquet
     """
+    if parts is not None and parts < 1:
+        raise ParameterError(f"--parts must be at least 1; got {parts}")
     spec = EventSpec(
         entity=entity, element=element, count=count, min_count=min_count,
         segment=segment, time=time, period=period, on_null=on_null,
     )
     params = SignatureParams(scheme=scheme, perms=perms, seed=seed)
     with _progress(quiet, as_json) as progress:
-        summary = api.sign_file(events, out, spec, params, progress)
+        summary = api.sign_file(events, out, spec, params, progress,
+                                memory=parse_size(memory) if memory else None, parts=parts)
     ing = summary["ingest"]
     text = (
         f"signed {summary['signatures']} sets (k={params.perms}, seed={params.seed}) "

@@ -43,7 +43,7 @@ import numpy as np
 import polars as pl
 
 from .loading import (BYTES_PER_EVENT, BYTES_PER_EVENT_IN_RANGE, BYTES_PER_KEY_VALUE, EntitySelection,
-                      EventSource, _dense_span)
+                      EventSource, _dense_span, grouping_need)
 from .membership import Membership
 from .signatures import SignatureParams
 from .verify import add_estimates_between, verify_between
@@ -83,16 +83,18 @@ def part_budget(memory: int, entities: int) -> int:
     return int(max(PART_SHARE * (memory - held_bytes(entities)), memory // 10))
 
 
-def key_ranges(counts: pl.DataFrame, events: EventSource, budget: int, parts: int | None = None) -> list[EntitySelection]:
+def key_ranges(counts: pl.DataFrame, events: EventSource, budget: int, parts: int | None = None,
+               bytes_per_entity: float = 0.0) -> list[EntitySelection]:
     """Cut the entities (``counts`` from :func:`events_per_entity`) into consecutive key ranges
-    of about equal events: as few as keep each part's grouping within ``budget`` bytes, or
-    exactly ``parts`` of them (fewer if there are fewer entities)."""
+    of about equal cost (grouping bytes of their events, plus ``bytes_per_entity`` each): as
+    few as keep each part within ``budget`` bytes, or exactly ``parts`` of them (fewer if
+    there are fewer entities)."""
     n = counts.height
     per_entity = counts["events"].to_numpy().astype(np.int64)
-    cum = np.cumsum(per_entity)
-    total = int(cum[-1]) if n else 0
+    cum = np.cumsum(per_entity * bytes_per_event(events) + bytes_per_entity)
+    total = float(cum[-1]) if n else 0.0
     if parts is None:
-        parts = max(1, math.ceil(total * bytes_per_event(events) / max(budget, 1)))
+        parts = max(1, math.ceil(total / max(budget, 1)))
     parts = max(1, min(parts, n))
     cuts = np.searchsorted(cum, [total * i / parts for i in range(1, parts)], side="left") + 1
     bounds = np.unique(np.concatenate([[0], np.clip(cuts, 1, n), [n]]))
@@ -109,6 +111,24 @@ def key_ranges(counts: pl.DataFrame, events: EventSource, budget: int, parts: in
             key_counts=(values[a:b], per_entity[a:b]) if integer else None,
         ))
     return out
+
+
+SIGNATURE_BYTES_PER_ENTITY = 40  # beside the 8k signature bytes: set size, key, list offsets
+
+
+def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | None = None) -> list[EntitySelection] | None:
+    """Key ranges for ``lshjob sign`` when the events' sets and their signature table (8k
+    bytes and about 40 more an entity) need more than half the budget; None when one part
+    will do. The entities are counted (one more pass) only when a bound says they might not fit."""
+    per_entity = 8 * perms + SIGNATURE_BYTES_PER_ENTITY
+    need = grouping_need(events)
+    span = _dense_span(events.report.entity_range, events.events) or events.events
+    if parts is None and need + min(events.events, span) * per_entity <= ONE_PART_SHARE * memory:
+        return None
+    counts = events_per_entity(events)
+    if parts is None and need + counts.height * per_entity <= ONE_PART_SHARE * memory:
+        return None
+    return key_ranges(counts, events, part_budget(memory, counts.height), parts, bytes_per_entity=per_entity)
 
 
 def planning_sample(counts: pl.DataFrame, budget_events: int, seed: int = 0) -> EntitySelection:

@@ -283,15 +283,18 @@ def params_from_metadata(meta: dict) -> SignatureParams:
     return SignatureParams(scheme=meta["scheme"], perms=int(meta["k"]), seed=int(meta["seed"]))
 
 
-def write_signatures(table: pl.DataFrame, path: str | Path, meta: dict) -> Path:
-    """Write a signature file atomically (temporary name in the same folder, then rename)."""
+def write_signatures(table: pl.DataFrame | pl.LazyFrame, path: str | Path, meta: dict) -> Path:
+    """Write a signature file atomically (temporary name in the same folder, then rename); a
+    lazy table is streamed into it (signatures made a key range at a time)."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    metadata = {METADATA_KEY: json.dumps(meta, sort_keys=True)}
     try:
-        table.write_parquet(
-            tmp, compression="snappy", metadata={METADATA_KEY: json.dumps(meta, sort_keys=True)}
-        )
+        if isinstance(table, pl.LazyFrame):
+            table.sink_parquet(tmp, compression="snappy", metadata=metadata, maintain_order=True)
+        else:
+            table.write_parquet(tmp, compression="snappy", metadata=metadata)
         os.replace(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)

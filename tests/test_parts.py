@@ -209,3 +209,49 @@ def test_the_planner_in_parts_meets_its_recall_target(tmp_path, monkeypatch):
     got = published_pairs(tmp_path / "idx")
     assert len(truth) > 500
     assert sum(pair in got for pair in truth) / len(truth) >= 0.9
+
+
+@pytest.mark.parametrize("count", [None, "loans"])
+@pytest.mark.parametrize("scheme", ["kperm", "oph"])
+@pytest.mark.parametrize("integer_patrons", [False, True])
+def test_signing_in_parts_gives_the_same_signatures(tmp_path, integer_patrons, scheme, count):
+    # Reference: the same signatures made in one part (themselves checked against datasketch
+    # and the documented definition in test_signatures.py). The file is streamed from the
+    # parts' files; rows, order, values and metadata must agree.
+    from lshjob.api import sign_file
+    from lshjob.signatures import SignatureParams, read_signatures
+
+    events = loans_with_identical_groups(3, integer_patrons)
+    events = events.with_columns(loans=pl.int_range(pl.len()) % 3 + 1)
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    spec = EventSpec(entity="patron", element="title", count=count, min_count=3 if count else 1)
+    params = SignatureParams(scheme=scheme, perms=32, seed=5)
+    one = sign_file(src, tmp_path / "one.parquet", spec, params)
+    three = sign_file(src, tmp_path / "three.parquet", spec, params, parts=3)
+    assert one["parts"] == 1 and three["parts"] == 3
+    assert three["signatures"] == one["signatures"] and three["ingest"] == one["ingest"]
+    a, meta_a = read_signatures(tmp_path / "one.parquet")
+    b, meta_b = read_signatures(tmp_path / "three.parquet")
+    assert a.height > 900 and a.equals(b)
+    assert {k: v for k, v in meta_a.items() if k != "path"} == {k: v for k, v in meta_b.items() if k != "path"}
+    assert not list(tmp_path.glob(".*"))  # the parts' folder is gone
+
+
+def test_signing_turns_to_parts_when_the_signatures_would_not_fit(tmp_path):
+    # 2400 patrons x (8 x 4096 + 40) bytes of signatures = 79 MB: more than half of a
+    # 64 MiB budget, so the signing goes in parts by itself, and the CLI says so.
+    from typer.testing import CliRunner
+
+    from lshjob.cli import app
+
+    src = tmp_path / "loans.parquet"
+    planted_pairs(800, 0.3, seed=1, background=800).write_parquet(src)
+    args = ["sign", str(src), "--entity", "patron", "--element", "title", "--perms", "4096", "--json", "--quiet"]
+    whole = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "whole.parquet")])
+    small = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "small.parquet"), "--memory", "64MiB"])
+    assert whole.exit_code == 0 and small.exit_code == 0, small.output
+    assert json.loads(whole.output)["parts"] == 1 and json.loads(small.output)["parts"] > 1
+    assert pl.read_parquet(tmp_path / "whole.parquet").equals(pl.read_parquet(tmp_path / "small.parquet"))
+    bad = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "x.parquet"), "--parts", "0"])
+    assert bad.exit_code != 0 and "--parts must be at least 1; got 0" in bad.output
