@@ -86,7 +86,7 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
     report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
                           null_rows_dropped=source.report.null_rows_dropped)
     direct = event_signing.applies(spec)
-    seconds = {"ingest": 0.0, "sign": 0.0}
+    seconds = {"ingest": time.perf_counter() - started, "sign": 0.0, "write": 0.0}
     rows = 0
     try:
         folder.mkdir(parents=True, exist_ok=True)
@@ -105,24 +105,27 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
                 else:
                     table = signature_table(members, params)
                     del members
-                seconds["ingest"] += t1 - t0
-                seconds["sign"] += time.perf_counter() - t1
+                t2 = time.perf_counter()
                 _add_counts(report, part)
                 files.append(folder / f"part-{i:05d}.parquet")
                 table.write_parquet(files[-1], compression="uncompressed", statistics=False)
                 rows += table.height
                 del table
+                seconds["ingest"] += t1 - t0
+                seconds["sign"] += t2 - t1
+                seconds["write"] += time.perf_counter() - t2
                 task.advance()
         if rows == 0:
             raise InputError(f"{source.where}: no element is left after filtering (--min-count {spec.min_count}); "
                              "nothing to sign")
-        signed = time.perf_counter()
+        t0 = time.perf_counter()
         write_signatures(pl.scan_parquet(files), out, meta)
+        seconds["write"] += time.perf_counter() - t0
     finally:
         shutil.rmtree(folder, ignore_errors=True)
     ingested = started + seconds["ingest"]
-    return _sign_summary(out, rows, params, report, len(ranges), started, ingested, ingested + seconds["sign"],
-                         time.perf_counter(), write_from=signed)
+    signed = ingested + seconds["sign"]
+    return _sign_summary(out, rows, params, report, len(ranges), started, ingested, signed, time.perf_counter())
 
 
 def _add_counts(total: IngestReport, part: IngestReport) -> None:
@@ -132,7 +135,7 @@ def _add_counts(total: IngestReport, part: IngestReport) -> None:
     total.empty_examples = (total.empty_examples + part.empty_examples)[:5]
 
 
-def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, written, write_from=None) -> dict:
+def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, written) -> dict:
     return {
         "out": str(out),
         "signatures": n,
@@ -144,7 +147,7 @@ def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, wr
         "seconds": {
             "ingest": round(ingested - started, 3),
             "sign": round(signed - ingested, 3),
-            "write": round(written - (write_from or signed), 3),
+            "write": round(written - signed, 3),
             "total": round(written - started, 3),
         },
     }
