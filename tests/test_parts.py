@@ -238,20 +238,26 @@ def test_signing_in_parts_gives_the_same_signatures(tmp_path, integer_patrons, s
     assert not list(tmp_path.glob(".*"))  # the parts' folder is gone
 
 
-def test_signing_turns_to_parts_when_the_signatures_would_not_fit(tmp_path):
-    # 2400 patrons x (8 x 4096 + 40) bytes of signatures = 79 MB: more than half of a
-    # 64 MiB budget, so the signing goes in parts by itself, and the CLI says so.
+def test_signing_turns_to_parts_when_the_signatures_would_not_fit(tmp_path, monkeypatch):
+    # 2400 patrons x (8 x 256 + 40) bytes of signatures = 5 MB: more than half of the budget
+    # once that half is shrunk to 4 MB here (and a part to 2 MB), so the signing goes in parts by itself, and the
+    # CLI says so. Budgets below what the process itself takes are refused.
     from typer.testing import CliRunner
 
     from lshjob.cli import app
 
     src = tmp_path / "loans.parquet"
     planted_pairs(800, 0.3, seed=1, background=800).write_parquet(src)
-    args = ["sign", str(src), "--entity", "patron", "--element", "title", "--perms", "4096", "--json", "--quiet"]
+    args = ["sign", str(src), "--entity", "patron", "--element", "title", "--perms", "256", "--json", "--quiet"]
     whole = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "whole.parquet")])
-    small = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "small.parquet"), "--memory", "64MiB"])
+    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 4e6 / 2**30)
+    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities: 2_000_000)
+    small = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "small.parquet"), "--memory", "1GiB"])
     assert whole.exit_code == 0 and small.exit_code == 0, small.output
     assert json.loads(whole.output)["parts"] == 1 and json.loads(small.output)["parts"] > 1
     assert pl.read_parquet(tmp_path / "whole.parquet").equals(pl.read_parquet(tmp_path / "small.parquet"))
     bad = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "x.parquet"), "--parts", "0"])
     assert bad.exit_code != 0 and "--parts must be at least 1; got 0" in bad.output
+    tiny = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "x.parquet"), "--memory", "300MB"])
+    assert tiny.exit_code != 0 and "--memory must be at least 512MiB; got '300MB'" in tiny.output
+    assert not (tmp_path / "x.parquet").exists()
