@@ -50,6 +50,7 @@ from .verify import add_estimates_between, verify_between
 
 ONE_PART_SHARE = 0.5  # grouping all events may take this share of the budget, else parts
 PART_SHARE = 0.5  # what grouping one part may take, of what the run does not hold across parts
+SIGN_PART_SHARE = 0.75  # the same for lshjob sign, which holds nothing else (10M at 4GB: peak 2.3 GB at 0.5)
 HELD_BYTES_PER_ENTITY = 32  # representative, event count and key (about 8 bytes of a key)
 PROCESS_BYTES = 256 << 20  # the interpreter with polars, numba and DuckDB loaded: about 200 MiB measured
 VERIFY_BYTES_PER_PAIR = 64  # candidate row in polars and numpy, plus the float results
@@ -76,11 +77,11 @@ def held_bytes(entities: int) -> int:
     return PROCESS_BYTES + entities * HELD_BYTES_PER_ENTITY
 
 
-def part_budget(memory: int, entities: int) -> int:
+def part_budget(memory: int, entities: int, share: float | None = None) -> int:
     """Bytes grouping one part may take: a share of what is not held across parts (the rest
     is for signing a slice, polars' batches and the saved part's copy), and never under a
     tenth of the budget (parts smaller than that would cost more passes than they save)."""
-    return int(max(PART_SHARE * (memory - held_bytes(entities)), memory // 10))
+    return int(max((share or PART_SHARE) * (memory - held_bytes(entities)), memory // 10))
 
 
 def key_ranges(counts: pl.DataFrame, events: EventSource, budget: int, parts: int | None = None,
@@ -128,7 +129,8 @@ def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | No
     counts = events_per_entity(events)
     if parts is None and need + counts.height * per_entity <= ONE_PART_SHARE * memory:
         return None
-    return key_ranges(counts, events, part_budget(memory, counts.height), parts, bytes_per_entity=per_entity)
+    return key_ranges(counts, events, part_budget(memory, counts.height, SIGN_PART_SHARE), parts,
+                      bytes_per_entity=per_entity)
 
 
 def planning_sample(counts: pl.DataFrame, budget_events: int, seed: int = 0) -> EntitySelection:

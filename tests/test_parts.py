@@ -94,7 +94,7 @@ def test_a_small_budget_turns_to_parts_by_itself(tmp_path, demo_events, monkeypa
     options = RunOptions(threshold=0.5, perms=64, bands=16, rows=4)
     run_job(src, SPEC, options, tmp_path / "one")
     monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e-6)
-    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities: 200_000)
+    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 200_000)
     manifest = run_job(src, SPEC, options, tmp_path / "parts")
     assert manifest["counts"]["parts"] > 1
     written = json.loads((tmp_path / "parts/manifest.json").read_text())
@@ -199,7 +199,7 @@ def test_the_planner_in_parts_meets_its_recall_target(tmp_path, monkeypatch):
     events.write_parquet(src)
     source = open_events(src, SPEC)
     quarter = int(source.events * parts_module.bytes_per_event(source) / 4)
-    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities: 2 * quarter)  # a sample: half a part
+    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 2 * quarter)  # a sample: half a part
     manifest = run_job(src, SPEC, RunOptions(threshold=0.5, sample_size=300, top_k=100, parts=3), tmp_path / "idx")
     sample = manifest["plan"]["sample"]
     assert manifest["counts"]["parts"] == 3
@@ -251,7 +251,7 @@ def test_signing_turns_to_parts_when_the_signatures_would_not_fit(tmp_path, monk
     args = ["sign", str(src), "--entity", "patron", "--element", "title", "--perms", "256", "--json", "--quiet"]
     whole = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "whole.parquet")])
     monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 4e6 / 2**30)
-    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities: 2_000_000)
+    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 2_000_000)
     small = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "small.parquet"), "--memory", "1GiB"])
     assert whole.exit_code == 0 and small.exit_code == 0, small.output
     assert json.loads(whole.output)["parts"] == 1 and json.loads(small.output)["parts"] > 1
