@@ -101,6 +101,8 @@ def write_shared_bucket_rows(
     Returns the files written and the number of rows written."""
     out_dir.mkdir(parents=True, exist_ok=True)
     slices = [keys] if isinstance(keys, pl.DataFrame) else list(keys)
+    if slices and all(isinstance(s, Path) for s in slices):
+        slices = [slices]  # saved keys: one read of all files a column (polars reads them in parallel)
     reps = np.concatenate([_column(s, "rep") for s in slices]) if slices else np.empty(0, np.int64)
     height = len(reps)
     step = bands_per_batch(height, bands, batch_bytes)
@@ -136,10 +138,10 @@ def save_keys(keys: pl.DataFrame, path: Path) -> Path:
     return path
 
 
-def _column(keys: pl.DataFrame | Path, name: str) -> np.ndarray:
+def _column(keys: pl.DataFrame | list[Path], name: str) -> np.ndarray:
     if isinstance(keys, pl.DataFrame):
         return keys.get_column(name).to_numpy()
-    return pl.read_parquet(keys, columns=[name]).get_column(name).to_numpy()
+    return pl.scan_parquet(keys).select(name).collect().get_column(name).to_numpy()
 
 
 PART_ROWS = 1 << 15  # keys per partition: its two bitmaps (about 8 KiB) and keys stay in cache
