@@ -15,7 +15,7 @@ from .errors import InputError, ParameterError
 from . import parts as parts_module
 from .ingest import EventSpec, IngestReport, load_sets
 from .loading import group_events, membership_of, open_events
-from .resources import default_memory
+from .resources import default_memory, peak_bytes
 from .planner import PairHistogram
 from .progress import QUIET, StageProgress
 from .signatures import (
@@ -143,6 +143,7 @@ def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, wr
         "k": params.perms,
         "seed": params.seed,
         "parts": n_parts,
+        "peak_memory_bytes": peak_bytes(),
         "ingest": report.as_dict(),
         "seconds": {
             "ingest": round(ingested - started, 3),

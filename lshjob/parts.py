@@ -44,12 +44,14 @@ import polars as pl
 
 from .loading import (BYTES_PER_EVENT, BYTES_PER_EVENT_IN_RANGE, BYTES_PER_KEY_VALUE, EntitySelection,
                       EventSource, _dense_span, grouping_need)
+from .errors import ParameterError
 from .membership import Membership
 from .signatures import SignatureParams
 from .verify import add_estimates_between, verify_between
 
 ONE_PART_SHARE = 0.5  # grouping all events may take this share of the budget, else parts
 PART_SHARE = 0.5  # what grouping one part may take, of what the run does not hold across parts
+COPY_BYTES = 512 << 20  # polars streaming the parts' signatures into one file: 0.45-0.6 GiB at 1M (measured)
 SIGN_PART_SHARE = 0.75  # the same for lshjob sign, which holds nothing else (10M at 4GB: peak 2.3 GB at 0.5)
 HELD_BYTES_PER_ENTITY = 32  # representative, event count and key (about 8 bytes of a key)
 PROCESS_BYTES = 256 << 20  # the interpreter with polars, numba and DuckDB loaded: about 200 MiB measured
@@ -121,6 +123,8 @@ def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | No
     """Key ranges for ``lshjob sign`` when the events' sets and their signature table (8k
     bytes and about 40 more an entity) need more than half the budget; None when one part
     will do. The entities are counted (one more pass) only when a bound says they might not fit."""
+    if parts == 1:
+        return None
     per_entity = 8 * perms + SIGNATURE_BYTES_PER_ENTITY
     need = grouping_need(events)
     span = _dense_span(events.report.entity_range, events.events) or events.events
@@ -129,6 +133,12 @@ def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | No
     counts = events_per_entity(events)
     if parts is None and need + counts.height * per_entity <= ONE_PART_SHARE * memory:
         return None
+    if memory < PROCESS_BYTES + COPY_BYTES + (256 << 20):
+        raise ParameterError(
+            f"{events.where}: the sets and signatures need more than half of the memory budget "
+            f"({memory / 2**30:.2f} GiB), and signing them a key range at a time needs at least 1GiB: "
+            f"copying the ranges' signatures into one file takes about {COPY_BYTES >> 20} MiB whatever "
+            "their size (measured); raise --memory")
     return key_ranges(counts, events, part_budget(memory, counts.height, SIGN_PART_SHARE), parts,
                       bytes_per_entity=per_entity)
 

@@ -258,6 +258,8 @@ def test_signing_turns_to_parts_when_the_signatures_would_not_fit(tmp_path, monk
     assert pl.read_parquet(tmp_path / "whole.parquet").equals(pl.read_parquet(tmp_path / "small.parquet"))
     bad = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "x.parquet"), "--parts", "0"])
     assert bad.exit_code != 0 and "--parts must be at least 1; got 0" in bad.output
+    short = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "x.parquet"), "--memory", "800MB"])
+    assert short.exit_code != 0 and "a key range at a time needs at least 1GiB" in short.output
     tiny = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "x.parquet"), "--memory", "300MB"])
     assert tiny.exit_code != 0 and "--memory must be at least 512MiB; got '300MB'" in tiny.output
     assert not (tmp_path / "x.parquet").exists()

@@ -1,0 +1,67 @@
+"""``lshjob sign`` under a memory budget: one part against key ranges, side by side.
+
+    python bench/sign_parts.py --entities 10000000 --memory 4GB
+
+Runs the command twice in fresh processes on the branch network of bench/common.py: with
+``--parts 1`` (every set and signature in memory at once, whatever that takes) and with
+``--memory M`` (key ranges when the sets and signatures need more than half of M). Reports
+wall clock, the process's peak resident memory (from the command's own ``--json`` summary)
+and the seconds of each step; checks that both files hold the same signatures.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import polars as pl
+
+sys.path.insert(0, str(Path(__file__).parent))
+from common import branch_network_events, finish, machine  # noqa: E402
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--entities", type=int, default=1_000_000)
+    ap.add_argument("--memory", default="4GB")
+    ap.add_argument("--perms", type=int, default=128)
+    ap.add_argument("--no-write", action="store_true")
+    args = ap.parse_args()
+    path = branch_network_events(args.entities)
+    n_events = pl.scan_parquet(f"{path}/*.parquet").select(pl.len()).collect().item()
+    rows = {}
+    with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
+        for name, extra in (("one part (--parts 1)", ["--parts", "1"]), (f"--memory {args.memory}", ["--memory", args.memory])):
+            cmd = [sys.executable, "-m", "lshjob.cli", "sign", str(path), "--entity", "entity", "--element", "element",
+                   "--perms", str(args.perms), "--out", f"{tmp}/{len(rows)}.parquet", "--json", "--quiet", *extra]
+            start = time.perf_counter()
+            done = subprocess.run(cmd, capture_output=True, text=True)
+            wall = time.perf_counter() - start
+            if done.returncode != 0:
+                sys.exit(f"lshjob sign failed (exit {done.returncode}):\n{done.stderr[-3000:]}")
+            rows[name] = (wall, json.loads(done.stdout))
+        same = pl.read_parquet(f"{tmp}/0.parquet").equals(pl.read_parquet(f"{tmp}/1.parquet"))
+    base = next(iter(rows.values()))[0]
+    lines = [
+        f"Machine: {machine()}",
+        f"Data: {args.entities:,} entities, {n_events:,} events, k={args.perms}",
+        f"Command: `python bench/sign_parts.py --entities {args.entities} --memory {args.memory}`",
+        "",
+        "| run | parts | wall s | x one part | peak resident | ingest s | sign s | write s |",
+        "| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: |",
+    ]
+    for name, (wall, s) in rows.items():
+        sec = s["seconds"]
+        lines.append(f"| {name} | {s['parts']} | {wall:.1f} | {wall / base:.2f} | "
+                     f"{s['peak_memory_bytes'] / 2**30:.2f} GiB | {sec['ingest']:.1f} | {sec['sign']:.1f} | {sec['write']:.1f} |")
+    lines += ["", f"Same signatures in both files: {same}."]
+    finish(f"Signing under a memory budget, {args.entities:,} entities", "\n".join(lines), not args.no_write)
+
+
+if __name__ == "__main__":
+    main()
