@@ -106,7 +106,7 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
                     table = signature_table(members, params)
                     del members
                 t2 = time.perf_counter()
-                _add_counts(report, part)
+                report.add_part(part)
                 files.append(folder / f"part-{i:05d}.parquet")
                 table.write_parquet(files[-1], compression="uncompressed", statistics=False)
                 rows += table.height
@@ -126,13 +126,6 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
     ingested = started + seconds["ingest"]
     signed = ingested + seconds["sign"]
     return _sign_summary(out, rows, params, report, len(ranges), started, ingested, signed, time.perf_counter())
-
-
-def _add_counts(total: IngestReport, part: IngestReport) -> None:
-    total.membership_rows += part.membership_rows
-    total.sets += part.sets
-    total.empty_after_filter += part.empty_after_filter
-    total.empty_examples = (total.empty_examples + part.empty_examples)[:5]
 
 
 def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, written) -> dict:

@@ -87,6 +87,13 @@ class IngestReport:
     def as_dict(self) -> dict:
         return {k: v for k, v in self.__dict__.items() if k != "entity_range"}
 
+    def add_part(self, part: "IngestReport") -> None:
+        """Add the counts of one key range's report (a run or signing in parts)."""
+        self.membership_rows += part.membership_rows
+        self.sets += part.sets
+        self.empty_after_filter += part.empty_after_filter
+        self.empty_examples = (self.empty_examples + part.empty_examples)[:5]
+
 
 def resolve_paths(source: str | Path) -> tuple[list[Path], str]:
     """Expand one file, a glob or a directory into files of one supported format."""

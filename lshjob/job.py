@@ -264,7 +264,7 @@ def _build_in_parts(source, options, memory, work, stages) -> _Built:
         for selection in ranges:
             with stages.part("ingest"):
                 sets, part_report = membership_of(source, selection)
-            _merge_report(report, part_report)
+            report.add_part(part_report)
             first = store.ranges[-1][1] + 1 if store.ranges else 0
             with stages.part("collapse"):
                 part_rep_of, reps = collapse_identical(sets)
@@ -284,13 +284,6 @@ def _build_in_parts(source, options, memory, work, stages) -> _Built:
     files, shared = bands.write(work / "buckets")
     return _Built(keys, np.concatenate(rep_of), representatives, store, report, plan, params, files, shared,
                   representatives * plan["bands"])
-
-
-def _merge_report(total: IngestReport, part: IngestReport) -> None:
-    total.membership_rows += part.membership_rows
-    total.sets += part.sets
-    total.empty_after_filter += part.empty_after_filter
-    total.empty_examples = (total.empty_examples + part.empty_examples)[:5]
 
 
 def _check_entities(source, n: int) -> None:
