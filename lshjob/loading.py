@@ -35,6 +35,7 @@ import numba
 import numpy as np
 import polars as pl
 
+from . import grouping
 from .errors import InputError, ParameterError
 from .hashing import xxh64_strings
 from .ingest import EventSpec, IngestReport, validated_events
@@ -67,8 +68,8 @@ def membership_of(events: "EventSource", selection: "EntitySelection | None") ->
     """The sets of the selected entities (all by default), entities in sorted key order."""
     grouped = group_events(events, selection)
     keys, offsets, elements, report, where = grouped.keys, grouped.offsets, grouped.codes, grouped.report, grouped.where
-    sizes = _sort_and_merge(offsets, elements, grouped.weights, float(events.min_count), grouped.weighted)
-    offsets, elements = _compact(offsets, elements, sizes)
+    sizes = grouping.sort_and_merge(offsets, elements, grouped.weights, float(events.min_count), grouped.weighted)
+    offsets, elements = grouping.compact(offsets, elements, sizes)
     empty = sizes == 0
     if empty.all() and selection is None:
         raise InputError(
@@ -222,7 +223,7 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=Non
         outside = 0
         for batch in frame.select("entity").collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
             v = _wide(batch["entity"])
-            outside += _count_keys(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1), shares)
+            outside += grouping.count_keys(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1), shares)
         if outside:
             raise InputError(f"{where}: the files changed while being read ({outside} keys outside the range first seen)")
     counted = int(slots.sum())
@@ -239,7 +240,7 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=Non
     for batch in frame.select(columns).collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
         v = _wide(batch["entity"])
         w = batch["weight"].to_numpy() if weighted else no_weights
-        misplaced += _place(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1),
+        misplaced += grouping.place_codes(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1),
                             _codes(batch["element"], dictionary), w, elements, kept_weights, shares)
     if misplaced or counted != n or not np.array_equal(slots[present], offsets[1:]):
         raise InputError(f"{where}: the files changed while being read ({n} events counted, then read again)")
@@ -251,53 +252,6 @@ def _wide(values: pl.Series) -> np.ndarray:
     """Integer keys as int64 (uint64 kept): differences of narrower types could overflow."""
     v = values.to_numpy()
     return v if v.dtype in (np.int64, np.uint64) else v.astype(np.int64)
-
-
-@numba.njit(parallel=True, cache=True)
-def _count_keys(slots, values, first, last, shares):
-    """Count events per key value (share s of the threads takes the values v with
-    v % shares == s, as :func:`_place`); returns how many values fall outside
-    [first, last] (compared before subtracting, so nothing overflows)."""
-    low_bits = shares - 1
-    outside = np.zeros(shares, dtype=np.int64)
-    for s in numba.prange(shares):
-        for x in values:
-            if x < first or x > last:
-                outside[s] += 1
-                continue
-            v = x - first
-            if (v & low_bits) == s:
-                slots[v] += 1
-    return outside[0]
-
-
-@numba.njit(parallel=True, cache=True)
-def _place(slots, values, first, last, codes, weights, out, out_weights, shares):
-    """Write each event's code (and weight) into its key's next slot. Share s of the threads
-    takes the key values v with v % shares == s (shares a power of two), so no two threads
-    move one slot pointer.
-    Returns how many events had no slot (the files changed since they were counted)."""
-    weighted = len(weights) > 0
-    low_bits = shares - 1
-    missed = np.zeros(shares, dtype=np.int64)
-    for s in numba.prange(shares):
-        for j in range(len(values)):
-            if values[j] < first or values[j] > last:
-                if s == 0:
-                    missed[0] += 1
-                continue
-            v = values[j] - first
-            if (v & low_bits) != s:
-                continue
-            at = slots[v]
-            if at < 0 or at >= len(out):
-                missed[s] += 1
-                continue
-            out[at] = codes[j]
-            if weighted:
-                out_weights[at] = weights[j]
-            slots[v] = at + 1
-    return missed.sum()
 
 
 def _read_and_group(frame, n, weighted, dictionary, where):
@@ -320,7 +274,7 @@ def _read_and_group(frame, n, weighted, dictionary, where):
         pos += m
     if pos != n:
         raise InputError(f"{where}: the files changed while being read ({n} events counted, {pos} read)")
-    offsets, elements, kept_weights = _group_by_entity(ids, codes, weights, len(keys), numba.get_num_threads())
+    offsets, elements, kept_weights = grouping.group_by_entity(ids, codes, weights, len(keys), numba.get_num_threads())
     return keys, offsets, elements, kept_weights
 
 
@@ -331,7 +285,7 @@ def start_compiled_code() -> threading.Thread:
     join the thread before its own first compiled call: numba's ``workqueue`` threading
     layer aborts the process when two threads run parallel code at once."""
     thread = threading.Thread(
-        target=_lookup, args=(np.zeros(1, np.int64), 0, np.zeros(1, np.int64)), daemon=True
+        target=grouping.lookup, args=(np.zeros(1, np.int64), 0, np.zeros(1, np.int64)), daemon=True
     )
     thread.start()
     return thread
@@ -357,31 +311,12 @@ def _key_positions(keys: pl.Series):
         if span < DIRECT_TABLE_FACTOR * len(k):
             table = np.full(span + 1, -1, dtype=np.int64)
             table[k - k[0]] = np.arange(len(k))
-            return lambda values: _lookup(table, k[0], values.to_numpy().astype(np.int64, copy=False))
-        return lambda values: _search_sorted(k, values.to_numpy().astype(np.int64, copy=False))
+            return lambda values: grouping.lookup(table, k[0], values.to_numpy().astype(np.int64, copy=False))
+        return lambda values: grouping.search_sorted_parallel(k, values.to_numpy().astype(np.int64, copy=False))
     return lambda values: keys.search_sorted(values).to_numpy()
 
 
 DIRECT_TABLE_FACTOR = 4
-
-
-@numba.njit(parallel=True, cache=True)
-def _lookup(table, first, values):
-    out = np.empty(len(values), dtype=np.int64)
-    for j in numba.prange(len(values)):
-        out[j] = table[values[j] - first]
-    return out
-
-
-@numba.njit(parallel=True, cache=True)
-def _search_sorted(keys, values):
-    out = np.empty(len(values), dtype=np.int64)
-    chunks = max(1, min(len(values) // 65536, 64))
-    for c in numba.prange(chunks):
-        lo = c * len(values) // chunks
-        hi = (c + 1) * len(values) // chunks
-        out[lo:hi] = np.searchsorted(keys, values[lo:hi])
-    return out
 
 
 def _text_dictionary(frame: pl.LazyFrame) -> pl.Series | None:
@@ -392,92 +327,3 @@ def _text_dictionary(frame: pl.LazyFrame) -> pl.Series | None:
             return None
     text = pl.col("element").cast(pl.String)
     return frame.select(text.unique()).collect(engine="streaming")["element"].sort()
-
-
-@numba.njit(parallel=True, cache=True)
-def _group_by_entity(ids, codes, weights, n_keys, shares):
-    """Counting sort of the events by entity id: (offsets, codes, weights) grouped.
-
-    Parallel: each thread counts its share of the events per entity, the counts give each
-    (entity, share) its own output range, and each thread scatters its share there."""
-    n = len(codes)
-    counts = np.zeros((shares, n_keys), dtype=np.int64)
-    for s in numba.prange(shares):
-        for j in range(s * n // shares, (s + 1) * n // shares):
-            counts[s, ids[j]] += 1
-    offsets = np.zeros(n_keys + 1, dtype=np.int64)
-    for g in range(n_keys):
-        total = offsets[g]
-        for s in range(shares):
-            c = counts[s, g]
-            counts[s, g] = total  # now: where share s writes entity g
-            total += c
-        offsets[g + 1] = total
-    out = np.empty(n, dtype=np.int64)
-    out_w = np.empty(len(weights), dtype=np.float64)
-    weighted = len(weights) > 0
-    for s in numba.prange(shares):
-        fill = counts[s]
-        for j in range(s * n // shares, (s + 1) * n // shares):
-            g = ids[j]
-            out[fill[g]] = codes[j]
-            if weighted:
-                out_w[fill[g]] = weights[j]
-            fill[g] += 1
-    return offsets, out, out_w
-
-
-@numba.njit(parallel=True, cache=True)
-def _sort_and_merge(offsets, elements, weights, min_count, weighted):
-    """Sort each set, merge repeats (summing weights), drop elements under min_count;
-    the kept elements move to the front of the set's slot. Returns the new sizes."""
-    n = len(offsets) - 1
-    sizes = np.zeros(n, dtype=np.int64)
-    for g in numba.prange(n):
-        a, b = offsets[g], offsets[g + 1]
-        if b == a:
-            continue
-        if weighted:
-            order = np.argsort(elements[a:b], kind="mergesort")
-            seg = elements[a:b][order]
-            w = weights[a:b][order]
-            out = a
-            i = 0
-            while i < b - a:
-                total = w[i]
-                j = i + 1
-                while j < b - a and seg[j] == seg[i]:
-                    total += w[j]
-                    j += 1
-                if total >= min_count:
-                    elements[out] = seg[i]
-                    out += 1
-                i = j
-            sizes[g] = out - a
-        else:
-            elements[a:b].sort()
-            out = a + 1
-            for j in range(a + 1, b):
-                if elements[j] != elements[out - 1]:
-                    elements[out] = elements[j]
-                    out += 1
-            sizes[g] = out - a
-    return sizes
-
-
-@numba.njit(cache=True)
-def _compact(offsets, elements, sizes):
-    """Each set's kept elements, without gaps: (new offsets, elements), moved left in place
-    and returned as a view (no new array: at 10M entities a fresh 3 GB array cost more in
-    first-touch page faults than the serial move)."""
-    n = len(offsets) - 1
-    new_offsets = np.zeros(n + 1, dtype=np.int64)
-    for g in range(n):
-        new_offsets[g + 1] = new_offsets[g] + sizes[g]
-    if new_offsets[n] == offsets[n] - offsets[0]:
-        return new_offsets, elements
-    for g in range(n):
-        a, t = offsets[g], new_offsets[g]
-        for j in range(sizes[g]):
-            elements[t + j] = elements[a + j]
-    return new_offsets, elements[: new_offsets[n]]

@@ -202,7 +202,7 @@ def test_events_without_a_counted_slot_are_reported_not_written():
     # Algebra: key values outside the counted range, or counted zero times, have no slot;
     # the two-pass reader must count them as misplaced (the input changed between passes)
     # and write nothing outside the slots.
-    from lshjob.loading import _place
+    from lshjob.grouping import place_codes as _place
 
     slots = np.array([0, -1, 2], dtype=np.int64)  # key 10 owns slots 0-1, key 12 slot 2
     out = np.full(3, -7, dtype=np.int64)
