@@ -151,7 +151,7 @@ def open_events(source: str | Path, spec: EventSpec) -> EventSource:
 def check_budget(events: EventSource, selection: EntitySelection | None, memory: int | None) -> None:
     """Refuse, with the figures, when grouping the selection would need more than ``memory``."""
     n, entity_range = _extent(events, selection)
-    span = _dense_span(entity_range, n)
+    span = dense_span(entity_range, n)
     need = grouping_bytes(n, events.weighted, span)
     if memory is not None and need > memory:
         raise ParameterError(
@@ -165,7 +165,7 @@ def check_budget(events: EventSource, selection: EntitySelection | None, memory:
 def grouping_need(events: EventSource, selection: EntitySelection | None = None) -> int:
     """Bytes the loader needs at its peak to group the selection (all events by default)."""
     n, entity_range = _extent(events, selection)
-    return grouping_bytes(n, events.weighted, _dense_span(entity_range, n))
+    return grouping_bytes(n, events.weighted, dense_span(entity_range, n))
 
 
 def _extent(events: EventSource, selection: EntitySelection | None) -> tuple[int, tuple[int, int] | None]:
@@ -189,7 +189,7 @@ def group_events(events: EventSource, selection: EntitySelection | None) -> Grou
     if selection is not None:
         frame = frame.filter(selection.condition)
         report = IngestReport(files=report.files, rows_read=n, entity_range=entity_range)
-    span = _dense_span(entity_range, n)
+    span = dense_span(entity_range, n)
     try:
         if span:
             keys, offsets, elements, kept_weights = _read_in_range(
@@ -291,7 +291,7 @@ def start_compiled_code() -> threading.Thread:
     return thread
 
 
-def _dense_span(entity_range: tuple[int, int] | None, events: int) -> int:
+def dense_span(entity_range: tuple[int, int] | None, events: int) -> int:
     """Size of the table over the integer key range when the single-pass path applies, else 0."""
     if entity_range is None:
         return 0

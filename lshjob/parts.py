@@ -43,7 +43,7 @@ import numpy as np
 import polars as pl
 
 from .loading import (BYTES_PER_EVENT, BYTES_PER_EVENT_IN_RANGE, BYTES_PER_KEY_VALUE, EntitySelection,
-                      EventSource, _dense_span, grouping_need)
+                      EventSource, dense_span, grouping_need)
 from .errors import ParameterError
 from .membership import Membership
 from .signatures import SignatureParams
@@ -68,7 +68,7 @@ def events_per_entity(events: EventSource) -> pl.DataFrame:
 def bytes_per_event(events: EventSource) -> float:
     """Grouping cost of an event: 8 bytes (16 weighted) when the integer keys lie in a small
     range, plus the range's table spread over the events; else 20 (36)."""
-    span = _dense_span(events.report.entity_range, events.events)
+    span = dense_span(events.report.entity_range, events.events)
     if span:
         return BYTES_PER_EVENT_IN_RANGE[events.weighted] + BYTES_PER_KEY_VALUE * span / max(events.events, 1)
     return BYTES_PER_EVENT[events.weighted]
@@ -127,7 +127,7 @@ def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | No
         return None
     per_entity = 8 * perms + SIGNATURE_BYTES_PER_ENTITY
     need = grouping_need(events)
-    span = _dense_span(events.report.entity_range, events.events) or events.events
+    span = dense_span(events.report.entity_range, events.events) or events.events
     if parts is None and need + min(events.events, span) * per_entity <= ONE_PART_SHARE * memory:
         return None
     counts = events_per_entity(events)

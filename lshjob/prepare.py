@@ -19,7 +19,7 @@ from . import band, parts, planner, similarity
 from .errors import InputError, ParameterError
 from .identical import collapse_identical
 from .ingest import IngestReport
-from .loading import membership_of
+from .loading import EventSource, membership_of
 from .membership import Membership
 from .signatures import SignatureParams, comparable_by_position
 
@@ -43,7 +43,8 @@ class Prepared:
     bucket_rows: int = 0
 
 
-def in_one_part(source, options, memory, work, stages) -> Prepared:
+def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: Path, stages) -> Prepared:
+    """The usual run: every set in memory at once."""
     with stages("ingest"):
         sets, report = membership_of(source, None)
     _check_entities(source, sets.size)
@@ -63,7 +64,7 @@ def in_one_part(source, options, memory, work, stages) -> Prepared:
     return built
 
 
-def in_parts(source, options, memory, work, stages) -> Prepared:
+def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path, stages) -> Prepared:
     """The run a key range at a time (:mod:`lshjob.parts`)."""
     with stages("count"):
         per_entity = parts.events_per_entity(source)
@@ -76,9 +77,10 @@ def in_parts(source, options, memory, work, stages) -> Prepared:
         del sample
     if plan["mode"] == "identical-only":
         raise ParameterError(
-            f"{source.where}: threshold 1.0 (identical sets only) runs in one part; the sets need more than "
-            f"half the memory budget of {memory / 2**30:.1f} GiB: raise --memory, or use a threshold below 1.0 "
-            "(identical sets still pair up, through the bands)")
+            f"{source.where}: threshold 1.0 (identical sets only) runs in one part: identical sets in "
+            "different parts would never be compared. The sets need more than half the memory budget of "
+            f"{memory / 2**30:.1f} GiB (or --parts asked for parts): raise --memory, drop --parts, or use a "
+            "threshold below 1.0 (identical sets still pair up, through the bands)")
     _check_predicted(plan, options)
     params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
     ranges = parts.key_ranges(per_entity, source, parts.part_budget(memory, per_entity.height),
