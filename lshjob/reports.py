@@ -74,6 +74,8 @@ def run_report(m: dict) -> str:
     lines.append(
         f"entities {c['entities']:,} ({c['representatives']:,} after collapsing identical sets), "
         f"events {c['events']:,}"
+        + (f"; read in {c['parts']} parts (key ranges, one at a time; memory budget "
+           f"{m['memory_budget_bytes'] / 2**30:.1f} GiB)" if c.get("parts", 1) > 1 else "")
     )
     lines.append(
         f"bucket rows {c['bucket_rows']:,} -> candidates {c['candidate_pairs']:,} -> verified "

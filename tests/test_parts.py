@@ -263,3 +263,18 @@ def test_signing_turns_to_parts_when_the_signatures_would_not_fit(tmp_path, monk
     tiny = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "x.parquet"), "--memory", "300MB"])
     assert tiny.exit_code != 0 and "--memory must be at least 512MiB; got '300MB'" in tiny.output
     assert not (tmp_path / "x.parquet").exists()
+
+
+def test_the_run_summary_says_it_went_in_parts(tmp_path, demo_events):
+    from typer.testing import CliRunner
+
+    from lshjob.cli import app
+
+    src = tmp_path / "loans.parquet"
+    demo_events[0].write_parquet(src)
+    args = ["run", str(src), "--entity", "patron", "--element", "title", "--threshold", "0.5"]
+    parted = CliRunner().invoke(app, [*args, "--parts", "2", "--out", str(tmp_path / "a")])
+    whole = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "b")])
+    assert parted.exit_code == 0 and whole.exit_code == 0, parted.output
+    assert "read in 2 parts (key ranges, one at a time" in parted.output
+    assert "parts" not in whole.output
