@@ -65,9 +65,14 @@ def _confirm(offsets, elements, rep_of):
     return out
 
 
+def fingerprints(sets: Membership) -> tuple[np.ndarray, np.ndarray]:
+    """The two 64-bit halves of each set's order-independent fingerprint (module docstring)."""
+    return _fingerprints(sets.offsets, sets.elements)
+
+
 def collapse_identical(sets: Membership) -> tuple[np.ndarray, np.ndarray]:
     """(rep_of, reps): see the module contract."""
-    fa, fb = _fingerprints(sets.offsets, sets.elements)
+    fa, fb = fingerprints(sets)
     frame = pl.DataFrame({"id": np.arange(sets.size, dtype=np.int64), "fa": fa, "fb": fb})
     rep = frame.select(pl.col("id").min().over("fa", "fb"))["id"].to_numpy()
     rep_of = _confirm(sets.offsets, sets.elements, np.ascontiguousarray(rep))

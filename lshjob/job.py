@@ -141,11 +141,13 @@ def run_job(
                       parts=len(built.store.ranges), representatives=built.representatives,
                       entities_in_identical_groups=int(len(built.keys) - built.representatives))
 
-        if built.bucket_files is None:
-            verified = pl.DataFrame(schema={"left_rep": pl.Int64, "right_rep": pl.Int64, "jaccard": pl.Float64,
-                                            "estimate": pl.Float64, "bands_shared": pl.Int32})
-            counts.update(bucket_rows=0, candidate_pairs=0, verified_pairs=0)
+        if built.bucket_files is None:  # identical sets only: no bands; across parts, by fingerprint
             skew = None
+            counts.update(bucket_rows=0, candidate_pairs=built.identical_pairs)
+            with stages("verify"):
+                verified = (parts.verify_blocks(built.candidates, built.store, 1.0, None, memory)
+                            if built.candidates is not None else parts.empty_verified())
+            counts["verified_pairs"] = verified.height
         else:
             counts["bucket_rows"] = built.bucket_rows
             counts["shared_bucket_rows"] = built.shared_rows

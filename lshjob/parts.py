@@ -195,7 +195,7 @@ class HeldSets:
         return self.sets
 
 
-def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: float, params: SignatureParams,
+def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: float, params: SignatureParams | None,
                   memory: int) -> pl.DataFrame:
     """Exact Jaccard of every candidate (:mod:`lshjob.verify`), two parts' sets held at a time;
     candidates are read a slice at a time (a quarter of the budget), so memory stays bounded
@@ -217,12 +217,44 @@ def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: floa
                 chunk = frame.slice(offset, step).collect()
                 kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
             block = pl.concat(kept)
-            pieces.append(add_estimates_between(block, left, store.ranges[i][0], right, store.ranges[j][0], params))
+            if params is None:  # identical sets only, no signatures: the estimate is exact
+                block = block.with_columns(estimate=pl.col("jaccard")).select(
+                    "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
+            else:
+                block = add_estimates_between(block, left, store.ranges[i][0], right, store.ranges[j][0], params)
+            pieces.append(block)
             del right
-    if not pieces:
-        return pl.DataFrame(schema={"left_rep": pl.Int64, "right_rep": pl.Int64, "jaccard": pl.Float64,
-                                    "estimate": pl.Float64, "bands_shared": pl.Int32})
-    return pl.concat(pieces)
+    return pl.concat(pieces) if pieces else empty_verified()
+
+
+def empty_verified() -> pl.DataFrame:
+    """No verified pair (contract of :func:`lshjob.verify.verify_pairs` with estimates)."""
+    return pl.DataFrame(schema={"left_rep": pl.Int64, "right_rep": pl.Int64, "jaccard": pl.Float64,
+                                "estimate": pl.Float64, "bands_shared": pl.Int32})
+
+
+def identical_candidates(prints: pl.DataFrame, ranges: list[tuple[int, int]], out: Path) -> tuple[Path, int]:
+    """Pairs of representatives (of different parts) with the same set fingerprint, written
+    split by parts as the join writes candidates: verification at threshold 1.0 keeps the
+    identical ones. ``prints``: ``rep``, ``fa``, ``fb`` (:func:`lshjob.identical.fingerprints`).
+    A group holds at most one representative a part (identical sets within a part were
+    collapsed), so every pair of a group is listed."""
+    grouped = prints.with_columns(size=pl.len().over("fa", "fb")).filter(pl.col("size") > 1)
+    pairs = (grouped.join(grouped, on=["fa", "fb"], suffix="_other")
+             .filter(pl.col("rep") < pl.col("rep_other"))
+             .select(pl.col("rep").alias("left_rep"), pl.col("rep_other").alias("right_rep"),
+                     pl.lit(0, dtype=pl.Int32).alias("bands_shared")))
+    firsts = np.array([a for a, _ in ranges], dtype=np.int64)
+    pairs = pairs.with_columns(
+        left_part=pl.Series(np.searchsorted(firsts, pairs["left_rep"].to_numpy(), side="right") - 1),
+        right_part=pl.Series(np.searchsorted(firsts, pairs["right_rep"].to_numpy(), side="right") - 1),
+    )
+    out.mkdir(parents=True, exist_ok=True)
+    for (i, j), block in pairs.group_by("left_part", "right_part"):
+        folder = out / f"left_part={i}" / f"right_part={j}"
+        folder.mkdir(parents=True, exist_ok=True)
+        block.select("left_rep", "right_rep", "bands_shared").write_parquet(folder / "pairs.parquet")
+    return out, pairs.height
 
 
 def _block_files(candidates: Path, parts: int, i: int, j: int) -> list[str]:

@@ -17,7 +17,7 @@ import polars as pl
 
 from . import band, parts, planner, similarity
 from .errors import InputError, ParameterError
-from .identical import collapse_identical
+from .identical import collapse_identical, fingerprints
 from .ingest import IngestReport
 from .loading import EventSource, membership_of
 from .membership import Membership
@@ -41,6 +41,10 @@ class Prepared:
     bucket_files: list[Path] | None = None  # None: no bands (identical sets only)
     shared_rows: int = 0
     bucket_rows: int = 0
+    # without bands, in parts: pairs of representatives of different parts whose sets may be
+    # identical (same fingerprint), split by parts as the join writes them
+    candidates: Path | None = None
+    identical_pairs: int = 0  # how many such pairs
 
 
 def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: Path, stages) -> Prepared:
@@ -72,17 +76,14 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
     with stages("plan"):
         # Half a part: the planner's histogram adds an inverted index of the sample.
         budget_events = int(parts.part_budget(memory, per_entity.height) / 2 / parts.bytes_per_event(source))
-        sample, _ = membership_of(source, parts.planning_sample(per_entity, budget_events))
+        sample = None
+        if options.threshold < 1.0:  # identical sets only need no sample
+            sample, _ = membership_of(source, parts.planning_sample(per_entity, budget_events))
         plan = choose_plan(sample, options, total_entities=per_entity.height)
         del sample
-    if plan["mode"] == "identical-only":
-        raise ParameterError(
-            f"{source.where}: threshold 1.0 (identical sets only) runs in one part: identical sets in "
-            "different parts would never be compared. The sets need more than half the memory budget of "
-            f"{memory / 2**30:.1f} GiB (or --parts asked for parts): raise --memory, drop --parts, or use a "
-            "threshold below 1.0 (identical sets still pair up, through the bands)")
     _check_predicted(plan, options)
-    params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
+    banded = plan["mode"] != "identical-only"
+    params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed) if banded else None
     ranges = parts.key_ranges(per_entity, source, parts.part_budget(memory, per_entity.height),
                               options.parts)
     del per_entity
@@ -90,7 +91,8 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
     report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
                           null_rows_dropped=source.report.null_rows_dropped)
     keys, rep_of, representatives = [], [], 0
-    bands = SignAndBand(params, plan, memory, stages, spill=work / "keys")
+    bands = SignAndBand(params, plan, memory, stages, spill=work / "keys") if banded else None
+    prints = []  # without bands: each representative's fingerprint, to find identical sets across parts
     with stages.progress.stage("parts", len(ranges)) as task:
         for selection in ranges:
             with stages.part("ingest"):
@@ -102,7 +104,11 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
             keys.append(sets.keys)
             rep_of.append(part_rep_of + first)
             representatives += len(reps)
-            bands.add(sets, reps, first, None)
+            if banded:
+                bands.add(sets, reps, first, None)
+            else:
+                fa, fb = fingerprints(sets)
+                prints.append(pl.DataFrame({"rep": reps + first, "fa": fa[reps], "fb": fb[reps]}))
             with stages.part("ingest"):
                 store.save(sets)
             del sets, part_rep_of, reps
@@ -112,9 +118,15 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
                          "nothing to sign")
     keys = pl.concat(keys)
     _check_entities(source, len(keys))
-    files, shared = bands.write(work / "buckets")
-    return Prepared(keys, np.concatenate(rep_of), representatives, store, report, plan, params, files, shared,
-                  representatives * plan["bands"])
+    prepared = Prepared(keys, np.concatenate(rep_of), representatives, store, report, plan, params)
+    if banded:
+        prepared.bucket_files, prepared.shared_rows = bands.write(work / "buckets")
+        prepared.bucket_rows = representatives * plan["bands"]
+    else:
+        with stages.part("collapse"):
+            prepared.candidates, prepared.identical_pairs = parts.identical_candidates(
+                pl.concat(prints), store.ranges, work / "candidates")
+    return prepared
 
 
 def _check_entities(source, n: int) -> None:
@@ -173,7 +185,7 @@ class SignAndBand:
         return files, written
 
 
-def choose_plan(sets: Membership, options: RunOptions, total_entities: int | None = None) -> dict:
+def choose_plan(sets: Membership | None, options: RunOptions, total_entities: int | None = None) -> dict:
     """The plan, from exact Jaccard of a sample of ``sets`` (all entities, or a uniform sample
     of ``total_entities``)."""
     if options.threshold >= 1.0:

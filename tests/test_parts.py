@@ -164,12 +164,20 @@ def test_jaccard_between_two_set_tables_matches_brute_force():
             assert got[p] == (j if j >= t else -1.0)
 
 
-def test_threshold_one_in_parts_is_refused_with_a_way_out(tmp_path, demo_events):
+def test_threshold_one_in_parts_pairs_identical_sets_across_parts(tmp_path):
+    # Reference: the one-part run (identical sets grouped exactly) and brute force: every
+    # published pair is a pair of identical sets, and every pair of identical sets is published.
+    events = loans_with_identical_groups(4, integer_patrons=False)
     src = tmp_path / "loans.parquet"
-    demo_events[0].write_parquet(src)
-    with pytest.raises(ParameterError, match="threshold 1.0 .* runs in one part"):
-        run_job(src, SPEC, RunOptions(threshold=1.0, parts=2), tmp_path / "idx")
-    assert not (tmp_path / "idx" / "neighbours.parquet").exists()
+    events.write_parquet(src)
+    one = run_job(src, SPEC, RunOptions(threshold=1.0, top_k=50), tmp_path / "one")
+    four = run_job(src, SPEC, RunOptions(threshold=1.0, top_k=50, parts=4), tmp_path / "four")
+    assert four["counts"]["parts"] == 4 and four["counts"]["candidate_pairs"] > 0
+    assert four["counts"]["representatives"] > one["counts"]["representatives"]  # groups cut by parts
+    assert (tmp_path / "one/neighbours.parquet").read_bytes() == (tmp_path / "four/neighbours.parquet").read_bytes()
+    truth = brute_force_pairs(events, 1.0)
+    got = published_pairs(tmp_path / "four")
+    assert len(truth) > 20 and set(got) == set(truth)
 
 
 def test_no_candidate_in_any_part(tmp_path):
