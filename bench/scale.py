@@ -73,9 +73,9 @@ def main() -> None:
                 m = json.loads(done.stdout)
         wall = min(walls)
         floor = min(floors)
-        audit = json.loads(subprocess.run(
-            [sys.executable, "-m", "lshjob.cli", "audit", f"{tmp}/idx", "--sample", str(args.audit), "--json"],
-            check=True, capture_output=True, text=True).stdout)
+        audit_cmd = [sys.executable, "-m", "lshjob.cli", "audit", f"{tmp}/idx", "--sample", str(args.audit), "--json"]
+        audit = json.loads(subprocess.run(audit_cmd + (["--memory", args.memory] if args.memory else []),
+                                          check=True, capture_output=True, text=True).stdout)
 
     plan = m["plan"]
     lines = [
@@ -109,7 +109,8 @@ def main() -> None:
         f"{audit['true_pairs']} true pairs): recall {_f(audit['recall'])}, S-curve predicts "
         f"{_f(audit['predicted_recall'])}; over {audit['distinct_set_pairs']} distinct pairs of different sets "
         f"{_f(audit['distinct_recall'])} vs {_f(audit['distinct_predicted'])} +/- {_f(audit['distinct_se'])} "
-        f"predicted; wrong pairs {audit['wrong_pairs']}.",
+        f"predicted; wrong pairs {audit['wrong_pairs']}. The audit read the sets in {audit['parts']} part(s), "
+        f"peak {audit['peak_memory_bytes'] / 2**30:.2f} GiB.",
     ]
     finish(f"Scale, {args.entities:,} entities, {args.scheme}", "\n".join(lines), not args.no_write)
 

@@ -254,14 +254,20 @@ def audit(
     events: Annotated[Optional[str], typer.Option(help="Events to check against (default: the run's input).")] = None,
     sample: Annotated[int, typer.Option(help="Entities to check by brute force.")] = 200,
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
+    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time.  [default: half the machine]")] = None,
+    parts: Annotated[Optional[int], typer.Option(help="Read the entities in this many key ranges, one at a time.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
     """Check an index by exact brute force on a sample: recall, predicted recall, wrong pairs.
 
     Example: lshjob audit index --events demo_data/loans.parquet --sample 300
+
+    Example (sets larger than memory): lshjob audit index --sample 2000 --memory 4GB
     """
-    report = audit_index(index, events, sample, seed)
+    if parts is not None and parts < 1:
+        raise ParameterError(f"--parts must be at least 1; got {parts}")
+    report = audit_index(index, events, sample, seed, memory=parse_size(memory) if memory else None, parts=parts)
     _emit(report, as_json, quiet, audit_report(report))
     if report["wrong_pairs"]:
         raise typer.Exit(1)

@@ -149,7 +149,11 @@ def planning_sample(counts: pl.DataFrame, budget_events: int, seed: int = 0) -> 
     n = counts.height
     total = int(counts["events"].sum())
     m = n if total <= budget_events else max(2, int(n * budget_events / max(total, 1)))
-    picked = np.sort(np.random.default_rng(seed).choice(n, size=min(m, n), replace=False))
+    return entities_of(counts, np.sort(np.random.default_rng(seed).choice(n, size=min(m, n), replace=False)))
+
+
+def entities_of(counts: pl.DataFrame, picked: np.ndarray) -> EntitySelection:
+    """The entities at (ascending) positions ``picked`` of ``counts``."""
     keys = counts["entity"].gather(picked)
     per_entity = counts["events"].gather(picked).to_numpy().astype(np.int64)
     integer = keys.dtype.is_integer()
