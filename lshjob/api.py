@@ -23,6 +23,7 @@ from .signatures import (
     merge_signatures,
     params_from_metadata,
     read_signatures,
+    signature_meta,
     sign_sets,
     signature_table,
     signature_metadata,
@@ -153,27 +154,64 @@ def merge_files(
     keep: list[str] | None = None,
     since: str | None = None,
     until: str | None = None,
+    memory: int | None = None,
+    parts: int | None = None,
 ) -> dict:
     """Fold signature files: rows sharing the ``keep`` columns become one (element-wise min).
 
     ``keep`` defaults to ``["entity"]`` (all segments and periods of an entity together).
     ``since``/``until`` (ISO dates, inclusive) keep only periods in that window first.
+    When the rows need more than half of ``memory`` (bytes; default half the machine), or
+    ``parts`` > 1, they are merged an entity key range at a time (the files are sorted by
+    entity, so a range's read skips most of them), each range's rows written to a file beside
+    ``out`` and then copied into it.
     """
     keep = list(keep or ["entity"])
     if "entity" not in keep:
         raise ParameterError(f"--keep must include 'entity'; got {', '.join(keep)}")
-    tables = [read_signatures(s) for s in sources]
-    if since is not None or until is not None:
-        tables = [(_window(t, m, since, until), m) for t, m in tables]
-    merged, meta = merge_signatures(tables, keep)
-    write_signatures(merged, out, meta)
-    return {
-        "out": str(out),
-        "inputs": [str(s) for s in sources],
-        "rows_in": sum(t.height for t, _ in tables),
-        "rows_out": merged.height,
-        "keep": keep,
-    }
+    metas = [signature_meta(s) for s in sources]
+    rows_in = sum(pl.scan_parquet(s).select(pl.len()).collect().item() for s in sources)
+    per_row = MERGE_COPIES * (8 * metas[0]["k"] + parts_module.SIGNATURE_BYTES_PER_ENTITY)
+    memory = memory or default_memory()
+    if parts == 1 or (parts is None and rows_in * per_row <= parts_module.ONE_PART_SHARE * memory):
+        tables = [(pl.read_parquet(s), m) for s, m in zip(sources, metas)]
+        if since is not None or until is not None:
+            tables = [(_window(t, m, since, until), m) for t, m in tables]
+        merged, meta = merge_signatures(tables, keep)
+        write_signatures(merged, out, meta)
+        return _merge_summary(out, sources, sum(t.height for t, _ in tables), merged.height, keep, 1)
+    counts = (pl.concat([pl.scan_parquet(s).select("entity") for s in sources]).group_by("entity")
+              .agg(pl.len().alias("events")).collect(engine="streaming").sort("entity"))
+    ranges = parts_module.key_ranges(counts, None, parts_module.part_budget(memory, counts.height, 0.75), parts,
+                                     event_bytes=per_row)
+    out = Path(out)
+    folder = out.with_name(f".{out.name}.parts-{os.getpid()}")
+    seen = written = 0
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        files = []
+        for i, selection in enumerate(ranges):
+            tables = [(pl.scan_parquet(s).filter(selection.condition).collect(), m) for s, m in zip(sources, metas)]
+            if since is not None or until is not None:
+                tables = [(_window(t, m, since, until), m) for t, m in tables]
+            seen += sum(t.height for t, _ in tables)
+            merged, meta = merge_signatures(tables, keep)
+            files.append(folder / f"part-{i:05d}.parquet")
+            merged.write_parquet(files[-1], compression="uncompressed", statistics=False)
+            written += merged.height
+            del tables, merged
+        write_signatures(pl.scan_parquet(files), out, meta)
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+    return _merge_summary(out, sources, seen, written, keep, len(ranges))
+
+
+MERGE_COPIES = 3  # the rows read, their sorted concatenation, and the merged matrix
+
+
+def _merge_summary(out, sources, rows_in, rows_out, keep, n_parts) -> dict:
+    return {"out": str(out), "inputs": [str(s) for s in sources], "rows_in": rows_in, "rows_out": rows_out,
+            "keep": keep, "parts": n_parts, "peak_memory_bytes": peak_bytes()}
 
 
 def _window(table: pl.DataFrame, meta: dict, since: str | None, until: str | None) -> pl.DataFrame:

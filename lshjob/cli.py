@@ -134,6 +134,8 @@ def merge(
     ] = "entity",
     since: Annotated[Optional[str], typer.Option(help="First period to include (ISO date).")] = None,
     until: Annotated[Optional[str], typer.Option(help="Last period to include (ISO date).")] = None,
+    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; rows that do not fit are merged an entity range at a time.  [default: half the machine]")] = None,
+    parts: Annotated[Optional[int], typer.Option(help="Merge in this many entity key ranges, one at a time.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -142,7 +144,10 @@ def merge(
     Example (last six months, all branches): lshjob merge sigs.parquet --since 2026-07-01
     --until 2026-12-01 --out recent.parquet
     """
-    summary = api.merge_files(sources, out, [c.strip() for c in keep.split(",")], since, until)
+    if parts is not None and parts < 1:
+        raise ParameterError(f"--parts must be at least 1; got {parts}")
+    summary = api.merge_files(sources, out, [c.strip() for c in keep.split(",")], since, until,
+                              memory=parse_size(memory) if memory else None, parts=parts)
     _emit(summary, as_json, quiet, f"merged {summary['rows_in']} rows into {summary['rows_out']} -> {out}")
 
 

@@ -86,15 +86,16 @@ def part_budget(memory: int, entities: int, share: float | None = None) -> int:
     return int(max((share or PART_SHARE) * (memory - held_bytes(entities)), memory // 10))
 
 
-def key_ranges(counts: pl.DataFrame, events: EventSource, budget: int, parts: int | None = None,
-               bytes_per_entity: float = 0.0) -> list[EntitySelection]:
+def key_ranges(counts: pl.DataFrame, events: EventSource | None, budget: int, parts: int | None = None,
+               bytes_per_entity: float = 0.0, event_bytes: float | None = None) -> list[EntitySelection]:
     """Cut the entities (``counts`` from :func:`events_per_entity`) into consecutive key ranges
-    of about equal cost (grouping bytes of their events, plus ``bytes_per_entity`` each): as
-    few as keep each part within ``budget`` bytes, or exactly ``parts`` of them (fewer if
-    there are fewer entities)."""
+    of about equal cost (grouping bytes of their events, or ``event_bytes`` a row, plus
+    ``bytes_per_entity`` each): as few as keep each part within ``budget`` bytes, or exactly
+    ``parts`` of them (fewer if there are fewer entities)."""
     n = counts.height
     per_entity = counts["events"].to_numpy().astype(np.int64)
-    cum = np.cumsum(per_entity * bytes_per_event(events) + bytes_per_entity)
+    cum = np.cumsum(per_entity * (event_bytes if event_bytes is not None else bytes_per_event(events))
+                    + bytes_per_entity)
     total = float(cum[-1]) if n else 0.0
     if parts is None:
         parts = max(1, math.ceil(total / max(budget, 1)))

@@ -303,6 +303,13 @@ def write_signatures(table: pl.DataFrame | pl.LazyFrame, path: str | Path, meta:
 
 def read_signatures(path: str | Path) -> tuple[pl.DataFrame, dict]:
     """Read a signature file and its metadata; refuse files lshjob did not write."""
+    meta = signature_meta(path)
+    return pl.read_parquet(path), meta
+
+
+def signature_meta(path: str | Path) -> dict:
+    """The metadata of a signature file (its rows are not read); refuse files lshjob did
+    not write."""
     path = Path(path)
     if not path.is_file():
         raise InputError(f"{path}: no such signature file")
@@ -319,4 +326,4 @@ def read_signatures(path: str | Path) -> tuple[pl.DataFrame, dict]:
             f"is not supported; expected {FORMAT_NAME!r} version {FORMAT_VERSION}"
         )
     meta["path"] = str(path)
-    return pl.read_parquet(path), meta
+    return meta
