@@ -20,7 +20,9 @@ from .planner import PairHistogram
 from .progress import QUIET, StageProgress
 from .signatures import (
     SignatureParams,
+    check_compatible,
     merge_signatures,
+    merged_meta,
     params_from_metadata,
     read_signatures,
     signature_meta,
@@ -82,18 +84,14 @@ def sign_file(
 
 
 def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -> dict:
-    out = Path(out)
-    folder = out.with_name(f".{out.name}.parts-{os.getpid()}")
     report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
                           null_rows_dropped=source.report.null_rows_dropped)
     direct = event_signing.applies(spec)
-    seconds = {"ingest": time.perf_counter() - started, "sign": 0.0, "write": 0.0}
-    rows = 0
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-        files = []
+    seconds = {"ingest": time.perf_counter() - started, "sign": 0.0}
+
+    def tables():
         with progress.stage("sign", len(ranges)) as task:
-            for i, selection in enumerate(ranges):
+            for selection in ranges:
                 t0 = time.perf_counter()
                 if direct:
                     grouped = group_events(source, selection)
@@ -106,27 +104,40 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
                 else:
                     table = signature_table(members, params)
                     del members
-                t2 = time.perf_counter()
-                report.add_part(part)
-                files.append(folder / f"part-{i:05d}.parquet")
-                table.write_parquet(files[-1], compression="uncompressed", statistics=False)
-                rows += table.height
-                del table
                 seconds["ingest"] += t1 - t0
-                seconds["sign"] += t2 - t1
-                seconds["write"] += time.perf_counter() - t2
+                seconds["sign"] += time.perf_counter() - t1
+                report.add_part(part)
+                yield table
                 task.advance()
-        if rows == 0:
+        if report.sets == 0:
             raise InputError(f"{source.where}: no element is left after filtering (--min-count {spec.min_count}); "
                              "nothing to sign")
-        t0 = time.perf_counter()
-        write_signatures(pl.scan_parquet(files), out, meta)
-        seconds["write"] += time.perf_counter() - t0
-    finally:
-        shutil.rmtree(folder, ignore_errors=True)
+
+    rows = _write_in_parts(tables(), out, meta)
     ingested = started + seconds["ingest"]
     signed = ingested + seconds["sign"]
     return _sign_summary(out, rows, params, report, len(ranges), started, ingested, signed, time.perf_counter())
+
+
+def _write_in_parts(tables, out, meta: dict) -> int:
+    """Write each table of ``tables`` (an iterator: one key range's rows at a time) to a file
+    beside ``out``, then copy them, in order, into the signature file ``out`` by a streaming
+    pass; the parts' files are removed whatever happens. Returns the rows written."""
+    out = Path(out)
+    folder = out.with_name(f".{out.name}.parts-{os.getpid()}")
+    rows = 0
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        files = []
+        for i, table in enumerate(tables):
+            files.append(folder / f"part-{i:05d}.parquet")
+            table.write_parquet(files[-1], compression="uncompressed", statistics=False)
+            rows += table.height
+            del table
+        write_signatures(pl.scan_parquet(files), out, meta)
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+    return rows
 
 
 def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, written) -> dict:
@@ -184,26 +195,20 @@ def merge_files(
               .agg(pl.len().alias("events")).collect(engine="streaming").sort("entity"))
     ranges = parts_module.key_ranges(counts, None, parts_module.part_budget(memory, counts.height, 0.75), parts,
                                      event_bytes=per_row)
-    out = Path(out)
-    folder = out.with_name(f".{out.name}.parts-{os.getpid()}")
-    seen = written = 0
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-        files = []
-        for i, selection in enumerate(ranges):
-            tables = [(pl.scan_parquet(s).filter(selection.condition).collect(), m) for s, m in zip(sources, metas)]
+    seen = [0]
+
+    def tables():
+        for selection in ranges:
+            read = [(pl.scan_parquet(s).filter(selection.condition).collect(), m) for s, m in zip(sources, metas)]
             if since is not None or until is not None:
-                tables = [(_window(t, m, since, until), m) for t, m in tables]
-            seen += sum(t.height for t, _ in tables)
-            merged, meta = merge_signatures(tables, keep)
-            files.append(folder / f"part-{i:05d}.parquet")
-            merged.write_parquet(files[-1], compression="uncompressed", statistics=False)
-            written += merged.height
-            del tables, merged
-        write_signatures(pl.scan_parquet(files), out, meta)
-    finally:
-        shutil.rmtree(folder, ignore_errors=True)
-    return _merge_summary(out, sources, seen, written, keep, len(ranges))
+                read = [(_window(t, m, since, until), m) for t, m in read]
+            seen[0] += sum(t.height for t, _ in read)
+            yield merge_signatures(read, keep)[0]
+
+    for meta in metas[1:]:
+        check_compatible(metas[0], meta)  # before any range is read
+    written = _write_in_parts(tables(), out, merged_meta(metas[0], keep))
+    return _merge_summary(out, sources, seen[0], written, keep, len(ranges))
 
 
 MERGE_COPIES = 3  # the rows read, their sorted concatenation, and the merged matrix

@@ -249,9 +249,15 @@ def merge_signatures(
         signature_column(matrix),
         pl.Series("set_size", np.round(sizes), dtype=pl.UInt32),
     )
+    return merged, merged_meta(first_meta, keep)
+
+
+def merged_meta(first_meta: dict, keep: list[str]) -> dict:
+    """The metadata of a merge's output: the inputs' scheme and hash family, the kept keys,
+    set sizes estimated."""
     meta = {k: v for k, v in first_meta.items() if k != "path"}
     meta.update(keys=list(keep), set_size="estimated")
-    return merged, meta
+    return meta
 
 
 def check_compatible(a: dict, b: dict) -> None:
