@@ -191,6 +191,8 @@ def merge_files(
         merged, meta = merge_signatures(tables, keep)
         write_signatures(merged, out, meta)
         return _merge_summary(out, sources, sum(t.height for t, _ in tables), merged.height, keep, 1)
+    if parts is None:
+        parts_module.require_copy_budget(memory, f"{sources[0]} (and the other inputs): the rows", "merging")
     counts = (pl.concat([pl.scan_parquet(s).select("entity") for s in sources]).group_by("entity")
               .agg(pl.len().alias("events")).collect(engine="streaming").sort("entity"))
     ranges = parts_module.key_ranges(counts, None, parts_module.part_budget(memory, counts.height, 0.75), parts,
@@ -211,7 +213,7 @@ def merge_files(
     return _merge_summary(out, sources, seen[0], written, keep, len(ranges))
 
 
-MERGE_COPIES = 3  # the rows read, their sorted concatenation, and the merged matrix
+MERGE_COPIES = 5  # rows read (with decode buffers), concatenated, sorted, as a matrix, merged: 4.3x measured
 
 
 def _merge_summary(out, sources, rows_in, rows_out, keep, n_parts) -> dict:

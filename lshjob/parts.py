@@ -134,14 +134,19 @@ def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | No
     counts = events_per_entity(events)
     if parts is None and need + counts.height * per_entity <= ONE_PART_SHARE * memory:
         return None
-    if memory < PROCESS_BYTES + COPY_BYTES + (256 << 20):
-        raise ParameterError(
-            f"{events.where}: the sets and signatures need more than half of the memory budget "
-            f"({memory / 2**30:.2f} GiB), and signing them a key range at a time needs at least 1GiB: "
-            f"copying the ranges' signatures into one file takes about {COPY_BYTES >> 20} MiB whatever "
-            "their size (measured); raise --memory")
+    require_copy_budget(memory, f"{events.where}: the sets and signatures", "signing")
     return key_ranges(counts, events, part_budget(memory, counts.height, SIGN_PART_SHARE), parts,
                       bytes_per_entity=per_entity)
+
+
+def require_copy_budget(memory: int, what: str, doing: str) -> None:
+    """Refuse a budget under 1GiB for work that writes key ranges' signatures and copies them
+    into one file: the copy alone takes about ``COPY_BYTES`` whatever the size (measured)."""
+    if memory < PROCESS_BYTES + COPY_BYTES + (256 << 20):
+        raise ParameterError(
+            f"{what} need more than half of the memory budget ({memory / 2**30:.2f} GiB), and {doing} "
+            f"them a key range at a time needs at least 1GiB: copying the ranges' signatures into one "
+            f"file takes about {COPY_BYTES >> 20} MiB whatever their size (measured); raise --memory")
 
 
 def planning_sample(counts: pl.DataFrame, budget_events: int, seed: int = 0) -> EntitySelection:
