@@ -143,6 +143,9 @@ def merge(
 
     Example (last six months, all branches): lshjob merge sigs.parquet --since 2026-07-01
     --until 2026-12-01 --out recent.parquet
+
+    Example (larger than memory): lshjob merge last-night.parquet today.parquet
+    --memory 4GB --out folded.parquet
     """
     if parts is not None and parts < 1:
         raise ParameterError(f"--parts must be at least 1; got {parts}")
