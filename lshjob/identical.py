@@ -70,9 +70,11 @@ def fingerprints(sets: Membership) -> tuple[np.ndarray, np.ndarray]:
     return _fingerprints(sets.offsets, sets.elements)
 
 
-def collapse_identical(sets: Membership) -> tuple[np.ndarray, np.ndarray]:
-    """(rep_of, reps): see the module contract."""
-    fa, fb = fingerprints(sets)
+def collapse_identical(sets: Membership, prints: tuple[np.ndarray, np.ndarray] | None = None
+                       ) -> tuple[np.ndarray, np.ndarray]:
+    """(rep_of, reps): see the module contract. ``prints``: the sets' fingerprints, when the
+    caller already has them."""
+    fa, fb = fingerprints(sets) if prints is None else prints
     frame = pl.DataFrame({"id": np.arange(sets.size, dtype=np.int64), "fa": fa, "fb": fb})
     rep = frame.select(pl.col("id").min().over("fa", "fb"))["id"].to_numpy()
     rep_of = _confirm(sets.offsets, sets.elements, np.ascontiguousarray(rep))

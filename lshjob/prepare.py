@@ -100,14 +100,14 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
             report.add_part(part_report)
             first = store.ranges[-1][1] + 1 if store.ranges else 0
             with stages.part("collapse"):
-                part_rep_of, reps = collapse_identical(sets)
+                fa, fb = fingerprints(sets)
+                part_rep_of, reps = collapse_identical(sets, (fa, fb))
             keys.append(sets.keys)
             rep_of.append(part_rep_of + first)
             representatives += len(reps)
             if banded:
                 bands.add(sets, reps, first, None)
             else:
-                fa, fb = fingerprints(sets)
                 prints.append(pl.DataFrame({"rep": reps + first, "fa": fa[reps], "fb": fb[reps]}))
             with stages.part("ingest"):
                 store.save(sets)
