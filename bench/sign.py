@@ -64,7 +64,7 @@ def main() -> None:
             t[f"lshjob sign_file, {name} (best of 3)"] = min(runs)
         for name, params in schemes.items():
             runs = []
-            for _ in range(2):
+            for _ in range(3):
                 start = time.perf_counter()
                 sign_events(source, spec, params)
                 runs.append(time.perf_counter() - start)

@@ -143,47 +143,73 @@ def xxh64_strings(values: pl.Series, seed: int = 0) -> np.ndarray:
     return _xxh64_many(buf, offsets, U64(seed))
 
 
-# ASCII of each two-digit number, first digit in the low byte (the text's byte order)
-_PAIRS = np.array([ord(f"{i:02d}"[0]) | ord(f"{i:02d}"[1]) << 8 for i in range(100)], dtype=np.uint64)
+@numba.njit(inline="always")
+def _eight_digits(x):
+    """The 8-digit decimal text of ``x`` < 10**8, zero-padded, as ASCII in one little-endian
+    word (first digit in the low byte). SWAR: the quotients by 10**4, 100 and 10 of all
+    groups at once, by multiply-and-shift on lanes of 32, 16 and 8 bits (for x < 10**4,
+    x // 100 == (x * 5243) >> 19; for x < 100, x // 10 == (x * 103) >> 10; both checked
+    over their whole range by the tests)."""
+    high = x // U64(10000)
+    y = high | ((x - high * U64(10000)) << U64(32))
+    hundreds = ((y * U64(5243)) >> U64(19)) & U64(0x0000007F0000007F)
+    y = hundreds | ((y - hundreds * U64(100)) << U64(16))
+    tens = ((y * U64(103)) >> U64(10)) & U64(0x000F000F000F000F)
+    y = tens | ((y - tens * U64(10)) << U64(8))
+    return y | U64(0x3030303030303030)  # '0' in every byte
 
 
 @numba.njit(inline="always")
-def _prepend(w0, w1, w2, value, bits):
-    """Put ``bits`` bits of text (``value``) in front of the text held little-endian in the
-    words w0, w1, w2 (w0 holds its first 8 bytes)."""
-    w2 = (w2 << U64(bits)) | (w1 >> U64(64 - bits))
-    w1 = (w1 << U64(bits)) | (w0 >> U64(64 - bits))
-    w0 = (w0 << U64(bits)) | value
-    return w0, w1, w2
+def _digit_count8(x):
+    """Digits of ``x`` < 10**8 (1 for 0)."""
+    return (1 + (x >= U64(10)) + (x >= U64(100)) + (x >= U64(1000)) + (x >= U64(10000))
+            + (x >= U64(100000)) + (x >= U64(1000000)) + (x >= U64(10000000)))
+
+
+@numba.njit(inline="always")
+def _leading(x):
+    """The decimal text of ``x`` < 10**8 without leading zeros: (word, length)."""
+    n = _digit_count8(x)
+    return _eight_digits(x) >> U64(8 * (8 - n)), n
 
 
 @numba.njit(inline="always")
 def xxh64_of_integer(x, seed):
     """XXH64 of the decimal text of integer ``x`` (``-`` for negatives), inside compiled loops.
 
-    The text (at most 21 bytes) is assembled right to left in three 64-bit words, two digits
-    per division, and XXH64's short-input steps (8-byte lanes, one 4-byte lane, single bytes,
-    then the avalanche) read it from those words: no byte buffer, no loads (about 30% faster
-    than writing the digits to memory and reading them back; measured)."""
+    The text (at most 21 bytes) is built in three little-endian 64-bit words, eight digits
+    at a time (:func:`_eight_digits`), and XXH64's short-input steps (8-byte lanes, one
+    4-byte lane, single bytes, then the avalanche) read it from those words: no byte buffer,
+    no loads. About 20% faster than two digits per division, which was about 30% faster than
+    writing the digits to memory (both measured)."""
     negative = x < 0
     v = U64(0) - U64(x) if negative else U64(x)
-    w0 = U64(0)
     w1 = U64(0)
     w2 = U64(0)
-    n = 0
-    while v >= U64(100):
-        r = v % U64(100)
-        v //= U64(100)
-        w0, w1, w2 = _prepend(w0, w1, w2, _PAIRS[r], 16)
-        n += 2
-    if v >= U64(10):
-        w0, w1, w2 = _prepend(w0, w1, w2, _PAIRS[v], 16)
-        n += 2
-    else:
-        w0, w1, w2 = _prepend(w0, w1, w2, U64(48) + v, 8)  # '0' + v
-        n += 1
-    if negative:
-        w0, w1, w2 = _prepend(w0, w1, w2, U64(45), 8)  # '-'
+    if v < U64(100000000):
+        w0, n = _leading(v)
+    elif v < U64(10000000000000000):  # 9 to 16 digits: m leading, then 8
+        high = v // U64(100000000)
+        a, m = _leading(high)
+        b = _eight_digits(v - high * U64(100000000))
+        w0 = a | ((b << U64(8 * m - 1)) << U64(1))  # two shifts: m == 8 would shift by 64
+        w1 = b >> U64(64 - 8 * m)
+        n = m + 8
+    else:  # 17 to 20 digits: m (at most 4) leading, then 8 and 8
+        top = v // U64(10000000000000000)
+        lower = v - top * U64(10000000000000000)
+        high = lower // U64(100000000)
+        a, m = _leading(top)
+        b = _eight_digits(high)
+        c = _eight_digits(lower - high * U64(100000000))
+        w0 = a | (b << U64(8 * m))
+        w1 = (b >> U64(64 - 8 * m)) | (c << U64(8 * m))
+        w2 = c >> U64(64 - 8 * m)
+        n = m + 16
+    if negative:  # '-' in front
+        w2 = (w2 << U64(8)) | (w1 >> U64(56))
+        w1 = (w1 << U64(8)) | (w0 >> U64(56))
+        w0 = (w0 << U64(8)) | U64(45)
         n += 1
     h = seed + P5 + U64(n)
     current = w0

@@ -69,3 +69,32 @@ def test_unsigned_integer_hash_edges():
     values = sorted(v for v in set(values) if 0 <= v < 2**64)
     got = xxh64_integers(np.array(values, dtype=np.uint64))
     assert got.tolist() == [xxhash.xxh64_intdigest(str(v).encode()) for v in values]
+
+
+def test_integer_hash_at_every_digit_count():
+    # Reference: the xxhash package over Python's decimal text. Every length of text from 1
+    # to 20 digits, with and without a sign, at the ends of each length and at random inside.
+    rng = np.random.default_rng(5)
+    signed, unsigned = [0], [0]
+    for d in range(1, 21):
+        low, high = 10 ** (d - 1), 10**d - 1
+        inside = [int(low + (high - low) * f) for f in rng.random(200)]
+        for v in [low, high, low + 1, high - 1] + inside:
+            if v < 2**63:
+                signed += [v, -v]
+            if v < 2**64:
+                unsigned.append(v)
+    signed.append(-(2**63))
+    got = xxh64_integers(np.array(signed, dtype=np.int64))
+    assert got.tolist() == [xxhash.xxh64_intdigest(str(v).encode()) for v in signed]
+    got = xxh64_integers(np.array(unsigned, dtype=np.uint64))
+    assert got.tolist() == [xxhash.xxh64_intdigest(str(v).encode()) for v in unsigned]
+
+
+def test_digit_quotients_by_multiplication_hold_on_their_whole_range():
+    # The multiply-and-shift quotients the decimal text is built with, checked exhaustively
+    # against integer division: x // 100 for x < 10**4 and x // 10 for x < 100.
+    x = np.arange(10_000, dtype=np.uint64)
+    assert np.array_equal((x * np.uint64(5243)) >> np.uint64(19), x // np.uint64(100))
+    x = np.arange(100, dtype=np.uint64)
+    assert np.array_equal((x * np.uint64(103)) >> np.uint64(10), x // np.uint64(10))
