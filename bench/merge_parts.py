@@ -20,7 +20,6 @@ import tempfile
 import time
 from pathlib import Path
 
-import polars as pl
 
 sys.path.insert(0, str(Path(__file__).parent))
 from common import branch_network_events, finish, machine  # noqa: E402

@@ -36,7 +36,7 @@ def main() -> None:
     ap.add_argument("--perms", type=int, default=128)
     ap.add_argument("--memory", default=None)
     ap.add_argument("--threshold", type=float, default=0.5)
-    ap.add_argument("--audit", type=int, default=2000, help="entities the audit samples")
+    ap.add_argument("--audit", type=int, default=2000, help="entities the audit samples (0: no audit)")
     ap.add_argument("--repeat", type=int, default=1, help="runs of lshjob; the fastest is reported")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
@@ -73,9 +73,11 @@ def main() -> None:
                 m = json.loads(done.stdout)
         wall = min(walls)
         floor = min(floors)
-        audit_cmd = [sys.executable, "-m", "lshjob.cli", "audit", f"{tmp}/idx", "--sample", str(args.audit), "--json"]
-        audit = json.loads(subprocess.run(audit_cmd + (["--memory", args.memory] if args.memory else []),
-                                          check=True, capture_output=True, text=True).stdout)
+        audit = None
+        if args.audit > 0:
+            audit_cmd = [sys.executable, "-m", "lshjob.cli", "audit", f"{tmp}/idx", "--sample", str(args.audit), "--json"]
+            audit = json.loads(subprocess.run(audit_cmd + (["--memory", args.memory] if args.memory else []),
+                                              check=True, capture_output=True, text=True).stdout)
 
     plan = m["plan"]
     lines = [
@@ -105,13 +107,15 @@ def main() -> None:
         f"run / floor = {wall / floor:.1f}x. CPU time (user + system, both cores; steadier than the "
         f"wall clock on this machine): run {min(run_cpu):.2f} s, floor {min(floor_cpu):.2f} s, "
         f"ratio {min(run_cpu) / min(floor_cpu):.1f}x (best of each).",
+    ]
+    if audit is not None:
+        lines.append(
         f"Audit ({audit['sampled_entities']} entities against {audit['compared_against']}, "
         f"{audit['true_pairs']} true pairs): recall {_f(audit['recall'])}, S-curve predicts "
         f"{_f(audit['predicted_recall'])}; over {audit['distinct_set_pairs']} distinct pairs of different sets "
         f"{_f(audit['distinct_recall'])} vs {_f(audit['distinct_predicted'])} +/- {_f(audit['distinct_se'])} "
         f"predicted; wrong pairs {audit['wrong_pairs']}. The audit read the sets in {audit['parts']} part(s), "
-        f"peak {audit['peak_memory_bytes'] / 2**30:.2f} GiB.",
-    ]
+        f"peak {audit['peak_memory_bytes'] / 2**30:.2f} GiB.")
     finish(f"Scale, {args.entities:,} entities, {args.scheme}", "\n".join(lines), not args.no_write)
 
 

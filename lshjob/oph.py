@@ -114,16 +114,25 @@ def _borrow(row, table, salt, i, k):
         a += 1
 
 
+ESTIMATE_ROWS = 65536
+
+
 def set_size_estimate(signatures: np.ndarray) -> np.ndarray:
     """Distinct count from OPH bins: linear counting -k ln(empty/k) while bins are empty
     (Whang, Vander-Zanden, Taylor, "A linear-time probabilistic counting algorithm for
     database applications", TODS 1990); with no empty bin, each bin's minimum is that of
     about n/k uniforms, and (k-1)/sum(u) estimates n/k for each (Cohen 1997; from memory)."""
     k = signatures.shape[1]
-    empty = (signatures == EMPTY).sum(axis=1)
-    u = (signatures.astype(np.float64) + 1.0) / 2.0**64
-    u[signatures == EMPTY] = 0.0
+    n = signatures.shape[0]
+    empty = np.empty(n, dtype=np.int64)
+    sums = np.empty(n, dtype=np.float64)
+    for a in range(0, n, ESTIMATE_ROWS):  # blocks: no full-size float copies
+        block = signatures[a:a + ESTIMATE_ROWS]
+        u = (block.astype(np.float64) + 1.0) / 2.0**64
+        u[block == EMPTY] = 0.0
+        empty[a:a + ESTIMATE_ROWS] = (block == EMPTY).sum(axis=1)
+        sums[a:a + ESTIMATE_ROWS] = u.sum(axis=1)
     with np.errstate(divide="ignore"):
         linear = -k * np.log(np.maximum(empty, 1) / k)
-        full = k * (k - 1) / np.maximum(u.sum(axis=1), 1e-300)
+        full = k * (k - 1) / np.maximum(sums, 1e-300)
     return np.maximum(1.0, np.where(empty > 0, linear, full))

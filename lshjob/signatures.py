@@ -211,9 +211,14 @@ def estimate_set_size(matrix: np.ndarray) -> np.ndarray:
     framework with applications to transitive closure and reachability", JCSS 1997;
     from memory).
     """
-    u = (matrix.astype(np.float64) + 1.0) / 2.0**64
     k = matrix.shape[1]
-    return np.maximum(1.0, (k - 1) / u.sum(axis=1))
+    sums = np.empty(matrix.shape[0], dtype=np.float64)
+    for a in range(0, matrix.shape[0], ESTIMATE_ROWS):  # blocks: no full-size float copies
+        sums[a:a + ESTIMATE_ROWS] = ((matrix[a:a + ESTIMATE_ROWS].astype(np.float64) + 1.0) / 2.0**64).sum(axis=1)
+    return np.maximum(1.0, (k - 1) / sums)
+
+
+ESTIMATE_ROWS = 65536
 
 
 def merge_matrices(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -240,16 +245,46 @@ def merge_signatures(
                 f"{meta.get('path', 'signature table')}: column(s) {', '.join(missing)} not found; "
                 f"columns are: {', '.join(table.columns)}"
             )
-    frames = [t.select([*keep, "signature"]) for t, _ in tables]
-    combined = pl.concat(frames, how="vertical_relaxed").sort(keep)
-    starts = np.r_[0, np.cumsum(run_lengths(combined, keep))[:-1]]
-    matrix = np.minimum.reduceat(signature_array(combined), starts, axis=0)
+    # Sort the keys only (with each row's place), not the signatures: gathering them in key
+    # order and taking the minimum is one compiled pass over each input matrix.
+    keys = pl.concat([t.select(keep) for t, _ in tables], how="vertical_relaxed")
+    order = keys.with_row_index("__row").sort(keep, maintain_order=True)
+    lengths = run_lengths(order, keep)
+    starts = np.r_[0, np.cumsum(lengths)[:-1]].astype(np.int64)
+    matrices = numba.typed.List.empty_list(READONLY_MATRIX)  # polars' buffers are read-only
+    for t, _ in tables:
+        matrices.append(signature_array(t))
+    firsts = np.cumsum([0] + [t.height for t, _ in tables]).astype(np.int64)
+    matrix = _minimum_by_run(matrices, firsts, order["__row"].to_numpy().astype(np.int64), starts, lengths)
     sizes = oph.set_size_estimate(matrix) if first_meta["scheme"] == "oph" else estimate_set_size(matrix)
-    merged = combined.select(keep).gather(starts).with_columns(
+    merged = order.select(keep).gather(starts).with_columns(
         signature_column(matrix),
         pl.Series("set_size", np.round(sizes), dtype=pl.UInt32),
     )
     return merged, merged_meta(first_meta, keep)
+
+
+READONLY_MATRIX = numba.types.Array(numba.types.uint64, 2, "C", readonly=True)
+
+
+@numba.njit(parallel=True, cache=True)
+def _minimum_by_run(matrices, firsts, rows, starts, lengths):
+    """Row g of the result: the element-wise minimum of the rows ``rows[starts[g]:starts[g] +
+    lengths[g]]`` of the stacked matrices (matrix t holds rows firsts[t]..firsts[t + 1] - 1)."""
+    k = matrices[0].shape[1]
+    out = np.empty((starts.shape[0], k), dtype=np.uint64)
+    for g in numba.prange(starts.shape[0]):
+        row = out[g]
+        for j in range(starts[g], starts[g] + lengths[g]):
+            r = rows[j]
+            t = np.searchsorted(firsts, r, side="right") - 1
+            source = matrices[t][r - firsts[t]]
+            if j == starts[g]:
+                row[:] = source
+            else:
+                for i in range(k):
+                    row[i] = min(row[i], source[i])
+    return out
 
 
 def merged_meta(first_meta: dict, keep: list[str]) -> dict:

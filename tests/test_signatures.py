@@ -19,6 +19,7 @@ from lshjob.signatures import (
     sign_element_lists,
     sign_sets,
     signature_array,
+    signature_column,
     signature_metadata,
 )
 
@@ -247,3 +248,22 @@ def test_kperm_positions_are_a_prefix_of_longer_signatures():
     long = sign_element_lists(sets, SignatureParams(perms=128, seed=5))
     short = sign_element_lists(sets, SignatureParams(perms=96, seed=5))
     assert np.array_equal(long[:, :96], short)
+
+
+def test_merging_many_tables_is_the_row_minimum_per_key():
+    # Reference: brute force in Python, each key's rows gathered from every table in any
+    # order and reduced with numpy's element-wise minimum. Keys repeat within and across
+    # the three tables, which arrive unsorted; two key columns are kept.
+    rng = np.random.default_rng(11)
+    k, expected, tables = 16, {}, []
+    for size in (40, 25, 60):
+        keys = pl.DataFrame({"entity": rng.integers(0, 12, size), "segment": rng.choice(["a", "b"], size)})
+        matrix = rng.integers(0, 2**54, (size, k), dtype=np.uint64)  # minima of about 1000 elements
+        for key, row in zip(keys.iter_rows(), matrix):
+            expected[key] = row if key not in expected else np.minimum(expected[key], row)
+        tables.append((keys.with_columns(signature_column(matrix)), {"scheme": "kperm", "k": k}))
+    merged, meta = merge_signatures(tables, ["entity", "segment"])
+    assert merged.select("entity", "segment").rows() == sorted(expected)
+    assert np.array_equal(signature_array(merged), np.stack([expected[key] for key in sorted(expected)]))
+    assert merged["set_size"].to_list() == np.round(estimate_set_size(signature_array(merged))).astype(int).tolist()
+    assert meta["set_size"] == "estimated"
