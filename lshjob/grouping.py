@@ -141,7 +141,7 @@ def sort_and_merge(offsets, elements, weights, min_count, weighted):
                 i = j
             sizes[g] = out - a
         else:
-            elements[a:b].sort()
+            sort_range(elements, a, b)
             out = a + 1
             for j in range(a + 1, b):
                 if elements[j] != elements[out - 1]:
@@ -149,6 +149,64 @@ def sort_and_merge(offsets, elements, weights, min_count, weighted):
                     out += 1
             sizes[g] = out - a
     return sizes
+
+
+SMALL = 24  # ranges this short are insertion-sorted
+
+
+@numba.njit(cache=True)
+def sort_range(values, lo, hi):
+    """Sort ``values[lo:hi]`` in place: quicksort (median of three, Hoare partition, the
+    smaller side first), insertion sort below :data:`SMALL`, numpy's sort past a depth of
+    2 log2(n) (so no input is quadratic). About 20% faster than numpy's sort on slices of
+    a few dozen (measured on the branch network's sets), where a call's own cost counts."""
+    depth = 0
+    n = hi - lo
+    while n > 1:
+        depth += 2
+        n >>= 1
+    _quicksort(values, lo, hi, depth)
+
+
+@numba.njit(cache=True)
+def _quicksort(values, lo, hi, depth):
+    while hi - lo > SMALL:
+        if depth == 0:
+            values[lo:hi].sort()
+            return
+        depth -= 1
+        mid = (lo + hi) >> 1
+        a, b, c = values[lo], values[mid], values[hi - 1]
+        if a > b:
+            a, b = b, a
+        if b > c:
+            b = c
+        if a > b:
+            b = a
+        pivot = b  # the median of the three
+        i, j = lo, hi - 1
+        while i <= j:
+            while values[i] < pivot:
+                i += 1
+            while values[j] > pivot:
+                j -= 1
+            if i <= j:
+                values[i], values[j] = values[j], values[i]
+                i += 1
+                j -= 1
+        if j + 1 - lo < hi - i:  # recurse into the smaller side, loop on the larger
+            _quicksort(values, lo, j + 1, depth)
+            lo = i
+        else:
+            _quicksort(values, i, hi, depth)
+            hi = j + 1
+    for i in range(lo + 1, hi):
+        x = values[i]
+        j = i - 1
+        while j >= lo and values[j] > x:
+            values[j + 1] = values[j]
+            j -= 1
+        values[j + 1] = x
 
 
 @numba.njit(cache=True)

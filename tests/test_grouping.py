@@ -1,0 +1,37 @@
+"""The compiled sort the loader puts every set in order with."""
+
+import numpy as np
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from lshjob.grouping import sort_range
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(min_value=-(2**63), max_value=2**63 - 1), max_size=300), st.data())
+def test_sort_range_sorts_exactly_the_range(values, data):
+    # Reference: numpy's sort of the same slice; the rest of the array is left as it was.
+    a = np.array(values, dtype=np.int64)
+    lo = data.draw(st.integers(0, len(a)))
+    hi = data.draw(st.integers(lo, len(a)))
+    expected = a.copy()
+    expected[lo:hi] = np.sort(a[lo:hi])
+    sort_range(a, lo, hi)
+    assert np.array_equal(a, expected)
+
+
+def test_sort_range_on_shapes_that_defeat_simple_quicksorts():
+    # Reference: numpy's sort. Sorted, reversed, all equal, few distinct values, organ pipe
+    # and odd-then-even values: shapes on which a quicksort's pivot choice goes wrong; each
+    # must sort, and the depth limit (numpy's sort past it) keeps every shape fast.
+    n = 20_000
+    half = np.arange(n // 2)
+    shapes = {
+        "sorted": np.arange(n), "reversed": np.arange(n)[::-1], "equal": np.zeros(n),
+        "few": np.random.default_rng(1).integers(0, 3, n), "organ": np.r_[half, half[::-1]],
+        "interleaved": np.r_[np.arange(1, n, 2), np.arange(0, n, 2)],
+    }
+    for name, shape in shapes.items():
+        a = shape.astype(np.int64)
+        sort_range(a, 0, n)
+        assert np.array_equal(a, np.sort(shape.astype(np.int64))), name
