@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-import os
-import shutil
 import time
 from dataclasses import dataclass
 from pathlib import Path
 
 import polars as pl
+from polars.io.plugins import register_io_source
 
 from . import event_signing, planner, similarity
 from .errors import InputError, ParameterError
@@ -19,6 +18,7 @@ from .resources import default_memory, peak_bytes
 from .planner import PairHistogram
 from .progress import QUIET, StageProgress
 from .signatures import (
+    SIGNATURE_ROW_GROUP,
     SignatureParams,
     check_compatible,
     merge_signatures,
@@ -46,9 +46,8 @@ def sign_file(
 
     One set per entity whose sets and signatures need more than half of ``memory`` (bytes;
     default half the machine), or ``parts`` > 1, is signed a key range at a time
-    (:mod:`lshjob.parts`): each range's signatures go to a file beside ``out``, and the files
-    are then copied into ``out`` in key order by a streaming pass. The signatures are the
-    same. Returns a summary: counts from ingest, the signature parameters and timings.
+    (:mod:`lshjob.parts`): the writer streams each range's signatures into ``out`` as the
+    range is signed, in key order. The signatures are the same. Returns a summary: counts from ingest, the signature parameters and timings.
     Nothing is written when the input is rejected.
     """
     started = time.perf_counter()
@@ -120,24 +119,50 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
 
 
 def _write_in_parts(tables, out, meta: dict) -> int:
-    """Write each table of ``tables`` (an iterator: one key range's rows at a time) to a file
-    beside ``out``, then copy them, in order, into the signature file ``out`` by a streaming
-    pass; the parts' files are removed whatever happens. Returns the rows written."""
-    out = Path(out)
-    folder = out.with_name(f".{out.name}.parts-{os.getpid()}")
-    rows = 0
+    """Stream the tables of ``tables`` (an iterator: one key range's rows at a time, in key
+    order) into the signature file ``out``. The writer pulls each range's table when it needs
+    rows (a polars IO source), so one range is held at a time and nothing goes through
+    intermediate files (copying the ranges' files into one took about five times as long;
+    measured). Returns the rows written. An error raised while making a range's table is
+    raised as it is, not as polars' wrapping of it."""
+    pending = iter(tables)
+    first = next(pending)  # its schema is the file's
+    schema = first.schema
+    held = [first]
+    del first
+    rows = [0]
+    calls = [0]
+    failure: list[BaseException] = []
+
+    def source(with_columns, predicate, n_rows, batch_size):
+        calls[0] += 1
+        if calls[0] > 1:  # the ranges can be made once only
+            raise RuntimeError("the signature writer asked for the key ranges twice")
+        try:
+            table = held.pop()
+            while table is not None:
+                rows[0] += table.height
+                if predicate is not None:
+                    table = table.filter(predicate)
+                if with_columns is not None:
+                    table = table.select(with_columns)
+                # a row group at a time: polars asks for the next range while it still
+                # encodes, and by then holds only the last slices of this one
+                for start in range(0, table.height, SIGNATURE_ROW_GROUP):
+                    yield table.slice(start, SIGNATURE_ROW_GROUP)
+                table = None  # let the range written go before the next is made
+                table = next(pending, None)
+        except Exception as exc:
+            failure.append(exc)
+            raise
+
     try:
-        folder.mkdir(parents=True, exist_ok=True)
-        files = []
-        for i, table in enumerate(tables):
-            files.append(folder / f"part-{i:05d}.parquet")
-            table.write_parquet(files[-1], compression="uncompressed", statistics=False)
-            rows += table.height
-            del table
-        write_signatures(pl.scan_parquet(files), out, meta)
-    finally:
-        shutil.rmtree(folder, ignore_errors=True)
-    return rows
+        write_signatures(register_io_source(source, schema=schema), out, meta)
+    except Exception:
+        if failure:
+            raise failure[0] from None
+        raise
+    return rows[0]
 
 
 def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, written) -> dict:
@@ -174,8 +199,8 @@ def merge_files(
     ``since``/``until`` (ISO dates, inclusive) keep only periods in that window first.
     When the rows need more than half of ``memory`` (bytes; default half the machine), or
     ``parts`` > 1, they are merged an entity key range at a time (the files are sorted by
-    entity, so a range's read skips most of them), each range's rows written to a file beside
-    ``out`` and then copied into it.
+    entity, so a range's read skips most of them), each range's rows streamed into ``out``
+    as they are merged.
     """
     keep = list(keep or ["entity"])
     if "entity" not in keep:

@@ -51,7 +51,8 @@ from .verify import add_estimates_between, verify_between
 
 ONE_PART_SHARE = 0.5  # grouping all events may take this share of the budget, else parts
 PART_SHARE = 0.5  # what grouping one part may take, of what the run does not hold across parts
-COPY_BYTES = 512 << 20  # polars streaming the parts' signatures into one file: 0.45-0.6 GiB at 1M (measured)
+COPY_BYTES = 512 << 20  # streaming ranges' signatures into one file, beside the ranges: merge under
+# 700MB peaked at 1.02 GiB, sign at 0.79 GiB (1M entities, measured), so budgets under 1GiB are refused
 SIGN_PART_SHARE = 0.75  # the same for lshjob sign, which holds nothing else (10M at 4GB: peak 2.3 GB at 0.5)
 HELD_BYTES_PER_ENTITY = 32  # representative, event count and key (about 8 bytes of a key)
 PROCESS_BYTES = 256 << 20  # the interpreter with polars, numba and DuckDB loaded: about 200 MiB measured
@@ -135,17 +136,19 @@ def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | No
     if parts is None and need + counts.height * per_entity <= ONE_PART_SHARE * memory:
         return None
     require_copy_budget(memory, f"{events.where}: the sets and signatures", "signing")
+    # the writer still encodes a range's signatures while the next range is grouped and
+    # signed: a range costs its grouping and twice its signatures
     return key_ranges(counts, events, part_budget(memory, counts.height, SIGN_PART_SHARE), parts,
-                      bytes_per_entity=per_entity)
+                      bytes_per_entity=2 * per_entity)
 
 
 def require_copy_budget(memory: int, what: str, doing: str) -> None:
-    """Refuse a budget under 1GiB for work that writes key ranges' signatures and copies them
-    into one file: the copy alone takes about ``COPY_BYTES`` whatever the size (measured)."""
+    """Refuse a budget under 1GiB for work that streams key ranges' signatures into one file:
+    the writer and polars' readers take about ``COPY_BYTES`` whatever the size (measured)."""
     if memory < PROCESS_BYTES + COPY_BYTES + (256 << 20):
         raise ParameterError(
             f"{what} need more than half of the memory budget ({memory / 2**30:.2f} GiB), and {doing} "
-            f"them a key range at a time needs at least 1GiB: copying the ranges' signatures into one "
+            f"them a key range at a time needs at least 1GiB: writing the ranges' signatures into one "
             f"file takes about {COPY_BYTES >> 20} MiB whatever their size (measured); raise --memory")
 
 

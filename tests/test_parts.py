@@ -225,7 +225,7 @@ def test_the_planner_in_parts_meets_its_recall_target(tmp_path, monkeypatch):
 def test_signing_in_parts_gives_the_same_signatures(tmp_path, integer_patrons, scheme, count):
     # Reference: the same signatures made in one part (themselves checked against datasketch
     # and the documented definition in test_signatures.py). The file is streamed from the
-    # parts' files; rows, order, values and metadata must agree.
+    # parts as they are signed; rows, order, values and metadata must agree.
     from lshjob.api import sign_file
     from lshjob.signatures import SignatureParams, read_signatures
 
@@ -244,6 +244,28 @@ def test_signing_in_parts_gives_the_same_signatures(tmp_path, integer_patrons, s
     assert a.height > 900 and a.equals(b)
     assert {k: v for k, v in meta_a.items() if k != "path"} == {k: v for k, v in meta_b.items() if k != "path"}
     assert not list(tmp_path.glob(".*"))  # the parts' folder is gone
+
+
+def test_an_error_while_making_a_range_reaches_the_caller_and_nothing_is_written(tmp_path):
+    # The writer pulls the ranges' tables through polars; an error in the second range must
+    # come out as the error raised (not polars' wrapping of it), and leave no file behind.
+    from lshjob.api import _write_in_parts
+    from lshjob.errors import InputError
+    from lshjob.signatures import signature_column
+
+    table = pl.DataFrame({"entity": [1, 2]}).with_columns(
+        signature_column(np.ones((2, 4), dtype=np.uint64)), pl.Series("set_size", [3, 4], dtype=pl.UInt32))
+
+    def ranges():
+        yield table
+        raise InputError("loans.parquet: column 'patron' changed while being read")
+
+    with pytest.raises(InputError, match="column 'patron' changed"):
+        _write_in_parts(ranges(), tmp_path / "out.parquet", {"scheme": "kperm"})
+    assert not list(tmp_path.iterdir())
+    assert _write_in_parts(iter([table, table.with_columns(entity=pl.Series([3, 4]))]),
+                           tmp_path / "out.parquet", {"scheme": "kperm"}) == 4
+    assert pl.read_parquet(tmp_path / "out.parquet")["entity"].to_list() == [1, 2, 3, 4]
 
 
 def test_signing_turns_to_parts_when_the_signatures_would_not_fit(tmp_path, monkeypatch):
