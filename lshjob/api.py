@@ -58,7 +58,7 @@ def sign_file(
     with progress.stage("ingest"):
         if spec.key_columns == ["entity"]:  # streaming loader: no group-by over (entity, element)
             source = open_events(events, spec)
-            ranges = parts_module.signing_ranges(source, params.perms, memory, parts)
+            ranges = parts_module.signing_ranges(source, params.perms, memory, parts, streamed=direct)
             if ranges is None and direct:
                 grouped = group_events(source, None)
             elif ranges is None:
@@ -68,11 +68,10 @@ def sign_file(
     if ranges is not None:
         return _sign_in_parts(source, ranges, out, spec, params, meta, progress, started)
     ingested = time.perf_counter()
+    if direct:
+        return _sign_streamed(grouped, out, params, meta, progress, started, ingested)
     with progress.stage("sign"):
-        if direct:
-            table, report = event_signing.sign_grouped(grouped, params)
-            del grouped
-        elif spec.key_columns == ["entity"]:
+        if spec.key_columns == ["entity"]:
             table = signature_table(members, params)
         else:
             table = sign_sets(sets, spec.key_columns, params)
@@ -80,6 +79,29 @@ def sign_file(
     write_signatures(table, out, meta)
     written = time.perf_counter()
     return _sign_summary(out, table.height, params, report, 1, started, ingested, signed, written)
+
+
+def _sign_streamed(grouped, out, params, meta, progress, started, ingested) -> dict:
+    """Sign the grouped events a slice at a time while the writer encodes the slices before:
+    the signatures (8k bytes an entity at k=128) are never all held, and there is no 1 GB
+    matrix to fault in per million entities. The file is the one writing at once gives."""
+    signing = [0.0]
+
+    def slices():
+        with progress.stage("sign", -(-len(grouped.keys) // event_signing.SLICE_ROWS)) as task:
+            made = event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)
+            while True:
+                t0 = time.perf_counter()
+                table = next(made, None)
+                signing[0] += time.perf_counter() - t0
+                if table is None:
+                    return
+                yield table
+                task.advance()
+
+    rows = _write_in_parts(slices(), out, meta)
+    signed = ingested + signing[0]
+    return _sign_summary(out, rows, params, grouped.report, 1, started, ingested, signed, time.perf_counter())
 
 
 def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -> dict:
@@ -94,19 +116,27 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
                 t0 = time.perf_counter()
                 if direct:
                     grouped = group_events(source, selection)
+                    seconds["ingest"] += time.perf_counter() - t0
+                    made = event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)
+                    while True:  # a slice at a time, as in one part
+                        t1 = time.perf_counter()
+                        table = next(made, None)
+                        seconds["sign"] += time.perf_counter() - t1
+                        if table is None:
+                            break
+                        yield table
+                    report.add_part(grouped.report)
+                    del grouped, made
                 else:
                     members, part = membership_of(source, selection)
-                t1 = time.perf_counter()
-                if direct:
-                    table, part = event_signing.sign_grouped(grouped, params)
-                    del grouped
-                else:
+                    t1 = time.perf_counter()
                     table = signature_table(members, params)
                     del members
-                seconds["ingest"] += t1 - t0
-                seconds["sign"] += time.perf_counter() - t1
-                report.add_part(part)
-                yield table
+                    seconds["ingest"] += t1 - t0
+                    seconds["sign"] += time.perf_counter() - t1
+                    report.add_part(part)
+                    yield table
+                    del table
                 task.advance()
         if report.sets == 0:
             raise InputError(f"{source.where}: no element is left after filtering (--min-count {spec.min_count}); "

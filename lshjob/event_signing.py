@@ -18,6 +18,7 @@ Membership path.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Iterator
 
 import numba
 import numpy as np
@@ -31,6 +32,8 @@ from .oph import EMPTY, fast_range
 from .signatures import SignatureParams, oph_salts, signature_column
 
 CHUNK = 256  # sets per parallel task: one table of seen codes each
+SLICE_ROWS = 1 << 16  # entities signed at a time when a writer streams them (64 MB at k=128)
+SLICES_IN_FLIGHT = 4  # slices the streaming writer may hold at once, counted in memory budgets
 GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 
 
@@ -50,22 +53,31 @@ def sign_events(source: str | Path, spec: EventSpec, params: SignatureParams,
 
 def sign_grouped(grouped: GroupedEvents, params: SignatureParams) -> tuple[pl.DataFrame, IngestReport]:
     """:func:`sign_events` after reading: sign the grouped events."""
+    tables = list(sign_grouped_slices(grouped, params, len(grouped.keys)))
+    table = tables[0] if len(tables) == 1 else pl.concat(tables)
+    return table, grouped.report
+
+
+def sign_grouped_slices(grouped: GroupedEvents, params: SignatureParams, rows: int) -> Iterator[pl.DataFrame]:
+    """The signature table of the grouped events, ``rows`` entities at a time (a writer that
+    streams them never holds every signature: 8k bytes an entity at k=128). The report's
+    counts are complete once the last slice is made."""
     text = grouped.text_hashes
+    text = np.empty(0, np.uint64) if text is None else text
     if params.scheme == "oph":
         salts, oph_scheme = oph_salts(params)[:2], True
     else:
         salts, oph_scheme = params.salts(), False
-    matrix, sizes = _sign_grouped(
-        grouped.offsets, grouped.codes, np.empty(0, np.uint64) if text is None else text,
-        salts, params.perms, oph_scheme,
-    )
     report = grouped.report
-    report.membership_rows = int(sizes.sum())
-    report.sets = len(grouped.keys)
-    table = pl.DataFrame({"entity": grouped.keys}).with_columns(
-        signature_column(matrix), pl.Series("set_size", sizes, dtype=pl.UInt32)
-    )
-    return table, report
+    report.membership_rows = 0
+    report.sets = n = len(grouped.keys)
+    for lo in range(0, max(n, 1), max(rows, 1)):
+        hi = min(n, lo + rows)
+        matrix, sizes = _sign_grouped(grouped.offsets[lo:hi + 1], grouped.codes, text, salts, params.perms, oph_scheme)
+        report.membership_rows += int(sizes.sum())
+        yield pl.DataFrame({"entity": grouped.keys.slice(lo, hi - lo)}).with_columns(
+            signature_column(matrix), pl.Series("set_size", sizes, dtype=pl.UInt32)
+        )
 
 
 @numba.njit(parallel=True, cache=True)

@@ -45,6 +45,7 @@ import polars as pl
 from .loading import (BYTES_PER_EVENT, BYTES_PER_EVENT_IN_RANGE, BYTES_PER_KEY_VALUE, EntitySelection,
                       EventSource, dense_span, grouping_need)
 from .errors import ParameterError
+from .event_signing import SLICE_ROWS, SLICES_IN_FLIGHT
 from .membership import Membership
 from .signatures import SignatureParams
 from .verify import add_estimates_between, verify_between
@@ -121,24 +122,29 @@ def key_ranges(counts: pl.DataFrame, events: EventSource | None, budget: int, pa
 SIGNATURE_BYTES_PER_ENTITY = 40  # beside the 8k signature bytes: set size, key, list offsets
 
 
-def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | None = None) -> list[EntitySelection] | None:
+def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | None = None,
+                   streamed: bool = False) -> list[EntitySelection] | None:
     """Key ranges for ``lshjob sign`` when the events' sets and their signature table (8k
     bytes and about 40 more an entity) need more than half the budget; None when one part
-    will do. The entities are counted (one more pass) only when a bound says they might not fit."""
+    will do. The entities are counted (one more pass) only when a bound says they might not fit.
+
+    ``streamed``: the signatures are made and written a slice at a time (one unweighted set
+    per entity), so only the sets, about 40 bytes an entity and the slices in flight count."""
     if parts == 1:
         return None
-    per_entity = 8 * perms + SIGNATURE_BYTES_PER_ENTITY
+    per_entity = (0 if streamed else 8 * perms) + SIGNATURE_BYTES_PER_ENTITY
+    usable = memory - (SLICES_IN_FLIGHT * SLICE_ROWS * 8 * perms if streamed else 0)
     need = grouping_need(events)
     span = dense_span(events.report.entity_range, events.events) or events.events
-    if parts is None and need + min(events.events, span) * per_entity <= ONE_PART_SHARE * memory:
+    if parts is None and need + min(events.events, span) * per_entity <= ONE_PART_SHARE * usable:
         return None
     counts = events_per_entity(events)
-    if parts is None and need + counts.height * per_entity <= ONE_PART_SHARE * memory:
+    if parts is None and need + counts.height * per_entity <= ONE_PART_SHARE * usable:
         return None
     require_copy_budget(memory, f"{events.where}: the sets and signatures", "signing")
     # the writer still encodes a range's signatures while the next range is grouped and
-    # signed: a range costs its grouping and twice its signatures
-    return key_ranges(counts, events, part_budget(memory, counts.height, SIGN_PART_SHARE), parts,
+    # signed: a range costs its grouping and twice its signatures (when they are held whole)
+    return key_ranges(counts, events, part_budget(usable, counts.height, SIGN_PART_SHARE), parts,
                       bytes_per_entity=2 * per_entity)
 
 
