@@ -21,6 +21,7 @@ from pathlib import Path
 import polars as pl
 
 from .errors import InputError, ParameterError
+from .parquet_footer import footer_stats
 
 FORMATS = {
     ".parquet": "parquet",
@@ -168,13 +169,15 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
     report = IngestReport(files=[str(p) for p in paths])
     key_names = [n for _, n in _named_columns(spec) if _ != "--count"]
     integer_entity = schema[spec.entity].is_integer()
-    stats = lf.select(
-        pl.len().alias("rows"),
-        *[pl.col(n).null_count().alias(n) for n in key_names],
-        pl.any_horizontal([pl.col(n).is_null() for n in key_names]).sum().alias("__any_null"),
-        *([pl.col(spec.entity).min().alias("__entity_min"), pl.col(spec.entity).max().alias("__entity_max")]
-          if integer_entity else []),
-    ).collect()
+    stats = _stats_from_footers(paths, key_names, spec.entity, schema[spec.entity])
+    if stats is None:  # read the data
+        stats = lf.select(
+            pl.len().alias("rows"),
+            *[pl.col(n).null_count().alias(n) for n in key_names],
+            pl.any_horizontal([pl.col(n).is_null() for n in key_names]).sum().alias("__any_null"),
+            *([pl.col(spec.entity).min().alias("__entity_min"), pl.col(spec.entity).max().alias("__entity_max")]
+              if integer_entity else []),
+        ).collect()
     report.rows_read = int(stats["rows"][0])
     if integer_entity and stats["__entity_min"][0] is not None:
         report.entity_range = (int(stats["__entity_min"][0]), int(stats["__entity_max"][0]))
@@ -201,6 +204,23 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
     if spec.time is not None and schema[spec.time] == pl.String:
         _check_time_strings(lf, spec.time)
     return lf.select(_select_exprs(spec, schema)), report, where
+
+
+def _stats_from_footers(paths: list[Path], key_names: list[str], entity: str,
+                        entity_type: pl.DataType) -> pl.DataFrame | None:
+    """The statistics pass's one-row frame from the Parquet files' footers, without reading
+    the data (:mod:`lshjob.parquet_footer`); None unless every file is Parquet and states
+    what is needed, and no key is null (nulls are then found, and reported, by reading)."""
+    if not all(p.suffix.lower() in (".parquet", ".pq") for p in paths):
+        return None
+    signed = entity_type in (pl.Int8, pl.Int16, pl.Int32, pl.Int64)
+    if entity_type.is_integer() and not signed:
+        return None  # unsigned bounds are not decoded
+    found = footer_stats(paths, key_names, entity if signed else None)
+    if found is None or any(found["nulls"].values()) or (signed and found["rows"] and found["min"] is None):
+        return None
+    return pl.DataFrame({"rows": [found["rows"]], **{n: [0] for n in key_names}, "__any_null": [0],
+                         "__entity_min": [found["min"]], "__entity_max": [found["max"]]})
 
 
 def group_events(frame: pl.LazyFrame, spec: EventSpec, where: str, report: IngestReport) -> pl.DataFrame:

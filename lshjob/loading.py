@@ -140,10 +140,14 @@ def open_events(source: str | Path, spec: EventSpec) -> EventSource:
     if spec.key_columns != ["entity"]:
         raise ParameterError("load_membership builds one set per entity; segments and periods go through load_sets")
     warming = start_compiled_code()
-    frame, report, where = validated_events(source, spec)
-    weighted = spec.count is not None or spec.min_count > 1
-    dictionary = _text_dictionary(frame)
-    warming.join()  # before any compiled call here: one threading layer (workqueue) must not be entered twice at once
+    try:
+        frame, report, where = validated_events(source, spec)
+        weighted = spec.count is not None or spec.min_count > 1
+        dictionary = _text_dictionary(frame)
+        if dictionary is not None:
+            _check_no_nulls(dictionary.to_frame(), where)
+    finally:  # also when the input is refused: the caller may go on to compiled calls
+        warming.join()  # before any compiled call: one threading layer (workqueue) must not be entered twice at once
     text_hashes = None if dictionary is None else xxh64_strings(dictionary)
     return EventSource(frame, report, where, weighted, float(spec.min_count), dictionary, text_hashes)
 
@@ -222,6 +226,7 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=Non
     else:
         outside = 0
         for batch in frame.select("entity").collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
+            _check_no_nulls(batch, where)
             v = _wide(batch["entity"])
             outside += grouping.count_keys(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1), shares)
         if outside:
@@ -238,6 +243,7 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=Non
     misplaced = 0
     columns = ["entity", "element", "weight"] if weighted else ["entity", "element"]
     for batch in frame.select(columns).collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
+        _check_no_nulls(batch, where)
         v = _wide(batch["entity"])
         w = batch["weight"].to_numpy() if weighted else no_weights
         misplaced += grouping.place_codes(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1),
@@ -246,6 +252,15 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=Non
         raise InputError(f"{where}: the files changed while being read ({n} events counted, then read again)")
     keys = pl.Series("entity", present + first, dtype=frame.collect_schema()["entity"])
     return keys, offsets, elements, kept_weights
+
+
+def _check_no_nulls(batch: pl.DataFrame, where: str) -> None:
+    """Nulls were dropped or refused before; one here means the files' statistics were wrong
+    (the statistics pass may trust the Parquet footers) or the files changed."""
+    for name in batch.columns:
+        if name in ("entity", "element") and batch[name].null_count():
+            raise InputError(f"{where}: the {name} column holds null values that the files' statistics or the "
+                             "first pass did not show; the files changed or state wrong null counts")
 
 
 def _wide(values: pl.Series) -> np.ndarray:
@@ -264,6 +279,7 @@ def _read_and_group(frame, n, weighted, dictionary, where):
     pos = 0
     columns = ["entity", "element", "weight"] if weighted else ["entity", "element"]
     for batch in frame.select(columns).collect_batches(chunk_size=BATCH_ROWS, maintain_order=False):
+        _check_no_nulls(batch, where)
         m = batch.height
         if pos + m > n:
             raise InputError(f"{where}: the files changed while being read ({n} events counted, more read)")
