@@ -47,8 +47,9 @@ def sign_file(
     One set per entity whose sets and signatures need more than half of ``memory`` (bytes;
     default half the machine), or ``parts`` > 1, is signed a key range at a time
     (:mod:`lshjob.parts`): the writer streams each range's signatures into ``out`` as the
-    range is signed, in key order. The signatures are the same. Returns a summary: counts from ingest, the signature parameters and timings.
-    Nothing is written when the input is rejected.
+    range is signed, in key order. Unweighted sets are signed and written a slice at a time
+    in one part too. The signatures are the same. Returns a summary: counts from ingest, the
+    signature parameters and timings. Nothing is written when the input is rejected.
     """
     started = time.perf_counter()
     memory = memory or default_memory()
@@ -85,23 +86,30 @@ def _sign_streamed(grouped, out, params, meta, progress, started, ingested) -> d
     """Sign the grouped events a slice at a time while the writer encodes the slices before:
     the signatures (8k bytes an entity at k=128) are never all held, and there is no 1 GB
     matrix to fault in per million entities. The file is the one writing at once gives."""
-    signing = [0.0]
+    seconds = {"sign": 0.0}
 
     def slices():
         with progress.stage("sign", -(-len(grouped.keys) // event_signing.SLICE_ROWS)) as task:
             made = event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)
-            while True:
-                t0 = time.perf_counter()
-                table = next(made, None)
-                signing[0] += time.perf_counter() - t0
-                if table is None:
-                    return
+            for table in _timed(made, seconds, "sign"):
                 yield table
                 task.advance()
 
     rows = _write_in_parts(slices(), out, meta)
-    signed = ingested + signing[0]
+    signed = ingested + seconds["sign"]
     return _sign_summary(out, rows, params, grouped.report, 1, started, ingested, signed, time.perf_counter())
+
+
+def _timed(items, seconds: dict, key: str):
+    """Yield from ``items``, adding the time spent making each item to ``seconds[key]``."""
+    items = iter(items)
+    while True:
+        start = time.perf_counter()
+        item = next(items, None)
+        seconds[key] += time.perf_counter() - start
+        if item is None:
+            return
+        yield item
 
 
 def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -> dict:
@@ -118,13 +126,7 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
                     grouped = group_events(source, selection)
                     seconds["ingest"] += time.perf_counter() - t0
                     made = event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)
-                    while True:  # a slice at a time, as in one part
-                        t1 = time.perf_counter()
-                        table = next(made, None)
-                        seconds["sign"] += time.perf_counter() - t1
-                        if table is None:
-                            break
-                        yield table
+                    yield from _timed(made, seconds, "sign")  # a slice at a time, as in one part
                     report.add_part(grouped.report)
                     del grouped, made
                 else:

@@ -52,9 +52,8 @@ def sign_events(source: str | Path, spec: EventSpec, params: SignatureParams,
 
 
 def sign_grouped(grouped: GroupedEvents, params: SignatureParams) -> tuple[pl.DataFrame, IngestReport]:
-    """:func:`sign_events` after reading: sign the grouped events."""
-    tables = list(sign_grouped_slices(grouped, params, len(grouped.keys)))
-    table = tables[0] if len(tables) == 1 else pl.concat(tables)
+    """:func:`sign_events` after reading: sign the grouped events (one slice of all)."""
+    table = next(sign_grouped_slices(grouped, params, max(len(grouped.keys), 1)))
     return table, grouped.report
 
 
