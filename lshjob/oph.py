@@ -114,7 +114,7 @@ def _borrow(row, table, salt, i, k):
         a += 1
 
 
-ESTIMATE_ROWS = 65536
+ESTIMATE_ROWS = 65536  # rows at a time in the set size estimates (here and in signatures.py)
 
 
 def set_size_estimate(signatures: np.ndarray) -> np.ndarray:

@@ -213,12 +213,10 @@ def estimate_set_size(matrix: np.ndarray) -> np.ndarray:
     """
     k = matrix.shape[1]
     sums = np.empty(matrix.shape[0], dtype=np.float64)
-    for a in range(0, matrix.shape[0], ESTIMATE_ROWS):  # blocks: no full-size float copies
-        sums[a:a + ESTIMATE_ROWS] = ((matrix[a:a + ESTIMATE_ROWS].astype(np.float64) + 1.0) / 2.0**64).sum(axis=1)
+    step = oph.ESTIMATE_ROWS
+    for a in range(0, matrix.shape[0], step):  # blocks: no full-size float copies
+        sums[a:a + step] = ((matrix[a:a + step].astype(np.float64) + 1.0) / 2.0**64).sum(axis=1)
     return np.maximum(1.0, (k - 1) / sums)
-
-
-ESTIMATE_ROWS = 65536
 
 
 def merge_matrices(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -255,7 +253,8 @@ def merge_signatures(
     for t, _ in tables:
         matrices.append(signature_array(t))
     firsts = np.cumsum([0] + [t.height for t, _ in tables]).astype(np.int64)
-    matrix = _minimum_by_run(matrices, firsts, order["__row"].to_numpy().astype(np.int64), starts, lengths)
+    k = max(m.shape[1] for m in matrices)  # an empty table's matrix is 0 x 0
+    matrix = _minimum_by_run(matrices, firsts, order["__row"].to_numpy().astype(np.int64), starts, lengths, k)
     sizes = oph.set_size_estimate(matrix) if first_meta["scheme"] == "oph" else estimate_set_size(matrix)
     merged = order.select(keep).gather(starts).with_columns(
         signature_column(matrix),
@@ -268,10 +267,9 @@ READONLY_MATRIX = numba.types.Array(numba.types.uint64, 2, "C", readonly=True)
 
 
 @numba.njit(parallel=True, cache=True)
-def _minimum_by_run(matrices, firsts, rows, starts, lengths):
+def _minimum_by_run(matrices, firsts, rows, starts, lengths, k):
     """Row g of the result: the element-wise minimum of the rows ``rows[starts[g]:starts[g] +
     lengths[g]]`` of the stacked matrices (matrix t holds rows firsts[t]..firsts[t + 1] - 1)."""
-    k = matrices[0].shape[1]
     out = np.empty((starts.shape[0], k), dtype=np.uint64)
     for g in numba.prange(starts.shape[0]):
         row = out[g]
