@@ -27,7 +27,7 @@ from .signatures import (
     read_signatures,
     signature_meta,
     sign_sets,
-    signature_table,
+    signature_slices,
     signature_metadata,
     write_signatures,
 )
@@ -44,12 +44,12 @@ def sign_file(
 ) -> dict:
     """Ingest ``events``, sign every (entity[, segment][, period]) set, write ``out``.
 
-    One set per entity whose sets and signatures need more than half of ``memory`` (bytes;
-    default half the machine), or ``parts`` > 1, is signed a key range at a time
-    (:mod:`lshjob.parts`): the writer streams each range's signatures into ``out`` as the
-    range is signed, in key order. Unweighted sets are signed and written a slice at a time
-    in one part too. The signatures are the same. Returns a summary: counts from ingest, the
-    signature parameters and timings. Nothing is written when the input is rejected.
+    One set per entity is signed and written a slice of entities at a time, so the
+    signatures (8k bytes an entity at k=128) are never all held; when its sets need more
+    than half of ``memory`` (bytes; default half the machine), or ``parts`` > 1, it is also
+    read and grouped a key range at a time (:mod:`lshjob.parts`). The signatures are the
+    same either way. Returns a summary: counts from ingest, the signature parameters and
+    timings. Nothing is written when the input is rejected.
     """
     started = time.perf_counter()
     memory = memory or default_memory()
@@ -59,7 +59,7 @@ def sign_file(
     with progress.stage("ingest"):
         if spec.key_columns == ["entity"]:  # streaming loader: no group-by over (entity, element)
             source = open_events(events, spec)
-            ranges = parts_module.signing_ranges(source, params.perms, memory, parts, streamed=direct)
+            ranges = parts_module.signing_ranges(source, params.perms, memory, parts)
             if ranges is None and direct:
                 grouped = group_events(source, None)
             elif ranges is None:
@@ -70,34 +70,36 @@ def sign_file(
         return _sign_in_parts(source, ranges, out, spec, params, meta, progress, started)
     ingested = time.perf_counter()
     if direct:
-        return _sign_streamed(grouped, out, params, meta, progress, started, ingested)
+        made, n, report = (event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS),
+                           len(grouped.keys), grouped.report)
+    elif spec.key_columns == ["entity"]:
+        made, n = signature_slices(members, params, event_signing.SLICE_ROWS), members.size
+    if spec.key_columns == ["entity"]:
+        return _sign_streamed(made, n, report, out, params, meta, progress, started, ingested)
     with progress.stage("sign"):
-        if spec.key_columns == ["entity"]:
-            table = signature_table(members, params)
-        else:
-            table = sign_sets(sets, spec.key_columns, params)
+        table = sign_sets(sets, spec.key_columns, params)
     signed = time.perf_counter()
     write_signatures(table, out, meta)
     written = time.perf_counter()
     return _sign_summary(out, table.height, params, report, 1, started, ingested, signed, written)
 
 
-def _sign_streamed(grouped, out, params, meta, progress, started, ingested) -> dict:
-    """Sign the grouped events a slice at a time while the writer encodes the slices before:
-    the signatures (8k bytes an entity at k=128) are never all held, and there is no 1 GB
-    matrix to fault in per million entities. The file is the one writing at once gives."""
+def _sign_streamed(made, n, report, out, params, meta, progress, started, ingested) -> dict:
+    """Write the signature slices ``made`` (an iterator over the ``n`` sets' signatures) while
+    they are made: the writer encodes one slice while the next is signed, the signatures are
+    never all held, and there is no 1 GB matrix to fault in per million entities. The file is
+    the one writing at once gives."""
     seconds = {"sign": 0.0}
 
     def slices():
-        with progress.stage("sign", -(-len(grouped.keys) // event_signing.SLICE_ROWS)) as task:
-            made = event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)
+        with progress.stage("sign", -(-n // event_signing.SLICE_ROWS)) as task:
             for table in _timed(made, seconds, "sign"):
                 yield table
                 task.advance()
 
     rows = _write_in_parts(slices(), out, meta)
     signed = ingested + seconds["sign"]
-    return _sign_summary(out, rows, params, grouped.report, 1, started, ingested, signed, time.perf_counter())
+    return _sign_summary(out, rows, params, report, 1, started, ingested, signed, time.perf_counter())
 
 
 def _timed(items, seconds: dict, key: str):
@@ -131,14 +133,11 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
                     del grouped, made
                 else:
                     members, part = membership_of(source, selection)
-                    t1 = time.perf_counter()
-                    table = signature_table(members, params)
-                    del members
-                    seconds["ingest"] += t1 - t0
-                    seconds["sign"] += time.perf_counter() - t1
+                    seconds["ingest"] += time.perf_counter() - t0
+                    made = signature_slices(members, params, event_signing.SLICE_ROWS)
+                    yield from _timed(made, seconds, "sign")
                     report.add_part(part)
-                    yield table
-                    del table
+                    del members, made
                 task.advance()
         if report.sets == 0:
             raise InputError(f"{source.where}: no element is left after filtering (--min-count {spec.min_count}); "

@@ -122,18 +122,16 @@ def key_ranges(counts: pl.DataFrame, events: EventSource | None, budget: int, pa
 SIGNATURE_BYTES_PER_ENTITY = 40  # beside the 8k signature bytes: set size, key, list offsets
 
 
-def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | None = None,
-                   streamed: bool = False) -> list[EntitySelection] | None:
-    """Key ranges for ``lshjob sign`` when the events' sets and their signature table (8k
-    bytes and about 40 more an entity) need more than half the budget; None when one part
-    will do. The entities are counted (one more pass) only when a bound says they might not fit.
-
-    ``streamed``: the signatures are made and written a slice at a time (one unweighted set
-    per entity), so only the sets, about 40 bytes an entity and the slices in flight count."""
+def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | None = None) -> list[EntitySelection] | None:
+    """Key ranges for ``lshjob sign`` when the events' sets need more than half of what the
+    signature slices in flight to the writer leave of the budget; None when one part will do.
+    The signatures themselves are made and written a slice at a time, so each entity costs
+    only its key, set size and list offsets (about 40 bytes) beside its events. The entities
+    are counted (one more pass) only when a bound says they might not fit."""
     if parts == 1:
         return None
-    per_entity = (0 if streamed else 8 * perms) + SIGNATURE_BYTES_PER_ENTITY
-    usable = memory - (SLICES_IN_FLIGHT * SLICE_ROWS * 8 * perms if streamed else 0)
+    per_entity = SIGNATURE_BYTES_PER_ENTITY
+    usable = memory - SLICES_IN_FLIGHT * SLICE_ROWS * 8 * perms
     need = grouping_need(events)
     span = dense_span(events.report.entity_range, events.events) or events.events
     if parts is None and need + min(events.events, span) * per_entity <= ONE_PART_SHARE * usable:
@@ -141,11 +139,9 @@ def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | No
     counts = events_per_entity(events)
     if parts is None and need + counts.height * per_entity <= ONE_PART_SHARE * usable:
         return None
-    require_copy_budget(memory, f"{events.where}: the sets and signatures", "signing")
-    # the writer still encodes a range's signatures while the next range is grouped and
-    # signed: a range costs its grouping and twice its signatures (when they are held whole)
+    require_copy_budget(memory, f"{events.where}: the sets", "signing")
     return key_ranges(counts, events, part_budget(usable, counts.height, SIGN_PART_SHARE), parts,
-                      bytes_per_entity=2 * per_entity)
+                      bytes_per_entity=per_entity)
 
 
 def require_copy_budget(memory: int, what: str, doing: str) -> None:

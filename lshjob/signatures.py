@@ -28,6 +28,7 @@ import json
 import os
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Iterator
 
 import numba
 import numpy as np
@@ -141,12 +142,16 @@ def _membership_source(sets: Membership, ids: np.ndarray) -> tuple:
     return sets.offsets, sets.elements, table, np.ascontiguousarray(ids, dtype=np.int64)
 
 
-def signature_table(sets: Membership, params: SignatureParams) -> pl.DataFrame:
-    """The signature table (module contract, key ``entity``) of every set of a Membership."""
-    matrix = sign_membership(sets, np.arange(sets.size), params)
-    return pl.DataFrame({"entity": sets.keys}).with_columns(
-        signature_column(matrix), pl.Series("set_size", sets.set_sizes, dtype=pl.UInt32)
-    )
+def signature_slices(sets: Membership, params: SignatureParams, rows: int) -> Iterator[pl.DataFrame]:
+    """The signature table (module contract, key ``entity``) of every set of a Membership,
+    ``rows`` sets at a time (for a writer that streams them)."""
+    sizes = sets.set_sizes
+    for lo in range(0, max(sets.size, 1), max(rows, 1)):
+        hi = min(sets.size, lo + rows)
+        matrix = sign_membership(sets, np.arange(lo, hi), params)
+        yield pl.DataFrame({"entity": sets.keys.slice(lo, hi - lo)}).with_columns(
+            signature_column(matrix), pl.Series("set_size", sizes[lo:hi], dtype=pl.UInt32)
+        )
 
 
 def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:

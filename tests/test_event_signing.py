@@ -36,11 +36,13 @@ def test_signing_from_events_equals_signing_each_set(tmp_path, scheme, text):
     assert report.sets == 400 and report.membership_rows == truth["title"].list.len().sum()
 
 
+@pytest.mark.parametrize("weighted", [False, True])
 @pytest.mark.parametrize("scheme", ["kperm", "oph"])
-def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, monkeypatch, scheme):
+def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, monkeypatch, scheme, weighted):
     # Oracle: sign_element_lists over the Python sets of the events. `lshjob sign` signs and
     # writes 37 entities at a time here (uneven slices, the last one short); the file must
-    # hold every entity once, in key order, with the reference signatures and sizes.
+    # hold every entity once, in key order, with the reference signatures and sizes. Weighted
+    # (a count column, --min-count 2), the sets keep the elements whose counts sum to 2 or more.
     from lshjob import event_signing
     from lshjob.api import sign_file
     from lshjob.signatures import read_signatures
@@ -48,16 +50,22 @@ def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, 
     rng = np.random.default_rng(4)
     sizes = rng.integers(1, 60, size=300)
     events = pl.DataFrame({"patron": np.repeat(np.arange(300) * 7, sizes),
-                           "title": rng.integers(0, 2000, size=sizes.sum())})
+                           "title": rng.integers(0, 2000, size=sizes.sum()),
+                           "loans": rng.integers(1, 3, size=sizes.sum())})
     path = tmp_path / "loans.parquet"
     events.sample(fraction=1.0, shuffle=True, seed=3).write_parquet(path)
     params = SignatureParams(scheme=scheme, perms=32, seed=2)
     monkeypatch.setattr(event_signing, "SLICE_ROWS", 37)
-    summary = sign_file(path, tmp_path / "sig.parquet", EventSpec(entity="patron", element="title"), params)
+    spec = EventSpec(entity="patron", element="title", count="loans" if weighted else None,
+                     min_count=2 if weighted else 1)
+    summary = sign_file(path, tmp_path / "sig.parquet", spec, params)
     table, meta = read_signatures(tmp_path / "sig.parquet")
-    truth = events.group_by("patron").agg(pl.col("title").unique()).sort("patron")
+    kept = (events.group_by("patron", "title").agg(pl.col("loans").sum()).filter(pl.col("loans") >= 2)
+            if weighted else events)
+    truth = kept.group_by("patron").agg(pl.col("title").unique()).sort("patron")
     assert table["entity"].to_list() == truth["patron"].to_list()
     assert table["set_size"].to_list() == truth["title"].list.len().to_list()
     assert np.array_equal(signature_array(table), sign_element_lists(truth["title"].to_list(), params))
-    assert summary["signatures"] == 300 and summary["ingest"]["membership_rows"] == truth["title"].list.len().sum()
+    assert summary["signatures"] == truth.height > 250
+    assert summary["ingest"]["membership_rows"] == truth["title"].list.len().sum()
     assert meta["set_size"] == "exact" and not list(tmp_path.glob(".*"))

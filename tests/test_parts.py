@@ -269,13 +269,12 @@ def test_an_error_while_making_a_range_reaches_the_caller_and_nothing_is_written
 
 
 @pytest.mark.parametrize("weighted", [False, True])
-def test_signing_turns_to_parts_when_the_sets_or_signatures_would_not_fit(tmp_path, monkeypatch, weighted):
-    # Unweighted, the signatures are streamed to the file a slice at a time and only the sets
-    # count: 58,199 events x 20 bytes = 1.2 MB, more than half of the budget once that half
-    # (of what the slices leave: 1GiB - 4 x 64k x 2 KB = 512 MiB) is shrunk to 1 MB here.
-    # Weighted, the signatures are held: 2400 patrons x (8 x 256 + 40) bytes = 5 MB, more
-    # than a half shrunk to 4 MB. Either way the signing goes in parts by itself, and the
-    # CLI says so. Budgets below what the process itself takes are refused.
+def test_signing_turns_to_parts_when_the_sets_would_not_fit(tmp_path, monkeypatch, weighted):
+    # The signatures are streamed to the file a slice at a time and only the sets count:
+    # 58,199 events x 20 bytes (36 weighted) = 1.2 MB (2.1 MB), more than half of the budget
+    # once that half (of what the slices leave: 1GiB - 4 x 64k x 2 KB = 512 MiB) is shrunk to
+    # 1 MB here. So the signing goes in parts by itself, and the CLI says so. Budgets below
+    # what the process itself takes are refused.
     from typer.testing import CliRunner
 
     from lshjob.cli import app
@@ -285,7 +284,7 @@ def test_signing_turns_to_parts_when_the_sets_or_signatures_would_not_fit(tmp_pa
     args = ["sign", str(src), "--entity", "patron", "--element", "title", "--perms", "256", "--json", "--quiet"]
     args += ["--count", "loans"] if weighted else []
     whole = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "whole.parquet")])
-    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", (4e6 / 2**30) if weighted else (1e6 / 2**29))
+    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e6 / 2**29)
     monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 500_000)
     small = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "small.parquet"), "--memory", "1GiB"])
     assert whole.exit_code == 0 and small.exit_code == 0, small.output
