@@ -3,8 +3,10 @@
     python bench/sign_parts.py --entities 10000000 --memory 4GB
 
 Runs the command twice in fresh processes on the branch network of bench/common.py: with
-``--parts 1`` (every set and signature in memory at once, whatever that takes) and with
-``--memory M`` (key ranges when the sets and signatures need more than half of M). Reports
+``--parts 1`` (every set in memory at once, whatever that takes; the signatures are written
+a slice at a time either way) and with ``--memory M`` (key ranges when the sets need more
+than half of what the slices in flight leave of M). The input is read once first, so both
+runs find it in the page cache. Reports
 wall clock, the process's peak resident memory (from the command's own ``--json`` summary)
 and the seconds of each step; checks that both files hold the same signatures.
 """
