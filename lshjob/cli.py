@@ -40,7 +40,8 @@ AsJson = Annotated[bool, typer.Option("--json", help="Print the summary as JSON 
 
 
 def _fail_cleanly(func):
-    """Print lshjob's own errors as one line on stderr and exit 2 (no traceback)."""
+    """Print lshjob's own errors, and files that cannot be read or written, as one line on
+    stderr and exit 2 (no traceback)."""
 
     @wraps(func)
     def wrapper(*args, **kwargs):
@@ -48,6 +49,10 @@ def _fail_cleanly(func):
             return func(*args, **kwargs)
         except LshjobError as exc:
             typer.echo(f"error: {exc}", err=True)
+            raise typer.Exit(2)
+        except OSError as exc:  # an output folder that cannot be made, a full disk, no permission
+            where = exc.filename if exc.filename is not None else "a file"
+            typer.echo(f"error: {where}: {exc.strerror or exc}", err=True)
             raise typer.Exit(2)
 
     return wrapper

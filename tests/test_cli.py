@@ -57,3 +57,14 @@ def test_demo_writes_events_and_signatures(tmp_path):
     summary = json.loads(result.stdout)
     assert summary["sign"]["signatures"] == 300
     assert (tmp_path / "d" / "events.parquet").exists()
+
+
+def test_an_output_that_cannot_be_written_is_one_line_and_exit_2(tmp_path, small_events):
+    # An output folder under a regular file cannot be made: the message names the path, the
+    # exit code is 2 like every bad input, and no traceback is printed.
+    (tmp_path / "plain.txt").write_text("not a folder")
+    out = tmp_path / "plain.txt" / "sigs.parquet"
+    result = runner.invoke(app, ["sign", str(small_events), "--entity", "patron", "--element", "title",
+                                 "--out", str(out), "--quiet"])
+    assert result.exit_code == 2
+    assert f"error: {tmp_path / 'plain.txt'}" in result.output and "Traceback" not in result.output
