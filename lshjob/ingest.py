@@ -213,11 +213,9 @@ def _stats_from_footers(paths: list[Path], key_names: list[str], entity: str,
     what is needed, and no key is null (nulls are then found, and reported, by reading)."""
     if not all(p.suffix.lower() in (".parquet", ".pq") for p in paths):
         return None
-    signed = entity_type in (pl.Int8, pl.Int16, pl.Int32, pl.Int64)
-    if entity_type.is_integer() and not signed:
-        return None  # unsigned bounds are not decoded
-    found = footer_stats(paths, key_names, entity if signed else None)
-    if found is None or any(found["nulls"].values()) or (signed and found["rows"] and found["min"] is None):
+    integer = entity_type.is_integer()
+    found = footer_stats(paths, key_names, entity if integer else None, unsigned=integer and not entity_type.is_signed_integer())
+    if found is None or any(found["nulls"].values()) or (integer and found["rows"] and found["min"] is None):
         return None
     return pl.DataFrame({"rows": [found["rows"]], **{n: [0] for n in key_names}, "__any_null": [0],
                          "__entity_min": [found["min"]], "__entity_max": [found["max"]]})

@@ -116,11 +116,13 @@ def file_metadata(path: str | Path) -> dict:
         return _Reader(f.read(length)).struct()
 
 
-def footer_stats(paths: list[Path], columns: list[str], bounds: str | None) -> dict | None:
+def footer_stats(paths: list[Path], columns: list[str], bounds: str | None, unsigned: bool = False) -> dict | None:
     """Rows, null counts of ``columns`` and (for the INT32/INT64 column ``bounds``) its
     smallest and largest value over all files, from their footers: {"rows": int,
     "nulls": {column: int}, "min": int | None, "max": int | None}. None when any file
-    or column chunk lacks what is asked (the caller then reads the data)."""
+    or column chunk lacks what is asked (the caller then reads the data). ``unsigned``: the
+    column holds unsigned integers, whose ``min_value``/``max_value`` follow the unsigned
+    order (parquet.thrift, ColumnOrder) and are read as unsigned."""
     rows, nulls, low, high = 0, dict.fromkeys(columns, 0), None, None
     try:
         for path in paths:
@@ -145,7 +147,7 @@ def footer_stats(paths: list[Path], columns: list[str], bounds: str | None) -> d
                             return None
                         if stats.get(7) is False or stats.get(8) is False:
                             return None
-                        fmt = "<i" if info[1] == INT32 else "<q"
+                        fmt = ("<I" if unsigned else "<i") if info[1] == INT32 else ("<Q" if unsigned else "<q")
                         lo, hi = struct.unpack(fmt, stats[6])[0], struct.unpack(fmt, stats[5])[0]
                         low = lo if low is None else min(low, lo)
                         high = hi if high is None else max(high, hi)
