@@ -22,7 +22,7 @@ import polars as pl
 
 from . import __version__, parts, planner, prepare
 from .errors import ParameterError
-from .ingest import EventSpec
+from .ingest import EventSpec, resolve_paths
 from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
 from .loading import grouping_need, open_events
 from .progress import QUIET, StageProgress
@@ -129,9 +129,11 @@ def run_job(
     counts: dict[str, object] = {}
     started = time.perf_counter()
     try:
+        # started first: reading and hashing the files (no GIL) fills the other core while the
+        # process's first compiled call loads numba's registries (GIL-bound) during the checks
+        digest = _digest_in_background([str(p) for p in resolve_paths(events)[0]])
         with stages("ingest"):
             source = open_events(events, spec)
-        digest = _digest_in_background(source.report.files)
         in_parts = (options.parts or 0) > 1 or (
             options.parts is None and grouping_need(source) > parts.ONE_PART_SHARE * memory)
         built = (prepare.in_parts if in_parts else prepare.in_one_part)(source, options, memory, work, stages)
