@@ -26,7 +26,7 @@ from .signatures import (
     params_from_metadata,
     read_signatures,
     signature_meta,
-    sign_sets,
+    sign_sets_slices,
     signature_slices,
     signature_metadata,
     write_signatures,
@@ -44,10 +44,10 @@ def sign_file(
 ) -> dict:
     """Ingest ``events``, sign every (entity[, segment][, period]) set, write ``out``.
 
-    One set per entity is signed and written a slice of entities at a time, so the
-    signatures (8k bytes an entity at k=128) are never all held; when its sets need more
-    than half of ``memory`` (bytes; default half the machine), or ``parts`` > 1, it is also
-    read and grouped a key range at a time (:mod:`lshjob.parts`). The signatures are the
+    Sets are signed and written a slice at a time, so the signatures (8k bytes a set at
+    k=128) are never all held. One set per entity whose sets need more than half of
+    ``memory`` (bytes; default half the machine), or ``parts`` > 1, is also read and grouped
+    a key range at a time (:mod:`lshjob.parts`). The signatures are the
     same either way. Returns a summary: counts from ingest, the signature parameters and
     timings. Nothing is written when the input is rejected.
     """
@@ -74,14 +74,9 @@ def sign_file(
                            len(grouped.keys), grouped.report)
     elif spec.key_columns == ["entity"]:
         made, n = signature_slices(members, params, event_signing.SLICE_ROWS), members.size
-    if spec.key_columns == ["entity"]:
-        return _sign_streamed(made, n, report, out, params, meta, progress, started, ingested)
-    with progress.stage("sign"):
-        table = sign_sets(sets, spec.key_columns, params)
-    signed = time.perf_counter()
-    write_signatures(table, out, meta)
-    written = time.perf_counter()
-    return _sign_summary(out, table.height, params, report, 1, started, ingested, signed, written)
+    else:
+        made, n = sign_sets_slices(sets, spec.key_columns, params, event_signing.SLICE_ROWS), report.sets
+    return _sign_streamed(made, n, report, out, params, meta, progress, started, ingested)
 
 
 def _sign_streamed(made, n, report, out, params, meta, progress, started, ingested) -> dict:

@@ -168,16 +168,25 @@ def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:
 
 def sign_sets(sets: pl.DataFrame, keys: list[str], params: SignatureParams) -> pl.DataFrame:
     """Membership rows (ingest contract, sorted by keys) -> signature table (module contract)."""
-    h0 = element_hashes(sets.get_column("element"))
+    return next(sign_sets_slices(sets, keys, params, max(sets.height, 1)))
+
+
+def sign_sets_slices(sets: pl.DataFrame, keys: list[str], params: SignatureParams,
+                     rows: int) -> Iterator[pl.DataFrame]:
+    """:func:`sign_sets`, ``rows`` sets at a time (for a writer that streams them)."""
+    h0 = np.ascontiguousarray(element_hashes(sets.get_column("element")), dtype=np.uint64)
     sizes = run_lengths(sets, keys)
     offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
     np.cumsum(sizes, out=offsets[1:])
-    matrix = signature_matrix(h0, offsets, params)
     key_frame = sets.select(keys).gather(offsets[:-1])
-    return key_frame.with_columns(
-        signature_column(matrix),
-        pl.Series("set_size", sizes, dtype=pl.UInt32),
-    )
+    n = len(sizes)
+    for lo in range(0, max(n, 1), max(rows, 1)):
+        hi = min(n, lo + rows)
+        matrix = _sign(offsets, np.empty(0, dtype=np.int64), h0, np.arange(lo, hi), params, False)
+        yield key_frame.slice(lo, hi - lo).with_columns(
+            signature_column(matrix),
+            pl.Series("set_size", sizes[lo:hi], dtype=pl.UInt32),
+        )
 
 
 def run_lengths(table: pl.DataFrame, keys: list[str]) -> np.ndarray:
