@@ -7,7 +7,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import polars as pl
-from polars.io.plugins import register_io_source
 
 from . import event_signing, planner, similarity
 from .errors import InputError, ParameterError
@@ -15,10 +14,10 @@ from . import parts as parts_module
 from .ingest import EventSpec, IngestReport, load_sets
 from .loading import group_events, membership_of, open_events
 from .resources import default_memory, peak_bytes
+from .streaming import timed, write_streamed
 from .planner import PairHistogram
 from .progress import QUIET, StageProgress
 from .signatures import (
-    SIGNATURE_ROW_GROUP,
     SignatureParams,
     check_compatible,
     merge_signatures,
@@ -88,25 +87,13 @@ def _sign_streamed(made, n, report, out, params, meta, progress, started, ingest
 
     def slices():
         with progress.stage("sign", -(-n // event_signing.SLICE_ROWS)) as task:
-            for table in _timed(made, seconds, "sign"):
+            for table in timed(made, seconds, "sign"):
                 yield table
                 task.advance()
 
-    rows = _write_in_parts(slices(), out, meta)
+    rows = write_streamed(slices(), out, meta)
     signed = ingested + seconds["sign"]
     return _sign_summary(out, rows, params, report, 1, started, ingested, signed, time.perf_counter())
-
-
-def _timed(items, seconds: dict, key: str):
-    """Yield from ``items``, adding the time spent making each item to ``seconds[key]``."""
-    items = iter(items)
-    while True:
-        start = time.perf_counter()
-        item = next(items, None)
-        seconds[key] += time.perf_counter() - start
-        if item is None:
-            return
-        yield item
 
 
 def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -> dict:
@@ -123,14 +110,14 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
                     grouped = group_events(source, selection)
                     seconds["ingest"] += time.perf_counter() - t0
                     made = event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)
-                    yield from _timed(made, seconds, "sign")  # a slice at a time, as in one part
+                    yield from timed(made, seconds, "sign")  # a slice at a time, as in one part
                     report.add_part(grouped.report)
                     del grouped, made
                 else:
                     members, part = membership_of(source, selection)
                     seconds["ingest"] += time.perf_counter() - t0
                     made = signature_slices(members, params, event_signing.SLICE_ROWS)
-                    yield from _timed(made, seconds, "sign")
+                    yield from timed(made, seconds, "sign")
                     report.add_part(part)
                     del members, made
                 task.advance()
@@ -138,57 +125,10 @@ def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -
             raise InputError(f"{source.where}: no element is left after filtering (--min-count {spec.min_count}); "
                              "nothing to sign")
 
-    rows = _write_in_parts(tables(), out, meta)
+    rows = write_streamed(tables(), out, meta)
     ingested = started + seconds["ingest"]
     signed = ingested + seconds["sign"]
     return _sign_summary(out, rows, params, report, len(ranges), started, ingested, signed, time.perf_counter())
-
-
-def _write_in_parts(tables, out, meta: dict) -> int:
-    """Stream the tables of ``tables`` (an iterator: one key range's rows at a time, in key
-    order) into the signature file ``out``. The writer pulls each range's table when it needs
-    rows (a polars IO source), so one range is held at a time and nothing goes through
-    intermediate files (copying the ranges' files into one took about five times as long;
-    measured). Returns the rows written. An error raised while making a range's table is
-    raised as it is, not as polars' wrapping of it."""
-    pending = iter(tables)
-    first = next(pending)  # its schema is the file's
-    schema = first.schema
-    held = [first]
-    del first
-    rows = [0]
-    calls = [0]
-    failure: list[BaseException] = []
-
-    def source(with_columns, predicate, n_rows, batch_size):
-        calls[0] += 1
-        if calls[0] > 1:  # the ranges can be made once only
-            raise RuntimeError("the signature writer asked for the key ranges twice")
-        try:
-            table = held.pop()
-            while table is not None:
-                rows[0] += table.height
-                if predicate is not None:
-                    table = table.filter(predicate)
-                if with_columns is not None:
-                    table = table.select(with_columns)
-                # a row group at a time: polars asks for the next range while it still
-                # encodes, and by then holds only the last slices of this one
-                for start in range(0, table.height, SIGNATURE_ROW_GROUP):
-                    yield table.slice(start, SIGNATURE_ROW_GROUP)
-                table = None  # let the range written go before the next is made
-                table = next(pending, None)
-        except Exception as exc:
-            failure.append(exc)
-            raise
-
-    try:
-        write_signatures(register_io_source(source, schema=schema), out, meta)
-    except Exception:
-        if failure:
-            raise failure[0] from None
-        raise
-    return rows[0]
 
 
 def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, written) -> dict:
@@ -263,7 +203,7 @@ def merge_files(
 
     for meta in metas[1:]:
         check_compatible(metas[0], meta)  # before any range is read
-    written = _write_in_parts(tables(), out, merged_meta(metas[0], keep))
+    written = write_streamed(tables(), out, merged_meta(metas[0], keep))
     return _merge_summary(out, sources, seen[0], written, keep, len(ranges))
 
 

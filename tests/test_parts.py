@@ -249,7 +249,7 @@ def test_signing_in_parts_gives_the_same_signatures(tmp_path, integer_patrons, s
 def test_an_error_while_making_a_range_reaches_the_caller_and_nothing_is_written(tmp_path):
     # The writer pulls the ranges' tables through polars; an error in the second range must
     # come out as the error raised (not polars' wrapping of it), and leave no file behind.
-    from lshjob.api import _write_in_parts
+    from lshjob.streaming import write_streamed
     from lshjob.errors import InputError
     from lshjob.signatures import signature_column
 
@@ -261,9 +261,9 @@ def test_an_error_while_making_a_range_reaches_the_caller_and_nothing_is_written
         raise InputError("loans.parquet: column 'patron' changed while being read")
 
     with pytest.raises(InputError, match="column 'patron' changed"):
-        _write_in_parts(ranges(), tmp_path / "out.parquet", {"scheme": "kperm"})
+        write_streamed(ranges(), tmp_path / "out.parquet", {"scheme": "kperm"})
     assert not list(tmp_path.iterdir())
-    assert _write_in_parts(iter([table, table.with_columns(entity=pl.Series([3, 4]))]),
+    assert write_streamed(iter([table, table.with_columns(entity=pl.Series([3, 4]))]),
                            tmp_path / "out.parquet", {"scheme": "kperm"}) == 4
     assert pl.read_parquet(tmp_path / "out.parquet")["entity"].to_list() == [1, 2, 3, 4]
 
