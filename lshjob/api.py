@@ -46,9 +46,9 @@ def sign_file(
     Sets are signed and written a slice at a time, so the signatures (8k bytes a set at
     k=128) are never all held. One set per entity whose sets need more than half of
     ``memory`` (bytes; default half the machine), or ``parts`` > 1, is also read and grouped
-    a key range at a time (:mod:`lshjob.parts`). The signatures are the
-    same either way. Returns a summary: counts from ingest, the signature parameters and
-    timings. Nothing is written when the input is rejected.
+    a key range at a time (:mod:`lshjob.parts`). The signatures are the same either way.
+    Returns a summary: counts from ingest, the signature parameters and timings. Nothing is
+    written when the input is rejected.
     """
     started = time.perf_counter()
     memory = memory or default_memory()
