@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import importlib
 import json
 import os
 import sys
@@ -325,6 +326,7 @@ def entry_point() -> None:
     """Console script ``lshjob``. Ends the process without the interpreter's teardown, after
     flushing: unloading numba's compiled code at exit costs about 0.3 s a command (measured),
     and by then every output is written, closed and renamed into place."""
+    _skip_blas_probe()
     try:
         app()
         code = 0
@@ -339,6 +341,26 @@ def entry_point() -> None:
         except OSError:  # a reader that closed the pipe early (lshjob ... | head)
             pass
     os._exit(code or 0)
+
+
+def _skip_blas_probe() -> None:
+    """Spare this process numba's check for a BLAS. When numba first compiles or loads compiled
+    code, it imports ``scipy.linalg`` (when scipy is installed, as datasketch requires) only to
+    learn whether ``np.dot`` can use a BLAS: 0.2 s of every command, measured, and on the path
+    of the first compiled call. lshjob's compiled code does no linear algebra, so the module
+    that probes is loaded here with that import made to fail; numba then takes its plain loops
+    for the two functions that ask (``np.correlate``, ``np.convolve``), and any other linear
+    algebra still finds scipy as usual. Only in the ``lshjob`` process: a program that imports
+    lshjob keeps numba as it is."""
+    probe, blas = "numba.np.arraymath", "scipy.linalg.cython_blas"
+    if probe in sys.modules or blas in sys.modules:
+        return
+    sys.modules[blas] = None  # a None entry makes `import` raise ImportError
+    try:
+        importlib.import_module(probe)
+    finally:
+        if sys.modules.get(blas, 0) is None:
+            del sys.modules[blas]
 
 
 if __name__ == "__main__":

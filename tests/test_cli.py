@@ -68,3 +68,29 @@ def test_an_output_that_cannot_be_written_is_one_line_and_exit_2(tmp_path, small
                                  "--out", str(out), "--quiet"])
     assert result.exit_code == 2
     assert f"error: {tmp_path / 'plain.txt'}" in result.output and "Traceback" not in result.output
+
+
+def test_the_command_skips_numbas_blas_probe_and_leaves_linear_algebra_working():
+    # In a fresh process, as the `lshjob` command starts: numba's first compiled call must
+    # not import scipy.linalg (0.2 s a command, measured), lshjob's kernels must still load,
+    # and numba code that does linear algebra, and scipy.linalg itself, must still work.
+    import subprocess
+    import sys
+
+    script = """
+import sys
+from lshjob.cli import _skip_blas_probe
+_skip_blas_probe()
+import numba, numpy as np
+from lshjob import grouping
+table = np.array([0, 1, 2], dtype=np.int64)
+assert list(grouping.lookup(table, 10, np.array([12, 10], dtype=np.int64))) == [2, 0]
+assert "scipy.linalg" not in sys.modules, "the probe imported scipy.linalg"
+assert "scipy.linalg.cython_blas" not in sys.modules, "the blocking entry was left behind"
+dot = numba.njit(lambda a, b: np.dot(a, b))
+assert dot(np.ones((2, 3)), np.ones(3)).tolist() == [3.0, 3.0]
+import scipy.linalg
+assert scipy.linalg.det(np.eye(2)) == 1.0
+"""
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr[-2000:]
