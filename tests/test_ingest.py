@@ -251,3 +251,31 @@ def test_the_two_pass_reader_gives_the_same_sets_on_one_thread_and_on_several(tm
         numba.set_num_threads(before)
     assert many.keys.to_list() == one.keys.to_list()
     assert np.array_equal(many.offsets, one.offsets) and np.array_equal(many.elements, one.elements)
+
+
+def test_batches_are_cut_where_the_row_groups_end_and_lose_no_row(tmp_path, monkeypatch):
+    # Oracle: the file itself. Row groups of 100 rows and batches of 1000 rows: every piece
+    # must hold each column in one chunk (so to_numpy is a view, not a copy), and the pieces
+    # together must be the file's rows (each once), and the sets loaded from them the sets
+    # of a Python dict.
+    import lshjob.loading as loading
+
+    rng = np.random.default_rng(8)
+    events = pl.DataFrame({"patron": rng.integers(0, 400, 5000), "title": rng.integers(0, 90, 5000)})
+    path = tmp_path / "loans.parquet"
+    events.write_parquet(path, row_group_size=100)
+    monkeypatch.setattr(loading, "BATCH_ROWS", 1000)
+    pieces = list(loading.batches(pl.scan_parquet(path), ["patron", "title"]))
+    assert len(pieces) > 5000 // 1000  # cut within batches
+    for piece in pieces:
+        assert piece["patron"].n_chunks() == 1 and piece["title"].n_chunks() == 1
+        assert not piece["patron"].to_numpy().flags.owndata  # a view of polars' buffer
+    together = pl.concat(pieces).sort("patron", "title")
+    assert together.equals(events.sort("patron", "title"))
+    sets, _ = loading.load_membership(path, EventSpec(entity="patron", element="title"))
+    truth: dict[int, set[int]] = {}
+    for a, b in events.iter_rows():
+        truth.setdefault(a, set()).add(b)
+    assert sets.keys.to_list() == sorted(truth)
+    assert all(sets.elements[sets.offsets[i]:sets.offsets[i + 1]].tolist() == sorted(truth[key])
+               for i, key in enumerate(sets.keys.to_list()))
