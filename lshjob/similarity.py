@@ -143,23 +143,63 @@ def restricted_index(sets: Membership, wanted: np.ndarray) -> tuple[np.ndarray, 
     """Each entity's elements that are among ``wanted`` codes, renumbered 0..len(wanted)-1:
     (offsets, dense ids, number of ids). Pairing sampled entities with all entities needs
     only the elements the sampled sets hold."""
-    wanted = np.unique(wanted)
-    keep = pl.Series(sets.elements).is_in(pl.Series(wanted).implode()).to_numpy()
-    offsets = _kept_offsets(sets.offsets, keep)
-    dense = np.searchsorted(wanted, sets.elements[keep]).astype(np.int64)
+    wanted = np.unique(np.asarray(wanted, dtype=np.int64))
+    offsets, dense = _restricted(sets.offsets, sets.elements, wanted)
     return offsets, dense, len(wanted)
 
 
+GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+
+
 @numba.njit(parallel=True, cache=True)
-def _kept_offsets(offsets, keep):
+def _restricted(offsets, elements, wanted):
+    """:func:`restricted_index` in two passes, both cores: count each set's wanted elements,
+    then write the dense ids of the sets that hold any (at 1M sets, 13k of them).
+    Most elements are not wanted (0.3M of 40M at 1M): a bitmap of the wanted codes'
+    multiplicative hashes (16 bits or more per wanted code, so a few percent of the rest
+    pass) rules them out, and a binary search in ``wanted`` (sorted) settles the rest and
+    gives the dense id. Twice as fast as polars' ``is_in`` with numpy indexing (0.10 s
+    against 0.22 s at 1M, measured)."""
+    bits = 6
+    while (1 << bits) < 16 * len(wanted):
+        bits += 1
+    shift = np.uint64(64 - bits)
+    bitmap = np.zeros(1 << (bits - 6), dtype=np.uint64)
+    for x in wanted:
+        h = (np.uint64(x) * GOLDEN) >> shift
+        bitmap[h >> np.uint64(6)] |= np.uint64(1) << (h & np.uint64(63))
     n = len(offsets) - 1
     counts = np.zeros(n + 1, dtype=np.int64)
     for i in numba.prange(n):
         c = 0
         for j in range(offsets[i], offsets[i + 1]):
-            c += keep[j]
+            if _wanted_id(elements[j], wanted, bitmap, shift) >= 0:
+                c += 1
         counts[i + 1] = c
-    return np.cumsum(counts)
+    kept = np.cumsum(counts)
+    dense = np.empty(kept[-1], dtype=np.int64)
+    for i in numba.prange(n):
+        at = kept[i]
+        if kept[i + 1] == at:  # most sets hold no wanted element: not read again
+            continue
+        for j in range(offsets[i], offsets[i + 1]):
+            p = _wanted_id(elements[j], wanted, bitmap, shift)
+            if p >= 0:
+                dense[at] = p
+                at += 1
+    return kept, dense
+
+
+@numba.njit(inline="always")
+def _wanted_id(x, wanted, bitmap, shift):
+    """Position of ``x`` in ``wanted``, or -1."""
+    h = (np.uint64(x) * GOLDEN) >> shift
+    if not (bitmap[h >> np.uint64(6)] >> (h & np.uint64(63))) & np.uint64(1):
+        return -1
+    p = np.searchsorted(wanted, x)
+    if p < len(wanted) and wanted[p] == x:
+        return p
+    return -1
 
 
 def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:

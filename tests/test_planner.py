@@ -204,3 +204,30 @@ def test_plan_judges_a_given_banding(tmp_path, demo_events):
                                  "--element", "title", "--perms", "64", "--bands", "2", "--rows", "32", "--json"])
     out = json.loads(result.stdout)
     assert out["chosen"]["meets_target"] is False and out["runners_up"][0]["meets_target"] is True
+
+
+@pytest.mark.parametrize("share", [0.0, 0.02, 0.5, 1.0])
+def test_restricted_index_keeps_exactly_the_wanted_elements(share):
+    # Oracle: numpy's isin and searchsorted, set by set. Codes span the whole int64 range
+    # (negative, extreme) and repeat across sets; from no element wanted to all of them.
+    from lshjob.membership import Membership
+    from lshjob.similarity import restricted_index
+
+    rng = np.random.default_rng(31)
+    pool = np.concatenate([rng.integers(-2**63, 2**63 - 1, 3000, dtype=np.int64),
+                           np.array([-2**63, 2**63 - 1, 0, -1], dtype=np.int64)])
+    sizes = rng.integers(0, 40, 700)
+    offsets = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+    elements = rng.choice(pool, offsets[-1])
+    sets = Membership(pl.Series("entity", np.arange(700)), offsets, elements, None)
+    wanted = rng.choice(pool, int(share * len(pool))) if share < 1 else pool
+
+    got_offsets, got_dense, n_ids = restricted_index(sets, wanted)
+
+    uniq = np.unique(wanted)
+    assert n_ids == len(uniq)
+    for i in range(700):
+        mine = elements[offsets[i]:offsets[i + 1]]
+        kept = mine[np.isin(mine, uniq)]
+        assert got_offsets[i + 1] - got_offsets[i] == len(kept)
+        assert got_dense[got_offsets[i]:got_offsets[i + 1]].tolist() == np.searchsorted(uniq, kept).tolist()
