@@ -11,7 +11,8 @@ import polars as pl
 from . import event_signing, planner, similarity
 from .errors import InputError, ParameterError
 from . import parts as parts_module
-from .ingest import EventSpec, IngestReport, load_sets
+from .ingest import EventSpec, IngestReport, load_sets, validated_events
+from .ingest import group_events as group_sets
 from .loading import group_events, membership_of, open_events
 from .resources import default_memory, peak_bytes
 from .streaming import timed, write_streamed
@@ -44,9 +45,11 @@ def sign_file(
     """Ingest ``events``, sign every (entity[, segment][, period]) set, write ``out``.
 
     Sets are signed and written a slice at a time, so the signatures (8k bytes a set at
-    k=128) are never all held. One set per entity whose sets need more than half of
-    ``memory`` (bytes; default half the machine), or ``parts`` > 1, is also read and grouped
-    a key range at a time (:mod:`lshjob.parts`). The signatures are the same either way.
+    k=128) are never all held. Sets that need more than half of ``memory`` (bytes; default
+    half the machine) to group, or ``parts`` > 1, are also read and grouped an entity key
+    range at a time (:mod:`lshjob.parts`): one set per entity by the streaming loader (8 to
+    36 bytes an event), with segments or periods by polars (about 230). The signatures are
+    the same either way.
     Returns a summary: counts from ingest, the signature parameters and timings. Nothing is
     written when the input is rejected.
     """
@@ -64,9 +67,17 @@ def sign_file(
             elif ranges is None:
                 members, report = membership_of(source, None)
         else:
-            sets, report = load_sets(events, spec)
+            frame, report, where = validated_events(events, spec)
+            ranges = parts_module.keyed_signing_ranges(frame, report.rows_read - report.null_rows_dropped, where,
+                                                       params.perms, memory, parts)
+            if ranges is None:
+                sets = group_sets(frame, spec, where, report)
+    if ranges is not None and spec.key_columns == ["entity"]:
+        return _sign_in_parts(ranges, _entity_part(source, spec, params), source.report, source.where, spec, out,
+                              params, meta, progress, started)
     if ranges is not None:
-        return _sign_in_parts(source, ranges, out, spec, params, meta, progress, started)
+        return _sign_in_parts(ranges, _keyed_part(frame, spec, where, params), report, where, spec, out, params,
+                              meta, progress, started)
     ingested = time.perf_counter()
     if direct:
         made, n, report = (event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS),
@@ -96,39 +107,55 @@ def _sign_streamed(made, n, report, out, params, meta, progress, started, ingest
     return _sign_summary(out, rows, params, report, 1, started, ingested, signed, time.perf_counter())
 
 
-def _sign_in_parts(source, ranges, out, spec, params, meta, progress, started) -> dict:
-    report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
-                          null_rows_dropped=source.report.null_rows_dropped)
-    direct = event_signing.applies(spec)
+def _sign_in_parts(ranges, sign_part, files_report, where, spec, out, params, meta, progress, started) -> dict:
+    """Sign and write the sets a key range at a time: ``sign_part(selection)`` groups the
+    range's events and returns its signature slices and its ingest report (complete once the
+    slices are made); each slice goes to the writer as it is made."""
+    report = IngestReport(files=files_report.files, rows_read=files_report.rows_read,
+                          null_rows_dropped=files_report.null_rows_dropped)
     seconds = {"ingest": time.perf_counter() - started, "sign": 0.0}
 
     def tables():
         with progress.stage("sign", len(ranges)) as task:
             for selection in ranges:
                 t0 = time.perf_counter()
-                if direct:
-                    grouped = group_events(source, selection)
-                    seconds["ingest"] += time.perf_counter() - t0
-                    made = event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)
-                    yield from timed(made, seconds, "sign")  # a slice at a time, as in one part
-                    report.add_part(grouped.report)
-                    del grouped, made
-                else:
-                    members, part = membership_of(source, selection)
-                    seconds["ingest"] += time.perf_counter() - t0
-                    made = signature_slices(members, params, event_signing.SLICE_ROWS)
-                    yield from timed(made, seconds, "sign")
-                    report.add_part(part)
-                    del members, made
+                made, part = sign_part(selection)
+                seconds["ingest"] += time.perf_counter() - t0
+                yield from timed(made, seconds, "sign")  # a slice at a time, as in one part
+                report.add_part(part)
+                del made
                 task.advance()
         if report.sets == 0:
-            raise InputError(f"{source.where}: no element is left after filtering (--min-count {spec.min_count}); "
+            raise InputError(f"{where}: no element is left after filtering (--min-count {spec.min_count}); "
                              "nothing to sign")
 
     rows = write_streamed(tables(), out, meta)
     ingested = started + seconds["ingest"]
     signed = ingested + seconds["sign"]
     return _sign_summary(out, rows, params, report, len(ranges), started, ingested, signed, time.perf_counter())
+
+
+def _entity_part(source, spec, params):
+    """One set per entity: the streaming loader's selection, signed as in one part."""
+    def sign_part(selection):
+        if event_signing.applies(spec):
+            grouped = group_events(source, selection)
+            return event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS), grouped.report
+        members, part = membership_of(source, selection)
+        return signature_slices(members, params, event_signing.SLICE_ROWS), part
+    return sign_part
+
+
+def _keyed_part(frame, spec, where, params):
+    """Segments or periods: polars groups the range's events into sets (a range may have
+    none left after ``--min-count``; only all of them empty is an error)."""
+    def sign_part(selection):
+        part = IngestReport(files=[], rows_read=selection.events)
+        sets = group_sets(frame.filter(selection.condition), spec, where, part, allow_empty=True)
+        if sets.height == 0:
+            return iter(()), part
+        return sign_sets_slices(sets, spec.key_columns, params, event_signing.SLICE_ROWS), part
+    return sign_part
 
 
 def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, written) -> dict:

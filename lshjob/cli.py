@@ -95,8 +95,8 @@ def sign(
     scheme: Annotated[str, typer.Option(help="kperm (k hashes per element) or oph (one hash, densified).")] = "kperm",
     seed: Annotated[int, typer.Option(help="Seed of the hash family.")] = 1,
     on_null: Annotated[str, typer.Option(help="Null keys: 'error' or 'drop' the row.")] = "error",
-    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; one set per entity that does not fit is signed a key range at a time.  [default: half the machine]")] = None,
-    parts: Annotated[Optional[int], typer.Option(help="Sign the entities in this many key ranges, one at a time (one set per entity).")] = None,
+    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are grouped and signed an entity key range at a time.  [default: half the machine]")] = None,
+    parts: Annotated[Optional[int], typer.Option(help="Sign the entities in this many key ranges, one at a time.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:

@@ -221,15 +221,17 @@ def _stats_from_footers(paths: list[Path], key_names: list[str], entity: str,
                          "__entity_min": [found["min"]], "__entity_max": [found["max"]]})
 
 
-def group_events(frame: pl.LazyFrame, spec: EventSpec, where: str, report: IngestReport) -> pl.DataFrame:
-    """Events -> membership rows (module contract); adds its counts to ``report``."""
+def group_events(frame: pl.LazyFrame, spec: EventSpec, where: str, report: IngestReport,
+                 allow_empty: bool = False) -> pl.DataFrame:
+    """Events -> membership rows (module contract); adds its counts to ``report``. With
+    ``allow_empty`` (one key range of many), no row left after ``--min-count`` is no error."""
     keys = spec.key_columns
     try:
         grouped = frame.group_by([*keys, "element"]).agg(pl.col("weight").sum()).collect()
     except pl.exceptions.PolarsError as exc:
         raise InputError(f"{where}: could not read the events: {_short(exc)}") from exc
     sets = grouped.filter(pl.col("weight") >= spec.min_count).sort(keys)
-    if sets.height == 0:
+    if sets.height == 0 and not allow_empty:
         raise InputError(
             f"{where}: no element is left after filtering (--min-count {spec.min_count}); "
             "nothing to sign"

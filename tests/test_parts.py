@@ -364,3 +364,67 @@ def test_merging_in_parts_gives_the_same_rows(tmp_path, demo_events, keep, monke
     monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 300_000)
     auto = merge_files(files, tmp_path / "auto.parquet", keys, since="2026-03-01", until="2026-10-31")
     assert auto["parts"] > 1 and pl.read_parquet(tmp_path / "auto.parquet").equals(a)
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+@pytest.mark.parametrize("integer_patrons", [False, True])
+def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatch, weighted, integer_patrons):
+    # Oracle: sign_element_lists (the reference signer, checked against datasketch in
+    # test_signatures.py) over each (patron, branch, month)'s titles, grouped here by polars
+    # from the raw loans. In three key ranges, and in ranges chosen by a budget the sets do
+    # not fit, the file must hold exactly those signatures in key order, with the counts of
+    # signing in one part; weighted (--count, --min-count 2), some sets are emptied.
+    from typer.testing import CliRunner
+
+    from lshjob.api import sign_file
+    from lshjob.cli import app
+    from lshjob.signatures import SignatureParams, read_signatures, sign_element_lists, signature_array
+
+    events = demo_events[0]
+    if integer_patrons:
+        events = events.with_columns(patron=pl.col("patron").str.slice(1).cast(pl.Int64) * 7)
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    spec = EventSpec(entity="patron", element="title", segment="branch", time="borrowed_at", period="month",
+                     count="loans" if weighted else None, min_count=2 if weighted else 1)
+    params = SignatureParams(scheme="oph", perms=32, seed=4)
+
+    one = sign_file(src, tmp_path / "one.parquet", spec, params)
+    three = sign_file(src, tmp_path / "three.parquet", spec, params, parts=3)
+
+    kept = (events.with_columns(period=pl.col("borrowed_at").dt.truncate("1mo").dt.date())
+            .group_by("patron", "branch", "period", "title").agg(pl.col("loans").sum() if weighted else pl.len())
+            .filter(pl.col("loans" if weighted else "len") >= (2 if weighted else 1)))
+    truth = kept.group_by("patron", "branch", "period").agg("title").sort("patron", "branch", "period")
+    table, _ = read_signatures(tmp_path / "three.parquet")
+    assert one["parts"] == 1 and three["parts"] == 3 and three["ingest"] == one["ingest"]
+    assert table.select("entity", "segment", "period").rows() == truth.select("patron", "branch", "period").rows()
+    assert np.array_equal(signature_array(table), sign_element_lists(truth["title"].to_list(), params))
+    assert table["set_size"].to_list() == truth["title"].list.len().to_list()
+    assert read_signatures(tmp_path / "one.parquet")[0].equals(table)
+    assert (one["ingest"]["empty_after_filter"] > 0) == weighted
+
+    # 23k loans at 256 bytes do not fit half of a budget shrunk to 1 MB: 6 parts of 1 MB or less
+    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e6 / 2**29)
+    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 1_000_000)
+    args = ["sign", str(src), "--entity", "patron", "--element", "title", "--segment", "branch", "--time",
+            "borrowed_at", "--period", "month", "--scheme", "oph", "--perms", "32", "--seed", "4", "--json",
+            "--quiet", "--memory", "1GiB", "--out", str(tmp_path / "small.parquet")]
+    args += ["--count", "loans", "--min-count", "2"] if weighted else []
+    small = CliRunner().invoke(app, args)
+    assert small.exit_code == 0, small.output
+    assert json.loads(small.output)["parts"] == -(-events.height * parts_module.KEYED_BYTES_PER_EVENT // 1_000_000)
+    assert read_signatures(tmp_path / "small.parquet")[0].equals(table)
+
+
+def test_signing_segments_in_parts_with_nothing_left_is_an_error_and_writes_nothing(tmp_path, demo_events):
+    # Every range emptied by --min-count: the same error as in one part, and no file.
+    from lshjob.api import sign_file
+    from lshjob.errors import InputError
+
+    src = tmp_path / "loans.parquet"
+    demo_events[0].write_parquet(src)
+    spec = EventSpec(entity="patron", element="title", segment="branch", count="loans", min_count=10**6)
+    with pytest.raises(InputError, match="no element is left after filtering"):
+        sign_file(src, tmp_path / "sig.parquet", spec, parts=3)
+    assert not list(tmp_path.glob("sig*")) and not list(tmp_path.glob(".*"))
