@@ -13,7 +13,7 @@ from .errors import InputError, ParameterError
 from . import parts as parts_module
 from .ingest import EventSpec, IngestReport, load_sets, validated_events
 from .ingest import group_events as group_sets
-from .loading import group_events, membership_of, open_events
+from .loading import group_events, load_membership, membership_of, open_events
 from .resources import default_memory, peak_bytes
 from .streaming import timed, write_streamed
 from .planner import PairHistogram
@@ -135,8 +135,7 @@ def _sign_in_parts(ranges, sign_part, files_report, where, spec, out, params, me
     return _sign_summary(out, rows, params, report, len(ranges), started, ingested, signed, time.perf_counter())
 
 
-def _entity_part(source, spec, params):
-    """One set per entity: the streaming loader's selection, signed as in one part."""
+def _entity_part(source, spec, params):  # one set per entity: the streaming loader, as in one part
     def sign_part(selection):
         if event_signing.applies(spec):
             grouped = group_events(source, selection)
@@ -147,8 +146,8 @@ def _entity_part(source, spec, params):
 
 
 def _keyed_part(frame, spec, where, params):
-    """Segments or periods: polars groups the range's events into sets (a range may have
-    none left after ``--min-count``; only all of them empty is an error)."""
+    """Segments or periods: polars groups the range's events (a range may have no set left
+    after ``--min-count``; only all of them empty is an error)."""
     def sign_part(selection):
         part = IngestReport(files=[], rows_read=selection.events)
         sets = group_sets(frame.filter(selection.condition), spec, where, part, allow_empty=True)
@@ -339,9 +338,14 @@ def plan_banding(
             raise ParameterError(
                 f"{sample}: is not a signature file; to plan from events give --entity and --element"
             )
-        sets, _ = load_sets(sample, spec)
-        if sets["entity"].n_unique() < 2:
-            raise InputError(f"{sample}: the sample needs at least 2 entities; got 1")
+        if spec.key_columns == ["entity"]:  # the streaming loader: 8-20 bytes an event, not ~100
+            sets = load_membership(sample, spec)[0]
+            n_entities = sets.size
+        else:
+            sets = load_sets(sample, spec)[0]
+            n_entities = sets["entity"].n_unique()
+        if n_entities < 2:
+            raise InputError(f"{sample}: the sample needs at least 2 entities; got {n_entities}")
         hist = similarity.sample_histogram_from_sets(sets, sample_size, seed, entities, threshold)
         basis = "exact Jaccard"
         choices = (perms,) if perms is not None else planner.DEFAULT_PERMS_CHOICES
