@@ -16,8 +16,14 @@ Hashing", ICML 2017): an empty bin i takes the value of bin j for the first atte
 a = 1, 2, ... whose probe ``j = fast_range(fmix64(salt[2] XOR (i << 32 | a)), k)`` is not
 empty. The probe sequence depends only on (i, a) and the seed, so two sets that agree on
 the borrowed bin agree on the filled one, and the fraction of equal positions stays an
-unbiased estimate of Jaccard. The first 32 probes of every bin are tabled once per call
-(they depend only on the seed); later probes are computed as needed.
+unbiased estimate of Jaccard.
+
+The probes depend only on the seed, so they are worked out once per call. For k up to 512,
+each bin's first 1024 probes are ranked: ``ranks[i, j]`` holds the attempt at which bin i
+first probes bin j (with j in its low bits), and an empty bin's first non-empty probe is
+the smallest rank among the non-empty bins, a minimum over k keys with no branch per
+probe; beyond 1024 attempts (a set with one element: about 1 bin in 3,000 at k=128) the
+probes go on in order. For larger k the first 32 probes of every bin are tabled instead.
 """
 
 from __future__ import annotations
@@ -45,19 +51,37 @@ def sign_oph(offsets, codes, table, ids, k, salts):
     out = np.empty((n, k), dtype=np.uint64)  # filled a chunk at a time: pages first touched in parallel
     for c in numba.prange((n + CHUNK - 1) // CHUNK):
         for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
-            g = ids[t]
-            row = out[t]
-            row[:] = EMPTY
-            for j in range(offsets[g], offsets[g + 1]):
-                x = element_hash(j, codes, table)
-                b = fast_range(fmix64(x ^ salts[0]), k)
-                v = fmix64(x ^ salts[1])
-                if v < row[b]:
-                    row[b] = v
+            _sign_row(offsets, codes, table, ids[t], k, salts, out[t])
     return out
 
 
-PROBE_TABLE_DEPTH = 32
+@numba.njit(parallel=True, cache=True)
+def sign_densified(offsets, codes, table, ids, k, salts, by_position):
+    """Densified signatures of the sets ids[t], (k x n) when ``by_position``, else (n x k):
+    :func:`sign_oph` then :func:`densify`, a row at a time in cache (no stored matrix)."""
+    n = ids.shape[0]
+    out = np.empty((k, n) if by_position else (n, k), dtype=np.uint64)
+    ranks, probes = _probe_tables(salts[2], k)
+    for c in numba.prange((n + CHUNK - 1) // CHUNK):
+        raw = np.empty(k, dtype=np.uint64)
+        dense = np.empty(k, dtype=np.uint64)
+        mask = np.empty(k, dtype=np.uint32)
+        for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
+            _sign_row(offsets, codes, table, ids[t], k, salts, raw)
+            _densify_row(raw, dense, mask, ranks, probes, salts[2], k)
+            store_row(out, t, dense, by_position)
+    return out
+
+
+@numba.njit(inline="always")
+def _sign_row(offsets, codes, table, g, k, salts, row):
+    row[:] = EMPTY
+    for j in range(offsets[g], offsets[g + 1]):
+        x = element_hash(j, codes, table)
+        b = fast_range(fmix64(x ^ salts[0]), k)
+        v = fmix64(x ^ salts[1])
+        if v < row[b]:
+            row[b] = v
 
 
 @numba.njit(inline="always")
@@ -65,10 +89,30 @@ def _probe(salt, i, a, k):
     return fast_range(fmix64(salt ^ ((np.uint64(i) << np.uint64(32)) | np.uint64(a))), k)
 
 
+PROBE_TABLE_DEPTH = 32
+RANKED_PROBES = 1024  # probes ranked per bin (module docstring); more are computed as needed
+RANKED_MAX_K = 512  # k x k ranks of 4 bytes: 1 MiB at k = 512; larger k probes in order
+NO_RANK = np.uint32(0xFFFFFFFF)
+BIN_BITS = 12  # bits of a rank key that hold the bin (k <= 512 < 2**12)
+
+
+@numba.njit(cache=True)
+def rank_table(salt, k, depth):
+    """``ranks[i, j]``: for the first probe a (1..depth) of bin i that lands on bin j,
+    ``a << BIN_BITS | j``; NO_RANK when none does. The smallest key among the non-empty bins
+    j is bin i's first non-empty probe. Depends only on the seed: made once per call."""
+    ranks = np.full((k, k), NO_RANK, dtype=np.uint32)
+    for i in range(k):
+        for a in range(1, depth + 1):
+            j = _probe(salt, i, a, k)
+            if ranks[i, j] == NO_RANK:
+                ranks[i, j] = np.uint32((a << BIN_BITS) | j)
+    return ranks
+
+
 @numba.njit(cache=True)
 def probe_table(salt, k, depth):
-    """The first ``depth`` probes of every bin: they depend only on the seed, so they are
-    computed once per call instead of once per empty bin of every set."""
+    """The first ``depth`` probes of every bin (for k too large for :func:`rank_table`)."""
     table = np.empty((k, depth), dtype=np.int64)
     for i in range(k):
         for a in range(depth):
@@ -76,38 +120,72 @@ def probe_table(salt, k, depth):
     return table
 
 
+@numba.njit(cache=True)
+def _probe_tables(salt, k):
+    if k <= RANKED_MAX_K:
+        return rank_table(salt, k, RANKED_PROBES), np.empty((0, 0), dtype=np.int64)
+    return np.empty((0, 0), dtype=np.uint32), probe_table(salt, k, PROBE_TABLE_DEPTH)
+
+
 @numba.njit(parallel=True, cache=True)
 def densify(signatures, salt, by_position):
     """Densified copy of (n x k) stored signatures; (k x n) when ``by_position``."""
     n, k = signatures.shape
     out = np.empty((k, n) if by_position else (n, k), dtype=np.uint64)
-    table = probe_table(salt, k, PROBE_TABLE_DEPTH)
+    ranks, probes = _probe_tables(salt, k)
     for c in numba.prange((n + CHUNK - 1) // CHUNK):
-        filled_row = np.empty(k, dtype=np.uint64)
+        dense = np.empty(k, dtype=np.uint64)
+        mask = np.empty(k, dtype=np.uint32)
         for g in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
-            row = signatures[g]
-            filled_row[:] = row
-            filled = 0
-            for i in range(k):
-                if row[i] != EMPTY:
-                    filled += 1
-            if 0 < filled < k:
-                for i in range(k):
-                    if row[i] == EMPTY:
-                        filled_row[i] = _borrow(row, table, salt, i, k)
-            store_row(out, g, filled_row, by_position)
+            _densify_row(signatures[g], dense, mask, ranks, probes, salt, k)
+            store_row(out, g, dense, by_position)
     return out
 
 
 @numba.njit(inline="always")
+def _densify_row(row, dense, mask, ranks, probes, salt, k):
+    """``dense``: ``row`` with every empty bin filled by its first non-empty probe (module
+    docstring). With ``ranks``, that probe is a minimum over the non-empty bins' rank keys
+    (no branch per probe, vectorised: three times as fast as probing in order, measured);
+    ``mask`` is scratch."""
+    filled = 0
+    for j in range(k):
+        if row[j] == EMPTY:
+            mask[j] = NO_RANK
+        else:
+            mask[j] = np.uint32(0)
+            filled += 1
+    dense[:] = row
+    if filled == 0 or filled == k:
+        return
+    for i in range(k):
+        if row[i] != EMPTY:
+            continue
+        if ranks.shape[0] > 0:
+            best = NO_RANK
+            for j in range(k):
+                best = min(best, np.uint32(ranks[i, j] | mask[j]))  # 32-bit lanes: twice as many
+            if best != NO_RANK:
+                dense[i] = row[best & np.uint32((1 << BIN_BITS) - 1)]
+            else:  # rare: none of the ranked probes is non-empty
+                dense[i] = _probe_from(row, salt, i, k, RANKED_PROBES + 1)
+        else:
+            dense[i] = _borrow(row, probes, salt, i, k)
+
+
+@numba.njit(inline="always")
 def _borrow(row, table, salt, i, k):
-    """The value an empty bin i takes: that of its first non-empty probe."""
+    """The value an empty bin i takes: that of its first non-empty probe (tabled ones first)."""
     for a in range(PROBE_TABLE_DEPTH):
         v = row[table[i, a]]
         if v != EMPTY:
             return v
-    a = PROBE_TABLE_DEPTH + 1
-    while True:  # rare: every tabled probe hit an empty bin
+    return _probe_from(row, salt, i, k, PROBE_TABLE_DEPTH + 1)
+
+
+@numba.njit(inline="always")
+def _probe_from(row, salt, i, k, a):
+    while True:
         v = row[_probe(salt, i, a, k)]
         if v != EMPTY:
             return v

@@ -106,9 +106,10 @@ def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params: SignatureParam
 
 
 def _sign(offsets, codes, table, ids, params: SignatureParams, by_position: bool) -> np.ndarray:
+    if params.scheme == "oph" and by_position:
+        return oph.sign_densified(offsets, codes, table, ids, params.perms, oph_salts(params), True)
     if params.scheme == "oph":
-        raw = oph.sign_oph(offsets, codes, table, ids, params.perms, oph_salts(params))
-        return oph.densify(raw, oph_salts(params)[2], True) if by_position else raw
+        return oph.sign_oph(offsets, codes, table, ids, params.perms, oph_salts(params))
     return _sign_kperm(offsets, codes, table, ids, params.salts(), by_position)
 
 

@@ -122,3 +122,57 @@ def test_run_with_oph_finds_planted_pairs(tmp_path):
     predicted = float(np.mean(candidate_probability(np.array(list(truth.values())), 20, 5)))
     assert abs(measured - predicted) < 0.04, (measured, predicted)
     assert m["options"]["scheme"] == "oph"
+
+
+def _fmix64(x: int) -> int:
+    """MurmurHash3's fmix64 in Python integers (Appleby, smhasher, MurmurHash3.cpp)."""
+    m = 2**64 - 1
+    x ^= x >> 33
+    x = (x * 0xFF51AFD7ED558CCD) & m
+    x ^= x >> 33
+    x = (x * 0xC4CEB9FE1A85EC53) & m
+    return x ^ (x >> 33)
+
+
+def _densified_by_definition(row: list[int], salt: int, k: int) -> list[int]:
+    """Optimal densification as the module docstring defines it, probe after probe."""
+    empty = 2**64 - 1
+    if all(v == empty for v in row):
+        return list(row)
+    out = list(row)
+    for i in range(k):
+        a = 1
+        while out[i] == empty:
+            j = ((_fmix64(salt ^ ((i << 32) | a)) >> 32) * k) >> 32
+            out[i] = row[j]
+            a += 1
+    return out
+
+
+@pytest.mark.parametrize("k", [8, 128, 512, 600])
+def test_densification_follows_its_definition(k):
+    # Oracle: the definition, probe by probe in Python integers. Rows from one non-empty bin
+    # (so some bins need more probes than are ranked) to full ones, and an empty row; k past
+    # 512 takes the tabled probes instead of the ranks. Signing and densifying a row at a
+    # time must equal densifying the stored signatures.
+    from lshjob.oph import sign_densified, sign_oph
+
+    rng = np.random.default_rng(k)
+    salt = 0x5DEECE66D1234567
+    rows = np.full((12, k), EMPTY, dtype=np.uint64)
+    for r, filled in enumerate([1, 1, 2, 3, 5, k // 4, k // 2, k - 1, k, 0, 1, 7]):
+        bins = rng.choice(k, size=min(filled, k), replace=False)
+        rows[r, bins] = rng.integers(0, 2**63, size=len(bins), dtype=np.uint64)
+    got = densify(rows, np.uint64(salt), False)
+    for r in range(len(rows)):
+        assert got[r].tolist() == _densified_by_definition(rows[r].tolist(), salt, k)
+    assert np.array_equal(densify(rows, np.uint64(salt), True), got.T)
+
+    sizes = rng.integers(1, 3 * k, 40)
+    offsets = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+    codes = rng.integers(-10**9, 10**9, offsets[-1])
+    salts = np.array([11, 12, salt], dtype=np.uint64)
+    ids = rng.permutation(40).astype(np.int64)
+    stored = sign_oph(offsets, codes, np.empty(0, np.uint64), ids, k, salts)
+    assert np.array_equal(sign_densified(offsets, codes, np.empty(0, np.uint64), ids, k, salts, True),
+                          densify(stored, np.uint64(salt), True))
