@@ -56,11 +56,12 @@ def sign_oph(offsets, codes, table, ids, k, salts):
 
 
 @numba.njit(parallel=True, cache=True)
-def sign_densified(offsets, codes, table, ids, k, salts, by_position):
-    """Densified signatures of the sets ids[t], (k x n) when ``by_position``, else (n x k):
-    :func:`sign_oph` then :func:`densify`, a row at a time in cache (no stored matrix)."""
+def sign_densified(offsets, codes, table, ids, k, salts, positions):
+    """The first ``positions`` positions of the densified signatures of the sets ids[t],
+    laid out by position (positions x n): :func:`sign_oph` then :func:`densify`, a row at a
+    time in cache (no stored matrix), and only the bins the caller reads are filled."""
     n = ids.shape[0]
-    out = np.empty((k, n) if by_position else (n, k), dtype=np.uint64)
+    out = np.empty((positions, n), dtype=np.uint64)
     ranks, probes = _probe_tables(salts[2], k)
     for c in numba.prange((n + CHUNK - 1) // CHUNK):
         raw = np.empty(k, dtype=np.uint64)
@@ -68,8 +69,9 @@ def sign_densified(offsets, codes, table, ids, k, salts, by_position):
         mask = np.empty(k, dtype=np.uint32)
         for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
             _sign_row(offsets, codes, table, ids[t], k, salts, raw)
-            _densify_row(raw, dense, mask, ranks, probes, salts[2], k)
-            store_row(out, t, dense, by_position)
+            _densify_row(raw, dense, mask, ranks, probes, salts[2], k, positions)
+            for i in range(positions):
+                out[i, t] = dense[i]
     return out
 
 
@@ -137,17 +139,16 @@ def densify(signatures, salt, by_position):
         dense = np.empty(k, dtype=np.uint64)
         mask = np.empty(k, dtype=np.uint32)
         for g in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
-            _densify_row(signatures[g], dense, mask, ranks, probes, salt, k)
+            _densify_row(signatures[g], dense, mask, ranks, probes, salt, k, k)
             store_row(out, g, dense, by_position)
     return out
 
 
 @numba.njit(inline="always")
-def _densify_row(row, dense, mask, ranks, probes, salt, k):
-    """``dense``: ``row`` with every empty bin filled by its first non-empty probe (module
-    docstring). With ``ranks``, that probe is a minimum over the non-empty bins' rank keys
-    (no branch per probe, vectorised: three times as fast as probing in order, measured);
-    ``mask`` is scratch."""
+def _densify_row(row, dense, mask, ranks, probes, salt, k, positions):
+    """``dense``: ``row`` with every empty bin below ``positions`` filled by its first
+    non-empty probe (module docstring). With ``ranks``, that probe is a minimum over the
+    non-empty bins' rank keys (no branch per probe, vectorised); ``mask`` is scratch."""
     filled = 0
     for j in range(k):
         if row[j] == EMPTY:
@@ -158,7 +159,7 @@ def _densify_row(row, dense, mask, ranks, probes, salt, k):
     dense[:] = row
     if filled == 0 or filled == k:
         return
-    for i in range(k):
+    for i in range(positions):
         if row[i] != EMPTY:
             continue
         if ranks.shape[0] > 0:

@@ -152,12 +152,11 @@ class SignAndBand:
 
     def __init__(self, params, plan, memory, stages, spill: Path | None = None) -> None:
         self.bands, self.rows = plan["bands"], plan["rows"]
-        if params.scheme == "kperm":
-            # Bands read only the first b*r positions; k-permutation positions are independent
-            # (salts are a prefix of one sequence), so the rest is not computed here.
-            params = SignatureParams(scheme="kperm", perms=self.bands * self.rows, seed=params.seed)
+        # Bands read only the first b*r positions: k-permutation computes no more (its
+        # positions are independent); oph fills no other empty bin.
+        self.positions = self.bands * self.rows
         self.params, self.memory, self.stages = params, memory, stages
-        self.step = int(max(10_000, memory // 8 // (3 * 8 * params.perms + band.ROW_BYTES * self.bands)))
+        self.step = int(max(10_000, memory // 8 // (3 * 8 * self.positions + band.ROW_BYTES * self.bands)))
         self.slices: list[pl.DataFrame | Path] = []
         self.spill = spill  # keys saved here (a run in parts), else kept in memory
 
@@ -166,7 +165,7 @@ class SignAndBand:
         for lo in range(0, len(reps), self.step):
             ids = reps[lo:lo + self.step]
             with self.stages.part("sign"):
-                columns = comparable_by_position(sets, ids, self.params)
+                columns = comparable_by_position(sets, ids, self.params, self.positions)
             with self.stages.part("band"):
                 keys = band.bucket_keys_by_position(columns, ids + first, self.bands, self.rows)
                 if self.spill is not None:

@@ -106,9 +106,7 @@ def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params: SignatureParam
 
 
 def _sign(offsets, codes, table, ids, params: SignatureParams, by_position: bool) -> np.ndarray:
-    if params.scheme == "oph" and by_position:
-        return oph.sign_densified(offsets, codes, table, ids, params.perms, oph_salts(params), True)
-    if params.scheme == "oph":
+    if params.scheme == "oph":  # the stored form (densified by position: comparable_by_position)
         return oph.sign_oph(offsets, codes, table, ids, params.perms, oph_salts(params))
     return _sign_kperm(offsets, codes, table, ids, params.salts(), by_position)
 
@@ -131,11 +129,17 @@ def sign_membership(sets: Membership, ids: np.ndarray, params: SignatureParams) 
     return _sign(*_membership_source(sets, ids), params, False)
 
 
-def comparable_by_position(sets: Membership, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
-    """Comparable signatures (densified for ``oph``) of the sets ``ids``, laid out by
-    position: a (k x len(ids)) matrix whose row i holds position i of every signature, so
-    each row is a contiguous column for polars (the band stage reads positions, not rows)."""
-    return _sign(*_membership_source(sets, ids), params, True)
+def comparable_by_position(sets: Membership, ids: np.ndarray, params: SignatureParams,
+                           positions: int | None = None) -> np.ndarray:
+    """The first ``positions`` (default k) positions of the comparable signatures (densified
+    for ``oph``) of the sets ``ids``, laid out by position: a (positions x len(ids)) matrix
+    whose row i holds position i of every signature, so each row is a contiguous column for
+    polars (the band stage reads positions, not rows, and only the first b x r of them)."""
+    positions = params.perms if positions is None else positions
+    if params.scheme == "oph":
+        return oph.sign_densified(*_membership_source(sets, ids), params.perms, oph_salts(params), positions)
+    prefix = SignatureParams(scheme="kperm", perms=positions, seed=params.seed)  # salts: a prefix of one sequence
+    return _sign(*_membership_source(sets, ids), prefix, True)
 
 
 def _membership_source(sets: Membership, ids: np.ndarray) -> tuple:
