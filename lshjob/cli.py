@@ -358,6 +358,8 @@ def _skip_blas_probe() -> None:
     sys.modules[blas] = None  # a None entry makes `import` raise ImportError
     try:
         importlib.import_module(probe)
+    except Exception:  # a numba that probes elsewhere or fails here: it loads as usual later
+        pass
     finally:
         if sys.modules.get(blas, 0) is None:
             del sys.modules[blas]
