@@ -8,7 +8,7 @@ from pathlib import Path
 
 import polars as pl
 
-from . import event_signing, planner, similarity
+from . import event_signing, keyed, planner, similarity
 from .errors import InputError, ParameterError
 from . import parts as parts_module
 from .ingest import EventSpec, IngestReport, load_sets, validated_events
@@ -56,34 +56,38 @@ def sign_file(
     started = time.perf_counter()
     memory = memory or default_memory()
     meta = signature_metadata(params, spec.key_columns, period_unit=spec.period)
-    ranges = None
-    direct = event_signing.applies(spec)  # one unweighted set per entity: no sorted sets built
+    ranges, source, codec = None, None, None
+    direct = spec.count is None and spec.min_count <= 1  # signed from grouped events: no sorted sets built
     with progress.stage("ingest"):
         if spec.key_columns == ["entity"]:  # streaming loader: no group-by over (entity, element)
             source = open_events(events, spec)
+        else:  # integer entities: one composite key per set, the same loader (lshjob.keyed)
+            frame, report, where = validated_events(events, spec)
+            source, codec = keyed.keyed_source(frame, report, where, spec) or (None, None)
+        if source is not None:
             ranges = parts_module.signing_ranges(source, params.perms, memory, parts)
             if ranges is None and direct:
                 grouped = group_events(source, None)
             elif ranges is None:
                 members, report = membership_of(source, None)
         else:
-            frame, report, where = validated_events(events, spec)
             ranges = parts_module.keyed_signing_ranges(frame, report.rows_read - report.null_rows_dropped, where,
                                                        params.perms, memory, parts)
             if ranges is None:
                 sets = group_sets(frame, spec, where, report)
-    if ranges is not None and spec.key_columns == ["entity"]:
-        return _sign_in_parts(ranges, _entity_part(source, spec, params), source.report, source.where, spec, out,
-                              params, meta, progress, started)
+    keyed_by = codec.decode_tables if codec is not None else iter  # slices keyed by the spec's columns
+    if ranges is not None and source is not None:
+        return _sign_in_parts(ranges, _entity_part(source, direct, params, keyed_by), source.report, source.where,
+                              spec, out, params, meta, progress, started)
     if ranges is not None:
         return _sign_in_parts(ranges, _keyed_part(frame, spec, where, params), report, where, spec, out, params,
                               meta, progress, started)
     ingested = time.perf_counter()
-    if direct:
-        made, n, report = (event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS),
+    if source is not None and direct:
+        made, n, report = (keyed_by(event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)),
                            len(grouped.keys), grouped.report)
-    elif spec.key_columns == ["entity"]:
-        made, n = signature_slices(members, params, event_signing.SLICE_ROWS), members.size
+    elif source is not None:
+        made, n = keyed_by(signature_slices(members, params, event_signing.SLICE_ROWS)), members.size
     else:
         made, n = sign_sets_slices(sets, spec.key_columns, params, event_signing.SLICE_ROWS), report.sets
     return _sign_streamed(made, n, report, out, params, meta, progress, started, ingested)
@@ -135,13 +139,13 @@ def _sign_in_parts(ranges, sign_part, files_report, where, spec, out, params, me
     return _sign_summary(out, rows, params, report, len(ranges), started, ingested, signed, time.perf_counter())
 
 
-def _entity_part(source, spec, params):  # one set per entity: the streaming loader, as in one part
+def _entity_part(source, direct, params, keyed_by):  # the streaming loader, as in one part
     def sign_part(selection):
-        if event_signing.applies(spec):
+        if direct:
             grouped = group_events(source, selection)
-            return event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS), grouped.report
+            return keyed_by(event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)), grouped.report
         members, part = membership_of(source, selection)
-        return signature_slices(members, params, event_signing.SLICE_ROWS), part
+        return keyed_by(signature_slices(members, params, event_signing.SLICE_ROWS)), part
     return sign_part
 
 

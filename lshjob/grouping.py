@@ -72,11 +72,46 @@ def lookup(table, first, values):
 @numba.njit(parallel=True, cache=True)
 def search_sorted_parallel(keys, values):
     out = np.empty(len(values), dtype=np.int64)
-    chunks = max(1, min(len(values) // 65536, 64))
+    chunks = max(1, min(len(values) // 8192, 64))
     for c in numba.prange(chunks):
         lo = c * len(values) // chunks
         hi = (c + 1) * len(values) // chunks
         out[lo:hi] = np.searchsorted(keys, values[lo:hi])
+    return out
+
+
+@numba.njit(cache=True)
+def bucket_starts(keys, shift):
+    """For sorted keys: ``starts[b]`` is the first key with ``(key - keys[0]) >> shift >= b``,
+    so bucket b's keys are ``keys[starts[b]:starts[b + 1]]`` (the span must fit int64)."""
+    nb = ((keys[-1] - keys[0]) >> shift) + 1
+    starts = np.empty(nb + 1, dtype=np.int64)
+    j = 0
+    for b in range(nb + 1):
+        while j < len(keys) and ((keys[j] - keys[0]) >> shift) < b:
+            j += 1
+        starts[b] = j
+    return starts
+
+
+@numba.njit(parallel=True, cache=True)
+def lookup_bucketed(keys, starts, shift, values):
+    """``np.searchsorted(keys, values)`` through :func:`bucket_starts`: one table read and a
+    search among the few keys of one bucket, instead of a binary search over all the keys
+    (with 6.6M keys, 40M lookups took 5.4 s that way: a cache miss at every level)."""
+    out = np.empty(len(values), dtype=np.int64)
+    first, nb = keys[0], len(starts) - 1
+    for j in numba.prange(len(values)):
+        v = values[j]
+        b = 0 if v < first else min((v - first) >> shift, nb - 1)
+        lo, hi = starts[b], starts[b + 1]
+        while lo < hi:
+            mid = (lo + hi) >> 1
+            if keys[mid] < v:
+                lo = mid + 1
+            else:
+                hi = mid
+        out[j] = lo
     return out
 
 

@@ -28,7 +28,7 @@ weights) plus 8 per key value, and step 3's sort and merge as above.
 from __future__ import annotations
 
 import threading
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -78,7 +78,9 @@ def membership_of(events: "EventSource", selection: "EntitySelection | None") ->
         )
     if empty.any():
         report.empty_after_filter = int(empty.sum())
-        report.empty_examples = [str((k,)) for k in keys.filter(pl.Series(empty)).head(5).to_list()]
+        emptied = keys.filter(pl.Series(empty)).head(5)
+        report.empty_examples = (events.describe(emptied) if events.describe is not None
+                                 else [str((k,)) for k in emptied.to_list()])
         keys = keys.filter(pl.Series(~empty))
         offsets = np.concatenate([[0], offsets[1:][~empty]])
     report.membership_rows = int(len(elements))
@@ -115,6 +117,8 @@ class EventSource:
     min_count: float
     dictionary: pl.Series | None
     text_hashes: np.ndarray | None
+    # keys as reports show them (composite keys decoded: lshjob.keyed); default (key,)
+    describe: Callable[[pl.Series], list[str]] | None = None
 
     @property
     def events(self) -> int:
@@ -143,14 +147,30 @@ def open_events(source: str | Path, spec: EventSpec) -> EventSource:
     warming = start_compiled_code()
     try:
         frame, report, where = validated_events(source, spec)
-        weighted = spec.count is not None or spec.min_count > 1
-        dictionary = _text_dictionary(frame)
-        if dictionary is not None:
-            _check_no_nulls(dictionary.to_frame(), where)
+        dictionary = _checked_dictionary(frame, where)
     finally:  # also when the input is refused: the caller may go on to compiled calls
         warming.join()  # before any compiled call: one threading layer (workqueue) must not be entered twice at once
+    return _source(frame, report, where, spec, dictionary, None)
+
+
+def event_source(frame: pl.LazyFrame, report: IngestReport, where: str, spec: EventSpec,
+                 describe: Callable[[pl.Series], list[str]] | None = None) -> EventSource:
+    """An EventSource over checked events whose ``entity`` column is already one integer key
+    per set (:mod:`lshjob.keyed`); ``describe`` shows keys in reports."""
+    return _source(frame, report, where, spec, _checked_dictionary(frame, where), describe)
+
+
+def _checked_dictionary(frame: pl.LazyFrame, where: str) -> pl.Series | None:
+    dictionary = _text_dictionary(frame)
+    if dictionary is not None:
+        _check_no_nulls(dictionary.to_frame(), where)
+    return dictionary
+
+
+def _source(frame, report, where, spec, dictionary, describe) -> EventSource:
+    weighted = spec.count is not None or spec.min_count > 1
     text_hashes = None if dictionary is None else xxh64_strings(dictionary)
-    return EventSource(frame, report, where, weighted, float(spec.min_count), dictionary, text_hashes)
+    return EventSource(frame, report, where, weighted, float(spec.min_count), dictionary, text_hashes, describe)
 
 
 def check_budget(events: EventSource, selection: EntitySelection | None, memory: int | None) -> None:
@@ -346,6 +366,10 @@ def _key_positions(keys: pl.Series):
             table = np.full(span + 1, -1, dtype=np.int64)
             table[k - k[0]] = np.arange(len(k))
             return lambda values: grouping.lookup(table, k[0], values.to_numpy().astype(np.int64, copy=False))
+        if span < 2**62:  # buckets of about one key each (composite keys of lshjob.keyed, sparse numbers)
+            shift = max(0, (span // len(k)).bit_length() - 1)
+            starts = grouping.bucket_starts(k, shift)
+            return lambda values: grouping.lookup_bucketed(k, starts, shift, values.to_numpy().astype(np.int64, copy=False))
         return lambda values: grouping.search_sorted_parallel(k, values.to_numpy().astype(np.int64, copy=False))
     return lambda values: keys.search_sorted(values).to_numpy()
 

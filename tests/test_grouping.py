@@ -1,6 +1,7 @@
 """The compiled sort the loader puts every set in order with."""
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -35,3 +36,24 @@ def test_sort_range_on_shapes_that_defeat_simple_quicksorts():
         a = shape.astype(np.int64)
         sort_range(a, 0, n)
         assert np.array_equal(a, np.sort(shape.astype(np.int64))), name
+
+
+@pytest.mark.parametrize("shape", ["uniform", "clustered", "one key", "wide"])
+def test_bucketed_lookup_finds_what_searchsorted_finds(shape):
+    # Oracle: numpy's searchsorted, for keys present and absent, below, inside and past the
+    # keys; buckets from one key each to many keys each.
+    from lshjob.grouping import bucket_starts, lookup_bucketed
+
+    rng = np.random.default_rng(3)
+    keys = {"uniform": rng.integers(-10**12, 10**12, 5000),
+            "clustered": np.concatenate([rng.integers(0, 100, 3000), rng.integers(10**15, 10**15 + 50, 3000)]),
+            "one key": np.array([42]),
+            "wide": np.array([-(2**60), 0, 2**60 + 5])}[shape]
+    keys = np.unique(keys).astype(np.int64)
+    span = int(keys[-1]) - int(keys[0])
+    values = np.concatenate([keys, rng.choice(keys, 2000), keys - 1, keys + 1, [keys[0] - 10**9, keys[-1] + 10**9]])
+    chosen = max(0, (span // len(keys)).bit_length() - 1)  # as the loader picks it: about a key a bucket
+    for shift in {chosen, max(0, chosen - 3), min(chosen + 6, 61)}:
+        starts = bucket_starts(keys, shift)
+        assert np.array_equal(lookup_bucketed(keys, starts, shift, values.astype(np.int64)),
+                              np.searchsorted(keys, values))

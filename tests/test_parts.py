@@ -376,8 +376,10 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
     # signing in one part; weighted (--count, --min-count 2), some sets are emptied.
     from typer.testing import CliRunner
 
+    from lshjob import keyed, load_sets
     from lshjob.api import sign_file
     from lshjob.cli import app
+    from lshjob.ingest import validated_events
     from lshjob.signatures import SignatureParams, read_signatures, sign_element_lists, signature_array
 
     events = demo_events[0]
@@ -389,8 +391,14 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
                      count="loans" if weighted else None, min_count=2 if weighted else 1)
     params = SignatureParams(scheme="oph", perms=32, seed=4)
 
+    composite = []  # integer patrons go through the streaming loader by composite keys
+    real = keyed.keyed_source
+    monkeypatch.setattr(keyed, "keyed_source", lambda *a: composite.append(1) or real(*a))
     one = sign_file(src, tmp_path / "one.parquet", spec, params)
     three = sign_file(src, tmp_path / "three.parquet", spec, params, parts=3)
+    assert (real(*validated_events(src, spec), spec) is not None) == integer_patrons and len(composite) == 2
+    # the counts and emptied examples polars' group-by reports (the path text patrons take)
+    assert one["ingest"] == {**load_sets(src, spec)[1].as_dict(), "files": [str(src)]}
 
     kept = (events.with_columns(period=pl.col("borrowed_at").dt.truncate("1mo").dt.date())
             .group_by("patron", "branch", "period", "title").agg(pl.col("loans").sum() if weighted else pl.len())
@@ -404,16 +412,24 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
     assert read_signatures(tmp_path / "one.parquet")[0].equals(table)
     assert (one["ingest"]["empty_after_filter"] > 0) == weighted
 
-    # 23k loans at 256 bytes do not fit half of a budget shrunk to 1 MB: 6 parts of 1 MB or less
-    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e6 / 2**29)
-    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 1_000_000)
+    # 23k loans do not fit half of a budget shrunk to 0.1 MB: parts of 0.5 MB (polars' group-by
+    # at 256 bytes an event; by composite keys, the loader's bytes an event and 40 a set)
+    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e5 / 2**29)
+    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 500_000)
     args = ["sign", str(src), "--entity", "patron", "--element", "title", "--segment", "branch", "--time",
             "borrowed_at", "--period", "month", "--scheme", "oph", "--perms", "32", "--seed", "4", "--json",
             "--quiet", "--memory", "1GiB", "--out", str(tmp_path / "small.parquet")]
     args += ["--count", "loans", "--min-count", "2"] if weighted else []
     small = CliRunner().invoke(app, args)
     assert small.exit_code == 0, small.output
-    assert json.loads(small.output)["parts"] == -(-events.height * parts_module.KEYED_BYTES_PER_EVENT // 1_000_000)
+    if integer_patrons:  # the loader's bytes an event (module docstring) and 40 a set
+        from lshjob.loading import BYTES_PER_EVENT
+
+        sets = events.select("patron", "branch", pl.col("borrowed_at").dt.truncate("1mo")).n_unique()
+        cost = events.height * BYTES_PER_EVENT[weighted] + sets * parts_module.SIGNATURE_BYTES_PER_ENTITY
+    else:
+        cost = events.height * parts_module.KEYED_BYTES_PER_EVENT
+    assert json.loads(small.output)["parts"] == -(-cost // 500_000)
     assert read_signatures(tmp_path / "small.parquet")[0].equals(table)
 
 
