@@ -47,9 +47,9 @@ def sign_file(
     Sets are signed and written a slice at a time, so the signatures (8k bytes a set at
     k=128) are never all held. Sets that need more than half of ``memory`` (bytes; default
     half the machine) to group, or ``parts`` > 1, are also read and grouped an entity key
-    range at a time (:mod:`lshjob.parts`): one set per entity by the streaming loader (8 to
-    36 bytes an event), with segments or periods by polars (about 230). The signatures are
-    the same either way.
+    range at a time (:mod:`lshjob.parts`), by the streaming loader (8 to 36 bytes an event;
+    segments and periods by composite keys, :mod:`lshjob.keyed`) or, for segments or periods
+    of text entity keys, by polars (about 230). The signatures are the same either way.
     Returns a summary: counts from ingest, the signature parameters and timings. Nothing is
     written when the input is rejected.
     """
