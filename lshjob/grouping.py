@@ -63,20 +63,26 @@ def place_codes(slots, values, first, last, codes, weights, out, out_weights, sh
 
 @numba.njit(parallel=True, cache=True)
 def lookup(table, first, values):
+    """``table[v - first]`` for each value; -1 for a value outside the table."""
     out = np.empty(len(values), dtype=np.int64)
     for j in numba.prange(len(values)):
-        out[j] = table[values[j] - first]
+        d = values[j] - first
+        out[j] = table[d] if 0 <= d < len(table) else -1
     return out
 
 
 @numba.njit(parallel=True, cache=True)
 def search_sorted_parallel(keys, values):
+    """The position of each value among the sorted keys; -1 for a value that is not a key."""
     out = np.empty(len(values), dtype=np.int64)
     chunks = max(1, min(len(values) // 8192, 64))
     for c in numba.prange(chunks):
         lo = c * len(values) // chunks
         hi = (c + 1) * len(values) // chunks
         out[lo:hi] = np.searchsorted(keys, values[lo:hi])
+        for j in range(lo, hi):
+            if out[j] >= len(keys) or keys[out[j]] != values[j]:
+                out[j] = -1
     return out
 
 
@@ -96,9 +102,10 @@ def bucket_starts(keys, shift):
 
 @numba.njit(parallel=True, cache=True)
 def lookup_bucketed(keys, starts, shift, values):
-    """``np.searchsorted(keys, values)`` through :func:`bucket_starts`: one table read and a
-    search among the few keys of one bucket, instead of a binary search over all the keys
-    (with 6.6M keys, 40M lookups took 5.4 s that way: a cache miss at every level)."""
+    """The position of each value among the sorted keys (-1 for a value that is not a key)
+    through :func:`bucket_starts`: one table read and a search among the few keys of one
+    bucket, instead of a binary search over all the keys (with 6.6M keys, 40M lookups took
+    5.4 s that way: a cache miss at every level)."""
     out = np.empty(len(values), dtype=np.int64)
     first, nb = keys[0], len(starts) - 1
     for j in numba.prange(len(values)):
@@ -111,7 +118,7 @@ def lookup_bucketed(keys, starts, shift, values):
                 lo = mid + 1
             else:
                 hi = mid
-        out[j] = lo
+        out[j] = lo if lo < len(keys) and keys[lo] == v else -1
     return out
 
 

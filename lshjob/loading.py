@@ -321,7 +321,10 @@ def _read_and_group(frame, n, weighted, dictionary, where):
         m = batch.height
         if pos + m > n:
             raise InputError(f"{where}: the files changed while being read ({n} events counted, more read)")
-        ids[pos:pos + m] = positions(batch["entity"])
+        found = positions(batch["entity"])
+        if m and (found.min() < 0 or found.max() >= len(keys)):
+            raise InputError(f"{where}: the files changed while being read (an entity key the first pass did not see)")
+        ids[pos:pos + m] = found
         codes[pos:pos + m] = _codes(batch["element"], dictionary)
         if weighted:
             weights[pos:pos + m] = batch["weight"].to_numpy()
@@ -357,8 +360,9 @@ DENSE_MIN_SPAN = 1 << 16  # a table this small (512 KiB) is always worth it
 
 
 def _key_positions(keys: pl.Series):
-    """A function mapping a batch of entity keys to their positions in the sorted ``keys``
-    (every value is a key). Dense-ish integer keys use a direct table built once."""
+    """A function mapping a batch of entity keys to their positions in the sorted ``keys``:
+    -1 for an integer that is not a key, a position out of range for text past the last key
+    (text before it is not checked). Dense-ish integer keys use a direct table built once."""
     if keys.dtype.is_integer() and len(keys):
         k = keys.to_numpy().astype(np.int64)
         span = int(k[-1]) - int(k[0])

@@ -39,10 +39,11 @@ def test_sort_range_on_shapes_that_defeat_simple_quicksorts():
 
 
 @pytest.mark.parametrize("shape", ["uniform", "clustered", "one key", "wide"])
-def test_bucketed_lookup_finds_what_searchsorted_finds(shape):
-    # Oracle: numpy's searchsorted, for keys present and absent, below, inside and past the
-    # keys; buckets from one key each to many keys each.
-    from lshjob.grouping import bucket_starts, lookup_bucketed
+def test_key_lookups_find_what_searchsorted_finds(shape):
+    # Oracle: numpy's searchsorted where the value is a key, -1 where it is not, for values
+    # below, among and past the keys; buckets from one key each to many keys each, the
+    # binary search over all keys, and the direct table.
+    from lshjob.grouping import bucket_starts, lookup, lookup_bucketed, search_sorted_parallel
 
     rng = np.random.default_rng(3)
     keys = {"uniform": rng.integers(-10**12, 10**12, 5000),
@@ -53,7 +54,15 @@ def test_bucketed_lookup_finds_what_searchsorted_finds(shape):
     span = int(keys[-1]) - int(keys[0])
     values = np.concatenate([keys, rng.choice(keys, 2000), keys - 1, keys + 1, [keys[0] - 10**9, keys[-1] + 10**9]])
     chosen = max(0, (span // len(keys)).bit_length() - 1)  # as the loader picks it: about a key a bucket
+    values = values.astype(np.int64)
+    at = np.searchsorted(keys, values)
+    expected = np.where((at < len(keys)) & (keys[np.minimum(at, len(keys) - 1)] == values), at, -1)
+    assert (expected == -1).any() and (expected >= 0).any()
     for shift in {chosen, max(0, chosen - 3), min(chosen + 6, 61)}:
         starts = bucket_starts(keys, shift)
-        assert np.array_equal(lookup_bucketed(keys, starts, shift, values.astype(np.int64)),
-                              np.searchsorted(keys, values))
+        assert np.array_equal(lookup_bucketed(keys, starts, shift, values), expected)
+    assert np.array_equal(search_sorted_parallel(keys, values), expected)
+    if span < 10**6:
+        table = np.full(span + 1, -1, dtype=np.int64)
+        table[keys - keys[0]] = np.arange(len(keys))
+        assert np.array_equal(lookup(table, keys[0], values), expected)

@@ -279,3 +279,30 @@ def test_batches_are_cut_where_the_row_groups_end_and_lose_no_row(tmp_path, monk
     assert sets.keys.to_list() == sorted(truth)
     assert all(sets.elements[sets.offsets[i]:sets.offsets[i + 1]].tolist() == sorted(truth[key])
                for i, key in enumerate(sets.keys.to_list()))
+
+
+@pytest.mark.parametrize("patrons", ["dense", "sparse", "text"])
+def test_a_key_the_first_pass_did_not_see_is_refused(tmp_path, monkeypatch, patrons):
+    # As when a file changes between the loader's passes: the read pass meets an entity key
+    # that the first pass (the distinct keys) did not list. It must be refused, not grouped
+    # under a neighbouring key or counted past the end of the keys.
+    import lshjob.loading as loading
+    from lshjob.errors import InputError
+
+    key, unseen = {"dense": (np.arange(300) * 5, 7), "sparse": (np.arange(300) * 10**9, 5),
+                   "text": ([f"P{i:04d}" for i in range(300)], "P9999")}[patrons]
+    path = tmp_path / "loans.parquet"
+    pl.DataFrame({"patron": key, "title": np.arange(300) % 7}).write_parquet(path)
+    monkeypatch.setattr(loading, "DENSE_MIN_SPAN", 0)  # the one-pass reader, whose first pass lists the keys
+    real = loading.batches
+
+    def changed(frame, columns):
+        for batch in real(frame, columns):
+            if "element" in columns:  # the read pass, not the first
+                batch = batch.with_columns(entity=pl.when(pl.int_range(pl.len()) == 3).then(pl.lit(unseen))
+                                           .otherwise(pl.col("entity")))
+            yield batch
+
+    monkeypatch.setattr(loading, "batches", changed)
+    with pytest.raises(InputError, match="changed while being read"):
+        loading.load_membership(path, EventSpec(entity="patron", element="title"))
