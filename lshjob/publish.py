@@ -21,6 +21,7 @@ and renamed into place. One run at a time publishes into a folder (its lock,
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import json
 import os
@@ -131,17 +132,23 @@ def publish_index(out_dir: Path, neighbours: pl.DataFrame, manifest: dict) -> di
 def _keep_previous(out_dir: Path, staging: Path) -> None:
     """Make ``previous/`` hard links to the index in place. Built whole in the staging folder,
     then two renames: the old ``previous/`` into the staging folder (removed with it), the new
-    one into place. No step fails because a folder exists; between the renames there is no
+    one into place (again if a folder came there in between). Between the renames there is no
     ``previous/``, while the index in place is still whole."""
     fresh = staging / PREVIOUS
     fresh.mkdir()
     for name in (NEIGHBOURS, MANIFEST):
         os.link(out_dir / name, fresh / name)
-    try:
-        os.rename(out_dir / PREVIOUS, staging / "replaced-previous")
-    except FileNotFoundError:
-        pass
-    os.rename(fresh, out_dir / PREVIOUS)
+    for attempt in range(8):  # one attempt under the folder's lock; more only for a writer without it
+        try:
+            os.rename(out_dir / PREVIOUS, staging / f"replaced-previous-{attempt}")
+        except FileNotFoundError:
+            pass
+        try:
+            os.rename(fresh, out_dir / PREVIOUS)
+            return
+        except OSError as exc:  # a folder put there in between (ENOTEMPTY, EEXIST): move it too
+            if exc.errno not in (errno.ENOTEMPTY, errno.EEXIST) or attempt == 7:
+                raise
 
 
 def read_manifest(out_dir: Path) -> dict:
