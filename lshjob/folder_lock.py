@@ -191,10 +191,11 @@ class OutputLock:
         except OSError:
             holder = None
         who = holder.describe() if holder is not None else "its details are not written yet"
+        what = holder.what if holder is not None and holder.what else self.what
         if self.wait > 0:
-            return (f"{self.folder}: another lshjob run holds the lock on this {self.what} ({who}); "
+            return (f"{self.folder}: another lshjob run holds the lock on this {what} ({who}); "
                     f"waited {self.wait:g} s; retry later or pass a longer --wait")
-        return (f"{self.folder}: another lshjob run holds the lock on this {self.what} ({who}); "
+        return (f"{self.folder}: another lshjob run holds the lock on this {what} ({who}); "
                 "retry later or pass --wait SECONDS")
 
 
