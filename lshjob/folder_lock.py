@@ -112,26 +112,30 @@ class OutputLock:
             raise RuntimeError(f"{self.path}: already held by this lock")
         deadline = time.monotonic() + self.wait
         fd = None
-        while True:
-            if fd is None:
-                fd = self._open()
-                if fd is None:  # the folder went away as a holder let go: make it again
+        try:
+            while True:
+                if fd is None:
+                    fd = self._open()
+                    if fd is None:  # the folder went away as a holder let go: make it again
+                        continue
+                try:
+                    fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                except BlockingIOError:
+                    left = deadline - time.monotonic()
+                    if left <= 0:
+                        raise Busy(self._busy_message()) from None
+                    time.sleep(min(POLL_SECONDS, left))
                     continue
-            try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except BlockingIOError:
-                left = deadline - time.monotonic()
-                if left <= 0:
-                    os.close(fd)
-                    raise Busy(self._busy_message()) from None
-                time.sleep(min(POLL_SECONDS, left))
-                continue
-            if self._still_at_path(fd):
-                break
-            os.close(fd)  # locked a file its holder removed as it let go; lock the new one
-            fd = None
+                if self._still_at_path(fd):
+                    break
+                os.close(fd)  # locked a file its holder removed as it let go; lock the new one
+                fd = None
+            self._take(fd)
+        except BaseException:
+            if fd is not None:
+                os.close(fd)
+            raise
         self._fd = fd
-        self._take(fd)
         return self
 
     def release(self) -> None:

@@ -11,6 +11,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import re
 import signal
 import socket
 import subprocess
@@ -180,6 +181,12 @@ def test_wait_and_scratch_from_the_command_line_and_the_config(tmp_path, events)
     bad = CliRunner().invoke(app, ["run", str(events), "--entity", "patron", "--element", "title",
                                    "--threshold", "0.5", "--out", str(tmp_path / "idx"), "--wait", "-1"])
     assert bad.exit_code == 2 and "--wait must be 0 or more seconds" in bad.stderr
+    # leftovers of a killed run: in the output, and in the scratch folder under the name the
+    # README gives (first 16 hex digits of the SHA-256 of the output's absolute path)
+    (tmp_path / "idx" / ".work-999999" / "spill").mkdir(parents=True)
+    (tmp_path / "idx" / ".work-999999" / "spill" / "duckdb_temp_block-0.block").write_bytes(b"x" * 300_000)
+    out_id = hashlib.sha256(str((tmp_path / "idx").resolve()).encode()).hexdigest()[:16]
+    (tmp_path / "scratch" / f"lshjob-work-{out_id}-999998").mkdir(parents=True)
     config = tmp_path / "nightly.toml"
     config.write_text(f'events = "{events}"\nentity = "patron"\nelement = "title"\nthreshold = 0.5\n'
                       f'out = "{tmp_path / "idx"}"\nwait = 1.5\nscratch = "{tmp_path / "scratch"}"\n')
@@ -187,3 +194,33 @@ def test_wait_and_scratch_from_the_command_line_and_the_config(tmp_path, events)
     assert done.exit_code == 0, done.output
     options = json.loads(done.stdout)["options"]
     assert options["wait"] == 1.5 and options["scratch"] == str(tmp_path / "scratch")
+    assert re.fullmatch(r"warning: removed 2 folder\(s\) left by runs that ended without cleaning up \(.*\): "
+                        r"29\d\.\d KiB reclaimed\n", done.stderr), done.stderr
+    assert os.listdir(tmp_path / "scratch") == []
+
+
+COUNT = """
+import sys, time
+from pathlib import Path
+from lshjob.folder_lock import output_lock
+folder = Path(sys.argv[1])
+counter = folder.parent / "counter"
+for _ in range(int(sys.argv[2])):
+    with output_lock(folder, wait=120):
+        n = int(counter.read_text()) if counter.exists() else 0
+        time.sleep(0.0005)
+        counter.write_text(str(n + 1))
+"""
+
+
+def test_processes_taking_turns_never_hold_the_lock_together(tmp_path):
+    # Oracle: a counter read and written back under the lock by three processes; an update is
+    # lost whenever two of them hold "the lock" at once (each holder removes the lock file as
+    # it lets go, and the next one must not lock a removed file while a third locks a new one).
+    rounds = 60
+    workers = [subprocess.Popen([sys.executable, "-c", COUNT, str(tmp_path / "out"), str(rounds)],
+                                stderr=subprocess.PIPE, text=True) for _ in range(3)]
+    errors = [w.communicate(timeout=300)[1] for w in workers]
+    assert [w.returncode for w in workers] == [0, 0, 0], errors
+    assert int((tmp_path / "counter").read_text()) == 3 * rounds
+    assert not (tmp_path / "out").exists() or os.listdir(tmp_path / "out") == []
