@@ -104,7 +104,7 @@ def test_a_waiting_run_goes_ahead_when_the_holder_lets_go(tmp_path, events):
     out = tmp_path / "idx"
     lock = output_lock(out).acquire()
     try:
-        child = subprocess.Popen(lshjob_run(events, out, "--wait", "2", "--json"),
+        child = subprocess.Popen(lshjob_run(events, out, "--wait", "5", "--json"),
                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         deadline = time.monotonic() + 120
         while not has_open(child.pid, out / LOCK_NAME):  # it is waiting once it has the file open
@@ -119,7 +119,7 @@ def test_a_waiting_run_goes_ahead_when_the_holder_lets_go(tmp_path, events):
     stdout, stderr = child.communicate(timeout=300)
     assert child.returncode == 0, stderr[-2000:]
     manifest = json.loads(stdout)
-    assert manifest["warnings"] == [] and manifest["options"]["wait"] == 2
+    assert manifest["warnings"] == [] and manifest["options"]["wait"] == 5
     assert sorted(os.listdir(out)) == ["manifest.json", "neighbours.parquet"]
 
 
