@@ -42,7 +42,7 @@ AsJson = Annotated[bool, typer.Option("--json", help="Print the summary as JSON 
 
 def _fail_cleanly(func):
     """Print lshjob's own errors, and files that cannot be read or written, as one line on
-    stderr and exit 2 (no traceback)."""
+    stderr and exit 2 (no traceback); an error with an ``exit_code`` exits with it (75: busy)."""
 
     @wraps(func)
     def wrapper(*args, **kwargs):
@@ -50,7 +50,7 @@ def _fail_cleanly(func):
             return func(*args, **kwargs)
         except LshjobError as exc:
             typer.echo(f"error: {exc}", err=True)
-            raise typer.Exit(2)
+            raise typer.Exit(getattr(exc, "exit_code", 2))  # Busy: 75
         except OSError as exc:  # an output folder that cannot be made, a full disk, no permission
             where = exc.filename if exc.filename is not None else "a file"
             typer.echo(f"error: {where}: {exc.strerror or exc}", err=True)
@@ -204,7 +204,7 @@ def plan(
 RUN_DEFAULTS = {
     "count": None, "min_count": 1, "on_null": "error", "top_k": 50, "perms": None, "bands": None,
     "rows": None, "recall": 0.95, "sample_size": 2000, "seed": 1, "scheme": "kperm", "max_bucket": 2000,
-    "max_candidates": 2e9, "memory": None, "parts": None,
+    "max_candidates": 2e9, "memory": None, "parts": None, "wait": 0.0, "scratch": None,
 }
 
 
@@ -231,6 +231,8 @@ def run(
     max_candidates: Annotated[Optional[float], typer.Option(help="Refuse plans predicting more candidate pairs.  [default: 2e9]")] = None,
     memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time.  [default: half the machine]")] = None,
     parts: Annotated[Optional[int], typer.Option(help="Read the entities in this many key ranges, one at a time.  [default: as few as --memory allows]")] = None,
+    wait: Annotated[Optional[float], typer.Option(help="Seconds to wait while another run holds the output folder's lock (then exit 75).  [default: 0]")] = None,
+    scratch: Annotated[Optional[Path], typer.Option(help="Folder for the work files (DuckDB spill, parts), e.g. on another disk.  [default: inside --out]")] = None,
     config: Annotated[Optional[Path], typer.Option(help="TOML file with any of these options; flags override it.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
@@ -248,7 +250,8 @@ def run(
     flags = dict(events=events, entity=entity, element=element, threshold=threshold, out=out,
                  top_k=top_k, perms=perms, bands=bands, rows=rows, recall=recall, count=count,
                  min_count=min_count, on_null=on_null, sample_size=sample_size, seed=seed, scheme=scheme,
-                 max_bucket=max_bucket, max_candidates=max_candidates, memory=memory, parts=parts)
+                 max_bucket=max_bucket, max_candidates=max_candidates, memory=memory, parts=parts,
+                 wait=wait, scratch=None if scratch is None else str(scratch))
     settings = merge_settings(RUN_DEFAULTS, load_run_config(config) if config else {}, flags)
     missing = [name for name in ("events", "entity", "element", "threshold", "out") if settings.get(name) is None]
     if missing:
@@ -258,6 +261,8 @@ def run(
     options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__})
     with _progress(quiet, as_json) as progress:
         manifest = run_job(settings["events"], spec, options, settings["out"], progress)
+    for warning in manifest.get("warnings", []):  # a lock taken over, leftovers removed
+        typer.echo(f"warning: {warning}", err=True)
     _emit(manifest, as_json, quiet, run_report(manifest))
 
 

@@ -22,7 +22,7 @@ RUN_KEYS = {
     "events": str, "entity": str, "element": str, "count": str, "min_count": (int, float),
     "on_null": str, "threshold": (int, float), "out": str, "top_k": int, "perms": int, "bands": int,
     "rows": int, "recall": float, "sample_size": int, "seed": int, "scheme": str, "max_bucket": int,
-    "max_candidates": (int, float), "memory": str, "parts": int,
+    "max_candidates": (int, float), "memory": str, "parts": int, "wait": (int, float), "scratch": str,
 }
 
 

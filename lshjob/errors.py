@@ -1,4 +1,5 @@
-"""Errors lshjob raises for bad input; the CLI prints the message and exits non-zero."""
+"""Errors lshjob raises for bad input or a busy output; the CLI prints the message and exits
+non-zero (2, or the class's ``exit_code``)."""
 
 
 class LshjobError(Exception):
@@ -15,3 +16,9 @@ class ParameterError(LshjobError):
 
 class IncompatibleSignatures(LshjobError):
     """Signatures of different scheme, length or seed cannot be combined."""
+
+
+class Busy(LshjobError):
+    """Another run holds the lock on the output folder; try again later (exit code 75)."""
+
+    exit_code = 75

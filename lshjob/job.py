@@ -1,9 +1,11 @@
 """The whole job: ingest -> sign -> plan -> band -> join -> verify -> publish.
 
 :func:`run_job` is what ``lshjob run`` calls. Each stage is timed, its peak resident memory
-recorded, and its counts kept for the manifest. Scratch files live in a work folder inside
-the output folder and are removed at the end; the published index changes only by the
-atomic renames of :func:`lshjob.publish.publish_index`.
+recorded, and its counts kept for the manifest. One run at a time writes to an output folder
+(its lock, :mod:`lshjob.folder_lock`, is taken before any work). Scratch files live in a work
+folder inside the output folder (or under ``--scratch``) and are removed at the end, and what
+killed runs left is removed at the start (:mod:`lshjob.scratch`); the published index changes
+only by the atomic renames of :func:`lshjob.publish.publish_index`.
 """
 
 from __future__ import annotations
@@ -22,12 +24,14 @@ import polars as pl
 
 from . import __version__, parts, planner, prepare
 from .errors import ParameterError
+from .folder_lock import output_lock
 from .ingest import EventSpec, resolve_paths
 from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
 from .loading import grouping_need, open_events
 from .progress import QUIET, StageProgress
 from .publish import neighbour_table, publish_index
 from .resources import current_bytes, default_memory, parse_size, peak_bytes, reset_peak
+from .scratch import remove_leftovers, work_folder
 from .signatures import SignatureParams
 
 
@@ -46,6 +50,8 @@ class RunOptions:
     max_candidates: float = 2e9
     memory: str | None = None
     parts: int | None = None  # key ranges held one at a time; None: as the memory budget needs
+    wait: float = 0.0  # seconds to wait for another run's lock on the output folder
+    scratch: str | None = None  # folder for the work folder (spill, parts); None: inside the output
 
     def validate(self) -> None:
         if not 0.0 < self.threshold <= 1.0:
@@ -66,6 +72,8 @@ class RunOptions:
             parse_size(self.memory)
         if self.parts is not None and self.parts < 1:
             raise ParameterError(f"--parts must be at least 1; got {self.parts}")
+        if not self.wait >= 0:
+            raise ParameterError(f"--wait must be 0 or more seconds; got {self.wait}")
         SignatureParams(scheme=self.scheme)
 
 
@@ -124,11 +132,13 @@ def run_job(
         raise ParameterError("lshjob run signs one set per entity; sign segments or periods with lshjob sign")
     out = Path(out)
     memory = parse_size(options.memory) if options.memory else default_memory()
-    work = out / f".work-{os.getpid()}"
+    lock = output_lock(out, wait=options.wait, what="index").acquire()  # before any work, or Busy
+    work = work_folder(out, options.scratch)
     stages = _Stages(progress)
     counts: dict[str, object] = {}
     started = time.perf_counter()
     try:
+        warnings = lock.notes + remove_leftovers(out, options.scratch)  # holding the lock: all are dead runs'
         # started first: reading and hashing the files (no GIL) fills the other core while the
         # process's first compiled call loads numba's registries (GIL-bound) during the checks
         digest = _digest_in_background([str(p) for p in resolve_paths(events)[0]])
@@ -184,6 +194,7 @@ def run_job(
             "seconds": stages.seconds,
             "peak_memory_bytes": stages.peak,
             "versions": _versions(),
+            "warnings": warnings,
         }
         write_start = time.perf_counter()
         facts = publish_index(out, table, manifest)
@@ -194,6 +205,7 @@ def run_job(
         return manifest
     finally:
         shutil.rmtree(work, ignore_errors=True)
+        lock.release()
 
 
 def _inputs(events, report, digest: tuple[int, str]) -> dict:

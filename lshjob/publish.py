@@ -14,11 +14,14 @@ a million x top_k rows, not a million squared.
 :func:`publish_index` writes ``neighbours.parquet`` and then ``manifest.json`` (which
 records the sha256 of the neighbours file) into the output folder by atomic renames from
 a staging folder inside it. Until the renames the previous index is untouched; the
-previous files are kept in ``previous/`` by hard links.
+previous files are kept in ``previous/`` by hard links, itself built in the staging folder
+and renamed into place. One run at a time publishes into a folder (its lock,
+:mod:`lshjob.folder_lock`, is held by the caller).
 """
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import json
 import os
@@ -30,6 +33,7 @@ import polars as pl
 
 NEIGHBOURS = "neighbours.parquet"
 MANIFEST = "manifest.json"
+PREVIOUS = "previous"
 
 
 def neighbour_table(
@@ -117,16 +121,34 @@ def publish_index(out_dir: Path, neighbours: pl.DataFrame, manifest: dict) -> di
         manifest = dict(manifest, output=facts)
         (staging / MANIFEST).write_text(json.dumps(manifest, indent=2, sort_keys=True, default=str) + "\n")
         if (out_dir / MANIFEST).exists() and (out_dir / NEIGHBOURS).exists():
-            previous = out_dir / "previous"
-            shutil.rmtree(previous, ignore_errors=True)
-            previous.mkdir()
-            for name in (NEIGHBOURS, MANIFEST):
-                os.link(out_dir / name, previous / name)
+            _keep_previous(out_dir, staging)
         os.replace(staging / NEIGHBOURS, out_dir / NEIGHBOURS)
         os.replace(staging / MANIFEST, out_dir / MANIFEST)
     finally:
         shutil.rmtree(staging, ignore_errors=True)
     return facts
+
+
+def _keep_previous(out_dir: Path, staging: Path) -> None:
+    """Make ``previous/`` hard links to the index in place. Built whole in the staging folder,
+    then two renames: the old ``previous/`` into the staging folder (removed with it), the new
+    one into place (again if a folder came there in between). Between the renames there is no
+    ``previous/``, while the index in place is still whole."""
+    fresh = staging / PREVIOUS
+    fresh.mkdir()
+    for name in (NEIGHBOURS, MANIFEST):
+        os.link(out_dir / name, fresh / name)
+    for attempt in range(8):  # one attempt under the folder's lock; more only for a writer without it
+        try:
+            os.rename(out_dir / PREVIOUS, staging / f"replaced-previous-{attempt}")
+        except FileNotFoundError:
+            pass
+        try:
+            os.rename(fresh, out_dir / PREVIOUS)
+            return
+        except OSError as exc:  # a folder put there in between (ENOTEMPTY, EEXIST): move it too
+            if exc.errno not in (errno.ENOTEMPTY, errno.EEXIST) or attempt == 7:
+                raise
 
 
 def read_manifest(out_dir: Path) -> dict:
