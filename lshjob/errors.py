@@ -1,8 +1,18 @@
-"""Errors lshjob raises for bad input; the CLI prints the message and exits non-zero."""
+"""Errors lshjob raises for bad input, and the exit codes a command ends with.
+
+Exit codes follow sysexits.h where it has one: 0 done, 1 a check failed (an audit below its
+gate, wrong pairs), 2 bad input or options (EX_USAGE's role; 2 is also what the option parser
+gives), 70 internal error (EX_SOFTWARE: a bug; the traceback goes to a log file), 75 busy
+(EX_TEMPFAIL: try again later). An error class carries its code as ``exit_code``.
+"""
+
+EXIT_DONE, EXIT_CHECK_FAILED, EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_BUSY = 0, 1, 2, 70, 75
 
 
 class LshjobError(Exception):
     """Base class: the message says what was expected, what was given, and where."""
+
+    exit_code = EXIT_BAD_INPUT
 
 
 class InputError(LshjobError):

@@ -14,6 +14,8 @@ def _fmt(x: float) -> str:
 def plan_report(result) -> str:
     """The chosen plan, runners-up and the S-curve, as plain text."""
     t = result.threshold
+    if result.mode == "identical-only":
+        return f"identical-only mode: {result.chosen['why']}"
     lines = [f"{result.mode} mode, threshold {t}: k={result.perms}, b={result.bands}, r={result.rows} "
              f"(approximate threshold {result.chosen['approximate_threshold']:.3f})", ""]
     if result.chosen.get("meets_target") is False:
