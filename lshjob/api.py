@@ -13,6 +13,7 @@ from . import parts as parts_module
 from .ingest import EventSpec, IngestReport, validated_events
 from .ingest import group_events as group_sets
 from .loading import group_events, membership_of, open_events
+from .outputs import refuse_output_over_inputs
 from .resources import default_memory, peak_bytes
 from .streaming import timed, write_streamed
 from .progress import QUIET, StageProgress
@@ -49,6 +50,7 @@ def sign_file(
     Returns a summary: counts from ingest, the signature parameters and timings. Nothing is
     written when the input is rejected.
     """
+    refuse_output_over_inputs(out, [events])
     started = time.perf_counter()
     memory = memory or default_memory()
     meta = signature_metadata(params, spec.key_columns, period_unit=spec.period)
@@ -194,6 +196,7 @@ def merge_files(
     entity, so a range's read skips most of them), each range's rows streamed into ``out``
     as they are merged.
     """
+    refuse_output_over_inputs(out, sources)
     keep = list(keep or ["entity"])
     if "entity" not in keep:
         raise ParameterError(f"--keep must include 'entity'; got {', '.join(keep)}")

@@ -23,6 +23,7 @@ from .job import RunOptions, run_job
 from .reports import audit_report, plan_report, run_report
 from .failures import EXIT_CODES, check_whole_numbers, failure, run_app
 from .ingest import EventSpec
+from .outputs import refuse_output_over_inputs
 from .progress import StageProgress
 from .resources import parse_size
 from .signatures import SignatureParams
@@ -258,6 +259,7 @@ def run(
     missing = [name for name in ("events", "entity", "element", "threshold", "out") if settings.get(name) is None]
     if missing:
         raise ParameterError(f"lshjob run needs {', '.join(missing)} (as options or in --config)")
+    refuse_output_over_inputs(settings["out"], [settings["events"]], folder=True)
     spec = EventSpec(entity=settings["entity"], element=settings["element"], count=settings["count"],
                      min_count=settings["min_count"], on_null=settings["on_null"])
     options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__})
