@@ -66,6 +66,9 @@ def sign_file(
             ranges = parts_module.signing_ranges(source, params.perms, memory, parts)
             if ranges is None and direct:
                 grouped = group_events(source, None)
+                if len(grouped.keys) == 0:  # every row dropped (null keys): as membership_of and the run
+                    raise InputError(f"{source.where}: no element is left after filtering (--min-count "
+                                     f"{spec.min_count}); nothing to sign")
             elif ranges is None:
                 members, report = membership_of(source, None)
         else:
