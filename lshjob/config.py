@@ -21,7 +21,7 @@ import os
 import tomllib
 from pathlib import Path
 
-from .errors import ParameterError
+from .errors import ParameterError, key_text
 
 RUN_KEYS = {
     "events": str, "entity": str, "element": str, "count": str, "min_count": (int, float),
@@ -52,7 +52,8 @@ def load_run_config(path: str | Path) -> dict:
                 f"{path}: unknown key {key!r}; known keys are: {', '.join(k.replace('_', '-') for k in RUN_KEYS)}"
             )
         if not isinstance(value, RUN_KEYS[name]) or isinstance(value, bool):
-            raise ParameterError(f"{path}: key {key!r} has value {value!r}; expected {_kind(RUN_KEYS[name])}")
+            shown = repr(value) if isinstance(value, str) else key_text((value,))
+            raise ParameterError(f"{path}: key {key!r} has value {shown}; expected {_kind(RUN_KEYS[name])}")
         config[name] = value
     for name in PATH_KEYS:
         if name in config:

@@ -25,3 +25,17 @@ class ParameterError(LshjobError):
 
 class IncompatibleSignatures(LshjobError):
     """Signatures of different scheme, length or seed cannot be combined."""
+
+
+def key_text(values: tuple) -> str:
+    """A set's key as messages and reports show it: ``bob`` or ``bob, Harbour, 2026-02-01``
+    (no Python reprs: dates in ISO form, a missing value as 'null')."""
+    return ", ".join(_text(v) for v in values)
+
+
+def _text(value) -> str:
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return str(value).lower()
+    return value.isoformat() if hasattr(value, "isoformat") else str(value)

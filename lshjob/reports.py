@@ -127,6 +127,6 @@ def audit_report(r: dict) -> str:
     lines += [
         f"published pairs checked {r['published_pairs_checked']:,}; wrong {r['wrong_pairs']}",
     ]
-    for row in r["wrong_examples"]:
-        lines.append(f"  wrong: {row}")
+    for entity, neighbour, stored, exact in r["wrong_examples"]:
+        lines.append(f"  wrong: {entity} and {neighbour}: stored Jaccard {stored:.4f}, exact {exact:.4f}")
     return "\n".join(lines)
