@@ -18,9 +18,13 @@ import typer
 from . import __version__
 from .errors import EXIT_BAD_INPUT, EXIT_INTERNAL, LshjobError, ParameterError
 
-EXIT_CODES = (
-    "Exit codes: 0 done; 1 a check failed (audit); 2 bad input or options; 70 internal error "
-    "(the traceback is written to a log file whose path is printed); 75 busy (try again later)."
+EXIT_CODES = (  # "\b" keeps the lines as they are in --help
+    "\b\nExit codes:\n"
+    "  0   done\n"
+    "  1   a check failed (audit)\n"
+    "  2   bad input or options\n"
+    "  70  internal error (the traceback goes to a log file; its path is printed)\n"
+    "  75  busy (try again later)"
 )
 LARGEST_WHOLE_NUMBER = 2**63 - 1  # what a 64-bit integer column or kernel argument holds
 LARGEST_OF = {"seed": 2**64 - 1}  # seeds are unsigned 64-bit
