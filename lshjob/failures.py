@@ -1,5 +1,5 @@
-"""How a command ends when it fails: one line on stderr, the same as a JSON record on stdout
-under ``--json``, and the exit code of the error's class (:mod:`lshjob.errors`). An exception
+"""How a command ends when it fails: one line on stderr (under ``--json`` the same message as
+a JSON record on stdout too), and the exit code of the error's class (:mod:`lshjob.errors`). An exception
 lshjob did not expect is a bug: its traceback goes to a log file, the line says what failed
 and where the traceback is, and the exit code is 70."""
 

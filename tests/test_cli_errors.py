@@ -9,6 +9,7 @@ import json
 import os
 import subprocess
 import sys
+from pathlib import Path
 
 import polars as pl
 import pytest
@@ -83,6 +84,18 @@ def test_an_internal_error_is_one_line_exit_70_with_the_traceback_logged(tmp_pat
     record = json.loads(again.stdout)
     assert record["exit"] == 70 and "planted fault" in record["error"]
     assert os.path.exists(record["log"]) and record["log"] in again.stderr
+
+
+def test_tracebacks_go_to_the_temporary_folder_when_the_state_folder_cannot_be_made(tmp_path, monkeypatch):
+    import tempfile
+
+    from lshjob.failures import log_folder
+
+    monkeypatch.setenv("XDG_STATE_HOME", str(tmp_path / "state"))
+    assert log_folder() == tmp_path / "state" / "lshjob"
+    (tmp_path / "plain").write_text("a file, not a folder")
+    monkeypatch.setenv("XDG_STATE_HOME", str(tmp_path / "plain"))
+    assert log_folder() == Path(tempfile.gettempdir())
 
 
 def test_lshjob_errors_are_json_on_stdout_under_json(tmp_path, small_events):
