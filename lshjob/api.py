@@ -3,28 +3,25 @@
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass
 from pathlib import Path
 
 import polars as pl
 
-from . import event_signing, keyed, planner, similarity
+from . import event_signing, keyed
 from .errors import InputError, ParameterError
 from . import parts as parts_module
-from .ingest import EventSpec, IngestReport, load_sets, validated_events
+from .ingest import EventSpec, IngestReport, validated_events
 from .ingest import group_events as group_sets
-from .loading import group_events, load_membership, membership_of, open_events
+from .loading import group_events, membership_of, open_events
+from .outputs import refuse_output_over_inputs
 from .resources import default_memory, peak_bytes
 from .streaming import timed, write_streamed
-from .planner import PairHistogram
 from .progress import QUIET, StageProgress
 from .signatures import (
     SignatureParams,
     check_compatible,
     merge_signatures,
     merged_meta,
-    params_from_metadata,
-    read_signatures,
     signature_meta,
     sign_sets_slices,
     signature_slices,
@@ -53,6 +50,7 @@ def sign_file(
     Returns a summary: counts from ingest, the signature parameters and timings. Nothing is
     written when the input is rejected.
     """
+    refuse_output_over_inputs(out, [events])
     started = time.perf_counter()
     memory = memory or default_memory()
     meta = signature_metadata(params, spec.key_columns, period_unit=spec.period)
@@ -68,6 +66,9 @@ def sign_file(
             ranges = parts_module.signing_ranges(source, params.perms, memory, parts)
             if ranges is None and direct:
                 grouped = group_events(source, None)
+                if len(grouped.keys) == 0:  # every row dropped (null keys): as membership_of and the run
+                    raise InputError(f"{source.where}: no element is left after filtering (--min-count "
+                                     f"{spec.min_count}); nothing to sign")
             elif ranges is None:
                 members, report = membership_of(source, None)
         else:
@@ -198,6 +199,7 @@ def merge_files(
     entity, so a range's read skips most of them), each range's rows streamed into ``out``
     as they are merged.
     """
+    refuse_output_over_inputs(out, sources)
     keep = list(keep or ["entity"])
     if "entity" not in keep:
         raise ParameterError(f"--keep must include 'entity'; got {', '.join(keep)}")
@@ -264,144 +266,4 @@ def _window(table: pl.DataFrame, meta: dict, since: str | None, until: str | Non
     return table.filter(cond)
 
 
-@dataclass
-class PlanResult:
-    """What ``lshjob plan`` decided and why."""
-
-    mode: str
-    threshold: float
-    perms: int
-    bands: int
-    rows: int
-    chosen: dict
-    runners_up: list[dict]
-    sample: dict | None = None
-    histogram: PairHistogram | None = None
-
-    def as_dict(self) -> dict:
-        return {
-            "mode": self.mode,
-            "threshold": self.threshold,
-            "perms": self.perms,
-            "bands": self.bands,
-            "rows": self.rows,
-            "chosen": self.chosen,
-            "runners_up": self.runners_up,
-            "sample": self.sample,
-        }
-
-
-def plan_banding(
-    threshold: float,
-    perms: int | None = None,
-    recall: float = 0.95,
-    sample: str | Path | None = None,
-    spec: EventSpec | None = None,
-    sample_size: int = 2000,
-    entities: int | None = None,
-    fp_weight: float = 0.5,
-    fn_weight: float = 0.5,
-    seed: int = 0,
-    runners_up: int = 5,
-    bands: int | None = None,
-    rows: int | None = None,
-) -> PlanResult:
-    """Choose (k, b, r). Without ``sample``: theory mode (weighted FP/FN areas, k default 128).
-    With ``sample`` (a signature file, or events read with ``spec``): data mode, the plan that
-    meets ``recall`` with the fewest expected candidate pairs, scaled to ``entities``
-    (default: the entity count of the sample file). With ``bands`` and ``rows`` that plan is
-    judged instead of chosen; the runners-up are then the recommended plans."""
-    planner.validate(threshold, perms, fp_weight, fn_weight)
-    if (bands is None) != (rows is None):
-        raise ParameterError("--bands and --rows go together; give both or neither")
-    explicit = (bands, rows) if bands is not None else None
-    if sample_size < 2:
-        raise ParameterError(f"--sample-size must be at least 2; got {sample_size}")
-    if entities is not None and entities < 2:
-        raise ParameterError(f"--entities must be at least 2; got {entities}")
-    if sample is None:
-        k = perms or 128
-        if explicit:
-            planner.check_explicit(k, *explicit)
-        ranked = planner.theory_plans(threshold, k, fp_weight, fn_weight)
-        best = next(p for p in ranked if (p.bands, p.rows) == explicit) if explicit else ranked[0]
-        others = [_banding_dict(p, threshold) for p in ranked if p is not best][:runners_up]
-        return PlanResult("theory", threshold, best.perms, best.bands, best.rows,
-                          _banding_dict(best, threshold), others)
-    if _is_signature_file(sample):
-        table, meta = read_signatures(sample)
-        if perms is not None and perms > meta["k"]:
-            raise ParameterError(f"--perms {perms} exceeds the signature length k={meta['k']} of {sample}")
-        hist = similarity.sample_histogram_from_signatures(
-            table, params_from_metadata(meta), sample_size, seed, entities, threshold
-        )
-        basis = "signature estimates"
-        choices = (perms or meta["k"],)
-    else:
-        if spec is None:
-            raise ParameterError(
-                f"{sample}: is not a signature file; to plan from events give --entity and --element"
-            )
-        if spec.key_columns == ["entity"]:  # the streaming loader: 8-20 bytes an event, not ~100
-            sets = load_membership(sample, spec)[0]
-            n_entities = sets.size
-        else:
-            sets = load_sets(sample, spec)[0]
-            n_entities = sets["entity"].n_unique()
-        if n_entities < 2:
-            raise InputError(f"{sample}: the sample needs at least 2 entities; got {n_entities}")
-        hist = similarity.sample_histogram_from_sets(sets, sample_size, seed, entities, threshold)
-        basis = "exact Jaccard"
-        choices = (perms,) if perms is not None else planner.DEFAULT_PERMS_CHOICES
-    if explicit:
-        planner.check_explicit(choices[0] if len(choices) == 1 else 128, *explicit)
-        k = choices[0] if len(choices) == 1 else 128
-        best = next(p for p in planner.data_plans(threshold, hist, (k,), 1e-12)
-                    if (p.bands, p.rows) == explicit)
-        best.meets_target = best.expected_recall >= recall
-        try:
-            ranked = [best, *planner.data_plans(threshold, hist, choices, recall)]
-        except ParameterError:
-            ranked = [best]
-    else:
-        ranked = planner.data_plans(threshold, hist, choices, recall)
-        best = ranked[0]
-    info = {
-        "path": str(sample),
-        "similarity": basis,
-        "sampled_entities": hist.sample_entities,
-        "total_entities": hist.total_entities,
-        "design": hist.design,
-        "sampled_pairs": int(hist.counts.sum() + hist.identical_pairs),
-        "sampled_identical_pairs": int(hist.identical_pairs),
-        "expected_identical_pairs": hist.identical_pairs * hist.scale,
-        "sampled_pairs_at_or_above_threshold": int(hist.pairs_at_or_above(threshold)),
-        "recall_target": recall,
-    }
-    return PlanResult(
-        "data", threshold, best.perms, best.bands, best.rows,
-        best.as_dict(), [p.as_dict() for p in ranked[1 : runners_up + 1]], info, hist,
-    )
-
-
-def _banding_dict(p: planner.Banding, threshold: float) -> dict:
-    return {
-        "perms": p.perms,
-        "bands": p.bands,
-        "rows": p.rows,
-        "false_positive_area": p.false_positive,
-        "false_negative_area": p.false_negative,
-        "weighted_error": p.weighted_error,
-        "approximate_threshold": p.approximate_threshold,
-        "probability_at_threshold": float(planner.candidate_probability(threshold, p.bands, p.rows)),
-    }
-
-
-def _is_signature_file(path: str | Path) -> bool:
-    path = Path(path)
-    if not path.is_file() or path.suffix.lower() not in (".parquet", ".pq"):
-        return False
-    try:
-        return "lshjob" in pl.read_parquet_metadata(path)
-    except Exception:
-        return False
+from .api_plan import PlanResult, plan_banding  # noqa: E402,F401  (the API of lshjob plan)

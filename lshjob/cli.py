@@ -5,6 +5,7 @@ from __future__ import annotations
 import importlib
 import json
 import os
+import shutil
 import sys
 from functools import wraps
 from pathlib import Path
@@ -16,12 +17,13 @@ from . import __version__, api
 from .charts import write_chart
 from .audit import audit_index
 from .config import load_run_config, merge_settings
-from .demo import write_demo
+from .demo import check_options as check_demo_options, write_demo
 from .errors import ParameterError
 from .job import RunOptions, run_job
 from .reports import audit_report, plan_report, run_report
-from .errors import LshjobError
+from .failures import EXIT_CODES, check_whole_numbers, failure, run_app
 from .ingest import EventSpec
+from .outputs import refuse_output_over_inputs
 from .progress import StageProgress
 from .resources import parse_size
 from .signatures import SignatureParams
@@ -33,6 +35,8 @@ app = typer.Typer(
     ),
     no_args_is_help=True,
     add_completion=False,
+    epilog=EXIT_CODES,
+    context_settings={"help_option_names": ["-h", "--help"]},
     rich_markup_mode=None,
 )
 
@@ -41,20 +45,19 @@ AsJson = Annotated[bool, typer.Option("--json", help="Print the summary as JSON 
 
 
 def _fail_cleanly(func):
-    """Print lshjob's own errors, and files that cannot be read or written, as one line on
-    stderr and exit 2 (no traceback); an error with an ``exit_code`` exits with it (75: busy)."""
+    """End a command that fails with one line on stderr (and a JSON record under --json) and
+    the exit code of the error (lshjob.failures): 2 for bad input or options and files that
+    cannot be read or written, 70 with the traceback logged for anything unexpected."""
 
     @wraps(func)
     def wrapper(*args, **kwargs):
         try:
+            check_whole_numbers(kwargs)
             return func(*args, **kwargs)
-        except LshjobError as exc:
-            typer.echo(f"error: {exc}", err=True)
-            raise typer.Exit(getattr(exc, "exit_code", 2))  # Busy: 75
-        except OSError as exc:  # an output folder that cannot be made, a full disk, no permission
-            where = exc.filename if exc.filename is not None else "a file"
-            typer.echo(f"error: {where}: {exc.strerror or exc}", err=True)
-            raise typer.Exit(2)
+        except (typer.Exit, typer.Abort):
+            raise
+        except Exception as exc:
+            raise failure(exc, func.__name__, kwargs.get("as_json", False)) from None
 
     return wrapper
 
@@ -163,12 +166,13 @@ def merge(
 @app.command()
 @_fail_cleanly
 def plan(
-    threshold: Annotated[float, typer.Option(help="Jaccard similarity a pair must reach, in (0, 1).")],
+    threshold: Annotated[float, typer.Option(help="Jaccard similarity a pair must reach, in (0, 1]; 1 pairs identical sets only.")],
     perms: Annotated[Optional[int], typer.Option(help="Signature length k (default: 128 in theory mode; chosen in data mode).")] = None,
     recall: Annotated[float, typer.Option(help="Data mode: expected recall of pairs at or above the threshold.")] = 0.95,
     sample: Annotated[Optional[str], typer.Option(help="Signature file or events to plan from (data mode).")] = None,
     entity: Annotated[Optional[str], typer.Option(help="Events sample: entity column.")] = None,
     element: Annotated[Optional[str], typer.Option(help="Events sample: element column.")] = None,
+    on_null: Annotated[str, typer.Option(help="Events sample: null keys 'error' or 'drop' the row.")] = "error",
     sample_size: Annotated[int, typer.Option(help="Entities drawn from the sample.")] = 2000,
     entities: Annotated[Optional[int], typer.Option(help="Scale pair counts to this many entities (e.g. next quarter's).")] = None,
     fp_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-positive area.")] = 0.5,
@@ -189,12 +193,14 @@ def plan(
 
     Example (judge a given plan): lshjob plan --threshold 0.5 --perms 128 --bands 20 --rows 5
     """
-    spec = EventSpec(entity=entity, element=element) if entity and element else None
+    spec = EventSpec(entity=entity, element=element, on_null=on_null) if entity and element else None
     result = api.plan_banding(
         threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed,
         bands=bands, rows=rows,
     )
     summary = result.as_dict()
+    if chart is not None and result.bands is None:
+        raise ParameterError("--chart draws the S-curve of a banding; at threshold 1.0 there is none")
     if chart is not None:
         write_chart(chart, result.bands, result.rows, threshold, result.histogram)
         summary["chart"] = str(chart)
@@ -256,6 +262,7 @@ def run(
     missing = [name for name in ("events", "entity", "element", "threshold", "out") if settings.get(name) is None]
     if missing:
         raise ParameterError(f"lshjob run needs {', '.join(missing)} (as options or in --config)")
+    refuse_output_over_inputs(settings["out"], [settings["events"]], folder=True)
     spec = EventSpec(entity=settings["entity"], element=settings["element"], count=settings["count"],
                      min_count=settings["min_count"], on_null=settings["on_null"])
     options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__})
@@ -310,12 +317,19 @@ def demo(
 
     Example: lshjob demo --out demo-run --patrons 5000 --seed 3
     """
-    data = write_demo(out, patrons, seed)
-    spec = EventSpec(entity="patron", element="title")
-    with _progress(quiet, as_json) as progress:
-        signed = api.sign_file(data["events"], out / "signatures.parquet", spec, progress=progress)
-        manifest = run_job(data["events"], spec, RunOptions(threshold=0.5, top_k=20), out / "index", progress)
-    checked = audit_index(out / "index", sample=min(300, patrons))
+    check_demo_options(patrons, seed)
+    made = not out.exists()  # a folder made here is removed again if the demo fails
+    try:
+        data = write_demo(out, patrons, seed)
+        spec = EventSpec(entity="patron", element="title")
+        with _progress(quiet, as_json) as progress:
+            signed = api.sign_file(data["events"], out / "signatures.parquet", spec, progress=progress)
+            manifest = run_job(data["events"], spec, RunOptions(threshold=0.5, top_k=20), out / "index", progress)
+        checked = audit_index(out / "index", sample=min(300, patrons))
+    except BaseException:
+        if made:
+            shutil.rmtree(out, ignore_errors=True)
+        raise
     summary = {"data": data, "sign": signed, "run": manifest, "audit": checked}
     _emit(
         summary,
@@ -327,25 +341,22 @@ def demo(
     )
 
 
+for _command in app.registered_commands:  # every command's --help ends with the exit codes
+    _command.epilog = _command.epilog or EXIT_CODES
+
+
 def entry_point() -> None:
     """Console script ``lshjob``. Ends the process without the interpreter's teardown, after
     flushing: unloading numba's compiled code at exit costs about 0.3 s a command (measured),
     and by then every output is written, closed and renamed into place."""
     _skip_blas_probe()
-    try:
-        app()
-        code = 0
-    except SystemExit as exc:
-        code = exc.code
-    if code is not None and not isinstance(code, int):
-        print(code, file=sys.stderr)
-        code = 1
+    code = run_app(app, sys.argv[1:])
     for stream in (sys.stdout, sys.stderr):
         try:
             stream.flush()
         except OSError:  # a reader that closed the pipe early (lshjob ... | head)
             pass
-    os._exit(code or 0)
+    os._exit(code)
 
 
 def _skip_blas_probe() -> None:

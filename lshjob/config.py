@@ -9,14 +9,19 @@ Keys are the long option names of ``lshjob run`` with dashes or underscores, for
     out = "index/nightly"
     top-k = 50
     memory = "8GB"
+
+Relative paths in the file (``events``, ``out``) are taken from the file's folder, so a
+scheduler may start the job from any folder. A key given both with dashes and with
+underscores is an error.
 """
 
 from __future__ import annotations
 
+import os
 import tomllib
 from pathlib import Path
 
-from .errors import ParameterError
+from .errors import ParameterError, key_text
 
 RUN_KEYS = {
     "events": str, "entity": str, "element": str, "count": str, "min_count": (int, float),
@@ -24,6 +29,7 @@ RUN_KEYS = {
     "rows": int, "recall": float, "sample_size": int, "seed": int, "scheme": str, "max_bucket": int,
     "max_candidates": (int, float), "memory": str, "parts": int, "wait": (int, float), "scratch": str,
 }
+PATH_KEYS = ("events", "out", "scratch")  # relative to the configuration file's folder
 
 
 def load_run_config(path: str | Path) -> dict:
@@ -35,16 +41,23 @@ def load_run_config(path: str | Path) -> dict:
         raw = tomllib.loads(path.read_text())
     except tomllib.TOMLDecodeError as exc:
         raise ParameterError(f"{path}: not valid TOML: {exc}") from exc
-    config = {}
+    config, spelled = {}, {}
     for key, value in raw.items():
         name = key.replace("-", "_")
+        if name in spelled:
+            raise ParameterError(f"{path}: {spelled[name]} and {key} are the same option; keep one")
+        spelled[name] = key
         if name not in RUN_KEYS:
             raise ParameterError(
                 f"{path}: unknown key {key!r}; known keys are: {', '.join(k.replace('_', '-') for k in RUN_KEYS)}"
             )
         if not isinstance(value, RUN_KEYS[name]) or isinstance(value, bool):
-            raise ParameterError(f"{path}: key {key!r} has value {value!r}; expected {_kind(RUN_KEYS[name])}")
+            shown = repr(value) if isinstance(value, str) else key_text((value,))
+            raise ParameterError(f"{path}: key {key!r} has value {shown}; expected {_kind(RUN_KEYS[name])}")
         config[name] = value
+    for name in PATH_KEYS:
+        if name in config:
+            config[name] = os.path.join(path.parent, os.path.expanduser(config[name]))
     return config
 
 

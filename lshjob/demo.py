@@ -34,10 +34,20 @@ GROUP_DESIGNS = [(36, 2), (32, 4), (28, 6), (24, 8), (20, 10)]
 YEAR = 2026
 
 
+MAX_PATRONS = 1_000_000  # about 20 million loans, a few GiB while generating
+
+
+def check_options(patrons: int, seed: int) -> None:
+    """Refuse options the generator cannot use, before anything is made."""
+    if not 100 <= patrons <= MAX_PATRONS:
+        raise ParameterError(f"--patrons must be from 100 to {MAX_PATRONS}; got {patrons}")
+    if seed < 0:
+        raise ParameterError(f"--seed must be 0 or more; got {seed}")
+
+
 def generate_events(patrons: int = 2000, seed: int = 7) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Return (events, planted). events: patron, title, branch, borrowed_at, loans."""
-    if patrons < 100:
-        raise ParameterError(f"--patrons must be at least 100; got {patrons}")
+    check_options(patrons, seed)
     rng = np.random.default_rng(seed)
     n_general = max(3000, 3 * patrons)
     n_summer = max(150, n_general // 20)
@@ -138,8 +148,8 @@ def _reader_loans(rng, patrons, sizes, drifter, n_general, n_summer):
 def write_demo(out: str | Path, patrons: int = 2000, seed: int = 7) -> dict:
     """Write DIR/events.parquet and DIR/planted.parquet; return a summary."""
     out = Path(out)
-    out.mkdir(parents=True, exist_ok=True)
     events, planted = generate_events(patrons, seed)
+    out.mkdir(parents=True, exist_ok=True)
     for name, frame in (("events.parquet", events), ("planted.parquet", planted)):
         tmp = out / f".{name}.tmp"
         frame.write_parquet(tmp)

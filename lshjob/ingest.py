@@ -20,7 +20,7 @@ from pathlib import Path
 
 import polars as pl
 
-from .errors import InputError, ParameterError
+from .errors import InputError, ParameterError, key_text
 from .parquet_footer import footer_stats
 
 FORMATS = {
@@ -240,7 +240,7 @@ def group_events(frame: pl.LazyFrame, spec: EventSpec, where: str, report: Inges
     if sets.height < grouped.height:
         empty = grouped.select(keys).unique().join(sets.select(keys).unique(), on=keys, how="anti")
         report.empty_after_filter += empty.height
-        report.empty_examples = (report.empty_examples + [str(r) for r in empty.sort(keys).head(5).rows()])[:5]
+        report.empty_examples = (report.empty_examples + [key_text(r) for r in empty.sort(keys).head(5).rows()])[:5]
     report.membership_rows += sets.height
     report.sets += n_sets
     return sets

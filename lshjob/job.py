@@ -35,6 +35,9 @@ from .scratch import remove_leftovers, work_folder
 from .signatures import SignatureParams
 
 
+MAX_TOP_K = 2**31 - 1  # ranks are 32-bit
+
+
 @dataclass(frozen=True)
 class RunOptions:
     threshold: float
@@ -56,8 +59,10 @@ class RunOptions:
     def validate(self) -> None:
         if not 0.0 < self.threshold <= 1.0:
             raise ParameterError(f"--threshold must be in (0, 1]; got {self.threshold}")
-        if self.top_k < 1:
-            raise ParameterError(f"--top-k must be at least 1; got {self.top_k}")
+        if not 1 <= self.top_k <= MAX_TOP_K:
+            raise ParameterError(f"--top-k must be from 1 to {MAX_TOP_K}; got {self.top_k}")
+        if not self.max_candidates >= 0:  # NaN fails too
+            raise ParameterError(f"--max-candidates must be 0 or more; got {self.max_candidates:g}")
         if (self.bands is None) != (self.rows is None):
             raise ParameterError("--bands and --rows go together; give both or neither")
         if self.bands is not None:

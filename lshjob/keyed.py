@@ -21,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 import polars as pl
 
+from .errors import key_text
 from .ingest import EventSpec, IngestReport
 from .loading import EventSource, event_source
 
@@ -68,8 +69,8 @@ class KeyCodec:
             yield pl.concat([self.decode(table["entity"]), table.drop("entity")], how="horizontal")
 
     def describe(self, keys: pl.Series) -> list[str]:
-        """Keys as the polars path shows them in reports: tuples of the three values."""
-        return [str(row) for row in self.decode(keys).rows()]
+        """Keys as the polars path shows them in reports (:func:`lshjob.errors.key_text`)."""
+        return [key_text(row) for row in self.decode(keys).rows()]
 
 
 def keyed_source(frame: pl.LazyFrame, report: IngestReport, where: str,

@@ -37,7 +37,7 @@ import numpy as np
 import polars as pl
 
 from . import grouping
-from .errors import InputError, ParameterError
+from .errors import InputError, ParameterError, key_text
 from .hashing import xxh64_strings
 from .ingest import EventSpec, IngestReport, validated_events
 from .membership import INT64_MAX, Membership
@@ -80,7 +80,7 @@ def membership_of(events: "EventSource", selection: "EntitySelection | None") ->
         report.empty_after_filter = int(empty.sum())
         emptied = keys.filter(pl.Series(empty)).head(5)
         report.empty_examples = (events.describe(emptied) if events.describe is not None
-                                 else [str((k,)) for k in emptied.to_list()])
+                                 else [key_text((k,)) for k in emptied.to_list()])
         keys = keys.filter(pl.Series(~empty))
         offsets = np.concatenate([[0], offsets[1:][~empty]])
     report.membership_rows = int(len(elements))

@@ -157,4 +157,14 @@ def read_manifest(out_dir: Path) -> dict:
     path = Path(out_dir) / MANIFEST
     if not path.is_file():
         raise InputError(f"{out_dir}: no {MANIFEST}; is this an lshjob index folder?")
-    return json.loads(path.read_text())
+    try:  # what lshjob audit reads
+        manifest = json.loads(path.read_text())
+        manifest["spec"], manifest["plan"], manifest["options"]["threshold"], manifest["options"]["top_k"]
+        manifest["inputs"]["source"]
+    except json.JSONDecodeError as exc:
+        raise InputError(f"{path}: not valid JSON ({exc.msg} at line {exc.lineno}, column {exc.colno}); "
+                         "the file is cut short or damaged; run lshjob run again") from None
+    except (KeyError, TypeError) as exc:
+        what = f"no {exc} entry" if isinstance(exc, KeyError) else "an entry is not a JSON object"
+        raise InputError(f"{path}: not an lshjob manifest ({what}); run lshjob run again") from None
+    return manifest

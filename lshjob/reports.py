@@ -14,6 +14,8 @@ def _fmt(x: float) -> str:
 def plan_report(result) -> str:
     """The chosen plan, runners-up and the S-curve, as plain text."""
     t = result.threshold
+    if result.mode == "identical-only":
+        return f"identical-only mode: {result.chosen['why']}"
     lines = [f"{result.mode} mode, threshold {t}: k={result.perms}, b={result.bands}, r={result.rows} "
              f"(approximate threshold {result.chosen['approximate_threshold']:.3f})", ""]
     if result.chosen.get("meets_target") is False:
@@ -125,6 +127,6 @@ def audit_report(r: dict) -> str:
     lines += [
         f"published pairs checked {r['published_pairs_checked']:,}; wrong {r['wrong_pairs']}",
     ]
-    for row in r["wrong_examples"]:
-        lines.append(f"  wrong: {row}")
+    for entity, neighbour, stored, exact in r["wrong_examples"]:
+        lines.append(f"  wrong: {entity} and {neighbour}: stored Jaccard {stored:.4f}, exact {exact:.4f}")
     return "\n".join(lines)

@@ -123,7 +123,7 @@ def test_impossible_target_is_refused_with_nearest_plan():
     "kwargs, message",
     [
         ({"threshold": 0.0}, "--threshold must be in"),
-        ({"threshold": 1.0}, "--threshold must be in"),
+        ({"threshold": 1.5}, r"--threshold must be in \(0, 1\]; got 1.5"),
         ({"threshold": 0.5, "perms": 0}, "--perms must be at least 1"),
         ({"threshold": 0.5, "fp_weight": -1}, "must be >= 0"),
         ({"threshold": 0.5, "fp_weight": 0, "fn_weight": 0}, "cannot both be 0"),
@@ -132,6 +132,13 @@ def test_impossible_target_is_refused_with_nearest_plan():
 def test_bad_planner_options(kwargs, message):
     with pytest.raises(ParameterError, match=message):
         plan_banding(**kwargs)
+
+
+def test_threshold_one_plans_identical_sets_only_as_the_run_does():
+    # Only pairs of identical sets reach Jaccard 1, and the run groups those exactly, so no
+    # banding is chosen (the run's plan at threshold 1.0: prepare.choose_plan).
+    plan = plan_banding(1.0)
+    assert plan.mode == "identical-only" and (plan.perms, plan.bands, plan.rows) == (None, None, None)
 
 
 def test_explicit_bands_rows_must_fit_the_signature():

@@ -1,0 +1,134 @@
+"""How a command ends when it fails: one line on stderr (under ``--json`` the same message as
+a JSON record on stdout too), and the exit code of the error's class (:mod:`lshjob.errors`). An exception
+lshjob did not expect is a bug: its traceback goes to a log file, the line says what failed
+and where the traceback is, and the exit code is 70."""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import tempfile
+import time
+import traceback
+from pathlib import Path
+
+import typer
+
+from . import __version__
+from .errors import EXIT_BAD_INPUT, EXIT_INTERNAL, LshjobError, ParameterError
+
+EXIT_CODES = (  # "\b" keeps the lines as they are in --help
+    "\b\nExit codes:\n"
+    "  0   done\n"
+    "  1   a check failed (audit)\n"
+    "  2   bad input or options\n"
+    "  70  internal error (the traceback goes to a log file; its path is printed)\n"
+    "  75  busy (try again later)"
+)
+LARGEST_WHOLE_NUMBER = 2**63 - 1  # what a 64-bit integer column or kernel argument holds
+LARGEST_OF = {"seed": 2**64 - 1}  # seeds are unsigned 64-bit
+
+
+def one_line(text: object) -> str:
+    """A message on one line: its lines joined with spaces."""
+    return " ".join(part.strip() for part in str(text).splitlines() if part.strip())
+
+
+def log_folder() -> Path:
+    """Where tracebacks of internal errors go: ``$XDG_STATE_HOME/lshjob``, else
+    ``~/.local/state/lshjob``; the system's temporary folder when that cannot be made."""
+    state = os.environ.get("XDG_STATE_HOME") or os.path.join(os.path.expanduser("~"), ".local", "state")
+    folder = Path(state) / "lshjob"
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        if os.access(folder, os.W_OK):
+            return folder
+    except OSError:
+        pass
+    return Path(tempfile.gettempdir())
+
+
+def write_traceback(exc: BaseException, command: str) -> Path:
+    """Write the command line, the version and ``exc``'s traceback to a new log file named
+    by the UTC time and the process id; return its path."""
+    stamp = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime())
+    path = log_folder() / f"lshjob-{stamp}-{os.getpid()}.log"
+    text = (f"lshjob {__version__}, command: {' '.join(sys.argv)}\n"
+            f"lshjob {command} failed at {stamp}\n\n"
+            + "".join(traceback.format_exception(type(exc), exc, exc.__traceback__)))
+    path.write_text(text)
+    return path
+
+
+def fail(message: str, code: int, as_json: bool, log: Path | None = None) -> typer.Exit:
+    """Print ``error: message`` on stderr (and ``{"error", "exit"[, "log"]}`` on stdout under
+    ``--json``); return the exit to raise."""
+    message = one_line(message)
+    typer.echo(f"error: {message}", err=True)
+    if as_json:
+        record = {"error": message, "exit": code}
+        if log is not None:
+            record["log"] = str(log)
+        typer.echo(json.dumps(record))
+    return typer.Exit(code)
+
+
+def failure(exc: Exception, command: str, as_json: bool) -> typer.Exit:
+    """The exit for an exception that ended ``lshjob command``: lshjob's own errors and files
+    that cannot be read or written are bad input (or the code their class carries); anything
+    else is an internal error, logged."""
+    if isinstance(exc, LshjobError):
+        return fail(str(exc), getattr(exc, "exit_code", EXIT_BAD_INPUT), as_json)
+    if isinstance(exc, OSError):  # an output folder that cannot be made, a full disk, no permission
+        where = exc.filename if exc.filename is not None else "a file"
+        return fail(f"{where}: {exc.strerror or exc}", EXIT_BAD_INPUT, as_json)
+    try:
+        log = write_traceback(exc, command)
+        where = f"the traceback is in {log}"
+    except OSError as err:  # nowhere to write: say so, still on one line
+        log, where = None, f"the traceback could not be written ({err.strerror or err})"
+    what = f"{type(exc).__name__}: {exc}" if str(exc) else type(exc).__name__
+    return fail(f"internal error in lshjob {command} ({what}); {where}", EXIT_INTERNAL, as_json, log)
+
+
+def check_whole_numbers(options: dict) -> None:
+    """Refuse a whole-number option too large for a 64-bit integer, before it reaches a
+    column or a compiled kernel (there it would overflow with a traceback)."""
+    for name, value in options.items():
+        largest = LARGEST_OF.get(name, LARGEST_WHOLE_NUMBER)
+        if isinstance(value, int) and not isinstance(value, bool) and abs(value) > largest:
+            flag = "--" + name.replace("_", "-")
+            raise ParameterError(f"{flag} {value} is out of range; the largest accepted is {largest}")
+
+
+def run_app(app: typer.Typer, args: list[str]) -> int:
+    """Run the command line ``args``; return the exit code. Usage errors of the option parser
+    (an unknown option, a missing argument) keep its message and code 2, and under ``--json``
+    are also given as a JSON record on stdout."""
+    as_json = "--json" in args
+    try:
+        code = app(args=args, standalone_mode=False)
+    except typer.Exit as exc:
+        code = exc.exit_code
+    except typer.Abort:
+        typer.echo("Aborted!", err=True)
+        code = 1
+    except typer.TyperException as exc:  # the parser's usage errors
+        show = getattr(exc, "show", None)
+        if show is not None:
+            show()
+        else:
+            typer.echo(f"Error: {exc.format_message()}", err=True)
+        code = exc.exit_code
+        if as_json:
+            typer.echo(json.dumps({"error": one_line(exc.format_message()), "exit": code}))
+    except SystemExit as exc:
+        code = exc.code
+        if code is not None and not isinstance(code, int):
+            print(code, file=sys.stderr)
+            code = 1
+    except Exception as exc:  # outside any command (the commands handle their own)
+        code = failure(exc, args[0] if args else "", as_json).exit_code
+    return code if isinstance(code, int) else 0
+
