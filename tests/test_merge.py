@@ -130,3 +130,11 @@ def test_keys_a_file_lacks_or_of_another_type_are_refused_in_one_line(files, tmp
     # Files of different key columns fold into the columns kept.
     summary = merge_files([files / "monthly.parquet", whole], tmp_path / "out.parquet")
     assert summary["rows_out"] == table.height
+
+
+def test_a_signature_file_without_rows_is_refused_as_a_planning_sample(files):
+    # Oracle: the planner's own minimum (two rows, for one pair), and the file named.
+    from lshjob.api import plan_banding
+
+    with pytest.raises(InputError, match=r"empty.parquet: the sample needs at least 2 signature rows; got 0$"):
+        plan_banding(0.5, sample=files / "empty.parquet")
