@@ -82,8 +82,8 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
         raise InputError(f"{neighbours}: no such file; the index folder holds a manifest but no neighbour table")
     source = events if events is not None else manifest["inputs"]["source"]
     warnings: list[str] = []
-    integrity = _check_index_file(neighbours, manifest, warnings)  # both digests in threads meanwhile
-    input_digest = _events_digest(source, manifest)
+    input_digest = _events_digest(source, manifest)  # in a thread, while the index file is hashed and the sets read
+    integrity = _check_index_file(neighbours, manifest, warnings)
     if integrity is not None:
         return {"index": str(index_dir), "events": str(source), "audited": False, "failed": [integrity],
                 "warnings": warnings, "min_recall": min_recall, "recall": None}

@@ -108,7 +108,14 @@ def _window_condition(since: str | None, until: str | None) -> pl.Expr | None:
 
 
 def _check_columns(sources, metas: list[dict], keep: list[str], windowed: bool) -> None:
-    """Every file has the kept key columns (and ``period`` for a window), of types that agree."""
+    """Every file has the kept key columns (and ``period`` for a window), of types that agree,
+    and periods kept apart are of one unit (a month and the week starting that day differ)."""
+    units = {str(source): meta.get("period_unit") for source, meta in zip(sources, metas)}
+    if "period" in keep and len(set(units.values())) > 1:
+        (a, unit_a), (b, unit_b) = [next(item for item in units.items() if item[1] == u)
+                                    for u in dict.fromkeys(units.values())][:2]
+        raise InputError(f"{b}: periods by {unit_b}, but {a} has periods by {unit_a}; "
+                         "--keep period needs files of one period unit")
     first: dict[str, tuple[str, pl.DataType]] = {}
     for source, meta in zip(sources, metas):
         schema = pl.read_parquet_schema(source)

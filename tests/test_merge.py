@@ -138,3 +138,16 @@ def test_a_signature_file_without_rows_is_refused_as_a_planning_sample(files):
 
     with pytest.raises(InputError, match=r"empty.parquet: the sample needs at least 2 signature rows; got 0$"):
         plan_banding(0.5, sample=files / "empty.parquet")
+
+
+def test_periods_of_different_units_are_not_kept_apart_together(files, tmp_path):
+    # Oracle: the files' metadata (period_unit month and week). A month and the week that
+    # starts on its first day share a period date but not a meaning; folded by entity they
+    # merge as usual.
+    weekly = tmp_path / "weekly.parquet"
+    sign_file(files / "loans.parquet", weekly, EventSpec(entity="patron", element="title", time="borrowed_at",
+                                                         period="week"), PARAMS)
+    with pytest.raises(InputError, match=r"weekly.parquet: periods by week, but .*monthly.parquet has periods by "
+                                         r"month; --keep period needs files of one period unit"):
+        merge_files([files / "monthly.parquet", weekly], tmp_path / "out.parquet", keep=["entity", "period"])
+    assert merge_files([files / "monthly.parquet", weekly], tmp_path / "out.parquet")["rows_out"] > 900
