@@ -310,9 +310,11 @@ def _minimum_by_run(matrices, firsts, rows, starts, lengths, k):
 
 def merged_meta(first_meta: dict, keep: list[str]) -> dict:
     """The metadata of a merge's output: the inputs' scheme and hash family, the kept keys,
-    set sizes estimated."""
+    set sizes estimated, and a period unit only while periods are kept."""
     meta = {k: v for k, v in first_meta.items() if k != "path"}
     meta.update(keys=list(keep), set_size="estimated")
+    if "period" not in keep:
+        meta["period_unit"] = None
     return meta
 
 

@@ -151,3 +151,6 @@ def test_periods_of_different_units_are_not_kept_apart_together(files, tmp_path)
                                          r"month; --keep period needs files of one period unit"):
         merge_files([files / "monthly.parquet", weekly], tmp_path / "out.parquet", keep=["entity", "period"])
     assert merge_files([files / "monthly.parquet", weekly], tmp_path / "out.parquet")["rows_out"] > 900
+    assert read_signatures(tmp_path / "out.parquet")[1]["period_unit"] is None  # no period column left
+    merge_files([files / "monthly.parquet"], tmp_path / "kept.parquet", keep=["entity", "period"])
+    assert read_signatures(tmp_path / "kept.parquet")[1]["period_unit"] == "month"
