@@ -45,7 +45,7 @@ def merge_files(
     entity, so a range's read skips most of them), each range's rows streamed into ``out``
     as they are merged.
     """
-    keep = list(keep or ["entity"])
+    keep = [c for c in dict.fromkeys(keep or ["entity"]) if c]  # "entity,,entity" is "entity"
     if "entity" not in keep:
         raise ParameterError(f"--keep must include 'entity'; got {', '.join(keep)}")
     if not sources:

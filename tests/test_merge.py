@@ -130,6 +130,9 @@ def test_keys_a_file_lacks_or_of_another_type_are_refused_in_one_line(files, tmp
     # Files of different key columns fold into the columns kept.
     summary = merge_files([files / "monthly.parquet", whole], tmp_path / "out.parquet")
     assert summary["rows_out"] == table.height
+    # A key named twice, or an empty name (--keep "entity,"), is the key once.
+    assert merge_files([files / "monthly.parquet", whole], tmp_path / "again.parquet", keep=["entity", "", "entity"])
+    assert pl.read_parquet(tmp_path / "again.parquet").equals(pl.read_parquet(tmp_path / "out.parquet"))
 
 
 def test_a_signature_file_without_rows_is_refused_as_a_planning_sample(files):
