@@ -15,7 +15,7 @@ import pytest
 from scipy.stats import binom
 from typer.testing import CliRunner
 
-from lshjob import EventSpec
+from lshjob import EventSpec, ParameterError
 from lshjob.audit import _expected_filled, audit_index
 from lshjob.cli import app
 from lshjob.job import RunOptions, run_job
@@ -235,3 +235,21 @@ def test_events_other_than_the_runs_input_are_warned_about(built, tmp_path):
     warnings = json.loads(other.stdout)["warnings"]
     assert len(warnings) == 1 and "differ from the run's input" in warnings[0]
     assert f"warning: {warnings[0]}" in other.stderr
+
+
+def test_a_gate_fails_when_no_recall_can_be_measured(built, tmp_path):
+    # Oracle: brute force over Python sets: the patrons z00..z29 read alone share no title,
+    # so the sample holds no true pair and the gate cannot pass; without a gate nothing fails.
+    folder, sets = built
+    alone = {p: s for p, s in sets.items() if p.startswith("z")}
+    assert all(not n for n in _true_neighbours(alone, 0.5).values())
+    events = tmp_path / "alone.parquet"
+    pl.DataFrame([(p, t) for p, s in alone.items() for t in sorted(s)], schema=["patron", "title"],
+                 orient="row").write_parquet(events)
+    gated = audit_index(folder / "idx", events=events, sample=len(alone), min_recall=0.5)
+    assert gated["recall"] is None and gated["true_pairs"] == 0
+    assert gated["failed"] == [f"recall could not be measured (no true pair among the {len(alone)} sampled entities); "
+                               "--min-recall 0.5 needs one"]
+    assert audit_index(folder / "idx", events=events, sample=len(alone))["failed"] == []
+    with pytest.raises(ParameterError, match=r"--min-recall must be in \[0, 1\]; got 1.5"):
+        audit_index(folder / "idx", min_recall=1.5)
