@@ -5,28 +5,23 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
-import polars as pl
 
 from . import event_signing, keyed
-from .errors import InputError, ParameterError
+from .errors import InputError
 from . import parts as parts_module
 from .ingest import EventSpec, IngestReport, validated_events
 from .ingest import group_events as group_sets
 from .loading import group_events, membership_of, open_events
+from .merging import merge_files  # noqa: F401  (the API of lshjob merge)
 from .outputs import refuse_output_over_inputs
 from .resources import default_memory, peak_bytes
 from .streaming import timed, write_streamed
 from .progress import QUIET, StageProgress
 from .signatures import (
     SignatureParams,
-    check_compatible,
-    merge_signatures,
-    merged_meta,
-    signature_meta,
     sign_sets_slices,
     signature_slices,
     signature_metadata,
-    write_signatures,
 )
 
 
@@ -179,91 +174,6 @@ def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, wr
             "total": round(written - started, 3),
         },
     }
-
-
-def merge_files(
-    sources: list[str | Path],
-    out: str | Path,
-    keep: list[str] | None = None,
-    since: str | None = None,
-    until: str | None = None,
-    memory: int | None = None,
-    parts: int | None = None,
-) -> dict:
-    """Fold signature files: rows sharing the ``keep`` columns become one (element-wise min).
-
-    ``keep`` defaults to ``["entity"]`` (all segments and periods of an entity together).
-    ``since``/``until`` (ISO dates, inclusive) keep only periods in that window first.
-    When the rows need more than half of ``memory`` (bytes; default half the machine), or
-    ``parts`` > 1, they are merged an entity key range at a time (the files are sorted by
-    entity, so a range's read skips most of them), each range's rows streamed into ``out``
-    as they are merged.
-    """
-    refuse_output_over_inputs(out, sources)
-    keep = list(keep or ["entity"])
-    if "entity" not in keep:
-        raise ParameterError(f"--keep must include 'entity'; got {', '.join(keep)}")
-    metas = [signature_meta(s) for s in sources]
-    rows_in = sum(pl.scan_parquet(s).select(pl.len()).collect().item() for s in sources)
-    per_row = MERGE_COPIES * (8 * metas[0]["k"] + parts_module.SIGNATURE_BYTES_PER_ENTITY)
-    memory = memory or default_memory()
-    if parts == 1 or (parts is None and rows_in * per_row <= parts_module.ONE_PART_SHARE * memory):
-        tables = [(pl.read_parquet(s), m) for s, m in zip(sources, metas)]
-        if since is not None or until is not None:
-            tables = [(_window(t, m, since, until), m) for t, m in tables]
-        merged, meta = merge_signatures(tables, keep)
-        write_signatures(merged, out, meta)
-        return _merge_summary(out, sources, sum(t.height for t, _ in tables), merged.height, keep, 1)
-    if parts is None:
-        parts_module.require_copy_budget(memory, f"{sources[0]} (and the other inputs): the rows", "merging")
-    counts = (pl.concat([pl.scan_parquet(s).select("entity") for s in sources]).group_by("entity")
-              .agg(pl.len().alias("events")).collect(engine="streaming").sort("entity"))
-    ranges = parts_module.key_ranges(counts, None, parts_module.part_budget(memory, counts.height, 0.75), parts,
-                                     event_bytes=per_row)
-    seen = [0]
-
-    def tables():
-        for selection in ranges:
-            read = [(pl.scan_parquet(s).filter(selection.condition).collect(), m) for s, m in zip(sources, metas)]
-            if since is not None or until is not None:
-                read = [(_window(t, m, since, until), m) for t, m in read]
-            seen[0] += sum(t.height for t, _ in read)
-            merged = merge_signatures(read, keep)[0]
-            del read  # not held while the writer takes the merged rows
-            yield merged
-            del merged
-
-    for meta in metas[1:]:
-        check_compatible(metas[0], meta)  # before any range is read
-    written = write_streamed(tables(), out, merged_meta(metas[0], keep))
-    return _merge_summary(out, sources, seen[0], written, keep, len(ranges))
-
-
-MERGE_COPIES = 4  # rows read (with decode buffers), the merged matrix and its column, writing: 3.1x measured
-# in one part with every key distinct (2M rows, 6.3 GiB), 2.7x with every key twice; under --memory 1GiB
-# the peaks were 1.10 and 0.99 GiB
-
-
-def _merge_summary(out, sources, rows_in, rows_out, keep, n_parts) -> dict:
-    return {"out": str(out), "inputs": [str(s) for s in sources], "rows_in": rows_in, "rows_out": rows_out,
-            "keep": keep, "parts": n_parts, "peak_memory_bytes": peak_bytes()}
-
-
-def _window(table: pl.DataFrame, meta: dict, since: str | None, until: str | None) -> pl.DataFrame:
-    if "period" not in table.columns:
-        raise ParameterError(
-            f"{meta['path']}: --since/--until need a 'period' column; this file was signed without --period"
-        )
-    cond = pl.lit(True)
-    for bound, op in ((since, "ge"), (until, "le")):
-        if bound is None:
-            continue
-        try:
-            day = pl.Series([bound]).str.to_date(strict=True)[0]
-        except Exception as exc:
-            raise ParameterError(f"--since/--until must be ISO dates like 2026-03-01; got {bound!r}") from exc
-        cond = cond & getattr(pl.col("period"), op)(day)
-    return table.filter(cond)
 
 
 from .api_plan import PlanResult, plan_banding  # noqa: E402,F401  (the API of lshjob plan)

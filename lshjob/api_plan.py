@@ -86,6 +86,8 @@ def plan_banding(
                           _banding_dict(best, threshold), others)
     if _is_signature_file(sample):
         table, meta = read_signatures(sample)
+        if table.height < 2:
+            raise InputError(f"{sample}: the sample needs at least 2 signature rows; got {table.height}")
         if perms is not None and perms > meta["k"]:
             raise ParameterError(f"--perms {perms} exceeds the signature length k={meta['k']} of {sample}")
         hist = similarity.sample_histogram_from_signatures(

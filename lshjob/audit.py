@@ -2,25 +2,34 @@
 
 For M sampled entities, every other entity's exact Jaccard is computed through an inverted
 index (element -> entities), so the truth is exact, not estimated. The report gives the
-index's recall on those entities (limited to top-k, as the index is), the recall the
-S-curve predicts for the similarities actually seen, and every published pair whose stored
-Jaccard is wrong or below the threshold.
+index's recall on those entities as the index promises it (each entity's true top-k
+neighbours at or above the threshold, ties at the k-th value honoured), the recall the
+S-curve predicts for the same neighbours, and every published pair whose stored Jaccard is
+wrong or below the threshold.
+
+Before that it checks that ``neighbours.parquet`` is the file the manifest describes (its
+sha256) and compares the events with the run's input (the manifest's digest): a different
+index file is a failed check, different events a warning.
 """
 
 from __future__ import annotations
+
+import math
+from pathlib import Path
 
 import numba
 import numpy as np
 import polars as pl
 
 from . import parts as parts_module
-from .errors import ParameterError
+from .digest import digest_in_background
+from .errors import InputError, ParameterError
 from .identical import fingerprints
-from .ingest import EventSpec
+from .ingest import EventSpec, resolve_paths
 from .loading import grouping_need, membership_of, open_events
 from .membership import Membership
 from .planner import candidate_probability
-from .publish import NEIGHBOURS, read_manifest
+from .publish import NEIGHBOURS, read_manifest, sha256_file
 from .similarity import overlap_counts, postings_of, restricted_index, visit_costs
 from .resources import default_memory, peak_bytes
 from .verify import exact_jaccard
@@ -51,8 +60,13 @@ def _neighbours_above(offsets, elements, starts, members, sizes, sample, allowed
 
 
 def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory: int | None = None,
-                parts: int | None = None) -> dict:
+                parts: int | None = None, min_recall: float | None = None) -> dict:
     """Recall and correctness of the index in ``index_dir`` on ``sample`` random entities.
+
+    The report's ``failed`` lists the checks that failed (a published pair whose stored
+    Jaccard is wrong, recall below ``min_recall``, or a ``neighbours.parquet`` other than
+    the one the manifest describes, after which nothing is measured); ``warnings`` what the
+    figures should be read with (events other than the run's input).
 
     When the sets need more than half of ``memory`` (bytes; default half the machine), or
     ``parts`` > 1, the other entities are read a key range at a time (:mod:`lshjob.parts`):
@@ -60,12 +74,23 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
     once, in the part of its other entity."""
     if sample < 1:
         raise ParameterError(f"--sample must be at least 1; got {sample}")
+    if min_recall is not None and not 0.0 <= min_recall <= 1.0:
+        raise ParameterError(f"--min-recall must be in [0, 1]; got {min_recall}")
     manifest = read_manifest(index_dir)
+    neighbours = Path(index_dir) / NEIGHBOURS
+    if not neighbours.is_file():
+        raise InputError(f"{neighbours}: no such file; the index folder holds a manifest but no neighbour table")
+    source = events if events is not None else manifest["inputs"]["source"]
+    warnings: list[str] = []
+    input_digest = _events_digest(source, manifest)  # in a thread, while the index file is hashed and the sets read
+    integrity = _check_index_file(neighbours, manifest, warnings)
+    if integrity is not None:
+        return {"index": str(index_dir), "events": str(source), "audited": False, "failed": [integrity],
+                "warnings": warnings, "min_recall": min_recall, "recall": None}
     spec = EventSpec(**manifest["spec"])
     threshold = manifest["options"]["threshold"]
     top_k = manifest["options"]["top_k"]
     plan = manifest["plan"]
-    source = events if events is not None else manifest["inputs"]["source"]
     opened = open_events(source, spec)
     memory = memory or default_memory()
     rng = np.random.default_rng(seed)
@@ -82,31 +107,25 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
         ranges = parts_module.key_ranges(counts, opened, parts_module.part_budget(memory, counts.height, 0.25), parts)
         blocks = (membership_of(opened, r)[0] for r in ranges)
         n_blocks = len(ranges)
-    index = pl.read_parquet(f"{index_dir}/{NEIGHBOURS}")
+    index = pl.read_parquet(neighbours)
     published = index.filter(pl.col("entity").is_in(sampled.keys.implode()))
     truth, checked, scope = _compare(blocks, n_blocks, sampled, published, threshold)
     wrong = checked.filter(((pl.col("jaccard") - pl.col("exact")).abs() > 1e-12) | (pl.col("exact") < threshold))
-
-    per_entity = truth.group_by("a").agg(pl.len().alias("true"))
-    found = (checked.rename({"entity": "a", "neighbour": "b"}).join(truth, on=["a", "b"], how="semi")
-             .group_by("a").agg(pl.len().alias("found")))
-    tally = per_entity.join(found, on="a", how="left").with_columns(
-        pl.col("found").fill_null(0), pl.min_horizontal(pl.col("true"), pl.lit(top_k)).alias("expected")
-    )
-    expected = int(tally["expected"].sum())
-    measured = float(tally["found"].sum() / expected) if expected else None
-
-    jac = truth["jaccard"].to_numpy()
-    if plan["mode"] == "identical-only" or truth.height == 0:
-        predicted = None if truth.height == 0 else 1.0
-    else:
-        p = candidate_probability(jac, plan["bands"], plan["rows"])
-        p[jac >= 1.0] = 1.0  # identical sets are grouped exactly, whatever the bands
-        predicted = float(p.mean())
-    distinct = _distinct_set_pairs(truth, checked, plan)
+    figures = top_k_recall(truth, checked, top_k, plan)
+    _compare_events(input_digest, source, manifest, warnings)
+    failed = []
+    if wrong.height:
+        failed.append(f"{wrong.height} published pair(s) have a wrong Jaccard or one below the threshold {threshold}")
+    if min_recall is not None and figures["recall"] is None:
+        failed.append(f"recall could not be measured (no true pair among the {sampled.size} sampled entities); "
+                      f"--min-recall {min_recall} needs one")
+    elif min_recall is not None and figures["recall"] < min_recall:
+        failed.append(f"recall {figures['recall']:.4f} measured on {sampled.size} sampled entities is below "
+                      f"--min-recall {min_recall}")
     return {
         "index": str(index_dir),
         "events": str(source),
+        "audited": True,
         "threshold": threshold,
         "top_k": top_k,
         "plan": {k: plan.get(k) for k in ("mode", "perms", "bands", "rows")},
@@ -114,16 +133,52 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
         "compared_against": scope,
         "parts": n_blocks,
         "true_pairs": truth.height,
-        "expected_in_index": expected,
-        "found": int(tally["found"].sum()),
-        "recall": measured,
-        "predicted_recall": predicted,
-        **distinct,
+        **figures,
+        "min_recall": min_recall,
         "published_pairs_checked": checked.height,
         "wrong_pairs": wrong.height,
         "wrong_examples": wrong.head(5).select("entity", "neighbour", "jaccard", "exact").rows(),
+        "failed": failed,
+        "warnings": warnings,
         "peak_memory_bytes": peak_bytes(),
     }
+
+
+def _check_index_file(neighbours: Path, manifest: dict, warnings: list[str]) -> str | None:
+    """A failed check when ``neighbours.parquet`` is not the file the manifest records."""
+    recorded = (manifest.get("output") or {}).get("sha256")
+    if recorded is None:
+        warnings.append(f"{neighbours}: the manifest records no sha256 of it; the file was not checked")
+        return None
+    actual = sha256_file(neighbours)
+    if actual != recorded:
+        return (f"{neighbours}: sha256 {actual} differs from the manifest's {recorded}: the file is not the "
+                "one the run published; nothing measured")
+    return None
+
+
+def _events_digest(source, manifest: dict):
+    """The digest of the events, as the run computed it for its input (the names hashed are
+    the run's when the file count agrees, so the same files read by another path compare
+    equal); computed in a thread while the audit reads them. None when there is nothing to
+    compare with."""
+    if not manifest.get("inputs", {}).get("sha256"):
+        return None
+    files = [str(p) for p in resolve_paths(source)[0]]
+    recorded = manifest["inputs"].get("files") or []
+    return digest_in_background(files, recorded if len(recorded) == len(files) else None)
+
+
+def _compare_events(digest, source, manifest: dict, warnings: list[str]) -> None:
+    if digest is None:
+        warnings.append(f"{source}: the manifest records no digest of the run's input; the events were not compared")
+        return
+    size, sha = digest.result()
+    inputs = manifest["inputs"]
+    if sha != inputs["sha256"]:
+        warnings.append(f"{source}: these events differ from the run's input {inputs.get('source')} (sha256 "
+                        f"{sha[:16]}... of {size:,} bytes; the manifest records {inputs['sha256'][:16]}... of "
+                        f"{inputs.get('bytes', 0):,}); recall is measured against these events")
 
 
 def _compare(blocks, n_blocks: int, sampled: Membership, published: pl.DataFrame,
@@ -176,20 +231,83 @@ def _append(first: Membership, second: Membership) -> Membership:
                       np.concatenate([first.elements, second.elements]), first.text_hashes)
 
 
-def _distinct_set_pairs(truth: pl.DataFrame, checked: pl.DataFrame, plan: dict) -> dict:
+def top_k_recall(truth: pl.DataFrame, checked: pl.DataFrame, top_k: int, plan: dict) -> dict:
+    """Recall as the index promises it: of each sampled entity's true top-k neighbours at or
+    above the threshold, the share published.
+
+    An entity with n true neighbours expects min(n, k) of them. When more than k true
+    neighbours exist and several tie at the k-th value v, the neighbours above v count
+    one by one and those at v fill the places left after them: found = published above v +
+    min(published at v, places left). Which tied neighbours the index kept, and neighbours
+    below the cut that it did not keep, are then never misses. The S-curve predicts each
+    place's chance of being filled: P(found) for a neighbour above v, and for the t tied
+    ones sharing s places E[min(X, s)] with X ~ Binomial(t, P(v)) (their pairs taken as
+    independent). Over distinct pairs of different sets, only neighbours that fit in top-k
+    whatever the ties (at most k true neighbours at or above their value) are counted."""
+    ranked = truth.with_columns(
+        at_least=pl.col("jaccard").rank("max", descending=True).over("a"),  # true neighbours at >= this value
+        greater=pl.col("jaccard").rank("min", descending=True).over("a") - 1,  # ... strictly above it
+    ).with_columns(inside=pl.col("at_least") <= top_k,
+                   straddles=(pl.col("at_least") > top_k) & (pl.col("greater") < top_k))
+    published = checked.select(pl.col("entity").alias("a"), pl.col("neighbour").alias("b"), pl.lit(True).alias("hit"))
+    ranked = ranked.join(published, on=["a", "b"], how="left").with_columns(pl.col("hit").fill_null(False))
+    jac = ranked["jaccard"].to_numpy()
+    if plan["mode"] == "identical-only":
+        p = np.ones(len(jac))
+    else:
+        p = candidate_probability(jac, plan["bands"], plan["rows"])
+        p[jac >= 1.0] = 1.0  # identical sets are grouped exactly, whatever the bands
+    ranked = ranked.with_columns(pl.Series("p", p, dtype=pl.Float64))
+    per_entity = ranked.group_by("a").agg(
+        inside=pl.col("inside").sum(), found_inside=(pl.col("inside") & pl.col("hit")).sum(),
+        predicted_inside=pl.col("p").filter(pl.col("inside")).sum(), ties=pl.col("straddles").sum(),
+        found_ties=(pl.col("straddles") & pl.col("hit")).sum(), p_tie=pl.col("p").filter(pl.col("straddles")).first(),
+    ).sort("a").with_columns(places=pl.when(pl.col("ties") > 0).then(top_k - pl.col("inside")).otherwise(0))
+    expected = int(per_entity["inside"].sum() + per_entity["places"].sum())
+    found = int(per_entity["found_inside"].sum()
+                + per_entity.select(pl.min_horizontal("found_ties", "places")).to_series().sum())
+    tied = per_entity.filter(pl.col("ties") > 0)
+    predicted = float(per_entity["predicted_inside"].sum()) + sum(
+        _expected_filled(t, s, q) for t, s, q in zip(tied["ties"], tied["places"], tied["p_tie"]))
+    return {
+        "expected_in_index": expected,
+        "found": found,
+        "recall": found / expected if expected else None,
+        "predicted_recall": predicted / expected if expected else None,
+        "entities_tied_at_top_k": tied.height,
+        **_distinct_set_pairs(ranked.filter("inside"), plan),
+    }
+
+
+def _expected_filled(ties: int, places: int, p: float) -> float:
+    """E[min(X, places)] for X ~ Binomial(ties, p): the sum over j < places of P(X > j)."""
+    if p <= 0.0:
+        return 0.0
+    if p >= 1.0:
+        return float(min(ties, places))
+    log_p, log_q = math.log(p), math.log1p(-p)
+    below = 0.0  # P(X <= j)
+    total = 0.0
+    for j in range(places):
+        below += math.exp(math.lgamma(ties + 1) - math.lgamma(j + 1) - math.lgamma(ties - j + 1)
+                          + j * log_p + (ties - j) * log_q)
+        total += max(0.0, 1.0 - below)
+    return total
+
+
+def _distinct_set_pairs(hit: pl.DataFrame, plan: dict) -> dict:
     """Recall over distinct pairs of different sets. Entities with identical sets share one
     outcome (they are banded as one), so per-entity recall can swing with a single pair of
     sets; over distinct set pairs the outcomes are independent and the S-curve prediction
     comes with a binomial standard error sqrt(p(1-p)/n). A set is known by its 128-bit
-    fingerprint (:mod:`lshjob.identical`)."""
-    hit = truth.join(checked.select(pl.col("entity").alias("a"), pl.col("neighbour").alias("b"),
-                                    pl.lit(True).alias("hit")), on=["a", "b"], how="left")
+    fingerprint (:mod:`lshjob.identical`). ``hit``: the true pairs counted, each with
+    ``hit`` (published)."""
     first_lower = (pl.col("fa_a") < pl.col("fa_b")) | ((pl.col("fa_a") == pl.col("fa_b")) & (pl.col("fb_a") < pl.col("fb_b")))
     pairs = hit.filter((pl.col("fa_a") != pl.col("fa_b")) | (pl.col("fb_a") != pl.col("fb_b"))).with_columns(
         x_a=pl.when(first_lower).then("fa_a").otherwise("fa_b"), x_b=pl.when(first_lower).then("fb_a").otherwise("fb_b"),
         y_a=pl.when(first_lower).then("fa_b").otherwise("fa_a"), y_b=pl.when(first_lower).then("fb_b").otherwise("fb_a"),
     )
-    groups = (pairs.group_by("x_a", "x_b", "y_a", "y_b").agg(pl.col("hit").fill_null(False).any(), pl.first("jaccard"))
+    groups = (pairs.group_by("x_a", "x_b", "y_a", "y_b").agg(pl.col("hit").any(), pl.first("jaccard"))
               .sort("x_a", "x_b", "y_a", "y_b"))  # sums in one order, however the pairs were found
     n = groups.height
     if n == 0 or plan["mode"] == "identical-only":

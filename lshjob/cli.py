@@ -282,6 +282,7 @@ def audit(
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
     memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time.  [default: half the machine]")] = None,
     parts: Annotated[Optional[int], typer.Option(help="Read the entities in this many key ranges, one at a time.")] = None,
+    min_recall: Annotated[Optional[float], typer.Option(help="Fail (exit 1) when the measured recall is below this.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -289,13 +290,18 @@ def audit(
 
     Example: lshjob audit index --events demo_data/loans.parquet --sample 300
 
+    Example (a gate after each run): lshjob audit index --sample 1000 --min-recall 0.95
+
     Example (sets larger than memory): lshjob audit index --sample 2000 --memory 4GB
     """
     if parts is not None and parts < 1:
         raise ParameterError(f"--parts must be at least 1; got {parts}")
-    report = audit_index(index, events, sample, seed, memory=parse_size(memory) if memory else None, parts=parts)
+    report = audit_index(index, events, sample, seed, memory=parse_size(memory) if memory else None, parts=parts,
+                         min_recall=min_recall)
     _emit(report, as_json, quiet, audit_report(report))
-    if report["wrong_pairs"]:
+    for line in [f"warning: {w}" for w in report["warnings"]] + [f"check failed: {f}" for f in report["failed"]]:
+        typer.echo(line, err=True)
+    if report["failed"]:
         raise typer.Exit(1)
 
 

@@ -10,12 +10,10 @@ only by the atomic renames of :func:`lshjob.publish.publish_index`.
 
 from __future__ import annotations
 
-import hashlib
 import os
 import platform
 import shutil
 import time
-from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
@@ -23,6 +21,7 @@ import numpy as np
 import polars as pl
 
 from . import __version__, parts, planner, prepare
+from .digest import digest_in_background
 from .errors import ParameterError
 from .folder_lock import output_lock
 from .ingest import EventSpec, resolve_paths
@@ -146,7 +145,7 @@ def run_job(
         warnings = lock.notes + remove_leftovers(out, options.scratch)  # holding the lock: all are dead runs'
         # started first: reading and hashing the files (no GIL) fills the other core while the
         # process's first compiled call loads numba's registries (GIL-bound) during the checks
-        digest = _digest_in_background([str(p) for p in resolve_paths(events)[0]])
+        digest = digest_in_background([str(p) for p in resolve_paths(events)[0]])
         with stages("ingest"):
             source = open_events(events, spec)
         in_parts = (options.parts or 0) > 1 or (
@@ -217,26 +216,6 @@ def _inputs(events, report, digest: tuple[int, str]) -> dict:
     sizes, sha256 = digest
     return {"source": str(events), "files": report.files, "bytes": sizes, "rows": report.rows_read,
             "sha256": sha256}
-
-
-def _digest_in_background(files: list[str]) -> Future:
-    """(bytes, sha256) of the input files, computed in a thread while the run works (hashlib
-    releases the GIL on large blocks): 0.3 s of serial time at 1M entities otherwise."""
-    def digest() -> tuple[int, str]:
-        h = hashlib.sha256()
-        sizes = 0
-        for name in files:
-            h.update(name.encode() + b"\0")
-            with open(name, "rb") as fh:
-                while block := fh.read(1 << 22):
-                    h.update(block)
-                    sizes += len(block)
-        return sizes, h.hexdigest()
-
-    pool = ThreadPoolExecutor(max_workers=1)
-    future = pool.submit(digest)
-    pool.shutdown(wait=False)
-    return future
 
 
 def _versions() -> dict:

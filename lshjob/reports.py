@@ -111,13 +111,19 @@ def run_report(m: dict) -> str:
 
 
 def audit_report(r: dict) -> str:
+    """What an audit measured, as plain text."""
+    if not r.get("audited", True):
+        return f"audit of {r['index']} stopped before measuring"
     rec = "n/a" if r["recall"] is None else f"{r['recall']:.4f}"
     pred = "n/a" if r["predicted_recall"] is None else f"{r['predicted_recall']:.4f}"
     lines = [
         f"audit of {r['index']}: {r['sampled_entities']} sampled entities against {r['compared_against']}",
-        f"true pairs at or above {r['threshold']}: {r['true_pairs']:,}; expected in index (top-{r['top_k']}): "
-        f"{r['expected_in_index']:,}; found {r['found']:,}",
-        f"recall {rec} (S-curve predicts {pred})",
+        f"true pairs at or above {r['threshold']}: {r['true_pairs']:,}; true top-{r['top_k']} places "
+        f"{r['expected_in_index']:,}, filled by published neighbours {r['found']:,}"
+        + (f" ({r['entities_tied_at_top_k']:,} entities with neighbours tied at the cut)"
+           if r.get("entities_tied_at_top_k") else ""),
+        f"recall {rec} (S-curve predicts {pred})"
+        + ("" if r.get("min_recall") is None else f"; --min-recall {r['min_recall']}"),
     ]
     if r.get("distinct_recall") is not None:
         lines.append(
@@ -129,4 +135,4 @@ def audit_report(r: dict) -> str:
     ]
     for entity, neighbour, stored, exact in r["wrong_examples"]:
         lines.append(f"  wrong: {entity} and {neighbour}: stored Jaccard {stored:.4f}, exact {exact:.4f}")
-    return "\n".join(lines)
+    return "\n".join(lines)  # warnings and failed checks: on stderr (lshjob audit)

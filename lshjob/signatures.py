@@ -206,12 +206,13 @@ def signature_column(matrix: np.ndarray) -> pl.Series:
     return pl.Series("signature", matrix, dtype=pl.Array(pl.UInt64, k)).cast(pl.List(pl.UInt64))
 
 
-def signature_array(table: pl.DataFrame) -> np.ndarray:
-    """The ``signature`` column as a contiguous (n x k) uint64 matrix."""
+def signature_array(table: pl.DataFrame, k: int | None = None) -> np.ndarray:
+    """The ``signature`` column as a contiguous (n x k) uint64 matrix. ``k`` (the file's,
+    from its metadata) shapes a table without rows; without it such a table gives 0 x 0."""
     col = table.get_column("signature")
     if table.height == 0:
-        return np.empty((0, 0), dtype=np.uint64)
-    k = int(col.list.len().max())
+        return np.empty((0, k or 0), dtype=np.uint64)
+    k = int(col.list.len().max()) if k is None else k
     return np.ascontiguousarray(col.list.to_array(k).to_numpy(), dtype=np.uint64)
 
 
@@ -250,7 +251,8 @@ def merge_signatures(
 
     ``keep=["entity"]`` folds all segments and periods of an entity into one set;
     several files (for example last month's and this month's) are folded the same way.
-    Files must agree on scheme, k and seed.
+    Files must agree on scheme, k and seed. Tables without rows add nothing; when no table
+    has a row the result has none, with the columns and types of one that has.
     """
     first_meta = tables[0][1]
     for _, meta in tables[1:]:
@@ -262,17 +264,19 @@ def merge_signatures(
                 f"{meta.get('path', 'signature table')}: column(s) {', '.join(missing)} not found; "
                 f"columns are: {', '.join(table.columns)}"
             )
+    # k from the metadata, not from a row: a table may have none
+    k = int(first_meta["k"]) if "k" in first_meta else max(signature_array(t).shape[1] for t, _ in tables)
     # Sort the keys only (with each row's place), not the signatures: gathering them in key
     # order and taking the minimum is one compiled pass over each input matrix.
     keys = pl.concat([t.select(keep) for t, _ in tables], how="vertical_relaxed")
     order = keys.with_row_index("__row").sort(keep, maintain_order=True)
-    lengths = run_lengths(order, keep)
-    starts = np.r_[0, np.cumsum(lengths)[:-1]].astype(np.int64)
+    lengths = run_lengths(order, keep) if order.height else np.zeros(0, dtype=np.int64)
+    starts = np.zeros(len(lengths), dtype=np.int64)
+    np.cumsum(lengths[:-1], out=starts[1:])
     matrices = numba.typed.List.empty_list(READONLY_MATRIX)  # polars' buffers are read-only
     for t, _ in tables:
-        matrices.append(signature_array(t))
+        matrices.append(signature_array(t, k))
     firsts = np.cumsum([0] + [t.height for t, _ in tables]).astype(np.int64)
-    k = max(m.shape[1] for m in matrices)  # an empty table's matrix is 0 x 0
     matrix = _minimum_by_run(matrices, firsts, order["__row"].to_numpy().astype(np.int64), starts, lengths, k)
     sizes = oph.set_size_estimate(matrix) if first_meta["scheme"] == "oph" else estimate_set_size(matrix)
     merged = order.select(keep).gather(starts).with_columns(
@@ -306,9 +310,11 @@ def _minimum_by_run(matrices, firsts, rows, starts, lengths, k):
 
 def merged_meta(first_meta: dict, keep: list[str]) -> dict:
     """The metadata of a merge's output: the inputs' scheme and hash family, the kept keys,
-    set sizes estimated."""
+    set sizes estimated, and a period unit only while periods are kept."""
     meta = {k: v for k, v in first_meta.items() if k != "path"}
     meta.update(keys=list(keep), set_size="estimated")
+    if "period" not in keep:
+        meta["period_unit"] = None
     return meta
 
 

@@ -8,6 +8,7 @@ import time
 
 from polars.io.plugins import register_io_source
 
+from .errors import InputError
 from .signatures import SIGNATURE_ROW_GROUP, write_signatures
 
 
@@ -17,9 +18,12 @@ def write_streamed(tables, out, meta: dict) -> int:
     rows (a polars IO source), so one range is held at a time and nothing goes through
     intermediate files (copying the ranges' files into one took about five times as long;
     measured). Returns the rows written. An error raised while making a range's table is
-    raised as it is, not as polars' wrapping of it."""
+    raised as it is, not as polars' wrapping of it. A range may have no rows; no range at
+    all is refused (nothing written)."""
     pending = iter(tables)
-    first = next(pending)  # its schema is the file's
+    first = next(pending, None)  # its schema is the file's
+    if first is None:  # callers check for rows first; nothing is written without a table
+        raise InputError(f"{out}: no rows to write")
     schema = first.schema
     held = [first]
     del first

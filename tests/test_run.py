@@ -231,6 +231,12 @@ def test_audit_reports_recall_and_catches_a_wrong_pair(tmp_path):
     table = pl.read_parquet(path)
     table.with_columns(pl.when(pl.int_range(pl.len()) == 0).then(0.99).otherwise(pl.col("jaccard"))
                        .alias("jaccard")).write_parquet(path)
+    # recorded in the manifest as a publish would (a changed file alone fails the sha256 check)
+    import hashlib
+
+    manifest = json.loads((tmp_path / "idx/manifest.json").read_text())
+    manifest["output"]["sha256"] = hashlib.sha256(path.read_bytes()).hexdigest()
+    (tmp_path / "idx/manifest.json").write_text(json.dumps(manifest))
     result = CliRunner().invoke(app, ["audit", str(tmp_path / "idx"), "--sample", "1100", "--json"])
     assert result.exit_code == 1 and json.loads(result.stdout)["wrong_pairs"] >= 1
 
