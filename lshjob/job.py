@@ -3,30 +3,25 @@
 :func:`run_job` is what ``lshjob run`` calls. Each stage is timed, its peak resident memory
 recorded, and its counts kept for the manifest. Scratch files live in a work folder inside
 the output folder and are removed at the end; the published index changes only by the
-atomic renames of :func:`lshjob.publish.publish_index`.
+atomic renames of :func:`lshjob.publish.commit_index`. The manifest returned is the one
+written, provenance included (:mod:`lshjob.provenance`).
 """
 
 from __future__ import annotations
 
-import hashlib
+import json
 import os
-import platform
 import shutil
 import time
-from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
-import numpy as np
-import polars as pl
-
-from . import __version__, parts, planner, prepare
+from . import parts, planner, prepare, provenance, publish
 from .errors import ParameterError
 from .ingest import EventSpec, resolve_paths
 from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
 from .loading import grouping_need, open_events
 from .progress import QUIET, StageProgress
-from .publish import neighbour_table, publish_index
 from .resources import current_bytes, default_memory, parse_size, peak_bytes, reset_peak
 from .signatures import SignatureParams
 
@@ -117,8 +112,11 @@ def run_job(
     options: RunOptions,
     out: str | Path,
     progress: StageProgress = QUIET,
+    command: list[str] | None = None,
 ) -> dict:
-    """Build and publish the neighbour index of ``events`` into ``out``; return the manifest."""
+    """Build and publish the neighbour index of ``events`` into ``out``; return the manifest
+    (the same record as ``out/manifest.json``). ``command``: the command line, when run
+    from one."""
     options.validate()
     if spec.segment is not None or spec.period is not None:
         raise ParameterError("lshjob run signs one set per entity; sign segments or periods with lshjob sign")
@@ -128,20 +126,26 @@ def run_job(
     stages = _Stages(progress)
     counts: dict[str, object] = {}
     started = time.perf_counter()
+    started_at = provenance.utc_now()
+    run_id = provenance.new_run_id(started_at)
+    created = not out.exists()
     try:
         # started first: reading and hashing the files (no GIL) fills the other core while the
         # process's first compiled call loads numba's registries (GIL-bound) during the checks
-        digest = _digest_in_background([str(p) for p in resolve_paths(events)[0]])
+        digest = provenance.digest_in_background([str(p) for p in resolve_paths(events)[0]])
         with stages("ingest"):
             source = open_events(events, spec)
         in_parts = (options.parts or 0) > 1 or (
             options.parts is None and grouping_need(source) > parts.ONE_PART_SHARE * memory)
         built = (prepare.in_parts if in_parts else prepare.in_one_part)(source, options, memory, work, stages)
-        report, plan = built.report, built.plan
+        report, plan, warnings = built.report, built.plan, built.warnings
         counts.update(events=report.rows_read, entities=len(built.keys), membership_rows=report.membership_rows,
                       empty_after_filter=report.empty_after_filter, null_rows_dropped=report.null_rows_dropped,
                       parts=len(built.store.ranges), representatives=built.representatives,
                       entities_in_identical_groups=int(len(built.keys) - built.representatives))
+        if report.empty_after_filter:
+            warnings.append(f"{report.empty_after_filter} entities had no element left after --min-count "
+                            f"{source.min_count}; they are not in the index")
 
         if built.bucket_files is None:  # identical sets only: no bands; across parts, by fingerprint
             skew = None
@@ -163,68 +167,60 @@ def run_job(
                                          part_ranges=built.store.ranges if in_parts else None)
             skew = joined["skew"]
             counts["candidate_pairs"] = joined["candidate_pairs"]
+            if skew["skipped_pairs"]:
+                warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over --max-bucket "
+                                f"{options.max_bucket}, still over it once split) were not compared")
 
             with stages("verify"):
                 verified = parts.verify_blocks(candidates, built.store, options.threshold, built.params, memory)
             counts["verified_pairs"] = verified.height
+        built.store = None  # the sets are not needed any more: publishing gets their memory
 
+        top_k = publish.effective_top_k(options.top_k, len(built.keys))
+        if top_k < options.top_k:
+            warnings.append(f"--top-k {options.top_k} is more than the {len(built.keys) - 1} other entities; "
+                            f"used {top_k}")
         with stages("publish"):
-            table = neighbour_table(verified, built.rep_of, built.keys, options.top_k, plan.get("bands", 0))
-        counts["published_rows"] = table.height
+            expansion = publish.expand(verified, built.rep_of, top_k, plan.get("bands", 0))
+            del verified
+            publish.check_output(expansion.published_rows, built.keys, options.top_k, memory,
+                                 publish.identical_rows(built.rep_of, top_k)[2])
+            meta = provenance.neighbours_metadata(run_id, options, spec, top_k)
+            facts = publish.stage_neighbours(
+                out, publish.neighbour_blocks(expansion, built.keys, publish.block_rows(memory)), meta)
+        counts["published_rows"] = facts["rows"]
+        if counts["published_rows"] == 0:
+            warnings.append("no pair reached the threshold: the index is empty")
         manifest = {
             "format": "lshjob-index",
             "format_version": 1,
-            "inputs": _inputs(events, report, digest.result()),
+            "run_id": run_id,
+            "started_at": provenance.iso(started_at),
+            "host": provenance.host(),
+            "command": list(command) if command is not None else None,
+            "inputs": provenance.inputs(events, report, digest),
             "spec": asdict(spec),
             "options": asdict(options),
+            "top_k_effective": top_k,
             "memory_budget_bytes": memory,
             "plan": plan,
             "counts": counts,
             "skew": skew,
-            "seconds": stages.seconds,
             "peak_memory_bytes": stages.peak,
-            "versions": _versions(),
+            "versions": provenance.versions(),
+            "output": facts,
+            "out": str(out.absolute()),
+            "warnings": warnings,
         }
-        write_start = time.perf_counter()
-        facts = publish_index(out, table, manifest)
-        manifest["seconds"] = dict(stages.seconds, write=round(time.perf_counter() - write_start, 3))
-        manifest["output"] = facts
-        manifest["seconds"]["total"] = round(time.perf_counter() - started, 3)
-        manifest["out"] = str(out)
+        manifest["seconds"] = dict(stages.seconds, total=round(time.perf_counter() - started, 3))
+        manifest["finished_at"] = provenance.iso(provenance.utc_now())
+        manifest = json.loads(json.dumps(manifest, default=str))  # what the file holds, exactly
+        publish.commit_index(out, manifest)
         return manifest
     finally:
         shutil.rmtree(work, ignore_errors=True)
+        publish.discard_staging(out)
+        if created and out.is_dir() and not any(out.iterdir()):
+            out.rmdir()  # a run that failed before writing anything leaves no folder behind
 
 
-def _inputs(events, report, digest: tuple[int, str]) -> dict:
-    sizes, sha256 = digest
-    return {"source": str(events), "files": report.files, "bytes": sizes, "rows": report.rows_read,
-            "sha256": sha256}
-
-
-def _digest_in_background(files: list[str]) -> Future:
-    """(bytes, sha256) of the input files, computed in a thread while the run works (hashlib
-    releases the GIL on large blocks): 0.3 s of serial time at 1M entities otherwise."""
-    def digest() -> tuple[int, str]:
-        h = hashlib.sha256()
-        sizes = 0
-        for name in files:
-            h.update(name.encode() + b"\0")
-            with open(name, "rb") as fh:
-                while block := fh.read(1 << 22):
-                    h.update(block)
-                    sizes += len(block)
-        return sizes, h.hexdigest()
-
-    pool = ThreadPoolExecutor(max_workers=1)
-    future = pool.submit(digest)
-    pool.shutdown(wait=False)
-    return future
-
-
-def _versions() -> dict:
-    import duckdb
-    import numba
-
-    return {"lshjob": __version__, "python": platform.python_version(), "polars": pl.__version__,
-            "numpy": np.__version__, "duckdb": duckdb.__version__, "numba": numba.__version__}
