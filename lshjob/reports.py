@@ -98,6 +98,8 @@ def run_report(m: dict) -> str:
                 "warning: pairs that meet only in skipped buckets are not found, so recall can fall below "
                 "the prediction; check with lshjob audit, and raise --max-bucket or use more rows per band"
             )
+    for warning in m.get("warnings", []):
+        lines.append(f"note: {warning}")
     lines.append("stage      seconds   peak memory")
     for stage, secs in m["seconds"].items():
         if stage == "total":
