@@ -145,7 +145,7 @@ def run_job(
                       entities_in_identical_groups=int(len(built.keys) - built.representatives))
         if report.empty_after_filter:
             warnings.append(f"{report.empty_after_filter} entities had no element left after --min-count "
-                            f"{source.min_count}; they are not in the index")
+                            f"{source.min_count:g}; they are not in the index")
 
         if built.bucket_files is None:  # identical sets only: no bands; across parts, by fingerprint
             skew = None
