@@ -76,6 +76,10 @@ def test_an_index_larger_than_the_budget_is_refused_before_the_work(tmp_path):
     assert 50_000 * 49_999 == comb(50_000, 2) * 2
     assert not (tmp_path / "idx").exists()
     assert "lower --top-k or raise --memory" in str(info.value)
+    # In three parts each part's group is collapsed apart: 3 x 16,667 x 16,666 rows at least.
+    with pytest.raises(ParameterError, match=r"over a group of 1666[67] identical sets would publish 8\.33e\+08 rows"):
+        run_job(src, SPEC, RunOptions(threshold=0.5, top_k=10**6, memory="1GB", parts=3), tmp_path / "idx")
+    assert not (tmp_path / "idx").exists()
 
 
 MEASURE = ("import json, resource, subprocess, sys; done = subprocess.run(sys.argv[1:], capture_output=True, text=True); "
