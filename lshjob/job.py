@@ -181,7 +181,8 @@ def run_job(
             warnings.append(f"--top-k {options.top_k} is more than the {len(built.keys) - 1} other entities; "
                             f"used {top_k}")
         with stages("publish"):
-            expansion = publish.expand(verified, built.rep_of, top_k, plan.get("bands", 0))
+            expansion = publish.expand(verified, built.rep_of, top_k, plan.get("bands", 0),
+                                       publish.block_rows(memory))
             del verified
             publish.check_output(expansion.published_rows, built.keys, options.top_k, memory,
                                  publish.identical_rows(built.rep_of, top_k)[2])

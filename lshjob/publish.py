@@ -102,38 +102,55 @@ def check_output(rows: int, keys: pl.Series, top_k: int, memory: int, largest_gr
     )
 
 
-def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int) -> Expansion:
+def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
+           chunk_rows: int = 1 << 62) -> Expansion:
     """Each representative's ranked neighbour list and each member's row count (no rows of
-    the index are made here)."""
+    the index are made here). Before its cut at top_k + 1, a representative's list holds
+    the first top_k + 1 members of each group it is paired with; the lists are made for a
+    range of representatives at a time, each range holding at most about ``chunk_rows``
+    rows before the cut (or one representative's)."""
     cap = top_k + 1
+    sizes = np.bincount(rep_of, minlength=len(rep_of))
+    left, right = verified["left_rep"].to_numpy(), verified["right_rep"].to_numpy()
     # Only entities of a verified pair or of a group of identical sets can have neighbours.
-    involved = np.bincount(rep_of, minlength=len(rep_of)) > 1
-    involved[verified["left_rep"].to_numpy()] = True
-    involved[verified["right_rep"].to_numpy()] = True
+    involved = sizes > 1
+    involved[left] = True
+    involved[right] = True
     ids = np.flatnonzero(involved[rep_of])
     members = pl.DataFrame({"id": ids.astype(np.int64), "rep": rep_of[ids].astype(np.int64)})
-    group_size = members.group_by("rep").len()
     head = members.with_columns(pos=pl.int_range(pl.len()).over("rep")).filter(pl.col("pos") < cap)
+    head = head.select("rep", pl.col("id").alias("neighbour"))
 
     columns = ("jaccard", "estimate", pl.col("bands_shared").cast(pl.Int32))
     edges = pl.concat([
         verified.select(pl.col("left_rep").alias("src"), pl.col("right_rep").alias("dst"), *columns),
         verified.select(pl.col("right_rep").alias("src"), pl.col("left_rep").alias("dst"), *columns),
-    ])
-    inter = edges.join(head.select(pl.col("rep").alias("dst"), pl.col("id").alias("neighbour")), on="dst")
-    inter = inter.select("src", "neighbour", "jaccard", "estimate", "bands_shared")
-    multi = group_size.filter(pl.col("len") > 1).select(pl.col("rep").alias("src"))
-    intra = multi.join(head.select(pl.col("rep").alias("src"), pl.col("id").alias("neighbour")), on="src").select(
-        "src", "neighbour", pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
-        pl.lit(bands, dtype=pl.Int32).alias("bands_shared"),
-    )
-    per_group = (
-        pl.concat([intra, inter])
-        .sort(["src", "jaccard", "neighbour"], descending=[False, True, False])
-        .group_by("src", maintain_order=True)
-        .head(cap)
-    )
-    del edges, inter, intra, head
+    ]).sort("src")
+    before_cut = np.where(sizes > 1, np.minimum(cap, sizes), 0).astype(np.int64)
+    np.add.at(before_cut, left, np.minimum(cap, sizes[right]))
+    np.add.at(before_cut, right, np.minimum(cap, sizes[left]))
+    cum = np.cumsum(before_cut)
+    pieces, start, n = [], 0, len(rep_of)
+    while start < n:  # representatives start..stop-1
+        base = cum[start - 1] if start else 0
+        stop = max(start + 1, int(np.searchsorted(cum, base + chunk_rows, side="right")))
+        in_range = pl.col("src").is_between(start, stop - 1)
+        inter = edges.filter(in_range).join(head.rename({"rep": "dst"}), on="dst").select(
+            "src", "neighbour", "jaccard", "estimate", "bands_shared")
+        intra = head.rename({"rep": "src"}).filter(in_range & pl.col("src").is_in(
+            pl.Series(np.flatnonzero(sizes[start:stop] > 1) + start).implode())).select(
+            "src", "neighbour", pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
+            pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
+        pieces.append(pl.concat([intra, inter])
+                      .sort(["src", "jaccard", "neighbour"], descending=[False, True, False])
+                      .group_by("src", maintain_order=True)
+                      .head(cap))
+        start = stop
+        del inter, intra
+    per_group = pl.concat(pieces) if pieces else pl.DataFrame(schema={
+        "src": pl.Int64, "neighbour": pl.Int64, "jaccard": pl.Float64, "estimate": pl.Float64,
+        "bands_shared": pl.Int32})
+    del edges, head, pieces
     listed = per_group.group_by("src").len().rename({"src": "rep", "len": "rows"})
     self_listed = per_group.select(pl.col("src").alias("rep"), pl.col("neighbour").alias("id"),
                                    pl.lit(1, dtype=pl.Int64).alias("self"))

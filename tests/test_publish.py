@@ -17,7 +17,7 @@ from test_run_edges import expected_index
 
 from lshjob import EventSpec, ParameterError
 from lshjob.job import RunOptions, run_job
-from lshjob.publish import expand, neighbour_table
+from lshjob.publish import expand, neighbour_blocks, neighbour_table
 
 SPEC = EventSpec(entity="patron", element="title")
 
@@ -43,7 +43,11 @@ def test_the_count_made_before_expanding_is_the_number_of_rows_published():
                              "estimate": rng.uniform(0.5, 1, len(left)), "bands_shared": np.ones(len(left), np.int32)})
     keys = pl.Series("entity", np.arange(n) * 7)
     for k in (1, 4, 59, 60, 399):
-        assert expand(verified, rep_of, k, 3).published_rows == neighbour_table(verified, rep_of, keys, k, 3).height
+        whole = neighbour_table(verified, rep_of, keys, k, 3)
+        assert expand(verified, rep_of, k, 3).published_rows == whole.height
+        # Lists made a few representatives at a time, rows a few entities at a time: the same table.
+        chunked = pl.concat(list(neighbour_blocks(expand(verified, rep_of, k, 3, chunk_rows=50), keys, 70)))
+        assert chunked.equals(whole)
     alone = verified.clear()
     assert expand(alone, rep_of, 10, 3).published_rows == 60 * 10 + 3 * 2
 
