@@ -158,22 +158,19 @@ def _check_index_file(neighbours: Path, manifest: dict, warnings: list[str]) -> 
 
 
 def _events_digest(source, manifest: dict):
-    """The digest of the events, as the run computed it for its input (the names hashed are
-    the run's when the file count agrees, so the same files read by another path compare
-    equal); computed in a thread while the audit reads them. None when there is nothing to
-    compare with."""
+    """The digest of the events, as the run computed it for its input (bytes and order only,
+    so the same files read by another path compare equal); computed in a thread while the
+    audit reads them. None when there is nothing to compare with."""
     if not manifest.get("inputs", {}).get("sha256"):
         return None
-    files = [str(p) for p in resolve_paths(source)[0]]
-    recorded = manifest["inputs"].get("files") or []
-    return digest_in_background(files, recorded if len(recorded) == len(files) else None)
+    return digest_in_background([str(p) for p in resolve_paths(source)[0]])
 
 
 def _compare_events(digest, source, manifest: dict, warnings: list[str]) -> None:
     if digest is None:
         warnings.append(f"{source}: the manifest records no digest of the run's input; the events were not compared")
         return
-    size, sha = digest.result()
+    (size, sha), _ = digest.result()
     inputs = manifest["inputs"]
     if sha != inputs["sha256"]:
         warnings.append(f"{source}: these events differ from the run's input {inputs.get('source')} (sha256 "

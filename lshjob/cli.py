@@ -267,7 +267,7 @@ def run(
                      min_count=settings["min_count"], on_null=settings["on_null"])
     options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__})
     with _progress(quiet, as_json) as progress:
-        manifest = run_job(settings["events"], spec, options, settings["out"], progress)
+        manifest = run_job(settings["events"], spec, options, settings["out"], progress, command=sys.argv)
     for warning in manifest.get("warnings", []):  # a lock taken over, leftovers removed
         typer.echo(f"warning: {warning}", err=True)
     _emit(manifest, as_json, quiet, run_report(manifest))

@@ -1,33 +1,50 @@
-"""The digest of a run's input files: what the manifest records as ``inputs.sha256`` and what
+"""The digest of a run's input files: what the manifest records under ``inputs`` and what
 ``lshjob audit`` compares its events with.
 
-sha256 over each file in turn: its name (UTF-8) and a zero byte, then its bytes.
+Each file: its absolute path, size, modification time (UTC ISO 8601) and sha256
+(``hashlib.file_digest``). All together (``inputs.sha256``): the sha256 of the files'
+sha256 digests (hex, one a line, in the order the files are read), so the digest depends on
+the files' bytes and order only, not on the path they were read by.
 """
 
 from __future__ import annotations
 
 import hashlib
 from concurrent.futures import Future, ThreadPoolExecutor
+from datetime import datetime, timezone
+from pathlib import Path
 
 
-def input_digest(files: list[str], names: list[str] | None = None) -> tuple[int, str]:
-    """(bytes, sha256) of ``files``; ``names`` (default: the files as given) are the names
-    hashed, so files read under another path can be compared with a run's digest."""
-    h = hashlib.sha256()
-    sizes = 0
-    for file, name in zip(files, names if names is not None else files):
-        h.update(str(name).encode() + b"\0")
-        with open(file, "rb") as fh:
-            while block := fh.read(1 << 22):
-                h.update(block)
-                sizes += len(block)
-    return sizes, h.hexdigest()
+def iso(moment: datetime) -> str:
+    """UTC ISO 8601 with a ``Z``, to the microsecond."""
+    return moment.astimezone(timezone.utc).isoformat(timespec="microseconds").replace("+00:00", "Z")
 
 
-def digest_in_background(files: list[str], names: list[str] | None = None) -> Future:
+def file_record(name: str | Path) -> dict:
+    path = Path(name)
+    stat = path.stat()
+    with open(path, "rb") as fh:
+        sha = hashlib.file_digest(fh, "sha256").hexdigest()
+    return {"path": str(path.absolute()), "bytes": stat.st_size,
+            "mtime": iso(datetime.fromtimestamp(stat.st_mtime, timezone.utc)), "sha256": sha}
+
+
+def overall(records: list[dict]) -> tuple[int, str]:
+    """(bytes, sha256) of all the files (module docstring)."""
+    text = "".join(r["sha256"] + "\n" for r in records)
+    return sum(r["bytes"] for r in records), hashlib.sha256(text.encode()).hexdigest()
+
+
+def input_digest(files: list[str | Path]) -> tuple[tuple[int, str], list[dict]]:
+    """((bytes, sha256) of all, one record a file) of ``files``."""
+    records = [file_record(f) for f in files]
+    return overall(records), records
+
+
+def digest_in_background(files: list[str | Path]) -> Future:
     """:func:`input_digest`, computed in a thread while the caller works (hashlib releases the
     GIL on large blocks): 0.3 s of serial time at 1M entities otherwise."""
     pool = ThreadPoolExecutor(max_workers=1)
-    future = pool.submit(input_digest, files, names)
+    future = pool.submit(input_digest, list(files))
     pool.shutdown(wait=False)
     return future

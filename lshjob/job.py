@@ -5,22 +5,19 @@ recorded, and its counts kept for the manifest. One run at a time writes to an o
 (its lock, :mod:`lshjob.folder_lock`, is taken before any work). Scratch files live in a work
 folder inside the output folder (or under ``--scratch``) and are removed at the end, and what
 killed runs left is removed at the start (:mod:`lshjob.scratch`); the published index changes
-only by the atomic renames of :func:`lshjob.publish.publish_index`.
+only by the atomic renames of :func:`lshjob.publish.commit_index`. The manifest returned is the
+one written, provenance included (:mod:`lshjob.provenance`).
 """
 
 from __future__ import annotations
 
-import os
-import platform
+import json
 import shutil
 import time
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
-import numpy as np
-import polars as pl
-
-from . import __version__, parts, planner, prepare
+from . import parts, planner, prepare, provenance, publish
 from .digest import digest_in_background
 from .errors import ParameterError
 from .folder_lock import output_lock
@@ -28,7 +25,6 @@ from .ingest import EventSpec, resolve_paths
 from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
 from .loading import grouping_need, open_events
 from .progress import QUIET, StageProgress
-from .publish import neighbour_table, publish_index
 from .resources import current_bytes, default_memory, parse_size, peak_bytes, reset_peak
 from .scratch import remove_leftovers, work_folder
 from .signatures import SignatureParams
@@ -129,8 +125,11 @@ def run_job(
     options: RunOptions,
     out: str | Path,
     progress: StageProgress = QUIET,
+    command: list[str] | None = None,
 ) -> dict:
-    """Build and publish the neighbour index of ``events`` into ``out``; return the manifest."""
+    """Build and publish the neighbour index of ``events`` into ``out``; return the manifest
+    (the same record as ``out/manifest.json``). ``command``: the command line, when run
+    from one."""
     options.validate()
     if spec.segment is not None or spec.period is not None:
         raise ParameterError("lshjob run signs one set per entity; sign segments or periods with lshjob sign")
@@ -141,6 +140,8 @@ def run_job(
     stages = _Stages(progress)
     counts: dict[str, object] = {}
     started = time.perf_counter()
+    started_at = provenance.utc_now()
+    run_id = provenance.new_run_id(started_at)
     try:
         warnings = lock.notes + remove_leftovers(out, options.scratch)  # holding the lock: all are dead runs'
         # started first: reading and hashing the files (no GIL) fills the other core while the
@@ -152,10 +153,14 @@ def run_job(
             options.parts is None and grouping_need(source) > parts.ONE_PART_SHARE * memory)
         built = (prepare.in_parts if in_parts else prepare.in_one_part)(source, options, memory, work, stages)
         report, plan = built.report, built.plan
+        warnings += built.warnings
         counts.update(events=report.rows_read, entities=len(built.keys), membership_rows=report.membership_rows,
                       empty_after_filter=report.empty_after_filter, null_rows_dropped=report.null_rows_dropped,
                       parts=len(built.store.ranges), representatives=built.representatives,
                       entities_in_identical_groups=int(len(built.keys) - built.representatives))
+        if report.empty_after_filter:
+            warnings.append(f"{report.empty_after_filter} entities had no element left after --min-count "
+                            f"{source.min_count:g}; they are not in the index")
 
         if built.bucket_files is None:  # identical sets only: no bands; across parts, by fingerprint
             skew = None
@@ -177,50 +182,60 @@ def run_job(
                                          part_ranges=built.store.ranges if in_parts else None)
             skew = joined["skew"]
             counts["candidate_pairs"] = joined["candidate_pairs"]
+            if skew["skipped_pairs"]:
+                warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over --max-bucket "
+                                f"{options.max_bucket}, still over it once split) were not compared")
 
             with stages("verify"):
                 verified = parts.verify_blocks(candidates, built.store, options.threshold, built.params, memory)
             counts["verified_pairs"] = verified.height
+        built.store = None  # the sets are not needed any more: publishing gets their memory
 
+        top_k = publish.effective_top_k(options.top_k, len(built.keys))
+        if top_k < options.top_k:
+            warnings.append(f"--top-k {options.top_k} is more than the {len(built.keys) - 1} other entities; "
+                            f"used {top_k}")
         with stages("publish"):
-            table = neighbour_table(verified, built.rep_of, built.keys, options.top_k, plan.get("bands", 0))
-        counts["published_rows"] = table.height
+            expansion = publish.expand(verified, built.rep_of, top_k, plan.get("bands", 0),
+                                       publish.block_rows(memory))
+            del verified
+            publish.check_output(expansion.published_rows, built.keys, options.top_k, memory,
+                                 publish.identical_rows(built.rep_of, top_k)[2])
+            meta = provenance.neighbours_metadata(run_id, options, spec, top_k)
+            facts = publish.stage_neighbours(
+                out, publish.neighbour_blocks(expansion, built.keys, publish.block_rows(memory)), meta)
+        counts["published_rows"] = facts["rows"]
+        if counts["published_rows"] == 0:
+            warnings.append("no pair reached the threshold: the index is empty")
         manifest = {
             "format": "lshjob-index",
             "format_version": 1,
-            "inputs": _inputs(events, report, digest.result()),
+            "run_id": run_id,
+            "started_at": provenance.iso(started_at),
+            "host": provenance.host(),
+            "command": list(command) if command is not None else None,
+            "inputs": provenance.inputs(events, report, digest),
             "spec": asdict(spec),
             "options": asdict(options),
+            "top_k_effective": top_k,
             "memory_budget_bytes": memory,
             "plan": plan,
             "counts": counts,
             "skew": skew,
-            "seconds": stages.seconds,
             "peak_memory_bytes": stages.peak,
-            "versions": _versions(),
+            "versions": provenance.versions(),
+            "output": facts,
+            "out": str(out.absolute()),
             "warnings": warnings,
         }
-        write_start = time.perf_counter()
-        facts = publish_index(out, table, manifest)
-        manifest["seconds"] = dict(stages.seconds, write=round(time.perf_counter() - write_start, 3))
-        manifest["output"] = facts
-        manifest["seconds"]["total"] = round(time.perf_counter() - started, 3)
-        manifest["out"] = str(out)
+        manifest["seconds"] = dict(stages.seconds, total=round(time.perf_counter() - started, 3))
+        manifest["finished_at"] = provenance.iso(provenance.utc_now())
+        manifest = json.loads(json.dumps(manifest, default=str))  # what the file holds, exactly
+        publish.commit_index(out, manifest)
         return manifest
     finally:
         shutil.rmtree(work, ignore_errors=True)
-        lock.release()
+        publish.discard_staging(out)
+        lock.release()  # and the folder, when the lock made it and nothing was written
 
 
-def _inputs(events, report, digest: tuple[int, str]) -> dict:
-    sizes, sha256 = digest
-    return {"source": str(events), "files": report.files, "bytes": sizes, "rows": report.rows_read,
-            "sha256": sha256}
-
-
-def _versions() -> dict:
-    import duckdb
-    import numba
-
-    return {"lshjob": __version__, "python": platform.python_version(), "polars": pl.__version__,
-            "numpy": np.__version__, "duckdb": duckdb.__version__, "numba": numba.__version__}

@@ -256,7 +256,9 @@ def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: floa
             for offset in range(0, _rows(files), step):
                 chunk = frame.slice(offset, step).collect()
                 kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
-            block = pl.concat(kept)
+            block = pl.concat(kept) if kept else None
+            if block is None or block.height == 0:  # no candidate here, or none reached the threshold
+                continue
             if params is None:  # identical sets only, no signatures: the estimate is exact
                 block = block.with_columns(estimate=pl.col("jaccard")).select(
                     "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")

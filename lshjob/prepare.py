@@ -8,14 +8,14 @@ the bucket files the join reads. :func:`lshjob.job.run_job` times each stage.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
 import polars as pl
 
-from . import band, parts, planner, similarity
+from . import band, parts, planner, publish, similarity
 from .errors import InputError, ParameterError
 from .identical import collapse_identical, fingerprints
 from .ingest import IngestReport
@@ -45,19 +45,21 @@ class Prepared:
     # identical (same fingerprint), split by parts as the join writes them
     candidates: Path | None = None
     identical_pairs: int = 0  # how many such pairs
+    warnings: list[str] = field(default_factory=list)  # for the manifest
 
 
 def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: Path, stages) -> Prepared:
     """The usual run: every set in memory at once."""
     with stages("ingest"):
         sets, report = membership_of(source, None)
-    _check_entities(source, sets.size)
     with stages("collapse"):
         rep_of, reps = collapse_identical(sets)
+    _check_output(rep_of, sets.keys, options, memory)
     with stages("plan"):
-        plan = choose_plan(sets, options)
+        plan = choose_plan(sets, options, distinct_sets=len(reps))
     _check_predicted(plan, options)
-    built = Prepared(sets.keys, rep_of, len(reps), parts.HeldSets(sets), report, plan)
+    built = Prepared(sets.keys, rep_of, len(reps), parts.HeldSets(sets), report, plan,
+                     warnings=_few_sets(sets.size, len(reps)))
     if plan["mode"] != "identical-only":
         built.params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
         bands = SignAndBand(built.params, plan, memory, stages)
@@ -72,12 +74,11 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
     """The run a key range at a time (:mod:`lshjob.parts`)."""
     with stages("count"):
         per_entity = parts.events_per_entity(source)
-    _check_entities(source, per_entity.height)
     with stages("plan"):
         # Half a part: the planner's histogram adds an inverted index of the sample.
         budget_events = int(parts.part_budget(memory, per_entity.height) / 2 / parts.bytes_per_event(source))
         sample = None
-        if options.threshold < 1.0:  # identical sets only need no sample
+        if options.threshold < 1.0 and per_entity.height > 1:  # identical sets only need no sample
             sample, _ = membership_of(source, parts.planning_sample(per_entity, budget_events))
         plan = choose_plan(sample, options, total_entities=per_entity.height)
         del sample
@@ -117,8 +118,10 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
         raise InputError(f"{source.where}: no element is left after filtering (--min-count {source.min_count}); "
                          "nothing to sign")
     keys = pl.concat(keys)
-    _check_entities(source, len(keys))
-    prepared = Prepared(keys, np.concatenate(rep_of), representatives, store, report, plan, params)
+    rep_of = np.concatenate(rep_of)
+    _check_output(rep_of, keys, options, memory)  # groups within parts: a lower bound
+    prepared = Prepared(keys, rep_of, representatives, store, report, plan, params,
+                        warnings=_few_sets(len(keys), None))
     if banded:
         prepared.bucket_files, prepared.shared_rows = bands.write(work / "buckets")
         prepared.bucket_rows = representatives * plan["bands"]
@@ -129,9 +132,21 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
     return prepared
 
 
-def _check_entities(source, n: int) -> None:
-    if n < 2:
-        raise InputError(f"{source.where}: only {n} entity after ingest; a neighbour index needs at least 2")
+def _few_sets(entities: int, distinct: int | None) -> list[str]:
+    """Why an index will hold no pair of different sets, when the input says so already."""
+    if entities < 2:
+        return [f"only {entities} entity: the index is empty"]
+    if distinct == 1:
+        return [f"all {entities} entities have the same set: the index pairs identical sets only"]
+    return []
+
+
+def _check_output(rep_of: np.ndarray, keys: pl.Series, options: "RunOptions", memory: int) -> None:
+    """Refuse, before signing, a top-k whose groups of identical sets alone would publish more
+    rows than the budget holds (:func:`lshjob.publish.check_output`)."""
+    top_k = publish.effective_top_k(options.top_k, len(keys))
+    rows, _, largest = publish.identical_rows(rep_of, top_k)
+    publish.check_output(rows, keys, options.top_k, memory, largest)
 
 
 def _check_predicted(plan: dict, options: RunOptions) -> None:
@@ -184,12 +199,17 @@ class SignAndBand:
         return files, written
 
 
-def choose_plan(sets: Membership | None, options: RunOptions, total_entities: int | None = None) -> dict:
+def choose_plan(sets: Membership | None, options: RunOptions, total_entities: int | None = None,
+                distinct_sets: int | None = None) -> dict:
     """The plan, from exact Jaccard of a sample of ``sets`` (all entities, or a uniform sample
-    of ``total_entities``)."""
+    of ``total_entities``). Without two different sets (``distinct_sets``, when known) or
+    two entities, nothing is banded."""
     if options.threshold >= 1.0:
         return {"mode": "identical-only", "why": "threshold 1.0: only identical sets qualify; "
                 "they are grouped exactly, no signatures or bands are needed"}
+    if (total_entities or sets.size) < 2 or (distinct_sets is not None and distinct_sets < 2):
+        return {"mode": "identical-only", "why": "fewer than two different sets: only identical sets "
+                "can pair; they are grouped exactly, no signatures or bands are needed"}
     n_entities = total_entities or sets.size
     # Against a uniform sample of a fraction f of the entities, a sampled entity meets only
     # a fraction f of its similar pairs: 1/f times as many sampled entities see as many pairs.

@@ -1,21 +1,30 @@
 """Publish stage: verified representative pairs -> the neighbour index, written atomically.
 
-Output contract of :func:`neighbour_table`: one row per (entity, neighbour), both
-directions, at most ``top_k`` per entity: ``entity``, ``neighbour`` (keys), ``jaccard``
-(exact), ``estimate`` (signature agreement), ``bands_shared`` Int32, ``rank`` UInt32
-(1 = most similar; ties broken by neighbour key ascending). Sorted by (entity, rank).
+Output contract of the neighbour table (:func:`neighbour_blocks`, concatenated): one row per
+(entity, neighbour), both directions, at most ``top_k`` per entity: ``entity``, ``neighbour``
+(keys), ``jaccard`` (exact), ``estimate`` (signature agreement), ``bands_shared`` Int32,
+``rank`` UInt32 (1 = most similar; ties broken by neighbour key ascending). Sorted by
+(entity, rank). No pair at all gives a file with these columns and no row.
 
 Groups of identical sets are expanded here: members of one group are each other's
 neighbours with Jaccard 1, and a member inherits its representative's verified pairs
 (same set, same signature, same Jaccard). Only the first top_k + 1 members of a group (in
 key order) are ever expanded as neighbours, so a group of a million identical sets costs
-a million x top_k rows, not a million squared.
+a million x top_k rows, not a million squared. A group of m identical sets with
+top_k >= m - 1 still publishes m(m - 1) rows: that is the index asked for, so its size is
+counted before anything is expanded (:func:`expand`, :func:`check_output`) and a run whose
+index would not fit the memory budget is refused with the figures.
 
-:func:`publish_index` writes ``neighbours.parquet`` and then ``manifest.json`` (which
-records the sha256 of the neighbours file) into the output folder by atomic renames from
-a staging folder inside it. Until the renames the previous index is untouched; the
-previous files are kept in ``previous/`` by hard links, itself built in the staging folder
-and renamed into place. One run at a time publishes into a folder (its lock,
+The rows are made a block of entities at a time (about an eighth of the budget in flight)
+and streamed into the Parquet file, so publishing holds the table's size only when it fits
+a block.
+
+:func:`stage_neighbours` writes ``neighbours.parquet`` in a staging folder inside the output
+folder; :func:`commit_index` writes ``manifest.json`` beside it (the manifest records the
+neighbours file's sha256) and renames both into place, the neighbours first. Until the
+renames the previous index is untouched; the previous files are kept in ``previous/`` by
+hard links, built in the staging folder and
+renamed into place. One run at a time publishes into a folder (its lock,
 :mod:`lshjob.folder_lock`, is held by the caller).
 """
 
@@ -26,74 +35,184 @@ import hashlib
 import json
 import os
 import shutil
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import polars as pl
+from polars.io.plugins import register_io_source
+
+from .errors import ParameterError
 
 NEIGHBOURS = "neighbours.parquet"
 MANIFEST = "manifest.json"
 PREVIOUS = "previous"
+METADATA_KEY = "lshjob"
+FORMAT_VERSION = 1
+VALUE_BYTES = 24  # jaccard, estimate (Float64), bands_shared, rank (32 bits) of a published row
+# a block's expanded rows in flight: ids, values, the sort's copy and the keys gathered
+# (about 100 bytes a row with integer keys; measured on the memory test of tests/test_publish.py)
+BLOCK_BYTES_PER_ROW = 160
+MIN_BLOCK_ROWS = 65_536
 
 
-def neighbour_table(
-    verified: pl.DataFrame,
-    rep_of: np.ndarray,
-    keys: pl.Series,
-    top_k: int,
-    bands: int,
-) -> pl.DataFrame:
-    """Expand representative pairs to entities, rank and cut at top_k (module contract)."""
+@dataclass
+class Expansion:
+    """What publishing will expand, counted before anything is: ``members`` (``id``
+    ascending, ``rep``, ``rows``: rows expanded for it) and each representative's neighbour
+    list ``per_group`` (``src``, ``neighbour``, ``jaccard``, ``estimate``, ``bands_shared``,
+    in rank order), and the exact number of rows the index will hold."""
+
+    members: pl.DataFrame
+    per_group: pl.DataFrame
+    published_rows: int
+    top_k: int
+
+
+def effective_top_k(top_k: int, entities: int) -> int:
+    """An entity has at most entities - 1 neighbours: a larger top-k changes nothing."""
+    return max(1, min(top_k, entities - 1))
+
+
+def row_bytes(keys: pl.Series) -> int:
+    """Bytes a published row takes in memory: two keys and the values (text keys: polars'
+    16-byte view plus the text when longer than 12 bytes)."""
+    if keys.dtype.is_integer() or len(keys) == 0:
+        key = 8
+    else:
+        lengths = keys.str.len_bytes()
+        key = 16 + int(lengths.filter(lengths > 12).sum() / len(keys))
+    return VALUE_BYTES + 2 * key
+
+
+def identical_rows(rep_of: np.ndarray, top_k: int) -> tuple[int, int, int]:
+    """(rows, groups, largest): the rows groups of identical sets publish among themselves, a
+    lower bound of the index's size known right after the collapse."""
+    sizes = np.bincount(rep_of, minlength=len(rep_of)).astype(np.int64)
+    sizes = sizes[sizes > 1]
+    rows = int((sizes * np.minimum(top_k, sizes - 1)).sum())
+    return rows, len(sizes), int(sizes.max()) if len(sizes) else 0
+
+
+def check_output(rows: int, keys: pl.Series, top_k: int, memory: int, largest_group: int = 0) -> None:
+    """Refuse an index whose rows would take more than the memory budget (module docstring)."""
+    need = rows * row_bytes(keys)
+    if need <= memory:
+        return
+    over = f" over a group of {largest_group} identical sets" if largest_group > 1 else ""
+    raise ParameterError(
+        f"--top-k {top_k}{over} would publish {rows:.3g} rows (~{need / 2**30:.1f} GiB); the budget is "
+        f"{memory / 2**30:.1f} GiB; lower --top-k or raise --memory"
+    )
+
+
+def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
+           chunk_rows: int = 1 << 62) -> Expansion:
+    """Each representative's ranked neighbour list and each member's row count (no rows of
+    the index are made here). Before its cut at top_k + 1, a representative's list holds
+    the first top_k + 1 members of each group it is paired with; the lists are made for a
+    range of representatives at a time, each range holding at most about ``chunk_rows``
+    rows before the cut (or one representative's)."""
     cap = top_k + 1
+    sizes = np.bincount(rep_of, minlength=len(rep_of))
+    left, right = verified["left_rep"].to_numpy(), verified["right_rep"].to_numpy()
     # Only entities of a verified pair or of a group of identical sets can have neighbours.
-    involved = np.bincount(rep_of, minlength=len(rep_of)) > 1
-    involved[verified["left_rep"].to_numpy()] = True
-    involved[verified["right_rep"].to_numpy()] = True
+    involved = sizes > 1
+    involved[left] = True
+    involved[right] = True
     ids = np.flatnonzero(involved[rep_of])
     members = pl.DataFrame({"id": ids.astype(np.int64), "rep": rep_of[ids].astype(np.int64)})
-    group_size = members.group_by("rep").len()
     head = members.with_columns(pos=pl.int_range(pl.len()).over("rep")).filter(pl.col("pos") < cap)
+    head = head.select("rep", pl.col("id").alias("neighbour"))
 
-    edges = pl.concat(
-        [
-            verified.select(pl.col("left_rep").alias("src"), pl.col("right_rep").alias("dst"),
-                            "jaccard", "estimate", "bands_shared"),
-            verified.select(pl.col("right_rep").alias("src"), pl.col("left_rep").alias("dst"),
-                            "jaccard", "estimate", "bands_shared"),
-        ]
-    )
-    inter = edges.join(head.select(pl.col("rep").alias("dst"), pl.col("id").alias("neighbour")), on="dst")
-    inter = inter.select("src", "neighbour", "jaccard", "estimate", "bands_shared")
-    multi = group_size.filter(pl.col("len") > 1).select(pl.col("rep").alias("src"))
-    intra = multi.join(head.select(pl.col("rep").alias("src"), pl.col("id").alias("neighbour")), on="src").select(
-        "src",
-        "neighbour",
-        pl.lit(1.0).alias("jaccard"),
-        pl.lit(1.0).alias("estimate"),
-        pl.lit(bands, dtype=pl.Int32).alias("bands_shared"),
-    )
-    per_group = (
-        pl.concat([intra, inter.with_columns(pl.col("bands_shared").cast(pl.Int32))])
-        .sort(["src", "jaccard", "neighbour"], descending=[False, True, False])
-        .group_by("src", maintain_order=True)
-        .head(cap)
-    )
-    table = (
-        members.join(per_group, left_on="rep", right_on="src")
-        .filter(pl.col("id") != pl.col("neighbour"))
-        .sort(["id", "jaccard", "neighbour"], descending=[False, True, False])
-        .group_by("id", maintain_order=True)
-        .head(top_k)
-        .with_columns(rank=(pl.int_range(pl.len()).over("id") + 1).cast(pl.UInt32))
-    )
+    columns = ("jaccard", "estimate", pl.col("bands_shared").cast(pl.Int32))
+    edges = pl.concat([
+        verified.select(pl.col("left_rep").alias("src"), pl.col("right_rep").alias("dst"), *columns),
+        verified.select(pl.col("right_rep").alias("src"), pl.col("left_rep").alias("dst"), *columns),
+    ]).sort("src")
+    before_cut = np.where(sizes > 1, np.minimum(cap, sizes), 0).astype(np.int64)
+    np.add.at(before_cut, left, np.minimum(cap, sizes[right]))
+    np.add.at(before_cut, right, np.minimum(cap, sizes[left]))
+    cum = np.cumsum(before_cut)
+    pieces, start, n = [], 0, len(rep_of)
+    while start < n:  # representatives start..stop-1
+        base = cum[start - 1] if start else 0
+        stop = max(start + 1, int(np.searchsorted(cum, base + chunk_rows, side="right")))
+        in_range = pl.col("src").is_between(start, stop - 1)
+        inter = edges.filter(in_range).join(head.rename({"rep": "dst"}), on="dst").select(
+            "src", "neighbour", "jaccard", "estimate", "bands_shared")
+        intra = head.rename({"rep": "src"}).filter(in_range & pl.col("src").is_in(
+            pl.Series(np.flatnonzero(sizes[start:stop] > 1) + start).implode())).select(
+            "src", "neighbour", pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
+            pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
+        pieces.append(pl.concat([intra, inter])
+                      .sort(["src", "jaccard", "neighbour"], descending=[False, True, False])
+                      .group_by("src", maintain_order=True)
+                      .head(cap))
+        start = stop
+        del inter, intra
+    per_group = pl.concat(pieces) if pieces else pl.DataFrame(schema={
+        "src": pl.Int64, "neighbour": pl.Int64, "jaccard": pl.Float64, "estimate": pl.Float64,
+        "bands_shared": pl.Int32})
+    del edges, head, pieces
+    listed = per_group.group_by("src").len().rename({"src": "rep", "len": "rows"})
+    self_listed = per_group.select(pl.col("src").alias("rep"), pl.col("neighbour").alias("id"),
+                                   pl.lit(1, dtype=pl.Int64).alias("self"))
+    members = (members.join(listed, on="rep", how="left", maintain_order="left")
+               .join(self_listed, on=["rep", "id"], how="left", maintain_order="left")
+               .with_columns(pl.col("rows").fill_null(0).cast(pl.Int64), pl.col("self").fill_null(0)))
+    published = int(members.select(pl.min_horizontal(pl.col("rows") - pl.col("self"), top_k).sum()).item() or 0)
+    return Expansion(members.select("id", "rep", "rows"), per_group, published, top_k)
+
+
+def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
+    """The index's rows (module contract), a block of entities at a time, each block
+    expanding at most ``block_rows`` rows (or one entity's list)."""
+    members, per_group, top_k = expansion.members, expansion.per_group, expansion.top_k
+    cum = np.cumsum(members["rows"].to_numpy())
+    start = 0
+    while start < members.height:
+        base = cum[start - 1] if start else 0
+        stop = max(start + 1, int(np.searchsorted(cum, base + block_rows, side="right")))
+        block = members.slice(start, stop - start).select("id", "rep")
+        start = stop
+        table = (
+            block.join(per_group, left_on="rep", right_on="src")
+            .filter(pl.col("id") != pl.col("neighbour"))
+            .sort(["id", "jaccard", "neighbour"], descending=[False, True, False])
+            .group_by("id", maintain_order=True)
+            .head(top_k)
+            .with_columns(rank=(pl.int_range(pl.len()).over("id") + 1).cast(pl.UInt32))
+        )
+        yield _with_keys(table, keys)
+        del table, block
+    if members.height == 0:
+        yield _with_keys(pl.DataFrame(schema={"id": pl.Int64, "neighbour": pl.Int64, "jaccard": pl.Float64,
+                                              "estimate": pl.Float64, "bands_shared": pl.Int32,
+                                              "rank": pl.UInt32}), keys)
+
+
+def _with_keys(table: pl.DataFrame, keys: pl.Series) -> pl.DataFrame:
     return table.select(
         keys.gather(table["id"].to_numpy()).alias("entity"),
         keys.gather(table["neighbour"].to_numpy()).alias("neighbour"),
-        "jaccard",
-        "estimate",
-        "bands_shared",
-        "rank",
+        pl.col("jaccard").cast(pl.Float64),
+        pl.col("estimate").cast(pl.Float64),
+        pl.col("bands_shared").cast(pl.Int32),
+        pl.col("rank").cast(pl.UInt32),
     )
+
+
+def neighbour_table(verified: pl.DataFrame, rep_of: np.ndarray, keys: pl.Series, top_k: int,
+                    bands: int) -> pl.DataFrame:
+    """The whole index as one table (module contract): for small runs and tests."""
+    blocks = list(neighbour_blocks(expand(verified, rep_of, top_k, bands), keys, 1 << 62))
+    return pl.concat(blocks)
+
+
+def block_rows(memory: int) -> int:
+    """Expanded rows a block may hold: about an eighth of the budget."""
+    return max(MIN_BLOCK_ROWS, memory // 8 // BLOCK_BYTES_PER_ROW)
 
 
 def sha256_file(path: Path, chunk: int = 1 << 22) -> str:
@@ -104,29 +223,78 @@ def sha256_file(path: Path, chunk: int = 1 << 22) -> str:
     return digest.hexdigest()
 
 
-def publish_index(out_dir: Path, neighbours: pl.DataFrame, manifest: dict) -> dict:
-    """Write the index into ``out_dir`` atomically (see module docstring); return file facts."""
+def staging_folder(out_dir: Path) -> Path:
+    return out_dir / f".staging-{os.getpid()}"
+
+
+def stage_neighbours(out_dir: Path, tables, metadata: dict) -> dict:
+    """Write the index's rows (``tables``: an iterator of blocks in order) into
+    ``neighbours.parquet`` of the staging folder, with ``metadata`` as the file's key-value
+    record ``lshjob`` (JSON); return the file's facts. One block is written at once; more
+    are streamed into the file as they are made (polars' writer pulls them from an IO
+    source), so only the block in flight is held."""
     out_dir.mkdir(parents=True, exist_ok=True)
-    staging = out_dir / f".staging-{os.getpid()}"
+    staging = staging_folder(out_dir)
     shutil.rmtree(staging, ignore_errors=True)
     staging.mkdir()
+    path = staging / NEIGHBOURS
+    kv = {METADATA_KEY: json.dumps(metadata, sort_keys=True)}
+    pending = iter(tables)
+    first = next(pending)
+    second = next(pending, None)
+    if second is None:
+        first.write_parquet(path, compression="zstd", metadata=kv)
+        rows = first.height
+    else:
+        rows = _stream(first, second, pending, path, kv)
+    return {"neighbours": NEIGHBOURS, "rows": rows, "sha256": sha256_file(path), "bytes": path.stat().st_size}
+
+
+def _stream(first: pl.DataFrame, second: pl.DataFrame, pending, path: Path, kv: dict) -> int:
+    held = [second, first]
+    schema = first.schema
+    rows = [0]
+    failure: list[BaseException] = []
+
+    def source(with_columns, predicate, n_rows, batch_size):
+        try:
+            while held or (table := next(pending, None)) is not None:
+                if held:
+                    table = held.pop()
+                rows[0] += table.height
+                yield table
+                table = None
+        except Exception as exc:
+            failure.append(exc)
+            raise
+
+    del first, second
     try:
-        neighbours.write_parquet(staging / NEIGHBOURS, compression="zstd")
-        facts = {
-            "neighbours": NEIGHBOURS,
-            "rows": neighbours.height,
-            "sha256": sha256_file(staging / NEIGHBOURS),
-            "bytes": (staging / NEIGHBOURS).stat().st_size,
-        }
-        manifest = dict(manifest, output=facts)
-        (staging / MANIFEST).write_text(json.dumps(manifest, indent=2, sort_keys=True, default=str) + "\n")
+        register_io_source(source, schema=schema).sink_parquet(path, compression="zstd", metadata=kv,
+                                                               maintain_order=True)
+    except Exception:
+        if failure:
+            raise failure[0] from None
+        raise
+    return rows[0]
+
+
+def commit_index(out_dir: Path, manifest: dict) -> None:
+    """Write ``manifest`` beside the staged neighbours file and rename both into place (module
+    docstring); the staging folder is removed whatever happens."""
+    staging = staging_folder(out_dir)
+    try:
+        (staging / MANIFEST).write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
         if (out_dir / MANIFEST).exists() and (out_dir / NEIGHBOURS).exists():
             _keep_previous(out_dir, staging)
         os.replace(staging / NEIGHBOURS, out_dir / NEIGHBOURS)
         os.replace(staging / MANIFEST, out_dir / MANIFEST)
     finally:
         shutil.rmtree(staging, ignore_errors=True)
-    return facts
+
+
+def discard_staging(out_dir: Path) -> None:
+    shutil.rmtree(staging_folder(out_dir), ignore_errors=True)
 
 
 def _keep_previous(out_dir: Path, staging: Path) -> None:

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import json
+from pathlib import Path
+
 import numpy as np
 import polars as pl
 
@@ -27,3 +30,14 @@ def planted_pairs(n_pairs: int, low: float, seed: int, background: int = 1000) -
         rows_p += [f"B{j:05d}"] * len(titles)
         rows_t += sorted(titles)
     return pl.DataFrame({"patron": rows_p, "title": rows_t})
+
+
+def same_index(a: Path, b: Path) -> bool:
+    """Two indexes hold the same rows, in the same order and types, and the same file
+    metadata but for the run id (each run has its own)."""
+    def meta(path):
+        record = json.loads(pl.read_parquet_metadata(path / "neighbours.parquet")["lshjob"])
+        return {k: v for k, v in record.items() if k != "run_id"}
+
+    return (pl.read_parquet(a / "neighbours.parquet").equals(pl.read_parquet(b / "neighbours.parquet"))
+            and meta(a) == meta(b))

@@ -221,8 +221,7 @@ def test_a_neighbour_table_other_than_the_manifests_fails_and_a_missing_one_is_b
 
 
 def test_events_other_than_the_runs_input_are_warned_about(built, tmp_path):
-    # Oracle: the manifest's input digest (sha256 of the file's name, a zero byte and its
-    # bytes). A byte-identical copy under another path is the run's input; a copy without one
+    # Oracle: the manifest's input digest (sha256 over the files' own sha256, bytes only). A byte-identical copy under another path is the run's input; a copy without one
     # loan is not, and the audit says so on stderr and in the report.
     folder, sets = built
     copy = tmp_path / "same.parquet"

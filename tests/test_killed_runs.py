@@ -56,9 +56,11 @@ RACE = r"""
 import sys
 from pathlib import Path
 import polars as pl
-from lshjob.publish import publish_index
+from lshjob.publish import commit_index, stage_neighbours
 for i in range(40):
-    publish_index(Path(sys.argv[1]), pl.DataFrame({"writer": [sys.argv[2]], "round": [i]}), {"round": i})
+    out = Path(sys.argv[1])
+    stage_neighbours(out, [pl.DataFrame({"writer": [sys.argv[2]], "round": [i]})], {"round": i})
+    commit_index(out, {"round": i})
 """
 
 

@@ -6,7 +6,7 @@ import json
 import numpy as np
 import polars as pl
 import pytest
-from helpers import planted_pairs
+from helpers import planted_pairs, same_index
 from test_run import brute_force_pairs, published_pairs
 
 from lshjob import EventSpec, ParameterError
@@ -56,7 +56,7 @@ def test_an_index_built_in_parts_equals_the_index_built_in_one(tmp_path, integer
     assert four["counts"]["representatives"] > one["counts"]["representatives"]
     for name in ("events", "entities", "membership_rows"):
         assert four["counts"][name] == one["counts"][name]
-    assert (tmp_path / "one/neighbours.parquet").read_bytes() == (tmp_path / "four/neighbours.parquet").read_bytes()
+    assert same_index(tmp_path / "one", tmp_path / "four")
     truth = brute_force_pairs(events.with_columns(pl.col("patron").cast(pl.String)), 0.4)
     got = {tuple(sorted(map(str, k))): v for k, v in published_pairs(tmp_path / "four").items()}
     assert len(got) > 200
@@ -83,7 +83,7 @@ def test_weighted_events_and_empty_sets_in_parts(tmp_path):
     assert one["counts"]["empty_after_filter"] > 0
     for name in ("entities", "membership_rows", "empty_after_filter", "published_rows"):
         assert three["counts"][name] == one["counts"][name], name
-    assert (tmp_path / "one/neighbours.parquet").read_bytes() == (tmp_path / "three/neighbours.parquet").read_bytes()
+    assert same_index(tmp_path / "one", tmp_path / "three")
 
 
 def test_a_small_budget_turns_to_parts_by_itself(tmp_path, demo_events, monkeypatch):
@@ -100,7 +100,7 @@ def test_a_small_budget_turns_to_parts_by_itself(tmp_path, demo_events, monkeypa
     written = json.loads((tmp_path / "parts/manifest.json").read_text())
     assert written["counts"]["parts"] == manifest["counts"]["parts"]
     assert "count" in written["seconds"] and "count" in written["peak_memory_bytes"]
-    assert (tmp_path / "one/neighbours.parquet").read_bytes() == (tmp_path / "parts/neighbours.parquet").read_bytes()
+    assert same_index(tmp_path / "one", tmp_path / "parts")
 
 
 @pytest.mark.parametrize("integer_patrons", [False, True])
@@ -174,7 +174,7 @@ def test_threshold_one_in_parts_pairs_identical_sets_across_parts(tmp_path):
     four = run_job(src, SPEC, RunOptions(threshold=1.0, top_k=50, parts=4), tmp_path / "four")
     assert four["counts"]["parts"] == 4 and four["counts"]["candidate_pairs"] > 0
     assert four["counts"]["representatives"] > one["counts"]["representatives"]  # groups cut by parts
-    assert (tmp_path / "one/neighbours.parquet").read_bytes() == (tmp_path / "four/neighbours.parquet").read_bytes()
+    assert same_index(tmp_path / "one", tmp_path / "four")
     truth = brute_force_pairs(events, 1.0)
     got = published_pairs(tmp_path / "four")
     assert len(truth) > 20 and set(got) == set(truth)
