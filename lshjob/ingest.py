@@ -148,16 +148,9 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
         if spec.on_null == "error":
             name, count = next(iter(nulls.items()))
             with report.reading(where):
-                first = (
-                    lf.with_row_index("__row")
-                    .filter(pl.col(name).is_null())
-                    .select("__row", FILE_COLUMN)
-                    .head(1)
-                    .collect()
-                )
+                path, place, _ = _first_row(lf, pl.col(name).is_null(), name)
             raise InputError(
-                f"{first[FILE_COLUMN][0]}: column {name!r} has {count} null value(s) "
-                f"(first at row {first['__row'][0]} of the input); "
+                f"{path}: column {name!r} has {count} null value(s) (first at {place}); "
                 "clean the data or pass --on-null drop to skip such rows"
             )
         report.null_rows_dropped = int(stats["__any_null"][0])
@@ -312,18 +305,28 @@ def _check_types(where: str, schema: pl.Schema, spec: EventSpec) -> None:
 
 
 def _check_time_strings(lf: pl.LazyFrame, name: str) -> None:
-    bad = (
-        lf.with_row_index("__row")
-        .filter(pl.col(name).str.to_datetime(strict=False).is_null())
-        .select("__row", FILE_COLUMN, name)
-        .head(1)
-        .collect()
-    )
-    if bad.height:
+    found = _first_row(lf, pl.col(name).str.to_datetime(strict=False).is_null(), name)
+    if found is not None:
+        path, place, value = found
         raise InputError(
-            f"{bad[FILE_COLUMN][0]}: column {name!r} value {bad[name][0]!r} at row "
-            f"{bad['__row'][0]} is not a date or datetime (expected ISO-8601, e.g. 2026-03-14)"
+            f"{path}: column {name!r} value {value!r} at {place} is not a date or datetime "
+            "(expected ISO-8601, e.g. 2026-03-14)"
         )
+
+
+def _first_row(lf: pl.LazyFrame, condition: pl.Expr, name: str) -> tuple[str, str, object] | None:
+    """(file, place in that file, value of ``name``) of the first row meeting ``condition``,
+    or None. The place is a line of a CSV (the header is line 1) or NDJSON file, else a
+    row (the first is row 1)."""
+    hit = lf.filter(condition).select(FILE_COLUMN).head(1).collect()
+    if hit.height == 0:
+        return None
+    path = hit[FILE_COLUMN][0]
+    row = (lf.filter(pl.col(FILE_COLUMN) == path).with_row_index("__row").filter(condition)
+           .select("__row", name).head(1).collect())
+    fmt = FORMATS.get(Path(path).suffix.lower())
+    place = _line(fmt, row["__row"][0]) if fmt in ("csv", "ndjson") else f"row {row['__row'][0] + 1}"
+    return path, place, row[name][0]
 
 
 def _select_exprs(spec: EventSpec, schema: pl.Schema, canonical: dict[str, pl.Expr]) -> list[pl.Expr]:

@@ -168,9 +168,11 @@ def corrupt_copy(good: bytes) -> bytes:
     raise AssertionError("no corruption found that the reader detects")
 
 
-def test_a_corrupt_page_names_the_file_among_several(tmp_path):
+@pytest.mark.parametrize("text_entity", [True, False])  # polars' group-by / composite keys with --segment
+def test_a_corrupt_page_names_the_file_among_several(tmp_path, text_entity):
     rng = np.random.default_rng(1)
-    big = pl.DataFrame({"patron": [f"p{i % 1000}" for i in range(50000)], "title": rng.integers(0, 10**9, 50000),
+    patrons = [f"p{i % 1000}" for i in range(50000)] if text_entity else [i % 1000 for i in range(50000)]
+    big = pl.DataFrame({"patron": patrons, "title": rng.integers(0, 10**9, 50000),
                         "branch": ["Harbour"] * 50000})
     folder = tmp_path / "in"
     folder.mkdir()
@@ -314,3 +316,15 @@ def test_the_command_line_prints_one_line_and_exits_2(tmp_path, command):
         assert done.returncode == 2, done.stderr
         lines = done.stderr.strip().splitlines()
         assert len(lines) == 1 and "Traceback" not in done.stderr and fragment in lines[0]
+
+
+def test_a_bad_value_is_placed_in_its_own_file(tmp_path):
+    # The second file's third line (header = line 1); rows of the first file do not count.
+    folder = tmp_path / "in"
+    folder.mkdir()
+    (folder / "a.csv").write_text("patron,title,at\n" + "p,x,2026-01-02\n" * 50)
+    (folder / "b.csv").write_text("patron,title,at\nq,y,2026-01-03\nr,z,last tuesday\n")
+    spec = EventSpec(entity="patron", element="title", time="at", period="week")
+    refused(tmp_path, folder, "b.csv", "'at'", "'last tuesday'", "line 3", specs=(spec,))
+    (folder / "b.csv").write_text("patron,title,at\nq,y,2026-01-03\n,z,2026-01-04\n")
+    refused(tmp_path, folder, "b.csv", "'patron'", "1 null", "line 3", specs=(spec,))
