@@ -293,8 +293,9 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=Non
                             _codes(batch["element"], dictionary), w, elements, kept_weights, shares)
     if misplaced or counted != n or not np.array_equal(slots[present], offsets[1:]):
         raise InputError(f"{where}: the files changed while being read ({n} events counted, then read again)")
-    keys = pl.Series("entity", present + first, dtype=frame.collect_schema()["entity"])
-    return keys, offsets, elements, kept_weights
+    dtype = frame.collect_schema()["entity"]
+    values = present.astype(np.uint64) + np.uint64(first) if dtype == pl.UInt64 else present + first  # 2**63 and up
+    return pl.Series("entity", values, dtype=dtype), offsets, elements, kept_weights
 
 
 def batches(frame: pl.LazyFrame, columns: list[str]) -> Iterator[pl.DataFrame]:

@@ -328,3 +328,26 @@ def test_a_bad_value_is_placed_in_its_own_file(tmp_path):
     refused(tmp_path, folder, "b.csv", "'at'", "'last tuesday'", "line 3", specs=(spec,))
     (folder / "b.csv").write_text("patron,title,at\nq,y,2026-01-03\n,z,2026-01-04\n")
     refused(tmp_path, folder, "b.csv", "'patron'", "1 null", "line 3", specs=(spec,))
+
+
+@pytest.mark.parametrize("parts", [None, 2])
+def test_unsigned_entity_keys_above_2_63_through_a_run(tmp_path, parts):
+    from lshjob.job import RunOptions, run_job
+
+    entities = [2**63, 2**64 - 1, 5, 2**63 + 7]
+    rows = [(e, t) for e in entities for t in range(10)] + [(2**63 + 7, 99)]
+    path = tmp_path / "u64.parquet"
+    pl.DataFrame(rows, schema={"patron": pl.UInt64, "title": pl.UInt64}, orient="row").write_parquet(path)
+    sets = oracle_sets(pl.read_parquet(path))
+    run_job(path, SPEC, RunOptions(threshold=0.5, bands=16, rows=2, parts=parts), tmp_path / "index")
+    got = {(a, b): j for a, b, j in pl.read_parquet(tmp_path / "index" / "neighbours.parquet")
+           .select("entity", "neighbour", "jaccard").rows()}
+    # oracle: brute-force Jaccard over Python sets (every pair here is at least 10/11)
+    expected = {(a, b): len(sets[a] & sets[b]) / len(sets[a] | sets[b]) for a in sets for b in sets if a != b}
+    assert got.keys() == expected.keys()
+    assert all(abs(got[p] - expected[p]) < 1e-12 for p in got)
+    (tmp_path / "one").mkdir()
+    (tmp_path / "two").mkdir()
+    sign_file(path, tmp_path / "one" / "s.parquet", SPEC)
+    sign_file(path, tmp_path / "two" / "s.parquet", SPEC, parts=2)
+    assert pl.read_parquet(tmp_path / "one" / "s.parquet").equals(pl.read_parquet(tmp_path / "two" / "s.parquet"))
