@@ -351,3 +351,29 @@ def test_unsigned_entity_keys_above_2_63_through_a_run(tmp_path, parts):
     sign_file(path, tmp_path / "one" / "s.parquet", SPEC)
     sign_file(path, tmp_path / "two" / "s.parquet", SPEC, parts=2)
     assert pl.read_parquet(tmp_path / "one" / "s.parquet").equals(pl.read_parquet(tmp_path / "two" / "s.parquet"))
+
+
+def test_ndjson_key_numeric_for_many_lines_then_text(tmp_path):
+    path = tmp_path / "late.ndjson"
+    path.write_text("".join(f'{{"patron": {i % 7}, "title": {i}, "branch": "H"}}\n' for i in range(500))
+                    + '{"patron": "x", "title": 3, "branch": "H"}\n')
+    for spec in (SPEC, SEGMENTED):
+        sets, _ = load_sets(path, spec)
+        assert sets["entity"].dtype == pl.String  # one text value: the column is text
+        expected = {str(i % 7) for i in range(500)} | {"x"}
+        assert set(sets["entity"]) == expected
+    members, _ = load_membership(path, SPEC)
+    assert members.size == 8
+
+
+def test_unicode_option_on_the_command_line(tmp_path):
+    path = tmp_path / "names.parquet"
+    unicode_events(["NFC", "NFD"]).write_parquet(path)
+    counts = []
+    for mode in ("nfc", "asis"):
+        done = subprocess.run([sys.executable, "-m", "lshjob.cli", "sign", str(path), "--entity", "patron",
+                               "--element", "title", "--out", str(tmp_path / f"{mode}.parquet"), "--unicode", mode],
+                              capture_output=True, text=True, timeout=300)
+        assert done.returncode == 0, done.stderr
+        counts.append(pl.read_parquet(tmp_path / f"{mode}.parquet").height)
+    assert counts == [2, 4]
