@@ -28,7 +28,6 @@ weights) plus 8 per key value, and step 3's sort and merge as above.
 from __future__ import annotations
 
 import threading
-import unicodedata
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -41,7 +40,7 @@ from . import grouping
 from .errors import InputError, ParameterError
 from .hashing import xxh64_strings
 from .ingest import EventSpec, IngestReport, validated_events
-from .membership import INT64_MAX, Membership
+from .membership import INT64_MAX, Membership, nfc_codes
 
 BATCH_ROWS = 1_000_000  # as fast as 4M here, and a quarter of the memory in flight (measured)
 BYTES_PER_EVENT = {False: 20, True: 36}  # id + code + grouped code (+ weights, twice)
@@ -178,20 +177,6 @@ def _source(frame, report, where, spec, dictionary, describe) -> EventSource:
     canonical, remap = (dictionary, None) if dictionary is None or spec.unicode != "nfc" else nfc_codes(dictionary)
     text_hashes = None if dictionary is None else xxh64_strings(canonical)
     return EventSource(frame, report, where, weighted, float(spec.min_count), dictionary, text_hashes, describe, remap)
-
-
-def nfc_codes(dictionary: pl.Series) -> tuple[pl.Series, np.ndarray | None]:
-    """(sorted distinct NFC forms, code of each dictionary entry among them); (dictionary,
-    None) when every entry is NFC already. Only entries holding a non-ASCII character are
-    normalised (Python's unicodedata, on distinct values only)."""
-    odd = np.flatnonzero((dictionary.str.len_bytes() != dictionary.str.len_chars()).to_numpy())
-    texts = dictionary.gather(odd).to_list()
-    forms = [unicodedata.normalize("NFC", t) for t in texts]
-    if forms == texts:
-        return dictionary, None
-    normal = dictionary.scatter(odd, forms)
-    canonical = normal.unique().sort()
-    return canonical, canonical.search_sorted(normal).to_numpy().astype(np.int64)
 
 
 def check_budget(events: EventSource, selection: EntitySelection | None, memory: int | None) -> None:
@@ -334,7 +319,7 @@ def _read_and_group(frame, n, weighted, dictionary, where):
     """Steps 1-3 of the module docstring up to the counting sort."""
     keys = frame.select(pl.col("entity").unique()).collect(engine="streaming")["entity"].sort()
     ids = np.empty(n, dtype=np.uint32 if len(keys) < 2**32 else np.int64)
-    positions = _key_positions(keys)
+    positions = grouping.key_positions(keys)
     codes = np.empty(n, dtype=np.int64)
     weights = np.empty(n if weighted else 0, dtype=np.float64)
     pos = 0
@@ -380,37 +365,6 @@ def dense_span(entity_range: tuple[int, int] | None, events: int) -> int:
 
 
 DENSE_MIN_SPAN = 1 << 16  # a table this small (512 KiB) is always worth it
-
-
-def _key_positions(keys: pl.Series):
-    """A function mapping a batch of entity keys to their positions in the sorted ``keys``:
-    -1 for an integer that is not a key, a position out of range for text past the last key
-    (text before it is not checked). Dense-ish integer keys use a direct table built once."""
-    if keys.dtype.is_integer() and len(keys):
-        k = _ordered(keys)
-        span = int(k[-1]) - int(k[0])
-        if span < DIRECT_TABLE_FACTOR * len(k):
-            table = np.full(span + 1, -1, dtype=np.int64)
-            table[k - k[0]] = np.arange(len(k))
-            return lambda values: grouping.lookup(table, k[0], _ordered(values))
-        if span < 2**62:  # buckets of about one key each (composite keys of lshjob.keyed, sparse numbers)
-            shift = max(0, (span // len(k)).bit_length() - 1)
-            starts = grouping.bucket_starts(k, shift)
-            return lambda values: grouping.lookup_bucketed(k, starts, shift, _ordered(values))
-        return lambda values: grouping.search_sorted_parallel(k, _ordered(values))
-    return lambda values: keys.search_sorted(values).to_numpy()
-
-
-def _ordered(values: pl.Series) -> np.ndarray:
-    """Integer keys as int64 in the same order: unsigned 64-bit keys with the top bit
-    flipped (2**63 and above would wrap to negative numbers and lose their order)."""
-    v = values.to_numpy()
-    if v.dtype == np.uint64:
-        return (v ^ np.uint64(1 << 63)).view(np.int64)
-    return v.astype(np.int64, copy=False)
-
-
-DIRECT_TABLE_FACTOR = 4
 
 
 def _text_dictionary(frame: pl.LazyFrame) -> pl.Series | None:
