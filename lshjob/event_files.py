@@ -25,6 +25,7 @@ parse error) are turned into :class:`~lshjob.errors.InputError` naming the file 
 from __future__ import annotations
 
 import glob as globmod
+import json
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -88,6 +89,12 @@ def scan_one(path: Path, fmt: str, text_columns: list[str] | None = None,
         return pl.scan_parquet(path)
     if fmt == "csv":
         return pl.scan_csv(path, schema_overrides=types or None, raise_if_empty=True)
+    if types:  # only the columns the file has: polars refuses overrides of absent ones
+        try:
+            names = pl.scan_ndjson(path).collect_schema().names()
+            types = {c: t for c, t in types.items() if c in names}
+        except READ_ERRORS:
+            pass  # the scan below reports it
     return pl.scan_ndjson(path, schema_overrides=types or None)
 
 
@@ -98,7 +105,7 @@ def file_schemas(paths: list[Path], fmt: str, text_columns: list[str]) -> list[p
         try:
             schemas.append(scan_one(path, fmt, text_columns).collect_schema())
         except (*READ_ERRORS, ValueError) as exc:
-            raise InputError(f"{path}: cannot be read as {fmt}: {short(exc)}") from exc
+            raise unreadable(path, fmt, exc) from exc
     return schemas
 
 
@@ -211,8 +218,35 @@ def locate(paths: list[Path], fmt: str, columns: list[str], exc: BaseException, 
                 lf = scan_one(path, fmt, columns if fmt != "parquet" else None)
                 lf.select([c for c in columns if c in lf.collect_schema().names()]).collect(engine="streaming")
             except READ_ERRORS as err:
-                return InputError(f"{path}: cannot be read as {fmt}: {short(err)}")
-    return InputError(f"{where}: cannot be read as {fmt}: {short(exc)}")
+                return unreadable(path, fmt, err)
+    return unreadable(paths[0], fmt, exc) if len(paths) == 1 else InputError(
+        f"{where}: cannot be read as {fmt}: {short(exc)}")
+
+
+def unreadable(path: Path, fmt: str, exc: BaseException) -> InputError:
+    """The error for a file polars cannot read; for NDJSON with the first line that is not
+    JSON (found by reading the file again, only on this path)."""
+    where = ""
+    if fmt == "ndjson":
+        line = bad_json_line(path)
+        where = f" (line {line} is not a JSON object)" if line is not None else ""
+    return InputError(f"{path}: cannot be read as {fmt}: {short(exc)}{where}")
+
+
+def bad_json_line(path: Path) -> int | None:
+    """The first non-blank line of an NDJSON file that is not a JSON object (1-based), or None."""
+    try:
+        with open(path, "rb") as f:
+            for number, line in enumerate(f, 1):
+                if line.strip():
+                    try:
+                        if not isinstance(json.loads(line), dict):
+                            return number
+                    except ValueError:
+                        return number
+    except OSError:
+        return None
+    return None
 
 
 @contextmanager

@@ -22,7 +22,7 @@ import polars as pl
 
 from .errors import InputError, ParameterError
 from .event_files import (FILE_COLUMN, FORMATS, agreed_types, check_columns, combined_scan, file_schemas,  # noqa: F401
-                          plain_integers, ragged_line, reading, resolve_paths, scan_one, short)
+                          plain_integers, ragged_line, reading, resolve_paths, scan_one, unreadable)
 from .parquet_footer import footer_stats
 
 PERIODS = {"day": "1d", "week": "1w", "month": "1mo"}
@@ -193,7 +193,7 @@ def _text_files(paths: list[Path], fmt: str, schemas: list[pl.Schema], spec: Eve
                 raise InputError(f"{path}: column {spec.count!r} (--count) value {row[spec.count][0]!r} at "
                                  f"{_line(fmt, row['__row'][0])} is not a number")
         except (pl.exceptions.PolarsError, OSError, pl.exceptions.PanicException) as exc:
-            raise InputError(f"{path}: cannot be read as {fmt}: {short(exc)}") from exc
+            raise unreadable(path, fmt, exc) from exc
         frames.append(stats)
     stats = pl.concat(frames, how="vertical")
     types = {n: pl.String for _, n in named}

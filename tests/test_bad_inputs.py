@@ -69,12 +69,13 @@ def test_a_file_that_gained_a_column_reads_like_the_rest(tmp_path, fmt):
     assert members.size == len(got)
 
 
-def test_a_file_lacking_a_named_column_is_named(tmp_path):
+@pytest.mark.parametrize("fmt", ["parquet", "csv", "ndjson"])
+def test_a_file_lacking_a_named_column_is_named(tmp_path, fmt):
     folder = tmp_path / "in"
     folder.mkdir()
-    events()[:30].write_parquet(folder / "a.parquet")
-    events()[30:].rename({"title": "book"}).write_parquet(folder / "b.parquet")
-    refused(tmp_path, folder, "b.parquet", "'title'", "not found", "book")
+    getattr(events()[:30], f"write_{fmt}")(folder / f"a.{fmt}")
+    getattr(events()[30:].rename({"title": "book"}), f"write_{fmt}")(folder / f"b.{fmt}")
+    refused(tmp_path, folder, f"b.{fmt}", "'title'", "not found", "book")
 
 
 def test_keys_of_different_types_across_files_are_read_as_text(tmp_path):
@@ -209,7 +210,10 @@ def test_unsigned_keys_at_and_above_2_63(tmp_path):
 def test_ndjson_with_a_malformed_line(tmp_path):
     path = tmp_path / "loans.ndjson"
     path.write_text('{"patron":"a","title":"x","branch":"H"}\n{"patron":"b","title":\n{"patron":"c","title":"y"}\n')
-    refused(tmp_path, path, "loans.ndjson", "cannot be read as ndjson")
+    refused(tmp_path, path, "loans.ndjson", "cannot be read as ndjson", "line 2")
+    late = tmp_path / "late.ndjson"  # past the lines polars reads for the schema
+    late.write_text('{"patron":"a","title":"x","branch":"H"}\n' * 500 + '{"patron":"b",\n')
+    refused(tmp_path, late, "late.ndjson", "cannot be read as ndjson", "line 501")
 
 
 def test_an_empty_file(tmp_path):
