@@ -181,26 +181,32 @@ def _cast(name: str, have: pl.DataType, want: pl.DataType) -> pl.Expr:
 def plain_integers(name: str) -> pl.Expr:
     """Count of non-null values of text column ``name`` that are not an integer written
     plainly (as the integer prints)."""
-    col = pl.col(name)
-    return (col.is_not_null() & (col.cast(pl.Int64, strict=False).cast(pl.String) != col).fill_null(True)).sum()
+    col = pl.col(name)  # polars reads "+5", "05" and "-0" as integers too: not plain
+    return (col.is_not_null() & (col.cast(pl.Int64, strict=False).is_null()
+                                 | col.str.contains(r"^(?:\+|-?0[0-9]|-0$)"))).sum()
 
 
 def ragged_line(path: Path, fields: int) -> int | None:
     """The first line (1-based, the header is line 1) of a CSV file whose field count is not
     ``fields``, or None. Fields are counted by separators outside double quotes; a file with
-    a quoted line break is not checked (polars reads those lines whole)."""
+    a quoted line break is not checked (polars reads those lines whole). One pass counting
+    separators per line; lines with quotes, or a count found wrong, take a second pass."""
     try:
         lines = pl.scan_csv(path, has_header=False, separator="\x1f", quote_char=None, infer_schema=False,
                             new_columns=["line"], truncate_ragged_lines=True)
         line = pl.col("line").str.strip_chars_end("\r")
+        commas = line.str.count_matches(",", literal=True)
+        first = lines.select(commas.min().alias("lo"), commas.max().alias("hi"),
+                             line.str.contains('"', literal=True).any().alias("quoted")).collect(engine="streaming")
+        if not first["quoted"][0] and first["lo"][0] == first["hi"][0] == fields - 1:
+            return None
         quoted = line.str.contains('"', literal=True)
-        unquoted = pl.when(quoted).then(line.str.replace_all(r'"(?:[^"]|"")*"', "")).otherwise(line)
+        unquoted = line.str.replace_all(r'"(?:[^"]|"")*"', "").str.count_matches(",", literal=True)
         found = (lines.with_row_index("__line", offset=1)
                  .filter(line.is_not_null() & (line != ""))
-                 .select(pl.col("__line"), (unquoted.str.count_matches(",", literal=True) + 1).alias("n"),
-                         (quoted & (line.str.count_matches('"', literal=True) % 2 == 1)).alias("open"))
-                 .select(pl.col("open").any().alias("open"),
-                         pl.col("__line").filter(pl.col("n") != fields).first().alias("bad"))
+                 .with_columns(n=pl.when(quoted).then(unquoted).otherwise(commas) + 1,
+                               open=quoted & (line.str.count_matches('"', literal=True) % 2 == 1))
+                 .select(pl.col("open").any(), pl.col("__line").filter(pl.col("n") != fields).first().alias("bad"))
                  .collect(engine="streaming"))
     except READ_ERRORS:
         return None  # polars' own reading reports it
