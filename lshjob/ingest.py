@@ -168,7 +168,7 @@ def _text_files(paths: list[Path], fmt: str, schemas: list[pl.Schema], spec: Eve
     for CSV, a pass counting each line's fields). Returns the type each column is read as
     (keys: Int64 when every value is a plain integer, else String; count Float64; time
     String) and the statistics pass's one-row frame."""
-    keys = [n for option, n in named if option in ("--entity", "--element", "--segment")]
+    keys = list(dict.fromkeys(n for option, n in named if option in ("--entity", "--element", "--segment")))
     frames = []
     for path, schema in zip(paths, schemas):
         if fmt == "csv":

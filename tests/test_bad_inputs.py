@@ -381,3 +381,16 @@ def test_unicode_option_on_the_command_line(tmp_path):
         assert done.returncode == 0, done.stderr
         counts.append(pl.read_parquet(tmp_path / f"{mode}.parquet").height)
     assert counts == [2, 4]
+
+
+@pytest.mark.parametrize("text", [
+    "\ufeffpatron,title\r\na,x\r\nb,\"y, z\"\r\n",  # byte-order mark, CRLF, a quoted separator
+    'patron,title\na,"two\nlines"\nb,"say ""hi"", ok"\n',  # a quoted line break, doubled quotes
+])
+def test_well_formed_csv_variants_are_not_ragged(tmp_path, text):
+    path = tmp_path / "ok.csv"
+    path.write_bytes(text.encode())
+    expected = pl.read_csv(path, infer_schema=False)  # oracle: polars' own reading of the file
+    for spec in (SPEC, EventSpec(entity="patron", element="title", segment="patron")):
+        sets, _ = load_sets(path, spec)
+        assert sorted(sets.select("entity", "element").rows()) == sorted(expected.rows())
