@@ -127,7 +127,7 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
         lf = combined_scan(paths, fmt, schemas, types, types, all(s == schemas[0] for s in schemas))
     schema = pl.Schema({**types, FILE_COLUMN: pl.String})
     _check_types(where, schema, spec)
-    report = IngestReport(files=[str(p) for p in paths], columns=[n for _, n in named])
+    report = IngestReport(files=[str(p) for p in paths], columns=list(dict.fromkeys(n for _, n in named)))
     integer_entity = schema[spec.entity].is_integer()
     if stats is None:  # read the data
         with report.reading(where):
