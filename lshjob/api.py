@@ -67,8 +67,9 @@ def sign_file(
             elif ranges is None:
                 members, report = membership_of(source, None)
         else:
-            ranges = parts_module.keyed_signing_ranges(frame, report.rows_read - report.null_rows_dropped, where,
-                                                       params.perms, memory, parts)
+            with report.reading(where):  # a file failing to read is named
+                ranges = parts_module.keyed_signing_ranges(frame, report.rows_read - report.null_rows_dropped,
+                                                           where, params.perms, memory, parts)
             if ranges is None:
                 sets = group_sets(frame, spec, where, report)
     keyed_by = codec.decode_tables if codec is not None else iter  # slices keyed by the spec's columns
@@ -76,7 +77,7 @@ def sign_file(
         return _sign_in_parts(ranges, _entity_part(source, direct, params, keyed_by), source.report, source.where,
                               spec, out, params, meta, progress, started)
     if ranges is not None:
-        return _sign_in_parts(ranges, _keyed_part(frame, spec, where, params), report, where, spec, out, params,
+        return _sign_in_parts(ranges, _keyed_part(frame, spec, where, params, report), report, where, spec, out, params,
                               meta, progress, started)
     ingested = time.perf_counter()
     if source is not None and direct:
@@ -145,11 +146,11 @@ def _entity_part(source, direct, params, keyed_by):  # the streaming loader, as 
     return sign_part
 
 
-def _keyed_part(frame, spec, where, params):
+def _keyed_part(frame, spec, where, params, report):
     """Segments or periods: polars groups the range's events (a range may have no set left
     after ``--min-count``; only all of them empty is an error)."""
     def sign_part(selection):
-        part = IngestReport(files=[], rows_read=selection.events)
+        part = IngestReport(files=report.files, columns=report.columns, rows_read=selection.events)
         sets = group_sets(frame.filter(selection.condition), spec, where, part, allow_empty=True)
         if sets.height == 0:
             return iter(()), part

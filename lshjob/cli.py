@@ -98,6 +98,7 @@ def sign(
     scheme: Annotated[str, typer.Option(help="kperm (k hashes per element) or oph (one hash, densified).")] = "kperm",
     seed: Annotated[int, typer.Option(help="Seed of the hash family.")] = 1,
     on_null: Annotated[str, typer.Option(help="Null keys: 'error' or 'drop' the row.")] = "error",
+    unicode: Annotated[str, typer.Option(help="Text keys: 'nfc' (one Unicode normal form) or 'asis' (as given).")] = "nfc",
     memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are grouped and signed an entity key range at a time.  [default: half the machine]")] = None,
     parts: Annotated[Optional[int], typer.Option(help="Sign the entities in this many key ranges, one at a time.")] = None,
     quiet: Quiet = False,
@@ -115,7 +116,7 @@ def sign(
         raise ParameterError(f"--parts must be at least 1; got {parts}")
     spec = EventSpec(
         entity=entity, element=element, count=count, min_count=min_count,
-        segment=segment, time=time, period=period, on_null=on_null,
+        segment=segment, time=time, period=period, on_null=on_null, unicode=unicode,
     )
     params = SignatureParams(scheme=scheme, perms=perms, seed=seed)
     with _progress(quiet, as_json) as progress:
@@ -230,6 +231,7 @@ def run(
     count: Annotated[Optional[str], typer.Option(help="Column with a count or weight per event.")] = None,
     min_count: Annotated[Optional[float], typer.Option(help="Keep elements seen at least this often.  [default: 1]")] = None,
     on_null: Annotated[Optional[str], typer.Option(help="Null keys: error or drop.  [default: error]")] = None,
+    unicode: Annotated[str, typer.Option(help="Text keys: 'nfc' (one Unicode normal form) or 'asis' (as given).")] = "nfc",
     sample_size: Annotated[Optional[int], typer.Option(help="Entities the planner samples.  [default: 2000]")] = None,
     seed: Annotated[Optional[int], typer.Option(help="Seed of the hash family.  [default: 1]")] = None,
     scheme: Annotated[Optional[str], typer.Option(help="Signature scheme: kperm or oph.  [default: kperm]")] = None,
@@ -264,7 +266,7 @@ def run(
         raise ParameterError(f"lshjob run needs {', '.join(missing)} (as options or in --config)")
     refuse_output_over_inputs(settings["out"], [settings["events"]], folder=True)
     spec = EventSpec(entity=settings["entity"], element=settings["element"], count=settings["count"],
-                     min_count=settings["min_count"], on_null=settings["on_null"])
+                     min_count=settings["min_count"], on_null=settings["on_null"], unicode=unicode)
     options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__})
     with _progress(quiet, as_json) as progress:
         manifest = run_job(settings["events"], spec, options, settings["out"], progress, command=sys.argv)

@@ -267,3 +267,36 @@ def compact(offsets, elements, sizes):
         for j in range(sizes[g]):
             elements[t + j] = elements[a + j]
     return new_offsets, elements[: new_offsets[n]]
+
+
+# Python side of the one-pass reader's key lookup (used by lshjob.loading)
+
+def key_positions(keys):
+    """A function mapping a batch of entity keys to their positions in the sorted ``keys``:
+    -1 for an integer that is not a key, a position out of range for text past the last key
+    (text before it is not checked). Dense-ish integer keys use a direct table built once."""
+    if keys.dtype.is_integer() and len(keys):
+        k = ordered_int64(keys)
+        span = int(k[-1]) - int(k[0])
+        if span < DIRECT_TABLE_FACTOR * len(k):
+            table = np.full(span + 1, -1, dtype=np.int64)
+            table[k - k[0]] = np.arange(len(k))
+            return lambda values: lookup(table, k[0], ordered_int64(values))
+        if span < 2**62:  # buckets of about one key each (composite keys of lshjob.keyed, sparse numbers)
+            shift = max(0, (span // len(k)).bit_length() - 1)
+            starts = bucket_starts(k, shift)
+            return lambda values: lookup_bucketed(k, starts, shift, ordered_int64(values))
+        return lambda values: search_sorted_parallel(k, ordered_int64(values))
+    return lambda values: keys.search_sorted(values).to_numpy()
+
+
+def ordered_int64(values) -> np.ndarray:
+    """Integer keys as int64 in the same order: unsigned 64-bit keys with the top bit
+    flipped (2**63 and above would wrap to negative numbers and lose their order)."""
+    v = values.to_numpy()
+    if v.dtype == np.uint64:
+        return (v ^ np.uint64(1 << 63)).view(np.int64)
+    return v.astype(np.int64, copy=False)
+
+
+DIRECT_TABLE_FACTOR = 4

@@ -14,25 +14,19 @@ Rows are unique on (entity, [segment], [period], element), sorted by the key col
 
 from __future__ import annotations
 
-import glob as globmod
+import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import polars as pl
 
 from .errors import InputError, ParameterError, key_text
+from .event_files import (FILE_COLUMN, FORMATS, agreed_types, check_columns, combined_scan, file_schemas,  # noqa: F401
+                          plain_integers, ragged_line, reading, resolve_paths, scan_one, unreadable)
 from .parquet_footer import footer_stats
 
-FORMATS = {
-    ".parquet": "parquet",
-    ".pq": "parquet",
-    ".csv": "csv",
-    ".ndjson": "ndjson",
-    ".jsonl": "ndjson",
-}
 PERIODS = {"day": "1d", "week": "1w", "month": "1mo"}
-KEY_TYPES = (pl.String, pl.Categorical)
-FILE_COLUMN = "__lshjob_file"
+UNICODE = ("nfc", "asis")
 
 
 @dataclass(frozen=True)
@@ -47,8 +41,11 @@ class EventSpec:
     time: str | None = None
     period: str | None = None
     on_null: str = "error"
+    unicode: str = "nfc"  # text keys in Unicode NFC ("nfc") or as given ("asis")
 
     def __post_init__(self) -> None:
+        if self.unicode not in UNICODE:
+            raise ParameterError(f"--unicode must be 'nfc' or 'asis'; got {self.unicode!r}")
         if self.on_null not in ("error", "drop"):
             raise ParameterError(f"--on-null must be 'error' or 'drop'; got {self.on_null!r}")
         if self.period is not None and self.period not in PERIODS:
@@ -84,9 +81,15 @@ class IngestReport:
     empty_examples: list[str] = field(default_factory=list)
     # smallest and largest integer entity key (None for text keys), for the loader; not reported
     entity_range: tuple[int, int] | None = field(default=None, repr=False)
+    # the files' columns the job reads, to find which file fails when reading them fails
+    columns: list[str] = field(default_factory=list, repr=False)
 
     def as_dict(self) -> dict:
-        return {k: v for k, v in self.__dict__.items() if k != "entity_range"}
+        return {k: v for k, v in self.__dict__.items() if k not in ("entity_range", "columns")}
+
+    def reading(self, where: str):
+        """Context: errors raised while the files stream become an InputError naming the file."""
+        return reading(self.files, where, self.columns)
 
     def add_part(self, part: "IngestReport") -> None:
         """Add the counts of one key range's report (a run or signing in parts)."""
@@ -94,56 +97,6 @@ class IngestReport:
         self.sets += part.sets
         self.empty_after_filter += part.empty_after_filter
         self.empty_examples = (self.empty_examples + part.empty_examples)[:5]
-
-
-def resolve_paths(source: str | Path) -> tuple[list[Path], str]:
-    """Expand one file, a glob or a directory into files of one supported format."""
-    text = str(source)
-    if any(ch in text for ch in "*?["):
-        paths = [Path(p) for p in sorted(globmod.glob(text))]
-        if not paths:
-            raise InputError(f"{text}: the pattern matches no files")
-    else:
-        path = Path(text)
-        if not path.exists():
-            raise InputError(f"{text}: no such file or directory")
-        if path.is_dir():
-            paths = sorted(p for p in path.iterdir() if p.suffix.lower() in FORMATS and p.is_file())
-            if not paths:
-                raise InputError(
-                    f"{text}: the directory holds no event files "
-                    f"(looked for {', '.join(sorted(FORMATS))})"
-                )
-        else:
-            paths = [path]
-    formats = set()
-    for p in paths:
-        fmt = FORMATS.get(p.suffix.lower())
-        if fmt is None:
-            raise InputError(
-                f"{p}: unknown file type {p.suffix!r}; expected one of {', '.join(sorted(FORMATS))}"
-            )
-        formats.add(fmt)
-    if len(formats) > 1:
-        raise InputError(f"{text}: mixes file formats ({', '.join(sorted(formats))}); use one format")
-    return paths, formats.pop()
-
-
-def scan_events(source: str | Path) -> tuple[pl.LazyFrame, list[Path]]:
-    """Lazily scan event files; a column ``__lshjob_file`` names each row's file."""
-    paths, fmt = resolve_paths(source)
-    sources = [str(p) for p in paths]
-    if fmt == "parquet":
-        lf = pl.scan_parquet(sources, include_file_paths=FILE_COLUMN)
-    elif fmt == "csv":
-        lf = pl.scan_csv(sources, include_file_paths=FILE_COLUMN, try_parse_dates=True)
-    else:
-        lf = pl.scan_ndjson(sources, include_file_paths=FILE_COLUMN)
-    try:
-        lf.collect_schema()
-    except Exception as exc:  # polars raises several error types for unreadable files
-        raise InputError(f"{_where(paths)}: cannot be read as {fmt}: {_short(exc)}") from exc
-    return lf, paths
 
 
 def load_sets(source: str | Path, spec: EventSpec) -> tuple[pl.DataFrame, IngestReport]:
@@ -156,28 +109,35 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
     """Check the event files against the spec (columns, types, nulls, time text) and return
     the events as a lazy frame of the output columns (entity, [segment], [period], element,
     weight), with the report so far and a short name of the input for messages."""
-    lf, paths = scan_events(source)
+    paths, fmt = resolve_paths(source)
     where = _where(paths)
-    schema = lf.collect_schema()
-    columns = [c for c in schema.names() if c != FILE_COLUMN]
-    for option, name in _named_columns(spec):
-        if name not in columns:
-            raise InputError(
-                f"{where}: column {name!r} (from {option}) not found; columns are: {', '.join(columns)}"
-            )
+    named = _named_columns(spec)
+    schemas = file_schemas(paths, fmt, [n for _, n in named] if fmt != "parquet" else [])
+    check_columns(paths, schemas, named)
+    key_names = list(dict.fromkeys(n for option, n in named if option != "--count"))
+    stats = None
+    if fmt == "parquet":
+        types = agreed_types(paths, schemas, named)
+        uniform = all(s == schemas[0] for s in schemas) and all(schemas[0][n] == t for n, t in types.items())
+        lf = combined_scan(paths, fmt, schemas, types, {}, uniform)
+        if types[spec.entity] == schemas[0][spec.entity]:  # the footers' bounds are of this type
+            stats = _stats_from_footers(paths, key_names, spec.entity, types[spec.entity])
+    else:
+        types, stats = _text_files(paths, fmt, schemas, spec, named, key_names)
+        lf = combined_scan(paths, fmt, schemas, types, types, all(s == schemas[0] for s in schemas))
+    schema = pl.Schema({**types, FILE_COLUMN: pl.String})
     _check_types(where, schema, spec)
-    report = IngestReport(files=[str(p) for p in paths])
-    key_names = [n for _, n in _named_columns(spec) if _ != "--count"]
+    report = IngestReport(files=[str(p) for p in paths], columns=list(dict.fromkeys(n for _, n in named)))
     integer_entity = schema[spec.entity].is_integer()
-    stats = _stats_from_footers(paths, key_names, spec.entity, schema[spec.entity])
     if stats is None:  # read the data
-        stats = lf.select(
-            pl.len().alias("rows"),
-            *[pl.col(n).null_count().alias(n) for n in key_names],
-            pl.any_horizontal([pl.col(n).is_null() for n in key_names]).sum().alias("__any_null"),
-            *([pl.col(spec.entity).min().alias("__entity_min"), pl.col(spec.entity).max().alias("__entity_max")]
-              if integer_entity else []),
-        ).collect()
+        with report.reading(where):
+            stats = lf.select(
+                pl.len().alias("rows"),
+                *[pl.col(n).null_count().alias(n) for n in key_names],
+                pl.any_horizontal([pl.col(n).is_null() for n in key_names]).sum().alias("__any_null"),
+                *([pl.col(spec.entity).min().alias("__entity_min"), pl.col(spec.entity).max().alias("__entity_max")]
+                  if integer_entity else []),
+            ).collect()
     report.rows_read = int(stats["rows"][0])
     if integer_entity and stats["__entity_min"][0] is not None:
         report.entity_range = (int(stats["__entity_min"][0]), int(stats["__entity_max"][0]))
@@ -187,23 +147,96 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
     if nulls:
         if spec.on_null == "error":
             name, count = next(iter(nulls.items()))
-            first = (
-                lf.with_row_index("__row")
-                .filter(pl.col(name).is_null())
-                .select("__row", FILE_COLUMN)
-                .head(1)
-                .collect()
-            )
+            with report.reading(where):
+                path, place, _ = _first_row(lf, pl.col(name).is_null(), name)
             raise InputError(
-                f"{first[FILE_COLUMN][0]}: column {name!r} has {count} null value(s) "
-                f"(first at row {first['__row'][0]} of the input); "
+                f"{path}: column {name!r} has {count} null value(s) (first at {place}); "
                 "clean the data or pass --on-null drop to skip such rows"
             )
         report.null_rows_dropped = int(stats["__any_null"][0])
         lf = lf.drop_nulls(key_names)
-    if spec.time is not None and schema[spec.time] == pl.String:
-        _check_time_strings(lf, spec.time)
-    return lf.select(_select_exprs(spec, schema)), report, where
+    with report.reading(where):
+        if spec.time is not None and schema[spec.time] == pl.String:
+            _check_time_strings(lf, spec.time)
+        canonical = _canonical_keys(lf, spec, schema)
+    return lf.select(_select_exprs(spec, schema, canonical)), report, where
+
+
+def _text_files(paths: list[Path], fmt: str, schemas: list[pl.Schema], spec: EventSpec,
+                named: list[tuple[str, str]], key_names: list[str]) -> tuple[dict, pl.DataFrame]:
+    """CSV and NDJSON: one pass over each file with every named column read as text (and,
+    for CSV, a pass counting each line's fields). Returns the type each column is read as
+    (keys: Int64 when every value is a plain integer, else String; count Float64; time
+    String) and the statistics pass's one-row frame."""
+    keys = list(dict.fromkeys(n for option, n in named if option in ("--entity", "--element", "--segment")))
+    frames = []
+    for path, schema in zip(paths, schemas):
+        if fmt == "csv":
+            line = ragged_line(path, len(schema))
+            if line is not None:
+                raise InputError(f"{path}: line {line} does not have the header's {len(schema)} fields "
+                                 "(a separator inside an unquoted value, or a field missing)")
+        lf = scan_one(path, fmt, [n for _, n in named])
+        entity = pl.col(spec.entity).cast(pl.Int64, strict=False)
+        exprs = [pl.len().alias("rows"), *[pl.col(n).null_count().alias(n) for n in key_names],
+                 pl.any_horizontal([pl.col(n).is_null() for n in key_names]).sum().alias("__any_null"),
+                 *[plain_integers(n).alias(f"__odd_{n}") for n in keys],
+                 entity.min().alias("__entity_min"), entity.max().alias("__entity_max")]
+        if spec.count is not None:
+            count = pl.col(spec.count)
+            bad = count.is_not_null() & count.cast(pl.Float64, strict=False).is_null()
+            exprs.append(bad.sum().alias("__bad_count"))
+        try:
+            stats = lf.select(exprs).collect(engine="streaming")
+            if spec.count is not None and stats["__bad_count"][0]:
+                row = lf.with_row_index("__row").filter(bad).select("__row", spec.count).head(1).collect()
+                raise InputError(f"{path}: column {spec.count!r} (--count) value {row[spec.count][0]!r} at "
+                                 f"{_line(fmt, row['__row'][0])} is not a number")
+        except (pl.exceptions.PolarsError, OSError, pl.exceptions.PanicException) as exc:
+            raise unreadable(path, fmt, exc) from exc
+        frames.append(stats)
+    stats = pl.concat(frames, how="vertical")
+    types = {n: pl.String for _, n in named}
+    for n in keys:
+        if stats[f"__odd_{n}"].sum() == 0 and stats["rows"].sum() > stats[n].sum():
+            types[n] = pl.Int64
+    if spec.count is not None:
+        types[spec.count] = pl.Float64
+    total = stats.select(pl.col("rows", "__any_null", *key_names).sum(), pl.col("__entity_min").min(),
+                         pl.col("__entity_max").max())
+    return types, total
+
+
+def _line(fmt: str, row: int) -> str:
+    """Where row ``row`` (0-based, of the data) is in its file."""
+    return f"line {row + 2}" if fmt == "csv" else f"line {row + 1}"
+
+
+def _canonical_keys(lf: pl.LazyFrame, spec: EventSpec, schema: pl.Schema) -> dict[str, pl.Expr]:
+    """Expressions putting the text entity and segment keys in Unicode NFC (``spec.unicode``):
+    only values holding a non-ASCII character are looked at (one pass over each column, the
+    distinct such values normalised in Python), and only values that change are replaced."""
+    if spec.unicode != "nfc":
+        return {}
+    found = {}
+    for name in (spec.entity, spec.segment):
+        if name is not None and schema[name] in (pl.String, pl.Categorical):
+            expr = nfc_replacement(lf, name)
+            if expr is not None:
+                found[name] = expr
+    return found
+
+
+def nfc_replacement(lf: pl.LazyFrame, name: str) -> pl.Expr | None:
+    """``pl.col(name)`` with every value not in NFC replaced by its NFC form, or None when
+    every value is already NFC (all ASCII text is)."""
+    text = pl.col(name).cast(pl.String)
+    odd = (lf.select(text.filter(text.str.len_bytes() != text.str.len_chars()).unique())
+           .collect(engine="streaming")[name].to_list())
+    old = [v for v in odd if unicodedata.normalize("NFC", v) != v]
+    if not old:
+        return None
+    return text.replace(old, [unicodedata.normalize("NFC", v) for v in old])
 
 
 def _stats_from_footers(paths: list[Path], key_names: list[str], entity: str,
@@ -226,10 +259,12 @@ def group_events(frame: pl.LazyFrame, spec: EventSpec, where: str, report: Inges
     """Events -> membership rows (module contract); adds its counts to ``report``. With
     ``allow_empty`` (one key range of many), no row left after ``--min-count`` is no error."""
     keys = spec.key_columns
-    try:
+    with report.reading(where):
+        if spec.unicode == "nfc" and frame.collect_schema()["element"] == pl.String:
+            element = nfc_replacement(frame, "element")
+            if element is not None:
+                frame = frame.with_columns(element)
         grouped = frame.group_by([*keys, "element"]).agg(pl.col("weight").sum()).collect()
-    except pl.exceptions.PolarsError as exc:
-        raise InputError(f"{where}: could not read the events: {_short(exc)}") from exc
     sets = grouped.filter(pl.col("weight") >= spec.min_count).sort(keys)
     if sets.height == 0 and not allow_empty:
         raise InputError(
@@ -255,15 +290,7 @@ def _named_columns(spec: EventSpec) -> list[tuple[str, str]]:
 
 
 def _check_types(where: str, schema: pl.Schema, spec: EventSpec) -> None:
-    def key_ok(dtype: pl.DataType) -> bool:
-        return dtype.is_integer() or dtype in KEY_TYPES
-
-    for option, name in (("--entity", spec.entity), ("--element", spec.element), ("--segment", spec.segment)):
-        if name is not None and not key_ok(schema[name]):
-            raise InputError(
-                f"{where}: column {name!r} ({option}) has type {schema[name]}; "
-                "expected text or integer keys"
-            )
+    """Count and time columns (keys are checked file by file: :func:`event_files.check_columns`)."""
     if spec.count is not None and not schema[spec.count].is_numeric():
         raise InputError(
             f"{where}: column {spec.count!r} (--count) has type {schema[spec.count]}; expected a number"
@@ -278,34 +305,44 @@ def _check_types(where: str, schema: pl.Schema, spec: EventSpec) -> None:
 
 
 def _check_time_strings(lf: pl.LazyFrame, name: str) -> None:
-    bad = (
-        lf.with_row_index("__row")
-        .filter(pl.col(name).str.to_datetime(strict=False).is_null())
-        .select("__row", FILE_COLUMN, name)
-        .head(1)
-        .collect()
-    )
-    if bad.height:
+    found = _first_row(lf, pl.col(name).str.to_datetime(strict=False).is_null(), name)
+    if found is not None:
+        path, place, value = found
         raise InputError(
-            f"{bad[FILE_COLUMN][0]}: column {name!r} value {bad[name][0]!r} at row "
-            f"{bad['__row'][0]} is not a date or datetime (expected ISO-8601, e.g. 2026-03-14)"
+            f"{path}: column {name!r} value {value!r} at {place} is not a date or datetime "
+            "(expected ISO-8601, e.g. 2026-03-14)"
         )
 
 
-def _select_exprs(spec: EventSpec, schema: pl.Schema) -> list[pl.Expr]:
-    entity = pl.col(spec.entity)
-    if schema[spec.entity] == pl.Categorical:
+def _first_row(lf: pl.LazyFrame, condition: pl.Expr, name: str) -> tuple[str, str, object] | None:
+    """(file, place in that file, value of ``name``) of the first row meeting ``condition``,
+    or None. The place is a line of a CSV (the header is line 1) or NDJSON file, else a
+    row (the first is row 1)."""
+    hit = lf.filter(condition).select(FILE_COLUMN).head(1).collect()
+    if hit.height == 0:
+        return None
+    path = hit[FILE_COLUMN][0]
+    row = (lf.filter(pl.col(FILE_COLUMN) == path).with_row_index("__row").filter(condition)
+           .select("__row", name).head(1).collect())
+    fmt = FORMATS.get(Path(path).suffix.lower())
+    place = _line(fmt, row["__row"][0]) if fmt in ("csv", "ndjson") else f"row {row['__row'][0] + 1}"
+    return path, place, row[name][0]
+
+
+def _select_exprs(spec: EventSpec, schema: pl.Schema, canonical: dict[str, pl.Expr]) -> list[pl.Expr]:
+    entity = canonical.get(spec.entity, pl.col(spec.entity))
+    if schema[spec.entity] != pl.String and not schema[spec.entity].is_integer():  # Categorical, Enum
         entity = entity.cast(pl.String)
     exprs = [entity.alias("entity")]
     if spec.segment is not None:
-        exprs.append(pl.col(spec.segment).cast(pl.String).alias("segment"))
+        exprs.append(canonical.get(spec.segment, pl.col(spec.segment)).cast(pl.String).alias("segment"))
     if spec.period is not None:
         t = pl.col(spec.time)
         if schema[spec.time] == pl.String:
             t = t.str.to_datetime(strict=False)
         exprs.append(t.dt.truncate(PERIODS[spec.period]).cast(pl.Date).alias("period"))
     element = pl.col(spec.element)
-    if schema[spec.element] == pl.Categorical:
+    if schema[spec.element] != pl.String and not schema[spec.element].is_integer():
         element = element.cast(pl.String)
     exprs.append(element.alias("element"))
     weight = pl.col(spec.count).cast(pl.Float64) if spec.count is not None else pl.lit(1.0)
@@ -318,7 +355,3 @@ def _where(paths: list[Path]) -> str:
         return str(paths[0])
     return f"{paths[0]} (and {len(paths) - 1} more file(s))"
 
-
-def _short(exc: Exception) -> str:
-    text = str(exc).strip().splitlines()
-    return text[0] if text else type(exc).__name__

@@ -83,12 +83,13 @@ def keyed_source(frame: pl.LazyFrame, report: IngestReport, where: str,
         return None
     first, last = report.entity_range
     segments, first_day, days = None, None, 1
-    if spec.segment is not None:
-        segments = frame.select(pl.col("segment").unique()).collect(engine="streaming")["segment"].sort()
-    if spec.period is not None:
-        bounds = frame.select(pl.col("period").min().alias("lo"), pl.col("period").max().alias("hi")).collect(
-            engine="streaming").cast(pl.Int32)
-        first_day, days = int(bounds["lo"][0]), int(bounds["hi"][0]) - int(bounds["lo"][0]) + 1
+    with report.reading(where):  # a file failing to read is named
+        if spec.segment is not None:
+            segments = frame.select(pl.col("segment").unique()).collect(engine="streaming")["segment"].sort()
+        if spec.period is not None:
+            bounds = frame.select(pl.col("period").min().alias("lo"), pl.col("period").max().alias("hi")).collect(
+                engine="streaming").cast(pl.Int32)
+            first_day, days = int(bounds["lo"][0]), int(bounds["hi"][0]) - int(bounds["lo"][0]) + 1
     codec = KeyCodec(first, frame.collect_schema()["entity"], segments, first_day, days)
     s, p = codec.widths
     if first < -(2**63) or last >= 2**63 or (last - first + 1) * s * p >= KEY_LIMIT:

@@ -40,7 +40,7 @@ from . import grouping
 from .errors import InputError, ParameterError, key_text
 from .hashing import xxh64_strings
 from .ingest import EventSpec, IngestReport, validated_events
-from .membership import INT64_MAX, Membership
+from .membership import INT64_MAX, Membership, nfc_codes
 
 BATCH_ROWS = 1_000_000  # as fast as 4M here, and a quarter of the memory in flight (measured)
 BYTES_PER_EVENT = {False: 20, True: 36}  # id + code + grouped code (+ weights, twice)
@@ -119,6 +119,8 @@ class EventSource:
     text_hashes: np.ndarray | None
     # keys as reports show them (composite keys decoded: lshjob.keyed); default (key,)
     describe: Callable[[pl.Series], list[str]] | None = None
+    # code of each dictionary entry when texts of one NFC form are one element, else None
+    remap: np.ndarray | None = None
 
     @property
     def events(self) -> int:
@@ -147,7 +149,8 @@ def open_events(source: str | Path, spec: EventSpec) -> EventSource:
     warming = start_compiled_code()
     try:
         frame, report, where = validated_events(source, spec)
-        dictionary = _checked_dictionary(frame, where)
+        with report.reading(where):
+            dictionary = _checked_dictionary(frame, where)
     finally:  # also when the input is refused: the caller may go on to compiled calls
         warming.join()  # before any compiled call: one threading layer (workqueue) must not be entered twice at once
     return _source(frame, report, where, spec, dictionary, None)
@@ -157,7 +160,9 @@ def event_source(frame: pl.LazyFrame, report: IngestReport, where: str, spec: Ev
                  describe: Callable[[pl.Series], list[str]] | None = None) -> EventSource:
     """An EventSource over checked events whose ``entity`` column is already one integer key
     per set (:mod:`lshjob.keyed`); ``describe`` shows keys in reports."""
-    return _source(frame, report, where, spec, _checked_dictionary(frame, where), describe)
+    with report.reading(where):
+        dictionary = _checked_dictionary(frame, where)
+    return _source(frame, report, where, spec, dictionary, describe)
 
 
 def _checked_dictionary(frame: pl.LazyFrame, where: str) -> pl.Series | None:
@@ -169,8 +174,9 @@ def _checked_dictionary(frame: pl.LazyFrame, where: str) -> pl.Series | None:
 
 def _source(frame, report, where, spec, dictionary, describe) -> EventSource:
     weighted = spec.count is not None or spec.min_count > 1
-    text_hashes = None if dictionary is None else xxh64_strings(dictionary)
-    return EventSource(frame, report, where, weighted, float(spec.min_count), dictionary, text_hashes, describe)
+    canonical, remap = (dictionary, None) if dictionary is None or spec.unicode != "nfc" else nfc_codes(dictionary)
+    text_hashes = None if dictionary is None else xxh64_strings(canonical)
+    return EventSource(frame, report, where, weighted, float(spec.min_count), dictionary, text_hashes, describe, remap)
 
 
 def check_budget(events: EventSource, selection: EntitySelection | None, memory: int | None) -> None:
@@ -215,25 +221,26 @@ def group_events(events: EventSource, selection: EntitySelection | None) -> Grou
         frame = frame.filter(selection.condition)
         report = IngestReport(files=report.files, rows_read=n, entity_range=entity_range)
     span = dense_span(entity_range, n)
-    try:
+    codes = (events.dictionary, events.remap)
+    with events.report.reading(where):
         if span:
             keys, offsets, elements, kept_weights = _read_in_range(
-                frame, entity_range[0], span, n, events.weighted, events.dictionary, where,
+                frame, entity_range[0], span, n, events.weighted, codes, where,
                 None if selection is None else selection.key_counts)
         else:
-            keys, offsets, elements, kept_weights = _read_and_group(frame, n, events.weighted,
-                                                                    events.dictionary, where)
-    except pl.exceptions.PolarsError as exc:
-        raise InputError(f"{where}: could not read the events: {exc}") from exc
+            keys, offsets, elements, kept_weights = _read_and_group(frame, n, events.weighted, codes, where)
     return GroupedEvents(keys.alias("entity"), offsets, elements, kept_weights, events.weighted,
                          events.text_hashes, report, where)
 
 
-def _codes(element: pl.Series, dictionary: pl.Series | None) -> np.ndarray:
-    """Element codes of a batch (:mod:`lshjob.membership`)."""
-    if dictionary is None:
+def _codes(element: pl.Series, dictionary: tuple[pl.Series | None, np.ndarray | None]) -> np.ndarray:
+    """Element codes of a batch (:mod:`lshjob.membership`); ``dictionary``: the sorted
+    distinct texts and, when some are one NFC form, their codes."""
+    texts, remap = dictionary
+    if texts is None:
         return element.cast(pl.Int64).to_numpy()
-    return dictionary.search_sorted(element.cast(pl.String)).to_numpy()
+    found = texts.search_sorted(element.cast(pl.String)).to_numpy()
+    return found if remap is None else remap[found]
 
 
 def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=None):
@@ -271,8 +278,9 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=Non
                             _codes(batch["element"], dictionary), w, elements, kept_weights, shares)
     if misplaced or counted != n or not np.array_equal(slots[present], offsets[1:]):
         raise InputError(f"{where}: the files changed while being read ({n} events counted, then read again)")
-    keys = pl.Series("entity", present + first, dtype=frame.collect_schema()["entity"])
-    return keys, offsets, elements, kept_weights
+    dtype = frame.collect_schema()["entity"]
+    values = present.astype(np.uint64) + np.uint64(first) if dtype == pl.UInt64 else present + first  # 2**63 and up
+    return pl.Series("entity", values, dtype=dtype), offsets, elements, kept_weights
 
 
 def batches(frame: pl.LazyFrame, columns: list[str]) -> Iterator[pl.DataFrame]:
@@ -311,7 +319,7 @@ def _read_and_group(frame, n, weighted, dictionary, where):
     """Steps 1-3 of the module docstring up to the counting sort."""
     keys = frame.select(pl.col("entity").unique()).collect(engine="streaming")["entity"].sort()
     ids = np.empty(n, dtype=np.uint32 if len(keys) < 2**32 else np.int64)
-    positions = _key_positions(keys)
+    positions = grouping.key_positions(keys)
     codes = np.empty(n, dtype=np.int64)
     weights = np.empty(n if weighted else 0, dtype=np.float64)
     pos = 0
@@ -357,28 +365,6 @@ def dense_span(entity_range: tuple[int, int] | None, events: int) -> int:
 
 
 DENSE_MIN_SPAN = 1 << 16  # a table this small (512 KiB) is always worth it
-
-
-def _key_positions(keys: pl.Series):
-    """A function mapping a batch of entity keys to their positions in the sorted ``keys``:
-    -1 for an integer that is not a key, a position out of range for text past the last key
-    (text before it is not checked). Dense-ish integer keys use a direct table built once."""
-    if keys.dtype.is_integer() and len(keys):
-        k = keys.to_numpy().astype(np.int64)
-        span = int(k[-1]) - int(k[0])
-        if span < DIRECT_TABLE_FACTOR * len(k):
-            table = np.full(span + 1, -1, dtype=np.int64)
-            table[k - k[0]] = np.arange(len(k))
-            return lambda values: grouping.lookup(table, k[0], values.to_numpy().astype(np.int64, copy=False))
-        if span < 2**62:  # buckets of about one key each (composite keys of lshjob.keyed, sparse numbers)
-            shift = max(0, (span // len(k)).bit_length() - 1)
-            starts = grouping.bucket_starts(k, shift)
-            return lambda values: grouping.lookup_bucketed(k, starts, shift, values.to_numpy().astype(np.int64, copy=False))
-        return lambda values: grouping.search_sorted_parallel(k, values.to_numpy().astype(np.int64, copy=False))
-    return lambda values: keys.search_sorted(values).to_numpy()
-
-
-DIRECT_TABLE_FACTOR = 4
 
 
 def _text_dictionary(frame: pl.LazyFrame) -> pl.Series | None:

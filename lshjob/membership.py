@@ -12,6 +12,7 @@ when their codes are, so intersections counted on codes are exact, and
 
 from __future__ import annotations
 
+import unicodedata
 from dataclasses import dataclass
 
 import numba
@@ -80,6 +81,20 @@ def element_codes(values: pl.Series) -> tuple[pl.Series, np.ndarray | None]:
     dictionary = text.unique().sort()
     codes = text.rank("dense").cast(pl.Int64) - 1  # position in the sorted distinct keys
     return codes.alias("code"), xxh64_strings(dictionary)
+
+
+def nfc_codes(dictionary: pl.Series) -> tuple[pl.Series, np.ndarray | None]:
+    """(sorted distinct NFC forms, code of each dictionary entry among them); (dictionary,
+    None) when every entry is NFC already. Only entries holding a non-ASCII character are
+    normalised (Python's unicodedata, on distinct values only)."""
+    odd = np.flatnonzero((dictionary.str.len_bytes() != dictionary.str.len_chars()).to_numpy())
+    texts = dictionary.gather(odd).to_list()
+    forms = [unicodedata.normalize("NFC", t) for t in texts]
+    if forms == texts:
+        return dictionary, None
+    normal = dictionary.scatter(odd, forms)
+    canonical = normal.unique().sort()
+    return canonical, canonical.search_sorted(normal).to_numpy().astype(np.int64)
 
 
 @numba.njit(inline="always")

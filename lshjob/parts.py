@@ -63,9 +63,10 @@ MIN_VERIFY_SLICE = 1_000_000
 
 def events_per_entity(events: EventSource | pl.LazyFrame) -> pl.DataFrame:
     """``entity`` (sorted) and ``events`` (UInt32): one row per entity key, one streaming pass."""
-    frame = events if isinstance(events, pl.LazyFrame) else events.frame
-    return (frame.group_by("entity").agg(pl.len().alias("events"))
-            .collect(engine="streaming").sort("entity"))
+    if isinstance(events, pl.LazyFrame):
+        return events.group_by("entity").agg(pl.len().alias("events")).collect(engine="streaming").sort("entity")
+    with events.report.reading(events.where):  # a file failing to read is named
+        return events_per_entity(events.frame)
 
 
 def bytes_per_event(events: EventSource) -> float:

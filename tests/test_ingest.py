@@ -99,7 +99,7 @@ def test_wrong_type(tmp_path):
 def test_null_keys_counted_and_located(tmp_path):
     path = tmp_path / "nulls.parquet"
     pl.DataFrame({"patron": ["a", None, "b", None], "title": ["x", "y", "z", "w"]}).write_parquet(path)
-    expect_input_error(tmp_path, path, SPEC, "nulls.parquet", "'patron'", "2 null", "row 1", "--on-null drop")
+    expect_input_error(tmp_path, path, SPEC, "nulls.parquet", "'patron'", "2 null", "row 2", "--on-null drop")
 
 
 def test_null_keys_dropped_on_request(tmp_path):
