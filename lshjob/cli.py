@@ -212,6 +212,7 @@ RUN_DEFAULTS = {
     "count": None, "min_count": 1, "on_null": "error", "top_k": 50, "perms": None, "bands": None,
     "rows": None, "recall": 0.95, "sample_size": 2000, "seed": 1, "scheme": "kperm", "max_bucket": 2000,
     "max_candidates": 2e9, "memory": None, "parts": None, "wait": 0.0, "scratch": None,
+    "unicode": "nfc",
 }
 
 
@@ -231,7 +232,7 @@ def run(
     count: Annotated[Optional[str], typer.Option(help="Column with a count or weight per event.")] = None,
     min_count: Annotated[Optional[float], typer.Option(help="Keep elements seen at least this often.  [default: 1]")] = None,
     on_null: Annotated[Optional[str], typer.Option(help="Null keys: error or drop.  [default: error]")] = None,
-    unicode: Annotated[str, typer.Option(help="Text keys: 'nfc' (one Unicode normal form) or 'asis' (as given).")] = "nfc",
+    unicode: Annotated[Optional[str], typer.Option(help="Text keys: 'nfc' (one Unicode normal form) or 'asis' (as given).  [default: nfc]")] = None,
     sample_size: Annotated[Optional[int], typer.Option(help="Entities the planner samples.  [default: 2000]")] = None,
     seed: Annotated[Optional[int], typer.Option(help="Seed of the hash family.  [default: 1]")] = None,
     scheme: Annotated[Optional[str], typer.Option(help="Signature scheme: kperm or oph.  [default: kperm]")] = None,
@@ -259,14 +260,14 @@ def run(
                  top_k=top_k, perms=perms, bands=bands, rows=rows, recall=recall, count=count,
                  min_count=min_count, on_null=on_null, sample_size=sample_size, seed=seed, scheme=scheme,
                  max_bucket=max_bucket, max_candidates=max_candidates, memory=memory, parts=parts,
-                 wait=wait, scratch=None if scratch is None else str(scratch))
+                 wait=wait, scratch=None if scratch is None else str(scratch), unicode=unicode)
     settings = merge_settings(RUN_DEFAULTS, load_run_config(config) if config else {}, flags)
     missing = [name for name in ("events", "entity", "element", "threshold", "out") if settings.get(name) is None]
     if missing:
         raise ParameterError(f"lshjob run needs {', '.join(missing)} (as options or in --config)")
     refuse_output_over_inputs(settings["out"], [settings["events"]], folder=True)
     spec = EventSpec(entity=settings["entity"], element=settings["element"], count=settings["count"],
-                     min_count=settings["min_count"], on_null=settings["on_null"], unicode=unicode)
+                     min_count=settings["min_count"], on_null=settings["on_null"], unicode=settings["unicode"])
     options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__})
     with _progress(quiet, as_json) as progress:
         manifest = run_job(settings["events"], spec, options, settings["out"], progress, command=sys.argv)

@@ -28,6 +28,7 @@ RUN_KEYS = {
     "on_null": str, "threshold": (int, float), "out": str, "top_k": int, "perms": int, "bands": int,
     "rows": int, "recall": float, "sample_size": int, "seed": int, "scheme": str, "max_bucket": int,
     "max_candidates": (int, float), "memory": str, "parts": int, "wait": (int, float), "scratch": str,
+    "unicode": str,
 }
 PATH_KEYS = ("events", "out", "scratch")  # relative to the configuration file's folder
 

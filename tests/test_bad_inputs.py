@@ -2,6 +2,7 @@
 file (and the column, value or line), through both ingest paths: the streaming loader
 (``sign_file`` with one set per entity) and polars' group-by (``--segment``)."""
 
+import json
 import subprocess
 import sys
 import unicodedata
@@ -381,6 +382,16 @@ def test_unicode_option_on_the_command_line(tmp_path):
         assert done.returncode == 0, done.stderr
         counts.append(pl.read_parquet(tmp_path / f"{mode}.parquet").height)
     assert counts == [2, 4]
+    # The run reads the same choice from its configuration file (NFC and NFD names: 4 patrons
+    # as given, 2 in NFC; oracle: unicodedata, as unicode_events builds them).
+    for mode, entities in (("nfc", 2), ("asis", 4)):
+        config = tmp_path / f"{mode}.toml"
+        config.write_text(f'events = "names.parquet"\nentity = "patron"\nelement = "title"\n'
+                          f'threshold = 0.5\nout = "idx-{mode}"\nunicode = "{mode}"\n')
+        done = subprocess.run([sys.executable, "-m", "lshjob.cli", "run", "--config", str(config), "--json"],
+                              capture_output=True, text=True, timeout=300)
+        assert done.returncode == 0, done.stderr
+        assert json.loads(done.stdout)["counts"]["entities"] == entities
 
 
 @pytest.mark.parametrize("text", [
