@@ -156,7 +156,8 @@ def _densify_row(row, dense, mask, ranks, probes, salt, k, positions):
         else:
             mask[j] = np.uint32(0)
             filled += 1
-    dense[:] = row
+    for j in range(k):  # not ``dense[:] = row``: that compiles numba's shape-mismatch error
+        dense[j] = row[j]
     if filled == 0 or filled == k:
         return
     for i in range(positions):

@@ -196,9 +196,15 @@ def _wanted_id(x, wanted, bitmap, shift):
     h = (np.uint64(x) * GOLDEN) >> shift
     if not (bitmap[h >> np.uint64(6)] >> (h & np.uint64(63))) & np.uint64(1):
         return -1
-    p = np.searchsorted(wanted, x)
-    if p < len(wanted) and wanted[p] == x:
-        return p
+    lo, hi = 0, len(wanted)  # binary search (numba's np.searchsorted costs a second to compile)
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if wanted[mid] < x:
+            lo = mid + 1
+        else:
+            hi = mid
+    if lo < len(wanted) and wanted[lo] == x:
+        return lo
     return -1
 
 
