@@ -61,6 +61,18 @@ def cache_folder(dispatcher=None) -> str:
         return "numba's default"
 
 
+def readonly(array):
+    """A read-only contiguous view of ``array`` (a copy only when it is not contiguous).
+    Numba compiles a kernel once per argument type, and a read-only array is another type
+    than a writable one: kernels given their inputs through this see one type whether the
+    caller's array came from polars (read-only views) or numpy (writable)."""
+    import numpy as np
+
+    view = np.ascontiguousarray(array).view()
+    view.flags.writeable = False
+    return view
+
+
 def _quiet_command() -> bool:
     return any(arg in ("--quiet", "-q") for arg in sys.argv[1:])
 

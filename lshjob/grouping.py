@@ -13,9 +13,23 @@ from __future__ import annotations
 import numba
 import numpy as np
 
+from .compile_cache import readonly
+
+
+def count_keys(slots, values, first, last, shares):
+    """:func:`_count_keys` with ``values`` read-only (one compiled kernel per key type)."""
+    return _count_keys(slots, readonly(values), first, last, shares)
+
+
+def place_codes(slots, values, first, last, codes, weights, out, out_weights, shares):
+    """:func:`_place_codes` with the inputs read-only (one compiled kernel per key and code
+    type)."""
+    return _place_codes(slots, readonly(values), first, last, readonly(codes), readonly(weights), out, out_weights,
+                        shares)
+
 
 @numba.njit(parallel=True, cache=True)
-def count_keys(slots, values, first, last, shares):
+def _count_keys(slots, values, first, last, shares):
     """Count events per key value (share s of the threads takes the values v with
     v % shares == s, as :func:`place_codes`); returns how many values fall outside
     [first, last] (compared before subtracting, so nothing overflows)."""
@@ -33,7 +47,7 @@ def count_keys(slots, values, first, last, shares):
 
 
 @numba.njit(parallel=True, cache=True)
-def place_codes(slots, values, first, last, codes, weights, out, out_weights, shares):
+def _place_codes(slots, values, first, last, codes, weights, out, out_weights, shares):
     """Write each event's code (and weight) into its key's next slot. Share s of the threads
     takes the key values v with v % shares == s (shares a power of two), so no two threads
     move one slot pointer.
@@ -259,27 +273,25 @@ def _quicksort(values, lo, hi, depth):
 @numba.njit(cache=True)
 def _heapsort(values, lo, hi):
     """Sort ``values[lo:hi]`` in place, O(n log n) whatever the input (the quicksort's
-    fallback; numba's own sort costs over a second to compile)."""
+    fallback; numba's own sort costs over a second to compile). One loop: first building
+    the max-heap, then moving its top behind it."""
     n = hi - lo
-    for start in range(n // 2 - 1, -1, -1):
-        _sift_down(values, lo, start, n)
-    for end in range(n - 1, 0, -1):
-        values[lo], values[lo + end] = values[lo + end], values[lo]
-        _sift_down(values, lo, 0, end)
-
-
-@numba.njit(cache=True)
-def _sift_down(values, lo, root, n):
-    while True:
-        child = 2 * root + 1
-        if child >= n:
-            return
-        if child + 1 < n and values[lo + child + 1] > values[lo + child]:
-            child += 1
-        if values[lo + root] >= values[lo + child]:
-            return
-        values[lo + root], values[lo + child] = values[lo + child], values[lo + root]
-        root = child
+    start, end = n // 2, n
+    while end > 1:
+        if start > 0:
+            start -= 1
+        else:
+            end -= 1
+            values[lo], values[lo + end] = values[lo + end], values[lo]
+        root = start
+        while 2 * root + 1 < end:  # sift down
+            child = 2 * root + 1
+            if child + 1 < end and values[lo + child + 1] > values[lo + child]:
+                child += 1
+            if values[lo + root] >= values[lo + child]:
+                break
+            values[lo + root], values[lo + child] = values[lo + child], values[lo + root]
+            root = child
 
 
 @numba.njit(cache=True)

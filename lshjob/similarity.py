@@ -12,6 +12,7 @@ import numba
 import numpy as np
 import polars as pl
 
+from .compile_cache import readonly
 from .errors import InputError
 from .membership import Membership
 from .planner import PairHistogram
@@ -228,7 +229,7 @@ def estimated_pair_similarities(signatures: pl.DataFrame, params: SignatureParam
     """All pairwise signature estimates among the rows of a signature table."""
     if signatures.height < 2:
         raise InputError(f"the sample needs at least 2 entities; got {signatures.height}")
-    return _all_pairs_estimate(comparable(signature_array(signatures), params))
+    return _all_pairs_estimate(readonly(comparable(signature_array(signatures), params)))
 
 
 def histogram(

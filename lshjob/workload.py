@@ -1,9 +1,10 @@
 """A tiny run of every command, on generated library loans, so that each compiled kernel is
 called with every kind of argument the job passes it (``lshjob compile-kernels``).
 
-The data: 300 patrons of the demo network (:mod:`lshjob.demo`), written three ways:
+The data: 300 patrons of the demo network (:mod:`lshjob.demo`), written five ways:
 text keys (``P000123``, ``T000042``); integer keys in a small range (Int32 in the file);
-integer patron keys spread wide (so the loader takes its general path). Invented data.
+integer patron keys spread wide (so the loader takes its general path); integer patrons
+with text titles; unsigned patron keys. Invented data.
 """
 
 from __future__ import annotations
@@ -34,6 +35,9 @@ def write_inputs(folder: Path) -> dict[str, Path]:
                                        pl.col("title").str.slice(1).cast(pl.Int32).alias("title")),
         "sparse": events.with_columns((number * 1_000_003 - 5_000_000_000).alias("patron"),
                                       pl.col("title").str.slice(1).cast(pl.Int64).alias("title")),
+        "mixed": events.with_columns(number.alias("patron")),  # integer patrons, text titles
+        "unsigned": events.with_columns(number.cast(pl.UInt64).alias("patron"),
+                                        pl.col("title").str.slice(1).cast(pl.Int64).alias("title")),
     }
     paths = {}
     for name, frame in files.items():
@@ -57,7 +61,7 @@ def exercise(folder: Path) -> list[str]:
 
     for scheme in ("kperm", "oph"):
         params = SignatureParams(scheme=scheme, perms=64)
-        for kind in ("text", "integer", "sparse"):
+        for kind in ("text", "integer", "sparse", "mixed"):
             step(f"sign {kind} {scheme}", sign_file, paths[kind], folder / f"sig-{kind}-{scheme}.parquet", plain,
                  params, memory=MEMORY)
             step(f"sign {kind} {scheme} weighted", sign_file, paths[kind], folder / f"w-{kind}-{scheme}.parquet",
@@ -87,6 +91,9 @@ def exercise(folder: Path) -> list[str]:
         ("text", plain, RunOptions(threshold=0.5, top_k=10, parts=2, memory="1GiB")),
         ("sparse", plain, RunOptions(threshold=1.0, top_k=10, memory="1GiB")),
         ("text", plain, RunOptions(threshold=1.0, top_k=10, parts=2, memory="1GiB")),
+        ("mixed", plain, RunOptions(threshold=0.5, top_k=10, memory="1GiB")),
+        ("mixed", weighted, RunOptions(threshold=0.4, top_k=10, parts=2, memory="1GiB")),
+        ("unsigned", plain, RunOptions(threshold=0.5, top_k=10, memory="1GiB")),
     ]
     for i, (kind, spec, options) in enumerate(runs):
         index = folder / f"index-{i}"
