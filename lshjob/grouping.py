@@ -172,43 +172,59 @@ def group_by_entity(ids, codes, weights, n_keys, shares):
 SIGN_BIT = np.uint64(1 << 63)
 
 
-@numba.njit(parallel=True, cache=True)
 def sort_and_merge(offsets, elements, weights, min_count, weighted):
     """Sort each set, merge repeats (summing weights), drop elements under min_count;
-    the kept elements move to the front of the set's slot. Returns the new sizes."""
+    the kept elements move to the front of the set's slot. Returns the new sizes.
+    Two kernels, so a run without weights compiles only the plain one."""
+    if weighted:
+        return _merge_weighted(offsets, elements, weights, min_count)
+    return _sort_and_dedup(offsets, elements)
+
+
+@numba.njit(parallel=True, cache=True)
+def _merge_weighted(offsets, elements, weights, min_count):
     n = len(offsets) - 1
     sizes = np.zeros(n, dtype=np.int64)
     for g in numba.prange(n):
         a, b = offsets[g], offsets[g + 1]
         if b == a:
             continue
-        if weighted:
-            # stable sort of the codes as order-preserving unsigned words (sign bit flipped):
-            # the same compiled sort as the band stage's, one compile less in a process
-            order = np.argsort(elements[a:b].astype(np.uint64) ^ SIGN_BIT, kind="mergesort")
-            seg = elements[a:b][order]
-            w = weights[a:b][order]
-            out = a
-            i = 0
-            while i < b - a:
-                total = w[i]
-                j = i + 1
-                while j < b - a and seg[j] == seg[i]:
-                    total += w[j]
-                    j += 1
-                if total >= min_count:
-                    elements[out] = seg[i]
-                    out += 1
-                i = j
-            sizes[g] = out - a
-        else:
-            sort_range(elements, a, b)
-            out = a + 1
-            for j in range(a + 1, b):
-                if elements[j] != elements[out - 1]:
-                    elements[out] = elements[j]
-                    out += 1
-            sizes[g] = out - a
+        # stable sort of the codes as order-preserving unsigned words (sign bit flipped):
+        # the same compiled sort as the band stage's, one compile less in a process
+        order = np.argsort(elements[a:b].astype(np.uint64) ^ SIGN_BIT, kind="mergesort")
+        seg = elements[a:b][order]
+        w = weights[a:b][order]
+        out = a
+        i = 0
+        while i < b - a:
+            total = w[i]
+            j = i + 1
+            while j < b - a and seg[j] == seg[i]:
+                total += w[j]
+                j += 1
+            if total >= min_count:
+                elements[out] = seg[i]
+                out += 1
+            i = j
+        sizes[g] = out - a
+    return sizes
+
+
+@numba.njit(parallel=True, cache=True)
+def _sort_and_dedup(offsets, elements):
+    n = len(offsets) - 1
+    sizes = np.zeros(n, dtype=np.int64)
+    for g in numba.prange(n):
+        a, b = offsets[g], offsets[g + 1]
+        if b == a:
+            continue
+        sort_range(elements, a, b)
+        out = a + 1
+        for j in range(a + 1, b):
+            if elements[j] != elements[out - 1]:
+                elements[out] = elements[j]
+                out += 1
+        sizes[g] = out - a
     return sizes
 
 
