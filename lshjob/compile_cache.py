@@ -160,10 +160,19 @@ def fill_cache(folder: str | Path | None = None) -> dict:
     run on text, integer and sparse integer keys, weighted, in parts, at threshold 1; audit)
     on a tiny generated data set in a temporary folder (or ``folder``). Returns what was
     compiled, the seconds and the cache folder."""
+    import numba
     from numba.core import event
 
+    from .errors import ParameterError
     from .workload import exercise
 
+    if numba.config.CACHE_DIR:  # numba would quietly compile into another folder instead
+        try:
+            os.makedirs(numba.config.CACHE_DIR, exist_ok=True)
+            tempfile.TemporaryFile(dir=numba.config.CACHE_DIR).close()
+        except OSError as exc:
+            raise ParameterError(f"compile cache folder {numba.config.CACHE_DIR} (LSHJOB_CACHE_DIR or "
+                                 f"NUMBA_CACHE_DIR): cannot write there: {exc.strerror or exc}") from None
     recorder = _Recorder()
     NOTICE.enabled = False  # the command reports what it compiles itself
     started = time.perf_counter()
@@ -176,11 +185,10 @@ def fill_cache(folder: str | Path | None = None) -> dict:
                 steps = exercise(Path(folder))
     finally:
         NOTICE.enabled = True
-    top = [c for c in recorder.compiled]
     return {
         "cache_dir": cache_folder(),
-        "compiled": top,
-        "kernels_compiled": len({c["kernel"] for c in top}),
+        "compiled": recorder.compiled,
+        "kernels_compiled": len({c["kernel"] for c in recorder.compiled}),
         "steps": steps,
         "seconds": round(time.perf_counter() - started, 2),
     }

@@ -104,6 +104,19 @@ def test_numba_cache_dir_is_honoured_and_lshjob_cache_dir_wins(tmp_path):
     assert _cache_files(lshjob_dir)[0]
 
 
+def test_compile_kernels_refuses_a_cache_folder_it_cannot_write(tmp_path):
+    # Oracle: the file system (a path under a plain file cannot be a folder); exit code 2 and
+    # one line naming the folder, before any compiling.
+    blocker = tmp_path / "file"
+    blocker.write_text("not a folder")
+    result = subprocess.run([sys.executable, "-m", "lshjob.cli", "compile-kernels"],
+                            env=_env(LSHJOB_CACHE_DIR=blocker / "cache"), capture_output=True, text=True, timeout=120)
+    assert result.returncode == 2
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: compile cache folder") and str(blocker / "cache") in lines[0]
+    assert NOTICE not in result.stderr
+
+
 def test_quicksort_fallback_heapsort_sorts_like_numpy():
     # Oracle: numpy's sort. Depth 0 sends every range longer than the insertion-sort cut-off
     # straight to the heapsort fallback.
