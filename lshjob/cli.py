@@ -331,7 +331,10 @@ def compile_kernels(quiet: Quiet = False, as_json: AsJson = False) -> None:
 
     The cache folder is LSHJOB_CACHE_DIR (or NUMBA_CACHE_DIR) when set, else numba's default.
 
-    Example (in an image build): LSHJOB_CACHE_DIR=/opt/lshjob-cache lshjob compile-kernels --json
+    Example: lshjob compile-kernels --json
+
+    Example (an image build, own cache folder): LSHJOB_CACHE_DIR=/opt/lshjob-cache
+    lshjob compile-kernels
     """
     from .compile_cache import fill_cache
 
