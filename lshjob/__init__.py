@@ -2,7 +2,12 @@
 
 import os
 
+from .compile_cache import configure_cache_dir, install_notice
+
 __version__ = "0.1.0"
+
+# LSHJOB_CACHE_DIR becomes numba's cache folder before numba is imported (lshjob.compile_cache).
+configure_cache_dir()
 
 # polars' allocator (jemalloc) keeps freed pages resident by default ("muzzy_decay_ms:-1"),
 # so a run's resident memory only grows; a job held to a memory budget returns them at
@@ -10,6 +15,8 @@ __version__ = "0.1.0"
 # this takes effect when lshjob is imported first (as by the lshjob command); a value the
 # user set is kept.
 os.environ.setdefault("_RJEM_MALLOC_CONF", "muzzy_decay_ms:0")
+
+install_notice()  # one line on stderr when a kernel compiles (no cached code for this machine)
 
 from .api import merge_files, sign_file  # noqa: E402
 from .errors import IncompatibleSignatures, InputError, LshjobError, ParameterError  # noqa: E402

@@ -118,8 +118,9 @@ def store_row(out, t, row, by_position):
     if by_position:
         for i in range(row.shape[0]):
             out[i, t] = row[i]
-    else:
-        out[t] = row
+    else:  # element by element: ``out[t] = row`` compiles numba's shape-mismatch error (seconds)
+        for i in range(row.shape[0]):
+            out[t, i] = row[i]
 
 
 @numba.njit(parallel=True, cache=True)

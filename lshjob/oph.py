@@ -31,6 +31,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
+from .compile_cache import readonly
 from .hashing import fmix64
 from .membership import element_hash, store_row
 
@@ -129,9 +130,15 @@ def _probe_tables(salt, k):
     return np.empty((0, 0), dtype=np.uint32), probe_table(salt, k, PROBE_TABLE_DEPTH)
 
 
-@numba.njit(parallel=True, cache=True)
 def densify(signatures, salt, by_position):
-    """Densified copy of (n x k) stored signatures; (k x n) when ``by_position``."""
+    """Densified copy of (n x k) stored signatures; (k x n) when ``by_position``. The
+    signatures go in read-only, so one compiled kernel serves arrays read from files and
+    arrays just made."""
+    return _densify(readonly(signatures), salt, by_position)
+
+
+@numba.njit(parallel=True, cache=True)
+def _densify(signatures, salt, by_position):
     n, k = signatures.shape
     out = np.empty((k, n) if by_position else (n, k), dtype=np.uint64)
     ranks, probes = _probe_tables(salt, k)
@@ -156,7 +163,8 @@ def _densify_row(row, dense, mask, ranks, probes, salt, k, positions):
         else:
             mask[j] = np.uint32(0)
             filled += 1
-    dense[:] = row
+    for j in range(k):  # not ``dense[:] = row``: that compiles numba's shape-mismatch error
+        dense[j] = row[j]
     if filled == 0 or filled == k:
         return
     for i in range(positions):

@@ -12,6 +12,7 @@ import numba
 import numpy as np
 import polars as pl
 
+from .compile_cache import readonly
 from .errors import InputError
 from .membership import Membership
 from .planner import PairHistogram
@@ -196,9 +197,15 @@ def _wanted_id(x, wanted, bitmap, shift):
     h = (np.uint64(x) * GOLDEN) >> shift
     if not (bitmap[h >> np.uint64(6)] >> (h & np.uint64(63))) & np.uint64(1):
         return -1
-    p = np.searchsorted(wanted, x)
-    if p < len(wanted) and wanted[p] == x:
-        return p
+    lo, hi = 0, len(wanted)  # binary search (numba's np.searchsorted costs a second to compile)
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if wanted[mid] < x:
+            lo = mid + 1
+        else:
+            hi = mid
+    if lo < len(wanted) and wanted[lo] == x:
+        return lo
     return -1
 
 
@@ -222,7 +229,7 @@ def estimated_pair_similarities(signatures: pl.DataFrame, params: SignatureParam
     """All pairwise signature estimates among the rows of a signature table."""
     if signatures.height < 2:
         raise InputError(f"the sample needs at least 2 entities; got {signatures.height}")
-    return _all_pairs_estimate(comparable(signature_array(signatures), params))
+    return _all_pairs_estimate(readonly(comparable(signature_array(signatures), params)))
 
 
 def histogram(
