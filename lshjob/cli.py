@@ -23,7 +23,7 @@ from .job import RunOptions, run_job
 from .reports import audit_report, plan_report, run_report
 from .failures import EXIT_CODES, check_whole_numbers, failure, run_app
 from .ingest import EventSpec
-from .outputs import demo_folder
+from .outputs import demo_folder, output_file
 from .progress import StageProgress
 from .resources import parse_size
 from .signatures import SignatureParams
@@ -194,6 +194,8 @@ def plan(
 
     Example (judge a given plan): lshjob plan --threshold 0.5 --perms 128 --bands 20 --rows 5
     """
+    if chart is not None:  # before the sample is read
+        chart = output_file(chart, [sample] if sample else [], "plan --chart", "--chart")
     spec = EventSpec(entity=entity, element=element, on_null=on_null) if entity and element else None
     result = api.plan_banding(
         threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed,

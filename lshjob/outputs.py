@@ -40,7 +40,7 @@ def output_file(out: str | Path, sources: list[str | Path], command: str, option
     """Check ``out`` as the one file ``command`` writes from ``sources``; return the path to
     write: ``out`` itself, or the file a symbolic link ``out`` leads to."""
     path = _given(out, option)
-    refuse_output_over_inputs(path, sources, given=out)
+    refuse_output_over_inputs(path, sources, given=out, option=option)
     target = Path(os.path.realpath(path)) if path.is_symlink() else path
     kind = _kind(target)
     if kind == "a folder":
@@ -56,7 +56,7 @@ def output_folder(out: str | Path, sources: list[str | Path], command: str, what
     """Check ``out`` as the folder ``command`` writes from ``sources`` (a symbolic link to a
     folder is followed); return it as a path."""
     path = _given(out, option)
-    refuse_output_over_inputs(path, sources, given=out, folder=True)
+    refuse_output_over_inputs(path, sources, given=out, folder=True, option=option)
     if path.is_symlink() and not path.exists():
         raise ParameterError(f"{option} {out} is a symbolic link to {os.readlink(path)}, which does not exist; "
                              "make that folder or choose another path")
@@ -89,7 +89,7 @@ def demo_folder(out: str | Path) -> Path:
 
 
 def refuse_output_over_inputs(out: str | Path, sources: list[str | Path], folder: bool = False,
-                              given: str | Path | None = None) -> None:
+                              given: str | Path | None = None, option: str = "--out") -> None:
     """Raise :class:`ParameterError` when ``out`` is one of the files or folders ``sources``
     name (a file, a glob or a directory), or when it (for an output folder, a file published
     in it) lies in an input folder or matches an input pattern. ``given``: the path as the
@@ -102,21 +102,21 @@ def refuse_output_over_inputs(out: str | Path, sources: list[str | Path], folder
         if any(ch in text for ch in PATTERN_CHARS):
             inputs = [_absolute(p) for p in glob.glob(text)]
             if any(_same(target, p) for p in inputs):
-                raise ParameterError(f"--out {shown} is one of the inputs; choose another path")
+                raise ParameterError(f"{option} {shown} is one of the inputs; choose another path")
             pattern = str(_absolute(text))
             if fnmatch.fnmatchcase(str(target), pattern):
-                raise ParameterError(f"--out {shown} matches the input pattern {text}; choose another path")
+                raise ParameterError(f"{option} {shown} matches the input pattern {text}; choose another path")
             for w in written[1:]:
                 if fnmatch.fnmatchcase(str(w), pattern):
-                    raise ParameterError(f"--out {shown} would publish {w.name}, which the input pattern {text} "
+                    raise ParameterError(f"{option} {shown} would publish {w.name}, which the input pattern {text} "
                                          "matches; choose another path")
             continue
         absolute = _absolute(text)
         if _same(target, absolute):
-            raise ParameterError(f"--out {shown} is one of the inputs; choose another path")
+            raise ParameterError(f"{option} {shown} is one of the inputs; choose another path")
         if absolute.is_dir() and any(_same(w.parent, absolute) for w in written):
             where = "is in" if _same(target.parent, absolute) else "would publish into"
-            raise ParameterError(f"--out {shown} {where} the input folder {text}; choose another path")
+            raise ParameterError(f"{option} {shown} {where} the input folder {text}; choose another path")
 
 
 def _given(out: str | Path, option: str) -> Path:

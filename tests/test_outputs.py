@@ -189,6 +189,8 @@ RUN_ARGS = [*SPEC, "--threshold", "0.5"]
      "error: --scratch nowhere does not exist; make the folder first"),
     (["demo", "--patrons", "100", "--out", "mydata"], "error: --out mydata is a folder with other files in it"),
     (["merge", "m_*.parquet", "--out", "x.parquet"], "error: m_*.parquet: the pattern matches no signature files"),
+    (["plan", "--threshold", "0.5", "--perms", "128", "--chart", "fifo"],
+     "error: --chart fifo is a named pipe (FIFO); plan --chart writes a regular file"),
 ])
 def test_a_bad_output_path_is_one_line_exit_2_and_nothing_written(place, args, expected):
     before = snapshot(place)
