@@ -13,7 +13,7 @@ from .ingest import EventSpec, IngestReport, validated_events
 from .ingest import group_events as group_sets
 from .loading import group_events, membership_of, open_events
 from .merging import merge_files  # noqa: F401  (the API of lshjob merge)
-from .outputs import refuse_output_over_inputs
+from .outputs import output_file
 from .resources import default_memory, peak_bytes
 from .streaming import timed, write_streamed
 from .progress import QUIET, StageProgress
@@ -45,7 +45,7 @@ def sign_file(
     Returns a summary: counts from ingest, the signature parameters and timings. Nothing is
     written when the input is rejected.
     """
-    refuse_output_over_inputs(out, [events])
+    out = output_file(out, [events], "sign")  # a symbolic link: the file it leads to
     started = time.perf_counter()
     memory = memory or default_memory()
     meta = signature_metadata(params, spec.key_columns, period_unit=spec.period)

@@ -81,6 +81,8 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
     if not neighbours.is_file():
         raise InputError(f"{neighbours}: no such file; the index folder holds a manifest but no neighbour table")
     source = events if events is not None else manifest["inputs"]["source"]
+    if events is None:
+        _recorded_input_exists(source)
     warnings: list[str] = []
     input_digest = _events_digest(source, manifest)  # in a thread, while the index file is hashed and the sets read
     integrity = _check_index_file(neighbours, manifest, warnings)
@@ -142,6 +144,15 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
         "warnings": warnings,
         "peak_memory_bytes": peak_bytes(),
     }
+
+
+def _recorded_input_exists(source) -> None:
+    """Refuse, with the way out, a run's recorded input that is gone (moved or deleted)."""
+    try:
+        resolve_paths(source)
+    except InputError as exc:
+        raise InputError(f"{exc} (the run's input, as its manifest records it); pass --events to audit "
+                         "against other events") from None
 
 
 def _check_index_file(neighbours: Path, manifest: dict, warnings: list[str]) -> str | None:

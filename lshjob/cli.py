@@ -23,7 +23,7 @@ from .job import RunOptions, run_job
 from .reports import audit_report, plan_report, run_report
 from .failures import EXIT_CODES, check_whole_numbers, failure, run_app
 from .ingest import EventSpec
-from .outputs import refuse_output_over_inputs
+from .outputs import demo_folder, output_file
 from .progress import StageProgress
 from .resources import parse_size
 from .signatures import SignatureParams
@@ -86,7 +86,7 @@ def main(
 @_fail_cleanly
 def sign(
     events: Annotated[str, typer.Argument(help="Event file, glob or directory (Parquet, CSV or NDJSON).")],
-    out: Annotated[Path, typer.Option("--out", "-o", help="Signature file to write (Parquet).")],
+    out: Annotated[str, typer.Option("--out", "-o", help="Signature file to write (Parquet).")],
     entity: Annotated[str, typer.Option(help="Column holding the entity key (e.g. patron).")],
     element: Annotated[str, typer.Option(help="Column holding the element key (e.g. title).")],
     count: Annotated[Optional[str], typer.Option(help="Column with a count or weight per event.")] = None,
@@ -138,7 +138,7 @@ def sign(
 @_fail_cleanly
 def merge(
     sources: Annotated[list[str], typer.Argument(help="One or more signature files.")],
-    out: Annotated[Path, typer.Option("--out", "-o", help="Merged signature file to write.")],
+    out: Annotated[str, typer.Option("--out", "-o", help="Merged signature file to write.")],
     keep: Annotated[
         str, typer.Option(help="Key columns to keep, comma separated; the others are folded together.")
     ] = "entity",
@@ -194,6 +194,8 @@ def plan(
 
     Example (judge a given plan): lshjob plan --threshold 0.5 --perms 128 --bands 20 --rows 5
     """
+    if chart is not None:  # before the sample is read
+        chart = output_file(chart, [sample] if sample else [], "plan --chart", "--chart")
     spec = EventSpec(entity=entity, element=element, on_null=on_null) if entity and element else None
     result = api.plan_banding(
         threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed,
@@ -223,7 +225,7 @@ def run(
     entity: Annotated[Optional[str], typer.Option(help="Entity column (e.g. patron).")] = None,
     element: Annotated[Optional[str], typer.Option(help="Element column (e.g. title).")] = None,
     threshold: Annotated[Optional[float], typer.Option(help="Jaccard similarity a neighbour must reach, in (0, 1].")] = None,
-    out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Index folder (neighbours.parquet, manifest.json).")] = None,
+    out: Annotated[Optional[str], typer.Option("--out", "-o", help="Index folder (neighbours.parquet, manifest.json).")] = None,
     top_k: Annotated[Optional[int], typer.Option(help="Neighbours kept per entity.  [default: 50]")] = None,
     perms: Annotated[Optional[int], typer.Option(help="Signature length k (default: chosen by the planner).")] = None,
     bands: Annotated[Optional[int], typer.Option(help="Override the planner: number of bands b.")] = None,
@@ -241,7 +243,7 @@ def run(
     memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time.  [default: half the machine]")] = None,
     parts: Annotated[Optional[int], typer.Option(help="Read the entities in this many key ranges, one at a time.  [default: as few as --memory allows]")] = None,
     wait: Annotated[Optional[float], typer.Option(help="Seconds to wait while another run holds the output folder's lock (then exit 75).  [default: 0]")] = None,
-    scratch: Annotated[Optional[Path], typer.Option(help="Folder for the work files (DuckDB spill, parts), e.g. on another disk.  [default: inside --out]")] = None,
+    scratch: Annotated[Optional[str], typer.Option(help="Folder for the work files (DuckDB spill, parts), e.g. on another disk.  [default: inside --out]")] = None,
     config: Annotated[Optional[Path], typer.Option(help="TOML file with any of these options; flags override it.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
@@ -260,12 +262,11 @@ def run(
                  top_k=top_k, perms=perms, bands=bands, rows=rows, recall=recall, count=count,
                  min_count=min_count, on_null=on_null, sample_size=sample_size, seed=seed, scheme=scheme,
                  max_bucket=max_bucket, max_candidates=max_candidates, memory=memory, parts=parts,
-                 wait=wait, scratch=None if scratch is None else str(scratch), unicode=unicode)
+                 wait=wait, scratch=scratch, unicode=unicode)
     settings = merge_settings(RUN_DEFAULTS, load_run_config(config) if config else {}, flags)
     missing = [name for name in ("events", "entity", "element", "threshold", "out") if settings.get(name) is None]
     if missing:
         raise ParameterError(f"lshjob run needs {', '.join(missing)} (as options or in --config)")
-    refuse_output_over_inputs(settings["out"], [settings["events"]], folder=True)
     spec = EventSpec(entity=settings["entity"], element=settings["element"], count=settings["count"],
                      min_count=settings["min_count"], on_null=settings["on_null"], unicode=settings["unicode"])
     options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__})
@@ -311,9 +312,7 @@ def audit(
 @app.command()
 @_fail_cleanly
 def demo(
-    out: Annotated[Path, typer.Option("--out", "-o", help="Folder for the demo data and results.")] = Path(
-        "lshjob-demo"
-    ),
+    out: Annotated[str, typer.Option("--out", "-o", help="Folder for the demo data and results (new, empty or an earlier demo's).")] = "lshjob-demo",
     patrons: Annotated[int, typer.Option(help="Number of patrons to generate.")] = 2000,
     seed: Annotated[int, typer.Option(help="Seed of the generator.")] = 7,
     quiet: Quiet = False,
@@ -327,6 +326,7 @@ def demo(
     Example: lshjob demo --out demo-run --patrons 5000 --seed 3
     """
     check_demo_options(patrons, seed)
+    out = demo_folder(out)  # new, empty or an earlier demo's: nothing of the user's replaced
     made = not out.exists()  # a folder made here is removed again if the demo fails
     try:
         data = write_demo(out, patrons, seed)

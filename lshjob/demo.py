@@ -25,6 +25,7 @@ import numpy as np
 import polars as pl
 
 from .errors import ParameterError
+from .outputs import DEMO_MARKER, demo_folder
 
 BRANCHES = ["Riverside", "Old Town", "Hilltop", "Harbour", "Northgate", "Meadowbank"]
 GENRES = 8
@@ -146,10 +147,12 @@ def _reader_loans(rng, patrons, sizes, drifter, n_general, n_summer):
 
 
 def write_demo(out: str | Path, patrons: int = 2000, seed: int = 7) -> dict:
-    """Write DIR/events.parquet and DIR/planted.parquet; return a summary."""
-    out = Path(out)
+    """Write DIR/events.parquet and DIR/planted.parquet; return a summary. ``out`` must be
+    new, empty or an earlier demo's folder (it holds the marker file written here first)."""
+    out = demo_folder(out)
     events, planted = generate_events(patrons, seed)
     out.mkdir(parents=True, exist_ok=True)
+    (out / DEMO_MARKER).write_text(f"lshjob demo: patrons {patrons}, seed {seed}\n")  # first: a rerun may replace
     for name, frame in (("events.parquet", events), ("planted.parquet", planted)):
         tmp = out / f".{name}.tmp"
         frame.write_parquet(tmp)

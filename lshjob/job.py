@@ -24,6 +24,7 @@ from .folder_lock import output_lock
 from .ingest import EventSpec, resolve_paths
 from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
 from .loading import grouping_need, open_events
+from .outputs import output_folder, scratch_folder
 from .progress import QUIET, StageProgress
 from .resources import current_bytes, default_memory, parse_size, peak_bytes, reset_peak
 from .scratch import remove_leftovers, work_folder
@@ -133,7 +134,8 @@ def run_job(
     options.validate()
     if spec.segment is not None or spec.period is not None:
         raise ParameterError("lshjob run signs one set per entity; sign segments or periods with lshjob sign")
-    out = Path(out)
+    out = output_folder(out, [events], "run")  # before anything is read or made
+    scratch_folder(options.scratch)
     memory = parse_size(options.memory) if options.memory else default_memory()
     lock = output_lock(out, wait=options.wait, what="index").acquire()  # before any work, or Busy
     work = work_folder(out, options.scratch)

@@ -11,13 +11,14 @@ An input file without rows (or without rows in the window) is simply folded: it 
 from __future__ import annotations
 
 import datetime as dt
+import glob
 from pathlib import Path
 
 import polars as pl
 
 from . import parts as parts_module
 from .errors import InputError, ParameterError
-from .outputs import refuse_output_over_inputs
+from .outputs import PATTERN_CHARS, output_file
 from .resources import default_memory, peak_bytes
 from .signatures import check_compatible, merge_signatures, merged_meta, signature_meta, write_signatures
 from .streaming import write_streamed
@@ -46,7 +47,8 @@ def merge_files(
     entity, so a range's read skips most of them), each range's rows streamed into ``out``
     as they are merged.
     """
-    refuse_output_over_inputs(out, sources)
+    given, sources = list(sources), signature_files(sources)
+    out = output_file(out, given + sources, "merge")  # a symbolic link: the file it leads to
     keep = [c for c in dict.fromkeys(keep or ["entity"]) if c]  # "entity,,entity" is "entity"
     if "entity" not in keep:
         raise ParameterError(f"--keep must include 'entity'; got {', '.join(keep)}")
@@ -84,6 +86,24 @@ def merge_files(
 
     written = write_streamed(tables(), out, merged_meta(metas[0], keep))
     return _merge_summary(out, sources, rows_in, written, keep, len(ranges))
+
+
+def signature_files(sources: list[str | Path]) -> list[str | Path]:
+    """The files ``sources`` name: a name that holds ``*``, ``?`` or ``[`` and is not itself
+    a file is a pattern, expanded in sorted order (as ``sign`` and ``run`` take patterns, and
+    a pattern quoted from the shell reaches lshjob as it is); a pattern matching no file is
+    refused."""
+    files: list[str | Path] = []
+    for source in sources:
+        text = str(source)
+        if any(ch in text for ch in PATTERN_CHARS) and not Path(text).exists():
+            matched = sorted(glob.glob(text))
+            if not matched:
+                raise InputError(f"{text}: the pattern matches no signature files")
+            files += matched
+        else:
+            files.append(source)
+    return files
 
 
 def _window_condition(since: str | None, until: str | None) -> pl.Expr | None:

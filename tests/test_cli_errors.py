@@ -246,7 +246,7 @@ def test_merge_onto_an_input_is_refused_and_the_input_kept(tmp_path, small_event
     before = sigs.read_bytes()
     done = lshjob("merge", "sigs.parquet", "--out", "./sigs.parquet", cwd=tmp_path)
     assert done.returncode == 2
-    assert one_error_line(done) == "error: --out sigs.parquet is one of the inputs; choose another path"
+    assert one_error_line(done) == "error: --out ./sigs.parquet is one of the inputs; choose another path"
     assert sigs.read_bytes() == before
 
 
