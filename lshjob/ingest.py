@@ -14,6 +14,7 @@ Rows are unique on (entity, [segment], [period], element), sorted by the key col
 
 from __future__ import annotations
 
+import math
 import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -54,8 +55,15 @@ class EventSpec:
             raise ParameterError("--period needs --time (the column holding each event's time)")
         if self.time is not None and self.period is None:
             raise ParameterError("--time needs --period (day, week or month)")
-        if self.min_count <= 0:
-            raise ParameterError(f"--min-count must be > 0; got {self.min_count}")
+        if not (math.isfinite(self.min_count) and self.min_count > 0):
+            raise ParameterError(f"--min-count must be a finite number > 0; got {self.min_count}")
+        roles: dict[str, list[str]] = {}
+        for option, name in _named_columns(self):
+            roles.setdefault(name, []).append(option)
+        shared = [f"{', '.join(o[:-1])} and {o[-1]} name the same column {n!r}" for n, o in roles.items() if len(o) > 1]
+        if shared:
+            raise ParameterError(f"{'; '.join(shared)}; each role (entity, element, count, segment, time) "
+                                 "needs a column of its own")
 
     @property
     def key_columns(self) -> list[str]:
