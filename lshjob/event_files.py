@@ -49,7 +49,11 @@ READ_ERRORS = (pl.exceptions.PolarsError, OSError, pl.exceptions.PanicException)
 
 
 def resolve_paths(source: str | Path) -> tuple[list[Path], str]:
-    """Expand one file, a glob or a directory into files of one supported format."""
+    """Expand one file, a glob or a directory into files of one supported format. A
+    directory's files whose names start with ``.`` or ``_`` are skipped (hidden files, an
+    uploader's partial files, ``_SUCCESS`` markers: common practice for data folders); a
+    file or glob that names such a file reads it (a glob's ``*`` skips names starting with
+    ``.``, as in the shell)."""
     text = str(source)
     if any(ch in text for ch in "*?["):
         paths = [Path(p) for p in sorted(globmod.glob(text))]
@@ -60,11 +64,12 @@ def resolve_paths(source: str | Path) -> tuple[list[Path], str]:
         if not path.exists():
             raise InputError(f"{text}: no such file or directory")
         if path.is_dir():
-            paths = sorted(p for p in path.iterdir() if p.suffix.lower() in FORMATS and p.is_file())
+            paths = sorted(p for p in path.iterdir()
+                           if p.suffix.lower() in FORMATS and not p.name.startswith((".", "_")) and p.is_file())
             if not paths:
                 raise InputError(
                     f"{text}: the directory holds no event files "
-                    f"(looked for {', '.join(sorted(FORMATS))})"
+                    f"(looked for {', '.join(sorted(FORMATS))}; names starting with . or _ are skipped)"
                 )
         else:
             paths = [path]

@@ -54,3 +54,18 @@ def test_a_config_file_with_a_byte_order_mark_and_memory_in_bytes_is_read(tmp_pa
     (tmp_path / "bad.toml").write_text("memory = 1.5\n")
     with pytest.raises(ParameterError, match="expected text or a whole number"):
         load_run_config(tmp_path / "bad.toml")
+
+
+def test_a_folder_skips_hidden_and_underscore_files_but_a_named_one_is_read(tmp_path):
+    # Oracle: the folder's one visible file read alone; the hidden files are empty (unreadable)
+    # so reading any of them would stop the run.
+    folder = tmp_path / "exp"
+    folder.mkdir()
+    pl.DataFrame({"patron": ["ann", "ann", "bob"], "title": ["t1", "t2", "t1"]}).write_parquet(folder / "a.parquet")
+    for name in (".hidden.parquet", "_SUCCESS.parquet", ".part-0.tmp.parquet"):
+        (folder / name).write_bytes(b"")
+    alone, _ = load_sets(folder / "a.parquet", EventSpec(entity="patron", element="title"))
+    from_folder, report = load_sets(folder, EventSpec(entity="patron", element="title"))
+    assert from_folder.equals(alone) and report.files == [str(folder / "a.parquet")]
+    with pytest.raises(InputError, match=r"\.hidden\.parquet"):
+        load_sets(folder / ".hidden.parquet", EventSpec(entity="patron", element="title"))
