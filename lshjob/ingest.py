@@ -162,6 +162,8 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
                 "clean the data or pass --on-null drop to skip such rows"
             )
         report.null_rows_dropped = int(stats["__any_null"][0])
+        if report.null_rows_dropped == report.rows_read:
+            raise InputError(f"{where}: every row had a null key and was dropped (--on-null drop); nothing to sign")
         lf = lf.drop_nulls(key_names)
     with report.reading(where):
         if spec.time is not None and schema[spec.time] == pl.String:

@@ -69,3 +69,36 @@ def test_a_folder_skips_hidden_and_underscore_files_but_a_named_one_is_read(tmp_
     assert from_folder.equals(alone) and report.files == [str(folder / "a.parquet")]
     with pytest.raises(InputError, match=r"\.hidden\.parquet"):
         load_sets(folder / ".hidden.parquet", EventSpec(entity="patron", element="title"))
+
+
+def test_all_null_elements_dropped_is_named_as_the_cause(tmp_path):
+    # Oracle: the file holds only null elements, so --on-null drop leaves nothing whatever
+    # --min-count is; the message must say so, for sign (both paths) and run alike.
+    from lshjob.job import RunOptions, run_job
+
+    path = tmp_path / "loans.parquet"
+    pl.DataFrame({"patron": ["ann", "bob"], "title": pl.Series([None, None], dtype=pl.String),
+                  "branch": ["Harbour"] * 2}).write_parquet(path)
+    expected = f"{path}: every row had a null key and was dropped (--on-null drop); nothing to sign"
+    for segment in (None, "branch"):
+        spec = EventSpec(entity="patron", element="title", segment=segment, on_null="drop")
+        with pytest.raises(InputError) as err:
+            sign_file(path, tmp_path / "s.parquet", spec)
+        assert str(err.value) == expected
+    with pytest.raises(InputError) as err:
+        run_job(path, EventSpec(entity="patron", element="title", on_null="drop"), RunOptions(threshold=0.5),
+                tmp_path / "index")
+    assert str(err.value) == expected
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["loans.parquet"]
+
+
+def test_one_entity_warns_once_that_there_is_no_pair(tmp_path):
+    # Oracle: with one entity there is no other entity, so no pair and no --top-k to cut.
+    from lshjob.job import RunOptions, run_job
+
+    path = tmp_path / "loans.parquet"
+    pl.DataFrame({"patron": ["ann"] * 3, "title": ["t1", "t2", "t3"]}).write_parquet(path)
+    manifest = run_job(path, EventSpec(entity="patron", element="title"), RunOptions(threshold=0.5),
+                       tmp_path / "index")
+    assert manifest["warnings"] == ["only 1 entity: the index is empty"]
+    assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").height == 0
