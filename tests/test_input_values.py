@@ -102,3 +102,79 @@ def test_one_entity_warns_once_that_there_is_no_pair(tmp_path):
                        tmp_path / "index")
     assert manifest["warnings"] == ["only 1 entity: the index is empty"]
     assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").height == 0
+
+
+def count_table(loans) -> pl.DataFrame:
+    return pl.DataFrame({"patron": ["ann", "ann", "bob", "bob", "cy"], "title": ["t1", "t2", "t1", "t3", "t9"],
+                         "branch": ["Harbour"] * 5, "loans": loans})
+
+
+def both_paths(**kwargs):
+    """The streaming loader (one set per entity) and polars' group-by (with a segment)."""
+    return [EventSpec(entity="patron", element="title", count="loans", **kwargs),
+            EventSpec(entity="patron", element="title", count="loans", segment="branch", **kwargs)]
+
+
+@pytest.mark.parametrize("fmt", ["parquet", "csv"])
+@pytest.mark.parametrize("value, shown", [(-1, "-1"), (float("nan"), "nan"), (float("inf"), "inf")])
+def test_a_count_that_is_not_a_count_is_refused_with_its_place(tmp_path, fmt, value, shown):
+    # Oracle: the planted value at the third data row (Parquet row 3, CSV line 4: the
+    # header is line 1); a count is a finite number >= 0 whatever --on-null says.
+    loans = [1.0, 2.0, value, 1.0, 1.0]
+    path = tmp_path / f"loans.{fmt}"
+    getattr(count_table(loans), f"write_{fmt}")(path)
+    place = "row 3" if fmt == "parquet" else "line 4"
+    for spec in both_paths() + both_paths(on_null="drop"):
+        with pytest.raises(InputError) as err:
+            sign_file(path, tmp_path / "out" / "s.parquet", spec)
+        text = str(err.value)
+        assert text.startswith(f"{path}: column 'loans' (--count) value {shown}") and f"at {place}" in text, text
+        assert "expected a finite number >= 0" in text and "\n" not in text
+        assert not (tmp_path / "out").exists()
+
+
+def test_a_null_count_is_refused_or_dropped_like_a_null_key(tmp_path):
+    # Oracle: by hand, the table without bob's null-count row: ann {t1, t2}, bob {t3}, cy {t9}.
+    path = tmp_path / "loans.parquet"
+    count_table([1, 1, None, 1, 1]).write_parquet(path)
+    for spec in both_paths():
+        with pytest.raises(InputError, match=r"column 'loans' has 1 null value\(s\) \(first at row 3\)"):
+            load_sets(path, spec)
+    for spec in both_paths(on_null="drop"):
+        sets, report = load_sets(path, spec)
+        assert sorted(sets.select("entity", "element").rows()) == [("ann", "t1"), ("ann", "t2"), ("bob", "t3"),
+                                                                  ("cy", "t9")]
+        assert report.null_rows_dropped == 1
+    membership, report = load_membership(path, both_paths(on_null="drop")[0])
+    assert membership.set_sizes.tolist() == [2, 1, 1] and report.null_rows_dropped == 1
+
+
+def test_a_zero_count_is_seen_zero_times(tmp_path):
+    # Oracle: the sums of counts per (patron, title) by hand, against --min-count 1 and 2:
+    # ann t1 = 1 + 0 (twice), t2 = 0; bob t1 = 2, t3 = 0; cy t9 = 1.
+    frame = pl.DataFrame({"patron": ["ann", "ann", "ann", "bob", "bob", "cy"],
+                          "title": ["t1", "t1", "t2", "t1", "t3", "t9"], "branch": ["Harbour"] * 6,
+                          "loans": [1, 0, 0, 2, 0, 1]})
+    path = tmp_path / "loans.parquet"
+    frame.write_parquet(path)
+    for min_count, expected in ((1, [("ann", "t1"), ("bob", "t1"), ("cy", "t9")]), (2, [("bob", "t1")])):
+        for spec in both_paths(min_count=min_count):
+            sets, _ = load_sets(path, spec)
+            assert sorted(sets.select("entity", "element").rows()) == expected
+        membership, _ = load_membership(path, both_paths(min_count=min_count)[0])
+        assert membership.set_sizes.tolist() == [1] * len(expected)
+
+
+def test_cli_refuses_a_negative_count_and_the_same_column_twice(tmp_path):
+    # Oracle: the planted -1 at Parquet row 3, and the one-column-per-role rule; exit 2,
+    # one line, nothing written.
+    count_table([1, 2, -1, 1, 1]).write_parquet(tmp_path / "loans.parquet")
+    done = lshjob("run", "loans.parquet", *SPEC, "--count", "loans", "--threshold", "0.5", "--out", "index",
+                  cwd=tmp_path)
+    assert "loans.parquet: column 'loans' (--count) value -1 at row 3 is not a count" in one_error_line(done)
+    done = lshjob("sign", "loans.parquet", "--entity", "patron", "--element", "title", "--segment", "patron",
+                  "--out", "s.parquet", cwd=tmp_path)
+    assert "--entity and --segment name the same column 'patron'" in one_error_line(done)
+    done = lshjob("sign", "loans.parquet", *SPEC, "--min-count", "nan", "--out", "s.parquet", cwd=tmp_path)
+    assert one_error_line(done) == "error: --min-count must be a finite number > 0; got nan"
+    assert sorted(p.name for p in tmp_path.iterdir() if p.name != "state") == ["loans.parquet"]
