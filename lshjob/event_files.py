@@ -191,6 +191,40 @@ def plain_integers(name: str) -> pl.Expr:
                                  | col.str.contains(r"^(?:\+|-?0[0-9]|-0$)"))).sum()
 
 
+def looks_nested(keys: list[str]) -> pl.Expr:
+    """True where an NDJSON key column read as text starts like a JSON object or array:
+    polars gives a nested value as its JSON text. Only such rows are looked at again."""
+    return pl.any_horizontal([pl.col(n).str.starts_with("{") | pl.col(n).str.starts_with("[") for n in keys])
+
+
+def refuse_nested(path: Path, lf: pl.LazyFrame, keys: dict[str, str]) -> None:
+    """Raise naming the first line of an NDJSON file whose key (``keys``: column -> option)
+    is a JSON object or array. The rows whose text looks so are found by polars; their lines
+    are parsed again in Python (only they), so a text value like "[Untitled]" passes."""
+    rows = set(lf.with_row_index("__row").filter(looks_nested(list(keys))).select("__row")
+               .collect()["__row"].to_list())
+    row = -1
+    with open(path, "rb") as f:
+        for number, line in enumerate(f, 1):
+            if not line.strip():
+                continue
+            row += 1
+            if row in rows:
+                try:
+                    record = json.loads(line)
+                except ValueError:
+                    continue
+                for name, option in keys.items():
+                    if isinstance(record.get(name), (dict, list)):
+                        kind = "an object" if isinstance(record[name], dict) else "an array"
+                        raise InputError(f"{path}: line {number}: column {name!r} ({option}) holds {kind}, "
+                                         f"{short_text(json.dumps(record[name]))}; keys must be text or integers")
+
+
+def short_text(text: str, limit: int = 40) -> str:
+    return text if len(text) <= limit else text[:limit] + "..."
+
+
 def ragged_line(path: Path, fields: int) -> int | None:
     """The first line (1-based, the header is line 1) of a CSV file whose field count is not
     ``fields``, or None. Fields are counted by separators outside double quotes; a file with

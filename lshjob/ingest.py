@@ -23,7 +23,8 @@ import polars as pl
 
 from .errors import InputError, ParameterError, key_text
 from .event_files import (FILE_COLUMN, FORMATS, agreed_types, check_columns, combined_scan, file_schemas,  # noqa: F401
-                          plain_integers, ragged_line, reading, resolve_paths, scan_one, unreadable)
+                          looks_nested, plain_integers, ragged_line, reading, refuse_nested, resolve_paths,
+                          scan_one, unreadable)
 from .parquet_footer import footer_stats
 
 PERIODS = {"day": "1d", "week": "1w", "month": "1mo"}
@@ -196,13 +197,16 @@ def _text_files(paths: list[Path], fmt: str, schemas: list[pl.Schema], spec: Eve
         exprs = [pl.len().alias("rows"), *[pl.col(n).null_count().alias(n) for n in key_names],
                  pl.any_horizontal([pl.col(n).is_null() for n in key_names]).sum().alias("__any_null"),
                  *[plain_integers(n).alias(f"__odd_{n}") for n in keys],
-                 entity.min().alias("__entity_min"), entity.max().alias("__entity_max")]
+                 entity.min().alias("__entity_min"), entity.max().alias("__entity_max"),
+                 *([looks_nested(keys).sum().alias("__nested")] if fmt == "ndjson" else [])]
         if spec.count is not None:
             count = pl.col(spec.count)
             bad = count.is_not_null() & count.cast(pl.Float64, strict=False).is_null()
             exprs += [bad.sum().alias("__not_number"), not_a_count(spec.count).sum().alias("__bad_count")]
         try:
             stats = lf.select(exprs).collect(engine="streaming")
+            if fmt == "ndjson" and stats["__nested"][0]:
+                refuse_nested(path, lf, {n: o for o, n in named if n in keys})
             if spec.count is not None and stats["__not_number"][0]:
                 row = lf.with_row_index("__row").filter(bad).select("__row", spec.count).head(1).collect()
                 raise InputError(f"{path}: column {spec.count!r} (--count) value {row[spec.count][0]!r} at "

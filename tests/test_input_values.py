@@ -178,3 +178,23 @@ def test_cli_refuses_a_negative_count_and_the_same_column_twice(tmp_path):
     done = lshjob("sign", "loans.parquet", *SPEC, "--min-count", "nan", "--out", "s.parquet", cwd=tmp_path)
     assert one_error_line(done) == "error: --min-count must be a finite number > 0; got nan"
     assert sorted(p.name for p in tmp_path.iterdir() if p.name != "state") == ["loans.parquet"]
+
+
+@pytest.mark.parametrize("value, kind", [('{"id": 1}', "an object"), ("[1, 2]", "an array")])
+def test_a_nested_ndjson_key_is_refused_with_its_line(tmp_path, value, kind):
+    # Oracle: the nested value planted on line 4 of the file (a blank line 2 counts as a
+    # line, not a row); text that only looks nested ("[Untitled]", "{draft") is a key.
+    path = tmp_path / "loans.ndjson"
+    path.write_text('{"patron": "ann", "title": "[Untitled]", "branch": "Harbour"}\n\n'
+                    '{"patron": "bob", "title": "{draft", "branch": "Harbour"}\n'
+                    f'{{"patron": "cy", "title": {value}, "branch": "Harbour"}}\n')
+    for spec in (EventSpec(entity="patron", element="title"), EventSpec(entity="patron", element="title",
+                                                                        segment="branch")):
+        with pytest.raises(InputError) as err:
+            sign_file(path, tmp_path / "out" / "s.parquet", spec)
+        assert str(err.value) == (f"{path}: line 4: column 'title' (--element) holds {kind}, {value}; "
+                                  "keys must be text or integers")
+        assert not (tmp_path / "out").exists()
+    path.write_text("\n".join(path.read_text().splitlines()[:3]) + "\n")
+    sets, _ = load_sets(path, EventSpec(entity="patron", element="title"))
+    assert sorted(sets.select("entity", "element").rows()) == [("ann", "[Untitled]"), ("bob", "{draft")]
