@@ -272,10 +272,30 @@ def unreadable(path: Path, fmt: str, exc: BaseException) -> InputError:
     """The error for a file polars cannot read; for NDJSON with the first line that is not
     JSON (found by reading the file again, only on this path)."""
     where = ""
+    found = bad_utf8_line(path) if fmt in ("csv", "ndjson") and "utf-8" in str(exc).lower() else None
+    if found:
+        return InputError(f"{path}: cannot be read as {fmt}: not UTF-8 text: byte 0x{found[1]:02x} at line "
+                          f"{found[0]}; save the file as UTF-8")
     if fmt == "ndjson":
         line = bad_json_line(path)
         where = f" (line {line} is not a JSON object)" if line is not None else ""
     return InputError(f"{path}: cannot be read as {fmt}: {short(exc)}{where}")
+
+
+def bad_utf8_line(path: Path) -> tuple[int, int] | None:
+    """(line, byte) of the first byte of a text file that is not UTF-8, or None. Read again
+    in binary, only when reading the file failed (a newline byte is never inside a UTF-8
+    sequence, so each line decodes alone)."""
+    try:
+        with open(path, "rb") as f:
+            for number, line in enumerate(f, 1):
+                try:
+                    line.decode("utf-8")
+                except UnicodeDecodeError as exc:
+                    return number, line[exc.start]
+    except OSError:
+        return None
+    return None
 
 
 def bad_json_line(path: Path) -> int | None:

@@ -198,3 +198,21 @@ def test_a_nested_ndjson_key_is_refused_with_its_line(tmp_path, value, kind):
     path.write_text("\n".join(path.read_text().splitlines()[:3]) + "\n")
     sets, _ = load_sets(path, EventSpec(entity="patron", element="title"))
     assert sorted(sets.select("entity", "element").rows()) == [("ann", "[Untitled]"), ("bob", "{draft")]
+
+
+@pytest.mark.parametrize("fmt", ["csv", "ndjson"])
+def test_a_text_file_not_in_utf8_is_named_with_its_line(tmp_path, fmt):
+    # Oracle: the Latin-1 byte 0xe8 (e-grave) planted on line 3, read through both paths.
+    path = tmp_path / f"loans.{fmt}"
+    if fmt == "csv":
+        path.write_bytes(b"patron,title,branch\nann,t1,Harbour\nbob,biblioth\xe8que,Harbour\ncy,t9,Harbour\n")
+    else:
+        path.write_bytes(b'{"patron": "ann", "title": "t1", "branch": "Harbour"}\n\n'
+                         b'{"patron": "bob", "title": "biblioth\xe8que", "branch": "Harbour"}\n')
+    for spec in (EventSpec(entity="patron", element="title"),
+                 EventSpec(entity="patron", element="title", segment="branch")):
+        with pytest.raises(InputError) as err:
+            sign_file(path, tmp_path / "out" / "s.parquet", spec)
+        assert str(err.value) == (f"{path}: cannot be read as {fmt}: not UTF-8 text: byte 0xe8 at line 3; "
+                                  "save the file as UTF-8")
+        assert not (tmp_path / "out").exists()
