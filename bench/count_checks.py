@@ -1,12 +1,13 @@
 """What checking the ``--count`` column costs: every count a finite number >= 0, nulls
-counted like null keys.
+counted like null keys; and what looking for nested NDJSON keys costs.
 
     python bench/count_checks.py --rows 2000000
 
 The same integer events with an integer count column and with a float one, as Parquet
 and as CSV. ``open_events`` (ingest's checks; the Parquet footers stand in for the
 statistics pass, so the count column is read once more on its own) is timed with the
-count checks and with them replaced by nothing, in the same process. Each figure is the
+count checks and with them replaced by nothing, in the same process; the same events as
+NDJSON (text keys, no count) with the nested-key check on and off. Each figure is the
 best of ``--repeat`` runs, wall clock and CPU time of the process.
 """
 
@@ -65,8 +66,17 @@ def main() -> None:
                     ingest.not_a_count = not_a_count if on else (lambda name, schema=None: pl.lit(False))
                     wall, cpu = best(lambda: open_events(path, spec), args.repeat)
                     lines.append(f"| {kind} count, {fmt} | {'on' if on else 'off'} | {wall:.3f} | {cpu:.3f} |")
-    ingest._check_counts, ingest.not_a_count = checked, not_a_count
-    finish(f"Count checks, {n:,} rows", "\n".join(lines), not args.no_write)
+        ingest._check_counts, ingest.not_a_count = checked, not_a_count
+        nested = ingest.looks_nested
+        path = Path(tmp) / "text.ndjson"
+        pl.DataFrame({"patron": [f"p{p}" for p in patrons], "title": [f"t{t}" for t in titles]}).write_ndjson(path)
+        plain = EventSpec(entity="patron", element="title")
+        for on in (True, False):
+            ingest.looks_nested = nested if on else (lambda keys: pl.lit(False))
+            wall, cpu = best(lambda: open_events(path, plain), args.repeat)
+            lines.append(f"| text keys, ndjson (nested-key check) | {'on' if on else 'off'} | {wall:.3f} | {cpu:.3f} |")
+        ingest.looks_nested = nested
+    finish(f"Count and nested-key checks, {n:,} rows", "\n".join(lines), not args.no_write)
 
 
 if __name__ == "__main__":
