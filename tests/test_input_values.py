@@ -216,3 +216,19 @@ def test_a_text_file_not_in_utf8_is_named_with_its_line(tmp_path, fmt):
         assert str(err.value) == (f"{path}: cannot be read as {fmt}: not UTF-8 text: byte 0xe8 at line 3; "
                                   "save the file as UTF-8")
         assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("fmt", ["parquet", "csv"])
+def test_a_bad_count_in_the_second_file_names_that_file(tmp_path, fmt):
+    # Oracle: the planted -2 is on the second data row of b.{fmt} (row 2, or CSV line 3).
+    folder = tmp_path / "in"
+    folder.mkdir()
+    getattr(count_table([1, 1, 1, 1, 1]), f"write_{fmt}")(folder / f"a.{fmt}")
+    getattr(count_table([1, -2, 1, 1, 1]), f"write_{fmt}")(folder / f"b.{fmt}")
+    place = "row 2" if fmt == "parquet" else "line 3"
+    loader, grouped = both_paths()
+    for load in (lambda: load_membership(folder, loader), lambda: load_sets(folder, grouped)):
+        with pytest.raises(InputError) as err:
+            load()
+        assert str(err.value).startswith(f"{folder / f'b.{fmt}'}: column 'loans' (--count) value -2")
+        assert f"at {place}" in str(err.value)
