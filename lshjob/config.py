@@ -8,11 +8,11 @@ Keys are the long option names of ``lshjob run`` with dashes or underscores, for
     threshold = 0.5
     out = "index/nightly"
     top-k = 50
-    memory = "8GB"
+    memory = "8GB"            # or a number of bytes: memory = 8000000000
 
 Relative paths in the file (``events``, ``out``) are taken from the file's folder, so a
 scheduler may start the job from any folder. A key given both with dashes and with
-underscores is an error.
+underscores is an error. The file is UTF-8 (a byte-order mark is allowed).
 """
 
 from __future__ import annotations
@@ -27,7 +27,7 @@ RUN_KEYS = {
     "events": str, "entity": str, "element": str, "count": str, "min_count": (int, float),
     "on_null": str, "threshold": (int, float), "out": str, "top_k": int, "perms": int, "bands": int,
     "rows": int, "recall": float, "sample_size": int, "seed": int, "scheme": str, "max_bucket": int,
-    "max_candidates": (int, float), "memory": str, "parts": int, "wait": (int, float), "scratch": str,
+    "max_candidates": (int, float), "memory": (str, int), "parts": int, "wait": (int, float), "scratch": str,
     "unicode": str,
 }
 PATH_KEYS = ("events", "out", "scratch")  # relative to the configuration file's folder
@@ -38,8 +38,15 @@ def load_run_config(path: str | Path) -> dict:
     path = Path(path)
     if not path.is_file():
         raise ParameterError(f"{path}: no such configuration file")
+    data = path.read_bytes()
     try:
-        raw = tomllib.loads(path.read_text())
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = data.count(b"\n", 0, exc.start) + 1
+        raise ParameterError(f"{path}: not UTF-8 text: byte 0x{data[exc.start]:02x} at offset {exc.start} "
+                             f"(line {line}); save the file as UTF-8") from exc
+    try:
+        raw = tomllib.loads(text.removeprefix("\ufeff"))  # a byte-order mark is allowed
     except tomllib.TOMLDecodeError as exc:
         raise ParameterError(f"{path}: not valid TOML: {exc}") from exc
     config, spelled = {}, {}
@@ -58,6 +65,8 @@ def load_run_config(path: str | Path) -> dict:
         config[name] = value
     for name in PATH_KEYS:
         if name in config:
+            if not config[name].strip():  # joined to the file's folder, it would name that folder
+                raise ParameterError(f"{path}: key {spelled[name]!r} is empty; give a path")
             config[name] = os.path.join(path.parent, os.path.expanduser(config[name]))
     return config
 

@@ -49,7 +49,11 @@ READ_ERRORS = (pl.exceptions.PolarsError, OSError, pl.exceptions.PanicException)
 
 
 def resolve_paths(source: str | Path) -> tuple[list[Path], str]:
-    """Expand one file, a glob or a directory into files of one supported format."""
+    """Expand one file, a glob or a directory into files of one supported format. A
+    directory's files whose names start with ``.`` or ``_`` are skipped (hidden files, an
+    uploader's partial files, ``_SUCCESS`` markers: common practice for data folders); a
+    file or glob that names such a file reads it (a glob's ``*`` skips names starting with
+    ``.``, as in the shell)."""
     text = str(source)
     if any(ch in text for ch in "*?["):
         paths = [Path(p) for p in sorted(globmod.glob(text))]
@@ -60,11 +64,12 @@ def resolve_paths(source: str | Path) -> tuple[list[Path], str]:
         if not path.exists():
             raise InputError(f"{text}: no such file or directory")
         if path.is_dir():
-            paths = sorted(p for p in path.iterdir() if p.suffix.lower() in FORMATS and p.is_file())
+            paths = sorted(p for p in path.iterdir()
+                           if p.suffix.lower() in FORMATS and not p.name.startswith((".", "_")) and p.is_file())
             if not paths:
                 raise InputError(
                     f"{text}: the directory holds no event files "
-                    f"(looked for {', '.join(sorted(FORMATS))})"
+                    f"(looked for {', '.join(sorted(FORMATS))}; names starting with . or _ are skipped)"
                 )
         else:
             paths = [path]
@@ -186,6 +191,40 @@ def plain_integers(name: str) -> pl.Expr:
                                  | col.str.contains(r"^(?:\+|-?0[0-9]|-0$)"))).sum()
 
 
+def looks_nested(keys: list[str]) -> pl.Expr:
+    """True where an NDJSON key column read as text starts like a JSON object or array:
+    polars gives a nested value as its JSON text. Only such rows are looked at again."""
+    return pl.any_horizontal([pl.col(n).str.starts_with("{") | pl.col(n).str.starts_with("[") for n in keys])
+
+
+def refuse_nested(path: Path, lf: pl.LazyFrame, keys: dict[str, str]) -> None:
+    """Raise naming the first line of an NDJSON file whose key (``keys``: column -> option)
+    is a JSON object or array. The rows whose text looks so are found by polars; their lines
+    are parsed again in Python (only they), so a text value like "[Untitled]" passes."""
+    rows = set(lf.with_row_index("__row").filter(looks_nested(list(keys))).select("__row")
+               .collect()["__row"].to_list())
+    row = -1
+    with open(path, "rb") as f:
+        for number, line in enumerate(f, 1):
+            if not line.strip():
+                continue
+            row += 1
+            if row in rows:
+                try:
+                    record = json.loads(line)
+                except ValueError:
+                    continue
+                for name, option in keys.items():
+                    if isinstance(record.get(name), (dict, list)):
+                        kind = "an object" if isinstance(record[name], dict) else "an array"
+                        raise InputError(f"{path}: line {number}: column {name!r} ({option}) holds {kind}, "
+                                         f"{short_text(json.dumps(record[name]))}; keys must be text or integers")
+
+
+def short_text(text: str, limit: int = 40) -> str:
+    return text if len(text) <= limit else text[:limit] + "..."
+
+
 def ragged_line(path: Path, fields: int) -> int | None:
     """The first line (1-based, the header is line 1) of a CSV file whose field count is not
     ``fields``, or None. Fields are counted by separators outside double quotes; a file with
@@ -233,10 +272,30 @@ def unreadable(path: Path, fmt: str, exc: BaseException) -> InputError:
     """The error for a file polars cannot read; for NDJSON with the first line that is not
     JSON (found by reading the file again, only on this path)."""
     where = ""
+    found = bad_utf8_line(path) if fmt in ("csv", "ndjson") and "utf-8" in str(exc).lower() else None
+    if found:
+        return InputError(f"{path}: cannot be read as {fmt}: not UTF-8 text: byte 0x{found[1]:02x} at line "
+                          f"{found[0]}; save the file as UTF-8")
     if fmt == "ndjson":
         line = bad_json_line(path)
         where = f" (line {line} is not a JSON object)" if line is not None else ""
     return InputError(f"{path}: cannot be read as {fmt}: {short(exc)}{where}")
+
+
+def bad_utf8_line(path: Path) -> tuple[int, int] | None:
+    """(line, byte) of the first byte of a text file that is not UTF-8, or None. Read again
+    in binary, only when reading the file failed (a newline byte is never inside a UTF-8
+    sequence, so each line decodes alone)."""
+    try:
+        with open(path, "rb") as f:
+            for number, line in enumerate(f, 1):
+                try:
+                    line.decode("utf-8")
+                except UnicodeDecodeError as exc:
+                    return number, line[exc.start]
+    except OSError:
+        return None
+    return None
 
 
 def bad_json_line(path: Path) -> int | None:

@@ -14,6 +14,7 @@ Rows are unique on (entity, [segment], [period], element), sorted by the key col
 
 from __future__ import annotations
 
+import math
 import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,7 +23,8 @@ import polars as pl
 
 from .errors import InputError, ParameterError, key_text
 from .event_files import (FILE_COLUMN, FORMATS, agreed_types, check_columns, combined_scan, file_schemas,  # noqa: F401
-                          plain_integers, ragged_line, reading, resolve_paths, scan_one, unreadable)
+                          looks_nested, plain_integers, ragged_line, reading, refuse_nested, resolve_paths,
+                          scan_one, unreadable)
 from .parquet_footer import footer_stats
 
 PERIODS = {"day": "1d", "week": "1w", "month": "1mo"}
@@ -54,8 +56,15 @@ class EventSpec:
             raise ParameterError("--period needs --time (the column holding each event's time)")
         if self.time is not None and self.period is None:
             raise ParameterError("--time needs --period (day, week or month)")
-        if self.min_count <= 0:
-            raise ParameterError(f"--min-count must be > 0; got {self.min_count}")
+        if not (math.isfinite(self.min_count) and self.min_count > 0):
+            raise ParameterError(f"--min-count must be a finite number > 0; got {self.min_count}")
+        roles: dict[str, list[str]] = {}
+        for option, name in _named_columns(self):
+            roles.setdefault(name, []).append(option)
+        shared = [f"{', '.join(o[:-1])} and {o[-1]} name the same column {n!r}" for n, o in roles.items() if len(o) > 1]
+        if shared:
+            raise ParameterError(f"{'; '.join(shared)}; each role (entity, element, count, segment, time) "
+                                 "needs a column of its own")
 
     @property
     def key_columns(self) -> list[str]:
@@ -114,7 +123,8 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
     named = _named_columns(spec)
     schemas = file_schemas(paths, fmt, [n for _, n in named] if fmt != "parquet" else [])
     check_columns(paths, schemas, named)
-    key_names = list(dict.fromkeys(n for option, n in named if option != "--count"))
+    # a null count is like a null key: refused, or its row dropped with --on-null drop
+    key_names = list(dict.fromkeys(n for _, n in named))
     stats = None
     if fmt == "parquet":
         types = agreed_types(paths, schemas, named)
@@ -137,12 +147,15 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
                 pl.any_horizontal([pl.col(n).is_null() for n in key_names]).sum().alias("__any_null"),
                 *([pl.col(spec.entity).min().alias("__entity_min"), pl.col(spec.entity).max().alias("__entity_max")]
                   if integer_entity else []),
+                *([not_a_count(spec.count, schema).sum().alias("__bad_count")] if spec.count else []),
             ).collect()
     report.rows_read = int(stats["rows"][0])
     if integer_entity and stats["__entity_min"][0] is not None:
         report.entity_range = (int(stats["__entity_min"][0]), int(stats["__entity_max"][0]))
     if report.rows_read == 0:
         raise InputError(f"{where}: no events (0 rows)")
+    if spec.count is not None:
+        _check_counts(lf, spec.count, schema, stats, report, where)
     nulls = {n: int(stats[n][0]) for n in key_names if stats[n][0] > 0}
     if nulls:
         if spec.on_null == "error":
@@ -154,6 +167,9 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
                 "clean the data or pass --on-null drop to skip such rows"
             )
         report.null_rows_dropped = int(stats["__any_null"][0])
+        if report.null_rows_dropped == report.rows_read:
+            what = "key or count" if spec.count else "key"
+            raise InputError(f"{where}: every row had a null {what} and was dropped (--on-null drop); nothing to sign")
         lf = lf.drop_nulls(key_names)
     with report.reading(where):
         if spec.time is not None and schema[spec.time] == pl.String:
@@ -181,14 +197,17 @@ def _text_files(paths: list[Path], fmt: str, schemas: list[pl.Schema], spec: Eve
         exprs = [pl.len().alias("rows"), *[pl.col(n).null_count().alias(n) for n in key_names],
                  pl.any_horizontal([pl.col(n).is_null() for n in key_names]).sum().alias("__any_null"),
                  *[plain_integers(n).alias(f"__odd_{n}") for n in keys],
-                 entity.min().alias("__entity_min"), entity.max().alias("__entity_max")]
+                 entity.min().alias("__entity_min"), entity.max().alias("__entity_max"),
+                 *([looks_nested(keys).sum().alias("__nested")] if fmt == "ndjson" else [])]
         if spec.count is not None:
             count = pl.col(spec.count)
             bad = count.is_not_null() & count.cast(pl.Float64, strict=False).is_null()
-            exprs.append(bad.sum().alias("__bad_count"))
+            exprs += [bad.sum().alias("__not_number"), not_a_count(spec.count).sum().alias("__bad_count")]
         try:
             stats = lf.select(exprs).collect(engine="streaming")
-            if spec.count is not None and stats["__bad_count"][0]:
+            if fmt == "ndjson" and stats["__nested"][0]:
+                refuse_nested(path, lf, {n: o for o, n in named if n in keys})
+            if spec.count is not None and stats["__not_number"][0]:
                 row = lf.with_row_index("__row").filter(bad).select("__row", spec.count).head(1).collect()
                 raise InputError(f"{path}: column {spec.count!r} (--count) value {row[spec.count][0]!r} at "
                                  f"{_line(fmt, row['__row'][0])} is not a number")
@@ -202,9 +221,32 @@ def _text_files(paths: list[Path], fmt: str, schemas: list[pl.Schema], spec: Eve
             types[n] = pl.Int64
     if spec.count is not None:
         types[spec.count] = pl.Float64
-    total = stats.select(pl.col("rows", "__any_null", *key_names).sum(), pl.col("__entity_min").min(),
-                         pl.col("__entity_max").max())
+    total = stats.select(pl.col("rows", "__any_null", *key_names, *(["__bad_count"] if spec.count else [])).sum(),
+                         pl.col("__entity_min").min(), pl.col("__entity_max").max())
     return types, total
+
+
+def not_a_count(name: str, schema: pl.Schema | None = None) -> pl.Expr:
+    """True where count column ``name`` holds a negative number, NaN or an infinity (null
+    where it is null). ``schema`` None: the column is text, read as a number."""
+    if schema is not None and schema[name].is_integer():
+        return pl.col(name) < 0
+    value = pl.col(name).cast(pl.Float64, strict=False)
+    return value.is_nan() | value.is_infinite() | (value < 0)
+
+
+def _check_counts(lf: pl.LazyFrame, name: str, schema: pl.Schema, stats: pl.DataFrame, report: IngestReport,
+                  where: str) -> None:
+    """Refuse a count that is negative, NaN or infinite, naming the first one's file and place.
+    The statistics pass counted them, unless the footers stood in for it: then only the
+    count column is read (one vectorised pass). Zero is a count: seen zero times."""
+    with report.reading(where):
+        bad = (int(stats["__bad_count"][0]) if "__bad_count" in stats.columns
+               else lf.select(not_a_count(name, schema).sum()).collect(engine="streaming").item())
+        if bad:
+            path, place, value = _first_row(lf, not_a_count(name, schema), name)
+            raise InputError(f"{path}: column {name!r} (--count) value {value} at {place} is not a count "
+                             f"(expected a finite number >= 0); {bad} such value(s)")
 
 
 def _line(fmt: str, row: int) -> str:

@@ -194,7 +194,7 @@ def run_job(
         built.store = None  # the sets are not needed any more: publishing gets their memory
 
         top_k = publish.effective_top_k(options.top_k, len(built.keys))
-        if top_k < options.top_k:
+        if top_k < options.top_k and len(built.keys) > 1:
             warnings.append(f"--top-k {options.top_k} is more than the {len(built.keys) - 1} other entities; "
                             f"used {top_k}")
         with stages("publish"):
@@ -207,7 +207,7 @@ def run_job(
             facts = publish.stage_neighbours(
                 out, publish.neighbour_blocks(expansion, built.keys, publish.block_rows(memory)), meta)
         counts["published_rows"] = facts["rows"]
-        if counts["published_rows"] == 0:
+        if counts["published_rows"] == 0 and len(built.keys) > 1:  # one entity is warned of when planning
             warnings.append("no pair reached the threshold: the index is empty")
         manifest = {
             "format": "lshjob-index",

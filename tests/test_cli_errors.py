@@ -291,3 +291,19 @@ def test_audit_of_a_damaged_manifest_is_one_line_naming_it(tmp_path, content, pr
     assert done.returncode == 2
     line = one_error_line(done)
     assert line.startswith(f"error: {os.path.join('index', 'manifest.json')}: {problem}")
+
+
+def test_an_empty_path_in_a_config_is_refused(tmp_path):
+    # Oracle: the folder's listing. Joined to the config file's folder, out = "" would have
+    # published into that folder.
+    for key in ("out", "events", "scratch"):
+        config = tmp_path / f"{key}.toml"
+        values = {"events": '"loans.parquet"', "entity": '"patron"', "element": '"title"', "threshold": "0.5",
+                  "out": '"idx"', key: '"  "'}
+        config.write_text("".join(f"{k} = {v}\n" for k, v in values.items()))
+        before = sorted(p.name for p in tmp_path.iterdir())
+        done = subprocess.run([sys.executable, "-m", "lshjob.cli", "run", "--config", str(config)],
+                              capture_output=True, text=True, timeout=120)
+        assert done.returncode == 2 and done.stderr.count("\n") == 1, done.stderr
+        assert f"key '{key}' is empty" in done.stderr
+        assert sorted(p.name for p in tmp_path.iterdir()) == before

@@ -1,5 +1,7 @@
 """Ingest: formats, options and every kind of bad input (clear error, nothing written)."""
 
+import re
+
 import numpy as np
 import polars as pl
 import pytest
@@ -135,12 +137,22 @@ def test_bad_time_text(tmp_path):
         ({"period": "month"}, "--period needs --time"),
         ({"time": "t"}, "--time needs --period"),
         ({"period": "year", "time": "t"}, "--period must be one of"),
-        ({"min_count": 0}, "--min-count"),
+        ({"min_count": 0}, "--min-count must be a finite number > 0; got 0"),
+        ({"min_count": -1}, "--min-count must be a finite number > 0; got -1"),
+        ({"min_count": float("nan")}, "--min-count must be a finite number > 0; got nan"),
+        ({"min_count": float("inf")}, "--min-count must be a finite number > 0; got inf"),
+        ({"element": "patron"}, "--entity and --element name the same column 'patron'"),
+        ({"segment": "patron"}, "--entity and --segment name the same column 'patron'"),
+        ({"count": "title"}, "--element and --count name the same column 'title'"),
+        ({"time": "title", "period": "day"}, "--element and --time name the same column 'title'"),
+        ({"count": "n", "segment": "n", "time": "n", "period": "day"},
+         "--count, --segment and --time name the same column 'n'"),
     ],
 )
 def test_bad_options(kwargs, message):
-    with pytest.raises(ParameterError, match=message):
-        EventSpec(entity="patron", element="title", **kwargs)
+    # Oracle: the option bounds and the one-column-per-role rule as the README states them.
+    with pytest.raises(ParameterError, match=re.escape(message)):
+        EventSpec(**{"entity": "patron", "element": "title", **kwargs})
 
 
 @pytest.mark.parametrize(
