@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import importlib
 import json
-import os
 import shutil
+import signal
 import sys
 from functools import wraps
 from pathlib import Path
@@ -13,7 +13,7 @@ from typing import Annotated, Optional
 
 import typer
 
-from . import __version__, api
+from . import __version__, api, stopping
 from .charts import write_chart
 from .audit import audit_index
 from .config import load_run_config, merge_settings
@@ -21,7 +21,7 @@ from .demo import check_options as check_demo_options, write_demo
 from .errors import ParameterError
 from .job import RunOptions, run_job
 from .reports import audit_report, plan_report, run_report
-from .failures import EXIT_CODES, check_whole_numbers, failure, run_app
+from .failures import EXIT_CODES, check_whole_numbers, failure, run_app, to_stdout
 from .ingest import EventSpec
 from .outputs import refuse_output_over_inputs
 from .progress import StageProgress
@@ -57,6 +57,9 @@ def _fail_cleanly(func):
         except (typer.Exit, typer.Abort):
             raise
         except Exception as exc:
+            stop = stopping.stopped_by(exc)  # numba's or DuckDB's error for a stop signal
+            if stop is not None:
+                raise stop from None
             raise failure(exc, func.__name__, kwargs.get("as_json", False)) from None
 
     return wrapper
@@ -64,9 +67,9 @@ def _fail_cleanly(func):
 
 def _emit(summary: dict, as_json: bool, quiet: bool, text: str) -> None:
     if as_json:
-        typer.echo(json.dumps(summary, indent=2, sort_keys=True, default=str))
+        to_stdout(json.dumps(summary, indent=2, sort_keys=True, default=str))
     elif not quiet:
-        typer.echo(text)
+        to_stdout(text)
 
 
 def _progress(quiet: bool, as_json: bool) -> StageProgress:
@@ -355,17 +358,22 @@ for _command in app.registered_commands:  # every command's --help ends with the
 
 
 def entry_point() -> None:
-    """Console script ``lshjob``. Ends the process without the interpreter's teardown, after
-    flushing: unloading numba's compiled code at exit costs about 0.3 s a command (measured),
-    and by then every output is written, closed and renamed into place."""
-    _skip_blas_probe()
-    code = run_app(app, sys.argv[1:])
-    for stream in (sys.stdout, sys.stderr):
-        try:
-            stream.flush()
-        except OSError:  # a reader that closed the pipe early (lshjob ... | head)
-            pass
-    os._exit(code)
+    """What the console script ``lshjob`` (lshjob.console) runs, after taking over the stop
+    signals; ``python -m lshjob.cli`` takes them over here. Ends the process without the
+    interpreter's teardown, after flushing: unloading numba's compiled code at exit costs
+    about 0.3 s a command (measured), and by then every output is written, closed and renamed
+    into place. A reader that closed stdout early (``lshjob ... | head``) changes nothing."""
+    stopping.install()
+    try:
+        _skip_blas_probe()
+        code = run_app(app, sys.argv[1:])
+        signum = stopping.received()
+        if code == 0 and signum is not None and stopping.published():
+            typer.echo(f"lshjob: {signal.Signals(signum).name} came after the index was published; "
+                       "the run is complete", err=True)
+    except stopping.Stopped as stop:  # outside any command
+        code = stopping.say(stop, sys.argv[1:])
+    stopping.flush_and_exit(code)
 
 
 def _skip_blas_probe() -> None:

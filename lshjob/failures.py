@@ -15,7 +15,7 @@ from pathlib import Path
 
 import typer
 
-from . import __version__
+from . import __version__, stopping
 from .errors import EXIT_BAD_INPUT, EXIT_INTERNAL, LshjobError, ParameterError
 
 EXIT_CODES = (  # "\b" keeps the lines as they are in --help
@@ -31,8 +31,30 @@ LARGEST_OF = {"seed": 2**64 - 1}  # seeds are unsigned 64-bit
 
 
 def one_line(text: object) -> str:
-    """A message on one line: its lines joined with spaces."""
-    return " ".join(part.strip() for part in str(text).splitlines() if part.strip())
+    """A message on one line that a terminal shows as it is: its lines joined with "; ", and
+    any other character that does not print (NUL, ESC, other control bytes read from a
+    damaged file) written as a Python escape (``\\x00``)."""
+    joined = "; ".join(part.strip() for part in str(text).splitlines() if part.strip())
+    return "".join(ch if ch.isprintable() else ascii(ch)[1:-1] for ch in joined)
+
+
+def to_stdout(text: str) -> None:
+    """Print ``text`` on stdout. A reader that went away (``lshjob ... | head``) does not make
+    the command fail: the rest of its output is dropped and its work decides the exit code."""
+    try:
+        typer.echo(text)
+    except BrokenPipeError:
+        drop_stdout()
+
+
+def drop_stdout() -> None:
+    """Send what is left for stdout (buffered or still to come) nowhere."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError):
+        pass
 
 
 def log_folder() -> Path:
@@ -65,12 +87,15 @@ def fail(message: str, code: int, as_json: bool, log: Path | None = None) -> typ
     """Print ``error: message`` on stderr (and ``{"error", "exit"[, "log"]}`` on stdout under
     ``--json``); return the exit to raise."""
     message = one_line(message)
-    typer.echo(f"error: {message}", err=True)
+    try:
+        typer.echo(f"error: {message}", err=True)
+    except OSError:  # no stderr to write to: the exit code still says it
+        pass
     if as_json:
         record = {"error": message, "exit": code}
         if log is not None:
             record["log"] = str(log)
-        typer.echo(json.dumps(record))
+        to_stdout(json.dumps(record))
     return typer.Exit(code)
 
 
@@ -104,31 +129,41 @@ def check_whole_numbers(options: dict) -> None:
 
 def run_app(app: typer.Typer, args: list[str]) -> int:
     """Run the command line ``args``; return the exit code. Usage errors of the option parser
-    (an unknown option, a missing argument) keep its message and code 2, and under ``--json``
-    are also given as a JSON record on stdout."""
+    (an unknown option, a missing argument) are one line, ``error: ...; see lshjob COMMAND
+    --help``, code 2 (under ``--json`` also a JSON record on stdout); ``lshjob`` alone prints
+    the help on stdout and exits 2. A stop signal ends the command with one line and 128 + its
+    number (:mod:`lshjob.stopping`)."""
     as_json = "--json" in args
+    command = args[0] if args and not args[0].startswith("-") else ""
     try:
-        code = app(args=args, standalone_mode=False)
+        code = app(args=args, prog_name="lshjob", standalone_mode=False)
     except typer.Exit as exc:
         code = exc.exit_code
     except typer.Abort:
         typer.echo("Aborted!", err=True)
         code = 1
     except typer.TyperException as exc:  # the parser's usage errors
-        show = getattr(exc, "show", None)
-        if show is not None:
-            show()
+        code = getattr(exc, "exit_code", EXIT_BAD_INPUT)
+        ctx = getattr(exc, "ctx", None)
+        if type(exc).__name__ == "NoArgsIsHelpError":  # `lshjob` alone: the help, on stdout
+            to_stdout(exc.format_message())
         else:
-            typer.echo(f"Error: {exc.format_message()}", err=True)
-        code = exc.exit_code
-        if as_json:
-            typer.echo(json.dumps({"error": one_line(exc.format_message()), "exit": code}))
+            where = "lshjob" + (f" {ctx.info_name}" if ctx is not None and ctx.parent is not None else "")
+            fail(f"{exc.format_message()}; see {where} --help", code, as_json)
     except SystemExit as exc:
         code = exc.code
         if code is not None and not isinstance(code, int):
             print(code, file=sys.stderr)
             code = 1
-    except Exception as exc:  # outside any command (the commands handle their own)
-        code = failure(exc, args[0] if args else "", as_json).exit_code
+    except BrokenPipeError:  # the help or the version, printed to a reader that went away
+        drop_stdout()
+        code = 0
+    except BaseException as exc:  # outside any command (the commands handle their own), or a stop
+        stop = stopping.stopped_by(exc)
+        if stop is None and not isinstance(exc, Exception):
+            raise
+        if stop is not None:
+            code = fail(stopping.message(command, stop), stop.exit_code, as_json).exit_code
+        else:
+            code = failure(exc, command, as_json).exit_code
     return code if isinstance(code, int) else 0
-
