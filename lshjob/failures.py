@@ -149,9 +149,12 @@ def run_app(app: typer.Typer, args: list[str]) -> int:
             to_stdout(exc.format_message())
         else:
             where = "lshjob" + (f" {ctx.info_name}" if ctx is not None and ctx.parent is not None else "")
-            fail(f"{exc.format_message()}; see {where} --help", code, as_json)
+            fail(f"{exc.format_message().rstrip('.')}; see {where} --help", code, as_json)
     except SystemExit as exc:
         code = exc.code
+        if isinstance(exc.__context__, BrokenPipeError):  # the parser's help, to a reader gone
+            drop_stdout()
+            code = 0
         if code is not None and not isinstance(code, int):
             print(code, file=sys.stderr)
             code = 1
