@@ -24,7 +24,8 @@ EXIT_CODES = (  # "\b" keeps the lines as they are in --help
     "  1   a check failed (audit)\n"
     "  2   bad input or options\n"
     "  70  internal error (the traceback goes to a log file; its path is printed)\n"
-    "  75  busy (try again later)"
+    "  75  busy (try again later)\n"
+    "  129, 130, 143  stopped by SIGHUP, SIGINT or SIGTERM"
 )
 LARGEST_WHOLE_NUMBER = 2**63 - 1  # what a 64-bit integer column or kernel argument holds
 LARGEST_OF = {"seed": 2**64 - 1}  # seeds are unsigned 64-bit
