@@ -131,7 +131,7 @@ def check_whole_numbers(options: dict) -> None:
 def run_app(app: typer.Typer, args: list[str]) -> int:
     """Run the command line ``args``; return the exit code. Usage errors of the option parser
     (an unknown option, a missing argument) are one line, ``error: ...; see lshjob COMMAND
-    --help``, code 2 (under ``--json`` also a JSON record on stdout); ``lshjob`` alone prints
+    --help``, code 2 (under ``--json`` also the message as a JSON record on stdout); ``lshjob`` alone prints
     the help on stdout and exits 2. A stop signal ends the command with one line and 128 + its
     number (:mod:`lshjob.stopping`)."""
     as_json = "--json" in args
@@ -150,7 +150,10 @@ def run_app(app: typer.Typer, args: list[str]) -> int:
             to_stdout(exc.format_message())
         else:
             where = "lshjob" + (f" {ctx.info_name}" if ctx is not None and ctx.parent is not None else "")
-            fail(f"{exc.format_message().rstrip('.')}; see {where} --help", code, as_json)
+            text = one_line(exc.format_message().rstrip("."))
+            fail(f"{text}; see {where} --help", code, False)
+            if as_json:  # the record keeps the parser's message alone
+                to_stdout(json.dumps({"error": text, "exit": code}))
     except SystemExit as exc:
         code = exc.code
         if isinstance(exc.__context__, BrokenPipeError):  # the parser's help, to a reader gone

@@ -76,7 +76,8 @@ def test_a_usage_error_is_one_line_naming_the_help(tmp_path, args, command, says
         assert says in done.stderr
         assert done.stderr.rstrip().endswith(f"; see {' '.join(['lshjob', command]).strip()} --help")
         if as_json:
-            assert json.loads(done.stdout) == {"error": done.stderr[len("error: "):].strip(), "exit": 2}
+            message = done.stderr[len("error: "):].strip().rsplit("; see ", 1)[0]
+            assert json.loads(done.stdout) == {"error": message, "exit": 2}
         else:
             assert done.stdout == ""
 

@@ -76,6 +76,15 @@ elif how in ("numba-error", "duckdb-error"):  # the errors they wrap an interrup
             raise RuntimeError("Query interrupted") from None
         raise AssertionError("no signal came")
     lshjob.parts.verify_blocks = interrupted
+elif how == "twice":  # a second signal while the first one's clean-up runs
+    import shutil
+    def stop(*args, **kwargs):
+        os.kill(me, sig)
+    def remove_again(*args, **kwargs):
+        os.kill(me, sig)
+        raise AssertionError("the second signal did not end the process")
+    lshjob.parts.verify_blocks = stop
+    lshjob.job.shutil = type("shutil", (), {"rmtree": staticmethod(remove_again)})
 elif how == "publish":  # between the renames that put the index in place
     rename = os.replace
     def replace(src, dst, *args, **kwargs):
@@ -156,3 +165,14 @@ def test_a_signal_while_the_libraries_load_stops_with_one_line(tmp_path, events,
     assert child.returncode == 128 + signal.Signals[name].value, stderr
     assert stderr.count("\n") == 1 and f"stopped by {name}" in stderr and stderr.startswith("error: "), stderr
     assert not out.exists() or set(os.listdir(out)) == set()
+
+
+def test_a_second_signal_while_stopping_ends_the_process_at_once(tmp_path, events):
+    out = tmp_path / "idx"
+    run_job(events, SPEC, RunOptions(threshold=0.5), out)
+    before = digest(out)
+    done = subprocess.run([sys.executable, "-c", STOP_AT, "twice", "SIGINT", *run_args(events, out)],
+                          capture_output=True, text=True, timeout=120)
+    assert done.returncode == 130, done.stderr[-2000:]
+    assert done.stderr == "lshjob: SIGINT again; stopped at once\n"
+    assert digest(out) == before  # what the clean-up did not reach, the next run removes (test_killed_runs)
