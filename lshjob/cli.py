@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import importlib
 import json
 import shutil
 import signal
@@ -14,6 +13,7 @@ from typing import Annotated, Optional
 import typer
 
 from . import __version__, api, stopping
+from .console import skip_blas_probe as _skip_blas_probe
 from .charts import write_chart
 from .audit import audit_index
 from .config import load_run_config, merge_settings
@@ -374,28 +374,6 @@ def entry_point() -> None:
     except stopping.Stopped as stop:  # outside any command
         code = stopping.say(stop, sys.argv[1:])
     stopping.flush_and_exit(code)
-
-
-def _skip_blas_probe() -> None:
-    """Spare this process numba's check for a BLAS. When numba first compiles or loads compiled
-    code, it imports ``scipy.linalg`` (when scipy is installed, as datasketch requires) only to
-    learn whether ``np.dot`` can use a BLAS: 0.2 s of every command, measured, and on the path
-    of the first compiled call. lshjob's compiled code does no linear algebra, so the module
-    that probes is loaded here with that import made to fail; numba then takes its plain loops
-    for the two functions that ask (``np.correlate``, ``np.convolve``), and any other linear
-    algebra still finds scipy as usual. Only in the ``lshjob`` process: a program that imports
-    lshjob keeps numba as it is."""
-    probe, blas = "numba.np.arraymath", "scipy.linalg.cython_blas"
-    if probe in sys.modules or blas in sys.modules:
-        return
-    sys.modules[blas] = None  # a None entry makes `import` raise ImportError
-    try:
-        importlib.import_module(probe)
-    except Exception:  # a numba that probes elsewhere or fails here: it loads as usual later
-        pass
-    finally:
-        if sys.modules.get(blas, 0) is None:
-            del sys.modules[blas]
 
 
 if __name__ == "__main__":
