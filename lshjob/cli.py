@@ -13,7 +13,7 @@ from typing import Annotated, Optional
 import typer
 
 from . import __version__, api, stopping
-from .console import skip_blas_probe as _skip_blas_probe
+from ._blas_probe import skip_blas_probe as _skip_blas_probe
 from .charts import write_chart
 from .audit import audit_index
 from .config import load_run_config, merge_settings
