@@ -367,12 +367,15 @@ def entry_point() -> None:
     try:
         _skip_blas_probe()
         code = run_app(app, sys.argv[1:])
-        signum = stopping.received()
-        if code == 0 and signum is not None and stopping.published():
-            typer.echo(f"lshjob: {signal.Signals(signum).name} came after the index was published; "
-                       "the run is complete", err=True)
     except stopping.Stopped as stop:  # outside any command
         code = stopping.say(stop, sys.argv[1:])
+    signum = stopping.received()
+    if code == 0 and signum is not None and stopping.published():
+        try:
+            sys.stderr.write(f"lshjob: {signal.Signals(signum).name} came after the index was published; "
+                             "the run is complete\n")
+        except (OSError, ValueError):
+            pass
     stopping.flush_and_exit(code)
 
 
