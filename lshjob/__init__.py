@@ -2,7 +2,7 @@
 
 import os
 
-from .compile_cache import configure_cache_dir, install_notice
+from .compile_cache import configure_cache_dir
 
 __version__ = "0.1.0"
 
@@ -16,19 +16,27 @@ configure_cache_dir()
 # user set is kept.
 os.environ.setdefault("_RJEM_MALLOC_CONF", "muzzy_decay_ms:0")
 
-install_notice()  # one line on stderr when a kernel compiles (no cached code for this machine)
+# The public names load on first use (PEP 562), so that the ``lshjob`` command can take over
+# the stop signals (lshjob.console) before polars, numba and DuckDB are imported.
+_PUBLIC = {
+    "merge_files": "api", "sign_file": "api",
+    "IncompatibleSignatures": "errors", "InputError": "errors", "LshjobError": "errors",
+    "ParameterError": "errors",
+    "EventSpec": "ingest", "load_sets": "ingest",
+    "SignatureParams": "signatures", "estimate_jaccard": "signatures", "merge_signatures": "signatures",
+    "read_signatures": "signatures", "sign_sets": "signatures", "write_signatures": "signatures",
+}
 
-from .api import merge_files, sign_file  # noqa: E402
-from .errors import IncompatibleSignatures, InputError, LshjobError, ParameterError  # noqa: E402
-from .ingest import EventSpec, load_sets  # noqa: E402
-from .signatures import (  # noqa: E402
-    SignatureParams,
-    estimate_jaccard,
-    merge_signatures,
-    read_signatures,
-    sign_sets,
-    write_signatures,
-)
+
+def __getattr__(name: str):
+    if name not in _PUBLIC:
+        raise AttributeError(f"module 'lshjob' has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(f".{_PUBLIC[name]}", __name__), name)
+    globals()[name] = value
+    return value
+
 
 __all__ = [
     "EventSpec", "IncompatibleSignatures", "InputError", "LshjobError", "ParameterError",

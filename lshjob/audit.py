@@ -17,10 +17,10 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
-import numba
 import numpy as np
 import polars as pl
 
+from ._jit import numba
 from . import parts as parts_module
 from .digest import digest_in_background
 from .errors import InputError, ParameterError

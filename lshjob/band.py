@@ -37,10 +37,10 @@ from __future__ import annotations
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
-import numba
 import numpy as np
 import polars as pl
 
+from ._jit import numba
 from .hashing import fmix64_expr
 
 ROW_BYTES = 28

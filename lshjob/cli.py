@@ -2,18 +2,16 @@
 
 from __future__ import annotations
 
-import importlib
 import json
-import os
 import shutil
 import sys
-from functools import wraps
 from pathlib import Path
 from typing import Annotated, Optional
 
 import typer
 
-from . import __version__, api
+from . import __version__, api, stopping
+from ._blas_probe import skip_blas_probe as _skip_blas_probe
 from .charts import write_chart
 from .audit import audit_index
 from .config import load_run_config, merge_settings
@@ -21,7 +19,7 @@ from .demo import check_options as check_demo_options, write_demo
 from .errors import ParameterError
 from .job import RunOptions, run_job
 from .reports import audit_report, plan_report, run_report
-from .failures import EXIT_CODES, check_whole_numbers, failure, run_app
+from .failures import EXIT_CODES, ends_cleanly as _fail_cleanly, run_app, to_stdout
 from .ingest import EventSpec
 from .outputs import demo_folder, output_file
 from .progress import StageProgress
@@ -44,29 +42,11 @@ Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or 
 AsJson = Annotated[bool, typer.Option("--json", help="Print the summary as JSON on stdout.")]
 
 
-def _fail_cleanly(func):
-    """End a command that fails with one line on stderr (and a JSON record under --json) and
-    the exit code of the error (lshjob.failures): 2 for bad input or options and files that
-    cannot be read or written, 70 with the traceback logged for anything unexpected."""
-
-    @wraps(func)
-    def wrapper(*args, **kwargs):
-        try:
-            check_whole_numbers(kwargs)
-            return func(*args, **kwargs)
-        except (typer.Exit, typer.Abort):
-            raise
-        except Exception as exc:
-            raise failure(exc, func.__name__, kwargs.get("as_json", False)) from None
-
-    return wrapper
-
-
 def _emit(summary: dict, as_json: bool, quiet: bool, text: str) -> None:
     if as_json:
-        typer.echo(json.dumps(summary, indent=2, sort_keys=True, default=str))
+        to_stdout(json.dumps(summary, indent=2, sort_keys=True, default=str))
     elif not quiet:
-        typer.echo(text)
+        to_stdout(text)
 
 
 def _progress(quiet: bool, as_json: bool) -> StageProgress:
@@ -378,39 +358,19 @@ for _command in app.registered_commands:  # every command's --help ends with the
 
 
 def entry_point() -> None:
-    """Console script ``lshjob``. Ends the process without the interpreter's teardown, after
-    flushing: unloading numba's compiled code at exit costs about 0.3 s a command (measured),
-    and by then every output is written, closed and renamed into place."""
-    _skip_blas_probe()
-    code = run_app(app, sys.argv[1:])
-    for stream in (sys.stdout, sys.stderr):
-        try:
-            stream.flush()
-        except OSError:  # a reader that closed the pipe early (lshjob ... | head)
-            pass
-    os._exit(code)
-
-
-def _skip_blas_probe() -> None:
-    """Spare this process numba's check for a BLAS. When numba first compiles or loads compiled
-    code, it imports ``scipy.linalg`` (when scipy is installed, as datasketch requires) only to
-    learn whether ``np.dot`` can use a BLAS: 0.2 s of every command, measured, and on the path
-    of the first compiled call. lshjob's compiled code does no linear algebra, so the module
-    that probes is loaded here with that import made to fail; numba then takes its plain loops
-    for the two functions that ask (``np.correlate``, ``np.convolve``), and any other linear
-    algebra still finds scipy as usual. Only in the ``lshjob`` process: a program that imports
-    lshjob keeps numba as it is."""
-    probe, blas = "numba.np.arraymath", "scipy.linalg.cython_blas"
-    if probe in sys.modules or blas in sys.modules:
-        return
-    sys.modules[blas] = None  # a None entry makes `import` raise ImportError
+    """What the console script ``lshjob`` (lshjob.console) runs, after taking over the stop
+    signals; ``python -m lshjob.cli`` takes them over here. Ends the process without the
+    interpreter's teardown, after flushing: unloading numba's compiled code at exit costs
+    about 0.3 s a command (measured), and by then every output is written, closed and renamed
+    into place. A reader that closed stdout early (``lshjob ... | head``) changes nothing."""
+    stopping.install()
     try:
-        importlib.import_module(probe)
-    except Exception:  # a numba that probes elsewhere or fails here: it loads as usual later
-        pass
-    finally:
-        if sys.modules.get(blas, 0) is None:
-            del sys.modules[blas]
+        _skip_blas_probe()
+        code = run_app(app, sys.argv[1:])
+    except stopping.Stopped as stop:  # outside any command
+        code = stopping.say(stop, sys.argv[1:])
+    stopping.say_if_late(code)
+    stopping.flush_and_exit(code)
 
 
 if __name__ == "__main__":

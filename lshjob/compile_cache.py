@@ -103,9 +103,15 @@ class _Notice:
 NOTICE = _Notice()
 
 
+_NOTICE_INSTALLED = []
+
+
 def install_notice() -> None:
     """Print the notice (stderr, once a process, not under ``--quiet``) when a kernel is
-    about to compile."""
+    about to compile (registered once a process, by :mod:`lshjob._jit`)."""
+    if _NOTICE_INSTALLED:
+        return
+    _NOTICE_INSTALLED.append(True)
     from numba.core import event
 
     class Listener(event.Listener):

@@ -20,10 +20,10 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Iterator
 
-import numba
 import numpy as np
 import polars as pl
 
+from ._jit import numba
 from .hashing import fmix64
 from .ingest import EventSpec, IngestReport
 from .loading import GroupedEvents, read_grouped

@@ -10,9 +10,9 @@ closed (:func:`compact`).
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
+from ._jit import numba
 from .compile_cache import readonly
 
 

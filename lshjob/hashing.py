@@ -18,9 +18,10 @@ versions. Library hashes without a stability promise (for example polars'
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 import polars as pl
+
+from ._jit import numba
 
 U64 = np.uint64
 MASK64 = (1 << 64) - 1

@@ -18,10 +18,10 @@ representatives, ascending.
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 import polars as pl
 
+from ._jit import numba
 from .hashing import fmix64
 from .membership import Membership
 

@@ -17,7 +17,7 @@ import time
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
-from . import parts, planner, prepare, provenance, publish
+from . import parts, planner, prepare, provenance, publish, stopping
 from .digest import digest_in_background
 from .errors import ParameterError
 from .folder_lock import output_lock
@@ -233,7 +233,9 @@ def run_job(
         manifest["seconds"] = dict(stages.seconds, total=round(time.perf_counter() - started, 3))
         manifest["finished_at"] = provenance.iso(provenance.utc_now())
         manifest = json.loads(json.dumps(manifest, default=str))  # what the file holds, exactly
-        publish.commit_index(out, manifest)
+        with stopping.held():  # a stop signal waits: the index is renamed whole or not at all
+            publish.commit_index(out, manifest)
+            stopping.mark_published()
         return manifest
     finally:
         shutil.rmtree(work, ignore_errors=True)

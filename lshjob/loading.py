@@ -32,10 +32,10 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
-import numba
 import numpy as np
 import polars as pl
 
+from ._jit import numba
 from . import grouping
 from .errors import InputError, ParameterError, key_text
 from .hashing import xxh64_strings

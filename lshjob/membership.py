@@ -15,10 +15,10 @@ from __future__ import annotations
 import unicodedata
 from dataclasses import dataclass
 
-import numba
 import numpy as np
 import polars as pl
 
+from ._jit import numba
 from .hashing import xxh64_of_integer, xxh64_integers, xxh64_strings
 
 INT64_MAX = np.iinfo(np.int64).max

@@ -28,9 +28,9 @@ probes go on in order. For larger k the first 32 probes of every bin are tabled 
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
+from ._jit import numba
 from .compile_cache import readonly
 from .hashing import fmix64
 from .membership import element_hash, store_row

@@ -30,10 +30,10 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator
 
-import numba
 import numpy as np
 import polars as pl
 
+from ._jit import numba
 from . import oph
 from .errors import IncompatibleSignatures, InputError, ParameterError
 from .hashing import element_hashes, fmix64, splitmix64_sequence, xxh64_strings

@@ -8,10 +8,10 @@ returns all m(m-1)/2 Jaccard similarities. Signature mode estimates them from si
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 import polars as pl
 
+from ._jit import numba
 from .compile_cache import readonly
 from .errors import InputError
 from .membership import Membership

@@ -11,10 +11,10 @@ order of the candidates.
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 import polars as pl
 
+from ._jit import numba
 from .membership import Membership
 from .signatures import SignatureParams, comparable, sign_membership
 
