@@ -26,7 +26,7 @@ from .join import (DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs, duckdb_lim
                    require_duckdb_memory)
 from .loading import grouping_need, open_events
 from .progress import QUIET, StageProgress
-from .resources import current_bytes, default_memory, parse_size, peak_bytes, reset_peak
+from .resources import current_bytes, default_memory, parse_size, peak_bytes, release_freed, reset_peak
 from .scratch import remove_leftovers, work_folder
 from .signatures import SignatureParams
 
@@ -177,9 +177,11 @@ def run_job(
                 # DuckDB gets what the budget leaves beside what the process holds, less what
                 # it takes beyond its limit; held sets go to the work folder when that is short.
                 threads = join_threads()
+                release_freed()
                 limit = duckdb_limit(memory, current_bytes(), built.shared_rows, threads)
                 if limit < duckdb_need(built.shared_rows) and isinstance(built.store, parts.HeldSets):
                     built.store = built.store.saved(work / "sets")
+                    release_freed()
                     limit = duckdb_limit(memory, current_bytes(), built.shared_rows, threads)
                 require_duckdb_memory(limit, built.shared_rows, current_bytes(), memory, threads)
                 settings = JoinSettings(memory_limit=f"{limit // 2**20}MiB", temp_directory=str(work / "spill"),

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import ctypes
 import os
 import re
 import resource
@@ -77,6 +78,15 @@ def peak_bytes() -> int:
     """Peak resident memory since the last reset (VmHWM), else the process's lifetime peak."""
     peak = _status_bytes("VmHWM")
     return peak if peak is not None else resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+def release_freed() -> None:
+    """Hand memory freed in the process back to the system (glibc's ``malloc_trim``), so
+    what is resident is what is held; nothing where that call is unavailable."""
+    try:
+        ctypes.CDLL(None).malloc_trim(0)
+    except (OSError, AttributeError):
+        pass
 
 
 def current_bytes() -> int:
