@@ -3,9 +3,9 @@
     python bench/budget.py --entities 1000000 --memory 512MiB 1GB 2GB
 
 Runs ``lshjob run`` (threshold 0.5) on the branch network of bench/common.py once per budget,
-each in a fresh process measured by ``getrusage(RUSAGE_CHILDREN)`` of a child that runs only
-it (a first run compiles the kernels, whose LLVM memory is not the run's), and tabulates the
-manifest's ``peak_memory_bytes`` per stage, the whole process's peak and the budget. A run
+each in a fresh process (a first run compiles the kernels, whose LLVM memory is not the
+run's), and tabulates the manifest's ``peak_memory_bytes`` per stage (the kernel's high-water
+mark, reset at each stage) against the budget. A run
 refused before the work is shown with its message.
 """
 
@@ -45,7 +45,7 @@ def main() -> None:
             done = json.loads(subprocess.run([sys.executable, "-c", MEASURE, *cmd], capture_output=True,
                                              text=True).stdout)
             runs[memory] = done
-    gib = 2**30
+    mib = 2**20
     lines = [f"Machine: {machine()}",
              f"Data: {args.entities:,} entities (bench/common.py branch network), threshold {args.threshold}",
              f"Command: `python bench/budget.py --entities {args.entities} --memory {' '.join(args.memory)}`", ""]
@@ -58,14 +58,12 @@ def main() -> None:
         for memory in args.memory:
             m = manifests[memory]
             peak = m["peak_memory_bytes"].get(stage) if m else None
-            cells.append("" if peak is None else f"{peak / gib:.2f} GiB")
+            cells.append("" if peak is None else f"{peak / mib:.0f} MiB")
         lines.append(f"| {stage} | " + " | ".join(cells) + " |")
-    row = []
-    for memory in args.memory:
-        r, m = runs[memory], manifests[memory]
-        row.append(f"{r['peak'] / gib:.2f} GiB" if m else f"exit {r['code']}")
-    lines.append("| whole process (getrusage) | " + " | ".join(row) + " |")
-    lines.append("| budget | " + " | ".join(f"{manifests[x]['memory_budget_bytes'] / gib:.2f} GiB"
+    lines.append("| highest stage | " + " | ".join(f"{max(manifests[x]['peak_memory_bytes'].values()) / mib:.0f} MiB"
+                                                     if manifests[x] else f"exit {runs[x]['code']}"
+                                                     for x in args.memory) + " |")
+    lines.append("| budget | " + " | ".join(f"{manifests[x]['memory_budget_bytes'] / mib:.0f} MiB"
                                               if manifests[x] else "" for x in args.memory) + " |")
     lines.append("| parts | " + " | ".join(str(manifests[x]["counts"]["parts"]) if manifests[x] else ""
                                              for x in args.memory) + " |")

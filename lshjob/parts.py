@@ -247,9 +247,9 @@ class HeldSets:
 def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: float, params: SignatureParams | None,
                   memory: int) -> pl.DataFrame:
     """Exact Jaccard of every candidate (:mod:`lshjob.verify`), two parts' sets held at a time;
-    candidates are read a slice at a time (a quarter of the budget), so memory stays bounded
+    candidates are read a slice at a time (an eighth of the budget), so memory stays bounded
     whatever their number. ``candidates`` is the join's file (one part) or folder (parts)."""
-    step = max(MIN_VERIFY_SLICE, memory // 4 // VERIFY_BYTES_PER_PAIR)
+    step = max(MIN_VERIFY_SLICE, memory // 8 // VERIFY_BYTES_PER_PAIR)
     pieces = []
     parts = len(store.ranges)
     for i in range(parts):
