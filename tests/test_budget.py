@@ -73,3 +73,36 @@ def test_a_join_that_cannot_fit_is_refused_with_its_estimate():
                                              r"the budget is 0\.50 GiB; raise --memory"):
         require_duckdb_memory(limit, rows, held, memory, 2)
     require_duckdb_memory(need, rows, held, memory, 2)  # exactly enough: no error
+
+
+def test_sets_saved_for_the_join_give_the_same_index(tmp_path, monkeypatch):
+    # Oracle: the run that kept its sets in memory (its index is checked against brute force in
+    # tests/test_run_edges.py), and exact Jaccard over Python sets for every published row.
+    # The first limit computed is made too small, so
+    # the one-part run saves its sets to the work folder before the join and verification
+    # loads them again.
+    import lshjob.job as job
+    from lshjob import EventSpec
+    from lshjob.job import RunOptions, run_job
+
+    events = near_duplicate_groups(30, 6, base=12, extra=2)
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    spec, options = EventSpec(entity="patron", element="title"), RunOptions(threshold=0.5, top_k=5)
+    held = run_job(src, spec, options, tmp_path / "held")
+    limits = []
+    real = job.duckdb_limit
+
+    def first_short(*args):
+        limits.append(real(*args))
+        return 0 if len(limits) == 1 else limits[-1]
+
+    monkeypatch.setattr(job, "duckdb_limit", first_short)
+    saved = run_job(src, spec, options, tmp_path / "saved")
+    assert len(limits) == 2  # computed again once the sets were saved
+    read = {p: pl.read_parquet(tmp_path / p / "neighbours.parquet") for p in ("held", "saved")}
+    assert read["saved"].equals(read["held"]) and saved["counts"]["verified_pairs"] == held["counts"]["verified_pairs"]
+    sets = {k: set(v) for k, v in events.group_by("patron").agg("title").iter_rows()}
+    assert read["saved"].height > 100
+    for e, o, j in read["saved"].select("entity", "neighbour", "jaccard").iter_rows():
+        assert j == len(sets[e] & sets[o]) / len(sets[e] | sets[o]) and j >= 0.5
