@@ -22,11 +22,12 @@ from .digest import digest_in_background
 from .errors import ParameterError
 from .folder_lock import output_lock
 from .ingest import EventSpec, resolve_paths
-from .join import DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
+from .join import (DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs, duckdb_limit, duckdb_need, join_threads,
+                   require_duckdb_memory)
 from .loading import grouping_need, open_events
 from .outputs import output_folder, scratch_folder
 from .progress import QUIET, StageProgress
-from .resources import current_bytes, default_memory, parse_size, peak_bytes, reset_peak
+from .resources import current_bytes, default_memory, parse_size, peak_bytes, release_freed, reset_peak
 from .scratch import remove_leftovers, work_folder
 from .signatures import SignatureParams
 
@@ -175,10 +176,18 @@ def run_job(
             counts["bucket_rows"] = built.bucket_rows
             counts["shared_bucket_rows"] = built.shared_rows
             with stages("join"):
-                # DuckDB gets what the budget leaves beside the sets and keys held here.
-                duck = max(memory - current_bytes(), memory // 4, 128 * 2**20)
-                settings = JoinSettings(memory_limit=f"{duck // 2**20}MiB",
-                                        temp_directory=str(work / "spill"), max_bucket=options.max_bucket)
+                # DuckDB gets what the budget leaves beside what the process holds, less what
+                # it takes beyond its limit; held sets go to the work folder when that is short.
+                threads = join_threads()
+                release_freed()
+                limit = duckdb_limit(memory, current_bytes(), built.shared_rows, threads)
+                if limit < duckdb_need(built.shared_rows) and isinstance(built.store, parts.HeldSets):
+                    built.store = built.store.saved(work / "sets")
+                    release_freed()
+                    limit = duckdb_limit(memory, current_bytes(), built.shared_rows, threads)
+                require_duckdb_memory(limit, built.shared_rows, current_bytes(), memory, threads)
+                settings = JoinSettings(memory_limit=f"{limit // 2**20}MiB", temp_directory=str(work / "spill"),
+                                        threads=threads, max_bucket=options.max_bucket)
                 candidates = work / ("candidates" if in_parts else "candidates.parquet")
                 joined = candidate_pairs(built.bucket_files, candidates, settings, plan["bands"], built.bucket_rows,
                                          part_ranges=built.store.ranges if in_parts else None)

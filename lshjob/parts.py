@@ -59,6 +59,7 @@ HELD_BYTES_PER_ENTITY = 32  # representative, event count and key (about 8 bytes
 PROCESS_BYTES = 256 << 20  # the interpreter with polars, numba and DuckDB loaded: about 200 MiB measured
 VERIFY_BYTES_PER_PAIR = 64  # candidate row in polars and numpy, plus the float results
 MIN_VERIFY_SLICE = 1_000_000
+ESTIMATE_SHARE = 16  # the verified pairs' signatures (for their estimate) take a 16th of the budget at a time
 
 
 def events_per_entity(events: EventSource | pl.LazyFrame) -> pl.DataFrame:
@@ -235,13 +236,20 @@ class HeldSets:
     def load(self, i: int) -> Membership:
         return self.sets
 
+    def saved(self, folder: Path) -> PartStore:
+        """The sets saved in ``folder`` as one part, so the caller can let them go (the join
+        then gets their memory; verification loads them again)."""
+        store = PartStore(folder, self.sets.text_hashes)
+        store.save(self.sets)
+        return store
+
 
 def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: float, params: SignatureParams | None,
                   memory: int) -> pl.DataFrame:
     """Exact Jaccard of every candidate (:mod:`lshjob.verify`), two parts' sets held at a time;
-    candidates are read a slice at a time (a quarter of the budget), so memory stays bounded
+    candidates are read a slice at a time (an eighth of the budget), so memory stays bounded
     whatever their number. ``candidates`` is the join's file (one part) or folder (parts)."""
-    step = max(MIN_VERIFY_SLICE, memory // 4 // VERIFY_BYTES_PER_PAIR)
+    step = max(MIN_VERIFY_SLICE, memory // 8 // VERIFY_BYTES_PER_PAIR)
     pieces = []
     parts = len(store.ranges)
     for i in range(parts):
@@ -264,7 +272,8 @@ def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: floa
                 block = block.with_columns(estimate=pl.col("jaccard")).select(
                     "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
             else:
-                block = add_estimates_between(block, left, store.ranges[i][0], right, store.ranges[j][0], params)
+                block = add_estimates_between(block, left, store.ranges[i][0], right, store.ranges[j][0], params,
+                                              max_bytes=memory // ESTIMATE_SHARE)
             pieces.append(block)
             del right
     return pl.concat(pieces) if pieces else empty_verified()

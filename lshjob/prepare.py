@@ -21,6 +21,7 @@ from .identical import collapse_identical, fingerprints
 from .ingest import IngestReport
 from .loading import EventSource, membership_of
 from .membership import Membership
+from .resources import current_bytes, release_freed
 from .signatures import SignatureParams, comparable_by_position
 
 if TYPE_CHECKING:
@@ -62,7 +63,13 @@ def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: P
                      warnings=_few_sets(sets.size, len(reps)))
     if plan["mode"] != "identical-only":
         built.params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
-        bands = SignAndBand(built.params, plan, memory, stages)
+        # The bucket keys (8 bytes a band and representative) stay in memory when they fit
+        # beside what the process holds, a slice's signatures and a batch of the band search
+        # (an eighth of the budget each); else they go to the work folder, as in parts.
+        keys_bytes = len(reps) * (plan["bands"] + 1) * 8
+        release_freed()
+        spill = work / "keys" if current_bytes() + keys_bytes + memory // 4 > memory else None
+        bands = SignAndBand(built.params, plan, memory, stages, spill=spill)
         with stages.progress.stage("sign and band", len(reps)) as task:
             bands.add(sets, reps, 0, task)
         built.bucket_files, built.shared_rows = bands.write(work / "buckets")
@@ -85,8 +92,13 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
     _check_predicted(plan, options)
     banded = plan["mode"] != "identical-only"
     params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed) if banded else None
-    ranges = parts.key_ranges(per_entity, source, parts.part_budget(memory, per_entity.height),
-                              options.parts)
+    # Verification holds two parts' sets (8 bytes an element, less than grouping them costs)
+    # beside what the process holds now, its slices of candidates and their estimates (an
+    # eighth and a sixteenth of the budget) and what DuckDB leaves resident after the join.
+    release_freed()
+    two_parts = (memory - current_bytes() - memory // 4) // 2
+    ranges = parts.key_ranges(per_entity, source, min(parts.part_budget(memory, per_entity.height),
+                                                      max(two_parts, memory // 10)), options.parts)
     del per_entity
     store = parts.PartStore(work / "sets", source.text_hashes)
     report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,

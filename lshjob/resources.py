@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import ctypes
 import os
 import re
 import resource
@@ -46,7 +47,13 @@ def default_memory() -> int:
 
 
 def reset_peak() -> bool:
-    """Reset the kernel's resident-memory high-water mark (Linux clear_refs '5')."""
+    """Reset the kernel's resident-memory high-water mark (Linux clear_refs '5'), so each stage
+    records its own peak. The reset also clears what ``getrusage`` reports of the process once
+    it has ended; with ``LSHJOB_PEAK_PER_STAGE=0`` in the environment nothing is reset, so that
+    figure is the whole process's peak (the memory tests measure runs so) and each stage
+    records the peak so far."""
+    if os.environ.get("LSHJOB_PEAK_PER_STAGE") == "0":
+        return False
     try:
         with open("/proc/self/clear_refs", "w") as fh:
             fh.write("5")
@@ -71,6 +78,15 @@ def peak_bytes() -> int:
     """Peak resident memory since the last reset (VmHWM), else the process's lifetime peak."""
     peak = _status_bytes("VmHWM")
     return peak if peak is not None else resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+def release_freed() -> None:
+    """Hand memory freed in the process back to the system (glibc's ``malloc_trim``), so
+    what is resident is what is held; nothing where that call is unavailable."""
+    try:
+        ctypes.CDLL(None).malloc_trim(0)
+    except (OSError, AttributeError):
+        pass
 
 
 def current_bytes() -> int:

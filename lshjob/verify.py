@@ -141,18 +141,27 @@ def add_estimates(verified: pl.DataFrame, sets: Membership, params: SignaturePar
 
 
 def add_estimates_between(verified: pl.DataFrame, left_sets: Membership, left_first: int,
-                          right_sets: Membership, right_first: int, params: SignatureParams) -> pl.DataFrame:
-    """:func:`add_estimates` with the two sides' sets given apart, as in :func:`verify_between`."""
-    left = verified["left_rep"].to_numpy() - left_first
-    right = verified["right_rep"].to_numpy() - right_first
-    if left_sets is right_sets and left_first == right_first:
-        left_matrix, left_row = _signed(left_sets, np.concatenate([left, right]), params)
-        right_matrix, right_row = left_matrix, left_row
-    else:
-        left_matrix, left_row = _signed(left_sets, left, params)
-        right_matrix, right_row = _signed(right_sets, right, params)
-    est = signature_agreement(left_matrix, left_row, np.ascontiguousarray(left),
-                              right_matrix, right_row, np.ascontiguousarray(right))
+                          right_sets: Membership, right_first: int, params: SignatureParams,
+                          max_bytes: int | None = None) -> pl.DataFrame:
+    """:func:`add_estimates` with the two sides' sets given apart, as in :func:`verify_between`.
+    With ``max_bytes``, the pairs are taken a slice at a time whose signatures (two rows a
+    pair, raw and comparable, 8 bytes a position) take at most that many bytes."""
+    left_all = verified["left_rep"].to_numpy() - left_first
+    right_all = verified["right_rep"].to_numpy() - right_first
+    step = len(left_all) if max_bytes is None else max(1024, max_bytes // (4 * 8 * params.perms))
+    estimates = []
+    for lo in range(0, len(left_all), max(step, 1)):
+        left, right = left_all[lo:lo + step], right_all[lo:lo + step]
+        if left_sets is right_sets and left_first == right_first:
+            left_matrix, left_row = _signed(left_sets, np.concatenate([left, right]), params)
+            right_matrix, right_row = left_matrix, left_row
+        else:
+            left_matrix, left_row = _signed(left_sets, left, params)
+            right_matrix, right_row = _signed(right_sets, right, params)
+        estimates.append(signature_agreement(left_matrix, left_row, np.ascontiguousarray(left),
+                                             right_matrix, right_row, np.ascontiguousarray(right)))
+        del left_matrix, right_matrix, left_row, right_row
+    est = np.concatenate(estimates) if estimates else np.empty(0, dtype=np.float64)
     return verified.with_columns(pl.Series("estimate", est)).select(
         "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
 
