@@ -168,3 +168,16 @@ def _uniform_from_key(key: np.ndarray, stream: int) -> np.ndarray:
     z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
     z = z ^ (z >> np.uint64(31))
     return ((z >> np.uint64(11)).astype(np.float64) + 0.5) / 2.0**53
+
+
+def best(fn, repeat: int) -> tuple[float, float]:
+    """(wall, CPU) seconds of the best of ``repeat`` calls of ``fn``, after one untimed call
+    (compiled code and caches outside timing)."""
+    fn()
+    wall, cpu = [], []
+    for _ in range(repeat):
+        w, c = time.perf_counter(), time.process_time()
+        fn()
+        wall.append(time.perf_counter() - w)
+        cpu.append(time.process_time() - c)
+    return min(wall), min(cpu)

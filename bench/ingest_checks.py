@@ -25,21 +25,11 @@ import numpy as np
 import polars as pl
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import finish, machine  # noqa: E402
+from common import best, finish, machine  # noqa: E402
 
 from lshjob import EventSpec  # noqa: E402
 from lshjob.loading import group_events, load_membership, open_events  # noqa: E402
 
-
-def best(fn, repeat: int) -> tuple[float, float]:
-    fn()  # compiled code and caches outside timing
-    wall, cpu = [], []
-    for _ in range(repeat):
-        w, c = time.perf_counter(), time.process_time()
-        fn()
-        wall.append(time.perf_counter() - w)
-        cpu.append(time.process_time() - c)
-    return min(wall), min(cpu)
 
 
 def main() -> None:

@@ -41,3 +41,21 @@ def same_index(a: Path, b: Path) -> bool:
 
     return (pl.read_parquet(a / "neighbours.parquet").equals(pl.read_parquet(b / "neighbours.parquet"))
             and meta(a) == meta(b))
+
+
+INDEX_FILES = ("neighbours.parquet", "manifest.json")
+
+
+def index_digest(folder) -> dict[str, str]:
+    """sha256 of an index folder's two files (hashlib), to check an index is left byte for byte."""
+    import hashlib
+    from pathlib import Path
+
+    return {name: hashlib.sha256((Path(folder) / name).read_bytes()).hexdigest() for name in INDEX_FILES}
+
+
+def planted_events_file(tmp_path_factory):
+    """40 planted pairs and 300 background patrons written once for a test module (Parquet)."""
+    path = tmp_path_factory.mktemp("events") / "loans.parquet"
+    planted_pairs(40, 0.5, seed=3, background=300).write_parquet(path)
+    return path

@@ -20,7 +20,7 @@ import time
 from pathlib import Path
 
 import pytest
-from helpers import planted_pairs
+from helpers import index_digest, planted_events_file
 from typer.testing import CliRunner
 
 from lshjob import EventSpec, ParameterError
@@ -41,13 +41,7 @@ time.sleep(120)
 
 @pytest.fixture(scope="module")
 def events(tmp_path_factory) -> Path:
-    path = tmp_path_factory.mktemp("events") / "loans.parquet"
-    planted_pairs(40, 0.5, seed=3, background=300).write_parquet(path)
-    return path
-
-
-def index_digest(out: Path) -> dict[str, str]:
-    return {name: hashlib.sha256((out / name).read_bytes()).hexdigest() for name in ("neighbours.parquet", "manifest.json")}
+    return planted_events_file(tmp_path_factory)
 
 
 def lshjob_run(events: Path, out: Path, *extra: str) -> list[str]:

@@ -9,7 +9,6 @@ and the disk blocks the leftovers held (os.stat), summed here.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 import re
@@ -19,7 +18,7 @@ import sys
 from pathlib import Path
 
 import pytest
-from helpers import planted_pairs
+from helpers import index_digest, planted_events_file
 
 from lshjob import EventSpec
 from lshjob.folder_lock import LOCK_NAME
@@ -66,13 +65,7 @@ for i in range(40):
 
 @pytest.fixture(scope="module")
 def events(tmp_path_factory) -> Path:
-    path = tmp_path_factory.mktemp("events") / "loans.parquet"
-    planted_pairs(40, 0.5, seed=3, background=300).write_parquet(path)
-    return path
-
-
-def digest(folder: Path) -> dict[str, str]:
-    return {name: hashlib.sha256((folder / name).read_bytes()).hexdigest() for name in INDEX}
+    return planted_events_file(tmp_path_factory)
 
 
 def blocks(folder: Path) -> int:
@@ -95,7 +88,7 @@ def size_text(n: int) -> str:
 def test_a_run_killed_at_a_stage_keeps_the_index_and_the_next_run_cleans_up(tmp_path, events, stage, use_scratch):
     out, scratch = tmp_path / "idx", tmp_path / "scratch"
     run_job(events, SPEC, RunOptions(threshold=0.5), out)
-    before = digest(out)
+    before = index_digest(out)
     other_output = scratch / "lshjob-work-0123456789abcdef-1"  # another output's work folder
     other_output.mkdir(parents=True)
     killed = subprocess.run(
@@ -107,11 +100,11 @@ def test_a_run_killed_at_a_stage_keeps_the_index_and_the_next_run_cleans_up(tmp_
     pid = json.loads((out / LOCK_NAME).read_text())["pid"]
 
     # the index in place is byte for byte the last good one
-    assert digest(out) == before
+    assert index_digest(out) == before
     expected = {f".work-{pid}"} if not use_scratch else set()
     if stage == "publish":  # previous/ was made, the new files were staged
         expected |= {f".staging-{pid}", "previous"}
-        assert digest(out / "previous") == before
+        assert index_digest(out / "previous") == before
     assert set(os.listdir(out)) == {LOCK_NAME, *INDEX} | expected
     left = [out / name for name in expected if name != "previous"]
     if use_scratch:
@@ -130,7 +123,7 @@ def test_a_run_killed_at_a_stage_keeps_the_index_and_the_next_run_cleans_up(tmp_
                         rf"{re.escape(size_text(held))} reclaimed", removed), removed
     assert all(str(p) in removed for p in left)
     assert set(os.listdir(out)) == {*INDEX, "previous"}
-    assert digest(out / "previous") == before
+    assert index_digest(out / "previous") == before
     assert json.loads((out / "manifest.json").read_text())["options"]["threshold"] == 0.6
     assert os.listdir(scratch) == [other_output.name]
 

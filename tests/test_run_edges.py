@@ -13,8 +13,6 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
-from itertools import combinations
-from pathlib import Path
 
 import polars as pl
 import pytest

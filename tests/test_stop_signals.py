@@ -23,7 +23,7 @@ import time
 from pathlib import Path
 
 import pytest
-from helpers import planted_pairs
+from helpers import index_digest, planted_events_file
 
 from lshjob import EventSpec
 from lshjob.job import RunOptions, run_job
@@ -101,13 +101,7 @@ main()
 
 @pytest.fixture(scope="module")
 def events(tmp_path_factory) -> Path:
-    path = tmp_path_factory.mktemp("events") / "loans.parquet"
-    planted_pairs(40, 0.5, seed=3, background=300).write_parquet(path)
-    return path
-
-
-def digest(folder: Path) -> dict[str, str]:
-    return {name: hashlib.sha256((folder / name).read_bytes()).hexdigest() for name in INDEX}
+    return planted_events_file(tmp_path_factory)
 
 
 def run_args(events: Path, out: Path) -> list[str]:
@@ -119,7 +113,7 @@ def stopped_cleanly(done, out: Path, before: dict, name: str) -> None:
     assert done.returncode == 128 + signal.Signals[name].value, done.stderr[-2000:]
     assert done.stderr.count("\n") == 1 and done.stderr.startswith("error: lshjob run: stopped by " + name), done.stderr
     assert "nothing was published, the previous index is unchanged" in done.stderr
-    assert digest(out) == before
+    assert index_digest(out) == before
     assert set(os.listdir(out)) <= {*INDEX, "previous"}  # no .lshjob.lock, .work-*, .staging-*
 
 
@@ -128,7 +122,7 @@ def stopped_cleanly(done, out: Path, before: dict, name: str) -> None:
 def test_a_signal_inside_a_stage_stops_the_run_cleanly(tmp_path, events, how, name):
     out = tmp_path / "idx"
     run_job(events, SPEC, RunOptions(threshold=0.5), out)
-    before = digest(out)
+    before = index_digest(out)
     done = subprocess.run([sys.executable, "-c", STOP_AT, how, name, *run_args(events, out), "--json"],
                           capture_output=True, text=True, timeout=120)
     stopped_cleanly(done, out, before, name)
@@ -139,7 +133,7 @@ def test_a_signal_inside_a_stage_stops_the_run_cleanly(tmp_path, events, how, na
 def test_a_signal_while_the_index_is_renamed_lets_the_run_finish(tmp_path, events):
     out = tmp_path / "idx"
     run_job(events, SPEC, RunOptions(threshold=0.5), out)
-    before = digest(out)
+    before = index_digest(out)
     done = subprocess.run([sys.executable, "-c", STOP_AT, "publish", "SIGTERM", *run_args(events, out), "--quiet"],
                           capture_output=True, text=True, timeout=120)
     # the renames are made whole: the run is complete and says the signal came too late to stop it
@@ -148,7 +142,7 @@ def test_a_signal_while_the_index_is_renamed_lets_the_run_finish(tmp_path, event
     manifest = json.loads((out / "manifest.json").read_text())
     assert manifest["options"]["threshold"] == 0.6
     assert manifest["output"]["sha256"] == hashlib.sha256((out / "neighbours.parquet").read_bytes()).hexdigest()
-    assert digest(out / "previous") == before
+    assert index_digest(out / "previous") == before
     assert set(os.listdir(out)) == {*INDEX, "previous"}
 
 
@@ -170,9 +164,9 @@ def test_a_signal_while_the_libraries_load_stops_with_one_line(tmp_path, events,
 def test_a_second_signal_while_stopping_ends_the_process_at_once(tmp_path, events):
     out = tmp_path / "idx"
     run_job(events, SPEC, RunOptions(threshold=0.5), out)
-    before = digest(out)
+    before = index_digest(out)
     done = subprocess.run([sys.executable, "-c", STOP_AT, "twice", "SIGINT", *run_args(events, out)],
                           capture_output=True, text=True, timeout=120)
     assert done.returncode == 130, done.stderr[-2000:]
     assert done.stderr == "lshjob: SIGINT again; stopped at once\n"
-    assert digest(out) == before  # what the clean-up did not reach, the next run removes (test_killed_runs)
+    assert index_digest(out) == before  # what the clean-up did not reach, the next run removes (test_killed_runs)
