@@ -17,7 +17,6 @@ from __future__ import annotations
 import argparse
 import sys
 import tempfile
-import time
 import unicodedata
 from pathlib import Path
 

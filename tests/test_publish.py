@@ -5,7 +5,6 @@ and the rows made a block at a time (peak resident memory of a real process)."""
 from __future__ import annotations
 
 import json
-import resource  # noqa: F401  (used in the measuring child process)
 import subprocess
 import sys
 from math import comb
