@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import subprocess
+import sys
+
 import polars as pl
 import pytest
 
@@ -31,3 +34,13 @@ def small_events(tmp_path):
     path = tmp_path / "loans.parquet"
     frame.write_parquet(path)
     return path
+
+
+@pytest.fixture(scope="session")
+def compiled_kernels():
+    """Every kernel compiled into the compile cache (``lshjob compile-kernels``, once a test
+    session), so that a test measuring a child process's memory does not count the compiler's
+    (LLVM holds a few hundred MiB while it compiles, once per machine)."""
+    done = subprocess.run([sys.executable, "-m", "lshjob.cli", "compile-kernels", "--quiet"],
+                          capture_output=True, text=True, timeout=900)
+    assert done.returncode == 0, done.stderr

@@ -35,7 +35,7 @@ def near_duplicate_groups(groups: int, size: int, base: int = 40, keep: float = 
                          "title": np.concatenate([title[kept], own_title])}).sample(fraction=1.0, shuffle=True, seed=1)
 
 
-def test_join_and_verify_keep_to_a_512mib_budget(tmp_path):
+def test_join_and_verify_keep_to_a_512mib_budget(tmp_path, compiled_kernels):
     # 168,000 patrons in groups of 12, 32 bands of 4 rows: 3.1 million shared bucket rows and
     # a million candidate pairs. DuckDB limited to max(budget - resident, budget / 4, 128 MiB)
     # took the run to 562 MiB by the end of the join (measured). Measured here: the kernel's

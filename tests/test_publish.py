@@ -90,7 +90,7 @@ MEASURE = ("import json, resource, subprocess, sys; done = subprocess.run(sys.ar
            "* 1024, 'stdout': done.stdout, 'stderr': done.stderr[-2000:]}))")
 
 
-def test_publishing_ten_million_rows_keeps_to_a_512mib_budget(tmp_path):
+def test_publishing_ten_million_rows_keeps_to_a_512mib_budget(tmp_path, compiled_kernels):
     # 40 groups of 500 identical sets, top-k 1000: 20,000 x 499 = 9.98 million rows (algebra),
     # about 0.37 GiB as a table; made at once, publishing peaked at 1.40 GiB (measured).
     # Measured: the peak resident memory of the run's own process (getrusage of a child
