@@ -15,9 +15,11 @@ top_k >= m - 1 still publishes m(m - 1) rows: that is the index asked for, so it
 counted before anything is expanded (:func:`expand`, :func:`check_output`) and a run whose
 index would not fit the memory budget is refused with the figures.
 
-The rows are made a block of entities at a time (about an eighth of the budget in flight)
-and streamed into the Parquet file, so publishing holds the table's size only when it fits
-a block.
+Each representative's list is made a range of representatives at a time, from the verified
+pairs of the range gathered by position (both directions of every pair are never made at
+once). The rows are made a block of entities at a time (an eighth of the budget in flight,
+or a quarter of what it leaves beside the process, :func:`block_rows`) and streamed into
+the Parquet file, so publishing holds the table's size only when it fits a block.
 
 :func:`stage_neighbours` writes ``neighbours.parquet`` in a staging folder inside the output
 folder; :func:`commit_index` writes ``manifest.json`` beside it (the manifest records the
@@ -122,13 +124,14 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     involved[left] = True
     involved[right] = True
     ids = np.flatnonzero(involved[rep_of])
-    reps = rep_of[ids].astype(np.int64)
+    key = np.int32 if len(rep_of) < 2**31 else np.int64  # entity ids, held in the lists: 4 bytes when they fit
+    reps = rep_of[ids].astype(key)
     # head: the first cap members of each group, in key order (ids ascending, sorted stably by rep)
     order = np.argsort(reps, kind="stable")
     by_rep = reps[order]
     first = np.searchsorted(by_rep, by_rep)
     keep = order[np.arange(len(order)) - first < cap]
-    head = pl.DataFrame({"rep": reps[keep], "neighbour": ids[keep].astype(np.int64)})
+    head = pl.DataFrame({"rep": reps[keep], "neighbour": ids[keep].astype(key)})
     del order, by_rep, first, keep
 
     before_cut = np.where(sizes > 1, np.minimum(cap, sizes), 0).astype(np.int64)
@@ -138,7 +141,7 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     del before_cut
     # A range's edges are gathered from the pairs by position, each side in its own order:
     # both directions of every pair are never made at once.
-    sides = [_Side(verified, left, "left_rep", "right_rep"), _Side(verified, right, "right_rep", "left_rep")]
+    sides = [_Side(verified, left, "left_rep", "right_rep", key), _Side(verified, right, "right_rep", "left_rep", key)]
     del left, right
     pieces, listed, start, n = [], [], 0, len(rep_of)
     own = np.zeros(n, dtype=bool)
@@ -165,13 +168,13 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
         del piece, src, neighbour
         release_freed()
     per_group = pl.concat(pieces, rechunk=False) if pieces else pl.DataFrame(schema={
-        "src": pl.Int64, "neighbour": pl.Int64, "jaccard": pl.Float64, "estimate": pl.Float64,
+        "src": pl.Int32, "neighbour": pl.Int32, "jaccard": pl.Float64, "estimate": pl.Float64,
         "bands_shared": pl.Int32})
     del sides, head, pieces
     # rows expanded for a member: its representative's list; published: without itself, cut at top_k
     rows = np.concatenate(listed)[reps].astype(np.int64) if listed else np.zeros(0, dtype=np.int64)
     published = int(np.minimum(rows - own[ids], top_k).sum())
-    members = pl.DataFrame({"id": ids.astype(np.int64), "rep": reps, "rows": rows})
+    members = pl.DataFrame({"id": ids.astype(key), "rep": reps, "rows": rows})
     return Expansion(members, per_group, published, top_k)
 
 
@@ -179,11 +182,12 @@ class _Side:
     """One side of the verified pairs, in the order of its representative: the pairs whose
     ``src`` side is in a range of representatives are a slice of ``order``."""
 
-    def __init__(self, verified: pl.DataFrame, reps: np.ndarray, src: str, dst: str) -> None:
+    def __init__(self, verified: pl.DataFrame, reps: np.ndarray, src: str, dst: str, key: type) -> None:
         self.verified, self.src, self.dst = verified, src, dst
+        self.key = pl.Int32 if key is np.int32 else pl.Int64
         narrow = np.int32 if len(reps) < 2**31 else np.int64  # positions of pairs
         self.order = np.argsort(reps, kind="stable").astype(narrow)
-        self.sorted_reps = reps[self.order].astype(np.int32 if reps.max(initial=0) < 2**31 else np.int64)
+        self.sorted_reps = reps[self.order].astype(key)
 
     def edges(self, start: int, stop: int) -> pl.DataFrame:
         """(src, dst, jaccard, estimate, bands_shared) of the pairs whose ``src`` side is in
@@ -191,7 +195,8 @@ class _Side:
         lo, hi = np.searchsorted(self.sorted_reps, [start, stop])
         rows = pl.Series(self.order[lo:hi])
         return self.verified.select(
-            pl.col(self.src).gather(rows).alias("src"), pl.col(self.dst).gather(rows).alias("dst"),
+            pl.col(self.src).gather(rows).cast(self.key).alias("src"),
+            pl.col(self.dst).gather(rows).cast(self.key).alias("dst"),
             pl.col("jaccard").gather(rows), pl.col("estimate").gather(rows),
             pl.col("bands_shared").gather(rows).cast(pl.Int32))
 
