@@ -207,14 +207,17 @@ def run_job(
             warnings.append(f"--top-k {options.top_k} is more than the {len(built.keys) - 1} other entities; "
                             f"used {top_k}")
         with stages("publish"):
+            # blocks sized from what the budget leaves beside what the process holds
+            release_freed()
             expansion = publish.expand(verified, built.rep_of, top_k, plan.get("bands", 0),
-                                       publish.block_rows(memory))
+                                       publish.block_rows(memory, current_bytes()))
             del verified
             publish.check_output(expansion.published_rows, built.keys, options.top_k, memory,
                                  publish.identical_rows(built.rep_of, top_k)[2])
             meta = provenance.neighbours_metadata(run_id, options, spec, top_k)
-            facts = publish.stage_neighbours(
-                out, publish.neighbour_blocks(expansion, built.keys, publish.block_rows(memory)), meta)
+            release_freed()
+            blocks = publish.neighbour_blocks(expansion, built.keys, publish.block_rows(memory, current_bytes()))
+            facts = publish.stage_neighbours(out, blocks, meta)
         counts["published_rows"] = facts["rows"]
         if counts["published_rows"] == 0 and len(built.keys) > 1:  # one entity is warned of when planning
             warnings.append("no pair reached the threshold: the index is empty")

@@ -15,9 +15,11 @@ top_k >= m - 1 still publishes m(m - 1) rows: that is the index asked for, so it
 counted before anything is expanded (:func:`expand`, :func:`check_output`) and a run whose
 index would not fit the memory budget is refused with the figures.
 
-The rows are made a block of entities at a time (about an eighth of the budget in flight)
-and streamed into the Parquet file, so publishing holds the table's size only when it fits
-a block.
+Each representative's list is made a range of representatives at a time, from the verified
+pairs of the range gathered by position (both directions of every pair are never made at
+once). The rows are made a block of entities at a time (an eighth of the budget in flight,
+or a quarter of what it leaves beside the process, :func:`block_rows`) and streamed into
+the Parquet file, so publishing holds the table's size only when it fits a block.
 
 :func:`stage_neighbours` writes ``neighbours.parquet`` in a staging folder inside the output
 folder; :func:`commit_index` writes ``manifest.json`` beside it (the manifest records the
@@ -43,6 +45,7 @@ import polars as pl
 from polars.io.plugins import register_io_source
 
 from .errors import ParameterError
+from .resources import release_freed
 
 NEIGHBOURS = "neighbours.parquet"
 MANIFEST = "manifest.json"
@@ -121,48 +124,81 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     involved[left] = True
     involved[right] = True
     ids = np.flatnonzero(involved[rep_of])
-    members = pl.DataFrame({"id": ids.astype(np.int64), "rep": rep_of[ids].astype(np.int64)})
-    head = members.with_columns(pos=pl.int_range(pl.len()).over("rep")).filter(pl.col("pos") < cap)
-    head = head.select("rep", pl.col("id").alias("neighbour"))
+    key = np.int32 if len(rep_of) < 2**31 else np.int64  # entity ids, held in the lists: 4 bytes when they fit
+    reps = rep_of[ids].astype(key)
+    # head: the first cap members of each group, in key order (ids ascending, sorted stably by rep)
+    order = np.argsort(reps, kind="stable")
+    by_rep = reps[order]
+    first = np.searchsorted(by_rep, by_rep)
+    keep = order[np.arange(len(order)) - first < cap]
+    head = pl.DataFrame({"rep": reps[keep], "neighbour": ids[keep].astype(key)})
+    del order, by_rep, first, keep
 
-    columns = ("jaccard", "estimate", pl.col("bands_shared").cast(pl.Int32))
-    edges = pl.concat([
-        verified.select(pl.col("left_rep").alias("src"), pl.col("right_rep").alias("dst"), *columns),
-        verified.select(pl.col("right_rep").alias("src"), pl.col("left_rep").alias("dst"), *columns),
-    ]).sort("src")
     before_cut = np.where(sizes > 1, np.minimum(cap, sizes), 0).astype(np.int64)
     np.add.at(before_cut, left, np.minimum(cap, sizes[right]))
     np.add.at(before_cut, right, np.minimum(cap, sizes[left]))
     cum = np.cumsum(before_cut)
-    pieces, start, n = [], 0, len(rep_of)
+    del before_cut
+    # A range's edges are gathered from the pairs by position, each side in its own order:
+    # both directions of every pair are never made at once.
+    sides = [_Side(verified, left, "left_rep", "right_rep", key), _Side(verified, right, "right_rep", "left_rep", key)]
+    del left, right
+    pieces, listed, start, n = [], [], 0, len(rep_of)
+    own = np.zeros(n, dtype=bool)
     while start < n:  # representatives start..stop-1
         base = cum[start - 1] if start else 0
         stop = max(start + 1, int(np.searchsorted(cum, base + chunk_rows, side="right")))
-        in_range = pl.col("src").is_between(start, stop - 1)
-        inter = edges.filter(in_range).join(head.rename({"rep": "dst"}), on="dst").select(
-            "src", "neighbour", "jaccard", "estimate", "bands_shared")
-        intra = head.rename({"rep": "src"}).filter(in_range & pl.col("src").is_in(
-            pl.Series(np.flatnonzero(sizes[start:stop] > 1) + start).implode())).select(
-            "src", "neighbour", pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
+        inter = pl.concat([side.edges(start, stop) for side in sides]).join(
+            head.rename({"rep": "dst"}), on="dst").select("src", "neighbour", "jaccard", "estimate", "bands_shared")
+        groups = pl.Series(np.flatnonzero(sizes[start:stop] > 1) + start)
+        intra = head.filter(pl.col("rep").is_in(groups.implode())).select(
+            pl.col("rep").alias("src"), "neighbour", pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
             pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
-        pieces.append(pl.concat([intra, inter])
-                      .sort(["src", "jaccard", "neighbour"], descending=[False, True, False])
-                      .group_by("src", maintain_order=True)
-                      .head(cap))
+        piece = (pl.concat([intra, inter])
+                 .sort(["src", "jaccard", "neighbour"], descending=[False, True, False])
+                 .group_by("src", maintain_order=True)
+                 .head(cap))
+        del inter, intra, groups
+        # a representative's list length, and the members its own list holds
+        src, neighbour = piece["src"].to_numpy(), piece["neighbour"].to_numpy()
+        listed.append(np.bincount(src - start, minlength=stop - start).astype(np.int32))
+        own[neighbour[rep_of[neighbour] == src]] = True
+        pieces.append(piece)
         start = stop
-        del inter, intra
-    per_group = pl.concat(pieces) if pieces else pl.DataFrame(schema={
-        "src": pl.Int64, "neighbour": pl.Int64, "jaccard": pl.Float64, "estimate": pl.Float64,
+        del piece, src, neighbour
+        release_freed()
+    per_group = pl.concat(pieces, rechunk=False) if pieces else pl.DataFrame(schema={
+        "src": pl.Int32, "neighbour": pl.Int32, "jaccard": pl.Float64, "estimate": pl.Float64,
         "bands_shared": pl.Int32})
-    del edges, head, pieces
-    listed = per_group.group_by("src").len().rename({"src": "rep", "len": "rows"})
-    self_listed = per_group.select(pl.col("src").alias("rep"), pl.col("neighbour").alias("id"),
-                                   pl.lit(1, dtype=pl.Int64).alias("self"))
-    members = (members.join(listed, on="rep", how="left", maintain_order="left")
-               .join(self_listed, on=["rep", "id"], how="left", maintain_order="left")
-               .with_columns(pl.col("rows").fill_null(0).cast(pl.Int64), pl.col("self").fill_null(0)))
-    published = int(members.select(pl.min_horizontal(pl.col("rows") - pl.col("self"), top_k).sum()).item() or 0)
-    return Expansion(members.select("id", "rep", "rows"), per_group, published, top_k)
+    del sides, head, pieces
+    # rows expanded for a member: its representative's list; published: without itself, cut at top_k
+    rows = np.concatenate(listed)[reps].astype(np.int64) if listed else np.zeros(0, dtype=np.int64)
+    published = int(np.minimum(rows - own[ids], top_k).sum())
+    members = pl.DataFrame({"id": ids.astype(key), "rep": reps, "rows": rows})
+    return Expansion(members, per_group, published, top_k)
+
+
+class _Side:
+    """One side of the verified pairs, in the order of its representative: the pairs whose
+    ``src`` side is in a range of representatives are a slice of ``order``."""
+
+    def __init__(self, verified: pl.DataFrame, reps: np.ndarray, src: str, dst: str, key: type) -> None:
+        self.verified, self.src, self.dst = verified, src, dst
+        self.key = pl.Int32 if key is np.int32 else pl.Int64
+        narrow = np.int32 if len(reps) < 2**31 else np.int64  # positions of pairs
+        self.order = np.argsort(reps, kind="stable").astype(narrow)
+        self.sorted_reps = reps[self.order].astype(key)
+
+    def edges(self, start: int, stop: int) -> pl.DataFrame:
+        """(src, dst, jaccard, estimate, bands_shared) of the pairs whose ``src`` side is in
+        start..stop-1."""
+        lo, hi = np.searchsorted(self.sorted_reps, [start, stop])
+        rows = pl.Series(self.order[lo:hi])
+        return self.verified.select(
+            pl.col(self.src).gather(rows).cast(self.key).alias("src"),
+            pl.col(self.dst).gather(rows).cast(self.key).alias("dst"),
+            pl.col("jaccard").gather(rows), pl.col("estimate").gather(rows),
+            pl.col("bands_shared").gather(rows).cast(pl.Int32))
 
 
 def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
@@ -210,9 +246,12 @@ def neighbour_table(verified: pl.DataFrame, rep_of: np.ndarray, keys: pl.Series,
     return pl.concat(blocks)
 
 
-def block_rows(memory: int) -> int:
-    """Expanded rows a block may hold: about an eighth of the budget."""
-    return max(MIN_BLOCK_ROWS, memory // 8 // BLOCK_BYTES_PER_ROW)
+def block_rows(memory: int, held: int = 0) -> int:
+    """Expanded rows a block may hold: about an eighth of the budget, or a quarter of what it
+    leaves beside the ``held`` bytes the process holds when that is less (the writer holds
+    two blocks while it encodes one)."""
+    share = min(memory // 8, (memory - held) // 4)
+    return max(MIN_BLOCK_ROWS, share // BLOCK_BYTES_PER_ROW)
 
 
 def sha256_file(path: Path, chunk: int = 1 << 22) -> str:
