@@ -19,6 +19,9 @@ from lshjob.join import duckdb_beyond, duckdb_need, require_duckdb_memory
 MIB = 2**20
 
 
+BUDGET = 640 * MIB
+
+
 def near_duplicate_groups(groups: int, size: int, base: int = 40, keep: float = 0.85, extra: int = 3,
                           seed: int = 7) -> pl.DataFrame:
     """``groups`` x ``size`` patrons; the members of a group borrow each of the group's ``base``
@@ -35,13 +38,14 @@ def near_duplicate_groups(groups: int, size: int, base: int = 40, keep: float = 
                          "title": np.concatenate([title[kept], own_title])}).sample(fraction=1.0, shuffle=True, seed=1)
 
 
-def test_the_whole_run_keeps_to_a_512mib_budget(tmp_path, compiled_kernels):
+def test_the_whole_run_keeps_to_its_budget(tmp_path, compiled_kernels):
     # 120,000 patrons in groups of 12, 32 bands of 4 rows: 1.9 million shared bucket rows,
     # 650,000 candidate pairs. DuckDB limited to max(budget - resident, budget / 4, 128 MiB)
     # took the run to 562 MiB by the end of the join at 168,000 patrons; publishing with both
     # directions of every verified pair made and sorted at once, to 551 MiB here and 630-642
     # MiB at 168,000 (measured). A fresh install's process holds some 60 MiB more than an
-    # editable one's (measured), so the data leaves that margin.
+    # editable one's (measured: there the join is refused at 512MiB, rightly), so the test
+    # runs at 640MiB with top-k 10, where the old publish reached 746 MiB (measured).
     # Measured here: the kernel's high-water mark of the run's own process, never reset
     # (LSHJOB_PEAK_PER_STAGE=0), so the figure the manifest records at the end of a stage is
     # the process's peak until then; at the end of publishing, the whole run's.
@@ -49,7 +53,7 @@ def test_the_whole_run_keeps_to_a_512mib_budget(tmp_path, compiled_kernels):
     near_duplicate_groups(10_000, 12).write_parquet(src)
     near_duplicate_groups(100, 12).write_parquet(small)
     options = ["--entity", "patron", "--element", "title", "--threshold", "0.5", "--perms", "128", "--bands", "32",
-               "--rows", "4", "--top-k", "2", "--memory", "512MiB", "--json", "--quiet"]
+               "--rows", "4", "--top-k", "10", "--memory", "640MiB", "--json", "--quiet"]
     run = [sys.executable, "-m", "lshjob.cli", "run"]
     env = {**os.environ, "LSHJOB_PEAK_PER_STAGE": "0"}
     # The kernels are compiled (and cached) by a first run on a few sets of the same types:
@@ -63,9 +67,9 @@ def test_the_whole_run_keeps_to_a_512mib_budget(tmp_path, compiled_kernels):
     assert m["counts"]["candidate_pairs"] > 600_000 and m["counts"]["verified_pairs"] > 550_000
     assert m["counts"]["published_rows"] > 200_000
     peaks = m["peak_memory_bytes"]
-    assert peaks["join"] <= 512 * MIB, peaks["join"] / MIB
-    assert peaks["verify"] <= 512 * MIB, peaks["verify"] / MIB
-    assert peaks["publish"] <= 512 * MIB, peaks["publish"] / MIB
+    assert peaks["join"] <= BUDGET, peaks["join"] / MIB
+    assert peaks["verify"] <= BUDGET, peaks["verify"] / MIB
+    assert peaks["publish"] <= BUDGET, peaks["publish"] / MIB
 
 
 def test_a_join_that_cannot_fit_is_refused_with_its_estimate():
