@@ -37,7 +37,7 @@ def main() -> None:
     path = branch_network_events(args.entities)
     runs = {}
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
-        base = [sys.executable, "-m", "lshjob.cli", "run", str(path), "--entity", "entity", "--element", "element",
+        base = [sys.executable, "-m", "lshjob.cli.app", "run", str(path), "--entity", "entity", "--element", "element",
                 "--threshold", str(args.threshold), "--json", "--quiet"]
         subprocess.run(base + ["--out", f"{tmp}/warm", "--memory", "2GB"], capture_output=True)
         for memory in args.memory:

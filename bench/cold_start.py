@@ -29,10 +29,10 @@ ROOT = Path(__file__).resolve().parent.parent
 
 
 def timed(args: list[str], env: dict) -> tuple[float, float]:
-    """(wall seconds, CPU seconds of the child) of ``python -m lshjob.cli ARGS``."""
+    """(wall seconds, CPU seconds of the child) of ``python -m lshjob.cli.app ARGS``."""
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     start = time.perf_counter()
-    subprocess.run([sys.executable, "-m", "lshjob.cli", *args], env=env, check=True,
+    subprocess.run([sys.executable, "-m", "lshjob.cli.app", *args], env=env, check=True,
                    stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     wall = time.perf_counter() - start
     after = resource.getrusage(resource.RUSAGE_CHILDREN)

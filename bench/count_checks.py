@@ -24,9 +24,9 @@ import polars as pl
 sys.path.insert(0, str(Path(__file__).parent))
 from common import best, finish, machine  # noqa: E402
 
-import lshjob.ingest as ingest  # noqa: E402
+import lshjob.ingest.spec as ingest  # noqa: E402
 from lshjob import EventSpec  # noqa: E402
-from lshjob.loading import open_events  # noqa: E402
+from lshjob.ingest.loading import open_events  # noqa: E402
 
 
 

@@ -27,7 +27,7 @@ sys.path.insert(0, str(Path(__file__).parent))
 from common import best, finish, machine  # noqa: E402
 
 from lshjob import EventSpec  # noqa: E402
-from lshjob.loading import group_events, load_membership, open_events  # noqa: E402
+from lshjob.ingest.loading import group_events, load_membership, open_events  # noqa: E402
 
 
 

@@ -28,7 +28,7 @@ sys.path.insert(0, str(Path(__file__).parent))
 from common import finish, events_with_similar_pairs, machine, peak_rss_gb  # noqa: E402
 
 from lshjob import EventSpec  # noqa: E402
-from lshjob.job import RunOptions, run_job  # noqa: E402
+from lshjob.jobs.run import RunOptions, run_job  # noqa: E402
 
 SPEC = EventSpec(entity="entity", element="element")
 

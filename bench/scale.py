@@ -54,7 +54,7 @@ def main() -> None:
         floor_cpu.append(_cpu(resource.RUSAGE_SELF) - cpu)
 
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
-        cmd = [sys.executable, "-m", "lshjob.cli", "run", str(path), "--entity", "entity", "--element", "element",
+        cmd = [sys.executable, "-m", "lshjob.cli.app", "run", str(path), "--entity", "entity", "--element", "element",
                "--threshold", str(args.threshold), "--scheme", args.scheme, "--perms", str(args.perms), "--out", f"{tmp}/idx", "--json",
                "--quiet"]
         if args.memory:
@@ -75,7 +75,7 @@ def main() -> None:
         floor = min(floors)
         audit = None
         if args.audit > 0:
-            audit_cmd = [sys.executable, "-m", "lshjob.cli", "audit", f"{tmp}/idx", "--sample", str(args.audit), "--json"]
+            audit_cmd = [sys.executable, "-m", "lshjob.cli.app", "audit", f"{tmp}/idx", "--sample", str(args.audit), "--json"]
             audit = json.loads(subprocess.run(audit_cmd + (["--memory", args.memory] if args.memory else []),
                                               check=True, capture_output=True, text=True).stdout)
 

@@ -50,7 +50,7 @@ def main() -> None:
     rows = {}
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
         for name, extra in (("one part (--parts 1)", ["--parts", "1"]), (f"--memory {args.memory}", ["--memory", args.memory])):
-            cmd = [sys.executable, "-m", "lshjob.cli", "sign", str(path), "--entity", "entity", "--element", "element",
+            cmd = [sys.executable, "-m", "lshjob.cli.app", "sign", str(path), "--entity", "entity", "--element", "element",
                    "--perms", str(args.perms), "--out", f"{tmp}/{len(rows)}.parquet", "--json", "--quiet", *keyed, *extra]
             start = time.perf_counter()
             done = subprocess.run(cmd, capture_output=True, text=True)

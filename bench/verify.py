@@ -20,8 +20,8 @@ sys.path.insert(0, str(Path(__file__).parent))
 from common import finish, events_with_similar_pairs, machine  # noqa: E402
 
 from lshjob import EventSpec, load_sets  # noqa: E402
-from lshjob.membership import Membership  # noqa: E402
-from lshjob.verify import exact_jaccard, jaccard_at_least  # noqa: E402
+from lshjob.core.sets import Membership  # noqa: E402
+from lshjob.index.verify import exact_jaccard, jaccard_at_least  # noqa: E402
 
 
 def main() -> None:

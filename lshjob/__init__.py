@@ -2,11 +2,10 @@
 
 import os
 
-from .compile_cache import configure_cache_dir
+from lshjob._version import __version__
+from lshjob.core.compile_cache import configure_cache_dir
 
-__version__ = "0.1.0"
-
-# LSHJOB_CACHE_DIR becomes numba's cache folder before numba is imported (lshjob.compile_cache).
+# LSHJOB_CACHE_DIR becomes numba's cache folder before numba is imported (lshjob.core.compile_cache).
 configure_cache_dir()
 
 # polars' allocator (jemalloc) keeps freed pages resident by default ("muzzy_decay_ms:-1"),
@@ -17,14 +16,15 @@ configure_cache_dir()
 os.environ.setdefault("_RJEM_MALLOC_CONF", "muzzy_decay_ms:0")
 
 # The public names load on first use (PEP 562), so that the ``lshjob`` command can take over
-# the stop signals (lshjob.console) before polars, numba and DuckDB are imported.
+# the stop signals (lshjob.cli.console) before polars, numba and DuckDB are imported.
 _PUBLIC = {
-    "merge_files": "api", "sign_file": "api",
+    "merge_files": "jobs.merge", "sign_file": "jobs.sign",
     "IncompatibleSignatures": "errors", "InputError": "errors", "LshjobError": "errors",
     "ParameterError": "errors",
-    "EventSpec": "ingest", "load_sets": "ingest",
-    "SignatureParams": "signatures", "estimate_jaccard": "signatures", "merge_signatures": "signatures",
-    "read_signatures": "signatures", "sign_sets": "signatures", "write_signatures": "signatures",
+    "EventSpec": "ingest.spec", "load_sets": "ingest.spec",
+    "SignatureParams": "sign.signatures", "estimate_jaccard": "sign.signatures",
+    "merge_signatures": "sign.signatures", "read_signatures": "sign.signatures",
+    "sign_sets": "sign.signatures", "write_signatures": "sign.signatures",
 }
 
 

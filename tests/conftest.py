@@ -8,7 +8,7 @@ import sys
 import polars as pl
 import pytest
 
-from lshjob.demo import generate_events
+from lshjob.demo.generate import generate_events
 
 
 @pytest.fixture(scope="session")
@@ -41,6 +41,6 @@ def compiled_kernels():
     """Every kernel compiled into the compile cache (``lshjob compile-kernels``, once a test
     session), so that a test measuring a child process's memory does not count the compiler's
     (LLVM holds a few hundred MiB while it compiles, once per machine)."""
-    done = subprocess.run([sys.executable, "-m", "lshjob.cli", "compile-kernels", "--quiet"],
+    done = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "compile-kernels", "--quiet"],
                           capture_output=True, text=True, timeout=900)
     assert done.returncode == 0, done.stderr

@@ -16,9 +16,9 @@ from scipy.stats import binom
 from typer.testing import CliRunner
 
 from lshjob import EventSpec, ParameterError
-from lshjob.audit import _expected_filled, audit_index
-from lshjob.cli import app
-from lshjob.job import RunOptions, run_job
+from lshjob.audit.check import _expected_filled, audit_index
+from lshjob.cli.app import app
+from lshjob.jobs.run import RunOptions, run_job
 
 SPEC = EventSpec(entity="patron", element="title")
 TOP_K = 3
@@ -182,7 +182,7 @@ def test_expected_places_filled_among_tied_neighbours_matches_scipy():
 
 
 def _lshjob(*args):
-    return subprocess.run([sys.executable, "-m", "lshjob.cli", *map(str, args)], capture_output=True, text=True)
+    return subprocess.run([sys.executable, "-m", "lshjob.cli.app", *map(str, args)], capture_output=True, text=True)
 
 
 def test_the_gate_exits_1_below_min_recall_and_0_at_it(built):

@@ -12,7 +12,7 @@ import polars as pl
 import pytest
 
 from lshjob import EventSpec, InputError, load_sets, sign_file
-from lshjob.loading import load_membership
+from lshjob.ingest.loading import load_membership
 
 SPEC = EventSpec(entity="patron", element="title")
 SEGMENTED = EventSpec(entity="patron", element="title", segment="branch")
@@ -313,7 +313,7 @@ def test_the_command_line_prints_one_line_and_exits_2(tmp_path, command):
     events().write_parquet(late / "a.parquet")
     (late / "b.parquet").write_text("patron,title\n1,2\n")
     for source, fragment in ((path, "line 3"), (late, "b.parquet")):
-        args = [sys.executable, "-m", "lshjob.cli", command, str(source), "--entity", "patron", "--element", "title",
+        args = [sys.executable, "-m", "lshjob.cli.app", command, str(source), "--entity", "patron", "--element", "title",
                 "--out", str(tmp_path / "out")]
         if command == "run":
             args += ["--threshold", "0.5"]
@@ -337,7 +337,7 @@ def test_a_bad_value_is_placed_in_its_own_file(tmp_path):
 
 @pytest.mark.parametrize("parts", [None, 2])
 def test_unsigned_entity_keys_above_2_63_through_a_run(tmp_path, parts):
-    from lshjob.job import RunOptions, run_job
+    from lshjob.jobs.run import RunOptions, run_job
 
     entities = [2**63, 2**64 - 1, 5, 2**63 + 7]
     rows = [(e, t) for e in entities for t in range(10)] + [(2**63 + 7, 99)]
@@ -376,7 +376,7 @@ def test_unicode_option_on_the_command_line(tmp_path):
     unicode_events(["NFC", "NFD"]).write_parquet(path)
     counts = []
     for mode in ("nfc", "asis"):
-        done = subprocess.run([sys.executable, "-m", "lshjob.cli", "sign", str(path), "--entity", "patron",
+        done = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "sign", str(path), "--entity", "patron",
                                "--element", "title", "--out", str(tmp_path / f"{mode}.parquet"), "--unicode", mode],
                               capture_output=True, text=True, timeout=300)
         assert done.returncode == 0, done.stderr
@@ -388,7 +388,7 @@ def test_unicode_option_on_the_command_line(tmp_path):
         config = tmp_path / f"{mode}.toml"
         config.write_text(f'events = "names.parquet"\nentity = "patron"\nelement = "title"\n'
                           f'threshold = 0.5\nout = "idx-{mode}"\nunicode = "{mode}"\n')
-        done = subprocess.run([sys.executable, "-m", "lshjob.cli", "run", "--config", str(config), "--json"],
+        done = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "run", "--config", str(config), "--json"],
                               capture_output=True, text=True, timeout=300)
         assert done.returncode == 0, done.stderr
         assert json.loads(done.stdout)["counts"]["entities"] == entities
@@ -411,7 +411,7 @@ def test_well_formed_csv_variants_are_not_ragged(tmp_path, text):
 def test_a_corrupt_page_is_named_when_signing_and_running_in_parts(tmp_path, text_entity):
     # Oracle: the file written with a corrupt page is the one named, whatever pass meets it
     # first (the count of events per entity that cuts key ranges, for sign and run alike).
-    from lshjob.job import RunOptions, run_job
+    from lshjob.jobs.run import RunOptions, run_job
 
     rng = np.random.default_rng(2)
     patrons = [f"p{i % 1000}" for i in range(50000)] if text_entity else [i % 1000 for i in range(50000)]

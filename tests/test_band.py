@@ -1,9 +1,9 @@
-"""Band stage: bucket keys follow their documented definition (lshjob/band.py)."""
+"""Band stage: bucket keys follow their documented definition (lshjob/index/band.py)."""
 
 import numpy as np
 import polars as pl
 
-from lshjob.band import BAND_MULTIPLIER, bucket_keys, bucket_rows
+from lshjob.index.band import BAND_MULTIPLIER, bucket_keys, bucket_rows
 from test_hashing import fmix64_reference as fmix64  # MurmurHash3 fmix64 in Python integers
 
 MASK = (1 << 64) - 1
@@ -39,7 +39,7 @@ def test_shared_bucket_rows_are_exactly_the_buckets_of_two_or_more(tmp_path):
     # Oracle: polars group-by counts per (band, bucket) over every bucket row.
     import polars as pl
 
-    from lshjob.band import write_shared_bucket_rows
+    from lshjob.index.band import write_shared_bucket_rows
 
     rng = np.random.default_rng(6)
     sig = rng.integers(0, 3, size=(500, 8), dtype=np.uint64)  # few values: many shared buckets
@@ -60,8 +60,8 @@ def test_shared_positions_are_exactly_the_repeated_keys():
     # Oracle: polars is_duplicated, and a sort by (key, position). A bitmap of 2**8 slots over
     # 2,000 keys marks far more rows than repeat (every false mark must be dropped); 2**26
     # slots marks almost none but the repeats.
-    from lshjob.band import _shared
-    from lshjob.hashing import fmix64_np
+    from lshjob.index.band import _shared
+    from lshjob.core.hashing import fmix64_np
 
     rng = np.random.default_rng(8)
     keys = fmix64_np(rng.integers(0, 1500, size=2000).astype(np.uint64))  # ~500 repeats
@@ -80,8 +80,8 @@ def test_shared_positions_are_exactly_the_repeated_keys():
 
 def test_signatures_by_position_are_the_transposed_comparable_signatures():
     # Oracle: the row layout (signed and densified separately), transposed.
-    from lshjob.membership import Membership
-    from lshjob.signatures import SignatureParams, comparable, comparable_by_position, sign_membership
+    from lshjob.core.sets import Membership
+    from lshjob.sign.signatures import SignatureParams, comparable, comparable_by_position, sign_membership
 
     import polars as pl
 

@@ -14,7 +14,7 @@ import polars as pl
 import pytest
 
 from lshjob import ParameterError
-from lshjob.join import duckdb_beyond, duckdb_need, require_duckdb_memory
+from lshjob.index.join import duckdb_beyond, duckdb_need, require_duckdb_memory
 
 MIB = 2**20
 
@@ -54,7 +54,7 @@ def test_the_whole_run_keeps_to_its_budget(tmp_path, compiled_kernels):
     near_duplicate_groups(100, 12).write_parquet(small)
     options = ["--entity", "patron", "--element", "title", "--threshold", "0.5", "--perms", "128", "--bands", "32",
                "--rows", "4", "--top-k", "10", "--memory", "640MiB", "--json", "--quiet"]
-    run = [sys.executable, "-m", "lshjob.cli", "run"]
+    run = [sys.executable, "-m", "lshjob.cli.app", "run"]
     env = {**os.environ, "LSHJOB_PEAK_PER_STAGE": "0"}
     # The kernels are compiled (and cached) by a first run on a few sets of the same types:
     # compiling takes memory of its own (LLVM), once per machine, not what this test measures.
@@ -73,7 +73,7 @@ def test_the_whole_run_keeps_to_its_budget(tmp_path, compiled_kernels):
 
 
 def test_a_join_that_cannot_fit_is_refused_with_its_estimate():
-    # Algebra over the measured model (lshjob/join.py): held + need + beyond against the budget.
+    # Algebra over the measured model (lshjob/index/join.py): held + need + beyond against the budget.
     rows, held, memory = 20_000_000, 300 * MIB, 512 * MIB
     need, beyond = duckdb_need(rows), duckdb_beyond(rows, 2)
     assert need == 48 * MIB + 12 * rows and beyond == 2 * 28 * MIB + 5 * rows
@@ -91,9 +91,9 @@ def test_sets_saved_for_the_join_give_the_same_index(tmp_path, monkeypatch):
     # The first limit computed is made too small, so
     # the one-part run saves its sets to the work folder before the join and verification
     # loads them again.
-    import lshjob.job as job
+    import lshjob.jobs.run as job
     from lshjob import EventSpec
-    from lshjob.job import RunOptions, run_job
+    from lshjob.jobs.run import RunOptions, run_job
 
     events = near_duplicate_groups(30, 6, base=12, extra=2)
     src = tmp_path / "loans.parquet"

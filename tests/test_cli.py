@@ -6,7 +6,7 @@ import polars as pl
 import pytest
 from typer.testing import CliRunner
 
-from lshjob.cli import app
+from lshjob.cli.app import app
 
 runner = CliRunner()
 COMMANDS = [c.name or c.callback.__name__ for c in app.registered_commands]
@@ -79,10 +79,10 @@ def test_the_command_skips_numbas_blas_probe_and_leaves_linear_algebra_working()
 
     script = """
 import sys
-from lshjob.cli import _skip_blas_probe
+from lshjob.cli.app import _skip_blas_probe
 _skip_blas_probe()
 import numba, numpy as np
-from lshjob import grouping
+from lshjob.ingest import grouping
 table = np.array([0, 1, 2], dtype=np.int64)
 assert list(grouping.lookup(table, 10, np.array([12, 10], dtype=np.int64))) == [2, 0]
 assert "scipy.linalg" not in sys.modules, "the probe imported scipy.linalg"

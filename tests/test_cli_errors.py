@@ -14,10 +14,10 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from lshjob.api import merge_files, sign_file
+from lshjob.jobs.sign import merge_files, sign_file
 from lshjob.errors import ParameterError
-from lshjob.ingest import EventSpec
-from lshjob.resources import parse_size, physical_memory
+from lshjob.ingest.spec import EventSpec
+from lshjob.runtime.budget import parse_size, physical_memory
 
 SPEC = ["--entity", "patron", "--element", "title"]
 
@@ -25,7 +25,7 @@ SPEC = ["--entity", "patron", "--element", "title"]
 def lshjob(*args, cwd, patch: str = "", state=None):
     """Run ``lshjob args`` in a child process through the console script's entry point;
     ``patch`` is Python run in the child first (to plant a fault there only)."""
-    script = f"import sys\nimport lshjob.cli\n{patch}\nsys.argv = ['lshjob', *sys.argv[1:]]\nlshjob.cli.entry_point()\n"
+    script = f"import sys\nimport lshjob.cli.app\n{patch}\nsys.argv = ['lshjob', *sys.argv[1:]]\nlshjob.cli.app.entry_point()\n"
     env = dict(os.environ, XDG_STATE_HOME=str(state or cwd / "state"))
     return subprocess.run([sys.executable, "-c", script, *map(str, args)], cwd=cwd, env=env,
                           capture_output=True, text=True, timeout=300)
@@ -50,7 +50,7 @@ def test_dash_h_is_help_and_help_lists_the_exit_codes(tmp_path):
 def test_every_command_help_lists_the_exit_codes():
     from typer.testing import CliRunner
 
-    from lshjob.cli import app
+    from lshjob.cli.app import app
 
     for command in app.registered_commands:
         result = CliRunner().invoke(app, [command.name or command.callback.__name__, "-h"])
@@ -66,10 +66,10 @@ def test_a_usage_error_keeps_exit_2_and_is_json_under_json(tmp_path):
 
 def test_an_internal_error_is_one_line_exit_70_with_the_traceback_logged(tmp_path, small_events):
     # A bug planted in the child only: the API function the command calls raises.
-    patch = ("import lshjob.api\n"
+    patch = ("import lshjob.jobs.sign\n"
              "def broken(*args, **kwargs):\n"
              "    raise RuntimeError('planted fault')\n"
-             "lshjob.api.sign_file = broken\n")
+             "lshjob.jobs.sign.sign_file = broken\n")
     done = lshjob("sign", small_events, *SPEC, "--out", tmp_path / "s.parquet", cwd=tmp_path, patch=patch)
     assert done.returncode == 70
     line = one_error_line(done)
@@ -78,7 +78,7 @@ def test_an_internal_error_is_one_line_exit_70_with_the_traceback_logged(tmp_pat
     assert len(logs) == 1 and str(logs[0]) in line
     text = logs[0].read_text()
     assert "Traceback (most recent call last)" in text and "def broken" not in text
-    assert 'lshjob/cli.py", line' in text and "in broken" in text and text.endswith("RuntimeError: planted fault\n")
+    assert 'lshjob/cli/app.py", line' in text and "in broken" in text and text.endswith("RuntimeError: planted fault\n")
     assert not (tmp_path / "s.parquet").exists()
     again = lshjob("sign", small_events, *SPEC, "--out", tmp_path / "s.parquet", "--json", cwd=tmp_path, patch=patch)
     record = json.loads(again.stdout)
@@ -89,7 +89,7 @@ def test_an_internal_error_is_one_line_exit_70_with_the_traceback_logged(tmp_pat
 def test_tracebacks_go_to_the_temporary_folder_when_the_state_folder_cannot_be_made(tmp_path, monkeypatch):
     import tempfile
 
-    from lshjob.failures import log_folder
+    from lshjob.cli.failures import log_folder
 
     monkeypatch.setenv("XDG_STATE_HOME", str(tmp_path / "state"))
     assert log_folder() == tmp_path / "state" / "lshjob"
@@ -223,10 +223,10 @@ def test_demo_with_bad_options_leaves_no_folder(tmp_path, patrons):
 
 
 def test_demo_failing_midway_removes_the_folder_it_made(tmp_path):
-    patch = ("import lshjob.cli\n"
+    patch = ("import lshjob.cli.app\n"
              "def broken(*args, **kwargs):\n"
              "    raise RuntimeError('planted fault')\n"
-             "lshjob.cli.run_job = broken\n")
+             "lshjob.cli.app.run_job = broken\n")
     done = lshjob("demo", "--out", "d", "--patrons", "100", cwd=tmp_path, patch=patch)
     assert done.returncode == 70 and "planted fault" in one_error_line(done)
     assert not (tmp_path / "d").exists()
@@ -302,7 +302,7 @@ def test_an_empty_path_in_a_config_is_refused(tmp_path):
                   "out": '"idx"', key: '"  "'}
         config.write_text("".join(f"{k} = {v}\n" for k, v in values.items()))
         before = sorted(p.name for p in tmp_path.iterdir())
-        done = subprocess.run([sys.executable, "-m", "lshjob.cli", "run", "--config", str(config)],
+        done = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "run", "--config", str(config)],
                               capture_output=True, text=True, timeout=120)
         assert done.returncode == 2 and done.stderr.count("\n") == 1, done.stderr
         assert f"key '{key}' is empty" in done.stderr

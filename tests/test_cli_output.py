@@ -20,7 +20,7 @@ SPEC = ["--entity", "patron", "--element", "title"]
 def closed_stdout(*args, cwd: Path, patch: str = "") -> tuple[int, str]:
     """Run ``lshjob args`` with its stdout a pipe whose reader is gone before the child writes
     (as ``lshjob ... | true``); return the exit code and stderr."""
-    script = f"import sys\n{patch}\nfrom lshjob.console import main\nsys.argv = ['lshjob', *sys.argv[1:]]\nmain()\n"
+    script = f"import sys\n{patch}\nfrom lshjob.cli.console import main\nsys.argv = ['lshjob', *sys.argv[1:]]\nmain()\n"
     env = dict(os.environ, XDG_STATE_HOME=str(cwd / "state"))
     child = subprocess.Popen([sys.executable, "-c", script, *map(str, args)], cwd=cwd, env=env,
                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
@@ -30,7 +30,7 @@ def closed_stdout(*args, cwd: Path, patch: str = "") -> tuple[int, str]:
 
 
 def lshjob(*args, cwd: Path, patch: str = ""):
-    script = f"import sys\n{patch}\nfrom lshjob.console import main\nsys.argv = ['lshjob', *sys.argv[1:]]\nmain()\n"
+    script = f"import sys\n{patch}\nfrom lshjob.cli.console import main\nsys.argv = ['lshjob', *sys.argv[1:]]\nmain()\n"
     env = dict(os.environ, XDG_STATE_HOME=str(cwd / "state"))
     return subprocess.run([sys.executable, "-c", script, *map(str, args)], cwd=cwd, env=env,
                           capture_output=True, text=True, timeout=300)
@@ -92,10 +92,10 @@ def test_lshjob_alone_prints_the_help_on_stdout_and_exits_2(tmp_path):
 
 def test_control_bytes_and_newlines_of_an_error_are_escaped_on_one_line(tmp_path, small_events):
     # a value read from a damaged file: NUL, ESC (a terminal colour code), a bell and two lines
-    patch = ("import lshjob.api\nfrom lshjob.errors import InputError\n"
+    patch = ("import lshjob.jobs.sign\nfrom lshjob.errors import InputError\n"
              "def broken(*a, **k):\n"
              "    raise InputError('x.csv: column title: value \\x00\\x1b[31mred\\x07 is not text\\nsecond line')\n"
-             "lshjob.api.sign_file = broken\n")
+             "lshjob.jobs.sign.sign_file = broken\n")
     done = lshjob("sign", small_events, *SPEC, "--out", tmp_path / "s.parquet", "--json", cwd=tmp_path, patch=patch)
     assert done.returncode == 2
     line = "error: x.csv: column title: value \\x00\\x1b[31mred\\x07 is not text; second line\n"

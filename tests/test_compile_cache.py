@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from lshjob.grouping import _quicksort
+from lshjob.ingest.grouping import _quicksort
 
 NOTICE = "lshjob: compiling kernels for this machine"
 
@@ -30,7 +30,7 @@ sys.argv = ["lshjob"] + sys.argv[1:]
 import numpy as np
 import numba
 import lshjob
-from lshjob.grouping import compact
+from lshjob.ingest.grouping import compact
 compact(np.array([0, 2, 3]), np.array([5, 6, 7]), np.array([2, 1]))
 print(sum(compact.stats.cache_misses.values()), sum(compact.stats.cache_hits.values()), numba.config.CACHE_DIR)
 """
@@ -42,8 +42,8 @@ import lshjob
 from numba.core.registry import CPUDispatcher
 {work}
 misses = hits = 0
-for info in pkgutil.iter_modules(lshjob.__path__):
-    module = importlib.import_module("lshjob." + info.name)
+for info in pkgutil.walk_packages(lshjob.__path__, "lshjob."):
+    module = importlib.import_module(info.name)
     for obj in vars(module).values():
         if isinstance(obj, CPUDispatcher) and obj.py_func.__module__ == module.__name__:
             misses += sum(obj.stats.cache_misses.values())
@@ -109,7 +109,7 @@ def test_compile_kernels_refuses_a_cache_folder_it_cannot_write(tmp_path):
     # one line naming the folder, before any compiling.
     blocker = tmp_path / "file"
     blocker.write_text("not a folder")
-    result = subprocess.run([sys.executable, "-m", "lshjob.cli", "compile-kernels"],
+    result = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "compile-kernels"],
                             env=_env(LSHJOB_CACHE_DIR=blocker / "cache"), capture_output=True, text=True, timeout=120)
     assert result.returncode == 2
     lines = result.stderr.strip().splitlines()
@@ -135,7 +135,7 @@ def test_compile_kernels_fills_the_cache_then_a_run_compiles_nothing(tmp_path):
     into an empty folder; then, in fresh processes, a run, a signing and an audit on data the
     command never saw compile nothing (numba's misses), and the CLI prints no notice."""
     cache = tmp_path / "cache"
-    filled = subprocess.run([sys.executable, "-m", "lshjob.cli", "compile-kernels", "--json"],
+    filled = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "compile-kernels", "--json"],
                             env=_env(LSHJOB_CACHE_DIR=cache), capture_output=True, text=True, timeout=900)
     assert filled.returncode == 0, filled.stderr
     summary = json.loads(filled.stdout)
@@ -144,15 +144,15 @@ def test_compile_kernels_fills_the_cache_then_a_run_compiles_nothing(tmp_path):
     index, code = _cache_files(cache)
     assert len(index) >= summary["kernels_compiled"] and code
 
-    from lshjob.demo import generate_events
+    from lshjob.demo.generate import generate_events
 
     events, _ = generate_events(120, seed=2)  # other data than the command's
     path = tmp_path / "loans.parquet"
     events.with_columns(pl.col("patron").str.slice(1).cast(pl.Int64) * 7).write_parquet(path)
     work = f"""
 from lshjob import EventSpec, SignatureParams, sign_file
-from lshjob.audit import audit_index
-from lshjob.job import RunOptions, run_job
+from lshjob.audit.check import audit_index
+from lshjob.jobs.run import RunOptions, run_job
 spec = EventSpec(entity="patron", element="title")
 run_job(r"{path}", spec, RunOptions(threshold=0.5, top_k=5), r"{tmp_path / 'index'}")
 audit_index(r"{tmp_path / 'index'}", sample=30)
@@ -162,7 +162,7 @@ sign_file(r"{path}", r"{tmp_path / 'sigs.parquet'}", spec, SignatureParams(schem
     misses, hits = map(int, counted.stdout.split())
     assert misses == 0 and hits >= 10
 
-    run = subprocess.run([sys.executable, "-m", "lshjob.cli", "run", str(path), "--entity", "patron", "--element",
+    run = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "run", str(path), "--entity", "patron", "--element",
                           "title", "--threshold", "0.5", "--out", str(tmp_path / "index2")],
                          env=_env(LSHJOB_CACHE_DIR=cache), capture_output=True, text=True, timeout=600)
     assert run.returncode == 0, run.stderr

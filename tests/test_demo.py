@@ -4,7 +4,7 @@ import itertools
 
 import polars as pl
 
-from lshjob.demo import BESTSELLER, generate_events
+from lshjob.demo.generate import BESTSELLER, generate_events
 
 
 def test_same_seed_same_events_other_seed_other_events(demo_events):

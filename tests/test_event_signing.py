@@ -1,12 +1,12 @@
-"""Signing straight from grouped events (lshjob/event_signing.py) against signing sets."""
+"""Signing straight from grouped events (lshjob/sign/events.py) against signing sets."""
 
 import numpy as np
 import polars as pl
 import pytest
 
 from lshjob import EventSpec, SignatureParams
-from lshjob.event_signing import sign_events
-from lshjob.signatures import signature_array, sign_element_lists
+from lshjob.sign.events import sign_events
+from lshjob.sign.signatures import signature_array, sign_element_lists
 
 
 @pytest.mark.parametrize("scheme", ["kperm", "oph"])
@@ -43,9 +43,9 @@ def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, 
     # writes 37 entities at a time here (uneven slices, the last one short); the file must
     # hold every entity once, in key order, with the reference signatures and sizes. Weighted
     # (a count column, --min-count 2), the sets keep the elements whose counts sum to 2 or more.
-    from lshjob import event_signing
-    from lshjob.api import sign_file
-    from lshjob.signatures import read_signatures
+    from lshjob.sign import events as event_signing
+    from lshjob.jobs.sign import sign_file
+    from lshjob.sign.signatures import read_signatures
 
     rng = np.random.default_rng(4)
     sizes = rng.integers(1, 60, size=300)

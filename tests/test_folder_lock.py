@@ -1,4 +1,4 @@
-"""One writer per output folder (lshjob/folder_lock.py), with real processes.
+"""One writer per output folder (lshjob/runtime/folder_lock.py), with real processes.
 
 Oracles: the kernel's flock(2) semantics (a lock taken through one open file blocks every
 other open of the file, in this process or another, and is dropped when its process dies,
@@ -24,15 +24,15 @@ from helpers import index_digest, planted_events_file
 from typer.testing import CliRunner
 
 from lshjob import EventSpec, ParameterError
-from lshjob.cli import app
+from lshjob.cli.app import app
 from lshjob.errors import Busy
-from lshjob.folder_lock import LOCK_NAME, output_lock
-from lshjob.job import RunOptions, run_job
+from lshjob.runtime.folder_lock import LOCK_NAME, output_lock
+from lshjob.jobs.run import RunOptions, run_job
 
 SPEC = EventSpec(entity="patron", element="title")
 HOLD = """
 import sys, time
-from lshjob.folder_lock import output_lock
+from lshjob.runtime.folder_lock import output_lock
 lock = output_lock(sys.argv[1]).acquire()
 print("held", flush=True)
 time.sleep(120)
@@ -45,7 +45,7 @@ def events(tmp_path_factory) -> Path:
 
 
 def lshjob_run(events: Path, out: Path, *extra: str) -> list[str]:
-    return [sys.executable, "-m", "lshjob.cli", "run", str(events), "--entity", "patron", "--element", "title",
+    return [sys.executable, "-m", "lshjob.cli.app", "run", str(events), "--entity", "patron", "--element", "title",
             "--threshold", "0.5", "--out", str(out), "--quiet", *extra]
 
 
@@ -196,7 +196,7 @@ def test_wait_and_scratch_from_the_command_line_and_the_config(tmp_path, events)
 COUNT = """
 import sys, time
 from pathlib import Path
-from lshjob.folder_lock import output_lock
+from lshjob.runtime.folder_lock import output_lock
 folder = Path(sys.argv[1])
 counter = folder.parent / "counter"
 for _ in range(int(sys.argv[2])):

@@ -5,7 +5,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from lshjob.grouping import sort_range
+from lshjob.ingest.grouping import sort_range
 
 
 @settings(max_examples=200, deadline=None)
@@ -43,7 +43,7 @@ def test_key_lookups_find_what_searchsorted_finds(shape):
     # Oracle: numpy's searchsorted where the value is a key, -1 where it is not, for values
     # below, among and past the keys; buckets from one key each to many keys each, the
     # binary search over all keys, and the direct table.
-    from lshjob.grouping import bucket_starts, lookup, lookup_bucketed, search_sorted_parallel
+    from lshjob.ingest.grouping import bucket_starts, lookup, lookup_bucketed, search_sorted_parallel
 
     rng = np.random.default_rng(3)
     keys = {"uniform": rng.integers(-10**12, 10**12, 5000),

@@ -6,7 +6,7 @@ import xxhash
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from lshjob.hashing import fmix64_expr, fmix64_np, splitmix64_sequence, xxh64_integers, xxh64_strings
+from lshjob.core.hashing import fmix64_expr, fmix64_np, splitmix64_sequence, xxh64_integers, xxh64_strings
 
 MASK = (1 << 64) - 1
 

@@ -168,8 +168,8 @@ def test_bad_options(kwargs, message):
 def test_streaming_loader_matches_the_grouped_rows(small_events, spec):
     # Oracle: polars' group-by path (load_sets) turned into sets; the streaming loader must
     # give the same entities, the same set sizes and the same element hashes, set by set.
-    from lshjob.loading import load_membership
-    from lshjob.membership import Membership
+    from lshjob.ingest.loading import load_membership
+    from lshjob.core.sets import Membership
 
     expected = Membership.from_sets(load_sets(small_events, spec)[0])
     got, report = load_membership(small_events, spec)
@@ -188,7 +188,7 @@ def test_streaming_loader_integer_keys_and_batches(tmp_path, monkeypatch):
     # small range with gaps and negative keys (positions ranked after reading), and dense
     # but read with a separate key pass (direct table); repeated events, and batches smaller
     # than the input.
-    import lshjob.loading as loading
+    import lshjob.ingest.loading as loading
 
     rng = np.random.default_rng(5)
     cases = [(rng.integers(-10**15, 10**15, 300), 1 << 16), (np.arange(300), 1 << 16),
@@ -214,7 +214,7 @@ def test_events_without_a_counted_slot_are_reported_not_written():
     # Algebra: key values outside the counted range, or counted zero times, have no slot;
     # the two-pass reader must count them as misplaced (the input changed between passes)
     # and write nothing outside the slots.
-    from lshjob.grouping import place_codes as _place
+    from lshjob.ingest.grouping import place_codes as _place
 
     slots = np.array([0, -1, 2], dtype=np.int64)  # key 10 owns slots 0-1, key 12 slot 2
     out = np.full(3, -7, dtype=np.int64)
@@ -227,10 +227,10 @@ def test_events_without_a_counted_slot_are_reported_not_written():
 
 
 def test_integer_keys_in_a_small_range_need_8_bytes_an_event(tmp_path):
-    # Arithmetic of the two-pass reader (lshjob/loading.py docstring): 8 bytes per event plus
+    # Arithmetic of the two-pass reader (lshjob/ingest/loading.py docstring): 8 bytes per event plus
     # 8 per value of the key range; a budget one byte short is refused before reading.
     from lshjob import ParameterError
-    from lshjob.loading import load_membership
+    from lshjob.ingest.loading import load_membership
 
     path = tmp_path / "loans.parquet"
     pl.DataFrame({"patron": np.arange(1000) % 300 + 5000, "title": np.arange(1000)}).write_parquet(path)
@@ -247,7 +247,7 @@ def test_the_two_pass_reader_gives_the_same_sets_on_one_thread_and_on_several(tm
     # that is not a power of two).
     import numba
 
-    from lshjob.loading import load_membership
+    from lshjob.ingest.loading import load_membership
 
     rng = np.random.default_rng(12)
     path = tmp_path / "loans.parquet"
@@ -270,7 +270,7 @@ def test_batches_are_cut_where_the_row_groups_end_and_lose_no_row(tmp_path, monk
     # must hold each column in one chunk (so to_numpy is a view, not a copy), and the pieces
     # together must be the file's rows (each once), and the sets loaded from them the sets
     # of a Python dict.
-    import lshjob.loading as loading
+    import lshjob.ingest.loading as loading
 
     rng = np.random.default_rng(8)
     events = pl.DataFrame({"patron": rng.integers(0, 400, 5000), "title": rng.integers(0, 90, 5000)})
@@ -298,7 +298,7 @@ def test_a_key_the_first_pass_did_not_see_is_refused(tmp_path, monkeypatch, patr
     # As when a file changes between the loader's passes: the read pass meets an entity key
     # that the first pass (the distinct keys) did not list. It must be refused, not grouped
     # under a neighbouring key or counted past the end of the keys.
-    import lshjob.loading as loading
+    import lshjob.ingest.loading as loading
     from lshjob.errors import InputError
 
     key, unseen = {"dense": (np.arange(300) * 5, 7), "sparse": (np.arange(300) * 10**9, 5),

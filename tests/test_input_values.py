@@ -14,15 +14,15 @@ import polars as pl
 import pytest
 
 from lshjob import EventSpec, InputError, ParameterError, load_sets, sign_file
-from lshjob.config import load_run_config
-from lshjob.loading import load_membership
+from lshjob.jobs.config import load_run_config
+from lshjob.ingest.loading import load_membership
 
 SPEC = ["--entity", "patron", "--element", "title"]
 
 
 def lshjob(*args, cwd):
     """``lshjob args`` in a child process, through the console script's entry point."""
-    script = "import sys\nimport lshjob.cli\nsys.argv = ['lshjob', *sys.argv[1:]]\nlshjob.cli.entry_point()\n"
+    script = "import sys\nimport lshjob.cli.app\nsys.argv = ['lshjob', *sys.argv[1:]]\nlshjob.cli.app.entry_point()\n"
     env = dict(os.environ, XDG_STATE_HOME=str(cwd / "state"))
     return subprocess.run([sys.executable, "-c", script, *map(str, args)], cwd=cwd, env=env,
                           capture_output=True, text=True, timeout=300)
@@ -74,7 +74,7 @@ def test_a_folder_skips_hidden_and_underscore_files_but_a_named_one_is_read(tmp_
 def test_all_null_elements_dropped_is_named_as_the_cause(tmp_path):
     # Oracle: the file holds only null elements, so --on-null drop leaves nothing whatever
     # --min-count is; the message must say so, for sign (both paths) and run alike.
-    from lshjob.job import RunOptions, run_job
+    from lshjob.jobs.run import RunOptions, run_job
 
     path = tmp_path / "loans.parquet"
     pl.DataFrame({"patron": ["ann", "bob"], "title": pl.Series([None, None], dtype=pl.String),
@@ -94,7 +94,7 @@ def test_all_null_elements_dropped_is_named_as_the_cause(tmp_path):
 
 def test_one_entity_warns_once_that_there_is_no_pair(tmp_path):
     # Oracle: with one entity there is no other entity, so no pair and no --top-k to cut.
-    from lshjob.job import RunOptions, run_job
+    from lshjob.jobs.run import RunOptions, run_job
 
     path = tmp_path / "loans.parquet"
     pl.DataFrame({"patron": ["ann"] * 3, "title": ["t1", "t2", "t3"]}).write_parquet(path)

@@ -21,24 +21,24 @@ import pytest
 from helpers import index_digest, planted_events_file
 
 from lshjob import EventSpec
-from lshjob.folder_lock import LOCK_NAME
-from lshjob.job import RunOptions, run_job
+from lshjob.runtime.folder_lock import LOCK_NAME
+from lshjob.jobs.run import RunOptions, run_job
 
 SPEC = EventSpec(entity="patron", element="title")
 INDEX = ("neighbours.parquet", "manifest.json")
 
 KILL_AT = r"""
 import os, signal, sys
-import lshjob.job, lshjob.parts
+import lshjob.jobs.run, lshjob.jobs.parts
 
 def die(*args, **kwargs):
     os.kill(os.getpid(), signal.SIGKILL)
 
 stage = sys.argv[1]
 if stage == "join":
-    lshjob.job.candidate_pairs = die
+    lshjob.jobs.run.candidate_pairs = die
 elif stage == "verify":
-    lshjob.parts.verify_blocks = die
+    lshjob.jobs.parts.verify_blocks = die
 elif stage == "publish":  # as the new neighbours file is renamed into place
     rename = os.replace
     def replace(src, dst, *args, **kwargs):
@@ -46,7 +46,7 @@ elif stage == "publish":  # as the new neighbours file is renamed into place
             die()
         return rename(src, dst, *args, **kwargs)
     os.replace = replace
-from lshjob.cli import entry_point
+from lshjob.cli.app import entry_point
 sys.argv = ["lshjob", "run", *sys.argv[2:]]
 entry_point()
 """
@@ -55,7 +55,7 @@ RACE = r"""
 import sys
 from pathlib import Path
 import polars as pl
-from lshjob.publish import commit_index, stage_neighbours
+from lshjob.index.publish import commit_index, stage_neighbours
 for i in range(40):
     out = Path(sys.argv[1])
     stage_neighbours(out, [pl.DataFrame({"writer": [sys.argv[2]], "round": [i]})], {"round": i})

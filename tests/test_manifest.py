@@ -15,8 +15,8 @@ import polars as pl
 from helpers import planted_pairs
 
 from lshjob import EventSpec
-from lshjob.audit import audit_index
-from lshjob.job import RunOptions, run_job
+from lshjob.audit.check import audit_index
+from lshjob.jobs.run import RunOptions, run_job
 
 SPEC = EventSpec(entity="patron", element="title")
 
@@ -46,7 +46,7 @@ def test_the_manifest_written_is_the_manifest_returned_with_provenance(tmp_path)
     # Each file: absolute path, size, modification time and sha256 (hashlib and os.stat as reference).
     files = m["inputs"]["files"]
     assert [f["path"] for f in files] == [str(tmp_path / "loans" / name) for name in ("a.parquet", "b.parquet")]
-    overall = hashlib.sha256()  # lshjob.digest: the sha256 of the files' sha256 (hex), one a line
+    overall = hashlib.sha256()  # lshjob.core.digest: the sha256 of the files' sha256 (hex), one a line
     for record in files:
         data = open(record["path"], "rb").read()
         assert record["sha256"] == hashlib.sha256(data).hexdigest() and record["bytes"] == len(data)

@@ -10,9 +10,9 @@ import polars as pl
 import pytest
 
 from lshjob import EventSpec
-from lshjob.api import merge_files, sign_file
+from lshjob.jobs.sign import merge_files, sign_file
 from lshjob.errors import InputError, ParameterError
-from lshjob.signatures import (SignatureParams, merge_signatures, read_signatures, signature_array,
+from lshjob.sign.signatures import (SignatureParams, merge_signatures, read_signatures, signature_array,
                                signature_column, write_signatures)
 
 PARAMS = SignatureParams(perms=16, seed=3)
@@ -60,7 +60,7 @@ def test_since_after_until_is_a_bad_option_before_any_file_is_read(files):
 
 def test_the_command_exits_2_with_one_line_for_since_after_until(files):
     # Oracle: the exit codes of the command line (2: bad option) and its one-line errors.
-    result = subprocess.run([sys.executable, "-m", "lshjob.cli", "merge", str(files / "monthly.parquet"),
+    result = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "merge", str(files / "monthly.parquet"),
                              "--since", "2026-05-01", "--until", "2026-02-01", "--out", str(files / "out.parquet")],
                             capture_output=True, text=True)
     assert result.returncode == 2
@@ -137,7 +137,7 @@ def test_keys_a_file_lacks_or_of_another_type_are_refused_in_one_line(files, tmp
 
 def test_a_signature_file_without_rows_is_refused_as_a_planning_sample(files):
     # Oracle: the planner's own minimum (two rows, for one pair), and the file named.
-    from lshjob.api import plan_banding
+    from lshjob.jobs.sign import plan_banding
 
     with pytest.raises(InputError, match=r"empty.parquet: the sample needs at least 2 signature rows; got 0$"):
         plan_banding(0.5, sample=files / "empty.parquet")

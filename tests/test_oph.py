@@ -8,9 +8,9 @@ from hypothesis import strategies as st
 from test_signatures import bias_z, long_tailed_pairs
 
 from lshjob import IncompatibleSignatures, SignatureParams
-from lshjob.job import RunOptions, run_job
-from lshjob.oph import EMPTY, densify
-from lshjob.signatures import (
+from lshjob.jobs.run import RunOptions, run_job
+from lshjob.sign.oph import EMPTY, densify
+from lshjob.sign.signatures import (
     comparable,
     estimate_jaccard,
     merge_signatures,
@@ -109,7 +109,7 @@ def test_run_with_oph_finds_planted_pairs(tmp_path):
     from helpers import planted_pairs
     from test_run import SPEC, brute_force_pairs, published_pairs
 
-    from lshjob.planner import candidate_probability
+    from lshjob.plan.banding import candidate_probability
 
     events = planted_pairs(1000, 0.3, seed=6)
     src = tmp_path / "loans.parquet"
@@ -155,7 +155,7 @@ def test_densification_follows_its_definition(k):
     # (so some bins need more probes than are ranked) to full ones, and an empty row; k past
     # 512 takes the tabled probes instead of the ranks. Signing and densifying a row at a
     # time (all positions, or the first few) must equal densifying the stored signatures.
-    from lshjob.oph import sign_densified, sign_oph
+    from lshjob.sign.oph import sign_densified, sign_oph
 
     rng = np.random.default_rng(k)
     salt = 0x5DEECE66D1234567

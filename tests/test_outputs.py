@@ -1,4 +1,4 @@
-"""Output paths (lshjob/outputs.py): one check for sign, merge, run and demo, from the Python
+"""Output paths (lshjob/runtime/outputs.py): one check for sign, merge, run and demo, from the Python
 API and from the command line. Oracle: the file system itself (what is at each path before
 and after, byte for byte) and, for a symbolic link written through, the file signing to a
 plain path gives. No test writes to a device: a named pipe and a socket made in tmp_path
@@ -13,13 +13,13 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from lshjob.api import merge_files, sign_file
-from lshjob.audit import audit_index
-from lshjob.demo import generate_events, write_demo
+from lshjob.jobs.sign import merge_files, sign_file
+from lshjob.audit.check import audit_index
+from lshjob.demo.generate import generate_events, write_demo
 from lshjob.errors import InputError, ParameterError
-from lshjob.ingest import EventSpec
-from lshjob.job import RunOptions, run_job
-from lshjob.outputs import DEMO_MARKER
+from lshjob.ingest.spec import EventSpec
+from lshjob.jobs.run import RunOptions, run_job
+from lshjob.runtime.outputs import DEMO_MARKER
 
 from test_cli_errors import SPEC, lshjob, one_error_line
 

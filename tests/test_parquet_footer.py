@@ -1,4 +1,4 @@
-"""Statistics from Parquet footers (lshjob/parquet_footer.py) against reading the data."""
+"""Statistics from Parquet footers (lshjob/ingest/parquet_footer.py) against reading the data."""
 
 import duckdb
 import numpy as np
@@ -6,8 +6,8 @@ import polars as pl
 import pytest
 
 from lshjob import EventSpec
-from lshjob import ingest
-from lshjob.parquet_footer import footer_stats
+from lshjob.ingest import spec as ingest
+from lshjob.ingest.parquet_footer import footer_stats
 
 
 def _files(tmp_path, n_files=3, entity_type=pl.Int64, with_nulls=False):
@@ -108,7 +108,7 @@ def test_a_footer_that_hides_nulls_is_caught_while_reading(tmp_path, monkeypatch
     # A writer whose statistics say "no null" while the data holds some: the loader checks
     # every batch it reads and stops with a message instead of signing garbage.
     from lshjob.errors import InputError
-    from lshjob.loading import load_membership
+    from lshjob.ingest.loading import load_membership
 
     paths, _ = _files(tmp_path, n_files=1, with_nulls=True)
     real = ingest._stats_from_footers

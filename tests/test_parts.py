@@ -1,4 +1,4 @@
-"""Runs a key range at a time (lshjob/parts.py): the same index as one part, exact sets,
+"""Runs a key range at a time (lshjob/jobs/parts.py): the same index as one part, exact sets,
 every event in exactly one part."""
 
 import json
@@ -10,11 +10,11 @@ from helpers import planted_pairs, same_index
 from test_run import brute_force_pairs, published_pairs
 
 from lshjob import EventSpec, ParameterError
-from lshjob import parts as parts_module
-from lshjob.job import RunOptions, run_job
-from lshjob.loading import membership_of, open_events
-from lshjob.membership import Membership
-from lshjob.verify import jaccard_between
+from lshjob.jobs import parts as parts_module
+from lshjob.jobs.run import RunOptions, run_job
+from lshjob.ingest.loading import membership_of, open_events
+from lshjob.core.sets import Membership
+from lshjob.index.verify import jaccard_between
 
 SPEC = EventSpec(entity="patron", element="title")
 
@@ -136,7 +136,7 @@ def test_parts_are_sized_from_the_budget(tmp_path, demo_events):
     source = open_events(src, SPEC)
     counts = parts_module.events_per_entity(source)
     per_event = parts_module.bytes_per_event(source)
-    assert per_event == 20  # text keys: the one-pass loader's 20 bytes an event (lshjob/loading.py)
+    assert per_event == 20  # text keys: the one-pass loader's 20 bytes an event (lshjob/ingest/loading.py)
     budget = int(source.events * per_event / 3.5)
     ranges = parts_module.key_ranges(counts, source, budget)
     assert len(ranges) == 4
@@ -226,8 +226,8 @@ def test_signing_in_parts_gives_the_same_signatures(tmp_path, integer_patrons, s
     # Reference: the same signatures made in one part (themselves checked against datasketch
     # and the documented definition in test_signatures.py). The file is streamed from the
     # parts as they are signed; rows, order, values and metadata must agree.
-    from lshjob.api import sign_file
-    from lshjob.signatures import SignatureParams, read_signatures
+    from lshjob.jobs.sign import sign_file
+    from lshjob.sign.signatures import SignatureParams, read_signatures
 
     events = loans_with_identical_groups(3, integer_patrons)
     events = events.with_columns(loans=pl.int_range(pl.len()) % 3 + 1)
@@ -249,9 +249,9 @@ def test_signing_in_parts_gives_the_same_signatures(tmp_path, integer_patrons, s
 def test_an_error_while_making_a_range_reaches_the_caller_and_nothing_is_written(tmp_path):
     # The writer pulls the ranges' tables through polars; an error in the second range must
     # come out as the error raised (not polars' wrapping of it), and leave no file behind.
-    from lshjob.streaming import write_streamed
+    from lshjob.sign.streaming import write_streamed
     from lshjob.errors import InputError
-    from lshjob.signatures import signature_column
+    from lshjob.sign.signatures import signature_column
 
     table = pl.DataFrame({"entity": [1, 2]}).with_columns(
         signature_column(np.ones((2, 4), dtype=np.uint64)), pl.Series("set_size", [3, 4], dtype=pl.UInt32))
@@ -277,7 +277,7 @@ def test_signing_turns_to_parts_when_the_sets_would_not_fit(tmp_path, monkeypatc
     # what the process itself takes are refused.
     from typer.testing import CliRunner
 
-    from lshjob.cli import app
+    from lshjob.cli.app import app
 
     src = tmp_path / "loans.parquet"
     planted_pairs(800, 0.3, seed=1, background=800).with_columns(loans=pl.lit(1)).write_parquet(src)
@@ -302,7 +302,7 @@ def test_signing_turns_to_parts_when_the_sets_would_not_fit(tmp_path, monkeypatc
 def test_the_run_summary_says_it_went_in_parts(tmp_path, demo_events):
     from typer.testing import CliRunner
 
-    from lshjob.cli import app
+    from lshjob.cli.app import app
 
     src = tmp_path / "loans.parquet"
     demo_events[0].write_parquet(src)
@@ -319,7 +319,7 @@ def test_an_audit_in_parts_reports_what_the_audit_in_one_part_does(tmp_path, int
     # Reference: the audit holding every set (itself checked against brute force and a planted
     # wrong pair in test_run.py). In parts, each pair is found in the part of its other
     # entity; identical sets spread over parts must still count as one set.
-    from lshjob.audit import audit_index
+    from lshjob.audit.check import audit_index
 
     events = loans_with_identical_groups(6, integer_patrons)
     src = tmp_path / "loans.parquet"
@@ -338,8 +338,8 @@ def test_merging_in_parts_gives_the_same_rows(tmp_path, demo_events, keep, monke
     # Reference: the merge holding every row (itself checked against signing the union in
     # test_signatures.py). Two files (by month and branch), a window, folded by entity
     # ranges; same rows, same order, same metadata.
-    from lshjob.api import merge_files, sign_file
-    from lshjob.signatures import SignatureParams, read_signatures
+    from lshjob.jobs.sign import merge_files, sign_file
+    from lshjob.sign.signatures import SignatureParams, read_signatures
 
     src = tmp_path / "loans.parquet"
     demo_events[0].write_parquet(src)
@@ -376,11 +376,12 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
     # signing in one part; weighted (--count, --min-count 2), some sets are emptied.
     from typer.testing import CliRunner
 
-    from lshjob import keyed, load_sets
-    from lshjob.api import sign_file
-    from lshjob.cli import app
-    from lshjob.ingest import validated_events
-    from lshjob.signatures import SignatureParams, read_signatures, sign_element_lists, signature_array
+    from lshjob import load_sets
+    from lshjob.ingest import keyed
+    from lshjob.jobs.sign import sign_file
+    from lshjob.cli.app import app
+    from lshjob.ingest.spec import validated_events
+    from lshjob.sign.signatures import SignatureParams, read_signatures, sign_element_lists, signature_array
 
     events = demo_events[0]
     if integer_patrons:
@@ -423,7 +424,7 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
     small = CliRunner().invoke(app, args)
     assert small.exit_code == 0, small.output
     if integer_patrons:  # the loader's bytes an event (module docstring) and 40 a set
-        from lshjob.loading import BYTES_PER_EVENT
+        from lshjob.ingest.loading import BYTES_PER_EVENT
 
         sets = events.select("patron", "branch", pl.col("borrowed_at").dt.truncate("1mo")).n_unique()
         cost = events.height * BYTES_PER_EVENT[weighted] + sets * parts_module.SIGNATURE_BYTES_PER_ENTITY
@@ -435,7 +436,7 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
 
 def test_signing_segments_in_parts_with_nothing_left_is_an_error_and_writes_nothing(tmp_path, demo_events):
     # Every range emptied by --min-count: the same error as in one part, and no file.
-    from lshjob.api import sign_file
+    from lshjob.jobs.sign import sign_file
     from lshjob.errors import InputError
 
     src = tmp_path / "loans.parquet"

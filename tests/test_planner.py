@@ -11,10 +11,10 @@ from scipy.integrate import quad
 from typer.testing import CliRunner
 
 from lshjob import ParameterError
-from lshjob.api import plan_banding
-from lshjob.cli import app
-from lshjob.ingest import EventSpec
-from lshjob.planner import (
+from lshjob.jobs.sign import plan_banding
+from lshjob.cli.app import app
+from lshjob.ingest.spec import EventSpec
+from lshjob.plan.banding import (
     PairHistogram,
     approximate_threshold,
     candidate_probability,
@@ -24,7 +24,7 @@ from lshjob.planner import (
     false_positive_area,
     theory_plan,
 )
-from lshjob.similarity import exact_pair_similarities, histogram
+from lshjob.plan.similarity import exact_pair_similarities, histogram
 
 
 def test_s_curve_matches_published_table():
@@ -180,8 +180,8 @@ def test_against_all_sample_estimates_population_pair_counts(tmp_path):
     from helpers import planted_pairs
     from test_run import brute_force_pairs
 
-    from lshjob.membership import Membership
-    from lshjob.similarity import sample_histogram_from_sets
+    from lshjob.core.sets import Membership
+    from lshjob.plan.similarity import sample_histogram_from_sets
 
     events = planted_pairs(600, 0.3, seed=12, background=400)
     truth = brute_force_pairs(events, 0.5)
@@ -217,8 +217,8 @@ def test_plan_judges_a_given_banding(tmp_path, demo_events):
 def test_restricted_index_keeps_exactly_the_wanted_elements(share):
     # Oracle: numpy's isin and searchsorted, set by set. Codes span the whole int64 range
     # (negative, extreme) and repeat across sets; from no element wanted to all of them.
-    from lshjob.membership import Membership
-    from lshjob.similarity import restricted_index
+    from lshjob.core.sets import Membership
+    from lshjob.plan.similarity import restricted_index
 
     rng = np.random.default_rng(31)
     pool = np.concatenate([rng.integers(-2**63, 2**63 - 1, 3000, dtype=np.int64),

@@ -15,8 +15,8 @@ import pytest
 from test_run_edges import expected_index
 
 from lshjob import EventSpec, ParameterError
-from lshjob.job import RunOptions, run_job
-from lshjob.publish import expand, neighbour_blocks, neighbour_table
+from lshjob.jobs.run import RunOptions, run_job
+from lshjob.index.publish import expand, neighbour_blocks, neighbour_table
 
 SPEC = EventSpec(entity="patron", element="title")
 
@@ -98,7 +98,7 @@ def test_publishing_ten_million_rows_keeps_to_a_512mib_budget(tmp_path, compiled
     src = tmp_path / "loans.parquet"
     groups_of_identical_sets(40, 500).write_parquet(src)
     out = tmp_path / "idx"
-    cmd = [sys.executable, "-m", "lshjob.cli", "run", str(src), "--entity", "patron", "--element", "title",
+    cmd = [sys.executable, "-m", "lshjob.cli.app", "run", str(src), "--entity", "patron", "--element", "title",
            "--threshold", "0.5", "--top-k", "1000", "--memory", "512MiB", "--out", str(out), "--json", "--quiet"]
     # The kernels are compiled (and cached) by a first run: compiling takes memory of its own
     # (LLVM), once per machine, which is not what this test measures.

@@ -13,12 +13,12 @@ from typer.testing import CliRunner
 
 import lshjob
 from lshjob import EventSpec, ParameterError
-from lshjob.audit import audit_index
-from lshjob.band import bucket_rows
-from lshjob.cli import app
-from lshjob.job import RunOptions, run_job
-from lshjob.planner import candidate_probability
-from lshjob.sqlfiles import sql_dir
+from lshjob.audit.check import audit_index
+from lshjob.index.band import bucket_rows
+from lshjob.cli.app import app
+from lshjob.jobs.run import RunOptions, run_job
+from lshjob.plan.banding import candidate_probability
+from lshjob.index.sqlfiles import load_sql, sql_dir
 
 SPEC = EventSpec(entity="patron", element="title")
 
@@ -131,7 +131,7 @@ def test_oversize_buckets_are_split_and_counted(tmp_path):
     src = write(events, tmp_path)
     m = run_job(src, SPEC, RunOptions(threshold=0.6, perms=64, bands=16, rows=4, max_bucket=10, top_k=100),
                 tmp_path / "idx")
-    from lshjob.signatures import SignatureParams, sign_sets, signature_array
+    from lshjob.sign.signatures import SignatureParams, sign_sets, signature_array
 
     sets = lshjob.load_sets(src, SPEC)[0]
     matrix = signature_array(sign_sets(sets, ["entity"], SignatureParams(perms=64, seed=1)))
@@ -189,7 +189,7 @@ def test_failed_rerun_keeps_the_last_good_index(tmp_path, demo_events, monkeypat
     def broken(*args, **kwargs):
         raise RuntimeError("disk full")
 
-    monkeypatch.setattr("lshjob.parts.verify_between", broken)
+    monkeypatch.setattr("lshjob.jobs.parts.verify_between", broken)
     with pytest.raises(RuntimeError):
         run_job(src, SPEC, RunOptions(threshold=0.6), out)
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before  # no staging or work left
@@ -257,17 +257,16 @@ def test_config_file_and_flags(tmp_path, demo_events):
 
 
 def test_sql_ships_with_the_package():
-    # A plain (non-editable) install must carry sql/ inside the package: CI sets
-    # LSHJOB_EXPECT_INSTALLED=1 and runs the suite against such an install.
+    # The SQL lives inside the package (lshjob/index/sql) and is read with importlib.resources;
+    # CI sets LSHJOB_EXPECT_INSTALLED=1 and runs the suite against a plain (non-editable) install.
     folder = sql_dir()
-    assert {"candidates.sql", "bucket_skew.sql"} <= {p.name for p in folder.iterdir()}
-    repo_sql = Path(__file__).resolve().parent.parent / "sql"
-    for path in repo_sql.glob("*.sql"):
-        assert (folder / path.name).read_text() == path.read_text()
+    names = {p.name for p in folder.iterdir()}
+    assert {"candidates.sql", "bucket_skew.sql", "split_oversize.sql"} <= names
+    assert "SELECT" in load_sql("candidates").upper()
     if os.environ.get("LSHJOB_EXPECT_INSTALLED") == "1":
         package = Path(lshjob.__file__).resolve().parent
         assert "site-packages" in str(package)
-        assert folder == package / "sql"
+        assert Path(str(folder)) == package / "index" / "sql"
 
 
 def test_explicit_bands_and_rows_are_checked(tmp_path, small_events):
@@ -281,18 +280,18 @@ def test_explicit_bands_and_rows_are_checked(tmp_path, small_events):
 def test_verifying_in_slices_gives_the_same_index(tmp_path, demo_events, monkeypatch):
     src = write(demo_events[0], tmp_path)
     run_job(src, SPEC, RunOptions(threshold=0.4), tmp_path / "whole")
-    monkeypatch.setattr("lshjob.parts.MIN_VERIFY_SLICE", 50)
-    monkeypatch.setattr("lshjob.parts.VERIFY_BYTES_PER_PAIR", 10**12)
+    monkeypatch.setattr("lshjob.jobs.parts.MIN_VERIFY_SLICE", 50)
+    monkeypatch.setattr("lshjob.jobs.parts.VERIFY_BYTES_PER_PAIR", 10**12)
     m = run_job(src, SPEC, RunOptions(threshold=0.4), tmp_path / "sliced")
     assert m["counts"]["candidate_pairs"] > 500  # many slices of 50
     assert same_index(tmp_path / "whole", tmp_path / "sliced")
 
 
 def test_a_budget_too_small_for_the_sets_is_refused_before_reading(tmp_path, demo_events):
-    # The loader needs 20 bytes an event (lshjob/loading.py); a budget below that is refused
+    # The loader needs 20 bytes an event (lshjob/ingest/loading.py); a budget below that is refused
     # with the figures, naming the input.
     from lshjob import ParameterError
-    from lshjob.loading import load_membership
+    from lshjob.ingest.loading import load_membership
 
     src = write(demo_events[0], tmp_path)
     n = demo_events[0].height
@@ -320,7 +319,7 @@ def test_a_run_never_enters_the_parallel_runtime_from_two_threads(tmp_path, demo
             env["NUMBA_THREADING_LAYER"] = layer
         out = tmp_path / f"idx-{layer}"
         done = subprocess.run(
-            [sys.executable, "-m", "lshjob.cli", "run", str(src), "--entity", "patron", "--element", "title",
+            [sys.executable, "-m", "lshjob.cli.app", "run", str(src), "--entity", "patron", "--element", "title",
              "--threshold", "0.5", "--out", str(out), "--quiet"],
             env=env, capture_output=True, text=True, timeout=300,
         )

@@ -5,7 +5,7 @@ one part and in three, both schemes, text and integer keys.
 Oracle: exact Jaccard of every pair of distinct sets by Python set arithmetic (brute force),
 identical sets paired with Jaccard 1; each entity's expected list is its true neighbours
 sorted by (Jaccard descending, neighbour key ascending) and cut at top-k, as the index
-contract (lshjob/publish.py) states.
+contract (lshjob/index/publish.py) states.
 """
 
 from __future__ import annotations
@@ -18,7 +18,7 @@ import polars as pl
 import pytest
 
 from lshjob import EventSpec
-from lshjob.job import RunOptions, run_job
+from lshjob.jobs.run import RunOptions, run_job
 
 SPEC = EventSpec(entity="patron", element="title")
 
@@ -132,7 +132,7 @@ def test_cli_run_with_no_pair_exits_0_and_prints_the_manifest(tmp_path):
     src = tmp_path / "loans.parquet"
     events_of(_disjoint(), False).write_parquet(src)
     out = tmp_path / "idx"
-    done = subprocess.run([sys.executable, "-m", "lshjob.cli", "run", str(src), "--entity", "patron",
+    done = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "run", str(src), "--entity", "patron",
                            "--element", "title", "--threshold", "0.5", "--out", str(out), "--json", "--quiet"],
                           capture_output=True, text=True, timeout=300)
     assert done.returncode == 0, done.stderr[-2000:]

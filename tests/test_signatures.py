@@ -12,7 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from lshjob import IncompatibleSignatures, SignatureParams, read_signatures, write_signatures
-from lshjob.signatures import (
+from lshjob.sign.signatures import (
     estimate_jaccard,
     estimate_set_size,
     merge_signatures,
@@ -130,8 +130,8 @@ def test_signature_ignores_order_and_repeats(a, rnd):
 def test_integer_and_text_keys_sign_alike(scheme):
     # Integers hash through their decimal text (hashing.py), so both readings of a column agree;
     # the membership path (codes, dictionary hashes) must agree with the row path too.
-    from lshjob.membership import Membership
-    from lshjob.signatures import sign_membership
+    from lshjob.core.sets import Membership
+    from lshjob.sign.signatures import sign_membership
 
     p = SignatureParams(scheme=scheme, perms=16)
     values = [10, 20, 10, -7, 0, 2**62]
@@ -273,8 +273,9 @@ def test_merging_many_tables_is_the_row_minimum_per_key():
 def test_monthly_signatures_streamed_in_slices_equal_signing_at_once(tmp_path, demo_events, monkeypatch):
     # Reference: sign_sets over the whole membership table at once (itself checked against
     # datasketch above). `lshjob sign` with segments and periods writes 7 sets at a time here.
-    from lshjob import EventSpec, event_signing, sign_file
-    from lshjob.ingest import load_sets
+    from lshjob import EventSpec, sign_file
+    from lshjob.sign import events as event_signing
+    from lshjob.ingest.spec import load_sets
 
     events, _ = demo_events
     src = tmp_path / "loans.parquet"

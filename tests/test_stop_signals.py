@@ -3,7 +3,7 @@ stop it: one line on stderr, exit code 128 + the signal (130, 143, 129), the wor
 the staging folder and the lock let go, the index in place byte for byte the last good one.
 
 Each stopped run is a real ``lshjob`` process through the console script's entry point
-(:func:`lshjob.console.main`); the script below makes the signal come at a chosen point in
+(:func:`lshjob.cli.console.main`); the script below makes the signal come at a chosen point in
 that child only: inside a compiled (numba) loop of the verify stage, inside a DuckDB query
 of the join stage, as numba and DuckDB report an interruption (their error wrapping the
 stop), and while the index is renamed into place. Oracles: the exit code against
@@ -26,14 +26,14 @@ import pytest
 from helpers import index_digest, planted_events_file
 
 from lshjob import EventSpec
-from lshjob.job import RunOptions, run_job
+from lshjob.jobs.run import RunOptions, run_job
 
 SPEC = EventSpec(entity="patron", element="title")
 INDEX = ("neighbours.parquet", "manifest.json")
 
 STOP_AT = r"""
 import os, signal, sys, threading, time
-import lshjob.job, lshjob.parts, lshjob.publish
+import lshjob.jobs.run, lshjob.jobs.parts, lshjob.index.publish
 
 how, sig = sys.argv[1], getattr(signal, sys.argv[2])
 me = os.getpid()
@@ -52,19 +52,19 @@ if how == "numba":  # inside a compiled loop of the verify stage
         return total
 
     spin(10)
-    verify = lshjob.parts.verify_blocks
+    verify = lshjob.jobs.parts.verify_blocks
     def slow_verify(*args, **kwargs):
         later(0.05)
         spin(300_000_000)
         return verify(*args, **kwargs)
-    lshjob.parts.verify_blocks = slow_verify
+    lshjob.jobs.parts.verify_blocks = slow_verify
 elif how == "duckdb":  # inside a DuckDB query of the join stage
     import duckdb
     def slow_join(*args, **kwargs):
         later(0.1)
         duckdb.connect().execute("SELECT count(*) FROM range(400000000) a WHERE a.range % 7 = 3").fetchall()
         raise AssertionError("the query was not interrupted")
-    lshjob.job.candidate_pairs = slow_join
+    lshjob.jobs.run.candidate_pairs = slow_join
 elif how in ("numba-error", "duckdb-error"):  # the errors they wrap an interruption in
     def interrupted(*args, **kwargs):
         try:
@@ -75,7 +75,7 @@ elif how in ("numba-error", "duckdb-error"):  # the errors they wrap an interrup
                 raise SystemError("CPUDispatcher(<function spin>) returned a result with an exception set") from exc
             raise RuntimeError("Query interrupted") from None
         raise AssertionError("no signal came")
-    lshjob.parts.verify_blocks = interrupted
+    lshjob.jobs.parts.verify_blocks = interrupted
 elif how == "twice":  # a second signal while the first one's clean-up runs
     import shutil
     def stop(*args, **kwargs):
@@ -83,8 +83,8 @@ elif how == "twice":  # a second signal while the first one's clean-up runs
     def remove_again(*args, **kwargs):
         os.kill(me, sig)
         raise AssertionError("the second signal did not end the process")
-    lshjob.parts.verify_blocks = stop
-    lshjob.job.shutil = type("shutil", (), {"rmtree": staticmethod(remove_again)})
+    lshjob.jobs.parts.verify_blocks = stop
+    lshjob.jobs.run.shutil = type("shutil", (), {"rmtree": staticmethod(remove_again)})
 elif how == "publish":  # between the renames that put the index in place
     rename = os.replace
     def replace(src, dst, *args, **kwargs):
@@ -93,7 +93,7 @@ elif how == "publish":  # between the renames that put the index in place
         return rename(src, dst, *args, **kwargs)
     os.replace = replace
 
-from lshjob.console import main
+from lshjob.cli.console import main
 sys.argv = ["lshjob", "run", *sys.argv[3:]]
 main()
 """

@@ -1,0 +1,377 @@
+"""Publish stage: verified representative pairs -> the neighbour index, written atomically.
+
+Output contract of the neighbour table (:func:`neighbour_blocks`, concatenated): one row per
+(entity, neighbour), both directions, at most ``top_k`` per entity: ``entity``, ``neighbour``
+(keys), ``jaccard`` (exact), ``estimate`` (signature agreement), ``bands_shared`` Int32,
+``rank`` UInt32 (1 = most similar; ties broken by neighbour key ascending). Sorted by
+(entity, rank). No pair at all gives a file with these columns and no row.
+
+Groups of identical sets are expanded here: members of one group are each other's
+neighbours with Jaccard 1, and a member inherits its representative's verified pairs
+(same set, same signature, same Jaccard). Only the first top_k + 1 members of a group (in
+key order) are ever expanded as neighbours, so a group of a million identical sets costs
+a million x top_k rows, not a million squared. A group of m identical sets with
+top_k >= m - 1 still publishes m(m - 1) rows: that is the index asked for, so its size is
+counted before anything is expanded (:func:`expand`, :func:`check_output`) and a run whose
+index would not fit the memory budget is refused with the figures.
+
+Each representative's list is made a range of representatives at a time, from the verified
+pairs of the range gathered by position (both directions of every pair are never made at
+once). The rows are made a block of entities at a time (an eighth of the budget in flight,
+or a quarter of what it leaves beside the process, :func:`block_rows`) and streamed into
+the Parquet file, so publishing holds the table's size only when it fits a block.
+
+:func:`stage_neighbours` writes ``neighbours.parquet`` in a staging folder inside the output
+folder; :func:`commit_index` writes ``manifest.json`` beside it (the manifest records the
+neighbours file's sha256) and renames both into place, the neighbours first. Until the
+renames the previous index is untouched; the previous files are kept in ``previous/`` by
+hard links, built in the staging folder and
+renamed into place. One run at a time publishes into a folder (its lock,
+:mod:`lshjob.runtime.folder_lock`, is held by the caller).
+"""
+
+from __future__ import annotations
+
+import errno
+import hashlib
+import json
+import os
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+from polars.io.plugins import register_io_source
+
+from lshjob.errors import ParameterError
+from lshjob.runtime.budget import release_freed
+
+NEIGHBOURS = "neighbours.parquet"
+MANIFEST = "manifest.json"
+PREVIOUS = "previous"
+METADATA_KEY = "lshjob"
+FORMAT_VERSION = 1
+VALUE_BYTES = 24  # jaccard, estimate (Float64), bands_shared, rank (32 bits) of a published row
+# a block's expanded rows in flight: ids, values, the sort's copy and the keys gathered
+# (about 100 bytes a row with integer keys; measured on the memory test of tests/test_publish.py)
+BLOCK_BYTES_PER_ROW = 160
+MIN_BLOCK_ROWS = 65_536
+
+
+@dataclass
+class Expansion:
+    """What publishing will expand, counted before anything is: ``members`` (``id``
+    ascending, ``rep``, ``rows``: rows expanded for it) and each representative's neighbour
+    list ``per_group`` (``src``, ``neighbour``, ``jaccard``, ``estimate``, ``bands_shared``,
+    in rank order), and the exact number of rows the index will hold."""
+
+    members: pl.DataFrame
+    per_group: pl.DataFrame
+    published_rows: int
+    top_k: int
+
+
+def effective_top_k(top_k: int, entities: int) -> int:
+    """An entity has at most entities - 1 neighbours: a larger top-k changes nothing."""
+    return max(1, min(top_k, entities - 1))
+
+
+def row_bytes(keys: pl.Series) -> int:
+    """Bytes a published row takes in memory: two keys and the values (text keys: polars'
+    16-byte view plus the text when longer than 12 bytes)."""
+    if keys.dtype.is_integer() or len(keys) == 0:
+        key = 8
+    else:
+        lengths = keys.str.len_bytes()
+        key = 16 + int(lengths.filter(lengths > 12).sum() / len(keys))
+    return VALUE_BYTES + 2 * key
+
+
+def identical_rows(rep_of: np.ndarray, top_k: int) -> tuple[int, int, int]:
+    """(rows, groups, largest): the rows groups of identical sets publish among themselves, a
+    lower bound of the index's size known right after the collapse."""
+    sizes = np.bincount(rep_of, minlength=len(rep_of)).astype(np.int64)
+    sizes = sizes[sizes > 1]
+    rows = int((sizes * np.minimum(top_k, sizes - 1)).sum())
+    return rows, len(sizes), int(sizes.max()) if len(sizes) else 0
+
+
+def check_output(rows: int, keys: pl.Series, top_k: int, memory: int, largest_group: int = 0) -> None:
+    """Refuse an index whose rows would take more than the memory budget (module docstring)."""
+    need = rows * row_bytes(keys)
+    if need <= memory:
+        return
+    over = f" over a group of {largest_group} identical sets" if largest_group > 1 else ""
+    raise ParameterError(
+        f"--top-k {top_k}{over} would publish {rows:.3g} rows (~{need / 2**30:.1f} GiB); the budget is "
+        f"{memory / 2**30:.1f} GiB; lower --top-k or raise --memory"
+    )
+
+
+def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
+           chunk_rows: int = 1 << 62) -> Expansion:
+    """Each representative's ranked neighbour list and each member's row count (no rows of
+    the index are made here). Before its cut at top_k + 1, a representative's list holds
+    the first top_k + 1 members of each group it is paired with; the lists are made for a
+    range of representatives at a time, each range holding at most about ``chunk_rows``
+    rows before the cut (or one representative's)."""
+    cap = top_k + 1
+    sizes = np.bincount(rep_of, minlength=len(rep_of))
+    left, right = verified["left_rep"].to_numpy(), verified["right_rep"].to_numpy()
+    # Only entities of a verified pair or of a group of identical sets can have neighbours.
+    involved = sizes > 1
+    involved[left] = True
+    involved[right] = True
+    ids = np.flatnonzero(involved[rep_of])
+    key = np.int32 if len(rep_of) < 2**31 else np.int64  # entity ids, held in the lists: 4 bytes when they fit
+    reps = rep_of[ids].astype(key)
+    # head: the first cap members of each group, in key order (ids ascending, sorted stably by rep)
+    order = np.argsort(reps, kind="stable")
+    by_rep = reps[order]
+    first = np.searchsorted(by_rep, by_rep)
+    keep = order[np.arange(len(order)) - first < cap]
+    head = pl.DataFrame({"rep": reps[keep], "neighbour": ids[keep].astype(key)})
+    del order, by_rep, first, keep
+
+    before_cut = np.where(sizes > 1, np.minimum(cap, sizes), 0).astype(np.int64)
+    np.add.at(before_cut, left, np.minimum(cap, sizes[right]))
+    np.add.at(before_cut, right, np.minimum(cap, sizes[left]))
+    cum = np.cumsum(before_cut)
+    del before_cut
+    # A range's edges are gathered from the pairs by position, each side in its own order:
+    # both directions of every pair are never made at once.
+    sides = [_Side(verified, left, "left_rep", "right_rep", key), _Side(verified, right, "right_rep", "left_rep", key)]
+    del left, right
+    pieces, listed, start, n = [], [], 0, len(rep_of)
+    own = np.zeros(n, dtype=bool)
+    while start < n:  # representatives start..stop-1
+        base = cum[start - 1] if start else 0
+        stop = max(start + 1, int(np.searchsorted(cum, base + chunk_rows, side="right")))
+        inter = pl.concat([side.edges(start, stop) for side in sides]).join(
+            head.rename({"rep": "dst"}), on="dst").select("src", "neighbour", "jaccard", "estimate", "bands_shared")
+        groups = pl.Series(np.flatnonzero(sizes[start:stop] > 1) + start)
+        intra = head.filter(pl.col("rep").is_in(groups.implode())).select(
+            pl.col("rep").alias("src"), "neighbour", pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
+            pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
+        piece = (pl.concat([intra, inter])
+                 .sort(["src", "jaccard", "neighbour"], descending=[False, True, False])
+                 .group_by("src", maintain_order=True)
+                 .head(cap))
+        del inter, intra, groups
+        # a representative's list length, and the members its own list holds
+        src, neighbour = piece["src"].to_numpy(), piece["neighbour"].to_numpy()
+        listed.append(np.bincount(src - start, minlength=stop - start).astype(np.int32))
+        own[neighbour[rep_of[neighbour] == src]] = True
+        pieces.append(piece)
+        start = stop
+        del piece, src, neighbour
+        release_freed()
+    per_group = pl.concat(pieces, rechunk=False) if pieces else pl.DataFrame(schema={
+        "src": pl.Int32, "neighbour": pl.Int32, "jaccard": pl.Float64, "estimate": pl.Float64,
+        "bands_shared": pl.Int32})
+    del sides, head, pieces
+    # rows expanded for a member: its representative's list; published: without itself, cut at top_k
+    rows = np.concatenate(listed)[reps].astype(np.int64) if listed else np.zeros(0, dtype=np.int64)
+    published = int(np.minimum(rows - own[ids], top_k).sum())
+    members = pl.DataFrame({"id": ids.astype(key), "rep": reps, "rows": rows})
+    return Expansion(members, per_group, published, top_k)
+
+
+class _Side:
+    """One side of the verified pairs, in the order of its representative: the pairs whose
+    ``src`` side is in a range of representatives are a slice of ``order``."""
+
+    def __init__(self, verified: pl.DataFrame, reps: np.ndarray, src: str, dst: str, key: type) -> None:
+        self.verified, self.src, self.dst = verified, src, dst
+        self.key = pl.Int32 if key is np.int32 else pl.Int64
+        narrow = np.int32 if len(reps) < 2**31 else np.int64  # positions of pairs
+        self.order = np.argsort(reps, kind="stable").astype(narrow)
+        self.sorted_reps = reps[self.order].astype(key)
+
+    def edges(self, start: int, stop: int) -> pl.DataFrame:
+        """(src, dst, jaccard, estimate, bands_shared) of the pairs whose ``src`` side is in
+        start..stop-1."""
+        lo, hi = np.searchsorted(self.sorted_reps, [start, stop])
+        rows = pl.Series(self.order[lo:hi])
+        return self.verified.select(
+            pl.col(self.src).gather(rows).cast(self.key).alias("src"),
+            pl.col(self.dst).gather(rows).cast(self.key).alias("dst"),
+            pl.col("jaccard").gather(rows), pl.col("estimate").gather(rows),
+            pl.col("bands_shared").gather(rows).cast(pl.Int32))
+
+
+def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
+    """The index's rows (module contract), a block of entities at a time, each block
+    expanding at most ``block_rows`` rows (or one entity's list)."""
+    members, per_group, top_k = expansion.members, expansion.per_group, expansion.top_k
+    cum = np.cumsum(members["rows"].to_numpy())
+    start = 0
+    while start < members.height:
+        base = cum[start - 1] if start else 0
+        stop = max(start + 1, int(np.searchsorted(cum, base + block_rows, side="right")))
+        block = members.slice(start, stop - start).select("id", "rep")
+        start = stop
+        table = (
+            block.join(per_group, left_on="rep", right_on="src")
+            .filter(pl.col("id") != pl.col("neighbour"))
+            .sort(["id", "jaccard", "neighbour"], descending=[False, True, False])
+            .group_by("id", maintain_order=True)
+            .head(top_k)
+            .with_columns(rank=(pl.int_range(pl.len()).over("id") + 1).cast(pl.UInt32))
+        )
+        yield _with_keys(table, keys)
+        del table, block
+    if members.height == 0:
+        yield _with_keys(pl.DataFrame(schema={"id": pl.Int64, "neighbour": pl.Int64, "jaccard": pl.Float64,
+                                              "estimate": pl.Float64, "bands_shared": pl.Int32,
+                                              "rank": pl.UInt32}), keys)
+
+
+def _with_keys(table: pl.DataFrame, keys: pl.Series) -> pl.DataFrame:
+    return table.select(
+        keys.gather(table["id"].to_numpy()).alias("entity"),
+        keys.gather(table["neighbour"].to_numpy()).alias("neighbour"),
+        pl.col("jaccard").cast(pl.Float64),
+        pl.col("estimate").cast(pl.Float64),
+        pl.col("bands_shared").cast(pl.Int32),
+        pl.col("rank").cast(pl.UInt32),
+    )
+
+
+def neighbour_table(verified: pl.DataFrame, rep_of: np.ndarray, keys: pl.Series, top_k: int,
+                    bands: int) -> pl.DataFrame:
+    """The whole index as one table (module contract): for small runs and tests."""
+    blocks = list(neighbour_blocks(expand(verified, rep_of, top_k, bands), keys, 1 << 62))
+    return pl.concat(blocks)
+
+
+def block_rows(memory: int, held: int = 0) -> int:
+    """Expanded rows a block may hold: about an eighth of the budget, or a quarter of what it
+    leaves beside the ``held`` bytes the process holds when that is less (the writer holds
+    two blocks while it encodes one)."""
+    share = min(memory // 8, (memory - held) // 4)
+    return max(MIN_BLOCK_ROWS, share // BLOCK_BYTES_PER_ROW)
+
+
+def sha256_file(path: Path, chunk: int = 1 << 22) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while block := fh.read(chunk):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def staging_folder(out_dir: Path) -> Path:
+    return out_dir / f".staging-{os.getpid()}"
+
+
+def stage_neighbours(out_dir: Path, tables, metadata: dict) -> dict:
+    """Write the index's rows (``tables``: an iterator of blocks in order) into
+    ``neighbours.parquet`` of the staging folder, with ``metadata`` as the file's key-value
+    record ``lshjob`` (JSON); return the file's facts. One block is written at once; more
+    are streamed into the file as they are made (polars' writer pulls them from an IO
+    source), so only the block in flight is held."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    staging = staging_folder(out_dir)
+    shutil.rmtree(staging, ignore_errors=True)
+    staging.mkdir()
+    path = staging / NEIGHBOURS
+    kv = {METADATA_KEY: json.dumps(metadata, sort_keys=True)}
+    pending = iter(tables)
+    first = next(pending)
+    second = next(pending, None)
+    if second is None:
+        first.write_parquet(path, compression="zstd", metadata=kv)
+        rows = first.height
+    else:
+        rows = _stream(first, second, pending, path, kv)
+    return {"neighbours": NEIGHBOURS, "rows": rows, "sha256": sha256_file(path), "bytes": path.stat().st_size}
+
+
+def _stream(first: pl.DataFrame, second: pl.DataFrame, pending, path: Path, kv: dict) -> int:
+    held = [second, first]
+    schema = first.schema
+    rows = [0]
+    failure: list[BaseException] = []
+
+    def source(with_columns, predicate, n_rows, batch_size):
+        try:
+            while held or (table := next(pending, None)) is not None:
+                if held:
+                    table = held.pop()
+                rows[0] += table.height
+                yield table
+                table = None
+        except Exception as exc:
+            failure.append(exc)
+            raise
+
+    del first, second
+    try:
+        register_io_source(source, schema=schema).sink_parquet(path, compression="zstd", metadata=kv,
+                                                               maintain_order=True)
+    except Exception:
+        if failure:
+            raise failure[0] from None
+        raise
+    return rows[0]
+
+
+def commit_index(out_dir: Path, manifest: dict) -> None:
+    """Write ``manifest`` beside the staged neighbours file and rename both into place (module
+    docstring); the staging folder is removed whatever happens."""
+    staging = staging_folder(out_dir)
+    try:
+        (staging / MANIFEST).write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
+        if (out_dir / MANIFEST).exists() and (out_dir / NEIGHBOURS).exists():
+            _keep_previous(out_dir, staging)
+        os.replace(staging / NEIGHBOURS, out_dir / NEIGHBOURS)
+        os.replace(staging / MANIFEST, out_dir / MANIFEST)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
+
+
+def discard_staging(out_dir: Path) -> None:
+    shutil.rmtree(staging_folder(out_dir), ignore_errors=True)
+
+
+def _keep_previous(out_dir: Path, staging: Path) -> None:
+    """Make ``previous/`` hard links to the index in place. Built whole in the staging folder,
+    then two renames: the old ``previous/`` into the staging folder (removed with it), the new
+    one into place (again if a folder came there in between). Between the renames there is no
+    ``previous/``, while the index in place is still whole."""
+    fresh = staging / PREVIOUS
+    fresh.mkdir()
+    for name in (NEIGHBOURS, MANIFEST):
+        os.link(out_dir / name, fresh / name)
+    for attempt in range(8):  # one attempt under the folder's lock; more only for a writer without it
+        try:
+            os.rename(out_dir / PREVIOUS, staging / f"replaced-previous-{attempt}")
+        except FileNotFoundError:
+            pass
+        try:
+            os.rename(fresh, out_dir / PREVIOUS)
+            return
+        except OSError as exc:  # a folder put there in between (ENOTEMPTY, EEXIST): move it too
+            if exc.errno not in (errno.ENOTEMPTY, errno.EEXIST) or attempt == 7:
+                raise
+
+
+def read_manifest(out_dir: Path) -> dict:
+    from lshjob.errors import InputError
+
+    path = Path(out_dir) / MANIFEST
+    if not path.is_file():
+        raise InputError(f"{out_dir}: no {MANIFEST}; is this an lshjob index folder?")
+    try:  # what lshjob audit reads
+        manifest = json.loads(path.read_text())
+        manifest["spec"], manifest["plan"], manifest["options"]["threshold"], manifest["options"]["top_k"]
+        manifest["inputs"]["source"]
+    except json.JSONDecodeError as exc:
+        raise InputError(f"{path}: not valid JSON ({exc.msg} at line {exc.lineno}, column {exc.colno}); "
+                         "the file is cut short or damaged; run lshjob run again") from None
+    except (KeyError, TypeError) as exc:
+        what = f"no {exc} entry" if isinstance(exc, KeyError) else "an entry is not a JSON object"
+        raise InputError(f"{path}: not an lshjob manifest ({what}); run lshjob run again") from None
+    return manifest

@@ -1,0 +1,266 @@
+"""The run up to the join: ingest, collapse, plan, sign and band, in one part or in parts.
+
+:func:`in_one_part` holds every set in memory; :func:`in_parts` reads the entities a key
+range at a time (:mod:`lshjob.jobs.parts`). Both return a :class:`Prepared`: the entity keys,
+each entity's representative, where the sets are (held, or saved per part), the plan and
+the bucket files the join reads. :func:`lshjob.jobs.run.run_job` times each stage.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+import polars as pl
+
+from lshjob.index import band
+from lshjob.jobs import parts
+from lshjob.plan import banding as planner
+from lshjob.index import publish
+from lshjob.plan import similarity
+from lshjob.errors import InputError, ParameterError
+from lshjob.index.collapse import collapse_identical, fingerprints
+from lshjob.ingest.spec import IngestReport
+from lshjob.ingest.loading import EventSource, membership_of
+from lshjob.core.sets import Membership
+from lshjob.runtime.budget import current_bytes, release_freed
+from lshjob.sign.signatures import SignatureParams, comparable_by_position
+
+if TYPE_CHECKING:
+    from lshjob.jobs.run import RunOptions
+
+
+@dataclass
+class Prepared:
+    """What ingest, collapse, plan, sign and band leave for the join and later stages."""
+
+    keys: pl.Series  # every entity key; entity id = position
+    rep_of: np.ndarray
+    representatives: int
+    store: parts.PartStore | parts.HeldSets
+    report: IngestReport
+    plan: dict
+    params: SignatureParams | None = None
+    bucket_files: list[Path] | None = None  # None: no bands (identical sets only)
+    shared_rows: int = 0
+    bucket_rows: int = 0
+    # without bands, in parts: pairs of representatives of different parts whose sets may be
+    # identical (same fingerprint), split by parts as the join writes them
+    candidates: Path | None = None
+    identical_pairs: int = 0  # how many such pairs
+    warnings: list[str] = field(default_factory=list)  # for the manifest
+
+
+def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: Path, stages) -> Prepared:
+    """The usual run: every set in memory at once."""
+    with stages("ingest"):
+        sets, report = membership_of(source, None)
+    with stages("collapse"):
+        rep_of, reps = collapse_identical(sets)
+    _check_output(rep_of, sets.keys, options, memory)
+    with stages("plan"):
+        plan = choose_plan(sets, options, distinct_sets=len(reps))
+    _check_predicted(plan, options)
+    built = Prepared(sets.keys, rep_of, len(reps), parts.HeldSets(sets), report, plan,
+                     warnings=_few_sets(sets.size, len(reps)))
+    if plan["mode"] != "identical-only":
+        built.params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
+        # The bucket keys (8 bytes a band and representative) stay in memory when they fit
+        # beside what the process holds, a slice's signatures and a batch of the band search
+        # (an eighth of the budget each); else they go to the work folder, as in parts.
+        keys_bytes = len(reps) * (plan["bands"] + 1) * 8
+        release_freed()
+        spill = work / "keys" if current_bytes() + keys_bytes + memory // 4 > memory else None
+        bands = SignAndBand(built.params, plan, memory, stages, spill=spill)
+        with stages.progress.stage("sign and band", len(reps)) as task:
+            bands.add(sets, reps, 0, task)
+        built.bucket_files, built.shared_rows = bands.write(work / "buckets")
+        built.bucket_rows = len(reps) * plan["bands"]
+    return built
+
+
+def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path, stages) -> Prepared:
+    """The run a key range at a time (:mod:`lshjob.jobs.parts`)."""
+    with stages("count"):
+        per_entity = parts.events_per_entity(source)
+    with stages("plan"):
+        # Half a part: the planner's histogram adds an inverted index of the sample.
+        budget_events = int(parts.part_budget(memory, per_entity.height) / 2 / parts.bytes_per_event(source))
+        sample = None
+        if options.threshold < 1.0 and per_entity.height > 1:  # identical sets only need no sample
+            sample, _ = membership_of(source, parts.planning_sample(per_entity, budget_events))
+        plan = choose_plan(sample, options, total_entities=per_entity.height)
+        del sample
+    _check_predicted(plan, options)
+    banded = plan["mode"] != "identical-only"
+    params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed) if banded else None
+    # Verification holds two parts' sets (8 bytes an element, less than grouping them costs)
+    # beside what the process holds now, its slices of candidates and their estimates (an
+    # eighth and a sixteenth of the budget) and what DuckDB leaves resident after the join.
+    release_freed()
+    two_parts = (memory - current_bytes() - memory // 4) // 2
+    ranges = parts.key_ranges(per_entity, source, min(parts.part_budget(memory, per_entity.height),
+                                                      max(two_parts, memory // 10)), options.parts)
+    del per_entity
+    store = parts.PartStore(work / "sets", source.text_hashes)
+    report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
+                          null_rows_dropped=source.report.null_rows_dropped)
+    keys, rep_of, representatives = [], [], 0
+    bands = SignAndBand(params, plan, memory, stages, spill=work / "keys") if banded else None
+    prints = []  # without bands: each representative's fingerprint, to find identical sets across parts
+    with stages.progress.stage("parts", len(ranges)) as task:
+        for selection in ranges:
+            with stages.part("ingest"):
+                sets, part_report = membership_of(source, selection)
+            report.add_part(part_report)
+            first = store.ranges[-1][1] + 1 if store.ranges else 0
+            with stages.part("collapse"):
+                fa, fb = fingerprints(sets)
+                part_rep_of, reps = collapse_identical(sets, (fa, fb))
+            keys.append(sets.keys)
+            rep_of.append(part_rep_of + first)
+            representatives += len(reps)
+            if banded:
+                bands.add(sets, reps, first, None)
+            else:
+                prints.append(pl.DataFrame({"rep": reps + first, "fa": fa[reps], "fb": fb[reps]}))
+            with stages.part("ingest"):
+                store.save(sets)
+            del sets, part_rep_of, reps
+            task.advance()
+    if report.membership_rows == 0:
+        raise InputError(f"{source.where}: no element is left after filtering (--min-count {source.min_count}); "
+                         "nothing to sign")
+    keys = pl.concat(keys)
+    rep_of = np.concatenate(rep_of)
+    _check_output(rep_of, keys, options, memory)  # groups within parts: a lower bound
+    prepared = Prepared(keys, rep_of, representatives, store, report, plan, params,
+                        warnings=_few_sets(len(keys), None))
+    if banded:
+        prepared.bucket_files, prepared.shared_rows = bands.write(work / "buckets")
+        prepared.bucket_rows = representatives * plan["bands"]
+    else:
+        with stages.part("collapse"):
+            prepared.candidates, prepared.identical_pairs = parts.identical_candidates(
+                pl.concat(prints), store.ranges, work / "candidates")
+    return prepared
+
+
+def _few_sets(entities: int, distinct: int | None) -> list[str]:
+    """Why an index will hold no pair of different sets, when the input says so already."""
+    if entities < 2:
+        return [f"only {entities} entity: the index is empty"]
+    if distinct == 1:
+        return [f"all {entities} entities have the same set: the index pairs identical sets only"]
+    return []
+
+
+def _check_output(rep_of: np.ndarray, keys: pl.Series, options: "RunOptions", memory: int) -> None:
+    """Refuse, before signing, a top-k whose groups of identical sets alone would publish more
+    rows than the budget holds (:func:`lshjob.index.publish.check_output`)."""
+    top_k = publish.effective_top_k(options.top_k, len(keys))
+    rows, _, largest = publish.identical_rows(rep_of, top_k)
+    publish.check_output(rows, keys, options.top_k, memory, largest)
+
+
+def _check_predicted(plan: dict, options: RunOptions) -> None:
+    predicted = plan.get("predicted", {})
+    if predicted.get("expected_candidates", 0) > options.max_candidates:
+        raise ParameterError(
+            f"the plan (k={plan['perms']}, b={plan['bands']}, r={plan['rows']}) predicts "
+            f"{predicted['expected_candidates']:.3g} candidate pairs at threshold {options.threshold}, "
+            f"more than --max-candidates {options.max_candidates:.3g}; raise the threshold or --max-candidates"
+        )
+
+
+class SignAndBand:
+    """Signs representatives a slice at a time and keeps only their bucket keys (8 bytes per
+    band; in a file each under ``spill``, for a run in parts): a slice's signatures (raw and densified, laid out by position; polars reads them
+    without a copy: at most 2 x 8k bytes a row) take at most an eighth of the budget. Then
+    :meth:`write` writes the shared buckets' rows."""
+
+    def __init__(self, params, plan, memory, stages, spill: Path | None = None) -> None:
+        self.bands, self.rows = plan["bands"], plan["rows"]
+        # Bands read only the first b*r positions: k-permutation computes no more (its
+        # positions are independent); oph fills no other empty bin.
+        self.positions = self.bands * self.rows
+        self.params, self.memory, self.stages = params, memory, stages
+        self.step = int(max(10_000, memory // 8 // (3 * 8 * self.positions + band.ROW_BYTES * self.bands)))
+        self.slices: list[pl.DataFrame | Path] = []
+        self.spill = spill  # keys saved here (a run in parts), else kept in memory
+
+    def add(self, sets: Membership, reps: np.ndarray, first: int, task) -> None:
+        """Sign and band ``reps`` (ids within ``sets``); entity ids in the keys are ``first + id``."""
+        for lo in range(0, len(reps), self.step):
+            ids = reps[lo:lo + self.step]
+            with self.stages.part("sign"):
+                columns = comparable_by_position(sets, ids, self.params, self.positions)
+            with self.stages.part("band"):
+                keys = band.bucket_keys_by_position(columns, ids + first, self.bands, self.rows)
+                if self.spill is not None:
+                    self.spill.mkdir(parents=True, exist_ok=True)
+                    keys = band.save_keys(keys, self.spill / f"keys-{len(self.slices):06d}.parquet")
+                self.slices.append(keys)
+            del columns
+            if task is not None:
+                task.advance(len(ids))
+
+    def write(self, out_dir: Path) -> tuple[list[Path], int]:
+        with self.stages.part("band"):
+            files, written = band.write_shared_bucket_rows(self.slices, self.bands, out_dir,
+                                                          batch_bytes=max(64 << 20, self.memory // 8))
+        self.slices = []
+        return files, written
+
+
+def choose_plan(sets: Membership | None, options: RunOptions, total_entities: int | None = None,
+                distinct_sets: int | None = None) -> dict:
+    """The plan, from exact Jaccard of a sample of ``sets`` (all entities, or a uniform sample
+    of ``total_entities``). Without two different sets (``distinct_sets``, when known) or
+    two entities, nothing is banded."""
+    if options.threshold >= 1.0:
+        return {"mode": "identical-only", "why": "threshold 1.0: only identical sets qualify; "
+                "they are grouped exactly, no signatures or bands are needed"}
+    if (total_entities or sets.size) < 2 or (distinct_sets is not None and distinct_sets < 2):
+        return {"mode": "identical-only", "why": "fewer than two different sets: only identical sets "
+                "can pair; they are grouped exactly, no signatures or bands are needed"}
+    n_entities = total_entities or sets.size
+    # Against a uniform sample of a fraction f of the entities, a sampled entity meets only
+    # a fraction f of its similar pairs: 1/f times as many sampled entities see as many pairs.
+    sample = min(sets.size, int(options.sample_size * n_entities / sets.size))
+    hist = similarity.sample_histogram_from_sets(sets, sample, seed=0, total_entities=n_entities,
+                                                 threshold=options.threshold)
+    if options.bands is not None:
+        perms = options.perms or 128
+        chosen = _judge(options.threshold, hist, perms, options.bands, options.rows)
+        why = f"given by --bands {options.bands} --rows {options.rows}"
+        mode = "explicit"
+    else:
+        choices = (options.perms,) if options.perms else planner.DEFAULT_PERMS_CHOICES
+        chosen = planner.data_plans(options.threshold, hist, choices, options.recall)[0].as_dict()
+        why = (f"data mode: fewest expected candidates with expected recall >= {options.recall}; exact "
+               f"Jaccard of {hist.sample_entities} sampled entities against "
+               f"{'all' if hist.design == 'against_all' else 'each other'} ({n_entities} entities"
+               + (f"; pairs scaled from a uniform sample of {sets.size}" if n_entities != sets.size else "") + ")")
+        mode = "data"
+    return {
+        "mode": mode,
+        "why": why,
+        "perms": chosen["perms"],
+        "bands": chosen["bands"],
+        "rows": chosen["rows"],
+        "predicted": chosen,
+        "sample": {"entities": hist.sample_entities, "design": hist.design,
+                   "identical_pairs": hist.identical_pairs,
+                   "pairs_at_or_above_threshold": hist.pairs_at_or_above(options.threshold)},
+    }
+
+
+def _judge(threshold, hist, perms, bands, rows) -> dict:
+    plans = planner.data_plans(threshold, hist, (perms,), recall=1e-9)
+    for p in plans:
+        if p.bands == bands and p.rows == rows:
+            return p.as_dict()
+    raise AssertionError("explicit plan missing from the enumeration")

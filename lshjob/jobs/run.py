@@ -1,0 +1,262 @@
+"""The whole job: ingest -> sign -> plan -> band -> join -> verify -> publish.
+
+:func:`run_job` is what ``lshjob run`` calls. Each stage is timed, its peak resident memory
+recorded, and its counts kept for the manifest. One run at a time writes to an output folder
+(its lock, :mod:`lshjob.runtime.folder_lock`, is taken before any work). Scratch files live in a work
+folder inside the output folder (or under ``--scratch``) and are removed at the end, and what
+killed runs left is removed at the start (:mod:`lshjob.runtime.workspace`); the published index changes
+only by the atomic renames of :func:`lshjob.index.publish.commit_index`. The manifest returned is the
+one written, provenance included (:mod:`lshjob.runtime.provenance`).
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+import time
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+from lshjob.jobs import parts
+from lshjob.plan import banding as planner
+from lshjob.jobs import prepare
+from lshjob.runtime import provenance
+from lshjob.index import publish
+from lshjob.runtime import stopping
+from lshjob.core.digest import digest_in_background
+from lshjob.errors import ParameterError
+from lshjob.runtime.folder_lock import output_lock
+from lshjob.ingest.spec import EventSpec, resolve_paths
+from lshjob.index.join import (DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs, duckdb_limit, duckdb_need, join_threads,
+                   require_duckdb_memory)
+from lshjob.ingest.loading import grouping_need, open_events
+from lshjob.runtime.outputs import output_folder, scratch_folder
+from lshjob.runtime.progress import QUIET, StageProgress
+from lshjob.runtime.budget import current_bytes, default_memory, parse_size, peak_bytes, release_freed, reset_peak
+from lshjob.runtime.workspace import remove_leftovers, work_folder
+from lshjob.sign.signatures import SignatureParams
+
+
+MAX_TOP_K = 2**31 - 1  # ranks are 32-bit
+
+
+@dataclass(frozen=True)
+class RunOptions:
+    threshold: float
+    top_k: int = 50
+    perms: int | None = None
+    bands: int | None = None
+    rows: int | None = None
+    recall: float = 0.95
+    sample_size: int = 2000
+    seed: int = 1
+    scheme: str = "kperm"
+    max_bucket: int = DEFAULT_MAX_BUCKET
+    max_candidates: float = 2e9
+    memory: str | None = None
+    parts: int | None = None  # key ranges held one at a time; None: as the memory budget needs
+    wait: float = 0.0  # seconds to wait for another run's lock on the output folder
+    scratch: str | None = None  # folder for the work folder (spill, parts); None: inside the output
+
+    def validate(self) -> None:
+        if not 0.0 < self.threshold <= 1.0:
+            raise ParameterError(f"--threshold must be in (0, 1]; got {self.threshold}")
+        if not 1 <= self.top_k <= MAX_TOP_K:
+            raise ParameterError(f"--top-k must be from 1 to {MAX_TOP_K}; got {self.top_k}")
+        if not self.max_candidates >= 0:  # NaN fails too
+            raise ParameterError(f"--max-candidates must be 0 or more; got {self.max_candidates:g}")
+        if (self.bands is None) != (self.rows is None):
+            raise ParameterError("--bands and --rows go together; give both or neither")
+        if self.bands is not None:
+            planner.check_explicit(self.perms or 128, self.bands, self.rows)
+        if self.perms is not None and self.perms < 1:
+            raise ParameterError(f"--perms must be at least 1; got {self.perms}")
+        if self.max_bucket < 2:
+            raise ParameterError(f"--max-bucket must be at least 2; got {self.max_bucket}")
+        if self.sample_size < 2:
+            raise ParameterError(f"--sample-size must be at least 2; got {self.sample_size}")
+        if self.memory is not None:
+            parse_size(self.memory)
+        if self.parts is not None and self.parts < 1:
+            raise ParameterError(f"--parts must be at least 1; got {self.parts}")
+        if not self.wait >= 0:
+            raise ParameterError(f"--wait must be 0 or more seconds; got {self.wait}")
+        SignatureParams(scheme=self.scheme)
+
+
+class _Stages:
+    """Timings, peak memory and counts per stage."""
+
+    def __init__(self, progress: StageProgress) -> None:
+        self.progress = progress
+        self.seconds: dict[str, float] = {}
+        self.peak: dict[str, int] = {}
+
+    def __call__(self, name: str, total: int = 1):
+        """Time a stage, with its own progress bar; a stage entered again adds up."""
+        stages = self
+
+        class _Ctx:
+            def __enter__(self):
+                reset_peak()
+                self.start = time.perf_counter()
+                self.task = stages.progress.stage(name, total)
+                return self.task.__enter__()
+
+            def __exit__(self, *exc):
+                self.task.__exit__(*exc)
+                stages.seconds[name] = round(stages.seconds.get(name, 0.0) + time.perf_counter() - self.start, 3)
+                stages.peak[name] = max(stages.peak.get(name, 0), peak_bytes())
+
+        return _Ctx()
+
+    def part(self, name: str):
+        """Time one more piece of a stage that runs in pieces (seconds add up, peaks max)."""
+        stages = self
+
+        class _Part:
+            def __enter__(self):
+                reset_peak()
+                self.start = time.perf_counter()
+
+            def __exit__(self, *exc):
+                stages.seconds[name] = round(stages.seconds.get(name, 0.0) + time.perf_counter() - self.start, 3)
+                stages.peak[name] = max(stages.peak.get(name, 0), peak_bytes())
+
+        return _Part()
+
+
+def run_job(
+    events: str | Path,
+    spec: EventSpec,
+    options: RunOptions,
+    out: str | Path,
+    progress: StageProgress = QUIET,
+    command: list[str] | None = None,
+) -> dict:
+    """Build and publish the neighbour index of ``events`` into ``out``; return the manifest
+    (the same record as ``out/manifest.json``). ``command``: the command line, when run
+    from one."""
+    options.validate()
+    if spec.segment is not None or spec.period is not None:
+        raise ParameterError("lshjob run signs one set per entity; sign segments or periods with lshjob sign")
+    out = output_folder(out, [events], "run")  # before anything is read or made
+    scratch_folder(options.scratch)
+    memory = parse_size(options.memory) if options.memory else default_memory()
+    lock = output_lock(out, wait=options.wait, what="index").acquire()  # before any work, or Busy
+    work = work_folder(out, options.scratch)
+    stages = _Stages(progress)
+    counts: dict[str, object] = {}
+    started = time.perf_counter()
+    started_at = provenance.utc_now()
+    run_id = provenance.new_run_id(started_at)
+    try:
+        warnings = lock.notes + remove_leftovers(out, options.scratch)  # holding the lock: all are dead runs'
+        # started first: reading and hashing the files (no GIL) fills the other core while the
+        # process's first compiled call loads numba's registries (GIL-bound) during the checks
+        digest = digest_in_background([str(p) for p in resolve_paths(events)[0]])
+        with stages("ingest"):
+            source = open_events(events, spec)
+        in_parts = (options.parts or 0) > 1 or (
+            options.parts is None and grouping_need(source) > parts.ONE_PART_SHARE * memory)
+        built = (prepare.in_parts if in_parts else prepare.in_one_part)(source, options, memory, work, stages)
+        report, plan = built.report, built.plan
+        warnings += built.warnings
+        counts.update(events=report.rows_read, entities=len(built.keys), membership_rows=report.membership_rows,
+                      empty_after_filter=report.empty_after_filter, null_rows_dropped=report.null_rows_dropped,
+                      parts=len(built.store.ranges), representatives=built.representatives,
+                      entities_in_identical_groups=int(len(built.keys) - built.representatives))
+        if report.empty_after_filter:
+            warnings.append(f"{report.empty_after_filter} entities had no element left after --min-count "
+                            f"{source.min_count:g}; they are not in the index")
+
+        if built.bucket_files is None:  # identical sets only: no bands; across parts, by fingerprint
+            skew = None
+            counts.update(bucket_rows=0, candidate_pairs=built.identical_pairs)
+            with stages("verify"):
+                verified = (parts.verify_blocks(built.candidates, built.store, 1.0, None, memory)
+                            if built.candidates is not None else parts.empty_verified())
+            counts["verified_pairs"] = verified.height
+        else:
+            counts["bucket_rows"] = built.bucket_rows
+            counts["shared_bucket_rows"] = built.shared_rows
+            with stages("join"):
+                # DuckDB gets what the budget leaves beside what the process holds, less what
+                # it takes beyond its limit; held sets go to the work folder when that is short.
+                threads = join_threads()
+                release_freed()
+                limit = duckdb_limit(memory, current_bytes(), built.shared_rows, threads)
+                if limit < duckdb_need(built.shared_rows) and isinstance(built.store, parts.HeldSets):
+                    built.store = built.store.saved(work / "sets")
+                    release_freed()
+                    limit = duckdb_limit(memory, current_bytes(), built.shared_rows, threads)
+                require_duckdb_memory(limit, built.shared_rows, current_bytes(), memory, threads)
+                settings = JoinSettings(memory_limit=f"{limit // 2**20}MiB", temp_directory=str(work / "spill"),
+                                        threads=threads, max_bucket=options.max_bucket)
+                candidates = work / ("candidates" if in_parts else "candidates.parquet")
+                joined = candidate_pairs(built.bucket_files, candidates, settings, plan["bands"], built.bucket_rows,
+                                         part_ranges=built.store.ranges if in_parts else None)
+            skew = joined["skew"]
+            counts["candidate_pairs"] = joined["candidate_pairs"]
+            if skew["skipped_pairs"]:
+                warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over --max-bucket "
+                                f"{options.max_bucket}, still over it once split) were not compared")
+
+            with stages("verify"):
+                verified = parts.verify_blocks(candidates, built.store, options.threshold, built.params, memory)
+            counts["verified_pairs"] = verified.height
+        built.store = None  # the sets are not needed any more: publishing gets their memory
+
+        top_k = publish.effective_top_k(options.top_k, len(built.keys))
+        if top_k < options.top_k and len(built.keys) > 1:
+            warnings.append(f"--top-k {options.top_k} is more than the {len(built.keys) - 1} other entities; "
+                            f"used {top_k}")
+        with stages("publish"):
+            # blocks sized from what the budget leaves beside what the process holds
+            release_freed()
+            expansion = publish.expand(verified, built.rep_of, top_k, plan.get("bands", 0),
+                                       publish.block_rows(memory, current_bytes()))
+            del verified
+            publish.check_output(expansion.published_rows, built.keys, options.top_k, memory,
+                                 publish.identical_rows(built.rep_of, top_k)[2])
+            meta = provenance.neighbours_metadata(run_id, options, spec, top_k)
+            release_freed()
+            blocks = publish.neighbour_blocks(expansion, built.keys, publish.block_rows(memory, current_bytes()))
+            facts = publish.stage_neighbours(out, blocks, meta)
+        counts["published_rows"] = facts["rows"]
+        if counts["published_rows"] == 0 and len(built.keys) > 1:  # one entity is warned of when planning
+            warnings.append("no pair reached the threshold: the index is empty")
+        manifest = {
+            "format": "lshjob-index",
+            "format_version": 1,
+            "run_id": run_id,
+            "started_at": provenance.iso(started_at),
+            "host": provenance.host(),
+            "command": list(command) if command is not None else None,
+            "inputs": provenance.inputs(events, report, digest),
+            "spec": asdict(spec),
+            "options": asdict(options),
+            "top_k_effective": top_k,
+            "memory_budget_bytes": memory,
+            "plan": plan,
+            "counts": counts,
+            "skew": skew,
+            "peak_memory_bytes": stages.peak,
+            "versions": provenance.versions(),
+            "output": facts,
+            "out": str(out.absolute()),
+            "warnings": warnings,
+        }
+        manifest["seconds"] = dict(stages.seconds, total=round(time.perf_counter() - started, 3))
+        manifest["finished_at"] = provenance.iso(provenance.utc_now())
+        manifest = json.loads(json.dumps(manifest, default=str))  # what the file holds, exactly
+        with stopping.held():  # a stop signal waits: the index is renamed whole or not at all
+            publish.commit_index(out, manifest)
+            stopping.mark_published()
+        return manifest
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+        publish.discard_staging(out)
+        lock.release()  # and the folder, when the lock made it and nothing was written
+
+

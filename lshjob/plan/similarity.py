@@ -1,0 +1,324 @@
+"""Pair-similarity distribution of a sample of entities, for data-mode planning and audits.
+
+Exact mode counts intersections through an inverted index (element -> sampled entities):
+for a sample of m entities it visits sum over elements of (postings choose 2) pairs and
+returns all m(m-1)/2 Jaccard similarities. Signature mode estimates them from signatures
+(fraction of equal positions), for when only a signature file is at hand.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import polars as pl
+
+from lshjob.core._jit import numba
+from lshjob.core.compile_cache import readonly
+from lshjob.errors import InputError
+from lshjob.core.sets import Membership
+from lshjob.plan.banding import PairHistogram
+from lshjob.sign.signatures import SignatureParams, comparable, signature_array
+
+HISTOGRAM_BINS = 1000
+
+
+def sample_keys(keys: pl.Series, m: int, seed: int = 0) -> pl.Series:
+    """A seeded uniform sample of m distinct keys (all of them when there are at most m)."""
+    uniq = keys.unique().sort()
+    if uniq.len() <= m:
+        return uniq
+    idx = np.sort(np.random.default_rng(seed).choice(uniq.len(), size=m, replace=False))
+    return uniq.gather(idx)
+
+
+@numba.njit(cache=True)
+def postings_of(offsets, elems, n_elements):
+    """Inverted index of a CSR with dense element ids: entities holding element e are
+    ``members[starts[e]:starts[e+1]]``."""
+    counts = np.zeros(n_elements + 1, dtype=np.int64)
+    for e in elems:
+        counts[e + 1] += 1
+    starts = np.cumsum(counts)
+    fill = starts[:-1].copy()
+    members = np.empty(len(elems), dtype=np.int64)
+    for a in range(len(offsets) - 1):
+        for j in range(offsets[a], offsets[a + 1]):
+            e = elems[j]
+            members[fill[e]] = a
+            fill[e] += 1
+    return starts, members
+
+
+@numba.njit(parallel=True, cache=True)
+def _all_pairs_jaccard(offsets, elems, starts, members):
+    m = len(offsets) - 1
+    out = np.empty(m * (m - 1) // 2, dtype=np.float64)
+    for a in numba.prange(m):
+        inter = np.zeros(m, dtype=np.int64)
+        for j in range(offsets[a], offsets[a + 1]):
+            e = elems[j]
+            for t in range(starts[e], starts[e + 1]):
+                b = members[t]
+                if b > a:
+                    inter[b] += 1
+        base = a * m - a * (a + 1) // 2
+        size_a = offsets[a + 1] - offsets[a]
+        for b in range(a + 1, m):
+            union = size_a + offsets[b + 1] - offsets[b] - inter[b]
+            out[base + b - a - 1] = inter[b] / union
+    return out
+
+
+@numba.njit(parallel=True, cache=True)
+def _all_pairs_estimate(sig):
+    m, k = sig.shape
+    out = np.empty(m * (m - 1) // 2, dtype=np.float64)
+    for a in numba.prange(m):
+        base = a * m - a * (a + 1) // 2
+        for b in range(a + 1, m):
+            eq = 0
+            for i in range(k):
+                if sig[a, i] == sig[b, i]:
+                    eq += 1
+            out[base + b - a - 1] = eq / k
+    return out
+
+
+@numba.njit(inline="always")
+def overlap_counts(offsets, elements, starts, members, a, allowed, inter, touched):
+    """For entity a, add |A n B| into inter[b] for every allowed b != a sharing an element;
+    list those b in touched[:returned count]. The caller resets inter for them."""
+    nt = 0
+    for j in range(offsets[a], offsets[a + 1]):
+        e = elements[j]
+        for t in range(starts[e], starts[e + 1]):
+            b = members[t]
+            if b == a or not allowed[b]:
+                continue
+            if inter[b] == 0:
+                touched[nt] = b
+                nt += 1
+            inter[b] += 1
+    return nt
+
+
+@numba.njit(parallel=True, cache=True)
+def _against_all_histogram(offsets, elements, starts, members, sizes, sample, nbins, threshold, chunks):
+    n = offsets.shape[0] - 1
+    allowed = np.ones(n, dtype=np.bool_)
+    counts = np.zeros((chunks, 2 * nbins), dtype=np.int64)
+    sums = np.zeros((chunks, 2 * nbins), dtype=np.float64)
+    identical = np.zeros(chunks, dtype=np.int64)
+    for c in numba.prange(chunks):
+        inter = np.zeros(n, dtype=np.int32)
+        touched = np.empty(n, dtype=np.int64)
+        for s in range(c, len(sample), chunks):
+            a = sample[s]
+            nt = overlap_counts(offsets, elements, starts, members, a, allowed, inter, touched)
+            size_a = sizes[a]
+            for q in range(nt):
+                b = touched[q]
+                jac = inter[b] / (size_a + sizes[b] - inter[b])
+                inter[b] = 0
+                if jac >= 1.0:
+                    identical[c] += 1
+                else:
+                    k = 2 * min(int(jac * nbins), nbins - 1) + (1 if jac >= threshold else 0)
+                    counts[c, k] += 1
+                    sums[c, k] += jac
+    return counts.sum(axis=0), sums.sum(axis=0), identical.sum()
+
+
+def visit_costs(offsets: np.ndarray, dense: np.ndarray, starts: np.ndarray) -> np.ndarray:
+    """Per entity, the posting visits needed to pair it with every entity."""
+    return segment_sums(np.diff(starts)[dense], offsets)
+
+
+def segment_sums(values: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Sum of values[offsets[i]:offsets[i+1]] for each i (empty segments sum to 0)."""
+    total = np.zeros(len(values) + 1, dtype=np.int64)
+    np.cumsum(values, out=total[1:])
+    return total[offsets[1:]] - total[offsets[:-1]]
+
+
+def restricted_index(sets: Membership, wanted: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
+    """Each entity's elements that are among ``wanted`` codes, renumbered 0..len(wanted)-1:
+    (offsets, dense ids, number of ids). Pairing sampled entities with all entities needs
+    only the elements the sampled sets hold."""
+    wanted = np.unique(np.asarray(wanted, dtype=np.int64))
+    offsets, dense = _restricted(sets.offsets, sets.elements, wanted)
+    return offsets, dense, len(wanted)
+
+
+GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+
+
+@numba.njit(parallel=True, cache=True)
+def _restricted(offsets, elements, wanted):
+    """:func:`restricted_index` in two passes, both cores: count each set's wanted elements,
+    then write the dense ids of the sets that hold any (at 1M sets, 13k of them).
+    Most elements are not wanted (0.3M of 40M at 1M): a bitmap of the wanted codes'
+    multiplicative hashes (16 bits or more per wanted code, so a few percent of the rest
+    pass) rules them out, and a binary search in ``wanted`` (sorted) settles the rest and
+    gives the dense id. Twice as fast as polars' ``is_in`` with numpy indexing (0.10 s
+    against 0.22 s at 1M, measured)."""
+    bits = 6
+    while (1 << bits) < 16 * len(wanted):
+        bits += 1
+    shift = np.uint64(64 - bits)
+    bitmap = np.zeros(1 << (bits - 6), dtype=np.uint64)
+    for x in wanted:
+        h = (np.uint64(x) * GOLDEN) >> shift
+        bitmap[h >> np.uint64(6)] |= np.uint64(1) << (h & np.uint64(63))
+    n = len(offsets) - 1
+    counts = np.zeros(n + 1, dtype=np.int64)
+    for i in numba.prange(n):
+        c = 0
+        for j in range(offsets[i], offsets[i + 1]):
+            if _wanted_id(elements[j], wanted, bitmap, shift) >= 0:
+                c += 1
+        counts[i + 1] = c
+    kept = np.cumsum(counts)
+    dense = np.empty(kept[-1], dtype=np.int64)
+    for i in numba.prange(n):
+        at = kept[i]
+        if kept[i + 1] == at:  # most sets hold no wanted element: not read again
+            continue
+        for j in range(offsets[i], offsets[i + 1]):
+            p = _wanted_id(elements[j], wanted, bitmap, shift)
+            if p >= 0:
+                dense[at] = p
+                at += 1
+    return kept, dense
+
+
+@numba.njit(inline="always")
+def _wanted_id(x, wanted, bitmap, shift):
+    """Position of ``x`` in ``wanted``, or -1."""
+    h = (np.uint64(x) * GOLDEN) >> shift
+    if not (bitmap[h >> np.uint64(6)] >> (h & np.uint64(63))) & np.uint64(1):
+        return -1
+    lo, hi = 0, len(wanted)  # binary search (numba's np.searchsorted costs a second to compile)
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if wanted[mid] < x:
+            lo = mid + 1
+        else:
+            hi = mid
+    if lo < len(wanted) and wanted[lo] == x:
+        return lo
+    return -1
+
+
+def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:
+    """All pairwise exact Jaccard similarities among the entities of membership rows,
+    pairs (i, j), i < j, in row-major order of sorted entity keys."""
+    sets = Membership.from_sets(sets)
+    if sets.size < 2:
+        raise InputError(f"the sample needs at least 2 entities; got {sets.size}")
+    return _within_jaccard(sets)
+
+
+def _within_jaccard(sets: Membership) -> np.ndarray:
+    uniq, dense = np.unique(sets.elements, return_inverse=True)
+    dense = dense.astype(np.int64)
+    starts, members = postings_of(sets.offsets, dense, len(uniq))
+    return _all_pairs_jaccard(sets.offsets, dense, starts, members)
+
+
+def estimated_pair_similarities(signatures: pl.DataFrame, params: SignatureParams) -> np.ndarray:
+    """All pairwise signature estimates among the rows of a signature table."""
+    if signatures.height < 2:
+        raise InputError(f"the sample needs at least 2 entities; got {signatures.height}")
+    return _all_pairs_estimate(readonly(comparable(signature_array(signatures), params)))
+
+
+def histogram(
+    similarities: np.ndarray, sample_entities: int, total_entities: int, threshold: float | None = None
+) -> PairHistogram:
+    """Bin similarities below 1 (1000 bins) keeping each bin's mean similarity; pairs of
+    identical sets (similarity 1) are counted apart (see :class:`PairHistogram`). With a
+    threshold, pairs on either side of it are kept in separate entries."""
+    identical = similarities >= 1.0
+    rest = similarities[~identical]
+    side = (rest >= threshold) if threshold is not None else np.zeros(len(rest), dtype=bool)
+    bins = 2 * np.minimum((rest * HISTOGRAM_BINS).astype(np.int64), HISTOGRAM_BINS - 1) + side
+    counts = np.bincount(bins, minlength=2 * HISTOGRAM_BINS)
+    sums = np.bincount(bins, weights=rest, minlength=2 * HISTOGRAM_BINS)
+    return _make(counts, sums, sample_entities, total_entities, int(identical.sum()), "within", threshold)
+
+
+def _make(counts, sums, sample_entities, total_entities, identical, design, threshold, factor=1.0):
+    keep = counts > 0
+    flags = (np.arange(len(counts)) % 2 == 1)[keep]
+    return PairHistogram(
+        similarity=sums[keep] / counts[keep],
+        counts=counts[keep] * factor,
+        sample_entities=sample_entities,
+        total_entities=total_entities,
+        identical_pairs=identical * factor,
+        design=design,
+        threshold=threshold,
+        at_or_above=flags if threshold is not None else None,
+    )
+
+
+AGAINST_ALL_BUDGET = 1e9  # posting visits, a few seconds on two cores
+MIN_AGAINST_ALL = 200
+
+
+def sample_histogram_from_sets(
+    sets: pl.DataFrame | Membership,
+    sample: int = 2000,
+    seed: int = 0,
+    total_entities: int | None = None,
+    threshold: float | None = None,
+) -> PairHistogram:
+    """Exact pair-similarity histogram of up to ``sample`` entities drawn from membership rows.
+
+    Sampled entities are paired with every entity of the input (exact Jaccard through an
+    inverted index), which sees m x N pairs instead of the m^2 within the sample: similar
+    pairs are rare, and a within-sample histogram often holds too few to plan on. The sample
+    is a prefix of a random order of entities, cut where its posting visits would pass
+    1e9 (so it stays a uniform sample); if fewer than 200 entities fit, the sample of
+    ``sample`` entities is paired within itself instead.
+    """
+    members = sets if isinstance(sets, Membership) else Membership.from_sets(sets)
+    if members.size < 2:
+        raise InputError(f"the sample needs at least 2 entities; got {members.size}")
+    n_total = total_entities or members.size
+    rng = np.random.default_rng(seed)
+    order = rng.permutation(members.size)[: min(sample, members.size)]
+    if members.size > len(order):
+        offsets, dense, n_ids = restricted_index(members, members.subset(order).elements)
+        starts, posted = postings_of(offsets, dense, n_ids)
+        costs = visit_costs(offsets, dense, starts)[order]
+        affordable = int(np.searchsorted(np.cumsum(costs), AGAINST_ALL_BUDGET, "right"))
+    else:
+        affordable = 0
+    if members.size > len(order) and affordable >= min(MIN_AGAINST_ALL, len(order)):
+        picked = np.sort(order[:affordable])
+        counts, sums, identical = _against_all_histogram(
+            offsets, dense, starts, posted, members.set_sizes, picked, HISTOGRAM_BINS,
+            2.0 if threshold is None else threshold, min(len(picked), 2 * numba.get_num_threads()),
+        )
+        # factor rescales from the input's own entity count to the requested total.
+        return _make(counts, sums, len(picked), n_total, identical, "against_all", threshold,
+                     factor=n_total / members.size)
+    picked = np.sort(order)
+    sims = _within_jaccard(members.subset(picked))
+    return histogram(sims, len(picked), n_total, threshold)
+
+
+def sample_histogram_from_signatures(
+    signatures: pl.DataFrame,
+    params: SignatureParams,
+    sample: int = 2000,
+    seed: int = 0,
+    total_entities: int | None = None,
+    threshold: float | None = None,
+) -> PairHistogram:
+    """Estimated pair-similarity histogram of ``sample`` rows of a signature table."""
+    picked = sample_keys(signatures["entity"], sample, seed)
+    sub = signatures.filter(pl.col("entity").is_in(picked.implode())).sort("entity")
+    n_total = total_entities or signatures["entity"].n_unique()
+    return histogram(estimated_pair_similarities(sub, params), sub.height, n_total, threshold)

@@ -1,0 +1,138 @@
+"""Readable text for the terminal: plan tables and run summaries."""
+
+from __future__ import annotations
+
+from lshjob.report.charts import text_s_curve
+
+
+def _fmt(x: float) -> str:
+    if x >= 1e6:
+        return f"{x:,.3g}".replace("e+0", "e").replace("e+", "e")
+    return f"{x:,.1f}" if x < 100 else f"{x:,.0f}"
+
+
+def plan_report(result) -> str:
+    """The chosen plan, runners-up and the S-curve, as plain text."""
+    t = result.threshold
+    if result.mode == "identical-only":
+        return f"identical-only mode: {result.chosen['why']}"
+    lines = [f"{result.mode} mode, threshold {t}: k={result.perms}, b={result.bands}, r={result.rows} "
+             f"(approximate threshold {result.chosen['approximate_threshold']:.3f})", ""]
+    if result.chosen.get("meets_target") is False:
+        lines[0] += f"; does NOT reach the recall target {result.sample['recall_target']}"
+    rows = [result.chosen, *result.runners_up]
+    if result.mode == "theory":
+        header = f"{'':2}{'k':>5}{'b':>5}{'r':>4}{'FP area':>11}{'FN area':>11}{'weighted':>11}{'P(t)':>8}"
+        lines.append(header)
+        for i, p in enumerate(rows):
+            mark = "> " if i == 0 else "  "
+            lines.append(
+                f"{mark}{p['perms']:>5}{p['bands']:>5}{p['rows']:>4}{p['false_positive_area']:>11.5f}"
+                f"{p['false_negative_area']:>11.5f}{p['weighted_error']:>11.5f}{p['probability_at_threshold']:>8.3f}"
+            )
+    else:
+        s = result.sample
+        lines.append(
+            f"sample: {s['sampled_entities']} of {s['total_entities']} entities from {s['path']} "
+            f"({s['similarity']}); {s['sampled_pairs']:,} pairs, "
+            f"{s['sampled_pairs_at_or_above_threshold']:,} at or above {t} and "
+            f"{s['sampled_identical_pairs']:,} of identical sets (found by collapsing, not banding)"
+        )
+        lines.append("")
+        lines.append(
+            f"{'':2}{'k':>5}{'b':>5}{'r':>4}{'recall':>8}{'candidates':>13}{'per entity':>12}"
+            f"{'verified':>12}{'false cand.':>13}{'bucket rows':>13}"
+        )
+        for i, p in enumerate(rows):
+            mark = "> " if i == 0 else "  "
+            lines.append(
+                f"{mark}{p['perms']:>5}{p['bands']:>5}{p['rows']:>4}{p['expected_recall']:>8.3f}"
+                f"{_fmt(p['expected_candidates']):>13}{_fmt(p['candidates_per_entity']):>12}"
+                f"{_fmt(p['expected_verified']):>12}{_fmt(p['expected_false_candidates']):>13}"
+                f"{p['bucket_rows']:>13,}"
+            )
+        for note in result.chosen.get("notes", []):
+            lines.append(f"note: {note}")
+    lines += ["", text_s_curve(result.bands, result.rows, t)]
+    return "\n".join(lines)
+
+
+def _mib(n: int) -> str:
+    return f"{n / 2**20:,.0f} MiB"
+
+
+def run_report(m: dict) -> str:
+    """Summary of a run: plan, counts per stage, skew handling, time and memory."""
+    plan, c = m["plan"], m["counts"]
+    lines = [f"index -> {m['out']} ({m['output']['rows']:,} neighbour rows)"]
+    if plan["mode"] == "identical-only":
+        lines.append(f"plan: {plan['why']}")
+    else:
+        p = plan["predicted"]
+        lines.append(
+            f"plan ({plan['mode']}): k={plan['perms']}, b={plan['bands']}, r={plan['rows']}; predicted recall "
+            f"{p['expected_recall']:.3f}, {p['expected_candidates']:,.0f} candidate pairs"
+        )
+    lines.append(
+        f"entities {c['entities']:,} ({c['representatives']:,} after collapsing identical sets), "
+        f"events {c['events']:,}"
+        + (f"; read in {c['parts']} parts (key ranges, one at a time; memory budget "
+           f"{m['memory_budget_bytes'] / 2**30:.1f} GiB)" if c.get("parts", 1) > 1 else "")
+    )
+    lines.append(
+        f"bucket rows {c['bucket_rows']:,} -> candidates {c['candidate_pairs']:,} -> verified "
+        f"{c['verified_pairs']:,} -> published {c['published_rows']:,}"
+    )
+    skew = m.get("skew")
+    if skew:
+        text = f"skew: largest bucket {skew['largest_bucket']:,}"
+        if skew["oversize_buckets"]:
+            text += (
+                f"; {skew['oversize_buckets']:,} bucket(s) over --max-bucket {skew['max_bucket']:,} split by the "
+                f"next band ({skew['split_pairs']:,} of {skew['oversize_pairs']:,} potential pairs kept, "
+                f"{skew['skipped_pairs']:,} left out)"
+            )
+        else:
+            text += f", within --max-bucket {skew['max_bucket']:,}"
+        lines.append(text)
+        if skew["skipped_pairs"]:
+            lines.append(
+                "warning: pairs that meet only in skipped buckets are not found, so recall can fall below "
+                "the prediction; check with lshjob audit, and raise --max-bucket or use more rows per band"
+            )
+    lines.append("stage      seconds   peak memory")
+    for stage, secs in m["seconds"].items():
+        if stage == "total":
+            continue
+        peak = m["peak_memory_bytes"].get(stage)
+        lines.append(f"{stage:<10}{secs:>8.2f}   {_mib(peak) if peak else '':>11}")
+    lines.append(f"{'total':<10}{m['seconds']['total']:>8.2f}")
+    return "\n".join(lines)
+
+
+def audit_report(r: dict) -> str:
+    """What an audit measured, as plain text."""
+    if not r.get("audited", True):
+        return f"audit of {r['index']} stopped before measuring"
+    rec = "n/a" if r["recall"] is None else f"{r['recall']:.4f}"
+    pred = "n/a" if r["predicted_recall"] is None else f"{r['predicted_recall']:.4f}"
+    lines = [
+        f"audit of {r['index']}: {r['sampled_entities']} sampled entities against {r['compared_against']}",
+        f"true pairs at or above {r['threshold']}: {r['true_pairs']:,}; true top-{r['top_k']} places "
+        f"{r['expected_in_index']:,}, filled by published neighbours {r['found']:,}"
+        + (f" ({r['entities_tied_at_top_k']:,} entities with neighbours tied at the cut)"
+           if r.get("entities_tied_at_top_k") else ""),
+        f"recall {rec} (S-curve predicts {pred})"
+        + ("" if r.get("min_recall") is None else f"; --min-recall {r['min_recall']}"),
+    ]
+    if r.get("distinct_recall") is not None:
+        lines.append(
+            f"over {r['distinct_set_pairs']:,} distinct pairs of different sets: recall {r['distinct_recall']:.4f}, "
+            f"S-curve predicts {r['distinct_predicted']:.4f} +/- {r['distinct_se']:.4f} (one s.e.)"
+        )
+    lines += [
+        f"published pairs checked {r['published_pairs_checked']:,}; wrong {r['wrong_pairs']}",
+    ]
+    for entity, neighbour, stored, exact in r["wrong_examples"]:
+        lines.append(f"  wrong: {entity} and {neighbour}: stored Jaccard {stored:.4f}, exact {exact:.4f}")
+    return "\n".join(lines)  # warnings and failed checks: on stderr (lshjob audit)

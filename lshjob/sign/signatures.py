@@ -1,0 +1,399 @@
+"""Sign stage: membership rows -> MinHash signatures; merging; the signature file.
+
+Two schemes, recorded in every signature file and never mixed. Scheme ``oph`` (one
+permutation hashing with densification at comparison time) is in :mod:`lshjob.sign.oph`.
+
+Scheme ``kperm`` (k-permutation MinHash; Broder, "On the resemblance and containment
+of documents", 1997). Position i of a set's signature is
+
+    sig[i] = min over elements x of fmix64(xxh64(x) XOR salt[i])
+
+where xxh64 hashes the element key's canonical UTF-8 text with seed 0, salt is the
+SplitMix64 sequence started at the user's seed and fmix64 is MurmurHash3's finaliser
+(all in :mod:`lshjob.core.hashing`). Each fmix64(. XOR salt[i]) is a bijection of the
+64-bit words, so distinct hashed elements never tie. The Jaccard estimate is the
+fraction of equal positions (Broder 1997).
+
+Output contract of :func:`sign_sets` (a polars DataFrame):
+
+* the key columns (``entity``, and ``segment``/``period`` when present), unique, sorted;
+* ``signature``: List(UInt64) of length k;
+* ``set_size``: UInt32, number of distinct elements signed (exact unless the file
+  metadata says ``set_size: estimated``, which :func:`merge_signatures` produces).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+import polars as pl
+
+from lshjob.core._jit import numba
+from lshjob.sign import oph
+from lshjob.errors import IncompatibleSignatures, InputError, ParameterError
+from lshjob.core.hashing import element_hashes, fmix64, splitmix64_sequence, xxh64_strings
+from lshjob.core.sets import Membership, element_hash, store_row
+
+FORMAT_NAME = "lshjob-signatures"
+FORMAT_VERSION = 1
+METADATA_KEY = "lshjob"
+HASH_FAMILY = "xxh64-seed0+fmix64-xor-splitmix64-salt"
+SCHEMES = ("kperm", "oph")
+MAX_U64 = np.iinfo(np.uint64).max
+
+
+@dataclass(frozen=True)
+class SignatureParams:
+    """What defines a signature: two files may be merged or compared only if these agree."""
+
+    scheme: str = "kperm"
+    perms: int = 128
+    seed: int = 1
+
+    def __post_init__(self) -> None:
+        if self.scheme not in SCHEMES:
+            raise ParameterError(f"--scheme must be one of {', '.join(SCHEMES)}; got {self.scheme!r}")
+        if not 1 <= self.perms <= 4096:
+            raise ParameterError(f"--perms must be in [1, 4096]; got {self.perms}")
+        if not 0 <= self.seed < 2**64:
+            raise ParameterError(f"--seed must be in [0, 2**64); got {self.seed}")
+
+    def salts(self) -> np.ndarray:
+        return splitmix64_sequence(self.seed, self.perms)
+
+
+CHUNK = 256  # entities per parallel task: one row buffer each
+
+
+@numba.njit(parallel=True, cache=True)
+def _sign_kperm(offsets, codes, table, ids, salts, by_position):
+    """Sets ids[t] of a CSR element array (elements as in :func:`membership.element_hash`)."""
+    n = ids.shape[0]
+    k = salts.shape[0]
+    # filled a chunk at a time in parallel, so pages are first touched by the threads
+    out = np.empty((k, n) if by_position else (n, k), dtype=np.uint64)
+    for c in numba.prange((n + CHUNK - 1) // CHUNK):
+        row = np.empty(k, dtype=np.uint64)
+        for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
+            g = ids[t]
+            row[:] = np.uint64(0xFFFFFFFFFFFFFFFF)
+            for j in range(offsets[g], offsets[g + 1]):
+                x = element_hash(j, codes, table)
+                for i in range(k):
+                    v = fmix64(x ^ salts[i])
+                    if v < row[i]:
+                        row[i] = v
+            store_row(out, t, row, by_position)
+    return out
+
+
+NO_ARRAY = np.empty(0, dtype=np.uint64)
+
+
+def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params: SignatureParams) -> np.ndarray:
+    """Signatures (n_sets x k, uint64) of sets given as element hashes in CSR form.
+
+    Set g is ``h0[offsets[g]:offsets[g+1]]``; every set must be non-empty.
+    """
+    h0 = np.ascontiguousarray(h0, dtype=np.uint64)
+    offsets = np.ascontiguousarray(offsets, dtype=np.int64)
+    return _sign(offsets, np.empty(0, dtype=np.int64), h0, np.arange(len(offsets) - 1), params, False)
+
+
+def _sign(offsets, codes, table, ids, params: SignatureParams, by_position: bool) -> np.ndarray:
+    if params.scheme == "oph":  # the stored form (densified by position: comparable_by_position)
+        return oph.sign_oph(offsets, codes, table, ids, params.perms, oph_salts(params))
+    return _sign_kperm(offsets, codes, table, ids, params.salts(), by_position)
+
+
+def oph_salts(params: SignatureParams) -> np.ndarray:
+    """Salts of the oph scheme: bin, value and densification probes (SplitMix64 of the seed)."""
+    return splitmix64_sequence(params.seed, 3)
+
+
+def comparable(matrix: np.ndarray, params: SignatureParams) -> np.ndarray:
+    """Signatures ready to compare or band: densified for ``oph``, unchanged for ``kperm``."""
+    if params.scheme == "oph":
+        return oph.densify(np.ascontiguousarray(matrix), oph_salts(params)[2], False)
+    return matrix
+
+
+def sign_membership(sets: Membership, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
+    """Signatures (len(ids) x k) of the sets ``ids`` of a :class:`~lshjob.core.sets.Membership`.
+    Elements are hashed inside the signing loop: no copy of the sets, no array of hashes."""
+    return _sign(*_membership_source(sets, ids), params, False)
+
+
+def comparable_by_position(sets: Membership, ids: np.ndarray, params: SignatureParams,
+                           positions: int | None = None) -> np.ndarray:
+    """The first ``positions`` (default k) positions of the comparable signatures (densified
+    for ``oph``) of the sets ``ids``, laid out by position: a (positions x len(ids)) matrix
+    whose row i holds position i of every signature, so each row is a contiguous column for
+    polars (the band stage reads positions, not rows, and only the first b x r of them)."""
+    positions = params.perms if positions is None else positions
+    if params.scheme == "oph":
+        return oph.sign_densified(*_membership_source(sets, ids), params.perms, oph_salts(params), positions)
+    prefix = SignatureParams(scheme="kperm", perms=positions, seed=params.seed)  # salts: a prefix of one sequence
+    return _sign(*_membership_source(sets, ids), prefix, True)
+
+
+def _membership_source(sets: Membership, ids: np.ndarray) -> tuple:
+    table = NO_ARRAY if sets.text_hashes is None else np.ascontiguousarray(sets.text_hashes, dtype=np.uint64)
+    return sets.offsets, sets.elements, table, np.ascontiguousarray(ids, dtype=np.int64)
+
+
+def signature_slices(sets: Membership, params: SignatureParams, rows: int) -> Iterator[pl.DataFrame]:
+    """The signature table (module contract, key ``entity``) of every set of a Membership,
+    ``rows`` sets at a time (for a writer that streams them)."""
+    sizes = sets.set_sizes
+    for lo in range(0, max(sets.size, 1), max(rows, 1)):
+        hi = min(sets.size, lo + rows)
+        matrix = sign_membership(sets, np.arange(lo, hi), params)
+        yield pl.DataFrame({"entity": sets.keys.slice(lo, hi - lo)}).with_columns(
+            signature_column(matrix), pl.Series("set_size", sizes[lo:hi], dtype=pl.UInt32)
+        )
+
+
+def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:
+    """Convenience for small inputs and tests: one signature row per list of element keys."""
+    flat = [str(x) for s in sets for x in dict.fromkeys(s)]
+    sizes = [len(dict.fromkeys(s)) for s in sets]
+    if any(n == 0 for n in sizes):
+        raise InputError("cannot sign an empty set")
+    offsets = np.zeros(len(sets) + 1, dtype=np.int64)
+    np.cumsum(sizes, out=offsets[1:])
+    h0 = xxh64_strings(pl.Series(flat, dtype=pl.String))
+    return signature_matrix(h0, offsets, params)
+
+
+def sign_sets(sets: pl.DataFrame, keys: list[str], params: SignatureParams) -> pl.DataFrame:
+    """Membership rows (ingest contract, sorted by keys) -> signature table (module contract)."""
+    return next(sign_sets_slices(sets, keys, params, max(sets.height, 1)))
+
+
+def sign_sets_slices(sets: pl.DataFrame, keys: list[str], params: SignatureParams,
+                     rows: int) -> Iterator[pl.DataFrame]:
+    """:func:`sign_sets`, ``rows`` sets at a time (for a writer that streams them)."""
+    h0 = np.ascontiguousarray(element_hashes(sets.get_column("element")), dtype=np.uint64)
+    sizes = run_lengths(sets, keys)
+    offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
+    np.cumsum(sizes, out=offsets[1:])
+    key_frame = sets.select(keys).gather(offsets[:-1])
+    n = len(sizes)
+    for lo in range(0, max(n, 1), max(rows, 1)):
+        hi = min(n, lo + rows)
+        matrix = _sign(offsets, np.empty(0, dtype=np.int64), h0, np.arange(lo, hi), params, False)
+        yield key_frame.slice(lo, hi - lo).with_columns(
+            signature_column(matrix),
+            pl.Series("set_size", sizes[lo:hi], dtype=pl.UInt32),
+        )
+
+
+def run_lengths(table: pl.DataFrame, keys: list[str]) -> np.ndarray:
+    """Lengths of the runs of equal keys in a table sorted by ``keys``."""
+    key = pl.col(keys[0]) if len(keys) == 1 else pl.struct(keys)
+    return table.select(key.rle().struct.field("len"))["len"].to_numpy().astype(np.int64)
+
+
+def signature_column(matrix: np.ndarray) -> pl.Series:
+    """A (n x k) uint64 matrix as the List(UInt64) column ``signature``."""
+    k = matrix.shape[1]
+    return pl.Series("signature", matrix, dtype=pl.Array(pl.UInt64, k)).cast(pl.List(pl.UInt64))
+
+
+def signature_array(table: pl.DataFrame, k: int | None = None) -> np.ndarray:
+    """The ``signature`` column as a contiguous (n x k) uint64 matrix. ``k`` (the file's,
+    from its metadata) shapes a table without rows; without it such a table gives 0 x 0."""
+    col = table.get_column("signature")
+    if table.height == 0:
+        return np.empty((0, k or 0), dtype=np.uint64)
+    k = int(col.list.len().max()) if k is None else k
+    return np.ascontiguousarray(col.list.to_array(k).to_numpy(), dtype=np.uint64)
+
+
+def estimate_jaccard(a: np.ndarray, b: np.ndarray) -> np.ndarray | float:
+    """Fraction of equal positions: an unbiased estimate of Jaccard (Broder 1997).
+
+    For the ``oph`` scheme, pass signatures through :func:`comparable` first."""
+    return np.mean(np.asarray(a) == np.asarray(b), axis=-1)
+
+
+def estimate_set_size(matrix: np.ndarray) -> np.ndarray:
+    """Distinct-count estimate from k minima scaled to (0, 1): (k - 1) / sum(u_i).
+
+    With n elements each u_i ~ Beta(1, n), close to Exp(n); the sum of k of them is
+    Gamma(k, n), for which (k - 1)/sum is unbiased for n (Cohen, "Size-estimation
+    framework with applications to transitive closure and reachability", JCSS 1997;
+    from memory).
+    """
+    k = matrix.shape[1]
+    sums = np.empty(matrix.shape[0], dtype=np.float64)
+    step = oph.ESTIMATE_ROWS
+    for a in range(0, matrix.shape[0], step):  # blocks: no full-size float copies
+        sums[a:a + step] = ((matrix[a:a + step].astype(np.float64) + 1.0) / 2.0**64).sum(axis=1)
+    return np.maximum(1.0, (k - 1) / sums)
+
+
+def merge_matrices(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Element-wise minimum: the signature of the union of the two sets."""
+    return np.minimum(a, b)
+
+
+def merge_signatures(
+    tables: list[tuple[pl.DataFrame, dict]], keep: list[str]
+) -> tuple[pl.DataFrame, dict]:
+    """Combine signature rows that share the ``keep`` key columns by element-wise minimum.
+
+    ``keep=["entity"]`` folds all segments and periods of an entity into one set;
+    several files (for example last month's and this month's) are folded the same way.
+    Files must agree on scheme, k and seed. Tables without rows add nothing; when no table
+    has a row the result has none, with the columns and types of one that has.
+    """
+    first_meta = tables[0][1]
+    for _, meta in tables[1:]:
+        check_compatible(first_meta, meta)
+    for table, meta in tables:
+        missing = [c for c in keep if c not in table.columns]
+        if missing:
+            raise InputError(
+                f"{meta.get('path', 'signature table')}: column(s) {', '.join(missing)} not found; "
+                f"columns are: {', '.join(table.columns)}"
+            )
+    # k from the metadata, not from a row: a table may have none
+    k = int(first_meta["k"]) if "k" in first_meta else max(signature_array(t).shape[1] for t, _ in tables)
+    # Sort the keys only (with each row's place), not the signatures: gathering them in key
+    # order and taking the minimum is one compiled pass over each input matrix.
+    keys = pl.concat([t.select(keep) for t, _ in tables], how="vertical_relaxed")
+    order = keys.with_row_index("__row").sort(keep, maintain_order=True)
+    lengths = run_lengths(order, keep) if order.height else np.zeros(0, dtype=np.int64)
+    starts = np.zeros(len(lengths), dtype=np.int64)
+    np.cumsum(lengths[:-1], out=starts[1:])
+    matrices = numba.typed.List.empty_list(READONLY_MATRIX)  # polars' buffers are read-only
+    for t, _ in tables:
+        matrices.append(signature_array(t, k))
+    firsts = np.cumsum([0] + [t.height for t, _ in tables]).astype(np.int64)
+    matrix = _minimum_by_run(matrices, firsts, order["__row"].to_numpy().astype(np.int64), starts, lengths, k)
+    sizes = oph.set_size_estimate(matrix) if first_meta["scheme"] == "oph" else estimate_set_size(matrix)
+    merged = order.select(keep).gather(starts).with_columns(
+        signature_column(matrix),
+        pl.Series("set_size", np.round(sizes), dtype=pl.UInt32),
+    )
+    return merged, merged_meta(first_meta, keep)
+
+
+READONLY_MATRIX = numba.types.Array(numba.types.uint64, 2, "C", readonly=True)
+
+
+@numba.njit(parallel=True, cache=True)
+def _minimum_by_run(matrices, firsts, rows, starts, lengths, k):
+    """Row g of the result: the element-wise minimum of the rows ``rows[starts[g]:starts[g] +
+    lengths[g]]`` of the stacked matrices (matrix t holds rows firsts[t]..firsts[t + 1] - 1)."""
+    out = np.empty((starts.shape[0], k), dtype=np.uint64)
+    for g in numba.prange(starts.shape[0]):
+        row = out[g]
+        for j in range(starts[g], starts[g] + lengths[g]):
+            r = rows[j]
+            t = np.searchsorted(firsts, r, side="right") - 1
+            source = matrices[t][r - firsts[t]]
+            if j == starts[g]:
+                row[:] = source
+            else:
+                for i in range(k):
+                    row[i] = min(row[i], source[i])
+    return out
+
+
+def merged_meta(first_meta: dict, keep: list[str]) -> dict:
+    """The metadata of a merge's output: the inputs' scheme and hash family, the kept keys,
+    set sizes estimated, and a period unit only while periods are kept."""
+    meta = {k: v for k, v in first_meta.items() if k != "path"}
+    meta.update(keys=list(keep), set_size="estimated")
+    if "period" not in keep:
+        meta["period_unit"] = None
+    return meta
+
+
+def check_compatible(a: dict, b: dict) -> None:
+    for field_name in ("scheme", "hash", "k", "seed"):
+        if a.get(field_name) != b.get(field_name):
+            raise IncompatibleSignatures(
+                f"cannot combine signatures with different {field_name}: "
+                f"{a.get('path', 'first')} has {a.get(field_name)!r}, "
+                f"{b.get('path', 'second')} has {b.get(field_name)!r}"
+            )
+
+
+def signature_metadata(params: SignatureParams, keys: list[str], **extra) -> dict:
+    meta = {
+        "format": FORMAT_NAME,
+        "format_version": FORMAT_VERSION,
+        "scheme": params.scheme,
+        "hash": HASH_FAMILY,
+        "k": params.perms,
+        "seed": params.seed,
+        "keys": list(keys),
+        "set_size": "exact",
+    }
+    meta.update(extra)
+    return meta
+
+
+def params_from_metadata(meta: dict) -> SignatureParams:
+    return SignatureParams(scheme=meta["scheme"], perms=int(meta["k"]), seed=int(meta["seed"]))
+
+
+SIGNATURE_ROW_GROUP = 1 << 16
+
+
+def write_signatures(table: pl.DataFrame | pl.LazyFrame, path: str | Path, meta: dict) -> Path:
+    """Write a signature file atomically (temporary name in the same folder, then rename); a
+    lazy table is streamed into it (signatures made a key range at a time)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    metadata = {METADATA_KEY: json.dumps(meta, sort_keys=True)}
+    try:
+        # Row groups of 64k rows (about 70 MB at k=128): a read of one entity range (merge in
+        # parts) decodes little more than the rows it keeps.
+        if isinstance(table, pl.LazyFrame):
+            table.sink_parquet(tmp, compression="snappy", metadata=metadata, maintain_order=True,
+                               row_group_size=SIGNATURE_ROW_GROUP)
+        else:
+            table.write_parquet(tmp, compression="snappy", metadata=metadata, row_group_size=SIGNATURE_ROW_GROUP)
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+    return path
+
+
+def read_signatures(path: str | Path) -> tuple[pl.DataFrame, dict]:
+    """Read a signature file and its metadata; refuse files lshjob did not write."""
+    meta = signature_meta(path)
+    return pl.read_parquet(path), meta
+
+
+def signature_meta(path: str | Path) -> dict:
+    """The metadata of a signature file (its rows are not read); refuse files lshjob did
+    not write."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: no such signature file")
+    try:
+        raw = pl.read_parquet_metadata(path)
+    except Exception as exc:
+        raise InputError(f"{path}: not a Parquet file ({exc})") from exc
+    if METADATA_KEY not in raw:
+        raise InputError(f"{path}: not an lshjob signature file (no '{METADATA_KEY}' metadata)")
+    meta = json.loads(raw[METADATA_KEY])
+    if meta.get("format") != FORMAT_NAME or meta.get("format_version") != FORMAT_VERSION:
+        raise InputError(
+            f"{path}: signature format {meta.get('format')!r} version {meta.get('format_version')!r} "
+            f"is not supported; expected {FORMAT_NAME!r} version {FORMAT_VERSION}"
+        )
+    meta["path"] = str(path)
+    return meta
