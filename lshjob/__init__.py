@@ -18,7 +18,8 @@ os.environ.setdefault("_RJEM_MALLOC_CONF", "muzzy_decay_ms:0")
 # The public names load on first use (PEP 562), so that the ``lshjob`` command can take over
 # the stop signals (lshjob.cli.console) before polars, numba and DuckDB are imported.
 _PUBLIC = {
-    "merge_files": "jobs.merge", "sign_file": "jobs.sign",
+    "merge_files": "jobs.merge", "sign_file": "jobs.sign", "plan_banding": "jobs.plan",
+    "RunOptions": "jobs.run", "run_job": "jobs.run", "audit_index": "audit.check",
     "IncompatibleSignatures": "errors", "InputError": "errors", "LshjobError": "errors",
     "ParameterError": "errors",
     "EventSpec": "ingest.spec", "load_sets": "ingest.spec",
@@ -39,6 +40,7 @@ def __getattr__(name: str):
 
 
 __all__ = [
+    "RunOptions", "audit_index", "plan_banding", "run_job",
     "EventSpec", "IncompatibleSignatures", "InputError", "LshjobError", "ParameterError",
     "SignatureParams", "estimate_jaccard", "load_sets", "merge_files", "merge_signatures",
     "read_signatures", "sign_file", "sign_sets", "write_signatures",

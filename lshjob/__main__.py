@@ -1,0 +1,5 @@
+"""``python -m lshjob``: the same as the ``lshjob`` command."""
+
+from lshjob.cli.console import main
+
+main()
