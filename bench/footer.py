@@ -13,7 +13,8 @@ Times, each in a fresh process (the median of ``--repeat`` processes):
 on ``demo_data/loans.parquet`` (text keys: row and null counts only) and on a file of
 ``--rows`` events with integer keys (bounds of the entity column too). With ``--baseline
 REV`` the same runs on that revision's package (``git archive`` into a temporary folder,
-imported through PYTHONPATH), alternating with the working tree's. It also reports whether
+imported through PYTHONPATH; ``python -P`` so that the current folder does not shadow it),
+alternating with the working tree's. It also reports whether
 the ``lshjob`` command loads DuckDB before any command runs.
 """
 
@@ -78,7 +79,7 @@ def python(code: str, args: list[str], pythonpath: str | None) -> list[str]:
     env = {k: v for k, v in os.environ.items() if k != "PYTHONPATH"}
     if pythonpath:
         env["PYTHONPATH"] = pythonpath
-    out = subprocess.run([sys.executable, "-c", code, *args], env=env, check=True, capture_output=True, text=True)
+    out = subprocess.run([sys.executable, "-P", "-c", code, *args], env=env, check=True, capture_output=True, text=True)
     return out.stdout.split()
 
 
@@ -87,7 +88,7 @@ def sign_seconds(source: Path, out: Path, pythonpath: str | None) -> float:
     if pythonpath:
         env["PYTHONPATH"] = pythonpath
     start = time.perf_counter()
-    subprocess.run([sys.executable, "-m", "lshjob.cli.app", "sign", str(source), "--entity", "patron", "--element",
+    subprocess.run([sys.executable, "-P", "-m", "lshjob.cli.app", "sign", str(source), "--entity", "patron", "--element",
                     "title", "--out", str(out), "--quiet"], env=env, check=True, stdout=subprocess.DEVNULL)
     return time.perf_counter() - start
 
