@@ -134,12 +134,12 @@ def main() -> None:
     import duckdb
 
     lines = [
-        f"Machine: {machine()}, duckdb {duckdb.__version__}, load average {os.getloadavg()[0]:.1f} at the end "
-        "(a shared machine)",
+        (f"Machine: {machine()}, duckdb {duckdb.__version__}, load average {os.getloadavg()[0]:.1f} at the end "
+         "(a shared machine)"),
         f"Command: `{command}` (medians of {args.repeat} fresh processes)",
         "",
-        f"`import duckdb` after polars and numpy: {statistics.median(duck) * 1000:.0f} ms "
-        f"(min {min(duck) * 1000:.0f}, max {max(duck) * 1000:.0f}).",
+        (f"`import duckdb` after polars and numpy: {statistics.median(duck) * 1000:.0f} ms "
+         f"(min {min(duck) * 1000:.0f}, max {max(duck) * 1000:.0f})."),
         "The `lshjob` command has DuckDB loaded before the command runs: "
         + ", ".join(f"{label}: {'yes' if v == 'True' else 'no'}" for label, v in loaded.items()) + ".",
         "",

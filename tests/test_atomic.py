@@ -19,11 +19,10 @@ def test_a_write_that_raises_leaves_no_file_and_no_temporary_name(tmp_path):
     # Oracle: os.listdir of the folder before and after.
     (tmp_path / "kept.txt").write_text("kept\n")
     before = sorted(os.listdir(tmp_path))
-    with pytest.raises(Interrupted):
-        with atomic_file(tmp_path / "new.parquet") as tmp:
-            pl.DataFrame({"a": [1, 2, 3]}).write_parquet(tmp)
-            assert tmp.parent == tmp_path and tmp.suffix == ".parquet" and tmp.exists()
-            raise Interrupted
+    with pytest.raises(Interrupted), atomic_file(tmp_path / "new.parquet") as tmp:
+        pl.DataFrame({"a": [1, 2, 3]}).write_parquet(tmp)
+        assert tmp.parent == tmp_path and tmp.suffix == ".parquet" and tmp.exists()
+        raise Interrupted
     assert sorted(os.listdir(tmp_path)) == before
 
 
@@ -31,10 +30,9 @@ def test_a_write_that_raises_keeps_the_old_file_byte_for_byte(tmp_path):
     # Oracle: the bytes read before the failed write, and os.listdir.
     target = tmp_path / "index.txt"
     target.write_bytes(b"old contents\n")
-    with pytest.raises(Interrupted):
-        with atomic_file(target) as tmp:
-            tmp.write_bytes(b"new con")
-            raise Interrupted
+    with pytest.raises(Interrupted), atomic_file(target) as tmp:
+        tmp.write_bytes(b"new con")
+        raise Interrupted
     assert target.read_bytes() == b"old contents\n"
     assert os.listdir(tmp_path) == ["index.txt"]
 
@@ -54,11 +52,10 @@ def test_a_clean_write_replaces_the_target_and_leaves_only_it(tmp_path):
 def test_a_staged_folder_appears_whole_or_not_at_all(tmp_path):
     # Oracle: os.listdir before/after, and the files read back.
     before = sorted(os.listdir(tmp_path))
-    with pytest.raises(Interrupted):
-        with staged_folder(tmp_path / "parts", fsync=False) as tmp:
-            (tmp / "a=1").mkdir()
-            (tmp / "a=1" / "data.parquet").write_bytes(b"x")
-            raise Interrupted
+    with pytest.raises(Interrupted), staged_folder(tmp_path / "parts", fsync=False) as tmp:
+        (tmp / "a=1").mkdir()
+        (tmp / "a=1" / "data.parquet").write_bytes(b"x")
+        raise Interrupted
     assert sorted(os.listdir(tmp_path)) == before
     with staged_folder(tmp_path / "parts") as tmp:
         (tmp / "a=1").mkdir()
