@@ -23,7 +23,7 @@ import polars as pl
 sys.path.insert(0, str(Path(__file__).parent))
 from common import finish, machine  # noqa: E402
 
-import lshjob.core.atomic as atomic  # noqa: E402
+from lshjob.core import atomic  # noqa: E402
 from lshjob.sign.signatures import write_signatures  # noqa: E402
 
 
