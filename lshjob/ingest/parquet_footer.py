@@ -15,11 +15,10 @@ from __future__ import annotations
 
 from pathlib import Path
 
-CHUNKS = """
-SELECT file_name, row_group_id, row_group_num_rows, path_in_schema, type, stats_null_count,
-       stats_min_value, stats_max_value, min_is_exact, max_is_exact
-FROM parquet_metadata($files)
-"""
+FIELDS = ("file_name", "row_group_id", "row_group_num_rows", "path_in_schema", "type", "stats_null_count",
+          "stats_min_value", "stats_max_value", "min_is_exact", "max_is_exact")
+# COLUMNS(regex) takes the fields this DuckDB has: min_is_exact/max_is_exact are recent
+CHUNKS = f"SELECT COLUMNS('^({'|'.join(FIELDS)})$') FROM parquet_metadata($files)"
 
 
 def footer_stats(paths: list[Path], columns: list[str], bounds: str | None) -> dict | None:
@@ -31,12 +30,15 @@ def footer_stats(paths: list[Path], columns: list[str], bounds: str | None) -> d
 
     try:
         with duckdb.connect() as con:
-            chunks = con.execute(CHUNKS, {"files": [str(p) for p in paths]}).fetchall()
+            result = con.execute(CHUNKS, {"files": [str(p) for p in paths]})
+            names = [d[0] for d in result.description]
+            chunks = [dict(zip(names, row)) for row in result.fetchall()]
     except duckdb.Error:
         return None
     nulls, low, high = dict.fromkeys(columns, 0), None, None
     groups: dict[tuple[str, int], tuple[int, set]] = {}  # (file, row group) -> (rows, columns seen)
-    for file, group, rows, name, kind, null_count, lo, hi, lo_exact, hi_exact in chunks:
+    for chunk in chunks:
+        file, group, rows, name, kind, null_count, lo, hi, lo_exact, hi_exact = (chunk.get(f) for f in FIELDS)
         seen = groups.setdefault((file, group), (rows, set()))[1]
         if name not in nulls:
             continue
