@@ -59,3 +59,26 @@ def planted_events_file(tmp_path_factory):
     path = tmp_path_factory.mktemp("events") / "loans.parquet"
     planted_pairs(40, 0.5, seed=3, background=300).write_parquet(path)
     return path
+
+
+def fmix64_np(x: np.ndarray) -> np.ndarray:
+    """MurmurHash3 fmix64 on a uint64 array (wrapping arithmetic): keys scrambled like the
+    package's (checked against a transcription of MurmurHash3.cpp in tests/test_hashing.py)."""
+    from lshjob.core.hashing import FMIX_C1, FMIX_C2
+
+    x = x.astype(np.uint64, copy=True)
+    for multiplier in (FMIX_C1, FMIX_C2):
+        x ^= x >> np.uint64(33)
+        x *= np.uint64(multiplier)
+    x ^= x >> np.uint64(33)
+    return x
+
+
+def element_hashes(sets) -> np.ndarray:
+    """The XXH64 every signature starts from, for each element of an ElementSets/Membership
+    (``text_hashes[code]`` for text elements, the hash of the decimal text for integers)."""
+    from lshjob.core.hashing import xxh64_integers
+
+    if sets.text_hashes is not None:
+        return sets.text_hashes[sets.elements]
+    return xxh64_integers(sets.elements)

@@ -61,7 +61,7 @@ def test_shared_positions_are_exactly_the_repeated_keys():
     # 2,000 keys marks far more rows than repeat (every false mark must be dropped); 2**26
     # slots marks almost none but the repeats.
     from lshjob.index.band import _shared
-    from lshjob.core.hashing import fmix64_np
+    from helpers import fmix64_np
 
     rng = np.random.default_rng(8)
     keys = fmix64_np(rng.integers(0, 1500, size=2000).astype(np.uint64))  # ~500 repeats

@@ -6,7 +6,8 @@ import xxhash
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from lshjob.core.hashing import fmix64_expr, fmix64_np, splitmix64_sequence, xxh64_integers, xxh64_strings
+from helpers import fmix64_np
+from lshjob.core.hashing import fmix64, fmix64_expr, splitmix64_sequence, xxh64_integers, xxh64_strings
 
 MASK = (1 << 64) - 1
 
@@ -36,11 +37,13 @@ def test_xxh64_covers_every_length_branch():
     assert [int(g) for g in got] == [xxhash.xxh64_intdigest(v.encode()) for v in values]
 
 
+@settings(deadline=None)  # the first example compiles the kernel
 @given(st.lists(st.integers(min_value=0, max_value=MASK), min_size=1, max_size=50))
 def test_fmix64_numpy_and_polars_match_reference(xs):
     arr = np.array(xs, dtype=np.uint64)
     expected = [fmix64_reference(x) for x in xs]
     assert [int(v) for v in fmix64_np(arr)] == expected
+    assert [int(fmix64(v)) for v in arr] == expected  # the compiled kernel, called one value at a time
     polars_out = pl.DataFrame({"x": arr}).select(fmix64_expr(pl.col("x")))["x"].to_list()
     assert polars_out == expected
 

@@ -1,4 +1,5 @@
-"""Statistics from Parquet footers (lshjob/ingest/parquet_footer.py) against reading the data."""
+"""Statistics from Parquet footers (lshjob/ingest/parquet_footer.py, DuckDB's parquet_metadata()) against
+reading the data."""
 
 import duckdb
 import numpy as np
@@ -80,7 +81,7 @@ def test_unsigned_bounds_above_the_signed_range(tmp_path):
         path = tmp_path / f"{dtype}.parquet"
         data = pl.DataFrame({"patron": pl.Series([5, top, 2**31 + 7, top - 3], dtype=dtype), "title": ["a"] * 4})
         data.write_parquet(path, row_group_size=2)
-        found = footer_stats([path], ["patron", "title"], "patron", unsigned=True)
+        found = footer_stats([path], ["patron", "title"], "patron")
         assert (found["min"], found["max"]) == (5, top)
 
 

@@ -169,7 +169,7 @@ def test_plan_cli_json_and_svg_chart(tmp_path, demo_events):
     assert out["chosen"]["expected_recall"] >= 0.95
     assert out["bands"] * out["rows"] <= out["perms"]
     root = ET.parse(chart).getroot()
-    assert root.tag.endswith("svg") and any(el.tag.endswith("polyline") for el in root.iter())
+    assert root.tag.endswith("svg") and any(el.get("id") == "s-curve" for el in root.iter())
 
 
 def test_against_all_sample_estimates_population_pair_counts(tmp_path):

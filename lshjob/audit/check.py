@@ -22,6 +22,7 @@ import polars as pl
 
 from lshjob.core._jit import numba
 from lshjob.jobs import parts as parts_module
+from lshjob.core.atomic import file_sha256
 from lshjob.core.digest import digest_in_background
 from lshjob.errors import InputError, ParameterError
 from lshjob.index.collapse import fingerprints
@@ -29,7 +30,7 @@ from lshjob.ingest.spec import EventSpec, resolve_paths
 from lshjob.ingest.loading import grouping_need, membership_of, open_events
 from lshjob.core.sets import Membership
 from lshjob.plan.banding import candidate_probability
-from lshjob.index.publish import NEIGHBOURS, read_manifest, sha256_file
+from lshjob.index.publish import NEIGHBOURS, read_manifest
 from lshjob.plan.similarity import overlap_counts, postings_of, restricted_index, visit_costs
 from lshjob.runtime.budget import default_memory, peak_bytes
 from lshjob.index.verify import exact_jaccard
@@ -161,7 +162,7 @@ def _check_index_file(neighbours: Path, manifest: dict, warnings: list[str]) -> 
     if recorded is None:
         warnings.append(f"{neighbours}: the manifest records no sha256 of it; the file was not checked")
         return None
-    actual = sha256_file(neighbours)
+    actual = file_sha256(neighbours)
     if actual != recorded:
         return (f"{neighbours}: sha256 {actual} differs from the manifest's {recorded}: the file is not the "
                 "one the run published; nothing measured")

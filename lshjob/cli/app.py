@@ -162,7 +162,7 @@ def plan(
     fn_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-negative area.")] = 0.5,
     bands: Annotated[Optional[int], typer.Option(help="Judge this number of bands instead of choosing.")] = None,
     rows: Annotated[Optional[int], typer.Option(help="Judge this number of rows per band instead of choosing.")] = None,
-    chart: Annotated[Optional[Path], typer.Option(help="Write the S-curve chart (.svg, or .png with matplotlib).")] = None,
+    chart: Annotated[Optional[Path], typer.Option(help="Write the S-curve chart (.svg or .png).")] = None,
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
     quiet: Quiet = False,
     as_json: AsJson = False,

@@ -2,9 +2,13 @@
 ``lshjob audit`` compares its events with.
 
 Each file: its absolute path, size, modification time (UTC ISO 8601) and sha256
-(``hashlib.file_digest``). All together (``inputs.sha256``): the sha256 of the files'
-sha256 digests (hex, one a line, in the order the files are read), so the digest depends on
-the files' bytes and order only, not on the path they were read by.
+(:func:`lshjob.core.atomic.file_sha256`, i.e. ``hashlib.file_digest``). All together
+(``inputs.sha256``): the sha256 of the files' sha256 digests (hex, one a line, in the order
+the files are read), so the digest depends on the files' bytes and order only, not on the
+path they were read by. ``hashlib.file_digest`` alone cannot give it: it hashes one file
+object to its end, while this digest chains several files in order (a digest of the files'
+digests, so each file's own sha256, recorded beside it in the manifest, is computed once
+and a folder read in several files needs no concatenation of them).
 """
 
 from __future__ import annotations
@@ -13,6 +17,8 @@ import hashlib
 from concurrent.futures import Future, ThreadPoolExecutor
 from datetime import datetime, timezone
 from pathlib import Path
+
+from lshjob.core.atomic import file_sha256
 
 
 def iso(moment: datetime) -> str:
@@ -23,8 +29,7 @@ def iso(moment: datetime) -> str:
 def file_record(name: str | Path) -> dict:
     path = Path(name)
     stat = path.stat()
-    with open(path, "rb") as fh:
-        sha = hashlib.file_digest(fh, "sha256").hexdigest()
+    sha = file_sha256(path)
     return {"path": str(path.absolute()), "bytes": stat.st_size,
             "mtime": iso(datetime.fromtimestamp(stat.st_mtime, timezone.utc)), "sha256": sha}
 

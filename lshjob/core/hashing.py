@@ -274,17 +274,6 @@ def element_key_strings(values: pl.Series) -> pl.Series:
     return values.cast(pl.String)
 
 
-def fmix64_np(x: np.ndarray) -> np.ndarray:
-    """MurmurHash3 fmix64 on a uint64 array (wrapping arithmetic)."""
-    x = x.astype(np.uint64, copy=True)
-    x ^= x >> U64(33)
-    x *= U64(FMIX_C1)
-    x ^= x >> U64(33)
-    x *= U64(FMIX_C2)
-    x ^= x >> U64(33)
-    return x
-
-
 @numba.njit(inline="always")
 def fmix64(x):
     x ^= x >> U64(33)

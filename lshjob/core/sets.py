@@ -5,9 +5,9 @@ Entity id i is the position of the entity key in ``keys``. Elements are stored a
 *codes*, sorted within each entity: for integer element keys the code is the key itself;
 for text keys it is the position of the key in the sorted list of distinct keys, and
 ``text_hashes[code]`` is the XXH64 of that text. Either way two elements are equal exactly
-when their codes are, so intersections counted on codes are exact, and
-:meth:`Membership.element_hashes` gives the hash every signature starts from
-(:mod:`lshjob.core.hashing`).
+when their codes are, so intersections counted on codes are exact, and the hash every
+signature starts from is ``text_hashes[code]``, or the XXH64 of an integer code's decimal
+text (:mod:`lshjob.core.hashing`).
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ import numpy as np
 import polars as pl
 
 from lshjob.core._jit import numba
-from lshjob.core.hashing import xxh64_of_integer, xxh64_integers, xxh64_strings
+from lshjob.core.hashing import xxh64_of_integer, xxh64_strings
 
 INT64_MAX = np.iinfo(np.int64).max
 
@@ -56,13 +56,6 @@ class Membership:
     @property
     def set_sizes(self) -> np.ndarray:
         return np.diff(self.offsets)
-
-    def element_hashes(self, elements: np.ndarray | None = None) -> np.ndarray:
-        """XXH64 of the canonical text of each element (all of them by default)."""
-        codes = self.elements if elements is None else elements
-        if self.text_hashes is not None:
-            return self.text_hashes[codes]
-        return xxh64_integers(codes)
 
     def subset(self, ids: np.ndarray) -> "Membership":
         """The sets of the given entity ids (kept in the given order)."""

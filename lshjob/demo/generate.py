@@ -24,6 +24,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
+from lshjob.core.atomic import atomic_file
 from lshjob.errors import ParameterError
 from lshjob.runtime.outputs import DEMO_MARKER, demo_folder
 
@@ -154,9 +155,8 @@ def write_demo(out: str | Path, patrons: int = 2000, seed: int = 7) -> dict:
     out.mkdir(parents=True, exist_ok=True)
     (out / DEMO_MARKER).write_text(f"lshjob demo: patrons {patrons}, seed {seed}\n")  # first: a rerun may replace
     for name, frame in (("events.parquet", events), ("planted.parquet", planted)):
-        tmp = out / f".{name}.tmp"
-        frame.write_parquet(tmp)
-        tmp.replace(out / name)
+        with atomic_file(out / name) as tmp:
+            frame.write_parquet(tmp)
     return {
         "events": str(out / "events.parquet"),
         "planted": str(out / "planted.parquet"),

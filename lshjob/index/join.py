@@ -21,6 +21,7 @@ from pathlib import Path
 
 import duckdb
 
+from lshjob.core.atomic import atomic_file, staged_folder
 from lshjob.errors import ParameterError
 from lshjob.index.sqlfiles import load_sql, string_literal
 
@@ -111,20 +112,20 @@ def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings,
         columns = [d[0] for d in con.description]
         skew = {name: int(value) for name, value in zip(columns, skew_row)}
         query = load_sql("candidates").strip().rstrip(";")
-        tmp = out.with_name(f".{out.name}.tmp")
+        # scratch of the run (not flushed to disk: a crashed run never reads it again)
         if part_ranges is None:
-            con.execute(f"COPY ({query}) TO {string_literal(str(tmp))} (FORMAT parquet)", params)
+            with atomic_file(out, fsync=False) as tmp:
+                con.execute(f"COPY ({query}) TO {string_literal(str(tmp))} (FORMAT parquet)", params)
             pattern = str(out)
         else:
             con.execute("CREATE TEMP TABLE part_ranges (part INTEGER, first_id BIGINT, last_id BIGINT)")
             con.executemany("INSERT INTO part_ranges VALUES (?, ?, ?)",
                             [(i, a, b) for i, (a, b) in enumerate(part_ranges)])
             blocks = load_sql("candidate_blocks").strip().rstrip(";")
-            con.execute(f"COPY (WITH candidate_rows AS ({query}) {blocks}) TO {string_literal(str(tmp))} "
-                        "(FORMAT parquet, PARTITION_BY (left_part, right_part))", params)
+            with staged_folder(out, fsync=False) as tmp:  # no pair, no file
+                con.execute(f"COPY (WITH candidate_rows AS ({query}) {blocks}) TO {string_literal(str(tmp))} "
+                            "(FORMAT parquet, PARTITION_BY (left_part, right_part))", params)
             pattern = str(out / "**" / "*.parquet")
-            tmp.mkdir(exist_ok=True)  # no pair, no file
-        tmp.replace(out)
         found = part_ranges is None or any(out.rglob("*.parquet"))
         count = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": pattern}).fetchone()[0] if found else 0
     finally:

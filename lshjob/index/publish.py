@@ -33,7 +33,6 @@ renamed into place. One run at a time publishes into a folder (its lock,
 from __future__ import annotations
 
 import errno
-import hashlib
 import json
 import os
 import shutil
@@ -44,6 +43,7 @@ import numpy as np
 import polars as pl
 from polars.io.plugins import register_io_source
 
+from lshjob.core.atomic import file_sha256
 from lshjob.errors import ParameterError
 from lshjob.runtime.budget import release_freed
 
@@ -254,14 +254,6 @@ def block_rows(memory: int, held: int = 0) -> int:
     return max(MIN_BLOCK_ROWS, share // BLOCK_BYTES_PER_ROW)
 
 
-def sha256_file(path: Path, chunk: int = 1 << 22) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        while block := fh.read(chunk):
-            digest.update(block)
-    return digest.hexdigest()
-
-
 def staging_folder(out_dir: Path) -> Path:
     return out_dir / f".staging-{os.getpid()}"
 
@@ -286,7 +278,7 @@ def stage_neighbours(out_dir: Path, tables, metadata: dict) -> dict:
         rows = first.height
     else:
         rows = _stream(first, second, pending, path, kv)
-    return {"neighbours": NEIGHBOURS, "rows": rows, "sha256": sha256_file(path), "bytes": path.stat().st_size}
+    return {"neighbours": NEIGHBOURS, "rows": rows, "sha256": file_sha256(path), "bytes": path.stat().st_size}
 
 
 def _stream(first: pl.DataFrame, second: pl.DataFrame, pending, path: Path, kv: dict) -> int:

@@ -289,7 +289,7 @@ def _stats_from_footers(paths: list[Path], key_names: list[str], entity: str,
     if not all(p.suffix.lower() in (".parquet", ".pq") for p in paths):
         return None
     integer = entity_type.is_integer()
-    found = footer_stats(paths, key_names, entity if integer else None, unsigned=integer and not entity_type.is_signed_integer())
+    found = footer_stats(paths, key_names, entity if integer else None)
     if found is None or any(found["nulls"].values()) or (integer and found["rows"] and found["min"] is None):
         return None
     return pl.DataFrame({"rows": [found["rows"]], **{n: [0] for n in key_names}, "__any_null": [0],

@@ -25,7 +25,6 @@ Output contract of :func:`sign_sets` (a polars DataFrame):
 from __future__ import annotations
 
 import json
-import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator
@@ -34,6 +33,7 @@ import numpy as np
 import polars as pl
 
 from lshjob.core._jit import numba
+from lshjob.core.atomic import atomic_file
 from lshjob.sign import oph
 from lshjob.errors import IncompatibleSignatures, InputError, ParameterError
 from lshjob.core.hashing import element_hashes, fmix64, splitmix64_sequence, xxh64_strings
@@ -355,9 +355,8 @@ def write_signatures(table: pl.DataFrame | pl.LazyFrame, path: str | Path, meta:
     lazy table is streamed into it (signatures made a key range at a time)."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     metadata = {METADATA_KEY: json.dumps(meta, sort_keys=True)}
-    try:
+    with atomic_file(path) as tmp:
         # Row groups of 64k rows (about 70 MB at k=128): a read of one entity range (merge in
         # parts) decodes little more than the rows it keeps.
         if isinstance(table, pl.LazyFrame):
@@ -365,9 +364,6 @@ def write_signatures(table: pl.DataFrame | pl.LazyFrame, path: str | Path, meta:
                                row_group_size=SIGNATURE_ROW_GROUP)
         else:
             table.write_parquet(tmp, compression="snappy", metadata=metadata, row_group_size=SIGNATURE_ROW_GROUP)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
     return path
 
 
