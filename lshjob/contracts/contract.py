@@ -78,7 +78,7 @@ class Contract:
             named = list(dict.fromkeys(expr.meta.root_names()))
             if any(c in self.optional and c not in frame.columns for c in named):
                 continue  # a rule of a column this table does not have
-            columns = [c for c in named if c in frame.columns] or [
+            columns = [c for c in frame.columns if c in named] or [
                 c for c, t in frame.schema.items() if not t.is_nested()]
             broken = frame.with_row_index("__row").filter(~expr.fill_null(False))
             if broken.height:
