@@ -1,9 +1,9 @@
-"""The stage contracts (lshjob.contracts): every rule refuses a table that breaks it, and the
-tables of a real run keep every rule at their stage boundary.
+"""The stage contracts (lshjob.contracts): every rule refuses a table that breaks it; the
+manifest and the signature file's metadata refuse what they do not declare; DEVELOPERS.md
+holds the section the declarations print. The tables of a real run, at each stage boundary:
+tests/test_contract_boundaries.py.
 
-Oracles: hand-made tables whose one broken row is known (the rule tests); exact brute force
-over Python sets of the events (the values of the run's tables); DEVELOPERS.md's text (the
-generated section)."""
+Oracles: hand-made tables whose one broken row is known; DEVELOPERS.md's text."""
 
 from __future__ import annotations
 
@@ -11,17 +11,28 @@ import datetime as dt
 import json
 import subprocess
 import sys
-from itertools import combinations
 from pathlib import Path
 
 import polars as pl
 import pytest
 
-from lshjob.contracts import (ALL, BUCKET_ROWS, CANDIDATES, EVENTS, NEIGHBOURS, SET_ROWS, SIGNATURES, STAGES,
-                              VERIFIED, ContractError, Manifest, read_manifest)
+from lshjob.contracts import (
+    ALL,
+    BUCKET_ROWS,
+    CANDIDATES,
+    EVENTS,
+    NEIGHBOURS,
+    SET_ROWS,
+    SIGNATURES,
+    VERIFIED,
+    ContractError,
+    Manifest,
+    read_manifest,
+)
 from lshjob.contracts.doc import BEGIN, END, markdown
-from lshjob.contracts.signature_file import SignatureMeta, file_meta
+from lshjob.contracts.signature_file import SignatureMeta
 from lshjob.errors import InputError
+from lshjob.sign.signatures import read_signatures
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -212,3 +223,56 @@ def test_the_sql_files_name_the_contracts_instead_of_listing_columns():
     assert "BUCKET_ROWS" in sql["sized_bucket_rows.sql"] and "CANDIDATES" in sql["candidates.sql"]
     assert "CANDIDATES" in sql["candidate_blocks.sql"]
     assert "columns band, bucket, rep" not in sql["sized_bucket_rows.sql"]
+
+
+
+def _manifest() -> Manifest:
+    return Manifest(run_id="20260301T101500Z-0a1b2c", started_at="2026-03-01T10:15:00Z",
+                    finished_at="2026-03-01T10:15:04Z", host="branch-harbour", command=None,
+                    inputs={"source": "/data/loans.parquet"}, spec={"entity": "patron"},
+                    options={"threshold": 0.5, "top_k": 20}, top_k_effective=20, memory_budget_bytes=2**30,
+                    plan={"mode": "data"}, counts={"entities": 3}, skew=None,
+                    seconds={"ingest": 1.5, "total": 4.0}, peak_memory_bytes={"ingest": 2**20},
+                    versions={"lshjob": "0"}, output={"rows": 0}, out="/data/index", warnings=[])
+
+
+@pytest.mark.parametrize("damage, problem", [
+    (lambda text: text[: len(text) // 2], "not valid JSON .* the file is cut short or damaged"),
+    (lambda text: text.replace('"format_version": 1', '"format_version": 2'),
+     "manifest format version 2 is not supported; this lshjob reads version 1"),
+    (lambda text: text.replace('"lshjob-index"', '"library-loans"'),
+     "not an lshjob manifest \\(format 'library-loans'; expected 'lshjob-index'\\)"),
+    (lambda text: text.replace('"total": 4.0', '"all": 4.0'), "not an lshjob manifest \\(no 'total' entry in 'seconds'\\)"),
+    (lambda text: text.replace('"top_k": 20', '"top_n": 20'), "not an lshjob manifest \\(no 'top_k' entry in 'options'\\)"),
+])
+def test_a_damaged_manifest_is_refused_in_one_line(tmp_path, damage, problem):
+    # Oracle: the hand-made manifest, read back whole, then damaged one way at a time.
+    path = tmp_path / "manifest.json"
+    _manifest().write(path)
+    assert read_manifest(path) == _manifest()
+    path.write_text(damage(path.read_text()))
+    with pytest.raises(InputError, match=f"^{path}: {problem}") as caught:
+        read_manifest(path)
+    assert "\n" not in str(caught.value)
+
+
+def test_a_manifest_without_total_seconds_cannot_be_made():
+    # Oracle: the manifest's rule that seconds hold "total" (what --json shows is what is written).
+    with pytest.raises(ValueError, match="total"):
+        Manifest(**{**_manifest().__dict__, "seconds": {"ingest": 1.5}})
+
+
+@pytest.mark.parametrize("change, problem", [
+    ({"format_version": 2}, "signature format 'lshjob-signatures' version 2 is not supported"),
+    ({"set_size": "guessed"}, "signature metadata 'set_size' is 'guessed'"),
+    ({"period_unit": "year"}, "signature metadata 'period_unit' is 'year'"),
+    ({"k": 0}, "signature metadata k=0"),
+])
+def test_signature_metadata_out_of_its_contract_is_refused(tmp_path, change, problem):
+    # Oracle: the declared SignatureMeta entries, one changed at a time.
+    meta = {**SignatureMeta(scheme="kperm", hash="h", k=2, seed=1, keys=["entity"]).to_json(), **change}
+    path = tmp_path / "s.parquet"
+    _signatures().with_columns(pl.col("signature").list.head(2)).write_parquet(path, metadata={
+        "lshjob": json.dumps(meta)})
+    with pytest.raises(InputError, match=f"^{path}: {problem}"):
+        read_signatures(path)
