@@ -6,6 +6,9 @@ Oracle: exact brute force over Python sets of the events' titles per patron."""
 
 from __future__ import annotations
 
+import json
+import subprocess
+import sys
 from itertools import combinations
 
 import polars as pl
@@ -154,3 +157,14 @@ def test_identical_sets_in_parts_keep_the_contracts_with_no_bands(demo, tmp_path
     # is larger than top-k + 1 here, so none is cut).
     equal = {(a, b) for a in sets for b in sets if a != b and sets[a] == sets[b]}
     assert set(neighbours.select("entity", "neighbour").iter_rows()) == equal
+
+
+def test_what_run_json_prints_is_the_manifest_on_disk(tmp_path, small_events):
+    # Oracle: manifest.json as json reads it, against the command's stdout.
+    done = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "run", str(small_events), "--entity", "patron",
+                           "--element", "title", "--threshold", "0.3", "--out", str(tmp_path / "idx"), "--json"],
+                          capture_output=True, text=True, timeout=120, check=False)
+    assert done.returncode == 0, done.stderr
+    printed = json.loads(done.stdout)
+    assert printed == read_manifest(tmp_path / "idx/manifest.json").to_json()
+    assert printed["seconds"]["total"] >= max(v for k, v in printed["seconds"].items() if k != "total")
