@@ -2,4 +2,5 @@
 
 from lshjob.contracts.doc import markdown
 
-print(markdown(), end="")
+if __name__ == "__main__":  # not when a tool imports every module of the package
+    print(markdown(), end="")
