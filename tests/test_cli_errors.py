@@ -282,7 +282,9 @@ def test_run_onto_its_input_is_refused(tmp_path, small_events):
 
 @pytest.mark.parametrize("content, problem", [
     ('{"spec": {"entity": "patron"', "not valid JSON"),
-    ('{"spec": {}, "plan": {}, "options": {"threshold": 0.5}}', "not an lshjob manifest (no 'top_k' entry)"),
+    ('{"format": "lshjob-index", "format_version": 1}', "not an lshjob manifest (no 'run_id' entry)"),
+    ('{"format": "lshjob-index", "format_version": 9}', "manifest format version 9 is not supported"),
+    ('{"spec": {}, "plan": {}, "options": {"threshold": 0.5}}', "not an lshjob manifest (format None; "),
 ])
 def test_audit_of_a_damaged_manifest_is_one_line_naming_it(tmp_path, content, problem):
     (tmp_path / "index").mkdir()

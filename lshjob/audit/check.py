@@ -30,6 +30,7 @@ from lshjob.ingest.spec import EventSpec, resolve_paths
 from lshjob.ingest.loading import grouping_need, membership_of, open_events
 from lshjob.core.sets import Membership
 from lshjob.plan.banding import candidate_probability
+from lshjob.contracts.manifest import Manifest
 from lshjob.index.publish import NEIGHBOURS, read_manifest
 from lshjob.plan.similarity import overlap_counts, postings_of, restricted_index, visit_costs
 from lshjob.runtime.budget import default_memory, peak_bytes
@@ -81,7 +82,7 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
     neighbours = Path(index_dir) / NEIGHBOURS
     if not neighbours.is_file():
         raise InputError(f"{neighbours}: no such file; the index folder holds a manifest but no neighbour table")
-    source = events if events is not None else manifest["inputs"]["source"]
+    source = events if events is not None else manifest.inputs["source"]
     if events is None:
         _recorded_input_exists(source)
     warnings: list[str] = []
@@ -90,10 +91,10 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
     if integrity is not None:
         return {"index": str(index_dir), "events": str(source), "audited": False, "failed": [integrity],
                 "warnings": warnings, "min_recall": min_recall, "recall": None}
-    spec = EventSpec(**manifest["spec"])
-    threshold = manifest["options"]["threshold"]
-    top_k = manifest["options"]["top_k"]
-    plan = manifest["plan"]
+    spec = EventSpec(**manifest.spec)
+    threshold = manifest.options["threshold"]
+    top_k = manifest.options["top_k"]
+    plan = manifest.plan
     opened = open_events(source, spec)
     memory = memory or default_memory()
     rng = np.random.default_rng(seed)
@@ -156,9 +157,9 @@ def _recorded_input_exists(source) -> None:
                          "against other events") from None
 
 
-def _check_index_file(neighbours: Path, manifest: dict, warnings: list[str]) -> str | None:
+def _check_index_file(neighbours: Path, manifest: Manifest, warnings: list[str]) -> str | None:
     """A failed check when ``neighbours.parquet`` is not the file the manifest records."""
-    recorded = (manifest.get("output") or {}).get("sha256")
+    recorded = (manifest.output or {}).get("sha256")
     if recorded is None:
         warnings.append(f"{neighbours}: the manifest records no sha256 of it; the file was not checked")
         return None
@@ -169,21 +170,21 @@ def _check_index_file(neighbours: Path, manifest: dict, warnings: list[str]) -> 
     return None
 
 
-def _events_digest(source, manifest: dict):
+def _events_digest(source, manifest: Manifest):
     """The digest of the events, as the run computed it for its input (bytes and order only,
     so the same files read by another path compare equal); computed in a thread while the
     audit reads them. None when there is nothing to compare with."""
-    if not manifest.get("inputs", {}).get("sha256"):
+    if not manifest.inputs.get("sha256"):
         return None
     return digest_in_background([str(p) for p in resolve_paths(source)[0]])
 
 
-def _compare_events(digest, source, manifest: dict, warnings: list[str]) -> None:
+def _compare_events(digest, source, manifest: Manifest, warnings: list[str]) -> None:
     if digest is None:
         warnings.append(f"{source}: the manifest records no digest of the run's input; the events were not compared")
         return
     (size, sha), _ = digest.result()
-    inputs = manifest["inputs"]
+    inputs = manifest.inputs
     if sha != inputs["sha256"]:
         warnings.append(f"{source}: these events differ from the run's input {inputs.get('source')} (sha256 "
                         f"{sha[:16]}... of {size:,} bytes; the manifest records {inputs['sha256'][:16]}... of "

@@ -230,7 +230,7 @@ def run(
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
-    """Build the neighbour index: ingest, sign, plan, band, join, verify, publish.
+    """Build the neighbour index: ingest, collapse, plan, sign, band, join, verify, publish.
 
     Example: lshjob run demo_data/loans.parquet --entity patron --element title
     --threshold 0.5 --top-k 20 --out index

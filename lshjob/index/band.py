@@ -9,10 +9,10 @@ otherwise the signature values are pseudo-random 64-bit words and a collision ha
 probability about 2**-64 per pair; verification rejects such pairs anyway. Horner's rule with
 one finaliser at the end costs about half the column operations of a finaliser per row.
 
-Output contract (Parquet files, one per batch of bands): ``band`` Int32, ``bucket`` UInt64,
-``rep`` Int64; one row per (band, representative) whose bucket holds at least one other
-representative. The run first builds the wide key table (``rep`` and one key column per band;
-8 bytes per band and representative) a slice of representatives at a time, so the full
+Output (Parquet files, one per batch of bands): BUCKET_ROWS (:mod:`lshjob.contracts.tables`),
+one row per (band, representative) whose bucket holds at least one other representative.
+The run first builds the wide key table (``rep`` and one key column per band; 8 bytes per
+band and representative) a slice of representatives at a time, so the full
 signature matrix is never held; then writes each band's shared buckets. Buckets of one,
 most of them, are never written: the join would only discard them.
 

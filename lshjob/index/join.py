@@ -6,9 +6,9 @@ bucket), ``sql/bucket_skew.sql`` and ``sql/candidates.sql``. DuckDB runs with a
 memory limit and a spill directory, so a join larger than memory spills to disk instead
 of failing.
 
-Output contract of :func:`candidate_pairs`: a Parquet file with ``left_rep`` < ``right_rep``
-(Int64 entity ids of representatives), ``bands_shared`` Int32 >= 1, one row per unordered
-pair, in no particular order; and a skew report (dict). Given the entity id ranges of a
+Output of :func:`candidate_pairs`: a Parquet file of CANDIDATES (:mod:`lshjob.contracts.tables`:
+one row per unordered pair of representatives, ``bands_shared`` from 1 to the bands), in no
+particular order; and a skew report (dict). Given the entity id ranges of a
 run's parts (:mod:`lshjob.jobs.parts`), a folder instead, the same rows split by the parts of
 their two sides: ``left_part=i/right_part=j/*.parquet`` (``i <= j``; ``sql/candidate_blocks.sql``).
 """

@@ -1,10 +1,10 @@
 """Publish stage: verified representative pairs -> the neighbour index, written atomically.
 
-Output contract of the neighbour table (:func:`neighbour_blocks`, concatenated): one row per
-(entity, neighbour), both directions, at most ``top_k`` per entity: ``entity``, ``neighbour``
-(keys), ``jaccard`` (exact), ``estimate`` (signature agreement), ``bands_shared`` Int32,
-``rank`` UInt32 (1 = most similar; ties broken by neighbour key ascending). Sorted by
-(entity, rank). No pair at all gives a file with these columns and no row.
+Output: the NEIGHBOURS table (:mod:`lshjob.contracts.tables`; :func:`neighbour_blocks`,
+concatenated): one row per (entity, neighbour), at most ``top_k`` per entity, ranked by
+Jaccard (1 = most similar; ties broken by neighbour key ascending), sorted by (entity, rank);
+both directions unless the neighbour's own list is full. No pair at all gives a file with
+these columns and no row.
 
 Groups of identical sets are expanded here: members of one group are each other's
 neighbours with Jaccard 1, and a member inherits its representative's verified pairs
@@ -43,8 +43,11 @@ import numpy as np
 import polars as pl
 from polars.io.plugins import register_io_source
 
+from lshjob.contracts.manifest import Manifest
+from lshjob.contracts.manifest import read_manifest as read_manifest_file
+from lshjob.contracts.tables import NEIGHBOURS as NEIGHBOUR_ROWS
 from lshjob.core.atomic import file_sha256
-from lshjob.errors import ParameterError
+from lshjob.errors import InputError, ParameterError
 from lshjob.runtime.budget import release_freed
 
 NEIGHBOURS = "neighbours.parquet"
@@ -223,20 +226,15 @@ def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
         yield _with_keys(table, keys)
         del table, block
     if members.height == 0:
-        yield _with_keys(pl.DataFrame(schema={"id": pl.Int64, "neighbour": pl.Int64, "jaccard": pl.Float64,
-                                              "estimate": pl.Float64, "bands_shared": pl.Int32,
-                                              "rank": pl.UInt32}), keys)
+        yield NEIGHBOUR_ROWS.empty(key=keys.dtype)
 
 
 def _with_keys(table: pl.DataFrame, keys: pl.Series) -> pl.DataFrame:
-    return table.select(
+    """The rows with the entities' keys, in NEIGHBOURS's columns and types."""
+    return NEIGHBOUR_ROWS.conform(table.with_columns(
         keys.gather(table["id"].to_numpy()).alias("entity"),
         keys.gather(table["neighbour"].to_numpy()).alias("neighbour"),
-        pl.col("jaccard").cast(pl.Float64),
-        pl.col("estimate").cast(pl.Float64),
-        pl.col("bands_shared").cast(pl.Int32),
-        pl.col("rank").cast(pl.UInt32),
-    )
+    ))
 
 
 def neighbour_table(verified: pl.DataFrame, rep_of: np.ndarray, keys: pl.Series, top_k: int,
@@ -350,20 +348,9 @@ def _keep_previous(out_dir: Path, staging: Path) -> None:
                 raise
 
 
-def read_manifest(out_dir: Path) -> dict:
-    from lshjob.errors import InputError
-
+def read_manifest(out_dir: Path) -> Manifest:
+    """The manifest of the index in ``out_dir`` (checked: :mod:`lshjob.contracts.manifest`)."""
     path = Path(out_dir) / MANIFEST
     if not path.is_file():
         raise InputError(f"{out_dir}: no {MANIFEST}; is this an lshjob index folder?")
-    try:  # what lshjob audit reads
-        manifest = json.loads(path.read_text())
-        manifest["spec"], manifest["plan"], manifest["options"]["threshold"], manifest["options"]["top_k"]
-        manifest["inputs"]["source"]
-    except json.JSONDecodeError as exc:
-        raise InputError(f"{path}: not valid JSON ({exc.msg} at line {exc.lineno}, column {exc.colno}); "
-                         "the file is cut short or damaged; run lshjob run again") from None
-    except (KeyError, TypeError) as exc:
-        what = f"no {exc} entry" if isinstance(exc, KeyError) else "an entry is not a JSON object"
-        raise InputError(f"{path}: not an lshjob manifest ({what}); run lshjob run again") from None
-    return manifest
+    return read_manifest_file(path)

@@ -3,10 +3,10 @@
 Each candidate's sets are intersected by a merge of their sorted element ids (compiled,
 both cores); the signature estimate (fraction of equal positions) is added for the pairs kept.
 
-Output contract of :func:`verify_pairs`: DataFrame ``left_rep`` < ``right_rep`` (Int64),
-``jaccard`` Float64 (exact: intersection / union of integer counts), ``estimate`` Float64,
-``bands_shared`` Int32; only pairs with ``jaccard >= threshold``; in the
-order of the candidates.
+:func:`verify_between` keeps the candidates with ``jaccard >= threshold`` (exact: intersection
+/ union of integer counts), without ``estimate``; :func:`add_estimates_between` adds it.
+Together (:func:`lshjob.jobs.parts.verify_blocks`) they give VERIFIED
+(:mod:`lshjob.contracts.tables`), in no particular order.
 """
 
 from __future__ import annotations

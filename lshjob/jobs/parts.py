@@ -42,6 +42,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
+from lshjob.contracts.tables import VERIFIED
 from lshjob.ingest.loading import (BYTES_PER_EVENT, BYTES_PER_EVENT_IN_RANGE, BYTES_PER_KEY_VALUE, EntitySelection,
                       EventSource, dense_span, grouping_need)
 from lshjob.errors import ParameterError
@@ -280,9 +281,8 @@ def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: floa
 
 
 def empty_verified() -> pl.DataFrame:
-    """No verified pair (contract of :func:`lshjob.index.verify.verify_pairs` with estimates)."""
-    return pl.DataFrame(schema={"left_rep": pl.Int64, "right_rep": pl.Int64, "jaccard": pl.Float64,
-                                "estimate": pl.Float64, "bands_shared": pl.Int32})
+    """No verified pair: the VERIFIED table (:mod:`lshjob.contracts.tables`) with no row."""
+    return VERIFIED.empty()
 
 
 def identical_candidates(prints: pl.DataFrame, ranges: list[tuple[int, int]], out: Path) -> tuple[Path, int]:

@@ -1,4 +1,4 @@
-"""The whole job: ingest -> sign -> plan -> band -> join -> verify -> publish.
+"""The whole job: ingest -> collapse -> plan -> sign -> band -> join -> verify -> publish.
 
 :func:`run_job` is what ``lshjob run`` calls. Each stage is timed, its peak resident memory
 recorded, and its counts kept for the manifest. One run at a time writes to an output folder
@@ -6,12 +6,16 @@ recorded, and its counts kept for the manifest. One run at a time writes to an o
 folder inside the output folder (or under ``--scratch``) and are removed at the end, and what
 killed runs left is removed at the start (:mod:`lshjob.runtime.workspace`); the published index changes
 only by the atomic renames of :func:`lshjob.index.publish.commit_index`. The manifest returned is the
-one written, provenance included (:mod:`lshjob.runtime.provenance`).
+one written, provenance included (:mod:`lshjob.runtime.provenance`), typed by
+:class:`lshjob.contracts.manifest.Manifest`.
+
+The plan comes before signing: it chooses k. In parts a ``count`` stage comes first, and
+ingest, collapse, sign and band run for each key range in turn. The order and the tables
+handed from stage to stage are declared in :mod:`lshjob.contracts.tables` (``STAGES``).
 """
 
 from __future__ import annotations
 
-import json
 import shutil
 import time
 from dataclasses import asdict, dataclass
@@ -23,6 +27,7 @@ from lshjob.jobs import prepare
 from lshjob.runtime import provenance
 from lshjob.index import publish
 from lshjob.runtime import stopping
+from lshjob.contracts.manifest import Manifest
 from lshjob.core.digest import digest_in_background
 from lshjob.errors import ParameterError
 from lshjob.runtime.folder_lock import output_lock
@@ -226,30 +231,27 @@ def run_job(
         counts["published_rows"] = facts["rows"]
         if counts["published_rows"] == 0 and len(built.keys) > 1:  # one entity is warned of when planning
             warnings.append("no pair reached the threshold: the index is empty")
-        manifest = {
-            "format": "lshjob-index",
-            "format_version": 1,
-            "run_id": run_id,
-            "started_at": provenance.iso(started_at),
-            "host": provenance.host(),
-            "command": list(command) if command is not None else None,
-            "inputs": provenance.inputs(events, report, digest),
-            "spec": asdict(spec),
-            "options": asdict(options),
-            "top_k_effective": top_k,
-            "memory_budget_bytes": memory,
-            "plan": plan,
-            "counts": counts,
-            "skew": skew,
-            "peak_memory_bytes": stages.peak,
-            "versions": provenance.versions(),
-            "output": facts,
-            "out": str(out.absolute()),
-            "warnings": warnings,
-        }
-        manifest["seconds"] = dict(stages.seconds, total=round(time.perf_counter() - started, 3))
-        manifest["finished_at"] = provenance.iso(provenance.utc_now())
-        manifest = json.loads(json.dumps(manifest, default=str))  # what the file holds, exactly
+        manifest = Manifest(
+            run_id=run_id,
+            started_at=provenance.iso(started_at),
+            host=provenance.host(),
+            command=list(command) if command is not None else None,
+            inputs=provenance.inputs(events, report, digest),
+            spec=asdict(spec),
+            options=asdict(options),
+            top_k_effective=top_k,
+            memory_budget_bytes=memory,
+            plan=plan,
+            counts=counts,
+            skew=skew,
+            peak_memory_bytes=stages.peak,
+            versions=provenance.versions(),
+            output=facts,
+            out=str(out.absolute()),
+            warnings=warnings,
+            seconds=dict(stages.seconds, total=round(time.perf_counter() - started, 3)),
+            finished_at=provenance.iso(provenance.utc_now()),
+        ).to_json()  # what the file holds, exactly, and what --json prints
         with stopping.held():  # a stop signal waits: the index is renamed whole or not at all
             publish.commit_index(out, manifest)
             stopping.mark_published()

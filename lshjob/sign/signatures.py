@@ -32,6 +32,7 @@ from typing import Iterator
 import numpy as np
 import polars as pl
 
+from lshjob.contracts.signature_file import FORMAT_NAME, FORMAT_VERSION, HASH_FAMILY, METADATA_KEY, file_meta
 from lshjob.core._jit import numba
 from lshjob.core.atomic import atomic_file
 from lshjob.sign import oph
@@ -39,10 +40,6 @@ from lshjob.errors import IncompatibleSignatures, InputError, ParameterError
 from lshjob.core.hashing import element_hashes, fmix64, splitmix64_sequence, xxh64_strings
 from lshjob.core.sets import Membership, element_hash, store_row
 
-FORMAT_NAME = "lshjob-signatures"
-FORMAT_VERSION = 1
-METADATA_KEY = "lshjob"
-HASH_FAMILY = "xxh64-seed0+fmix64-xor-splitmix64-salt"
 SCHEMES = ("kperm", "oph")
 MAX_U64 = np.iinfo(np.uint64).max
 
@@ -383,13 +380,7 @@ def signature_meta(path: str | Path) -> dict:
         raw = pl.read_parquet_metadata(path)
     except Exception as exc:
         raise InputError(f"{path}: not a Parquet file ({exc})") from exc
-    if METADATA_KEY not in raw:
-        raise InputError(f"{path}: not an lshjob signature file (no '{METADATA_KEY}' metadata)")
+    file_meta(raw, str(path))  # the format, its version and every entry (lshjob.contracts.signature_file)
     meta = json.loads(raw[METADATA_KEY])
-    if meta.get("format") != FORMAT_NAME or meta.get("format_version") != FORMAT_VERSION:
-        raise InputError(
-            f"{path}: signature format {meta.get('format')!r} version {meta.get('format_version')!r} "
-            f"is not supported; expected {FORMAT_NAME!r} version {FORMAT_VERSION}"
-        )
     meta["path"] = str(path)
     return meta

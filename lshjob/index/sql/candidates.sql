@@ -1,9 +1,8 @@
 -- sql/candidates.sql: bucket rows -> candidate pairs, one row per unordered pair.
 -- Input : sized_bucket_rows (sql/sized_bucket_rows.sql), split_rows (sql/split_oversize.sql);
 --         $max_bucket.
--- Output: left_rep < right_rep, bands_shared = number of bands through which the pair met
---         (a bucket within the cap, or a sub-bucket of an oversize one); in no particular
---         order (later stages sort what they publish).
+-- Output: CANDIDATES (lshjob/contracts/tables.py); bands_shared counts the bands through which
+--         the pair met (a bucket within the cap, or a sub-bucket of an oversize one).
 -- Sub-buckets still over the cap are left out (reported by sql/bucket_skew.sql).
 WITH usable_rows AS (
     SELECT band, bucket, 0::UBIGINT AS sub, rep

@@ -1,5 +1,5 @@
 -- sql/sized_bucket_rows.sql: the bucket rows that can form a pair, with their bucket's size.
--- Input : read_parquet($bucket_files) with columns band, bucket, rep (lshjob/index/band.py).
+-- Input : read_parquet($bucket_files): BUCKET_ROWS (lshjob/contracts/tables.py).
 -- Output: temporary table sized_bucket_rows(band, bucket, rep, size), size >= 2.
 -- Most buckets hold one representative and can form no pair; they are counted here (by
 -- sql/bucket_skew.sql from the row total) but not carried on, so later joins see only
