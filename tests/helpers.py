@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -59,3 +60,22 @@ def planted_events_file(tmp_path_factory):
     path = tmp_path_factory.mktemp("events") / "loans.parquet"
     planted_pairs(40, 0.5, seed=3, background=300).write_parquet(path)
     return path
+
+
+class SliceCounter:
+    """A progress display (the ``progress`` of ``sign_file``) that counts the signature slices
+    handed to the writer in the stage ``sign``: one advance a slice."""
+
+    def __init__(self) -> None:
+        self.slices = 0
+
+    @contextmanager
+    def stage(self, name: str, total: int = 1):
+        counter = self
+
+        class _Task:
+            def advance(self, steps: int = 1) -> None:
+                if name == "sign":
+                    counter.slices += steps
+
+        yield _Task()
