@@ -195,6 +195,9 @@ def test_streaming_loader_integer_keys_and_batches(tmp_path, monkeypatch):
     cases = [(rng.integers(-10**15, 10**15, 300), 1 << 16), (np.arange(300), 1 << 16),
              (rng.choice(np.arange(-2000, 2000), 300, replace=False), 1 << 16), (np.arange(3000) + 7, 0),
              (np.arange(-120, 120, dtype=np.int8), 1 << 16)]  # int8 keys: a range wider than int8
+    two_pass = []  # the reader each case took: the two-pass way for keys in a small range
+    real = loading._read_in_range
+    monkeypatch.setattr(loading, "_read_in_range", lambda *a: two_pass.append(1) or real(*a))
     for entities, min_span in cases:
         monkeypatch.setattr(budget, "DENSE_MIN_SPAN", min_span)
         ent = rng.choice(entities, 5000)
@@ -209,6 +212,9 @@ def test_streaming_loader_integer_keys_and_batches(tmp_path, monkeypatch):
         assert got.keys.to_list() == sorted(truth)
         for i, key in enumerate(got.keys.to_list()):
             assert got.elements[got.offsets[i]:got.offsets[i + 1]].tolist() == sorted(truth[key])
+        span = int(ent.max()) - int(ent.min()) + 1  # the rule of lshjob/ingest/loading.py's docstring
+        assert len(two_pass) == (span <= max(5000 // 4, min_span)), (span, min_span)
+        two_pass.clear()
 
 
 def test_events_without_a_counted_slot_are_reported_not_written():
