@@ -70,7 +70,7 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
     figures should be read with (events other than the run's input).
 
     When the sets need more than half of ``memory`` (bytes; default half the machine), or
-    ``parts`` > 1, the other entities are read a key range at a time (:mod:`lshjob.jobs.parts`):
+    ``parts`` > 1, the other entities are read a key range at a time (:mod:`lshjob.runtime.partitions`):
     the sampled sets are appended to each part's and compared there, so every pair is seen
     once, in the part of its other entity."""
     if sample < 1:

@@ -196,7 +196,8 @@ def writer_reserve(perms: int) -> int:
 
 
 def held_bytes(entities: int) -> int:
-    """What a run in parts holds across parts (:mod:`lshjob.jobs.parts`), the process included."""
+    """What a run in parts holds across parts (entity keys, representatives, event counts),
+    the process included."""
     return PROCESS_BYTES + entities * HELD_BYTES_PER_ENTITY
 
 
