@@ -4,9 +4,9 @@ module.
 
 Oracle: the formulas as they stood at commit be5c9ac, written out here independently of the
 package (lshjob/jobs/run.py:160-161, lshjob/audit/check.py:99 and :109,
-lshjob/jobs/parts.py:87-90 and :126-166, lshjob/jobs/merge.py:63-76,
-lshjob/jobs/prepare.py:75, :90, :103-105, :190, :213, lshjob/jobs/parts.py:243 and :276,
-lshjob/ingest/loading.py:51-56 and :359-367). Sizes are chosen on both sides of every
+lshjob/jobs/parts.py:73-92 and :128-168, lshjob/jobs/merge.py:63-76,
+lshjob/jobs/prepare.py:73-75, :90, :103-105, :190, :213, lshjob/jobs/parts.py:174-180, :252 and :276,
+lshjob/ingest/loading.py:51-56 and :359-367, lshjob/sign/events.py:35-36). Sizes are chosen on both sides of every
 threshold, so a "<" for a "<=" fails too.
 """
 
@@ -41,7 +41,7 @@ def old_grouping_bytes(events, weighted, span):  # loading.py:51-56
     return events * (36 if weighted else 20)
 
 
-def old_part_budget(memory, entities, share=None):  # parts.py:87-90 (held_bytes: 256 MiB + 32 an entity)
+def old_part_budget(memory, entities, share=None):  # parts.py:82-92 (held_bytes: 256 MiB + 32 an entity)
     return int(max((share or 0.5) * (memory - ((256 << 20) + entities * 32)), memory // 10))
 
 
@@ -54,7 +54,7 @@ def old_audit_one_part(need, memory, parts):  # audit/check.py:99
     return parts == 1 or (parts is None and need <= 0.5 * memory)
 
 
-def old_sign_one_part(events, entities, weighted, entity_range, memory, parts, perms):  # parts.py:126-146
+def old_sign_one_part(events, entities, weighted, entity_range, memory, parts, perms):  # parts.py:128-148
     if parts == 1:
         return True
     usable = memory - 4 * (1 << 16) * 8 * perms
@@ -67,7 +67,7 @@ def old_sign_one_part(events, entities, weighted, entity_range, memory, parts, p
     return False
 
 
-def old_keyed_one_part(events, memory, parts, perms):  # parts.py:148-166
+def old_keyed_one_part(events, memory, parts, perms):  # parts.py:150-168
     if parts == 1:
         return True
     usable = memory - 4 * (1 << 16) * 8 * perms
@@ -146,7 +146,7 @@ def test_range_sizes_equal_the_formulas_over_a_grid():
         assert b.range_bytes(entities) == old_part_budget(memory, entities)  # run: prepare.py:104
         assert b.range_bytes(entities, budget.AUDIT_PART_SHARE) == old_part_budget(memory, entities, 0.25)
         assert (b.range_bytes(entities, budget.SIGN_PART_SHARE, budget.writer_reserve(perms))
-                == old_part_budget(usable, entities, 0.75))  # parts.py:146 and :166
+                == old_part_budget(usable, entities, 0.75))  # parts.py:146 and :165
         assert b.range_bytes(entities, budget.MERGE_PART_SHARE) == old_part_budget(memory, entities, 0.75)
         for held in (0, 300 * MIB, memory // 2, memory):
             old = min(old_part_budget(memory, entities), max((memory - held - memory // 4) // 2, memory // 10))
@@ -158,19 +158,19 @@ def test_range_sizes_equal_the_formulas_over_a_grid():
 def test_slices_and_batches_equal_the_formulas_over_a_grid():
     for memory in MEMORIES:
         b = Budget(memory)
-        assert b.verify_slice_rows() == max(1_000_000, memory // 8 // 64)  # parts.py:243
+        assert b.verify_slice_rows() == max(1_000_000, memory // 8 // 64)  # parts.py:252
         assert b.estimate_bytes() == memory // 16  # parts.py:276
         assert b.band_batch_bytes() == max(64 << 20, memory // 8)  # prepare.py:213
         for positions, bands in ((128, 32), (64, 64), (10, 2), (1, 1)):
             old = int(max(10_000, memory // 8 // (3 * 8 * positions + 28 * bands)))  # prepare.py:190
             assert b.sign_slice_rows(positions, bands, 28) == old
         for held, reps, bands in itertools.product((0, 200 * MIB, memory // 2), (0, 10**5, 10**7, 10**8), (1, 20)):
-            spill = held + reps * (bands + 1) * 8 + memory // 4 > memory  # prepare.py:74-75
+            spill = held + reps * (bands + 1) * 8 + memory // 4 > memory  # prepare.py:73-75
             assert b.keys_stay_held(held, reps, bands) == (not spill)
 
 
 def test_the_copy_budget_is_refused_under_one_gib():
-    # parts.py:172-177 at be5c9ac: refused when memory < 256 MiB + 512 MiB + 256 MiB
+    # parts.py:174-180 at be5c9ac: refused when memory < 256 MiB + 512 MiB + 256 MiB
     with pytest.raises(ParameterError, match="a key range at a time needs at least 1GiB"):
         Budget(GIB - 1).require_copy("loans.parquet: the sets", "signing")
     Budget(GIB).require_copy("loans.parquet: the sets", "signing")
@@ -182,7 +182,7 @@ def test_grouping_costs_equal_the_loader_formula():
             span = old_dense_span(entity_range, events)
             assert budget.dense_span(entity_range, events) == span
             assert budget.grouping_bytes(events, weighted, span) == old_grouping_bytes(events, weighted, span)
-            # parts.py:71-77: bytes an event with the range's table spread over the events
+            # parts.py:73-79: bytes an event with the range's table spread over the events
             old = ((16 if weighted else 8) + 8 * span / max(events, 1)) if span else (36 if weighted else 20)
             assert math.isclose(budget.bytes_per_event(events, weighted, entity_range), old)
 
