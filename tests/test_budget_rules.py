@@ -6,8 +6,8 @@ Oracle: the formulas as they stood at commit be5c9ac, written out here independe
 package (lshjob/jobs/run.py:160-161, lshjob/audit/check.py:99 and :109,
 lshjob/jobs/parts.py:73-92 and :128-168, lshjob/jobs/merge.py:63-76,
 lshjob/jobs/prepare.py:73-75, :90, :103-105, :190, :213, lshjob/jobs/parts.py:174-180, :252 and :276,
-lshjob/ingest/loading.py:51-56 and :359-367, lshjob/sign/events.py:35-36). Sizes are chosen on both sides of every
-threshold, so a "<" for a "<=" fails too.
+lshjob/ingest/loading.py:51-56 and :359-367, lshjob/sign/events.py:35-36). Sizes are chosen
+on both sides of every threshold, so a "<" for a "<=" fails too.
 """
 
 from __future__ import annotations
@@ -152,7 +152,8 @@ def test_range_sizes_equal_the_formulas_over_a_grid():
             old = min(old_part_budget(memory, entities), max((memory - held - memory // 4) // 2, memory // 10))
             assert b.run_range_bytes(entities, held) == old  # prepare.py:103-105
         for per_event in (8, 8.5, 20, 36):
-            assert b.planner_sample_events(entities, per_event) == int(old_part_budget(memory, entities) / 2 / per_event)
+            old = int(old_part_budget(memory, entities) / 2 / per_event)  # prepare.py:90
+            assert b.planner_sample_events(entities, per_event) == old
 
 
 def test_slices_and_batches_equal_the_formulas_over_a_grid():
