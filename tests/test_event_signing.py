@@ -43,8 +43,10 @@ def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, 
     # writes 37 entities at a time here (uneven slices, the last one short); the file must
     # hold every entity once, in key order, with the reference signatures and sizes. Weighted
     # (a count column, --min-count 2), the sets keep the elements whose counts sum to 2 or more.
-    from lshjob.sign import events as event_signing
+    from helpers import SliceCounter
+
     from lshjob.jobs.sign import sign_file
+    from lshjob.runtime import budget
     from lshjob.sign.signatures import read_signatures
 
     rng = np.random.default_rng(4)
@@ -55,10 +57,11 @@ def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, 
     path = tmp_path / "loans.parquet"
     events.sample(fraction=1.0, shuffle=True, seed=3).write_parquet(path)
     params = SignatureParams(scheme=scheme, perms=32, seed=2)
-    monkeypatch.setattr(event_signing, "SLICE_ROWS", 37)
+    monkeypatch.setattr(budget, "SLICE_ROWS", 37)
     spec = EventSpec(entity="patron", element="title", count="loans" if weighted else None,
                      min_count=2 if weighted else 1)
-    summary = sign_file(path, tmp_path / "sig.parquet", spec, params)
+    counter = SliceCounter()
+    summary = sign_file(path, tmp_path / "sig.parquet", spec, params, progress=counter)
     table, meta = read_signatures(tmp_path / "sig.parquet")
     kept = (events.group_by("patron", "title").agg(pl.col("loans").sum()).filter(pl.col("loans") >= 2)
             if weighted else events)
@@ -67,5 +70,6 @@ def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, 
     assert table["set_size"].to_list() == truth["title"].list.len().to_list()
     assert np.array_equal(signature_array(table), sign_element_lists(truth["title"].to_list(), params))
     assert summary["signatures"] == truth.height > 250
+    assert counter.slices == -(-truth.height // 37)  # written 37 at a time
     assert summary["ingest"]["membership_rows"] == truth["title"].list.len().sum()
     assert meta["set_size"] == "exact" and not list(tmp_path.glob(".*"))

@@ -190,13 +190,17 @@ def test_streaming_loader_integer_keys_and_batches(tmp_path, monkeypatch):
     # but read with a separate key pass (direct table); repeated events, and batches smaller
     # than the input.
     import lshjob.ingest.loading as loading
+    from lshjob.runtime import budget
 
     rng = np.random.default_rng(5)
     cases = [(rng.integers(-10**15, 10**15, 300), 1 << 16), (np.arange(300), 1 << 16),
              (rng.choice(np.arange(-2000, 2000), 300, replace=False), 1 << 16), (np.arange(3000) + 7, 0),
              (np.arange(-120, 120, dtype=np.int8), 1 << 16)]  # int8 keys: a range wider than int8
+    two_pass = []  # the reader each case took: the two-pass way for keys in a small range
+    real = loading._read_in_range
+    monkeypatch.setattr(loading, "_read_in_range", lambda *a: two_pass.append(1) or real(*a))
     for entities, min_span in cases:
-        monkeypatch.setattr(loading, "DENSE_MIN_SPAN", min_span)
+        monkeypatch.setattr(budget, "DENSE_MIN_SPAN", min_span)
         ent = rng.choice(entities, 5000)
         elem = rng.integers(-50, 200, 5000)
         path = tmp_path / "e.parquet"
@@ -209,6 +213,9 @@ def test_streaming_loader_integer_keys_and_batches(tmp_path, monkeypatch):
         assert got.keys.to_list() == sorted(truth)
         for i, key in enumerate(got.keys.to_list()):
             assert got.elements[got.offsets[i]:got.offsets[i + 1]].tolist() == sorted(truth[key])
+        span = int(ent.max()) - int(ent.min()) + 1  # the rule of lshjob/ingest/loading.py's docstring
+        assert len(two_pass) == (span <= max(5000 // 4, min_span)), (span, min_span)
+        two_pass.clear()
 
 
 def test_events_without_a_counted_slot_are_reported_not_written():
@@ -301,12 +308,13 @@ def test_a_key_the_first_pass_did_not_see_is_refused(tmp_path, monkeypatch, patr
     # under a neighbouring key or counted past the end of the keys.
     import lshjob.ingest.loading as loading
     from lshjob.errors import InputError
+    from lshjob.runtime import budget
 
     key, unseen = {"dense": (np.arange(300) * 5, 7), "sparse": (np.arange(300) * 10**9, 5),
                    "text": ([f"P{i:04d}" for i in range(300)], "P9999")}[patrons]
     path = tmp_path / "loans.parquet"
     pl.DataFrame({"patron": key, "title": np.arange(300) % 7}).write_parquet(path)
-    monkeypatch.setattr(loading, "DENSE_MIN_SPAN", 0)  # the one-pass reader, whose first pass lists the keys
+    monkeypatch.setattr(budget, "DENSE_MIN_SPAN", 0)  # the one-pass reader, whose first pass lists the keys
     real = loading.batches
 
     def changed(frame, columns):

@@ -10,9 +10,9 @@ from helpers import planted_pairs, same_index
 from test_run import brute_force_pairs, published_pairs
 
 from lshjob import EventSpec, ParameterError
-from lshjob.jobs import parts as parts_module
+from lshjob.runtime import budget, partitions
 from lshjob.jobs.run import RunOptions, run_job
-from lshjob.ingest.loading import membership_of, open_events
+from lshjob.ingest.loading import entity_counts, event_bytes, membership_of, open_events
 from lshjob.core.sets import Membership
 from lshjob.index.verify import jaccard_between
 
@@ -93,8 +93,8 @@ def test_a_small_budget_turns_to_parts_by_itself(tmp_path, demo_events, monkeypa
     demo_events[0].write_parquet(src)
     options = RunOptions(threshold=0.5, perms=64, bands=16, rows=4)
     run_job(src, SPEC, options, tmp_path / "one")
-    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e-6)
-    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 200_000)
+    monkeypatch.setattr(budget, "ONE_PART_SHARE", 1e-6)
+    monkeypatch.setattr(budget.Budget, "range_bytes", lambda self, entities, share=None, reserve=0: 200_000)
     manifest = run_job(src, SPEC, options, tmp_path / "parts")
     assert manifest["counts"]["parts"] > 1
     written = json.loads((tmp_path / "parts/manifest.json").read_text())
@@ -110,8 +110,8 @@ def test_key_ranges_hold_every_event_once_in_key_order(tmp_path, integer_patrons
     src = tmp_path / "loans.parquet"
     events.write_parquet(src)
     source = open_events(src, SPEC)
-    counts = parts_module.events_per_entity(source)
-    ranges = parts_module.key_ranges(counts, source, budget=1, parts=5)
+    counts = entity_counts(source)
+    ranges = partitions.key_ranges(counts, 1, parts=5, event_bytes=event_bytes(source))
     assert len(ranges) == 5
     seen = []
     for r in ranges:
@@ -134,13 +134,13 @@ def test_parts_are_sized_from_the_budget(tmp_path, demo_events):
     src = tmp_path / "loans.parquet"
     demo_events[0].write_parquet(src)
     source = open_events(src, SPEC)
-    counts = parts_module.events_per_entity(source)
-    per_event = parts_module.bytes_per_event(source)
+    counts = entity_counts(source)
+    per_event = event_bytes(source)
     assert per_event == 20  # text keys: the one-pass loader's 20 bytes an event (lshjob/ingest/loading.py)
-    budget = int(source.events * per_event / 3.5)
-    ranges = parts_module.key_ranges(counts, source, budget)
+    limit = int(source.events * per_event / 3.5)
+    ranges = partitions.key_ranges(counts, limit, event_bytes=per_event)
     assert len(ranges) == 4
-    assert all(r.events * per_event <= 1.2 * budget for r in ranges)
+    assert all(r.events * per_event <= 1.2 * limit for r in ranges)
 
 
 def test_jaccard_between_two_set_tables_matches_brute_force():
@@ -206,8 +206,9 @@ def test_the_planner_in_parts_meets_its_recall_target(tmp_path, monkeypatch):
     src = tmp_path / "loans.parquet"
     events.write_parquet(src)
     source = open_events(src, SPEC)
-    quarter = int(source.events * parts_module.bytes_per_event(source) / 4)
-    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 2 * quarter)  # a sample: half a part
+    quarter = int(source.events * event_bytes(source) / 4)
+    monkeypatch.setattr(budget.Budget, "range_bytes",
+                        lambda self, entities, share=None, reserve=0: 2 * quarter)  # a sample: half a part
     manifest = run_job(src, SPEC, RunOptions(threshold=0.5, sample_size=300, top_k=100, parts=3), tmp_path / "idx")
     sample = manifest["plan"]["sample"]
     assert manifest["counts"]["parts"] == 3
@@ -284,8 +285,8 @@ def test_signing_turns_to_parts_when_the_sets_would_not_fit(tmp_path, monkeypatc
     args = ["sign", str(src), "--entity", "patron", "--element", "title", "--perms", "256", "--json", "--quiet"]
     args += ["--count", "loans"] if weighted else []
     whole = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "whole.parquet")])
-    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e6 / 2**29)
-    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 500_000)
+    monkeypatch.setattr(budget, "ONE_PART_SHARE", 1e6 / 2**29)
+    monkeypatch.setattr(budget.Budget, "range_bytes", lambda self, entities, share=None, reserve=0: 500_000)
     small = CliRunner().invoke(app, [*args, "--out", str(tmp_path / "small.parquet"), "--memory", "1GiB"])
     assert whole.exit_code == 0 and small.exit_code == 0, small.output
     assert json.loads(whole.output)["parts"] == 1 and json.loads(small.output)["parts"] > 1
@@ -360,8 +361,8 @@ def test_merging_in_parts_gives_the_same_rows(tmp_path, demo_events, keep, monke
     assert {k: v for k, v in meta_a.items() if k != "path"} == {k: v for k, v in meta_b.items() if k != "path"}
     assert not list(tmp_path.glob(".*"))
     # The budget decides when no part count is given: shrunk here, the merge goes in parts.
-    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e-9)
-    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 300_000)
+    monkeypatch.setattr(budget, "ONE_PART_SHARE", 1e-9)
+    monkeypatch.setattr(budget.Budget, "range_bytes", lambda self, entities, share=None, reserve=0: 300_000)
     auto = merge_files(files, tmp_path / "auto.parquet", keys, since="2026-03-01", until="2026-10-31")
     assert auto["parts"] > 1 and pl.read_parquet(tmp_path / "auto.parquet").equals(a)
 
@@ -415,8 +416,8 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
 
     # 23k loans do not fit half of a budget shrunk to 0.1 MB: parts of 0.5 MB (polars' group-by
     # at 256 bytes an event; by composite keys, the loader's bytes an event and 40 a set)
-    monkeypatch.setattr(parts_module, "ONE_PART_SHARE", 1e5 / 2**29)
-    monkeypatch.setattr(parts_module, "part_budget", lambda memory, entities, share=None: 500_000)
+    monkeypatch.setattr(budget, "ONE_PART_SHARE", 1e5 / 2**29)
+    monkeypatch.setattr(budget.Budget, "range_bytes", lambda self, entities, share=None, reserve=0: 500_000)
     args = ["sign", str(src), "--entity", "patron", "--element", "title", "--segment", "branch", "--time",
             "borrowed_at", "--period", "month", "--scheme", "oph", "--perms", "32", "--seed", "4", "--json",
             "--quiet", "--memory", "1GiB", "--out", str(tmp_path / "small.parquet")]
@@ -424,12 +425,10 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
     small = CliRunner().invoke(app, args)
     assert small.exit_code == 0, small.output
     if integer_patrons:  # the loader's bytes an event (module docstring) and 40 a set
-        from lshjob.ingest.loading import BYTES_PER_EVENT
-
         sets = events.select("patron", "branch", pl.col("borrowed_at").dt.truncate("1mo")).n_unique()
-        cost = events.height * BYTES_PER_EVENT[weighted] + sets * parts_module.SIGNATURE_BYTES_PER_ENTITY
+        cost = events.height * budget.BYTES_PER_EVENT[weighted] + sets * budget.SIGNATURE_BYTES_PER_ENTITY
     else:
-        cost = events.height * parts_module.KEYED_BYTES_PER_EVENT
+        cost = events.height * budget.KEYED_BYTES_PER_EVENT
     assert json.loads(small.output)["parts"] == -(-cost // 500_000)
     assert read_signatures(tmp_path / "small.parquet")[0].equals(table)
 

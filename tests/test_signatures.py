@@ -274,19 +274,23 @@ def test_monthly_signatures_streamed_in_slices_equal_signing_at_once(tmp_path, d
     # Reference: sign_sets over the whole membership table at once (itself checked against
     # datasketch above). `lshjob sign` with segments and periods writes 7 sets at a time here.
     from lshjob import EventSpec, sign_file
-    from lshjob.sign import events as event_signing
+    from helpers import SliceCounter
+
     from lshjob.ingest.spec import load_sets
+    from lshjob.runtime import budget
 
     events, _ = demo_events
     src = tmp_path / "loans.parquet"
     events.write_parquet(src)
     spec = EventSpec(entity="patron", element="title", segment="branch", time="borrowed_at", period="month")
     p = SignatureParams(perms=16, seed=3)
-    monkeypatch.setattr(event_signing, "SLICE_ROWS", 7)
-    summary = sign_file(src, tmp_path / "monthly.parquet", spec, p)
+    monkeypatch.setattr(budget, "SLICE_ROWS", 7)
+    counter = SliceCounter()
+    summary = sign_file(src, tmp_path / "monthly.parquet", spec, p, progress=counter)
     table, meta = read_signatures(tmp_path / "monthly.parquet")
     sets, _ = load_sets(src, spec)
     expected = sign_sets(sets, spec.key_columns, p)
     assert table.height == summary["signatures"] == expected.height > 1000
+    assert counter.slices == -(-expected.height // 7)  # written 7 at a time
     assert table.equals(expected)
     assert meta["keys"] == ["entity", "segment", "period"]

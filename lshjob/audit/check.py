@@ -21,19 +21,20 @@ import numpy as np
 import polars as pl
 
 from lshjob.core._jit import numba
-from lshjob.jobs import parts as parts_module
 from lshjob.core.atomic import file_sha256
 from lshjob.core.digest import digest_in_background
 from lshjob.errors import InputError, ParameterError
 from lshjob.index.collapse import fingerprints
 from lshjob.ingest.spec import EventSpec, resolve_paths
-from lshjob.ingest.loading import grouping_need, membership_of, open_events
+from lshjob.ingest.loading import entity_counts, event_bytes, grouping_need, membership_of, open_events
 from lshjob.core.sets import Membership
 from lshjob.plan.banding import candidate_probability
 from lshjob.contracts.manifest import Manifest
 from lshjob.index.publish import NEIGHBOURS, read_manifest
 from lshjob.plan.similarity import overlap_counts, postings_of, restricted_index, visit_costs
-from lshjob.runtime.budget import default_memory, peak_bytes
+from lshjob.runtime import budget
+from lshjob.runtime.budget import Budget, default_memory, peak_bytes
+from lshjob.runtime.partitions import entities_of, key_ranges
 from lshjob.index.verify import exact_jaccard
 
 MAX_BRUTE_FORCE_WORK = 5e9  # posting visits; beyond this the audit compares within the sample
@@ -71,7 +72,7 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
     figures should be read with (events other than the run's input).
 
     When the sets need more than half of ``memory`` (bytes; default half the machine), or
-    ``parts`` > 1, the other entities are read a key range at a time (:mod:`lshjob.jobs.parts`):
+    ``parts`` > 1, the other entities are read a key range at a time (:mod:`lshjob.runtime.partitions`):
     the sampled sets are appended to each part's and compared there, so every pair is seen
     once, in the part of its other entity."""
     if sample < 1:
@@ -98,17 +99,18 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
     opened = open_events(source, spec)
     memory = memory or default_memory()
     rng = np.random.default_rng(seed)
-    if parts == 1 or (parts is None and grouping_need(opened) <= parts_module.ONE_PART_SHARE * memory):
+    if Budget(memory, parts).one_part(grouping_need(opened)):
         whole, _ = membership_of(opened, None)
         sampled = whole.subset(np.sort(rng.choice(whole.size, size=min(sample, whole.size), replace=False)))
         blocks = iter([whole])
         n_blocks = 1
     else:
-        counts = parts_module.events_per_entity(opened)
+        counts = entity_counts(opened)
         picked = np.sort(rng.choice(counts.height, size=min(sample, counts.height), replace=False))
-        sampled, _ = membership_of(opened, parts_module.entities_of(counts, picked))
+        sampled, _ = membership_of(opened, entities_of(counts, picked))
         # the part and a copy of it with the sample appended: a quarter of the free budget each
-        ranges = parts_module.key_ranges(counts, opened, parts_module.part_budget(memory, counts.height, 0.25), parts)
+        ranges = key_ranges(counts, Budget(memory).range_bytes(counts.height, budget.AUDIT_PART_SHARE), parts,
+                            event_bytes=event_bytes(opened))
         blocks = (membership_of(opened, r)[0] for r in ranges)
         n_blocks = len(ranges)
     index = pl.read_parquet(neighbours)

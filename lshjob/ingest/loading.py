@@ -41,19 +41,11 @@ from lshjob.errors import InputError, ParameterError, key_text
 from lshjob.core.hashing import xxh64_strings
 from lshjob.ingest.spec import EventSpec, IngestReport, validated_events
 from lshjob.core.sets import INT64_MAX, Membership, nfc_codes
+from lshjob.runtime import budget
+from lshjob.runtime.partitions import EntitySelection, events_per_entity
 
 BATCH_ROWS = 1_000_000  # as fast as 4M here, and a quarter of the memory in flight (measured)
-BYTES_PER_EVENT = {False: 20, True: 36}  # id + code + grouped code (+ weights, twice)
-BYTES_PER_EVENT_IN_RANGE = {False: 8, True: 16}  # grouped code (+ weight): keys in a small range
-BYTES_PER_KEY_VALUE = 8  # slot pointer per value of the key range
-
-
-def grouping_bytes(events: int, weighted: bool, span: int = 0) -> int:
-    """Memory the loader needs at its peak for this many events (module docstring); ``span``
-    is the size of the integer key range when the two-pass way applies, else 0."""
-    if span:
-        return events * BYTES_PER_EVENT_IN_RANGE[weighted] + span * BYTES_PER_KEY_VALUE
-    return events * BYTES_PER_EVENT[weighted]
+# bytes an event and the key range's table: lshjob.runtime.budget (grouping_bytes, dense_span)
 
 
 def load_membership(source: str | Path, spec: EventSpec, memory: int | None = None) -> tuple[Membership, IngestReport]:
@@ -128,20 +120,6 @@ class EventSource:
         return self.report.rows_read - self.report.null_rows_dropped
 
 
-@dataclass(frozen=True)
-class EntitySelection:
-    """The events of some entities: those matching ``condition`` (on the ``entity`` column),
-    exactly ``events`` of them (counted beforehand), keys within ``entity_range`` when the
-    keys are integers."""
-
-    condition: pl.Expr
-    events: int
-    entity_range: tuple[int, int] | None = None
-    # integer keys and their event counts, when counted beforehand: the two-pass reader
-    # then skips its counting pass
-    key_counts: tuple[np.ndarray, np.ndarray] | None = None
-
-
 def open_events(source: str | Path, spec: EventSpec) -> EventSource:
     """Check the events (one set per entity) and prepare what grouping them needs."""
     if spec.key_columns != ["entity"]:
@@ -182,12 +160,13 @@ def _source(frame, report, where, spec, dictionary, describe) -> EventSource:
 def check_budget(events: EventSource, selection: EntitySelection | None, memory: int | None) -> None:
     """Refuse, with the figures, when grouping the selection would need more than ``memory``."""
     n, entity_range = _extent(events, selection)
-    span = dense_span(entity_range, n)
-    need = grouping_bytes(n, events.weighted, span)
+    span = budget.dense_span(entity_range, n)
+    need = budget.grouping_bytes(n, events.weighted, span)
     if memory is not None and need > memory:
+        per_event = (budget.BYTES_PER_EVENT_IN_RANGE if span else budget.BYTES_PER_EVENT)[events.weighted]
         raise ParameterError(
             f"{events.where}: grouping {n:,} events into sets needs about {need / 2**30:.1f} GiB "
-            f"({(BYTES_PER_EVENT_IN_RANGE if span else BYTES_PER_EVENT)[events.weighted]} bytes an event), more "
+            f"({per_event} bytes an event), more "
             f"than the memory budget of {memory / 2**30:.1f} GiB; raise --memory, or split the input by "
             "entity and run each part"
         )
@@ -196,7 +175,19 @@ def check_budget(events: EventSource, selection: EntitySelection | None, memory:
 def grouping_need(events: EventSource, selection: EntitySelection | None = None) -> int:
     """Bytes the loader needs at its peak to group the selection (all events by default)."""
     n, entity_range = _extent(events, selection)
-    return grouping_bytes(n, events.weighted, dense_span(entity_range, n))
+    return budget.grouping_bytes(n, events.weighted, budget.dense_span(entity_range, n))
+
+
+def event_bytes(events: EventSource) -> float:
+    """Grouping cost of one of the events (:func:`lshjob.runtime.budget.bytes_per_event`)."""
+    return budget.bytes_per_event(events.events, events.weighted, events.report.entity_range)
+
+
+def entity_counts(events: EventSource) -> pl.DataFrame:
+    """Events per entity key (:func:`lshjob.runtime.partitions.events_per_entity`), one
+    streaming pass; a file failing to read is named."""
+    with events.report.reading(events.where):
+        return events_per_entity(events.frame)
 
 
 def _extent(events: EventSource, selection: EntitySelection | None) -> tuple[int, tuple[int, int] | None]:
@@ -220,7 +211,7 @@ def group_events(events: EventSource, selection: EntitySelection | None) -> Grou
     if selection is not None:
         frame = frame.filter(selection.condition)
         report = IngestReport(files=report.files, rows_read=n, entity_range=entity_range)
-    span = dense_span(entity_range, n)
+    span = budget.dense_span(entity_range, n)
     codes = (events.dictionary, events.remap)
     with events.report.reading(where):
         if span:
@@ -354,17 +345,6 @@ def start_compiled_code() -> threading.Thread:
     )
     thread.start()
     return thread
-
-
-def dense_span(entity_range: tuple[int, int] | None, events: int) -> int:
-    """Size of the table over the integer key range when the single-pass path applies, else 0."""
-    if entity_range is None:
-        return 0
-    span = entity_range[1] - entity_range[0] + 1
-    return span if span <= max(events // 4, DENSE_MIN_SPAN) and span < 2**32 else 0
-
-
-DENSE_MIN_SPAN = 1 << 16  # a table this small (512 KiB) is always worth it
 
 
 def _text_dictionary(frame: pl.LazyFrame) -> pl.Series | None:

@@ -16,16 +16,13 @@ from pathlib import Path
 
 import polars as pl
 
-from lshjob.jobs import parts as parts_module
 from lshjob.errors import InputError, ParameterError
 from lshjob.runtime.outputs import PATTERN_CHARS, output_file
-from lshjob.runtime.budget import default_memory, peak_bytes
+from lshjob.runtime import budget
+from lshjob.runtime.budget import Budget, default_memory, peak_bytes
+from lshjob.runtime.partitions import key_ranges
 from lshjob.sign.signatures import check_compatible, merge_signatures, merged_meta, signature_meta, write_signatures
 from lshjob.sign.streaming import write_streamed
-
-MERGE_COPIES = 4  # rows read (with decode buffers), the merged matrix and its column, writing: 3.1x measured
-# in one part with every key distinct (2M rows, 6.3 GiB), 2.7x with every key twice; under --memory 1GiB
-# the peaks were 1.10 and 0.99 GiB
 
 
 def merge_files(
@@ -60,20 +57,20 @@ def merge_files(
         check_compatible(metas[0], meta)  # before any row is read
     _check_columns(sources, metas, keep, window is not None)
     rows_in = _selected_rows(sources, window, since, until)
-    per_row = MERGE_COPIES * (8 * metas[0]["k"] + parts_module.SIGNATURE_BYTES_PER_ENTITY)
     memory = memory or default_memory()
-    if parts == 1 or (parts is None and rows_in * per_row <= parts_module.ONE_PART_SHARE * memory):
+    limit = Budget(memory, parts)
+    if limit.one_part(budget.merge_need(rows_in, metas[0]["k"])):
         tables = [(_read(pl.scan_parquet(s), window), m) for s, m in zip(sources, metas)]
         merged, meta = merge_signatures(tables, keep)
         write_signatures(merged, out, meta)
         return _merge_summary(out, sources, rows_in, merged.height, keep, 1)
     if parts is None:
-        parts_module.require_copy_budget(memory, f"{sources[0]} (and the other inputs): the rows", "merging")
+        limit.require_copy(f"{sources[0]} (and the other inputs): the rows", "merging")
     counts = (pl.concat([_selected(pl.scan_parquet(s), window).select("entity") for s in sources],
                         how="vertical_relaxed")
               .group_by("entity").agg(pl.len().alias("events")).collect(engine="streaming").sort("entity"))
-    ranges = parts_module.key_ranges(counts, None, parts_module.part_budget(memory, counts.height, 0.75), parts,
-                                     event_bytes=per_row)
+    ranges = key_ranges(counts, limit.range_bytes(counts.height, budget.MERGE_PART_SHARE), parts,
+                        event_bytes=budget.merge_row_bytes(metas[0]["k"]))
 
     def tables():
         for selection in ranges:

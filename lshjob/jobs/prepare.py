@@ -23,9 +23,10 @@ from lshjob.plan import similarity
 from lshjob.errors import InputError, ParameterError
 from lshjob.index.collapse import collapse_identical, fingerprints
 from lshjob.ingest.spec import IngestReport
-from lshjob.ingest.loading import EventSource, membership_of
+from lshjob.ingest.loading import EventSource, entity_counts, event_bytes, membership_of
 from lshjob.core.sets import Membership
-from lshjob.runtime.budget import current_bytes, release_freed
+from lshjob.runtime.budget import Budget, current_bytes, release_freed
+from lshjob.runtime.partitions import HeldSets, PartStore, key_ranges, planning_sample
 from lshjob.sign.signatures import SignatureParams, comparable_by_position
 
 if TYPE_CHECKING:
@@ -39,7 +40,7 @@ class Prepared:
     keys: pl.Series  # every entity key; entity id = position
     rep_of: np.ndarray
     representatives: int
-    store: parts.PartStore | parts.HeldSets
+    store: PartStore | HeldSets
     report: IngestReport
     plan: dict
     params: SignatureParams | None = None
@@ -63,16 +64,15 @@ def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: P
     with stages("plan"):
         plan = choose_plan(sets, options, distinct_sets=len(reps))
     _check_predicted(plan, options)
-    built = Prepared(sets.keys, rep_of, len(reps), parts.HeldSets(sets), report, plan,
+    built = Prepared(sets.keys, rep_of, len(reps), HeldSets(sets), report, plan,
                      warnings=_few_sets(sets.size, len(reps)))
     if plan["mode"] != "identical-only":
         built.params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
         # The bucket keys (8 bytes a band and representative) stay in memory when they fit
         # beside what the process holds, a slice's signatures and a batch of the band search
         # (an eighth of the budget each); else they go to the work folder, as in parts.
-        keys_bytes = len(reps) * (plan["bands"] + 1) * 8
         release_freed()
-        spill = work / "keys" if current_bytes() + keys_bytes + memory // 4 > memory else None
+        spill = None if Budget(memory).keys_stay_held(current_bytes(), len(reps), plan["bands"]) else work / "keys"
         bands = SignAndBand(built.params, plan, memory, stages, spill=spill)
         with stages.progress.stage("sign and band", len(reps)) as task:
             bands.add(sets, reps, 0, task)
@@ -84,13 +84,13 @@ def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: P
 def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path, stages) -> Prepared:
     """The run a key range at a time (:mod:`lshjob.jobs.parts`)."""
     with stages("count"):
-        per_entity = parts.events_per_entity(source)
+        per_entity = entity_counts(source)
     with stages("plan"):
         # Half a part: the planner's histogram adds an inverted index of the sample.
-        budget_events = int(parts.part_budget(memory, per_entity.height) / 2 / parts.bytes_per_event(source))
+        budget_events = Budget(memory).planner_sample_events(per_entity.height, event_bytes(source))
         sample = None
         if options.threshold < 1.0 and per_entity.height > 1:  # identical sets only need no sample
-            sample, _ = membership_of(source, parts.planning_sample(per_entity, budget_events))
+            sample, _ = membership_of(source, planning_sample(per_entity, budget_events))
         plan = choose_plan(sample, options, total_entities=per_entity.height)
         del sample
     _check_predicted(plan, options)
@@ -100,11 +100,10 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
     # beside what the process holds now, its slices of candidates and their estimates (an
     # eighth and a sixteenth of the budget) and what DuckDB leaves resident after the join.
     release_freed()
-    two_parts = (memory - current_bytes() - memory // 4) // 2
-    ranges = parts.key_ranges(per_entity, source, min(parts.part_budget(memory, per_entity.height),
-                                                      max(two_parts, memory // 10)), options.parts)
+    ranges = key_ranges(per_entity, Budget(memory).run_range_bytes(per_entity.height, current_bytes()), options.parts,
+                        event_bytes=event_bytes(source))
     del per_entity
-    store = parts.PartStore(work / "sets", source.text_hashes)
+    store = PartStore(work / "sets", source.text_hashes)
     report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
                           null_rows_dropped=source.report.null_rows_dropped)
     keys, rep_of, representatives = [], [], 0
@@ -187,7 +186,7 @@ class SignAndBand:
         # positions are independent); oph fills no other empty bin.
         self.positions = self.bands * self.rows
         self.params, self.memory, self.stages = params, memory, stages
-        self.step = int(max(10_000, memory // 8 // (3 * 8 * self.positions + band.ROW_BYTES * self.bands)))
+        self.step = Budget(memory).sign_slice_rows(self.positions, self.bands, band.ROW_BYTES)
         self.slices: list[pl.DataFrame | Path] = []
         self.spill = spill  # keys saved here (a run in parts), else kept in memory
 
@@ -210,7 +209,7 @@ class SignAndBand:
     def write(self, out_dir: Path) -> tuple[list[Path], int]:
         with self.stages.part("band"):
             files, written = band.write_shared_bucket_rows(self.slices, self.bands, out_dir,
-                                                          batch_bytes=max(64 << 20, self.memory // 8))
+                                                          batch_bytes=Budget(self.memory).band_batch_bytes())
         self.slices = []
         return files, written
 

@@ -37,7 +37,9 @@ from lshjob.index.join import (DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs
 from lshjob.ingest.loading import grouping_need, open_events
 from lshjob.runtime.outputs import output_folder, scratch_folder
 from lshjob.runtime.progress import QUIET, StageProgress
-from lshjob.runtime.budget import current_bytes, default_memory, parse_size, peak_bytes, release_freed, reset_peak
+from lshjob.runtime.budget import (Budget, current_bytes, default_memory, parse_size, peak_bytes, release_freed,
+                                   reset_peak)
+from lshjob.runtime.partitions import HeldSets
 from lshjob.runtime.workspace import remove_leftovers, work_folder
 from lshjob.sign.signatures import SignatureParams
 
@@ -162,8 +164,7 @@ def run_job(
         digest = digest_in_background([str(p) for p in resolve_paths(events)[0]])
         with stages("ingest"):
             source = open_events(events, spec)
-        in_parts = (options.parts or 0) > 1 or (
-            options.parts is None and grouping_need(source) > parts.ONE_PART_SHARE * memory)
+        in_parts = not Budget(memory, options.parts).one_part(grouping_need(source))
         built = (prepare.in_parts if in_parts else prepare.in_one_part)(source, options, memory, work, stages)
         report, plan = built.report, built.plan
         warnings += built.warnings
@@ -191,7 +192,7 @@ def run_job(
                 threads = join_threads()
                 release_freed()
                 limit = duckdb_limit(memory, current_bytes(), built.shared_rows, threads)
-                if limit < duckdb_need(built.shared_rows) and isinstance(built.store, parts.HeldSets):
+                if limit < duckdb_need(built.shared_rows) and isinstance(built.store, HeldSets):
                     built.store = built.store.saved(work / "sets")
                     release_freed()
                     limit = duckdb_limit(memory, current_bytes(), built.shared_rows, threads)

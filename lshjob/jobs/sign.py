@@ -15,6 +15,7 @@ from lshjob.ingest.spec import group_events as group_sets
 from lshjob.ingest.loading import group_events, membership_of, open_events
 from lshjob.jobs.merge import merge_files  # noqa: F401  (the API of lshjob merge)
 from lshjob.runtime.outputs import output_file
+from lshjob.runtime import budget
 from lshjob.runtime.budget import default_memory, peak_bytes
 from lshjob.sign.streaming import timed, write_streamed
 from lshjob.runtime.progress import QUIET, StageProgress
@@ -82,12 +83,12 @@ def sign_file(
                               meta, progress, started)
     ingested = time.perf_counter()
     if source is not None and direct:
-        made, n, report = (keyed_by(event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)),
+        made, n, report = (keyed_by(event_signing.sign_grouped_slices(grouped, params, budget.SLICE_ROWS)),
                            len(grouped.keys), grouped.report)
     elif source is not None:
-        made, n = keyed_by(signature_slices(members, params, event_signing.SLICE_ROWS)), members.size
+        made, n = keyed_by(signature_slices(members, params, budget.SLICE_ROWS)), members.size
     else:
-        made, n = sign_sets_slices(sets, spec.key_columns, params, event_signing.SLICE_ROWS), report.sets
+        made, n = sign_sets_slices(sets, spec.key_columns, params, budget.SLICE_ROWS), report.sets
     return _sign_streamed(made, n, report, out, params, meta, progress, started, ingested)
 
 
@@ -99,7 +100,7 @@ def _sign_streamed(made, n, report, out, params, meta, progress, started, ingest
     seconds = {"sign": 0.0}
 
     def slices():
-        with progress.stage("sign", -(-n // event_signing.SLICE_ROWS)) as task:
+        with progress.stage("sign", -(-n // budget.SLICE_ROWS)) as task:
             for table in timed(made, seconds, "sign"):
                 yield table
                 task.advance()
@@ -141,9 +142,9 @@ def _entity_part(source, direct, params, keyed_by):  # the streaming loader, as 
     def sign_part(selection):
         if direct:
             grouped = group_events(source, selection)
-            return keyed_by(event_signing.sign_grouped_slices(grouped, params, event_signing.SLICE_ROWS)), grouped.report
+            return keyed_by(event_signing.sign_grouped_slices(grouped, params, budget.SLICE_ROWS)), grouped.report
         members, part = membership_of(source, selection)
-        return keyed_by(signature_slices(members, params, event_signing.SLICE_ROWS)), part
+        return keyed_by(signature_slices(members, params, budget.SLICE_ROWS)), part
     return sign_part
 
 
@@ -155,7 +156,7 @@ def _keyed_part(frame, spec, where, params, report):
         sets = group_sets(frame.filter(selection.condition), spec, where, part, allow_empty=True)
         if sets.height == 0:
             return iter(()), part
-        return sign_sets_slices(sets, spec.key_columns, params, event_signing.SLICE_ROWS), part
+        return sign_sets_slices(sets, spec.key_columns, params, budget.SLICE_ROWS), part
     return sign_part
 
 

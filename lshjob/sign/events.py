@@ -32,8 +32,6 @@ from lshjob.sign.oph import EMPTY, fast_range
 from lshjob.sign.signatures import SignatureParams, oph_salts, signature_column
 
 CHUNK = 256  # sets per parallel task: one table of seen codes each
-SLICE_ROWS = 1 << 16  # entities signed at a time when a writer streams them (64 MB at k=128)
-SLICES_IN_FLIGHT = 4  # slices the streaming writer may hold at once, counted in memory budgets
 GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 
 
