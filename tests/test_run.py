@@ -189,7 +189,7 @@ def test_failed_rerun_keeps_the_last_good_index(tmp_path, demo_events, monkeypat
     def broken(*args, **kwargs):
         raise RuntimeError("disk full")
 
-    monkeypatch.setattr("lshjob.jobs.parts.verify_between", broken)
+    monkeypatch.setattr("lshjob.index.verify.local.verify_between", broken)
     with pytest.raises(RuntimeError):
         run_job(src, SPEC, RunOptions(threshold=0.6), out)
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before  # no staging or work left

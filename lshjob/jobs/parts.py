@@ -9,14 +9,14 @@ each within what is left of the budget (:func:`key_ranges`). Then, a part at a t
    grouped into sets;
 2. identical sets are collapsed within the part (:mod:`lshjob.index.collapse`);
 3. its representatives are signed and their bucket keys saved to the work folder (8 bytes
-   a band and representative; :func:`lshjob.index.band.save_keys`);
+   a band and representative; :func:`lshjob.index.band.base.save_keys`);
 4. its sets are saved to the work folder (:class:`PartStore`) and dropped.
 
 Entity ids stay global (position of the key among all keys), and a part holds consecutive
 ids, so the join is unchanged; it only writes the candidates split by the parts of their two
 sides (``sql/candidate_blocks.sql``); the band search reads the saved keys one band at a
 time, and verification holds two parts at a time
-(:func:`verify_blocks`): P parts cost P + P(P-1)/2 loads of saved sets.
+(:func:`lshjob.index.verify.local.verify_blocks`): P parts cost P + P(P-1)/2 loads of saved sets.
 
 Identical sets in different parts keep one representative each. Their signatures agree, so
 they share every band, and verification finds Jaccard 1.0 between them; the published index
@@ -47,8 +47,6 @@ from lshjob.ingest.loading import (BYTES_PER_EVENT, BYTES_PER_EVENT_IN_RANGE, BY
 from lshjob.errors import ParameterError
 from lshjob.sign.events import SLICE_ROWS, SLICES_IN_FLIGHT
 from lshjob.core.sets import Membership
-from lshjob.sign.signatures import SignatureParams
-from lshjob.index.verify import add_estimates_between, verify_between
 
 ONE_PART_SHARE = 0.5  # grouping all events may take this share of the budget, else parts
 PART_SHARE = 0.5  # what grouping one part may take, of what the run does not hold across parts
@@ -242,78 +240,3 @@ class HeldSets:
         store = PartStore(folder, self.sets.text_hashes)
         store.save(self.sets)
         return store
-
-
-def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: float, params: SignatureParams | None,
-                  memory: int) -> pl.DataFrame:
-    """Exact Jaccard of every candidate (:mod:`lshjob.index.verify`), two parts' sets held at a time;
-    candidates are read a slice at a time (an eighth of the budget), so memory stays bounded
-    whatever their number. ``candidates`` is the join's file (one part) or folder (parts)."""
-    step = max(MIN_VERIFY_SLICE, memory // 8 // VERIFY_BYTES_PER_PAIR)
-    pieces = []
-    parts = len(store.ranges)
-    for i in range(parts):
-        left = None
-        for j in range(i, parts):
-            files = _block_files(candidates, parts, i, j)
-            if not files:
-                continue
-            left = store.load(i) if left is None else left
-            right = left if j == i else store.load(j)
-            frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
-            kept = []
-            for offset in range(0, _rows(files), step):
-                chunk = frame.slice(offset, step).collect()
-                kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
-            block = pl.concat(kept) if kept else None
-            if block is None or block.height == 0:  # no candidate here, or none reached the threshold
-                continue
-            if params is None:  # identical sets only, no signatures: the estimate is exact
-                block = block.with_columns(estimate=pl.col("jaccard")).select(
-                    "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
-            else:
-                block = add_estimates_between(block, left, store.ranges[i][0], right, store.ranges[j][0], params,
-                                              max_bytes=memory // ESTIMATE_SHARE)
-            pieces.append(block)
-            del right
-    return pl.concat(pieces) if pieces else empty_verified()
-
-
-def empty_verified() -> pl.DataFrame:
-    """No verified pair (contract of :func:`lshjob.index.verify.verify_pairs` with estimates)."""
-    return pl.DataFrame(schema={"left_rep": pl.Int64, "right_rep": pl.Int64, "jaccard": pl.Float64,
-                                "estimate": pl.Float64, "bands_shared": pl.Int32})
-
-
-def identical_candidates(prints: pl.DataFrame, ranges: list[tuple[int, int]], out: Path) -> tuple[Path, int]:
-    """Pairs of representatives (of different parts) with the same set fingerprint, written
-    split by parts as the join writes candidates: verification at threshold 1.0 keeps the
-    identical ones. ``prints``: ``rep``, ``fa``, ``fb`` (:func:`lshjob.index.collapse.fingerprints`).
-    A group holds at most one representative a part (identical sets within a part were
-    collapsed), so every pair of a group is listed."""
-    grouped = prints.with_columns(size=pl.len().over("fa", "fb")).filter(pl.col("size") > 1)
-    pairs = (grouped.join(grouped, on=["fa", "fb"], suffix="_other")
-             .filter(pl.col("rep") < pl.col("rep_other"))
-             .select(pl.col("rep").alias("left_rep"), pl.col("rep_other").alias("right_rep"),
-                     pl.lit(0, dtype=pl.Int32).alias("bands_shared")))
-    firsts = np.array([a for a, _ in ranges], dtype=np.int64)
-    pairs = pairs.with_columns(
-        left_part=pl.Series(np.searchsorted(firsts, pairs["left_rep"].to_numpy(), side="right") - 1),
-        right_part=pl.Series(np.searchsorted(firsts, pairs["right_rep"].to_numpy(), side="right") - 1),
-    )
-    out.mkdir(parents=True, exist_ok=True)
-    for (i, j), block in pairs.group_by("left_part", "right_part"):
-        folder = out / f"left_part={i}" / f"right_part={j}"
-        folder.mkdir(parents=True, exist_ok=True)
-        block.select("left_rep", "right_rep", "bands_shared").write_parquet(folder / "pairs.parquet")
-    return out, pairs.height
-
-
-def _block_files(candidates: Path, parts: int, i: int, j: int) -> list[str]:
-    if parts == 1 and candidates.is_file():
-        return [str(candidates)]
-    return sorted(str(p) for p in (candidates / f"left_part={i}" / f"right_part={j}").glob("*.parquet"))
-
-
-def _rows(files: list[str]) -> int:
-    return pl.scan_parquet(files, hive_partitioning=False).select(pl.len()).collect().item()

@@ -14,7 +14,7 @@ from __future__ import annotations
 import json
 import shutil
 import time
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 from lshjob.jobs import parts
@@ -27,8 +27,10 @@ from lshjob.core.digest import digest_in_background
 from lshjob.errors import ParameterError
 from lshjob.runtime.folder_lock import output_lock
 from lshjob.ingest.spec import EventSpec, resolve_paths
-from lshjob.index.join import (DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs, duckdb_limit, duckdb_need, join_threads,
-                   require_duckdb_memory)
+from lshjob.index import engines as stage_engines
+from lshjob.index.join import (DEFAULT_MAX_BUCKET, JoinSettings, duckdb_limit, duckdb_need, join_threads,
+                               require_duckdb_memory)
+from lshjob.index.verify import VerifySettings, empty_verified
 from lshjob.ingest.loading import grouping_need, open_events
 from lshjob.runtime.outputs import output_folder, scratch_folder
 from lshjob.runtime.progress import QUIET, StageProgress
@@ -57,6 +59,8 @@ class RunOptions:
     parts: int | None = None  # key ranges held one at a time; None: as the memory budget needs
     wait: float = 0.0  # seconds to wait for another run's lock on the output folder
     scratch: str | None = None  # folder for the work folder (spill, parts); None: inside the output
+    # engine of each of the band, join and verify stages, by name (lshjob.index.engines)
+    engines: dict[str, str] = field(default_factory=lambda: dict(stage_engines.DEFAULT_ENGINES))
 
     def validate(self) -> None:
         if not 0.0 < self.threshold <= 1.0:
@@ -82,6 +86,22 @@ class RunOptions:
         if not self.wait >= 0:
             raise ParameterError(f"--wait must be 0 or more seconds; got {self.wait}")
         SignatureParams(scheme=self.scheme)
+        stage_engines.check_all(self.engines)
+
+    def engine_names(self) -> dict[str, str]:
+        """The engine of every stage (the default where the mapping leaves a stage out)."""
+        return {**stage_engines.DEFAULT_ENGINES, **self.engines}
+
+    def engine(self, stage: str):
+        """The engine chosen for ``stage``, its module imported now."""
+        return stage_engines.get_engine(stage, self.engine_names()[stage])
+
+
+def _verify_settings(memory: int) -> VerifySettings:
+    """Candidates read an eighth of the budget at a time; the verified pairs' signatures take a
+    sixteenth (:mod:`lshjob.jobs.parts`)."""
+    return VerifySettings(slice_rows=max(parts.MIN_VERIFY_SLICE, memory // 8 // parts.VERIFY_BYTES_PER_PAIR),
+                          estimate_bytes=memory // parts.ESTIMATE_SHARE)
 
 
 class _Stages:
@@ -174,8 +194,9 @@ def run_job(
             skew = None
             counts.update(bucket_rows=0, candidate_pairs=built.identical_pairs)
             with stages("verify"):
-                verified = (parts.verify_blocks(built.candidates, built.store, 1.0, None, memory)
-                            if built.candidates is not None else parts.empty_verified())
+                verified = (options.engine("verify").verify(built.candidates, built.store, 1.0, None,
+                                                            _verify_settings(memory))
+                            if built.candidates is not None else empty_verified())
             counts["verified_pairs"] = verified.height
         else:
             counts["bucket_rows"] = built.bucket_rows
@@ -194,16 +215,18 @@ def run_job(
                 settings = JoinSettings(memory_limit=f"{limit // 2**20}MiB", temp_directory=str(work / "spill"),
                                         threads=threads, max_bucket=options.max_bucket)
                 candidates = work / ("candidates" if in_parts else "candidates.parquet")
-                joined = candidate_pairs(built.bucket_files, candidates, settings, plan["bands"], built.bucket_rows,
-                                         part_ranges=built.store.ranges if in_parts else None)
-            skew = joined["skew"]
-            counts["candidate_pairs"] = joined["candidate_pairs"]
+                joined = options.engine("join").candidates(
+                    built.bucket_files, plan["bands"], candidates, settings, built.bucket_rows,
+                    ranges=built.store.ranges if in_parts else None)
+            skew = joined.skew
+            counts["candidate_pairs"] = joined.pairs
             if skew["skipped_pairs"]:
                 warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over --max-bucket "
                                 f"{options.max_bucket}, still over it once split) were not compared")
 
             with stages("verify"):
-                verified = parts.verify_blocks(candidates, built.store, options.threshold, built.params, memory)
+                verified = options.engine("verify").verify(candidates, built.store, options.threshold, built.params,
+                                                           _verify_settings(memory))
             counts["verified_pairs"] = verified.height
         built.store = None  # the sets are not needed any more: publishing gets their memory
 
@@ -239,6 +262,7 @@ def run_job(
             "top_k_effective": top_k,
             "memory_budget_bytes": memory,
             "plan": plan,
+            "engines": options.engine_names(),
             "counts": counts,
             "skew": skew,
             "peak_memory_bytes": stages.peak,

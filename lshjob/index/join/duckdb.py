@@ -1,0 +1,85 @@
+"""DuckDB join engine: bucket rows -> candidate pairs of representatives (contract in
+:mod:`lshjob.index.join.base`).
+
+The SQL lives in ``sql/sized_bucket_rows.sql`` (reads the bucket files once, with each
+bucket's size), ``sql/split_oversize.sql`` (splits buckets over the cap by the next band's
+bucket), ``sql/bucket_skew.sql``, ``sql/candidates.sql`` and, for a run in parts,
+``sql/candidate_blocks.sql``. DuckDB runs with a memory limit and a spill directory, so a
+join larger than memory spills to disk instead of failing (its memory model:
+:mod:`lshjob.index.join.memory`).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import duckdb
+
+from lshjob.index.join.base import JoinOutput, JoinSettings
+from lshjob.index.sqlfiles import load_sql, string_literal
+
+
+class DuckDBJoin:
+    """The join engine on an in-process DuckDB (:class:`lshjob.index.join.base.JoinEngine`)."""
+
+    name = "duckdb"
+
+    def candidates(self, bucket_files, bands: int, out: Path, settings: JoinSettings,
+                   bucket_rows: int | None = None, ranges=None) -> JoinOutput:
+        joined = candidate_pairs(list(bucket_files), out, settings, bands, bucket_rows,
+                                 part_ranges=list(ranges) if ranges is not None else None)
+        return JoinOutput(out, joined["candidate_pairs"], joined["skew"])
+
+
+def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
+    config = {"memory_limit": settings.memory_limit, "preserve_insertion_order": False}
+    if settings.temp_directory is not None:
+        config["temp_directory"] = settings.temp_directory
+    if settings.threads is not None:
+        config["threads"] = settings.threads
+    con = duckdb.connect(config=config)
+    con.execute("SET enable_progress_bar = false")  # lshjob shows its own progress
+    return con
+
+
+def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings, bands: int,
+                    bucket_rows: int | None = None, part_ranges: list[tuple[int, int]] | None = None) -> dict:
+    """Write candidate pairs to ``out`` (Parquet); return counts and the skew report.
+
+    ``bucket_rows`` is the number of all bucket rows when the files hold only the rows of
+    shared buckets (:mod:`lshjob.index.band`); by default, the files' own row count. ``part_ranges``
+    (first and last entity id of each part, consecutive) makes ``out`` a folder split by
+    the parts of each pair (module contract)."""
+    files = [str(p) for p in bucket_files]
+
+    params = {"max_bucket": settings.max_bucket}
+    con = connect(settings)
+    try:
+        if bucket_rows is None:
+            bucket_rows = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": files}).fetchone()[0]
+        con.execute(load_sql("sized_bucket_rows"), {"bucket_files": files})
+        con.execute(load_sql("split_oversize"), {"max_bucket": settings.max_bucket, "bands": bands})
+        skew_row = con.execute(load_sql("bucket_skew"), {**params, "bucket_rows": bucket_rows}).fetchone()
+        columns = [d[0] for d in con.description]
+        skew = {name: int(value) for name, value in zip(columns, skew_row)}
+        query = load_sql("candidates").strip().rstrip(";")
+        tmp = out.with_name(f".{out.name}.tmp")
+        if part_ranges is None:
+            con.execute(f"COPY ({query}) TO {string_literal(str(tmp))} (FORMAT parquet)", params)
+            pattern = str(out)
+        else:
+            con.execute("CREATE TEMP TABLE part_ranges (part INTEGER, first_id BIGINT, last_id BIGINT)")
+            con.executemany("INSERT INTO part_ranges VALUES (?, ?, ?)",
+                            [(i, a, b) for i, (a, b) in enumerate(part_ranges)])
+            blocks = load_sql("candidate_blocks").strip().rstrip(";")
+            con.execute(f"COPY (WITH candidate_rows AS ({query}) {blocks}) TO {string_literal(str(tmp))} "
+                        "(FORMAT parquet, PARTITION_BY (left_part, right_part))", params)
+            pattern = str(out / "**" / "*.parquet")
+            tmp.mkdir(exist_ok=True)  # no pair, no file
+        tmp.replace(out)
+        found = part_ranges is None or any(out.rglob("*.parquet"))
+        count = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": pattern}).fetchone()[0] if found else 0
+    finally:
+        con.close()
+    skew["max_bucket"] = settings.max_bucket
+    return {"candidate_pairs": int(count), "skew": skew}
