@@ -55,7 +55,7 @@ def test_an_engine_module_is_imported_only_when_chosen():
 
     code = ("import sys, lshjob.jobs.run, lshjob.index.engines as e; before = 'duckdb' in sys.modules; "
             "e.get_engine('join', 'duckdb'); print(before, 'duckdb' in sys.modules)")
-    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=False)
     assert done.stdout.split() == ["False", "True"], done.stderr[-2000:]
 
 

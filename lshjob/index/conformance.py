@@ -14,7 +14,7 @@ from __future__ import annotations
 import tempfile
 from collections import Counter
 from contextlib import contextmanager
-from itertools import combinations
+from itertools import combinations, pairwise
 from pathlib import Path
 
 import numpy as np
@@ -257,7 +257,7 @@ class HeldRanges:
 
     def __init__(self, sets: Membership, cuts: list[int]) -> None:
         bounds = [0, *cuts, sets.size]
-        self.ranges = [(a, b - 1) for a, b in zip(bounds[:-1], bounds[1:])]
+        self.ranges = [(a, b - 1) for a, b in pairwise(bounds)]
         self.parts = [sets.subset(np.arange(a, b + 1)) for a, b in self.ranges]
 
     def load(self, i: int) -> Membership:
