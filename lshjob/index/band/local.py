@@ -49,11 +49,7 @@ class LocalBand:
         return bucket_keys_by_position(positions, reps, bands, rows)
 
     def shared_rows(self, key_slices, bands: int, out_dir: Path, batch_bytes: int, progress=None) -> BandOutput:
-        slices = list(key_slices)
-        files, written = write_shared_bucket_rows(slices, bands, out_dir, batch_bytes=batch_bytes, progress=progress)
-        total = sum(s.height if isinstance(s, pl.DataFrame) else pl.scan_parquet(s).select(pl.len()).collect().item()
-                    for s in slices) * bands
-        return BandOutput(files, written, total)
+        return write_shared_bucket_rows(list(key_slices), bands, out_dir, batch_bytes=batch_bytes, progress=progress)
 
 
 def bucket_columns(frame: pl.DataFrame, bands: range, rows: int) -> pl.DataFrame:
@@ -80,15 +76,16 @@ def bucket_keys_by_position(columns: np.ndarray, rep_ids: np.ndarray, bands: int
 
 
 def write_shared_bucket_rows(
-    keys: pl.DataFrame | list[pl.DataFrame], bands: int, out_dir: Path, batch_bytes: int = 1 << 30, progress=None
-) -> tuple[list[Path], int]:
+    keys: pl.DataFrame | list[pl.DataFrame | Path], bands: int, out_dir: Path, batch_bytes: int = 1 << 30,
+    progress=None
+) -> BandOutput:
     """Write the rows of buckets holding two or more representatives (one Parquet file per
     batch of bands); buckets of one can form no pair and are only counted. ``keys`` is the
     wide key table of all representatives, or its slices in order
     (never concatenated whole: one band's keys at a time), each a table or a Parquet file
     written by :func:`lshjob.index.band.base.save_keys` (then only one band's keys are ever in memory).
 
-    Returns the files written and the number of rows written."""
+    Returns the files written, the number of rows written and of all bucket rows."""
     out_dir.mkdir(parents=True, exist_ok=True)
     slices = [keys] if isinstance(keys, pl.DataFrame) else list(keys)
     if slices and all(isinstance(s, Path) for s in slices):
@@ -116,7 +113,7 @@ def write_shared_bucket_rows(
             total += shared.height
             if progress is not None:
                 progress.advance(len(batch))
-    return files, total
+    return BandOutput(files, total, height * bands)
 
 
 def _column(keys: pl.DataFrame | list[Path], name: str) -> np.ndarray:
