@@ -9,13 +9,16 @@ import pytest
 
 from lshjob.errors import ParameterError
 from lshjob.index import conformance, engines
+from lshjob.index.band.base import BandEngine
 from lshjob.index.band.local import LocalBand
-from lshjob.index.join.base import JoinOutput
+from lshjob.index.join.base import JoinEngine, JoinOutput
+from lshjob.index.verify.base import VerifyEngine
 from lshjob.index.verify.local import LocalVerify
 from lshjob.jobs.conformance import check_index
 from lshjob.jobs.run import RunOptions
 
 CHECKS = {"band": conformance.check_band, "join": conformance.check_join, "verify": conformance.check_verify}
+INTERFACES = {"band": BandEngine, "join": JoinEngine, "verify": VerifyEngine}
 
 
 @pytest.mark.parametrize("stage,name", [(s, n) for s in engines.STAGES for n in engines.names(s)])
@@ -23,7 +26,9 @@ def test_every_engine_keeps_its_stage_contract(stage, name, tmp_path):
     # Oracles (in the checks): bucket keys in Python integers from the documented definition
     # grouped by polars; pairs per bucket by itertools with the oversize split; Jaccard by
     # Python sets.
-    CHECKS[stage](engines.get_engine(stage, name), tmp_path)
+    engine = engines.get_engine(stage, name)
+    assert isinstance(engine, INTERFACES[stage]) and engine.name == name
+    CHECKS[stage](engine, tmp_path)
 
 
 def _choices():

@@ -26,7 +26,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import ClassVar, Protocol
+from typing import ClassVar, Protocol, runtime_checkable
 
 import numpy as np
 import polars as pl
@@ -43,6 +43,7 @@ class BandOutput:
     rows_total: int  # every bucket row: representatives x bands (for the skew report)
 
 
+@runtime_checkable
 class BandEngine(Protocol):
     name: ClassVar[str]
 

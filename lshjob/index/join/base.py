@@ -21,7 +21,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import ClassVar, Protocol
+from typing import ClassVar, Protocol, runtime_checkable
 
 import polars as pl
 
@@ -48,6 +48,7 @@ class JoinOutput:
     skew: dict  # SKEW_COLUMNS and max_bucket, integers
 
 
+@runtime_checkable
 class JoinEngine(Protocol):
     name: ClassVar[str]
 

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
-from typing import ClassVar, Protocol
+from typing import ClassVar, Protocol, runtime_checkable
 
 import polars as pl
 
@@ -44,6 +44,7 @@ class VerifySettings:
     estimate_bytes: int | None = None  # signatures made at a time for the estimates (None: all)
 
 
+@runtime_checkable
 class VerifyEngine(Protocol):
     name: ClassVar[str]
 
