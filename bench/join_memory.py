@@ -3,7 +3,7 @@
     python bench/join_memory.py --rows 20000000 --limits 128MiB 256MiB 512MiB
 
 Writes bucket rows of shared buckets (sizes 2 to 8, as the band stage writes them), then, in
-a fresh process per limit, runs the join (:func:`lshjob.index.join.candidate_pairs`) with that
+a fresh process per limit, runs the join (:func:`lshjob.index.join.duckdb.candidate_pairs`) with that
 ``memory_limit`` and 2 threads and reports the process's resident memory before the join,
 its peak during it (VmHWM after a reset), and the excess of peak - before over the limit.
 """
@@ -26,7 +26,8 @@ from common import finish, machine  # noqa: E402
 CHILD = """
 import json, sys, time
 from pathlib import Path
-from lshjob.index.join import JoinSettings, candidate_pairs
+from lshjob.index.join import JoinSettings
+from lshjob.index.join.duckdb import candidate_pairs
 from lshjob.runtime.budget import current_bytes, peak_bytes, reset_peak
 files, out, limit, threads = json.loads(sys.argv[1])
 before = current_bytes()

@@ -1,27 +1,10 @@
-"""Band stage: bucket keys follow their documented definition (lshjob/index/band.py)."""
+"""Band stage, local engine: its kernel and layout (the stage contract is checked for every
+engine by lshjob/index/conformance.py, run in tests/test_engines.py)."""
 
 import numpy as np
 import polars as pl
 
-from lshjob.index.band import BAND_MULTIPLIER, bucket_keys, bucket_rows
-from test_hashing import fmix64_reference as fmix64  # MurmurHash3 fmix64 in Python integers
-
-MASK = (1 << 64) - 1
-
-
-def test_bucket_keys_follow_the_definition():
-    # Oracle: Horner's rule mod 2**64 and fmix64 in Python integers, values near 2**64 so
-    # that every product and sum wraps.
-    rng = np.random.default_rng(3)
-    sig = rng.integers(2**63, 2**64 - 1, size=(7, 12), dtype=np.uint64)
-    sig[0, :] = 2**64 - 1
-    keys = bucket_keys(sig, np.arange(7), bands=3, rows=4)
-    for i in range(7):
-        for j in range(3):
-            h = j
-            for t in range(4):
-                h = (h * BAND_MULTIPLIER + int(sig[i, j * 4 + t])) & MASK
-            assert keys[str(j)][i] == fmix64(h)
+from lshjob.index.band import ROW_BYTES, LocalBand
 
 
 def test_rows_differing_in_one_position_never_share_a_bucket():
@@ -31,36 +14,26 @@ def test_rows_differing_in_one_position_never_share_a_bucket():
     sig = np.repeat(base, 9, axis=0)
     for t in range(8):
         sig[t + 1, t] ^= np.uint64(1 << (t * 7))
-    rows = bucket_rows(sig, np.arange(9), bands=1, rows=8)
-    assert rows["bucket"].n_unique() == 9
+    keys = LocalBand().keys(np.ascontiguousarray(sig.T), np.arange(9), bands=1, rows=8)
+    assert keys["0"].n_unique() == 9
 
 
-def test_shared_bucket_rows_are_exactly_the_buckets_of_two_or_more(tmp_path):
-    # Oracle: polars group-by counts per (band, bucket) over every bucket row.
-    import polars as pl
-
-    from lshjob.index.band import write_shared_bucket_rows
-
+def test_shared_rows_are_written_a_batch_of_bands_at_a_time(tmp_path):
+    # Which rows are written is the conformance check (lshjob.index.conformance.check_band);
+    # here, the local engine's batches: bands_per_batch(500 rows, 4 bands, 3 bands' bytes) = 3,
+    # so one file of bands 0-2 and one of band 3 (oracle: the band numbers in each file).
     rng = np.random.default_rng(6)
-    sig = rng.integers(0, 3, size=(500, 8), dtype=np.uint64)  # few values: many shared buckets
-    sig[:100] = rng.integers(0, 2**63, size=(100, 8), dtype=np.uint64)  # and many of one
-    keys = bucket_keys(sig, np.arange(500), bands=4, rows=2)
-    every = bucket_rows(sig, np.arange(500), bands=4, rows=2)
-    expected = every.filter(pl.len().over("band", "bucket") >= 2).sort("band", "bucket", "rep")
-    # the whole key table, and the same table given as three slices
-    for n, given in enumerate((keys, [keys[:150], keys[150:151], keys[151:]])):
-        files, written = write_shared_bucket_rows(given, 4, tmp_path / f"b{n}", batch_bytes=500 * 28 * 3)
-        assert len(files) == 2  # batches of three bands, then one
-        got = pl.read_parquet(files).sort("band", "bucket", "rep")
-        assert written == got.height == expected.height > 0
-        assert got.equals(expected)
+    sig = rng.integers(0, 3, size=(500, 8), dtype=np.uint64)
+    keys = LocalBand().keys(np.ascontiguousarray(sig.T), np.arange(500), bands=4, rows=2)
+    out = LocalBand().shared_rows([keys], 4, tmp_path, batch_bytes=500 * ROW_BYTES * 3)
+    assert [sorted(pl.read_parquet(f)["band"].unique().to_list()) for f in out.files] == [[0, 1, 2], [3]]
 
 
 def test_shared_positions_are_exactly_the_repeated_keys():
     # Oracle: polars is_duplicated, and a sort by (key, position). A bitmap of 2**8 slots over
     # 2,000 keys marks far more rows than repeat (every false mark must be dropped); 2**26
     # slots marks almost none but the repeats.
-    from lshjob.index.band import _shared
+    from lshjob.index.band._shared import _shared
     from helpers import fmix64_np
 
     rng = np.random.default_rng(8)

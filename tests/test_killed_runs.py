@@ -29,16 +29,16 @@ INDEX = ("neighbours.parquet", "manifest.json")
 
 KILL_AT = r"""
 import os, signal, sys
-import lshjob.jobs.run, lshjob.jobs.parts
+import lshjob.index.join.duckdb, lshjob.index.verify.local
 
 def die(*args, **kwargs):
     os.kill(os.getpid(), signal.SIGKILL)
 
 stage = sys.argv[1]
 if stage == "join":
-    lshjob.jobs.run.candidate_pairs = die
+    lshjob.index.join.duckdb.candidate_pairs = die
 elif stage == "verify":
-    lshjob.jobs.parts.verify_blocks = die
+    lshjob.index.verify.local.verify_blocks = die
 elif stage == "publish":  # as the new neighbours file is renamed into place
     rename = os.replace
     def replace(src, dst, *args, **kwargs):

@@ -14,7 +14,7 @@ from typer.testing import CliRunner
 import lshjob
 from lshjob import EventSpec, ParameterError
 from lshjob.audit.check import audit_index
-from lshjob.index.band import bucket_rows
+from lshjob.index.conformance import reference_bucket_rows, reference_candidates
 from lshjob.cli.app import app
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.plan.banding import candidate_probability
@@ -124,8 +124,8 @@ def test_skew_trap_and_identical_groups_do_not_blow_up(tmp_path):
 def test_oversize_buckets_are_split_and_counted(tmp_path):
     # 40 patrons sharing 20 titles, each with 5 of their own (every pair J = 20/30): with
     # 16 bands of 4 rows many buckets hold more than the cap of 10. Oracle for the counts
-    # and pairs: the same bucket rows grouped by polars, oversize buckets split by the next
-    # band's bucket, then every pair checked with Python sets.
+    # and pairs: every bucket row from the key definition, pairs per bucket and per
+    # sub-bucket of oversize ones by brute force (lshjob.index.conformance.reference_candidates).
     rows = [(f"p{i:02d}", f"c{j}") for i in range(40) for j in range(20)] + [(f"p{i:02d}", f"u{i}-{j}") for i in range(40) for j in range(5)]
     events = pl.DataFrame(rows, schema=["patron", "title"], orient="row")
     src = write(events, tmp_path)
@@ -135,25 +135,11 @@ def test_oversize_buckets_are_split_and_counted(tmp_path):
 
     sets = lshjob.load_sets(src, SPEC)[0]
     matrix = signature_array(sign_sets(sets, ["entity"], SignatureParams(perms=64, seed=1)))
-    rows_ = bucket_rows(matrix, np.arange(40), 16, 4).with_columns(size=pl.len().over("band", "bucket"))
-    sizes = rows_.group_by("band", "bucket").agg(pl.first("size"))["size"]
-    big = sizes.filter(sizes > 10)
-    nxt = rows_.select(pl.col("rep"), ((pl.col("band") - 1) % 16).alias("band"), pl.col("bucket").alias("sub"))
-    split = rows_.filter(pl.col("size") > 10).join(nxt, on=["rep", "band"]).with_columns(
-        sub_size=pl.len().over("band", "bucket", "sub"))
-    kept = split.filter(pl.col("sub_size").is_between(2, 10))
-    sub_sizes = kept.group_by("band", "bucket", "sub").len()["len"]
-    assert m["skew"]["oversize_buckets"] == big.len() > 0
-    assert m["skew"]["oversize_pairs"] == int((big * (big - 1) // 2).sum())
-    assert m["skew"]["split_pairs"] == int((sub_sizes * (sub_sizes - 1) // 2).sum()) > 0
-    assert m["skew"]["skipped_pairs"] == m["skew"]["oversize_pairs"] - m["skew"]["split_pairs"]
-    usable = rows_.filter(pl.col("size").is_between(2, 10)).with_columns(sub=pl.lit(0, dtype=pl.UInt64))
-    groups = pl.concat([usable.select("band", "bucket", "sub", "rep"), kept.select("band", "bucket", "sub", "rep")])
-    expected = set()
-    for members in groups.group_by("band", "bucket", "sub").agg("rep")["rep"].to_list():
-        expected |= {(a, b) for a in members for b in members if a < b}
+    pairs, skew = reference_candidates(reference_bucket_rows(matrix, np.arange(40), 16, 4), 16, 10)
+    assert skew["oversize_buckets"] > 0 and skew["split_pairs"] > 0
+    assert m["skew"] == skew
     names = sorted(f"p{i:02d}" for i in range(40))
-    assert published_pairs(tmp_path / "idx") == {(names[a], names[b]): 20 / 30 for a, b in expected}
+    assert published_pairs(tmp_path / "idx") == {(names[a], names[b]): 20 / 30 for a, b in pairs}
 
 
 def test_threshold_one_pairs_identical_sets_only(tmp_path):
@@ -189,7 +175,7 @@ def test_failed_rerun_keeps_the_last_good_index(tmp_path, demo_events, monkeypat
     def broken(*args, **kwargs):
         raise RuntimeError("disk full")
 
-    monkeypatch.setattr("lshjob.jobs.parts.verify_between", broken)
+    monkeypatch.setattr("lshjob.index.verify.local.verify_between", broken)
     with pytest.raises(RuntimeError):
         run_job(src, SPEC, RunOptions(threshold=0.6), out)
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before  # no staging or work left

@@ -33,7 +33,7 @@ INDEX = ("neighbours.parquet", "manifest.json")
 
 STOP_AT = r"""
 import os, signal, sys, threading, time
-import lshjob.jobs.run, lshjob.jobs.parts, lshjob.index.publish
+import lshjob.jobs.run, lshjob.jobs.parts, lshjob.index.publish, lshjob.index.join.duckdb, lshjob.index.verify.local
 
 how, sig = sys.argv[1], getattr(signal, sys.argv[2])
 me = os.getpid()
@@ -52,19 +52,19 @@ if how == "numba":  # inside a compiled loop of the verify stage
         return total
 
     spin(10)
-    verify = lshjob.jobs.parts.verify_blocks
+    verify = lshjob.index.verify.local.verify_blocks
     def slow_verify(*args, **kwargs):
         later(0.05)
         spin(300_000_000)
         return verify(*args, **kwargs)
-    lshjob.jobs.parts.verify_blocks = slow_verify
+    lshjob.index.verify.local.verify_blocks = slow_verify
 elif how == "duckdb":  # inside a DuckDB query of the join stage
     import duckdb
     def slow_join(*args, **kwargs):
         later(0.1)
         duckdb.connect().execute("SELECT count(*) FROM range(400000000) a WHERE a.range % 7 = 3").fetchall()
         raise AssertionError("the query was not interrupted")
-    lshjob.jobs.run.candidate_pairs = slow_join
+    lshjob.index.join.duckdb.candidate_pairs = slow_join
 elif how in ("numba-error", "duckdb-error"):  # the errors they wrap an interruption in
     def interrupted(*args, **kwargs):
         try:
@@ -75,7 +75,7 @@ elif how in ("numba-error", "duckdb-error"):  # the errors they wrap an interrup
                 raise SystemError("CPUDispatcher(<function spin>) returned a result with an exception set") from exc
             raise RuntimeError("Query interrupted") from None
         raise AssertionError("no signal came")
-    lshjob.jobs.parts.verify_blocks = interrupted
+    lshjob.index.verify.local.verify_blocks = interrupted
 elif how == "twice":  # a second signal while the first one's clean-up runs
     import shutil
     def stop(*args, **kwargs):
@@ -83,7 +83,7 @@ elif how == "twice":  # a second signal while the first one's clean-up runs
     def remove_again(*args, **kwargs):
         os.kill(me, sig)
         raise AssertionError("the second signal did not end the process")
-    lshjob.jobs.parts.verify_blocks = stop
+    lshjob.index.verify.local.verify_blocks = stop
     lshjob.jobs.run.shutil = type("shutil", (), {"rmtree": staticmethod(remove_again)})
 elif how == "publish":  # between the renames that put the index in place
     rename = os.replace

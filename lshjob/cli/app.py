@@ -251,7 +251,7 @@ def run(
         raise ParameterError(f"lshjob run needs {', '.join(missing)} (as options or in --config)")
     spec = EventSpec(entity=settings["entity"], element=settings["element"], count=settings["count"],
                      min_count=settings["min_count"], on_null=settings["on_null"], unicode=settings["unicode"])
-    options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__})
+    options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__ if k in settings})  # engines: default
     with _progress(quiet, as_json) as progress:
         manifest = run_job(settings["events"], spec, options, settings["out"], progress, command=sys.argv)
     for warning in manifest.get("warnings", []):  # a lock taken over, leftovers removed

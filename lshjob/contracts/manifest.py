@@ -52,6 +52,7 @@ class Manifest:
     output: dict
     out: str
     warnings: list[str]
+    engines: dict | None = None  # engine of each engine-dependent stage (band, join, verify)
     format: str = FORMAT_NAME
     format_version: int = FORMAT_VERSION
 
@@ -78,7 +79,7 @@ class Manifest:
         if version not in READS_VERSIONS:
             raise InputError(f"{where}: manifest format version {version!r} is not supported; this lshjob "
                              f"reads version {', '.join(map(str, READS_VERSIONS))}; run lshjob run again")
-        names = [f.name for f in fields(cls)]
+        names = [f.name for f in fields(cls) if f.name in record or f.name != "engines"]
         for name in names:
             if name not in record:
                 raise InputError(f"{where}: not an lshjob manifest (no '{name}' entry); run lshjob run again")

@@ -126,8 +126,8 @@ BUCKET_ROWS = Contract(
         ("rep is a representative", _representatives("rep")),
     ],
     row="a representative in a bucket it shares with another (files buckets-NNNNN.parquet)",
-    producer="lshjob.index.band.write_shared_bucket_rows",
-    consumer="lshjob.index.join.candidate_pairs (sql/sized_bucket_rows.sql)",
+    producer="lshjob.index.band.local.write_shared_bucket_rows (the band engine)",
+    consumer="lshjob.index.join.duckdb.candidate_pairs (sql/sized_bucket_rows.sql)",
 )
 
 CANDIDATES = Contract(
@@ -136,8 +136,8 @@ CANDIDATES = Contract(
     rules=[PAIR_ORDER, ONE_ROW_A_PAIR, BANDS_SHARED, PAIR_IDS, PAIR_REPS],
     row=("a pair of representatives to verify, in no particular order (a file; in parts a folder "
          "left_part=i/right_part=j/*.parquet, i <= j)"),
-    producer="lshjob.index.join.candidate_pairs (sql/candidates.sql), lshjob.jobs.parts.identical_candidates",
-    consumer="lshjob.jobs.parts.verify_blocks",
+    producer="lshjob.index.join.duckdb.candidate_pairs (sql/candidates.sql), lshjob.index.collapse.identical_candidates",
+    consumer="lshjob.index.verify.local.verify_blocks",
 )
 
 VERIFIED = Contract(
@@ -153,7 +153,7 @@ VERIFIED = Contract(
     ],
     row=("a candidate whose exact Jaccard reached the threshold, with the signature estimate "
          "(fraction of equal positions); in no particular order"),
-    producer="lshjob.jobs.parts.verify_blocks (lshjob.index.verify)",
+    producer="lshjob.index.verify.local.verify_blocks (the verify engine)",
     consumer="lshjob.index.publish.expand",
 )
 

@@ -14,9 +14,14 @@ other pair.
 Output contract of :func:`collapse_identical`: ``rep_of[i]`` is the entity id of i's
 representative (the smallest id of its group, ``rep_of[r] == r``); ``reps`` are the
 representatives, ascending.
+
+A run in parts collapses each part alone; :func:`identical_candidates` pairs the
+representatives of different parts whose fingerprints agree, for verification to confirm.
 """
 
 from __future__ import annotations
+
+from pathlib import Path
 
 import numpy as np
 import polars as pl
@@ -80,3 +85,27 @@ def collapse_identical(sets: Membership, prints: tuple[np.ndarray, np.ndarray] |
     rep_of = _confirm(sets.offsets, sets.elements, np.ascontiguousarray(rep))
     reps = np.flatnonzero(rep_of == np.arange(sets.size))
     return rep_of, reps
+
+
+def identical_candidates(prints: pl.DataFrame, ranges: list[tuple[int, int]], out: Path) -> tuple[Path, int]:
+    """Pairs of representatives (of different parts) with the same set fingerprint, written
+    split by parts as the join writes candidates: verification at threshold 1.0 keeps the
+    identical ones. ``prints``: ``rep``, ``fa``, ``fb`` (:func:`fingerprints`).
+    A group holds at most one representative a part (identical sets within a part were
+    collapsed), so every pair of a group is listed."""
+    grouped = prints.with_columns(size=pl.len().over("fa", "fb")).filter(pl.col("size") > 1)
+    pairs = (grouped.join(grouped, on=["fa", "fb"], suffix="_other")
+             .filter(pl.col("rep") < pl.col("rep_other"))
+             .select(pl.col("rep").alias("left_rep"), pl.col("rep_other").alias("right_rep"),
+                     pl.lit(0, dtype=pl.Int32).alias("bands_shared")))
+    firsts = np.array([a for a, _ in ranges], dtype=np.int64)
+    pairs = pairs.with_columns(
+        left_part=pl.Series(np.searchsorted(firsts, pairs["left_rep"].to_numpy(), side="right") - 1),
+        right_part=pl.Series(np.searchsorted(firsts, pairs["right_rep"].to_numpy(), side="right") - 1),
+    )
+    out.mkdir(parents=True, exist_ok=True)
+    for (i, j), block in pairs.group_by("left_part", "right_part"):
+        folder = out / f"left_part={i}" / f"right_part={j}"
+        folder.mkdir(parents=True, exist_ok=True)
+        block.select("left_rep", "right_rep", "bands_shared").write_parquet(folder / "pairs.parquet")
+    return out, pairs.height

@@ -17,7 +17,7 @@ Entity ids stay global (position of the key among all keys), and a part holds co
 ids, so the join is unchanged; it only writes the candidates split by the parts of their two
 sides (``sql/candidate_blocks.sql``); the band search reads the saved keys one band at a
 time, and verification holds two parts at a time
-(:func:`verify_blocks`): P parts cost P + P(P-1)/2 loads of saved sets.
+(:func:`lshjob.index.verify.local.verify_blocks`): P parts cost P + P(P-1)/2 loads of saved sets.
 
 Identical sets in different parts keep one representative each. Their signatures agree, so
 they share every band, and verification finds Jaccard 1.0 between them; the published index
@@ -36,18 +36,13 @@ counts; the band search then holds 8 bytes per entity and about 40 a thread
 
 from __future__ import annotations
 
-from pathlib import Path
 
-import numpy as np
 import polars as pl
 
-from lshjob.contracts.tables import VERIFIED
 from lshjob.ingest.loading import EventSource, entity_counts, event_bytes, grouping_need
 from lshjob.runtime import budget
 from lshjob.runtime.budget import Budget
-from lshjob.runtime.partitions import EntitySelection, HeldSets, PartStore, events_per_entity, key_ranges
-from lshjob.sign.signatures import SignatureParams
-from lshjob.index.verify import add_estimates_between, verify_between
+from lshjob.runtime.partitions import EntitySelection, events_per_entity, key_ranges
 
 
 def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | None = None) -> list[EntitySelection] | None:
@@ -88,76 +83,3 @@ def keyed_signing_ranges(frame: pl.LazyFrame, events: int, where: str, perms: in
     return key_ranges(counts, limit.range_bytes(counts.height, budget.SIGN_PART_SHARE, reserve), parts,
                       event_bytes=budget.KEYED_BYTES_PER_EVENT)
 
-
-def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: float, params: SignatureParams | None,
-                  memory: int) -> pl.DataFrame:
-    """Exact Jaccard of every candidate (:mod:`lshjob.index.verify`), two parts' sets held at a time;
-    candidates are read a slice at a time (an eighth of the budget), so memory stays bounded
-    whatever their number. ``candidates`` is the join's file (one part) or folder (parts)."""
-    step = Budget(memory).verify_slice_rows()
-    pieces = []
-    parts = len(store.ranges)
-    for i in range(parts):
-        left = None
-        for j in range(i, parts):
-            files = _block_files(candidates, parts, i, j)
-            if not files:
-                continue
-            left = store.load(i) if left is None else left
-            right = left if j == i else store.load(j)
-            frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
-            kept = []
-            for offset in range(0, _rows(files), step):
-                chunk = frame.slice(offset, step).collect()
-                kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
-            block = pl.concat(kept) if kept else None
-            if block is None or block.height == 0:  # no candidate here, or none reached the threshold
-                continue
-            if params is None:  # identical sets only, no signatures: the estimate is exact
-                block = block.with_columns(estimate=pl.col("jaccard")).select(
-                    "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
-            else:
-                block = add_estimates_between(block, left, store.ranges[i][0], right, store.ranges[j][0], params,
-                                              max_bytes=Budget(memory).estimate_bytes())
-            pieces.append(block)
-            del right
-    return pl.concat(pieces) if pieces else empty_verified()
-
-
-def empty_verified() -> pl.DataFrame:
-    """No verified pair: the VERIFIED table (:mod:`lshjob.contracts.tables`) with no row."""
-    return VERIFIED.empty()
-
-
-def identical_candidates(prints: pl.DataFrame, ranges: list[tuple[int, int]], out: Path) -> tuple[Path, int]:
-    """Pairs of representatives (of different parts) with the same set fingerprint, written
-    split by parts as the join writes candidates: verification at threshold 1.0 keeps the
-    identical ones. ``prints``: ``rep``, ``fa``, ``fb`` (:func:`lshjob.index.collapse.fingerprints`).
-    A group holds at most one representative a part (identical sets within a part were
-    collapsed), so every pair of a group is listed."""
-    grouped = prints.with_columns(size=pl.len().over("fa", "fb")).filter(pl.col("size") > 1)
-    pairs = (grouped.join(grouped, on=["fa", "fb"], suffix="_other")
-             .filter(pl.col("rep") < pl.col("rep_other"))
-             .select(pl.col("rep").alias("left_rep"), pl.col("rep_other").alias("right_rep"),
-                     pl.lit(0, dtype=pl.Int32).alias("bands_shared")))
-    firsts = np.array([a for a, _ in ranges], dtype=np.int64)
-    pairs = pairs.with_columns(
-        left_part=pl.Series(np.searchsorted(firsts, pairs["left_rep"].to_numpy(), side="right") - 1),
-        right_part=pl.Series(np.searchsorted(firsts, pairs["right_rep"].to_numpy(), side="right") - 1),
-    )
-    out.mkdir(parents=True, exist_ok=True)
-    for (i, j), block in pairs.group_by("left_part", "right_part"):
-        folder = out / f"left_part={i}" / f"right_part={j}"
-        folder.mkdir(parents=True, exist_ok=True)
-        block.select("left_rep", "right_rep", "bands_shared").write_parquet(folder / "pairs.parquet")
-    return out, pairs.height
-
-
-def _block_files(candidates: Path, parts: int, i: int, j: int) -> list[str]:
-    if parts == 1 and candidates.is_file():
-        return [str(candidates)]
-    return sorted(str(p) for p in (candidates / f"left_part={i}" / f"right_part={j}").glob("*.parquet"))
-
-
-def _rows(files: list[str]) -> int:
-    return pl.scan_parquet(files, hive_partitioning=False).select(pl.len()).collect().item()

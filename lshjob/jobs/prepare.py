@@ -15,13 +15,12 @@ from typing import TYPE_CHECKING
 import numpy as np
 import polars as pl
 
-from lshjob.index import band
-from lshjob.jobs import parts
 from lshjob.plan import banding as planner
 from lshjob.index import publish
 from lshjob.plan import similarity
 from lshjob.errors import InputError, ParameterError
-from lshjob.index.collapse import collapse_identical, fingerprints
+from lshjob.index.band import ROW_BYTES, save_keys
+from lshjob.index.collapse import collapse_identical, fingerprints, identical_candidates
 from lshjob.ingest.spec import IngestReport
 from lshjob.ingest.loading import EventSource, entity_counts, event_bytes, membership_of
 from lshjob.core.sets import Membership
@@ -73,7 +72,7 @@ def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: P
         # (an eighth of the budget each); else they go to the work folder, as in parts.
         release_freed()
         spill = None if Budget(memory).keys_stay_held(current_bytes(), len(reps), plan["bands"]) else work / "keys"
-        bands = SignAndBand(built.params, plan, memory, stages, spill=spill)
+        bands = SignAndBand(built.params, plan, memory, stages, options.engine("band"), spill=spill)
         with stages.progress.stage("sign and band", len(reps)) as task:
             bands.add(sets, reps, 0, task)
         built.bucket_files, built.shared_rows = bands.write(work / "buckets")
@@ -107,7 +106,7 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
     report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
                           null_rows_dropped=source.report.null_rows_dropped)
     keys, rep_of, representatives = [], [], 0
-    bands = SignAndBand(params, plan, memory, stages, spill=work / "keys") if banded else None
+    bands = SignAndBand(params, plan, memory, stages, options.engine("band"), spill=work / "keys") if banded else None
     prints = []  # without bands: each representative's fingerprint, to find identical sets across parts
     with stages.progress.stage("parts", len(ranges)) as task:
         for selection in ranges:
@@ -142,7 +141,7 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
         prepared.bucket_rows = representatives * plan["bands"]
     else:
         with stages.part("collapse"):
-            prepared.candidates, prepared.identical_pairs = parts.identical_candidates(
+            prepared.candidates, prepared.identical_pairs = identical_candidates(
                 pl.concat(prints), store.ranges, work / "candidates")
     return prepared
 
@@ -178,15 +177,15 @@ class SignAndBand:
     """Signs representatives a slice at a time and keeps only their bucket keys (8 bytes per
     band; in a file each under ``spill``, for a run in parts): a slice's signatures (raw and densified, laid out by position; polars reads them
     without a copy: at most 2 x 8k bytes a row) take at most an eighth of the budget. Then
-    :meth:`write` writes the shared buckets' rows."""
+    :meth:`write` writes the shared buckets' rows (both through the band ``engine``)."""
 
-    def __init__(self, params, plan, memory, stages, spill: Path | None = None) -> None:
+    def __init__(self, params, plan, memory, stages, engine, spill: Path | None = None) -> None:
         self.bands, self.rows = plan["bands"], plan["rows"]
         # Bands read only the first b*r positions: k-permutation computes no more (its
         # positions are independent); oph fills no other empty bin.
         self.positions = self.bands * self.rows
-        self.params, self.memory, self.stages = params, memory, stages
-        self.step = Budget(memory).sign_slice_rows(self.positions, self.bands, band.ROW_BYTES)
+        self.params, self.memory, self.stages, self.engine = params, memory, stages, engine
+        self.step = Budget(memory).sign_slice_rows(self.positions, self.bands, ROW_BYTES)
         self.slices: list[pl.DataFrame | Path] = []
         self.spill = spill  # keys saved here (a run in parts), else kept in memory
 
@@ -197,10 +196,10 @@ class SignAndBand:
             with self.stages.part("sign"):
                 columns = comparable_by_position(sets, ids, self.params, self.positions)
             with self.stages.part("band"):
-                keys = band.bucket_keys_by_position(columns, ids + first, self.bands, self.rows)
+                keys = self.engine.keys(columns, ids + first, self.bands, self.rows)
                 if self.spill is not None:
                     self.spill.mkdir(parents=True, exist_ok=True)
-                    keys = band.save_keys(keys, self.spill / f"keys-{len(self.slices):06d}.parquet")
+                    keys = save_keys(keys, self.spill / f"keys-{len(self.slices):06d}.parquet")
                 self.slices.append(keys)
             del columns
             if task is not None:
@@ -208,10 +207,9 @@ class SignAndBand:
 
     def write(self, out_dir: Path) -> tuple[list[Path], int]:
         with self.stages.part("band"):
-            files, written = band.write_shared_bucket_rows(self.slices, self.bands, out_dir,
-                                                          batch_bytes=Budget(self.memory).band_batch_bytes())
+            made = self.engine.shared_rows(self.slices, self.bands, out_dir, Budget(self.memory).band_batch_bytes())
         self.slices = []
-        return files, written
+        return made.files, made.rows_written
 
 
 def choose_plan(sets: Membership | None, options: RunOptions, total_entities: int | None = None,

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import shutil
 import time
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 from lshjob.jobs import parts
@@ -32,8 +32,10 @@ from lshjob.core.digest import digest_in_background
 from lshjob.errors import ParameterError
 from lshjob.runtime.folder_lock import output_lock
 from lshjob.ingest.spec import EventSpec, resolve_paths
-from lshjob.index.join import (DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs, duckdb_limit, duckdb_need, join_threads,
-                   require_duckdb_memory)
+from lshjob.index import engines as stage_engines
+from lshjob.index.join import (DEFAULT_MAX_BUCKET, JoinSettings, duckdb_limit, duckdb_need, join_threads,
+                               require_duckdb_memory)
+from lshjob.index.verify import VerifySettings, empty_verified
 from lshjob.ingest.loading import grouping_need, open_events
 from lshjob.runtime.outputs import output_folder, scratch_folder
 from lshjob.runtime.progress import QUIET, StageProgress
@@ -64,6 +66,8 @@ class RunOptions:
     parts: int | None = None  # key ranges held one at a time; None: as the memory budget needs
     wait: float = 0.0  # seconds to wait for another run's lock on the output folder
     scratch: str | None = None  # folder for the work folder (spill, parts); None: inside the output
+    # engine of each of the band, join and verify stages, by name (lshjob.index.engines)
+    engines: dict[str, str] = field(default_factory=lambda: dict(stage_engines.DEFAULT_ENGINES))
 
     def validate(self) -> None:
         if not 0.0 < self.threshold <= 1.0:
@@ -89,6 +93,21 @@ class RunOptions:
         if not self.wait >= 0:
             raise ParameterError(f"--wait must be 0 or more seconds; got {self.wait}")
         SignatureParams(scheme=self.scheme)
+        stage_engines.check_all(self.engines)
+
+    def engine_names(self) -> dict[str, str]:
+        """The engine of every stage (the default where the mapping leaves a stage out)."""
+        return {**stage_engines.DEFAULT_ENGINES, **self.engines}
+
+    def engine(self, stage: str):
+        """The engine chosen for ``stage``, its module imported now."""
+        return stage_engines.get_engine(stage, self.engine_names()[stage])
+
+
+def _verify_settings(memory: int) -> VerifySettings:
+    """How much verification holds at a time (:class:`lshjob.runtime.budget.Budget`)."""
+    limit = Budget(memory)
+    return VerifySettings(slice_rows=limit.verify_slice_rows(), estimate_bytes=limit.estimate_bytes())
 
 
 class _Stages:
@@ -180,8 +199,9 @@ def run_job(
             skew = None
             counts.update(bucket_rows=0, candidate_pairs=built.identical_pairs)
             with stages("verify"):
-                verified = (parts.verify_blocks(built.candidates, built.store, 1.0, None, memory)
-                            if built.candidates is not None else parts.empty_verified())
+                verified = (options.engine("verify").verify(built.candidates, built.store, 1.0, None,
+                                                            _verify_settings(memory))
+                            if built.candidates is not None else empty_verified())
             counts["verified_pairs"] = verified.height
         else:
             counts["bucket_rows"] = built.bucket_rows
@@ -200,16 +220,18 @@ def run_job(
                 settings = JoinSettings(memory_limit=f"{limit // 2**20}MiB", temp_directory=str(work / "spill"),
                                         threads=threads, max_bucket=options.max_bucket)
                 candidates = work / ("candidates" if in_parts else "candidates.parquet")
-                joined = candidate_pairs(built.bucket_files, candidates, settings, plan["bands"], built.bucket_rows,
-                                         part_ranges=built.store.ranges if in_parts else None)
-            skew = joined["skew"]
-            counts["candidate_pairs"] = joined["candidate_pairs"]
+                joined = options.engine("join").candidates(
+                    built.bucket_files, plan["bands"], candidates, settings, built.bucket_rows,
+                    ranges=built.store.ranges if in_parts else None)
+            skew = joined.skew
+            counts["candidate_pairs"] = joined.pairs
             if skew["skipped_pairs"]:
                 warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over --max-bucket "
                                 f"{options.max_bucket}, still over it once split) were not compared")
 
             with stages("verify"):
-                verified = parts.verify_blocks(candidates, built.store, options.threshold, built.params, memory)
+                verified = options.engine("verify").verify(candidates, built.store, options.threshold, built.params,
+                                                           _verify_settings(memory))
             counts["verified_pairs"] = verified.height
         built.store = None  # the sets are not needed any more: publishing gets their memory
 
@@ -243,6 +265,7 @@ def run_job(
             top_k_effective=top_k,
             memory_budget_bytes=memory,
             plan=plan,
+            engines=options.engine_names(),
             counts=counts,
             skew=skew,
             peak_memory_bytes=stages.peak,

@@ -1,83 +1,35 @@
-"""Join stage (DuckDB): bucket rows -> candidate pairs of representatives.
+"""DuckDB join engine: bucket rows -> candidate pairs of representatives (contract in
+:mod:`lshjob.index.join.base`).
 
 The SQL lives in ``sql/sized_bucket_rows.sql`` (reads the bucket files once, with each
 bucket's size), ``sql/split_oversize.sql`` (splits buckets over the cap by the next band's
-bucket), ``sql/bucket_skew.sql`` and ``sql/candidates.sql``. DuckDB runs with a
-memory limit and a spill directory, so a join larger than memory spills to disk instead
-of failing.
-
-Output of :func:`candidate_pairs`: a Parquet file of CANDIDATES (:mod:`lshjob.contracts.tables`:
-one row per unordered pair of representatives, ``bands_shared`` from 1 to the bands), in no
-particular order; and a skew report (dict). Given the entity id ranges of a
-run's parts (:mod:`lshjob.jobs.parts`), a folder instead, the same rows split by the parts of
-their two sides: ``left_part=i/right_part=j/*.parquet`` (``i <= j``; ``sql/candidate_blocks.sql``).
+bucket), ``sql/bucket_skew.sql``, ``sql/candidates.sql`` and, for a run in parts,
+``sql/candidate_blocks.sql``. DuckDB runs with a memory limit and a spill directory, so a
+join larger than memory spills to disk instead of failing (its memory model:
+:mod:`lshjob.index.join.memory`).
 """
 
 from __future__ import annotations
 
-import os
-from dataclasses import dataclass
 from pathlib import Path
 
 import duckdb
 
 from lshjob.core.atomic import atomic_file, staged_folder
-from lshjob.errors import ParameterError
+from lshjob.index.join.base import JoinOutput, JoinSettings
 from lshjob.index.sqlfiles import load_sql, string_literal
 
-DEFAULT_MAX_BUCKET = 2000
 
-# DuckDB's memory_limit caps its buffer manager, not every allocation. With 2 threads a join
-# took 51-57 MiB beyond it at 2M shared rows, 58-64 at 5M, 99-142 at 20M (limits 64-512 MiB;
-# bench/join_memory.py): about 28 MiB a thread and 5 bytes a row (the part per thread assumed).
-DUCKDB_BEYOND_PER_THREAD = 28 << 20
-DUCKDB_BEYOND_PER_ROW = 5
-# The smallest limit the join works under: 2M shared rows ran under 64 MiB (not 32), 5M under
-# 96 MiB, 20M under 256 MiB (not 192; measured): 48 MiB and 12 bytes a row.
-DUCKDB_FLOOR = 48 << 20
-DUCKDB_BYTES_PER_ROW = 12
+class DuckDBJoin:
+    """The join engine on an in-process DuckDB (:class:`lshjob.index.join.base.JoinEngine`)."""
 
+    name = "duckdb"
 
-@dataclass(frozen=True)
-class JoinSettings:
-    memory_limit: str = "4GB"
-    temp_directory: str | None = None
-    threads: int | None = None
-    max_bucket: int = DEFAULT_MAX_BUCKET
-
-
-def join_threads() -> int:
-    """DuckDB's threads: the cores this process may run on (each thread has working memory
-    of its own, counted in :func:`duckdb_limit`)."""
-    return max(1, len(os.sched_getaffinity(0)))
-
-
-def duckdb_need(shared_rows: int) -> int:
-    """The smallest ``memory_limit`` under which the join of ``shared_rows`` rows of shared
-    buckets runs (measured, see the constants)."""
-    return DUCKDB_FLOOR + DUCKDB_BYTES_PER_ROW * shared_rows
-
-
-def duckdb_beyond(shared_rows: int, threads: int) -> int:
-    """What DuckDB takes beyond its ``memory_limit`` in the join (measured, see the constants)."""
-    return threads * DUCKDB_BEYOND_PER_THREAD + DUCKDB_BEYOND_PER_ROW * shared_rows
-
-
-def duckdb_limit(memory: int, held: int, shared_rows: int, threads: int) -> int:
-    """DuckDB's ``memory_limit``: what the budget leaves beside the ``held`` bytes resident in
-    the process, less what DuckDB takes beyond its limit."""
-    return memory - held - duckdb_beyond(shared_rows, threads)
-
-
-def require_duckdb_memory(limit: int, shared_rows: int, held: int, memory: int, threads: int) -> None:
-    """Refuse a join that could not run within the budget: one line with what it needs."""
-    need = duckdb_need(shared_rows)
-    if limit < need:
-        beyond = duckdb_beyond(shared_rows, threads)
-        raise ParameterError(
-            f"the join of {shared_rows} shared bucket rows needs about {(held + need + beyond) / 2**30:.2f} GiB "
-            f"({(need + beyond) / 2**20:.0f} MiB for DuckDB with {threads} threads, beside "
-            f"{held / 2**30:.2f} GiB the run holds); the budget is {memory / 2**30:.2f} GiB; raise --memory")
+    def candidates(self, bucket_files, bands: int, out: Path, settings: JoinSettings,
+                   bucket_rows: int | None = None, ranges=None) -> JoinOutput:
+        joined = candidate_pairs(list(bucket_files), out, settings, bands, bucket_rows,
+                                 part_ranges=list(ranges) if ranges is not None else None)
+        return JoinOutput(out, joined["candidate_pairs"], joined["skew"])
 
 
 def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
@@ -96,7 +48,7 @@ def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings,
     """Write candidate pairs to ``out`` (Parquet); return counts and the skew report.
 
     ``bucket_rows`` is the number of all bucket rows when the files hold only the rows of
-    shared buckets (lshjob/index/band.py); by default, the files' own row count. ``part_ranges``
+    shared buckets (:mod:`lshjob.index.band`); by default, the files' own row count. ``part_ranges``
     (first and last entity id of each part, consecutive) makes ``out`` a folder split by
     the parts of each pair (module contract)."""
     files = [str(p) for p in bucket_files]

@@ -1,0 +1,60 @@
+"""The join stage's seam: what every join engine takes and gives (Parquet files).
+
+Input: BUCKET_ROWS files (:mod:`lshjob.index.band.base`; rows of shared buckets only) and
+the number of all bucket rows. Buckets holding more than ``max_bucket`` representatives are
+split by each member's bucket in the next band ((j + 1) mod b); sub-buckets still over the
+cap are left out and counted.
+
+Output, CANDIDATES: Parquet with ``left_rep`` < ``right_rep`` (Int64 entity ids of
+representatives), ``bands_shared`` Int32 >= 1 (the buckets within the cap, or sub-buckets of
+oversize ones, the pair met in), one row per unordered pair, in no particular order. Given
+the entity id ranges of a run's parts (consecutive, :mod:`lshjob.jobs.parts`), a folder
+instead: the same rows split by the parts of their two sides,
+``left_part=i/right_part=j/*.parquet`` (``i <= j``). With the pairs, the skew report: the
+columns of ``sql/bucket_skew.sql`` and ``max_bucket``.
+
+:mod:`lshjob.index.conformance` checks an engine against this definition.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import ClassVar, Protocol, runtime_checkable
+
+import polars as pl
+
+DEFAULT_MAX_BUCKET = 2000
+
+CANDIDATES_SCHEMA = {"left_rep": pl.Int64, "right_rep": pl.Int64, "bands_shared": pl.Int32}
+
+SKEW_COLUMNS = ("buckets", "buckets_with_pairs", "oversize_buckets", "oversize_rows", "oversize_pairs",
+                "split_pairs", "skipped_pairs", "oversize_sub_buckets", "bucket_pairs", "largest_bucket")
+
+
+@dataclass(frozen=True)
+class JoinSettings:
+    memory_limit: str = "4GB"  # what the engine may hold (it spills beyond)
+    temp_directory: str | None = None  # where it spills
+    threads: int | None = None
+    max_bucket: int = DEFAULT_MAX_BUCKET
+
+
+@dataclass(frozen=True)
+class JoinOutput:
+    candidates: Path  # CANDIDATES file, or folder split by ranges
+    pairs: int
+    skew: dict  # SKEW_COLUMNS and max_bucket, integers
+
+
+@runtime_checkable
+class JoinEngine(Protocol):
+    name: ClassVar[str]
+
+    def candidates(self, bucket_files: Sequence[Path], bands: int, out: Path, settings: JoinSettings,
+                   bucket_rows: int | None = None, ranges: Sequence[tuple[int, int]] | None = None) -> JoinOutput:
+        """BUCKET_ROWS files -> CANDIDATES at ``out`` (a file; a folder when ``ranges`` are given),
+        written under a temporary name and renamed. ``bucket_rows``: all bucket rows, buckets
+        of one included (default: the rows in the files)."""
+        ...

@@ -1,0 +1,60 @@
+"""The verify stage's seam: what every verify engine takes and gives.
+
+Input: CANDIDATES (:mod:`lshjob.index.join.base`: a Parquet file, or a folder split by the
+parts of the two sides, ``left_part=i/right_part=j/*.parquet``), the element sets (a
+:class:`SetStore`: part i holds entity ids ``ranges[i][0]..ranges[i][1]``) and a threshold.
+
+Output, VERIFIED (a table): ``left_rep`` < ``right_rep`` (Int64), ``jaccard`` Float64 (exact:
+intersection / union of the sets' integer counts, never from signatures), ``estimate``
+Float64 (the fraction of equal positions of the two comparable signatures; equal to
+``jaccard`` when no signatures are made, identical sets only), ``bands_shared`` Int32; the
+candidates with ``jaccard >= threshold``, each once, in no particular order.
+
+:mod:`lshjob.index.conformance` checks an engine against this definition.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import ClassVar, Protocol, runtime_checkable
+
+import polars as pl
+
+from lshjob.core.sets import Membership
+from lshjob.sign.signatures import SignatureParams
+
+VERIFIED_SCHEMA = {"left_rep": pl.Int64, "right_rep": pl.Int64, "jaccard": pl.Float64,
+                   "estimate": pl.Float64, "bands_shared": pl.Int32}
+
+
+class SetStore(Protocol):
+    """The sets of a run by consecutive ranges of entity ids (held, or saved per part)."""
+
+    ranges: list[tuple[int, int]]
+
+    def load(self, i: int) -> Membership:
+        """The sets of range i: set t is entity ``ranges[i][0] + t``."""
+        ...
+
+
+@dataclass(frozen=True)
+class VerifySettings:
+    slice_rows: int = 1 << 20  # candidates read and verified at a time
+    estimate_bytes: int | None = None  # signatures made at a time for the estimates (None: all)
+
+
+@runtime_checkable
+class VerifyEngine(Protocol):
+    name: ClassVar[str]
+
+    def verify(self, candidates: Path, sets: SetStore, threshold: float, params: SignatureParams | None,
+               settings: VerifySettings) -> pl.DataFrame:
+        """CANDIDATES -> VERIFIED. ``params``: how the signatures were made (for ``estimate``),
+        None when there are none (the estimate is then the exact value)."""
+        ...
+
+
+def empty_verified() -> pl.DataFrame:
+    """VERIFIED with no row."""
+    return pl.DataFrame(schema=VERIFIED_SCHEMA)
