@@ -28,7 +28,9 @@ from lshjob.contracts import (
 from lshjob.contracts.signature_file import file_meta
 from lshjob.demo.generate import generate_events
 from lshjob.ingest.spec import EventSpec, load_sets, validated_events
-from lshjob.jobs import parts, prepare, run
+from lshjob.index.join import duckdb as duckdb_join
+from lshjob.index.verify import local as local_verify
+from lshjob.jobs import prepare, run
 from lshjob.jobs.sign import sign_file
 from lshjob.sign.signatures import SignatureParams, read_signatures
 
@@ -91,9 +93,9 @@ def test_every_table_of_a_run_keeps_its_contract_at_its_boundary(demo, tmp_path,
     path, _, sets = demo
     seen = {}
     _spy(monkeypatch, prepare, "in_one_part", seen)
-    _spy(monkeypatch, run, "candidate_pairs", seen,
+    _spy(monkeypatch, duckdb_join, "candidate_pairs", seen,
          lambda args, _: (pl.read_parquet(args[0]), pl.read_parquet(args[1])))  # bucket files, candidates
-    _spy(monkeypatch, parts, "verify_blocks", seen)
+    _spy(monkeypatch, local_verify, "verify_blocks", seen)
     returned = run.run_job(path, SPEC, run.RunOptions(threshold=0.5, top_k=5), tmp_path / "index")
 
     built = seen["in_one_part"]
@@ -138,7 +140,7 @@ def test_identical_sets_in_parts_keep_the_contracts_with_no_bands(demo, tmp_path
     path, _, sets = demo
     seen = {}
     _spy(monkeypatch, prepare, "in_parts", seen)
-    _spy(monkeypatch, parts, "verify_blocks", seen, lambda args, result: (pl.read_parquet(
+    _spy(monkeypatch, local_verify, "verify_blocks", seen, lambda args, result: (pl.read_parquet(
         sorted(str(p) for p in args[0].rglob("*.parquet")), hive_partitioning=False), result))  # candidates
     returned = run.run_job(path, SPEC, run.RunOptions(threshold=1.0, parts=2), tmp_path / "index")
     assert returned["plan"]["mode"] == "identical-only" and returned["counts"]["parts"] == 2
