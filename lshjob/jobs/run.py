@@ -14,12 +14,12 @@ from __future__ import annotations
 import json
 import shutil
 import time
-from dataclasses import asdict, dataclass
+from dataclasses import asdict
 from pathlib import Path
 
 from lshjob.jobs import parts
-from lshjob.plan import banding as planner
 from lshjob.jobs import prepare
+from lshjob.jobs.options import MAX_TOP_K, RunOptions  # noqa: F401  (RunOptions: the run's Python API)
 from lshjob.runtime import provenance
 from lshjob.index import publish
 from lshjob.runtime import stopping
@@ -27,61 +27,13 @@ from lshjob.core.digest import digest_in_background
 from lshjob.errors import ParameterError
 from lshjob.runtime.folder_lock import output_lock
 from lshjob.ingest.spec import EventSpec, resolve_paths
-from lshjob.index.join import (DEFAULT_MAX_BUCKET, JoinSettings, candidate_pairs, duckdb_limit, duckdb_need, join_threads,
+from lshjob.index.join import (JoinSettings, candidate_pairs, duckdb_limit, duckdb_need, join_threads,
                    require_duckdb_memory)
 from lshjob.ingest.loading import grouping_need, open_events
 from lshjob.runtime.outputs import output_folder, scratch_folder
 from lshjob.runtime.progress import QUIET, StageProgress
 from lshjob.runtime.budget import current_bytes, default_memory, parse_size, peak_bytes, release_freed, reset_peak
 from lshjob.runtime.workspace import remove_leftovers, work_folder
-from lshjob.sign.signatures import SignatureParams
-
-
-MAX_TOP_K = 2**31 - 1  # ranks are 32-bit
-
-
-@dataclass(frozen=True)
-class RunOptions:
-    threshold: float
-    top_k: int = 50
-    perms: int | None = None
-    bands: int | None = None
-    rows: int | None = None
-    recall: float = 0.95
-    sample_size: int = 2000
-    seed: int = 1
-    scheme: str = "kperm"
-    max_bucket: int = DEFAULT_MAX_BUCKET
-    max_candidates: float = 2e9
-    memory: str | None = None
-    parts: int | None = None  # key ranges held one at a time; None: as the memory budget needs
-    wait: float = 0.0  # seconds to wait for another run's lock on the output folder
-    scratch: str | None = None  # folder for the work folder (spill, parts); None: inside the output
-
-    def validate(self) -> None:
-        if not 0.0 < self.threshold <= 1.0:
-            raise ParameterError(f"--threshold must be in (0, 1]; got {self.threshold}")
-        if not 1 <= self.top_k <= MAX_TOP_K:
-            raise ParameterError(f"--top-k must be from 1 to {MAX_TOP_K}; got {self.top_k}")
-        if not self.max_candidates >= 0:  # NaN fails too
-            raise ParameterError(f"--max-candidates must be 0 or more; got {self.max_candidates:g}")
-        if (self.bands is None) != (self.rows is None):
-            raise ParameterError("--bands and --rows go together; give both or neither")
-        if self.bands is not None:
-            planner.check_explicit(self.perms or 128, self.bands, self.rows)
-        if self.perms is not None and self.perms < 1:
-            raise ParameterError(f"--perms must be at least 1; got {self.perms}")
-        if self.max_bucket < 2:
-            raise ParameterError(f"--max-bucket must be at least 2; got {self.max_bucket}")
-        if self.sample_size < 2:
-            raise ParameterError(f"--sample-size must be at least 2; got {self.sample_size}")
-        if self.memory is not None:
-            parse_size(self.memory)
-        if self.parts is not None and self.parts < 1:
-            raise ParameterError(f"--parts must be at least 1; got {self.parts}")
-        if not self.wait >= 0:
-            raise ParameterError(f"--wait must be 0 or more seconds; got {self.wait}")
-        SignatureParams(scheme=self.scheme)
 
 
 class _Stages:
@@ -194,7 +146,7 @@ def run_job(
                 settings = JoinSettings(memory_limit=f"{limit // 2**20}MiB", temp_directory=str(work / "spill"),
                                         threads=threads, max_bucket=options.max_bucket)
                 candidates = work / ("candidates" if in_parts else "candidates.parquet")
-                joined = candidate_pairs(built.bucket_files, candidates, settings, plan["bands"], built.bucket_rows,
+                joined = candidate_pairs(built.bucket_files, candidates, settings, plan.bands, built.bucket_rows,
                                          part_ranges=built.store.ranges if in_parts else None)
             skew = joined["skew"]
             counts["candidate_pairs"] = joined["candidate_pairs"]
@@ -214,7 +166,7 @@ def run_job(
         with stages("publish"):
             # blocks sized from what the budget leaves beside what the process holds
             release_freed()
-            expansion = publish.expand(verified, built.rep_of, top_k, plan.get("bands", 0),
+            expansion = publish.expand(verified, built.rep_of, top_k, plan.bands or 0,
                                        publish.block_rows(memory, current_bytes()))
             del verified
             publish.check_output(expansion.published_rows, built.keys, options.top_k, memory,
@@ -238,7 +190,7 @@ def run_job(
             "options": asdict(options),
             "top_k_effective": top_k,
             "memory_budget_bytes": memory,
-            "plan": plan,
+            "plan": plan.to_dict(),
             "counts": counts,
             "skew": skew,
             "peak_memory_bytes": stages.peak,
