@@ -19,7 +19,7 @@ from lshjob.audit.check import audit_index
 from lshjob.jobs.config import load_run_config, merge_settings
 from lshjob.demo.generate import check_options as check_demo_options, write_demo
 from lshjob.errors import ParameterError
-from lshjob.jobs.options import RunOptions, defaults as run_defaults, required as required_options, run_settings
+from lshjob.jobs.options import RunOptions, default_of, defaults as run_defaults, required as required_options, run_settings
 from lshjob.jobs.run import run_job
 from lshjob.report.text import audit_report, plan_report, run_report
 from lshjob.cli.failures import EXIT_CODES, ends_cleanly as _fail_cleanly, run_app, to_stdout
@@ -153,12 +153,12 @@ def merge(
 def plan(
     threshold: Annotated[float, typer.Option(help="Jaccard similarity a pair must reach, in (0, 1]; 1 pairs identical sets only.")],
     perms: Annotated[Optional[int], typer.Option(help="Signature length k (default: 128 in theory mode; chosen in data mode).")] = None,
-    recall: Annotated[float, typer.Option(help="Data mode: expected recall of pairs at or above the threshold.")] = 0.95,
+    recall: Annotated[float, typer.Option(help="Data mode: expected recall of pairs at or above the threshold.")] = default_of("recall"),
     sample: Annotated[Optional[str], typer.Option(help="Signature file or events to plan from (data mode).")] = None,
     entity: Annotated[Optional[str], typer.Option(help="Events sample: entity column.")] = None,
     element: Annotated[Optional[str], typer.Option(help="Events sample: element column.")] = None,
     on_null: Annotated[str, typer.Option(help="Events sample: null keys 'error' or 'drop' the row.")] = "error",
-    sample_size: Annotated[int, typer.Option(help="Entities drawn from the sample.")] = 2000,
+    sample_size: Annotated[int, typer.Option(help="Entities drawn from the sample.")] = default_of("sample_size"),
     entities: Annotated[Optional[int], typer.Option(help="Scale pair counts to this many entities (e.g. next quarter's).")] = None,
     fp_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-positive area.")] = 0.5,
     fn_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-negative area.")] = 0.5,
