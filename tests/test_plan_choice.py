@@ -91,3 +91,18 @@ def test_theory_plan_matches_the_published_s_curve():
     plan = choose_plan(0.5, perms=128, bands=20, rows=5)
     assert plan.mode == PlanMode.EXPLICIT and (plan.perms, plan.bands, plan.rows) == (128, 20, 5)
     assert round(plan.predicted["probability_at_threshold"], 3) == 0.470
+
+
+def test_plan_and_run_refuse_the_same_plan_over_max_candidates(tmp_path, loans):
+    # Oracle: the search called directly; its chosen plan's expected candidates exceed the limit.
+    sets = load_membership(loans, EventSpec(entity="patron", element="title"))[0]
+    best = data_plans(0.3, sample_histogram_from_sets(sets, 2000, seed=0, threshold=0.3), DEFAULT_PERMS_CHOICES)[0]
+    limit = best.expected_candidates / 2
+    runner = CliRunner()
+    planned = runner.invoke(app, ["plan", "--threshold", "0.3", "--sample", str(loans), *SPEC,
+                                  "--max-candidates", str(limit)])
+    ran = runner.invoke(app, ["run", str(loans), *SPEC, "--threshold", "0.3", "--max-candidates", str(limit),
+                              "--out", str(tmp_path / "idx")])
+    assert planned.exit_code == ran.exit_code == 2
+    expected = f"the plan (k={best.perms}, b={best.bands}, r={best.rows}) predicts {best.expected_candidates:.3g}"
+    assert expected in planned.stderr and planned.stderr == ran.stderr

@@ -166,6 +166,7 @@ def plan(
     rows: Annotated[Optional[int], typer.Option(help="Judge this number of rows per band instead of choosing.")] = None,
     chart: Annotated[Optional[Path], typer.Option(help="Write the S-curve chart (.svg, or .png with matplotlib).")] = None,
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
+    max_candidates: Annotated[Optional[float], typer.Option(help="Refuse plans predicting more candidate pairs, as lshjob run does.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -183,7 +184,7 @@ def plan(
     spec = EventSpec(entity=entity, element=element, on_null=on_null) if entity and element else None
     result = api.plan_banding(
         threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed,
-        bands=bands, rows=rows,
+        bands=bands, rows=rows, max_candidates=max_candidates,
     )
     summary = api.plan_summary(result, sample)
     if chart is not None and result.bands is None:

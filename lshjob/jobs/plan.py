@@ -32,15 +32,19 @@ def plan_banding(
     runners_up: int = 5,
     bands: int | None = default_of("bands"),
     rows: int | None = default_of("rows"),
+    max_candidates: float | None = None,
 ) -> Plan:
     """Choose (k, b, r) with :func:`lshjob.plan.choose.choose_plan`, as ``lshjob run`` does.
     Without ``sample``: theory mode (weighted FP/FN areas, k default 128). With ``sample`` (a
     signature file, or events read with ``spec``): data mode, the plan that meets ``recall``
     with the fewest expected candidate pairs, scaled to ``entities`` (default: the entity count
     of the sample file). With ``bands`` and ``rows`` that plan is judged instead of chosen; the
-    runners-up are then the recommended plans. ``seed`` draws the sample (the run draws with 0)."""
+    runners-up are then the recommended plans. ``seed`` draws the sample (the run draws with 0).
+    A plan predicting more than ``max_candidates`` candidate pairs is refused, as by the run."""
     check_options({"threshold": threshold, "perms": perms, "recall": recall, "sample_size": sample_size,
                    "bands": bands, "rows": rows})
+    if max_candidates is not None:
+        check_options({"max_candidates": max_candidates})
     if entities is not None and entities < 2:
         raise ParameterError(f"--entities must be at least 2; got {entities}")
     if threshold == 1.0:  # identical sets only, grouped exactly: the sample is not needed
@@ -74,7 +78,8 @@ def plan_banding(
             raise InputError(f"{sample}: the sample needs at least 2 entities; got {n_entities}")
         hist = similarity.sample_histogram_from_sets(sets, sample_size, seed, entities, threshold)
     return choose_plan(threshold, hist, perms=perms, bands=bands, rows=rows, recall=recall, fp_weight=fp_weight,
-                       fn_weight=fn_weight, runners_up=runners_up, signature_perms=meta.get("k"),
+                       fn_weight=fn_weight, max_candidates=max_candidates, runners_up=runners_up,
+                       signature_perms=meta.get("k"),
                        seed=meta.get("seed"), scheme=meta.get("scheme"))
 
 
