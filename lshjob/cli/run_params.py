@@ -9,7 +9,7 @@ give it; the value a run gets when neither does is the table's default
 from __future__ import annotations
 
 import inspect
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 
@@ -24,7 +24,7 @@ def parameter(option: Option) -> inspect.Parameter:
         names = (option.flag, option.short) if option.short else (option.flag,)
         info = typer.Option(*names, help=option.help_text)
     return inspect.Parameter(option.name, inspect.Parameter.POSITIONAL_OR_KEYWORD, default=None,
-                             annotation=Annotated[Optional[option.type], info])
+                             annotation=Annotated[option.type | None, info])
 
 
 def with_run_options(command):

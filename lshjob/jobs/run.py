@@ -19,7 +19,7 @@ from pathlib import Path
 
 from lshjob.jobs import parts
 from lshjob.jobs import prepare
-from lshjob.jobs.options import MAX_TOP_K, RunOptions  # noqa: F401  (RunOptions: the run's Python API)
+from lshjob.jobs.options import RunOptions  # the run's Python API (declared with the options)
 from lshjob.runtime import provenance
 from lshjob.index import publish
 from lshjob.runtime import stopping

@@ -5,7 +5,11 @@ and ``lshjob run``; the S-curve and the search are in :mod:`lshjob.plan.banding`
 pair-similarity histogram in :mod:`lshjob.plan.similarity`.
 """
 
-from lshjob.plan.banding import PairHistogram, approximate_threshold, candidate_probability
+from lshjob.plan.banding import (
+    PairHistogram,
+    approximate_threshold,
+    candidate_probability,
+)
 from lshjob.plan.choose import Plan, PlanMode, choose_plan
 
 __all__ = ["PairHistogram", "Plan", "PlanMode", "approximate_threshold", "candidate_probability", "choose_plan"]
