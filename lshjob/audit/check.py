@@ -30,6 +30,7 @@ from lshjob.ingest.loading import entity_counts, event_bytes, grouping_need, mem
 from lshjob.core.sets import Membership
 from lshjob.plan.banding import candidate_probability
 from lshjob.contracts.manifest import Manifest
+from lshjob.plan.choose import Plan
 from lshjob.index.publish import NEIGHBOURS, read_manifest
 from lshjob.plan.similarity import overlap_counts, postings_of, restricted_index, visit_costs
 from lshjob.runtime import budget
@@ -95,7 +96,7 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
     spec = EventSpec(**manifest.spec)
     threshold = manifest.options["threshold"]
     top_k = manifest.options["top_k"]
-    plan = manifest.plan
+    plan = Plan.from_manifest({"plan": manifest.plan, "options": manifest.options})
     opened = open_events(source, spec)
     memory = memory or default_memory()
     rng = np.random.default_rng(seed)
@@ -134,7 +135,7 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
         "audited": True,
         "threshold": threshold,
         "top_k": top_k,
-        "plan": {k: plan.get(k) for k in ("mode", "perms", "bands", "rows")},
+        "plan": {"mode": str(plan.mode), "perms": plan.perms, "bands": plan.bands, "rows": plan.rows},
         "sampled_entities": int(sampled.size),
         "compared_against": scope,
         "parts": n_blocks,
@@ -243,7 +244,7 @@ def _append(first: Membership, second: Membership) -> Membership:
                       np.concatenate([first.elements, second.elements]), first.text_hashes)
 
 
-def top_k_recall(truth: pl.DataFrame, checked: pl.DataFrame, top_k: int, plan: dict) -> dict:
+def top_k_recall(truth: pl.DataFrame, checked: pl.DataFrame, top_k: int, plan: Plan) -> dict:
     """Recall as the index promises it: of each sampled entity's true top-k neighbours at or
     above the threshold, the share published.
 
@@ -264,10 +265,10 @@ def top_k_recall(truth: pl.DataFrame, checked: pl.DataFrame, top_k: int, plan: d
     published = checked.select(pl.col("entity").alias("a"), pl.col("neighbour").alias("b"), pl.lit(True).alias("hit"))
     ranked = ranked.join(published, on=["a", "b"], how="left").with_columns(pl.col("hit").fill_null(False))
     jac = ranked["jaccard"].to_numpy()
-    if plan["mode"] == "identical-only":
+    if not plan.banded:
         p = np.ones(len(jac))
     else:
-        p = candidate_probability(jac, plan["bands"], plan["rows"])
+        p = candidate_probability(jac, plan.bands, plan.rows)
         p[jac >= 1.0] = 1.0  # identical sets are grouped exactly, whatever the bands
     ranked = ranked.with_columns(pl.Series("p", p, dtype=pl.Float64))
     per_entity = ranked.group_by("a").agg(
@@ -307,7 +308,7 @@ def _expected_filled(ties: int, places: int, p: float) -> float:
     return total
 
 
-def _distinct_set_pairs(hit: pl.DataFrame, plan: dict) -> dict:
+def _distinct_set_pairs(hit: pl.DataFrame, plan: Plan) -> dict:
     """Recall over distinct pairs of different sets. Entities with identical sets share one
     outcome (they are banded as one), so per-entity recall can swing with a single pair of
     sets; over distinct set pairs the outcomes are independent and the S-curve prediction
@@ -322,9 +323,9 @@ def _distinct_set_pairs(hit: pl.DataFrame, plan: dict) -> dict:
     groups = (pairs.group_by("x_a", "x_b", "y_a", "y_b").agg(pl.col("hit").any(), pl.first("jaccard"))
               .sort("x_a", "x_b", "y_a", "y_b"))  # sums in one order, however the pairs were found
     n = groups.height
-    if n == 0 or plan["mode"] == "identical-only":
+    if n == 0 or not plan.banded:
         return {"distinct_set_pairs": n, "distinct_recall": None, "distinct_predicted": None, "distinct_se": None}
-    p = float(candidate_probability(groups["jaccard"].to_numpy(), plan["bands"], plan["rows"]).mean())
+    p = float(candidate_probability(groups["jaccard"].to_numpy(), plan.bands, plan.rows).mean())
     return {
         "distinct_set_pairs": n,
         "distinct_recall": float(groups["hit"].mean()),

@@ -19,9 +19,11 @@ from lshjob.audit.check import audit_index
 from lshjob.jobs.config import load_run_config, merge_settings
 from lshjob.demo.generate import check_options as check_demo_options, write_demo
 from lshjob.errors import ParameterError
-from lshjob.jobs.run import RunOptions, run_job
+from lshjob.jobs.options import RunOptions, default_of, defaults as run_defaults, required as required_options, run_settings
+from lshjob.jobs.run import run_job
 from lshjob.report.text import audit_report, plan_report, run_report
 from lshjob.cli.failures import EXIT_CODES, ends_cleanly as _fail_cleanly, run_app, to_stdout
+from lshjob.cli.run_params import with_run_options
 from lshjob.ingest.spec import EventSpec
 from lshjob.runtime.outputs import demo_folder, output_file
 from lshjob.runtime.progress import StageProgress
@@ -151,12 +153,12 @@ def merge(
 def plan(
     threshold: Annotated[float, typer.Option(help="Jaccard similarity a pair must reach, in (0, 1]; 1 pairs identical sets only.")],
     perms: Annotated[Optional[int], typer.Option(help="Signature length k (default: 128 in theory mode; chosen in data mode).")] = None,
-    recall: Annotated[float, typer.Option(help="Data mode: expected recall of pairs at or above the threshold.")] = 0.95,
+    recall: Annotated[float, typer.Option(help="Data mode: expected recall of pairs at or above the threshold.")] = default_of("recall"),
     sample: Annotated[Optional[str], typer.Option(help="Signature file or events to plan from (data mode).")] = None,
     entity: Annotated[Optional[str], typer.Option(help="Events sample: entity column.")] = None,
     element: Annotated[Optional[str], typer.Option(help="Events sample: element column.")] = None,
     on_null: Annotated[str, typer.Option(help="Events sample: null keys 'error' or 'drop' the row.")] = "error",
-    sample_size: Annotated[int, typer.Option(help="Entities drawn from the sample.")] = 2000,
+    sample_size: Annotated[int, typer.Option(help="Entities drawn from the sample.")] = default_of("sample_size"),
     entities: Annotated[Optional[int], typer.Option(help="Scale pair counts to this many entities (e.g. next quarter's).")] = None,
     fp_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-positive area.")] = 0.5,
     fn_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-negative area.")] = 0.5,
@@ -164,6 +166,7 @@ def plan(
     rows: Annotated[Optional[int], typer.Option(help="Judge this number of rows per band instead of choosing.")] = None,
     chart: Annotated[Optional[Path], typer.Option(help="Write the S-curve chart (.svg or .png).")] = None,
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
+    max_candidates: Annotated[Optional[float], typer.Option(help="Refuse plans predicting more candidate pairs, as lshjob run does.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -181,54 +184,25 @@ def plan(
     spec = EventSpec(entity=entity, element=element, on_null=on_null) if entity and element else None
     result = api.plan_banding(
         threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed,
-        bands=bands, rows=rows,
+        bands=bands, rows=rows, max_candidates=max_candidates,
     )
-    summary = result.as_dict()
+    summary = api.plan_summary(result, sample)
     if chart is not None and result.bands is None:
         raise ParameterError("--chart draws the S-curve of a banding; at threshold 1.0 there is none")
     if chart is not None:
         write_chart(chart, result.bands, result.rows, threshold, result.histogram)
         summary["chart"] = str(chart)
-    _emit(summary, as_json, quiet, plan_report(result))
-
-
-RUN_DEFAULTS = {
-    "count": None, "min_count": 1, "on_null": "error", "top_k": 50, "perms": None, "bands": None,
-    "rows": None, "recall": 0.95, "sample_size": 2000, "seed": 1, "scheme": "kperm", "max_bucket": 2000,
-    "max_candidates": 2e9, "memory": None, "parts": None, "wait": 0.0, "scratch": None,
-    "unicode": "nfc",
-}
+    _emit(summary, as_json, quiet, plan_report(summary))
 
 
 @app.command()
 @_fail_cleanly
+@with_run_options  # the options declared in lshjob.jobs.options
 def run(
-    events: Annotated[Optional[str], typer.Argument(help="Event file, glob or directory.")] = None,
-    entity: Annotated[Optional[str], typer.Option(help="Entity column (e.g. patron).")] = None,
-    element: Annotated[Optional[str], typer.Option(help="Element column (e.g. title).")] = None,
-    threshold: Annotated[Optional[float], typer.Option(help="Jaccard similarity a neighbour must reach, in (0, 1].")] = None,
-    out: Annotated[Optional[str], typer.Option("--out", "-o", help="Index folder (neighbours.parquet, manifest.json).")] = None,
-    top_k: Annotated[Optional[int], typer.Option(help="Neighbours kept per entity.  [default: 50]")] = None,
-    perms: Annotated[Optional[int], typer.Option(help="Signature length k (default: chosen by the planner).")] = None,
-    bands: Annotated[Optional[int], typer.Option(help="Override the planner: number of bands b.")] = None,
-    rows: Annotated[Optional[int], typer.Option(help="Override the planner: rows per band r.")] = None,
-    recall: Annotated[Optional[float], typer.Option(help="Planner's expected-recall target.  [default: 0.95]")] = None,
-    count: Annotated[Optional[str], typer.Option(help="Column with a count or weight per event.")] = None,
-    min_count: Annotated[Optional[float], typer.Option(help="Keep elements seen at least this often.  [default: 1]")] = None,
-    on_null: Annotated[Optional[str], typer.Option(help="Null keys: error or drop.  [default: error]")] = None,
-    unicode: Annotated[Optional[str], typer.Option(help="Text keys: 'nfc' (one Unicode normal form) or 'asis' (as given).  [default: nfc]")] = None,
-    sample_size: Annotated[Optional[int], typer.Option(help="Entities the planner samples.  [default: 2000]")] = None,
-    seed: Annotated[Optional[int], typer.Option(help="Seed of the hash family.  [default: 1]")] = None,
-    scheme: Annotated[Optional[str], typer.Option(help="Signature scheme: kperm or oph.  [default: kperm]")] = None,
-    max_bucket: Annotated[Optional[int], typer.Option(help="Skip buckets holding more entities.  [default: 2000]")] = None,
-    max_candidates: Annotated[Optional[float], typer.Option(help="Refuse plans predicting more candidate pairs.  [default: 2e9]")] = None,
-    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time.  [default: half the machine]")] = None,
-    parts: Annotated[Optional[int], typer.Option(help="Read the entities in this many key ranges, one at a time.  [default: as few as --memory allows]")] = None,
-    wait: Annotated[Optional[float], typer.Option(help="Seconds to wait while another run holds the output folder's lock (then exit 75).  [default: 0]")] = None,
-    scratch: Annotated[Optional[str], typer.Option(help="Folder for the work files (DuckDB spill, parts), e.g. on another disk.  [default: inside --out]")] = None,
     config: Annotated[Optional[Path], typer.Option(help="TOML file with any of these options; flags override it.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
+    **flags,
 ) -> None:
     """Build the neighbour index: ingest, collapse, plan, sign, band, join, verify, publish.
 
@@ -240,20 +214,13 @@ def run(
     Example (sets larger than memory): lshjob run loans/ --entity patron --element title
     --threshold 0.5 --memory 4GB --out index
     """
-    flags = dict(events=events, entity=entity, element=element, threshold=threshold, out=out,
-                 top_k=top_k, perms=perms, bands=bands, rows=rows, recall=recall, count=count,
-                 min_count=min_count, on_null=on_null, sample_size=sample_size, seed=seed, scheme=scheme,
-                 max_bucket=max_bucket, max_candidates=max_candidates, memory=memory, parts=parts,
-                 wait=wait, scratch=scratch, unicode=unicode)
-    settings = merge_settings(RUN_DEFAULTS, load_run_config(config) if config else {}, flags)
-    missing = [name for name in ("events", "entity", "element", "threshold", "out") if settings.get(name) is None]
+    settings = merge_settings(run_defaults(), load_run_config(config) if config else {}, flags)
+    missing = [name for name in required_options() if settings.get(name) is None]
     if missing:
         raise ParameterError(f"lshjob run needs {', '.join(missing)} (as options or in --config)")
-    spec = EventSpec(entity=settings["entity"], element=settings["element"], count=settings["count"],
-                     min_count=settings["min_count"], on_null=settings["on_null"], unicode=settings["unicode"])
-    options = RunOptions(**{k: settings[k] for k in RunOptions.__dataclass_fields__ if k in settings})  # engines: default
+    events, out, spec, options = run_settings(settings)
     with _progress(quiet, as_json) as progress:
-        manifest = run_job(settings["events"], spec, options, settings["out"], progress, command=sys.argv)
+        manifest = run_job(events, spec, options, out, progress, command=sys.argv)
     for warning in manifest.get("warnings", []):  # a lock taken over, leftovers removed
         typer.echo(f"warning: {warning}", err=True)
     _emit(manifest, as_json, quiet, run_report(manifest))

@@ -22,14 +22,9 @@ import tomllib
 from pathlib import Path
 
 from lshjob.errors import ParameterError, key_text
+from lshjob.jobs.options import config_keys
 
-RUN_KEYS = {
-    "events": str, "entity": str, "element": str, "count": str, "min_count": (int, float),
-    "on_null": str, "threshold": (int, float), "out": str, "top_k": int, "perms": int, "bands": int,
-    "rows": int, "recall": float, "sample_size": int, "seed": int, "scheme": str, "max_bucket": int,
-    "max_candidates": (int, float), "memory": (str, int), "parts": int, "wait": (int, float), "scratch": str,
-    "unicode": str,
-}
+RUN_KEYS = config_keys()  # from the declared options (lshjob.jobs.options)
 PATH_KEYS = ("events", "out", "scratch")  # relative to the configuration file's folder
 
 
@@ -71,11 +66,11 @@ def load_run_config(path: str | Path) -> dict:
     return config
 
 
-def _kind(t) -> str:
+def _kind(types: tuple[type, ...]) -> str:
     names = {str: "text", int: "a whole number", float: "a number"}
-    if isinstance(t, tuple):
-        return " or ".join(names[x] for x in t)
-    return names[t]
+    if set(types) == {int, float}:  # a whole number is a number
+        return names[float]
+    return " or ".join(names[x] for x in types)
 
 
 def merge_settings(defaults: dict, config: dict, flags: dict) -> dict:

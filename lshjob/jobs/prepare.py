@@ -15,10 +15,10 @@ from typing import TYPE_CHECKING
 import numpy as np
 import polars as pl
 
-from lshjob.plan import banding as planner
 from lshjob.index import publish
 from lshjob.plan import similarity
-from lshjob.errors import InputError, ParameterError
+from lshjob.plan.choose import Plan, choose_plan
+from lshjob.errors import InputError
 from lshjob.index.band import ROW_BYTES, save_keys
 from lshjob.index.collapse import collapse_identical, fingerprints, identical_candidates
 from lshjob.ingest.spec import IngestReport
@@ -29,7 +29,7 @@ from lshjob.runtime.partitions import HeldSets, PartStore, key_ranges, planning_
 from lshjob.sign.signatures import SignatureParams, comparable_by_position
 
 if TYPE_CHECKING:
-    from lshjob.jobs.run import RunOptions
+    from lshjob.jobs.options import RunOptions
 
 
 @dataclass
@@ -41,7 +41,7 @@ class Prepared:
     representatives: int
     store: PartStore | HeldSets
     report: IngestReport
-    plan: dict
+    plan: Plan
     params: SignatureParams | None = None
     bucket_files: list[Path] | None = None  # None: no bands (identical sets only)
     shared_rows: int = 0
@@ -61,22 +61,21 @@ def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: P
         rep_of, reps = collapse_identical(sets)
     _check_output(rep_of, sets.keys, options, memory)
     with stages("plan"):
-        plan = choose_plan(sets, options, distinct_sets=len(reps))
-    _check_predicted(plan, options)
+        plan = plan_run(sets, options, distinct_sets=len(reps))
     built = Prepared(sets.keys, rep_of, len(reps), HeldSets(sets), report, plan,
                      warnings=_few_sets(sets.size, len(reps)))
-    if plan["mode"] != "identical-only":
-        built.params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed)
+    if plan.banded:
+        built.params = plan.signature_params()
         # The bucket keys (8 bytes a band and representative) stay in memory when they fit
         # beside what the process holds, a slice's signatures and a batch of the band search
         # (an eighth of the budget each); else they go to the work folder, as in parts.
         release_freed()
-        spill = None if Budget(memory).keys_stay_held(current_bytes(), len(reps), plan["bands"]) else work / "keys"
+        spill = None if Budget(memory).keys_stay_held(current_bytes(), len(reps), plan.bands) else work / "keys"
         bands = SignAndBand(built.params, plan, memory, stages, options.engine("band"), spill=spill)
         with stages.progress.stage("sign and band", len(reps)) as task:
             bands.add(sets, reps, 0, task)
         built.bucket_files, built.shared_rows = bands.write(work / "buckets")
-        built.bucket_rows = len(reps) * plan["bands"]
+        built.bucket_rows = len(reps) * plan.bands
     return built
 
 
@@ -90,11 +89,10 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
         sample = None
         if options.threshold < 1.0 and per_entity.height > 1:  # identical sets only need no sample
             sample, _ = membership_of(source, planning_sample(per_entity, budget_events))
-        plan = choose_plan(sample, options, total_entities=per_entity.height)
+        plan = plan_run(sample, options, total_entities=per_entity.height)
         del sample
-    _check_predicted(plan, options)
-    banded = plan["mode"] != "identical-only"
-    params = SignatureParams(scheme=options.scheme, perms=plan["perms"], seed=options.seed) if banded else None
+    banded = plan.banded
+    params = plan.signature_params() if banded else None
     # Verification holds two parts' sets (8 bytes an element, less than grouping them costs)
     # beside what the process holds now, its slices of candidates and their estimates (an
     # eighth and a sixteenth of the budget) and what DuckDB leaves resident after the join.
@@ -138,7 +136,7 @@ def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path
                         warnings=_few_sets(len(keys), None))
     if banded:
         prepared.bucket_files, prepared.shared_rows = bands.write(work / "buckets")
-        prepared.bucket_rows = representatives * plan["bands"]
+        prepared.bucket_rows = representatives * plan.bands
     else:
         with stages.part("collapse"):
             prepared.candidates, prepared.identical_pairs = identical_candidates(
@@ -163,24 +161,14 @@ def _check_output(rep_of: np.ndarray, keys: pl.Series, options: "RunOptions", me
     publish.check_output(rows, keys, options.top_k, memory, largest)
 
 
-def _check_predicted(plan: dict, options: RunOptions) -> None:
-    predicted = plan.get("predicted", {})
-    if predicted.get("expected_candidates", 0) > options.max_candidates:
-        raise ParameterError(
-            f"the plan (k={plan['perms']}, b={plan['bands']}, r={plan['rows']}) predicts "
-            f"{predicted['expected_candidates']:.3g} candidate pairs at threshold {options.threshold}, "
-            f"more than --max-candidates {options.max_candidates:.3g}; raise the threshold or --max-candidates"
-        )
-
-
 class SignAndBand:
     """Signs representatives a slice at a time and keeps only their bucket keys (8 bytes per
     band; in a file each under ``spill``, for a run in parts): a slice's signatures (raw and densified, laid out by position; polars reads them
     without a copy: at most 2 x 8k bytes a row) take at most an eighth of the budget. Then
     :meth:`write` writes the shared buckets' rows (both through the band ``engine``)."""
 
-    def __init__(self, params, plan, memory, stages, engine, spill: Path | None = None) -> None:
-        self.bands, self.rows = plan["bands"], plan["rows"]
+    def __init__(self, params, plan: Plan, memory, stages, engine, spill: Path | None = None) -> None:
+        self.bands, self.rows = plan.bands, plan.rows
         # Bands read only the first b*r positions: k-permutation computes no more (its
         # positions are independent); oph fills no other empty bin.
         self.positions = self.bands * self.rows
@@ -212,52 +200,20 @@ class SignAndBand:
         return made.files, made.rows_written
 
 
-def choose_plan(sets: Membership | None, options: RunOptions, total_entities: int | None = None,
-                distinct_sets: int | None = None) -> dict:
-    """The plan, from exact Jaccard of a sample of ``sets`` (all entities, or a uniform sample
-    of ``total_entities``). Without two different sets (``distinct_sets``, when known) or
-    two entities, nothing is banded."""
-    if options.threshold >= 1.0:
-        return {"mode": "identical-only", "why": "threshold 1.0: only identical sets qualify; "
-                "they are grouped exactly, no signatures or bands are needed"}
-    if (total_entities or sets.size) < 2 or (distinct_sets is not None and distinct_sets < 2):
-        return {"mode": "identical-only", "why": "fewer than two different sets: only identical sets "
-                "can pair; they are grouped exactly, no signatures or bands are needed"}
+def plan_run(sets: Membership | None, options: RunOptions, total_entities: int | None = None,
+             distinct_sets: int | None = None) -> Plan:
+    """The run's plan (:func:`lshjob.plan.choose.choose_plan`), from exact Jaccard of a sample of
+    ``sets`` (all entities, or a uniform sample of ``total_entities``). Without two different
+    sets (``distinct_sets``, when known) or two entities, nothing is banded and nothing sampled."""
     n_entities = total_entities or sets.size
-    # Against a uniform sample of a fraction f of the entities, a sampled entity meets only
-    # a fraction f of its similar pairs: 1/f times as many sampled entities see as many pairs.
-    sample = min(sets.size, int(options.sample_size * n_entities / sets.size))
-    hist = similarity.sample_histogram_from_sets(sets, sample, seed=0, total_entities=n_entities,
-                                                 threshold=options.threshold)
-    if options.bands is not None:
-        perms = options.perms or 128
-        chosen = _judge(options.threshold, hist, perms, options.bands, options.rows)
-        why = f"given by --bands {options.bands} --rows {options.rows}"
-        mode = "explicit"
-    else:
-        choices = (options.perms,) if options.perms else planner.DEFAULT_PERMS_CHOICES
-        chosen = planner.data_plans(options.threshold, hist, choices, options.recall)[0].as_dict()
-        why = (f"data mode: fewest expected candidates with expected recall >= {options.recall}; exact "
-               f"Jaccard of {hist.sample_entities} sampled entities against "
-               f"{'all' if hist.design == 'against_all' else 'each other'} ({n_entities} entities"
-               + (f"; pairs scaled from a uniform sample of {sets.size}" if n_entities != sets.size else "") + ")")
-        mode = "data"
-    return {
-        "mode": mode,
-        "why": why,
-        "perms": chosen["perms"],
-        "bands": chosen["bands"],
-        "rows": chosen["rows"],
-        "predicted": chosen,
-        "sample": {"entities": hist.sample_entities, "design": hist.design,
-                   "identical_pairs": hist.identical_pairs,
-                   "pairs_at_or_above_threshold": hist.pairs_at_or_above(options.threshold)},
-    }
-
-
-def _judge(threshold, hist, perms, bands, rows) -> dict:
-    plans = planner.data_plans(threshold, hist, (perms,), recall=1e-9)
-    for p in plans:
-        if p.bands == bands and p.rows == rows:
-            return p.as_dict()
-    raise AssertionError("explicit plan missing from the enumeration")
+    distinct = min(n_entities, distinct_sets or n_entities)
+    hist = None
+    if options.threshold < 1.0 and distinct >= 2:
+        # Against a uniform sample of a fraction f of the entities, a sampled entity meets only
+        # a fraction f of its similar pairs: 1/f times as many sampled entities see as many pairs.
+        sample = min(sets.size, int(options.sample_size * n_entities / sets.size))
+        hist = similarity.sample_histogram_from_sets(sets, sample, seed=0, total_entities=n_entities,
+                                                     threshold=options.threshold)
+    return choose_plan(options.threshold, hist, perms=options.perms, bands=options.bands, rows=options.rows,
+                       recall=options.recall, max_candidates=options.max_candidates, runners_up=0,
+                       distinct_sets=distinct, seed=options.seed, scheme=options.scheme)

@@ -18,12 +18,11 @@ from __future__ import annotations
 
 import shutil
 import time
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict
 from pathlib import Path
 
-from lshjob.jobs import parts
-from lshjob.plan import banding as planner
 from lshjob.jobs import prepare
+from lshjob.jobs.options import RunOptions  # the run's Python API (declared with the options)
 from lshjob.runtime import provenance
 from lshjob.index import publish
 from lshjob.runtime import stopping
@@ -32,8 +31,7 @@ from lshjob.core.digest import digest_in_background
 from lshjob.errors import ParameterError
 from lshjob.runtime.folder_lock import output_lock
 from lshjob.ingest.spec import EventSpec, resolve_paths
-from lshjob.index import engines as stage_engines
-from lshjob.index.join import (DEFAULT_MAX_BUCKET, JoinSettings, duckdb_limit, duckdb_need, join_threads,
+from lshjob.index.join import (JoinSettings, duckdb_limit, duckdb_need, join_threads,
                                require_duckdb_memory)
 from lshjob.index.verify import VerifySettings, empty_verified
 from lshjob.ingest.loading import grouping_need, open_events
@@ -43,65 +41,6 @@ from lshjob.runtime.budget import (Budget, current_bytes, default_memory, parse_
                                    reset_peak)
 from lshjob.runtime.partitions import HeldSets
 from lshjob.runtime.workspace import remove_leftovers, work_folder
-from lshjob.sign.signatures import SignatureParams
-
-
-MAX_TOP_K = 2**31 - 1  # ranks are 32-bit
-
-
-@dataclass(frozen=True)
-class RunOptions:
-    threshold: float
-    top_k: int = 50
-    perms: int | None = None
-    bands: int | None = None
-    rows: int | None = None
-    recall: float = 0.95
-    sample_size: int = 2000
-    seed: int = 1
-    scheme: str = "kperm"
-    max_bucket: int = DEFAULT_MAX_BUCKET
-    max_candidates: float = 2e9
-    memory: str | None = None
-    parts: int | None = None  # key ranges held one at a time; None: as the memory budget needs
-    wait: float = 0.0  # seconds to wait for another run's lock on the output folder
-    scratch: str | None = None  # folder for the work folder (spill, parts); None: inside the output
-    # engine of each of the band, join and verify stages, by name (lshjob.index.engines)
-    engines: dict[str, str] = field(default_factory=lambda: dict(stage_engines.DEFAULT_ENGINES))
-
-    def validate(self) -> None:
-        if not 0.0 < self.threshold <= 1.0:
-            raise ParameterError(f"--threshold must be in (0, 1]; got {self.threshold}")
-        if not 1 <= self.top_k <= MAX_TOP_K:
-            raise ParameterError(f"--top-k must be from 1 to {MAX_TOP_K}; got {self.top_k}")
-        if not self.max_candidates >= 0:  # NaN fails too
-            raise ParameterError(f"--max-candidates must be 0 or more; got {self.max_candidates:g}")
-        if (self.bands is None) != (self.rows is None):
-            raise ParameterError("--bands and --rows go together; give both or neither")
-        if self.bands is not None:
-            planner.check_explicit(self.perms or 128, self.bands, self.rows)
-        if self.perms is not None and self.perms < 1:
-            raise ParameterError(f"--perms must be at least 1; got {self.perms}")
-        if self.max_bucket < 2:
-            raise ParameterError(f"--max-bucket must be at least 2; got {self.max_bucket}")
-        if self.sample_size < 2:
-            raise ParameterError(f"--sample-size must be at least 2; got {self.sample_size}")
-        if self.memory is not None:
-            parse_size(self.memory)
-        if self.parts is not None and self.parts < 1:
-            raise ParameterError(f"--parts must be at least 1; got {self.parts}")
-        if not self.wait >= 0:
-            raise ParameterError(f"--wait must be 0 or more seconds; got {self.wait}")
-        SignatureParams(scheme=self.scheme)
-        stage_engines.check_all(self.engines)
-
-    def engine_names(self) -> dict[str, str]:
-        """The engine of every stage (the default where the mapping leaves a stage out)."""
-        return {**stage_engines.DEFAULT_ENGINES, **self.engines}
-
-    def engine(self, stage: str):
-        """The engine chosen for ``stage``, its module imported now."""
-        return stage_engines.get_engine(stage, self.engine_names()[stage])
 
 
 def _verify_settings(memory: int) -> VerifySettings:
@@ -221,7 +160,7 @@ def run_job(
                                         threads=threads, max_bucket=options.max_bucket)
                 candidates = work / ("candidates" if in_parts else "candidates.parquet")
                 joined = options.engine("join").candidates(
-                    built.bucket_files, plan["bands"], candidates, settings, built.bucket_rows,
+                    built.bucket_files, plan.bands, candidates, settings, built.bucket_rows,
                     ranges=built.store.ranges if in_parts else None)
             skew = joined.skew
             counts["candidate_pairs"] = joined.pairs
@@ -242,7 +181,7 @@ def run_job(
         with stages("publish"):
             # blocks sized from what the budget leaves beside what the process holds
             release_freed()
-            expansion = publish.expand(verified, built.rep_of, top_k, plan.get("bands", 0),
+            expansion = publish.expand(verified, built.rep_of, top_k, plan.bands or 0,
                                        publish.block_rows(memory, current_bytes()))
             del verified
             publish.check_output(expansion.published_rows, built.keys, options.top_k, memory,
@@ -264,7 +203,7 @@ def run_job(
             options=asdict(options),
             top_k_effective=top_k,
             memory_budget_bytes=memory,
-            plan=plan,
+            plan=plan.to_dict(),
             engines=options.engine_names(),
             counts=counts,
             skew=skew,

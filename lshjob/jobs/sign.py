@@ -179,4 +179,4 @@ def _sign_summary(out, n, params, report, n_parts, started, ingested, signed, wr
     }
 
 
-from lshjob.jobs.plan import PlanResult, plan_banding  # noqa: E402,F401  (the API of lshjob plan)
+from lshjob.jobs.plan import plan_banding, plan_summary  # noqa: E402,F401  (the API of lshjob plan)

@@ -149,7 +149,9 @@ class PairHistogram:
 
     Pairs of identical sets are counted apart in ``identical_pairs``: the run collapses
     identical sets before banding and pairs them up afterwards, so banding neither finds
-    nor misses them.
+    nor misses them. ``source_entities``: how many entities the sample was drawn from (when
+    fewer than ``total_entities``, a uniform sample of them); ``basis``: how the similarities
+    were found (exact Jaccard, or signature estimates).
     """
 
     similarity: np.ndarray
@@ -160,6 +162,8 @@ class PairHistogram:
     design: str = "within"
     threshold: float | None = None
     at_or_above: np.ndarray | None = None
+    source_entities: int | None = None
+    basis: str = "exact Jaccard"
 
     def mask(self, threshold: float) -> np.ndarray:
         """Which entries hold pairs at or above ``threshold``. A histogram built for that

@@ -8,6 +8,8 @@ returns all m(m-1)/2 Jaccard similarities. Signature mode estimates them from si
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import polars as pl
 
@@ -302,11 +304,12 @@ def sample_histogram_from_sets(
             2.0 if threshold is None else threshold, min(len(picked), 2 * numba.get_num_threads()),
         )
         # factor rescales from the input's own entity count to the requested total.
-        return _make(counts, sums, len(picked), n_total, identical, "against_all", threshold,
+        hist = _make(counts, sums, len(picked), n_total, identical, "against_all", threshold,
                      factor=n_total / members.size)
-    picked = np.sort(order)
-    sims = _within_jaccard(members.subset(picked))
-    return histogram(sims, len(picked), n_total, threshold)
+    else:
+        picked = np.sort(order)
+        hist = histogram(_within_jaccard(members.subset(picked)), len(picked), n_total, threshold)
+    return replace(hist, source_entities=members.size)
 
 
 def sample_histogram_from_signatures(
@@ -320,5 +323,6 @@ def sample_histogram_from_signatures(
     """Estimated pair-similarity histogram of ``sample`` rows of a signature table."""
     picked = sample_keys(signatures["entity"], sample, seed)
     sub = signatures.filter(pl.col("entity").is_in(picked.implode())).sort("entity")
-    n_total = total_entities or signatures["entity"].n_unique()
-    return histogram(estimated_pair_similarities(sub, params), sub.height, n_total, threshold)
+    drawn_from = signatures["entity"].n_unique()
+    hist = histogram(estimated_pair_similarities(sub, params), sub.height, total_entities or drawn_from, threshold)
+    return replace(hist, source_entities=drawn_from, basis="signature estimates")

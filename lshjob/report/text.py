@@ -11,17 +11,18 @@ def _fmt(x: float) -> str:
     return f"{x:,.1f}" if x < 100 else f"{x:,.0f}"
 
 
-def plan_report(result) -> str:
-    """The chosen plan, runners-up and the S-curve, as plain text."""
-    t = result.threshold
-    if result.mode == "identical-only":
-        return f"identical-only mode: {result.chosen['why']}"
-    lines = [f"{result.mode} mode, threshold {t}: k={result.perms}, b={result.bands}, r={result.rows} "
-             f"(approximate threshold {result.chosen['approximate_threshold']:.3f})", ""]
-    if result.chosen.get("meets_target") is False:
-        lines[0] += f"; does NOT reach the recall target {result.sample['recall_target']}"
-    rows = [result.chosen, *result.runners_up]
-    if result.mode == "theory":
+def plan_report(summary: dict) -> str:
+    """The chosen plan, runners-up and the S-curve, as plain text (from
+    :func:`lshjob.jobs.plan.plan_summary`)."""
+    t, chosen = summary["threshold"], summary["chosen"]
+    if summary["mode"] == "identical-only":
+        return f"identical-only mode: {chosen['why']}"
+    lines = [f"{summary['mode']} mode, threshold {t}: k={summary['perms']}, b={summary['bands']}, r={summary['rows']} "
+             f"(approximate threshold {chosen['approximate_threshold']:.3f})", ""]
+    if chosen.get("meets_target") is False:
+        lines[0] += f"; does NOT reach the recall target {summary['sample']['recall_target']}"
+    rows = [chosen, *summary["runners_up"]]
+    if summary["sample"] is None:  # theory mode: areas under the S-curve
         header = f"{'':2}{'k':>5}{'b':>5}{'r':>4}{'FP area':>11}{'FN area':>11}{'weighted':>11}{'P(t)':>8}"
         lines.append(header)
         for i, p in enumerate(rows):
@@ -31,7 +32,7 @@ def plan_report(result) -> str:
                 f"{p['false_negative_area']:>11.5f}{p['weighted_error']:>11.5f}{p['probability_at_threshold']:>8.3f}"
             )
     else:
-        s = result.sample
+        s = summary["sample"]
         lines.append(
             f"sample: {s['sampled_entities']} of {s['total_entities']} entities from {s['path']} "
             f"({s['similarity']}); {s['sampled_pairs']:,} pairs, "
@@ -51,9 +52,9 @@ def plan_report(result) -> str:
                 f"{_fmt(p['expected_verified']):>12}{_fmt(p['expected_false_candidates']):>13}"
                 f"{p['bucket_rows']:>13,}"
             )
-        for note in result.chosen.get("notes", []):
+        for note in chosen.get("notes", []):
             lines.append(f"note: {note}")
-    lines += ["", text_s_curve(result.bands, result.rows, t)]
+    lines += ["", text_s_curve(summary["bands"], summary["rows"], t)]
     return "\n".join(lines)
 
 
