@@ -32,7 +32,8 @@ def shown_default(param) -> str | None:
 
 def test_cli_options_dataclass_fields_and_config_keys_are_the_same_names():
     # Oracle: the dataclasses' own fields (RunOptions, EventSpec) and typer's parameters.
-    api = {f.name for f in fields(RunOptions)} | set(SPEC_FIELDS) | {"events", "entity", "element", "out"}
+    # ``engines`` is chosen from the Python API only until a second engine brings its option.
+    api = {f.name for f in fields(RunOptions)} - {"engines"} | set(SPEC_FIELDS) | {"events", "entity", "element", "out"}
     assert set(cli_options()) == api == set(config_keys())
 
 
@@ -74,7 +75,7 @@ def test_every_config_key_takes_its_default(tmp_path):
     # Oracle: the Python API's defaults, written as TOML and read back (tomllib).
     values = asdict(RunOptions(threshold=0.5)) | {k: v for k, v in asdict(EventSpec("p", "t")).items()
                                                   if k in SPEC_FIELDS}
-    values = {k: v for k, v in values.items() if v is not None}
+    values = {k: v for k, v in values.items() if v is not None and k != "engines"}  # engines: API only
     body = "".join(f"{k.replace('_', '-')} = {json.dumps(v)}\n" for k, v in values.items())
     (tmp_path / "job.toml").write_text(body)
     assert load_run_config(tmp_path / "job.toml") == values

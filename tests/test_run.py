@@ -268,11 +268,12 @@ def test_verifying_in_slices_gives_the_same_index(tmp_path, demo_events, monkeyp
     run_job(src, SPEC, RunOptions(threshold=0.4), tmp_path / "whole")
     monkeypatch.setattr("lshjob.runtime.budget.MIN_VERIFY_SLICE", 50)
     monkeypatch.setattr("lshjob.runtime.budget.VERIFY_BYTES_PER_PAIR", 10**12)
-    import lshjob.jobs.parts
+    import lshjob.index.verify.local
 
     slices = []
-    real = lshjob.jobs.parts.verify_between
-    monkeypatch.setattr("lshjob.jobs.parts.verify_between", lambda chunk, *a: slices.append(chunk.height) or real(chunk, *a))
+    real = lshjob.index.verify.local.verify_between
+    monkeypatch.setattr("lshjob.index.verify.local.verify_between",
+                        lambda chunk, *a: slices.append(chunk.height) or real(chunk, *a))
     m = run_job(src, SPEC, RunOptions(threshold=0.4), tmp_path / "sliced")
     assert m["counts"]["candidate_pairs"] > 500  # many slices of 50
     assert max(slices) == 50 and sum(slices) == m["counts"]["candidate_pairs"]
