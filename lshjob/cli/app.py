@@ -21,6 +21,7 @@ from lshjob.demo.generate import check_options as check_demo_options, write_demo
 from lshjob.errors import ParameterError
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.report.text import audit_report, plan_report, run_report
+from lshjob.cli.refresh_command import register as register_refresh
 from lshjob.cli.failures import EXIT_CODES, ends_cleanly as _fail_cleanly, run_app, to_stdout
 from lshjob.ingest.spec import EventSpec
 from lshjob.runtime.outputs import demo_folder, output_file
@@ -355,6 +356,7 @@ def compile_kernels(quiet: Quiet = False, as_json: AsJson = False) -> None:
     _emit(summary, as_json, quiet, text + f"cache in {summary['cache_dir']}")
 
 
+register_refresh(app)  # refresh and history (lshjob.cli.refresh_command)
 for _command in app.registered_commands:  # every command's --help ends with the exit codes
     _command.epilog = _command.epilog or EXIT_CODES
 

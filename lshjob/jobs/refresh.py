@@ -156,7 +156,8 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     run_opts = options.run_options(plan)
     kept = {"perms": manifest["plan"].get("perms"), "bands": manifest["plan"].get("bands"),
             "rows": manifest["plan"].get("rows"), "seed": run_opts.seed, "scheme": run_opts.scheme,
-            "mode": manifest["plan"]["mode"], "threshold": options.threshold, "recall": options.recall,
+            "mode": manifest["plan"]["mode"] if rebuilt else state.plan["mode"],
+            "threshold": options.threshold, "recall": options.recall,
             "chosen_by": run_id if rebuilt else state.plan["chosen_by"]}
     for name, value in manifest["seconds"].items():
         seconds[f"run.{name}"] = value
@@ -289,3 +290,16 @@ def _link_or_copy(source: Path, target: Path) -> None:
 def _inside(path: Path, folder: Path) -> bool:
     path, folder = Path(os.path.realpath(path)), Path(os.path.realpath(folder))
     return path == folder or folder in path.parents
+
+
+def history(store: str | Path) -> dict:
+    """Every refresh of ``store``, oldest first: id, start and end, window, batch rows, changed
+    entities, seconds and peak memory per stage, plan, output SHA-256; and the versions kept."""
+    store = Path(store)
+    if not (store / catalog.CATALOG).is_file():
+        raise ParameterError(f"{store}: no {catalog.CATALOG}; is this a store made by lshjob refresh?")
+    state = catalog.read_state(store)
+    return {"store": str(store.absolute()), "runs": catalog.runs(store), "plan": state.plan,
+            "periods": [p.period.isoformat() for p in state.periods],
+            "versions": [{"run_id": v.run_id, "folder": str(store / store_files.VERSIONS / v.folder),
+                          "sha256": v.sha256, "rows": v.rows} for v in state.versions]}
