@@ -1,0 +1,182 @@
+"""lshjob refresh: a store of periods folded batch by batch gives, after every refresh, the
+index lshjob run builds from the window's events with the same plan.
+
+Oracles: the full run (:func:`lshjob.jobs.run.run_job`) on the window's events, cut from all
+events delivered so far with polars in the test, with the kept perms, bands, rows, seed and
+scheme; exact Jaccard of Python sets for every published pair; and the lock and catalog
+checked from outside (a lock held by the test, the catalog read back).
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import date
+
+import numpy as np
+import polars as pl
+import pytest
+from typer.testing import CliRunner
+
+from lshjob.cli.app import app
+from lshjob.demo.generate import generate_events
+from lshjob.ingest.spec import EventSpec
+from lshjob.jobs.refresh import RefreshOptions, history, refresh_job
+from lshjob.jobs.run import RunOptions, run_job
+from lshjob.runtime.folder_lock import output_lock
+from lshjob.store import catalog
+
+SPEC = EventSpec(entity="patron", element="title", time="borrowed_at", period="month")
+WINDOW = 3
+THRESHOLD = 0.3
+TOP_K = 8
+FIRST_BATCH_MONTH = 3  # the first batch holds what arrived up to March; then one batch a month
+
+
+def _library_batches(patrons: int = 100, seed: int = 11) -> tuple[list[pl.DataFrame], str, str]:
+    """Loans of the library network, cut into the batches they arrive in (months 3 to 8):
+    most arrive in their own month, some one or two months late (still in the window), a
+    few five months late (older than the window: dropped). Two patrons with the same loans
+    borrow only in January and February (they leave the window), two only from July on (new
+    entities); each pair's members are each other's neighbours while in the window."""
+    events, planted = generate_events(patrons, seed)
+    events = events.select("patron", "title", "borrowed_at")
+    members = planted.filter(pl.col("kind") == "group")["patron"].to_list()
+    leaving, arriving = members[0], members[-1]
+    month = pl.col("borrowed_at").dt.month()
+    events = events.filter(((pl.col("patron") != leaving) | (month <= 2))
+                           & ((pl.col("patron") != arriving) | (month >= 7)))
+    lag = np.random.default_rng(seed).choice([0, 1, 2, 5], size=events.height, p=[0.8, 0.1, 0.06, 0.04])
+    events = events.with_columns(arrival=(month + pl.Series(lag)).clip(FIRST_BATCH_MONTH))
+    twins = events.filter(pl.col("patron").is_in([leaving, arriving])).with_columns(pl.col("patron") + "-twin")
+    events = pl.concat([events, twins])
+    batches = [events.filter(pl.col("arrival") == m).drop("arrival") for m in range(FIRST_BATCH_MONTH, 9)]
+    return batches, leaving, arriving
+
+
+def _window_events(delivered: pl.DataFrame) -> tuple[pl.DataFrame, date]:
+    newest = delivered["borrowed_at"].dt.truncate("1mo").max().date()
+    first = date(newest.year, newest.month - WINDOW + 1, 1)
+    return delivered.filter(pl.col("borrowed_at").dt.date() >= first), first
+
+
+def _full_run(events: pl.DataFrame, plan: dict, folder) -> pl.DataFrame:
+    folder.mkdir(parents=True, exist_ok=True)
+    events.write_parquet(folder / "window.parquet")
+    run_job(folder / "window.parquet", EventSpec(entity="patron", element="title"),
+            RunOptions(threshold=THRESHOLD, top_k=TOP_K, perms=plan["perms"], bands=plan["bands"],
+                       rows=plan["rows"], seed=plan["seed"], scheme=plan["scheme"]), folder / "index")
+    return pl.read_parquet(folder / "index" / "neighbours.parquet")
+
+
+def _refresh(tmp_path, batch: pl.DataFrame, i: int, **kw) -> dict:
+    path = tmp_path / f"batch-{i}.parquet"
+    batch.write_parquet(path)
+    options = RefreshOptions(window=WINDOW, threshold=THRESHOLD, top_k=TOP_K, **kw)
+    return refresh_job(path, tmp_path / "store", SPEC, options, tmp_path / "index")
+
+
+def test_every_refresh_equals_the_full_run_on_the_window(tmp_path):
+    batches, leaving, arriving = _library_batches()
+    delivered = pl.DataFrame(schema=batches[0].schema)
+    seen_leaving = False
+    for i, batch in enumerate(batches):
+        before_newest = delivered["borrowed_at"].max()
+        delivered = pl.concat([delivered, batch])
+        window, first = _window_events(delivered)
+        manifest = _refresh(tmp_path, batch, i)
+        published = pl.read_parquet(tmp_path / "index" / "neighbours.parquet")
+        # Oracle: lshjob run on the window's events with the kept plan, every column bit for bit
+        expected = _full_run(window, manifest["plan"], tmp_path / f"oracle-{i}")
+        assert published.equals(expected), f"batch {i}: refresh differs from the full run"
+        assert published.height > 0
+        # Oracle: events of the batch before the window, counted with polars
+        older = batch.filter(pl.col("borrowed_at").dt.date() < first).height
+        assert manifest["refresh"]["rows_older_than_window"] == older
+        assert manifest["refresh"]["window_first"] == first.isoformat()
+        seen_leaving |= leaving in set(published["entity"])
+        if before_newest is not None and first > date(2026, 2, 1):
+            assert leaving not in set(published["entity"]) and leaving not in set(window["patron"])
+        assert (arriving in set(window["patron"])) == (i >= 4)
+        assert (arriving in set(published["entity"])) == (arriving in set(window["patron"]))
+    assert seen_leaving, "the leaving patron was never indexed: the test data lost its point"
+    assert sum(b.filter(pl.col("borrowed_at").dt.month() < 3).height for b in batches[1:]) > 0  # late, dropped
+    runs = history(tmp_path / "store")["runs"]
+    assert runs[0]["rebuilt"] and all(r["published"] for r in runs)
+    plans = [[r["plan"][k] for k in ("perms", "bands", "rows", "seed", "scheme")] for r in runs]
+    for before, after, run in zip(plans, plans[1:], runs[1:]):
+        assert (before == after) or (run["rebuilt"] and "recall" in run["why"]), run["why"]
+
+
+def test_published_jaccard_is_exact_set_jaccard(tmp_path):
+    # Oracle: Jaccard of Python sets |A & B| / |A | B| of the window's titles, for every row.
+    batches, _, _ = _library_batches(patrons=100, seed=3)
+    for i, batch in enumerate(batches[:2]):
+        _refresh(tmp_path, batch, i)
+    window, _ = _window_events(pl.concat(batches[:2]))
+    sets = {p: set(t) for p, t in window.group_by("patron").agg("title").iter_rows()}
+    published = pl.read_parquet(tmp_path / "index" / "neighbours.parquet")
+    assert published.height > 0
+    for a, b, j in published.select("entity", "neighbour", "jaccard").iter_rows():
+        assert j == len(sets[a] & sets[b]) / len(sets[a] | sets[b])
+        assert j >= THRESHOLD
+
+
+def test_a_second_refresh_on_a_held_store_exits_75(tmp_path):
+    batches, _, _ = _library_batches(patrons=100, seed=5)
+    path = tmp_path / "batch.parquet"
+    batches[0].write_parquet(path)
+    (tmp_path / "store").mkdir()
+    args = ["refresh", str(path), "--store", str(tmp_path / "store"), "--entity", "patron", "--element", "title",
+            "--time", "borrowed_at", "--period", "month", "--window", "3", "--threshold", "0.3",
+            "--out", str(tmp_path / "index")]
+    with output_lock(tmp_path / "store", what="store"):  # as a refresh holding the store would
+        result = CliRunner().invoke(app, args)
+    assert result.exit_code == 75, result.output
+    assert not (tmp_path / "index" / "neighbours.parquet").exists()
+    assert CliRunner().invoke(app, [*args, "--quiet"]).exit_code == 0
+
+
+def test_a_refresh_killed_before_the_catalog_leaves_the_store_readable(tmp_path, monkeypatch):
+    batches, _, _ = _library_batches(patrons=100, seed=7)
+    for i, batch in enumerate(batches[:2]):
+        _refresh(tmp_path, batch, i)
+    state = catalog.read_state(tmp_path / "store")
+    index_before = (tmp_path / "index" / "neighbours.parquet").read_bytes()
+
+    def killed(*args, **kwargs):
+        raise RuntimeError("killed between the files and the catalog")
+
+    with monkeypatch.context() as patched:
+        patched.setattr(catalog, "commit", killed)
+        with pytest.raises(RuntimeError):
+            _refresh(tmp_path, batches[2], 2)
+    # Oracle: the catalog read back, and the files it names with their SHA-256
+    assert catalog.read_state(tmp_path / "store") == state
+    assert (tmp_path / "index" / "neighbours.parquet").read_bytes() == index_before
+    from lshjob.store.files import check_files
+    assert check_files(tmp_path / "store", state) == []
+
+    manifest = _refresh(tmp_path, batches[2], 2)  # the same batch again: folding twice changes nothing
+    assert any("killed refresh" in w for w in manifest["warnings"])
+    window, _ = _window_events(pl.concat(batches[:3]))
+    expected = _full_run(window, manifest["plan"], tmp_path / "oracle")
+    assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(expected)
+
+
+def test_keep_retains_the_last_versions_and_history_lists_runs(tmp_path):
+    batches, _, _ = _library_batches(patrons=100, seed=5)
+    for i, batch in enumerate(batches[:4]):
+        _refresh(tmp_path, batch, i, keep=2)
+    found = history(tmp_path / "store")
+    runs = found["runs"]
+    assert len(runs) == 4
+    assert [v["run_id"] for v in found["versions"]] == [r["run_id"] for r in runs[-2:]]
+    kept = sorted(p.name for p in (tmp_path / "store" / "versions").iterdir())
+    assert kept == [r["run_id"] for r in runs[-2:]]
+    # Oracle: hashlib over the published file
+    import hashlib
+    digest = hashlib.sha256((tmp_path / "index" / "neighbours.parquet").read_bytes()).hexdigest()
+    assert runs[-1]["output_sha256"] == digest
+    result = CliRunner().invoke(app, ["history", str(tmp_path / "store"), "--json"])
+    assert result.exit_code == 0, result.output
+    assert [r["run_id"] for r in json.loads(result.output)["runs"]] == [r["run_id"] for r in runs]
