@@ -180,3 +180,47 @@ def test_keep_retains_the_last_versions_and_history_lists_runs(tmp_path):
     result = CliRunner().invoke(app, ["history", str(tmp_path / "store"), "--json"])
     assert result.exit_code == 0, result.output
     assert [r["run_id"] for r in json.loads(result.output)["runs"]] == [r["run_id"] for r in runs]
+
+
+@pytest.mark.parametrize("moment", ["index built"])  # the moment before the catalog; earlier: the test above
+def test_a_refresh_killed_with_sigkill_leaves_store_and_index_consistent(tmp_path, moment):
+    # Oracle: the catalog read back and its files' SHA-256; the index in place is one the
+    # store published; after the kill the next refresh equals the full run on the window.
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from lshjob.store.files import check_files
+
+    batches, _, _ = _library_batches(patrons=100, seed=13)
+    _refresh(tmp_path, batches[0], 0)
+    before = catalog.read_state(tmp_path / "store")
+    path = tmp_path / "batch-1.parquet"
+    batches[1].write_parquet(path)
+    args = [sys.executable, "-m", "lshjob.cli.app", "refresh", str(path), "--store", str(tmp_path / "store"),
+            "--entity", "patron", "--element", "title", "--time", "borrowed_at", "--period", "month",
+            "--window", str(WINDOW), "--threshold", str(THRESHOLD), "--top-k", str(TOP_K),
+            "--out", str(tmp_path / "index"), "--quiet"]
+    versions = tmp_path / "store" / "versions"
+    reached = {"window composed": lambda: (tmp_path / "store" / "work" / "window.parquet").exists(),
+               "index built": lambda: len(list(versions.iterdir())) > len(before.versions)}[moment]
+    child = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + 60
+    while not reached() and child.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.001)
+    os.kill(child.pid, signal.SIGKILL)
+    assert child.wait() == -signal.SIGKILL, "the refresh ended before the moment: nothing was tested"
+    after = catalog.read_state(tmp_path / "store")
+    assert after == before or after.versions[-1].run_id not in {v.run_id for v in before.versions}
+    assert check_files(tmp_path / "store", after) == []
+    published = (tmp_path / "index" / "neighbours.parquet").read_bytes()
+    kept = [(versions / v.folder / "neighbours.parquet").read_bytes() for v in after.versions + before.versions
+            if (versions / v.folder).exists()]
+    assert published in kept
+
+    manifest = _refresh(tmp_path, batches[1], 1)
+    window, _ = _window_events(pl.concat(batches[:2]))
+    expected = _full_run(window, manifest["plan"], tmp_path / "oracle")
+    assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(expected)
