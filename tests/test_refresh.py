@@ -224,3 +224,28 @@ def test_a_refresh_killed_with_sigkill_leaves_store_and_index_consistent(tmp_pat
     window, _ = _window_events(pl.concat(batches[:2]))
     expected = _full_run(window, manifest["plan"], tmp_path / "oracle")
     assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(expected)
+
+
+def test_period_signatures_fold_to_the_window_signature(tmp_path):
+    # Oracle: the signature of each patron's window set, built from Python sets of the raw
+    # events (sign_element_lists), equals the element-wise minimum of the store's period
+    # signatures (MinHash of a union = minimum of the parts' MinHash: Broder 1997).
+    from lshjob.sign.signatures import SignatureParams, sign_element_lists, signature_array
+
+    batches, _, _ = _library_batches(patrons=100, seed=17)
+    for i, batch in enumerate(batches[:3]):
+        manifest = _refresh(tmp_path, batch, i)
+    state = catalog.read_state(tmp_path / "store")
+    tables = [pl.read_parquet(tmp_path / "store" / p.signatures_file) for p in state.periods]
+    stacked = pl.concat([t.select("entity", "signature") for t in tables])
+    patrons = sorted(set(stacked["entity"]))
+    folded = {}
+    for entity, group in stacked.group_by("entity"):
+        folded[entity[0]] = signature_array(group).min(axis=0)
+    window, _ = _window_events(pl.concat(batches[:3]))
+    sets = {p: sorted(set(t)) for p, t in window.group_by("patron").agg("title").iter_rows()}
+    assert sorted(sets) == patrons
+    plan = manifest["plan"]
+    params = SignatureParams(scheme=plan["scheme"], perms=plan["perms"], seed=plan["seed"])
+    expected = sign_element_lists([sets[p] for p in patrons], params)
+    assert np.array_equal(np.stack([folded[p] for p in patrons]), expected)
