@@ -79,6 +79,7 @@ def test_every_refresh_equals_the_full_run_on_the_window(tmp_path):
     batches, leaving, arriving = _library_batches()
     delivered = pl.DataFrame(schema=batches[0].schema)
     seen_leaving = False
+    sets_before: dict[str, set] = {}
     for i, batch in enumerate(batches):
         before_newest = delivered["borrowed_at"].max()
         delivered = pl.concat([delivered, batch])
@@ -93,6 +94,11 @@ def test_every_refresh_equals_the_full_run_on_the_window(tmp_path):
         older = batch.filter(pl.col("borrowed_at").dt.date() < first).height
         assert manifest["refresh"]["rows_older_than_window"] == older
         assert manifest["refresh"]["window_first"] == first.isoformat()
+        # Oracle: Python sets of the window before and after; an entity changed if its set did
+        sets_after = {p: set(t) for p, t in window.group_by("patron").agg("title").iter_rows()}
+        changed = {e for e in sets_before.keys() | sets_after.keys() if sets_before.get(e) != sets_after.get(e)}
+        assert manifest["refresh"]["changed_entities"] == len(changed)
+        sets_before = sets_after
         seen_leaving |= leaving in set(published["entity"])
         if before_newest is not None and first > date(2026, 2, 1):
             assert leaving not in set(published["entity"]) and leaving not in set(window["patron"])

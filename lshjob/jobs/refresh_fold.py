@@ -112,14 +112,14 @@ def fold(store: Path, state: State, batch: Batch, run_id: str) -> Folded:
 
 def changed_entities(store: Path, before: list[Period], after: list[Period], fresh: dict[date, pl.DataFrame]) -> int:
     """Entities whose window set differs between the two windows (a pair gained or lost)."""
-    def pairs(periods: list[Period]) -> pl.LazyFrame:
-        frames = [fresh[p.period].lazy() if p.period in fresh else store_files.scan_tables(store, [p.sets_file])
+    def pairs(periods: list[Period], new: bool) -> pl.LazyFrame:
+        frames = [fresh[p.period].lazy() if new and p.period in fresh else store_files.scan_tables(store, [p.sets_file])
                   for p in periods]
         return pl.concat(frames, how="vertical").unique(PAIR) if frames else pl.LazyFrame(schema=_schema(fresh))
 
     if not before:
-        return int(pairs(after).select(pl.col("entity").n_unique()).collect().item())
-    old, new = pairs(before), pairs(after)
+        return int(pairs(after, True).select(pl.col("entity").n_unique()).collect().item())
+    old, new = pairs(before, False), pairs(after, True)
     gained = new.join(old, on=PAIR, how="anti").select("entity")
     lost = old.join(new, on=PAIR, how="anti").select("entity")
     return int(pl.concat([gained, lost]).select(pl.col("entity").n_unique()).collect().item())
