@@ -80,6 +80,7 @@ def test_every_refresh_equals_the_full_run_on_the_window(tmp_path):
     delivered = pl.DataFrame(schema=batches[0].schema)
     seen_leaving = False
     sets_before: dict[str, set] = {}
+    pairs_before: set[tuple[str, str]] = set()
     for i, batch in enumerate(batches):
         before_newest = delivered["borrowed_at"].max()
         delivered = pl.concat([delivered, batch])
@@ -99,6 +100,11 @@ def test_every_refresh_equals_the_full_run_on_the_window(tmp_path):
         changed = {e for e in sets_before.keys() | sets_after.keys() if sets_before.get(e) != sets_after.get(e)}
         assert manifest["refresh"]["changed_entities"] == len(changed)
         sets_before = sets_after
+        # Oracle: unordered pairs of the published files, as Python sets
+        pairs_after = {tuple(sorted(r)) for r in published.select("entity", "neighbour").iter_rows()}
+        assert manifest["refresh"]["pairs_added"] == len(pairs_after - pairs_before)
+        assert manifest["refresh"]["pairs_removed"] == len(pairs_before - pairs_after)
+        pairs_before = pairs_after
         seen_leaving |= leaving in set(published["entity"])
         if before_newest is not None and first > date(2026, 2, 1):
             assert leaving not in set(published["entity"]) and leaving not in set(window["patron"])

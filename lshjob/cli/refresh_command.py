@@ -45,7 +45,8 @@ def refresh_text(manifest: dict) -> str:
             f"with events, {r['window_rows']} membership rows)\n"
             f"batch: {r['batch_rows']} events; {r['rows_older_than_window']} older than the window dropped; "
             f"{r['periods_changed']} period(s) changed, {r['periods_expired']} expired; "
-            f"{r['changed_entities']} entities changed\n"
+            f"{r['changed_entities']} entities changed; {r['pairs_added']} pairs added, "
+            f"{r['pairs_removed']} removed\n"
             f"plan: {banding} ({r['why']})\n"
             f"{manifest['output']['rows']} neighbour rows of {manifest['counts']['entities']} entities -> "
             f"{manifest['out']} in {manifest['seconds']['refresh']['total']} s")

@@ -37,6 +37,8 @@ import time
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
+import polars as pl
+
 from lshjob.errors import ParameterError
 from lshjob.index import publish
 from lshjob.ingest.spec import PERIODS, EventSpec
@@ -166,6 +168,8 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     for name, value in manifest["seconds"].items():
         seconds[f"run.{name}"] = value
 
+    previous = store / store_files.VERSIONS / state.versions[-1].folder if state.versions else None
+    added, removed = _pair_changes(previous, built)
     tick = time.perf_counter()
     stored = _store_periods(store, folded, kept, rebuilt, run_id, {f.path: f for f in state.files})
     seconds["sign_periods"] = round(time.perf_counter() - tick, 3)
@@ -176,6 +180,7 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
                "window_rows": window_rows, "batch_rows": batch.rows_read,
                "null_rows_dropped": batch.null_rows_dropped,
                "rows_older_than_window": batch.rows_older_than_window, "changed_entities": changed,
+               "pairs_added": added, "pairs_removed": removed,
                "periods_changed": len(folded.changed), "periods_expired": len(folded.expired),
                "rebuilt": rebuilt, "why": why or "kept plan", "design": "full run over the window"}
     manifest = dict(manifest, command=list(command) if command is not None else None,
@@ -196,7 +201,8 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     run = dict(run_id=run_id, started_at=provenance.iso(started_at), finished_at=provenance.iso(provenance.utc_now()),
                window_first=batch.window_first, window_last=batch.window_last, window_periods=len(folded.periods),
                batch_rows=batch.rows_read, rows_older_than_window=batch.rows_older_than_window,
-               changed_entities=changed, periods_changed=len(folded.changed), periods_expired=len(folded.expired),
+               changed_entities=changed, pairs_added=added, pairs_removed=removed,
+               periods_changed=len(folded.changed), periods_expired=len(folded.expired),
                entities=manifest["counts"]["entities"], rebuilt=rebuilt, why=summary["why"], seconds=seconds["total"],
                stage_seconds=seconds, peak_memory_bytes=manifest["peak_memory_bytes"], plan=kept,
                output_sha256=manifest["output"]["sha256"], published_rows=manifest["output"]["rows"],
@@ -216,6 +222,25 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     catalog.mark_published(store, run_id)
     manifest["seconds"] = dict(manifest["seconds"], refresh=seconds)
     return manifest
+
+
+def _pair_changes(previous: Path | None, built: Path) -> tuple[int, int]:
+    """Unordered pairs of the published index added and removed since the previous version
+    (all of them added on a first refresh)."""
+    def pairs(folder: Path) -> pl.LazyFrame:
+        rows = pl.scan_parquet(folder / publish.NEIGHBOURS)
+        return rows.select(pl.min_horizontal("entity", "neighbour").alias("a"),
+                           pl.max_horizontal("entity", "neighbour").alias("b")).unique()
+
+    new = pairs(built)
+    if previous is None:
+        return int(new.select(pl.len()).collect().item()), 0
+    old = pairs(previous)
+
+    def only_in(x: pl.LazyFrame, y: pl.LazyFrame) -> int:
+        return int(x.join(y, on=["a", "b"], how="anti").select(pl.len()).collect().item())
+
+    return only_in(new, old), only_in(old, new)
 
 
 def _plan_to_use(kept: dict | None, options: RefreshOptions) -> tuple[dict | None, str | None]:

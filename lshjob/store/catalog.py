@@ -48,13 +48,15 @@ CREATE TABLE IF NOT EXISTS versions (run_id VARCHAR NOT NULL, folder VARCHAR, sh
 CREATE TABLE IF NOT EXISTS runs (run_id VARCHAR NOT NULL, started_at VARCHAR, finished_at VARCHAR,
                                  window_first DATE, window_last DATE, window_periods INTEGER,
                                  batch_rows BIGINT, rows_older_than_window BIGINT, changed_entities BIGINT,
+                                 pairs_added BIGINT, pairs_removed BIGINT,
                                  periods_changed INTEGER, periods_expired INTEGER, entities BIGINT,
                                  rebuilt BOOLEAN, why VARCHAR, seconds DOUBLE, stage_seconds VARCHAR,
                                  peak_memory_bytes VARCHAR, plan VARCHAR, output_sha256 VARCHAR,
                                  published_rows BIGINT, published BOOLEAN, out VARCHAR);
 """
 RUN_COLUMNS = ("run_id", "started_at", "finished_at", "window_first", "window_last", "window_periods",
-               "batch_rows", "rows_older_than_window", "changed_entities", "periods_changed", "periods_expired",
+               "batch_rows", "rows_older_than_window", "changed_entities", "pairs_added", "pairs_removed",
+               "periods_changed", "periods_expired",
                "entities", "rebuilt", "why", "seconds", "stage_seconds", "peak_memory_bytes", "plan",
                "output_sha256", "published_rows", "published", "out")
 JSON_COLUMNS = ("stage_seconds", "peak_memory_bytes", "plan")
