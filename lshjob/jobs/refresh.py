@@ -183,10 +183,13 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
                "pairs_added": added, "pairs_removed": removed,
                "periods_changed": len(folded.changed), "periods_expired": len(folded.expired),
                "rebuilt": rebuilt, "why": why or "kept plan", "design": "full run over the window"}
+    seconds["total"] = round(time.perf_counter() - started, 3)  # to the index built and the store's files written
     manifest = dict(manifest, command=list(command) if command is not None else None,
                     plan=dict(manifest["plan"], seed=kept["seed"], scheme=kept["scheme"]),
                     out=str(out.absolute()), run_id=run_id, started_at=provenance.iso(started_at),
-                    refresh=summary, warnings=warnings + manifest["warnings"])
+                    refresh=summary, warnings=warnings + manifest["warnings"],
+                    seconds=dict(manifest["seconds"], refresh=seconds))
+    manifest = json.loads(json.dumps(manifest, default=str))  # what the file holds, exactly
     version = store / store_files.VERSIONS / run_id
     _write_json(built / publish.MANIFEST, manifest)
     version.parent.mkdir(parents=True, exist_ok=True)
@@ -197,7 +200,6 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     dropped_versions = [v for v in state.versions if v not in versions]
     new_state = catalog.State(facts=dict(_facts(spec), **batch.key_types), plan=kept, periods=stored["periods"],
                               files=stored["files"], versions=versions)
-    seconds["total"] = round(time.perf_counter() - started, 3)
     run = dict(run_id=run_id, started_at=provenance.iso(started_at), finished_at=provenance.iso(provenance.utc_now()),
                window_first=batch.window_first, window_last=batch.window_last, window_periods=len(folded.periods),
                batch_rows=batch.rows_read, rows_older_than_window=batch.rows_older_than_window,
@@ -220,7 +222,6 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
         publish.commit_index(out, manifest)
         stopping.mark_published()
     catalog.mark_published(store, run_id)
-    manifest["seconds"] = dict(manifest["seconds"], refresh=seconds)
     return manifest
 
 
