@@ -30,7 +30,6 @@ from lshjob.store.catalog import CATALOG, State, StoredFile
 PERIODS = "periods"
 VERSIONS = "versions"
 WORK = "work"
-LOCK_AND_CATALOG = (CATALOG, f"{CATALOG}.wal", ".lshjob.lock")
 
 
 def sha256_of(path: Path) -> str:
