@@ -261,3 +261,25 @@ def test_period_signatures_fold_to_the_window_signature(tmp_path):
     params = SignatureParams(scheme=plan["scheme"], perms=plan["perms"], seed=plan["seed"])
     expected = sign_element_lists([sets[p] for p in patrons], params)
     assert np.array_equal(np.stack([folded[p] for p in patrons]), expected)
+
+
+def test_config_file_and_refusals(tmp_path):
+    # Oracle: the index the same refresh publishes from flags (row for row), and the exit
+    # codes of lshjob.errors for bad options.
+    batches, _, _ = _library_batches(patrons=100, seed=5)
+    batches[0].write_parquet(tmp_path / "loans.parquet")
+    (tmp_path / "nightly.toml").write_text(
+        'events = "loans.parquet"\nstore = "store"\nout = "index"\nentity = "patron"\nelement = "title"\n'
+        f'time = "borrowed_at"\nperiod = "month"\nwindow = {WINDOW}\nthreshold = {THRESHOLD}\ntop-k = {TOP_K}\n')
+    result = CliRunner().invoke(app, ["refresh", "--config", str(tmp_path / "nightly.toml"), "--json"])
+    assert result.exit_code == 0, result.output
+    assert json.loads(result.output)["plan"]["scheme"] == "kperm"
+    (tmp_path / "flags").mkdir()
+    _refresh(tmp_path / "flags", batches[0], 0)
+    assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(
+        pl.read_parquet(tmp_path / "flags" / "index" / "neighbours.parquet"))
+    week = CliRunner().invoke(app, ["refresh", "--config", str(tmp_path / "nightly.toml"), "--period", "week"])
+    assert week.exit_code == 2 and "keeps month periods" in week.output
+    (tmp_path / "bad.toml").write_text('windows = 3\n')
+    bad = CliRunner().invoke(app, ["refresh", "--config", str(tmp_path / "bad.toml")])
+    assert bad.exit_code == 2 and "unknown key 'windows'" in bad.output
