@@ -143,6 +143,9 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     window_rows = folding.write_window(store, folded.periods, folded.changed, spec, window_path)
     changed = folding.changed_entities(store, state.periods, folded.periods, folded.changed)
     seconds["fold"] = round(time.perf_counter() - tick, 3)
+    if state.periods and len(folded.expired) == len(state.periods):
+        warnings.append(f"the window moved past every period the store held (the newest event is in the period "
+                        f"of {batch.window_last.isoformat()}): all {len(state.periods)} expired")
     if batch.rows_older_than_window:
         warnings.append(f"{batch.rows_older_than_window} event(s) older than the window (before "
                         f"{batch.window_first.isoformat()}) were dropped")
