@@ -172,6 +172,7 @@ def test_a_refresh_killed_before_the_catalog_leaves_the_store_readable(tmp_path,
     assert any("killed refresh" in w for w in manifest["warnings"])
     window, _ = _window_events(pl.concat(batches[:3]))
     expected = _full_run(window, manifest["plan"], tmp_path / "oracle")
+    assert expected.height > 0 and expected["entity"].dtype == pl.Int64
     assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(expected)
 
 
@@ -235,6 +236,7 @@ def test_a_refresh_killed_with_sigkill_leaves_store_and_index_consistent(tmp_pat
     manifest = _refresh(tmp_path, batches[1], 1)
     window, _ = _window_events(pl.concat(batches[:2]))
     expected = _full_run(window, manifest["plan"], tmp_path / "oracle")
+    assert expected.height > 0 and expected["entity"].dtype == pl.Int64
     assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(expected)
 
 
@@ -283,3 +285,28 @@ def test_config_file_and_refusals(tmp_path):
     (tmp_path / "bad.toml").write_text('windows = 3\n')
     bad = CliRunner().invoke(app, ["refresh", "--config", str(tmp_path / "bad.toml")])
     assert bad.exit_code == 2 and "unknown key 'windows'" in bad.output
+
+
+def test_weekly_periods_with_integer_keys_equal_the_full_run(tmp_path):
+    # Oracle: the full run on the events of the newest 4 ISO weeks (Monday starts, cut with
+    # Python's datetime in the test), with the kept plan.
+    from datetime import datetime, timedelta
+
+    rng = np.random.default_rng(21)
+    n = 6000
+    start = datetime(2026, 3, 2)  # a Monday
+    events = pl.DataFrame({"patron": rng.integers(0, 150, n), "title": rng.integers(0, 60, n),
+                           "borrowed_at": [start + timedelta(hours=int(h)) for h in rng.integers(0, 24 * 7 * 9, n)]})
+    spec = EventSpec(entity="patron", element="title", time="borrowed_at", period="week")
+    options = RefreshOptions(window=4, threshold=THRESHOLD, top_k=TOP_K)
+    week = (pl.col("borrowed_at") - pl.lit(start)).dt.total_days() // 7
+    for w in range(0, 9, 3):
+        batch = events.filter((week >= w) & (week < w + 3))
+        batch.write_parquet(tmp_path / f"w{w}.parquet")
+        manifest = refresh_job(tmp_path / f"w{w}.parquet", tmp_path / "store", spec, options, tmp_path / "index")
+    first = start + timedelta(weeks=8 - 3)
+    assert manifest["refresh"]["window_first"] == first.date().isoformat()
+    window = events.filter(pl.col("borrowed_at") >= first)
+    expected = _full_run(window, manifest["plan"], tmp_path / "oracle")
+    assert expected.height > 0 and expected["entity"].dtype == pl.Int64
+    assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(expected)
