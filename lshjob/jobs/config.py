@@ -28,8 +28,9 @@ RUN_KEYS = config_keys()  # from the declared options (lshjob.jobs.options)
 PATH_KEYS = ("events", "out", "scratch")  # relative to the configuration file's folder
 
 
-def load_run_config(path: str | Path) -> dict:
-    """Read and check a run configuration; keys normalised to underscores."""
+def load_run_config(path: str | Path, known: dict = RUN_KEYS, path_keys: tuple = PATH_KEYS) -> dict:
+    """Read and check a run configuration (``known``: another command's keys and types);
+    keys normalised to underscores."""
     path = Path(path)
     if not path.is_file():
         raise ParameterError(f"{path}: no such configuration file")
@@ -50,15 +51,15 @@ def load_run_config(path: str | Path) -> dict:
         if name in spelled:
             raise ParameterError(f"{path}: {spelled[name]} and {key} are the same option; keep one")
         spelled[name] = key
-        if name not in RUN_KEYS:
+        if name not in known:
             raise ParameterError(
-                f"{path}: unknown key {key!r}; known keys are: {', '.join(k.replace('_', '-') for k in RUN_KEYS)}"
+                f"{path}: unknown key {key!r}; known keys are: {', '.join(k.replace('_', '-') for k in known)}"
             )
-        if not isinstance(value, RUN_KEYS[name]) or isinstance(value, bool):
+        if not isinstance(value, known[name]) or isinstance(value, bool):
             shown = repr(value) if isinstance(value, str) else key_text((value,))
-            raise ParameterError(f"{path}: key {key!r} has value {shown}; expected {_kind(RUN_KEYS[name])}")
+            raise ParameterError(f"{path}: key {key!r} has value {shown}; expected {_kind(known[name])}")
         config[name] = value
-    for name in PATH_KEYS:
+    for name in path_keys:
         if name in config:
             if not config[name].strip():  # joined to the file's folder, it would name that folder
                 raise ParameterError(f"{path}: key {spelled[name]!r} is empty; give a path")

@@ -1,0 +1,1 @@
+"""The refresh store: per-period sets and signatures in Parquet files, and a DuckDB catalog."""

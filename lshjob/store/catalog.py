@@ -1,0 +1,208 @@
+"""The store's catalog: one DuckDB database file, ``STORE/catalog.duckdb``, changed only in
+one transaction per refresh.
+
+It says which files make the store (everything else under the store folder is a dead
+refresh's and is removed by the next one), with their SHA-256, and holds the kept plan, the
+periods of the window and the record of every refresh. DuckDB's write-ahead log makes the
+transaction all or nothing, so a refresh killed at any moment leaves the catalog of the
+previous refresh, or of this one, never a mixture.
+
+Tables (all written whole by :func:`commit`, except ``runs`` which only grows):
+
+* ``facts(key, value)``: what the store was made with (columns, period unit, key types),
+  text or JSON;
+* ``plan(perms, bands, rows, seed, scheme, mode, threshold, recall, chosen_by)``: the kept
+  plan, one row or none;
+* ``periods(period, sets_file, signatures_file, entities, membership_rows, run_id)``: one
+  row per period of the window;
+* ``files(path, kind, sha256, bytes, run_id)``: every file of the store (paths relative to
+  the store folder);
+* ``versions(run_id, folder, sha256, rows)``: the published indexes kept (``--keep``);
+* ``runs(...)``: one row per refresh (:data:`RUN_COLUMNS`).
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from datetime import date
+from pathlib import Path
+
+import duckdb
+
+from lshjob.errors import Busy, InputError
+
+CATALOG = "catalog.duckdb"
+OPEN_ATTEMPTS = 50  # a reader meeting a writer's file lock tries again for about 5 s
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS facts (key VARCHAR NOT NULL, value VARCHAR);
+CREATE TABLE IF NOT EXISTS plan (perms INTEGER, bands INTEGER, "rows" INTEGER, seed BIGINT, scheme VARCHAR,
+                                 mode VARCHAR, threshold DOUBLE, recall DOUBLE, chosen_by VARCHAR);
+CREATE TABLE IF NOT EXISTS periods (period DATE NOT NULL, sets_file VARCHAR NOT NULL, signatures_file VARCHAR,
+                                    entities BIGINT, membership_rows BIGINT, run_id VARCHAR);
+CREATE TABLE IF NOT EXISTS files (path VARCHAR NOT NULL, kind VARCHAR, sha256 VARCHAR, bytes BIGINT, run_id VARCHAR);
+CREATE TABLE IF NOT EXISTS versions (run_id VARCHAR NOT NULL, folder VARCHAR, sha256 VARCHAR, "rows" BIGINT);
+CREATE TABLE IF NOT EXISTS runs (run_id VARCHAR NOT NULL, started_at VARCHAR, finished_at VARCHAR,
+                                 window_first DATE, window_last DATE, window_periods INTEGER,
+                                 batch_rows BIGINT, rows_older_than_window BIGINT, changed_entities BIGINT,
+                                 pairs_added BIGINT, pairs_removed BIGINT,
+                                 periods_changed INTEGER, periods_expired INTEGER, entities BIGINT,
+                                 rebuilt BOOLEAN, why VARCHAR, seconds DOUBLE, stage_seconds VARCHAR,
+                                 peak_memory_bytes VARCHAR, plan VARCHAR, output_sha256 VARCHAR,
+                                 published_rows BIGINT, published BOOLEAN, out VARCHAR);
+"""
+RUN_COLUMNS = ("run_id", "started_at", "finished_at", "window_first", "window_last", "window_periods",
+               "batch_rows", "rows_older_than_window", "changed_entities", "pairs_added", "pairs_removed",
+               "periods_changed", "periods_expired",
+               "entities", "rebuilt", "why", "seconds", "stage_seconds", "peak_memory_bytes", "plan",
+               "output_sha256", "published_rows", "published", "out")
+JSON_COLUMNS = ("stage_seconds", "peak_memory_bytes", "plan")
+
+
+@dataclass(frozen=True)
+class Period:
+    period: date
+    sets_file: str
+    signatures_file: str | None
+    entities: int
+    membership_rows: int
+    run_id: str
+
+
+@dataclass(frozen=True)
+class StoredFile:
+    path: str
+    kind: str
+    sha256: str
+    bytes: int
+    run_id: str
+
+
+@dataclass(frozen=True)
+class Version:
+    run_id: str
+    folder: str
+    sha256: str
+    rows: int
+
+
+@dataclass
+class State:
+    """What the catalog holds (an empty store: all empty)."""
+
+    facts: dict[str, str] = field(default_factory=dict)
+    plan: dict | None = None
+    periods: list[Period] = field(default_factory=list)
+    files: list[StoredFile] = field(default_factory=list)
+    versions: list[Version] = field(default_factory=list)
+
+
+@contextmanager
+def connection(store: Path, read_only: bool = False):
+    """A connection to the store's catalog, closed on leaving. A reader waits a few seconds
+    while a refresh holds the file (DuckDB lets one process write it at a time)."""
+    path = Path(store) / CATALOG
+    if read_only and not path.is_file():
+        raise InputError(f"{store}: no {CATALOG}; is this a store made by lshjob refresh?")
+    for attempt in range(OPEN_ATTEMPTS):
+        try:
+            con = duckdb.connect(str(path), read_only=read_only)
+            break
+        except duckdb.IOException as exc:
+            if "lock" not in str(exc).lower() or attempt == OPEN_ATTEMPTS - 1:
+                if "lock" in str(exc).lower():
+                    raise Busy(f"{path}: the catalog is held by a refresh; retry later") from None
+                raise InputError(f"{path}: not a readable catalog ({exc})") from None
+            time.sleep(0.1)
+    try:
+        if not read_only:
+            con.execute(SCHEMA)
+        yield con
+    finally:
+        con.close()
+
+
+def read_state(store: Path) -> State:
+    """The catalog's state; an empty State when the store has no catalog yet."""
+    if not (Path(store) / CATALOG).is_file():
+        return State()
+    with connection(store, read_only=True) as con:
+        return _state(con)
+
+
+def _state(con) -> State:
+    state = State()
+    state.facts = dict(con.execute("SELECT key, value FROM facts").fetchall())
+    plan = con.execute('SELECT perms, bands, "rows", seed, scheme, mode, threshold, recall, chosen_by FROM plan'
+                       ).fetchall()
+    if plan:
+        state.plan = dict(zip(("perms", "bands", "rows", "seed", "scheme", "mode", "threshold", "recall",
+                               "chosen_by"), plan[0]))
+    state.periods = [Period(*row) for row in con.execute(
+        "SELECT period, sets_file, signatures_file, entities, membership_rows, run_id FROM periods ORDER BY period"
+    ).fetchall()]
+    state.files = [StoredFile(*row) for row in con.execute(
+        "SELECT path, kind, sha256, bytes, run_id FROM files ORDER BY path").fetchall()]
+    state.versions = [Version(*row) for row in con.execute(
+        'SELECT run_id, folder, sha256, "rows" FROM versions ORDER BY run_id').fetchall()]
+    return state
+
+
+def commit(store: Path, state: State, run: dict) -> None:
+    """Replace the catalog's state by ``state`` and add ``run`` to the runs, in one transaction."""
+    with connection(store) as con:
+        con.execute("BEGIN TRANSACTION")
+        try:
+            for table in ("facts", "plan", "periods", "files", "versions"):
+                con.execute(f"DELETE FROM {table}")  # noqa: S608 (fixed names)
+            if state.facts:
+                con.executemany("INSERT INTO facts VALUES (?, ?)", list(state.facts.items()))
+            if state.plan is not None:
+                p = state.plan
+                con.execute("INSERT INTO plan VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                            [p["perms"], p["bands"], p["rows"], p["seed"], p["scheme"], p["mode"], p["threshold"],
+                             p["recall"], p["chosen_by"]])
+            if state.periods:
+                con.executemany("INSERT INTO periods VALUES (?, ?, ?, ?, ?, ?)",
+                                [list(p.__dict__.values()) for p in state.periods])
+            if state.files:
+                con.executemany("INSERT INTO files VALUES (?, ?, ?, ?, ?)",
+                                [list(f.__dict__.values()) for f in state.files])
+            if state.versions:
+                con.executemany("INSERT INTO versions VALUES (?, ?, ?, ?)",
+                                [list(v.__dict__.values()) for v in state.versions])
+            row = [json.dumps(run[c], sort_keys=True) if c in JSON_COLUMNS else run.get(c) for c in RUN_COLUMNS]
+            con.execute(f"INSERT INTO runs VALUES ({', '.join('?' * len(RUN_COLUMNS))})", row)
+            con.execute("COMMIT")
+        except BaseException:
+            con.execute("ROLLBACK")
+            raise
+
+
+def mark_published(store: Path, run_id: str) -> None:
+    """Record that ``run_id``'s index is in place in its output folder."""
+    with connection(store) as con:
+        con.execute("UPDATE runs SET published = TRUE WHERE run_id = ?", [run_id])
+
+
+def runs(store: Path) -> list[dict]:
+    """Every refresh recorded, oldest first (JSON columns decoded, dates in ISO form)."""
+    with connection(store, read_only=True) as con:
+        rows = con.execute(f"SELECT {', '.join(_quoted(c) for c in RUN_COLUMNS)} FROM runs ORDER BY started_at, run_id"
+                           ).fetchall()
+    found = []
+    for row in rows:
+        record = dict(zip(RUN_COLUMNS, row))
+        for c in JSON_COLUMNS:
+            record[c] = json.loads(record[c]) if record[c] is not None else None
+        for c in ("window_first", "window_last"):
+            record[c] = record[c].isoformat() if record[c] is not None else None
+        found.append(record)
+    return found
+
+
+def _quoted(name: str) -> str:
+    return f'"{name}"'
