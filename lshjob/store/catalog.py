@@ -44,7 +44,8 @@ CREATE TABLE IF NOT EXISTS plan (perms INTEGER, bands INTEGER, "rows" INTEGER, s
 CREATE TABLE IF NOT EXISTS periods (period DATE NOT NULL, sets_file VARCHAR NOT NULL, signatures_file VARCHAR,
                                     entities BIGINT, membership_rows BIGINT, run_id VARCHAR);
 CREATE TABLE IF NOT EXISTS files (path VARCHAR NOT NULL, kind VARCHAR, sha256 VARCHAR, bytes BIGINT, run_id VARCHAR);
-CREATE TABLE IF NOT EXISTS versions (run_id VARCHAR NOT NULL, folder VARCHAR, sha256 VARCHAR, "rows" BIGINT);
+CREATE TABLE IF NOT EXISTS versions (run_id VARCHAR NOT NULL, folder VARCHAR, sha256 VARCHAR, "rows" BIGINT,
+                                     "position" BIGINT);
 CREATE TABLE IF NOT EXISTS runs (run_id VARCHAR NOT NULL, started_at VARCHAR, finished_at VARCHAR,
                                  window_first DATE, window_last DATE, window_periods INTEGER,
                                  batch_rows BIGINT, rows_older_than_window BIGINT, changed_entities BIGINT,
@@ -147,7 +148,7 @@ def _state(con) -> State:
     state.files = [StoredFile(*row) for row in con.execute(
         "SELECT path, kind, sha256, bytes, run_id FROM files ORDER BY path").fetchall()]
     state.versions = [Version(*row) for row in con.execute(
-        'SELECT run_id, folder, sha256, "rows" FROM versions ORDER BY run_id').fetchall()]
+        'SELECT run_id, folder, sha256, "rows" FROM versions ORDER BY "position"').fetchall()]
     return state
 
 
@@ -172,8 +173,9 @@ def commit(store: Path, state: State, run: dict) -> None:
                 con.executemany("INSERT INTO files VALUES (?, ?, ?, ?, ?)",
                                 [list(f.__dict__.values()) for f in state.files])
             if state.versions:
-                con.executemany("INSERT INTO versions VALUES (?, ?, ?, ?)",
-                                [list(v.__dict__.values()) for v in state.versions])
+                # in publishing order: two runs in one second have run ids that do not sort by time
+                con.executemany("INSERT INTO versions VALUES (?, ?, ?, ?, ?)",
+                                [[*v.__dict__.values(), i] for i, v in enumerate(state.versions)])
             row = [json.dumps(run[c], sort_keys=True) if c in JSON_COLUMNS else run.get(c) for c in RUN_COLUMNS]
             con.execute(f"INSERT INTO runs VALUES ({', '.join('?' * len(RUN_COLUMNS))})", row)
             con.execute("COMMIT")
@@ -189,9 +191,10 @@ def mark_published(store: Path, run_id: str) -> None:
 
 
 def runs(store: Path) -> list[dict]:
-    """Every refresh recorded, oldest first (JSON columns decoded, dates in ISO form)."""
+    """Every refresh recorded, oldest first (JSON columns decoded, dates in ISO form); runs of
+    one second in the order they were recorded (the table is only appended to)."""
     with connection(store, read_only=True) as con:
-        rows = con.execute(f"SELECT {', '.join(_quoted(c) for c in RUN_COLUMNS)} FROM runs ORDER BY started_at, run_id"
+        rows = con.execute(f"SELECT {', '.join(_quoted(c) for c in RUN_COLUMNS)} FROM runs ORDER BY started_at, rowid"
                            ).fetchall()
     found = []
     for row in rows:
