@@ -355,6 +355,8 @@ def compile_kernels(quiet: Quiet = False, as_json: AsJson = False) -> None:
     _emit(summary, as_json, quiet, text + f"cache in {summary['cache_dir']}")
 
 
+from lshjob.cli.more_commands import register as _more_commands; _more_commands(app)  # noqa: E402, E702 (diff, drift)
+
 for _command in app.registered_commands:  # every command's --help ends with the exit codes
     _command.epilog = _command.epilog or EXIT_CODES
 
