@@ -68,6 +68,75 @@ def diff_text(s: dict) -> str:
     return "\n".join(lines)
 
 
+DRIFT_HELP = """Per entity (and segment) and period: how much its set changed against its own
+    recent history, estimated from a signature file signed with --period, and the changes the
+    population and the noise do not explain (flagged).
+
+    Compared: the similarity (Jaccard) to the entity's previous period, and the containment of
+    the new period in the union of its last --history periods (the union's signature is the
+    element-wise minimum of theirs), each with its binomial standard error.
+
+    Rule: {rule}
+
+    Element sets of flagged entities (what entered and left) need the per-period store, which
+    this version does not have.
+
+    Example: lshjob sign demo-run/events.parquet --entity patron --element title
+    --time borrowed_at --period month --out monthly.parquet; lshjob drift monthly.parquet
+    --out drift.parquet --html drift.html
+
+    Example (six months of history, stricter): lshjob drift monthly.parquet --history 6 --z 4
+    --out drift.parquet --json
+    """
+
+
+@ends_cleanly
+def drift(
+    signatures: Annotated[Path, typer.Argument(help="Signature file signed with --period (and optionally --segment).")],
+    out: Annotated[Path, typer.Option("--out", "-o", help="Per entity and period rows to write (Parquet).")],
+    history: Annotated[int, typer.Option(help="Periods before each one that make its history.")] = 3,
+    z: Annotated[float, typer.Option(help="Flag scores above this many robust standard deviations.")] = 3.5,
+    html: Annotated[Optional[Path], typer.Option(help="Also write a self-contained HTML view (needs matplotlib).")] = None,
+    quiet: Quiet = False,
+    as_json: AsJson = False,
+) -> None:
+    from lshjob.jobs.drift import drift_file
+
+    if html is not None:
+        from lshjob.runtime.outputs import output_file
+
+        html = output_file(html, [signatures], "drift --html", "--html")
+        from lshjob.report.drift_html import require_matplotlib
+
+        require_matplotlib()
+    rows, summary = drift_file(signatures, out, history=history, z=z)
+    if html is not None:
+        from lshjob.report.drift_html import write_drift_html
+
+        write_drift_html(rows, summary, html)
+        summary["html"] = str(html)
+    _emit(summary, as_json, quiet, drift_text(summary))
+    _warn(summary)
+
+
+def drift_text(s: dict) -> str:
+    lines = [f"{s['rows_compared']:,} of {s['rows']:,} entity-periods compared with their last {s['history']} "
+             f"period(s); {s['flagged']:,} flagged ({s['entities_flagged']:,} entities) -> {s['out']}",
+             f"{'period':<12}{'compared':>10}{'flagged':>9}{'median similarity':>19}{'median containment':>20}"]
+    for p in s["periods"]:
+        if not p["compared"]:
+            continue
+        lines.append(f"{p['period']:<12}{p['compared']:>10,}{p['flagged']:>9,}"
+                     f"{p['median_similarity']:>19.3f}{p['median_containment']:>20.3f}")
+    if s.get("html"):
+        lines.append(f"view: {s['html']}")
+    return "\n".join(lines)
+
+
 def register(app: typer.Typer) -> None:
     """Add ``diff`` and ``drift`` to ``app``."""
+    from lshjob.drift.rule import RULE_TEXT
+
     app.command("diff")(diff)
+    drift.__doc__ = DRIFT_HELP.format(rule=RULE_TEXT)
+    app.command("drift")(drift)
