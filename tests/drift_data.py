@@ -21,9 +21,20 @@ AUTHORS_PER_GENRE = 400
 SUMMER = (5, 6, 7)  # June to August (0-based months)
 
 
-def _popular(rng, n: int, size: int, exponent: float = 0.7) -> np.ndarray:
+def _popular(rng, n: int, size, exponent: float = 0.7) -> np.ndarray:
     """Ranks 0..n-1 with a power-law tail: P(rank > r) ~ r^-exponent."""
     return np.minimum((rng.random(size) ** (-1 / exponent)).astype(np.int64) - 1, n - 1)
+
+
+def _first_distinct(codes: np.ndarray, want: np.ndarray) -> np.ndarray:
+    """Mask of the first ``want[i]`` distinct values of each row of ``codes``, in row order."""
+    order = np.argsort(codes, axis=1, kind="stable")
+    ranked = np.take_along_axis(codes, order, axis=1)
+    first_sorted = np.ones(codes.shape, dtype=bool)
+    first_sorted[:, 1:] = ranked[:, 1:] != ranked[:, :-1]
+    first = np.empty(codes.shape, dtype=bool)
+    np.put_along_axis(first, order, first_sorted, axis=1)
+    return first & (np.cumsum(first, axis=1) <= want[:, None])
 
 
 def library_months(patrons: int = 2000, months: int = 12, drift_rate: float = 0.05, seed: int = 0,
@@ -32,48 +43,50 @@ def library_months(patrons: int = 2000, months: int = 12, drift_rate: float = 0.
                    first_change: int = 3) -> tuple[pl.DataFrame, pl.DataFrame]:
     """(events: patron, author, borrowed_at; planted: patron, change_month (Date or null))."""
     rng = np.random.default_rng(seed)
-    names = [f"P{i:06d}" for i in range(patrons)]
+    names = np.array([f"P{i:06d}" for i in range(patrons)])
     drifts = rng.random(patrons) < drift_rate
-    change = np.where(drifts, rng.integers(first_change, months, patrons), -1)
-    starts = [dt.date(2026 + m // 12, m % 12 + 1, 1) for m in range(months)]
-    out_p, out_a, out_t = [], [], []
+    change = np.where(drifts, rng.integers(first_change, months, patrons), months)
+    starts = np.array([dt.date(2026 + m // 12, m % 12 + 1, 1) for m in range(months)], dtype="datetime64[D]")
 
-    def shelf_of(genre):
-        size = int(rng.integers(shelf[0], shelf[1] + 1))
-        picks = np.unique(_popular(rng, AUTHORS_PER_GENRE, 4 * size))[:size]
-        while len(picks) < size:  # rare: too few distinct picks
-            picks = np.unique(np.append(picks, rng.integers(0, AUTHORS_PER_GENRE)))
-        return [f"A{genre}-{int(a):03d}" for a in picks]
+    # two shelves per patron (before and after a change), favourite first, codes g * 1000 + author
+    genre = rng.integers(0, GENRES, patrons)
+    genres = np.stack([genre, (genre + rng.integers(1, GENRES, patrons)) % GENRES], axis=1)
+    size = rng.integers(shelf[0], shelf[1] + 1, (patrons, 2))
+    width = shelf[1]
+    picks = np.concatenate([_popular(rng, AUTHORS_PER_GENRE, (patrons * 2, 6 * width)),
+                            rng.integers(0, AUTHORS_PER_GENRE, (patrons * 2, 4 * width))], axis=1)
+    keep = _first_distinct(picks, np.full(patrons * 2, width))
+    shelves = (genres.reshape(-1, 1) * 1000 + picks[keep].reshape(patrons * 2, width)).reshape(patrons, 2, width)
 
-    for p in range(patrons):
-        genre = int(rng.integers(0, GENRES))
-        own = shelf_of(genre)
-        for m in range(months):
-            if m == change[p]:
-                own = shelf_of((genre + int(rng.integers(1, GENRES))) % GENRES)
-            want = int(rng.integers(per_month[0], per_month[1] + 1))
-            picked: set[str] = set()
-            tries = 0
-            while len(picked) < want and tries < 200:
-                tries += 1
-                u = rng.random()
-                if season and m % 12 in SUMMER and u < summer_share:
-                    picked.add(f"S-{int(_popular(rng, 300, 1)[0]):03d}")
-                elif rng.random() < own_share:  # favourite authors first: weights 1 / (place + 1)
-                    weights = 1.0 / np.arange(1, len(own) + 1)
-                    picked.add(own[int(np.searchsorted(np.cumsum(weights), rng.random() * weights.sum()))])
-                else:
-                    g = int(rng.integers(0, GENRES))
-                    picked.add(f"A{g}-{int(_popular(rng, AUTHORS_PER_GENRE, 1)[0]):03d}")
-            for a in sorted(picked):
-                out_p.append(names[p])
-                out_a.append(a)
-                out_t.append(starts[m] + dt.timedelta(days=int(rng.integers(0, 28))))
-    events = pl.DataFrame({"patron": out_p, "author": out_a, "borrowed_at": out_t})
+    # one row per patron-month, `draws` candidate loans each; the first `want` distinct are kept
+    draws = 4 * per_month[1]
+    pid = np.repeat(np.arange(patrons), months)
+    month = np.tile(np.arange(months), patrons)
+    side = (month >= change[pid]).astype(np.int64)
+    shape = (len(pid), draws)
+    weights = np.cumsum(1.0 / np.arange(1, width + 1))  # favourite authors first: 1 / (place + 1)
+    n_own = size[pid, side]
+    place = np.minimum(np.searchsorted(weights, rng.random(shape) * weights[n_own - 1][:, None]), n_own[:, None] - 1)
+    codes = shelves[pid[:, None], side[:, None], place]
+    other = rng.random(shape) >= own_share
+    codes = np.where(other, rng.integers(0, GENRES, shape) * 1000 + _popular(rng, AUTHORS_PER_GENRE, shape), codes)
+    if season:
+        holiday = np.isin(month % 12, SUMMER)[:, None] & (rng.random(shape) < summer_share)
+        codes = np.where(holiday, 100_000 + _popular(rng, 300, shape), codes)
+    want = rng.integers(per_month[0], per_month[1] + 1, len(pid))
+    keep = _first_distinct(codes, want)
+    row, col = np.nonzero(keep)
+    code = codes[row, col]
+    author = np.where(code >= 100_000, np.char.add("S-", np.char.zfill((code - 100_000).astype(str), 3)),
+                      np.char.add(np.char.add("A", (code // 1000).astype(str)),
+                                  np.char.add("-", np.char.zfill((code % 1000).astype(str), 3))))
+    day = starts[month[row]] + rng.integers(0, 28, len(row)).astype("timedelta64[D]")
+    events = pl.DataFrame({"patron": names[pid[row]], "author": author, "borrowed_at": pl.Series(day).cast(pl.Date)})
     planted = pl.DataFrame({
         "patron": names,
-        "change_month": [starts[c] if c >= 0 else None for c in change],
-    }, schema={"patron": pl.String, "change_month": pl.Date})
+        "change_month": pl.Series(np.where(change < months, starts[np.minimum(change, months - 1)],
+                                           np.datetime64("NaT"))).cast(pl.Date),
+    })
     return events, planted
 
 
