@@ -124,9 +124,12 @@ def test_segments_and_cli(tmp_path):
     events = pl.DataFrame(rows, schema=["patron", "author", "branch", "borrowed_at"], orient="row")
     spec = EventSpec(entity="patron", element="author", segment="branch", time="borrowed_at", period="month")
     source = _signed(tmp_path, events, spec=spec)
+    # neighbour drift beside: a table as lshjob diff --out writes it (entity, list_change, ...)
+    pl.DataFrame({"entity": ["ann", "P001", "P999"], "list_change": [0.5, 1.0, 0.25], "kept": [1, 0, 3]}
+                 ).write_parquet(tmp_path / "changed.parquet")
     runner = CliRunner()
     result = runner.invoke(app, ["drift", str(source), "--out", str(tmp_path / "d.parquet"), "--json",
-                                 "--html", str(tmp_path / "d.html")])
+                                 "--html", str(tmp_path / "d.html"), "--neighbours", str(tmp_path / "changed.parquet")])
     assert result.exit_code == 0, result.output
     summary = json.loads(result.stdout)
     out = pl.read_parquet(tmp_path / "d.parquet")
@@ -135,8 +138,13 @@ def test_segments_and_cli(tmp_path):
     assert summary["flagged"] == 1 and summary["entities_compared"] == 60
     assert [p["flagged"] for p in summary["periods"]] == [0, 0, 1]
     assert summary["periods"][1]["median_similarity"] == 1.0  # everyone else kept the same set
+    nd = summary["neighbour_drift"]
+    assert (nd["entities_list_changed"], nd["also_flagged_latest_period"], nd["also_flagged_any_period"]) == (3, 1, 1)
+    assert [r["entity"] for r in nd["most_changed"]] == ["P001", "ann", "P999"]
+    changes = dict(out.select("entity", "list_change").unique().iter_rows())
+    assert changes["ann"] == 0.5 and changes["P001"] == 1.0 and changes["P002"] is None
     page = (tmp_path / "d.html").read_text()
-    assert "data:image/png;base64," in page and "http" not in page.replace("http-equiv", "")
+    assert "data:image/png;base64," in page and "http" not in page and "Neighbour drift" in page
 
 
 def test_refusals(tmp_path):

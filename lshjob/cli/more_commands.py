@@ -87,6 +87,9 @@ DRIFT_HELP = """Per entity (and segment) and period: how much its set changed ag
 
     Example (six months of history, stricter): lshjob drift monthly.parquet --history 6 --z 4
     --out drift.parquet --json
+
+    Example (with neighbour drift): lshjob diff index/previous index --out changed.parquet;
+    lshjob drift monthly.parquet --neighbours changed.parquet --out drift.parquet
     """
 
 
@@ -97,6 +100,7 @@ def drift(
     history: Annotated[int, typer.Option(help="Periods before each one that make its history.")] = 3,
     z: Annotated[float, typer.Option(help="Flag scores above this many robust standard deviations.")] = 3.5,
     html: Annotated[Optional[Path], typer.Option(help="Also write a self-contained HTML view (needs matplotlib).")] = None,
+    neighbours: Annotated[Optional[Path], typer.Option(help="Entities whose neighbour lists changed (lshjob diff --out), shown beside.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -109,7 +113,7 @@ def drift(
         from lshjob.report.drift_html import require_matplotlib
 
         require_matplotlib()
-    rows, summary = drift_file(signatures, out, history=history, z=z)
+    rows, summary = drift_file(signatures, out, history=history, z=z, neighbours=neighbours)
     if html is not None:
         from lshjob.report.drift_html import write_drift_html
 
@@ -128,6 +132,11 @@ def drift_text(s: dict) -> str:
             continue
         lines.append(f"{p['period']:<12}{p['compared']:>10,}{p['flagged']:>9,}"
                      f"{p['median_similarity']:>19.3f}{p['median_containment']:>20.3f}")
+    if s.get("neighbour_drift"):
+        nd = s["neighbour_drift"]
+        lines.append(f"neighbour lists changed for {nd['entities_list_changed']:,} entities; "
+                     f"{nd['also_flagged_latest_period']:,} of them flagged in the latest period, "
+                     f"{nd['also_flagged_any_period']:,} in any")
     if s.get("html"):
         lines.append(f"view: {s['html']}")
     return "\n".join(lines)

@@ -36,15 +36,17 @@ OUTPUT_COLUMNS = ("set_size", "compared_with", "history_periods", "similarity", 
 
 
 def drift_file(source: str | Path, out: str | Path, history: int = DEFAULT_HISTORY, z: float = DEFAULT_Z,
-               block_rows: int = BLOCK_ROWS) -> tuple[pl.DataFrame, dict]:
+               block_rows: int = BLOCK_ROWS, neighbours: str | Path | None = None) -> tuple[pl.DataFrame, dict]:
     """Compare every row of the signature file ``source`` with its entity's last ``history``
     periods, score and flag them (rule: :mod:`lshjob.drift.rule`), write ``out``; return the
-    rows and the summary."""
+    rows and the summary. ``neighbours``: a table written by ``lshjob diff --out``; its
+    ``list_change`` per entity is added as a second signal (:func:`neighbour_drift`)."""
     if not 1 <= history <= 1000:
         raise ParameterError(f"--history must be from 1 to 1000 periods; got {history}")
     if not 0 < z < 100:
         raise ParameterError(f"--z must be in (0, 100); got {z}")
-    out = output_file(out, [source], "drift")
+    out = output_file(out, [source] + ([neighbours] if neighbours else []), "drift")
+    changes = read_list_changes(neighbours) if neighbours is not None else None
     started = time.perf_counter()
     meta = signature_meta(source)
     keys = list(meta.get("keys") or [])
@@ -84,8 +86,12 @@ def drift_file(source: str | Path, out: str | Path, history: int = DEFAULT_HISTO
     )
     rows, per_period = score_rows(rows, z)
     rows = rows.select(*keys, *OUTPUT_COLUMNS)
+    if changes is not None:
+        rows = neighbour_drift(rows, changes)
     _write_atomic(rows, out)
     summary = drift_summary(rows, per_period, source, out, meta, history, z)
+    if changes is not None:
+        summary["neighbour_drift"] = neighbour_summary(rows, changes, neighbours)
     summary["seconds"] = round(time.perf_counter() - started, 3)
     summary["peak_memory_bytes"] = peak_bytes()
     return rows, summary
@@ -174,6 +180,46 @@ def drift_summary(rows: pl.DataFrame, per_period: pl.DataFrame, source, out, met
         ],
         "warnings": [f"period {_iso(r['period'])}: {r['compared']} rows compared, fewer than {MIN_POPULATION}; not scored"
                      for r in per_period.iter_rows(named=True) if 0 < r["compared"] < MIN_POPULATION],
+    }
+
+
+def read_list_changes(path: str | Path) -> pl.DataFrame:
+    """``entity``, ``list_change`` of a ``lshjob diff --out`` table; one-line errors."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: no such file (expected a table written by lshjob diff --out)")
+    try:
+        schema = pl.read_parquet_schema(path)
+    except Exception as exc:  # noqa: BLE001 - any unreadable file is bad input
+        raise InputError(f"{path}: not a Parquet file ({exc})") from None
+    missing = [c for c in ("entity", "list_change") if c not in schema]
+    if missing:
+        raise InputError(f"{path}: column '{missing[0]}' not found; columns are: {', '.join(schema)} "
+                         "(expected a table written by lshjob diff --out)")
+    return pl.read_parquet(path, columns=["entity", "list_change"])
+
+
+def neighbour_drift(rows: pl.DataFrame, changes: pl.DataFrame) -> pl.DataFrame:
+    """``rows`` with the entity's ``list_change`` between two index versions (null: its
+    neighbour list did not change, or it is in neither index)."""
+    if changes.schema["entity"] != rows.schema["entity"]:
+        changes = changes.with_columns(pl.col("entity").cast(rows.schema["entity"], strict=False))
+    return rows.join(changes, on="entity", how="left", maintain_order="left")
+
+
+def neighbour_summary(rows: pl.DataFrame, changes: pl.DataFrame, source) -> dict:
+    """Both signals side by side: entities whose neighbour list changed, how many of them
+    the drift rule flags in the latest period or any, and the most changed."""
+    latest = rows["period"].max()
+    flagged_any = set(rows.filter("flagged")["entity"].to_list())
+    flagged_latest = set(rows.filter(pl.col("flagged") & (pl.col("period") == latest))["entity"].to_list())
+    most = changes.sort(["list_change", "entity"], descending=[True, False]).head(10)
+    return {
+        "source": str(source), "entities_list_changed": changes.height,
+        "also_flagged_latest_period": len(flagged_latest & set(changes["entity"].to_list())),
+        "also_flagged_any_period": len(flagged_any & set(changes["entity"].to_list())),
+        "most_changed": [{"entity": e, "list_change": c, "flagged_latest": e in flagged_latest,
+                          "flagged_any": e in flagged_any} for e, c in most.iter_rows()],
     }
 
 

@@ -74,6 +74,7 @@ def _timelines(rows: pl.DataFrame, plt, keys: list[str]) -> tuple[str | None, li
                    edgecolors="tab:red", label="flagged")
         ax.set_ylim(-0.03, 1.03)
         ax.set_title(", ".join(str(entity[k]) for k in keys), fontsize=9, loc="left")
+        ax.tick_params(axis="x", labelsize=7)
     axes[0, 0].legend(loc="lower left", fontsize=8)
     fig.tight_layout()
     image = _png(fig)
@@ -108,6 +109,17 @@ def write_drift_html(rows: pl.DataFrame, summary: dict, path: str | Path) -> Pat
         f"<table><tr>{head}<th>period</th><th>score</th><th>containment</th><th>similarity</th>"
         f"<th>set size</th></tr>{top_rows}</table>"
         f'<img alt="timelines" src="data:image/png;base64,{timeline}">')
+    neighbour_part = ""
+    if summary.get("neighbour_drift"):
+        nd = summary["neighbour_drift"]
+        listed = "".join(f"<tr><td>{esc(str(r['entity']))}</td><td>{r['list_change']:.2f}</td>"
+                         f"<td>{'yes' if r['flagged_latest'] else ''}</td><td>{'yes' if r['flagged_any'] else ''}</td></tr>"
+                         for r in nd["most_changed"])
+        neighbour_part = (
+            f"<h2>Neighbour drift</h2><p>{nd['entities_list_changed']:,} entities' neighbour lists changed "
+            f"({esc(nd['source'])}); {nd['also_flagged_latest_period']:,} of them flagged in the latest period, "
+            f"{nd['also_flagged_any_period']:,} in any.</p><table><tr><th>entity</th><th>list change</th>"
+            f"<th>flagged (latest)</th><th>flagged (any)</th></tr>{listed}</table>")
     body = f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8"><title>lshjob drift: {esc(summary['signatures'])}</title>
 <style>body{{font-family:sans-serif;max-width:70em;margin:1em auto}}table{{border-collapse:collapse}}
@@ -121,6 +133,7 @@ td,th{{border:1px solid #ccc;padding:2px 8px;text-align:right}}</style></head><b
 <img alt="distribution per period" src="data:image/png;base64,{dist}">
 <h2>Most extreme flagged entities</h2>
 {flagged_part}
+{neighbour_part}
 <p>The elements that entered and left a flagged entity's set are not shown: they need the per-period store.</p>
 </body></html>
 """
