@@ -22,6 +22,7 @@ from lshjob.errors import ParameterError
 from lshjob.jobs.options import RunOptions, default_of, defaults as run_defaults, required as required_options, run_settings
 from lshjob.jobs.run import run_job
 from lshjob.report.text import audit_report, plan_report, run_report
+from lshjob.cli.more_commands import register as register_more
 from lshjob.cli.refresh_command import register as register_refresh
 from lshjob.cli.failures import EXIT_CODES, ends_cleanly as _fail_cleanly, run_app, to_stdout
 from lshjob.cli.run_params import with_run_options
@@ -324,6 +325,8 @@ def compile_kernels(quiet: Quiet = False, as_json: AsJson = False) -> None:
 
 
 register_refresh(app)  # refresh and history (lshjob.cli.refresh_command)
+register_more(app)  # diff and drift (lshjob.cli.more_commands)
+
 for _command in app.registered_commands:  # every command's --help ends with the exit codes
     _command.epilog = _command.epilog or EXIT_CODES
 
