@@ -7,7 +7,7 @@
   letter of which half are written in NFD;
 * CSV: the same integer events as Parquet and as CSV, ``open_events`` (checks: per-file
   schema, separators per line, keys read as text and found to be plain integers) and
-  ``group_events`` (the streaming pass), timed apart.
+  ``read_and_group`` (the streaming pass), timed apart.
 
 Each figure is the best of ``--repeat`` runs, wall clock and CPU time of the process.
 """
@@ -27,7 +27,7 @@ sys.path.insert(0, str(Path(__file__).parent))
 from common import best, finish, machine  # noqa: E402
 
 from lshjob import EventSpec  # noqa: E402
-from lshjob.ingest.loading import group_events, load_membership, open_events  # noqa: E402
+from lshjob.ingest.loading import load_membership, open_events, read_and_group  # noqa: E402
 
 
 
@@ -64,8 +64,8 @@ def main() -> None:
             wall, cpu = best(lambda: open_events(path, spec), args.repeat)
             lines.append(f"| integer keys, {fmt} | open_events (checks) | {wall:.3f} | {cpu:.3f} |")
             events = open_events(path, spec)
-            wall, cpu = best(lambda: group_events(events, None), args.repeat)
-            lines.append(f"| integer keys, {fmt} | group_events (streaming pass) | {wall:.3f} | {cpu:.3f} |")
+            wall, cpu = best(lambda: read_and_group(events, None), args.repeat)
+            lines.append(f"| integer keys, {fmt} | read_and_group (streaming pass) | {wall:.3f} | {cpu:.3f} |")
     finish(f"Ingest checks, {n:,} rows", "\n".join(lines), not args.no_write)
 
 

@@ -82,7 +82,7 @@ EVENTS = Contract(
     ],
     row="one event (weight 1, or its count)",
     producer="lshjob.ingest.spec.validated_events (lazy)",
-    consumer="lshjob.ingest.spec.group_events, lshjob.ingest.loading (event batches)",
+    consumer="lshjob.ingest.spec.group_set_rows, lshjob.ingest.loading (event batches)",
 )
 
 SET_ROWS = Contract(
@@ -95,7 +95,7 @@ SET_ROWS = Contract(
         ("weight >= min_count", lambda min_count: pl.col("weight") >= min_count),
     ],
     row="one element of one set, with its summed weight",
-    producer="lshjob.ingest.spec.group_events (load_sets)",
+    producer="lshjob.ingest.spec.group_set_rows (load_sets)",
     consumer="lshjob.sign.signatures.sign_sets",
 )
 

@@ -59,7 +59,7 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
 
 def membership_of(events: "EventSource", selection: "EntitySelection | None") -> tuple[Membership, IngestReport]:
     """The sets of the selected entities (all by default), entities in sorted key order."""
-    grouped = group_events(events, selection)
+    grouped = read_and_group(events, selection)
     keys, offsets, elements, report, where = grouped.keys, grouped.offsets, grouped.codes, grouped.report, grouped.where
     sizes = grouping.sort_and_merge(offsets, elements, grouped.weights, float(events.min_count), grouped.weighted)
     offsets, elements = grouping.compact(offsets, elements, sizes)
@@ -200,10 +200,10 @@ def read_grouped(source: str | Path, spec: EventSpec, memory: int | None = None)
     """Steps 1-3 of the module docstring up to the counting sort (one set per entity)."""
     events = open_events(source, spec)
     check_budget(events, None, memory)
-    return group_events(events, None)
+    return read_and_group(events, None)
 
 
-def group_events(events: EventSource, selection: EntitySelection | None) -> GroupedEvents:
+def read_and_group(events: EventSource, selection: EntitySelection | None) -> GroupedEvents:
     """Group the selected entities' events (all by default) up to the counting sort."""
     frame, where = events.frame, events.where
     n, entity_range = _extent(events, selection)

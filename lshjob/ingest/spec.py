@@ -111,7 +111,7 @@ class IngestReport:
 def load_sets(source: str | Path, spec: EventSpec) -> tuple[pl.DataFrame, IngestReport]:
     """Read events and return membership rows (contract in the module docstring)."""
     frame, report, where = validated_events(source, spec)
-    return group_events(frame, spec, where, report), report
+    return group_set_rows(frame, spec, where, report), report
 
 
 def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame, IngestReport, str]:
@@ -296,7 +296,7 @@ def _stats_from_footers(paths: list[Path], key_names: list[str], entity: str,
                          "__entity_min": [found["min"]], "__entity_max": [found["max"]]})
 
 
-def group_events(frame: pl.LazyFrame, spec: EventSpec, where: str, report: IngestReport,
+def group_set_rows(frame: pl.LazyFrame, spec: EventSpec, where: str, report: IngestReport,
                  allow_empty: bool = False) -> pl.DataFrame:
     """Events -> membership rows (module contract); adds its counts to ``report``. With
     ``allow_empty`` (one key range of many), no row left after ``--min-count`` is no error."""

@@ -69,7 +69,7 @@ def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | No
 def keyed_signing_ranges(frame: pl.LazyFrame, events: int, where: str, perms: int, memory: int,
                          parts: int | None = None) -> list[EntitySelection] | None:
     """Key ranges of entities for ``lshjob sign`` with segments or periods of text entity keys,
-    whose sets polars groups (:func:`lshjob.ingest.spec.group_events`) at about
+    whose sets polars groups (:func:`lshjob.ingest.spec.group_set_rows`) at about
     ``KEYED_BYTES_PER_EVENT`` (integer keys go through :mod:`lshjob.ingest.keyed`); None when
     all of them fit half of what the slices in flight to the writer leave of the budget. A
     set's key starts with its entity, so every set lies in one range, and ranges in entity

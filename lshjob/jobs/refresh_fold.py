@@ -17,7 +17,7 @@ from pathlib import Path
 import polars as pl
 
 from lshjob.errors import InputError
-from lshjob.ingest.spec import EventSpec, group_events, validated_events
+from lshjob.ingest.spec import EventSpec, group_set_rows, validated_events
 from lshjob.store import files as store_files
 from lshjob.store.catalog import Period, State
 
@@ -57,7 +57,7 @@ def read_batch(events: str | Path, spec: EventSpec, state: State, window: int) -
     newest = max([per_period["period"].max()] + [p.period for p in state.periods])
     first = first_of_window(newest, spec.period, window)
     older = int(per_period.filter(pl.col("period") < first)["rows"].sum())
-    rows = group_events(frame.filter(pl.col("period") >= first), spec, where, report, allow_empty=True)
+    rows = group_set_rows(frame.filter(pl.col("period") >= first), spec, where, report, allow_empty=True)
     return Batch(rows.select("entity", "period", "element"), report.rows_read, report.null_rows_dropped,
                  older, first, newest, {f"{n}_type": k for n, k in kinds.items()})
 

@@ -11,8 +11,8 @@ from lshjob.ingest import keyed
 from lshjob.errors import InputError
 from lshjob.jobs import parts as parts_module
 from lshjob.ingest.spec import EventSpec, IngestReport, validated_events
-from lshjob.ingest.spec import group_events as group_sets
-from lshjob.ingest.loading import group_events, membership_of, open_events
+from lshjob.ingest.spec import group_set_rows as group_sets
+from lshjob.ingest.loading import membership_of, open_events, read_and_group
 from lshjob.jobs.merge import merge_files  # noqa: F401  (the API of lshjob merge)
 from lshjob.runtime.outputs import output_file
 from lshjob.runtime import budget
@@ -62,7 +62,7 @@ def sign_file(
         if source is not None:
             ranges = parts_module.signing_ranges(source, params.perms, memory, parts)
             if ranges is None and direct:
-                grouped = group_events(source, None)
+                grouped = read_and_group(source, None)
                 if len(grouped.keys) == 0:  # every row dropped (null keys): as membership_of and the run
                     raise InputError(f"{source.where}: no element is left after filtering (--min-count "
                                      f"{spec.min_count}); nothing to sign")
@@ -141,7 +141,7 @@ def _sign_in_parts(ranges, sign_part, files_report, where, spec, out, params, me
 def _entity_part(source, direct, params, keyed_by):  # the streaming loader, as in one part
     def sign_part(selection):
         if direct:
-            grouped = group_events(source, selection)
+            grouped = read_and_group(source, selection)
             return keyed_by(event_signing.sign_grouped_slices(grouped, params, budget.SLICE_ROWS)), grouped.report
         members, part = membership_of(source, selection)
         return keyed_by(signature_slices(members, params, budget.SLICE_ROWS)), part
