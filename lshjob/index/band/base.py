@@ -31,9 +31,11 @@ from typing import ClassVar, Protocol, runtime_checkable
 import numpy as np
 import polars as pl
 
+from lshjob.contracts.tables import BUCKET_ROWS
+
 BAND_MULTIPLIER = 0x9E3779B97F4A7C15
 
-BUCKET_ROWS_SCHEMA = {"band": pl.Int32, "bucket": pl.UInt64, "rep": pl.Int64}
+BUCKET_ROWS_SCHEMA = dict(BUCKET_ROWS.schema)  # declared once, in lshjob.contracts.tables
 
 
 @dataclass(frozen=True)

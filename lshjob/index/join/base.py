@@ -23,11 +23,11 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import ClassVar, Protocol, runtime_checkable
 
-import polars as pl
+from lshjob.contracts.tables import CANDIDATES
 
 DEFAULT_MAX_BUCKET = 2000
 
-CANDIDATES_SCHEMA = {"left_rep": pl.Int64, "right_rep": pl.Int64, "bands_shared": pl.Int32}
+CANDIDATES_SCHEMA = dict(CANDIDATES.schema)  # declared once, in lshjob.contracts.tables
 
 SKEW_COLUMNS = ("buckets", "buckets_with_pairs", "oversize_buckets", "oversize_rows", "oversize_pairs",
                 "split_pairs", "skipped_pairs", "oversize_sub_buckets", "bucket_pairs", "largest_bucket")

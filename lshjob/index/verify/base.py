@@ -21,11 +21,11 @@ from typing import ClassVar, Protocol, runtime_checkable
 
 import polars as pl
 
+from lshjob.contracts.tables import VERIFIED
 from lshjob.core.sets import Membership
 from lshjob.sign.signatures import SignatureParams
 
-VERIFIED_SCHEMA = {"left_rep": pl.Int64, "right_rep": pl.Int64, "jaccard": pl.Float64,
-                   "estimate": pl.Float64, "bands_shared": pl.Int32}
+VERIFIED_SCHEMA = dict(VERIFIED.schema)  # declared once, in lshjob.contracts.tables
 
 
 class SetStore(Protocol):
