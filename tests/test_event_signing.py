@@ -43,7 +43,7 @@ def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, 
     # writes 37 entities at a time here (uneven slices, the last one short); the file must
     # hold every entity once, in key order, with the reference signatures and sizes. Weighted
     # (a count column, --min-count 2), the sets keep the elements whose counts sum to 2 or more.
-    from lshjob.sign import events as event_signing
+    from lshjob.sign import slices
     from lshjob.jobs.sign import sign_file
     from lshjob.sign.signatures import read_signatures
 
@@ -55,7 +55,7 @@ def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, 
     path = tmp_path / "loans.parquet"
     events.sample(fraction=1.0, shuffle=True, seed=3).write_parquet(path)
     params = SignatureParams(scheme=scheme, perms=32, seed=2)
-    monkeypatch.setattr(event_signing, "SLICE_ROWS", 37)
+    monkeypatch.setattr(slices, "SLICE_ROWS", 37)
     spec = EventSpec(entity="patron", element="title", count="loans" if weighted else None,
                      min_count=2 if weighted else 1)
     summary = sign_file(path, tmp_path / "sig.parquet", spec, params)

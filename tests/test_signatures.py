@@ -17,11 +17,11 @@ from lshjob.sign.signatures import (
     estimate_set_size,
     merge_signatures,
     sign_element_lists,
-    sign_sets,
     signature_array,
     signature_column,
     signature_metadata,
 )
+from lshjob.sign.slices import sign_sets
 
 K = 128
 
@@ -274,7 +274,7 @@ def test_monthly_signatures_streamed_in_slices_equal_signing_at_once(tmp_path, d
     # Reference: sign_sets over the whole membership table at once (itself checked against
     # datasketch above). `lshjob sign` with segments and periods writes 7 sets at a time here.
     from lshjob import EventSpec, sign_file
-    from lshjob.sign import events as event_signing
+    from lshjob.sign import slices
     from lshjob.ingest.spec import load_sets
 
     events, _ = demo_events
@@ -282,7 +282,7 @@ def test_monthly_signatures_streamed_in_slices_equal_signing_at_once(tmp_path, d
     events.write_parquet(src)
     spec = EventSpec(entity="patron", element="title", segment="branch", time="borrowed_at", period="month")
     p = SignatureParams(perms=16, seed=3)
-    monkeypatch.setattr(event_signing, "SLICE_ROWS", 7)
+    monkeypatch.setattr(slices, "SLICE_ROWS", 7)
     summary = sign_file(src, tmp_path / "monthly.parquet", spec, p)
     table, meta = read_signatures(tmp_path / "monthly.parquet")
     sets, _ = load_sets(src, spec)

@@ -41,12 +41,12 @@ import numpy as np
 import polars as pl
 
 from lshjob.core._jit import numba
-from lshjob.core.hashing import fmix64_expr
+from lshjob.core.hashing import GOLDEN, fmix64_expr
 
 ROW_BYTES = 28
 
 
-BAND_MULTIPLIER = 0x9E3779B97F4A7C15
+BAND_MULTIPLIER = GOLDEN  # odd, so h -> h * M is invertible mod 2**64 (a band's values mix without collapsing)
 
 
 def bucket_columns(frame: pl.DataFrame, bands: range, rows: int) -> pl.DataFrame:

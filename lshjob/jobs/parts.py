@@ -45,7 +45,8 @@ import polars as pl
 from lshjob.ingest.loading import (BYTES_PER_EVENT, BYTES_PER_EVENT_IN_RANGE, BYTES_PER_KEY_VALUE, EntitySelection,
                       EventSource, dense_span, grouping_need)
 from lshjob.errors import ParameterError
-from lshjob.sign.events import SLICE_ROWS, SLICES_IN_FLIGHT
+from lshjob.core.slicing import SLICE_ROWS, slice_bounds
+from lshjob.sign.streaming import SLICES_IN_FLIGHT
 from lshjob.core.sets import Membership
 from lshjob.sign.signatures import SignatureParams
 from lshjob.index.verify import add_estimates_between, verify_between
@@ -262,8 +263,8 @@ def verify_blocks(candidates: Path, store: PartStore | HeldSets, threshold: floa
             right = left if j == i else store.load(j)
             frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
             kept = []
-            for offset in range(0, _rows(files), step):
-                chunk = frame.slice(offset, step).collect()
+            for lo, hi in slice_bounds(_rows(files), step):
+                chunk = frame.slice(lo, hi - lo).collect()
                 kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
             block = pl.concat(kept) if kept else None
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
