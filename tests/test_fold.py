@@ -10,7 +10,12 @@ from test_hashing import fmix64_reference
 from lshjob import EventSpec, SignatureParams
 from lshjob.core.sets import Membership
 from lshjob.ingest.loading import read_grouped
-from lshjob.sign.signatures import comparable_by_position, sign_element_lists, sign_membership, signature_array
+from lshjob.sign.signatures import (
+    comparable_by_position,
+    sign_element_lists,
+    sign_membership,
+    signature_array,
+)
 from lshjob.sign.slices import SetRows, sign_slices
 
 MASK = (1 << 64) - 1
