@@ -11,7 +11,9 @@ below. The definitions (DEVELOPERS.md, "The hash family", items 3 and 4):
   ``row[b] = min(row[b], fmix64(h XOR salt[1]))``.
 
 A row starts at ``EMPTY`` for both. The folds are inlined into the kernels' loop nests
-(``inline="always"``), so the kperm loop over positions stays one vectorised loop.
+(``inline="always"``), so the kperm loop over positions stays one vectorised loop (its
+machine code is the same as when each kernel had its own copy). Numba's cache checks a kernel
+against its own module only: after editing this one, clear the cache (DEVELOPERS.md).
 """
 
 from __future__ import annotations
