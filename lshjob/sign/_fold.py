@@ -34,27 +34,29 @@ def fast_range(h, k):
 
 
 @numba.njit(inline="always")
-def fold_kperm(h, salts, row):
-    """Scheme ``kperm``: position i keeps the minimum of fmix64(h XOR salt[i])."""
-    for i in range(row.shape[0]):
+def fold_kperm(h, salts, k, row):
+    """Scheme ``kperm``: position i < k keeps the minimum of fmix64(h XOR salt[i]). ``k`` (the
+    row's length) comes from the kernel, as each kernel's own copy had it: 2 to 4% less CPU
+    than reading it from the row (bench/RESULTS.md, "One fold per scheme")."""
+    for i in range(k):
         v = fmix64(h ^ salts[i])
         if v < row[i]:  # noqa: PLR1730  (the branch form the kernels were measured with)
             row[i] = v
 
 
 @numba.njit(inline="always")
-def fold_oph(h, salts, row):
-    """Scheme ``oph``: the element's one bin keeps the minimum of fmix64(h XOR salt[1])."""
-    b = fast_range(fmix64(h ^ salts[0]), row.shape[0])
+def fold_oph(h, salts, k, row):
+    """Scheme ``oph``: the element's one bin of k keeps the minimum of fmix64(h XOR salt[1])."""
+    b = fast_range(fmix64(h ^ salts[0]), k)
     v = fmix64(h ^ salts[1])
     if v < row[b]:  # noqa: PLR1730
         row[b] = v
 
 
 @numba.njit(inline="always")
-def fold_element(h, salts, oph_scheme, row):
+def fold_element(h, salts, k, oph_scheme, row):
     """The fold of the scheme chosen at run time (kernels that serve both)."""
     if oph_scheme:
-        fold_oph(h, salts, row)
+        fold_oph(h, salts, k, row)
     else:
-        fold_kperm(h, salts, row)
+        fold_kperm(h, salts, k, row)

@@ -21,12 +21,12 @@ def sign_grouped(offsets, codes, text_hashes, salts, k, oph_scheme):
     out = np.empty((n, k), dtype=np.uint64)
     sizes = np.zeros(n, dtype=np.int64)
     for c in numba.prange((n + CHUNK - 1) // CHUNK):
-        _sign_chunk(c * CHUNK, min(n, (c + 1) * CHUNK), offsets, codes, text_hashes, salts, oph_scheme, out, sizes)
+        _sign_chunk(c * CHUNK, min(n, (c + 1) * CHUNK), offsets, codes, text_hashes, salts, k, oph_scheme, out, sizes)
     return out, sizes
 
 
 @numba.njit(cache=True)
-def _sign_chunk(lo, hi, offsets, codes, text_hashes, salts, oph_scheme, out, sizes):
+def _sign_chunk(lo, hi, offsets, codes, text_hashes, salts, k, oph_scheme, out, sizes):
     """Sets lo..hi-1 (one task: its own table); rows filled in place."""
     largest = 1
     for g in range(lo, hi):
@@ -59,5 +59,5 @@ def _sign_chunk(lo, hi, offsets, codes, text_hashes, salts, oph_scheme, out, siz
             stamp[s] = g + 1
             seen[s] = x
             count += 1
-            fold_element(element_hash(j, codes, text_hashes), salts, oph_scheme, row)
+            fold_element(element_hash(j, codes, text_hashes), salts, k, oph_scheme, row)
         sizes[g] = count

@@ -23,6 +23,6 @@ def sign_kperm(offsets, codes, table, ids, salts, by_position):
             g = ids[t]
             row[:] = EMPTY
             for j in range(offsets[g], offsets[g + 1]):
-                fold_kperm(element_hash(j, codes, table), salts, row)
+                fold_kperm(element_hash(j, codes, table), salts, k, row)
             store_row(out, t, row, by_position)
     return out

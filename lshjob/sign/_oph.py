@@ -20,7 +20,7 @@ def sign_oph(offsets, codes, table, ids, k, salts):
     out = np.empty((n, k), dtype=np.uint64)  # filled a chunk at a time: pages first touched in parallel
     for c in numba.prange((n + CHUNK - 1) // CHUNK):
         for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
-            _sign_row(offsets, codes, table, ids[t], salts, out[t])
+            _sign_row(offsets, codes, table, ids[t], k, salts, out[t])
     return out
 
 
@@ -37,7 +37,7 @@ def sign_densified(offsets, codes, table, ids, k, salts, positions):
         dense = np.empty(k, dtype=np.uint64)
         mask = np.empty(k, dtype=np.uint32)
         for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
-            _sign_row(offsets, codes, table, ids[t], salts, raw)
+            _sign_row(offsets, codes, table, ids[t], k, salts, raw)
             _densify_row(raw, dense, mask, ranks, probes, salts[2], k, positions)
             for i in range(positions):
                 out[i, t] = dense[i]
@@ -45,10 +45,10 @@ def sign_densified(offsets, codes, table, ids, k, salts, positions):
 
 
 @numba.njit(inline="always")
-def _sign_row(offsets, codes, table, g, salts, row):
+def _sign_row(offsets, codes, table, g, k, salts, row):
     row[:] = EMPTY
     for j in range(offsets[g], offsets[g + 1]):
-        fold_oph(element_hash(j, codes, table), salts, row)
+        fold_oph(element_hash(j, codes, table), salts, k, row)
 
 
 @numba.njit(inline="always")
