@@ -36,7 +36,7 @@ def fast_range(h, k):
 @numba.njit(inline="always")
 def fold_kperm(h, salts, k, row):
     """Scheme ``kperm``: position i < k keeps the minimum of fmix64(h XOR salt[i]). ``k`` (the
-    row's length) comes from the kernel, as each kernel's own copy had it: 2 to 4% less CPU
+    row's length) comes from the kernel, as each kernel's own copy had it: 2 to 5% less CPU
     than reading it from the row (bench/RESULTS.md, "One fold per scheme")."""
     for i in range(k):
         v = fmix64(h ^ salts[i])
