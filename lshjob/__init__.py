@@ -25,7 +25,7 @@ _PUBLIC = {
     "EventSpec": "ingest.spec", "load_sets": "ingest.spec",
     "SignatureParams": "sign.signatures", "estimate_jaccard": "sign.signatures",
     "merge_signatures": "sign.signatures", "read_signatures": "sign.signatures",
-    "sign_sets": "sign.signatures", "write_signatures": "sign.signatures",
+    "sign_sets": "sign.slices", "write_signatures": "sign.signatures",
 }
 
 

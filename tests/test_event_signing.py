@@ -46,7 +46,7 @@ def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, 
     from helpers import SliceCounter
 
     from lshjob.jobs.sign import sign_file
-    from lshjob.runtime import budget
+    from lshjob.core import slicing
     from lshjob.sign.signatures import read_signatures
 
     rng = np.random.default_rng(4)
@@ -57,7 +57,7 @@ def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, 
     path = tmp_path / "loans.parquet"
     events.sample(fraction=1.0, shuffle=True, seed=3).write_parquet(path)
     params = SignatureParams(scheme=scheme, perms=32, seed=2)
-    monkeypatch.setattr(budget, "SLICE_ROWS", 37)
+    monkeypatch.setattr(slicing, "SLICE_ROWS", 37)
     spec = EventSpec(entity="patron", element="title", count="loans" if weighted else None,
                      min_count=2 if weighted else 1)
     counter = SliceCounter()

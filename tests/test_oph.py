@@ -15,9 +15,9 @@ from lshjob.sign.signatures import (
     estimate_jaccard,
     merge_signatures,
     sign_element_lists,
-    sign_sets,
     signature_metadata,
 )
+from lshjob.sign.slices import sign_sets
 
 K = 128
 OPH = SignatureParams(scheme="oph", perms=K, seed=1)
@@ -155,7 +155,7 @@ def test_densification_follows_its_definition(k):
     # (so some bins need more probes than are ranked) to full ones, and an empty row; k past
     # 512 takes the tabled probes instead of the ranks. Signing and densifying a row at a
     # time (all positions, or the first few) must equal densifying the stored signatures.
-    from lshjob.sign.oph import sign_densified, sign_oph
+    from lshjob.sign._oph import sign_densified, sign_oph
 
     rng = np.random.default_rng(k)
     salt = 0x5DEECE66D1234567

@@ -131,7 +131,8 @@ def test_oversize_buckets_are_split_and_counted(tmp_path):
     src = write(events, tmp_path)
     m = run_job(src, SPEC, RunOptions(threshold=0.6, perms=64, bands=16, rows=4, max_bucket=10, top_k=100),
                 tmp_path / "idx")
-    from lshjob.sign.signatures import SignatureParams, sign_sets, signature_array
+    from lshjob.sign.signatures import SignatureParams, signature_array
+    from lshjob.sign.slices import sign_sets
 
     sets = lshjob.load_sets(src, SPEC)[0]
     matrix = signature_array(sign_sets(sets, ["entity"], SignatureParams(perms=64, seed=1)))

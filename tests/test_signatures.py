@@ -17,11 +17,11 @@ from lshjob.sign.signatures import (
     estimate_set_size,
     merge_signatures,
     sign_element_lists,
-    sign_sets,
     signature_array,
     signature_column,
     signature_metadata,
 )
+from lshjob.sign.slices import sign_sets
 
 K = 128
 
@@ -277,14 +277,14 @@ def test_monthly_signatures_streamed_in_slices_equal_signing_at_once(tmp_path, d
     from helpers import SliceCounter
 
     from lshjob.ingest.spec import load_sets
-    from lshjob.runtime import budget
+    from lshjob.core import slicing
 
     events, _ = demo_events
     src = tmp_path / "loans.parquet"
     events.write_parquet(src)
     spec = EventSpec(entity="patron", element="title", segment="branch", time="borrowed_at", period="month")
     p = SignatureParams(perms=16, seed=3)
-    monkeypatch.setattr(budget, "SLICE_ROWS", 7)
+    monkeypatch.setattr(slicing, "SLICE_ROWS", 7)
     counter = SliceCounter()
     summary = sign_file(src, tmp_path / "monthly.parquet", spec, p, progress=counter)
     table, meta = read_signatures(tmp_path / "monthly.parquet")

@@ -26,6 +26,7 @@ from lshjob.ingest.loading import EventSource, entity_counts, event_bytes, membe
 from lshjob.core.sets import Membership
 from lshjob.runtime.budget import Budget, current_bytes, release_freed
 from lshjob.runtime.partitions import HeldSets, PartStore, key_ranges, planning_sample
+from lshjob.core.slicing import slice_bounds
 from lshjob.sign.signatures import SignatureParams, comparable_by_position
 
 if TYPE_CHECKING:
@@ -179,8 +180,8 @@ class SignAndBand:
 
     def add(self, sets: Membership, reps: np.ndarray, first: int, task) -> None:
         """Sign and band ``reps`` (ids within ``sets``); entity ids in the keys are ``first + id``."""
-        for lo in range(0, len(reps), self.step):
-            ids = reps[lo:lo + self.step]
+        for lo, hi in slice_bounds(len(reps), self.step):
+            ids = reps[lo:hi]
             with self.stages.part("sign"):
                 columns = comparable_by_position(sets, ids, self.params, self.positions)
             with self.stages.part("band"):

@@ -6,7 +6,7 @@ import time
 from pathlib import Path
 
 
-from lshjob.sign import events as event_signing
+from lshjob.core import slicing
 from lshjob.ingest import keyed
 from lshjob.errors import InputError
 from lshjob.jobs import parts as parts_module
@@ -15,16 +15,11 @@ from lshjob.ingest.spec import group_set_rows as group_sets
 from lshjob.ingest.loading import membership_of, open_events, read_and_group
 from lshjob.jobs.merge import merge_files  # noqa: F401  (the API of lshjob merge)
 from lshjob.runtime.outputs import output_file
-from lshjob.runtime import budget
 from lshjob.runtime.budget import default_memory, peak_bytes
 from lshjob.sign.streaming import timed, write_streamed
 from lshjob.runtime.progress import QUIET, StageProgress
-from lshjob.sign.signatures import (
-    SignatureParams,
-    sign_sets_slices,
-    signature_slices,
-    signature_metadata,
-)
+from lshjob.sign.signatures import SignatureParams, signature_metadata
+from lshjob.sign.slices import SetRows, sign_slices
 
 
 def sign_file(
@@ -83,12 +78,12 @@ def sign_file(
                               meta, progress, started)
     ingested = time.perf_counter()
     if source is not None and direct:
-        made, n, report = (keyed_by(event_signing.sign_grouped_slices(grouped, params, budget.SLICE_ROWS)),
+        made, n, report = (keyed_by(sign_slices(grouped, params)),
                            len(grouped.keys), grouped.report)
     elif source is not None:
-        made, n = keyed_by(signature_slices(members, params, budget.SLICE_ROWS)), members.size
+        made, n = keyed_by(sign_slices(members, params)), members.size
     else:
-        made, n = sign_sets_slices(sets, spec.key_columns, params, budget.SLICE_ROWS), report.sets
+        made, n = sign_slices(SetRows(sets, spec.key_columns), params), report.sets
     return _sign_streamed(made, n, report, out, params, meta, progress, started, ingested)
 
 
@@ -99,13 +94,13 @@ def _sign_streamed(made, n, report, out, params, meta, progress, started, ingest
     the one writing at once gives."""
     seconds = {"sign": 0.0}
 
-    def slices():
-        with progress.stage("sign", -(-n // budget.SLICE_ROWS)) as task:
+    def counted():
+        with progress.stage("sign", -(-n // slicing.SLICE_ROWS)) as task:
             for table in timed(made, seconds, "sign"):
                 yield table
                 task.advance()
 
-    rows = write_streamed(slices(), out, meta)
+    rows = write_streamed(counted(), out, meta)
     signed = ingested + seconds["sign"]
     return _sign_summary(out, rows, params, report, 1, started, ingested, signed, time.perf_counter())
 
@@ -142,9 +137,9 @@ def _entity_part(source, direct, params, keyed_by):  # the streaming loader, as 
     def sign_part(selection):
         if direct:
             grouped = read_and_group(source, selection)
-            return keyed_by(event_signing.sign_grouped_slices(grouped, params, budget.SLICE_ROWS)), grouped.report
+            return keyed_by(sign_slices(grouped, params)), grouped.report
         members, part = membership_of(source, selection)
-        return keyed_by(signature_slices(members, params, budget.SLICE_ROWS)), part
+        return keyed_by(sign_slices(members, params)), part
     return sign_part
 
 
@@ -156,7 +151,7 @@ def _keyed_part(frame, spec, where, params, report):
         sets = group_sets(frame.filter(selection.condition), spec, where, part, allow_empty=True)
         if sets.height == 0:
             return iter(()), part
-        return sign_sets_slices(sets, spec.key_columns, params, budget.SLICE_ROWS), part
+        return sign_slices(SetRows(sets, spec.key_columns), params), part
     return sign_part
 
 

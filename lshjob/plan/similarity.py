@@ -14,6 +14,7 @@ import numpy as np
 import polars as pl
 
 from lshjob.core._jit import numba
+from lshjob.core import hashing
 from lshjob.core.compile_cache import readonly
 from lshjob.errors import InputError
 from lshjob.core.sets import Membership
@@ -151,7 +152,7 @@ def restricted_index(sets: Membership, wanted: np.ndarray) -> tuple[np.ndarray, 
     return offsets, dense, len(wanted)
 
 
-GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+GOLDEN = np.uint64(hashing.GOLDEN)  # odd: multiplicative hashing of codes to bitmap bits
 
 
 @numba.njit(parallel=True, cache=True)

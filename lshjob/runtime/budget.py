@@ -19,6 +19,7 @@ import resource
 from dataclasses import dataclass
 
 from lshjob.errors import ParameterError
+from lshjob.core import slicing  # SLICE_ROWS: rows of a signature slice, read when used
 
 _UNITS = {"": 1, "B": 1, "KB": 10**3, "MB": 10**6, "GB": 10**9, "TB": 10**12,
           "KIB": 2**10, "MIB": 2**20, "GIB": 2**30, "TIB": 2**40,
@@ -134,7 +135,6 @@ KEYED_BYTES_PER_EVENT = 256
 MERGE_COPIES = 4  # rows read (with decode buffers), the merged matrix and its column, writing: 3.1x measured
 # in one part with every key distinct (2M rows, 6.3 GiB), 2.7x with every key twice; under --memory 1GiB
 # the peaks were 1.10 and 0.99 GiB
-SLICE_ROWS = 1 << 16  # entities signed at a time when a writer streams them (64 MB at k=128)
 SLICES_IN_FLIGHT = 4  # slices the streaming writer may hold at once
 BYTES_PER_SIGNATURE_VALUE = 8  # one uint64 a permutation
 VERIFY_BYTES_PER_PAIR = 64  # candidate row in polars and numpy, plus the float results
@@ -192,7 +192,7 @@ def merge_need(rows: int, perms: int) -> int:
 
 def writer_reserve(perms: int) -> int:
     """The signature slices in flight to a streaming writer (kept out of what grouping may take)."""
-    return SLICES_IN_FLIGHT * SLICE_ROWS * BYTES_PER_SIGNATURE_VALUE * perms
+    return SLICES_IN_FLIGHT * slicing.SLICE_ROWS * BYTES_PER_SIGNATURE_VALUE * perms
 
 
 def held_bytes(entities: int) -> int:

@@ -14,7 +14,8 @@ SplitMix64 sequence started at the user's seed and fmix64 is MurmurHash3's final
 64-bit words, so distinct hashed elements never tie. The Jaccard estimate is the
 fraction of equal positions (Broder 1997).
 
-Output contract of :func:`sign_sets` (a polars DataFrame):
+The signature table (a polars DataFrame; :mod:`lshjob.sign.slices` makes it from every
+kind of input):
 
 * the key columns (``entity``, and ``segment``/``period`` when present), unique, sorted;
 * ``signature``: List(UInt64) of length k;
@@ -27,21 +28,22 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterator
 
 import numpy as np
 import polars as pl
 
 from lshjob.contracts.signature_file import FORMAT_NAME, FORMAT_VERSION, HASH_FAMILY, METADATA_KEY, file_meta
-from lshjob.core._jit import numba
+from lshjob.core import slicing
 from lshjob.core.atomic import atomic_file
-from lshjob.sign import oph
+from lshjob.core.hashing import splitmix64_sequence, xxh64_strings
+from lshjob.core.sets import Membership
+from lshjob.core.slicing import slice_bounds
 from lshjob.errors import IncompatibleSignatures, InputError, ParameterError
-from lshjob.core.hashing import element_hashes, fmix64, splitmix64_sequence, xxh64_strings
-from lshjob.core.sets import Membership, element_hash, store_row
+from lshjob.sign import _oph, oph
+from lshjob.sign._kperm import sign_kperm
+from lshjob.sign._merge import matrix_list, minimum_by_run
 
 SCHEMES = ("kperm", "oph")
-MAX_U64 = np.iinfo(np.uint64).max
 
 
 @dataclass(frozen=True)
@@ -64,32 +66,8 @@ class SignatureParams:
         return splitmix64_sequence(self.seed, self.perms)
 
 
-CHUNK = 256  # entities per parallel task: one row buffer each
-
-
-@numba.njit(parallel=True, cache=True)
-def _sign_kperm(offsets, codes, table, ids, salts, by_position):
-    """Sets ids[t] of a CSR element array (elements as in :func:`membership.element_hash`)."""
-    n = ids.shape[0]
-    k = salts.shape[0]
-    # filled a chunk at a time in parallel, so pages are first touched by the threads
-    out = np.empty((k, n) if by_position else (n, k), dtype=np.uint64)
-    for c in numba.prange((n + CHUNK - 1) // CHUNK):
-        row = np.empty(k, dtype=np.uint64)
-        for t in range(c * CHUNK, min(n, (c + 1) * CHUNK)):
-            g = ids[t]
-            row[:] = np.uint64(0xFFFFFFFFFFFFFFFF)
-            for j in range(offsets[g], offsets[g + 1]):
-                x = element_hash(j, codes, table)
-                for i in range(k):
-                    v = fmix64(x ^ salts[i])
-                    if v < row[i]:
-                        row[i] = v
-            store_row(out, t, row, by_position)
-    return out
-
-
 NO_ARRAY = np.empty(0, dtype=np.uint64)
+NO_CODES = np.empty(0, dtype=np.int64)
 
 
 def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params: SignatureParams) -> np.ndarray:
@@ -97,15 +75,20 @@ def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params: SignatureParam
 
     Set g is ``h0[offsets[g]:offsets[g+1]]``; every set must be non-empty.
     """
-    h0 = np.ascontiguousarray(h0, dtype=np.uint64)
     offsets = np.ascontiguousarray(offsets, dtype=np.int64)
-    return _sign(offsets, np.empty(0, dtype=np.int64), h0, np.arange(len(offsets) - 1), params, False)
+    return sign_csr(offsets, h0, np.arange(len(offsets) - 1), params)
+
+
+def sign_csr(offsets: np.ndarray, h0: np.ndarray, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
+    """Signatures (len(ids) x k) of the sets ``ids`` of element hashes ``h0`` in CSR form."""
+    h0 = np.ascontiguousarray(h0, dtype=np.uint64)
+    return _sign(offsets, NO_CODES, h0, np.ascontiguousarray(ids, dtype=np.int64), params, False)
 
 
 def _sign(offsets, codes, table, ids, params: SignatureParams, by_position: bool) -> np.ndarray:
     if params.scheme == "oph":  # the stored form (densified by position: comparable_by_position)
-        return oph.sign_oph(offsets, codes, table, ids, params.perms, oph_salts(params))
-    return _sign_kperm(offsets, codes, table, ids, params.salts(), by_position)
+        return _oph.sign_oph(offsets, codes, table, ids, params.perms, oph_salts(params))
+    return sign_kperm(offsets, codes, table, ids, params.salts(), by_position)
 
 
 def oph_salts(params: SignatureParams) -> np.ndarray:
@@ -134,7 +117,7 @@ def comparable_by_position(sets: Membership, ids: np.ndarray, params: SignatureP
     polars (the band stage reads positions, not rows, and only the first b x r of them)."""
     positions = params.perms if positions is None else positions
     if params.scheme == "oph":
-        return oph.sign_densified(*_membership_source(sets, ids), params.perms, oph_salts(params), positions)
+        return _oph.sign_densified(*_membership_source(sets, ids), params.perms, oph_salts(params), positions)
     prefix = SignatureParams(scheme="kperm", perms=positions, seed=params.seed)  # salts: a prefix of one sequence
     return _sign(*_membership_source(sets, ids), prefix, True)
 
@@ -142,18 +125,6 @@ def comparable_by_position(sets: Membership, ids: np.ndarray, params: SignatureP
 def _membership_source(sets: Membership, ids: np.ndarray) -> tuple:
     table = NO_ARRAY if sets.text_hashes is None else np.ascontiguousarray(sets.text_hashes, dtype=np.uint64)
     return sets.offsets, sets.elements, table, np.ascontiguousarray(ids, dtype=np.int64)
-
-
-def signature_slices(sets: Membership, params: SignatureParams, rows: int) -> Iterator[pl.DataFrame]:
-    """The signature table (module contract, key ``entity``) of every set of a Membership,
-    ``rows`` sets at a time (for a writer that streams them)."""
-    sizes = sets.set_sizes
-    for lo in range(0, max(sets.size, 1), max(rows, 1)):
-        hi = min(sets.size, lo + rows)
-        matrix = sign_membership(sets, np.arange(lo, hi), params)
-        yield pl.DataFrame({"entity": sets.keys.slice(lo, hi - lo)}).with_columns(
-            signature_column(matrix), pl.Series("set_size", sizes[lo:hi], dtype=pl.UInt32)
-        )
 
 
 def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:
@@ -166,29 +137,6 @@ def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:
     np.cumsum(sizes, out=offsets[1:])
     h0 = xxh64_strings(pl.Series(flat, dtype=pl.String))
     return signature_matrix(h0, offsets, params)
-
-
-def sign_sets(sets: pl.DataFrame, keys: list[str], params: SignatureParams) -> pl.DataFrame:
-    """Membership rows (ingest contract, sorted by keys) -> signature table (module contract)."""
-    return next(sign_sets_slices(sets, keys, params, max(sets.height, 1)))
-
-
-def sign_sets_slices(sets: pl.DataFrame, keys: list[str], params: SignatureParams,
-                     rows: int) -> Iterator[pl.DataFrame]:
-    """:func:`sign_sets`, ``rows`` sets at a time (for a writer that streams them)."""
-    h0 = np.ascontiguousarray(element_hashes(sets.get_column("element")), dtype=np.uint64)
-    sizes = run_lengths(sets, keys)
-    offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
-    np.cumsum(sizes, out=offsets[1:])
-    key_frame = sets.select(keys).gather(offsets[:-1])
-    n = len(sizes)
-    for lo in range(0, max(n, 1), max(rows, 1)):
-        hi = min(n, lo + rows)
-        matrix = _sign(offsets, np.empty(0, dtype=np.int64), h0, np.arange(lo, hi), params, False)
-        yield key_frame.slice(lo, hi - lo).with_columns(
-            signature_column(matrix),
-            pl.Series("set_size", sizes[lo:hi], dtype=pl.UInt32),
-        )
 
 
 def run_lengths(table: pl.DataFrame, keys: list[str]) -> np.ndarray:
@@ -230,9 +178,8 @@ def estimate_set_size(matrix: np.ndarray) -> np.ndarray:
     """
     k = matrix.shape[1]
     sums = np.empty(matrix.shape[0], dtype=np.float64)
-    step = oph.ESTIMATE_ROWS
-    for a in range(0, matrix.shape[0], step):  # blocks: no full-size float copies
-        sums[a:a + step] = ((matrix[a:a + step].astype(np.float64) + 1.0) / 2.0**64).sum(axis=1)
+    for a, b in slice_bounds(matrix.shape[0], slicing.SLICE_ROWS):  # blocks: no full-size float copies
+        sums[a:b] = ((matrix[a:b].astype(np.float64) + 1.0) / 2.0**64).sum(axis=1)
     return np.maximum(1.0, (k - 1) / sums)
 
 
@@ -270,39 +217,17 @@ def merge_signatures(
     lengths = run_lengths(order, keep) if order.height else np.zeros(0, dtype=np.int64)
     starts = np.zeros(len(lengths), dtype=np.int64)
     np.cumsum(lengths[:-1], out=starts[1:])
-    matrices = numba.typed.List.empty_list(READONLY_MATRIX)  # polars' buffers are read-only
+    matrices = matrix_list()
     for t, _ in tables:
         matrices.append(signature_array(t, k))
     firsts = np.cumsum([0] + [t.height for t, _ in tables]).astype(np.int64)
-    matrix = _minimum_by_run(matrices, firsts, order["__row"].to_numpy().astype(np.int64), starts, lengths, k)
+    matrix = minimum_by_run(matrices, firsts, order["__row"].to_numpy().astype(np.int64), starts, lengths, k)
     sizes = oph.set_size_estimate(matrix) if first_meta["scheme"] == "oph" else estimate_set_size(matrix)
     merged = order.select(keep).gather(starts).with_columns(
         signature_column(matrix),
         pl.Series("set_size", np.round(sizes), dtype=pl.UInt32),
     )
     return merged, merged_meta(first_meta, keep)
-
-
-READONLY_MATRIX = numba.types.Array(numba.types.uint64, 2, "C", readonly=True)
-
-
-@numba.njit(parallel=True, cache=True)
-def _minimum_by_run(matrices, firsts, rows, starts, lengths, k):
-    """Row g of the result: the element-wise minimum of the rows ``rows[starts[g]:starts[g] +
-    lengths[g]]`` of the stacked matrices (matrix t holds rows firsts[t]..firsts[t + 1] - 1)."""
-    out = np.empty((starts.shape[0], k), dtype=np.uint64)
-    for g in numba.prange(starts.shape[0]):
-        row = out[g]
-        for j in range(starts[g], starts[g] + lengths[g]):
-            r = rows[j]
-            t = np.searchsorted(firsts, r, side="right") - 1
-            source = matrices[t][r - firsts[t]]
-            if j == starts[g]:
-                row[:] = source
-            else:
-                for i in range(k):
-                    row[i] = min(row[i], source[i])
-    return out
 
 
 def merged_meta(first_meta: dict, keep: list[str]) -> dict:
@@ -344,9 +269,6 @@ def params_from_metadata(meta: dict) -> SignatureParams:
     return SignatureParams(scheme=meta["scheme"], perms=int(meta["k"]), seed=int(meta["seed"]))
 
 
-SIGNATURE_ROW_GROUP = 1 << 16
-
-
 def write_signatures(table: pl.DataFrame | pl.LazyFrame, path: str | Path, meta: dict) -> Path:
     """Write a signature file atomically (temporary name in the same folder, then rename); a
     lazy table is streamed into it (signatures made a key range at a time)."""
@@ -358,9 +280,9 @@ def write_signatures(table: pl.DataFrame | pl.LazyFrame, path: str | Path, meta:
         # parts) decodes little more than the rows it keeps.
         if isinstance(table, pl.LazyFrame):
             table.sink_parquet(tmp, compression="snappy", metadata=metadata, maintain_order=True,
-                               row_group_size=SIGNATURE_ROW_GROUP)
+                               row_group_size=slicing.SLICE_ROWS)
         else:
-            table.write_parquet(tmp, compression="snappy", metadata=metadata, row_group_size=SIGNATURE_ROW_GROUP)
+            table.write_parquet(tmp, compression="snappy", metadata=metadata, row_group_size=slicing.SLICE_ROWS)
     return path
 
 

@@ -8,8 +8,11 @@ import time
 
 from polars.io.plugins import register_io_source
 
+from lshjob.core import slicing
+from lshjob.core.slicing import slice_bounds
 from lshjob.errors import InputError
-from lshjob.sign.signatures import SIGNATURE_ROW_GROUP, write_signatures
+from lshjob.sign.signatures import write_signatures
+
 
 
 def write_streamed(tables, out, meta: dict) -> int:
@@ -45,8 +48,8 @@ def write_streamed(tables, out, meta: dict) -> int:
                     table = table.select(with_columns)
                 # a row group at a time: polars asks for the next range while it still
                 # encodes, and by then holds only the last slices of this one
-                for start in range(0, table.height, SIGNATURE_ROW_GROUP):
-                    yield table.slice(start, SIGNATURE_ROW_GROUP)
+                for lo, hi in slice_bounds(table.height, slicing.SLICE_ROWS):
+                    yield table.slice(lo, hi - lo)
                 table = None  # let the range written go before the next is made
                 table = next(pending, None)
         except Exception as exc:

@@ -32,8 +32,9 @@ import numpy as np
 import polars as pl
 
 from lshjob.contracts.tables import BUCKET_ROWS
+from lshjob.core.hashing import GOLDEN
 
-BAND_MULTIPLIER = 0x9E3779B97F4A7C15
+BAND_MULTIPLIER = GOLDEN  # odd, so h -> h * M is invertible mod 2**64 (a band's values mix without collapsing)
 
 BUCKET_ROWS_SCHEMA = dict(BUCKET_ROWS.schema)  # declared once, in lshjob.contracts.tables
 

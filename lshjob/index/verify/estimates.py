@@ -7,6 +7,7 @@ import numpy as np
 import polars as pl
 
 from lshjob.core.sets import Membership
+from lshjob.core.slicing import slice_bounds
 from lshjob.index.verify._agreement import signature_agreement
 from lshjob.sign.signatures import SignatureParams, comparable, sign_membership
 
@@ -23,8 +24,8 @@ def add_estimates_between(verified: pl.DataFrame, left_sets: Membership, left_fi
     right_all = verified["right_rep"].to_numpy() - right_first
     step = len(left_all) if max_bytes is None else max(1024, max_bytes // (4 * 8 * params.perms))
     estimates = []
-    for lo in range(0, len(left_all), max(step, 1)):
-        left, right = left_all[lo:lo + step], right_all[lo:lo + step]
+    for lo, hi in slice_bounds(len(left_all), step):
+        left, right = left_all[lo:hi], right_all[lo:hi]
         if left_sets is right_sets and left_first == right_first:
             left_matrix, left_row = _signed(left_sets, np.concatenate([left, right]), params)
             right_matrix, right_row = left_matrix, left_row

@@ -13,6 +13,7 @@ import numpy as np
 import polars as pl
 
 from lshjob.core.sets import Membership
+from lshjob.core.slicing import slice_bounds
 from lshjob.index.verify._jaccard import jaccard_between
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
 from lshjob.index.verify.estimates import add_estimates_between
@@ -48,8 +49,8 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
             right = left if j == i else store.load(j)
             frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
             kept = []
-            for offset in range(0, _rows(files), step):
-                chunk = frame.slice(offset, step).collect()
+            for lo, hi in slice_bounds(_rows(files), step):
+                chunk = frame.slice(lo, hi - lo).collect()
                 kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
             block = pl.concat(kept) if kept else None
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
