@@ -96,7 +96,7 @@ SET_ROWS = Contract(
     ],
     row="one element of one set, with its summed weight",
     producer="lshjob.ingest.spec.group_set_rows (load_sets)",
-    consumer="lshjob.sign.signatures.sign_sets",
+    consumer="lshjob.sign.slices.sign_slices",
 )
 
 SIGNATURES = Contract(
@@ -111,7 +111,7 @@ SIGNATURES = Contract(
         ("set_size >= 1", pl.col("set_size") >= 1),
     ],
     row="one signed set; the file's metadata: lshjob.contracts.signature_file",
-    producer="lshjob.jobs.sign.sign_file, lshjob.sign.signatures.sign_sets, merge_signatures",
+    producer="lshjob.jobs.sign.sign_file, lshjob.sign.slices.sign_slices, merge_signatures",
     consumer="lshjob merge, estimate_jaccard, the user",
 )
 

@@ -48,7 +48,8 @@ from lshjob.runtime import provenance, stopping
 from lshjob.runtime.folder_lock import output_lock
 from lshjob.runtime.outputs import output_folder
 from lshjob.runtime.progress import QUIET, StageProgress
-from lshjob.sign.signatures import SignatureParams, sign_sets
+from lshjob.sign.signatures import SignatureParams
+from lshjob.sign.slices import sign_sets
 from lshjob.store import catalog
 from lshjob.store import files as store_files
 
