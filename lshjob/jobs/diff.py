@@ -96,7 +96,7 @@ def diff_indexes(old: str | Path, new: str | Path, out: str | Path | None = None
         _write_atomic(entities, out)
     warnings = []
     for name in ("threshold", "top_k"):
-        before, after = old_manifest["options"].get(name), new_manifest["options"].get(name)
+        before, after = old_manifest.options.get(name), new_manifest.options.get(name)
         if before != after:
             warnings.append(f"--{name.replace('_', '-')} differs ({before} in {old}, {after} in {new}): "
                             "part of the change comes from the options, not the data")
