@@ -20,7 +20,7 @@ sys.path.insert(0, str(Path(__file__).parent))
 from common import finish, events_with_similar_pairs, machine  # noqa: E402
 
 from lshjob import EventSpec, load_sets  # noqa: E402
-from lshjob.core.sets import Membership  # noqa: E402
+from lshjob.core.sets import ElementSets  # noqa: E402
 from lshjob.index.verify import exact_jaccard, jaccard_at_least  # noqa: E402
 
 
@@ -31,7 +31,7 @@ def main() -> None:
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     path = events_with_similar_pairs(args.entities)
-    sets = Membership.from_sets(load_sets(path, EventSpec(entity="entity", element="element"))[0])
+    sets = ElementSets.from_sets(load_sets(path, EventSpec(entity="entity", element="element"))[0])
     rng = np.random.default_rng(0)
     left = rng.integers(0, sets.size, args.pairs)
     right = rng.integers(0, sets.size, args.pairs)

@@ -23,7 +23,7 @@ _PUBLIC = {
     "IncompatibleSignatures": "errors", "InputError": "errors", "LshjobError": "errors",
     "ParameterError": "errors",
     "EventSpec": "ingest.spec", "load_sets": "ingest.spec",
-    "SignatureParams": "sign.signatures", "estimate_jaccard": "sign.signatures",
+    "SignatureParams": "sign.params", "estimate_jaccard": "sign.signatures",
     "merge_signatures": "sign.signatures", "read_signatures": "sign.signatures",
     "sign_sets": "sign.slices", "write_signatures": "sign.signatures",
 }

@@ -76,7 +76,7 @@ def fmix64_np(x: np.ndarray) -> np.ndarray:
 
 
 def element_hashes(sets) -> np.ndarray:
-    """The XXH64 every signature starts from, for each element of an ElementSets/Membership
+    """The XXH64 every signature starts from, for each element of an ElementSets/ElementSets
     (``text_hashes[code]`` for text elements, the hash of the decimal text for integers)."""
     from lshjob.core.hashing import xxh64_integers
 

@@ -53,14 +53,14 @@ def test_shared_positions_are_exactly_the_repeated_keys():
 
 def test_signatures_by_position_are_the_transposed_comparable_signatures():
     # Oracle: the row layout (signed and densified separately), transposed.
-    from lshjob.core.sets import Membership
+    from lshjob.core.sets import ElementSets
     from lshjob.sign.signatures import SignatureParams, comparable, comparable_by_position, sign_membership
 
     import polars as pl
 
     rng = np.random.default_rng(9)
     sizes = rng.integers(1, 60, size=700)
-    sets = Membership.from_sets(pl.DataFrame({
+    sets = ElementSets.from_sets(pl.DataFrame({
         "entity": np.repeat(np.arange(700), sizes),
         "element": np.concatenate([rng.choice(300, size=s, replace=False) for s in sizes]),
     }))

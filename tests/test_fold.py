@@ -8,7 +8,7 @@ import xxhash
 from test_hashing import fmix64_reference
 
 from lshjob import EventSpec, SignatureParams
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.ingest.loading import read_grouped
 from lshjob.sign.signatures import (
     comparable_by_position,
@@ -74,7 +74,7 @@ def test_every_signing_entry_point_follows_the_definition(tmp_path, scheme, text
 
     # CSR kernels: element hashes in place, codes hashed in the loop or looked up in a table
     assert np.array_equal(sign_element_lists(sets, params), expected)
-    members = Membership.from_sets(rows)
+    members = ElementSets.from_sets(rows)
     assert np.array_equal(sign_membership(members, np.arange(n), params), expected)
     if scheme == "kperm":  # laid out by position, the first 10 positions only
         assert np.array_equal(comparable_by_position(members, np.arange(n), params, 10), expected[:, :10].T)

@@ -170,9 +170,9 @@ def test_streaming_loader_matches_the_grouped_rows(small_events, spec):
     # give the same entities, the same set sizes and the same element hashes, set by set.
     from helpers import element_hashes
     from lshjob.ingest.loading import load_membership
-    from lshjob.core.sets import Membership
+    from lshjob.core.sets import ElementSets
 
-    expected = Membership.from_sets(load_sets(small_events, spec)[0])
+    expected = ElementSets.from_sets(load_sets(small_events, spec)[0])
     got, report = load_membership(small_events, spec)
     assert got.keys.to_list() == expected.keys.to_list()
     assert np.array_equal(got.offsets, expected.offsets)

@@ -133,7 +133,7 @@ def test_package_init_files_only_re_export():
 
 @pytest.mark.parametrize("statement", [
     "import lshjob",
-    "from lshjob import EventSpec, ParameterError",
+    "from lshjob import EventSpec, ParameterError, SignatureParams",
     "import lshjob.cli.console",
 ])
 def test_light_import_loads_no_compiler_or_engine(statement):

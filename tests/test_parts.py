@@ -13,7 +13,7 @@ from lshjob import EventSpec, ParameterError
 from lshjob.runtime import budget, partitions
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.ingest.loading import entity_counts, event_bytes, membership_of, open_events
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.index.verify import jaccard_between
 
 SPEC = EventSpec(entity="patron", element="title")
@@ -150,7 +150,7 @@ def test_jaccard_between_two_set_tables_matches_brute_force():
     def table(n):
         sets = [np.unique(rng.integers(0, 30, int(rng.integers(1, 15)))) for _ in range(n)]
         offsets = np.concatenate([[0], np.cumsum([len(s) for s in sets])]).astype(np.int64)
-        return sets, Membership(pl.Series([], dtype=pl.Int64), offsets, np.concatenate(sets).astype(np.int64))
+        return sets, ElementSets(pl.Series([], dtype=pl.Int64), offsets, np.concatenate(sets).astype(np.int64))
 
     a_sets, a = table(60)
     b_sets, b = table(40)

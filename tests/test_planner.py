@@ -180,12 +180,12 @@ def test_against_all_sample_estimates_population_pair_counts(tmp_path):
     from helpers import planted_pairs
     from test_run import brute_force_pairs
 
-    from lshjob.core.sets import Membership
+    from lshjob.core.sets import ElementSets
     from lshjob.plan.similarity import sample_histogram_from_sets
 
     events = planted_pairs(600, 0.3, seed=12, background=400)
     truth = brute_force_pairs(events, 0.5)
-    sets = Membership.from_sets(events.rename({"patron": "entity", "title": "element"}).unique())
+    sets = ElementSets.from_sets(events.rename({"patron": "entity", "title": "element"}).unique())
     n = sets.size
     nearly_all = sample_histogram_from_sets(sets, n - 1, seed=1, threshold=0.5)
     assert nearly_all.design == "against_all"
@@ -217,7 +217,7 @@ def test_plan_judges_a_given_banding(tmp_path, demo_events):
 def test_restricted_index_keeps_exactly_the_wanted_elements(share):
     # Oracle: numpy's isin and searchsorted, set by set. Codes span the whole int64 range
     # (negative, extreme) and repeat across sets; from no element wanted to all of them.
-    from lshjob.core.sets import Membership
+    from lshjob.core.sets import ElementSets
     from lshjob.plan.similarity import restricted_index
 
     rng = np.random.default_rng(31)
@@ -226,7 +226,7 @@ def test_restricted_index_keeps_exactly_the_wanted_elements(share):
     sizes = rng.integers(0, 40, 700)
     offsets = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
     elements = rng.choice(pool, offsets[-1])
-    sets = Membership(pl.Series("entity", np.arange(700)), offsets, elements, None)
+    sets = ElementSets(pl.Series("entity", np.arange(700)), offsets, elements, None)
     wanted = rng.choice(pool, int(share * len(pool))) if share < 1 else pool
 
     got_offsets, got_dense, n_ids = restricted_index(sets, wanted)

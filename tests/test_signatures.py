@@ -130,7 +130,7 @@ def test_signature_ignores_order_and_repeats(a, rnd):
 def test_integer_and_text_keys_sign_alike(scheme):
     # Integers hash through their decimal text (hashing.py), so both readings of a column agree;
     # the membership path (codes, dictionary hashes) must agree with the row path too.
-    from lshjob.core.sets import Membership
+    from lshjob.core.sets import ElementSets
     from lshjob.sign.signatures import sign_membership
 
     p = SignatureParams(scheme=scheme, perms=16)
@@ -141,9 +141,9 @@ def test_integer_and_text_keys_sign_alike(scheme):
     by_rows = sign_sets(ints, ["entity"], p)["signature"].to_list()
     assert by_rows == sign_sets(text, ["entity"], p)["signature"].to_list()
     for rows in (ints, text):
-        sets = Membership.from_sets(rows)
+        sets = ElementSets.from_sets(rows)
         assert sign_membership(sets, np.arange(sets.size), p).tolist() == by_rows
-    big = Membership.from_sets(unsigned)  # above int64: coded as text
+    big = ElementSets.from_sets(unsigned)  # above int64: coded as text
     assert big.text_hashes is not None
     assert sign_membership(big, np.arange(2), p).tolist() == sign_sets(
         unsigned.with_columns(pl.col("element").cast(pl.String)), ["entity"], p)["signature"].to_list()

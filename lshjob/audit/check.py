@@ -27,7 +27,7 @@ from lshjob.errors import InputError, ParameterError
 from lshjob.index.collapse import fingerprints
 from lshjob.ingest.spec import EventSpec, resolve_paths
 from lshjob.ingest.loading import entity_counts, event_bytes, grouping_need, membership_of, open_events
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.plan.banding import candidate_probability
 from lshjob.contracts.manifest import Manifest
 from lshjob.plan.choose import Plan
@@ -194,7 +194,7 @@ def _compare_events(digest, source, manifest: Manifest, warnings: list[str]) -> 
                         f"{inputs.get('bytes', 0):,}); recall is measured against these events")
 
 
-def _compare(blocks, n_blocks: int, sampled: Membership, published: pl.DataFrame,
+def _compare(blocks, n_blocks: int, sampled: ElementSets, published: pl.DataFrame,
              threshold: float) -> tuple[pl.DataFrame, pl.DataFrame, str]:
     """Exact truth for the sampled entities against the entities of each block of sets, and
     the exact Jaccard of each published pair of a sampled entity.
@@ -236,11 +236,11 @@ def _compare(blocks, n_blocks: int, sampled: Membership, published: pl.DataFrame
     return pl.concat(truths).sort("a", "b"), pl.concat(checks), scope
 
 
-def _append(first: Membership, second: Membership) -> Membership:
+def _append(first: ElementSets, second: ElementSets) -> ElementSets:
     """The sets of ``first`` then those of ``second``, as one table (element codes agree: both
     come from one reading of the events)."""
     offsets = np.concatenate([first.offsets, second.offsets[1:] + first.offsets[-1]])
-    return Membership(pl.concat([first.keys, second.keys]), offsets,
+    return ElementSets(pl.concat([first.keys, second.keys]), offsets,
                       np.concatenate([first.elements, second.elements]), first.text_hashes)
 
 

@@ -25,14 +25,19 @@ INT64_MAX = np.iinfo(np.int64).max
 
 
 @dataclass
-class Membership:
+class ElementSets:
+    """Each entity's set of elements in compressed rows (CSR): entity id i holds the sorted
+    element codes ``elements[offsets[i]:offsets[i + 1]]``. What signing, verification and the
+    audit read. (Not the polars table of (entity, element) rows of the ingest stage: that is
+    SET_ROWS, :mod:`lshjob.contracts.tables`.)"""
+
     keys: pl.Series  # unique entity keys; entity id = position
     offsets: np.ndarray  # int64, length n + 1
     elements: np.ndarray  # int64 element codes, sorted within each entity
     text_hashes: np.ndarray | None = None  # XXH64 per code when elements are text keys
 
     @classmethod
-    def from_sets(cls, sets: pl.DataFrame) -> "Membership":
+    def from_sets(cls, sets: pl.DataFrame) -> "ElementSets":
         """From membership rows with columns ``entity`` and ``element`` (ingest contract);
         entities in sorted key order."""
         codes, text_hashes = element_codes(sets.get_column("element"))
@@ -40,7 +45,7 @@ class Membership:
         return cls.from_sorted(frame, text_hashes)
 
     @classmethod
-    def from_sorted(cls, frame: pl.DataFrame, text_hashes: np.ndarray | None) -> "Membership":
+    def from_sorted(cls, frame: pl.DataFrame, text_hashes: np.ndarray | None) -> "ElementSets":
         """From rows (entity, code) sorted by entity, then code."""
         runs = frame.select(pl.col("entity").rle()).unnest("entity")
         sizes = runs["len"].to_numpy().astype(np.int64)
@@ -57,11 +62,11 @@ class Membership:
     def set_sizes(self) -> np.ndarray:
         return np.diff(self.offsets)
 
-    def subset(self, ids: np.ndarray) -> "Membership":
+    def subset(self, ids: np.ndarray) -> "ElementSets":
         """The sets of the given entity ids (kept in the given order)."""
         ids = np.ascontiguousarray(ids, dtype=np.int64)
         offsets, elements = gather_sets(self.offsets, self.elements, ids)
-        return Membership(self.keys.gather(ids), offsets, elements, self.text_hashes)
+        return ElementSets(self.keys.gather(ids), offsets, elements, self.text_hashes)
 
 
 def element_codes(values: pl.Series) -> tuple[pl.Series, np.ndarray | None]:

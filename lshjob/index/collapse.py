@@ -28,7 +28,7 @@ import polars as pl
 
 from lshjob.core._jit import numba
 from lshjob.core.hashing import fmix64
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 
 _C1 = np.uint64(0x243F6A8885A308D3)
 _C2 = np.uint64(0x13198A2E03707344)
@@ -70,12 +70,12 @@ def _confirm(offsets, elements, rep_of):
     return out
 
 
-def fingerprints(sets: Membership) -> tuple[np.ndarray, np.ndarray]:
+def fingerprints(sets: ElementSets) -> tuple[np.ndarray, np.ndarray]:
     """The two 64-bit halves of each set's order-independent fingerprint (module docstring)."""
     return _fingerprints(sets.offsets, sets.elements)
 
 
-def collapse_identical(sets: Membership, prints: tuple[np.ndarray, np.ndarray] | None = None
+def collapse_identical(sets: ElementSets, prints: tuple[np.ndarray, np.ndarray] | None = None
                        ) -> tuple[np.ndarray, np.ndarray]:
     """(rep_of, reps): see the module contract. ``prints``: the sets' fingerprints, when the
     caller already has them."""

@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.index.band.base import BAND_MULTIPLIER, BUCKET_ROWS_SCHEMA, save_keys
 from lshjob.index.join.base import CANDIDATES_SCHEMA, SKEW_COLUMNS, JoinSettings
 from lshjob.index.verify.base import VERIFIED_SCHEMA, VerifySettings
@@ -255,16 +255,16 @@ def check_join(engine, folder: Path | None = None) -> None:
 class HeldRanges:
     """Sets by consecutive ranges of entity ids (:class:`lshjob.index.verify.base.SetStore`)."""
 
-    def __init__(self, sets: Membership, cuts: list[int]) -> None:
+    def __init__(self, sets: ElementSets, cuts: list[int]) -> None:
         bounds = [0, *cuts, sets.size]
         self.ranges = [(a, b - 1) for a, b in pairwise(bounds)]
         self.parts = [sets.subset(np.arange(a, b + 1)) for a, b in self.ranges]
 
-    def load(self, i: int) -> Membership:
+    def load(self, i: int) -> ElementSets:
         return self.parts[i]
 
 
-def verify_input(seed: int = 4, entities: int = 240) -> tuple[Membership, list[set[int]], pl.DataFrame]:
+def verify_input(seed: int = 4, entities: int = 240) -> tuple[ElementSets, list[set[int]], pl.DataFrame]:
     """Sets drawn around a few themes (many pairs near any threshold, a few identical) and
     candidate pairs among them."""
     rng = np.random.default_rng(seed)
@@ -285,7 +285,7 @@ def verify_input(seed: int = 4, entities: int = 240) -> tuple[Membership, list[s
     pairs = pl.DataFrame({"left_rep": np.minimum(left, right)[keep], "right_rep": np.maximum(left, right)[keep]})
     pairs = pl.concat([pairs, pl.DataFrame({"left_rep": [1, 1, 7], "right_rep": [7, 200, 200]})]).unique()
     pairs = pairs.with_columns(bands_shared=pl.Series(rng.integers(1, 6, size=pairs.height), dtype=pl.Int32))
-    return Membership.from_sets(frame), sets, pairs.cast(CANDIDATES_SCHEMA)
+    return ElementSets.from_sets(frame), sets, pairs.cast(CANDIDATES_SCHEMA)
 
 
 def _write_blocks(pairs: pl.DataFrame, ranges: list[tuple[int, int]], out: Path) -> Path:

@@ -1,6 +1,6 @@
-"""Ingest for the run: events -> :class:`~lshjob.core.sets.Membership` in a streaming pass.
+"""Ingest for the run: events -> :class:`~lshjob.core.sets.ElementSets` in a streaming pass.
 
-Same checks and same result as ``Membership.from_sets(load_sets(...))`` (one set per
+Same checks and same result as ``ElementSets.from_sets(load_sets(...))`` (one set per
 entity), built without polars' group-by over (entity, element), which at 40 million events
 costs several seconds and about 100 bytes per event:
 
@@ -40,7 +40,7 @@ from lshjob.ingest import grouping
 from lshjob.errors import InputError, ParameterError, key_text
 from lshjob.core.hashing import xxh64_strings
 from lshjob.ingest.spec import EventSpec, IngestReport, validated_events
-from lshjob.core.sets import INT64_MAX, Membership, nfc_codes
+from lshjob.core.sets import INT64_MAX, ElementSets, nfc_codes
 from lshjob.runtime import budget
 from lshjob.runtime.partitions import EntitySelection, events_per_entity
 
@@ -48,8 +48,8 @@ BATCH_ROWS = 1_000_000  # as fast as 4M here, and a quarter of the memory in fli
 # bytes an event and the key range's table: lshjob.runtime.budget (grouping_bytes, dense_span)
 
 
-def load_membership(source: str | Path, spec: EventSpec, memory: int | None = None) -> tuple[Membership, IngestReport]:
-    """Read events into a Membership (entities in sorted key order); see the module docstring.
+def load_membership(source: str | Path, spec: EventSpec, memory: int | None = None) -> tuple[ElementSets, IngestReport]:
+    """Read events into a ElementSets (entities in sorted key order); see the module docstring.
 
     With ``memory`` (bytes), refuse before reading when grouping the events would need more."""
     events = open_events(source, spec)
@@ -57,7 +57,7 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
     return membership_of(events, None)
 
 
-def membership_of(events: "EventSource", selection: "EntitySelection | None") -> tuple[Membership, IngestReport]:
+def membership_of(events: "EventSource", selection: "EntitySelection | None") -> tuple[ElementSets, IngestReport]:
     """The sets of the selected entities (all by default), entities in sorted key order."""
     grouped = read_and_group(events, selection)
     keys, offsets, elements, report, where = grouped.keys, grouped.offsets, grouped.codes, grouped.report, grouped.where
@@ -77,14 +77,14 @@ def membership_of(events: "EventSource", selection: "EntitySelection | None") ->
         offsets = np.concatenate([[0], offsets[1:][~empty]])
     report.membership_rows = int(len(elements))
     report.sets = len(keys)
-    return Membership(keys.alias("entity"), offsets, elements, grouped.text_hashes), report
+    return ElementSets(keys.alias("entity"), offsets, elements, grouped.text_hashes), report
 
 
 @dataclass
 class GroupedEvents:
     """Events grouped by entity, not yet sorted or deduplicated within a set: the codes of
     entity ``keys[g]`` are ``codes[offsets[g]:offsets[g + 1]]`` (``weights`` beside them when
-    ``weighted``); ``text_hashes`` as in :class:`~lshjob.core.sets.Membership`."""
+    ``weighted``); ``text_hashes`` as in :class:`~lshjob.core.sets.ElementSets`."""
 
     keys: pl.Series
     offsets: np.ndarray

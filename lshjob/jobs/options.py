@@ -21,7 +21,7 @@ from lshjob.ingest.spec import EventSpec
 from lshjob.plan.banding import check_explicit
 from lshjob.plan.choose import THEORY_PERMS
 from lshjob.runtime.budget import parse_size
-from lshjob.sign.signatures import SCHEMES
+from lshjob.sign.params import SCHEMES
 
 MAX_TOP_K = 2**31 - 1  # ranks are 32-bit
 

@@ -23,7 +23,7 @@ from lshjob.index.band import ROW_BYTES, save_keys
 from lshjob.index.collapse import collapse_identical, fingerprints, identical_candidates
 from lshjob.ingest.spec import IngestReport
 from lshjob.ingest.loading import EventSource, entity_counts, event_bytes, membership_of
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.runtime.budget import Budget, current_bytes, release_freed
 from lshjob.runtime.partitions import HeldSets, PartStore, key_ranges, planning_sample
 from lshjob.core.slicing import slice_bounds
@@ -178,7 +178,7 @@ class SignAndBand:
         self.slices: list[pl.DataFrame | Path] = []
         self.spill = spill  # keys saved here (a run in parts), else kept in memory
 
-    def add(self, sets: Membership, reps: np.ndarray, first: int, task) -> None:
+    def add(self, sets: ElementSets, reps: np.ndarray, first: int, task) -> None:
         """Sign and band ``reps`` (ids within ``sets``); entity ids in the keys are ``first + id``."""
         for lo, hi in slice_bounds(len(reps), self.step):
             ids = reps[lo:hi]
@@ -201,7 +201,7 @@ class SignAndBand:
         return made.files, made.rows_written
 
 
-def plan_run(sets: Membership | None, options: RunOptions, total_entities: int | None = None,
+def plan_run(sets: ElementSets | None, options: RunOptions, total_entities: int | None = None,
              distinct_sets: int | None = None) -> Plan:
     """The run's plan (:func:`lshjob.plan.choose.choose_plan`), from exact Jaccard of a sample of
     ``sets`` (all entities, or a uniform sample of ``total_entities``). Without two different

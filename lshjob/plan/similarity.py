@@ -17,7 +17,7 @@ from lshjob.core._jit import numba
 from lshjob.core import hashing
 from lshjob.core.compile_cache import readonly
 from lshjob.errors import InputError
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.plan.banding import PairHistogram
 from lshjob.sign.signatures import SignatureParams, comparable, signature_array
 
@@ -143,7 +143,7 @@ def segment_sums(values: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     return total[offsets[1:]] - total[offsets[:-1]]
 
 
-def restricted_index(sets: Membership, wanted: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
+def restricted_index(sets: ElementSets, wanted: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
     """Each entity's elements that are among ``wanted`` codes, renumbered 0..len(wanted)-1:
     (offsets, dense ids, number of ids). Pairing sampled entities with all entities needs
     only the elements the sampled sets hold."""
@@ -215,13 +215,13 @@ def _wanted_id(x, wanted, bitmap, shift):
 def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:
     """All pairwise exact Jaccard similarities among the entities of membership rows,
     pairs (i, j), i < j, in row-major order of sorted entity keys."""
-    sets = Membership.from_sets(sets)
+    sets = ElementSets.from_sets(sets)
     if sets.size < 2:
         raise InputError(f"the sample needs at least 2 entities; got {sets.size}")
     return _within_jaccard(sets)
 
 
-def _within_jaccard(sets: Membership) -> np.ndarray:
+def _within_jaccard(sets: ElementSets) -> np.ndarray:
     uniq, dense = np.unique(sets.elements, return_inverse=True)
     dense = dense.astype(np.int64)
     starts, members = postings_of(sets.offsets, dense, len(uniq))
@@ -270,7 +270,7 @@ MIN_AGAINST_ALL = 200
 
 
 def sample_histogram_from_sets(
-    sets: pl.DataFrame | Membership,
+    sets: pl.DataFrame | ElementSets,
     sample: int = 2000,
     seed: int = 0,
     total_entities: int | None = None,
@@ -285,7 +285,7 @@ def sample_histogram_from_sets(
     1e9 (so it stays a uniform sample); if fewer than 200 entities fit, the sample of
     ``sample`` entities is paired within itself instead.
     """
-    members = sets if isinstance(sets, Membership) else Membership.from_sets(sets)
+    members = sets if isinstance(sets, ElementSets) else ElementSets.from_sets(sets)
     if members.size < 2:
         raise InputError(f"the sample needs at least 2 entities; got {members.size}")
     n_total = total_entities or members.size

@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 
 
 @dataclass(frozen=True)
@@ -101,7 +101,7 @@ class PartStore:
     text_hashes: np.ndarray | None
     ranges: list[tuple[int, int]] = field(default_factory=list)
 
-    def save(self, sets: Membership) -> None:
+    def save(self, sets: ElementSets) -> None:
         i = len(self.ranges)
         first = self.ranges[-1][1] + 1 if self.ranges else 0
         self.folder.mkdir(parents=True, exist_ok=True)
@@ -109,20 +109,20 @@ class PartStore:
         np.save(self.folder / f"part-{i}-elements.npy", sets.elements)
         self.ranges.append((first, first + sets.size - 1))
 
-    def load(self, i: int) -> Membership:
+    def load(self, i: int) -> ElementSets:
         offsets = np.load(self.folder / f"part-{i}-offsets.npy")
         elements = np.load(self.folder / f"part-{i}-elements.npy")
-        return Membership(pl.Series("entity", [], dtype=pl.Int64), offsets, elements, self.text_hashes)
+        return ElementSets(pl.Series("entity", [], dtype=pl.Int64), offsets, elements, self.text_hashes)
 
 
 class HeldSets:
     """All sets in memory, as one part (the usual run)."""
 
-    def __init__(self, sets: Membership) -> None:
+    def __init__(self, sets: ElementSets) -> None:
         self.sets = sets
         self.ranges = [(0, sets.size - 1)]
 
-    def load(self, i: int) -> Membership:
+    def load(self, i: int) -> ElementSets:
         return self.sets
 
     def saved(self, folder: Path) -> PartStore:

@@ -9,10 +9,10 @@ set's number, so the table is never cleared), and a new code is counted, hashed 
 canonical text, :mod:`lshjob.core.hashing`) and folded into the signature (either scheme, the
 one fold of :mod:`lshjob.sign._fold`; kernel in :mod:`lshjob.sign._grouped`). There is no per-set sort, no
 compaction and no array of element hashes. Signatures and set sizes equal those of signing
-the loaded Membership, byte for byte (tested).
+the loaded ElementSets, byte for byte (tested).
 
 Inputs with a count column or ``--min-count`` above 1 need per-element totals; they take the
-Membership path.
+ElementSets path.
 """
 
 from __future__ import annotations

@@ -26,7 +26,6 @@ kind of input):
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -36,34 +35,14 @@ from lshjob.contracts.signature_file import FORMAT_NAME, FORMAT_VERSION, HASH_FA
 from lshjob.core import slicing
 from lshjob.core.atomic import atomic_file
 from lshjob.core.hashing import splitmix64_sequence, xxh64_strings
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
-from lshjob.errors import IncompatibleSignatures, InputError, ParameterError
+from lshjob.errors import IncompatibleSignatures, InputError
+from lshjob.sign.params import SCHEMES, SignatureParams  # noqa: F401  (where callers have found them)
 from lshjob.sign import _oph, oph
 from lshjob.sign._kperm import sign_kperm
 from lshjob.sign._merge import matrix_list, minimum_by_run
 
-SCHEMES = ("kperm", "oph")
-
-
-@dataclass(frozen=True)
-class SignatureParams:
-    """What defines a signature: two files may be merged or compared only if these agree."""
-
-    scheme: str = "kperm"
-    perms: int = 128
-    seed: int = 1
-
-    def __post_init__(self) -> None:
-        if self.scheme not in SCHEMES:
-            raise ParameterError(f"--scheme must be one of {', '.join(SCHEMES)}; got {self.scheme!r}")
-        if not 1 <= self.perms <= 4096:
-            raise ParameterError(f"--perms must be in [1, 4096]; got {self.perms}")
-        if not 0 <= self.seed < 2**64:
-            raise ParameterError(f"--seed must be in [0, 2**64); got {self.seed}")
-
-    def salts(self) -> np.ndarray:
-        return splitmix64_sequence(self.seed, self.perms)
 
 
 NO_ARRAY = np.empty(0, dtype=np.uint64)
@@ -103,13 +82,13 @@ def comparable(matrix: np.ndarray, params: SignatureParams) -> np.ndarray:
     return matrix
 
 
-def sign_membership(sets: Membership, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
-    """Signatures (len(ids) x k) of the sets ``ids`` of a :class:`~lshjob.core.sets.Membership`.
+def sign_membership(sets: ElementSets, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
+    """Signatures (len(ids) x k) of the sets ``ids`` of a :class:`~lshjob.core.sets.ElementSets`.
     Elements are hashed inside the signing loop: no copy of the sets, no array of hashes."""
     return _sign(*_membership_source(sets, ids), params, False)
 
 
-def comparable_by_position(sets: Membership, ids: np.ndarray, params: SignatureParams,
+def comparable_by_position(sets: ElementSets, ids: np.ndarray, params: SignatureParams,
                            positions: int | None = None) -> np.ndarray:
     """The first ``positions`` (default k) positions of the comparable signatures (densified
     for ``oph``) of the sets ``ids``, laid out by position: a (positions x len(ids)) matrix
@@ -122,7 +101,7 @@ def comparable_by_position(sets: Membership, ids: np.ndarray, params: SignatureP
     return _sign(*_membership_source(sets, ids), prefix, True)
 
 
-def _membership_source(sets: Membership, ids: np.ndarray) -> tuple:
+def _membership_source(sets: ElementSets, ids: np.ndarray) -> tuple:
     table = NO_ARRAY if sets.text_hashes is None else np.ascontiguousarray(sets.text_hashes, dtype=np.uint64)
     return sets.offsets, sets.elements, table, np.ascontiguousarray(ids, dtype=np.int64)
 

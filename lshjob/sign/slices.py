@@ -2,7 +2,7 @@
 
 Three inputs, one loop (:func:`lshjob.core.slicing.slice_bounds`):
 
-* :class:`~lshjob.core.sets.Membership` (sorted, deduplicated sets; key ``entity``);
+* :class:`~lshjob.core.sets.ElementSets` (sorted, deduplicated sets; key ``entity``);
 * :class:`SetRows`: membership rows (ingest contract, sorted by the key columns) and the
   names of those key columns (``entity``, and ``segment``/``period`` when present);
 * :class:`~lshjob.ingest.loading.GroupedEvents` (events grouped by entity, not deduplicated;
@@ -23,7 +23,7 @@ import numpy as np
 import polars as pl
 
 from lshjob.core.hashing import element_hashes
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.core import slicing
 from lshjob.core.slicing import slice_bounds
 from lshjob.ingest.loading import GroupedEvents
@@ -40,7 +40,7 @@ from lshjob.sign.signatures import (
 
 @dataclass(frozen=True)
 class SetRows:
-    """Membership rows (columns ``keys`` and ``element``, sorted by ``keys``): one set per run
+    """ElementSets rows (columns ``keys`` and ``element``, sorted by ``keys``): one set per run
     of equal keys."""
 
     table: pl.DataFrame
@@ -50,7 +50,7 @@ class SetRows:
 SignRange = Callable[[int, int], tuple[np.ndarray, np.ndarray]]  # (lo, hi) -> (signatures, set sizes)
 
 
-def sign_slices(source: Membership | SetRows | GroupedEvents, params: SignatureParams,
+def sign_slices(source: ElementSets | SetRows | GroupedEvents, params: SignatureParams,
                 rows: int | None = None) -> Iterator[pl.DataFrame]:
     """The signature table of every set of ``source``, ``rows`` sets at a time (default
     ``SLICE_ROWS``, read when called); one table without rows when there is no set."""
@@ -63,13 +63,13 @@ def sign_slices(source: Membership | SetRows | GroupedEvents, params: SignatureP
 
 
 def sign_sets(sets: pl.DataFrame, keys: list[str], params: SignatureParams) -> pl.DataFrame:
-    """Membership rows (ingest contract, sorted by keys) -> signature table, all at once."""
+    """ElementSets rows (ingest contract, sorted by keys) -> signature table, all at once."""
     return next(sign_slices(SetRows(sets, keys), params, max(sets.height, 1)))
 
 
 def _signer(source, params: SignatureParams) -> tuple[pl.DataFrame, SignRange]:
     """The key columns of ``source``'s sets, and a function signing the sets lo..hi-1."""
-    if isinstance(source, Membership):
+    if isinstance(source, ElementSets):
         sizes = source.set_sizes
         return pl.DataFrame({"entity": source.keys}), lambda lo, hi: (
             sign_membership(source, np.arange(lo, hi), params), sizes[lo:hi])
@@ -77,7 +77,7 @@ def _signer(source, params: SignatureParams) -> tuple[pl.DataFrame, SignRange]:
         return _set_rows_signer(source, params)
     if isinstance(source, GroupedEvents):
         return _grouped_signer(source, params)
-    raise TypeError(f"cannot sign {type(source).__name__}; expected Membership, SetRows or GroupedEvents")
+    raise TypeError(f"cannot sign {type(source).__name__}; expected ElementSets, SetRows or GroupedEvents")
 
 
 def _set_rows_signer(source: SetRows, params: SignatureParams) -> tuple[pl.DataFrame, SignRange]:

@@ -22,7 +22,7 @@ from typing import ClassVar, Protocol, runtime_checkable
 import polars as pl
 
 from lshjob.contracts.tables import VERIFIED
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.sign.signatures import SignatureParams
 
 VERIFIED_SCHEMA = dict(VERIFIED.schema)  # declared once, in lshjob.contracts.tables
@@ -33,7 +33,7 @@ class SetStore(Protocol):
 
     ranges: list[tuple[int, int]]
 
-    def load(self, i: int) -> Membership:
+    def load(self, i: int) -> ElementSets:
         """The sets of range i: set t is entity ``ranges[i][0] + t``."""
         ...
 

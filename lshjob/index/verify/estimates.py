@@ -6,14 +6,14 @@ from __future__ import annotations
 import numpy as np
 import polars as pl
 
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
 from lshjob.index.verify._agreement import signature_agreement
 from lshjob.sign.signatures import SignatureParams, comparable, sign_membership
 
 
-def add_estimates_between(verified: pl.DataFrame, left_sets: Membership, left_first: int,
-                          right_sets: Membership, right_first: int, params: SignatureParams,
+def add_estimates_between(verified: pl.DataFrame, left_sets: ElementSets, left_first: int,
+                          right_sets: ElementSets, right_first: int, params: SignatureParams,
                           max_bytes: int | None = None) -> pl.DataFrame:
     """``estimate``, the signature estimate of each verified pair, by signing again only the sets
     that appear in a verified pair (no n x k matrix is kept for this); the two sides' sets given
@@ -40,7 +40,7 @@ def add_estimates_between(verified: pl.DataFrame, left_sets: Membership, left_fi
         "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
 
 
-def _signed(sets: Membership, wanted: np.ndarray, params: SignatureParams) -> tuple[np.ndarray, np.ndarray]:
+def _signed(sets: ElementSets, wanted: np.ndarray, params: SignatureParams) -> tuple[np.ndarray, np.ndarray]:
     """Signatures of the distinct ``wanted`` sets, and the row of each set id in them."""
     ids = np.unique(wanted)
     matrix = comparable(sign_membership(sets, ids, params), params)

@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from lshjob.core.sets import Membership
+from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
 from lshjob.index.verify._jaccard import jaccard_between
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
@@ -66,8 +66,8 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
     return pl.concat(pieces) if pieces else empty_verified()
 
 
-def verify_between(candidates: pl.DataFrame, left_sets: Membership, left_first: int,
-                   right_sets: Membership, right_first: int, threshold: float) -> pl.DataFrame:
+def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first: int,
+                   right_sets: ElementSets, right_first: int, threshold: float) -> pl.DataFrame:
     """Exact Jaccard of each candidate, kept where it reaches ``threshold`` (``left_rep``,
     ``right_rep``, ``jaccard``, ``bands_shared``, in the order of the candidates). The left
     entities' sets are ``left_sets`` (entity id ``left_first + i`` is its set i), the right
