@@ -29,7 +29,6 @@ from lshjob import EventSpec  # noqa: E402
 from lshjob.ingest.loading import open_events  # noqa: E402
 
 
-
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--rows", type=int, default=2_000_000)

@@ -30,7 +30,6 @@ from lshjob import EventSpec  # noqa: E402
 from lshjob.ingest.loading import load_membership, open_events, read_and_group  # noqa: E402
 
 
-
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--rows", type=int, default=1_000_000)

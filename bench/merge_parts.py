@@ -20,7 +20,6 @@ import tempfile
 import time
 from pathlib import Path
 
-
 sys.path.insert(0, str(Path(__file__).parent))
 from common import branch_network_events, finish, machine  # noqa: E402
 from sign_parts import _same_rows  # noqa: E402

@@ -25,7 +25,7 @@ import polars as pl
 import scipy.sparse as sp
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import finish, events_with_similar_pairs, machine, peak_rss_gb  # noqa: E402
+from common import events_with_similar_pairs, finish, machine, peak_rss_gb  # noqa: E402
 
 from lshjob import EventSpec  # noqa: E402
 from lshjob.jobs.run import RunOptions, run_job  # noqa: E402

@@ -11,8 +11,8 @@ process, and audits recall on a sample with ``lshjob audit``.
 from __future__ import annotations
 
 import argparse
-import resource
 import json
+import resource
 import subprocess
 import sys
 import tempfile

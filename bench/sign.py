@@ -31,8 +31,8 @@ sys.path.insert(0, str(Path(__file__).parent))
 from common import branch_network_events, finish, machine, timed  # noqa: E402
 
 from lshjob import EventSpec, SignatureParams, sign_file  # noqa: E402
-from lshjob.sign.events import sign_events  # noqa: E402
 from lshjob.ingest.loading import load_membership  # noqa: E402
+from lshjob.sign.events import sign_events  # noqa: E402
 from lshjob.sign.signatures import sign_membership  # noqa: E402
 
 

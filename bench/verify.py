@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import finish, events_with_similar_pairs, machine  # noqa: E402
+from common import events_with_similar_pairs, finish, machine  # noqa: E402
 
 from lshjob import EventSpec, load_sets  # noqa: E402
 from lshjob.core.sets import ElementSets  # noqa: E402

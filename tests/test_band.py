@@ -33,8 +33,9 @@ def test_shared_positions_are_exactly_the_repeated_keys():
     # Oracle: polars is_duplicated, and a sort by (key, position). A bitmap of 2**8 slots over
     # 2,000 keys marks far more rows than repeat (every false mark must be dropped); 2**26
     # slots marks almost none but the repeats.
-    from lshjob.index.band._shared import _shared
     from helpers import fmix64_np
+
+    from lshjob.index.band._shared import _shared
 
     rng = np.random.default_rng(8)
     keys = fmix64_np(rng.integers(0, 1500, size=2000).astype(np.uint64))  # ~500 repeats
@@ -53,10 +54,10 @@ def test_shared_positions_are_exactly_the_repeated_keys():
 
 def test_signatures_by_position_are_the_transposed_comparable_signatures():
     # Oracle: the row layout (signed and densified separately), transposed.
+    import polars as pl
+
     from lshjob.core.sets import ElementSets
     from lshjob.sign.signatures import SignatureParams, comparable, comparable_by_position, sign_membership
-
-    import polars as pl
 
     rng = np.random.default_rng(9)
     sizes = rng.integers(1, 60, size=700)

@@ -14,9 +14,9 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from lshjob.jobs.sign import merge_files, sign_file
 from lshjob.errors import ParameterError
 from lshjob.ingest.spec import EventSpec
+from lshjob.jobs.sign import merge_files, sign_file
 from lshjob.runtime.budget import parse_size, physical_memory
 
 SPEC = ["--entity", "patron", "--element", "title"]

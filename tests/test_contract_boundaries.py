@@ -27,9 +27,9 @@ from lshjob.contracts import (
 )
 from lshjob.contracts.signature_file import file_meta
 from lshjob.demo.generate import generate_events
-from lshjob.ingest.spec import EventSpec, load_sets, validated_events
 from lshjob.index.join import duckdb as duckdb_join
 from lshjob.index.verify import local as local_verify
+from lshjob.ingest.spec import EventSpec, load_sets, validated_events
 from lshjob.jobs import prepare, run
 from lshjob.jobs.sign import sign_file
 from lshjob.sign.signatures import SignatureParams, read_signatures

@@ -6,7 +6,7 @@ import pytest
 
 from lshjob import EventSpec, SignatureParams
 from lshjob.sign.events import sign_events
-from lshjob.sign.signatures import signature_array, sign_element_lists
+from lshjob.sign.signatures import sign_element_lists, signature_array
 
 
 @pytest.mark.parametrize("scheme", ["kperm", "oph"])
@@ -45,8 +45,8 @@ def test_the_signature_file_streamed_in_slices_holds_the_signed_table(tmp_path, 
     # (a count column, --min-count 2), the sets keep the elements whose counts sum to 2 or more.
     from helpers import SliceCounter
 
-    from lshjob.jobs.sign import sign_file
     from lshjob.core import slicing
+    from lshjob.jobs.sign import sign_file
     from lshjob.sign.signatures import read_signatures
 
     rng = np.random.default_rng(4)

@@ -26,8 +26,8 @@ from typer.testing import CliRunner
 from lshjob import EventSpec, ParameterError
 from lshjob.cli.app import app
 from lshjob.errors import Busy
-from lshjob.runtime.folder_lock import LOCK_NAME, output_lock
 from lshjob.jobs.run import RunOptions, run_job
+from lshjob.runtime.folder_lock import LOCK_NAME, output_lock
 
 SPEC = EventSpec(entity="patron", element="title")
 HOLD = """

@@ -3,10 +3,10 @@
 import numpy as np
 import polars as pl
 import xxhash
+from helpers import fmix64_np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from helpers import fmix64_np
 from lshjob.core.hashing import fmix64, fmix64_expr, splitmix64_sequence, xxh64_integers, xxh64_strings
 
 MASK = (1 << 64) - 1

@@ -169,8 +169,9 @@ def test_streaming_loader_matches_the_grouped_rows(small_events, spec):
     # Oracle: polars' group-by path (load_sets) turned into sets; the streaming loader must
     # give the same entities, the same set sizes and the same element hashes, set by set.
     from helpers import element_hashes
-    from lshjob.ingest.loading import load_membership
+
     from lshjob.core.sets import ElementSets
+    from lshjob.ingest.loading import load_membership
 
     expected = ElementSets.from_sets(load_sets(small_events, spec)[0])
     got, report = load_membership(small_events, spec)

@@ -14,8 +14,8 @@ import polars as pl
 import pytest
 
 from lshjob import EventSpec, InputError, ParameterError, load_sets, sign_file
-from lshjob.jobs.config import load_run_config
 from lshjob.ingest.loading import load_membership
+from lshjob.jobs.config import load_run_config
 
 SPEC = ["--entity", "patron", "--element", "title"]
 

@@ -21,8 +21,8 @@ import pytest
 from helpers import index_digest, planted_events_file
 
 from lshjob import EventSpec
-from lshjob.runtime.folder_lock import LOCK_NAME
 from lshjob.jobs.run import RunOptions, run_job
+from lshjob.runtime.folder_lock import LOCK_NAME
 
 SPEC = EventSpec(entity="patron", element="title")
 INDEX = ("neighbours.parquet", "manifest.json")

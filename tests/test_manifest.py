@@ -9,7 +9,7 @@ import json
 import os
 import re
 import socket
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta
 
 import polars as pl
 from helpers import planted_pairs
@@ -31,9 +31,9 @@ def _two_files(folder):
 
 def test_the_manifest_written_is_the_manifest_returned_with_provenance(tmp_path):
     _two_files(tmp_path / "loans")
-    before = datetime.now(timezone.utc)
+    before = datetime.now(UTC)
     m = run_job(tmp_path / "loans", SPEC, RunOptions(threshold=0.5), tmp_path / "idx")
-    after = datetime.now(timezone.utc)
+    after = datetime.now(UTC)
     assert json.loads((tmp_path / "idx/manifest.json").read_text()) == m
     assert m["seconds"]["total"] > 0 and m["out"] == str((tmp_path / "idx").absolute())
     assert re.fullmatch(r"\d{8}T\d{6}Z-[0-9a-f]{6}", m["run_id"])
@@ -50,7 +50,7 @@ def test_the_manifest_written_is_the_manifest_returned_with_provenance(tmp_path)
     for record in files:
         data = open(record["path"], "rb").read()
         assert record["sha256"] == hashlib.sha256(data).hexdigest() and record["bytes"] == len(data)
-        mtime = datetime.fromtimestamp(os.stat(record["path"]).st_mtime, timezone.utc)
+        mtime = datetime.fromtimestamp(os.stat(record["path"]).st_mtime, UTC)
         assert datetime.fromisoformat(record["mtime"].replace("Z", "+00:00")) == mtime
         overall.update(hashlib.sha256(data).hexdigest().encode() + b"\n")
     assert m["inputs"]["sha256"] == overall.hexdigest()

@@ -10,10 +10,16 @@ import polars as pl
 import pytest
 
 from lshjob import EventSpec
-from lshjob.jobs.sign import merge_files, sign_file
 from lshjob.errors import InputError, ParameterError
-from lshjob.sign.signatures import (SignatureParams, merge_signatures, read_signatures, signature_array,
-                               signature_column, write_signatures)
+from lshjob.jobs.sign import merge_files, sign_file
+from lshjob.sign.signatures import (
+    SignatureParams,
+    merge_signatures,
+    read_signatures,
+    signature_array,
+    signature_column,
+    write_signatures,
+)
 
 PARAMS = SignatureParams(perms=16, seed=3)
 MONTHLY = EventSpec(entity="patron", element="title", segment="branch", time="borrowed_at", period="month")

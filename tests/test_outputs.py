@@ -12,16 +12,15 @@ from pathlib import Path
 
 import polars as pl
 import pytest
+from test_cli_errors import SPEC, lshjob, one_error_line
 
-from lshjob.jobs.sign import merge_files, sign_file
 from lshjob.audit.check import audit_index
 from lshjob.demo.generate import generate_events, write_demo
 from lshjob.errors import InputError, ParameterError
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.run import RunOptions, run_job
+from lshjob.jobs.sign import merge_files, sign_file
 from lshjob.runtime.outputs import DEMO_MARKER
-
-from test_cli_errors import SPEC, lshjob, one_error_line
 
 EVENTS = EventSpec(entity="patron", element="title")
 RUN = RunOptions(threshold=0.5)

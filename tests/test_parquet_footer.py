@@ -96,10 +96,10 @@ def test_the_ingest_report_is_the_same_from_footers_and_from_the_data(tmp_path, 
             pl.read_parquet(p).with_columns(pl.col("patron").abs().cast(entity_type)).write_parquet(p)
     spec = EventSpec(entity="patron", element="title", segment="branch", on_null="drop")
     _, fast, _ = ingest.validated_events(str(tmp_path / "*.parquet"), spec)
-    used = ingest._stats_from_footers(sorted(tmp_path.glob("*.parquet")), ["patron", "title", "branch"], "patron",
+    used = ingest.stats_from_footers(sorted(tmp_path.glob("*.parquet")), ["patron", "title", "branch"], "patron",
                                       pl.read_parquet_schema(paths[0])["patron"])
     assert (used is not None) == (not with_nulls)  # footers answered
-    monkeypatch.setattr(ingest, "_stats_from_footers", lambda *a: None)
+    monkeypatch.setattr(ingest, "stats_from_footers", lambda *a: None)
     _, slow, _ = ingest.validated_events(str(tmp_path / "*.parquet"), spec)
     assert fast == slow and fast.entity_range == slow.entity_range
     assert (fast.entity_range is None) == (entity_type == pl.String)
@@ -112,7 +112,7 @@ def test_a_footer_that_hides_nulls_is_caught_while_reading(tmp_path, monkeypatch
     from lshjob.ingest.loading import load_membership
 
     paths, _ = _files(tmp_path, n_files=1, with_nulls=True)
-    real = ingest._stats_from_footers
+    real = ingest.stats_from_footers
 
     def lying(paths, key_names, entity, entity_type):
         stats = pl.read_parquet(paths[0]).select(pl.len().alias("rows"), pl.col("patron").min().alias("__entity_min"),
@@ -120,6 +120,6 @@ def test_a_footer_that_hides_nulls_is_caught_while_reading(tmp_path, monkeypatch
         return stats.with_columns(*[pl.lit(0).alias(n) for n in key_names], pl.lit(0).alias("__any_null"))
 
     assert real(paths, ["patron", "title"], "patron", pl.Int64) is None  # the honest footer has nulls
-    monkeypatch.setattr(ingest, "_stats_from_footers", lying)
+    monkeypatch.setattr(ingest, "stats_from_footers", lying)
     with pytest.raises(InputError, match="the element column holds null values"):
         load_membership(paths[0], EventSpec(entity="patron", element="title"))

@@ -10,11 +10,11 @@ from helpers import planted_pairs, same_index
 from test_run import brute_force_pairs, published_pairs
 
 from lshjob import EventSpec, ParameterError
-from lshjob.runtime import budget, partitions
-from lshjob.jobs.run import RunOptions, run_job
-from lshjob.ingest.loading import entity_counts, event_bytes, membership_of, open_events
 from lshjob.core.sets import ElementSets
 from lshjob.index.verify import jaccard_between
+from lshjob.ingest.loading import entity_counts, event_bytes, membership_of, open_events
+from lshjob.jobs.run import RunOptions, run_job
+from lshjob.runtime import budget, partitions
 
 SPEC = EventSpec(entity="patron", element="title")
 
@@ -250,9 +250,9 @@ def test_signing_in_parts_gives_the_same_signatures(tmp_path, integer_patrons, s
 def test_an_error_while_making_a_range_reaches_the_caller_and_nothing_is_written(tmp_path):
     # The writer pulls the ranges' tables through polars; an error in the second range must
     # come out as the error raised (not polars' wrapping of it), and leave no file behind.
-    from lshjob.sign.streaming import write_streamed
     from lshjob.errors import InputError
     from lshjob.sign.signatures import signature_column
+    from lshjob.sign.streaming import write_streamed
 
     table = pl.DataFrame({"entity": [1, 2]}).with_columns(
         signature_column(np.ones((2, 4), dtype=np.uint64)), pl.Series("set_size", [3, 4], dtype=pl.UInt32))
@@ -378,10 +378,10 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
     from typer.testing import CliRunner
 
     from lshjob import load_sets
-    from lshjob.ingest import keyed
-    from lshjob.jobs.sign import sign_file
     from lshjob.cli.app import app
+    from lshjob.ingest import keyed
     from lshjob.ingest.spec import validated_events
+    from lshjob.jobs.sign import sign_file
     from lshjob.sign.signatures import SignatureParams, read_signatures, sign_element_lists, signature_array
 
     events = demo_events[0]
@@ -435,8 +435,8 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
 
 def test_signing_segments_in_parts_with_nothing_left_is_an_error_and_writes_nothing(tmp_path, demo_events):
     # Every range emptied by --min-count: the same error as in one part, and no file.
-    from lshjob.jobs.sign import sign_file
     from lshjob.errors import InputError
+    from lshjob.jobs.sign import sign_file
 
     src = tmp_path / "loans.parquet"
     demo_events[0].write_parquet(src)

@@ -11,9 +11,9 @@ from scipy.integrate import quad
 from typer.testing import CliRunner
 
 from lshjob import ParameterError
-from lshjob.jobs.sign import plan_banding
 from lshjob.cli.app import app
 from lshjob.ingest.spec import EventSpec
+from lshjob.jobs.sign import plan_banding
 from lshjob.plan.banding import (
     PairHistogram,
     approximate_threshold,

@@ -15,8 +15,8 @@ import pytest
 from test_run_edges import expected_index
 
 from lshjob import EventSpec, ParameterError
-from lshjob.jobs.run import RunOptions, run_job
 from lshjob.index.publish import expand, neighbour_blocks, neighbour_table
+from lshjob.jobs.run import RunOptions, run_job
 
 SPEC = EventSpec(entity="patron", element="title")
 

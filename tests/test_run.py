@@ -14,11 +14,11 @@ from typer.testing import CliRunner
 import lshjob
 from lshjob import EventSpec, ParameterError
 from lshjob.audit.check import audit_index
-from lshjob.index.conformance import reference_bucket_rows, reference_candidates
 from lshjob.cli.app import app
+from lshjob.index.conformance import reference_bucket_rows, reference_candidates
+from lshjob.index.sqlfiles import load_sql, sql_dir
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.plan.banding import candidate_probability
-from lshjob.index.sqlfiles import load_sql, sql_dir
 
 SPEC = EventSpec(entity="patron", element="title")
 

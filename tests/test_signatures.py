@@ -208,7 +208,6 @@ def test_signature_follows_its_documented_definition():
     # Oracle: the definition in DEVELOPERS.md computed with outside parts: the xxhash
     # package for XXH64, Python integers for fmix64 (MurmurHash3.cpp) and SplitMix64.
     import xxhash
-
     from test_hashing import fmix64_reference
 
     mask = (1 << 64) - 1
@@ -273,11 +272,11 @@ def test_merging_many_tables_is_the_row_minimum_per_key():
 def test_monthly_signatures_streamed_in_slices_equal_signing_at_once(tmp_path, demo_events, monkeypatch):
     # Reference: sign_sets over the whole membership table at once (itself checked against
     # datasketch above). `lshjob sign` with segments and periods writes 7 sets at a time here.
-    from lshjob import EventSpec, sign_file
     from helpers import SliceCounter
 
-    from lshjob.ingest.spec import load_sets
+    from lshjob import EventSpec, sign_file
     from lshjob.core import slicing
+    from lshjob.ingest.spec import load_sets
 
     events, _ = demo_events
     src = tmp_path / "loans.parquet"

@@ -2,7 +2,9 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["audit_index", "top_k_recall"]
+__all__ = [
+    "audit_index", "top_k_recall",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "audit_index": "check",

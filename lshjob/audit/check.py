@@ -20,23 +20,23 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
+from lshjob.contracts.manifest import Manifest
 from lshjob.core._jit import numba
 from lshjob.core.atomic import file_sha256
 from lshjob.core.digest import digest_in_background
+from lshjob.core.sets import ElementSets
 from lshjob.errors import InputError, ParameterError
 from lshjob.index.collapse import fingerprints
-from lshjob.ingest.spec import EventSpec, resolve_paths
-from lshjob.ingest.loading import entity_counts, event_bytes, grouping_need, membership_of, open_events
-from lshjob.core.sets import ElementSets
-from lshjob.plan.banding import candidate_probability
-from lshjob.contracts.manifest import Manifest
-from lshjob.plan.choose import Plan
 from lshjob.index.publish import NEIGHBOURS, read_manifest
+from lshjob.index.verify import exact_jaccard
+from lshjob.ingest.loading import entity_counts, event_bytes, grouping_need, membership_of, open_events
+from lshjob.ingest.spec import EventSpec, resolve_paths
+from lshjob.plan.banding import candidate_probability
+from lshjob.plan.choose import Plan
 from lshjob.plan.similarity import overlap_counts, postings_of, restricted_index, visit_costs
 from lshjob.runtime import budget
 from lshjob.runtime.budget import Budget, default_memory, peak_bytes
 from lshjob.runtime.partitions import entities_of, key_ranges
-from lshjob.index.verify import exact_jaccard
 
 MAX_BRUTE_FORCE_WORK = 5e9  # posting visits; beyond this the audit compares within the sample
 

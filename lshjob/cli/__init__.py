@@ -2,7 +2,9 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["app", "entry_point", "main"]
+__all__ = [
+    "app", "entry_point", "main",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "app": "app",

@@ -6,30 +6,34 @@ import json
 import shutil
 import sys
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 
 from lshjob._version import __version__
-from lshjob.jobs import sign as api
-from lshjob.runtime import stopping
-from lshjob.cli._blas_probe import skip_blas_probe as _skip_blas_probe
-from lshjob.report.charts import write_chart
 from lshjob.audit.check import audit_index
-from lshjob.jobs.config import load_run_config, merge_settings
-from lshjob.demo.generate import check_options as check_demo_options, write_demo
-from lshjob.errors import ParameterError
-from lshjob.jobs.options import RunOptions, default_of, defaults as run_defaults, required as required_options, run_settings
-from lshjob.jobs.run import run_job
-from lshjob.report.text import audit_report, plan_report, run_report
+from lshjob.cli._blas_probe import skip_blas_probe as _skip_blas_probe
+from lshjob.cli.failures import EXIT_CODES, run_app, to_stdout
+from lshjob.cli.failures import ends_cleanly as _fail_cleanly
 from lshjob.cli.more_commands import register as register_more
 from lshjob.cli.refresh_command import register as register_refresh
-from lshjob.cli.failures import EXIT_CODES, ends_cleanly as _fail_cleanly, run_app, to_stdout
 from lshjob.cli.run_params import with_run_options
+from lshjob.demo.generate import check_options as check_demo_options
+from lshjob.demo.generate import write_demo
+from lshjob.errors import ParameterError
 from lshjob.ingest.spec import EventSpec
+from lshjob.jobs import sign as api
+from lshjob.jobs.config import load_run_config, merge_settings
+from lshjob.jobs.options import RunOptions, default_of, run_settings
+from lshjob.jobs.options import defaults as run_defaults
+from lshjob.jobs.options import required as required_options
+from lshjob.jobs.run import run_job
+from lshjob.report.charts import write_chart
+from lshjob.report.text import audit_report, plan_report, run_report
+from lshjob.runtime import stopping
+from lshjob.runtime.budget import parse_size
 from lshjob.runtime.outputs import demo_folder, output_file
 from lshjob.runtime.progress import StageProgress
-from lshjob.runtime.budget import parse_size
 from lshjob.sign.signatures import SignatureParams
 
 app = typer.Typer(
@@ -75,18 +79,18 @@ def sign(
     out: Annotated[str, typer.Option("--out", "-o", help="Signature file to write (Parquet).")],
     entity: Annotated[str, typer.Option(help="Column holding the entity key (e.g. patron).")],
     element: Annotated[str, typer.Option(help="Column holding the element key (e.g. title).")],
-    count: Annotated[Optional[str], typer.Option(help="Column with a count or weight per event.")] = None,
+    count: Annotated[str | None, typer.Option(help="Column with a count or weight per event.")] = None,
     min_count: Annotated[float, typer.Option(help="Keep elements seen at least this often per set.")] = 1,
-    segment: Annotated[Optional[str], typer.Option(help="Column to sign separately by (e.g. branch).")] = None,
-    time: Annotated[Optional[str], typer.Option(help="Column with each event's date/time.")] = None,
-    period: Annotated[Optional[str], typer.Option(help="Sign each day, week or month separately.")] = None,
+    segment: Annotated[str | None, typer.Option(help="Column to sign separately by (e.g. branch).")] = None,
+    time: Annotated[str | None, typer.Option(help="Column with each event's date/time.")] = None,
+    period: Annotated[str | None, typer.Option(help="Sign each day, week or month separately.")] = None,
     perms: Annotated[int, typer.Option(help="Signature length k.")] = 128,
     scheme: Annotated[str, typer.Option(help="kperm (k hashes per element) or oph (one hash, densified).")] = "kperm",
     seed: Annotated[int, typer.Option(help="Seed of the hash family.")] = 1,
     on_null: Annotated[str, typer.Option(help="Null keys: 'error' or 'drop' the row.")] = "error",
     unicode: Annotated[str, typer.Option(help="Text keys: 'nfc' (one Unicode normal form) or 'asis' (as given).")] = "nfc",
-    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are grouped and signed an entity key range at a time.  [default: half the machine]")] = None,
-    parts: Annotated[Optional[int], typer.Option(help="Sign the entities in this many key ranges, one at a time.")] = None,
+    memory: Annotated[str | None, typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are grouped and signed an entity key range at a time.  [default: half the machine]")] = None,
+    parts: Annotated[int | None, typer.Option(help="Sign the entities in this many key ranges, one at a time.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -128,10 +132,10 @@ def merge(
     keep: Annotated[
         str, typer.Option(help="Key columns to keep, comma separated; the others are folded together.")
     ] = "entity",
-    since: Annotated[Optional[str], typer.Option(help="First period to include (ISO date).")] = None,
-    until: Annotated[Optional[str], typer.Option(help="Last period to include (ISO date).")] = None,
-    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; rows that do not fit are merged an entity range at a time.  [default: half the machine]")] = None,
-    parts: Annotated[Optional[int], typer.Option(help="Merge in this many entity key ranges, one at a time.")] = None,
+    since: Annotated[str | None, typer.Option(help="First period to include (ISO date).")] = None,
+    until: Annotated[str | None, typer.Option(help="Last period to include (ISO date).")] = None,
+    memory: Annotated[str | None, typer.Option(help="Memory budget, e.g. 8GB; rows that do not fit are merged an entity range at a time.  [default: half the machine]")] = None,
+    parts: Annotated[int | None, typer.Option(help="Merge in this many entity key ranges, one at a time.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -154,21 +158,21 @@ def merge(
 @_fail_cleanly
 def plan(
     threshold: Annotated[float, typer.Option(help="Jaccard similarity a pair must reach, in (0, 1]; 1 pairs identical sets only.")],
-    perms: Annotated[Optional[int], typer.Option(help="Signature length k (default: 128 in theory mode; chosen in data mode).")] = None,
+    perms: Annotated[int | None, typer.Option(help="Signature length k (default: 128 in theory mode; chosen in data mode).")] = None,
     recall: Annotated[float, typer.Option(help="Data mode: expected recall of pairs at or above the threshold.")] = default_of("recall"),
-    sample: Annotated[Optional[str], typer.Option(help="Signature file or events to plan from (data mode).")] = None,
-    entity: Annotated[Optional[str], typer.Option(help="Events sample: entity column.")] = None,
-    element: Annotated[Optional[str], typer.Option(help="Events sample: element column.")] = None,
+    sample: Annotated[str | None, typer.Option(help="Signature file or events to plan from (data mode).")] = None,
+    entity: Annotated[str | None, typer.Option(help="Events sample: entity column.")] = None,
+    element: Annotated[str | None, typer.Option(help="Events sample: element column.")] = None,
     on_null: Annotated[str, typer.Option(help="Events sample: null keys 'error' or 'drop' the row.")] = "error",
     sample_size: Annotated[int, typer.Option(help="Entities drawn from the sample.")] = default_of("sample_size"),
-    entities: Annotated[Optional[int], typer.Option(help="Scale pair counts to this many entities (e.g. next quarter's).")] = None,
+    entities: Annotated[int | None, typer.Option(help="Scale pair counts to this many entities (e.g. next quarter's).")] = None,
     fp_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-positive area.")] = 0.5,
     fn_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-negative area.")] = 0.5,
-    bands: Annotated[Optional[int], typer.Option(help="Judge this number of bands instead of choosing.")] = None,
-    rows: Annotated[Optional[int], typer.Option(help="Judge this number of rows per band instead of choosing.")] = None,
-    chart: Annotated[Optional[Path], typer.Option(help="Write the S-curve chart (.svg or .png).")] = None,
+    bands: Annotated[int | None, typer.Option(help="Judge this number of bands instead of choosing.")] = None,
+    rows: Annotated[int | None, typer.Option(help="Judge this number of rows per band instead of choosing.")] = None,
+    chart: Annotated[Path | None, typer.Option(help="Write the S-curve chart (.svg or .png).")] = None,
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
-    max_candidates: Annotated[Optional[float], typer.Option(help="Refuse plans predicting more candidate pairs, as lshjob run does.")] = None,
+    max_candidates: Annotated[float | None, typer.Option(help="Refuse plans predicting more candidate pairs, as lshjob run does.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -201,7 +205,7 @@ def plan(
 @_fail_cleanly
 @with_run_options  # the options declared in lshjob.jobs.options
 def run(
-    config: Annotated[Optional[Path], typer.Option(help="TOML file with any of these options; flags override it.")] = None,
+    config: Annotated[Path | None, typer.Option(help="TOML file with any of these options; flags override it.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
     **flags,
@@ -232,12 +236,12 @@ def run(
 @_fail_cleanly
 def audit(
     index: Annotated[Path, typer.Argument(help="Index folder written by lshjob run.")],
-    events: Annotated[Optional[str], typer.Option(help="Events to check against (default: the run's input).")] = None,
+    events: Annotated[str | None, typer.Option(help="Events to check against (default: the run's input).")] = None,
     sample: Annotated[int, typer.Option(help="Entities to check by brute force.")] = 200,
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
-    memory: Annotated[Optional[str], typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time.  [default: half the machine]")] = None,
-    parts: Annotated[Optional[int], typer.Option(help="Read the entities in this many key ranges, one at a time.")] = None,
-    min_recall: Annotated[Optional[float], typer.Option(help="Fail (exit 1) when the measured recall is below this.")] = None,
+    memory: Annotated[str | None, typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time.  [default: half the machine]")] = None,
+    parts: Annotated[int | None, typer.Option(help="Read the entities in this many key ranges, one at a time.")] = None,
+    min_recall: Annotated[float | None, typer.Option(help="Fail (exit 1) when the measured recall is below this.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:

@@ -17,8 +17,8 @@ from pathlib import Path
 import typer
 
 from lshjob._version import __version__
-from lshjob.runtime import stopping
 from lshjob.errors import EXIT_BAD_INPUT, EXIT_INTERNAL, LshjobError, ParameterError
+from lshjob.runtime import stopping
 
 EXIT_CODES = (  # "\b" keeps the lines as they are in --help
     "\b\nExit codes:\n"

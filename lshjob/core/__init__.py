@@ -2,7 +2,10 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["ElementSets", "atomic_file", "element_codes", "file_sha256", "fmix64_expr", "input_digest", "slice_bounds", "splitmix64_sequence", "staged_folder", "xxh64_integers", "xxh64_strings"]
+__all__ = [
+    "ElementSets", "atomic_file", "element_codes", "file_sha256", "fmix64_expr", "input_digest",
+    "slice_bounds", "splitmix64_sequence", "staged_folder", "xxh64_integers", "xxh64_strings",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "ElementSets": "sets",

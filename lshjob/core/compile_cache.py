@@ -23,9 +23,6 @@ from __future__ import annotations
 
 import os
 import sys
-import tempfile
-import time
-from pathlib import Path
 
 ENV = "LSHJOB_CACHE_DIR"
 COLD_SECONDS = 25  # the notice's estimate: a cold `lshjob demo` on 2 cores (bench/RESULTS.md)

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import hashlib
 from concurrent.futures import Future, ThreadPoolExecutor
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 from lshjob.core.atomic import file_sha256
@@ -23,7 +23,7 @@ from lshjob.core.atomic import file_sha256
 
 def iso(moment: datetime) -> str:
     """UTC ISO 8601 with a ``Z``, to the microsecond."""
-    return moment.astimezone(timezone.utc).isoformat(timespec="microseconds").replace("+00:00", "Z")
+    return moment.astimezone(UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
 
 
 def file_record(name: str | Path) -> dict:
@@ -31,7 +31,7 @@ def file_record(name: str | Path) -> dict:
     stat = path.stat()
     sha = file_sha256(path)
     return {"path": str(path.absolute()), "bytes": stat.st_size,
-            "mtime": iso(datetime.fromtimestamp(stat.st_mtime, timezone.utc)), "sha256": sha}
+            "mtime": iso(datetime.fromtimestamp(stat.st_mtime, UTC)), "sha256": sha}
 
 
 def overall(records: list[dict]) -> tuple[int, str]:

@@ -37,7 +37,7 @@ class ElementSets:
     text_hashes: np.ndarray | None = None  # XXH64 per code when elements are text keys
 
     @classmethod
-    def from_sets(cls, sets: pl.DataFrame) -> "ElementSets":
+    def from_sets(cls, sets: pl.DataFrame) -> ElementSets:
         """From membership rows with columns ``entity`` and ``element`` (ingest contract);
         entities in sorted key order."""
         codes, text_hashes = element_codes(sets.get_column("element"))
@@ -45,7 +45,7 @@ class ElementSets:
         return cls.from_sorted(frame, text_hashes)
 
     @classmethod
-    def from_sorted(cls, frame: pl.DataFrame, text_hashes: np.ndarray | None) -> "ElementSets":
+    def from_sorted(cls, frame: pl.DataFrame, text_hashes: np.ndarray | None) -> ElementSets:
         """From rows (entity, code) sorted by entity, then code."""
         runs = frame.select(pl.col("entity").rle()).unnest("entity")
         sizes = runs["len"].to_numpy().astype(np.int64)
@@ -62,7 +62,7 @@ class ElementSets:
     def set_sizes(self) -> np.ndarray:
         return np.diff(self.offsets)
 
-    def subset(self, ids: np.ndarray) -> "ElementSets":
+    def subset(self, ids: np.ndarray) -> ElementSets:
         """The sets of the given entity ids (kept in the given order)."""
         ids = np.ascontiguousarray(ids, dtype=np.int64)
         offsets, elements = gather_sets(self.offsets, self.elements, ids)

@@ -2,7 +2,9 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["generate_events", "write_demo"]
+__all__ = [
+    "generate_events", "write_demo",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "generate_events": "generate",

@@ -2,7 +2,10 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["collapse_identical", "commit_index", "fingerprints", "get_engine", "identical_candidates", "names", "read_manifest", "register", "stage_neighbours"]
+__all__ = [
+    "collapse_identical", "commit_index", "fingerprints", "get_engine", "identical_candidates",
+    "names", "read_manifest", "register", "stage_neighbours",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "collapse_identical": "collapse",

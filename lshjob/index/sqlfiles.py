@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from functools import lru_cache
+from functools import cache
 from importlib import resources
 
 from lshjob.errors import LshjobError
@@ -15,7 +15,7 @@ def sql_dir():
     return resources.files(SQL_PACKAGE) / "sql"
 
 
-@lru_cache(maxsize=None)
+@cache
 def load_sql(name: str) -> str:
     """The text of ``sql/<name>.sql``."""
     path = sql_dir() / f"{name}.sql"

@@ -2,7 +2,10 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["EventSource", "EventSpec", "GroupedEvents", "IngestReport", "load_sets", "open_events", "read_grouped", "resolve_paths", "validated_events"]
+__all__ = [
+    "EventSource", "EventSpec", "GroupedEvents", "IngestReport", "load_sets", "open_events",
+    "read_grouped", "resolve_paths", "validated_events",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "EventSpec": "spec",

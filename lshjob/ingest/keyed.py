@@ -22,8 +22,8 @@ import numpy as np
 import polars as pl
 
 from lshjob.errors import key_text
-from lshjob.ingest.spec import EventSpec, IngestReport
 from lshjob.ingest.loading import EventSource, event_source
+from lshjob.ingest.spec import EventSpec, IngestReport
 
 KEY_LIMIT = 2**62  # composite keys stay well inside Int64
 

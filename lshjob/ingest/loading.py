@@ -36,11 +36,11 @@ import numpy as np
 import polars as pl
 
 from lshjob.core._jit import numba
-from lshjob.ingest import grouping
-from lshjob.errors import InputError, ParameterError, key_text
 from lshjob.core.hashing import xxh64_strings
-from lshjob.ingest.spec import EventSpec, IngestReport, validated_events
 from lshjob.core.sets import INT64_MAX, ElementSets, nfc_codes
+from lshjob.errors import InputError, ParameterError, key_text
+from lshjob.ingest import grouping
+from lshjob.ingest.spec import EventSpec, IngestReport, validated_events
 from lshjob.runtime import budget
 from lshjob.runtime.partitions import EntitySelection, events_per_entity
 
@@ -57,7 +57,7 @@ def load_membership(source: str | Path, spec: EventSpec, memory: int | None = No
     return membership_of(events, None)
 
 
-def membership_of(events: "EventSource", selection: "EntitySelection | None") -> tuple[ElementSets, IngestReport]:
+def membership_of(events: EventSource, selection: EntitySelection | None) -> tuple[ElementSets, IngestReport]:
     """The sets of the selected entities (all by default), entities in sorted key order."""
     grouped = read_and_group(events, selection)
     keys, offsets, elements, report, where = grouped.keys, grouped.offsets, grouped.codes, grouped.report, grouped.where

@@ -15,6 +15,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import polars as pl
+
 FIELDS = ("file_name", "row_group_id", "row_group_num_rows", "path_in_schema", "type", "stats_null_count",
           "stats_min_value", "stats_max_value", "min_is_exact", "max_is_exact")
 # COLUMNS(regex) takes the fields this DuckDB has: min_is_exact/max_is_exact are recent
@@ -54,3 +56,18 @@ def footer_stats(paths: list[Path], columns: list[str], bounds: str | None) -> d
     if any(seen != set(columns) for _, seen in groups.values()):
         return None
     return {"rows": sum(rows for rows, _ in groups.values()), "nulls": nulls, "min": low, "max": high}
+
+
+def stats_from_footers(paths: list[Path], key_names: list[str], entity: str,
+                       entity_type: pl.DataType) -> pl.DataFrame | None:
+    """The statistics pass's one-row frame from the Parquet files' footers, without reading
+    the data (:mod:`lshjob.ingest.parquet_footer`); None unless every file is Parquet and states
+    what is needed, and no key is null (nulls are then found, and reported, by reading)."""
+    if not all(p.suffix.lower() in (".parquet", ".pq") for p in paths):
+        return None
+    integer = entity_type.is_integer()
+    found = footer_stats(paths, key_names, entity if integer else None)
+    if found is None or any(found["nulls"].values()) or (integer and found["rows"] and found["min"] is None):
+        return None
+    return pl.DataFrame({"rows": [found["rows"]], **{n: [0] for n in key_names}, "__any_null": [0],
+                         "__entity_min": [found["min"]], "__entity_max": [found["max"]]})

@@ -22,10 +22,23 @@ from pathlib import Path
 import polars as pl
 
 from lshjob.errors import InputError, ParameterError, key_text
-from lshjob.ingest.files import (FILE_COLUMN, FORMATS, agreed_types, check_columns, combined_scan, file_schemas,  # noqa: F401
-                          looks_nested, plain_integers, ragged_line, reading, refuse_nested, resolve_paths,
-                          scan_one, unreadable)
-from lshjob.ingest.parquet_footer import footer_stats
+from lshjob.ingest.files import (  # noqa: F401
+    FILE_COLUMN,
+    FORMATS,
+    agreed_types,
+    check_columns,
+    combined_scan,
+    file_schemas,
+    looks_nested,
+    plain_integers,
+    ragged_line,
+    reading,
+    refuse_nested,
+    resolve_paths,
+    scan_one,
+    unreadable,
+)
+from lshjob.ingest.parquet_footer import stats_from_footers
 
 PERIODS = {"day": "1d", "week": "1w", "month": "1mo"}
 UNICODE = ("nfc", "asis")
@@ -100,7 +113,7 @@ class IngestReport:
         """Context: errors raised while the files stream become an InputError naming the file."""
         return reading(self.files, where, self.columns)
 
-    def add_part(self, part: "IngestReport") -> None:
+    def add_part(self, part: IngestReport) -> None:
         """Add the counts of one key range's report (a run or signing in parts)."""
         self.membership_rows += part.membership_rows
         self.sets += part.sets
@@ -131,7 +144,7 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
         uniform = all(s == schemas[0] for s in schemas) and all(schemas[0][n] == t for n, t in types.items())
         lf = combined_scan(paths, fmt, schemas, types, {}, uniform)
         if types[spec.entity] == schemas[0][spec.entity]:  # the footers' bounds are of this type
-            stats = _stats_from_footers(paths, key_names, spec.entity, types[spec.entity])
+            stats = stats_from_footers(paths, key_names, spec.entity, types[spec.entity])
     else:
         types, stats = _text_files(paths, fmt, schemas, spec, named, key_names)
         lf = combined_scan(paths, fmt, schemas, types, types, all(s == schemas[0] for s in schemas))
@@ -279,21 +292,6 @@ def nfc_replacement(lf: pl.LazyFrame, name: str) -> pl.Expr | None:
     if not old:
         return None
     return text.replace(old, [unicodedata.normalize("NFC", v) for v in old])
-
-
-def _stats_from_footers(paths: list[Path], key_names: list[str], entity: str,
-                        entity_type: pl.DataType) -> pl.DataFrame | None:
-    """The statistics pass's one-row frame from the Parquet files' footers, without reading
-    the data (:mod:`lshjob.ingest.parquet_footer`); None unless every file is Parquet and states
-    what is needed, and no key is null (nulls are then found, and reported, by reading)."""
-    if not all(p.suffix.lower() in (".parquet", ".pq") for p in paths):
-        return None
-    integer = entity_type.is_integer()
-    found = footer_stats(paths, key_names, entity if integer else None)
-    if found is None or any(found["nulls"].values()) or (integer and found["rows"] and found["min"] is None):
-        return None
-    return pl.DataFrame({"rows": [found["rows"]], **{n: [0] for n in key_names}, "__any_null": [0],
-                         "__entity_min": [found["min"]], "__entity_max": [found["max"]]})
 
 
 def group_set_rows(frame: pl.LazyFrame, spec: EventSpec, where: str, report: IngestReport,

@@ -2,7 +2,9 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["RunOptions", "merge_files", "plan_banding", "refresh_job", "run_job", "sign_file"]
+__all__ = [
+    "RunOptions", "merge_files", "plan_banding", "refresh_job", "run_job", "sign_file",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "sign_file": "sign",

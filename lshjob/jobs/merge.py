@@ -17,9 +17,9 @@ from pathlib import Path
 import polars as pl
 
 from lshjob.errors import InputError, ParameterError
-from lshjob.runtime.outputs import PATTERN_CHARS, output_file
 from lshjob.runtime import budget
 from lshjob.runtime.budget import Budget, default_memory, peak_bytes
+from lshjob.runtime.outputs import PATTERN_CHARS, output_file
 from lshjob.runtime.partitions import key_ranges
 from lshjob.sign.signatures import check_compatible, merge_signatures, merged_meta, signature_meta, write_signatures
 from lshjob.sign.streaming import write_streamed

@@ -36,7 +36,6 @@ counts; the band search then holds 8 bytes per entity and about 40 a thread
 
 from __future__ import annotations
 
-
 import polars as pl
 
 from lshjob.ingest.loading import EventSource, entity_counts, event_bytes, grouping_need

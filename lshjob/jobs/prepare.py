@@ -15,18 +15,18 @@ from typing import TYPE_CHECKING
 import numpy as np
 import polars as pl
 
-from lshjob.index import publish
-from lshjob.plan import similarity
-from lshjob.plan.choose import Plan, choose_plan
+from lshjob.core.sets import ElementSets
+from lshjob.core.slicing import slice_bounds
 from lshjob.errors import InputError
+from lshjob.index import publish
 from lshjob.index.band import ROW_BYTES, save_keys
 from lshjob.index.collapse import collapse_identical, fingerprints, identical_candidates
-from lshjob.ingest.spec import IngestReport
 from lshjob.ingest.loading import EventSource, entity_counts, event_bytes, membership_of
-from lshjob.core.sets import ElementSets
+from lshjob.ingest.spec import IngestReport
+from lshjob.plan import similarity
+from lshjob.plan.choose import Plan, choose_plan
 from lshjob.runtime.budget import Budget, current_bytes, release_freed
 from lshjob.runtime.partitions import HeldSets, PartStore, key_ranges, planning_sample
-from lshjob.core.slicing import slice_bounds
 from lshjob.sign.signatures import SignatureParams, comparable_by_position
 
 if TYPE_CHECKING:
@@ -54,7 +54,7 @@ class Prepared:
     warnings: list[str] = field(default_factory=list)  # for the manifest
 
 
-def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: Path, stages) -> Prepared:
+def in_one_part(source: EventSource, options: RunOptions, memory: int, work: Path, stages) -> Prepared:
     """The usual run: every set in memory at once."""
     with stages("ingest"):
         sets, report = membership_of(source, None)
@@ -80,7 +80,7 @@ def in_one_part(source: EventSource, options: "RunOptions", memory: int, work: P
     return built
 
 
-def in_parts(source: EventSource, options: "RunOptions", memory: int, work: Path, stages) -> Prepared:
+def in_parts(source: EventSource, options: RunOptions, memory: int, work: Path, stages) -> Prepared:
     """The run a key range at a time (:mod:`lshjob.jobs.parts`)."""
     with stages("count"):
         per_entity = entity_counts(source)
@@ -154,7 +154,7 @@ def _few_sets(entities: int, distinct: int | None) -> list[str]:
     return []
 
 
-def _check_output(rep_of: np.ndarray, keys: pl.Series, options: "RunOptions", memory: int) -> None:
+def _check_output(rep_of: np.ndarray, keys: pl.Series, options: RunOptions, memory: int) -> None:
     """Refuse, before signing, a top-k whose groups of identical sets alone would publish more
     rows than the budget holds (:func:`lshjob.index.publish.check_output`)."""
     top_k = publish.effective_top_k(options.top_k, len(keys))

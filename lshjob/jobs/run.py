@@ -21,25 +21,30 @@ import time
 from dataclasses import asdict
 from pathlib import Path
 
-from lshjob.jobs import prepare
-from lshjob.jobs.options import RunOptions  # the run's Python API (declared with the options)
-from lshjob.runtime import provenance
-from lshjob.index import publish
-from lshjob.runtime import stopping
 from lshjob.contracts.manifest import Manifest
 from lshjob.core.digest import digest_in_background
 from lshjob.errors import ParameterError
-from lshjob.runtime.folder_lock import output_lock
-from lshjob.ingest.spec import EventSpec, resolve_paths
-from lshjob.index.join import (JoinSettings, duckdb_limit, duckdb_need, join_threads,
-                               require_duckdb_memory)
+from lshjob.index import publish
+from lshjob.index.join import JoinSettings, duckdb_limit, duckdb_need, join_threads, require_duckdb_memory
 from lshjob.index.verify import VerifySettings, empty_verified
 from lshjob.ingest.loading import grouping_need, open_events
+from lshjob.ingest.spec import EventSpec, resolve_paths
+from lshjob.jobs import prepare
+from lshjob.jobs.options import RunOptions  # the run's Python API (declared with the options)
+from lshjob.runtime import provenance, stopping
+from lshjob.runtime.budget import (
+    Budget,
+    current_bytes,
+    default_memory,
+    parse_size,
+    peak_bytes,
+    release_freed,
+    reset_peak,
+)
+from lshjob.runtime.folder_lock import output_lock
 from lshjob.runtime.outputs import output_folder, scratch_folder
-from lshjob.runtime.progress import QUIET, StageProgress
-from lshjob.runtime.budget import (Budget, current_bytes, default_memory, parse_size, peak_bytes, release_freed,
-                                   reset_peak)
 from lshjob.runtime.partitions import HeldSets
+from lshjob.runtime.progress import QUIET, StageProgress
 from lshjob.runtime.workspace import remove_leftovers, work_folder
 
 

@@ -5,21 +5,20 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
-
 from lshjob.core import slicing
-from lshjob.ingest import keyed
 from lshjob.errors import InputError
-from lshjob.jobs import parts as parts_module
+from lshjob.ingest import keyed
+from lshjob.ingest.loading import membership_of, open_events, read_and_group
 from lshjob.ingest.spec import EventSpec, IngestReport, validated_events
 from lshjob.ingest.spec import group_set_rows as group_sets
-from lshjob.ingest.loading import membership_of, open_events, read_and_group
+from lshjob.jobs import parts as parts_module
 from lshjob.jobs.merge import merge_files  # noqa: F401  (the API of lshjob merge)
-from lshjob.runtime.outputs import output_file
 from lshjob.runtime.budget import default_memory, peak_bytes
-from lshjob.sign.streaming import timed, write_streamed
+from lshjob.runtime.outputs import output_file
 from lshjob.runtime.progress import QUIET, StageProgress
 from lshjob.sign.signatures import SignatureParams, signature_metadata
 from lshjob.sign.slices import SetRows, sign_slices
+from lshjob.sign.streaming import timed, write_streamed
 
 
 def sign_file(

@@ -16,12 +16,12 @@ from pathlib import Path
 
 import polars as pl
 
-from lshjob.core import compile_cache
-from lshjob.jobs.sign import merge_files, plan_banding, sign_file
 from lshjob.audit.check import audit_index
+from lshjob.core import compile_cache
 from lshjob.demo.generate import generate_events
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.run import RunOptions, run_job
+from lshjob.jobs.sign import merge_files, plan_banding, sign_file
 from lshjob.sign.signatures import SignatureParams
 
 PATRONS = 300

@@ -12,4 +12,7 @@ from lshjob.plan.banding import (
 )
 from lshjob.plan.choose import Plan, PlanMode, choose_plan
 
-__all__ = ["PairHistogram", "Plan", "PlanMode", "approximate_threshold", "candidate_probability", "choose_plan"]
+__all__ = [
+    "PairHistogram", "Plan", "PlanMode", "approximate_threshold", "candidate_probability",
+    "choose_plan",
+]

@@ -13,11 +13,11 @@ from dataclasses import replace
 import numpy as np
 import polars as pl
 
-from lshjob.core._jit import numba
 from lshjob.core import hashing
+from lshjob.core._jit import numba
 from lshjob.core.compile_cache import readonly
-from lshjob.errors import InputError
 from lshjob.core.sets import ElementSets
+from lshjob.errors import InputError
 from lshjob.plan.banding import PairHistogram
 from lshjob.sign.signatures import SignatureParams, comparable, signature_array
 

@@ -2,7 +2,9 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["audit_report", "plan_report", "run_report", "text_s_curve", "write_chart"]
+__all__ = [
+    "audit_report", "plan_report", "run_report", "text_s_curve", "write_chart",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "plan_report": "text",

@@ -2,7 +2,10 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["Budget", "EntitySelection", "HeldSets", "PartStore", "StageProgress", "default_memory", "key_ranges", "output_lock", "parse_size", "peak_bytes"]
+__all__ = [
+    "Budget", "EntitySelection", "HeldSets", "PartStore", "StageProgress", "default_memory",
+    "key_ranges", "output_lock", "parse_size", "peak_bytes",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "Budget": "budget",

@@ -18,8 +18,8 @@ import re
 import resource
 from dataclasses import dataclass
 
-from lshjob.errors import ParameterError
 from lshjob.core import slicing  # SLICE_ROWS: rows of a signature slice, read when used
+from lshjob.errors import ParameterError
 
 _UNITS = {"": 1, "B": 1, "KB": 10**3, "MB": 10**6, "GB": 10**9, "TB": 10**12,
           "KIB": 2**10, "MIB": 2**20, "GIB": 2**30, "TIB": 2**40,

@@ -30,7 +30,7 @@ import socket
 import sys
 import time
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 from lshjob.errors import Busy
@@ -51,13 +51,13 @@ class Holder:
     what: str
 
     @staticmethod
-    def of_this_process(what: str) -> "Holder":
+    def of_this_process(what: str) -> Holder:
         return Holder(pid=os.getpid(), host=socket.gethostname(),
-                      started=datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+                      started=datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
                       command=shlex.join(sys.argv), what=what)
 
     @staticmethod
-    def parse(data: bytes) -> "Holder | None":
+    def parse(data: bytes) -> Holder | None:
         try:
             fields = json.loads(data)
             return Holder(pid=int(fields["pid"]), host=str(fields["host"]), started=str(fields["started"]),
@@ -97,7 +97,7 @@ class OutputLock:
         self._fd: int | None = None
         self._made_folder = False
 
-    def __enter__(self) -> "OutputLock":
+    def __enter__(self) -> OutputLock:
         return self.acquire()
 
     def __exit__(self, *exc) -> None:
@@ -107,7 +107,7 @@ class OutputLock:
     def held(self) -> bool:
         return self._fd is not None
 
-    def acquire(self) -> "OutputLock":
+    def acquire(self) -> OutputLock:
         if self._fd is not None:
             raise RuntimeError(f"{self.path}: already held by this lock")
         deadline = time.monotonic() + self.wait

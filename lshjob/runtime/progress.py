@@ -3,8 +3,8 @@
 from __future__ import annotations
 
 import sys
+from collections.abc import Iterator
 from contextlib import contextmanager
-from typing import Iterator
 
 from rich.console import Console
 from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
@@ -17,7 +17,7 @@ class StageProgress:
         self.enabled = sys.stderr.isatty() if enabled is None else enabled
         self._progress: Progress | None = None
 
-    def __enter__(self) -> "StageProgress":
+    def __enter__(self) -> StageProgress:
         if self.enabled:
             self._progress = Progress(
                 TextColumn("{task.description:<10}"),
@@ -35,7 +35,7 @@ class StageProgress:
             self._progress.stop()
 
     @contextmanager
-    def stage(self, name: str, total: int = 1) -> Iterator["_Task"]:
+    def stage(self, name: str, total: int = 1) -> Iterator[_Task]:
         task = _Task(self._progress, name, total)
         try:
             yield task

@@ -9,7 +9,7 @@ import platform
 import secrets
 import socket
 from concurrent.futures import Future
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -20,13 +20,13 @@ from lshjob.core.digest import iso  # noqa: F401  (re-exported: the manifest's t
 
 
 def utc_now() -> datetime:
-    return datetime.now(timezone.utc)
+    return datetime.now(UTC)
 
 
 def new_run_id(started: datetime) -> str:
     """The start time (UTC, to the second) and 6 random hex digits: sorts by time, and two
     runs started in the same second still differ."""
-    return f"{started.astimezone(timezone.utc):%Y%m%dT%H%M%SZ}-{secrets.token_hex(3)}"
+    return f"{started.astimezone(UTC):%Y%m%dT%H%M%SZ}-{secrets.token_hex(3)}"
 
 
 def host() -> str:

@@ -2,7 +2,10 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["SetRows", "SignatureParams", "estimate_jaccard", "merge_signatures", "read_signatures", "sign_sets", "sign_slices", "write_signatures", "write_streamed"]
+__all__ = [
+    "SetRows", "SignatureParams", "estimate_jaccard", "merge_signatures", "read_signatures",
+    "sign_sets", "sign_slices", "write_signatures", "write_streamed",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "SignatureParams": "params",

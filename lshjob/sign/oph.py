@@ -30,8 +30,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from lshjob.core.compile_cache import readonly
 from lshjob.core import slicing
+from lshjob.core.compile_cache import readonly
 from lshjob.core.slicing import slice_bounds
 from lshjob.sign._fold import EMPTY
 from lshjob.sign._oph import _densify

@@ -38,12 +38,10 @@ from lshjob.core.hashing import splitmix64_sequence, xxh64_strings
 from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
 from lshjob.errors import IncompatibleSignatures, InputError
-from lshjob.sign.params import SCHEMES, SignatureParams  # noqa: F401  (where callers have found them)
 from lshjob.sign import _oph, oph
 from lshjob.sign._kperm import sign_kperm
 from lshjob.sign._merge import matrix_list, minimum_by_run
-
-
+from lshjob.sign.params import SCHEMES, SignatureParams  # noqa: F401  (where callers have found them)
 
 NO_ARRAY = np.empty(0, dtype=np.uint64)
 NO_CODES = np.empty(0, dtype=np.int64)

@@ -22,9 +22,9 @@ from dataclasses import dataclass
 import numpy as np
 import polars as pl
 
+from lshjob.core import slicing
 from lshjob.core.hashing import element_hashes
 from lshjob.core.sets import ElementSets
-from lshjob.core import slicing
 from lshjob.core.slicing import slice_bounds
 from lshjob.ingest.loading import GroupedEvents
 from lshjob.sign._grouped import sign_grouped

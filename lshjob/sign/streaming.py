@@ -14,7 +14,6 @@ from lshjob.errors import InputError
 from lshjob.sign.signatures import write_signatures
 
 
-
 def write_streamed(tables, out, meta: dict) -> int:
     """Stream the tables of ``tables`` (an iterator: one key range's rows at a time, in key
     order) into the signature file ``out``. The writer pulls each range's table when it needs

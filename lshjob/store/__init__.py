@@ -2,7 +2,9 @@
 
 from lshjob._lazy import exports
 
-__all__ = ["check_files", "commit", "is_store", "read_state", "runs"]
+__all__ = [
+    "check_files", "commit", "is_store", "read_state", "runs",
+]
 
 __getattr__, __dir__ = exports(__name__, {
     "read_state": "catalog",
