@@ -100,3 +100,33 @@ class SliceCounter:
                     counter.slices += steps
 
         yield _Task()
+
+
+def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params) -> np.ndarray:
+    """Signatures (n_sets x k, uint64) of sets given as element hashes in CSR form (every set
+    non-empty), through the package's CSR kernel."""
+    from lshjob.sign.signatures import sign_csr
+
+    offsets = np.ascontiguousarray(offsets, dtype=np.int64)
+    return sign_csr(offsets, h0, np.arange(len(offsets) - 1), params)
+
+
+def sign_element_lists(sets: list[list], params) -> np.ndarray:
+    """One signature row per list of element keys (small inputs in tests)."""
+    from lshjob.core.hashing import xxh64_strings
+
+    flat = [str(x) for s in sets for x in dict.fromkeys(s)]
+    sizes = [len(dict.fromkeys(s)) for s in sets]
+    assert all(n > 0 for n in sizes), "cannot sign an empty set"
+    offsets = np.zeros(len(sets) + 1, dtype=np.int64)
+    np.cumsum(sizes, out=offsets[1:])
+    h0 = xxh64_strings(pl.Series(flat, dtype=pl.String))
+    return signature_matrix(h0, offsets, params)
+
+
+def neighbour_table(verified: pl.DataFrame, rep_of: np.ndarray, keys: pl.Series, top_k: int,
+                    bands: int) -> pl.DataFrame:
+    """The whole index as one table, through the package's publishing blocks (small runs)."""
+    from lshjob.index.publish import expand, neighbour_blocks
+
+    return pl.concat(list(neighbour_blocks(expand(verified, rep_of, top_k, bands), keys, 1 << 62)))

@@ -3,10 +3,11 @@
 import numpy as np
 import polars as pl
 import pytest
+from helpers import sign_element_lists
 
 from lshjob import EventSpec, SignatureParams
 from lshjob.sign.events import sign_events
-from lshjob.sign.signatures import sign_element_lists, signature_array
+from lshjob.sign.signatures import signature_array
 
 
 @pytest.mark.parametrize("scheme", ["kperm", "oph"])

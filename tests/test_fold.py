@@ -5,6 +5,7 @@ import numpy as np
 import polars as pl
 import pytest
 import xxhash
+from helpers import sign_element_lists
 from test_hashing import fmix64_reference
 
 from lshjob import EventSpec, SignatureParams
@@ -12,7 +13,6 @@ from lshjob.core.sets import ElementSets
 from lshjob.ingest.loading import read_grouped
 from lshjob.sign.signatures import (
     comparable_by_position,
-    sign_element_lists,
     sign_membership,
     signature_array,
 )

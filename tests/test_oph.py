@@ -3,6 +3,7 @@
 import numpy as np
 import polars as pl
 import pytest
+from helpers import sign_element_lists
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from test_signatures import bias_z, long_tailed_pairs
@@ -14,7 +15,6 @@ from lshjob.sign.signatures import (
     comparable,
     estimate_jaccard,
     merge_signatures,
-    sign_element_lists,
     signature_metadata,
 )
 from lshjob.sign.slices import sign_sets

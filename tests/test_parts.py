@@ -375,6 +375,7 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
     # from the raw loans. In three key ranges, and in ranges chosen by a budget the sets do
     # not fit, the file must hold exactly those signatures in key order, with the counts of
     # signing in one part; weighted (--count, --min-count 2), some sets are emptied.
+    from helpers import sign_element_lists
     from typer.testing import CliRunner
 
     from lshjob import load_sets
@@ -382,7 +383,7 @@ def test_signing_segments_and_periods_in_parts(tmp_path, demo_events, monkeypatc
     from lshjob.ingest import keyed
     from lshjob.ingest.spec import validated_events
     from lshjob.jobs.sign import sign_file
-    from lshjob.sign.signatures import SignatureParams, read_signatures, sign_element_lists, signature_array
+    from lshjob.sign.signatures import SignatureParams, read_signatures, signature_array
 
     events = demo_events[0]
     if integer_patrons:

@@ -12,10 +12,11 @@ from math import comb
 import numpy as np
 import polars as pl
 import pytest
+from helpers import neighbour_table
 from test_run_edges import expected_index
 
 from lshjob import EventSpec, ParameterError
-from lshjob.index.publish import expand, neighbour_blocks, neighbour_table
+from lshjob.index.publish import expand, neighbour_blocks
 from lshjob.jobs.run import RunOptions, run_job
 
 SPEC = EventSpec(entity="patron", element="title")

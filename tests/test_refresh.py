@@ -244,7 +244,9 @@ def test_period_signatures_fold_to_the_window_signature(tmp_path):
     # Oracle: the signature of each patron's window set, built from Python sets of the raw
     # events (sign_element_lists), equals the element-wise minimum of the store's period
     # signatures (MinHash of a union = minimum of the parts' MinHash: Broder 1997).
-    from lshjob.sign.signatures import SignatureParams, sign_element_lists, signature_array
+    from helpers import sign_element_lists
+
+    from lshjob.sign.signatures import SignatureParams, signature_array
 
     batches, _, _ = _library_batches(patrons=100, seed=17)
     for i, batch in enumerate(batches[:3]):

@@ -8,6 +8,7 @@ import numpy as np
 import polars as pl
 import pytest
 from datasketch import MinHash
+from helpers import sign_element_lists
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -16,7 +17,6 @@ from lshjob.sign.signatures import (
     estimate_jaccard,
     estimate_set_size,
     merge_signatures,
-    sign_element_lists,
     signature_array,
     signature_column,
     signature_metadata,

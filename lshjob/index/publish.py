@@ -237,13 +237,6 @@ def _with_keys(table: pl.DataFrame, keys: pl.Series) -> pl.DataFrame:
     ))
 
 
-def neighbour_table(verified: pl.DataFrame, rep_of: np.ndarray, keys: pl.Series, top_k: int,
-                    bands: int) -> pl.DataFrame:
-    """The whole index as one table (module contract): for small runs and tests."""
-    blocks = list(neighbour_blocks(expand(verified, rep_of, top_k, bands), keys, 1 << 62))
-    return pl.concat(blocks)
-
-
 def block_rows(memory: int, held: int = 0) -> int:
     """Expanded rows a block may hold: about an eighth of the budget, or a quarter of what it
     leaves beside the ``held`` bytes the process holds when that is less (the writer holds

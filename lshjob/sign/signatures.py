@@ -34,7 +34,7 @@ import polars as pl
 from lshjob.contracts.signature_file import FORMAT_NAME, FORMAT_VERSION, HASH_FAMILY, METADATA_KEY, file_meta
 from lshjob.core import slicing
 from lshjob.core.atomic import atomic_file
-from lshjob.core.hashing import splitmix64_sequence, xxh64_strings
+from lshjob.core.hashing import splitmix64_sequence
 from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
 from lshjob.errors import IncompatibleSignatures, InputError
@@ -45,15 +45,6 @@ from lshjob.sign.params import SCHEMES, SignatureParams  # noqa: F401  (where ca
 
 NO_ARRAY = np.empty(0, dtype=np.uint64)
 NO_CODES = np.empty(0, dtype=np.int64)
-
-
-def signature_matrix(h0: np.ndarray, offsets: np.ndarray, params: SignatureParams) -> np.ndarray:
-    """Signatures (n_sets x k, uint64) of sets given as element hashes in CSR form.
-
-    Set g is ``h0[offsets[g]:offsets[g+1]]``; every set must be non-empty.
-    """
-    offsets = np.ascontiguousarray(offsets, dtype=np.int64)
-    return sign_csr(offsets, h0, np.arange(len(offsets) - 1), params)
 
 
 def sign_csr(offsets: np.ndarray, h0: np.ndarray, ids: np.ndarray, params: SignatureParams) -> np.ndarray:
@@ -104,18 +95,6 @@ def _membership_source(sets: ElementSets, ids: np.ndarray) -> tuple:
     return sets.offsets, sets.elements, table, np.ascontiguousarray(ids, dtype=np.int64)
 
 
-def sign_element_lists(sets: list[list], params: SignatureParams) -> np.ndarray:
-    """Convenience for small inputs and tests: one signature row per list of element keys."""
-    flat = [str(x) for s in sets for x in dict.fromkeys(s)]
-    sizes = [len(dict.fromkeys(s)) for s in sets]
-    if any(n == 0 for n in sizes):
-        raise InputError("cannot sign an empty set")
-    offsets = np.zeros(len(sets) + 1, dtype=np.int64)
-    np.cumsum(sizes, out=offsets[1:])
-    h0 = xxh64_strings(pl.Series(flat, dtype=pl.String))
-    return signature_matrix(h0, offsets, params)
-
-
 def run_lengths(table: pl.DataFrame, keys: list[str]) -> np.ndarray:
     """Lengths of the runs of equal keys in a table sorted by ``keys``."""
     key = pl.col(keys[0]) if len(keys) == 1 else pl.struct(keys)
@@ -158,11 +137,6 @@ def estimate_set_size(matrix: np.ndarray) -> np.ndarray:
     for a, b in slice_bounds(matrix.shape[0], slicing.SLICE_ROWS):  # blocks: no full-size float copies
         sums[a:b] = ((matrix[a:b].astype(np.float64) + 1.0) / 2.0**64).sum(axis=1)
     return np.maximum(1.0, (k - 1) / sums)
-
-
-def merge_matrices(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Element-wise minimum: the signature of the union of the two sets."""
-    return np.minimum(a, b)
 
 
 def merge_signatures(
