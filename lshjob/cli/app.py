@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import shutil
 import sys
 from pathlib import Path
@@ -13,7 +12,9 @@ import typer
 from lshjob._version import __version__
 from lshjob.audit.check import audit_index
 from lshjob.cli._blas_probe import skip_blas_probe as _skip_blas_probe
-from lshjob.cli.failures import EXIT_CODES, run_app, to_stdout
+from lshjob.cli.common import AsJson, Quiet
+from lshjob.cli.common import emit as _emit
+from lshjob.cli.failures import EXIT_CODES, run_app
 from lshjob.cli.failures import ends_cleanly as _fail_cleanly
 from lshjob.cli.more_commands import register as register_more
 from lshjob.cli.refresh_command import register as register_refresh
@@ -48,15 +49,7 @@ app = typer.Typer(
     rich_markup_mode=None,
 )
 
-Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or summary text.")]
-AsJson = Annotated[bool, typer.Option("--json", help="Print the summary as JSON on stdout.")]
 
-
-def _emit(summary: dict, as_json: bool, quiet: bool, text: str) -> None:
-    if as_json:
-        to_stdout(json.dumps(summary, indent=2, sort_keys=True, default=str))
-    elif not quiet:
-        to_stdout(text)
 
 
 def _progress(quiet: bool, as_json: bool) -> StageProgress:

@@ -4,23 +4,14 @@ changed across periods). A thin typer layer over :mod:`lshjob.jobs.diff` and
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import Annotated
 
 import typer
 
-from lshjob.cli.failures import ends_cleanly, to_stdout
-
-Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="No summary text.")]
-AsJson = Annotated[bool, typer.Option("--json", help="Print the summary as JSON on stdout.")]
-
-
-def _emit(summary: dict, as_json: bool, quiet: bool, text: str) -> None:
-    if as_json:
-        to_stdout(json.dumps(summary, indent=2, sort_keys=True, default=str))
-    elif not quiet:
-        to_stdout(text)
+from lshjob.cli.common import AsJson, Quiet
+from lshjob.cli.common import emit as _emit
+from lshjob.cli.failures import ends_cleanly
 
 
 def _warn(summary: dict) -> None:

@@ -3,14 +3,14 @@ layer over :mod:`lshjob.jobs.refresh` (registered on the app by :func:`register`
 
 from __future__ import annotations
 
-import json
 import sys
 from pathlib import Path
 from typing import Annotated
 
 import typer
 
-from lshjob.cli.failures import ends_cleanly, to_stdout
+from lshjob.cli.common import emit as _emit
+from lshjob.cli.failures import ends_cleanly
 from lshjob.errors import ParameterError
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.config import load_run_config, merge_settings
@@ -29,12 +29,6 @@ REFRESH_DEFAULTS = {
 }
 REQUIRED = ("events", "store", "entity", "element", "time", "period", "window", "threshold", "out")
 
-
-def _emit(summary: dict, as_json: bool, quiet: bool, text: str) -> None:
-    if as_json:
-        to_stdout(json.dumps(summary, indent=2, sort_keys=True, default=str))
-    elif not quiet:
-        to_stdout(text)
 
 
 def refresh_text(manifest: dict) -> str:

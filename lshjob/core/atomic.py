@@ -94,3 +94,12 @@ def file_sha256(path: str | Path) -> str:
     releases the GIL while it hashes)."""
     with open(path, "rb") as fh:
         return hashlib.file_digest(fh, "sha256").hexdigest()
+
+
+def write_table(table, path: str | Path) -> Path:
+    """Write a polars table to ``path`` as Parquet, atomically (the folders above made)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with atomic_file(path) as tmp:
+        table.write_parquet(tmp)
+    return path

@@ -21,11 +21,11 @@ The per-entity table (``--out``) holds the entities whose list changed, most cha
 
 from __future__ import annotations
 
-import os
 from pathlib import Path
 
 import polars as pl
 
+from lshjob.core.atomic import write_table
 from lshjob.errors import InputError
 from lshjob.index.publish import NEIGHBOURS, read_manifest
 from lshjob.runtime.outputs import output_file
@@ -93,7 +93,7 @@ def diff_indexes(old: str | Path, new: str | Path, out: str | Path | None = None
 
     entities = entity_changes(old_rows, new_rows)
     if out is not None:
-        _write_atomic(entities, out)
+        write_table(entities, out)
     warnings = []
     for name in ("threshold", "top_k"):
         before, after = old_manifest.options.get(name), new_manifest.options.get(name)
@@ -134,13 +134,3 @@ def entity_changes(old_rows: pl.DataFrame, new_rows: pl.DataFrame) -> pl.DataFra
             .with_columns(list_change=1.0 - pl.col("kept") / pl.col("listed"))
             .drop("listed")
             .sort(["list_change", "entity"], descending=[True, False]))
-
-
-def _write_atomic(table: pl.DataFrame, path: Path) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    try:
-        table.write_parquet(tmp)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)

@@ -16,13 +16,13 @@ earlier period compared with; null for an entity's first period in the history w
 from __future__ import annotations
 
 import datetime as dt
-import os
 import time
 from pathlib import Path
 
 import numpy as np
 import polars as pl
 
+from lshjob.core.atomic import write_table
 from lshjob.drift import DEFAULT_Z, MIN_POPULATION, compare_with_history, ratio_and_error, score_rows
 from lshjob.errors import InputError, ParameterError
 from lshjob.runtime.budget import peak_bytes
@@ -88,7 +88,7 @@ def drift_file(source: str | Path, out: str | Path, history: int = DEFAULT_HISTO
     rows = rows.select(*keys, *OUTPUT_COLUMNS)
     if changes is not None:
         rows = neighbour_drift(rows, changes)
-    _write_atomic(rows, out)
+    write_table(rows, out)
     summary = drift_summary(rows, per_period, source, out, meta, history, z)
     if changes is not None:
         summary["neighbour_drift"] = neighbour_summary(rows, changes, neighbours)
@@ -225,13 +225,3 @@ def neighbour_summary(rows: pl.DataFrame, changes: pl.DataFrame, source) -> dict
 
 def _iso(value) -> str:
     return value.isoformat() if isinstance(value, (dt.date, dt.datetime)) else str(value)
-
-
-def _write_atomic(table: pl.DataFrame, path: Path) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    try:
-        table.write_parquet(tmp)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)

@@ -11,11 +11,11 @@ from __future__ import annotations
 import base64
 import html
 import io
-import os
 from pathlib import Path
 
 import polars as pl
 
+from lshjob.core.atomic import atomic_file
 from lshjob.errors import ParameterError
 
 TIMELINES = 6  # flagged entities drawn
@@ -138,10 +138,6 @@ td,th{{border:1px solid #ccc;padding:2px 8px;text-align:right}}</style></head><b
 </body></html>
 """
     path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    try:
-        tmp.write_text(body)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
+    with atomic_file(path) as tmp:
+        tmp.write_text(body, encoding="utf-8")
     return path
