@@ -17,9 +17,10 @@ from lshjob.sign.signatures import SignatureParams
 from tests.drift_data import SUMMER, entity_scores, exact_periods, library_months
 
 MONTHLY = EventSpec(entity="patron", element="author", time="borrowed_at", period="month")
+DEFAULT_PARAMS = SignatureParams()
 
 
-def _signed(tmp_path, events, params=SignatureParams(), spec=MONTHLY, name="sigs"):
+def _signed(tmp_path, events, params=DEFAULT_PARAMS, spec=MONTHLY, name="sigs"):
     events.write_parquet(tmp_path / f"{name}-events.parquet")
     sign_file(tmp_path / f"{name}-events.parquet", tmp_path / f"{name}.parquet", spec, params)
     return tmp_path / f"{name}.parquet"
