@@ -161,6 +161,6 @@ def test_ruff_is_clean():
     ruff = Path(sys.executable).parent / "ruff"
     if not ruff.exists():
         pytest.skip("ruff is not installed (pip install '.[test]')")
-    done = subprocess.run([str(ruff), "check", "--no-cache", "."], cwd=ROOT,
+    done = subprocess.run([str(ruff), "check", "--no-cache", "--output-format", "concise", "."], cwd=ROOT,
                           capture_output=True, text=True, timeout=300)
     assert done.returncode == 0, done.stdout[-3000:] + done.stderr[-2000:]
