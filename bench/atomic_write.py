@@ -57,7 +57,8 @@ def main() -> None:
         "",
         "| write | seconds, each round | median |",
         "| --- | --- | ---: |",
-        *(f"| {mode} | {', '.join(f'{t:.2f}' for t in ts)} | {statistics.median(ts):.2f} |" for mode, ts in times.items()),
+        *(f"| {mode} | {', '.join(f'{t:.2f}' for t in ts)} | {statistics.median(ts):.2f} |"
+          for mode, ts in times.items()),
     ]
     finish("Atomic write: the flush to disk of a signature file", "\n".join(lines), not args.no_write)
 

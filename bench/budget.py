@@ -21,7 +21,8 @@ from pathlib import Path
 sys.path.insert(0, str(Path(__file__).parent))
 from common import branch_network_events, finish, machine  # noqa: E402
 
-MEASURE = ("import json, resource, subprocess, sys; done = subprocess.run(sys.argv[1:], capture_output=True, text=True); "
+MEASURE = ("import json, resource, subprocess, sys; "
+           "done = subprocess.run(sys.argv[1:], capture_output=True, text=True); "
            "print(json.dumps({'code': done.returncode, 'peak': resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss "
            "* 1024, 'stdout': done.stdout, 'stderr': done.stderr[-2000:]}))")
 ORDER = ["ingest", "count", "collapse", "plan", "sign", "band", "join", "verify", "publish"]

@@ -92,7 +92,8 @@ def main() -> None:
             wall, cpu = timed(["compile-kernels", "--quiet"], env)
             rows.append(f"| working tree | `lshjob compile-kernels` | cold | {wall:.1f} | {cpu:.1f} |")
             wall, cpu = timed(commands(tmp / "after-fill")["lshjob demo --quiet"], env)
-            rows.append(f"| working tree | `lshjob demo --quiet` after compile-kernels | warm | {wall:.1f} | {cpu:.1f} |")
+            rows.append(f"| working tree | `lshjob demo --quiet` after compile-kernels | warm "
+                        f"| {wall:.1f} | {cpu:.1f} |")
     command = "python bench/cold_start.py" + (f" --baseline {args.baseline}" if args.baseline else "") + (
         f" --repeat {args.repeat}" if args.repeat > 1 else "") + (" --fill" if args.fill else "")
     lines = [

@@ -150,7 +150,8 @@ def _branch_chunk(first, n, patron_ids, mean_size, rng) -> pl.DataFrame:
     key = src_owner * 5000 + row_in_set  # same (source, position) -> same loan
     u = _uniform_from_key(key, 1)
     universe = 2 * BRANCH_PATRONS
-    local = np.minimum((u ** (-1 / 0.7)).astype(np.int64), universe) + (_uniform_from_key(key, 2) * 50).astype(np.int64) * universe
+    local = (np.minimum((u ** (-1 / 0.7)).astype(np.int64), universe)
+             + (_uniform_from_key(key, 2) * 50).astype(np.int64) * universe)
     local_title = (first + src_owner) // BRANCH_PATRONS * (50 * universe + 1) + local
     global_title = 10**12 + (_uniform_from_key(key, 3) * 20 * len(patron_ids)).astype(np.int64)
     title = np.where(_uniform_from_key(key, 4) < 0.85, local_title, global_title)

@@ -52,7 +52,7 @@ def main() -> None:
                 for on in (True, False):
                     ingest._check_counts = checked if on else (lambda *a: None)
                     ingest.not_a_count = not_a_count if on else (lambda name, schema=None: pl.lit(False))
-                    wall, cpu = best(lambda: open_events(path, spec), args.repeat)
+                    wall, cpu = best(lambda path=path: open_events(path, spec), args.repeat)
                     lines.append(f"| {kind} count, {fmt} | {'on' if on else 'off'} | {wall:.3f} | {cpu:.3f} |")
         ingest._check_counts, ingest.not_a_count = checked, not_a_count
         nested = ingest.looks_nested
@@ -61,7 +61,7 @@ def main() -> None:
         plain = EventSpec(entity="patron", element="title")
         for on in (True, False):
             ingest.looks_nested = nested if on else (lambda keys: pl.lit(False))
-            wall, cpu = best(lambda: open_events(path, plain), args.repeat)
+            wall, cpu = best(lambda path=path: open_events(path, plain), args.repeat)
             lines.append(f"| text keys, ndjson (nested-key check) | {'on' if on else 'off'} | {wall:.3f} | {cpu:.3f} |")
         ingest.looks_nested = nested
     finish(f"Count and nested-key checks, {n:,} rows", "\n".join(lines), not args.no_write)

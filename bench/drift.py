@@ -106,7 +106,8 @@ def main() -> None:
         "| --- | ---: | ---: | ---: |",
         f"| read the signatures (the same blocks, decoded to matrices) | {read_s:.1f} | {rows / read_s:,.0f} | 1.00x |",
         f"| read the key columns only | {keys_s:.1f} | {rows / keys_s:,.0f} | {keys_s / read_s:.2f}x |",
-        f"| lshjob drift (read, compare, score, write) | {drift_s:.1f} | {rows / drift_s:,.0f} | {drift_s / read_s:.2f}x |",
+        f"| lshjob drift (read, compare, score, write) | {drift_s:.1f} | {rows / drift_s:,.0f} "
+        f"| {drift_s / read_s:.2f}x |",
         "",
         f"drift takes {drift_s / read_s:.2f}x the time of reading the signatures (target: at most 2x); "
         f"peak memory {drift_peak / 2**30:.2f} GiB; {summary['flagged']:,} rows flagged.",

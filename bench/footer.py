@@ -88,8 +88,8 @@ def sign_seconds(source: Path, out: Path, pythonpath: str | None) -> float:
     if pythonpath:
         env["PYTHONPATH"] = pythonpath
     start = time.perf_counter()
-    subprocess.run([sys.executable, "-P", "-m", "lshjob.cli.app", "sign", str(source), "--entity", "patron", "--element",
-                    "title", "--out", str(out), "--quiet"], env=env, check=True, stdout=subprocess.DEVNULL)
+    subprocess.run([sys.executable, "-P", "-m", "lshjob.cli.app", "sign", str(source), "--entity", "patron",
+                    "--element", "title", "--out", str(out), "--quiet"], env=env, check=True, stdout=subprocess.DEVNULL)
     return time.perf_counter() - start
 
 

@@ -45,7 +45,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         for label, first, second in (("text keys, ASCII", "patron-", "title-"),
                                      ("text keys, non-ASCII, half NFD", "Zoë-", "Ångström-")):
-            def form(prefix, i):
+            def form(prefix, i, label=label):
                 return unicodedata.normalize("NFD", prefix) if "half" in label and i % 2 else prefix
             frame = pl.DataFrame({"patron": [form(first, i) + str(p) for i, p in enumerate(patrons)],
                                   "title": [form(second, i) + str(t) for i, t in enumerate(titles)]})
@@ -53,17 +53,17 @@ def main() -> None:
             frame.write_parquet(path)
             for mode in ("asis", "nfc"):
                 spec = EventSpec(entity="patron", element="title", unicode=mode)
-                wall, cpu = best(lambda: load_membership(path, spec), args.repeat)
+                wall, cpu = best(lambda path=path, spec=spec: load_membership(path, spec), args.repeat)
                 lines.append(f"| {label} | load_membership, --unicode {mode} | {wall:.3f} | {cpu:.3f} |")
         ints = pl.DataFrame({"patron": patrons, "title": titles})
         spec = EventSpec(entity="patron", element="title")
         for fmt in ("parquet", "csv"):
             path = Path(tmp) / f"ints.{fmt}"
             getattr(ints, f"write_{fmt}")(path)
-            wall, cpu = best(lambda: open_events(path, spec), args.repeat)
+            wall, cpu = best(lambda path=path: open_events(path, spec), args.repeat)
             lines.append(f"| integer keys, {fmt} | open_events (checks) | {wall:.3f} | {cpu:.3f} |")
             events = open_events(path, spec)
-            wall, cpu = best(lambda: read_and_group(events, None), args.repeat)
+            wall, cpu = best(lambda events=events: read_and_group(events, None), args.repeat)
             lines.append(f"| integer keys, {fmt} | read_and_group (streaming pass) | {wall:.3f} | {cpu:.3f} |")
     finish(f"Ingest checks, {n:,} rows", "\n".join(lines), not args.no_write)
 

@@ -33,8 +33,8 @@ files, out, limit, threads = json.loads(sys.argv[1])
 before = current_bytes()
 reset_peak()
 start = time.perf_counter()
-got = candidate_pairs([Path(f) for f in files], Path(out), JoinSettings(memory_limit=limit, temp_directory=out + ".spill",
-                      threads=threads), bands=16)
+got = candidate_pairs([Path(f) for f in files], Path(out),
+                      JoinSettings(memory_limit=limit, temp_directory=out + ".spill", threads=threads), bands=16)
 print(json.dumps({"before": before, "peak": peak_bytes(), "seconds": time.perf_counter() - start,
                   "pairs": got["candidate_pairs"]}))
 """
@@ -89,7 +89,8 @@ def main() -> None:
                 continue
             got = json.loads(done.stdout)
             used = got["peak"] - got["before"]
-            lines.append(f"| {limit} | {got['before'] / mib:.0f} MiB | {got['peak'] / mib:.0f} MiB | {used / mib:.0f} MiB "
+            lines.append(f"| {limit} | {got['before'] / mib:.0f} MiB | {got['peak'] / mib:.0f} MiB "
+                         f"| {used / mib:.0f} MiB "
                          f"| {(used - _mib(limit) * mib) / mib:+.0f} MiB | {got['seconds']:.1f} |")
             print(lines[-1], flush=True)
     finish("DuckDB's memory beyond its limit (join)", "\n".join(lines), not args.no_write)

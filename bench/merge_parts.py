@@ -27,7 +27,8 @@ from sign_parts import _same_rows  # noqa: E402
 
 def _lshjob(*args: str) -> tuple[float, dict]:
     start = time.perf_counter()
-    done = subprocess.run([sys.executable, "-m", "lshjob.cli.app", *args, "--json", "--quiet"], capture_output=True, text=True)
+    done = subprocess.run([sys.executable, "-m", "lshjob.cli.app", *args, "--json", "--quiet"],
+                          capture_output=True, text=True)
     if done.returncode != 0:
         sys.exit(f"lshjob {args[0]} failed (exit {done.returncode}):\n{done.stderr[-3000:]}")
     return time.perf_counter() - start, json.loads(done.stdout)

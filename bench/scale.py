@@ -3,9 +3,10 @@
     python bench/scale.py --entities 1000000 [--scheme kperm|oph] [--memory 8GB]
 
 Generates a branch network once into bench/cache/ (bench/common.py branch_network_events:
-log-normal set sizes, mean ~40, power-law titles per branch, 10% perturbed copies), times a floor pass (polars reads the events, one 64-bit
-hash per event, minimum per entity), runs ``lshjob run`` at threshold 0.5 in a fresh
-process, and audits recall on a sample with ``lshjob audit``.
+log-normal set sizes, mean ~40, power-law titles per branch, 10% perturbed copies), times a
+floor pass (polars reads the events, one 64-bit hash per event, minimum per entity), runs
+``lshjob run`` at threshold 0.5 in a fresh process, and audits recall on a sample with
+``lshjob audit``.
 """
 
 from __future__ import annotations
@@ -55,8 +56,8 @@ def main() -> None:
 
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
         cmd = [sys.executable, "-m", "lshjob.cli.app", "run", str(path), "--entity", "entity", "--element", "element",
-               "--threshold", str(args.threshold), "--scheme", args.scheme, "--perms", str(args.perms), "--out", f"{tmp}/idx", "--json",
-               "--quiet"]
+               "--threshold", str(args.threshold), "--scheme", args.scheme, "--perms", str(args.perms),
+               "--out", f"{tmp}/idx", "--json", "--quiet"]
         if args.memory:
             cmd += ["--memory", args.memory]
         walls, run_cpu, m = [], [], None
@@ -75,7 +76,8 @@ def main() -> None:
         floor = min(floors)
         audit = None
         if args.audit > 0:
-            audit_cmd = [sys.executable, "-m", "lshjob.cli.app", "audit", f"{tmp}/idx", "--sample", str(args.audit), "--json"]
+            audit_cmd = [sys.executable, "-m", "lshjob.cli.app", "audit", f"{tmp}/idx",
+                         "--sample", str(args.audit), "--json"]
             audit = json.loads(subprocess.run(audit_cmd + (["--memory", args.memory] if args.memory else []),
                                               check=True, capture_output=True, text=True).stdout)
 
@@ -99,11 +101,13 @@ def main() -> None:
         lines.append(f"| {stage} | {secs:.2f} | {'' if peak is None else f'{peak / 2**30:.2f} GiB'} |")
     c = m["counts"]
     lines += [
-        f"| total (process wall clock{'' if args.repeat == 1 else f', best of {args.repeat}'}) | {wall:.2f} | {max(m['peak_memory_bytes'].values()) / 2**30:.2f} GiB |",
+        f"| total (process wall clock{'' if args.repeat == 1 else f', best of {args.repeat}'}) | {wall:.2f} "
+        f"| {max(m['peak_memory_bytes'].values()) / 2**30:.2f} GiB |",
         "",
-        f"Counts: parts {c.get('parts', 1)}, bucket rows {c['bucket_rows']:,}, candidates {c['candidate_pairs']:,}, verified "
-        f"{c['verified_pairs']:,}, published {c['published_rows']:,}.",
-        f"Floor pass {floor:.2f} s (best of {len(floors)}, two beside each run: {', '.join(f'{x:.2f}' for x in floors)}); "
+        f"Counts: parts {c.get('parts', 1)}, bucket rows {c['bucket_rows']:,}, "
+        f"candidates {c['candidate_pairs']:,}, verified {c['verified_pairs']:,}, published {c['published_rows']:,}.",
+        f"Floor pass {floor:.2f} s (best of {len(floors)}, two beside each run: "
+        f"{', '.join(f'{x:.2f}' for x in floors)}); "
         f"run / floor = {wall / floor:.1f}x. CPU time (user + system, both cores; steadier than the "
         f"wall clock on this machine): run {min(run_cpu):.2f} s, floor {min(floor_cpu):.2f} s, "
         f"ratio {min(run_cpu) / min(floor_cpu):.1f}x (best of each).",

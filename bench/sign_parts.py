@@ -49,9 +49,11 @@ def main() -> None:
         f.read_bytes()
     rows = {}
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
-        for name, extra in (("one part (--parts 1)", ["--parts", "1"]), (f"--memory {args.memory}", ["--memory", args.memory])):
-            cmd = [sys.executable, "-m", "lshjob.cli.app", "sign", str(path), "--entity", "entity", "--element", "element",
-                   "--perms", str(args.perms), "--out", f"{tmp}/{len(rows)}.parquet", "--json", "--quiet", *keyed, *extra]
+        for name, extra in (("one part (--parts 1)", ["--parts", "1"]),
+                            (f"--memory {args.memory}", ["--memory", args.memory])):
+            cmd = [sys.executable, "-m", "lshjob.cli.app", "sign", str(path), "--entity", "entity",
+                   "--element", "element", "--perms", str(args.perms), "--out", f"{tmp}/{len(rows)}.parquet",
+                   "--json", "--quiet", *keyed, *extra]
             start = time.perf_counter()
             done = subprocess.run(cmd, capture_output=True, text=True)
             wall = time.perf_counter() - start
@@ -73,7 +75,8 @@ def main() -> None:
     for name, (wall, s) in rows.items():
         sec = s["seconds"]
         lines.append(f"| {name} | {s['parts']} | {wall:.1f} | {wall / base:.2f} | "
-                     f"{s['peak_memory_bytes'] / 2**30:.2f} GiB | {sec['ingest']:.1f} | {sec['sign']:.1f} | {sec['write']:.1f} |")
+                     f"{s['peak_memory_bytes'] / 2**30:.2f} GiB | {sec['ingest']:.1f} | {sec['sign']:.1f} "
+                     f"| {sec['write']:.1f} |")
     lines += ["", f"Same signatures in both files: {same}."]
     finish(f"Signing under a memory budget, {args.entities:,} entities", "\n".join(lines), not args.no_write)
 

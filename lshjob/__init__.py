@@ -2,7 +2,7 @@
 
 import os
 
-from lshjob._version import __version__
+from lshjob._version import __version__  # noqa: F401  (re-exported: lshjob.__version__)
 from lshjob.core.compile_cache import configure_cache_dir
 
 # LSHJOB_CACHE_DIR becomes numba's cache folder before numba is imported (lshjob.core.compile_cache).

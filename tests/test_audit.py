@@ -85,7 +85,8 @@ def built(tmp_path_factory):
     is a candidate with probability 1 - 0.75**64 > 0.99999: every true pair is found)."""
     folder = tmp_path_factory.mktemp("audit")
     sets = _library()
-    events = pl.DataFrame([(p, t) for p, s in sets.items() for t in sorted(s)], schema=["patron", "title"], orient="row")
+    events = pl.DataFrame([(p, t) for p, s in sets.items() for t in sorted(s)],
+                          schema=["patron", "title"], orient="row")
     src = folder / "loans.parquet"
     events.write_parquet(src)
     run_job(src, SPEC, RunOptions(threshold=0.5, top_k=TOP_K, perms=128, bands=64, rows=2), folder / "idx")
@@ -221,8 +222,9 @@ def test_a_neighbour_table_other_than_the_manifests_fails_and_a_missing_one_is_b
 
 
 def test_events_other_than_the_runs_input_are_warned_about(built, tmp_path):
-    # Oracle: the manifest's input digest (sha256 over the files' own sha256, bytes only). A byte-identical copy under another path is the run's input; a copy without one
-    # loan is not, and the audit says so on stderr and in the report.
+    # Oracle: the manifest's input digest (sha256 over the files' own sha256, bytes only). A
+    # byte-identical copy under another path is the run's input; a copy without one loan is
+    # not, and the audit says so on stderr and in the report.
     folder, sets = built
     copy = tmp_path / "same.parquet"
     shutil.copyfile(folder / "loans.parquet", copy)

@@ -292,7 +292,7 @@ def test_nfc_and_nfd_elements_are_one_element(tmp_path):
     path = tmp_path / "titles.parquet"
     title = "Le Petit Prince — Saint-Exupéry"
     pl.DataFrame({"patron": ["a", "a", "b"], "title": [unicodedata.normalize("NFD", title),
-                                                        unicodedata.normalize("NFC", title), title]}).write_parquet(path)
+                  unicodedata.normalize("NFC", title), title]}).write_parquet(path)
     members, _ = load_membership(path, SPEC)
     assert members.set_sizes.tolist() == [1, 1]
     assert members.elements.tolist() == [0, 0]
@@ -313,8 +313,8 @@ def test_the_command_line_prints_one_line_and_exits_2(tmp_path, command):
     events().write_parquet(late / "a.parquet")
     (late / "b.parquet").write_text("patron,title\n1,2\n")
     for source, fragment in ((path, "line 3"), (late, "b.parquet")):
-        args = [sys.executable, "-m", "lshjob.cli.app", command, str(source), "--entity", "patron", "--element", "title",
-                "--out", str(tmp_path / "out")]
+        args = [sys.executable, "-m", "lshjob.cli.app", command, str(source), "--entity", "patron",
+                "--element", "title", "--out", str(tmp_path / "out")]
         if command == "run":
             args += ["--threshold", "0.5"]
         done = subprocess.run(args, capture_output=True, text=True, timeout=300)

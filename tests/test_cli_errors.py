@@ -25,7 +25,8 @@ SPEC = ["--entity", "patron", "--element", "title"]
 def lshjob(*args, cwd, patch: str = "", state=None):
     """Run ``lshjob args`` in a child process through the console script's entry point;
     ``patch`` is Python run in the child first (to plant a fault there only)."""
-    script = f"import sys\nimport lshjob.cli.app\n{patch}\nsys.argv = ['lshjob', *sys.argv[1:]]\nlshjob.cli.app.entry_point()\n"
+    script = (f"import sys\nimport lshjob.cli.app\n{patch}\n"
+              "sys.argv = ['lshjob', *sys.argv[1:]]\nlshjob.cli.app.entry_point()\n")
     env = dict(os.environ, XDG_STATE_HOME=str(state or cwd / "state"))
     return subprocess.run([sys.executable, "-c", script, *map(str, args)], cwd=cwd, env=env,
                           capture_output=True, text=True, timeout=300)
@@ -151,7 +152,8 @@ def test_out_of_range_numbers_are_one_line(tmp_path, small_events, option, value
 def test_plan_takes_on_null_as_its_error_advises(tmp_path):
     # Oracle: the sample without its null-key row has 3 entities, so sampling draws 3.
     events = tmp_path / "events.parquet"
-    pl.DataFrame({"patron": ["ann", "ann", None, "bob", "cy"], "title": ["t1", "t2", "t1", "t1", "t2"]}).write_parquet(events)
+    pl.DataFrame({"patron": ["ann", "ann", None, "bob", "cy"],
+                  "title": ["t1", "t2", "t1", "t1", "t2"]}).write_parquet(events)
     refused = lshjob("plan", "--threshold", "0.5", "--sample", events, *SPEC, cwd=tmp_path)
     assert refused.returncode == 2
     assert "pass --on-null drop" in one_error_line(refused)

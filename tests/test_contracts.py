@@ -242,8 +242,10 @@ def _manifest() -> Manifest:
      "manifest format version 2 is not supported; this lshjob reads version 1"),
     (lambda text: text.replace('"lshjob-index"', '"library-loans"'),
      "not an lshjob manifest \\(format 'library-loans'; expected 'lshjob-index'\\)"),
-    (lambda text: text.replace('"total": 4.0', '"all": 4.0'), "not an lshjob manifest \\(no 'total' entry in 'seconds'\\)"),
-    (lambda text: text.replace('"top_k": 20', '"top_n": 20'), "not an lshjob manifest \\(no 'top_k' entry in 'options'\\)"),
+    (lambda text: text.replace('"total": 4.0', '"all": 4.0'),
+     "not an lshjob manifest \\(no 'total' entry in 'seconds'\\)"),
+    (lambda text: text.replace('"top_k": 20', '"top_n": 20'),
+     "not an lshjob manifest \\(no 'top_k' entry in 'options'\\)"),
 ])
 def test_a_damaged_manifest_is_refused_in_one_line(tmp_path, damage, problem):
     # Oracle: the hand-made manifest, read back whole, then damaged one way at a time.

@@ -91,6 +91,7 @@ def test_cli_json_and_bad_folder(two_indexes, tmp_path):
     record = json.loads(result.stdout)
     # Oracle: brute force as above, for the two keys a nightly log reads.
     old, new = _pairs(two_indexes["old"]), _pairs(two_indexes["new"])
-    assert (record["pairs_added"], record["pairs_removed"]) == (len(new.keys() - old.keys()), len(old.keys() - new.keys()))
+    assert (record["pairs_added"], record["pairs_removed"]) == (
+        len(new.keys() - old.keys()), len(old.keys() - new.keys()))
     bad = runner.invoke(app, ["diff", str(tmp_path / "nowhere"), str(two_indexes["new"])])
     assert bad.exit_code == 2 and "nowhere: no such index folder" in bad.stderr

@@ -17,9 +17,10 @@ from lshjob.sign.signatures import SignatureParams
 from tests.drift_data import SUMMER, entity_scores, exact_periods, library_months
 
 MONTHLY = EventSpec(entity="patron", element="author", time="borrowed_at", period="month")
+DEFAULT_PARAMS = SignatureParams()
 
 
-def _signed(tmp_path, events, params=SignatureParams(), spec=MONTHLY, name="sigs"):
+def _signed(tmp_path, events, params=DEFAULT_PARAMS, spec=MONTHLY, name="sigs"):
     events.write_parquet(tmp_path / f"{name}-events.parquet")
     sign_file(tmp_path / f"{name}-events.parquet", tmp_path / f"{name}.parquet", spec, params)
     return tmp_path / f"{name}.parquet"
@@ -36,7 +37,8 @@ def _exact(events: pl.DataFrame, rows: pl.DataFrame, history: int) -> pl.DataFra
     sets = sets.with_columns(month=pl.col("period").dt.year().cast(pl.Int64) * 12 + pl.col("period").dt.month())
     compared = rows.filter(pl.col("compared_with").is_not_null()).join(sets, on=["entity", "period"])
     prev = sets.select("entity", compared_with="period", prev="authors")
-    hist = (compared.select("entity", "period", "month").join(sets.select("entity", h_month="month", h="authors"), on="entity")
+    hist = (compared.select("entity", "period", "month")
+            .join(sets.select("entity", h_month="month", h="authors"), on="entity")
             .filter((pl.col("h_month") < pl.col("month")) & (pl.col("h_month") >= pl.col("month") - history))
             .explode("h").group_by("entity", "period").agg(history=pl.col("h").unique()))
     return (compared.join(prev, on=["entity", "compared_with"]).join(hist, on=["entity", "period"])

@@ -197,7 +197,8 @@ def test_against_all_sample_estimates_population_pair_counts(tmp_path):
 
 def test_plan_judges_a_given_banding(tmp_path, demo_events):
     runner = CliRunner()
-    result = runner.invoke(app, ["plan", "--threshold", "0.5", "--perms", "128", "--bands", "20", "--rows", "5", "--json"])
+    result = runner.invoke(app, ["plan", "--threshold", "0.5", "--perms", "128", "--bands", "20", "--rows", "5",
+                                 "--json"])
     assert result.exit_code == 0, result.output
     out = json.loads(result.stdout)
     assert (out["bands"], out["rows"]) == (20, 5)

@@ -86,7 +86,8 @@ def test_an_index_larger_than_the_budget_is_refused_before_the_work(tmp_path):
     assert not (tmp_path / "idx").exists()
 
 
-MEASURE = ("import json, resource, subprocess, sys; done = subprocess.run(sys.argv[1:], capture_output=True, text=True); "
+MEASURE = ("import json, resource, subprocess, sys; "
+           "done = subprocess.run(sys.argv[1:], capture_output=True, text=True); "
            "print(json.dumps({'code': done.returncode, 'peak': resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss "
            "* 1024, 'stdout': done.stdout, 'stderr': done.stderr[-2000:]}))")
 
@@ -111,6 +112,7 @@ def test_publishing_ten_million_rows_keeps_to_a_512mib_budget(tmp_path, compiled
     assert manifest["counts"]["published_rows"] == 20_000 * 499
     assert measured["peak"] <= 512 * 2**20, measured["peak"] / 2**20
     table = pl.scan_parquet(out / "neighbours.parquet")
-    summary = table.group_by("entity").agg(pl.len(), pl.col("rank").max(), (pl.col("neighbour") % 40 == pl.col("entity") % 40).all()).collect()
+    summary = table.group_by("entity").agg(
+        pl.len(), pl.col("rank").max(), (pl.col("neighbour") % 40 == pl.col("entity") % 40).all()).collect()
     assert summary.height == 20_000 and (summary["len"] == 499).all() and (summary["rank"] == 499).all()
     assert summary["neighbour"].all()  # every neighbour has the same set (same title)

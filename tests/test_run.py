@@ -126,7 +126,8 @@ def test_oversize_buckets_are_split_and_counted(tmp_path):
     # 16 bands of 4 rows many buckets hold more than the cap of 10. Oracle for the counts
     # and pairs: every bucket row from the key definition, pairs per bucket and per
     # sub-bucket of oversize ones by brute force (lshjob.index.conformance.reference_candidates).
-    rows = [(f"p{i:02d}", f"c{j}") for i in range(40) for j in range(20)] + [(f"p{i:02d}", f"u{i}-{j}") for i in range(40) for j in range(5)]
+    rows = ([(f"p{i:02d}", f"c{j}") for i in range(40) for j in range(20)]
+            + [(f"p{i:02d}", f"u{i}-{j}") for i in range(40) for j in range(5)])
     events = pl.DataFrame(rows, schema=["patron", "title"], orient="row")
     src = write(events, tmp_path)
     m = run_job(src, SPEC, RunOptions(threshold=0.6, perms=64, bands=16, rows=4, max_bucket=10, top_k=100),

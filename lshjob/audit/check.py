@@ -315,10 +315,13 @@ def _distinct_set_pairs(hit: pl.DataFrame, plan: Plan) -> dict:
     comes with a binomial standard error sqrt(p(1-p)/n). A set is known by its 128-bit
     fingerprint (:mod:`lshjob.index.collapse`). ``hit``: the true pairs counted, each with
     ``hit`` (published)."""
-    first_lower = (pl.col("fa_a") < pl.col("fa_b")) | ((pl.col("fa_a") == pl.col("fa_b")) & (pl.col("fb_a") < pl.col("fb_b")))
+    first_lower = ((pl.col("fa_a") < pl.col("fa_b"))
+                   | ((pl.col("fa_a") == pl.col("fa_b")) & (pl.col("fb_a") < pl.col("fb_b"))))
     pairs = hit.filter((pl.col("fa_a") != pl.col("fa_b")) | (pl.col("fb_a") != pl.col("fb_b"))).with_columns(
-        x_a=pl.when(first_lower).then("fa_a").otherwise("fa_b"), x_b=pl.when(first_lower).then("fb_a").otherwise("fb_b"),
-        y_a=pl.when(first_lower).then("fa_b").otherwise("fa_a"), y_b=pl.when(first_lower).then("fb_b").otherwise("fb_a"),
+        x_a=pl.when(first_lower).then("fa_a").otherwise("fa_b"),
+        x_b=pl.when(first_lower).then("fb_a").otherwise("fb_b"),
+        y_a=pl.when(first_lower).then("fa_b").otherwise("fa_a"),
+        y_b=pl.when(first_lower).then("fb_b").otherwise("fb_a"),
     )
     groups = (pairs.group_by("x_a", "x_b", "y_a", "y_b").agg(pl.col("hit").any(), pl.first("jaccard"))
               .sort("x_a", "x_b", "y_a", "y_b"))  # sums in one order, however the pairs were found

@@ -81,8 +81,11 @@ def sign(
     scheme: Annotated[str, typer.Option(help="kperm (k hashes per element) or oph (one hash, densified).")] = "kperm",
     seed: Annotated[int, typer.Option(help="Seed of the hash family.")] = 1,
     on_null: Annotated[str, typer.Option(help="Null keys: 'error' or 'drop' the row.")] = "error",
-    unicode: Annotated[str, typer.Option(help="Text keys: 'nfc' (one Unicode normal form) or 'asis' (as given).")] = "nfc",
-    memory: Annotated[str | None, typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are grouped and signed an entity key range at a time.  [default: half the machine]")] = None,
+    unicode: Annotated[str, typer.Option(
+        help="Text keys: 'nfc' (one Unicode normal form) or 'asis' (as given).")] = "nfc",
+    memory: Annotated[str | None, typer.Option(
+        help="Memory budget, e.g. 8GB; sets that do not fit are grouped and signed an entity key range at a time."
+        "  [default: half the machine]")] = None,
     parts: Annotated[int | None, typer.Option(help="Sign the entities in this many key ranges, one at a time.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
@@ -111,7 +114,8 @@ def sign(
         f"from {ing['rows_read']} events -> {out}"
     )
     if ing["empty_after_filter"]:
-        text += f"\n{ing['empty_after_filter']} set(s) empty after filtering, not signed (e.g. {ing['empty_examples'][0]})"
+        text += (f"\n{ing['empty_after_filter']} set(s) empty after filtering, not signed"
+                 f" (e.g. {ing['empty_examples'][0]})")
     if ing["null_rows_dropped"]:
         text += f"\n{ing['null_rows_dropped']} row(s) with null keys dropped"
     _emit(summary, as_json, quiet, text)
@@ -127,7 +131,9 @@ def merge(
     ] = "entity",
     since: Annotated[str | None, typer.Option(help="First period to include (ISO date).")] = None,
     until: Annotated[str | None, typer.Option(help="Last period to include (ISO date).")] = None,
-    memory: Annotated[str | None, typer.Option(help="Memory budget, e.g. 8GB; rows that do not fit are merged an entity range at a time.  [default: half the machine]")] = None,
+    memory: Annotated[str | None, typer.Option(
+        help="Memory budget, e.g. 8GB; rows that do not fit are merged an entity range at a time."
+        "  [default: half the machine]")] = None,
     parts: Annotated[int | None, typer.Option(help="Merge in this many entity key ranges, one at a time.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
@@ -150,22 +156,27 @@ def merge(
 @app.command()
 @_fail_cleanly
 def plan(
-    threshold: Annotated[float, typer.Option(help="Jaccard similarity a pair must reach, in (0, 1]; 1 pairs identical sets only.")],
-    perms: Annotated[int | None, typer.Option(help="Signature length k (default: 128 in theory mode; chosen in data mode).")] = None,
-    recall: Annotated[float, typer.Option(help="Data mode: expected recall of pairs at or above the threshold.")] = default_of("recall"),
+    threshold: Annotated[float, typer.Option(
+        help="Jaccard similarity a pair must reach, in (0, 1]; 1 pairs identical sets only.")],
+    perms: Annotated[int | None, typer.Option(
+        help="Signature length k (default: 128 in theory mode; chosen in data mode).")] = None,
+    recall: Annotated[float, typer.Option(
+        help="Data mode: expected recall of pairs at or above the threshold.")] = default_of("recall"),
     sample: Annotated[str | None, typer.Option(help="Signature file or events to plan from (data mode).")] = None,
     entity: Annotated[str | None, typer.Option(help="Events sample: entity column.")] = None,
     element: Annotated[str | None, typer.Option(help="Events sample: element column.")] = None,
     on_null: Annotated[str, typer.Option(help="Events sample: null keys 'error' or 'drop' the row.")] = "error",
     sample_size: Annotated[int, typer.Option(help="Entities drawn from the sample.")] = default_of("sample_size"),
-    entities: Annotated[int | None, typer.Option(help="Scale pair counts to this many entities (e.g. next quarter's).")] = None,
+    entities: Annotated[int | None, typer.Option(
+        help="Scale pair counts to this many entities (e.g. next quarter's).")] = None,
     fp_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-positive area.")] = 0.5,
     fn_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-negative area.")] = 0.5,
     bands: Annotated[int | None, typer.Option(help="Judge this number of bands instead of choosing.")] = None,
     rows: Annotated[int | None, typer.Option(help="Judge this number of rows per band instead of choosing.")] = None,
     chart: Annotated[Path | None, typer.Option(help="Write the S-curve chart (.svg or .png).")] = None,
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
-    max_candidates: Annotated[float | None, typer.Option(help="Refuse plans predicting more candidate pairs, as lshjob run does.")] = None,
+    max_candidates: Annotated[float | None, typer.Option(
+        help="Refuse plans predicting more candidate pairs, as lshjob run does.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -232,9 +243,12 @@ def audit(
     events: Annotated[str | None, typer.Option(help="Events to check against (default: the run's input).")] = None,
     sample: Annotated[int, typer.Option(help="Entities to check by brute force.")] = 200,
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
-    memory: Annotated[str | None, typer.Option(help="Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time.  [default: half the machine]")] = None,
+    memory: Annotated[str | None, typer.Option(
+        help="Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time."
+        "  [default: half the machine]")] = None,
     parts: Annotated[int | None, typer.Option(help="Read the entities in this many key ranges, one at a time.")] = None,
-    min_recall: Annotated[float | None, typer.Option(help="Fail (exit 1) when the measured recall is below this.")] = None,
+    min_recall: Annotated[float | None, typer.Option(
+        help="Fail (exit 1) when the measured recall is below this.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -260,7 +274,8 @@ def audit(
 @app.command()
 @_fail_cleanly
 def demo(
-    out: Annotated[str, typer.Option("--out", "-o", help="Folder for the demo data and results (new, empty or an earlier demo's).")] = "lshjob-demo",
+    out: Annotated[str, typer.Option(
+        "--out", "-o", help="Folder for the demo data and results (new, empty or an earlier demo's).")] = "lshjob-demo",
     patrons: Annotated[int, typer.Option(help="Number of patrons to generate.")] = 2000,
     seed: Annotated[int, typer.Option(help="Seed of the generator.")] = 7,
     quiet: Quiet = False,

@@ -23,7 +23,8 @@ def _warn(summary: dict) -> None:
 def diff(
     old: Annotated[Path, typer.Argument(help="The earlier index folder.")],
     new: Annotated[Path, typer.Argument(help="The later index folder.")],
-    out: Annotated[Path | None, typer.Option("--out", "-o", help="Write the entities whose top-k list changed (Parquet), most changed first.")] = None,
+    out: Annotated[Path | None, typer.Option(
+        "--out", "-o", help="Write the entities whose top-k list changed (Parquet), most changed first.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -91,7 +92,8 @@ def drift(
     history: Annotated[int, typer.Option(help="Periods before each one that make its history.")] = 3,
     z: Annotated[float, typer.Option(help="Flag scores above this many robust standard deviations.")] = 3.5,
     html: Annotated[Path | None, typer.Option(help="Also write a self-contained HTML view (needs matplotlib).")] = None,
-    neighbours: Annotated[Path | None, typer.Option(help="Entities whose neighbour lists changed (lshjob diff --out), shown beside.")] = None,
+    neighbours: Annotated[Path | None, typer.Option(
+        help="Entities whose neighbour lists changed (lshjob diff --out), shown beside.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:

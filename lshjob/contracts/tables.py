@@ -23,7 +23,8 @@ STAGES = (
     ("ingest", "EVENTS (grouped into the sets of each entity)"),
     ("collapse", "each entity's representative (groups of identical sets)"),
     ("plan", "the plan: perms, bands, rows (it chooses k, so it comes before signing)"),
-    ("sign", "the representatives' signatures, a slice at a time, laid out by position (lshjob sign writes SIGNATURES)"),
+    ("sign", "the representatives' signatures, a slice at a time, laid out by position "
+             "(lshjob sign writes SIGNATURES)"),
     ("band", "BUCKET_ROWS"),
     ("join", "CANDIDATES"),
     ("verify", "VERIFIED"),
@@ -136,7 +137,8 @@ CANDIDATES = Contract(
     rules=[PAIR_ORDER, ONE_ROW_A_PAIR, BANDS_SHARED, PAIR_IDS, PAIR_REPS],
     row=("a pair of representatives to verify, in no particular order (a file; in parts a folder "
          "left_part=i/right_part=j/*.parquet, i <= j)"),
-    producer="lshjob.index.join.duckdb.candidate_pairs (sql/candidates.sql), lshjob.index.collapse.identical_candidates",
+    producer=("lshjob.index.join.duckdb.candidate_pairs (sql/candidates.sql), "
+              "lshjob.index.collapse.identical_candidates"),
     consumer="lshjob.index.verify.local.verify_blocks",
 )
 

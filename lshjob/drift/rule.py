@@ -60,7 +60,8 @@ def score_rows(rows: pl.DataFrame, z: float = DEFAULT_Z) -> tuple[pl.DataFrame, 
     frame = frame.with_columns(__dm=med)
     mad = (pl.col("__d") - pl.col("__dm")).abs().median().over("period")
     frame = frame.with_columns(__sd=pl.max_horizontal(pl.lit(1.0), MAD_TO_SD * mad))
-    score = pl.when(compared & (pl.col("__pop") >= MIN_POPULATION)).then((pl.col("__d") - pl.col("__dm")) / pl.col("__sd"))
+    score = (pl.when(compared & (pl.col("__pop") >= MIN_POPULATION))
+             .then((pl.col("__d") - pl.col("__dm")) / pl.col("__sd")))
     frame = frame.with_columns(score=score).with_columns(flagged=(pl.col("score") > z).fill_null(False))
     periods = (frame.group_by("period").agg(
         compared=compared.sum(),

@@ -76,7 +76,7 @@ def reference_candidates(bucket_rows: pl.DataFrame, bands: int, max_bucket: int)
     sizes = {key: len(reps) for key, reps in members.items()}
     shared = [s for s in sizes.values() if s >= 2]
     split_pairs, oversize_subs = 0, 0
-    for (band, bucket), reps in members.items():
+    for (band, _bucket), reps in members.items():
         groups = [reps] if len(reps) <= max_bucket else None
         if groups is None:
             subs: dict[int, list[int]] = {}

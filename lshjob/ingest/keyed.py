@@ -95,5 +95,6 @@ def keyed_source(frame: pl.LazyFrame, report: IngestReport, where: str,
     if first < -(2**63) or last >= 2**63 or (last - first + 1) * s * p >= KEY_LIMIT:
         return None
     report.entity_range = (0, (last - first + 1) * s * p - 1)
-    composite = frame.with_columns(entity=codec.encode()).drop([c for c in ("segment", "period") if c in spec.key_columns])
+    composite = (frame.with_columns(entity=codec.encode())
+                 .drop([c for c in ("segment", "period") if c in spec.key_columns]))
     return event_source(composite, report, where, spec, describe=codec.describe), codec

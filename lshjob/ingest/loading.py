@@ -249,7 +249,8 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=Non
             v = _wide(batch["entity"])
             outside += grouping.count_keys(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1), shares)
         if outside:
-            raise InputError(f"{where}: the files changed while being read ({outside} keys outside the range first seen)")
+            raise InputError(f"{where}: the files changed while being read "
+                             f"({outside} keys outside the range first seen)")
     counted = int(slots.sum())
     present = np.flatnonzero(slots)
     offsets = np.zeros(len(present) + 1, dtype=np.int64)

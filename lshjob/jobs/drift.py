@@ -171,14 +171,16 @@ def drift_summary(rows: pl.DataFrame, per_period: pl.DataFrame, source, out, met
                           + ("; Li, Owen and Zhang 2012 without densification)" if scheme == "oph" else ")"),
             "containment": "equal positions / positions where the period's value is at most the history's "
                            "(the history's signature: element-wise minimum of its periods')",
-            "standard_error": "binomial sqrt(p(1-p)/positions)" + (" (an upper estimate for oph)" if scheme == "oph" else ""),
+            "standard_error": "binomial sqrt(p(1-p)/positions)"
+                              + (" (an upper estimate for oph)" if scheme == "oph" else ""),
         },
         "periods": [
             {"period": _iso(r["period"]), "compared": r["compared"], "scored": r["scored"], "flagged": r["flagged"],
              "median_similarity": r["median_similarity"], "median_containment": r["median_containment"]}
             for r in per_period.iter_rows(named=True)
         ],
-        "warnings": [f"period {_iso(r['period'])}: {r['compared']} rows compared, fewer than {MIN_POPULATION}; not scored"
+        "warnings": [f"period {_iso(r['period'])}: {r['compared']} rows compared, "
+                     f"fewer than {MIN_POPULATION}; not scored"
                      for r in per_period.iter_rows(named=True) if 0 < r["compared"] < MIN_POPULATION],
     }
 

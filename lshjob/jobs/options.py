@@ -71,7 +71,8 @@ class Option:
         """What a value must be, as the error message says it; None: anything of its type."""
         if self.choices:
             return f"one of {', '.join(self.choices)}"
-        lo, hi = _number(self.low) if self.low is not None else None, _number(self.high) if self.high is not None else None
+        lo = _number(self.low) if self.low is not None else None
+        hi = _number(self.high) if self.high is not None else None
         if lo is not None and hi is not None:
             if self.type is int and not (self.open_low or self.open_high):
                 text = f"from {lo} to {hi}"

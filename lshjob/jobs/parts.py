@@ -44,7 +44,9 @@ from lshjob.runtime.budget import Budget
 from lshjob.runtime.partitions import EntitySelection, events_per_entity, key_ranges
 
 
-def signing_ranges(events: EventSource, perms: int, memory: int, parts: int | None = None) -> list[EntitySelection] | None:
+def signing_ranges(
+    events: EventSource, perms: int, memory: int, parts: int | None = None
+) -> list[EntitySelection] | None:
     """Key ranges for ``lshjob sign`` when the events' sets need more than half of what the
     signature slices in flight to the writer leave of the budget; None when one part will do.
     The signatures themselves are made and written a slice at a time, so each entity costs

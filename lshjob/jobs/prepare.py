@@ -164,8 +164,9 @@ def _check_output(rep_of: np.ndarray, keys: pl.Series, options: RunOptions, memo
 
 class SignAndBand:
     """Signs representatives a slice at a time and keeps only their bucket keys (8 bytes per
-    band; in a file each under ``spill``, for a run in parts): a slice's signatures (raw and densified, laid out by position; polars reads them
-    without a copy: at most 2 x 8k bytes a row) take at most an eighth of the budget. Then
+    band; in a file each under ``spill``, for a run in parts): a slice's signatures (raw and
+    densified, laid out by position; polars reads them without a copy: at most 2 x 8k bytes a
+    row) take at most an eighth of the budget. Then
     :meth:`write` writes the shared buckets' rows (both through the band ``engine``)."""
 
     def __init__(self, params, plan: Plan, memory, stages, engine, spill: Path | None = None) -> None:

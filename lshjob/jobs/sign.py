@@ -20,12 +20,14 @@ from lshjob.sign.signatures import SignatureParams, signature_metadata
 from lshjob.sign.slices import SetRows, sign_slices
 from lshjob.sign.streaming import timed, write_streamed
 
+DEFAULT_PARAMS = SignatureParams()  # frozen, so one shared default is safe
+
 
 def sign_file(
     events: str | Path,
     out: str | Path,
     spec: EventSpec,
-    params: SignatureParams = SignatureParams(),
+    params: SignatureParams = DEFAULT_PARAMS,
     progress: StageProgress = QUIET,
     memory: int | None = None,
     parts: int | None = None,

@@ -113,7 +113,8 @@ def write_drift_html(rows: pl.DataFrame, summary: dict, path: str | Path) -> Pat
     if summary.get("neighbour_drift"):
         nd = summary["neighbour_drift"]
         listed = "".join(f"<tr><td>{esc(str(r['entity']))}</td><td>{r['list_change']:.2f}</td>"
-                         f"<td>{'yes' if r['flagged_latest'] else ''}</td><td>{'yes' if r['flagged_any'] else ''}</td></tr>"
+                         f"<td>{'yes' if r['flagged_latest'] else ''}</td>"
+                         f"<td>{'yes' if r['flagged_any'] else ''}</td></tr>"
                          for r in nd["most_changed"])
         neighbour_part = (
             f"<h2>Neighbour drift</h2><p>{nd['entities_list_changed']:,} entities' neighbour lists changed "
@@ -126,7 +127,8 @@ def write_drift_html(rows: pl.DataFrame, summary: dict, path: str | Path) -> Pat
 td,th{{border:1px solid #ccc;padding:2px 8px;text-align:right}}</style></head><body>
 <h1>Drift of {esc(summary['signatures'])}</h1>
 <p>{summary['rows_compared']:,} of {summary['rows']:,} entity-periods compared with their last
-{summary['history']} period(s); {summary['flagged']:,} flagged ({summary['entities_flagged']:,} entities), z &gt; {summary['z']}.</p>
+{summary['history']} period(s); {summary['flagged']:,} flagged \
+({summary['entities_flagged']:,} entities), z &gt; {summary['z']}.</p>
 <h2>Per period</h2>
 <table><tr><th>period</th><th>compared</th><th>flagged</th><th>median similarity</th><th>median containment</th></tr>
 {period_rows}</table>
