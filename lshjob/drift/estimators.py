@@ -8,7 +8,8 @@ comparisons with the entity's own recent history, both from the stored signature
 * **containment** of the new period in the history: C = |A_t and H| / |A_t|, where H is the
   union of the entity's sets in the ``history`` periods before t. The union's signature is
   the element-wise minimum of theirs (numpy.minimum, as
-  :func:`lshjob.sign.signatures.merge_signatures` folds files), for both schemes (oph keeps empty bins empty, :mod:`lshjob.sign.oph`).
+  :func:`lshjob.sign.signatures.merge_signatures` folds files), for both schemes (oph keeps
+  empty bins empty, :mod:`lshjob.sign.oph`).
 
 Estimators. Position i of two signatures a, b of sets A, B (positions where both bins are
 empty, which only the ``oph`` scheme has, are skipped):
