@@ -5,13 +5,13 @@ import json
 
 import polars as pl
 import pytest
+from helpers import planted_pairs
 from typer.testing import CliRunner
 
 from lshjob import EventSpec
 from lshjob.cli.app import app
 from lshjob.jobs.diff import diff_indexes
 from lshjob.jobs.run import RunOptions, run_job
-from tests.helpers import planted_pairs
 
 SPEC = EventSpec(entity="patron", element="title")
 

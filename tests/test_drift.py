@@ -7,6 +7,7 @@ import json
 import numpy as np
 import polars as pl
 import pytest
+from drift_data import SUMMER, entity_scores, exact_periods, library_months
 from typer.testing import CliRunner
 
 from lshjob.cli.app import app
@@ -14,7 +15,6 @@ from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.drift import drift_file
 from lshjob.jobs.sign import sign_file
 from lshjob.sign.signatures import SignatureParams
-from tests.drift_data import SUMMER, entity_scores, exact_periods, library_months
 
 MONTHLY = EventSpec(entity="patron", element="author", time="borrowed_at", period="month")
 DEFAULT_PARAMS = SignatureParams()
