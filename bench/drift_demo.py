@@ -103,9 +103,11 @@ def run_seed(patrons: int, seed: int, histories, zs, folder: Path) -> list[str]:
     truth = np.array([p in drifters for p in readers])
     keep = np.array([p in observable for p in readers])
     set_stat, lr = bounds(counts)
-    lines = [f"| {seed} | bound: sets of genres, half years (exact; best min(P, R)) | {best_min(set_stat, truth):.2f} "
+    lines = [f"| {seed} | bound: sets of genres, half years (exact; best min(P, R)) "
+             f"| {best_min(set_stat, truth):.2f} "
              f"| {best_min(set_stat[keep], truth[keep]):.2f} | - | - | - |",
-             f"| {seed} | bound: genre counts, half years (likelihood ratio; best min(P, R)) | {best_min(lr, truth):.2f} "
+             f"| {seed} | bound: genre counts, half years (likelihood ratio; best min(P, R)) "
+             f"| {best_min(lr, truth):.2f} "
              f"| {best_min(lr[keep], truth[keep]):.2f} | - | - | - |"]
     for history in histories:
         for z in zs:
