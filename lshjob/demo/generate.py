@@ -13,6 +13,10 @@ and deterministic (numpy's PCG64 stream) and plants structure a test can recover
 * a skew trap: many patrons whose only loan is the same bestseller;
 * a few heavy readers with very large histories.
 
+Each loan's ``genre`` is read off its title id, never drawn: a general title ``T`` numbered
+idx is of genre idx mod 8 (the reader loans number them rank * 8 + genre), ``S`` titles are
+"summer", ``L`` titles "local history".
+
 ``planted.parquet`` lists the planted patrons: kind (group, skew_trap, heavy, drifter),
 group id and designed Jaccard.
 """
@@ -30,6 +34,7 @@ from lshjob.runtime.outputs import DEMO_MARKER, demo_folder
 
 BRANCHES = ["Riverside", "Old Town", "Hilltop", "Harbour", "Northgate", "Meadowbank"]
 GENRES = 8
+GENRE_NAMES = ("crime", "romance", "science fiction", "history", "travel", "cookery", "poetry", "biography")
 BESTSELLER = "T000000"
 # (base titles m, own titles x): designed Jaccard m / (m + 2x)
 GROUP_DESIGNS = [(36, 2), (32, 4), (28, 6), (24, 8), (20, 10)]
@@ -48,7 +53,7 @@ def check_options(patrons: int, seed: int) -> None:
 
 
 def generate_events(patrons: int = 2000, seed: int = 7) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """Return (events, planted). events: patron, title, branch, borrowed_at, loans."""
+    """Return (events, planted). events: patron, title, branch, borrowed_at, loans, genre."""
     check_options(patrons, seed)
     rng = np.random.default_rng(seed)
     n_general = max(3000, 3 * patrons)
@@ -117,13 +122,22 @@ def generate_events(patrons: int = 2000, seed: int = 7) -> tuple[pl.DataFrame, p
             "borrowed_at": pl.Series(borrowed_at),
             "loans": pl.Series(loans, dtype=pl.Int32),
         }
-    ).sort(["patron", "borrowed_at", "title"])
+    ).sort(["patron", "borrowed_at", "title"]).with_columns(genre=title_genre(pl.col("title")))
     planted = pl.DataFrame(
         planted_rows,
         schema={"patron": pl.String, "kind": pl.String, "group": pl.String, "designed_jaccard": pl.Float64},
         orient="row",
     ).sort(["kind", "group", "patron"], nulls_last=True)
     return events, planted
+
+
+def title_genre(title: pl.Expr) -> pl.Expr:
+    """A title id's genre (module docstring): no random draw, so adding it changes no other column."""
+    number = title.str.slice(1).cast(pl.Int64, strict=False)
+    names = pl.lit(pl.Series(GENRE_NAMES))
+    return (pl.when(title.str.starts_with("S")).then(pl.lit("summer"))
+            .when(title.str.starts_with("L")).then(pl.lit("local history"))
+            .otherwise(names.get(number % GENRES)))
 
 
 def _reader_loans(rng, patrons, sizes, drifter, n_general, n_summer):
