@@ -1,6 +1,7 @@
 """The index report's figures, drawn by matplotlib (its Agg canvas, no pyplot state) as SVG text
-to inline in the page: no date in the metadata, a fixed salt for clip-path ids, text kept as
-text. Each function returns the SVG and, where a test or a reader may check them, the arrays drawn.
+to inline in the page: no metadata block, a fixed salt for clip-path ids, text kept as text; the
+only web addresses left are the SVG and XLink namespace names, which are never fetched. Each
+function returns the SVG and, where a test or a reader may check them, the arrays drawn.
 """
 
 from __future__ import annotations
@@ -34,7 +35,8 @@ def _svg(fig) -> str:
     with matplotlib.rc_context({"svg.hashsalt": "lshjob", "svg.fonttype": "none"}):
         fig.savefig(buffer, format="svg", metadata={"Date": None})
     text = buffer.getvalue()
-    return text[text.index("<svg"):]  # no XML declaration or doctype inside HTML
+    text = text[text.index("<svg"):]  # no XML declaration or doctype inside HTML
+    return re.sub(r"\s*<metadata>.*?</metadata>", "", text, count=1, flags=re.S)  # RDF with web addresses
 
 
 def s_curve(bands: int, rows: int, threshold: float, histogram: PairHistogram | None) -> tuple[str, dict]:
