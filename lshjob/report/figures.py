@@ -17,6 +17,7 @@ S_POINTS = 101  # points of the S-curve, s = 0, 0.01, ..., 1
 CURVE = "#1f4e8c"
 MARK = "#c0392b"
 FILL = "#9bb7dd"
+STAGE_ORDER = ("ingest", "sign", "plan", "collapse", "band", "join", "verify", "publish")  # as a run goes
 
 
 def _figure(width: float = 6.8, height: float = 3.6):
@@ -66,7 +67,8 @@ def s_curve(bands: int, rows: int, threshold: float, histogram: PairHistogram | 
 def stages(seconds: dict, peak: dict, budget: int) -> tuple[str, list[str]]:
     """Seconds per stage and peak memory per stage against the memory budget, side by side.
     Returns the SVG and the stages in the order drawn."""
-    names = [name for name in seconds if name != "total"]
+    names = sorted((name for name in seconds if name != "total"),
+                   key=lambda n: (STAGE_ORDER.index(n) if n in STAGE_ORDER else len(STAGE_ORDER), n))
     fig = _figure(height=3.2)
     left, right = fig.subplots(1, 2)
     y = np.arange(len(names))
