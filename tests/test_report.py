@@ -163,3 +163,16 @@ def test_page_renders_in_headless_chromium(index, page, tmp_path):
     pixels = matplotlib.image.imread(shot)
     assert pixels.ndim == 3 and pixels[..., :3].std() > 0.02
     assert len(np.unique(pixels[..., :3].reshape(-1, 3), axis=0)) > 50
+
+
+def test_index_without_bands_still_has_every_section(tmp_path, small_events):
+    # threshold 1: identical sets only, grouped exactly; no S-curve, no buckets.
+    run_job(small_events, SPEC, RunOptions(threshold=1.0, top_k=5), tmp_path / "idx")
+    summary = write_report(tmp_path / "idx", tmp_path / "r.html", sample=False)
+    text = (tmp_path / "r.html").read_text()
+    parser = _Collect()
+    parser.feed(text)
+    # Oracle: the HTML parser; the manifest says there are no bands and no skew profile.
+    assert set(SECTIONS) <= parser.ids and read_manifest(tmp_path / "idx").skew is None
+    assert "there is no S-curve" in text and "no buckets" in text
+    assert summary["sample_histogram"] is False and len(_svgs(text)) == 2
