@@ -57,6 +57,8 @@ def test_demo_writes_events_and_signatures(tmp_path):
     summary = json.loads(result.stdout)
     assert summary["sign"]["signatures"] == 300
     assert (tmp_path / "d" / "events.parquet").exists()
+    assert summary["report"]["out"] == str(tmp_path / "d" / "report.html")
+    assert (tmp_path / "d" / "report.html").read_text().startswith("<!DOCTYPE html>")
 
 
 def test_an_output_that_cannot_be_written_is_one_line_and_exit_2(tmp_path, small_events):

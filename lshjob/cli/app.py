@@ -18,6 +18,8 @@ from lshjob.cli.failures import EXIT_CODES, run_app
 from lshjob.cli.failures import ends_cleanly as _fail_cleanly
 from lshjob.cli.more_commands import register as register_more
 from lshjob.cli.refresh_command import register as register_refresh
+from lshjob.cli.report_command import register as register_report
+from lshjob.cli.report_command import write_report
 from lshjob.cli.run_params import with_run_options
 from lshjob.demo.generate import check_options as check_demo_options
 from lshjob.demo.generate import write_demo
@@ -284,7 +286,8 @@ def demo(
     """Generate the library-network demo (patrons, titles, branches, months) and run the job on it.
 
     Writes DIR/events.parquet and DIR/planted.parquet, signs the patrons
-    (DIR/signatures.parquet), builds the index at threshold 0.5 (DIR/index) and audits it.
+    (DIR/signatures.parquet), builds the index at threshold 0.5 (DIR/index), audits it and
+    writes the report page (DIR/report.html).
 
     Example: lshjob demo --out demo-run --patrons 5000 --seed 3
     """
@@ -298,18 +301,19 @@ def demo(
             signed = api.sign_file(data["events"], out / "signatures.parquet", spec, progress=progress)
             manifest = run_job(data["events"], spec, RunOptions(threshold=0.5, top_k=20), out / "index", progress)
         checked = audit_index(out / "index", sample=min(300, patrons))
+        page = write_report(out / "index", out / "report.html", checked)
     except BaseException:
         if made:
             shutil.rmtree(out, ignore_errors=True)
         raise
-    summary = {"data": data, "sign": signed, "run": manifest, "audit": checked}
+    summary = {"data": data, "sign": signed, "run": manifest, "audit": checked, "report": page}
     _emit(
         summary,
         as_json,
         quiet,
         f"wrote {data['rows']} loans by {patrons} patrons to {data['events']}\n"
         f"signed {signed['signatures']} patrons -> {signed['out']}\n\n"
-        + run_report(manifest) + "\n\n" + audit_report(checked),
+        + run_report(manifest) + "\n\n" + audit_report(checked) + f"\n\nreport: {page['out']}",
     )
 
 
@@ -338,6 +342,7 @@ def compile_kernels(quiet: Quiet = False, as_json: AsJson = False) -> None:
 
 register_refresh(app)  # refresh and history (lshjob.cli.refresh_command)
 register_more(app)  # diff and drift (lshjob.cli.more_commands)
+register_report(app)  # report (lshjob.cli.report_command)
 
 for _command in app.registered_commands:  # every command's --help ends with the exit codes
     _command.epilog = _command.epilog or EXIT_CODES

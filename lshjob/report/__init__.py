@@ -1,9 +1,9 @@
-"""Reports: terminal summaries and S-curve charts."""
+"""Reports: terminal summaries, S-curve charts and the index report page."""
 
 from lshjob._lazy import exports
 
 __all__ = [
-    "audit_report", "plan_report", "run_report", "text_s_curve", "write_chart",
+    "audit_report", "build_page", "plan_report", "run_report", "text_s_curve", "write_chart", "write_page",
 ]
 
 __getattr__, __dir__ = exports(__name__, {
@@ -12,4 +12,6 @@ __getattr__, __dir__ = exports(__name__, {
     "audit_report": "text",
     "text_s_curve": "charts",
     "write_chart": "charts",
+    "build_page": "page",
+    "write_page": "page",
 })

@@ -1,0 +1,108 @@
+"""What the index report shows, gathered from an index folder: the manifest (read with
+:func:`lshjob.index.publish.read_manifest`), the neighbour table's distributions, the last
+audit (the JSON ``lshjob audit --json`` prints; the audit stores nothing itself) and, when the
+run's events are still where the manifest says, the sample's pair-similarity histogram
+redrawn as the planner drew it (:func:`lshjob.plan.similarity.sample_histogram_from_sets`).
+
+The page itself is built in :mod:`lshjob.report.page`.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+from lshjob.contracts.manifest import Manifest
+from lshjob.errors import InputError
+from lshjob.index.publish import NEIGHBOURS, read_manifest
+from lshjob.ingest.loading import load_membership
+from lshjob.ingest.spec import EventSpec, load_sets
+from lshjob.plan import similarity
+from lshjob.plan.banding import PairHistogram
+
+AUDIT_KEYS = ("recall", "predicted_recall", "sampled_entities")  # entries of an audit the report reads
+
+
+@dataclass
+class ReportData:
+    """Everything the page shows. ``neighbours_per_entity[i]``: how many neighbours entity i
+    has in the index (entities without any included, from the manifest's entity count);
+    ``jaccard``: the Jaccard of every published row; ``notes``: what could not be shown, and why."""
+
+    index: Path
+    manifest: Manifest
+    neighbours_per_entity: np.ndarray
+    jaccard: np.ndarray
+    audit: dict | None = None
+    histogram: PairHistogram | None = None
+    notes: list[str] = field(default_factory=list)
+
+
+def gather(index_dir: str | Path, audit: str | Path | dict | None = None, sample: bool = True) -> ReportData:
+    """The report's data for the index in ``index_dir``. ``audit``: an audit's report (the dict
+    :func:`lshjob.audit.check.audit_index` returns) or a file holding it as JSON. ``sample``:
+    redraw the planner's sample histogram from the run's events when they exist."""
+    index_dir = Path(index_dir)
+    if not index_dir.is_dir():
+        raise InputError(f"{index_dir}: no such index folder")
+    manifest = read_manifest(index_dir)
+    neighbours = index_dir / NEIGHBOURS
+    if not neighbours.is_file():
+        raise InputError(f"{neighbours}: no such file; the index folder holds a manifest but no neighbour table")
+    table = pl.read_parquet(neighbours, columns=["entity", "jaccard"])
+    per_entity = table.group_by("entity").len()["len"].to_numpy().astype(np.int64)
+    without = max(0, int(manifest.counts.get("entities", per_entity.size)) - per_entity.size)
+    data = ReportData(index_dir, manifest, np.concatenate([per_entity, np.zeros(without, dtype=np.int64)]),
+                      table["jaccard"].to_numpy().astype(np.float64))
+    if audit is not None:
+        data.audit = audit if isinstance(audit, dict) else read_audit(audit)
+        audited = data.audit.get("index")
+        if audited is not None and Path(audited).resolve() != index_dir.resolve():
+            data.notes.append(f"the audit was of {audited}, not of {index_dir}")
+    else:
+        data.notes.append("no audit given (--audit FILE, the JSON of lshjob audit --json): measured recall not shown")
+    if sample:
+        data.histogram = _sample_histogram(manifest, data.notes)
+    else:
+        data.notes.append("sample histogram not drawn (--no-sample)")
+    return data
+
+
+def read_audit(path: str | Path) -> dict:
+    """The audit report in ``path`` (the JSON ``lshjob audit --json`` prints), or a one-line InputError."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: no such file (--audit takes the JSON printed by lshjob audit --json)")
+    try:
+        record = json.loads(path.read_text())
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path}: not valid JSON ({type(exc).__name__}); --audit takes the JSON printed by "
+                         "lshjob audit --json") from None
+    if not isinstance(record, dict) or "audited" not in record:
+        raise InputError(f"{path}: not an lshjob audit report (no 'audited' entry); --audit takes the JSON "
+                         "printed by lshjob audit --json")
+    if record["audited"]:
+        for key in AUDIT_KEYS:
+            if key not in record:
+                raise InputError(f"{path}: not an lshjob audit report (no '{key}' entry)")
+    return record
+
+
+def _sample_histogram(manifest: Manifest, notes: list[str]) -> PairHistogram | None:
+    """The planner's sample histogram, redrawn from the run's events (seed 0, as the run draws)."""
+    plan, threshold = manifest.plan, manifest.options["threshold"]
+    if not plan.get("bands") or threshold >= 1.0:
+        notes.append("no banded plan: no sample histogram")
+        return None
+    source = manifest.inputs["source"]
+    if not isinstance(source, str) or not Path(source).exists():
+        notes.append(f"the run's events ({source}) are not there any more: sample histogram not drawn")
+        return None
+    spec = EventSpec(**manifest.spec)
+    sets = load_membership(source, spec)[0] if spec.key_columns == ["entity"] else load_sets(source, spec)[0]
+    return similarity.sample_histogram_from_sets(sets, manifest.options.get("sample_size", 2000), 0,
+                                                 None, threshold)
