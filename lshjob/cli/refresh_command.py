@@ -4,6 +4,7 @@ layer over :mod:`lshjob.jobs.refresh` (registered on the app by :func:`register`
 from __future__ import annotations
 
 import sys
+from dataclasses import MISSING, fields
 from pathlib import Path
 from typing import Annotated
 
@@ -14,6 +15,7 @@ from lshjob.cli.failures import ends_cleanly
 from lshjob.errors import ParameterError
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.config import load_run_config, merge_settings
+from lshjob.jobs.options import defaults as run_defaults
 from lshjob.jobs.refresh import RefreshOptions, history, refresh_job
 from lshjob.runtime.progress import StageProgress
 
@@ -23,9 +25,11 @@ REFRESH_KEYS = {
     "scheme": str, "sample_size": int, "max_bucket": int, "max_candidates": (int, float),
     "memory": (str, int), "wait": (int, float), "on_null": str, "unicode": str,
 }
+# Defaults from where they are declared: RefreshOptions (itself on the run's option table) and
+# the spec's fields of that table; nothing repeated here.
 REFRESH_DEFAULTS = {
-    "top_k": 50, "keep": 3, "recall": 0.95, "seed": None, "scheme": None, "sample_size": 2000, "max_bucket": 2000,
-    "max_candidates": 2e9, "memory": None, "wait": 0.0, "on_null": "error", "unicode": "nfc",
+    **{f.name: f.default for f in fields(RefreshOptions) if f.name in REFRESH_KEYS and f.default is not MISSING},
+    **{name: value for name, value in run_defaults().items() if name in ("on_null", "unicode")},
 }
 REQUIRED = ("events", "store", "entity", "element", "time", "period", "window", "threshold", "out")
 

@@ -43,6 +43,7 @@ from lshjob.errors import ParameterError
 from lshjob.index import publish
 from lshjob.ingest.spec import PERIODS, EventSpec
 from lshjob.jobs import refresh_fold as folding
+from lshjob.jobs.options import default_of
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.runtime import provenance, stopping
 from lshjob.runtime.folder_lock import output_lock
@@ -64,16 +65,16 @@ RECALL_SLACK = 0.02
 class RefreshOptions:
     window: int
     threshold: float
-    top_k: int = 50
+    top_k: int = default_of("top_k")  # the run's defaults, declared once (lshjob.jobs.options)
     keep: int = 3  # published indexes kept in the store
-    recall: float = 0.95
+    recall: float = default_of("recall")
     seed: int | None = None  # None: the kept plan's (1 for a new store)
     scheme: str | None = None  # None: the kept plan's (kperm for a new store)
-    sample_size: int = 2000
-    max_bucket: int = 2000
-    max_candidates: float = 2e9
-    memory: str | None = None
-    wait: float = 0.0
+    sample_size: int = default_of("sample_size")
+    max_bucket: int = default_of("max_bucket")
+    max_candidates: float = default_of("max_candidates")
+    memory: str | None = default_of("memory")
+    wait: float = default_of("wait")
 
     def validate(self) -> None:
         if self.window < 1:
