@@ -312,3 +312,33 @@ def test_weekly_periods_with_integer_keys_equal_the_full_run(tmp_path):
     expected = _full_run(window, manifest["plan"], tmp_path / "oracle")
     assert expected.height > 0 and expected["entity"].dtype == pl.Int64
     assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(expected)
+
+
+def test_an_empty_batch_changes_nothing_and_exits_0(tmp_path):
+    # Oracle: lshjob run on the window's events (cut with polars) with the kept plan, row for
+    # row; the batch's rows counted by polars (zero).
+    batches, _, _ = _library_batches(patrons=100, seed=19)
+    for i, batch in enumerate(batches[:2]):
+        _refresh(tmp_path, batch, i)
+    before = pl.read_parquet(tmp_path / "index" / "neighbours.parquet")
+    empty = batches[0].clear()
+    empty.write_parquet(tmp_path / "empty.parquet")
+    args = ["refresh", str(tmp_path / "empty.parquet"), "--store", str(tmp_path / "store"), "--entity", "patron",
+            "--element", "title", "--time", "borrowed_at", "--period", "month", "--window", str(WINDOW),
+            "--threshold", str(THRESHOLD), "--top-k", str(TOP_K), "--out", str(tmp_path / "index"), "--json"]
+    result = CliRunner().invoke(app, args)
+    assert result.exit_code == 0, result.output
+    manifest = json.loads(result.output)
+    assert manifest["refresh"]["batch_rows"] == empty.height == 0
+    assert manifest["refresh"]["pairs_added"] == manifest["refresh"]["pairs_removed"] == 0
+    window, _ = _window_events(pl.concat(batches[:2]))
+    expected = _full_run(window, manifest["plan"], tmp_path / "oracle")
+    assert expected.height > 0
+    published = pl.read_parquet(tmp_path / "index" / "neighbours.parquet")
+    assert published.equals(expected)
+    assert published.equals(before)  # the same rows as the index before the empty batch
+    assert len(history(tmp_path / "store")["runs"]) == 3
+    # an empty batch into an empty store has nothing to index: refused (exit 2)
+    first = CliRunner().invoke(app, [*args[:3], str(tmp_path / "new-store"), *args[4:-3], "--out",
+                                     str(tmp_path / "new-index"), "--quiet"])
+    assert first.exit_code == 2 and "no events" in first.output

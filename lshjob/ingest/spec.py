@@ -127,10 +127,12 @@ def load_sets(source: str | Path, spec: EventSpec) -> tuple[pl.DataFrame, Ingest
     return group_set_rows(frame, spec, where, report), report
 
 
-def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame, IngestReport, str]:
+def validated_events(source: str | Path, spec: EventSpec,
+                     allow_empty: bool = False) -> tuple[pl.LazyFrame, IngestReport, str]:
     """Check the event files against the spec (columns, types, nulls, time text) and return
     the events as a lazy frame of the output columns (entity, [segment], [period], element,
-    weight), with the report so far and a short name of the input for messages."""
+    weight), with the report so far and a short name of the input for messages. With
+    ``allow_empty`` (a batch of a night without events) zero rows are no error."""
     paths, fmt = resolve_paths(source)
     where = _where(paths)
     named = _named_columns(spec)
@@ -165,7 +167,7 @@ def validated_events(source: str | Path, spec: EventSpec) -> tuple[pl.LazyFrame,
     report.rows_read = int(stats["rows"][0])
     if integer_entity and stats["__entity_min"][0] is not None:
         report.entity_range = (int(stats["__entity_min"][0]), int(stats["__entity_max"][0]))
-    if report.rows_read == 0:
+    if report.rows_read == 0 and not allow_empty:
         raise InputError(f"{where}: no events (0 rows)")
     if spec.count is not None:
         _check_counts(lf, spec.count, schema, stats, report, where)

@@ -46,15 +46,20 @@ def first_of_window(newest: date, period: str, window: int) -> date:
 
 
 def read_batch(events: str | Path, spec: EventSpec, state: State, window: int) -> Batch:
-    """Check and read the batch, find the window, and keep the batch's rows within it."""
-    frame, report, where = validated_events(events, spec)
+    """Check and read the batch, find the window, and keep the batch's rows within it. An
+    empty batch (a night without events) is no error once the store holds periods: the
+    window stays where it was (its newest period is the newest seen)."""
+    frame, report, where = validated_events(events, spec, allow_empty=True)
     kinds = {name: _kind(name, column, frame, state, where)
              for name, column in (("entity", spec.entity), ("element", spec.element))}
     frame = frame.with_columns(pl.col(n).cast(pl.Int64 if k == "integer" else pl.String, strict=True)
                                for n, k in kinds.items())
     with report.reading(where):
         per_period = frame.group_by("period").agg(pl.len().alias("rows")).collect()
-    newest = max([per_period["period"].max()] + [p.period for p in state.periods])
+    seen = [d for d in [per_period["period"].max()] + [p.period for p in state.periods] if d is not None]
+    if not seen:
+        raise InputError(f"{where}: no events (0 rows), and the store holds none yet: nothing to index")
+    newest = max(seen)
     first = first_of_window(newest, spec.period, window)
     older = int(per_period.filter(pl.col("period") < first)["rows"].sum())
     rows = group_set_rows(frame.filter(pl.col("period") >= first), spec, where, report, allow_empty=True)
