@@ -342,3 +342,44 @@ def test_an_empty_batch_changes_nothing_and_exits_0(tmp_path):
     first = CliRunner().invoke(app, [*args[:3], str(tmp_path / "new-store"), *args[4:-3], "--out",
                                      str(tmp_path / "new-index"), "--quiet"])
     assert first.exit_code == 2 and "no events" in first.output
+
+
+def test_each_refresh_records_its_diff_summary_in_the_history(tmp_path):
+    # Oracle: Python sets of unordered pairs {a, b} (with their Jaccard) of the two kept
+    # versions' neighbours.parquet; and lshjob diff run on the two folders afterwards.
+    from lshjob.jobs.diff import diff_indexes
+
+    batches, _, _ = _library_batches(patrons=100, seed=23)
+    for i, batch in enumerate(batches[:4]):
+        _refresh(tmp_path, batch, i, keep=3)
+    found = history(tmp_path / "store")
+    runs = {r["run_id"]: r for r in found["runs"]}
+    assert found["runs"][0]["diff"] is None  # the first refresh has no version before it
+    folders = [v["folder"] for v in found["versions"]]
+    assert len(folders) == 3
+
+    def pairs(folder) -> dict:
+        rows = pl.read_parquet(f"{folder}/neighbours.parquet").select("entity", "neighbour", "jaccard").iter_rows()
+        return {tuple(sorted((a, b))): j for a, b, j in rows}
+
+    for old, new in zip(found["versions"], found["versions"][1:]):
+        recorded = runs[new["run_id"]]["diff"]
+        before, after = pairs(old["folder"]), pairs(new["folder"])
+        both = before.keys() & after.keys()
+        assert recorded["old_run_id"] == old["run_id"]
+        assert recorded["pairs_added"] == len(after.keys() - before.keys()) == runs[new["run_id"]]["pairs_added"]
+        assert recorded["pairs_removed"] == len(before.keys() - after.keys()) == runs[new["run_id"]]["pairs_removed"]
+        assert recorded["pairs_jaccard_changed"] == sum(before[p] != after[p] for p in both)
+        either = len(before.keys() | after.keys())
+        assert recorded["churn_rate"] == pytest.approx(len(before.keys() ^ after.keys()) / either)
+        assert recorded["pairs_added"] + recorded["pairs_removed"] > 0  # the batches changed the pairs
+        again = diff_indexes(old["folder"], new["folder"])
+        assert {k: again[k] for k in recorded if k != "old_run_id"} == {k: v for k, v in recorded.items()
+                                                                        if k != "old_run_id"}
+    text = CliRunner().invoke(app, ["history", str(tmp_path / "store")])
+    assert text.exit_code == 0, text.output
+    last = found["runs"][-1]
+    line = next(x for x in text.output.splitlines() if x.startswith(last["run_id"]))
+    # columns: run, started, window (first .. last), batch, changed, added, removed, ...
+    assert line.split()[7:9] == [str(last["pairs_added"]), str(last["pairs_removed"])]
+    assert "added" in text.output.splitlines()[0] and "removed" in text.output.splitlines()[0]

@@ -44,18 +44,20 @@ def refresh_text(manifest: dict) -> str:
             f"batch: {r['batch_rows']} events; {r['rows_older_than_window']} older than the window dropped; "
             f"{r['periods_changed']} period(s) changed, {r['periods_expired']} expired; "
             f"{r['changed_entities']} entities changed; {r['pairs_added']} pairs added, "
-            f"{r['pairs_removed']} removed\n"
+            f"{r['pairs_removed']} removed, {r.get('pairs_jaccard_changed', 0)} with a changed Jaccard\n"
             f"plan: {banding} ({r['why']})\n"
             f"{manifest['output']['rows']} neighbour rows of {manifest['counts']['entities']} entities -> "
             f"{manifest['out']} in {manifest['seconds']['refresh']['total']} s")
 
 
 def history_text(found: dict) -> str:
-    lines = [f"{'run':<24} {'started':<20} {'window':<23} {'batch':>8} {'changed':>8} {'seconds':>8}  output"]
+    lines = [f"{'run':<24} {'started':<20} {'window':<23} {'batch':>8} {'changed':>8} {'added':>8} {'removed':>8} "
+             f"{'seconds':>8}  output"]
     for run in found["runs"]:
         lines.append(f"{run['run_id']:<24} {run['started_at'][:19]:<20} "
                      f"{run['window_first']} .. {run['window_last']} {run['batch_rows']:>8} "
-                     f"{run['changed_entities']:>8} {run['seconds']:>8.2f}  {(run['output_sha256'] or '')[:12]}"
+                     f"{run['changed_entities']:>8} {_count(run['pairs_added']):>8} {_count(run['pairs_removed']):>8} "
+                     f"{run['seconds']:>8.2f}  {(run['output_sha256'] or '')[:12]}"
                      + ("" if run["published"] else " (not published)") + (" rebuilt" if run["rebuilt"] else ""))
     plan = found["plan"]
     if plan is not None:
@@ -63,6 +65,10 @@ def history_text(found: dict) -> str:
                      f"{plan['scheme']} (chosen by {plan['chosen_by']})")
     lines.append(f"{len(found['versions'])} published version(s) kept in {found['store']}/versions")
     return "\n".join(lines)
+
+
+def _count(value: int | None) -> str:
+    return "-" if value is None else str(value)
 
 
 def register(app: typer.Typer) -> None:

@@ -43,6 +43,7 @@ from lshjob.errors import ParameterError
 from lshjob.index import publish
 from lshjob.ingest.spec import PERIODS, EventSpec
 from lshjob.jobs import refresh_fold as folding
+from lshjob.jobs.diff import diff_indexes
 from lshjob.jobs.options import default_of
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.runtime import provenance, stopping
@@ -59,6 +60,7 @@ STORE_FORMAT = "lshjob-store"
 # a kept plan is judged against the target less this slack, or a new sample's noise alone
 # would re-plan most refreshes.
 RECALL_SLACK = 0.02
+DIFF_PATHS = ("old", "new", "out")  # of the diff summary: folders of the store's work, not kept
 
 
 @dataclass(frozen=True)
@@ -174,7 +176,7 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
         seconds[f"run.{name}"] = value
 
     previous = store / store_files.VERSIONS / state.versions[-1].folder if state.versions else None
-    added, removed = _pair_changes(previous, built)
+    added, removed, diff = _pair_changes(previous, built)
     tick = time.perf_counter()
     stored = _store_periods(store, folded, kept, rebuilt, run_id, {f.path: f for f in state.files})
     seconds["sign_periods"] = round(time.perf_counter() - tick, 3)
@@ -186,6 +188,8 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
                "null_rows_dropped": batch.null_rows_dropped,
                "rows_older_than_window": batch.rows_older_than_window, "changed_entities": changed,
                "pairs_added": added, "pairs_removed": removed,
+               "pairs_jaccard_changed": diff["pairs_jaccard_changed"] if diff else 0,
+               "churn_rate": diff["churn_rate"] if diff else None,
                "periods_changed": len(folded.changed), "periods_expired": len(folded.expired),
                "rebuilt": rebuilt, "why": why or "kept plan", "design": "full run over the window"}
     seconds["total"] = round(time.perf_counter() - started, 3)  # to the index built and the store's files written
@@ -213,7 +217,7 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
                entities=manifest["counts"]["entities"], rebuilt=rebuilt, why=summary["why"], seconds=seconds["total"],
                stage_seconds=seconds, peak_memory_bytes=manifest["peak_memory_bytes"], plan=kept,
                output_sha256=manifest["output"]["sha256"], published_rows=manifest["output"]["rows"],
-               published=False, out=str(out.absolute()))
+               published=False, out=str(out.absolute()), diff=diff)
     catalog.commit(store, new_state, run)  # the store is now this refresh's
 
     kept_paths = {f.path for f in new_state.files}
@@ -230,23 +234,18 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     return manifest
 
 
-def _pair_changes(previous: Path | None, built: Path) -> tuple[int, int]:
+def _pair_changes(previous: Path | None, built: Path) -> tuple[int, int, dict | None]:
     """Unordered pairs of the published index added and removed since the previous version
-    (all of them added on a first refresh)."""
-    def pairs(folder: Path) -> pl.LazyFrame:
-        rows = pl.scan_parquet(folder / publish.NEIGHBOURS)
-        return rows.select(pl.min_horizontal("entity", "neighbour").alias("a"),
-                           pl.max_horizontal("entity", "neighbour").alias("b")).unique()
-
-    new = pairs(built)
+    (all of them added on a first refresh), and the summary of :func:`lshjob.jobs.diff.diff_indexes`
+    between the two (None on a first refresh), as the run's record keeps it."""
     if previous is None:
-        return int(new.select(pl.len()).collect().item()), 0
-    old = pairs(previous)
-
-    def only_in(x: pl.LazyFrame, y: pl.LazyFrame) -> int:
-        return int(x.join(y, on=["a", "b"], how="anti").select(pl.len()).collect().item())
-
-    return only_in(new, old), only_in(old, new)
+        rows = pl.scan_parquet(built / publish.NEIGHBOURS)
+        pairs = rows.select(pl.min_horizontal("entity", "neighbour").alias("a"),
+                            pl.max_horizontal("entity", "neighbour").alias("b")).unique()
+        return int(pairs.select(pl.len()).collect().item()), 0, None
+    summary = diff_indexes(previous, built)
+    kept = {k: v for k, v in summary.items() if k not in DIFF_PATHS}
+    return summary["pairs_added"], summary["pairs_removed"], dict(kept, old_run_id=previous.name)
 
 
 def _plan_to_use(kept: dict | None, options: RefreshOptions) -> tuple[dict | None, str | None]:

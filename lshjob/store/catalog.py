@@ -18,7 +18,9 @@ Tables (all written whole by :func:`commit`, except ``runs`` which only grows):
 * ``files(path, kind, sha256, bytes, run_id)``: every file of the store (paths relative to
   the store folder);
 * ``versions(run_id, folder, sha256, rows)``: the published indexes kept (``--keep``);
-* ``runs(...)``: one row per refresh (:data:`RUN_COLUMNS`).
+* ``runs(...)``: one row per refresh (:data:`RUN_COLUMNS`), ``diff`` the summary of
+  :func:`lshjob.jobs.diff.diff_indexes` between the previous published version and this one
+  (JSON; null on a store's first refresh).
 """
 
 from __future__ import annotations
@@ -54,13 +56,14 @@ CREATE TABLE IF NOT EXISTS runs (run_id VARCHAR NOT NULL, started_at VARCHAR, fi
                                  rebuilt BOOLEAN, why VARCHAR, seconds DOUBLE, stage_seconds VARCHAR,
                                  peak_memory_bytes VARCHAR, plan VARCHAR, output_sha256 VARCHAR,
                                  published_rows BIGINT, published BOOLEAN, out VARCHAR);
+ALTER TABLE runs ADD COLUMN IF NOT EXISTS diff VARCHAR;
 """
 RUN_COLUMNS = ("run_id", "started_at", "finished_at", "window_first", "window_last", "window_periods",
                "batch_rows", "rows_older_than_window", "changed_entities", "pairs_added", "pairs_removed",
                "periods_changed", "periods_expired",
                "entities", "rebuilt", "why", "seconds", "stage_seconds", "peak_memory_bytes", "plan",
-               "output_sha256", "published_rows", "published", "out")
-JSON_COLUMNS = ("stage_seconds", "peak_memory_bytes", "plan")
+               "output_sha256", "published_rows", "published", "out", "diff")
+JSON_COLUMNS = ("stage_seconds", "peak_memory_bytes", "plan", "diff")
 
 
 @dataclass(frozen=True)
@@ -177,7 +180,8 @@ def commit(store: Path, state: State, run: dict) -> None:
                 con.executemany("INSERT INTO versions VALUES (?, ?, ?, ?, ?)",
                                 [[*v.__dict__.values(), i] for i, v in enumerate(state.versions)])
             row = [json.dumps(run[c], sort_keys=True) if c in JSON_COLUMNS else run.get(c) for c in RUN_COLUMNS]
-            con.execute(f"INSERT INTO runs VALUES ({', '.join('?' * len(RUN_COLUMNS))})", row)
+            con.execute(f"INSERT INTO runs ({', '.join(_quoted(c) for c in RUN_COLUMNS)}) "  # noqa: S608 (fixed names)
+                        f"VALUES ({', '.join('?' * len(RUN_COLUMNS))})", row)
             con.execute("COMMIT")
         except BaseException:
             con.execute("ROLLBACK")
@@ -194,8 +198,9 @@ def runs(store: Path) -> list[dict]:
     """Every refresh recorded, oldest first (JSON columns decoded, dates in ISO form); runs of
     one second in the order they were recorded (the table is only appended to)."""
     with connection(store, read_only=True) as con:
-        rows = con.execute(f"SELECT {', '.join(_quoted(c) for c in RUN_COLUMNS)} FROM runs ORDER BY started_at, rowid"
-                           ).fetchall()
+        present = {row[1] for row in con.execute("PRAGMA table_info('runs')").fetchall()}
+        columns = [_quoted(c) if c in present else f"NULL AS {_quoted(c)}" for c in RUN_COLUMNS]  # older stores
+        rows = con.execute(f"SELECT {', '.join(columns)} FROM runs ORDER BY started_at, rowid").fetchall()
     found = []
     for row in rows:
         record = dict(zip(RUN_COLUMNS, row))
