@@ -383,3 +383,24 @@ def test_each_refresh_records_its_diff_summary_in_the_history(tmp_path):
     # columns: run, started, window (first .. last), batch, changed, added, removed, ...
     assert line.split()[7:9] == [str(last["pairs_added"]), str(last["pairs_removed"])]
     assert "added" in text.output.splitlines()[0] and "removed" in text.output.splitlines()[0]
+
+
+def test_a_store_made_before_the_diff_column_reads_and_refreshes(tmp_path):
+    # Oracle: the catalog's runs table read back with DuckDB after the column is dropped (a
+    # store made before runs recorded their diff), and the diff recomputed with Python sets.
+    import duckdb
+
+    batches, _, _ = _library_batches(patrons=100, seed=29)
+    _refresh(tmp_path, batches[0], 0)
+    with duckdb.connect(str(tmp_path / "store" / catalog.CATALOG)) as con:
+        con.execute("ALTER TABLE runs DROP COLUMN diff")
+    assert [r["diff"] for r in history(tmp_path / "store")["runs"]] == [None]
+    before = {tuple(sorted(r)) for r in pl.read_parquet(tmp_path / "index" / "neighbours.parquet")
+              .select("entity", "neighbour").iter_rows()}
+    _refresh(tmp_path, batches[1], 1)
+    after = {tuple(sorted(r)) for r in pl.read_parquet(tmp_path / "index" / "neighbours.parquet")
+             .select("entity", "neighbour").iter_rows()}
+    runs = history(tmp_path / "store")["runs"]
+    assert runs[0]["diff"] is None
+    assert runs[1]["diff"]["pairs_added"] == len(after - before)
+    assert runs[1]["diff"]["pairs_removed"] == len(before - after)
