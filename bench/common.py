@@ -182,3 +182,37 @@ def best(fn, repeat: int) -> tuple[float, float]:
         wall.append(time.perf_counter() - w)
         cpu.append(time.process_time() - c)
     return min(wall), min(cpu)
+
+
+def zipf_events(entities: int, exponent: float = 1.2, copies: float = 0.2, seed: int = 0) -> Path:
+    """Long-tailed events (entity, element), cached as Parquet under bench/cache/.
+
+    Element popularity close to Zipf (P(rank i) ~ i**-exponent over a catalogue of
+    2 x entities titles; draws beyond it are spread uniformly over the catalogue); set sizes
+    log-normal (median 6, mean ~20), so about half the entities hold 1-5 elements, mostly
+    popular ones; a fraction ``copies`` of entities are near-copies of another entity (each
+    element replaced with probability q ~ U(0, 0.4)). One row per (entity, element).
+    """
+    CACHE.mkdir(exist_ok=True)
+    path = CACHE / f"zipf_{entities}_{exponent}_{copies}_{seed}.parquet"
+    if path.exists():
+        return path
+    rng = np.random.default_rng(seed)
+    sizes = np.clip(np.round(rng.lognormal(np.log(6.0), 1.6, entities)), 1, 5000).astype(np.int64)
+    n = int(sizes.sum())
+    catalogue = 2 * entities
+    element = rng.zipf(exponent, n).astype(np.int64)
+    far = element > catalogue
+    element[far] = rng.integers(1, catalogue + 1, int(far.sum()))
+    base = pl.DataFrame({"entity": np.repeat(np.arange(entities, dtype=np.int64), sizes), "element": element})
+    n_copies = int(entities * copies)
+    targets = rng.choice(entities, size=n_copies, replace=False)
+    sources = rng.integers(0, entities, size=n_copies)
+    mapping = pl.DataFrame({"entity": sources, "copy": targets, "q": rng.uniform(0, 0.4, n_copies)})
+    dup = base.join(mapping, on="entity").select(pl.col("copy").alias("entity"), "element", "q")
+    dup = dup.with_columns(u=pl.Series(rng.random(dup.height)),
+                           fresh=pl.Series(rng.integers(catalogue + 1, 50 * catalogue, dup.height)))
+    dup = dup.select("entity", element=pl.when(pl.col("u") < pl.col("q")).then("fresh").otherwise("element"))
+    kept = base.filter(~pl.col("entity").is_in(pl.Series(targets).implode()))
+    pl.concat([kept, dup]).unique(maintain_order=False).sort("entity", "element").write_parquet(path)
+    return path

@@ -1,0 +1,186 @@
+"""Long-tailed data: ``lshjob run`` beside the datasketch pipeline and a one-pass floor.
+
+    python bench/longtail.py --entities 300000 [--reference-entities 50000 100000] [--sample 500]
+
+Data (bench/common.py zipf_events): element popularity close to Zipf with exponent 1.2,
+log-normal set sizes (about half the entities hold 1-5 elements, mostly popular ones), a
+fifth of the entities near-copies of others. Three whole processes, run from outside the
+repository, timed by the wall clock:
+  (a) ``python -m lshjob run --threshold 0.5 --top-k 50`` (one untimed run first: warm, kernels compiled);
+  (b) the reference pipeline with datasketch: MinHash k=128 per entity, MinHashLSH at threshold
+      0.5 with its own (b, r), a query per entity, exact Jaccard of the candidates with Python
+      sets, top-50 per entity;
+  (c) the floor: polars reads the events, one 64-bit hash per event, minimum per entity.
+Recall of lshjob's index against brute force (exact Jaccard by sparse intersection counts,
+scipy) on a sample of entities against all: true top-k among pairs at or above the threshold,
+a neighbour at the k-th value counting as correct (ties honoured).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+sys.path.insert(0, str(Path(__file__).parent))
+from common import finish, machine, zipf_events  # noqa: E402
+
+THRESHOLD, TOP_K, PERMS = 0.5, 50, 128
+
+FLOOR = """
+import sys, polars as pl
+pl.scan_parquet(sys.argv[1]).group_by("entity").agg(pl.col("element").hash(1).min()).collect()
+"""
+
+REFERENCE = """
+import heapq, sys, numpy as np, polars as pl
+from datasketch import MinHash, MinHashLSH
+frame = pl.read_parquet(sys.argv[1]).group_by("entity").agg("element")
+keys = frame["entity"].to_list()
+sets = [set(s) for s in frame["element"].to_list()]
+lsh = MinHashLSH(threshold=float(sys.argv[2]), num_perm=int(sys.argv[3]))
+hashes = {}
+with lsh.insertion_session() as session:
+    for key, s in zip(keys, sets):
+        m = MinHash(num_perm=int(sys.argv[3]), seed=1)
+        m.update_batch([str(e).encode() for e in s])
+        hashes[key] = m
+        session.insert(key, m)
+index = dict(zip(keys, sets))
+threshold, k, rows = float(sys.argv[2]), int(sys.argv[4]), 0
+for key, s in zip(keys, sets):
+    scored = []
+    for other in lsh.query(hashes[key]):
+        if other != key:
+            t = index[other]
+            inter = len(s & t)
+            j = inter / (len(s) + len(t) - inter)
+            if j >= threshold:
+                scored.append((j, other))
+    rows += len(heapq.nlargest(k, scored))
+print(lsh.b, lsh.r, rows)
+"""
+
+
+def _process(cmd: list[str], cwd: Path, timeout: float | None = None) -> tuple[float, str]:
+    start = time.perf_counter()
+    done = subprocess.run(cmd, cwd=cwd, capture_output=True, text=True, timeout=timeout)
+    wall = time.perf_counter() - start
+    if done.returncode:
+        raise SystemExit(f"{cmd[:4]}: exit {done.returncode}: {done.stderr[-2000:]}")
+    return wall, done.stdout
+
+
+def _lshjob(events: Path, out: Path) -> tuple[float, dict]:
+    wall, stdout = _process([sys.executable, "-m", "lshjob", "run", str(events), "--entity", "entity",
+                             "--element", "element", "--threshold", str(THRESHOLD), "--top-k", str(TOP_K),
+                             "--out", str(out), "--json", "--quiet"], out.parent)
+    return wall, json.loads(stdout)
+
+
+def recall(events: Path, neighbours: Path, sample: int, seed: int = 0) -> tuple[float, int, int]:
+    """(recall, true pairs, sampled entities): exact Jaccard of each sampled entity against all
+    (oracle: intersection counts from a 0/1 sparse matrix product, scipy), true top-k among pairs
+    >= threshold; a published neighbour whose exact Jaccard reaches the k-th value is correct."""
+    from scipy import sparse
+
+    frame = pl.read_parquet(events)
+    ent = frame["entity"].to_numpy()
+    keys, row = np.unique(ent, return_inverse=True)
+    _, col = np.unique(frame["element"].to_numpy(), return_inverse=True)
+    m = sparse.csr_matrix((np.ones(len(row), dtype=np.int32), (row, col)))
+    sizes = np.asarray(m.sum(axis=1)).ravel()
+    picked = np.random.default_rng(seed).choice(len(keys), size=min(sample, len(keys)), replace=False)
+    published = pl.read_parquet(neighbours, columns=["entity", "neighbour"])
+    published = published.filter(pl.col("entity").is_in(pl.Series(keys[picked]).implode()))
+    found = {e: np.searchsorted(keys, np.asarray(n)) for e, n in
+             published.group_by("entity").agg("neighbour").iter_rows()}
+    mt = m.T.tocsc()
+    need_total = hit_total = 0
+    for lo in range(0, len(picked), 50):
+        block = picked[lo:lo + 50]
+        inter = (m[block] @ mt).toarray()
+        jac = inter / (sizes[block][:, None] + sizes[None, :] - inter)
+        for i, e in enumerate(block):
+            jac[i, e] = -1.0  # not its own neighbour
+            above = jac[i][jac[i] >= THRESHOLD]
+            need = min(TOP_K, len(above))
+            if need == 0:
+                continue
+            kth = np.partition(above, len(above) - need)[len(above) - need]
+            got = found.get(keys[e], np.zeros(0, dtype=np.int64))
+            hit_total += min(need, int((jac[i][got] >= max(kth, THRESHOLD)).sum()))
+            need_total += need
+    return (hit_total / need_total if need_total else float("nan")), need_total, len(picked)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--entities", type=int, nargs="+", default=[300_000])
+    ap.add_argument("--reference-entities", type=int, nargs="*", default=None,
+                    help="sizes at which the datasketch pipeline runs (default: the same as --entities)")
+    ap.add_argument("--reference-timeout", type=float, default=None,
+                    help="seconds after which the datasketch pipeline is stopped (reported as a lower bound)")
+    ap.add_argument("--sample", type=int, default=500, help="entities whose true top-k is found by brute force")
+    ap.add_argument("--no-write", action="store_true")
+    args = ap.parse_args()
+    ref_sizes = args.entities if args.reference_entities is None else args.reference_entities
+    lines = [
+        f"Machine: {machine()}",
+        f"Command: `python bench/longtail.py --entities {' '.join(map(str, args.entities))}"
+        + ("" if args.reference_timeout is None else f" --reference-timeout {args.reference_timeout:g}")
+        + ("" if args.reference_entities is None else
+           f" --reference-entities {' '.join(map(str, args.reference_entities))}") + f" --sample {args.sample}`",
+        f"Data: bench/common.py zipf_events (Zipf 1.2 popularity, log-normal sizes, a fifth near-copies); "
+        f"threshold {THRESHOLD}, top-{TOP_K}. Whole processes, wall clock, run outside the repository; "
+        f"lshjob warm (one untimed run first, kernels compiled); datasketch {PERMS} permutations, its own b, r.",
+        "",
+        "| entities | events | lshjob s | datasketch s | floor s | lshjob / datasketch | lshjob / floor "
+        "| lshjob plan k, b, r | candidates | recall (true top-k) | lshjob stages (s) |",
+        "| ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- | ---: | --- | --- |",
+    ]
+    with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
+        tmp = Path(tmp)
+        for n in sorted(set(args.entities) | set(ref_sizes)):
+            events = zipf_events(n)
+            n_events = pl.scan_parquet(events).select(pl.len()).collect().item()
+            floor = min(_process([sys.executable, "-c", FLOOR, str(events)], tmp)[0] for _ in range(3))
+            ref, ref_note, ref_bound = None, "", False
+            if n in ref_sizes:
+                try:
+                    ref, out = _process([sys.executable, "-c", REFERENCE, str(events), str(THRESHOLD), str(PERMS),
+                                         str(TOP_K)], tmp, args.reference_timeout)
+                    b, r, rows = out.split()
+                    ref_note = f" (datasketch b={b}, r={r}, {int(rows):,} rows)"
+                except subprocess.TimeoutExpired:
+                    ref, ref_note = args.reference_timeout, " (stopped: a lower bound)"
+                    ref_bound = True
+            cells = ["", "", "", "", ""]
+            if n in args.entities:
+                _lshjob(events, tmp / f"warm-{n}")
+                wall, m = _lshjob(events, tmp / f"run-{n}")
+                rec, pairs, sampled = recall(events, tmp / f"run-{n}" / "neighbours.parquet", args.sample)
+                plan, c = m["plan"], m["counts"]
+                stages = {k: round(v, 2) for k, v in m["seconds"].items() if isinstance(v, (int, float))}
+                ratio = f"{'< ' if ref_bound else ''}{wall / ref:.2f}x" if ref else ""
+                cells = [f"{wall:.2f}", ratio, f"{wall / floor:.0f}x",
+                         f"{plan['perms']}, {plan['bands']}, {plan['rows']}", f"{c['candidate_pairs']:,}",
+                         f"{rec:.3f} ({sampled} entities, {pairs:,} true pairs)", f"{stages}"]
+            else:
+                cells = ["", "", "", "", "", "", ""]
+            ref_cell = "" if ref is None else ("> " if ref_bound else "") + f"{ref:.1f}{ref_note}"
+            lines.append(f"| {n:,} | {n_events:,} | {cells[0]} | {ref_cell} | {floor:.2f} | "
+                         + " | ".join(cells[1:]) + " |")
+            print(lines[-1], flush=True)
+    finish("Long-tailed data: lshjob beside datasketch and the floor", "\n".join(lines), not args.no_write)
+
+
+if __name__ == "__main__":
+    main()
