@@ -327,7 +327,7 @@ def _keep_previous(out_dir: Path, staging: Path) -> None:
     fresh = staging / PREVIOUS
     fresh.mkdir()
     for name in (NEIGHBOURS, MANIFEST):
-        os.link(out_dir / name, fresh / name)
+        _link(out_dir / name, fresh / name)
     for attempt in range(8):  # one attempt under the folder's lock; more only for a writer without it
         try:
             os.rename(out_dir / PREVIOUS, staging / f"replaced-previous-{attempt}")
@@ -347,3 +347,16 @@ def read_manifest(out_dir: Path) -> Manifest:
     if not path.is_file():
         raise InputError(f"{out_dir}: no {MANIFEST}; is this an lshjob index folder?")
     return read_manifest_file(path)
+
+
+def _link(source: Path, target: Path) -> None:
+    """Hard-link ``source`` to ``target``. A writer without the folder's lock may rename a new
+    file over ``source`` while the link is made; Linux then fails the link with ENOENT (the
+    inode looked up has just lost its last name) although ``source`` exists again: try anew."""
+    for attempt in range(8):
+        try:
+            os.link(source, target)
+            return
+        except FileNotFoundError:
+            if attempt == 7 or not source.exists():
+                raise
