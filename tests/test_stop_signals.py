@@ -93,6 +93,11 @@ elif how == "publish":  # between the renames that put the index in place
         return rename(src, dst, *args, **kwargs)
     os.replace = replace
 
+# a child of a process started under nohup inherits SIGHUP ignored, and lshjob keeps a signal
+# ignored at start (lshjob.runtime.stopping.install): start this one as a shell would
+for stop_signal in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):
+    signal.signal(stop_signal, signal.SIG_DFL)
+
 from lshjob.cli.console import main
 sys.argv = ["lshjob", "run", *sys.argv[3:]]
 main()
