@@ -151,6 +151,22 @@ def test_a_signal_while_the_index_is_renamed_lets_the_run_finish(tmp_path, event
     assert set(os.listdir(out)) == {*INDEX, "previous"}
 
 
+def handled_from(pid: int, signum: int, seconds: float = 60) -> None:
+    """Wait until process ``pid`` catches ``signum`` (bit signum-1 of SigCgt in /proc/PID/status,
+    proc(5)): before that the interpreter itself is starting, and on a loaded machine that alone
+    can take longer than the delays below."""
+    status = Path(f"/proc/{pid}/status")
+    if not status.exists():
+        return  # no procfs: fall back to the delays alone
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline:
+        caught = [line for line in status.read_text().splitlines() if line.startswith("SigCgt:")]
+        if caught and int(caught[0].split()[1], 16) >> (signum - 1) & 1:
+            return
+        time.sleep(0.001)
+    raise AssertionError(f"process {pid} did not catch signal {signum} within {seconds} s")
+
+
 @pytest.mark.parametrize("name, after", [("SIGINT", 0.05), ("SIGTERM", 0.4)])
 def test_a_signal_while_the_libraries_load_stops_with_one_line(tmp_path, events, name, after):
     # the console script as installed; the signal lands while polars, numba and DuckDB load
@@ -158,6 +174,7 @@ def test_a_signal_while_the_libraries_load_stops_with_one_line(tmp_path, events,
     out = tmp_path / "idx"
     child = subprocess.Popen([str(script), "run", *run_args(events, out)], stdout=subprocess.PIPE,
                              stderr=subprocess.PIPE, text=True)
+    handled_from(child.pid, getattr(signal, name))
     time.sleep(after)
     child.send_signal(getattr(signal, name))
     stdout, stderr = child.communicate(timeout=120)

@@ -17,7 +17,6 @@ and exits 0. A second signal while stopping ends the process at once with the sa
 
 from __future__ import annotations
 
-import json
 import os
 import signal
 import sys
@@ -124,6 +123,8 @@ def say(stop: Stopped, argv: list[str]) -> int:
         if line is None and "--json" not in argv:
             continue
         try:
+            import json  # here, not at the top: the handlers are installed before json loads
+
             stream.write((line or json.dumps({"error": text, "exit": stop.exit_code})) + "\n")
         except (OSError, ValueError):
             pass
