@@ -176,7 +176,8 @@ def drift_summary(rows: pl.DataFrame, per_period: pl.DataFrame, source, out, met
         },
         "periods": [
             {"period": _iso(r["period"]), "compared": r["compared"], "scored": r["scored"], "flagged": r["flagged"],
-             "median_similarity": r["median_similarity"], "median_containment": r["median_containment"]}
+             "median_similarity": r["median_similarity"], "median_containment": r["median_containment"],
+             "typical_containment": r["typical_containment"]}
             for r in per_period.iter_rows(named=True)
         ],
         "warnings": [f"period {_iso(r['period'])}: {r['compared']} rows compared, "
