@@ -10,7 +10,9 @@ Output (``--out``, Parquet, written under a temporary name and renamed into plac
 per signature row, in key order: the key columns, ``set_size``, ``compared_with`` (the
 earlier period compared with; null for an entity's first period in the history window),
 ``history_periods``, ``similarity`` and ``similarity_se``, ``containment``,
-``containment_se`` and ``containment_positions``, ``score``, ``flagged``.
+``containment_se`` and ``containment_positions``, ``score``, ``flagged``; with ``--neighbours``
+``list_change``; with ``--store`` ``similarity_exact``, ``containment_exact``, ``entered`` and
+``left`` (flagged rows the store can check; null elsewhere).
 """
 
 from __future__ import annotations
@@ -24,6 +26,7 @@ import polars as pl
 
 from lshjob.core.atomic import write_table
 from lshjob.drift import DEFAULT_Z, MIN_POPULATION, compare_with_history, ratio_and_error, score_rows
+from lshjob.drift.exact import check_flagged, store_spec
 from lshjob.errors import InputError, ParameterError
 from lshjob.runtime.budget import peak_bytes
 from lshjob.runtime.outputs import output_file
@@ -36,11 +39,14 @@ OUTPUT_COLUMNS = ("set_size", "compared_with", "history_periods", "similarity", 
 
 
 def drift_file(source: str | Path, out: str | Path, history: int = DEFAULT_HISTORY, z: float = DEFAULT_Z,
-               block_rows: int = BLOCK_ROWS, neighbours: str | Path | None = None) -> tuple[pl.DataFrame, dict]:
+               block_rows: int = BLOCK_ROWS, neighbours: str | Path | None = None,
+               store: str | Path | None = None) -> tuple[pl.DataFrame, dict]:
     """Compare every row of the signature file ``source`` with its entity's last ``history``
     periods, score and flag them (rule: :mod:`lshjob.drift.rule`), write ``out``; return the
     rows and the summary. ``neighbours``: a table written by ``lshjob diff --out``; its
-    ``list_change`` per entity is added as a second signal (:func:`neighbour_drift`)."""
+    ``list_change`` per entity is added as a second signal (:func:`neighbour_drift`).
+    ``store``: a store written by ``lshjob refresh``; the flagged rows get the elements that
+    entered and left and their exact similarity and containment (:mod:`lshjob.drift.exact`)."""
     if not 1 <= history <= 1000:
         raise ParameterError(f"--history must be from 1 to 1000 periods; got {history}")
     if not 0 < z < 100:
@@ -53,6 +59,7 @@ def drift_file(source: str | Path, out: str | Path, history: int = DEFAULT_HISTO
     if "period" not in keys:
         raise InputError(f"{source}: no 'period' key column (keys are {', '.join(keys) or 'none'}); "
                          "drift needs a file signed with --period (lshjob sign ... --time C --period month)")
+    stored = store_spec(store, meta.get("period_unit"), keys) if store is not None else None
     table = pl.read_parquet(source, columns=[*keys, "set_size"])
     if table.height == 0:
         raise InputError(f"{source}: no signature rows; nothing to compare")
@@ -88,10 +95,16 @@ def drift_file(source: str | Path, out: str | Path, history: int = DEFAULT_HISTO
     rows = rows.select(*keys, *OUTPUT_COLUMNS)
     if changes is not None:
         rows = neighbour_drift(rows, changes)
+    checked = None
+    if stored is not None:
+        rows, checked = check_flagged(store, rows, history, meta["period_unit"], k, *stored)
     write_table(rows, out)
     summary = drift_summary(rows, per_period, source, out, meta, history, z)
     if changes is not None:
         summary["neighbour_drift"] = neighbour_summary(rows, changes, neighbours)
+    if checked is not None:
+        summary["exact"] = checked
+        summary["warnings"] += checked.pop("warnings")
     summary["seconds"] = round(time.perf_counter() - started, 3)
     summary["peak_memory_bytes"] = peak_bytes()
     return rows, summary
