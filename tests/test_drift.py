@@ -143,10 +143,12 @@ def test_segments_and_cli(tmp_path):
     nd = summary["neighbour_drift"]
     assert (nd["entities_list_changed"], nd["also_flagged_latest_period"], nd["also_flagged_any_period"]) == (3, 1, 1)
     assert [r["entity"] for r in nd["most_changed"]] == ["P001", "ann", "P999"]
+    assert [(r["entity"], r["list_change"]) for r in nd["most_flagged"]] == [("ann", 0.5)]  # both signals, beside
     changes = dict(out.select("entity", "list_change").unique().iter_rows())
     assert changes["ann"] == 0.5 and changes["P001"] == 1.0 and changes["P002"] is None
     page = (tmp_path / "d.html").read_text()
     assert "data:image/png;base64," in page and "http" not in page and "Neighbour drift" in page
+    assert "neighbour list change</th>" in page and "<td>0.500</td>" in page
 
 
 def test_refusals(tmp_path):

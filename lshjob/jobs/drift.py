@@ -225,17 +225,21 @@ def neighbour_drift(rows: pl.DataFrame, changes: pl.DataFrame) -> pl.DataFrame:
 
 def neighbour_summary(rows: pl.DataFrame, changes: pl.DataFrame, source) -> dict:
     """Both signals side by side: entities whose neighbour list changed, how many of them
-    the drift rule flags in the latest period or any, and the most changed."""
+    the drift rule flags in the latest period or any, the most changed (with whether they are
+    flagged) and the most flagged (with their neighbour-list change; null: unchanged)."""
     latest = rows["period"].max()
     flagged_any = set(rows.filter("flagged")["entity"].to_list())
     flagged_latest = set(rows.filter(pl.col("flagged") & (pl.col("period") == latest))["entity"].to_list())
     most = changes.sort(["list_change", "entity"], descending=[True, False]).head(10)
+    strongest = (rows.filter("flagged").group_by("entity").agg(pl.col("score").max(), pl.col("list_change").first())
+                 .sort(["score", "entity"], descending=[True, False]).head(10))
     return {
         "source": str(source), "entities_list_changed": changes.height,
         "also_flagged_latest_period": len(flagged_latest & set(changes["entity"].to_list())),
         "also_flagged_any_period": len(flagged_any & set(changes["entity"].to_list())),
         "most_changed": [{"entity": e, "list_change": c, "flagged_latest": e in flagged_latest,
                           "flagged_any": e in flagged_any} for e, c in most.iter_rows()],
+        "most_flagged": [{"entity": e, "score": sc, "list_change": c} for e, sc, c in strongest.iter_rows()],
     }
 
 
