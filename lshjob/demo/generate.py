@@ -4,8 +4,8 @@ Patrons borrow titles at branches over the months of 2026. The generator is seed
 and deterministic (numpy's PCG64 stream) and plants structure a test can recover:
 
 * groups of patrons with near-identical reading and a designed Jaccard similarity:
-  members share a base list of m titles and each adds x titles of their own from
-  the local-history collection, so any two members have Jaccard m / (m + 2x);
+  members share a base list of m titles (the volumes of a few whole series) and each
+  adds x titles of their own from the local-history collection, so any two members have Jaccard m / (m + 2x);
 * long-tailed title popularity (power law within each of eight genres) and
   long-tailed history sizes (log-normal);
 * titles in series: the general collection is numbered in series of :data:`SERIES_LENGTH`
@@ -14,8 +14,8 @@ and deterministic (numpy's PCG64 stream) and plants structure a test can recover
   titles of any genre;
 * seasonal reading: summer titles borrowed only in June to August, by everyone who borrows
   then (a quarter of those months' loans);
-* regular borrowers: one ordinary reader in ten borrows 8 to 15 titles a month;
-* drifters: two regular borrowers in five move, in a month from April to November, to
+* regular borrowers: about one ordinary reader in eight borrows 10 to 20 titles a month;
+* drifters: nearly half the regular borrowers (45%) move, in a month from April to November, to
   another branch and another part of the catalogue: a new shelf of series in another genre
   (planted with the month, ``changed_at``);
 * a skew trap: many patrons whose only loan is the same bestseller;
@@ -57,7 +57,7 @@ DRIFT_SHARE = 0.45  # of regular borrowers: move branch and shelf at a month fro
 MAX_SHELF = 16  # series on a reader's shelf: one per 15 loans a year, 1 to 16
 
 
-MAX_PATRONS = 1_000_000  # about 32 million loans, a few GiB while generating
+MAX_PATRONS = 1_000_000  # about 40 million loans, several GiB while generating
 
 
 def check_options(patrons: int, seed: int) -> None:
