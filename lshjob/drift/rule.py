@@ -57,9 +57,7 @@ def score_rows(rows: pl.DataFrame, z: float = DEFAULT_Z) -> tuple[pl.DataFrame, 
     compared = pl.col("containment").is_not_null()
     n = pl.col("set_size").cast(pl.Float64).clip(lower_bound=1.0)
     m = pl.col("containment_positions").cast(pl.Float64).clip(lower_bound=1.0)
-    typical = typical_containment(rows)
-    frame = rows.join(typical, on="period", how="left", maintain_order="left").with_columns(
-        __pop=compared.sum().over("period"))
+    frame = rows.with_columns(__c0=typical_containment(compared), __pop=compared.sum().over("period"))
     c0 = pl.col("__c0")
     v = (c0 * n + 0.5) / (n + 1.0)
     frame = frame.with_columns(__d=(c0 - pl.col("containment")) / (v * (1.0 - v) * (1.0 / n + 1.0 / m)).sqrt())
@@ -82,11 +80,10 @@ def score_rows(rows: pl.DataFrame, z: float = DEFAULT_Z) -> tuple[pl.DataFrame, 
 
 
 
-def typical_containment(rows: pl.DataFrame) -> pl.DataFrame:
-    """Per period, ``__c0`` = sum(C w) / sum(w) over the rows compared, w the set size capped
-    at the containment's signature positions (step 1 of the module docstring)."""
-    w = pl.min_horizontal(pl.col("set_size").cast(pl.Float64),
-                          pl.col("containment_positions").cast(pl.Float64)).clip(lower_bound=1.0)
-    return (rows.lazy().filter(pl.col("containment").is_not_null())
-            .group_by("period").agg(__c0=(pl.col("containment") * w).sum() / w.sum())
-            .collect())
+
+def typical_containment(compared: pl.Expr) -> pl.Expr:
+    """Per period, sum(C w) / sum(w) over the rows compared, w the set size capped at the
+    containment's signature positions (step 1 of the module docstring)."""
+    w = pl.when(compared).then(pl.min_horizontal(pl.col("set_size").cast(pl.Float64),
+                                                 pl.col("containment_positions").cast(pl.Float64)).clip(lower_bound=1.0))
+    return (pl.col("containment") * w).sum().over("period") / w.sum().over("period")
