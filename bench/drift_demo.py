@@ -63,7 +63,8 @@ def run_seed(patrons: int, seed: int, elements, histories, zs, folder: Path) -> 
                 started = time.perf_counter()
                 rows, _ = drift_file(sigs, folder / f"drift-{seed}.parquet", history=history, z=z)
                 seconds = time.perf_counter() - started
-                lines.append(f"| {seed} | {element} | {history} | {z} | {score(rows, events, planted)} {seconds:.2f} |")
+                cells = score(rows, events, planted)
+                lines.append(f"| {seed} | {element} | {history} | {z} | {cells} {seconds:.2f} |")
     return lines
 
 
@@ -84,8 +85,8 @@ def main() -> None:
             lines += run_seed(args.patrons, seed, args.elements, args.history, args.z, Path(tmp))
     report = "\n".join([
         f"Machine: {machine()} (shared with other jobs; timings noisy)",
-        f"Data: lshjob demo, {args.patrons} patrons, seeds {' '.join(map(str, args.seeds))}; signed per patron and month "
-        "(kperm, k=128) by the element named",
+        f"Data: lshjob demo, {args.patrons} patrons, seeds {' '.join(map(str, args.seeds))}; "
+        "signed per patron and month (kperm, k=128) by the element named",
         f"Command: `python bench/drift_demo.py --patrons {args.patrons} --seeds {' '.join(map(str, args.seeds))} "
         f"--elements {' '.join(args.elements)} --history {' '.join(map(str, args.history))} "
         f"--z {' '.join(map(str, args.z))}`",

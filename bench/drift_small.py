@@ -26,8 +26,9 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "tests"))
 
-from bench.common import finish, machine  # noqa: E402
 from drift_data import SUMMER, entity_scores, library_months  # noqa: E402
+
+from bench.common import finish, machine  # noqa: E402
 from lshjob.ingest.spec import EventSpec  # noqa: E402
 from lshjob.jobs.drift import drift_file  # noqa: E402
 from lshjob.jobs.sign import sign_file  # noqa: E402

@@ -111,7 +111,8 @@ def generate_events(patrons: int = 2000, seed: int = 7) -> tuple[pl.DataFrame, p
     month_start = np.array([f"{YEAR}-{m:02d}-01" for m in range(1, 13)], dtype="datetime64[D]")
     planted_rows = [(p, "skew_trap", None, None, None) for p in skew]
     planted_rows += [(p, "heavy", None, None, None) for p in heavy]
-    planted_rows += [(p, "drifter", None, None, month_start[c].item()) for p, c in zip(regular[drifter], change[drifter])]
+    planted_rows += [(p, "drifter", None, None, month_start[c].item())
+                     for p, c in zip(regular[drifter], change[drifter])]
     start, own_next = 0, 0
     for g, size in enumerate(group_sizes):
         m, x = GROUP_DESIGNS[g % len(GROUP_DESIGNS)]
@@ -209,7 +210,8 @@ def _reader_loans(rng, patrons, sizes, change, n_general, n_summer):
     code = shelves[who, moved.astype(np.int64), place]
     idx = ((code % n_series) * SERIES_LENGTH + rng.integers(0, SERIES_LENGTH, n)) * GENRES + code // n_series
     popular = rng.random(n) >= OWN_SHARE
-    idx[popular] = _power_law(rng, per_genre, int(popular.sum()), 0.6) * GENRES + rng.integers(0, GENRES, int(popular.sum()))
+    n_popular = int(popular.sum())
+    idx[popular] = _power_law(rng, per_genre, n_popular, 0.6) * GENRES + rng.integers(0, GENRES, n_popular)
     title = np.char.add("T", np.char.zfill(idx.astype(str), 6))
     summer = (month >= 5) & (month <= 7) & (rng.random(n) < SUMMER_SHARE)
     s_idx = _power_law(rng, n_summer, int(summer.sum()), 0.8)

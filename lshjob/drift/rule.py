@@ -79,8 +79,6 @@ def score_rows(rows: pl.DataFrame, z: float = DEFAULT_Z) -> tuple[pl.DataFrame, 
     return frame.drop("__c0", "__pop", "__d", "__dm", "__sd"), periods
 
 
-
-
 def typical_containment(compared: pl.Expr) -> pl.Expr:
     """Per period, sum(C w) / sum(w) over the rows compared, w the set size capped at the
     containment's signature positions (step 1 of the module docstring)."""
