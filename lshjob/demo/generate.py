@@ -10,7 +10,8 @@ and deterministic (numpy's PCG64 stream) and plants structure a test can recover
   long-tailed history sizes (log-normal);
 * titles in series: the general collection is numbered in series of :data:`SERIES_LENGTH`
   volumes, and an ordinary reader follows a shelf of a few series (more for a keener
-  reader) from a home branch, borrowing most loans from it and the rest from the popular
+  reader; the first two among the popular series, the others any) from a home branch,
+  borrowing most loans from it (first volumes most often) and the rest from the popular
   titles of any genre;
 * seasonal reading: summer titles borrowed only in June to August, by everyone who borrows
   then (a quarter of those months' loans);
@@ -186,8 +187,9 @@ def _power_law(rng, n: int, size, exponent: float) -> np.ndarray:
 
 
 def _reader_loans(rng, patrons, sizes, change, n_general, n_summer):
-    """Loans of ordinary readers over the year: from a shelf of series (one series per loan a
-    month, 1 to :data:`MAX_SHELF`; popular series more often; most in a favourite genre) with
+    """Loans of ordinary readers over the year: from a shelf of series (one series per 15 loans a
+    year, 1 to :data:`MAX_SHELF`; the first two popular series, the others uniform; most in a
+    favourite genre; a series' first volumes borrowed most) with
     probability :data:`OWN_SHARE`, otherwise a popular title of any genre; summer titles in
     June to August. From month ``change`` on (12: never) a reader reads from a second shelf,
     in another favourite genre, at another branch (the last array: moved)."""
@@ -200,7 +202,9 @@ def _reader_loans(rng, patrons, sizes, change, n_general, n_summer):
     shape = (count, 2, MAX_SHELF)
     genre = np.where(rng.random(shape) < 0.8, favourites[:, :, None], rng.integers(0, GENRES, shape))
     genre[:, 1] = favourites[:, 1:]  # the second shelf: all in the new favourite genre
-    shelves = genre * n_series + rng.integers(0, n_series, shape)  # genre * n_series + series
+    series = rng.integers(0, n_series, shape)
+    series[:, :, :2] = _power_law(rng, n_series, (count, 2, 2), 0.5)  # the first two: popular series
+    shelves = genre * n_series + series  # genre * n_series + series
 
     who = np.repeat(np.arange(count), sizes)
     n = len(who)
@@ -208,7 +212,7 @@ def _reader_loans(rng, patrons, sizes, change, n_general, n_summer):
     moved = month >= change[who]
     place = (rng.random(n) * shelf_size[who]).astype(np.int64)
     code = shelves[who, moved.astype(np.int64), place]
-    idx = ((code % n_series) * SERIES_LENGTH + rng.integers(0, SERIES_LENGTH, n)) * GENRES + code // n_series
+    idx = ((code % n_series) * SERIES_LENGTH + _power_law(rng, SERIES_LENGTH, n, 1.0)) * GENRES + code // n_series
     popular = rng.random(n) >= OWN_SHARE
     n_popular = int(popular.sum())
     idx[popular] = _power_law(rng, per_genre, n_popular, 0.6) * GENRES + rng.integers(0, GENRES, n_popular)
