@@ -143,10 +143,12 @@ def test_segments_and_cli(tmp_path):
     nd = summary["neighbour_drift"]
     assert (nd["entities_list_changed"], nd["also_flagged_latest_period"], nd["also_flagged_any_period"]) == (3, 1, 1)
     assert [r["entity"] for r in nd["most_changed"]] == ["P001", "ann", "P999"]
+    assert [(r["entity"], r["list_change"]) for r in nd["most_flagged"]] == [("ann", 0.5)]  # both signals, beside
     changes = dict(out.select("entity", "list_change").unique().iter_rows())
     assert changes["ann"] == 0.5 and changes["P001"] == 1.0 and changes["P002"] is None
     page = (tmp_path / "d.html").read_text()
     assert "data:image/png;base64," in page and "http" not in page and "Neighbour drift" in page
+    assert "neighbour list change</th>" in page and "<td>0.500</td>" in page
 
 
 def test_refusals(tmp_path):
@@ -168,3 +170,30 @@ def test_refusals(tmp_path):
     result = runner.invoke(app, ["drift", str(shuffled), "--out", str(tmp_path / "d.parquet")])
     assert result.exit_code == 2 and "not sorted by entity, period" in result.stderr
     assert not (tmp_path / "d.parquet").exists()
+
+
+def test_the_typical_containment_is_the_share_of_elements_found_not_the_median_set(tmp_path):
+    # Oracle: the generator's own model (Python): every element of every patron is one of its
+    # usual ones with probability 0.85, else new; no one drifts, so every flag is a false one.
+    # 1,500 patrons borrow one element a month (their containment is 0 or 1, and the median of
+    # the containments is 1), 300 borrow eight. The rule measures the eight-element sets
+    # against the share of elements found (about 0.85), so it flags few of them; the share with
+    # 5 or more of 8 new (scipy.stats.binom) bounds what a correct rule at z 3.5 may flag.
+    # Measured against the median set (1) instead, the ~10% with 3 or more new would be flagged.
+    from scipy.stats import binom
+    rng = np.random.default_rng(12)
+    rows = []
+    for p in range(1800):
+        size = 1 if p < 1500 else 8
+        for m in range(1, 5):
+            for i in range(size):
+                usual = rng.random() < 0.85
+                rows.append((f"P{p:04d}", f"usual-{p}-{i}" if usual else f"new-{p}-{m}-{i}", dt.date(2026, m, 3)))
+    events = pl.DataFrame(rows, schema=["patron", "author", "borrowed_at"], orient="row")
+    out, summary = drift_file(_signed(tmp_path, events), tmp_path / "drift.parquet")
+    april = out.filter(pl.col("period") == dt.date(2026, 4, 1))
+    large = april.filter(pl.col("set_size") == 8)
+    assert april.filter(pl.col("set_size") == 1)["containment"].median() == 1.0
+    assert abs(summary["periods"][-1]["typical_containment"] - 0.85) < 0.03
+    assert large["flagged"].mean() <= 2 * binom.sf(4, 8, 0.15) + 0.01, large["flagged"].mean()
+    assert (large["containment"] < 0.7).mean() >= 0.5 * binom.sf(2, 8, 0.15)  # those cases are there

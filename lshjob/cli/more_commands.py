@@ -70,8 +70,9 @@ DRIFT_HELP = """Per entity (and segment) and period: how much its set changed ag
 
     Rule: {rule}
 
-    Element sets of flagged entities (what entered and left) need the per-period store, which
-    this version does not have.
+    With --store (a store written by lshjob refresh, over the same events and element), each
+    flagged row also gets the elements that entered and left since the period compared with,
+    and its exact similarity and containment from the store's sets beside the estimates.
 
     Example: lshjob sign demo-run/events.parquet --entity patron --element title
     --time borrowed_at --period month --out monthly.parquet; lshjob drift monthly.parquet
@@ -82,6 +83,13 @@ DRIFT_HELP = """Per entity (and segment) and period: how much its set changed ag
 
     Example (with neighbour drift): lshjob diff index/previous index --out changed.parquet;
     lshjob drift monthly.parquet --neighbours changed.parquet --out drift.parquet
+
+    Example (the library demo's drifters): lshjob sign demo_data/loans.parquet --entity patron
+    --element series --time borrowed_at --period month --out monthly.parquet; lshjob drift
+    monthly.parquet --history 6 --out drift.parquet
+
+    Example (checked against the store): lshjob drift monthly.parquet --store store
+    --out drift.parquet --json
     """
 
 
@@ -94,6 +102,8 @@ def drift(
     html: Annotated[Path | None, typer.Option(help="Also write a self-contained HTML view (needs matplotlib).")] = None,
     neighbours: Annotated[Path | None, typer.Option(
         help="Entities whose neighbour lists changed (lshjob diff --out), shown beside.")] = None,
+    store: Annotated[Path | None, typer.Option(
+        help="Store written by lshjob refresh: name what entered and left each flagged set, exactly.")] = None,
     quiet: Quiet = False,
     as_json: AsJson = False,
 ) -> None:
@@ -106,7 +116,7 @@ def drift(
         from lshjob.report.drift_html import require_matplotlib
 
         require_matplotlib()
-    rows, summary = drift_file(signatures, out, history=history, z=z, neighbours=neighbours)
+    rows, summary = drift_file(signatures, out, history=history, z=z, neighbours=neighbours, store=store)
     if html is not None:
         from lshjob.report.drift_html import write_drift_html
 
@@ -119,17 +129,25 @@ def drift(
 def drift_text(s: dict) -> str:
     lines = [f"{s['rows_compared']:,} of {s['rows']:,} entity-periods compared with their last {s['history']} "
              f"period(s); {s['flagged']:,} flagged ({s['entities_flagged']:,} entities) -> {s['out']}",
-             f"{'period':<12}{'compared':>10}{'flagged':>9}{'median similarity':>19}{'median containment':>20}"]
+             f"{'period':<12}{'compared':>10}{'flagged':>9}{'median similarity':>19}{'typical containment':>21}"]
     for p in s["periods"]:
         if not p["compared"]:
             continue
         lines.append(f"{p['period']:<12}{p['compared']:>10,}{p['flagged']:>9,}"
-                     f"{p['median_similarity']:>19.3f}{p['median_containment']:>20.3f}")
+                     f"{p['median_similarity']:>19.3f}{p['typical_containment']:>21.3f}")
     if s.get("neighbour_drift"):
         nd = s["neighbour_drift"]
         lines.append(f"neighbour lists changed for {nd['entities_list_changed']:,} entities; "
                      f"{nd['also_flagged_latest_period']:,} of them flagged in the latest period, "
                      f"{nd['also_flagged_any_period']:,} in any")
+    if s.get("exact"):
+        ex = s["exact"]
+        lines.append(f"store {ex['store']}: {ex['checked']:,} of {ex['flagged_rows']:,} flagged rows checked; "
+                     f"estimates within error: similarity {ex['within_error']['similarity']:,}, "
+                     f"containment {ex['within_error']['containment']:,}")
+        for r in ex["rows"][:5]:
+            lines.append(f"  {r['entity']} {r['period']}: similarity {r['similarity']:.3f} (exact "
+                         f"{r['similarity_exact']:.3f}); {r['entered_count']} entered, {r['left_count']} left")
     if s.get("html"):
         lines.append(f"view: {s['html']}")
     return "\n".join(lines)

@@ -3,7 +3,13 @@ rest of the population that period explain.
 
 Per period t, over the rows compared with a history (module :mod:`lshjob.drift.estimators`):
 
-1. The population's typical containment c0 = the median of the estimated containments C.
+1. The population's typical containment c0 = the share of the period's elements found in
+   their entity's history: sum(C n) / sum(n), n the set size capped at the positions m the
+   estimate used (an estimate carries no more than m positions' worth). Uncapped, this is
+   the maximum-likelihood estimate of a common c0 under the binomial model of step 2. The median
+   of C is not: a set of one element is contained wholly or not at all, so where most sets
+   are that small their median is 1 (or 0) whatever the share of elements found, and every
+   larger set would then be measured against 1.
 2. Each row's deficit against it, in units of the noise expected if the entity behaved like
    the population: d = (c0 - C) / sqrt(v (1 - v) (1/n + 1/m)), where n is the new period's
    set size, m the signature positions the containment was estimated from, and
@@ -32,12 +38,13 @@ MAD_TO_SD = 1.4826  # 1 / Phi^-1(3/4): MAD of a normal sample -> its standard de
 
 RULE_TEXT = (
     "An entity-period is flagged when its containment in its own history is lower than the "
-    "period's median by more than Z (default 3.5) robust standard deviations, after scaling "
+    "period's typical containment by more than Z (default 3.5) robust standard deviations, after scaling "
     "each entity's drop by the binomial noise of its set size and of the estimate: "
     "d = (c0 - C) / sqrt(v(1-v)(1/n + 1/m)), score = (d - median d) / max(1, 1.4826 MAD d) "
-    "per period (c0: the period's median containment, n: set size, m: signature positions "
-    "used, v: c0 pulled half an element towards 1/2). A season that changes everyone moves "
-    "the median, not the score."
+    "per period (n: set size, m: signature positions "
+    "used, v: c0 pulled half an element towards 1/2; c0: the share of the period's elements found in "
+    "their histories, sum(C n) / sum(n)). A season that changes everyone moves "
+    "c0, not the score."
 )
 
 
@@ -45,14 +52,12 @@ def score_rows(rows: pl.DataFrame, z: float = DEFAULT_Z) -> tuple[pl.DataFrame, 
     """Add ``score`` and ``flagged`` to ``rows`` (columns ``period``, ``set_size``,
     ``containment``, ``containment_positions``; containment null where nothing was compared);
     return them and the per-period population figures (``period``, ``compared``,
-    ``median_containment``, ``median_similarity``, ``flagged``, ``scored``)."""
+    ``median_containment``, ``median_similarity``, ``typical_containment`` (c0), ``flagged``,
+    ``scored``)."""
     compared = pl.col("containment").is_not_null()
     n = pl.col("set_size").cast(pl.Float64).clip(lower_bound=1.0)
     m = pl.col("containment_positions").cast(pl.Float64).clip(lower_bound=1.0)
-    frame = rows.with_columns(
-        __c0=pl.col("containment").median().over("period"),  # nulls (not compared) left out
-        __pop=compared.sum().over("period"),
-    )
+    frame = rows.with_columns(__c0=typical_containment(compared), __pop=compared.sum().over("period"))
     c0 = pl.col("__c0")
     v = (c0 * n + 0.5) / (n + 1.0)
     frame = frame.with_columns(__d=(c0 - pl.col("containment")) / (v * (1.0 - v) * (1.0 / n + 1.0 / m)).sqrt())
@@ -69,5 +74,14 @@ def score_rows(rows: pl.DataFrame, z: float = DEFAULT_Z) -> tuple[pl.DataFrame, 
         flagged=pl.col("flagged").sum(),
         median_containment=pl.col("containment").median(),
         median_similarity=pl.col("similarity").median(),
+        typical_containment=pl.col("__c0").first(),
     ).sort("period"))
     return frame.drop("__c0", "__pop", "__d", "__dm", "__sd"), periods
+
+
+def typical_containment(compared: pl.Expr) -> pl.Expr:
+    """Per period, sum(C w) / sum(w) over the rows compared, w the set size capped at the
+    containment's signature positions (step 1 of the module docstring)."""
+    w = pl.when(compared).then(pl.min_horizontal(pl.col("set_size").cast(pl.Float64),
+                                                 pl.col("containment_positions").cast(pl.Float64)).clip(lower_bound=1.0))
+    return (pl.col("containment") * w).sum().over("period") / w.sum().over("period")

@@ -10,7 +10,9 @@ Output (``--out``, Parquet, written under a temporary name and renamed into plac
 per signature row, in key order: the key columns, ``set_size``, ``compared_with`` (the
 earlier period compared with; null for an entity's first period in the history window),
 ``history_periods``, ``similarity`` and ``similarity_se``, ``containment``,
-``containment_se`` and ``containment_positions``, ``score``, ``flagged``.
+``containment_se`` and ``containment_positions``, ``score``, ``flagged``; with ``--neighbours``
+``list_change``; with ``--store`` ``similarity_exact``, ``containment_exact``, ``entered`` and
+``left`` (flagged rows the store can check; null elsewhere).
 """
 
 from __future__ import annotations
@@ -24,6 +26,7 @@ import polars as pl
 
 from lshjob.core.atomic import write_table
 from lshjob.drift import DEFAULT_Z, MIN_POPULATION, compare_with_history, ratio_and_error, score_rows
+from lshjob.drift.exact import check_flagged, store_spec
 from lshjob.errors import InputError, ParameterError
 from lshjob.runtime.budget import peak_bytes
 from lshjob.runtime.outputs import output_file
@@ -36,11 +39,14 @@ OUTPUT_COLUMNS = ("set_size", "compared_with", "history_periods", "similarity", 
 
 
 def drift_file(source: str | Path, out: str | Path, history: int = DEFAULT_HISTORY, z: float = DEFAULT_Z,
-               block_rows: int = BLOCK_ROWS, neighbours: str | Path | None = None) -> tuple[pl.DataFrame, dict]:
+               block_rows: int = BLOCK_ROWS, neighbours: str | Path | None = None,
+               store: str | Path | None = None) -> tuple[pl.DataFrame, dict]:
     """Compare every row of the signature file ``source`` with its entity's last ``history``
     periods, score and flag them (rule: :mod:`lshjob.drift.rule`), write ``out``; return the
     rows and the summary. ``neighbours``: a table written by ``lshjob diff --out``; its
-    ``list_change`` per entity is added as a second signal (:func:`neighbour_drift`)."""
+    ``list_change`` per entity is added as a second signal (:func:`neighbour_drift`).
+    ``store``: a store written by ``lshjob refresh``; the flagged rows get the elements that
+    entered and left and their exact similarity and containment (:mod:`lshjob.drift.exact`)."""
     if not 1 <= history <= 1000:
         raise ParameterError(f"--history must be from 1 to 1000 periods; got {history}")
     if not 0 < z < 100:
@@ -53,6 +59,7 @@ def drift_file(source: str | Path, out: str | Path, history: int = DEFAULT_HISTO
     if "period" not in keys:
         raise InputError(f"{source}: no 'period' key column (keys are {', '.join(keys) or 'none'}); "
                          "drift needs a file signed with --period (lshjob sign ... --time C --period month)")
+    stored = store_spec(store, meta.get("period_unit"), keys) if store is not None else None
     table = pl.read_parquet(source, columns=[*keys, "set_size"])
     if table.height == 0:
         raise InputError(f"{source}: no signature rows; nothing to compare")
@@ -88,10 +95,16 @@ def drift_file(source: str | Path, out: str | Path, history: int = DEFAULT_HISTO
     rows = rows.select(*keys, *OUTPUT_COLUMNS)
     if changes is not None:
         rows = neighbour_drift(rows, changes)
+    checked = None
+    if stored is not None:
+        rows, checked = check_flagged(store, rows, history, meta["period_unit"], k, *stored)
     write_table(rows, out)
     summary = drift_summary(rows, per_period, source, out, meta, history, z)
     if changes is not None:
         summary["neighbour_drift"] = neighbour_summary(rows, changes, neighbours)
+    if checked is not None:
+        summary["exact"] = checked
+        summary["warnings"] += checked.pop("warnings")
     summary["seconds"] = round(time.perf_counter() - started, 3)
     summary["peak_memory_bytes"] = peak_bytes()
     return rows, summary
@@ -176,7 +189,8 @@ def drift_summary(rows: pl.DataFrame, per_period: pl.DataFrame, source, out, met
         },
         "periods": [
             {"period": _iso(r["period"]), "compared": r["compared"], "scored": r["scored"], "flagged": r["flagged"],
-             "median_similarity": r["median_similarity"], "median_containment": r["median_containment"]}
+             "median_similarity": r["median_similarity"], "median_containment": r["median_containment"],
+             "typical_containment": r["typical_containment"]}
             for r in per_period.iter_rows(named=True)
         ],
         "warnings": [f"period {_iso(r['period'])}: {r['compared']} rows compared, "
@@ -211,17 +225,21 @@ def neighbour_drift(rows: pl.DataFrame, changes: pl.DataFrame) -> pl.DataFrame:
 
 def neighbour_summary(rows: pl.DataFrame, changes: pl.DataFrame, source) -> dict:
     """Both signals side by side: entities whose neighbour list changed, how many of them
-    the drift rule flags in the latest period or any, and the most changed."""
+    the drift rule flags in the latest period or any, the most changed (with whether they are
+    flagged) and the most flagged (with their neighbour-list change; null: unchanged)."""
     latest = rows["period"].max()
     flagged_any = set(rows.filter("flagged")["entity"].to_list())
     flagged_latest = set(rows.filter(pl.col("flagged") & (pl.col("period") == latest))["entity"].to_list())
     most = changes.sort(["list_change", "entity"], descending=[True, False]).head(10)
+    strongest = (rows.filter("flagged").group_by("entity").agg(pl.col("score").max(), pl.col("list_change").first())
+                 .sort(["score", "entity"], descending=[True, False]).head(10))
     return {
         "source": str(source), "entities_list_changed": changes.height,
         "also_flagged_latest_period": len(flagged_latest & set(changes["entity"].to_list())),
         "also_flagged_any_period": len(flagged_any & set(changes["entity"].to_list())),
         "most_changed": [{"entity": e, "list_change": c, "flagged_latest": e in flagged_latest,
                           "flagged_any": e in flagged_any} for e, c in most.iter_rows()],
+        "most_flagged": [{"entity": e, "score": sc, "list_change": c} for e, sc, c in strongest.iter_rows()],
     }
 
 

@@ -1,9 +1,11 @@
 """The drift view: one self-contained HTML file (figures inline as base64 PNG, no network).
 
 Shows the distribution of the containment and the similarity per period (box plots, the
-flagged rows as points over them), the population's medians, and the timelines of a few
-flagged entities (the most extreme scores). Element sets of flagged entities are not shown:
-they need the per-period store.
+flagged rows as points over them), the population's medians and typical containment, the
+timelines of a few flagged entities (the most extreme scores) with their neighbour-list change
+when ``--neighbours`` was given, the entities whose neighbour lists changed most, and, with
+``--store``, the elements that entered and left each checked flagged set with its exact
+similarity and containment.
 """
 
 from __future__ import annotations
@@ -79,7 +81,27 @@ def _timelines(rows: pl.DataFrame, plt, keys: list[str]) -> tuple[str | None, li
     fig.tight_layout()
     image = _png(fig)
     plt.close(fig)
-    return image, top.select(*keys, "period", "score", "containment", "similarity", "set_size").to_dicts()
+    extra = [c for c in ("list_change",) if c in top.columns]
+    return image, top.select(*keys, "period", "score", "containment", "similarity", "set_size", *extra).to_dicts()
+
+
+def _exact_part(ex: dict | None, esc, num) -> str:
+    if not ex:
+        return ("<p>The elements that entered and left a flagged entity's set: run with --store "
+                "(a store written by lshjob refresh).</p>")
+    listed = "".join(
+        f"<tr><td>{esc(str(r['entity']))}</td><td>{esc(r['period'])}</td><td>{esc(r['compared_with'])}</td>"
+        f"<td>{num(r['similarity'])}</td><td>{num(r['similarity_exact'])}</td>"
+        f"<td>{num(r['containment'])}</td><td>{num(r['containment_exact'])}</td>"
+        f"<td style='text-align:left'>{r['entered_count']}: {esc(', '.join(map(str, r['entered'])))}</td>"
+        f"<td style='text-align:left'>{r['left_count']}: {esc(', '.join(map(str, r['left'])))}</td></tr>"
+        for r in ex["rows"])
+    return (f"<h2>Flagged sets in the store</h2><p>{ex['checked']:,} of {ex['flagged_rows']:,} flagged rows checked "
+            f"against {esc(ex['store'])} (element {esc(str(ex['element']))}); estimates within "
+            f"{esc(ex['error_bound'])}: similarity {ex['within_error']['similarity']:,}, containment "
+            f"{ex['within_error']['containment']:,}. Entered and left: against the period compared with.</p>"
+            "<table><tr><th>entity</th><th>period</th><th>compared with</th><th>similarity</th><th>exact</th>"
+            f"<th>containment</th><th>exact</th><th>entered</th><th>left</th></tr>{listed}</table>")
 
 
 def write_drift_html(rows: pl.DataFrame, summary: dict, path: str | Path) -> Path:
@@ -98,16 +120,19 @@ def write_drift_html(rows: pl.DataFrame, summary: dict, path: str | Path) -> Pat
 
     period_rows = "".join(
         f"<tr><td>{esc(p['period'])}</td><td>{p['compared']:,}</td><td>{p['flagged']:,}</td>"
-        f"<td>{num(p['median_similarity'])}</td><td>{num(p['median_containment'])}</td></tr>"
+        f"<td>{num(p['median_similarity'])}</td><td>{num(p['median_containment'])}</td>"
+        f"<td>{num(p.get('typical_containment'))}</td></tr>"
         for p in summary["periods"])
+    has_change = any("list_change" in r for r in top)
     top_rows = "".join(
         "<tr>" + "".join(f"<td>{esc(str(r[k]))}</td>" for k in keys)
         + f"<td>{r['period']}</td><td>{r['score']:.2f}</td><td>{r['containment']:.3f}</td>"
-          f"<td>{r['similarity']:.3f}</td><td>{r['set_size']}</td></tr>" for r in top)
+          f"<td>{r['similarity']:.3f}</td><td>{r['set_size']}</td>"
+        + (f"<td>{num(r['list_change'])}</td>" if has_change else "") + "</tr>" for r in top)
     head = "".join(f"<th>{esc(k)}</th>" for k in keys)
     flagged_part = "<p>None flagged.</p>" if timeline is None else (
         f"<table><tr>{head}<th>period</th><th>score</th><th>containment</th><th>similarity</th>"
-        f"<th>set size</th></tr>{top_rows}</table>"
+        f"<th>set size</th>{'<th>neighbour list change</th>' if has_change else ''}</tr>{top_rows}</table>"
         f'<img alt="timelines" src="data:image/png;base64,{timeline}">')
     neighbour_part = ""
     if summary.get("neighbour_drift"):
@@ -121,6 +146,7 @@ def write_drift_html(rows: pl.DataFrame, summary: dict, path: str | Path) -> Pat
             f"({esc(nd['source'])}); {nd['also_flagged_latest_period']:,} of them flagged in the latest period, "
             f"{nd['also_flagged_any_period']:,} in any.</p><table><tr><th>entity</th><th>list change</th>"
             f"<th>flagged (latest)</th><th>flagged (any)</th></tr>{listed}</table>")
+    exact_part = _exact_part(summary.get("exact"), esc, num)
     body = f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8"><title>lshjob drift: {esc(summary['signatures'])}</title>
 <style>body{{font-family:sans-serif;max-width:70em;margin:1em auto}}table{{border-collapse:collapse}}
@@ -130,13 +156,14 @@ td,th{{border:1px solid #ccc;padding:2px 8px;text-align:right}}</style></head><b
 {summary['history']} period(s); {summary['flagged']:,} flagged \
 ({summary['entities_flagged']:,} entities), z &gt; {summary['z']}.</p>
 <h2>Per period</h2>
-<table><tr><th>period</th><th>compared</th><th>flagged</th><th>median similarity</th><th>median containment</th></tr>
+<table><tr><th>period</th><th>compared</th><th>flagged</th><th>median similarity</th><th>median containment</th>
+<th>typical containment (c0)</th></tr>
 {period_rows}</table>
 <img alt="distribution per period" src="data:image/png;base64,{dist}">
 <h2>Most extreme flagged entities</h2>
 {flagged_part}
 {neighbour_part}
-<p>The elements that entered and left a flagged entity's set are not shown: they need the per-period store.</p>
+{exact_part}
 </body></html>
 """
     path = Path(path)
