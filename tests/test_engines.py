@@ -125,3 +125,16 @@ def test_a_registered_engine_is_run_by_name_and_a_wrong_one_fails_the_whole_run_
             check_index({"verify": "rounding"}, tmp_path)
     finally:
         engines._ENGINES["verify"].pop("rounding")
+
+
+def test_an_engine_whose_library_is_missing_is_refused_with_the_package_to_install(tmp_path, monkeypatch):
+    # Oracle: the documented one-line message (exit code 2 through ParameterError).
+    (tmp_path / "ghost_engine.py").write_text("import lshjob_no_such_library\n\nclass Ghost:\n    name = 'ghost'\n")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    engines.register("join", "ghost", "ghost_engine:Ghost")
+    try:
+        with pytest.raises(ParameterError, match=r"^the ghost join engine needs lshjob_no_such_library, which is not "
+                           r"installed \(pip install 'lshjob\[ghost\]'\)$"):
+            engines.get_engine("join", "ghost")
+    finally:
+        engines._ENGINES["join"].pop("ghost")

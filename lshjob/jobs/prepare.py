@@ -105,7 +105,8 @@ def in_parts(source: EventSource, options: RunOptions, memory: int, work: Path, 
     report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
                           null_rows_dropped=source.report.null_rows_dropped)
     keys, rep_of, representatives = [], [], 0
-    bands = SignAndBand(params, plan, memory, stages, options.stage_engine("band"), spill=work / "keys") if banded else None
+    band_engine = options.stage_engine("band")
+    bands = SignAndBand(params, plan, memory, stages, band_engine, spill=work / "keys") if banded else None
     prints = []  # without bands: each representative's fingerprint, to find identical sets across parts
     with stages.progress.stage("parts", len(ranges)) as task:
         for selection in ranges:

@@ -177,8 +177,8 @@ def run_job(
                                 f"{options.max_bucket}, still over it once split) were not compared")
 
             with stages("verify"):
-                verified = options.stage_engine("verify").verify(candidates, built.store, options.threshold, built.params,
-                                                           _verify_settings(memory))
+                verified = options.stage_engine("verify").verify(candidates, built.store, options.threshold,
+                                                                 built.params, _verify_settings(memory))
             counts["verified_pairs"] = verified.height
         built.store = None  # the sets are not needed any more: publishing gets their memory
 

@@ -23,7 +23,7 @@ import polars as pl
 from lshjob.index.band.base import BandOutput, save_keys
 from lshjob.index.band.local import bucket_keys_by_position
 from lshjob.index.spark import _batches
-from lshjob.index.spark.session import quiet_pandas_warning, session
+from lshjob.index.spark.session import file_frame, quiet_pandas_warning, session
 
 BUCKET_ROW_DDL = "band int, bucket long, rep long"
 
@@ -69,7 +69,7 @@ def shared_bucket_rows(key_files: list[str], bands: int, out_dir: Path) -> list[
 
     quiet_pandas_warning()
     spark = session()
-    paths = spark.createDataFrame([(f,) for f in key_files], "path string").repartition(len(key_files))
+    paths = file_frame(spark, key_files)
     rows = paths.mapInArrow(partial(_batches.bucket_rows_of_key_files, bands), BUCKET_ROW_DDL)
     shared = (rows.withColumn("size", F.count("*").over(Window.partitionBy("band", "bucket")))
               .where(F.col("size") >= 2).select("band", "bucket", "rep"))

@@ -16,14 +16,13 @@ from __future__ import annotations
 
 import os
 import shutil
-from functools import partial
 from pathlib import Path
 
 from lshjob.core.atomic import staged_folder, temp_name
 from lshjob.index.join.base import SKEW_COLUMNS, JoinOutput, JoinSettings
 from lshjob.index.spark import _batches
 from lshjob.index.spark.band import BUCKET_ROW_DDL
-from lshjob.index.spark.session import quiet_pandas_warning, session
+from lshjob.index.spark.session import file_frame, quiet_pandas_warning, session
 
 
 class SparkJoin:
@@ -51,7 +50,7 @@ class SparkJoin:
         files = [str(Path(f).absolute()) for f in bucket_files]
         cap = settings.max_bucket
         if files:
-            paths = spark.createDataFrame([(f,) for f in files], "path string").repartition(len(files))
+            paths = file_frame(spark, files)
             rows = paths.mapInArrow(_batches.bucket_rows_of_files, BUCKET_ROW_DDL)
         else:
             rows = spark.createDataFrame([], BUCKET_ROW_DDL)
@@ -68,9 +67,10 @@ class SparkJoin:
             try:
                 total = bucket_rows if bucket_rows is not None else _file_rows(files)
                 skew = _skew(sized, split, cap, total)
-                usable = (sized.where(F.col("size") <= cap).select("band", "bucket", F.lit(0).cast("long").alias("sub"),
-                                                                   "rep")
-                          .unionByName(split.where(F.col("size").between(2, cap)).select("band", "bucket", "sub", "rep")))
+                zero = F.lit(0).cast("long").alias("sub")
+                whole = sized.where(F.col("size") <= cap).select("band", "bucket", zero, "rep")
+                parted = split.where(F.col("size").between(2, cap)).select("band", "bucket", "sub", "rep")
+                usable = whole.unionByName(parted)
                 a, b = usable.alias("a"), usable.alias("b")
                 pairs = (a.join(b, (F.col("a.band") == F.col("b.band")) & (F.col("a.bucket") == F.col("b.bucket"))
                                 & (F.col("a.sub") == F.col("b.sub")) & (F.col("a.rep") < F.col("b.rep")))

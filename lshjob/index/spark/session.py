@@ -8,6 +8,7 @@ when it starts under spark-submit); else ``local[*]``, all the cores of this mac
 
 from __future__ import annotations
 
+import atexit
 import os
 import shutil
 import sys
@@ -56,7 +57,13 @@ def session():
                                      f"{str(exc).splitlines()[0]}") from exc
             raise
     spark.sparkContext.setLogLevel("ERROR")
+    atexit.register(spark.stop)  # ours: stopped before the JVM goes, so executors end cleanly
     return spark
+
+
+def file_frame(spark, files: list[str]):
+    """A DataFrame of ``path``, one file a partition (so one task reads one file; no shuffle)."""
+    return spark.sparkContext.parallelize([(f,) for f in files], len(files)).toDF("path string")
 
 
 def versions() -> dict[str, str]:
