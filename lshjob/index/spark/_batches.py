@@ -20,6 +20,7 @@ import pyarrow.parquet as pq
 BUCKET_ROW_SCHEMA = pa.schema([("band", pa.int32()), ("bucket", pa.int64()), ("rep", pa.int64())])
 BUCKET_FILE_SCHEMA = pa.schema([("band", pa.int32()), ("bucket", pa.uint64()), ("rep", pa.int64())])
 READ_ROWS = 1 << 16  # rows a reading task holds at a time
+GROUP_ROWS = 1 << 20  # rows of a row group written (a later reading task's share)
 
 
 def _signed(column: pa.Array) -> np.ndarray:
@@ -27,16 +28,16 @@ def _signed(column: pa.Array) -> np.ndarray:
     return np.asarray(column.to_numpy(zero_copy_only=False)).view(np.int64)
 
 
-def _paths(batches: Iterator[pa.RecordBatch]) -> Iterator[str]:
+def _pieces(batches: Iterator[pa.RecordBatch]) -> Iterator[tuple[str, int]]:
     for batch in batches:
-        yield from batch.column("path").to_pylist()
+        yield from zip(batch.column("path").to_pylist(), batch.column("row_group").to_pylist())
 
 
 def bucket_rows_of_key_files(bands: int, batches: Iterator[pa.RecordBatch]) -> Iterator[pa.RecordBatch]:
-    """Files of a KEY_TABLE slice (``rep`` and one UInt64 column per band) -> every bucket
+    """Row groups of files of a KEY_TABLE slice (``rep`` and one UInt64 column per band) -> every bucket
     row (band, bucket as Int64 bits, rep)."""
-    for path in _paths(batches):
-        for batch in pq.ParquetFile(path).iter_batches(READ_ROWS, columns=["rep", *map(str, range(bands))]):
+    for path, group in _pieces(batches):
+        for batch in pq.ParquetFile(path).iter_batches(READ_ROWS, [group], ["rep", *map(str, range(bands))]):
             rep = batch.column("rep").to_numpy().astype(np.int64)
             for j in range(bands):
                 yield pa.RecordBatch.from_arrays(
@@ -45,9 +46,9 @@ def bucket_rows_of_key_files(bands: int, batches: Iterator[pa.RecordBatch]) -> I
 
 
 def bucket_rows_of_files(batches: Iterator[pa.RecordBatch]) -> Iterator[pa.RecordBatch]:
-    """BUCKET_ROWS files (bucket UInt64) -> their rows, bucket as Int64 bits."""
-    for path in _paths(batches):
-        for batch in pq.ParquetFile(path).iter_batches(READ_ROWS, columns=["band", "bucket", "rep"]):
+    """Row groups of BUCKET_ROWS files (bucket UInt64) -> their rows, bucket as Int64 bits."""
+    for path, group in _pieces(batches):
+        for batch in pq.ParquetFile(path).iter_batches(READ_ROWS, [group], ["band", "bucket", "rep"]):
             yield pa.RecordBatch.from_arrays(
                 [batch.column("band").cast(pa.int32()), pa.array(_signed(batch.column("bucket"))),
                  batch.column("rep").cast(pa.int64())], schema=BUCKET_ROW_SCHEMA)
@@ -62,18 +63,27 @@ def write_bucket_file(folder: str, batches: Iterator[pa.RecordBatch]) -> Iterato
     context = TaskContext.get()
     name = f"buckets-s{context.partitionId():05d}.parquet"
     tmp = os.path.join(folder, f".{name}.{context.attemptNumber()}.tmp")
-    writer, rows = None, 0
+    writer, rows, held = None, 0, []
+
+    def flush() -> None:
+        nonlocal writer
+        if writer is None:
+            writer = pq.ParquetWriter(tmp, BUCKET_FILE_SCHEMA, compression="lz4", write_statistics=False)
+        writer.write_table(pa.Table.from_batches(held, BUCKET_FILE_SCHEMA))  # one row group
+        held.clear()
+
     try:
         for batch in batches:
             if batch.num_rows == 0:
                 continue
             bucket = pa.array(_signed(batch.column("bucket")).view(np.uint64))
-            table = pa.Table.from_batches([pa.RecordBatch.from_arrays(
-                [batch.column("band"), bucket, batch.column("rep")], schema=BUCKET_FILE_SCHEMA)])
-            if writer is None:
-                writer = pq.ParquetWriter(tmp, BUCKET_FILE_SCHEMA, compression="lz4", write_statistics=False)
-            writer.write_table(table)
+            held.append(pa.RecordBatch.from_arrays([batch.column("band"), bucket, batch.column("rep")],
+                                                   schema=BUCKET_FILE_SCHEMA))
             rows += batch.num_rows
+            if sum(b.num_rows for b in held) >= GROUP_ROWS:
+                flush()
+        if held:
+            flush()
     finally:
         if writer is not None:
             writer.close()

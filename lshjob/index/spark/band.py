@@ -20,12 +20,13 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from lshjob.index.band.base import BandOutput, save_keys
+from lshjob.index.band.base import BandOutput
 from lshjob.index.band.local import bucket_keys_by_position
 from lshjob.index.spark import _batches
 from lshjob.index.spark.session import file_frame, quiet_pandas_warning, session
 
 BUCKET_ROW_DDL = "band int, bucket long, rep long"
+KEY_GROUP_ROWS = 1 << 16  # representatives a reading task turns into bucket rows
 
 
 class SparkBand:
@@ -52,7 +53,9 @@ class SparkBand:
         for n, piece in enumerate(slices):
             if isinstance(piece, pl.DataFrame):  # the executors read files: save the tables beside the output
                 (out_dir / "keys").mkdir(exist_ok=True)
-                piece = save_keys(piece, out_dir / "keys" / f"keys-{n:06d}.parquet")
+                piece = out_dir / "keys" / f"keys-{n:06d}.parquet"
+                slices[n].write_parquet(piece, compression="uncompressed", statistics=False,
+                                        row_group_size=KEY_GROUP_ROWS)
             files.append(str(Path(piece).absolute()))
         total = sum(_rows(f) for f in files) * bands
         written = shared_bucket_rows(files, bands, out_dir) if files else []

@@ -23,6 +23,7 @@ import pyarrow.parquet as pq
 
 from lshjob.core.atomic import temp_name
 from lshjob.core.hashing import xxh64_integers
+from lshjob.core.sets import gather_sets
 from lshjob.index.spark import _batches
 from lshjob.index.spark.session import quiet_pandas_warning, session
 from lshjob.index.verify.base import VERIFIED_SCHEMA, SetStore, VerifySettings, empty_verified
@@ -51,10 +52,13 @@ class SparkVerify:
             return empty_verified()
         quiet_pandas_warning()
         spark = session()
+        wanted = candidate_ids(candidates)
+        if len(wanted) == 0:
+            return empty_verified()
         work = temp_name(candidates.parent / f"{candidates.name}-spark-verify")
         work.mkdir()
         try:
-            save_sets(sets, params is not None, work / "sets")
+            save_sets(sets, params is not None, work / "sets", wanted)
             cands = spark.read.parquet(str(candidates.absolute())).select("left_rep", "right_rep", "bands_shared")
             held = spark.read.parquet(str((work / "sets").absolute()))
             columns = ["elements", "hashes"] if params is not None else ["elements"]
@@ -71,18 +75,31 @@ class SparkVerify:
             shutil.rmtree(work, ignore_errors=True)
 
 
-def save_sets(store: SetStore, with_hashes: bool, folder: Path) -> None:
-    """The sets of every part as Parquet (``id``, ``elements`` and, ``with_hashes``, the
-    elements' XXH64 as Int64 bits), one file a part, lists over the CSR arrays without a copy."""
+def candidate_ids(candidates: Path) -> np.ndarray:
+    """The entity ids in a candidate, sorted, each once (8 bytes an id: less than the sets the
+    driver holds), read from the candidates' files."""
+    files = [str(candidates)] if candidates.is_file() else sorted(str(p) for p in candidates.rglob("*.parquet"))
+    frame = pl.scan_parquet(files, hive_partitioning=False)
+    ids = pl.concat([frame.select(id=pl.col("left_rep")), frame.select(id=pl.col("right_rep"))]).unique()
+    return np.sort(ids.collect().get_column("id").to_numpy())
+
+
+def save_sets(store: SetStore, with_hashes: bool, folder: Path, wanted: np.ndarray) -> None:
+    """The sets of the ``wanted`` entity ids (sorted) as Parquet (``id``, ``elements`` and,
+    ``with_hashes``, the elements' XXH64 as Int64 bits), one file a part; the sets of no
+    candidate are not shipped to the executors."""
     folder.mkdir(parents=True)
-    for i, (first, _) in enumerate(store.ranges):
+    for i, (first, last) in enumerate(store.ranges):
+        ids = wanted[np.searchsorted(wanted, first):np.searchsorted(wanted, last, side="right")]
+        if len(ids) == 0:
+            continue
         sets = store.load(i)
-        offsets = pa.array(np.asarray(sets.offsets, dtype=np.int64))
-        columns = {"id": pa.array(np.arange(first, first + sets.size, dtype=np.int64)),
-                   "elements": pa.LargeListArray.from_arrays(offsets, pa.array(sets.elements))}
+        offsets, elements = gather_sets(sets.offsets, sets.elements, np.ascontiguousarray(ids - first))
+        offsets = pa.array(np.asarray(offsets, dtype=np.int64))
+        columns = {"id": pa.array(ids.astype(np.int64)),
+                   "elements": pa.LargeListArray.from_arrays(offsets, pa.array(elements))}
         if with_hashes:
-            hashes = (sets.text_hashes[sets.elements] if sets.text_hashes is not None
-                      else xxh64_integers(sets.elements))
+            hashes = sets.text_hashes[elements] if sets.text_hashes is not None else xxh64_integers(elements)
             columns["hashes"] = pa.LargeListArray.from_arrays(offsets, pa.array(hashes.view(np.int64)))
         pq.write_table(pa.table(columns), folder / f"part-{i:05d}.parquet", compression="lz4")
         del sets
