@@ -33,18 +33,6 @@ def _pieces(batches: Iterator[pa.RecordBatch]) -> Iterator[tuple[str, int]]:
         yield from zip(batch.column("path").to_pylist(), batch.column("row_group").to_pylist())
 
 
-def bucket_rows_of_key_files(bands: int, batches: Iterator[pa.RecordBatch]) -> Iterator[pa.RecordBatch]:
-    """Row groups of files of a KEY_TABLE slice (``rep`` and one UInt64 column per band) -> every bucket
-    row (band, bucket as Int64 bits, rep)."""
-    for path, group in _pieces(batches):
-        for batch in pq.ParquetFile(path).iter_batches(READ_ROWS, [group], ["rep", *map(str, range(bands))]):
-            rep = batch.column("rep").to_numpy().astype(np.int64)
-            for j in range(bands):
-                yield pa.RecordBatch.from_arrays(
-                    [pa.array(np.full(len(rep), j, dtype=np.int32)), pa.array(_signed(batch.column(str(j)))),
-                     pa.array(rep)], schema=BUCKET_ROW_SCHEMA)
-
-
 def bucket_rows_of_files(batches: Iterator[pa.RecordBatch]) -> Iterator[pa.RecordBatch]:
     """Row groups of BUCKET_ROWS files (bucket UInt64) -> their rows, bucket as Int64 bits."""
     for path, group in _pieces(batches):
