@@ -93,7 +93,7 @@ def _skew(sized, split, cap: int, bucket_rows: int) -> dict:
     within = F.col("size").between(2, cap)
     over = F.col("size") > cap
     sizes = sized.groupBy("band", "bucket").agg(F.first("size").alias("size"))
-    row = sizes.agg(
+    buckets = sizes.agg(
         F.count("*").alias("shared"),
         F.coalesce(F.sum("size"), F.lit(0)).alias("shared_rows"),
         F.count(F.when(over, 1)).alias("oversize_buckets"),
@@ -101,11 +101,12 @@ def _skew(sized, split, cap: int, bucket_rows: int) -> dict:
         F.coalesce(F.sum(F.when(over, pairs)), F.lit(0)).alias("oversize_pairs"),
         F.coalesce(F.sum(F.when(within, pairs)), F.lit(0)).alias("bucket_pairs"),
         F.coalesce(F.max("size"), F.lit(0)).alias("largest_bucket"),
-    ).collect()[0]
-    subs = split.groupBy("band", "bucket", "sub").agg(F.first("size").alias("size")).agg(
+    )
+    sub_buckets = split.groupBy("band", "bucket", "sub").agg(F.first("size").alias("size")).agg(
         F.coalesce(F.sum(F.when(within, pairs)), F.lit(0)).alias("split_pairs"),
         F.count(F.when(over, 1)).alias("oversize_sub_buckets"),
-    ).collect()[0]
+    )
+    row = subs = buckets.crossJoin(sub_buckets).collect()[0]  # two one-row tables, one job
     report = {
         "buckets": bucket_rows - int(row["shared_rows"]) + int(row["shared"]),
         "buckets_with_pairs": int(row["shared"]),
