@@ -18,6 +18,7 @@ import pytest
 from typer.testing import CliRunner
 
 from lshjob.cli.app import app
+from lshjob.report.text import run_report
 
 DEMO = ["--entity", "patron", "--element", "title", "--threshold", "0.5", "--top-k", "10"]
 
@@ -66,6 +67,7 @@ def test_a_run_on_spark_publishes_the_local_engines_rows(scheme, loans, demo_eve
     assert manifest["options"]["engine"] == "spark"
     assert manifest["versions"]["spark"] == pyspark.__version__
     assert manifest["versions"]["spark_master"] == spark_session.sparkContext.master == "local[2]"
+    assert f"on Spark {pyspark.__version__} (local[2]): band, join, verify" in run_report(manifest).splitlines()
 
 
 def test_spark_options_are_refused_with_one_line(loans, spark_session, tmp_path):
