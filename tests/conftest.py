@@ -44,3 +44,32 @@ def compiled_kernels():
     done = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "compile-kernels", "--quiet"],
                           capture_output=True, text=True, timeout=900)
     assert done.returncode == 0, done.stderr
+
+
+@pytest.fixture(scope="session")
+def spark_session():
+    """One Spark session on ``local[2]`` for every Spark test (a JVM start costs 10-20 s), with
+    few shuffle partitions (the tests' data are small); skips, saying why, without pyspark or Java."""
+    import os
+    import shutil
+    import warnings
+
+    try:
+        from pyspark.sql import SparkSession
+    except ImportError:
+        pytest.skip("pyspark is not installed (pip install 'lshjob[spark]')")
+    if shutil.which("java") is None and not os.environ.get("JAVA_HOME"):
+        pytest.skip("Java is not installed (java not on PATH, JAVA_HOME not set): the Spark engines need Java 17")
+    os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
+    builder = (SparkSession.builder.master("local[2]").appName("lshjob-tests")
+               .config("spark.sql.shuffle.partitions", "2").config("spark.default.parallelism", "2")
+               .config("spark.ui.enabled", "false").config("spark.ui.showConsoleProgress", "false"))
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", FutureWarning)
+            spark = builder.getOrCreate()
+    except Exception as exc:  # noqa: BLE001  (a JVM that does not start is a reason to skip, named)
+        pytest.skip(f"Spark did not start on local[2]: {str(exc).splitlines()[0]}")
+    spark.sparkContext.setLogLevel("ERROR")
+    yield spark
+    spark.stop()

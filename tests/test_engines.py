@@ -21,37 +21,48 @@ CHECKS = {"band": conformance.check_band, "join": conformance.check_join, "verif
 INTERFACES = {"band": BandEngine, "join": JoinEngine, "verify": VerifyEngine}
 
 
+def _started(names, request) -> None:
+    """The Spark engines run on the tests' one local Spark session (skipped, saying why,
+    without Java or pyspark)."""
+    if "spark" in names:
+        request.getfixturevalue("spark_session")
+
+
 @pytest.mark.parametrize("stage,name", [(s, n) for s in engines.STAGES for n in engines.names(s)])
-def test_every_engine_keeps_its_stage_contract(stage, name, tmp_path):
+def test_every_engine_keeps_its_stage_contract(stage, name, tmp_path, request):
     # Oracles (in the checks): bucket keys in Python integers from the documented definition
     # grouped by polars; pairs per bucket by itertools with the oversize split; Jaccard by
     # Python sets.
+    _started([name], request)
     engine = engines.get_engine(stage, name)
     assert isinstance(engine, INTERFACES[stage]) and engine.name == name
     CHECKS[stage](engine, tmp_path)
 
 
 def _choices():
-    """The default engines, and each other registered engine with the defaults beside it."""
-    return [{}] + [{s: n} for s in engines.STAGES for n in engines.names(s) if n != engines.DEFAULT_ENGINES[s]]
+    """The default engines, and each other engine name on every stage that registers it (the
+    defaults on the others), as ``--engine NAME`` chooses them."""
+    others = sorted({n for s in engines.STAGES for n in engines.names(s) if n != engines.DEFAULT_ENGINES[s]})
+    return [{}] + [{s: n for s in engines.STAGES if n in engines.names(s)} for n in others]
 
 
 @pytest.mark.parametrize("chosen", _choices(), ids=lambda c: ",".join(f"{s}={n}" for s, n in c.items()) or "defaults")
-def test_a_whole_run_with_the_engines_publishes_the_default_neighbours(chosen, tmp_path):
+def test_a_whole_run_with_the_engines_publishes_the_default_neighbours(chosen, tmp_path, request):
     # Oracle: the default engines' index in one part; the chosen ones run in one part and in
     # three key ranges (for the defaults: one part against three ranges).
+    _started(chosen.values(), request)
     check_index(chosen, tmp_path)
 
 
 def test_an_unknown_engine_is_refused_with_the_valid_names(tmp_path):
-    with pytest.raises(ParameterError, match=r"^join engine must be one of: duckdb; got 'spark'$"):
-        engines.get_engine("join", "spark")
+    with pytest.raises(ParameterError, match=r"^join engine must be one of: duckdb, spark; got 'gpu'$"):
+        engines.get_engine("join", "gpu")
     with pytest.raises(ParameterError, match=r"^engine stage must be one of: band, join, verify; got 'publish'$"):
         engines.names("publish")
-    with pytest.raises(ParameterError, match=r"^verify engine must be one of: local; got 'gpu'$"):
+    with pytest.raises(ParameterError, match=r"^verify engine must be one of: local, spark; got 'gpu'$"):
         RunOptions(threshold=0.5, engines={"verify": "gpu"}).validate()
     with pytest.raises(ParameterError, match="engine target must be 'module:Class'"):
-        engines.register("join", "spark", "lshjob_spark.join")
+        engines.register("join", "cluster", "lshjob_cluster.join")
 
 
 def test_an_engine_module_is_imported_only_when_chosen():
@@ -108,9 +119,22 @@ def test_a_broken_engine_fails_the_check_of_its_rule(stage, engine, rule, tmp_pa
 def test_a_registered_engine_is_run_by_name_and_a_wrong_one_fails_the_whole_run_check(tmp_path):
     engines.register("verify", "rounding", "test_engines:RoundingVerify")
     try:
-        assert engines.names("verify") == ["local", "rounding"]
+        assert engines.names("verify") == ["local", "rounding", "spark"]
         assert isinstance(engines.get_engine("verify", "rounding"), RoundingVerify)
         with pytest.raises(AssertionError, match="engines {'verify': 'rounding'} in 1 part"):
             check_index({"verify": "rounding"}, tmp_path)
     finally:
         engines._ENGINES["verify"].pop("rounding")
+
+
+def test_an_engine_whose_library_is_missing_is_refused_with_the_package_to_install(tmp_path, monkeypatch):
+    # Oracle: the documented one-line message (exit code 2 through ParameterError).
+    (tmp_path / "ghost_engine.py").write_text("import lshjob_no_such_library\n\nclass Ghost:\n    name = 'ghost'\n")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    engines.register("join", "ghost", "ghost_engine:Ghost")
+    try:
+        with pytest.raises(ParameterError, match=r"^the ghost join engine needs lshjob_no_such_library, which is not "
+                           r"installed \(pip install 'lshjob\[ghost\]'\)$"):
+            engines.get_engine("join", "ghost")
+    finally:
+        engines._ENGINES["join"].pop("ghost")

@@ -32,7 +32,7 @@ def shown_default(param) -> str | None:
 
 def test_cli_options_dataclass_fields_and_config_keys_are_the_same_names():
     # Oracle: the dataclasses' own fields (RunOptions, EventSpec) and typer's parameters.
-    # ``engines`` is chosen from the Python API only until a second engine brings its option.
+    # ``engines`` (stage by stage) is chosen from the Python API only; ``--engine`` chooses one for all.
     api = {f.name for f in fields(RunOptions)} - {"engines"} | set(SPEC_FIELDS) | {"events", "entity", "element", "out"}
     assert set(cli_options()) == api == set(config_keys())
 

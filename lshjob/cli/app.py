@@ -225,6 +225,10 @@ def run(
 
     Example (sets larger than memory): lshjob run loans/ --entity patron --element title
     --threshold 0.5 --memory 4GB --out index
+
+    Example (band, join and verify on Spark): lshjob run loans/ --entity patron --element title
+    --threshold 0.5 --out /shared/index --scratch /shared/tmp --engine spark
+    --spark-master spark://master.example:7077
     """
     settings = merge_settings(run_defaults(), load_run_config(config) if config else {}, flags)
     missing = [name for name in required_options() if settings.get(name) is None]

@@ -18,10 +18,23 @@ STAGES = ("band", "join", "verify")
 DEFAULT_ENGINES = {"band": "local", "join": "duckdb", "verify": "local"}
 
 _ENGINES: dict[str, dict[str, str]] = {
-    "band": {"local": "lshjob.index.band.local:LocalBand"},
-    "join": {"duckdb": "lshjob.index.join.duckdb:DuckDBJoin"},
-    "verify": {"local": "lshjob.index.verify.local:LocalVerify"},
+    "band": {"local": "lshjob.index.band.local:LocalBand", "spark": "lshjob.index.spark.band:SparkBand"},
+    "join": {"duckdb": "lshjob.index.join.duckdb:DuckDBJoin", "spark": "lshjob.index.spark.join:SparkJoin"},
+    "verify": {"local": "lshjob.index.verify.local:LocalVerify", "spark": "lshjob.index.spark.verify:SparkVerify"},
 }
+
+# Settings an engine reads when it starts (``spark_master``: where the Spark engines run);
+# set by :func:`configure` from the run's options.
+SETTINGS: dict[str, object] = {}
+
+
+def configure(**settings) -> None:
+    """Set the engines' settings (None leaves a setting unset)."""
+    for key, value in settings.items():
+        if value is None:
+            SETTINGS.pop(key, None)
+        else:
+            SETTINGS[key] = value
 
 
 def names(stage: str) -> list[str]:
@@ -49,7 +62,34 @@ def get_engine(stage: str, name: str):
     """An instance of the ``name`` engine of ``stage`` (its module imported now)."""
     check(stage, name)
     module, _, attribute = _ENGINES[stage][name].partition(":")
-    return getattr(import_module(module), attribute)()
+    try:
+        loaded = import_module(module)
+    except ModuleNotFoundError as exc:  # an optional engine's library is not installed
+        if exc.name is None or exc.name.split(".")[0] == "lshjob":
+            raise
+        raise ParameterError(f"the {name} {stage} engine needs {exc.name}, which is not installed "
+                             f"(pip install 'lshjob[{name}]')") from exc
+    return getattr(loaded, attribute)()
+
+
+def library_versions(chosen: dict[str, str]) -> dict[str, str]:
+    """What the chosen engines report of their libraries (e.g. the Spark version and master),
+    for the manifest; engines without ``library_versions`` report nothing."""
+    found: dict[str, str] = {}
+    for stage, name in chosen.items():
+        report = getattr(get_engine(stage, name), "library_versions", None)
+        if report is not None:
+            found.update(report())
+    return found
+
+
+def prepare(chosen: dict[str, str]) -> None:
+    """Start what the chosen engines need (their library imported, a Spark session), so a
+    missing library or a cluster that does not answer stops the run before any work."""
+    for stage, name in chosen.items():
+        start = getattr(get_engine(stage, name), "prepare", None)
+        if start is not None:
+            start()
 
 
 def check_all(engines: dict[str, str]) -> None:

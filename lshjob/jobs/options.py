@@ -27,6 +27,8 @@ MAX_TOP_K = 2**31 - 1  # ranks are 32-bit
 
 REQUIRED = type("Required", (), {"__repr__": lambda self: "REQUIRED"})()  # an option with no default
 
+ENGINE_CHOICES = ("local", "spark")  # --engine: every engine-dependent stage on this engine
+
 INPUT, SPEC, OPTIONS = "input", "spec", "options"  # where a value goes: the job's paths, EventSpec, RunOptions
 
 
@@ -159,6 +161,10 @@ RUN_TABLE: tuple[Option, ...] = (  # in the order of lshjob run --help
            low=0, unit="seconds"),
     Option("scratch", str, None, "Folder for the work files (DuckDB spill, parts), e.g. on another disk.",
            default_text="inside --out"),
+    Option("engine", str, "local", "Where band, join and verify run: local (this process) or spark.",
+           choices=ENGINE_CHOICES),
+    Option("spark_master", str, None, "Spark master URL for --engine spark, e.g. spark://host:7077, yarn, "
+           "local[4].", default_text="spark-submit's master, else local[*]"),
 )
 RUN = {o.name: o for o in RUN_TABLE}
 
@@ -201,8 +207,10 @@ class RunOptions:
     parts: int | None = default_of("parts")  # key ranges held one at a time; None: as the memory budget needs
     wait: float = default_of("wait")  # seconds to wait for another run's lock on the output folder
     scratch: str | None = default_of("scratch")  # folder for the work folder (spill, parts); None: inside the output
-    # engine of each of the band, join and verify stages, by name (lshjob.index.engines); the
-    # Python API chooses them, the command line not yet (the Spark engine brings the option)
+    engine: str = default_of("engine")  # "spark": band, join and verify on Spark (overrides ``engines``)
+    spark_master: str | None = default_of("spark_master")  # None: spark-submit's master, else local[*]
+    # engine of each of the band, join and verify stages, by name (lshjob.index.engines), one
+    # by one from the Python API; ``engine`` chooses one name for all three
     engines: dict[str, str] = field(default_factory=lambda: dict(stage_engines.DEFAULT_ENGINES))
 
     def validate(self) -> None:
@@ -211,6 +219,8 @@ class RunOptions:
             if f.name in RUN:
                 RUN[f.name].check(getattr(self, f.name))
         stage_engines.check_all(self.engines)
+        if self.spark_master is not None and "spark" not in self.engine_names().values():
+            raise ParameterError("--spark-master goes with --engine spark")
         if (self.bands is None) != (self.rows is None):
             raise ParameterError("--bands and --rows go together; give both or neither")
         if self.bands is not None:
@@ -219,10 +229,13 @@ class RunOptions:
             parse_size(self.memory)
 
     def engine_names(self) -> dict[str, str]:
-        """The engine of every stage (the default where the mapping leaves a stage out)."""
+        """The engine of every stage: ``engine`` on all of them when it is not local, else
+        ``engines`` (the default where the mapping leaves a stage out)."""
+        if self.engine != "local":
+            return {stage: self.engine for stage in stage_engines.STAGES}
         return {**stage_engines.DEFAULT_ENGINES, **self.engines}
 
-    def engine(self, stage: str):
+    def stage_engine(self, stage: str):
         """The engine chosen for ``stage``, its module imported now."""
         return stage_engines.get_engine(stage, self.engine_names()[stage])
 

@@ -72,7 +72,7 @@ def in_one_part(source: EventSource, options: RunOptions, memory: int, work: Pat
         # (an eighth of the budget each); else they go to the work folder, as in parts.
         release_freed()
         spill = None if Budget(memory).keys_stay_held(current_bytes(), len(reps), plan.bands) else work / "keys"
-        bands = SignAndBand(built.params, plan, memory, stages, options.engine("band"), spill=spill)
+        bands = SignAndBand(built.params, plan, memory, stages, options.stage_engine("band"), spill=spill)
         with stages.progress.stage("sign and band", len(reps)) as task:
             bands.add(sets, reps, 0, task)
         built.bucket_files, built.shared_rows = bands.write(work / "buckets")
@@ -105,7 +105,8 @@ def in_parts(source: EventSource, options: RunOptions, memory: int, work: Path, 
     report = IngestReport(files=source.report.files, rows_read=source.report.rows_read,
                           null_rows_dropped=source.report.null_rows_dropped)
     keys, rep_of, representatives = [], [], 0
-    bands = SignAndBand(params, plan, memory, stages, options.engine("band"), spill=work / "keys") if banded else None
+    band_engine = options.stage_engine("band")
+    bands = SignAndBand(params, plan, memory, stages, band_engine, spill=work / "keys") if banded else None
     prints = []  # without bands: each representative's fingerprint, to find identical sets across parts
     with stages.progress.stage("parts", len(ranges)) as task:
         for selection in ranges:

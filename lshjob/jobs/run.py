@@ -24,6 +24,7 @@ from pathlib import Path
 from lshjob.contracts.manifest import Manifest
 from lshjob.core.digest import digest_in_background
 from lshjob.errors import ParameterError
+from lshjob.index import engines as stage_engines
 from lshjob.index import publish
 from lshjob.index.join import JoinSettings, duckdb_limit, duckdb_need, join_threads, require_duckdb_memory
 from lshjob.index.verify import VerifySettings, empty_verified
@@ -108,6 +109,7 @@ def run_job(
     (the same record as ``out/manifest.json``). ``command``: the command line, when run
     from one."""
     options.validate()
+    stage_engines.configure(spark_master=options.spark_master)
     if spec.segment is not None or spec.period is not None:
         raise ParameterError("lshjob run signs one set per entity; sign segments or periods with lshjob sign")
     out = output_folder(out, [events], "run")  # before anything is read or made
@@ -122,6 +124,7 @@ def run_job(
     run_id = provenance.new_run_id(started_at)
     try:
         warnings = lock.notes + remove_leftovers(out, options.scratch)  # holding the lock: all are dead runs'
+        stage_engines.prepare(options.engine_names())  # a missing library or a silent cluster stops it here
         # started first: reading and hashing the files (no GIL) fills the other core while the
         # process's first compiled call loads numba's registries (GIL-bound) during the checks
         digest = digest_in_background([str(p) for p in resolve_paths(events)[0]])
@@ -143,7 +146,7 @@ def run_job(
             skew = None
             counts.update(bucket_rows=0, candidate_pairs=built.identical_pairs)
             with stages("verify"):
-                verified = (options.engine("verify").verify(built.candidates, built.store, 1.0, None,
+                verified = (options.stage_engine("verify").verify(built.candidates, built.store, 1.0, None,
                                                             _verify_settings(memory))
                             if built.candidates is not None else empty_verified())
             counts["verified_pairs"] = verified.height
@@ -164,7 +167,7 @@ def run_job(
                 settings = JoinSettings(memory_limit=f"{limit // 2**20}MiB", temp_directory=str(work / "spill"),
                                         threads=threads, max_bucket=options.max_bucket)
                 candidates = work / ("candidates" if in_parts else "candidates.parquet")
-                joined = options.engine("join").candidates(
+                joined = options.stage_engine("join").candidates(
                     built.bucket_files, plan.bands, candidates, settings, built.bucket_rows,
                     ranges=built.store.ranges if in_parts else None)
             skew = joined.skew
@@ -174,8 +177,8 @@ def run_job(
                                 f"{options.max_bucket}, still over it once split) were not compared")
 
             with stages("verify"):
-                verified = options.engine("verify").verify(candidates, built.store, options.threshold, built.params,
-                                                           _verify_settings(memory))
+                verified = options.stage_engine("verify").verify(candidates, built.store, options.threshold,
+                                                                 built.params, _verify_settings(memory))
             counts["verified_pairs"] = verified.height
         built.store = None  # the sets are not needed any more: publishing gets their memory
 
@@ -213,7 +216,7 @@ def run_job(
             counts=counts,
             skew=skew,
             peak_memory_bytes=stages.peak,
-            versions=provenance.versions(),
+            versions={**provenance.versions(), **stage_engines.library_versions(options.engine_names())},
             output=facts,
             out=str(out.absolute()),
             warnings=warnings,

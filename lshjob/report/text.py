@@ -84,6 +84,10 @@ def run_report(m: dict) -> str:
         f"bucket rows {c['bucket_rows']:,} -> candidates {c['candidate_pairs']:,} -> verified "
         f"{c['verified_pairs']:,} -> published {c['published_rows']:,}"
     )
+    versions = m.get("versions") or {}
+    if "spark" in versions:  # band, join or verify ran on Spark
+        on_spark = ", ".join(s for s, name in (m.get("engines") or {}).items() if name == "spark")
+        lines.append(f"on Spark {versions['spark']} ({versions.get('spark_master')}): {on_spark}")
     skew = m.get("skew")
     if skew:
         text = f"skew: largest bucket {skew['largest_bucket']:,}"

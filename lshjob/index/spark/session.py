@@ -1,0 +1,82 @@
+"""The Spark session the Spark engines share, and where its master comes from.
+
+The master is, in this order: ``--spark-master`` (:data:`lshjob.index.engines.SETTINGS`,
+key ``spark_master``); the session already running in the process (a notebook, a test);
+what ``spark-submit`` was given (``--master`` and its configuration, which pyspark reads
+when it starts under spark-submit); else ``local[*]``, all the cores of this machine.
+"""
+
+from __future__ import annotations
+
+import atexit
+import os
+import shutil
+import sys
+import warnings
+
+from lshjob.errors import ParameterError
+from lshjob.index import engines
+
+LOCAL = "local[*]"
+
+
+def _spark_sql():
+    try:
+        import pyspark.sql as spark_sql
+    except ModuleNotFoundError as exc:
+        raise ParameterError("the spark engine needs pyspark: pip install 'lshjob[spark]'") from exc
+    return spark_sql
+
+
+def session():
+    """The process's Spark session: the running one, else a new one on the chosen master."""
+    spark_sql = _spark_sql()
+    master = engines.SETTINGS.get("spark_master")
+    active = spark_sql.SparkSession.getActiveSession()
+    if active is not None:
+        running = active.sparkContext.master
+        if master and master != running:
+            raise ParameterError(f"--spark-master {master!r}: this process already runs Spark on {running!r}")
+        return active
+    if shutil.which("java") is None and not os.environ.get("JAVA_HOME"):
+        raise ParameterError("the spark engine needs Java 17 or later: java is not on PATH and JAVA_HOME is not set")
+    submitted = "PYSPARK_GATEWAY_PORT" in os.environ  # started by spark-submit: its master and configuration
+    chosen = master or (None if submitted else LOCAL)
+    if chosen is not None and chosen.startswith("local") and "PYSPARK_PYTHON" not in os.environ:
+        os.environ["PYSPARK_PYTHON"] = sys.executable  # workers on this machine run this interpreter
+    builder = spark_sql.SparkSession.builder.appName("lshjob").config("spark.ui.showConsoleProgress", "false")
+    if chosen is not None:
+        builder = builder.master(chosen)
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=".*pandas", category=FutureWarning)
+        try:
+            spark = builder.getOrCreate()
+        except Exception as exc:  # the JVM did not start: one line, not the gateway's traceback
+            if type(exc).__name__ in ("PySparkRuntimeError", "Py4JError", "Py4JJavaError"):
+                raise ParameterError(f"Spark did not start on {chosen or 'the spark-submit master'}: "
+                                     f"{str(exc).splitlines()[0]}") from exc
+            raise
+    spark.sparkContext.setLogLevel("ERROR")
+    atexit.register(spark.stop)  # ours: stopped before the JVM goes, so executors end cleanly
+    return spark
+
+
+def file_frame(spark, files: list[str]):
+    """A DataFrame of ``path`` and ``row_group``, one row group of the Parquet ``files`` a
+    partition (so one task reads one row group; no shuffle). Only the footers are read here."""
+    import pyarrow.parquet as pq
+
+    pieces = [(f, g) for f in files for g in range(pq.ParquetFile(f).metadata.num_row_groups)]
+    return spark.sparkContext.parallelize(pieces, max(1, len(pieces))).toDF("path string, row_group int")
+
+
+def versions() -> dict[str, str]:
+    """The Spark version and master of the session, for the manifest."""
+    spark = session()
+    return {"spark": spark.version, "spark_master": spark.sparkContext.master}
+
+
+def quiet_pandas_warning() -> None:
+    """pyspark 4 warns on every Arrow call that pandas 3 is not fully supported; the engines
+    hand Arrow batches only, never pandas."""
+    warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas", category=FutureWarning)
