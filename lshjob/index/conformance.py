@@ -14,6 +14,7 @@ from __future__ import annotations
 import tempfile
 from collections import Counter
 from contextlib import contextmanager
+from dataclasses import replace
 from itertools import combinations, pairwise
 from pathlib import Path
 
@@ -218,11 +219,12 @@ def _check_join_case(engine, tmp: Path, name: str, every: pl.DataFrame, shared: 
         check_contract(table, f"candidates ({how})", CANDIDATES_SCHEMA,
                        [("left_rep < right_rep", pl.col("left_rep") < pl.col("right_rep")),
                         ("bands_shared >= 1", pl.col("bands_shared") >= 1)])
-        got = {(a, b): s for a, b, s in table.iter_rows()}
-        _expect(len(got) == table.height, f"candidates ({how}): one row per unordered pair")
+        got: dict[tuple[int, int], int] = {}
+        for a, b, s in table.iter_rows():  # a pair may take a row per band: its rows' sum
+            got[(a, b)] = got.get((a, b), 0) + s
         _expect(got == pairs, f"candidates ({how}): the pairs of buckets within the cap and of sub-buckets of "
                 "oversize ones, counted per pair", f"{len(got)} pairs, expected {len(pairs)}")
-        _expect(out.pairs == len(pairs), f"candidates ({how}): pairs counts the rows", str(out.pairs))
+        _expect(out.pairs == table.height, f"candidates ({how}): pairs counts the rows", str(out.pairs))
         report = {k: int(out.skew[k]) for k in (*SKEW_COLUMNS, "max_bucket") if k in out.skew}
         _expect(report == skew, f"skew ({how}): the counts of buckets, oversize buckets and their split",
                 f"{report} against {skew}")
@@ -245,6 +247,9 @@ def check_join(engine, folder: Path | None = None) -> None:
         oversize = every.group_by("band", "bucket").len().filter(pl.col("len") > 8).height
         _expect(oversize > 0, "check_join's input has oversize buckets")
         _check_join_case(engine, tmp, "skewed", every, shared, 4, settings, ranges)
+        # a large join whose pairs rarely repeat: the engine may write a row per band
+        rows_per_band = replace(settings, dedupe_up_to=0, max_repeat=4.0)
+        _check_join_case(engine, tmp, "rows-per-band", every, shared, 4, rows_per_band, ranges)
         alone = pl.DataFrame({"band": [0, 0, 1, 1], "bucket": [1, 2, 3, 4], "rep": [11, 13, 11, 13]},
                              schema=BUCKET_ROWS_SCHEMA)
         _check_join_case(engine, tmp, "no-shared-bucket", alone, alone.clear(), 2, settings, [(0, 12), (13, 20)])
@@ -322,8 +327,17 @@ def check_verify(engine, folder: Path | None = None) -> None:
         pairs.write_parquet(whole)
         one = HeldRanges(sets, [])
         three = HeldRanges(sets, [90, 91])
+        # a row per band the pair met in (a join that leaves deduplication to verification),
+        # shuffled so a pair's rows fall in different slices
+        per_band = (pairs.with_columns(pl.int_ranges(0, "bands_shared").alias("row")).explode("row")
+                    .with_columns(bands_shared=pl.lit(1, dtype=pl.Int32)).drop("row")
+                    .sample(fraction=1.0, shuffle=True, seed=5))
+        _expect(per_band.height > pairs.height, "check_verify's candidates have pairs met in several bands")
         cases = (("one range", whole, one, VerifySettings(slice_rows=1 << 20)),
                  ("three ranges, small slices", _write_blocks(pairs, three.ranges, tmp / "blocks"), three,
+                  VerifySettings(slice_rows=97, estimate_bytes=1)),
+                 ("a row per band, three ranges, small slices",
+                  _write_blocks(per_band, three.ranges, tmp / "per-band"), three,
                   VerifySettings(slice_rows=97, estimate_bytes=1)))
         results = {}
         for how, candidates, store, settings in cases:

@@ -7,7 +7,9 @@ cap are left out and counted.
 
 Output, CANDIDATES: Parquet with ``left_rep`` < ``right_rep`` (Int64 entity ids of
 representatives), ``bands_shared`` Int32 >= 1 (the buckets within the cap, or sub-buckets of
-oversize ones, the pair met in), one row per unordered pair, in no particular order. Given
+oversize ones, the pair met in), in no particular order: one row per unordered pair, or, when
+the engine leaves deduplication to verification, a row per band the pair met in (a pair's
+``bands_shared`` is then the sum of its rows'; verification sums them). Given
 the entity id ranges of a run's parts (consecutive, :mod:`lshjob.jobs.parts`), a folder
 instead: the same rows split by the parts of their two sides,
 ``left_part=i/right_part=j/*.parquet`` (``i <= j``). With the pairs, the skew report: the
@@ -39,12 +41,17 @@ class JoinSettings:
     temp_directory: str | None = None  # where it spills
     threads: int | None = None
     max_bucket: int = DEFAULT_MAX_BUCKET
+    # Over this many pair rows (pairs counted once per band), an engine may write a row per
+    # band instead of one per pair when pairs repeat at most ``max_repeat`` times on average:
+    # verifying a repeat costs less than deduplicating tens of millions of pairs.
+    dedupe_up_to: int = 4_000_000
+    max_repeat: float = 1.5
 
 
 @dataclass(frozen=True)
 class JoinOutput:
     candidates: Path  # CANDIDATES file, or folder split by ranges
-    pairs: int
+    pairs: int  # rows written (a pair written a row per band counts once per band)
     skew: dict  # SKEW_COLUMNS and max_bucket, integers
 
 

@@ -4,7 +4,11 @@
 The SQL lives in ``sql/sized_bucket_rows.sql`` (reads the bucket files once, with each
 bucket's size), ``sql/split_oversize.sql`` (splits buckets over the cap by the next band's
 bucket), ``sql/bucket_skew.sql``, ``sql/candidates.sql`` and, for a run in parts,
-``sql/candidate_blocks.sql``. DuckDB runs with a memory limit and a spill directory, so a
+``sql/candidate_blocks.sql``. Large joins whose pairs rarely repeat across bands
+(``sql/pair_repeats.sql`` measures it on a sample) write ``sql/candidate_rows.sql`` instead of
+``sql/candidates.sql``: a row per band a pair met in, without the GROUP BY, which cost about
+seven times the join on long-tailed data; verification deduplicates the pairs it keeps.
+DuckDB runs with a memory limit and a spill directory, so a
 join larger than memory spills to disk instead of failing (its memory model:
 :mod:`lshjob.index.join.memory`).
 """
@@ -63,7 +67,8 @@ def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings,
         skew_row = con.execute(load_sql("bucket_skew"), {**params, "bucket_rows": bucket_rows}).fetchone()
         columns = [d[0] for d in con.description]
         skew = {name: int(value) for name, value in zip(columns, skew_row)}
-        query = load_sql("candidates").strip().rstrip(";")
+        per_band = _rows_per_band(con, settings, skew)
+        query = load_sql("candidate_rows" if per_band else "candidates").strip().rstrip(";")
         # scratch of the run (not flushed to disk: a crashed run never reads it again)
         if part_ranges is None:
             with atomic_file(out, fsync=False) as tmp:
@@ -83,4 +88,20 @@ def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings,
     finally:
         con.close()
     skew["max_bucket"] = settings.max_bucket
-    return {"candidate_pairs": int(count), "skew": skew}
+    return {"candidate_pairs": int(count), "skew": skew, "rows_per_band": per_band}
+
+
+SAMPLED_ROWS = 1_000_000  # pair rows the repeat sample aims at
+
+
+def _rows_per_band(con: duckdb.DuckDBPyConnection, settings: JoinSettings, skew: dict) -> bool:
+    """Write a row per band (no GROUP BY) when the join holds more than ``settings.dedupe_up_to``
+    pair rows and a sample of left sides shows pairs repeating at most ``settings.max_repeat``
+    times on average (module docstring)."""
+    rows = skew["bucket_pairs"] + skew["split_pairs"]
+    if rows <= settings.dedupe_up_to:
+        return False
+    every = max(1, rows // SAMPLED_ROWS)
+    pair_rows, pairs = con.execute(load_sql("pair_repeats"),
+                                   {"max_bucket": settings.max_bucket, "every": every}).fetchone()
+    return pairs > 0 and pair_rows <= settings.max_repeat * pairs

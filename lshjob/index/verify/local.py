@@ -35,7 +35,8 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
     """Exact Jaccard of every candidate, two parts' sets held at a time (P parts cost
     P + P(P-1)/2 loads of saved sets); candidates are read ``settings.slice_rows`` at a time,
     so memory stays bounded whatever their number. ``candidates`` is the join's file (one
-    part) or folder (parts)."""
+    part) or folder (parts); a pair given a row per band is verified per row and kept once,
+    with the rows' ``bands_shared`` summed (:func:`one_row_a_pair`)."""
     step = settings.slice_rows
     pieces = []
     parts = len(store.ranges)
@@ -55,6 +56,7 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
             block = pl.concat(kept) if kept else None
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
                 continue
+            block = one_row_a_pair(block)
             if params is None:  # identical sets only, no signatures: the estimate is exact
                 block = block.with_columns(estimate=pl.col("jaccard")).select(
                     "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
@@ -87,6 +89,18 @@ def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first:
             "bands_shared": candidates["bands_shared"].to_numpy()[keep].astype(np.int32),
         }
     )
+
+
+def one_row_a_pair(verified: pl.DataFrame) -> pl.DataFrame:
+    """Verified rows with one row per pair: a join that wrote a row per band a pair met in
+    (:mod:`lshjob.index.join.base`) repeats the pair, with the same Jaccard; its
+    ``bands_shared`` is the sum of its rows'. A pair lies in one block of parts, so a block's
+    rows hold all of a pair's."""
+    if verified.select(pl.struct("left_rep", "right_rep").is_unique().all()).item():
+        return verified
+    return (verified.group_by("left_rep", "right_rep")
+            .agg(pl.col("jaccard").first(), pl.col("bands_shared").sum())
+            .select(verified.columns))
 
 
 def _check_within(ids: np.ndarray, first: int, size: int, side: str) -> None:
