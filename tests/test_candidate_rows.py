@@ -7,6 +7,7 @@ from itertools import combinations
 
 import numpy as np
 import polars as pl
+import pytest
 
 from lshjob import EventSpec
 from lshjob.index.join import duckdb as duckdb_join
@@ -87,9 +88,12 @@ def _long_tailed(seed: int = 3, patrons: int = 1500) -> pl.DataFrame:
                          "title": np.concatenate(titles)})
 
 
-def test_rows_per_band_publish_the_same_index_as_deduplicated_pairs(tmp_path, monkeypatch):
+@pytest.mark.parametrize("crowd_size, parts", [(10**6, None), (8, None), (8, 3)],
+                         ids=["rows", "rows and crowds", "rows and crowds, three parts"])
+def test_rows_per_band_publish_the_same_index_as_deduplicated_pairs(crowd_size, parts, tmp_path, monkeypatch):
     # Oracle: the same run with the join deduplicating (the path checked against brute force
-    # in tests/test_run.py); with rows per band the neighbours must be the same rows.
+    # in tests/test_run.py); with rows per band (and crowds: buckets of 8 or more members
+    # paired up by verification) the neighbours must be the same rows.
     src = tmp_path / "loans.parquet"
     _long_tailed().write_parquet(src)
     options = RunOptions(threshold=0.5, top_k=5, perms=64, bands=16, rows=4)
@@ -98,15 +102,23 @@ def test_rows_per_band_publish_the_same_index_as_deduplicated_pairs(tmp_path, mo
     original = duckdb_join.candidate_pairs
 
     def per_band(files, out, settings, *args, **kwargs):
-        made = original(files, out, replace(settings, dedupe_up_to=0, max_repeat=16.0), *args, **kwargs)
-        seen.append((made["rows_per_band"], pl.read_parquet(out)))
+        made = original(files, out, replace(settings, dedupe_up_to=0, max_repeat=16.0, crowd_size=crowd_size),
+                        *args, **kwargs)
+        crowds = pl.read_parquet(made["crowds"]) if made["crowds"] is not None else None
+        seen.append((made["rows_per_band"], pl.read_parquet(out, hive_partitioning=False) if out.is_file() else
+                     pl.read_parquet(out / "**" / "*.parquet", hive_partitioning=False), crowds))
         return made
 
     monkeypatch.setattr(duckdb_join, "candidate_pairs", per_band)
-    rows = run_job(src, SPEC, options, tmp_path / "rows")
-    (chosen, candidates), = seen
+    rows = run_job(src, SPEC, replace(options, parts=parts), tmp_path / "rows")
+    assert rows["counts"]["parts"] == (parts or 1)
+    (chosen, candidates, crowds), = seen
     assert chosen and candidates.height > candidates.select("left_rep", "right_rep").n_unique()  # pairs repeat
-    assert rows["counts"]["candidate_pairs"] == candidates.height > deduplicated["counts"]["candidate_pairs"]
-    assert rows["counts"]["verified_pairs"] == deduplicated["counts"]["verified_pairs"]
+    sizes = np.zeros(0) if crowds is None else crowds.group_by("crowd").len()["len"].to_numpy()
+    assert (crowds is None) == (crowd_size > 1000) and (sizes >= 8).all()
+    assert rows["counts"]["candidate_pairs"] == candidates.height + int((sizes * (sizes - 1) // 2).sum())
+    if parts is None:  # in parts, identical sets of different parts keep a representative each
+        assert rows["counts"]["candidate_pairs"] > deduplicated["counts"]["candidate_pairs"]
+        assert rows["counts"]["verified_pairs"] == deduplicated["counts"]["verified_pairs"]
     mine = pl.read_parquet(tmp_path / "rows" / "neighbours.parquet")
     assert mine.height > 0 and mine.equals(pl.read_parquet(tmp_path / "dedup" / "neighbours.parquet"))

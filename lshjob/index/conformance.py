@@ -216,15 +216,17 @@ def _check_join_case(engine, tmp: Path, name: str, every: pl.DataFrame, shared: 
         target = target.with_suffix(".parquet") if split is None else target
         out = engine.candidates(files, bands, target, settings, bucket_rows=every.height, ranges=split)
         table, blocks = _read_candidates(out, split)
+        crowd_rows = _crowd_rows(out.crowds)
         check_contract(table, f"candidates ({how})", CANDIDATES_SCHEMA,
                        [("left_rep < right_rep", pl.col("left_rep") < pl.col("right_rep")),
                         ("bands_shared >= 1", pl.col("bands_shared") >= 1)])
         got: dict[tuple[int, int], int] = {}
-        for a, b, s in table.iter_rows():  # a pair may take a row per band: its rows' sum
+        for a, b, s in [*table.iter_rows(), *crowd_rows]:  # a pair may take a row per band: its rows' sum
             got[(a, b)] = got.get((a, b), 0) + s
         _expect(got == pairs, f"candidates ({how}): the pairs of buckets within the cap and of sub-buckets of "
                 "oversize ones, counted per pair", f"{len(got)} pairs, expected {len(pairs)}")
-        _expect(out.pairs == table.height, f"candidates ({how}): pairs counts the rows", str(out.pairs))
+        _expect(out.pairs == table.height + len(crowd_rows), f"candidates ({how}): pairs counts the rows and "
+                "the pairs of crowds", str(out.pairs))
         report = {k: int(out.skew[k]) for k in (*SKEW_COLUMNS, "max_bucket") if k in out.skew}
         _expect(report == skew, f"skew ({how}): the counts of buckets, oversize buckets and their split",
                 f"{report} against {skew}")
@@ -250,9 +252,24 @@ def check_join(engine, folder: Path | None = None) -> None:
         # a large join whose pairs rarely repeat: the engine may write a row per band
         rows_per_band = replace(settings, dedupe_up_to=0, max_repeat=4.0)
         _check_join_case(engine, tmp, "rows-per-band", every, shared, 4, rows_per_band, ranges)
+        # and may list the members of large buckets (crowds) instead of their pairs
+        _check_join_case(engine, tmp, "crowds", every, shared, 4, replace(rows_per_band, crowd_size=4), ranges)
+
         alone = pl.DataFrame({"band": [0, 0, 1, 1], "bucket": [1, 2, 3, 4], "rep": [11, 13, 11, 13]},
                              schema=BUCKET_ROWS_SCHEMA)
         _check_join_case(engine, tmp, "no-shared-bucket", alone, alone.clear(), 2, settings, [(0, 12), (13, 20)])
+
+
+def _crowd_rows(crowds: Path | None) -> list[tuple[int, int, int]]:
+    """The candidate rows a CROWDS file stands for: every pair of a crowd's members, bands_shared 1."""
+    if crowds is None:
+        return []
+    table = pl.read_parquet(crowds)
+    _expect(table.columns == ["crowd", "rep"] and table.equals(table.sort("crowd", "rep"))
+            and table.select(pl.struct("crowd", "rep").is_unique().all()).item(),
+            "crowds: columns crowd, rep; one row per (crowd, rep), sorted")
+    return [(a, b, 1) for _, members in table.group_by("crowd")
+            for a, b in combinations(sorted(members["rep"].to_list()), 2)]
 
 
 # -------------------------------------------------------------------------------------- verify
@@ -305,6 +322,20 @@ def _write_blocks(pairs: pl.DataFrame, ranges: list[tuple[int, int]], out: Path)
     return out
 
 
+def _crowds(entities: int, out: Path, seed: int = 6) -> tuple[Path, list[tuple[int, int, int]]]:
+    """A CROWDS file of a few groups of entities (some overlapping, so a pair can be in two
+    crowds) and the candidate rows it stands for: every pair of a crowd, bands_shared 1."""
+    rng = np.random.default_rng(seed)
+    groups = [np.sort(rng.choice(entities, size=int(rng.integers(3, 16)), replace=False)) for _ in range(8)]
+    groups.append(np.array([1, 7, 200, 201]))  # identical sets 1, 7, 200
+    groups.append(np.array([1, 7, 150]))  # pairs (1, 7) again
+    crowds = pl.DataFrame({"crowd": np.repeat(np.arange(1, len(groups) + 1), [len(g) for g in groups]),
+                           "rep": np.concatenate(groups)}, schema={"crowd": pl.Int64, "rep": pl.Int64})
+    out.parent.mkdir(parents=True, exist_ok=True)
+    crowds.write_parquet(out)
+    return out, [(int(a), int(b), 1) for g in groups for a, b in combinations(g.tolist(), 2)]
+
+
 def check_verify(engine, folder: Path | None = None) -> None:
     """Verified pairs are exactly the candidates whose set Jaccard reaches the threshold, with
     that Jaccard and the signatures' fraction of equal positions; one range and several agree."""
@@ -333,25 +364,39 @@ def check_verify(engine, folder: Path | None = None) -> None:
                     .with_columns(bands_shared=pl.lit(1, dtype=pl.Int32)).drop("row")
                     .sample(fraction=1.0, shuffle=True, seed=5))
         _expect(per_band.height > pairs.height, "check_verify's candidates have pairs met in several bands")
-        cases = (("one range", whole, one, VerifySettings(slice_rows=1 << 20)),
+        cases = (("one range", whole, one, VerifySettings(slice_rows=1 << 20), None),
                  ("three ranges, small slices", _write_blocks(pairs, three.ranges, tmp / "blocks"), three,
-                  VerifySettings(slice_rows=97, estimate_bytes=1)),
+                  VerifySettings(slice_rows=97, estimate_bytes=1), None),
                  ("a row per band, three ranges, small slices",
                   _write_blocks(per_band, three.ranges, tmp / "per-band"), three,
-                  VerifySettings(slice_rows=97, estimate_bytes=1)))
+                  VerifySettings(slice_rows=97, estimate_bytes=1), None))
+        crowds, crowd_rows = _crowds(sets.size, tmp / "crowds.parquet")
+        cases += tuple((f"crowds, {how}", candidates, store, settings, crowds)
+                       for how, candidates, store, settings, _ in cases[1:])
+        summed: Counter = Counter()
+        for a, b, shared in [*pairs.iter_rows(), *crowd_rows]:  # bands summed over the pair's rows
+            summed[(a, b)] += shared
+        with_crowds = {}
+        for (a, b), shared in summed.items():
+            jac = len(python_sets[a] & python_sets[b]) / len(python_sets[a] | python_sets[b])
+            if jac >= threshold:  # oracle: Python sets
+                with_crowds[(a, b)] = (jac, float(np.mean(signatures[a] == signatures[b])), shared)
+        _expect(len(with_crowds) > len(expected), "check_verify's crowds hold pairs over the threshold")
         results = {}
-        for how, candidates, store, settings in cases:
-            got = engine.verify(candidates, store, threshold, params, settings)
+        for how, candidates, store, settings, crowds in cases:
+            want = expected if crowds is None else with_crowds
+            more = {} if crowds is None else {"crowds": crowds}
+            got = engine.verify(candidates, store, threshold, params, settings, **more)
             check_contract(got, f"verified ({how})", VERIFIED_SCHEMA, rules)
             table = {(a, b): (j, e, s) for a, b, j, e, s in got.iter_rows()}
             _expect(len(table) == got.height, f"verified ({how}): each pair once")
-            _expect(table.keys() == expected.keys(), f"verified ({how}): exactly the candidates with set Jaccard "
-                    ">= threshold", f"{len(table)} pairs, expected {len(expected)}")
-            _expect(all(table[p][0] == expected[p][0] for p in table),
+            _expect(table.keys() == want.keys(), f"verified ({how}): exactly the candidates with set Jaccard "
+                    ">= threshold", f"{len(table)} pairs, expected {len(want)}")
+            _expect(all(table[p][0] == want[p][0] for p in table),
                     f"verified ({how}): jaccard = |A & B| / |A | B| exactly")
-            _expect(all(table[p][1] == expected[p][1] for p in table),
+            _expect(all(table[p][1] == want[p][1] for p in table),
                     f"verified ({how}): estimate = fraction of equal signature positions")
-            _expect(all(table[p][2] == expected[p][2] for p in table), f"verified ({how}): bands_shared is kept")
+            _expect(all(table[p][2] == want[p][2] for p in table), f"verified ({how}): bands_shared is kept")
             results[how] = got.sort("left_rep", "right_rep")
         _expect(results["one range"].equals(results["three ranges, small slices"]),
                 "verified: one range and three ranges give the same rows")

@@ -14,6 +14,7 @@ import polars as pl
 
 from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
+from lshjob.index.verify._crowds import crowd_pairs_between, verify_crowds
 from lshjob.index.verify._jaccard import jaccard_between
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
 from lshjob.index.verify.estimates import add_estimates_between
@@ -26,33 +27,40 @@ class LocalVerify:
     name = "local"
 
     def verify(self, candidates: Path, sets: SetStore, threshold: float, params: SignatureParams | None,
-               settings: VerifySettings) -> pl.DataFrame:
-        return verify_blocks(candidates, sets, threshold, params, settings)
+               settings: VerifySettings, crowds: Path | None = None) -> pl.DataFrame:
+        return verify_blocks(candidates, sets, threshold, params, settings, crowds)
 
 
 def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: SignatureParams | None,
-                  settings: VerifySettings) -> pl.DataFrame:
+                  settings: VerifySettings, crowds: Path | None = None) -> pl.DataFrame:
     """Exact Jaccard of every candidate, two parts' sets held at a time (P parts cost
     P + P(P-1)/2 loads of saved sets); candidates are read ``settings.slice_rows`` at a time,
     so memory stays bounded whatever their number. ``candidates`` is the join's file (one
     part) or folder (parts); a pair given a row per band is verified per row and kept once,
-    with the rows' ``bands_shared`` summed (:func:`one_row_a_pair`)."""
+    with the rows' ``bands_shared`` summed (:func:`one_row_a_pair`). ``crowds``: the join's
+    CROWDS file, whose pairs are made here (:mod:`lshjob.index.verify._crowds`)."""
     step = settings.slice_rows
     pieces = []
     parts = len(store.ranges)
+    crowd_table = pl.read_parquet(crowds) if crowds is not None else None
     for i in range(parts):
         left = None
         for j in range(i, parts):
             files = _block_files(candidates, parts, i, j)
-            if not files:
+            crowded = crowd_pairs_between(crowd_table, store.ranges[i], store.ranges[j])
+            if not files and crowded is None:
                 continue
             left = store.load(i) if left is None else left
             right = left if j == i else store.load(j)
-            frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
             kept = []
-            for lo, hi in slice_bounds(_rows(files), step):
-                chunk = frame.slice(lo, hi - lo).collect()
-                kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
+            if files:
+                frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
+                for lo, hi in slice_bounds(_rows(files), step):
+                    chunk = frame.slice(lo, hi - lo).collect()
+                    kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0],
+                                               threshold))
+            if crowded is not None:
+                kept.append(verify_crowds(crowded, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
             block = pl.concat(kept) if kept else None
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
                 continue
