@@ -22,6 +22,7 @@ import numpy as np
 import polars as pl
 
 from lshjob.core.sets import ElementSets
+from lshjob.index._crowd_checks import crowd_rows, crowds_of
 from lshjob.index.band.base import BAND_MULTIPLIER, BUCKET_ROWS_SCHEMA, save_keys
 from lshjob.index.join.base import CANDIDATES_SCHEMA, SKEW_COLUMNS, JoinSettings
 from lshjob.index.verify.base import VERIFIED_SCHEMA, VerifySettings
@@ -216,16 +217,16 @@ def _check_join_case(engine, tmp: Path, name: str, every: pl.DataFrame, shared: 
         target = target.with_suffix(".parquet") if split is None else target
         out = engine.candidates(files, bands, target, settings, bucket_rows=every.height, ranges=split)
         table, blocks = _read_candidates(out, split)
-        crowd_rows = _crowd_rows(out.crowds)
+        crowded = crowd_rows(out.crowds)
         check_contract(table, f"candidates ({how})", CANDIDATES_SCHEMA,
                        [("left_rep < right_rep", pl.col("left_rep") < pl.col("right_rep")),
                         ("bands_shared >= 1", pl.col("bands_shared") >= 1)])
         got: dict[tuple[int, int], int] = {}
-        for a, b, s in [*table.iter_rows(), *crowd_rows]:  # a pair may take a row per band: its rows' sum
+        for a, b, s in [*table.iter_rows(), *crowded]:  # a pair may take a row per band: its rows' sum
             got[(a, b)] = got.get((a, b), 0) + s
         _expect(got == pairs, f"candidates ({how}): the pairs of buckets within the cap and of sub-buckets of "
                 "oversize ones, counted per pair", f"{len(got)} pairs, expected {len(pairs)}")
-        _expect(out.pairs == table.height + len(crowd_rows), f"candidates ({how}): pairs counts the rows and "
+        _expect(out.pairs == table.height + len(crowded), f"candidates ({how}): pairs counts the rows and "
                 "the pairs of crowds", str(out.pairs))
         report = {k: int(out.skew[k]) for k in (*SKEW_COLUMNS, "max_bucket") if k in out.skew}
         _expect(report == skew, f"skew ({how}): the counts of buckets, oversize buckets and their split",
@@ -258,18 +259,6 @@ def check_join(engine, folder: Path | None = None) -> None:
         alone = pl.DataFrame({"band": [0, 0, 1, 1], "bucket": [1, 2, 3, 4], "rep": [11, 13, 11, 13]},
                              schema=BUCKET_ROWS_SCHEMA)
         _check_join_case(engine, tmp, "no-shared-bucket", alone, alone.clear(), 2, settings, [(0, 12), (13, 20)])
-
-
-def _crowd_rows(crowds: Path | None) -> list[tuple[int, int, int]]:
-    """The candidate rows a CROWDS file stands for: every pair of a crowd's members, bands_shared 1."""
-    if crowds is None:
-        return []
-    table = pl.read_parquet(crowds)
-    _expect(table.columns == ["crowd", "rep"] and table.equals(table.sort("crowd", "rep"))
-            and table.select(pl.struct("crowd", "rep").is_unique().all()).item(),
-            "crowds: columns crowd, rep; one row per (crowd, rep), sorted")
-    return [(a, b, 1) for _, members in table.group_by("crowd")
-            for a, b in combinations(sorted(members["rep"].to_list()), 2)]
 
 
 # -------------------------------------------------------------------------------------- verify
@@ -322,20 +311,6 @@ def _write_blocks(pairs: pl.DataFrame, ranges: list[tuple[int, int]], out: Path)
     return out
 
 
-def _crowds(entities: int, out: Path, seed: int = 6) -> tuple[Path, list[tuple[int, int, int]]]:
-    """A CROWDS file of a few groups of entities (some overlapping, so a pair can be in two
-    crowds) and the candidate rows it stands for: every pair of a crowd, bands_shared 1."""
-    rng = np.random.default_rng(seed)
-    groups = [np.sort(rng.choice(entities, size=int(rng.integers(3, 16)), replace=False)) for _ in range(8)]
-    groups.append(np.array([1, 7, 200, 201]))  # identical sets 1, 7, 200
-    groups.append(np.array([1, 7, 150]))  # pairs (1, 7) again
-    crowds = pl.DataFrame({"crowd": np.repeat(np.arange(1, len(groups) + 1), [len(g) for g in groups]),
-                           "rep": np.concatenate(groups)}, schema={"crowd": pl.Int64, "rep": pl.Int64})
-    out.parent.mkdir(parents=True, exist_ok=True)
-    crowds.write_parquet(out)
-    return out, [(int(a), int(b), 1) for g in groups for a, b in combinations(g.tolist(), 2)]
-
-
 def check_verify(engine, folder: Path | None = None) -> None:
     """Verified pairs are exactly the candidates whose set Jaccard reaches the threshold, with
     that Jaccard and the signatures' fraction of equal positions; one range and several agree."""
@@ -370,11 +345,11 @@ def check_verify(engine, folder: Path | None = None) -> None:
                  ("a row per band, three ranges, small slices",
                   _write_blocks(per_band, three.ranges, tmp / "per-band"), three,
                   VerifySettings(slice_rows=97, estimate_bytes=1), None))
-        crowds, crowd_rows = _crowds(sets.size, tmp / "crowds.parquet")
+        crowds, crowd_pairs = crowds_of(sets.size, tmp / "crowds.parquet")
         cases += tuple((f"crowds, {how}", candidates, store, settings, crowds)
                        for how, candidates, store, settings, _ in cases[1:])
         summed: Counter = Counter()
-        for a, b, shared in [*pairs.iter_rows(), *crowd_rows]:  # bands summed over the pair's rows
+        for a, b, shared in [*pairs.iter_rows(), *crowd_pairs]:  # bands summed over the pair's rows
             summed[(a, b)] += shared
         with_crowds = {}
         for (a, b), shared in summed.items():
