@@ -104,8 +104,18 @@ def one_row_a_pair(verified: pl.DataFrame) -> pl.DataFrame:
     (:mod:`lshjob.index.join.base`) repeats the pair, with the same Jaccard; its
     ``bands_shared`` is the sum of its rows'. A pair lies in one block of parts, so a block's
     rows hold all of a pair's."""
-    if verified.select(pl.struct("left_rep", "right_rep").is_unique().all()).item():
+    left, right = verified["left_rep"].to_numpy(), verified["right_rep"].to_numpy()
+    if len(left) < 2:
         return verified
+    if right.max() < 2**32 and left.min() >= 0:  # one packed 64-bit key a pair: a numpy sort, no hash table
+        key = (left.astype(np.uint64) << np.uint64(32)) | right.astype(np.uint64)
+        order = np.argsort(key)
+        key = key[order]
+        starts = np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1]]))
+        if len(starts) == len(key):
+            return verified
+        bands = np.add.reduceat(verified["bands_shared"].to_numpy()[order], starts).astype(np.int32)
+        return verified[order[starts]].with_columns(bands_shared=pl.Series(bands))
     return (verified.group_by("left_rep", "right_rep")
             .agg(pl.col("jaccard").first(), pl.col("bands_shared").sum())
             .select(verified.columns))
