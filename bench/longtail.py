@@ -1,6 +1,7 @@
 """Long-tailed data: ``lshjob run`` beside the datasketch pipeline and a one-pass floor.
 
     python bench/longtail.py --entities 300000 [--reference-entities 50000 100000] [--sample 500]
+    python bench/longtail.py --entities 300000 --reference-entities --baseline /path/to/old/checkout --repeat 2
 
 Data (bench/common.py zipf_events): element popularity close to Zipf with exponent 1.2,
 log-normal set sizes (about half the entities hold 1-5 elements, mostly popular ones), a
@@ -20,6 +21,8 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
+import resource
 import subprocess
 import sys
 import tempfile
@@ -69,20 +72,51 @@ print(lsh.b, lsh.r, rows)
 """
 
 
-def _process(cmd: list[str], cwd: Path, timeout: float | None = None) -> tuple[float, str]:
+CPU: dict[str, float] = {}  # CPU seconds (user + system, all threads) of the last child process
+
+
+def _process(cmd: list[str], cwd: Path, timeout: float | None = None, env: dict | None = None) -> tuple[float, str]:
     start = time.perf_counter()
-    done = subprocess.run(cmd, cwd=cwd, capture_output=True, text=True, timeout=timeout)
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    done = subprocess.run(cmd, cwd=cwd, capture_output=True, text=True, timeout=timeout, env=env)
     wall = time.perf_counter() - start
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    CPU["last"] = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
     if done.returncode:
         raise SystemExit(f"{cmd[:4]}: exit {done.returncode}: {done.stderr[-2000:]}")
     return wall, done.stdout
 
 
-def _lshjob(events: Path, out: Path) -> tuple[float, dict]:
+def _lshjob(events: Path, out: Path, tree: Path | None = None) -> tuple[float, dict]:
+    """One run; ``tree``: an older checkout to run instead (put first on PYTHONPATH)."""
+    env = None if tree is None else {**os.environ, "PYTHONPATH": str(tree)}
     wall, stdout = _process([sys.executable, "-m", "lshjob", "run", str(events), "--entity", "entity",
                              "--element", "element", "--threshold", str(THRESHOLD), "--top-k", str(TOP_K),
-                             "--out", str(out), "--json", "--quiet"], out.parent)
+                             "--out", str(out), "--json", "--quiet"], out.parent, env=env)
     return wall, json.loads(stdout)
+
+
+def _best_of(events: Path, tmp: Path, n: int, repeat: int, baseline: Path | None) -> dict:
+    """Warm runs of this tree (and of ``baseline``, alternating, so a slow phase of the shared
+    machine hits both): the fastest wall time, its manifest and its output folder, per tree."""
+    trees = {"this tree": None} if baseline is None else {"baseline": baseline, "this tree": None}
+    for name, tree in trees.items():  # one untimed run each: kernels compiled and cached
+        _lshjob(events, tmp / f"warm-{n}-{name.replace(' ', '-')}", tree)
+    best: dict[str, tuple[float, dict, Path, float]] = {}
+    for r in range(repeat):
+        for name, tree in trees.items():
+            out = tmp / f"run-{n}-{name.replace(' ', '-')}-{r}"
+            wall, manifest = _lshjob(events, out, tree)
+            cpu = min(CPU["last"], best[name][3]) if name in best else CPU["last"]
+            if name not in best or wall < best[name][0]:
+                best[name] = (wall, manifest, out, cpu)
+            else:
+                best[name] = (*best[name][:3], cpu)
+    return best
+
+
+def _stages(manifest: dict) -> dict:
+    return {k: round(v, 2) for k, v in manifest["seconds"].items() if isinstance(v, (int, float))}
 
 
 def recall(events: Path, neighbours: Path, sample: int, seed: int = 0) -> tuple[float, int, int]:
@@ -129,29 +163,40 @@ def main() -> None:
     ap.add_argument("--reference-timeout", type=float, default=None,
                     help="seconds after which the datasketch pipeline is stopped (reported as a lower bound)")
     ap.add_argument("--sample", type=int, default=500, help="entities whose true top-k is found by brute force")
+    ap.add_argument("--baseline", type=Path, default=None,
+                    help="an older checkout of lshjob, run beside this tree (alternating); the neighbours are compared")
+    ap.add_argument("--repeat", type=int, default=1, help="timed runs of lshjob per tree; the fastest is reported")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
+    if args.repeat < 1:
+        raise SystemExit("--repeat must be at least 1")
     ref_sizes = args.entities if args.reference_entities is None else args.reference_entities
     lines = [
         f"Machine: {machine()}",
         f"Command: `python bench/longtail.py --entities {' '.join(map(str, args.entities))}"
         + ("" if args.reference_timeout is None else f" --reference-timeout {args.reference_timeout:g}")
         + ("" if args.reference_entities is None else
-           f" --reference-entities {' '.join(map(str, args.reference_entities))}") + f" --sample {args.sample}`",
+           f" --reference-entities {' '.join(map(str, args.reference_entities))}") + f" --sample {args.sample}"
+        + ("" if args.baseline is None else f" --baseline {args.baseline}")
+        + ("" if args.repeat == 1 else f" --repeat {args.repeat}") + "`",
         f"Data: bench/common.py zipf_events (Zipf 1.2 popularity, log-normal sizes, a fifth near-copies); "
         f"threshold {THRESHOLD}, top-{TOP_K}. Whole processes, wall clock, run outside the repository; "
         f"lshjob warm (one untimed run first, kernels compiled); datasketch {PERMS} permutations, its own b, r.",
         "",
         "| entities | events | lshjob s | datasketch s | floor s | lshjob / datasketch | lshjob / floor "
-        "| lshjob plan k, b, r | candidates | recall (true top-k) | lshjob stages (s) |",
+        "| lshjob plan k, b, r | candidate rows | recall (true top-k) | lshjob stages (s) |",
         "| ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- | ---: | --- | --- |",
     ]
+    notes: list[str] = []
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
         tmp = Path(tmp)
         for n in sorted(set(args.entities) | set(ref_sizes)):
             events = zipf_events(n)
             n_events = pl.scan_parquet(events).select(pl.len()).collect().item()
-            floor = min(_process([sys.executable, "-c", FLOOR, str(events)], tmp)[0] for _ in range(3))
+            floors = []
+            for _ in range(3):
+                floors.append((_process([sys.executable, "-c", FLOOR, str(events)], tmp)[0], CPU["last"]))
+            floor, floor_cpu = min(w for w, _ in floors), min(c for _, c in floors)
             ref, ref_note, ref_bound = None, "", False
             if n in ref_sizes:
                 try:
@@ -164,13 +209,24 @@ def main() -> None:
                     ref_bound = True
             cells = ["", "", "", "", ""]
             if n in args.entities:
-                _lshjob(events, tmp / f"warm-{n}")
-                wall, m = _lshjob(events, tmp / f"run-{n}")
-                rec, pairs, sampled = recall(events, tmp / f"run-{n}" / "neighbours.parquet", args.sample)
+                best = _best_of(events, tmp, n, args.repeat, args.baseline)
+                wall, m, run_out, cpu = best["this tree"]
+                rec, pairs, sampled = recall(events, run_out / "neighbours.parquet", args.sample)
                 plan, c = m["plan"], m["counts"]
-                stages = {k: round(v, 2) for k, v in m["seconds"].items() if isinstance(v, (int, float))}
+                stages = _stages(m)
+                if args.baseline is not None:
+                    base_wall, base_m, base_out, base_cpu = best["baseline"]
+                    mine = pl.read_parquet(run_out / "neighbours.parquet")
+                    theirs = pl.read_parquet(base_out / "neighbours.parquet")
+                    cols = sorted(set(mine.columns) & set(theirs.columns))
+                    same = mine.select(cols).sort(cols).equals(theirs.select(cols).sort(cols))
+                    notes.append(f"{n:,} entities, baseline {args.baseline}: {base_wall:.2f} s "
+                                 f"({base_m['counts']['candidate_pairs']:,} candidates; {_stages(base_m)}); "
+                                 f"this tree / baseline {wall / base_wall:.3f}; CPU time (user + system, best of "
+                                 f"{args.repeat}; steadier than the wall clock on a shared machine) {cpu:.1f} s "
+                                 f"against {base_cpu:.1f} s, {cpu / base_cpu:.3f}; neighbours identical: {same}")
                 ratio = f"{'< ' if ref_bound else ''}{wall / ref:.2f}x" if ref else ""
-                cells = [f"{wall:.2f}", ratio, f"{wall / floor:.0f}x",
+                cells = [f"{wall:.2f}", ratio, f"{wall / floor:.0f}x (CPU {cpu / floor_cpu:.0f}x)",
                          f"{plan['perms']}, {plan['bands']}, {plan['rows']}", f"{c['candidate_pairs']:,}",
                          f"{rec:.3f} ({sampled} entities, {pairs:,} true pairs)", f"{stages}"]
             else:
@@ -179,6 +235,9 @@ def main() -> None:
             lines.append(f"| {n:,} | {n_events:,} | {cells[0]} | {ref_cell} | {floor:.2f} | "
                          + " | ".join(cells[1:]) + " |")
             print(lines[-1], flush=True)
+    for note in notes:
+        print(note, flush=True)
+    lines += ["", *notes] if notes else []
     finish("Long-tailed data: lshjob beside datasketch and the floor", "\n".join(lines), not args.no_write)
 
 

@@ -85,6 +85,7 @@ VALID = [  # (contract, a table keeping every rule, the run's values)
     (BUCKET_ROWS, _buckets(), {"bands": 2, "entities": 3, "representatives": REPS}),
     (CANDIDATES, _pairs(), PAIR_VALUES),
     (CANDIDATES, _pairs(bands_shared=(0, 0)), {**PAIR_VALUES, "bands": 0}),  # identical-only plan
+    (CANDIDATES, _pairs(right=(2, 2), bands_shared=(1, 1)), PAIR_VALUES),  # a row per band the pair met in
     (VERIFIED, _verified(), {**PAIR_VALUES, "threshold": 0.5}),
     (VERIFIED, _verified(estimate=(0.5, 1.0), bands_shared=(0, 0)), {**PAIR_VALUES, "bands": 0, "threshold": 1 / 2}),
     (NEIGHBOURS, _neighbours(), {"top_k": 2, "threshold": 0.5, "bands": 2}),
@@ -111,7 +112,9 @@ BROKEN = [
     (BUCKET_ROWS, "0 <= rep < entities (entity ids)", _buckets(), {"entities": 2}, "rep=2"),
     (BUCKET_ROWS, "rep is a representative", _buckets(), {"representatives": pl.Series([0])}, "rep=2"),
     (CANDIDATES, "left_rep < right_rep", _pairs(left=(0, 3), right=(2, 0)), PAIR_VALUES, "left_rep=3, right_rep=0"),
-    (CANDIDATES, "one row per pair", _pairs(right=(2, 2)), PAIR_VALUES, "left_rep=0, right_rep=2"),
+    # a pair may take a row per band it met in, so long as its rows sum to at most bands
+    (CANDIDATES, "a pair's rows sum bands_shared to at most bands", _pairs(right=(2, 2), bands_shared=(2, 2)),
+     {**PAIR_VALUES, "bands": 3}, "left_rep=0, right_rep=2"),
     (CANDIDATES, "1 <= bands_shared <= bands; 0 exactly when the plan has no bands", _pairs(bands_shared=(1, 3)),
      PAIR_VALUES, "bands_shared=3"),
     (CANDIDATES, "1 <= bands_shared <= bands; 0 exactly when the plan has no bands", _pairs(bands_shared=(0, 2)),

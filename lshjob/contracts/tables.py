@@ -134,10 +134,13 @@ BUCKET_ROWS = Contract(
 CANDIDATES = Contract(
     "CANDIDATES",
     schema={**PAIR, "bands_shared": pl.Int32},
-    rules=[PAIR_ORDER, ONE_ROW_A_PAIR, BANDS_SHARED, PAIR_IDS, PAIR_REPS],
-    row=("a pair of representatives to verify, in no particular order (a file; in parts a folder "
+    rules=[PAIR_ORDER, BANDS_SHARED, PAIR_IDS, PAIR_REPS,
+           ("a pair's rows sum bands_shared to at most bands",
+            lambda bands: pl.col("bands_shared").sum().over("left_rep", "right_rep") <= max(bands, 1))],
+    row=("a pair of representatives to verify, in no particular order; a pair met in several bands "
+         "may take a row per band, its bands_shared the sum of its rows' (a file; in parts a folder "
          "left_part=i/right_part=j/*.parquet, i <= j)"),
-    producer=("lshjob.index.join.duckdb.candidate_pairs (sql/candidates.sql), "
+    producer=("lshjob.index.join.duckdb.candidate_pairs (sql/candidates.sql, sql/candidate_rows.sql), "
               "lshjob.index.collapse.identical_candidates"),
     consumer="lshjob.index.verify.local.verify_blocks",
 )

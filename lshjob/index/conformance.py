@@ -14,6 +14,7 @@ from __future__ import annotations
 import tempfile
 from collections import Counter
 from contextlib import contextmanager
+from dataclasses import replace
 from itertools import combinations, pairwise
 from pathlib import Path
 
@@ -21,6 +22,7 @@ import numpy as np
 import polars as pl
 
 from lshjob.core.sets import ElementSets
+from lshjob.index._crowd_checks import crowd_rows, crowds_of
 from lshjob.index.band.base import BAND_MULTIPLIER, BUCKET_ROWS_SCHEMA, save_keys
 from lshjob.index.join.base import CANDIDATES_SCHEMA, SKEW_COLUMNS, JoinSettings
 from lshjob.index.verify.base import VERIFIED_SCHEMA, VerifySettings
@@ -215,14 +217,17 @@ def _check_join_case(engine, tmp: Path, name: str, every: pl.DataFrame, shared: 
         target = target.with_suffix(".parquet") if split is None else target
         out = engine.candidates(files, bands, target, settings, bucket_rows=every.height, ranges=split)
         table, blocks = _read_candidates(out, split)
+        crowded = crowd_rows(out.crowds)
         check_contract(table, f"candidates ({how})", CANDIDATES_SCHEMA,
                        [("left_rep < right_rep", pl.col("left_rep") < pl.col("right_rep")),
                         ("bands_shared >= 1", pl.col("bands_shared") >= 1)])
-        got = {(a, b): s for a, b, s in table.iter_rows()}
-        _expect(len(got) == table.height, f"candidates ({how}): one row per unordered pair")
+        got: dict[tuple[int, int], int] = {}
+        for a, b, s in [*table.iter_rows(), *crowded]:  # a pair may take a row per band: its rows' sum
+            got[(a, b)] = got.get((a, b), 0) + s
         _expect(got == pairs, f"candidates ({how}): the pairs of buckets within the cap and of sub-buckets of "
                 "oversize ones, counted per pair", f"{len(got)} pairs, expected {len(pairs)}")
-        _expect(out.pairs == len(pairs), f"candidates ({how}): pairs counts the rows", str(out.pairs))
+        _expect(out.pairs == table.height + len(crowded), f"candidates ({how}): pairs counts the rows and "
+                "the pairs of crowds", str(out.pairs))
         report = {k: int(out.skew[k]) for k in (*SKEW_COLUMNS, "max_bucket") if k in out.skew}
         _expect(report == skew, f"skew ({how}): the counts of buckets, oversize buckets and their split",
                 f"{report} against {skew}")
@@ -245,6 +250,12 @@ def check_join(engine, folder: Path | None = None) -> None:
         oversize = every.group_by("band", "bucket").len().filter(pl.col("len") > 8).height
         _expect(oversize > 0, "check_join's input has oversize buckets")
         _check_join_case(engine, tmp, "skewed", every, shared, 4, settings, ranges)
+        # a large join whose pairs rarely repeat: the engine may write a row per band
+        rows_per_band = replace(settings, dedupe_up_to=0, max_repeat=4.0)
+        _check_join_case(engine, tmp, "rows-per-band", every, shared, 4, rows_per_band, ranges)
+        # and may list the members of large buckets (crowds) instead of their pairs
+        _check_join_case(engine, tmp, "crowds", every, shared, 4, replace(rows_per_band, crowd_size=4), ranges)
+
         alone = pl.DataFrame({"band": [0, 0, 1, 1], "bucket": [1, 2, 3, 4], "rep": [11, 13, 11, 13]},
                              schema=BUCKET_ROWS_SCHEMA)
         _check_join_case(engine, tmp, "no-shared-bucket", alone, alone.clear(), 2, settings, [(0, 12), (13, 20)])
@@ -322,22 +333,45 @@ def check_verify(engine, folder: Path | None = None) -> None:
         pairs.write_parquet(whole)
         one = HeldRanges(sets, [])
         three = HeldRanges(sets, [90, 91])
-        cases = (("one range", whole, one, VerifySettings(slice_rows=1 << 20)),
+        # a row per band the pair met in (a join that leaves deduplication to verification),
+        # shuffled so a pair's rows fall in different slices
+        per_band = (pairs.with_columns(pl.int_ranges(0, "bands_shared").alias("row")).explode("row")
+                    .with_columns(bands_shared=pl.lit(1, dtype=pl.Int32)).drop("row")
+                    .sample(fraction=1.0, shuffle=True, seed=5))
+        _expect(per_band.height > pairs.height, "check_verify's candidates have pairs met in several bands")
+        cases = (("one range", whole, one, VerifySettings(slice_rows=1 << 20), None),
                  ("three ranges, small slices", _write_blocks(pairs, three.ranges, tmp / "blocks"), three,
-                  VerifySettings(slice_rows=97, estimate_bytes=1)))
+                  VerifySettings(slice_rows=97, estimate_bytes=1), None),
+                 ("a row per band, three ranges, small slices",
+                  _write_blocks(per_band, three.ranges, tmp / "per-band"), three,
+                  VerifySettings(slice_rows=97, estimate_bytes=1), None))
+        crowds, crowd_pairs = crowds_of(sets.size, tmp / "crowds.parquet")
+        cases += tuple((f"crowds, {how}", candidates, store, settings, crowds)
+                       for how, candidates, store, settings, _ in cases[1:])
+        summed: Counter = Counter()
+        for a, b, shared in [*pairs.iter_rows(), *crowd_pairs]:  # bands summed over the pair's rows
+            summed[(a, b)] += shared
+        with_crowds = {}
+        for (a, b), shared in summed.items():
+            jac = len(python_sets[a] & python_sets[b]) / len(python_sets[a] | python_sets[b])
+            if jac >= threshold:  # oracle: Python sets
+                with_crowds[(a, b)] = (jac, float(np.mean(signatures[a] == signatures[b])), shared)
+        _expect(len(with_crowds) > len(expected), "check_verify's crowds hold pairs over the threshold")
         results = {}
-        for how, candidates, store, settings in cases:
-            got = engine.verify(candidates, store, threshold, params, settings)
+        for how, candidates, store, settings, crowds in cases:
+            want = expected if crowds is None else with_crowds
+            more = {} if crowds is None else {"crowds": crowds}
+            got = engine.verify(candidates, store, threshold, params, settings, **more)
             check_contract(got, f"verified ({how})", VERIFIED_SCHEMA, rules)
             table = {(a, b): (j, e, s) for a, b, j, e, s in got.iter_rows()}
             _expect(len(table) == got.height, f"verified ({how}): each pair once")
-            _expect(table.keys() == expected.keys(), f"verified ({how}): exactly the candidates with set Jaccard "
-                    ">= threshold", f"{len(table)} pairs, expected {len(expected)}")
-            _expect(all(table[p][0] == expected[p][0] for p in table),
+            _expect(table.keys() == want.keys(), f"verified ({how}): exactly the candidates with set Jaccard "
+                    ">= threshold", f"{len(table)} pairs, expected {len(want)}")
+            _expect(all(table[p][0] == want[p][0] for p in table),
                     f"verified ({how}): jaccard = |A & B| / |A | B| exactly")
-            _expect(all(table[p][1] == expected[p][1] for p in table),
+            _expect(all(table[p][1] == want[p][1] for p in table),
                     f"verified ({how}): estimate = fraction of equal signature positions")
-            _expect(all(table[p][2] == expected[p][2] for p in table), f"verified ({how}): bands_shared is kept")
+            _expect(all(table[p][2] == want[p][2] for p in table), f"verified ({how}): bands_shared is kept")
             results[how] = got.sort("left_rep", "right_rep")
         _expect(results["one range"].equals(results["three ranges, small slices"]),
                 "verified: one range and three ranges give the same rows")

@@ -177,8 +177,9 @@ def run_job(
                                 f"{options.max_bucket}, still over it once split) were not compared")
 
             with stages("verify"):
+                crowds = {} if joined.crowds is None else {"crowds": joined.crowds}  # large buckets' members
                 verified = options.stage_engine("verify").verify(candidates, built.store, options.threshold,
-                                                                 built.params, _verify_settings(memory))
+                                                                 built.params, _verify_settings(memory), **crowds)
             counts["verified_pairs"] = verified.height
         built.store = None  # the sets are not needed any more: publishing gets their memory
 

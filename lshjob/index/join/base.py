@@ -7,7 +7,13 @@ cap are left out and counted.
 
 Output, CANDIDATES: Parquet with ``left_rep`` < ``right_rep`` (Int64 entity ids of
 representatives), ``bands_shared`` Int32 >= 1 (the buckets within the cap, or sub-buckets of
-oversize ones, the pair met in), one row per unordered pair, in no particular order. Given
+oversize ones, the pair met in), in no particular order: one row per unordered pair, or, when
+the engine leaves deduplication to verification, a row per band the pair met in (a pair's
+``bands_shared`` is then the sum of its rows'; verification sums them). Such an engine may
+also leave the pairs of large buckets unwritten and list their members instead, CROWDS
+(``JoinOutput.crowds``, a Parquet file: ``crowd`` Int64, ``rep`` Int64, one row per (crowd,
+rep), sorted by crowd then rep): every pair of a crowd's members is a candidate row with
+``bands_shared`` 1, made by verification (:mod:`lshjob.index.verify.local`). Given
 the entity id ranges of a run's parts (consecutive, :mod:`lshjob.jobs.parts`), a folder
 instead: the same rows split by the parts of their two sides,
 ``left_part=i/right_part=j/*.parquet`` (``i <= j``). With the pairs, the skew report: the
@@ -39,13 +45,22 @@ class JoinSettings:
     temp_directory: str | None = None  # where it spills
     threads: int | None = None
     max_bucket: int = DEFAULT_MAX_BUCKET
+    # Over this many pair rows (pairs counted once per band), an engine may write a row per
+    # band instead of one per pair when pairs repeat at most ``max_repeat`` times on average:
+    # verifying a repeat costs less than deduplicating tens of millions of pairs.
+    dedupe_up_to: int = 4_000_000
+    max_repeat: float = 1.5
+    # Then buckets of this many members or more are crowds (module docstring): their pairs,
+    # most of them on long-tailed data, are made by verification, a bucket's sets at a time.
+    crowd_size: int = 64
 
 
 @dataclass(frozen=True)
 class JoinOutput:
     candidates: Path  # CANDIDATES file, or folder split by ranges
-    pairs: int
+    pairs: int  # rows written, and the pairs of crowds (a pair written a row per band counts once per band)
     skew: dict  # SKEW_COLUMNS and max_bucket, integers
+    crowds: Path | None = None  # CROWDS (module docstring), when the engine left large buckets unpaired
 
 
 @runtime_checkable

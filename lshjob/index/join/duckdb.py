@@ -4,7 +4,14 @@
 The SQL lives in ``sql/sized_bucket_rows.sql`` (reads the bucket files once, with each
 bucket's size), ``sql/split_oversize.sql`` (splits buckets over the cap by the next band's
 bucket), ``sql/bucket_skew.sql``, ``sql/candidates.sql`` and, for a run in parts,
-``sql/candidate_blocks.sql``. DuckDB runs with a memory limit and a spill directory, so a
+``sql/candidate_blocks.sql``. Large joins whose pairs rarely repeat across bands
+(``sql/pair_repeats.sql`` measures it on a sample) write ``sql/candidate_rows.sql`` instead of
+``sql/candidates.sql``: a row per band a pair met in, without the GROUP BY, which cost about
+seven times the join on long-tailed data; verification deduplicates the pairs it keeps.
+Then buckets of ``settings.crowd_size`` members or more are not paired in SQL at all: their
+members go to a CROWDS file (``sql/crowds.sql``) and verification pairs them up, a bucket's
+sets at a time (no pair row written or read back).
+DuckDB runs with a memory limit and a spill directory, so a
 join larger than memory spills to disk instead of failing (its memory model:
 :mod:`lshjob.index.join.memory`).
 """
@@ -29,7 +36,7 @@ class DuckDBJoin:
                    bucket_rows: int | None = None, ranges=None) -> JoinOutput:
         joined = candidate_pairs(list(bucket_files), out, settings, bands, bucket_rows,
                                  part_ranges=list(ranges) if ranges is not None else None)
-        return JoinOutput(out, joined["candidate_pairs"], joined["skew"])
+        return JoinOutput(out, joined["candidate_pairs"], joined["skew"], joined["crowds"])
 
 
 def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
@@ -63,7 +70,10 @@ def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings,
         skew_row = con.execute(load_sql("bucket_skew"), {**params, "bucket_rows": bucket_rows}).fetchone()
         columns = [d[0] for d in con.description]
         skew = {name: int(value) for name, value in zip(columns, skew_row)}
-        query = load_sql("candidates").strip().rstrip(";")
+        per_band = _rows_per_band(con, settings, skew)
+        query = load_sql("candidate_rows" if per_band else "candidates").strip().rstrip(";")
+        if per_band:
+            params["crowd_size"] = max(3, settings.crowd_size)
         # scratch of the run (not flushed to disk: a crashed run never reads it again)
         if part_ranges is None:
             with atomic_file(out, fsync=False) as tmp:
@@ -80,7 +90,43 @@ def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings,
             pattern = str(out / "**" / "*.parquet")
         found = part_ranges is None or any(out.rglob("*.parquet"))
         count = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": pattern}).fetchone()[0] if found else 0
+        crowds, crowd_pairs = _write_crowds(con, params, out) if per_band else (None, 0)
     finally:
         con.close()
     skew["max_bucket"] = settings.max_bucket
-    return {"candidate_pairs": int(count), "skew": skew}
+    return {"candidate_pairs": int(count) + crowd_pairs, "skew": skew, "rows_per_band": per_band,
+            "crowds": crowds}
+
+
+def crowds_path(out: Path) -> Path:
+    """Where the CROWDS file of candidates written at ``out`` goes (beside them)."""
+    return out.parent / f"{out.stem}-crowds.parquet"
+
+
+def _write_crowds(con: duckdb.DuckDBPyConnection, params: dict, out: Path) -> tuple[Path | None, int]:
+    """CROWDS (sql/crowds.sql) beside ``out``, and the pairs they hold; no crowd, no file."""
+    query = load_sql("crowds").strip().rstrip(";")
+    pairs = con.execute(f"SELECT coalesce(sum(m * (m - 1) // 2), 0)::BIGINT FROM "
+                        f"(SELECT count(*) AS m FROM ({query}) GROUP BY crowd)", params).fetchone()[0]
+    if not pairs:
+        return None, 0
+    path = crowds_path(out)
+    with atomic_file(path, fsync=False) as tmp:
+        con.execute(f"COPY ({query}) TO {string_literal(str(tmp))} (FORMAT parquet)", params)
+    return path, int(pairs)
+
+
+SAMPLED_ROWS = 1_000_000  # pair rows the repeat sample aims at
+
+
+def _rows_per_band(con: duckdb.DuckDBPyConnection, settings: JoinSettings, skew: dict) -> bool:
+    """Write a row per band (no GROUP BY) when the join holds more than ``settings.dedupe_up_to``
+    pair rows and a sample of left sides shows pairs repeating at most ``settings.max_repeat``
+    times on average (module docstring)."""
+    rows = skew["bucket_pairs"] + skew["split_pairs"]
+    if rows <= settings.dedupe_up_to:
+        return False
+    every = max(1, rows // SAMPLED_ROWS)
+    pair_rows, pairs = con.execute(load_sql("pair_repeats"),
+                                   {"max_bucket": settings.max_bucket, "every": every}).fetchone()
+    return pairs > 0 and pair_rows <= settings.max_repeat * pairs

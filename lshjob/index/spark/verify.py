@@ -46,20 +46,22 @@ class SparkVerify:
         return versions()
 
     def verify(self, candidates: Path, sets: SetStore, threshold: float, params: SignatureParams | None,
-               settings: VerifySettings) -> pl.DataFrame:
+               settings: VerifySettings, crowds: Path | None = None) -> pl.DataFrame:
         candidates = Path(candidates)
-        if not (candidates.is_file() or any(candidates.rglob("*.parquet"))):
+        has_rows = candidates.is_file() or (candidates.is_dir() and any(candidates.rglob("*.parquet")))
+        if not has_rows and crowds is None:
             return empty_verified()
         quiet_pandas_warning()
         spark = session()
-        wanted = candidate_ids(candidates)
+        wanted = np.union1d(candidate_ids(candidates) if has_rows else np.empty(0, np.int64),
+                            crowd_ids(crowds) if crowds is not None else np.empty(0, np.int64))
         if len(wanted) == 0:
             return empty_verified()
         work = temp_name(candidates.parent / f"{candidates.name}-spark-verify")
         work.mkdir()
         try:
             save_sets(sets, params is not None, work / "sets", wanted)
-            cands = spark.read.parquet(str(candidates.absolute())).select("left_rep", "right_rep", "bands_shared")
+            cands = all_candidates(spark, candidates if has_rows else None, crowds)
             held = spark.read.parquet(str((work / "sets").absolute()))
             columns = ["elements", "hashes"] if params is not None else ["elements"]
             left = held.select(held.id.alias("left_rep"), *(held[c].alias(f"left_{c}") for c in columns))
@@ -103,3 +105,28 @@ def save_sets(store: SetStore, with_hashes: bool, folder: Path, wanted: np.ndarr
             columns["hashes"] = pa.LargeListArray.from_arrays(offsets, pa.array(hashes.view(np.int64)))
         pq.write_table(pa.table(columns), folder / f"part-{i:05d}.parquet", compression="lz4")
         del sets
+
+
+def crowd_ids(crowds: Path) -> np.ndarray:
+    """The entity ids listed in a CROWDS file (:mod:`lshjob.index.join.base`), sorted, each once."""
+    return np.unique(pl.read_parquet(crowds, columns=["rep"])["rep"].to_numpy())
+
+
+def all_candidates(spark, candidates: Path | None, crowds: Path | None):
+    """CANDIDATES as one row per pair, ``bands_shared`` summed over the pair's rows (a join may
+    write a row per band a pair met in), with the pairs of every crowd (the members of a large
+    bucket, each pair a row of one band) made by a self-join on the crowd: the rows the local
+    engine verifies (:func:`lshjob.index.verify.local.verify_blocks`)."""
+    from pyspark.sql import functions as F  # noqa: N812
+
+    parts = []
+    if candidates is not None:
+        parts.append(spark.read.parquet(str(candidates.absolute())).select("left_rep", "right_rep", "bands_shared"))
+    if crowds is not None:
+        members = spark.read.parquet(str(Path(crowds).absolute())).select("crowd", "rep")
+        a, b = members.alias("a"), members.alias("b")
+        parts.append(a.join(b, (F.col("a.crowd") == F.col("b.crowd")) & (F.col("a.rep") < F.col("b.rep")))
+                     .select(F.col("a.rep").alias("left_rep"), F.col("b.rep").alias("right_rep"),
+                             F.lit(1).cast("int").alias("bands_shared")))
+    rows = parts[0] if len(parts) == 1 else parts[0].unionByName(parts[1])
+    return rows.groupBy("left_rep", "right_rep").agg(F.sum("bands_shared").cast("int").alias("bands_shared"))

@@ -1,7 +1,8 @@
 """The verify stage's seam: what every verify engine takes and gives.
 
 Input: CANDIDATES (:mod:`lshjob.index.join.base`: a Parquet file, or a folder split by the
-parts of the two sides, ``left_part=i/right_part=j/*.parquet``), the element sets (a
+parts of the two sides, ``left_part=i/right_part=j/*.parquet``; a pair may take a row per band
+it met in; with them, maybe a CROWDS file whose members' pairs are candidates too), the element sets (a
 :class:`SetStore`: part i holds entity ids ``ranges[i][0]..ranges[i][1]``) and a threshold.
 
 Output, VERIFIED (a table): ``left_rep`` < ``right_rep`` (Int64), ``jaccard`` Float64 (exact:
@@ -49,9 +50,10 @@ class VerifyEngine(Protocol):
     name: ClassVar[str]
 
     def verify(self, candidates: Path, sets: SetStore, threshold: float, params: SignatureParams | None,
-               settings: VerifySettings) -> pl.DataFrame:
+               settings: VerifySettings, crowds: Path | None = None) -> pl.DataFrame:
         """CANDIDATES -> VERIFIED. ``params``: how the signatures were made (for ``estimate``),
-        None when there are none (the estimate is then the exact value)."""
+        None when there are none (the estimate is then the exact value). ``crowds``: the
+        join's CROWDS (:mod:`lshjob.index.join.base`), whose members' pairs are candidates too."""
         ...
 
 

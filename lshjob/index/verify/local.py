@@ -14,6 +14,7 @@ import polars as pl
 
 from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
+from lshjob.index.verify._crowds import crowd_pairs_between, verify_crowds
 from lshjob.index.verify._jaccard import jaccard_between
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
 from lshjob.index.verify.estimates import add_estimates_between
@@ -26,35 +27,44 @@ class LocalVerify:
     name = "local"
 
     def verify(self, candidates: Path, sets: SetStore, threshold: float, params: SignatureParams | None,
-               settings: VerifySettings) -> pl.DataFrame:
-        return verify_blocks(candidates, sets, threshold, params, settings)
+               settings: VerifySettings, crowds: Path | None = None) -> pl.DataFrame:
+        return verify_blocks(candidates, sets, threshold, params, settings, crowds)
 
 
 def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: SignatureParams | None,
-                  settings: VerifySettings) -> pl.DataFrame:
+                  settings: VerifySettings, crowds: Path | None = None) -> pl.DataFrame:
     """Exact Jaccard of every candidate, two parts' sets held at a time (P parts cost
     P + P(P-1)/2 loads of saved sets); candidates are read ``settings.slice_rows`` at a time,
     so memory stays bounded whatever their number. ``candidates`` is the join's file (one
-    part) or folder (parts)."""
+    part) or folder (parts); a pair given a row per band is verified per row and kept once,
+    with the rows' ``bands_shared`` summed (:func:`one_row_a_pair`). ``crowds``: the join's
+    CROWDS file, whose pairs are made here (:mod:`lshjob.index.verify._crowds`)."""
     step = settings.slice_rows
     pieces = []
     parts = len(store.ranges)
+    crowd_table = pl.read_parquet(crowds) if crowds is not None else None
     for i in range(parts):
         left = None
         for j in range(i, parts):
             files = _block_files(candidates, parts, i, j)
-            if not files:
+            crowded = crowd_pairs_between(crowd_table, store.ranges[i], store.ranges[j])
+            if not files and crowded is None:
                 continue
             left = store.load(i) if left is None else left
             right = left if j == i else store.load(j)
-            frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
             kept = []
-            for lo, hi in slice_bounds(_rows(files), step):
-                chunk = frame.slice(lo, hi - lo).collect()
-                kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
+            if files:
+                frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
+                for lo, hi in slice_bounds(_rows(files), step):
+                    chunk = frame.slice(lo, hi - lo).collect()
+                    kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0],
+                                               threshold))
+            if crowded is not None:
+                kept.append(verify_crowds(crowded, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
             block = pl.concat(kept) if kept else None
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
                 continue
+            block = one_row_a_pair(block)
             if params is None:  # identical sets only, no signatures: the estimate is exact
                 block = block.with_columns(estimate=pl.col("jaccard")).select(
                     "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
@@ -87,6 +97,28 @@ def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first:
             "bands_shared": candidates["bands_shared"].to_numpy()[keep].astype(np.int32),
         }
     )
+
+
+def one_row_a_pair(verified: pl.DataFrame) -> pl.DataFrame:
+    """Verified rows with one row per pair: a join that wrote a row per band a pair met in
+    (:mod:`lshjob.index.join.base`) repeats the pair, with the same Jaccard; its
+    ``bands_shared`` is the sum of its rows'. A pair lies in one block of parts, so a block's
+    rows hold all of a pair's."""
+    left, right = verified["left_rep"].to_numpy(), verified["right_rep"].to_numpy()
+    if len(left) < 2:
+        return verified
+    if right.max() < 2**32 and left.min() >= 0:  # one packed 64-bit key a pair: a numpy sort, no hash table
+        key = (left.astype(np.uint64) << np.uint64(32)) | right.astype(np.uint64)
+        order = np.argsort(key)
+        key = key[order]
+        starts = np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1]]))
+        if len(starts) == len(key):
+            return verified
+        bands = np.add.reduceat(verified["bands_shared"].to_numpy()[order], starts).astype(np.int32)
+        return verified[order[starts]].with_columns(bands_shared=pl.Series(bands))
+    return (verified.group_by("left_rep", "right_rep")
+            .agg(pl.col("jaccard").first(), pl.col("bands_shared").sum())
+            .select(verified.columns))
 
 
 def _check_within(ids: np.ndarray, first: int, size: int, side: str) -> None:

@@ -1,0 +1,114 @@
+"""Verification of crowds: every pair of a large bucket's members, made and verified a bucket's
+sets at a time (:mod:`lshjob.index.join.base`, CROWDS). The join writes no row for these pairs;
+on long-tailed data they are most candidates (buckets of hundreds of small sets of popular
+elements), and a bucket's sets stay in cache while its pairs are verified."""
+
+from __future__ import annotations
+
+import numpy as np
+import polars as pl
+
+from lshjob.core._jit import numba
+from lshjob.index.verify._jaccard import _intersection
+
+MAX_PAIRS = 1 << 22  # pairs made at a time (three 8-byte values each)
+
+
+@numba.njit(parallel=True, cache=True)
+def _crowd_pairs(left_offsets, left_elements, left_first, right_offsets, right_elements, right_first,
+                 a_members, a_start, a_count, b_members, b_start, b_count, same, base, threshold,
+                 out_left, out_right, out_jac):
+    """Crowd c pairs its a-members ``a_members[a_start[c]:a_start[c] + a_count[c]]`` (entity ids
+    of the left sets, by set size ascending) with its b-members (right sets, by size); ``same``:
+    both sides are one range, so the pairs are those of the a-members, x < y. Pair (x, y) of
+    crowd c goes to slot ``base[c]`` + its rank among the crowd's pairs (row-major); its Jaccard
+    where it reaches ``threshold`` (filters as in :func:`lshjob.index.verify._jaccard.jaccard_between`),
+    and ``out_jac`` keeps its -1.0 elsewhere. Sizes ascending, so once a partner is more than
+    |A| / threshold the rest are too (the size filter ends the loop)."""
+    for c in numba.prange(a_start.shape[0]):
+        na = a_count[c]
+        nb = na if same else b_count[c]
+        for x in range(na):
+            left = a_members[a_start[c] + x]
+            a0, a1 = left_offsets[left - left_first], left_offsets[left - left_first + 1]
+            la = a1 - a0
+            p = base[c] + (x * (2 * na - x - 1) // 2 if same else x * nb)
+            for y in range(x + 1 if same else 0, nb):
+                right = a_members[a_start[c] + y] if same else b_members[b_start[c] + y]
+                b0, b1 = right_offsets[right - right_first], right_offsets[right - right_first + 1]
+                lb = b1 - b0
+                if la < threshold * lb - 1e-9:
+                    break  # every later partner is at least as large
+                if lb >= threshold * la - 1e-9:
+                    need = int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9))
+                    inter = _intersection(left_elements, a0, a1, right_elements, b0, b1, need)
+                    value = inter / (la + lb - inter)
+                    if inter >= need and value >= threshold:
+                        out_left[p] = min(left, right)
+                        out_right[p] = max(left, right)
+                        out_jac[p] = value
+                p += 1
+
+
+def _by_crowd(crowds: np.ndarray, reps: np.ndarray, first: int, last: int):
+    """The members of each crowd within entity ids first..last: (crowd ids, start, count, reps)."""
+    inside = (reps >= first) & (reps <= last)
+    crowd, members = crowds[inside], reps[inside]
+    ids, start, count = np.unique(crowd, return_index=True, return_counts=True)
+    return ids, start.astype(np.int64), count.astype(np.int64), np.ascontiguousarray(members, dtype=np.int64), crowd
+
+
+def crowd_pairs_between(crowds: pl.DataFrame | None, left_range: tuple[int, int], right_range: tuple[int, int]):
+    """What :func:`verify_crowds` needs for the block of ranges (i, j), or None when no crowd
+    has a pair there. ``crowds``: CROWDS (sorted by crowd then rep)."""
+    if crowds is None or crowds.height == 0:
+        return None
+    crowd, reps = crowds["crowd"].to_numpy(), crowds["rep"].to_numpy()
+    a_ids, a_start, a_count, a_members, a_crowd = _by_crowd(crowd, reps, *left_range)
+    if left_range == right_range:
+        keep = a_count >= 2
+        block = (a_members, a_crowd, a_start[keep], a_count[keep], a_members, a_crowd, a_start[keep], a_count[keep],
+                 True)
+        pairs = a_count[keep] * (a_count[keep] - 1) // 2
+    else:
+        b_ids, b_start, b_count, b_members, b_crowd = _by_crowd(crowd, reps, *right_range)
+        both, ia, ib = np.intersect1d(a_ids, b_ids, assume_unique=True, return_indices=True)
+        block = (a_members, a_crowd, a_start[ia], a_count[ia], b_members, b_crowd, b_start[ib], b_count[ib], False)
+        pairs = a_count[ia] * b_count[ib]
+    return (block, pairs) if pairs.sum() > 0 else None
+
+
+def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: int, threshold: float,
+                  max_pairs: int = MAX_PAIRS) -> pl.DataFrame:
+    """The crowds' pairs whose Jaccard reaches ``threshold``, as :func:`lshjob.index.verify.local.verify_between`
+    gives them (``bands_shared`` 1: a row per band, summed with the pair's other rows later).
+    ``block``: from :func:`crowd_pairs_between`; at most ``max_pairs`` pairs (or one crowd's) made at a time."""
+    (a_members, a_crowd, a_start, a_count, b_members, b_crowd, b_start, b_count, same), pairs = block
+    a_members = _by_size(a_members, a_crowd, left_sets, left_first)  # each crowd's members by set size
+    b_members = a_members if same else _by_size(b_members, b_crowd, right_sets, right_first)
+    cum = np.cumsum(pairs)
+    pieces, lo = [], 0
+    while lo < len(pairs):
+        done = cum[lo - 1] if lo else 0
+        hi = max(lo + 1, int(np.searchsorted(cum, done + max_pairs, side="right")))
+        size = int(cum[hi - 1] - done)
+        base = np.concatenate([[0], cum[lo:hi - 1] - done]).astype(np.int64)
+        out_left = np.empty(size, dtype=np.int64)
+        out_right = np.empty(size, dtype=np.int64)
+        out_jac = np.full(size, -1.0)
+        _crowd_pairs(left_sets.offsets, left_sets.elements, left_first, right_sets.offsets, right_sets.elements,
+                     right_first, a_members, a_start[lo:hi], a_count[lo:hi], b_members, b_start[lo:hi],
+                     b_count[lo:hi], same, base, threshold, out_left, out_right, out_jac)
+        keep = out_jac >= threshold
+        pieces.append(pl.DataFrame({"left_rep": out_left[keep], "right_rep": out_right[keep],
+                                    "jaccard": out_jac[keep],
+                                    "bands_shared": np.ones(int(keep.sum()), dtype=np.int32)}))
+        lo = hi
+    return pl.concat(pieces)
+
+
+def _by_size(members: np.ndarray, crowd: np.ndarray, sets, first: int) -> np.ndarray:
+    """``members`` (grouped by ``crowd``) reordered by set size within each crowd."""
+    ids = members - first
+    sizes = sets.offsets[ids + 1] - sets.offsets[ids]
+    return np.ascontiguousarray(members[np.lexsort((members, sizes, crowd))])
