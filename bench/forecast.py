@@ -1,0 +1,114 @@
+"""Forecast from a 10% sample to the full size, beside the measured full run.
+
+    python bench/forecast.py --shape flat --entities 1000000
+    python bench/forecast.py --shape longtail --entities 300000
+
+For each shape: (1) a tenth of the entities, drawn uniformly, is indexed with ``lshjob run``
+(warm); (2) ``lshjob plan --sample SAMPLE --entities N --events E --history SAMPLE_INDEX``
+forecasts the full run (E: the full data's event count, which a user knows; the model: this
+machine's calibration if there is one, else the shipped default, refined by the sample's run);
+(3) ``lshjob run`` on the full data, warm, is measured. The table gives forecast / measured for
+total seconds and peak memory (the largest per-stage peak of the manifest), and per stage.
+
+Shapes: ``flat`` = bench/common.py branch network (log-normal set sizes, each patron with a
+bounded number of look-alikes); ``longtail`` = bench/common.py zipf_events (Zipf 1.2 element
+popularity, half the sets 1-5 popular elements, a fifth near-copies: candidates grow faster
+than N). Whole processes, wall clock; one untimed warm-up run first (kernels compiled).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import subprocess
+import sys
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+sys.path.insert(0, str(Path(__file__).parent))
+from common import branch_network_events, finish, machine, zipf_events  # noqa: E402
+
+THRESHOLD = 0.5
+
+
+def _lshjob(*args: str) -> dict:
+    done = subprocess.run([sys.executable, "-m", "lshjob", *args, "--json", "--quiet"], capture_output=True,
+                          text=True)
+    if done.returncode:
+        raise SystemExit(f"lshjob {args[0]}: exit {done.returncode}: {done.stderr[-2000:]}")
+    return json.loads(done.stdout)
+
+
+def _run(events: Path, out: Path) -> dict:
+    return _lshjob("run", str(events), "--entity", "entity", "--element", "element", "--threshold", str(THRESHOLD),
+                   "--out", str(out))
+
+
+def _events(shape: str, entities: int) -> Path:
+    return branch_network_events(entities) if shape == "flat" else zipf_events(entities)
+
+
+def _sample(events: Path, share: float, out: Path, seed: int = 0) -> Path:
+    frame = pl.read_parquet(events, columns=["entity", "element"])
+    keys = frame["entity"].unique().sort().to_numpy()
+    picked = np.random.default_rng(seed).choice(keys, size=max(2, int(len(keys) * share)), replace=False)
+    frame.filter(pl.col("entity").is_in(pl.Series(picked).implode())).write_parquet(out)
+    return out
+
+
+def _peak(manifest: dict) -> int:
+    return max(manifest["peak_memory_bytes"].values())
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--shape", choices=("flat", "longtail"), nargs="+", default=["flat"])
+    ap.add_argument("--entities", type=int, default=1_000_000)
+    ap.add_argument("--share", type=float, default=0.1, help="the sample's share of the entities")
+    ap.add_argument("--no-write", action="store_true")
+    args = ap.parse_args()
+    rows, details = [], []
+    with tempfile.TemporaryDirectory(prefix="lshjob-forecast-") as tmp:
+        tmp = Path(tmp)
+        for shape in args.shape:
+            full = _events(shape, args.entities)
+            sample = _sample(full, args.share, tmp / f"{shape}-sample.parquet")
+            _run(sample, tmp / f"{shape}-warm")  # untimed: kernels loaded, files in the page cache
+            small = _run(sample, tmp / f"{shape}-sample-index")
+            events = pl.scan_parquet(full).select(pl.len()).collect().item()
+            plan = _lshjob("plan", "--threshold", str(THRESHOLD), "--sample", str(sample), "--entity", "entity",
+                           "--element", "element", "--entities", str(args.entities), "--events", str(events),
+                           "--history", str(tmp / f"{shape}-sample-index"))
+            fc = plan["forecast"]
+            measured = _run(full, tmp / f"{shape}-full")
+            total_ratio = fc["seconds"]["total"] / measured["seconds"]["total"]
+            peak_ratio = fc["peak_memory_bytes"] / _peak(measured)
+            rows.append(
+                f"| {shape} | {args.entities:,} | {events:,} | {small['counts']['entities']:,} "
+                f"({small['seconds']['total']:.2f} s) | {plan['perms']}, {plan['bands']}, {plan['rows']} / "
+                f"{measured['plan']['perms']}, {measured['plan']['bands']}, {measured['plan']['rows']} | "
+                f"{fc['counts']['candidate_pairs']:.3g} / {measured['counts']['candidate_pairs']:.3g} | "
+                f"{fc['seconds']['total']:.2f} / {measured['seconds']['total']:.2f} = {total_ratio:.2f} | "
+                f"{fc['peak_memory_bytes'] / 2**30:.2f} / {_peak(measured) / 2**30:.2f} GiB = {peak_ratio:.2f} | "
+                f"{'yes' if abs(total_ratio - 1) <= 0.25 and abs(peak_ratio - 1) <= 0.25 else 'no'} |")
+            details.append(f"{shape}: per stage, forecast / measured seconds: " + ", ".join(
+                f"{s} {fc['seconds'][s]:.2f} / {measured['seconds'].get(s, 0):.2f}" for s in fc["seconds"]
+                if s != "total") + f"; coefficients: {fc['coefficients']['source']}")
+    report = "\n".join([
+        f"machine: {machine()} (shared with other jobs while it ran: timings noisy)",
+        f"command: python bench/forecast.py --shape {' '.join(args.shape)} --entities {args.entities}",
+        f"sample: {args.share:.0%} of the entities, uniform; threshold {THRESHOLD}; warm runs (kernels cached)",
+        "",
+        "| shape | entities | events | sample entities (its run) | plan k, b, r: forecast / run | candidates: "
+        "forecast / run | total s: forecast / measured | peak memory: forecast / measured | within 25% |",
+        "| --- | ---: | ---: | ---: | --- | --- | --- | --- | --- |",
+        *rows, "", *details,
+    ])
+    finish("Forecast from a 10% sample", report, not args.no_write)
+
+
+if __name__ == "__main__":
+    main()
