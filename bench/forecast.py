@@ -52,11 +52,15 @@ def _events(shape: str, entities: int) -> Path:
 
 
 def _sample(events: Path, share: float, out: Path, seed: int = 0) -> Path:
-    frame = pl.read_parquet(events, columns=["entity", "element"])
+    frame = pl.read_parquet(_files(events), columns=["entity", "element"])
     keys = frame["entity"].unique().sort().to_numpy()
     picked = np.random.default_rng(seed).choice(keys, size=max(2, int(len(keys) * share)), replace=False)
     frame.filter(pl.col("entity").is_in(pl.Series(picked).implode())).write_parquet(out)
     return out
+
+
+def _files(path: Path) -> str:
+    return str(path / "*.parquet") if path.is_dir() else str(path)
 
 
 def _peak(manifest: dict) -> int:
@@ -78,7 +82,7 @@ def main() -> None:
             sample = _sample(full, args.share, tmp / f"{shape}-sample.parquet")
             _run(sample, tmp / f"{shape}-warm")  # untimed: kernels loaded, files in the page cache
             small = _run(sample, tmp / f"{shape}-sample-index")
-            events = pl.scan_parquet(full).select(pl.len()).collect().item()
+            events = pl.scan_parquet(_files(full)).select(pl.len()).collect().item()
             plan = _lshjob("plan", "--threshold", str(THRESHOLD), "--sample", str(sample), "--entity", "entity",
                            "--element", "element", "--entities", str(args.entities), "--events", str(events),
                            "--history", str(tmp / f"{shape}-sample-index"))
