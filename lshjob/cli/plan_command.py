@@ -107,16 +107,16 @@ def plan(
     summary = api.plan_summary(result, sample)
     summary["plan_by"] = plan_by
     summary["forecast"] = api.forecast_plan(result, shape, entities, events, budget, None, top_k, history=runs,
-                                            max_candidates=max_candidates)
+                                            max_candidates=max_candidates, curve=report is not None)
     if chart is not None and result.bands is None:
         raise ParameterError("--chart draws the S-curve of a banding; at threshold 1.0 there is none")
     if chart is not None:
         write_chart(chart, result.bands, result.rows, threshold, result.histogram)
         summary["chart"] = str(chart)
     if report is not None:
-        from lshjob.report.plan_page import write_plan_page
+        from lshjob.report.forecast_page import write_plan_page
 
-        summary["report"] = str(write_plan_page(result, summary, report))
+        summary["report"] = str(write_plan_page(result, summary, report, summary["forecast"].get("curve")))
     text = plan_report(summary) + "\n\n" + forecast_report(summary["forecast"])
     if report is not None:
         text += f"\n\nreport: {report}"

@@ -16,7 +16,7 @@ from lshjob.plan import banding as planner
 from lshjob.plan import similarity
 from lshjob.plan.choose import Plan, choose_plan
 from lshjob.plan.cost import CostModel, Workload, load_model
-from lshjob.plan.forecast import forecast
+from lshjob.plan.forecast import forecast, forecast_curve
 from lshjob.sign.signatures import params_from_metadata, read_signatures
 
 
@@ -124,7 +124,7 @@ def _workload(figures: dict, shape: dict, entities: int | None, events: int | No
 def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: int | None = None,
                   memory: int | None = None, parts: int | None = None, top_k: int = default_of("top_k"),
                   model: CostModel | None = None, history: list | None = None,
-                  max_candidates: float | None = None) -> dict:
+                  max_candidates: float | None = None, curve: bool = False) -> dict:
     """The forecast of ``lshjob plan`` (:func:`lshjob.plan.forecast.forecast`) for the chosen
     plan, each runner-up's predicted seconds, and warnings (above ``--max-candidates``, or the
     run's default bound, at this size). ``history``: manifests of real runs that refine the

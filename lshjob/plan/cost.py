@@ -14,7 +14,9 @@ Refining from real runs (their manifests, or a store's history): per stage, the 
 what was measured to what the calibrated model predicts for that run, beyond the constant,
 the geometric mean over the runs weighted by their size, multiplies the forecast beyond the
 constant. One real run of the data to be indexed (a sample) so carries its shape (set sizes,
-bucket sizes, candidates per entity) into the forecast at any size.
+bucket sizes, candidates per entity) into the forecast at any size. A run refines a stage only
+where the counts make at least half of the stage's predicted cost (in a small run the constant,
+or a cold start's compiling, would pass for a slope), and by a factor of at most 8 either way.
 """
 
 from __future__ import annotations
@@ -55,6 +57,8 @@ MEMORY_TERMS = {
     "verify": ("membership_rows", "candidate_pairs"),
     "publish": ("membership_rows", "verified_pairs", "published_rows"),
 }
+MIN_VARIABLE_SHARE = 0.5  # a run refines a stage when the counts make at least half its predicted cost
+MAX_FACTOR = 8.0  # a refinement scales a stage's variable part by at most this (or its inverse)
 # disk: rows written as Parquet, bytes a row uncompressed (an upper bound: Parquet compresses)
 BUCKET_ROW_BYTES = 20  # band Int32, bucket UInt64, rep Int64
 CANDIDATE_BYTES = 20  # left_rep, right_rep Int64, bands_shared Int32
@@ -202,8 +206,8 @@ class CostModel:
                     fit = fits[stage]
                     var = fit.variable(w)
                     beyond = measured[stage] - fit.constant
-                    if var <= 0 or beyond <= 0:
-                        continue
+                    if var < MIN_VARIABLE_SHARE * fit.predict(w) or beyond <= 0:
+                        continue  # a run too small to tell the slope from the constant (or the compile)
                     logs[kind].setdefault(stage, []).append((math.log(beyond / var), size))
             out = m.get("output") or {}
             if out.get("rows"):
@@ -212,7 +216,8 @@ class CostModel:
         for kind, stages in logs.items():
             for stage, pairs in stages.items():
                 total = sum(s for _, s in pairs)
-                self.factors[kind][stage] = math.exp(sum(v * s for v, s in pairs) / total)
+                factor = math.exp(sum(v * s for v, s in pairs) / total)
+                self.factors[kind][stage] = min(max(factor, 1 / MAX_FACTOR), MAX_FACTOR)
         return self
 
     def stage_seconds(self, w: Workload) -> dict[str, float]:

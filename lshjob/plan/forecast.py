@@ -86,5 +86,6 @@ def forecast_curve(model: CostModel, w: Workload, sizes: list[float], memory: in
                          published_rows=w.published_rows * factor)
         f = forecast(model, at, memory)
         out.append({"entities": n, "seconds": f["seconds"]["total"], "peak_memory_bytes": f["peak_memory_bytes"],
-                    "disk_bytes": f["disk_bytes"]["total"], "in_parts": f["in_parts"]})
+                    "disk_bytes": f["disk_bytes"]["total"], "index_bytes": f["disk_bytes"]["output"],
+                    "in_parts": f["in_parts"]})
     return out
