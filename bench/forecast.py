@@ -1,7 +1,6 @@
 """Forecast from a 10% sample to the full size, beside the measured full run.
 
-    python bench/forecast.py --shape flat --entities 1000000
-    python bench/forecast.py --shape longtail --entities 300000
+    python bench/forecast.py --runs flat:1000000 longtail:300000
 
 For each shape: (1) a tenth of the entities, drawn uniformly, is indexed with ``lshjob run``
 (warm); (2) ``lshjob plan --sample SAMPLE --entities N --events E --history SAMPLE_INDEX``
@@ -69,41 +68,50 @@ def _peak(manifest: dict) -> int:
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("--shape", choices=("flat", "longtail"), nargs="+", default=["flat"])
-    ap.add_argument("--entities", type=int, default=1_000_000)
+    ap.add_argument("--runs", nargs="+", default=["flat:1000000", "longtail:300000"],
+                    help="shape:entities, shape flat or longtail")
     ap.add_argument("--share", type=float, default=0.1, help="the sample's share of the entities")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     rows, details = [], []
     with tempfile.TemporaryDirectory(prefix="lshjob-forecast-") as tmp:
         tmp = Path(tmp)
-        for shape in args.shape:
-            full = _events(shape, args.entities)
+        for spec in args.runs:
+            shape, entities = spec.split(":")[0], int(spec.split(":")[1])
+            full = _events(shape, entities)
             sample = _sample(full, args.share, tmp / f"{shape}-sample.parquet")
             _run(sample, tmp / f"{shape}-warm")  # untimed: kernels loaded, files in the page cache
             small = _run(sample, tmp / f"{shape}-sample-index")
             events = pl.scan_parquet(_files(full)).select(pl.len()).collect().item()
             plan = _lshjob("plan", "--threshold", str(THRESHOLD), "--sample", str(sample), "--entity", "entity",
-                           "--element", "element", "--entities", str(args.entities), "--events", str(events),
+                           "--element", "element", "--entities", str(entities), "--events", str(events),
                            "--history", str(tmp / f"{shape}-sample-index"))
             fc = plan["forecast"]
-            measured = _run(full, tmp / f"{shape}-full")
+            try:
+                measured = _run(full, tmp / f"{shape}-full")
+            except SystemExit as refused:  # e.g. above --max-candidates: the forecast's warning says so
+                rows.append(f"| {shape} | {entities:,} | {events:,} | - | - | "
+                            f"{fc['counts']['candidate_pairs']:.3g} / refused | {fc['seconds']['total']:.2f} / - | "
+                            f"- | run refused: {str(refused)[-160:]}; forecast warnings: {fc['warnings']} |")
+                print(rows[-1], flush=True)
+                continue
             total_ratio = fc["seconds"]["total"] / measured["seconds"]["total"]
             peak_ratio = fc["peak_memory_bytes"] / _peak(measured)
             rows.append(
-                f"| {shape} | {args.entities:,} | {events:,} | {small['counts']['entities']:,} "
+                f"| {shape} | {entities:,} | {events:,} | {small['counts']['entities']:,} "
                 f"({small['seconds']['total']:.2f} s) | {plan['perms']}, {plan['bands']}, {plan['rows']} / "
                 f"{measured['plan']['perms']}, {measured['plan']['bands']}, {measured['plan']['rows']} | "
                 f"{fc['counts']['candidate_pairs']:.3g} / {measured['counts']['candidate_pairs']:.3g} | "
                 f"{fc['seconds']['total']:.2f} / {measured['seconds']['total']:.2f} = {total_ratio:.2f} | "
                 f"{fc['peak_memory_bytes'] / 2**30:.2f} / {_peak(measured) / 2**30:.2f} GiB = {peak_ratio:.2f} | "
                 f"{'yes' if abs(total_ratio - 1) <= 0.25 and abs(peak_ratio - 1) <= 0.25 else 'no'} |")
+            print(rows[-1], flush=True)
             details.append(f"{shape}: per stage, forecast / measured seconds: " + ", ".join(
                 f"{s} {fc['seconds'][s]:.2f} / {measured['seconds'].get(s, 0):.2f}" for s in fc["seconds"]
                 if s != "total") + f"; coefficients: {fc['coefficients']['source']}")
     report = "\n".join([
         f"machine: {machine()} (shared with other jobs while it ran: timings noisy)",
-        f"command: python bench/forecast.py --shape {' '.join(args.shape)} --entities {args.entities}",
+        f"command: python bench/forecast.py --runs {' '.join(args.runs)}",
         f"sample: {args.share:.0%} of the entities, uniform; threshold {THRESHOLD}; warm runs (kernels cached)",
         "",
         "| shape | entities | events | sample entities (its run) | plan k, b, r: forecast / run | candidates: "
