@@ -15,7 +15,7 @@ from lshjob.jobs.options import check_options, default_of
 from lshjob.plan import banding as planner
 from lshjob.plan import similarity
 from lshjob.plan.choose import Plan, choose_plan
-from lshjob.plan.cost import CostModel, Workload, load_model
+from lshjob.plan.cost import CostModel, Workload, count_factors, load_model
 from lshjob.plan.forecast import forecast, forecast_curve
 from lshjob.sign.signatures import params_from_metadata, read_signatures
 
@@ -111,9 +111,13 @@ def plan_banding(
 
 
 def _workload(figures: dict, shape: dict, entities: int | None, events: int | None, scheme: str,
-              top_k: int) -> Workload:
+              top_k: int, pairs: dict[str, float] | None = None) -> Workload:
     """The counts of a run at ``entities`` sets (default: the sample's) and ``events`` events
-    (default: the sample's events per set times the sets) under the plan of ``figures``."""
+    (default: the sample's events per set times the sets) under the plan of ``figures``, its
+    predicted pairs times ``pairs`` (:func:`lshjob.plan.cost.count_factors`) when given."""
+    if pairs:
+        figures = dict(figures, expected_candidates=figures.get("expected_candidates", 0) * pairs["candidate_pairs"],
+                       expected_verified=figures.get("expected_verified", 0) * pairs["verified_pairs"])
     n = entities or shape["entities"]
     per_set = shape["events"] / max(shape["entities"], 1)
     e = events if events is not None else per_set * n
@@ -135,21 +139,29 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
     model = model or load_model()
     if history:
         model.refine(history)
+    pairs = count_factors(history or [])
     scheme = plan.scheme or "kperm"
-    load = _workload(plan.predicted, shape, entities, events, scheme, top_k)
+    load = _workload(plan.predicted, shape, entities, events, scheme, top_k, pairs)
     out = forecast(model, load, memory, parts, shape.get("dense_keys", True))
     out["available"] = True
+    out["pair_corrections"] = pairs  # measured / predicted pairs of the --history runs
     out["runners_up"] = [
         {"perms": r["perms"], "bands": r["bands"], "rows": r["rows"],
          "expected_candidates": r.get("expected_candidates"), "expected_recall": r.get("expected_recall"),
-         "seconds": round(model.stage_seconds(_workload(r, shape, entities, events, scheme, top_k))["total"], 3)}
+         "seconds": round(model.stage_seconds(_workload(r, shape, entities, events, scheme, top_k, pairs))["total"],
+                          3)}
         for r in plan.runners_up if "expected_candidates" in r]
     bound = max_candidates if max_candidates is not None else default_of("max_candidates")
     expected = plan.predicted.get("expected_candidates", 0)
     out["warnings"] = ([f"the plan predicts {expected:.3g} candidate pairs at {int(load.entities)} entities, more "
                         f"than --max-candidates {bound:.3g}: lshjob run would refuse it; raise the threshold or "
                         f"--max-candidates"] if expected > bound else [])
+    if curve:  # the plan's page: the same shape at a tenth to a hundred times the size
+        out["curve"] = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], memory)
     return out
+
+
+CURVE_FACTORS = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0)  # the plan page's curve: multiples of the forecast's size
 
 
 def plan_summary(plan: Plan, sample: str | Path | None = None) -> dict:

@@ -15,8 +15,10 @@ what was measured to what the calibrated model predicts for that run, beyond the
 the geometric mean over the runs weighted by their size, multiplies the forecast beyond the
 constant. One real run of the data to be indexed (a sample) so carries its shape (set sizes,
 bucket sizes, candidates per entity) into the forecast at any size. A run refines a stage only
-where the counts make at least half of the stage's predicted cost (in a small run the constant,
-or a cold start's compiling, would pass for a slope), and by a factor of at most 8 either way.
+where the counts make at least a tenth of the stage's predicted cost (in a small run the
+constant, or a cold start's compiling, would pass for a slope), by a factor of at most 100
+either way. A run also corrects the plan's predicted candidate and verified pairs: the ratio
+of its measured to its plan's predicted counts (:func:`count_factors`).
 """
 
 from __future__ import annotations
@@ -57,8 +59,8 @@ MEMORY_TERMS = {
     "verify": ("membership_rows", "candidate_pairs"),
     "publish": ("membership_rows", "verified_pairs", "published_rows"),
 }
-MIN_VARIABLE_SHARE = 0.5  # a run refines a stage when the counts make at least half its predicted cost
-MAX_FACTOR = 8.0  # a refinement scales a stage's variable part by at most this (or its inverse)
+MIN_VARIABLE_SHARE = 0.1  # a run refines a stage when the counts make at least a tenth of its predicted cost
+MAX_FACTOR = 100.0  # a refinement scales a stage's variable part by at most this (or its inverse)
 # disk: rows written as Parquet, bytes a row uncompressed (an upper bound: Parquet compresses)
 BUCKET_ROW_BYTES = 20  # band Int32, bucket UInt64, rep Int64
 CANDIDATE_BYTES = 20  # left_rep, right_rep Int64, bands_shared Int32
@@ -251,6 +253,18 @@ class CostModel:
     def to_json(self) -> dict:
         return {"format": FORMAT_NAME, "format_version": FORMAT_VERSION, "provenance": self.provenance,
                 "points": self.points}
+
+
+def count_factors(manifests: list[tuple[str, dict]]) -> dict[str, float]:
+    """Measured / predicted candidate and verified pairs of real runs (geometric mean), the
+    correction a forecast applies to its plan's predicted pairs; 1 where no run tells."""
+    logs: dict[str, list[float]] = {"candidate_pairs": [], "verified_pairs": []}
+    for _, m in manifests:
+        predicted, counts = (m.get("plan") or {}).get("predicted") or {}, m.get("counts") or {}
+        for count, key in (("candidate_pairs", "expected_candidates"), ("verified_pairs", "expected_verified")):
+            if predicted.get(key, 0) > 0 and counts.get(count, 0) > 0:
+                logs[count].append(math.log(counts[count] / predicted[key]))
+    return {k: math.exp(sum(v) / len(v)) if v else 1.0 for k, v in logs.items()}
 
 
 def model_path() -> Path:

@@ -21,7 +21,8 @@ def curves(curve: list[dict], point: dict | None, budget: int) -> tuple[str, dic
     disk = np.array([c["disk_bytes"] for c in curve]) / 2**30
     fig = _figure(width=9.0, height=3.0)
     panels = fig.subplots(1, 3)
-    for ax, y, label in zip(panels, (seconds, memory, disk), ("total seconds", "peak memory (GiB)", "disk: work + index (GiB)")):
+    labels = ("total seconds", "peak memory (GiB)", "disk: work + index (GiB)")
+    for ax, y, label in zip(panels, (seconds, memory, disk), labels):
         ax.plot(n, y, color=CURVE, linewidth=2, label="forecast")
         ax.set_xscale("log")
         ax.set_yscale("log")
