@@ -76,7 +76,7 @@ def gather(index_dir: str | Path, audit: str | Path | dict | None = None, sample
         data.histogram = _sample_histogram(manifest, data.notes)
     else:
         data.notes.append("sample histogram not drawn (--no-sample)")
-    data.forecast = run_forecast(manifest, str(index_dir / "manifest.json"))
+    data.forecast = run_forecast(manifest)
     if store is not None:
         data.history = refresh.history(store)["runs"]
     return data
@@ -85,13 +85,14 @@ def gather(index_dir: str | Path, audit: str | Path | dict | None = None, sample
 CURVE_FACTORS = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0)  # the report's curves: sizes as multiples of the run's
 
 
-def run_forecast(manifest: Manifest, where: str) -> dict | None:
-    """The cost model (:func:`lshjob.plan.cost.load_model`) refined by this run, applied to the
-    run's counts (per stage, beside the measured) and to the same shape at other sizes."""
+def run_forecast(manifest: Manifest) -> dict | None:
+    """The cost model (:func:`lshjob.plan.cost.load_model`, not refined by this run: the point
+    shows how far the run is from it; a first run also compiles) applied to the run's counts
+    (per stage, beside the measured) and to the same shape at other sizes."""
     if not manifest.plan.get("bands"):
         return None
     record = manifest.to_json()
-    model = load_model().refine([(where, record)])
+    model = load_model()
     load = Workload.from_manifest(record)
     at = forecast(model, load, manifest.memory_budget_bytes)
     curve = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], manifest.memory_budget_bytes)

@@ -61,6 +61,7 @@ MEMORY_TERMS = {
 }
 MIN_VARIABLE_SHARE = 0.1  # a run refines a stage when the counts make at least a tenth of its predicted cost
 MAX_FACTOR = 100.0  # a refinement scales a stage's variable part by at most this (or its inverse)
+SLICED = ("signature_words", "bucket_rows")  # held a slice at a time in signing and banding
 # disk: rows written as Parquet, bytes a row uncompressed (an upper bound: Parquet compresses)
 BUCKET_ROW_BYTES = 20  # band Int32, bucket UInt64, rep Int64
 CANDIDATE_BYTES = 20  # left_rep, right_rep Int64, bands_shared Int32
@@ -136,8 +137,13 @@ class Fit:
     constant: float
     coefficients: tuple[float, ...]
 
-    def variable(self, w: Workload) -> float:
-        return float(sum(c * w.value(t) for c, t in zip(self.coefficients, self.terms)))
+    def variable(self, w: Workload, sliced: float | None = None) -> float:
+        """The counts' part; with ``sliced`` (bytes), the terms of :data:`SLICED` held to it."""
+        parts = [c * w.value(t) for c, t in zip(self.coefficients, self.terms)]
+        if sliced is not None:
+            held = sum(p for p, t in zip(parts, self.terms) if t in SLICED)
+            return float(sum(parts) - held + min(held, sliced))
+        return float(sum(parts))
 
     def predict(self, w: Workload) -> float:
         return self.constant + self.variable(w)
@@ -227,12 +233,16 @@ class CostModel:
         out["total"] = sum(out.values()) + self.seconds["other"].predict(w)
         return out
 
-    def stage_memory(self, w: Workload) -> dict[str, float]:
-        return {s: self._predict("memory", self.memory, s, w) for s in STAGES}
+    def stage_memory(self, w: Workload, slice_bytes: float | None = None) -> dict[str, float]:
+        """Peak memory per stage; ``slice_bytes``: what a slice of signatures or a batch of the
+        band search may hold (the budget's share), which bounds those terms in signing and banding."""
+        return {s: self._predict("memory", self.memory, s, w, slice_bytes if s in ("sign", "band") else None)
+                for s in STAGES}
 
-    def _predict(self, kind: str, fits: dict[str, Fit], stage: str, w: Workload) -> float:
+    def _predict(self, kind: str, fits: dict[str, Fit], stage: str, w: Workload,
+                 sliced: float | None = None) -> float:
         fit = fits[stage]
-        return fit.constant + self.factors[kind].get(stage, 1.0) * fit.variable(w)
+        return fit.constant + self.factors[kind].get(stage, 1.0) * fit.variable(w, sliced)
 
     def disk_bytes(self, w: Workload, in_parts: bool) -> dict[str, float]:
         """The work folder at its fullest (bucket files and candidates, upper bounds; the held

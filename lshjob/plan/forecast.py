@@ -12,7 +12,7 @@ from __future__ import annotations
 from dataclasses import replace
 
 from lshjob.plan.cost import STAGES, CostModel, Workload
-from lshjob.runtime.budget import Budget, default_memory, dense_span, grouping_bytes
+from lshjob.runtime.budget import SLICE_SHARE, Budget, default_memory, dense_span, grouping_bytes
 
 BOUNDED = ("join", "verify", "publish")  # stages whose memory the run sizes from the budget
 
@@ -32,7 +32,7 @@ def forecast(model: CostModel, w: Workload, memory: int | None = None, parts: in
     memory = memory or default_memory()
     split = in_parts(w, memory, parts, dense_keys)
     seconds = model.stage_seconds(w)
-    by_stage = model.stage_memory(w)
+    by_stage = model.stage_memory(w, memory / SLICE_SHARE)
     notes = []
     held = [s for s in BOUNDED if by_stage[s] > memory]
     for s in held:  # DuckDB's limit and spill, verification's and publishing's blocks: sized from the budget

@@ -13,7 +13,7 @@ from lshjob.report import figures, forecast_figures
 from lshjob.report.html_parts import figure, size, table
 from lshjob.report.templating import markup, render
 
-CURVE_CAPTION = ("forecast by the cost model (lshjob calibrate; refined by this run) at other sizes, the same "
+CURVE_CAPTION = ("forecast by the cost model (lshjob calibrate, or the shipped default) at other sizes, the same "
                  "shape; candidate and verified pairs grow with N^2 as the planner scales them; dots: measured")
 
 
@@ -28,8 +28,8 @@ def forecast_section(forecast: dict | None, budget: int) -> str:
     rows.append(("total", f"{forecast['seconds']['total']:.2f}", f"{forecast['measured_seconds']['total']:.2f}",
                  size(forecast["peak"]), size(max(forecast["measured_peak"].values(), default=0))))
     coeff = forecast["coefficients"]
-    said = (f"Coefficients: {coeff['source']} ({coeff['provenance']}); refined by this run in the stages "
-            f"whose cost its counts make (not in those a small or cold run's constant dominates).")
+    said = (f"Coefficients: {coeff['source']} ({coeff['provenance']}), not refined by this run: the dots show "
+            f"how far it is from the model (a first run also compiles its kernels).")
     return (figure("forecast", svg, points, CURVE_CAPTION) + f"<p>{_esc(said)}</p>\n"
             + table(("stage", "forecast s", "measured s", "forecast peak", "measured peak"), rows, "forecast-table"))
 

@@ -92,8 +92,9 @@ def _recall(data: ReportData) -> str:
 
 def _stages(data: ReportData) -> str:
     m = data.manifest
-    svg, names = figures.stages(m.seconds, m.peak_memory_bytes, m.memory_budget_bytes)
-    rows = [(n, f"{m.seconds[n]}", _bytes(m.peak_memory_bytes.get(n)),
+    seconds = {k: v for k, v in m.seconds.items() if isinstance(v, int | float)}  # a refresh's own are a dict
+    svg, names = figures.stages(seconds, m.peak_memory_bytes, m.memory_budget_bytes)
+    rows = [(n, f"{seconds[n]}", _bytes(m.peak_memory_bytes.get(n)),
              _fraction(m.peak_memory_bytes[n] / m.memory_budget_bytes if n in m.peak_memory_bytes else None))
             for n in names]
     return (_figure("stages", svg, None, "left: seconds per stage; right: peak memory, the dashed line the budget")
