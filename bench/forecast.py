@@ -31,6 +31,7 @@ sys.path.insert(0, str(Path(__file__).parent))
 from common import branch_network_events, finish, machine, zipf_events  # noqa: E402
 
 THRESHOLD = 0.5
+CACHE_OUT = Path(__file__).parent / "cache" / "forecast"  # the runs' manifests and the plan, to look into
 
 
 def _lshjob(*args: str) -> dict:
@@ -106,9 +107,17 @@ def main() -> None:
                 f"{fc['peak_memory_bytes'] / 2**30:.2f} / {_peak(measured) / 2**30:.2f} GiB = {peak_ratio:.2f} | "
                 f"{'yes' if abs(total_ratio - 1) <= 0.25 and abs(peak_ratio - 1) <= 0.25 else 'no'} |")
             print(rows[-1], flush=True)
-            details.append(f"{shape}: per stage, forecast / measured seconds: " + ", ".join(
+            details.append(f"{shape} {entities:,}: per stage, forecast / measured seconds: " + ", ".join(
                 f"{s} {fc['seconds'][s]:.2f} / {measured['seconds'].get(s, 0):.2f}" for s in fc["seconds"]
-                if s != "total") + f"; coefficients: {fc['coefficients']['source']}")
+                if s != "total") + "; peak MiB: " + ", ".join(
+                f"{s} {fc['peak_memory_by_stage'][s] / 2**20:.0f} / "
+                f"{measured['peak_memory_bytes'].get(s, 0) / 2**20:.0f}" for s in fc["peak_memory_by_stage"]) + f"; coefficients: {fc['coefficients']['source']}, "
+                f"pair corrections {fc['pair_corrections']}")
+            print(details[-1], flush=True)
+            keep = CACHE_OUT / f"{shape}-{entities}"
+            keep.mkdir(parents=True, exist_ok=True)
+            for name, record in (("sample", small), ("plan", plan), ("full", measured)):
+                (keep / f"{name}.json").write_text(json.dumps(record, indent=1, default=str))
     report = "\n".join([
         f"machine: {machine()} (shared with other jobs while it ran: timings noisy)",
         f"command: python bench/forecast.py --runs {' '.join(args.runs)}",
