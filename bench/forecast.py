@@ -111,8 +111,8 @@ def main() -> None:
                 f"{s} {fc['seconds'][s]:.2f} / {measured['seconds'].get(s, 0):.2f}" for s in fc["seconds"]
                 if s != "total") + "; peak MiB: " + ", ".join(
                 f"{s} {fc['peak_memory_by_stage'][s] / 2**20:.0f} / "
-                f"{measured['peak_memory_bytes'].get(s, 0) / 2**20:.0f}" for s in fc["peak_memory_by_stage"]) + f"; coefficients: {fc['coefficients']['source']}, "
-                f"pair corrections {fc['pair_corrections']}")
+                f"{measured['peak_memory_bytes'].get(s, 0) / 2**20:.0f}" for s in fc["peak_memory_by_stage"])
+                + f"; coefficients: {fc['coefficients']['source']}, pair corrections {fc['pair_corrections']}")
             print(details[-1], flush=True)
             keep = CACHE_OUT / f"{shape}-{entities}"
             keep.mkdir(parents=True, exist_ok=True)
