@@ -213,7 +213,11 @@ def check_predicted(plan: Plan, max_candidates: float) -> None:
 
 def _by_cost(plans: list, costing: Callable[[dict], float]) -> list:
     """Plans by predicted total seconds (ties: smaller k, fewer bands)."""
-    return sorted(plans, key=lambda p: (round(costing(p.as_dict()), 6), p.perms, p.bands))
+    def seconds(p) -> float:  # the figures the cost needs, without copying the whole plan
+        return costing({"perms": p.perms, "bands": p.bands, "rows": p.rows, "expected_candidates":
+                        p.expected_candidates, "expected_verified": p.expected_verified})
+
+    return sorted(plans, key=lambda p: (round(seconds(p), 6), p.perms, p.bands))
 
 
 def _data_why(hist: PairHistogram, recall: float, rule: str = "fewest expected candidates") -> str:

@@ -13,12 +13,12 @@ no coefficient below zero, the best of every subset of the terms (there are at m
 Refining from real runs (their manifests, or a store's history): per stage, the ratio of
 what was measured to what the calibrated model predicts for that run, beyond the constant,
 the geometric mean over the runs weighted by their size, multiplies the forecast beyond the
-constant. One real run of the data to be indexed (a sample) so carries its shape (set sizes,
-bucket sizes, candidates per entity) into the forecast at any size. A run refines a stage only
-where the counts make at least a tenth of the stage's predicted cost (in a small run the
-constant, or a cold start's compiling, would pass for a slope), by a factor of at most 100
-either way. A run also corrects the plan's predicted candidate and verified pairs: the ratio
-of its measured to its plan's predicted counts (:func:`count_factors`).
+constant (a stage fitted with no slope takes its first term's from the run). One real run of
+the data to be indexed (a sample) so carries its shape (set sizes, bucket sizes, candidates per
+entity) into the forecast at any size. Runs under 100,000 events are not used (their
+seconds are the constant's, or a first run's compiling, more than the slopes'). A run also
+corrects the plan's predicted candidate and verified pairs: the ratio of its measured to its
+plan's predicted counts (:func:`count_factors`).
 """
 
 from __future__ import annotations
@@ -59,8 +59,8 @@ MEMORY_TERMS = {
     "verify": ("membership_rows", "candidate_pairs"),
     "publish": ("membership_rows", "verified_pairs", "published_rows"),
 }
-MIN_VARIABLE_SHARE = 0.1  # a run refines a stage when the counts make at least a tenth of its predicted cost
-MAX_FACTOR = 100.0  # a refinement scales a stage's variable part by at most this (or its inverse)
+MIN_REFINE_EVENTS = 100_000  # smaller runs tell the constant (and a first run's compiling), not the slopes
+MAX_FACTOR = 1000.0  # a refinement scales a stage's variable part by at most this (or its inverse)
 SLICED = ("signature_words", "bucket_rows")  # held a slice at a time in signing and banding
 # disk: rows written as Parquet, bytes a row uncompressed (an upper bound: Parquet compresses)
 BUCKET_ROW_BYTES = 20  # band Int32, bucket UInt64, rep Int64
@@ -184,6 +184,7 @@ class CostModel:
     path: str | None = None
     output_row_bytes: float = DEFAULT_OUTPUT_ROW_BYTES
     refined_from: list[str] = field(default_factory=list)
+    not_refined_from: list[str] = field(default_factory=list)
     seconds: dict[str, Fit] = field(init=False)
     memory: dict[str, Fit] = field(init=False)
     factors: dict[str, dict[str, float]] = field(init=False)
@@ -202,8 +203,9 @@ class CostModel:
         """Scale each stage's variable part by measured / predicted over real runs (see the module)."""
         logs: dict[str, dict[str, list[tuple[float, float]]]] = {"seconds": {}, "memory": {}}
         for where, m in manifests:
-            if not (m.get("plan") or {}).get("bands"):
-                continue  # identical sets only: no banded stages to learn from
+            if not (m.get("plan") or {}).get("bands") or (m.get("counts") or {}).get("events", 0) < MIN_REFINE_EVENTS:
+                self.not_refined_from.append(where)  # too small, or identical sets only: no banded stages
+                continue
             w = Workload.from_manifest(m)
             size = math.log1p(w.events)
             for kind, fits, measured in (("seconds", self.seconds, m["seconds"]),
@@ -212,10 +214,12 @@ class CostModel:
                     if stage not in measured:
                         continue
                     fit = fits[stage]
+                    if fit.terms and not any(fit.coefficients):  # no slope fitted: the run gives the first term's
+                        fit = fits[stage] = Fit(fit.terms, fit.constant, (1.0,) + (0.0,) * (len(fit.terms) - 1))
                     var = fit.variable(w)
                     beyond = measured[stage] - fit.constant
-                    if var < MIN_VARIABLE_SHARE * fit.predict(w) or beyond <= 0:
-                        continue  # a run too small to tell the slope from the constant (or the compile)
+                    if var <= 0 or beyond <= 0:
+                        continue
                     logs[kind].setdefault(stage, []).append((math.log(beyond / var), size))
             out = m.get("output") or {}
             if out.get("rows"):
@@ -258,7 +262,8 @@ class CostModel:
     def describe(self) -> dict:
         """Where the coefficients come from, for the forecast's ``coefficients``."""
         return {"source": self.source, "provenance": self.provenance, "path": self.path,
-                "calibration_runs": len(self.points), "refined_from": list(self.refined_from)}
+                "calibration_runs": len(self.points), "refined_from": list(self.refined_from),
+                "not_refined_from": list(self.not_refined_from)}
 
     def to_json(self) -> dict:
         return {"format": FORMAT_NAME, "format_version": FORMAT_VERSION, "provenance": self.provenance,
