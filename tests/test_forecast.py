@@ -116,8 +116,7 @@ def test_plan_by_cost_chooses_the_least_predicted_seconds(loans):
     # Oracle: brute force over every plan meeting the target, each costed by the same model.
     spec = EventSpec(entity="patron", element="title")
     shape: dict = {}
-    plan = plan_banding(0.5, sample=loans, spec=spec, entities=5000, plan_by="cost", scheme="oph", shape=shape,
-                        runners_up=400)
+    plan = plan_banding(0.5, sample=loans, spec=spec, entities=5000, plan_by="cost", shape=shape, runners_up=60)
     assert plan.predicted["predicted_seconds"] <= min(r["predicted_seconds"] for r in plan.runners_up)
     assert "least predicted seconds" in plan.why
     by_candidates = plan_banding(0.5, sample=loans, spec=spec, entities=5000)
@@ -134,20 +133,22 @@ def test_a_plan_over_max_candidates_at_the_forecast_size_is_warned_of(loans):
 
 
 def test_forecast_ranks_plans_as_measured_runs_do(tmp_path):
-    # Oracle: measured wall seconds of whole runs (the manifests), outside the model. Three
-    # plans of very different cost on the same 10,000 sets: the forecast, refined by nothing
-    # but the shipped default, must order them as the measured totals do.
+    # Oracle: measured wall seconds of whole runs (the manifests), outside the model. Plans of
+    # very different cost on the same 3,000 sets (a few titles: a plan of one-row bands makes
+    # a million candidate pairs, one of 8-row bands almost none); the shipped default forecast,
+    # refined by nothing, must order them as the measured totals do. The gap (2-4x measured
+    # here on a busy machine) is kept wide so that timing noise cannot swap them.
     events = tmp_path / "events.parquet"
-    calibration_events(10_000, 7).write_parquet(events)
+    calibration_events(3000, 7, 1500).write_parquet(events)
     spec = EventSpec(entity="entity", element="element")
     run_job(events, spec, RunOptions(threshold=0.5, perms=64, bands=8, rows=8), tmp_path / "warm")
     model = shipped_model()
     measured, predicted = [], []
-    for i, (k, b, r) in enumerate([(64, 16, 4), (256, 128, 2), (256, 256, 1)]):
+    for i, (k, b, r) in enumerate([(64, 64, 1), (64, 8, 8)]):
         m = run_job(events, spec, RunOptions(threshold=0.5, perms=k, bands=b, rows=r), tmp_path / f"run-{i}")
         measured.append(m["seconds"]["total"])
         predicted.append(forecast(model, Workload.from_manifest(m))["seconds"]["total"])
-    assert list(np.argsort(measured)) == list(np.argsort(predicted)), (measured, predicted)
+    assert list(np.argsort(measured)) == list(np.argsort(predicted)) == [1, 0], (measured, predicted)
 
 
 def test_history_reads_index_folders_and_refuses_anything_else(tmp_path):
