@@ -60,7 +60,10 @@ MEMORY_TERMS = {
     "publish": ("membership_rows", "verified_pairs", "published_rows"),
 }
 MIN_REFINE_EVENTS = 100_000  # smaller runs tell the constant (and a first run's compiling), not the slopes
-MAX_FACTOR = 1000.0  # a refinement scales a stage's variable part by at most this (or its inverse)
+# bytes one unit of a count may hold in memory, at most: a row of these tables is 8-40 bytes, held
+# in a few copies at once; a fit steeper than this is noise (few calibration runs have the count)
+MEMORY_CEILING = {"events": 64, "membership_rows": 64, "signature_words": 32, "bucket_rows": 64,
+                  "candidate_pairs": 128, "verified_pairs": 256, "published_rows": 256}
 SLICED = ("signature_words", "bucket_rows")  # held a slice at a time in signing and banding
 # disk: rows written as Parquet, bytes a row uncompressed (an upper bound: Parquet compresses)
 BUCKET_ROW_BYTES = 20  # band Int32, bucket UInt64, rep Int64
@@ -149,9 +152,11 @@ class Fit:
         return self.constant + self.variable(w)
 
 
-def fit_stage(terms: tuple[str, ...], loads: list[Workload], measured: list[float]) -> Fit:
+def fit_stage(terms: tuple[str, ...], loads: list[Workload], measured: list[float],
+              ceilings: dict[str, float] | None = None) -> Fit:
     """Non-negative least squares of the relative error over every subset of the terms (the
-    constant always in): the subset with the least error whose coefficients are all >= 0."""
+    constant always in): the subset with the least error whose coefficients are all >= 0 (and
+    within ``ceilings``, by term, when given)."""
     y = np.asarray(measured, dtype=np.float64)
     weight = 1.0 / np.maximum(y, 1e-3 * max(float(y.max(initial=0.0)), 1e-9))
     full = np.array([[w.value(t) for t in terms] for w in loads], dtype=np.float64).reshape(len(loads), len(terms))
@@ -163,6 +168,8 @@ def fit_stage(terms: tuple[str, ...], loads: list[Workload], measured: list[floa
             coef, *_ = np.linalg.lstsq(x / scale * weight[:, None], y * weight, rcond=None)
             coef = coef / scale
             if (coef < -1e-12).any():
+                continue
+            if ceilings and any(coef[i + 1] > ceilings.get(terms[j], math.inf) for i, j in enumerate(subset)):
                 continue
             err = float(((((x @ coef) - y) * weight) ** 2).sum()) if len(y) else 0.0
             if err < best[0] - 1e-12:
@@ -195,8 +202,8 @@ class CostModel:
                         for s in STAGES}
         self.seconds["other"] = fit_stage((), loads, [max(p["seconds"]["total"] - sum(
             p["seconds"].get(s, 0.0) for s in STAGES), 0.0) for p in self.points])
-        self.memory = {s: fit_stage(MEMORY_TERMS[s], loads, [p["peak_memory_bytes"].get(s, 0) for p in self.points])
-                       for s in STAGES}
+        self.memory = {s: fit_stage(MEMORY_TERMS[s], loads, [p["peak_memory_bytes"].get(s, 0) for p in self.points],
+                                    MEMORY_CEILING) for s in STAGES}
         self.factors = {"seconds": {}, "memory": {}}
 
     def refine(self, manifests: list[tuple[str, dict]]) -> CostModel:
@@ -228,8 +235,7 @@ class CostModel:
         for kind, stages in logs.items():
             for stage, pairs in stages.items():
                 total = sum(s for _, s in pairs)
-                factor = math.exp(sum(v * s for v, s in pairs) / total)
-                self.factors[kind][stage] = min(max(factor, 1 / MAX_FACTOR), MAX_FACTOR)
+                self.factors[kind][stage] = math.exp(sum(v * s for v, s in pairs) / total)
         return self
 
     def stage_seconds(self, w: Workload) -> dict[str, float]:
