@@ -170,3 +170,20 @@ def test_calibration_model_is_what_the_forecast_reads(tmp_path, monkeypatch):
     assert loaded.source == "calibrated" and loaded.path == str(path)
     w = Workload(**points[0]["workload"])
     assert loaded.stage_seconds(w) == model.stage_seconds(w)
+
+
+def test_calibrate_writes_the_model_the_forecast_then_reads(tmp_path, monkeypatch):
+    # Three tiny measured runs (the real calibration's are larger): the model file is written
+    # whole at the cache path, holds one point a run, and the forecast then says "calibrated".
+    from lshjob.jobs.calibrate import calibrate
+
+    summary = calibrate(None, runs=((3000, 64, "kperm", None), (4000, 128, "kperm", None), (5000, 64, "oph", None)))
+    path = cost.model_path()
+    assert summary["path"] == str(path) and [p.name for p in path.parent.iterdir()] == ["cost-model.json"]
+    record = json.loads(path.read_text())
+    # Oracle: the runs asked for, as the model file records them (entities, k, scheme of each point).
+    assert [(p["workload"]["entities"], p["workload"]["perms"], p["workload"]["scheme"]) for p in record["points"]] \
+        == [(3000, 64, "kperm"), (4000, 128, "kperm"), (5000, 64, "oph")]
+    assert load_model().source == "calibrated"
+    out = runner.invoke(app, ["calibrate", "--seconds", "0"])
+    assert out.exit_code == 2 and "--seconds must be above 0" in out.output
