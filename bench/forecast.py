@@ -87,10 +87,12 @@ def main() -> None:
             sample = _sample(full, args.share, tmp / f"{shape}-sample.parquet")
             _run(sample, tmp / f"{shape}-warm")  # untimed: kernels loaded, files in the page cache
             small = _run(sample, tmp / f"{shape}-sample-index", args.repeat)
+            history = tmp / f"{shape}-sample-manifest.json"  # the fastest run's: the folder holds the last's
+            history.write_text(json.dumps(small))
             events = pl.scan_parquet(_files(full)).select(pl.len()).collect().item()
             plan = _lshjob("plan", "--threshold", str(THRESHOLD), "--sample", str(sample), "--entity", "entity",
                            "--element", "element", "--entities", str(entities), "--events", str(events),
-                           "--history", str(tmp / f"{shape}-sample-index"))
+                           "--history", str(history))
             fc = plan["forecast"]
             try:
                 measured = _run(full, tmp / f"{shape}-full", args.repeat)
