@@ -4,8 +4,8 @@
 
 For each shape: (1) a tenth of the entities, drawn uniformly, is indexed with ``lshjob run``
 (warm); (2) ``lshjob plan --sample SAMPLE --entities N --events E --history SAMPLE_INDEX``
-forecasts the full run (E: the full data's event count, which a user knows; the model: this
-machine's calibration if there is one, else the shipped default, refined by the sample's run);
+forecasts the full run (E: the full data's event count, which a user knows; the model: a
+``lshjob calibrate`` run first, unless ``--shipped``, refined by the sample's run);
 (3) ``lshjob run`` on the full data, warm, is measured. The table gives forecast / measured for
 total seconds and peak memory (the largest per-stage peak of the manifest), and per stage.
 
@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import subprocess
 import sys
 import tempfile
@@ -35,9 +36,9 @@ THRESHOLD = 0.5
 CACHE_OUT = Path(__file__).parent / "cache" / "forecast"  # the runs' manifests and the plan, to look into
 
 
-def _lshjob(*args: str) -> dict:
+def _lshjob(*args: str, env: dict | None = None) -> dict:
     done = subprocess.run([sys.executable, "-m", "lshjob", *args, "--json", "--quiet"], capture_output=True,
-                          text=True)
+                          text=True, env=env)
     if done.returncode:
         raise SystemExit(f"lshjob {args[0]}: exit {done.returncode}: {done.stderr[-2000:]}")
     return json.loads(done.stdout)
@@ -76,11 +77,17 @@ def main() -> None:
                     help="shape:entities, shape flat or longtail")
     ap.add_argument("--share", type=float, default=0.1, help="the sample's share of the entities")
     ap.add_argument("--repeat", type=int, default=1, help="runs of each measurement; the fastest is kept")
+    ap.add_argument("--shipped", action="store_true", help="forecast with the shipped default, not calibrating first")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     rows, details = [], []
     with tempfile.TemporaryDirectory(prefix="lshjob-forecast-") as tmp:
         tmp = Path(tmp)
+        env = dict(os.environ)
+        if not args.shipped:  # as a user would: lshjob calibrate on this machine, then plan
+            calibrated = _lshjob("calibrate", "--out", str(tmp / "cost-model.json"))
+            env["LSHJOB_COST_MODEL"] = calibrated["path"]
+            details.append(f"calibration: {calibrated['provenance']} ({calibrated['seconds']} s)")
         for spec in args.runs:
             shape, entities = spec.split(":")[0], int(spec.split(":")[1])
             full = _events(shape, entities)
@@ -92,7 +99,7 @@ def main() -> None:
             events = pl.scan_parquet(_files(full)).select(pl.len()).collect().item()
             plan = _lshjob("plan", "--threshold", str(THRESHOLD), "--sample", str(sample), "--entity", "entity",
                            "--element", "element", "--entities", str(entities), "--events", str(events),
-                           "--history", str(history))
+                           "--history", str(history), env=env)
             fc = plan["forecast"]
             try:
                 measured = _run(full, tmp / f"{shape}-full", args.repeat)

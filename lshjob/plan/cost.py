@@ -221,7 +221,8 @@ class CostModel:
                     if stage not in measured:
                         continue
                     fit = fits[stage]
-                    if fit.terms and not any(fit.coefficients):  # no slope fitted: the run gives the first term's
+                    if fit.terms and not any(fit.coefficients) and stage != "plan":  # the run gives a slope
+                        # (not to the plan stage: it draws a sample of a fixed size, its cost about constant)
                         fit = fits[stage] = Fit(fit.terms, fit.constant, (1.0,) + (0.0,) * (len(fit.terms) - 1))
                     var = fit.variable(w)
                     beyond = measured[stage] - fit.constant
