@@ -27,7 +27,7 @@ import itertools
 import json
 import math
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from importlib import resources
 from pathlib import Path
 
@@ -140,13 +140,11 @@ class Fit:
     constant: float
     coefficients: tuple[float, ...]
 
-    def variable(self, w: Workload, sliced: float | None = None) -> float:
-        """The counts' part; with ``sliced`` (bytes), the terms of :data:`SLICED` held to it."""
-        parts = [c * w.value(t) for c, t in zip(self.coefficients, self.terms)]
-        if sliced is not None:
-            held = sum(p for p, t in zip(parts, self.terms) if t in SLICED)
-            return float(sum(parts) - held + min(held, sliced))
-        return float(sum(parts))
+    def variable(self, w: Workload, sliced: Workload | None = None) -> float:
+        """The counts' part; the terms of :data:`SLICED` counted in ``sliced`` when given (the
+        counts of one slice)."""
+        return float(sum(c * (sliced if sliced is not None and t in SLICED else w).value(t)
+                         for c, t in zip(self.coefficients, self.terms)))
 
     def predict(self, w: Workload) -> float:
         return self.constant + self.variable(w)
@@ -244,14 +242,16 @@ class CostModel:
         out["total"] = sum(out.values()) + self.seconds["other"].predict(w)
         return out
 
-    def stage_memory(self, w: Workload, slice_bytes: float | None = None) -> dict[str, float]:
-        """Peak memory per stage; ``slice_bytes``: what a slice of signatures or a batch of the
-        band search may hold (the budget's share), which bounds those terms in signing and banding."""
-        return {s: self._predict("memory", self.memory, s, w, slice_bytes if s in ("sign", "band") else None)
+    def stage_memory(self, w: Workload, slice_rows: float | None = None) -> dict[str, float]:
+        """Peak memory per stage; ``slice_rows``: the representatives signed and banded at a time
+        (the run's :meth:`lshjob.runtime.budget.Budget.sign_slice_rows`), which bounds the
+        signature words and bucket rows signing and banding hold."""
+        held = replace(w, representatives=min(w.representatives, slice_rows)) if slice_rows else w
+        return {s: self._predict("memory", self.memory, s, w, held if s in ("sign", "band") else None)
                 for s in STAGES}
 
     def _predict(self, kind: str, fits: dict[str, Fit], stage: str, w: Workload,
-                 sliced: float | None = None) -> float:
+                 sliced: Workload | None = None) -> float:
         fit = fits[stage]
         return fit.constant + self.factors[kind].get(stage, 1.0) * fit.variable(w, sliced)
 

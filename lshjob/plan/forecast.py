@@ -12,8 +12,9 @@ from __future__ import annotations
 from dataclasses import replace
 
 from lshjob.plan.cost import STAGES, CostModel, Workload
-from lshjob.runtime.budget import SLICE_SHARE, Budget, default_memory, dense_span, grouping_bytes
+from lshjob.runtime.budget import Budget, default_memory, dense_span, grouping_bytes
 
+SLICE_ROW_BYTES = 28  # a bucket row as the band engine counts it (lshjob.index.band.local.ROW_BYTES)
 BOUNDED = ("join", "verify", "publish")  # stages whose memory the run sizes from the budget
 
 
@@ -32,7 +33,7 @@ def forecast(model: CostModel, w: Workload, memory: int | None = None, parts: in
     memory = memory or default_memory()
     split = in_parts(w, memory, parts, dense_keys)
     seconds = model.stage_seconds(w)
-    by_stage = model.stage_memory(w, memory / SLICE_SHARE)
+    by_stage = model.stage_memory(w, Budget(memory).sign_slice_rows(w.perms, w.bands, SLICE_ROW_BYTES))
     notes = []
     held = [s for s in BOUNDED if by_stage[s] > memory]
     for s in held:  # DuckDB's limit and spill, verification's and publishing's blocks: sized from the budget
