@@ -162,6 +162,8 @@ def forecast_report(forecast: dict) -> str:
     lines.append(f"coefficients: {said}: {coeff['provenance']}")
     if coeff["refined_from"]:
         lines.append(f"refined from {len(coeff['refined_from'])} run(s): {', '.join(coeff['refined_from'])}")
+    if coeff.get("not_refined_from"):
+        lines.append("not refined from (under 100,000 events, or no bands): " + ", ".join(coeff["not_refined_from"]))
     if forecast["runners_up"]:
         lines += ["", f"{'':2}{'k':>5}{'b':>5}{'r':>4}{'recall':>8}{'candidates':>13}{'seconds':>10}"]
         for r in forecast["runners_up"]:
