@@ -157,7 +157,7 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
                         f"than --max-candidates {bound:.3g}: lshjob run would refuse it; raise the threshold or "
                         f"--max-candidates"] if expected > bound else [])
     if curve:  # the plan's page: the same shape at a tenth to a hundred times the size
-        out["curve"] = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], memory)
+        out["curve"] = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], memory, top_k)
     return out
 
 

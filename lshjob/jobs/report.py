@@ -95,7 +95,8 @@ def run_forecast(manifest: Manifest) -> dict | None:
     model = load_model()
     load = Workload.from_manifest(record)
     at = forecast(model, load, manifest.memory_budget_bytes)
-    curve = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], manifest.memory_budget_bytes)
+    curve = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], manifest.memory_budget_bytes,
+                           manifest.top_k_effective)
     point = {"entities": load.entities, "seconds": manifest.seconds["total"],
              "peak_memory_bytes": max(manifest.peak_memory_bytes.values(), default=0),
              "index_bytes": (manifest.output or {}).get("bytes")}

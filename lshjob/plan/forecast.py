@@ -61,31 +61,25 @@ def forecast(model: CostModel, w: Workload, memory: int | None = None, parts: in
     }
 
 
-def scaled(w: Workload, factor: float) -> Workload:
+def scaled(w: Workload, factor: float, top_k: int = 20) -> Workload:
     """The workload of ``factor`` times the sets, with the same shape: events, sets and rows
-    linear; candidate and verified pairs as the plan scales them (pairs grow with the square
-    of the sets for a fixed share of similar pairs: ``N^2`` within, as the planner's scale)."""
+    linear; candidate and verified pairs with the square of the sets (a uniform sample of a
+    share p of the entities keeps p^2 of the pairs, as the planner scales them); published
+    rows as the verified pairs, at most ``top_k`` an entity."""
     pairs = factor * factor
     return replace(w, events=w.events * factor, entities=w.entities * factor,
                    membership_rows=w.membership_rows * factor, representatives=w.representatives * factor,
                    candidate_pairs=w.candidate_pairs * pairs, verified_pairs=w.verified_pairs * pairs,
-                   published_rows=min(w.published_rows * pairs, w.entities * factor * max(
-                       w.published_rows / max(w.entities, 1), 1.0)),
+                   published_rows=min(w.published_rows * pairs, w.entities * factor * top_k),
                    shared_bucket_rows=None)
 
 
 def forecast_curve(model: CostModel, w: Workload, sizes: list[float], memory: int | None = None,
-                   linear_pairs: bool = False) -> list[dict]:
-    """Total seconds, peak memory and disk at each entity count of ``sizes``. Pairs grow with
-    the square of N unless ``linear_pairs`` (each entity with a bounded number of look-alikes)."""
+                   top_k: int = 20) -> list[dict]:
+    """Total seconds, peak memory, disk and the index's bytes at each entity count of ``sizes``."""
     out = []
     for n in sizes:
-        factor = n / max(w.entities, 1)
-        at = scaled(w, factor)
-        if linear_pairs:
-            at = replace(at, candidate_pairs=w.candidate_pairs * factor, verified_pairs=w.verified_pairs * factor,
-                         published_rows=w.published_rows * factor)
-        f = forecast(model, at, memory)
+        f = forecast(model, scaled(w, n / max(w.entities, 1), top_k), memory)
         out.append({"entities": n, "seconds": f["seconds"]["total"], "peak_memory_bytes": f["peak_memory_bytes"],
                     "disk_bytes": f["disk_bytes"]["total"], "index_bytes": f["disk_bytes"]["output"],
                     "in_parts": f["in_parts"]})
