@@ -95,6 +95,8 @@ def test_plan_report_page_holds_the_forecast_and_runners_up(tmp_path):
     m = read_manifest(tmp_path / "idx")
     assert fc["pair_corrections"]["candidate_pairs"] == pytest.approx(
         m.counts["candidate_pairs"] / m.plan["predicted"]["expected_candidates"])
+    # and the share of entities left as representatives once identical sets collapse
+    assert fc["counts"]["representatives"] == round(3000 * m.counts["representatives"] / m.counts["entities"])
     assert f"{fc['seconds']['total']:.2f}" in text
     rows = re.search(r'<table id="runners-table">(.*?)</table>', text, flags=re.S).group(1)
     assert len(re.findall("<tr>", rows)) == 1 + 1 + len(fc["runners_up"])

@@ -19,6 +19,7 @@ from lshjob.jobs.calibrate import calibrate as calibrate_model
 from lshjob.jobs.calibrate import refine_sources
 from lshjob.jobs.options import default_of
 from lshjob.plan.choose import PLAN_BY
+from lshjob.plan.cost import load_model
 from lshjob.report.charts import write_chart
 from lshjob.report.text import forecast_report, plan_report
 from lshjob.runtime.budget import parse_size
@@ -99,15 +100,16 @@ def plan(
     runs = refine_sources(history or [])
     spec = EventSpec(entity=entity, element=element, on_null=on_null) if entity and element else None
     shape: dict = {}
+    model = load_model().refine(runs)  # this machine's calibration (or the shipped default), refined by --history
     result = api.plan_banding(
         threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed,
         bands=bands, rows=rows, max_candidates=max_candidates, plan_by=plan_by, scheme=scheme, events=events,
-        top_k=top_k, shape=shape,
+        top_k=top_k, model=model, shape=shape, history=runs,
     )
     summary = api.plan_summary(result, sample)
     summary["plan_by"] = plan_by
-    summary["forecast"] = api.forecast_plan(result, shape, entities, events, budget, None, top_k, history=runs,
-                                            max_candidates=max_candidates, curve=report is not None)
+    summary["forecast"] = api.forecast_plan(result, shape, entities, events, budget, None, top_k, model, history=runs,
+                                            max_candidates=max_candidates, curve=report is not None, refined=True)
     if chart is not None and result.bands is None:
         raise ParameterError("--chart draws the S-curve of a banding; at threshold 1.0 there is none")
     if chart is not None:

@@ -41,6 +41,7 @@ def plan_banding(
     top_k: int = default_of("top_k"),
     model: CostModel | None = None,
     shape: dict | None = None,
+    history: list | None = None,
 ) -> Plan:
     """Choose (k, b, r) with :func:`lshjob.plan.choose.choose_plan`, as ``lshjob run`` does.
     Without ``sample``: theory mode (weighted FP/FN areas, k default 128). With ``sample`` (a
@@ -54,7 +55,8 @@ def plan_banding(
     ``model`` (default: :func:`lshjob.plan.cost.load_model`) for ``entities`` sets and
     ``events`` events (default: scaled from the sample) signed with ``scheme``. ``shape``, when
     given, receives what the sample held (entities, events, membership rows, dense keys): what
-    :func:`forecast_plan` scales from."""
+    :func:`forecast_plan` scales from. ``history``: manifests of real runs that correct the
+    predicted pairs in the costs (``model`` is refined by them already, when given)."""
     check_options({"threshold": threshold, "perms": perms, "recall": recall, "sample_size": sample_size,
                    "bands": bands, "rows": rows})
     if max_candidates is not None:
@@ -101,9 +103,10 @@ def plan_banding(
     scheme = meta.get("scheme", scheme)
     costing = None
     if plan_by == "cost" and hist is not None:
-        model = model or load_model()
+        model = model or load_model().refine(history or [])
+        pairs = count_factors(history or [])
         costing = lambda figures: model.stage_seconds(_workload(figures, shape, entities, events, scheme,
-                                                                top_k))["total"]
+                                                                top_k, pairs))["total"]
     return choose_plan(threshold, hist, perms=perms, bands=bands, rows=rows, recall=recall, fp_weight=fp_weight,
                        fn_weight=fn_weight, max_candidates=max_candidates, runners_up=runners_up,
                        signature_perms=meta.get("k"),
@@ -122,29 +125,31 @@ def _workload(figures: dict, shape: dict, entities: int | None, events: int | No
     per_set = shape["events"] / max(shape["entities"], 1)
     e = events if events is not None else per_set * n
     return Workload.predicted(figures, n, e, membership_share=shape["membership_rows"] / max(shape["events"], 1),
+                              representative_share=(pairs or {}).get("representative_share", 1.0),
                               scheme=scheme or "kperm", top_k=top_k)
 
 
 def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: int | None = None,
                   memory: int | None = None, parts: int | None = None, top_k: int = default_of("top_k"),
                   model: CostModel | None = None, history: list | None = None,
-                  max_candidates: float | None = None, curve: bool = False) -> dict:
+                  max_candidates: float | None = None, curve: bool = False, refined: bool = False) -> dict:
     """The forecast of ``lshjob plan`` (:func:`lshjob.plan.forecast.forecast`) for the chosen
     plan, each runner-up's predicted seconds, and warnings (above ``--max-candidates``, or the
     run's default bound, at this size). ``history``: manifests of real runs that refine the
-    model (:meth:`lshjob.plan.cost.CostModel.refine`). Theory and identical-only plans have no
-    predicted candidates: their forecast says so."""
+    model (:meth:`lshjob.plan.cost.CostModel.refine`; ``refined``: ``model`` already is) and
+    correct the predicted pairs. Theory and identical-only plans have no predicted candidates:
+    their forecast says so."""
     if not plan.banded or plan.histogram is None or not shape:
         return {"available": False, "why": "a forecast needs predicted candidates: plan from a sample (--sample)"}
     model = model or load_model()
-    if history:
+    if history and not refined:
         model.refine(history)
     pairs = count_factors(history or [])
     scheme = plan.scheme or "kperm"
     load = _workload(plan.predicted, shape, entities, events, scheme, top_k, pairs)
     out = forecast(model, load, memory, parts, shape.get("dense_keys", True))
     out["available"] = True
-    out["pair_corrections"] = pairs  # measured / predicted pairs of the --history runs
+    out["pair_corrections"] = pairs  # measured / predicted pairs of the --history runs, their representatives' share
     out["runners_up"] = [
         {"perms": r["perms"], "bands": r["bands"], "rows": r["rows"],
          "expected_candidates": r.get("expected_candidates"), "expected_recall": r.get("expected_recall"),

@@ -279,10 +279,13 @@ class CostModel:
 
 def count_factors(manifests: list[tuple[str, dict]]) -> dict[str, float]:
     """Measured / predicted candidate and verified pairs of real runs (geometric mean), the
-    correction a forecast applies to its plan's predicted pairs; 1 where no run tells."""
-    logs: dict[str, list[float]] = {"candidate_pairs": [], "verified_pairs": []}
+    correction a forecast applies to its plan's predicted pairs, and the share of entities
+    that are representatives (identical sets collapsed); 1 where no run tells."""
+    logs: dict[str, list[float]] = {"candidate_pairs": [], "verified_pairs": [], "representative_share": []}
     for _, m in manifests:
         predicted, counts = (m.get("plan") or {}).get("predicted") or {}, m.get("counts") or {}
+        if counts.get("entities") and counts.get("representatives"):
+            logs["representative_share"].append(math.log(counts["representatives"] / counts["entities"]))
         for count, key in (("candidate_pairs", "expected_candidates"), ("verified_pairs", "expected_verified")):
             if predicted.get(key, 0) > 0 and counts.get(count, 0) > 0:
                 logs[count].append(math.log(counts[count] / predicted[key]))
