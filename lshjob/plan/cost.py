@@ -9,16 +9,21 @@ calibration (``lshjob calibrate``: small generated runs on this machine, kept in
 default (``cost_default.json``, whose ``provenance`` says where and how they were measured).
 
 Fitting: for each stage, least squares of the relative error (every run counts alike) with
-no coefficient below zero, the best of every subset of the terms (there are at most four).
+no coefficient below zero, the best of every subset of the terms (there are at most three);
+memory slopes within what a row can hold (:data:`MEMORY_CEILING`). Signing and banding hold
+one slice of representatives at a time: their memory counts the signature words and bucket
+rows of one slice (:meth:`CostModel.stage_memory`).
 Refining from real runs (their manifests, or a store's history): per stage, the ratio of
 what was measured to what the calibrated model predicts for that run, beyond the constant,
 the geometric mean over the runs weighted by their size, multiplies the forecast beyond the
-constant (a stage fitted with no slope takes its first term's from the run). One real run of
+constant (a stage fitted with no slope takes its first term's from the run, except the plan
+stage, which draws a sample of a fixed size). One real run of
 the data to be indexed (a sample) so carries its shape (set sizes, bucket sizes, candidates per
 entity) into the forecast at any size. Runs under 100,000 events are not used (their
 seconds are the constant's, or a first run's compiling, more than the slopes'). A run also
 corrects the plan's predicted candidate and verified pairs: the ratio of its measured to its
-plan's predicted counts (:func:`count_factors`).
+plan's predicted counts, and the share of entities left once identical sets collapse
+(:func:`count_factors`).
 """
 
 from __future__ import annotations
