@@ -16,8 +16,10 @@ rows of one slice (:meth:`CostModel.stage_memory`).
 Refining from real runs (their manifests, or a store's history): per stage, the ratio of
 what was measured to what the calibrated model predicts for that run, beyond the constant,
 the geometric mean over the runs weighted by their size, multiplies the forecast beyond the
-constant (a stage fitted with no slope takes its first term's from the run, except the plan
-stage, which draws a sample of a fixed size). One real run of
+constant. Seconds are refined only where the run's part beyond the constant is at least the
+constant (a sample's run spends most of a small stage on fixed costs, and timing noise on a
+shared machine then passes for a slope); memory everywhere (a stage's memory fitted with no
+slope takes its first term's from the run). One real run of
 the data to be indexed (a sample) so carries its shape (set sizes, bucket sizes, candidates per
 entity) into the forecast at any size. Runs under 100,000 events are not used (their
 seconds are the constant's, or a first run's compiling, more than the slopes'). A run also
@@ -224,13 +226,12 @@ class CostModel:
                     if stage not in measured:
                         continue
                     fit = fits[stage]
-                    if fit.terms and not any(fit.coefficients) and stage != "plan":  # the run gives a slope
-                        # (not to the plan stage: it draws a sample of a fixed size, its cost about constant)
+                    if kind == "memory" and fit.terms and not any(fit.coefficients):  # the run gives a slope
                         fit = fits[stage] = Fit(fit.terms, fit.constant, (1.0,) + (0.0,) * (len(fit.terms) - 1))
                     var = fit.variable(w)
                     beyond = measured[stage] - fit.constant
-                    if var <= 0 or beyond <= 0:
-                        continue
+                    if var <= 0 or beyond <= 0 or (kind == "seconds" and beyond < fit.constant):
+                        continue  # seconds: only where the counts' part of the run is at least the constant
                     logs[kind].setdefault(stage, []).append((math.log(beyond / var), size))
             out = m.get("output") or {}
             if out.get("rows"):
