@@ -80,7 +80,7 @@ def test_page_is_one_file_with_no_network_reference_and_every_section(index, pag
 def test_figures_are_valid_svg(page):
     _, text = page
     svgs = _svgs(text)
-    assert len(svgs) == 3  # S-curve, stages, distributions
+    assert len(svgs) == 4  # S-curve, stages, distributions, forecast curves
     for svg in svgs:
         # Oracle: an XML parser (xml.etree); the root is an SVG element with drawn paths.
         root = ET.fromstring(svg)
@@ -149,20 +149,51 @@ def test_audit_file_that_is_not_an_audit_is_refused(index, tmp_path):
     assert not (tmp_path / "r.html").exists()
 
 
-def test_page_renders_in_headless_chromium(index, page, tmp_path):
+# headless Chromium as root in a container: no sandbox, no GPU, nothing fetched, a new empty profile
+CHROMIUM_FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                  "--disable-background-networking", "--disable-component-update", "--disable-sync",
+                  "--enable-logging=stderr", "--v=0")
+
+
+def _render(page_file, shot, tmp_path, height=1400):
+    """Screenshot of ``page_file`` in headless Chromium, and the console lines it logged."""
     if not shutil.which(CHROMIUM):
-        print(f"skipped: {CHROMIUM} is not installed")
+        print(f"skipped: {CHROMIUM} is not installed (.ci/run installs Debian's chromium when apt-get is there)")
         pytest.skip(f"{CHROMIUM} is not installed: the page is not rendered in a browser")
+    profile = tmp_path / f"profile-{shot.stem}"
+    profile.mkdir()
+    done = subprocess.run([CHROMIUM, *CHROMIUM_FLAGS, f"--user-data-dir={profile}", f"--screenshot={shot}",
+                           f"--window-size=1000,{height}", page_file.as_uri()],
+                          capture_output=True, text=True, timeout=120, check=True)
+    return [line for line in done.stderr.splitlines() if ":CONSOLE" in line]
+
+
+def _pixels(shot):
     import matplotlib.image
 
+    return matplotlib.image.imread(shot)
+
+
+def test_page_renders_in_headless_chromium(index, page, tmp_path):
     shot = tmp_path / "shot.png"
-    subprocess.run([CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", f"--screenshot={shot}",
-                    "--window-size=1000,1400", (index / "report.html").as_uri()],
-                   capture_output=True, timeout=120, check=True)
-    # Oracle: the screenshot's pixels (read by matplotlib): a blank page is one colour.
-    pixels = matplotlib.image.imread(shot)
+    console = _render(index / "report.html", shot, tmp_path)
+    # Oracle: the screenshot's pixels (read by matplotlib): a blank page is one colour; and the
+    # browser's own console log: the page has no script, so any console line is a problem.
+    pixels = _pixels(shot)
     assert pixels.ndim == 3 and pixels[..., :3].std() > 0.02
     assert len(np.unique(pixels[..., :3].reshape(-1, 3), axis=0)) > 50
+    assert console == []
+
+
+def test_the_browser_check_catches_console_errors_and_blank_pages(tmp_path):
+    # The checks above can fail: a page logging an error, and a blank page, are caught.
+    noisy = tmp_path / "noisy.html"
+    noisy.write_text('<!DOCTYPE html><html><body><p>x</p><script>console.error("broken")</script></body></html>')
+    assert any("broken" in line for line in _render(noisy, tmp_path / "noisy.png", tmp_path))
+    blank = tmp_path / "blank.html"
+    blank.write_text("<!DOCTYPE html><html><body></body></html>")
+    _render(blank, tmp_path / "blank.png", tmp_path)
+    assert _pixels(tmp_path / "blank.png")[..., :3].std() < 0.02
 
 
 def test_index_without_bands_still_has_every_section(tmp_path, small_events):

@@ -17,6 +17,7 @@ from lshjob.cli.common import emit as _emit
 from lshjob.cli.failures import EXIT_CODES, run_app
 from lshjob.cli.failures import ends_cleanly as _fail_cleanly
 from lshjob.cli.more_commands import register as register_more
+from lshjob.cli.plan_command import register as register_plan
 from lshjob.cli.refresh_command import register as register_refresh
 from lshjob.cli.report_command import register as register_report
 from lshjob.cli.report_command import write_report
@@ -27,15 +28,14 @@ from lshjob.errors import ParameterError
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs import sign as api
 from lshjob.jobs.config import load_run_config, merge_settings
-from lshjob.jobs.options import RunOptions, default_of, run_settings
+from lshjob.jobs.options import RunOptions, run_settings
 from lshjob.jobs.options import defaults as run_defaults
 from lshjob.jobs.options import required as required_options
 from lshjob.jobs.run import run_job
-from lshjob.report.charts import write_chart
-from lshjob.report.text import audit_report, plan_report, run_report
+from lshjob.report.text import audit_report, run_report
 from lshjob.runtime import stopping
 from lshjob.runtime.budget import parse_size
-from lshjob.runtime.outputs import demo_folder, output_file
+from lshjob.runtime.outputs import demo_folder
 from lshjob.runtime.progress import StageProgress
 from lshjob.sign.signatures import SignatureParams
 
@@ -155,56 +155,7 @@ def merge(
     _emit(summary, as_json, quiet, f"merged {summary['rows_in']} rows into {summary['rows_out']} -> {out}")
 
 
-@app.command()
-@_fail_cleanly
-def plan(
-    threshold: Annotated[float, typer.Option(
-        help="Jaccard similarity a pair must reach, in (0, 1]; 1 pairs identical sets only.")],
-    perms: Annotated[int | None, typer.Option(
-        help="Signature length k (default: 128 in theory mode; chosen in data mode).")] = None,
-    recall: Annotated[float, typer.Option(
-        help="Data mode: expected recall of pairs at or above the threshold.")] = default_of("recall"),
-    sample: Annotated[str | None, typer.Option(help="Signature file or events to plan from (data mode).")] = None,
-    entity: Annotated[str | None, typer.Option(help="Events sample: entity column.")] = None,
-    element: Annotated[str | None, typer.Option(help="Events sample: element column.")] = None,
-    on_null: Annotated[str, typer.Option(help="Events sample: null keys 'error' or 'drop' the row.")] = "error",
-    sample_size: Annotated[int, typer.Option(help="Entities drawn from the sample.")] = default_of("sample_size"),
-    entities: Annotated[int | None, typer.Option(
-        help="Scale pair counts to this many entities (e.g. next quarter's).")] = None,
-    fp_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-positive area.")] = 0.5,
-    fn_weight: Annotated[float, typer.Option(help="Theory mode: weight of the false-negative area.")] = 0.5,
-    bands: Annotated[int | None, typer.Option(help="Judge this number of bands instead of choosing.")] = None,
-    rows: Annotated[int | None, typer.Option(help="Judge this number of rows per band instead of choosing.")] = None,
-    chart: Annotated[Path | None, typer.Option(help="Write the S-curve chart (.svg or .png).")] = None,
-    seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
-    max_candidates: Annotated[float | None, typer.Option(
-        help="Refuse plans predicting more candidate pairs, as lshjob run does.")] = None,
-    quiet: Quiet = False,
-    as_json: AsJson = False,
-) -> None:
-    """Choose bands b and rows r (and k) for a Jaccard threshold.
-
-    Example (theory): lshjob plan --threshold 0.5 --perms 128
-
-    Example (data, scaled to 5 million patrons): lshjob plan --threshold 0.5
-    --sample demo_data/loans.parquet --entity patron --element title --entities 5000000
-
-    Example (judge a given plan): lshjob plan --threshold 0.5 --perms 128 --bands 20 --rows 5
-    """
-    if chart is not None:  # before the sample is read
-        chart = output_file(chart, [sample] if sample else [], "plan --chart", "--chart")
-    spec = EventSpec(entity=entity, element=element, on_null=on_null) if entity and element else None
-    result = api.plan_banding(
-        threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed,
-        bands=bands, rows=rows, max_candidates=max_candidates,
-    )
-    summary = api.plan_summary(result, sample)
-    if chart is not None and result.bands is None:
-        raise ParameterError("--chart draws the S-curve of a banding; at threshold 1.0 there is none")
-    if chart is not None:
-        write_chart(chart, result.bands, result.rows, threshold, result.histogram)
-        summary["chart"] = str(chart)
-    _emit(summary, as_json, quiet, plan_report(summary))
+register_plan(app)  # plan and calibrate (lshjob.cli.plan_command), listed after merge
 
 
 @app.command()

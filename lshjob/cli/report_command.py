@@ -24,18 +24,23 @@ def register(app: typer.Typer) -> None:
 
 
 def write_report(index: str | Path, out: str | Path, audit: str | Path | dict | None = None,
-                 sample: bool = True) -> dict:
+                 sample: bool = True, store: str | Path | None = None) -> dict:
     """Write the report of the index in ``index`` to ``out``; return its summary."""
     try:
         import matplotlib  # noqa: F401
     except ImportError:
         raise ParameterError("lshjob report needs matplotlib (pip install 'lshjob[charts]')") from None
-    data = gather(index, audit, sample)
+    try:
+        import jinja2  # noqa: F401
+    except ImportError:
+        raise ParameterError("lshjob report needs Jinja2 (pip install 'jinja2>=3.1', a dependency of lshjob)") from None
+    data = gather(index, audit, sample, store)
     target = output_file(out, [Path(index) / NEIGHBOURS, Path(index) / MANIFEST], "lshjob report")
     written = write_page(data, target)
     return {"index": str(index), "out": str(written), "bytes": written.stat().st_size,
             "sections": list(SECTIONS), "audit": data.audit is not None,
-            "sample_histogram": data.histogram is not None, "notes": data.notes}
+            "sample_histogram": data.histogram is not None, "forecast": data.forecast is not None,
+            "history_runs": len(data.history or []), "notes": data.notes}
 
 
 def report(
@@ -48,20 +53,25 @@ def report(
         "--sample/--no-sample",
         help="Redraw the planner's sample similarity histogram from the run's events (when they exist).",
     )] = True,
+    store: Annotated[str | None, typer.Option(
+        help="A refresh store (lshjob refresh --store): its runs' seconds, memory and entities over time.")] = None,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No summary text.")] = False,
     as_json: Annotated[bool, typer.Option("--json", help="Print the summary as JSON on stdout.")] = False,
 ) -> None:
     """Write one self-contained HTML page about an index: the plan's S-curve and threshold,
     predicted and measured recall, seconds and peak memory per stage against the budget,
-    bucket sizes and skew handling, candidates and neighbours per entity. No network: the
-    figures are inline SVG.
+    bucket sizes and skew handling, candidates and neighbours per entity, forecast curves of
+    time, memory and disk against the number of entities (the run a point), and a store's
+    history. No network: the figures are inline SVG.
 
     Example: lshjob report demo-run/index --out report.html
 
     Example (with the measured recall): lshjob audit index --json > audit.json;
     lshjob report index --audit audit.json --out report.html
+
+    Example (with a store's history): lshjob report nightly/index --store nightly/store --out report.html
     """
-    summary = write_report(index, out, audit, sample)
+    summary = write_report(index, out, audit, sample, store)
     if as_json:
         to_stdout(json.dumps(summary, indent=2, sort_keys=True))
     elif not quiet:

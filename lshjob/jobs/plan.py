@@ -15,6 +15,8 @@ from lshjob.jobs.options import check_options, default_of
 from lshjob.plan import banding as planner
 from lshjob.plan import similarity
 from lshjob.plan.choose import Plan, choose_plan
+from lshjob.plan.cost import CostModel, Workload, count_factors, load_model
+from lshjob.plan.forecast import forecast, forecast_curve
 from lshjob.sign.signatures import params_from_metadata, read_signatures
 
 
@@ -33,6 +35,13 @@ def plan_banding(
     bands: int | None = default_of("bands"),
     rows: int | None = default_of("rows"),
     max_candidates: float | None = None,
+    plan_by: str = "candidates",
+    scheme: str = default_of("scheme"),
+    events: int | None = None,
+    top_k: int = default_of("top_k"),
+    model: CostModel | None = None,
+    shape: dict | None = None,
+    history: list | None = None,
 ) -> Plan:
     """Choose (k, b, r) with :func:`lshjob.plan.choose.choose_plan`, as ``lshjob run`` does.
     Without ``sample``: theory mode (weighted FP/FN areas, k default 128). With ``sample`` (a
@@ -40,13 +49,23 @@ def plan_banding(
     with the fewest expected candidate pairs, scaled to ``entities`` (default: the entity count
     of the sample file). With ``bands`` and ``rows`` that plan is judged instead of chosen; the
     runners-up are then the recommended plans. ``seed`` draws the sample (the run draws with 0).
-    A plan predicting more than ``max_candidates`` candidate pairs is refused, as by the run."""
+    A plan predicting more than ``max_candidates`` candidate pairs is refused, as by the run.
+
+    ``plan_by="cost"``: the plan meeting ``recall`` with the least total seconds predicted by
+    ``model`` (default: :func:`lshjob.plan.cost.load_model`) for ``entities`` sets and
+    ``events`` events (default: scaled from the sample) signed with ``scheme``. ``shape``, when
+    given, receives what the sample held (entities, events, membership rows, dense keys): what
+    :func:`forecast_plan` scales from. ``history``: manifests of real runs that correct the
+    predicted pairs in the costs (``model`` is refined by them already, when given)."""
     check_options({"threshold": threshold, "perms": perms, "recall": recall, "sample_size": sample_size,
                    "bands": bands, "rows": rows})
     if max_candidates is not None:
         check_options({"max_candidates": max_candidates})
     if entities is not None and entities < 2:
         raise ParameterError(f"--entities must be at least 2; got {entities}")
+    if plan_by == "cost" and sample is None:
+        raise ParameterError("--plan-by cost needs a sample (--sample): the predicted candidates come from it")
+    shape = shape if shape is not None else {}
     if threshold == 1.0:  # identical sets only, grouped exactly: the sample is not needed
         plan = choose_plan(threshold)
         return replace(plan, why=plan.why + "; the sample is not read") if sample is not None else plan
@@ -63,24 +82,91 @@ def plan_banding(
         hist = similarity.sample_histogram_from_signatures(
             table, params_from_metadata(meta), sample_size, seed, entities, threshold
         )
+        sizes = table["set_size"].cast(pl.Float64).sum() if "set_size" in table.columns else table.height
+        shape.update(entities=table.height, events=sizes, membership_rows=sizes, dense_keys=False)
     elif sample is not None:
         if spec is None:
             raise ParameterError(
                 f"{sample}: is not a signature file; to plan from events give --entity and --element"
             )
         if spec.key_columns == ["entity"]:  # the streaming loader: 8-20 bytes an event, not ~100
-            sets = load_membership(sample, spec)[0]
+            sets, report = load_membership(sample, spec)
             n_entities = sets.size
         else:
-            sets = load_sets(sample, spec)[0]
+            sets, report = load_sets(sample, spec)[:2]
             n_entities = sets["entity"].n_unique()
+        shape.update(entities=n_entities, events=report.rows_read, membership_rows=report.membership_rows or
+                     report.rows_read, dense_keys=report.entity_range is not None)
         if n_entities < 2:
             raise InputError(f"{sample}: the sample needs at least 2 entities; got {n_entities}")
         hist = similarity.sample_histogram_from_sets(sets, sample_size, seed, entities, threshold)
+    scheme = meta.get("scheme", scheme)
+    costing = None
+    if plan_by == "cost" and hist is not None:
+        model = model or load_model().refine(history or [])
+        pairs = count_factors(history or [])
+        costing = lambda figures: model.stage_seconds(_workload(figures, shape, entities, events, scheme,
+                                                                top_k, pairs))["total"]
     return choose_plan(threshold, hist, perms=perms, bands=bands, rows=rows, recall=recall, fp_weight=fp_weight,
                        fn_weight=fn_weight, max_candidates=max_candidates, runners_up=runners_up,
                        signature_perms=meta.get("k"),
-                       seed=meta.get("seed"), scheme=meta.get("scheme"))
+                       seed=meta.get("seed"), scheme=scheme, plan_by=plan_by, costing=costing)
+
+
+def _workload(figures: dict, shape: dict, entities: int | None, events: int | None, scheme: str,
+              top_k: int, pairs: dict[str, float] | None = None) -> Workload:
+    """The counts of a run at ``entities`` sets (default: the sample's) and ``events`` events
+    (default: the sample's events per set times the sets) under the plan of ``figures``, its
+    predicted pairs times ``pairs`` (:func:`lshjob.plan.cost.count_factors`) when given."""
+    if pairs:
+        figures = dict(figures, expected_candidates=figures.get("expected_candidates", 0) * pairs["candidate_pairs"],
+                       expected_verified=figures.get("expected_verified", 0) * pairs["verified_pairs"])
+    n = entities or shape["entities"]
+    per_set = shape["events"] / max(shape["entities"], 1)
+    e = events if events is not None else per_set * n
+    return Workload.predicted(figures, n, e, membership_share=shape["membership_rows"] / max(shape["events"], 1),
+                              representative_share=(pairs or {}).get("representative_share", 1.0),
+                              scheme=scheme or "kperm", top_k=top_k)
+
+
+def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: int | None = None,
+                  memory: int | None = None, parts: int | None = None, top_k: int = default_of("top_k"),
+                  model: CostModel | None = None, history: list | None = None,
+                  max_candidates: float | None = None, curve: bool = False, refined: bool = False) -> dict:
+    """The forecast of ``lshjob plan`` (:func:`lshjob.plan.forecast.forecast`) for the chosen
+    plan, each runner-up's predicted seconds, and warnings (above ``--max-candidates``, or the
+    run's default bound, at this size). ``history``: manifests of real runs that refine the
+    model (:meth:`lshjob.plan.cost.CostModel.refine`; ``refined``: ``model`` already is) and
+    correct the predicted pairs. Theory and identical-only plans have no predicted candidates:
+    their forecast says so."""
+    if not plan.banded or plan.histogram is None or not shape:
+        return {"available": False, "why": "a forecast needs predicted candidates: plan from a sample (--sample)"}
+    model = model or load_model()
+    if history and not refined:
+        model.refine(history)
+    pairs = count_factors(history or [])
+    scheme = plan.scheme or "kperm"
+    load = _workload(plan.predicted, shape, entities, events, scheme, top_k, pairs)
+    out = forecast(model, load, memory, parts, shape.get("dense_keys", True))
+    out["available"] = True
+    out["pair_corrections"] = pairs  # measured / predicted pairs of the --history runs, their representatives' share
+    out["runners_up"] = [
+        {"perms": r["perms"], "bands": r["bands"], "rows": r["rows"],
+         "expected_candidates": r.get("expected_candidates"), "expected_recall": r.get("expected_recall"),
+         "seconds": round(model.stage_seconds(_workload(r, shape, entities, events, scheme, top_k, pairs))["total"],
+                          3)}
+        for r in plan.runners_up if "expected_candidates" in r]
+    bound = max_candidates if max_candidates is not None else default_of("max_candidates")
+    expected = plan.predicted.get("expected_candidates", 0)
+    out["warnings"] = ([f"the plan predicts {expected:.3g} candidate pairs at {int(load.entities)} entities, more "
+                        f"than --max-candidates {bound:.3g}: lshjob run would refuse it; raise the threshold or "
+                        f"--max-candidates"] if expected > bound else [])
+    if curve:  # the plan's page: the same shape at a tenth to a hundred times the size
+        out["curve"] = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], memory, top_k)
+    return out
+
+
+CURVE_FACTORS = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0)  # the plan page's curve: multiples of the forecast's size
 
 
 def plan_summary(plan: Plan, sample: str | Path | None = None) -> dict:

@@ -21,8 +21,11 @@ from lshjob.errors import InputError
 from lshjob.index.publish import NEIGHBOURS, read_manifest
 from lshjob.ingest.loading import load_membership
 from lshjob.ingest.spec import EventSpec, load_sets
+from lshjob.jobs import refresh
 from lshjob.plan import similarity
 from lshjob.plan.banding import PairHistogram
+from lshjob.plan.cost import Workload, load_model
+from lshjob.plan.forecast import forecast, forecast_curve
 
 AUDIT_KEYS = ("recall", "predicted_recall", "sampled_entities")  # entries of an audit the report reads
 
@@ -40,12 +43,16 @@ class ReportData:
     audit: dict | None = None
     histogram: PairHistogram | None = None
     notes: list[str] = field(default_factory=list)
+    forecast: dict | None = None  # curves against N and forecast per stage (:func:`run_forecast`)
+    history: list[dict] | None = None  # a store's refreshes, oldest first
 
 
-def gather(index_dir: str | Path, audit: str | Path | dict | None = None, sample: bool = True) -> ReportData:
+def gather(index_dir: str | Path, audit: str | Path | dict | None = None, sample: bool = True,
+           store: str | Path | None = None) -> ReportData:
     """The report's data for the index in ``index_dir``. ``audit``: an audit's report (the dict
     :func:`lshjob.audit.check.audit_index` returns) or a file holding it as JSON. ``sample``:
-    redraw the planner's sample histogram from the run's events when they exist."""
+    redraw the planner's sample histogram from the run's events when they exist. ``store``: a
+    refresh store whose history is shown."""
     index_dir = Path(index_dir)
     if not index_dir.is_dir():
         raise InputError(f"{index_dir}: no such index folder")
@@ -69,7 +76,33 @@ def gather(index_dir: str | Path, audit: str | Path | dict | None = None, sample
         data.histogram = _sample_histogram(manifest, data.notes)
     else:
         data.notes.append("sample histogram not drawn (--no-sample)")
+    data.forecast = run_forecast(manifest)
+    if store is not None:
+        data.history = refresh.history(store)["runs"]
     return data
+
+
+CURVE_FACTORS = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0)  # the report's curves: sizes as multiples of the run's
+
+
+def run_forecast(manifest: Manifest) -> dict | None:
+    """The cost model (:func:`lshjob.plan.cost.load_model`, not refined by this run: the point
+    shows how far the run is from it; a first run also compiles) applied to the run's counts
+    (per stage, beside the measured) and to the same shape at other sizes."""
+    if not manifest.plan.get("bands"):
+        return None
+    record = manifest.to_json()
+    model = load_model()
+    load = Workload.from_manifest(record)
+    at = forecast(model, load, manifest.memory_budget_bytes)
+    curve = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], manifest.memory_budget_bytes,
+                           manifest.top_k_effective)
+    point = {"entities": load.entities, "seconds": manifest.seconds["total"],
+             "peak_memory_bytes": max(manifest.peak_memory_bytes.values(), default=0),
+             "index_bytes": (manifest.output or {}).get("bytes")}
+    return {"curve": curve, "point": point, "seconds": at["seconds"], "peak_by_stage": at["peak_memory_by_stage"],
+            "peak": at["peak_memory_bytes"], "measured_seconds": dict(manifest.seconds),
+            "measured_peak": dict(manifest.peak_memory_bytes), "coefficients": at["coefficients"]}
 
 
 def read_audit(path: str | Path) -> dict:

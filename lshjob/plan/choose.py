@@ -9,6 +9,7 @@ the same (k, b, r). Its :class:`Plan` is what the run's manifest stores under ``
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from enum import StrEnum
 
@@ -25,6 +26,8 @@ from lshjob.plan.banding import (
 from lshjob.sign.signatures import SignatureParams
 
 THEORY_PERMS = 128  # k when none is given and the plan is not chosen from a sample
+PLAN_BY = ("candidates", "cost")  # the rule of data mode: fewest expected candidates, or least predicted seconds
+COST_PERMS_OPH = (512, 1024)  # k tried beyond the default choices when planning by cost with oph
 JUDGED_RECALL = 1e-12  # a given (b, r) is judged, never refused: every plan reaches this
 
 IDENTICAL_ONLY = ("threshold 1.0: only identical sets qualify; they are grouped exactly, "
@@ -114,6 +117,8 @@ def choose_plan(
     signature_perms: int | None = None,
     seed: int | None = None,
     scheme: str | None = None,
+    plan_by: str = "candidates",
+    costing: Callable[[dict], float] | None = None,
 ) -> Plan:
     """Choose (k, b, r) for Jaccard ``threshold``; options are checked by the caller.
 
@@ -128,7 +133,16 @@ def choose_plan(
     reaches ``recall``), and the runners-up are the chosen plans. Above ``max_candidates``
     expected candidate pairs the plan is refused. ``seed`` and ``scheme`` are the hash family's
     (see :meth:`Plan.signature_params`).
+
+    ``plan_by="cost"`` (data mode, with ``costing``: a plan's figures -> predicted total
+    seconds, :mod:`lshjob.plan.cost`): among the plans meeting ``recall``, the least predicted
+    seconds; k also 512 and 1024 with ``scheme="oph"`` (one hash an element: a longer
+    signature costs little to sign). Each plan's figures then hold ``predicted_seconds``.
     """
+    if plan_by not in PLAN_BY:
+        raise ParameterError(f"--plan-by must be one of {', '.join(PLAN_BY)}; got {plan_by!r}")
+    if plan_by == "cost" and costing is None:
+        raise ParameterError("--plan-by cost needs a cost model (lshjob.plan.cost)")
     if threshold >= 1.0:
         return Plan(PlanMode.IDENTICAL, IDENTICAL_ONLY, threshold, seed=seed, scheme=scheme)
     if distinct_sets is not None and distinct_sets < 2:
@@ -162,10 +176,18 @@ def choose_plan(
                 except ParameterError:
                     pass
             why, mode = f"given by --bands {bands} --rows {rows}", PlanMode.EXPLICIT
+        elif plan_by == "cost":
+            if not k and scheme == "oph":
+                choices = DEFAULT_PERMS_CHOICES + COST_PERMS_OPH
+            ranked = _by_cost(data_plans(threshold, histogram, choices, recall), costing)
+            why, mode = _data_why(histogram, recall, "least predicted seconds"), PlanMode.DATA
         else:
             ranked = data_plans(threshold, histogram, choices, recall)
             why, mode = _data_why(histogram, recall), PlanMode.DATA
         figures = [p.as_dict() for p in ranked[: runners_up + 1]]
+        if plan_by == "cost":
+            for f in figures:
+                f["predicted_seconds"] = costing(f)
     chosen = figures[0]
     plan = Plan(
         mode, why, threshold, chosen["perms"], chosen["bands"], chosen["rows"], seed, scheme,
@@ -189,11 +211,20 @@ def check_predicted(plan: Plan, max_candidates: float) -> None:
         )
 
 
-def _data_why(hist: PairHistogram, recall: float) -> str:
+def _by_cost(plans: list, costing: Callable[[dict], float]) -> list:
+    """Plans by predicted total seconds (ties: smaller k, fewer bands)."""
+    def seconds(p) -> float:  # the figures the cost needs, without copying the whole plan
+        return costing({"perms": p.perms, "bands": p.bands, "rows": p.rows, "expected_candidates":
+                        p.expected_candidates, "expected_verified": p.expected_verified})
+
+    return sorted(plans, key=lambda p: (round(seconds(p), 6), p.perms, p.bands))
+
+
+def _data_why(hist: PairHistogram, recall: float, rule: str = "fewest expected candidates") -> str:
     against = "all" if hist.design == "against_all" else "each other"
     drawn = hist.source_entities
     scaled = f"; pairs scaled from a uniform sample of {drawn}" if drawn and drawn != hist.total_entities else ""
-    return (f"data mode: fewest expected candidates with expected recall >= {recall}; {hist.basis} of "
+    return (f"data mode: {rule} with expected recall >= {recall}; {hist.basis} of "
             f"{hist.sample_entities} sampled entities against {against} ({hist.total_entities} entities{scaled})")
 
 

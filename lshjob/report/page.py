@@ -1,19 +1,18 @@
 """The index report: one self-contained HTML file (figures inline as SVG, no script, no
 reference to anything outside the file), built from :class:`lshjob.jobs.report.ReportData` with
-``string.Template`` and every value escaped.
+the Jinja2 template ``templates/index.html.j2`` and every value escaped.
 
 Sections (their ids): ``s-curve`` (the plan's S-curve, threshold and sample histogram; the
 points drawn in ``data-s`` and ``data-p``), ``recall`` (predicted beside measured), ``stages``
 (seconds and peak memory per stage against the budget), ``skew`` (bucket sizes and what skew
-handling did), ``neighbours`` (candidates and neighbours per entity, Jaccard of the rows).
+handling did), ``neighbours`` (candidates and neighbours per entity, Jaccard of the rows),
+``forecast`` (time, memory and disk against N, the run a point), ``history`` (a store's refreshes).
 """
 
 from __future__ import annotations
 
-import json
 from html import escape
 from pathlib import Path
-from string import Template
 
 import numpy as np
 
@@ -21,68 +20,28 @@ from lshjob.core.atomic import atomic_file
 from lshjob.errors import ParameterError
 from lshjob.jobs.report import ReportData
 from lshjob.report import figures
+from lshjob.report.forecast_page import forecast_section, history_section
+from lshjob.report.html_parts import figure as _figure
+from lshjob.report.html_parts import size as _bytes
+from lshjob.report.html_parts import table as _table
+from lshjob.report.templating import markup, render
 
-SECTIONS = ("s-curve", "recall", "stages", "skew", "neighbours")
-
-PAGE = Template("""<!DOCTYPE html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<title>lshjob index report: $title</title>
-<style>
-body { font-family: sans-serif; margin: 2em auto; max-width: 60em; color: #222; background: #fff; }
-h1 { font-size: 1.5em; } h2 { font-size: 1.2em; border-bottom: 1px solid #ccc; margin-top: 2em; }
-table { border-collapse: collapse; margin: 0.5em 0; }
-td, th { border: 1px solid #ccc; padding: 0.2em 0.6em; text-align: right; }
-th { background: #eef2f8; } td.name, th.name { text-align: left; }
-figure { margin: 0.5em 0; } figure svg { max-width: 100%; height: auto; }
-.note { color: #7a4b00; }
-</style>
-</head>
-<body>
-<h1>Index report: $title</h1>
-<p>Run $run_id, $started_at to $finished_at on $host; $entities entities, $rows neighbour rows,
-threshold $threshold, top-k $top_k.</p>
-$notes
-<section id="s-curve">
-<h2>S-curve of the plan</h2>
-<p>$plan_text</p>
-$s_curve
-</section>
-<section id="recall">
-<h2>Recall: predicted and measured</h2>
-$recall
-</section>
-<section id="stages">
-<h2>Seconds and peak memory per stage</h2>
-<p>Memory budget $budget; total $total_seconds s.</p>
-$stages
-</section>
-<section id="skew">
-<h2>Buckets and skew handling</h2>
-$skew
-</section>
-<section id="neighbours">
-<h2>Candidates and neighbours per entity</h2>
-$neighbours
-</section>
-</body>
-</html>
-""")
-
+SECTIONS = ("s-curve", "recall", "stages", "skew", "neighbours", "forecast", "history")
 
 def build_page(data: ReportData) -> str:
-    """The report's HTML text."""
+    """The report's HTML text (template ``templates/index.html.j2``)."""
     m = data.manifest
     threshold = m.options["threshold"]
-    return PAGE.substitute(
-        title=escape(str(data.index)), run_id=escape(m.run_id), started_at=escape(m.started_at),
-        finished_at=escape(m.finished_at), host=escape(m.host), entities=m.counts.get("entities", "?"),
+    return render(
+        "index.html.j2",
+        title=str(data.index), run_id=m.run_id, started_at=m.started_at,
+        finished_at=m.finished_at, host=m.host, entities=m.counts.get("entities", "?"),
         rows=m.output.get("rows", "?"), threshold=threshold, top_k=m.options["top_k"],
-        notes="".join(f'<p class="note">{escape(n)}</p>\n' for n in data.notes),
-        plan_text=escape(_plan_text(m.plan)), s_curve=_s_curve(data), recall=_recall(data),
-        budget=_bytes(m.memory_budget_bytes), total_seconds=m.seconds["total"], stages=_stages(data),
-        skew=_skew(m.skew), neighbours=_neighbours(data),
+        notes=data.notes, plan_text=_plan_text(m.plan), s_curve=markup(_s_curve(data)),
+        recall=markup(_recall(data)), budget=_bytes(m.memory_budget_bytes), total_seconds=m.seconds["total"],
+        stages=markup(_stages(data)), skew=markup(_skew(m.skew)), neighbours=markup(_neighbours(data)),
+        forecast=markup(forecast_section(data.forecast, m.memory_budget_bytes)),
+        history=markup(history_section(data.history)),
     )
 
 
@@ -133,8 +92,9 @@ def _recall(data: ReportData) -> str:
 
 def _stages(data: ReportData) -> str:
     m = data.manifest
-    svg, names = figures.stages(m.seconds, m.peak_memory_bytes, m.memory_budget_bytes)
-    rows = [(n, f"{m.seconds[n]}", _bytes(m.peak_memory_bytes.get(n)),
+    seconds = {k: v for k, v in m.seconds.items() if isinstance(v, int | float)}  # a refresh's own are a dict
+    svg, names = figures.stages(seconds, m.peak_memory_bytes, m.memory_budget_bytes)
+    rows = [(n, f"{seconds[n]}", _bytes(m.peak_memory_bytes.get(n)),
              _fraction(m.peak_memory_bytes[n] / m.memory_budget_bytes if n in m.peak_memory_bytes else None))
             for n in names]
     return (_figure("stages", svg, None, "left: seconds per stage; right: peak memory, the dashed line the budget")
@@ -180,29 +140,5 @@ def _neighbours(data: ReportData) -> str:
             + _table(("", "value"), rows, "neighbour-table"))
 
 
-def _figure(name: str, svg: str, points: dict | None, caption: str) -> str:
-    data = "".join(f" data-{key}=\"{escape(json.dumps(values))}\"" for key, values in (points or {}).items())
-    return (f'<figure class="figure" id="figure-{name}"{data}>\n{figures.svg_ids_free(svg, name + "-")}\n'
-            f"<figcaption>{escape(caption)}</figcaption>\n</figure>\n")
-
-
-def _table(head: tuple, rows: list[tuple], table_id: str) -> str:
-    cells = "".join(f'<th class="name">{escape(h)}</th>' if i == 0 else f"<th>{escape(h)}</th>"
-                    for i, h in enumerate(head))
-    body = "".join("<tr>" + "".join(f'<td class="name">{escape(str(v))}</td>' if i == 0 else
-                                    f"<td>{escape(str(v))}</td>" for i, v in enumerate(row)) + "</tr>\n"
-                   for row in rows)
-    return f'<table id="{table_id}">\n<tr>{cells}</tr>\n{body}</table>\n'
-
-
 def _fraction(value) -> str:
     return "-" if value is None else f"{value:.4f}"
-
-
-def _bytes(value) -> str:
-    if value is None:
-        return "-"
-    for unit, size in (("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
-        if value >= size:
-            return f"{value / size:.1f} {unit}"
-    return f"{value} B"

@@ -141,3 +141,44 @@ def audit_report(r: dict) -> str:
     for entity, neighbour, stored, exact in r["wrong_examples"]:
         lines.append(f"  wrong: {entity} and {neighbour}: stored Jaccard {stored:.4f}, exact {exact:.4f}")
     return "\n".join(lines)  # warnings and failed checks: on stderr (lshjob audit)
+
+
+def forecast_report(forecast: dict) -> str:
+    """The forecast of ``lshjob plan`` as a table: seconds and peak memory per stage, disk,
+    parts, where the coefficients come from, and the runners-up's predicted seconds."""
+    if not forecast.get("available"):
+        return f"forecast: none ({forecast.get('why', '')})"
+    c = forecast["counts"]
+    lines = [f"forecast at {_fmt(c['entities'])} entities, {_fmt(c['events'])} events "
+             f"({_fmt(c['candidate_pairs'])} candidate pairs, {_fmt(c['verified_pairs'])} verified):",
+             f"{'stage':<10}{'seconds':>10}{'peak memory':>14}"]
+    for stage, seconds in forecast["seconds"].items():
+        if stage != "total":
+            lines.append(f"{stage:<10}{seconds:>10.2f}{_size(forecast['peak_memory_by_stage'][stage]):>14}")
+    lines.append(f"{'total':<10}{forecast['seconds']['total']:>10.2f}{_size(forecast['peak_memory_bytes']):>14}")
+    disk = forecast["disk_bytes"]
+    lines.append(f"disk: work folder up to {_size(disk['work'])}, index {_size(disk['output'])}; "
+                 f"memory budget {_size(forecast['memory_budget_bytes'])}: "
+                 + ("in parts (key ranges)" if forecast["in_parts"] else "one part"))
+    coeff = forecast["coefficients"]
+    said = "this machine's calibration" if coeff["source"] == "calibrated" else \
+        "the shipped default (run lshjob calibrate to fit this machine)"
+    lines.append(f"coefficients: {said}: {coeff['provenance']}")
+    if coeff["refined_from"]:
+        lines.append(f"refined from {len(coeff['refined_from'])} run(s): {', '.join(coeff['refined_from'])}")
+    if coeff.get("not_refined_from"):
+        lines.append("not refined from (under 100,000 events, or no bands): " + ", ".join(coeff["not_refined_from"]))
+    if forecast["runners_up"]:
+        lines += ["", f"{'':2}{'k':>5}{'b':>5}{'r':>4}{'recall':>8}{'candidates':>13}{'seconds':>10}"]
+        for r in forecast["runners_up"]:
+            lines.append(f"{'':2}{r['perms']:>5}{r['bands']:>5}{r['rows']:>4}{r['expected_recall']:>8.3f}"
+                         f"{_fmt(r['expected_candidates']):>13}{r['seconds']:>10.2f}")
+    lines += [f"note: {n}" for n in forecast["notes"]] + [f"warning: {w}" for w in forecast["warnings"]]
+    return "\n".join(lines)
+
+
+def _size(value: float) -> str:
+    for unit, size in (("TiB", 2**40), ("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
+        if value >= size:
+            return f"{value / size:.1f} {unit}"
+    return f"{int(value)} B"
