@@ -52,7 +52,7 @@ def forecast(model: CostModel, w: Workload, memory: int | None = None, parts: in
         "seconds": {k: round(v, 3) for k, v in seconds.items()},
         "peak_memory_bytes": int(peak),
         "peak_memory_by_stage": {s: int(by_stage[s]) for s in STAGES},
-        "disk_bytes": {k: int(v) for k, v in model.disk_bytes(w, split).items()},
+        "disk_bytes": _whole_bytes(model.disk_bytes(w, split)),
         "in_parts": split,
         "memory_budget_bytes": int(memory),
         "counts": {k: (round(v) if isinstance(v, float) else v) for k, v in w.to_dict().items()},
@@ -84,3 +84,9 @@ def forecast_curve(model: CostModel, w: Workload, sizes: list[float], memory: in
                     "disk_bytes": f["disk_bytes"]["total"], "index_bytes": f["disk_bytes"]["output"],
                     "in_parts": f["in_parts"]})
     return out
+
+
+def _whole_bytes(disk: dict[str, float]) -> dict[str, int]:
+    """The disk forecast in whole bytes; the total is the sum of its rounded parts."""
+    parts = {k: int(round(v)) for k, v in disk.items() if k != "total"}
+    return {**parts, "total": sum(parts.values())}
