@@ -7,6 +7,8 @@ Layout of a store folder::
     STORE/periods/2026-03-01.RUN.sets.parquet      entity, element: one row per distinct pair
     STORE/periods/2026-03-01.RUN.signatures.parquet entity, signature, set_size
     STORE/versions/RUN/                            a published index (neighbours.parquet, manifest.json)
+    STORE/state/RUN.members.parquet (and sets, pairs, buckets) the state of the last index
+                                                   (lshjob.jobs.refresh_index)
     STORE/work/                                    a refresh's scratch, removed at its end
 
 A file is never changed once written: a period that gains events gets new files named with
@@ -29,6 +31,7 @@ from lshjob.store.catalog import CATALOG, State, StoredFile
 
 PERIODS = "periods"
 VERSIONS = "versions"
+STATE = "state"
 WORK = "work"
 
 
@@ -81,7 +84,7 @@ def remove_strays(store: Path, state: State) -> list[str]:
     kept = {f.path for f in state.files} | {f"{VERSIONS}/{v.folder}" for v in state.versions}
     removed = []
     shutil.rmtree(store / WORK, ignore_errors=True)
-    for folder in (PERIODS, VERSIONS):
+    for folder in (PERIODS, VERSIONS, STATE):
         if not (store / folder).is_dir():
             continue
         for entry in sorted((store / folder).iterdir()):
