@@ -191,7 +191,7 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     summary = {"store": str(store.absolute()), "events": str(events), "window": options.window,
                "period": spec.period, "window_first": batch.window_first.isoformat(),
                "window_last": batch.window_last.isoformat(), "window_periods": len(folded.periods),
-               "batch_rows": batch.rows_read,
+               "period_rows": sum(p.membership_rows for p in folded.periods), "batch_rows": batch.rows_read,
                "null_rows_dropped": batch.null_rows_dropped,
                "rows_older_than_window": batch.rows_older_than_window, "changed_entities": changed,
                "pairs_added": added, "pairs_removed": removed,
@@ -273,65 +273,69 @@ def _by_run(store, state, folded, plan, why, options, spec, built, progress, sec
 
 def _by_state(store, state, batch, folded, plan, why, options, spec, events, built, run_id, warnings):
     """The index from the store's state (:mod:`lshjob.jobs.refresh_paths`): updated for the
-    touched entities when the state was made under the kept plan, else built for the whole
-    window; None when the full run must make it (--full, a plan without bands, a bucket over
-    --max-bucket)."""
-    if options.full:
+    touched entities when the state was made under the kept plan and the plan still meets
+    the recall target on a new sample of the window, else built for the whole window; None
+    when the full run must make it (--full, a plan without bands, a bucket over --max-bucket)."""
+    if options.full or (plan is not None and plan.get("bands") is None):
         return None
     clock = paths.Clock()
     record = json.loads(state.facts[INDEX_STATE]) if INDEX_STATE in state.facts else None
     work = store / store_files.WORK / "state"
-    previous, figures, steps = None, {}, {}
-    if plan is not None and plan.get("bands") is not None and record is not None \
-            and record["plan"] == index_state.state_plan(plan, options.max_bucket):
-        previous = index_state.read_state(store, record)
-        with clock("sample"):
-            recall, figures = paths.sampled_recall(store, previous.members, folded.periods, folded.changed, plan,
+    steps, made, from_nothing = {}, None, False
+
+    def update(previous, touched, plan_now):
+        try:
+            return paths.build(store, previous, folded.periods, folded.changed, touched,
+                               options.run_options(plan_now), work, run_id, clock)
+        except index_state.Oversize as exc:
+            warnings.append(f"{exc}: the whole run made this index (the state needs no bucket over the cap)")
+            return None
+
+    if plan is not None and record is not None and record["plan"] == index_state.state_plan(plan, options.max_bucket):
+        with clock("touched"):
+            touched = paths.touched_entities(store, batch.rows, folded.expired)
+        made = update(index_state.read_state(store, record), touched, plan)
+        if made is None:
+            return None
+        with clock("sample"):  # the window after this batch, sampled anew
+            recall, figures = paths.sampled_recall(store, made.state.members, folded.periods, folded.changed, plan,
                                                    options.run_options(plan), paths.sample_seed(batch.window_last))
         steps["sampled_recall"] = recall
         if recall is not None and recall < options.recall - RECALL_SLACK:
             why = (f"the kept plan's expected recall on a new sample of the window, {recall:.4f}, is below "
                    f"--recall {options.recall} less {RECALL_SLACK}: re-planned and rebuilt")
-            plan, previous = None, None
-    if plan is None:
-        with clock("plan"):
-            chosen = paths.plan_from_window(store, folded.periods, folded.changed, options.run_options(None))
-        if not chosen.banded:
+            plan, made = None, None
+        else:
+            plan_now, figures = dict(plan), dict(figures, mode=plan["mode"], why="kept plan")
+    if made is None:
+        if plan is None:
+            with clock("plan"):
+                chosen = paths.plan_from_window(store, folded.periods, folded.changed, options.run_options(None))
+            if not chosen.banded:
+                return None
+            run_opts = options.run_options(None)
+            figures = chosen.to_dict()
+            plan_now = {"perms": chosen.perms, "bands": chosen.bands, "rows": chosen.rows, "seed": run_opts.seed,
+                        "scheme": run_opts.scheme, "threshold": options.threshold}
+        else:  # no state yet under the kept plan (a full run made the last index)
+            plan_now, figures = dict(plan), {"mode": plan["mode"], "why": "kept plan"}
+        empty = index_state.IndexState.empty(index_state.state_plan(plan_now, options.max_bucket),
+                                             batch.rows.schema["entity"])
+        made, from_nothing = update(empty, None, plan_now), True
+        if made is None:
             return None
-        figures = chosen.to_dict()
-        run_opts = options.run_options(None)
-        plan_now = {"perms": chosen.perms, "bands": chosen.bands, "rows": chosen.rows, "seed": run_opts.seed,
-                    "scheme": run_opts.scheme, "threshold": options.threshold}
-    elif plan.get("bands") is None:
-        return None
-    else:
-        plan_now = dict(plan)
-        figures = dict(figures, mode=plan["mode"]) if figures else {"mode": plan["mode"], "why": "kept plan"}
-    state_plan = index_state.state_plan(plan_now, options.max_bucket)
-    touched = None
-    if previous is None:
-        previous = index_state.IndexState.empty(state_plan, batch.rows.schema["entity"])
-    else:
-        with clock("touched"):
-            touched = paths.touched_entities(store, batch.rows, folded.expired)
-    built.mkdir(parents=True, exist_ok=True)
-    try:
-        made = paths.build(store, previous, folded.periods, folded.changed, touched, options.run_options(plan_now),
-                           work, run_id, clock)
-    except index_state.Oversize as exc:
-        warnings.append(f"{exc}: the whole run made this index (the state needs no bucket over the cap)")
-        return None
     record, files = index_state.write_state(store, made.state, run_id)
     known = {f.path: f for f in state.files}
+    new_paths = {f.path for f in made.new_files}
     files += [known.get(p) or stored.entry(store, p, "buckets", run_id) for p in made.state.bucket_files
-              if p not in {f.path for f in made.new_files}] + made.new_files
+              if p not in new_paths] + made.new_files
     counts = {"changed_entities": made.changed_entities, "new_sets": made.new_sets,
               "forgotten_sets": made.forgotten_sets, "candidate_pairs": made.candidate_pairs,
               "verified_pairs": made.verified_pairs}
     manifest = paths.publish_state(made.state, built, options.run_options(plan_now), plan_now, figures, spec, events,
                                    clock, run_id, counts, [])
     stored.write_json(built / publish.MANIFEST, manifest)  # read by the diff against the last version
-    steps.update(counts, rebuilt=touched is None)
+    steps.update(counts, rebuilt=from_nothing)
     manifest["refresh_steps"] = steps
     return manifest, plan, why, made.changed_entities, record, files
 
