@@ -165,9 +165,9 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     if made is None:  # the whole run over the window's events
         manifest, plan, why, changed = _by_run(store, state, folded, plan, why, options, spec, built, progress,
                                                seconds)
-        design, index_record, index_files = "full run over the window", None, []
+        design, index_record, index_files, diff = "full run over the window", None, [], None
     else:
-        manifest, plan, why, changed, index_record, index_files = made
+        manifest, plan, why, changed, index_record, index_files, diff = made
         design = "incremental" if not manifest["refresh_steps"]["rebuilt"] else "state built from the whole window"
         seconds.update({f"index.{k}": v for k, v in manifest["seconds"].items() if k != "total"})
     rebuilt = plan is None
@@ -182,7 +182,10 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
 
     previous = store / store_files.VERSIONS / state.versions[-1].folder if state.versions else None
     tick = time.perf_counter()
-    added, removed, diff = stored.pair_changes(previous, built)
+    if diff is None or previous is None or diff["old_run_id"] != previous.name:
+        added, removed, diff = stored.pair_changes(previous, built)
+    else:  # made with the index, from the rows that changed (refresh_publish)
+        added, removed = diff["pairs_added"], diff["pairs_removed"]
     seconds["diff"] = round(time.perf_counter() - tick, 3)
     tick = time.perf_counter()
     periods_made = stored.store_periods(store, folded, kept, rebuilt, run_id, {f.path: f for f in state.files})
@@ -291,12 +294,16 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
             warnings.append(f"{exc}: the whole run made this index (the state needs no bucket over the cap)")
             return None
 
-    if plan is not None and record is not None and record["plan"] == index_state.state_plan(plan, options.max_bucket):
+    last, totals = None, None
+    if plan is not None and record is not None \
+            and record["plan"] == index_state.state_plan(plan, options.max_bucket, options.top_k):
         with clock("touched"):
             touched = paths.touched_entities(store, batch.rows, folded.expired)
         made = update(index_state.read_state(store, record), touched, plan)
         if made is None:
             return None
+        if (store / store_files.VERSIONS / record.get("version", "-")).is_dir() and "totals" in record:
+            last, totals = store / store_files.VERSIONS / record["version"], record["totals"]
         with clock("sample"):  # the window after this batch, sampled anew
             recall, figures = paths.sampled_recall(store, made.state.members, folded.periods, folded.changed, plan,
                                                    options.run_options(plan), paths.sample_seed(batch.window_last))
@@ -304,7 +311,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
         if recall is not None and recall < options.recall - RECALL_SLACK:
             why = (f"the kept plan's expected recall on a new sample of the window, {recall:.4f}, is below "
                    f"--recall {options.recall} less {RECALL_SLACK}: re-planned and rebuilt")
-            plan, made = None, None
+            plan, made, last, totals = None, None, None, None
         else:
             plan_now, figures = dict(plan), dict(figures, mode=plan["mode"], why="kept plan")
     if made is None:
@@ -319,7 +326,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
                         "scheme": run_opts.scheme, "threshold": options.threshold}
         else:  # no state yet under the kept plan (a full run made the last index)
             plan_now, figures = dict(plan), {"mode": plan["mode"], "why": "kept plan"}
-        empty = index_state.IndexState.empty(index_state.state_plan(plan_now, options.max_bucket),
+        empty = index_state.IndexState.empty(index_state.state_plan(plan_now, options.max_bucket, options.top_k),
                                              batch.rows.schema["entity"])
         made, from_nothing = update(empty, None, plan_now), True
         if made is None:
@@ -332,12 +339,13 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
     counts = {"changed_entities": made.changed_entities, "new_sets": made.new_sets,
               "forgotten_sets": made.forgotten_sets, "candidate_pairs": made.candidate_pairs,
               "verified_pairs": made.verified_pairs}
-    manifest = paths.publish_state(made.state, built, options.run_options(plan_now), plan_now, figures, spec, events,
-                                   clock, run_id, counts, [])
+    manifest, diff, totals = paths.publish_state(made, last, totals, built, options.run_options(plan_now), plan_now,
+                                                 figures, spec, events, clock, run_id, counts, [])
+    record = dict(record, version=run_id, totals=totals)
     stored.write_json(built / publish.MANIFEST, manifest)  # read by the diff against the last version
     steps.update(counts, rebuilt=from_nothing)
     manifest["refresh_steps"] = steps
-    return manifest, plan, why, made.changed_entities, record, files
+    return manifest, plan, why, made.changed_entities, record, files, diff
 
 
 def _plan_to_use(kept: dict | None, options: RefreshOptions) -> tuple[dict | None, str | None]:

@@ -105,10 +105,11 @@ class IndexState:
                    pl.DataFrame(schema=PAIR_SCHEMA), [], 0, plan)
 
 
-def state_plan(plan: dict, max_bucket: int) -> dict:
-    """What the state depends on: a state made under another is not used."""
+def state_plan(plan: dict, max_bucket: int, top_k: int) -> dict:
+    """What the state (and the version published from it) depends on: a state made under
+    another is not used."""
     return {name: plan[name] for name in ("perms", "bands", "rows", "seed", "scheme", "threshold")} | {
-        "max_bucket": max_bucket}
+        "max_bucket": max_bucket, "top_k": top_k}
 
 
 def read_state(store: Path, record: dict) -> IndexState:
@@ -159,8 +160,10 @@ class Update:
     forgotten_sets: int
     candidate_pairs: int
     verified_pairs: int
-    seconds: dict
     new_files: list[StoredFile]
+    moved_entities: pl.Series  # entities whose set changed (or that came or left)
+    moved_sets: pl.Series  # their sets before and after
+    pair_sets: pl.Series  # sets of a pair verified or forgotten by this update
 
 
 def update(store: Path, previous: IndexState, periods, fresh: dict, sets: ElementSets, touched: pl.Series | None,
@@ -187,8 +190,8 @@ def update(store: Path, previous: IndexState, periods, fresh: dict, sets: Elemen
             pl.col("entity").is_in(touched.implode()))
         before = read_before.join(now.select("entity", pl.col("set").alias("now")), on="entity", how="full",
                                   coalesce=True)
-        changed = before.filter(pl.col("set").is_null() | pl.col("now").is_null()
-                                | (pl.col("set") != pl.col("now"))).height
+        moved = before.filter(pl.col("set").is_null() | pl.col("now").is_null() | (pl.col("set") != pl.col("now")))
+        changed = moved.height
         members = pl.concat([kept, now.select("entity", "set")]).sort("entity")
         live = members.select("set").unique()
         sets_table = pl.concat([known.join(live, on="set", how="semi"), made.select(SET_SCHEMA.keys())])
@@ -218,6 +221,8 @@ def update(store: Path, previous: IndexState, periods, fresh: dict, sets: Elemen
         alive = previous.pairs.join(live, left_on="left", right_on="set", how="semi").join(
             live, left_on="right", right_on="set", how="semi")
         pairs = pl.concat([alive, verified]) if touched is not None else verified
+        gone = previous.pairs.join(alive.select("left", "right"), on=["left", "right"], how="anti")
+        pair_sets = pl.concat([gone["left"], gone["right"], verified["left"], verified["right"]]).unique()
     if len(bucket_files) > COMPACT_AFTER:
         with clock("compact"):
             table = pl.scan_parquet([store / f for f in bucket_files]).join(live.lazy(), on="set", how="semi")
@@ -226,7 +231,8 @@ def update(store: Path, previous: IndexState, periods, fresh: dict, sets: Elemen
                 store_files.write_table(store, relative, table.collect(), "buckets", run_id)]
             bucket_files = [relative]
     state = IndexState(members, sets_table, pairs, bucket_files, next_set, plan)
-    return Update(state, changed, made.height, forgotten, candidates.height, verified.height, {}, new_files)
+    return Update(state, changed, made.height, forgotten, candidates.height, verified.height, new_files,
+                  moved["entity"], pl.concat([moved["set"], moved["now"]]).drop_nulls().unique(), pair_sets)
 
 
 def _join(store: Path, files: list[str], new_file: str, live: pl.DataFrame, first_new: int, memory: int,
@@ -285,14 +291,14 @@ def compose_signatures(tables: list[pl.DataFrame]) -> pl.DataFrame:
             .sort("entity", "position").group_by("entity", maintain_order=True).agg("signature"))
 
 
-def published_inputs(state: IndexState) -> tuple[pl.Series, np.ndarray, pl.DataFrame]:
-    """What the publish stage takes, as the run makes it: the entity keys (id = position, key
-    order), each entity's representative (the smallest id of its set) and the verified pairs
-    of representatives."""
-    members = state.members.with_row_index("id").with_columns(pl.col("id").cast(pl.Int64))
+def published_inputs(members: pl.DataFrame, pairs: pl.DataFrame) -> tuple[pl.Series, np.ndarray, pl.DataFrame]:
+    """What the publish stage takes, as the run makes it, from members (entity, set; sorted by
+    entity) and pairs of sets: the entity keys (id = position, key order), each entity's
+    representative (the smallest id of its set) and the verified pairs of representatives."""
+    members = members.with_row_index("id").with_columns(pl.col("id").cast(pl.Int64))
     rep = members.group_by("set").agg(pl.col("id").min().alias("rep"))
     rep_of = members.join(rep, on="set", how="left", maintain_order="left")["rep"].to_numpy()
-    verified = (state.pairs.join(rep.rename({"set": "left", "rep": "a"}), on="left")
+    verified = (pairs.join(rep.rename({"set": "left", "rep": "a"}), on="left")
                 .join(rep.rename({"set": "right", "rep": "b"}), on="right")
                 .select(pl.min_horizontal("a", "b").alias("left_rep"), pl.max_horizontal("a", "b").alias("right_rep"),
                         "jaccard", "estimate", "bands_shared"))

@@ -17,17 +17,17 @@ from dataclasses import asdict
 from datetime import date
 from pathlib import Path
 
-import numpy as np
 import polars as pl
 
 from lshjob.contracts.manifest import Manifest
 from lshjob.index import publish
 from lshjob.jobs import refresh_index as index_state
+from lshjob.jobs import refresh_publish
 from lshjob.jobs.prepare import plan_run
 from lshjob.plan.choose import Plan
 from lshjob.plan.similarity import sample_keys
 from lshjob.runtime import provenance
-from lshjob.runtime.budget import current_bytes, default_memory, parse_size, peak_bytes, release_freed, reset_peak
+from lshjob.runtime.budget import default_memory, parse_size, peak_bytes, reset_peak
 from lshjob.sign.signatures import SignatureParams
 from lshjob.store import files as store_files
 
@@ -99,33 +99,46 @@ def build(store: Path, previous: index_state.IndexState, periods, fresh: dict, t
                               memory_of(run_options), clock)
 
 
-def publish_state(state: index_state.IndexState, built: Path, run_options, plan: dict, plan_figures: dict,
-                  spec, events, clock: Clock, run_id: str, counts: dict, warnings: list[str]) -> dict:
+def publish_state(upd: index_state.Update, last: Path | None, totals: dict | None, built: Path, run_options,
+                  plan: dict, plan_figures: dict, spec, events, clock: Clock, run_id: str, counts: dict,
+                  warnings: list[str]) -> tuple[dict, dict | None, dict]:
     """Publish the state's index into ``built`` (neighbours.parquet and manifest.json) as the
-    run's publish stage does; return the manifest."""
+    run's publish stage does: only the affected entities' lists when ``last`` (the version the
+    updated state was made from) and its ``totals`` are given (:mod:`lshjob.jobs.refresh_publish`),
+    else every list. Return the manifest, the diff summary against ``last`` (None when not
+    made here) and the new version's totals."""
     memory = memory_of(run_options)
     started_at = provenance.utc_now()
+    state = upd.state
+    entities = len(state.members)
+    top_k = publish.effective_top_k(run_options.top_k, entities)
+    if top_k < run_options.top_k and entities > 1:
+        warnings.append(f"--top-k {run_options.top_k} is more than the {entities - 1} other entities; used {top_k}")
+    meta = provenance.neighbours_metadata(run_id, run_options, spec, top_k)
+    diff = None
     with clock("publish"):
-        keys, rep_of, verified = index_state.published_inputs(state)
-        top_k = publish.effective_top_k(run_options.top_k, len(keys))
-        if top_k < run_options.top_k and len(keys) > 1:
-            warnings.append(f"--top-k {run_options.top_k} is more than the {len(keys) - 1} other entities; "
-                            f"used {top_k}")
-        release_freed()
-        expansion = publish.expand(verified, rep_of, top_k, plan["bands"], publish.block_rows(memory, current_bytes()))
-        publish.check_output(expansion.published_rows, keys, run_options.top_k, memory,
-                             publish.identical_rows(rep_of, top_k)[2])
-        meta = provenance.neighbours_metadata(run_id, run_options, spec, top_k)
-        blocks = publish.neighbour_blocks(expansion, keys, publish.block_rows(memory, current_bytes()))
-        facts = publish.stage_neighbours(built, blocks, meta)
+        if last is not None and totals is not None:
+            old_rows = pl.read_parquet(last / publish.NEIGHBOURS)
+            rows, moved = refresh_publish.changed_rows(upd, old_rows, top_k, plan["bands"], memory)
+            facts = publish.stage_neighbours(built, [rows], meta)
+        else:
+            blocks, _ = refresh_publish.rows_of(state.members, state.pairs, top_k, plan["bands"], memory)
+            facts = publish.stage_neighbours(built, blocks, meta)
         staged = publish.staging_folder(built)
         (staged / publish.NEIGHBOURS).replace(built / publish.NEIGHBOURS)
         publish.discard_staging(built)
-    counts = dict(counts, entities=len(keys), representatives=int(np.count_nonzero(rep_of == np.arange(len(keys)))),
+    with clock("diff"):
+        if last is not None and totals is not None:
+            diff, totals = refresh_publish.restricted_diff(old_rows, rows, moved, totals, str(last), str(built))
+            diff = dict(diff, old_run_id=last.name)
+            del old_rows, rows
+        else:
+            totals = refresh_publish.listed_totals(pl.read_parquet(built / publish.NEIGHBOURS))
+    counts = dict(counts, entities=entities, representatives=state.sets.height,
                   verified_pairs_kept=state.pairs.height, published_rows=facts["rows"])
-    if facts["rows"] == 0 and len(keys) > 1:
+    if facts["rows"] == 0 and entities > 1:
         warnings.append("no pair reached the threshold: the index is empty")
-    return Manifest(
+    manifest = Manifest(
         run_id=run_id, started_at=provenance.iso(started_at), host=provenance.host(), command=None,
         inputs={"source": str(Path(events).absolute()), "given": str(events)},
         spec=asdict(spec), options=asdict(run_options), top_k_effective=top_k, memory_budget_bytes=memory,
@@ -135,6 +148,7 @@ def publish_state(state: index_state.IndexState, built: Path, run_options, plan:
         seconds=dict(clock.seconds, total=round(sum(clock.seconds.values()), 3)),
         finished_at=provenance.iso(provenance.utc_now()),
     ).to_json()
+    return manifest, diff, totals
 
 
 def sample_seed(window_last: date) -> int:
