@@ -135,7 +135,8 @@ def refresh_job(events: str | Path, store: str | Path, spec: EventSpec, options:
 
 def _refresh(events, store, spec, options, out, progress, command, run_id, started, started_at, warnings):
     state = catalog.read_state(store)
-    damaged = store_files.check_files(store, state)
+    # period signatures (the largest files, read only when their period changes) are checked when read
+    damaged = store_files.check_files(store, state, size_only=("signatures",))
     if damaged:
         raise ParameterError(f"{store}: the store is damaged ({damaged[0]}"
                              + (f"; and {len(damaged) - 1} more" if len(damaged) > 1 else "")

@@ -84,6 +84,7 @@ class Folded:
     changed: dict[date, pl.DataFrame]  # period -> its new sets table (entity, element), sorted
     expired: list[Period]
     replaced: list[Period]  # periods whose earlier files the new ones replace
+    added: dict[date, pl.Series] = field(default_factory=dict)  # replaced period -> entities that gained rows
 
 
 def fold(store: Path, state: State, batch: Batch, run_id: str) -> Folded:
@@ -91,6 +92,7 @@ def fold(store: Path, state: State, batch: Batch, run_id: str) -> Folded:
     held = {p.period: p for p in state.periods}
     changed: dict[date, pl.DataFrame] = {}
     replaced: list[Period] = []
+    added_entities: dict[date, pl.Series] = {}
     for (period,), rows in sorted(batch.rows.partition_by("period", as_dict=True, include_key=False).items()):
         rows = rows.unique(PAIR)
         if period in held:
@@ -100,6 +102,7 @@ def fold(store: Path, state: State, batch: Batch, run_id: str) -> Folded:
                 continue
             rows = pl.concat([before, added], how="vertical")
             replaced.append(held[period])
+            added_entities[period] = added["entity"].unique()
         changed[period] = rows.sort(PAIR)
     expired = [p for p in state.periods if p.period < batch.window_first]
     periods = []
@@ -112,7 +115,7 @@ def fold(store: Path, state: State, batch: Batch, run_id: str) -> Folded:
                                   table["entity"].n_unique(), table.height, run_id))
         else:
             periods.append(held[period])
-    return Folded(periods, changed, expired, replaced)
+    return Folded(periods, changed, expired, replaced, added_entities)
 
 
 def changed_entities(store: Path, before: list[Period], after: list[Period], fresh: dict[date, pl.DataFrame]) -> int:

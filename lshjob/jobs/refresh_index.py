@@ -208,7 +208,7 @@ def update(store: Path, previous: IndexState, periods, fresh: dict, sets: Elemen
             rows = wide.unpivot(index="rep", variable_name="band", value_name="bucket").select(
                 pl.col("band").cast(pl.Int32), "bucket", pl.col("rep").alias("set"))
             relative = f"{STATE}/{run_id}.buckets.parquet"
-            new_files.append(store_files.write_table(store, relative, rows, "buckets", run_id))
+            new_files.append(store_files.write_table(store, relative, rows, "buckets", run_id, compression="lz4"))
             bucket_files.append(relative)
             del wide, rows
         with clock("join"):
@@ -228,7 +228,7 @@ def update(store: Path, previous: IndexState, periods, fresh: dict, sets: Elemen
             table = pl.scan_parquet([store / f for f in bucket_files]).join(live.lazy(), on="set", how="semi")
             relative = f"{STATE}/{run_id}.buckets-all.parquet"
             new_files = [f for f in new_files if f.path not in bucket_files] + [
-                store_files.write_table(store, relative, table.collect(), "buckets", run_id)]
+                store_files.write_table(store, relative, table.collect(), "buckets", run_id, compression="lz4")]
             bucket_files = [relative]
     state = IndexState(members, sets_table, pairs, bucket_files, next_set, plan)
     return Update(state, changed, made.height, forgotten, candidates.height, verified.height, new_files,

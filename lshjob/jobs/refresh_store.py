@@ -45,6 +45,7 @@ def store_periods(store: Path, folded: folding.Folded, plan: dict, rebuilt: bool
     signed yet; return the catalog's periods and files."""
     params = SignatureParams(scheme=plan["scheme"], perms=plan["perms"], seed=plan["seed"]) if plan["perms"] else None
     held = {p.period: p for p in folded.periods}
+    before = {p.period: p for p in folded.replaced}
     periods, files = [], []
     for p in folded.periods:
         if p.period in folded.changed:
@@ -56,9 +57,18 @@ def store_periods(store: Path, folded: folding.Folded, plan: dict, rebuilt: bool
             table = folded.changed.get(p.period)
             if table is None:
                 table = store_files.read_table(store, held[p.period].sets_file)
+            old = before.get(p.period)
+            if not rebuilt and old is not None and old.signatures_file is not None and p.period in folded.added:
+                # only the entities that gained elements in the period are signed again
+                gained = folded.added[p.period].implode()
+                signed = sign_sets(table.filter(pl.col("entity").is_in(gained)), ["entity"], params)
+                check_sha256(store, known[old.signatures_file])
+                kept = store_files.read_table(store, old.signatures_file).filter(~pl.col("entity").is_in(gained))
+                signed = pl.concat([kept, signed.cast(kept.schema)]).sort("entity")
+            else:
+                signed = sign_sets(table, ["entity"], params)
             signatures = store_files.period_file(p.period, run_id, "signatures")
-            files.append(store_files.write_table(store, signatures, sign_sets(table, ["entity"], params),
-                                                 "signatures", run_id))
+            files.append(store_files.write_table(store, signatures, signed, "signatures", run_id, compression="lz4"))
         elif params is None:
             signatures = None
         elif signatures is not None:
@@ -66,6 +76,12 @@ def store_periods(store: Path, folded: folding.Folded, plan: dict, rebuilt: bool
         periods.append(catalog.Period(p.period, p.sets_file, signatures, p.entities, p.membership_rows,
                                       p.run_id))
     return {"periods": periods, "files": files}
+
+
+def check_sha256(store: Path, stored: catalog.StoredFile) -> None:
+    if store_files.sha256_of(Path(store) / stored.path) != stored.sha256:
+        raise ParameterError(f"{store}: the store is damaged ({Path(store) / stored.path}: not the file the "
+                             "catalog recorded (SHA-256 differs)); start a new store")
 
 
 def entry(store: Path, relative: str, kind: str, run_id: str) -> catalog.StoredFile:
