@@ -257,7 +257,10 @@ def test_period_signatures_fold_to_the_window_signature(tmp_path):
     for i, batch in enumerate(batches[:3]):
         manifest = _refresh(tmp_path, batch, i)
     state = catalog.read_state(tmp_path / "store")
-    tables = [pl.read_parquet(tmp_path / "store" / p.signatures_file) for p in state.periods]
+    # a period's signatures: its file and the delta files added since (catalog.signature_deltas)
+    tables = [pl.read_parquet(tmp_path / "store" / f) for p in state.periods
+              for f in (p.signatures_file, *p.signature_deltas)]
+    assert any(p.signature_deltas for p in state.periods), "no period gained late events: nothing tested"
     stacked = pl.concat([t.select("entity", "signature") for t in tables])
     patrons = sorted(set(stacked["entity"]))
     folded = {}

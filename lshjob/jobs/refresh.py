@@ -344,7 +344,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
                                                  figures, spec, events, clock, run_id, counts, [])
     record = dict(record, version=run_id, totals=totals)
     stored.write_json(built / publish.MANIFEST, manifest)  # read by the diff against the last version
-    steps.update(counts, rebuilt=from_nothing)
+    steps.update(counts, rebuilt=from_nothing, affected_entities=manifest["counts"].get("affected_entities"))
     manifest["refresh_steps"] = steps
     return manifest, plan, why, made.changed_entities, record, files, diff
 

@@ -120,6 +120,7 @@ def publish_state(upd: index_state.Update, last: Path | None, totals: dict | Non
         if last is not None and totals is not None:
             old_rows = pl.read_parquet(last / publish.NEIGHBOURS)
             rows, moved = refresh_publish.changed_rows(upd, old_rows, top_k, plan["bands"], memory)
+            counts = dict(counts, affected_entities=len(moved))
             facts = publish.stage_neighbours(built, [rows], meta)
         else:
             blocks, _ = refresh_publish.rows_of(state.members, state.pairs, top_k, plan["bands"], memory)

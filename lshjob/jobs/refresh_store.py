@@ -23,6 +23,7 @@ from lshjob.store import files as store_files
 
 STORE_FORMAT = "lshjob-store"
 DIFF_PATHS = ("old", "new", "out")  # of the diff summary: folders of the store's work, not kept
+MAX_SIGNATURE_DELTAS = 8  # delta files a period keeps before they are folded into one file
 
 
 def pair_changes(previous: Path | None, built: Path) -> tuple[int, int, dict | None]:
@@ -58,24 +59,48 @@ def store_periods(store: Path, folded: folding.Folded, plan: dict, rebuilt: bool
             if table is None:
                 table = store_files.read_table(store, held[p.period].sets_file)
             old = before.get(p.period)
+            deltas: tuple[str, ...] = ()
             if not rebuilt and old is not None and old.signatures_file is not None and p.period in folded.added:
-                # only the entities that gained elements in the period are signed again
+                # a delta file: only the entities that gained elements, signed over their period set
                 gained = folded.added[p.period].implode()
                 signed = sign_sets(table.filter(pl.col("entity").is_in(gained)), ["entity"], params)
-                check_sha256(store, known[old.signatures_file])
-                kept = store_files.read_table(store, old.signatures_file).filter(~pl.col("entity").is_in(gained))
-                signed = pl.concat([kept, signed.cast(kept.schema)]).sort("entity")
+                deltas = (*old.signature_deltas, store_files.period_file(p.period, run_id, "signature-delta"))
+                files.append(store_files.write_table(store, deltas[-1], signed, "signatures", run_id,
+                                                     compression="lz4"))
+                if len(deltas) <= MAX_SIGNATURE_DELTAS:
+                    signatures = old.signatures_file
+                    files += [known[f] for f in (signatures, *deltas[:-1])]
+                else:
+                    files.pop()
+                    signed = _newest_rows(store, [old.signatures_file, *deltas[:-1]], signed,
+                                          [known[f] for f in (old.signatures_file, *deltas[:-1])])
+                    deltas = ()
             else:
                 signed = sign_sets(table, ["entity"], params)
-            signatures = store_files.period_file(p.period, run_id, "signatures")
-            files.append(store_files.write_table(store, signatures, signed, "signatures", run_id, compression="lz4"))
+            if not deltas:
+                signatures = store_files.period_file(p.period, run_id, "signatures")
+                files.append(store_files.write_table(store, signatures, signed, "signatures", run_id,
+                                                     compression="lz4"))
         elif params is None:
-            signatures = None
+            signatures, deltas = None, ()
         elif signatures is not None:
-            files.append(known.get(signatures) or entry(store, signatures, "signatures", p.run_id))
+            deltas = p.signature_deltas
+            files += [known.get(f) or entry(store, f, "signatures", p.run_id) for f in (signatures, *deltas)]
+        else:
+            deltas = ()
         periods.append(catalog.Period(p.period, p.sets_file, signatures, p.entities, p.membership_rows,
-                                      p.run_id))
+                                      p.run_id, deltas))
     return {"periods": periods, "files": files}
+
+
+def _newest_rows(store: Path, paths: list[str], newest: pl.DataFrame, stored: list) -> pl.DataFrame:
+    """One table of a period's signatures from its files, oldest first: each entity's newest row
+    (a newer row signs a superset, so it is also the minimum of its rows)."""
+    for f in stored:
+        check_sha256(store, f)
+    tables = [store_files.read_table(store, f) for f in paths] + [newest]
+    rows = pl.concat([t.with_columns(order=pl.lit(i)) for i, t in enumerate(tables)], how="vertical_relaxed")
+    return rows.sort("entity", "order").unique("entity", keep="last", maintain_order=True).drop("order")
 
 
 def check_sha256(store: Path, stored: catalog.StoredFile) -> None:
