@@ -164,6 +164,8 @@ class Update:
     moved_entities: pl.Series  # entities whose set changed (or that came or left)
     moved_sets: pl.Series  # their sets before and after
     pair_sets: pl.Series  # sets of a pair verified or forgotten by this update
+    head_sets: pl.Series  # sets whose first top_k + 1 members (in key order) changed
+    entities_before: int
 
 
 def update(store: Path, previous: IndexState, periods, fresh: dict, sets: ElementSets, touched: pl.Series | None,
@@ -231,8 +233,20 @@ def update(store: Path, previous: IndexState, periods, fresh: dict, sets: Elemen
                 store_files.write_table(store, relative, table.collect(), "buckets", run_id, compression="lz4")]
             bucket_files = [relative]
     state = IndexState(members, sets_table, pairs, bucket_files, next_set, plan)
+    moved_sets = pl.concat([moved["set"], moved["now"]]).drop_nulls().unique()
+    cap = plan["top_k"] + 1
+    old_heads, new_heads = (heads(m, moved_sets, cap) for m in (previous.members, members))
+    differ = pl.concat([old_heads.join(new_heads, on=["set", "entity"], how="anti"),
+                        new_heads.join(old_heads, on=["set", "entity"], how="anti")])["set"].unique()
     return Update(state, changed, made.height, forgotten, candidates.height, verified.height, new_files,
-                  moved["entity"], pl.concat([moved["set"], moved["now"]]).drop_nulls().unique(), pair_sets)
+                  moved["entity"], moved_sets, pair_sets, differ, previous.members.height)
+
+
+def heads(members: pl.DataFrame, sets: pl.Series, cap: int) -> pl.DataFrame:
+    """The first ``cap`` members (key order) of each of ``sets``: all the publish stage reads
+    of a group of identical sets beside its own members' lists (:func:`lshjob.index.publish.expand`)."""
+    return (members.join(sets.to_frame("set"), on="set", how="semi").sort("entity")
+            .group_by("set", maintain_order=True).head(cap).select("set", "entity"))
 
 
 def _join(store: Path, files: list[str], new_file: str, live: pl.DataFrame, first_new: int, memory: int,

@@ -116,6 +116,8 @@ def publish_state(upd: index_state.Update, last: Path | None, totals: dict | Non
         warnings.append(f"--top-k {run_options.top_k} is more than the {entities - 1} other entities; used {top_k}")
     meta = provenance.neighbours_metadata(run_id, run_options, spec, top_k)
     diff = None
+    if publish.effective_top_k(run_options.top_k, upd.entities_before) != top_k:
+        last = None  # every list's length may change: all are made anew
     with clock("publish"):
         if last is not None and totals is not None:
             old_rows = pl.read_parquet(last / publish.NEIGHBOURS)

@@ -1,14 +1,16 @@
 """Publishing a refresh's index from the store's state, and its diff against the last version
 (for :mod:`lshjob.jobs.refresh_paths`).
 
-An entity's list (its top-k, :mod:`lshjob.index.publish`) is a function of its set's group of
-members, the verified pairs of its set and the members of each partner set. After an update
-(:func:`lshjob.jobs.refresh_index.update`) it can differ only for the members of the
-*affected* sets: the sets of the entities that moved (before and after), the sets of a pair
-verified or forgotten, and the partners of a set whose members changed. Their lists are made
-by the run's publish stage on the sub-problem of the affected sets and their partners (every
-member and every pair an affected list reads); every other entity's rows are copied from the
-last version (whose state this update started from). A first build publishes everything.
+An entity's list (its top-k, :mod:`lshjob.index.publish`) is a function of its set, the first
+top_k + 1 members (key order) of its set's group, the verified pairs of its set and the
+first top_k + 1 members of each partner set. After an update
+(:func:`lshjob.jobs.refresh_index.update`) it can differ only for the entities that moved
+(their set changed, or they came) and the members of the *affected* sets: the sets of a pair
+verified or forgotten, the sets whose first members changed and their partners. Those lists
+are made by the run's publish stage on a sub-problem holding every member of the affected
+sets and of the moved entities' sets, the first top_k + 1 members of their partners, and
+their pairs; every other entity's rows are copied from the last version (whose state this
+update started from). A first build publishes everything.
 
 The diff against the last version (:func:`lshjob.jobs.diff.diff_indexes`' summary) is made
 alike: rows of unaffected entities are the same in both versions, so pairs and lists change
@@ -26,19 +28,21 @@ from lshjob.jobs.diff import TOP_ENTITIES, entity_changes, unordered_pairs
 from lshjob.runtime.budget import current_bytes, release_freed
 
 
-def affected(upd: index_state.Update) -> tuple[pl.Series, pl.DataFrame]:
-    """(entities whose rows may change, the sets of the sub-problem with ``own``: whether the
-    set is affected)."""
+def affected(upd: index_state.Update) -> tuple[pl.Series, pl.DataFrame, pl.DataFrame]:
+    """(entities whose rows may change; sets the sub-problem holds whole; sets of which it
+    holds the first top_k + 1 members only)."""
     pairs = upd.state.pairs.select("left", "right")
     both = pl.concat([pairs, pairs.select(pl.col("right").alias("left"), pl.col("left").alias("right"))])
-    moved = upd.moved_sets.to_frame("set")
-    partners = both.join(moved, left_on="left", right_on="set", how="semi").select(pl.col("right").alias("set"))
-    own = pl.concat([moved, upd.pair_sets.to_frame("set"), partners]).unique()
-    around = both.join(own, left_on="left", right_on="set", how="semi").select(pl.col("right").alias("set"))
-    scope = pl.concat([own.with_columns(own=pl.lit(True)), around.with_columns(own=pl.lit(False))]).group_by(
-        "set").agg(pl.col("own").any())
-    members = upd.state.members.join(own, on="set", how="semi")["entity"]
-    return pl.concat([members, upd.moved_entities]).unique(), scope
+
+    def partners(sets: pl.DataFrame) -> pl.DataFrame:
+        return both.join(sets, left_on="left", right_on="set", how="semi").select(pl.col("right").alias("set"))
+
+    head = upd.head_sets.to_frame("set")
+    own = pl.concat([upd.pair_sets.to_frame("set"), head, partners(head)]).unique()
+    entities = pl.concat([upd.state.members.join(own, on="set", how="semi")["entity"], upd.moved_entities]).unique()
+    whole = pl.concat([own, upd.moved_sets.to_frame("set")]).unique()
+    around = partners(whole).unique().join(whole, on="set", how="anti")
+    return entities, whole, around
 
 
 def rows_of(members: pl.DataFrame, pairs: pl.DataFrame, top_k: int, bands: int, memory: int) -> tuple[list, int]:
@@ -55,12 +59,13 @@ def changed_rows(upd: index_state.Update, previous_rows: pl.DataFrame, top_k: in
                  memory: int) -> tuple[pl.DataFrame, pl.Series]:
     """The new index (one table, sorted by entity and rank) from the last version's rows and
     the affected entities' new lists; and the affected entities."""
-    entities, scope = affected(upd)
-    own = scope.filter(pl.col("own")).select("set")
-    sub_members = upd.state.members.join(scope, on="set", how="semi")
-    sub_pairs = upd.state.pairs.join(own, left_on="left", right_on="set", how="semi")
-    sub_pairs = pl.concat([sub_pairs, upd.state.pairs.join(own, left_on="right", right_on="set", how="semi")]).unique(
-        ["left", "right"])
+    entities, whole, around = affected(upd)
+    sub_members = pl.concat([upd.state.members.join(whole, on="set", how="semi"),
+                             index_state.heads(upd.state.members, around["set"], top_k + 1).select("entity", "set")]
+                            ).sort("entity")
+    sub_pairs = upd.state.pairs.join(whole, left_on="left", right_on="set", how="semi")
+    sub_pairs = pl.concat([sub_pairs, upd.state.pairs.join(whole, left_on="right", right_on="set", how="semi")]
+                          ).unique(["left", "right"])
     blocks, _ = rows_of(sub_members, sub_pairs, top_k, bands, memory)
     fresh = pl.concat(list(blocks)).filter(pl.col("entity").is_in(entities.implode()))
     kept = previous_rows.filter(~pl.col("entity").is_in(entities.implode()))
