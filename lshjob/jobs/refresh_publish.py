@@ -28,9 +28,10 @@ from lshjob.jobs.diff import TOP_ENTITIES, entity_changes, unordered_pairs
 from lshjob.runtime.budget import current_bytes, release_freed
 
 
-def affected(upd: index_state.Update) -> tuple[pl.Series, pl.DataFrame, pl.DataFrame]:
+def affected(upd: index_state.Update, top_k: int) -> tuple[pl.Series, pl.DataFrame, pl.DataFrame]:
     """(entities whose rows may change; sets the sub-problem holds whole; sets of which it
-    holds the first top_k + 1 members only)."""
+    holds the first top_k + 1 members only). A set of more than top_k members lists only its
+    own members (Jaccard 1, above any pair of different sets): its pairs change nothing."""
     pairs = upd.state.pairs.select("left", "right")
     both = pl.concat([pairs, pairs.select(pl.col("right").alias("left"), pl.col("left").alias("right"))])
 
@@ -38,7 +39,9 @@ def affected(upd: index_state.Update) -> tuple[pl.Series, pl.DataFrame, pl.DataF
         return both.join(sets, left_on="left", right_on="set", how="semi").select(pl.col("right").alias("set"))
 
     head = upd.head_sets.to_frame("set")
-    own = pl.concat([upd.pair_sets.to_frame("set"), head, partners(head)]).unique()
+    crowded = upd.state.members.group_by("set").len().filter(pl.col("len") > top_k).select("set")
+    paired = pl.concat([upd.pair_sets.to_frame("set"), partners(head)]).unique().join(crowded, on="set", how="anti")
+    own = pl.concat([paired, head]).unique()
     entities = pl.concat([upd.state.members.join(own, on="set", how="semi")["entity"], upd.moved_entities]).unique()
     whole = pl.concat([own, upd.moved_sets.to_frame("set")]).unique()
     around = partners(whole).unique().join(whole, on="set", how="anti")
@@ -59,7 +62,7 @@ def changed_rows(upd: index_state.Update, previous_rows: pl.DataFrame, top_k: in
                  memory: int) -> tuple[pl.DataFrame, pl.Series]:
     """The new index (one table, sorted by entity and rank) from the last version's rows and
     the affected entities' new lists; and the affected entities."""
-    entities, whole, around = affected(upd)
+    entities, whole, around = affected(upd, top_k)
     sub_members = pl.concat([upd.state.members.join(whole, on="set", how="semi"),
                              index_state.heads(upd.state.members, around["set"], top_k + 1).select("entity", "set")]
                             ).sort("entity")
