@@ -171,3 +171,48 @@ def test_a_bucket_over_the_cap_falls_back_to_the_full_run(tmp_path):
     expected = _full_run(pl.concat([base, crowd]), second["plan"], tmp_path / "oracle", 0.5, 3, max_bucket=4)
     assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(expected)
     assert date.fromisoformat(second["refresh"]["window_first"]) == date(2025, 12, 1)
+
+
+def test_many_late_batches_fold_their_files_and_still_equal_the_full_run(tmp_path, monkeypatch):
+    # Five late batches into one month, with the limits lowered to 3 files: the period's
+    # signature delta files and the state's bucket files pass them and are folded into one. Oracles: the full run on the
+    # window's events; each period's signature (the minimum over its files) against the
+    # signature of the period's set signed directly from Python sets.
+    from lshjob.jobs import refresh_index, refresh_store
+    from lshjob.store import catalog
+
+    monkeypatch.setattr(refresh_store, "MAX_SIGNATURE_DELTAS", 3)
+    monkeypatch.setattr(refresh_index, "COMPACT_AFTER", 3)
+    rng = np.random.default_rng(31)
+    spec = EventSpec(entity="patron", element="title", time="borrowed_at", period="month")
+    options = RefreshOptions(window=2, threshold=0.3, top_k=4)
+    base = pl.DataFrame({"patron": rng.integers(0, 40, 600).astype(str), "title": rng.integers(0, 60, 600).astype(str),
+                         "borrowed_at": [datetime(2026, 3, 1 + int(d)) for d in rng.integers(0, 28, 600)]})
+    delivered = [base]
+    base.write_parquet(tmp_path / "b0.parquet")
+    manifest = refresh_job(tmp_path / "b0.parquet", tmp_path / "store", spec, options, tmp_path / "index")
+    for i in range(1, 6):
+        late = pl.DataFrame({"patron": rng.integers(0, 45, 6).astype(str), "title": rng.integers(0, 60, 6).astype(str),
+                             "borrowed_at": [datetime(2026, 3, 5)] * 6})
+        delivered.append(late)
+        late.write_parquet(tmp_path / f"b{i}.parquet")
+        manifest = refresh_job(tmp_path / f"b{i}.parquet", tmp_path / "store", spec, options, tmp_path / "index")
+        assert manifest["refresh"]["design"] == "incremental"
+    window = pl.concat(delivered)
+    expected = _full_run(window, manifest["plan"], tmp_path / "oracle", 0.3, 4)
+    assert expected.height > 0
+    assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(expected)
+    state = catalog.read_state(tmp_path / "store")
+    (period,) = state.periods
+    assert 0 < len(period.signature_deltas) < 3  # folded into one file once, then grown again
+    tables = [pl.read_parquet(tmp_path / "store" / f) for f in (period.signatures_file, *period.signature_deltas)]
+    stacked = pl.concat([t.select("entity", "signature") for t in tables])
+    folded = {e[0]: signature_array(g).min(axis=0) for e, g in stacked.group_by("entity")}
+    sets = {p: sorted(set(t)) for p, t in window.group_by("patron").agg("title").iter_rows()}
+    plan = manifest["plan"]
+    params = SignatureParams(scheme=plan["scheme"], perms=plan["perms"], seed=plan["seed"])
+    keys = sorted(sets)
+    assert sorted(folded) == keys
+    assert np.array_equal(np.stack([folded[k] for k in keys]), sign_element_lists([sets[k] for k in keys], params))
+    buckets = [f for f in state.files if f.kind == "buckets"]
+    assert 1 <= len(buckets) < 5
