@@ -24,14 +24,14 @@ import shutil
 import sys
 import tempfile
 import time
-from datetime import timedelta
+from datetime import datetime, timedelta
 from pathlib import Path
 
 import numpy as np
 import polars as pl
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import machine  # noqa: E402
+from common import branch_network_events, machine  # noqa: E402
 
 from lshjob.demo.generate import generate_events  # noqa: E402
 from lshjob.ingest.spec import EventSpec  # noqa: E402
@@ -49,15 +49,23 @@ def main() -> None:
     ap.add_argument("--fractions", default="0.001,0.01,0.05,0.2")
     ap.add_argument("--days", type=int, default=30, help="the daily window (0: skip the daily case)")
     ap.add_argument("--skip-month", action="store_true", help="skip the next-month case")
+    ap.add_argument("--data", choices=("library", "branches"), default="library",
+                    help="library: lshjob demo's generator (12 months); branches: bench/common.py's branch "
+                         "network (~40 loans a patron) with loan dates drawn uniformly over 2026-01-01..04-30")
     args = ap.parse_args()
     started = time.perf_counter()
-    events, _ = generate_events(args.patrons, 7)
-    events = events.select("patron", "title", "borrowed_at")
+    if args.data == "library":
+        events, _ = generate_events(args.patrons, 7)
+        events = events.select("patron", "title", "borrowed_at")
+    else:
+        events = pl.read_parquet(branch_network_events(args.patrons)).rename({"entity": "patron", "element": "title"})
+        minutes = np.random.default_rng(3).integers(0, 120 * 24 * 60, events.height)
+        events = events.with_columns(borrowed_at=pl.lit(datetime(2026, 1, 1)) + pl.duration(minutes=pl.Series(minutes)))
     month = events["borrowed_at"].dt.month()
     print(f"machine: {machine()} (2 cores shared with other work: timings noisy, compare ratios)")
     print(f"command: python bench/refresh.py --patrons {args.patrons} --threshold {args.threshold} "
-          f"--fractions {args.fractions} --days {args.days}")
-    print(f"events: {events.height} loans of {args.patrons} patrons over 12 months")
+          f"--fractions {args.fractions} --days {args.days} --data {args.data}")
+    print(f"events: {events.height} loans of {args.patrons} patrons ({args.data})", flush=True)
     rows = []
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)

@@ -216,3 +216,34 @@ def test_many_late_batches_fold_their_files_and_still_equal_the_full_run(tmp_pat
     assert np.array_equal(np.stack([folded[k] for k in keys]), sign_element_lists([sets[k] for k in keys], params))
     buckets = [f for f in state.files if f.kind == "buckets"]
     assert 1 <= len(buckets) < 5
+
+
+def test_the_command_line_full_flag_runs_the_whole_job_with_the_same_rows(tmp_path):
+    # Oracle: the index the state's path published for the same batches (row for row).
+    import json
+
+    from typer.testing import CliRunner
+
+    from lshjob.cli.app import app
+
+    first, second = _pairs_batch(1, 25, 15, 20, 0), _pairs_batch(2, 25, 15, 20, 100)
+    first.write_parquet(tmp_path / "m1.parquet")
+    second.write_parquet(tmp_path / "m2.parquet")
+    found = {}
+    for name, extra in (("state", []), ("full", ["--full"])):
+        for batch in ("m1", "m2"):
+            args = ["refresh", str(tmp_path / f"{batch}.parquet"), "--store", str(tmp_path / f"store-{name}"),
+                    "--entity", "patron", "--element", "title", "--time", "borrowed_at", "--period", "month",
+                    "--window", "2", "--threshold", "0.5", "--top-k", "3", "--out", str(tmp_path / f"index-{name}"),
+                    "--json", *extra]
+            result = CliRunner().invoke(app, args)
+            assert result.exit_code == 0, result.output
+        found[name] = json.loads(result.stdout)
+    assert found["state"]["refresh"]["design"] == "incremental"
+    assert found["full"]["refresh"]["design"] == "full run over the window"
+    for key in ("perms", "bands", "rows", "seed", "scheme"):
+        assert found["state"]["plan"][key] == found["full"]["plan"][key]
+    assert pl.read_parquet(tmp_path / "index-state" / "neighbours.parquet").equals(
+        pl.read_parquet(tmp_path / "index-full" / "neighbours.parquet"))
+    help_text = CliRunner().invoke(app, ["refresh", "--help"]).output
+    assert "--full" in help_text
