@@ -178,11 +178,12 @@ def test_many_late_batches_fold_their_files_and_still_equal_the_full_run(tmp_pat
     # signature delta files and the state's bucket files pass them and are folded into one. Oracles: the full run on the
     # window's events; each period's signature (the minimum over its files) against the
     # signature of the period's set signed directly from Python sets.
-    from lshjob.jobs import refresh_index, refresh_store
+    from lshjob.jobs import refresh_fold, refresh_index, refresh_store
     from lshjob.store import catalog
 
     monkeypatch.setattr(refresh_store, "MAX_SIGNATURE_DELTAS", 3)
     monkeypatch.setattr(refresh_index, "COMPACT_AFTER", 3)
+    monkeypatch.setattr(refresh_fold, "MAX_SET_DELTAS", 3)
     rng = np.random.default_rng(31)
     spec = EventSpec(entity="patron", element="title", time="borrowed_at", period="month")
     options = RefreshOptions(window=2, threshold=0.3, top_k=4)

@@ -258,8 +258,8 @@ def _by_run(store, state, folded, plan, why, options, spec, built, progress, sec
     """The index by ``lshjob run`` over the window's events (the full path)."""
     tick = time.perf_counter()
     window_path = store / store_files.WORK / "window.parquet"
-    folding.write_window(store, folded.periods, folded.changed, spec, window_path)
-    changed = folding.changed_entities(store, state.periods, folded.periods, folded.changed)
+    folding.write_window(store, folded, spec, window_path)
+    changed = folding.changed_entities(store, state.periods, folded)
     seconds["window"] = round(time.perf_counter() - tick, 3)
     run_spec = EventSpec(entity=spec.entity, element=spec.element, unicode=spec.unicode)
     manifest = run_job(window_path, run_spec, options.run_options(plan), built, progress)
@@ -289,7 +289,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
 
     def update(previous, touched, plan_now):
         try:
-            return paths.build(store, previous, folded.periods, folded.changed, touched,
+            return paths.build(store, previous, folded, touched,
                                options.run_options(plan_now), work, run_id, clock)
         except index_state.Oversize as exc:
             warnings.append(f"{exc}: the whole run made this index (the state needs no bucket over the cap)")
@@ -306,7 +306,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
         if (store / store_files.VERSIONS / record.get("version", "-")).is_dir() and "totals" in record:
             last, totals = store / store_files.VERSIONS / record["version"], record["totals"]
         with clock("sample"):  # the window after this batch, sampled anew
-            recall, figures = paths.sampled_recall(store, made.state.members, folded.periods, folded.changed, plan,
+            recall, figures = paths.sampled_recall(store, made.state.members, folded, plan,
                                                    options.run_options(plan), paths.sample_seed(batch.window_last))
         steps["sampled_recall"] = recall
         if recall is not None and recall < options.recall - RECALL_SLACK:
@@ -318,7 +318,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
     if made is None:
         if plan is None:
             with clock("plan"):
-                chosen = paths.plan_from_window(store, folded.periods, folded.changed, options.run_options(None))
+                chosen = paths.plan_from_window(store, folded, options.run_options(None))
             if not chosen.banded:
                 return None
             run_opts = options.run_options(None)

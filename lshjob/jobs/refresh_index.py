@@ -45,6 +45,7 @@ from lshjob.core.hashing import xxh64_integers
 from lshjob.core.sets import ElementSets
 from lshjob.index.collapse import fingerprints
 from lshjob.index.verify import VerifySettings
+from lshjob.jobs.refresh_fold import Folded, scan_periods
 from lshjob.runtime.partitions import HeldSets
 from lshjob.sign.signatures import SignatureParams, comparable_by_position
 from lshjob.store import files as store_files
@@ -130,12 +131,10 @@ def write_state(store: Path, state: IndexState, run_id: str) -> tuple[dict, list
     return record, written
 
 
-def window_sets(store: Path, periods, fresh: dict, wanted: pl.Series | None) -> ElementSets:
+def window_sets(store: Path, folded: Folded, wanted: pl.Series | None) -> ElementSets:
     """The window sets of the ``wanted`` entities (all when None), from the period files
-    (and the periods this refresh changed, ``fresh``)."""
-    frames = [fresh[p.period].lazy() if p.period in fresh else store_files.scan_tables(store, [p.sets_file])
-              for p in periods]
-    rows = pl.concat(frames, how="vertical")
+    and the rows this refresh folds in."""
+    rows = scan_periods(store, folded.periods, folded)
     if wanted is not None:
         rows = rows.filter(pl.col("entity").is_in(wanted.implode()))
     rows = rows.unique(["entity", "element"]).collect()
@@ -168,7 +167,7 @@ class Update:
     entities_before: int
 
 
-def update(store: Path, previous: IndexState, periods, fresh: dict, sets: ElementSets, touched: pl.Series | None,
+def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets, touched: pl.Series | None,
            params: SignatureParams, band_engine, verify_engine, work: Path, run_id: str, memory: int,
            clock) -> Update:
     """The state after the entities ``touched`` (all when None: a build from nothing) were read
@@ -218,7 +217,7 @@ def update(store: Path, previous: IndexState, periods, fresh: dict, sets: Elemen
             if largest > plan["max_bucket"]:
                 raise Oversize(f"a bucket would hold {largest} sets, over --max-bucket {plan['max_bucket']}")
     with clock("verify"):
-        verified = _verify(store, periods, fresh, candidates, members, params, plan["threshold"], verify_engine,
+        verified = _verify(store, folded, candidates, members, params, plan["threshold"], verify_engine,
                            work)
         alive = previous.pairs.join(live, left_on="left", right_on="set", how="semi").join(
             live, left_on="right", right_on="set", how="semi")
@@ -269,7 +268,7 @@ def _join(store: Path, files: list[str], new_file: str, live: pl.DataFrame, firs
     return pairs.cast({"left": pl.Int64, "right": pl.Int64, "bands_shared": pl.Int32}), int(largest)
 
 
-def _verify(store: Path, periods, fresh: dict, candidates: pl.DataFrame, members: pl.DataFrame,
+def _verify(store: Path, folded: Folded, candidates: pl.DataFrame, members: pl.DataFrame,
             params: SignatureParams, threshold: float, engine, work: Path) -> pl.DataFrame:
     """Exact Jaccard (and estimate) of the candidates, from the sets of one member of each,
     through the run's verify engine; the pairs reaching ``threshold``, by set id."""
@@ -277,7 +276,7 @@ def _verify(store: Path, periods, fresh: dict, candidates: pl.DataFrame, members
         return pl.DataFrame(schema=PAIR_SCHEMA)
     wanted = pl.concat([candidates["left"], candidates["right"]]).unique().to_frame("set")
     holder = members.join(wanted, on="set", how="semi").group_by("set").agg(pl.col("entity").min())
-    sets = window_sets(store, periods, fresh, holder["entity"])
+    sets = window_sets(store, folded, holder["entity"])
     local = holder.join(pl.DataFrame({"entity": sets.keys, "id": np.arange(sets.size, dtype=np.int64)}),
                         on="entity").select("set", "id")
     pairs = (candidates.join(local.rename({"set": "left", "id": "a"}), on="left")

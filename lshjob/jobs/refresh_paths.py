@@ -24,12 +24,12 @@ from lshjob.index import publish
 from lshjob.jobs import refresh_index as index_state
 from lshjob.jobs import refresh_publish
 from lshjob.jobs.prepare import plan_run
+from lshjob.jobs.refresh_fold import Folded, scan_periods
 from lshjob.plan.choose import Plan
 from lshjob.plan.similarity import sample_keys
 from lshjob.runtime import provenance
 from lshjob.runtime.budget import default_memory, parse_size, peak_bytes, reset_peak
 from lshjob.sign.signatures import SignatureParams
-from lshjob.store import files as store_files
 
 
 class Clock:
@@ -59,18 +59,18 @@ def touched_entities(store: Path, batch_rows: pl.DataFrame, expired) -> pl.Serie
     window and those of the periods that left it."""
     keys = [batch_rows.select("entity")]
     if expired:
-        keys.append(store_files.scan_tables(store, [p.sets_file for p in expired]).select("entity").collect())
+        keys.append(scan_periods(store, expired).select("entity").unique().collect())
     return pl.concat(keys).unique()["entity"]
 
 
-def sampled_recall(store: Path, members: pl.DataFrame, periods, fresh: dict, plan: dict, run_options,
+def sampled_recall(store: Path, members: pl.DataFrame, folded: Folded, plan: dict, run_options,
                    seed: int) -> tuple[float | None, dict]:
     """The kept plan's expected recall (the planner's own formula, 1 - (1 - s^r)^b over the
     pair histogram) on a new uniform sample of the window's entities (``sample_size`` of them,
     drawn with ``seed``), and the plan as judged (its ``predicted`` and ``sample``)."""
     keys = members["entity"]
     sample = sample_keys(keys, run_options.sample_size, seed)
-    sets = index_state.window_sets(store, periods, fresh, sample)
+    sets = index_state.window_sets(store, folded, sample)
     if sets.size < 2:
         return None, {}
     judged = plan_run(sets, run_options, total_entities=len(keys))
@@ -78,23 +78,23 @@ def sampled_recall(store: Path, members: pl.DataFrame, periods, fresh: dict, pla
     return figures.get("predicted", {}).get("expected_recall"), figures
 
 
-def plan_from_window(store: Path, periods, fresh: dict, run_options) -> Plan:
+def plan_from_window(store: Path, folded: Folded, run_options) -> Plan:
     """The planner's choice on the window's sets, as ``lshjob run`` makes it (every set held)."""
-    sets = index_state.window_sets(store, periods, fresh, None)
+    sets = index_state.window_sets(store, folded, None)
     fa, fb = index_state.set_prints(sets)
     distinct = pl.DataFrame({"fa": fa, "fb": fb}).unique().height
     return plan_run(sets, run_options, distinct_sets=distinct)
 
 
-def build(store: Path, previous: index_state.IndexState, periods, fresh: dict, touched: pl.Series | None,
+def build(store: Path, previous: index_state.IndexState, folded: Folded, touched: pl.Series | None,
           run_options, work: Path, run_id: str, clock: Clock) -> index_state.Update:
     """The state after reading ``touched`` anew (all entities when None); raises
     :class:`lshjob.jobs.refresh_index.Oversize`."""
     plan = previous.plan
     params = SignatureParams(scheme=plan["scheme"], perms=plan["perms"], seed=plan["seed"])
     with clock("read_sets"):
-        sets = index_state.window_sets(store, periods, fresh, touched)
-    return index_state.update(store, previous, periods, fresh, sets, touched, params,
+        sets = index_state.window_sets(store, folded, touched)
+    return index_state.update(store, previous, folded, sets, touched, params,
                               run_options.engine("band"), run_options.engine("verify"), work, run_id,
                               memory_of(run_options), clock)
 

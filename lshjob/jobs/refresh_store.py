@@ -6,9 +6,10 @@ from __future__ import annotations
 import json
 import os
 import shutil
-from dataclasses import asdict
+from dataclasses import asdict, replace
 from pathlib import Path
 
+import numpy as np
 import polars as pl
 
 from lshjob.errors import ParameterError
@@ -16,7 +17,7 @@ from lshjob.index import publish
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs import refresh_fold as folding
 from lshjob.jobs.diff import diff_indexes
-from lshjob.sign.signatures import SignatureParams
+from lshjob.sign.signatures import SignatureParams, signature_array, signature_column
 from lshjob.sign.slices import sign_sets
 from lshjob.store import catalog
 from lshjob.store import files as store_files
@@ -41,66 +42,62 @@ def pair_changes(previous: Path | None, built: Path) -> tuple[int, int, dict | N
 
 
 def store_periods(store: Path, folded: folding.Folded, plan: dict, rebuilt: bool, run_id: str,
-                   known: dict[str, catalog.StoredFile]) -> dict:
-    """Write the changed periods' sets and every period's signatures that this plan has not
-    signed yet; return the catalog's periods and files."""
+                  known: dict[str, catalog.StoredFile]) -> dict:
+    """Write the changed periods' sets (a delta file, or the period's one file) and their
+    signatures (of the delta's rows alone: the period signature is the minimum over its
+    files), every period's signatures when the plan is new; return the catalog's periods and
+    files."""
     params = SignatureParams(scheme=plan["scheme"], perms=plan["perms"], seed=plan["seed"]) if plan["perms"] else None
-    held = {p.period: p for p in folded.periods}
-    before = {p.period: p for p in folded.replaced}
     periods, files = [], []
+
+    def kept(path: str, kind: str, owner: str) -> catalog.StoredFile:
+        return known.get(path) or entry(store, path, kind, owner)
+
     for p in folded.periods:
-        if p.period in folded.changed:
-            files.append(store_files.write_table(store, p.sets_file, folded.changed[p.period], "sets", run_id))
-        else:
-            files.append(known.get(p.sets_file) or entry(store, p.sets_file, "sets", p.run_id))
-        signatures = p.signatures_file
-        if params is not None and (rebuilt or signatures is None or p.period in folded.changed):
-            table = folded.changed.get(p.period)
-            if table is None:
-                table = store_files.read_table(store, held[p.period].sets_file)
-            old = before.get(p.period)
-            deltas: tuple[str, ...] = ()
-            if not rebuilt and old is not None and old.signatures_file is not None and p.period in folded.added:
-                # a delta file: only the entities that gained elements, signed over their period set
-                gained = folded.added[p.period].implode()
-                signed = sign_sets(table.filter(pl.col("entity").is_in(gained)), ["entity"], params)
-                deltas = (*old.signature_deltas, store_files.period_file(p.period, run_id, "signature-delta"))
+        for f in (p.sets_file, *p.set_deltas):
+            if f in folded.pending:
+                files.append(store_files.write_table(store, f, folded.changed[p.period], "sets", run_id))
+            else:
+                files.append(kept(f, "sets", p.run_id))
+        signatures, deltas = p.signatures_file, p.signature_deltas
+        if params is None:
+            signatures, deltas = None, ()
+        elif rebuilt or signatures is None:  # the whole period, one file
+            rows = folding.scan_periods(store, [p], folded).unique(folding.PAIR).sort(folding.PAIR).collect()
+            signatures, deltas = store_files.period_file(p.period, run_id, "signatures"), ()
+            files.append(store_files.write_table(store, signatures, sign_sets(rows, ["entity"], params),
+                                                 "signatures", run_id, compression="lz4"))
+        elif p.period in folded.changed:  # a delta of the rows the sets delta added
+            signed = sign_sets(folded.changed[p.period], ["entity"], params)
+            if len(deltas) < MAX_SIGNATURE_DELTAS:
+                deltas = (*deltas, store_files.period_file(p.period, run_id, "signature-delta"))
+                files += [kept(f, "signatures", p.run_id) for f in (signatures, *deltas[:-1])]
                 files.append(store_files.write_table(store, deltas[-1], signed, "signatures", run_id,
                                                      compression="lz4"))
-                if len(deltas) <= MAX_SIGNATURE_DELTAS:
-                    signatures = old.signatures_file
-                    files += [known[f] for f in (signatures, *deltas[:-1])]
-                else:
-                    files.pop()
-                    signed = _newest_rows(store, [old.signatures_file, *deltas[:-1]], signed,
-                                          [known[f] for f in (old.signatures_file, *deltas[:-1])])
-                    deltas = ()
             else:
-                signed = sign_sets(table, ["entity"], params)
-            if not deltas:
-                signatures = store_files.period_file(p.period, run_id, "signatures")
-                files.append(store_files.write_table(store, signatures, signed, "signatures", run_id,
-                                                     compression="lz4"))
-        elif params is None:
-            signatures, deltas = None, ()
-        elif signatures is not None:
-            deltas = p.signature_deltas
-            files += [known.get(f) or entry(store, f, "signatures", p.run_id) for f in (signatures, *deltas)]
+                older = [known[f] for f in (signatures, *deltas)]
+                signatures, deltas = store_files.period_file(p.period, run_id, "signatures"), ()
+                files.append(store_files.write_table(store, signatures, _minimum_rows(store, older, signed),
+                                                     "signatures", run_id, compression="lz4"))
         else:
-            deltas = ()
-        periods.append(catalog.Period(p.period, p.sets_file, signatures, p.entities, p.membership_rows,
-                                      p.run_id, deltas))
+            files += [kept(f, "signatures", p.run_id) for f in (signatures, *deltas)]
+        periods.append(replace(p, signatures_file=signatures, signature_deltas=deltas))
     return {"periods": periods, "files": files}
 
 
-def _newest_rows(store: Path, paths: list[str], newest: pl.DataFrame, stored: list) -> pl.DataFrame:
-    """One table of a period's signatures from its files, oldest first: each entity's newest row
-    (a newer row signs a superset, so it is also the minimum of its rows)."""
+def _minimum_rows(store: Path, stored: list[catalog.StoredFile], newest: pl.DataFrame) -> pl.DataFrame:
+    """One table of a period's signatures from its files: each entity's element-wise minimum
+    over its rows (MinHash of a union: the minimum of the parts')."""
     for f in stored:
         check_sha256(store, f)
-    tables = [store_files.read_table(store, f) for f in paths] + [newest]
-    rows = pl.concat([t.with_columns(order=pl.lit(i)) for i, t in enumerate(tables)], how="vertical_relaxed")
-    return rows.sort("entity", "order").unique("entity", keep="last", maintain_order=True).drop("order")
+    rows = pl.concat([store_files.read_table(store, f) for f in stored] + [newest], how="vertical_relaxed")
+    rows = rows.sort("entity", maintain_order=True)
+    matrix = signature_array(rows)
+    starts = np.flatnonzero(np.r_[True, (rows["entity"] != rows["entity"].shift(1)).to_numpy()[1:]])
+    least = np.minimum.reduceat(matrix, starts, axis=0)
+    sizes = rows["set_size"].to_numpy()
+    return pl.DataFrame({"entity": rows["entity"].gather(starts), "signature": signature_column(least),
+                         "set_size": np.maximum.reduceat(sizes, starts).astype(np.uint32)})
 
 
 def check_sha256(store: Path, stored: catalog.StoredFile) -> None:
