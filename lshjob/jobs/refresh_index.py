@@ -60,7 +60,8 @@ PAIR_SCHEMA = {"left": pl.Int64, "right": pl.Int64, "jaccard": pl.Float64, "esti
 # Candidate pairs with a new set. Input: read_parquet($files) (band, bucket, set), table
 # live(set), read_parquet($new_file) (the new sets' rows); $first_new: the first new set id.
 # Output: the rows of buckets a new set is in, with the bucket's size (touched_rows), then
-# pairs (left < right, one of them new) and the bands they share.
+# pairs (left < right, one of them new) and the bands they share: a new set's rows joined to
+# the others of its buckets (a pair of two new sets once, the pairs of two old sets never).
 TOUCHED_ROWS_SQL = """
 CREATE OR REPLACE TEMP TABLE touched_rows AS
 WITH touched AS (
@@ -76,12 +77,12 @@ SELECT band, bucket, "set", count(*) OVER (PARTITION BY band, bucket) AS size
 FROM live_rows
 """
 PAIRS_SQL = """
-SELECT a."set" AS "left", b."set" AS "right", count(*)::INTEGER AS bands_shared
+SELECT least(a."set", b."set") AS "left", greatest(a."set", b."set") AS "right", count(*)::INTEGER AS bands_shared
 FROM touched_rows AS a
 JOIN touched_rows AS b
-  ON a.band = b.band AND a.bucket = b.bucket AND a."set" < b."set"
-WHERE a.size >= 2 AND (a."set" >= $first_new OR b."set" >= $first_new)
-GROUP BY a."set", b."set"
+  ON a.band = b.band AND a.bucket = b.bucket
+WHERE a."set" >= $first_new AND (b."set" < $first_new OR a."set" < b."set")
+GROUP BY 1, 2
 """
 
 
