@@ -1,12 +1,14 @@
 """The two ways a refresh builds its index from the store's state (for :mod:`lshjob.jobs.refresh`).
 
-* :func:`incremental`: the kept plan and the state of the last index (:mod:`lshjob.jobs.refresh_index`)
-  are updated for the entities the batch (or an expired period) touched. Before, the plan is
-  judged on a new sample of the window (:func:`sampled_recall`).
-* :func:`from_nothing`: the state is built for every entity of the window (the first refresh,
-  a new plan, or a store whose state was made under another plan or by a full run).
+* updated: the state of the last index (:mod:`lshjob.jobs.refresh_index`) is updated for the
+  entities the batch (or an expired period) touched (:func:`touched_entities`, :func:`build`);
+  after it the kept plan is judged on a new sample of the window (:func:`sampled_recall`);
+* from nothing: :func:`build` with an empty state and every entity of the window (the first
+  refresh, a new plan (:func:`plan_from_window`), or a store whose state was made under another
+  plan or by a full run).
 
-Both publish through the run's publish stage (:mod:`lshjob.index.publish`) into ``built``.
+Both publish through the run's publish stage (:mod:`lshjob.index.publish`) into ``built``
+(:func:`publish_state`).
 """
 
 from __future__ import annotations
