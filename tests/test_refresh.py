@@ -75,7 +75,10 @@ def _refresh(tmp_path, batch: pl.DataFrame, i: int, **kw) -> dict:
     return refresh_job(path, tmp_path / "store", SPEC, options, tmp_path / "index")
 
 
-def test_every_refresh_equals_the_full_run_on_the_window(tmp_path):
+@pytest.mark.parametrize("full", [False, True], ids=["from-state", "full-run"])
+def test_every_refresh_equals_the_full_run_on_the_window(tmp_path, full):
+    # from-state: the index updated from the store's state (only touched entities read,
+    # only pairs with a new set verified); full-run: lshjob run over the window each time.
     batches, leaving, arriving = _library_batches()
     delivered = pl.DataFrame(schema=batches[0].schema)
     seen_leaving = False
@@ -85,7 +88,9 @@ def test_every_refresh_equals_the_full_run_on_the_window(tmp_path):
         before_newest = delivered["borrowed_at"].max()
         delivered = pl.concat([delivered, batch])
         window, first = _window_events(delivered)
-        manifest = _refresh(tmp_path, batch, i)
+        manifest = _refresh(tmp_path, batch, i, full=full)
+        assert manifest["refresh"]["design"] == (
+            "full run over the window" if full else "incremental" if i else "state built from the whole window")
         published = pl.read_parquet(tmp_path / "index" / "neighbours.parquet")
         # Oracle: lshjob run on the window's events with the kept plan, every column bit for bit
         expected = _full_run(window, manifest["plan"], tmp_path / f"oracle-{i}")
@@ -252,7 +257,10 @@ def test_period_signatures_fold_to_the_window_signature(tmp_path):
     for i, batch in enumerate(batches[:3]):
         manifest = _refresh(tmp_path, batch, i)
     state = catalog.read_state(tmp_path / "store")
-    tables = [pl.read_parquet(tmp_path / "store" / p.signatures_file) for p in state.periods]
+    # a period's signatures: its file and the delta files added since (catalog.signature_deltas)
+    tables = [pl.read_parquet(tmp_path / "store" / f) for p in state.periods
+              for f in (p.signatures_file, *p.signature_deltas)]
+    assert any(p.signature_deltas for p in state.periods), "no period gained late events: nothing tested"
     stacked = pl.concat([t.select("entity", "signature") for t in tables])
     patrons = sorted(set(stacked["entity"]))
     folded = {}

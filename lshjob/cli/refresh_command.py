@@ -23,7 +23,7 @@ REFRESH_KEYS = {
     "events": str, "store": str, "entity": str, "element": str, "time": str, "period": str, "window": int,
     "threshold": (int, float), "out": str, "top_k": int, "keep": int, "recall": float, "seed": int,
     "scheme": str, "sample_size": int, "max_bucket": int, "max_candidates": (int, float),
-    "memory": (str, int), "wait": (int, float), "on_null": str, "unicode": str,
+    "memory": (str, int), "wait": (int, float), "on_null": str, "unicode": str, "full": bool,
 }
 # Defaults from where they are declared: RefreshOptions (itself on the run's option table) and
 # the spec's fields of that table; nothing repeated here.
@@ -40,12 +40,12 @@ def refresh_text(manifest: dict) -> str:
     banding = (f"k={plan['perms']}, b={plan['bands']}, r={plan['rows']}, seed {plan['seed']}, {plan['scheme']}"
                if plan.get("bands") else plan["mode"])
     return (f"window {r['window_first']} .. {r['window_last']} ({r['window_periods']} {r['period']} period(s) "
-            f"with events, {r['window_rows']} membership rows)\n"
+            f"with events, {r['period_rows']} membership rows in its periods)\n"
             f"batch: {r['batch_rows']} events; {r['rows_older_than_window']} older than the window dropped; "
             f"{r['periods_changed']} period(s) changed, {r['periods_expired']} expired; "
             f"{r['changed_entities']} entities changed; {r['pairs_added']} pairs added, "
             f"{r['pairs_removed']} removed, {r.get('pairs_jaccard_changed', 0)} with a changed Jaccard\n"
-            f"plan: {banding} ({r['why']})\n"
+            f"plan: {banding} ({r['why']}); index by {r['design']}\n"
             f"{manifest['output']['rows']} neighbour rows of {manifest['counts']['entities']} entities -> "
             f"{manifest['out']} in {manifest['seconds']['refresh']['total']} s")
 
@@ -107,6 +107,9 @@ def refresh(
         help="Seconds to wait while another refresh holds the store (then exit 75).  [default: 0]",
     )] = None,
     on_null: Annotated[str | None, typer.Option(help="Null keys: error or drop.  [default: error]")] = None,
+    full: Annotated[bool, typer.Option(
+        "--full", help="Run the whole job over the window instead of updating the last index's state.",
+    )] = False,
     config: Annotated[Path | None, typer.Option(help="TOML file with any of these options; flags override it.")] = None,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or summary text.")] = False,
     as_json: Annotated[bool, typer.Option("--json", help="Print the manifest as JSON on stdout.")] = False,
@@ -119,10 +122,13 @@ def refresh(
     --window 3 --threshold 0.5 --out index
 
     Example (scheduled): lshjob refresh --config nightly.toml
+
+    Example (check against the whole job): lshjob refresh loans.parquet --store loans-store ...
+    --full
     """
     flags = dict(events=events, store=store, entity=entity, element=element, time=time, period=period,
                  window=window, threshold=threshold, out=out, top_k=top_k, keep=keep, recall=recall, seed=seed,
-                 scheme=scheme, memory=memory, wait=wait, on_null=on_null)
+                 scheme=scheme, memory=memory, wait=wait, on_null=on_null, full=full or None)
     settings = merge_settings(REFRESH_DEFAULTS,
                               load_run_config(config, REFRESH_KEYS, ("events", "store", "out")) if config else {},
                               flags)

@@ -2,24 +2,31 @@
 
 Each refresh folds a batch of events into the store (:mod:`lshjob.store`), one file per
 period of each entity's distinct elements and one of their signatures; drops the periods
-that left the window; and publishes the index of the window. The index is built by the run
-(:func:`lshjob.jobs.run.run_job`) over the window's membership rows, recomposed from the
-store, with the plan the store keeps (perms, bands, rows, seed, scheme): so it holds exactly
-the rows ``lshjob run`` builds from the window's events with that plan. (Every stage runs on
-the whole window each time; the per-period signatures are kept for a refresh that re-bands
-only the entities that changed, by the element-wise minimum over their periods.)
+that left the window; and publishes the index of the window, which holds exactly the rows
+``lshjob run`` builds from the window's events with the plan the store keeps (perms, bands,
+rows, seed, scheme). It is made one of two ways:
+
+* from the store's state of the last index (:mod:`lshjob.jobs.refresh_index`): only the
+  entities the batch or an expired period touched are read, only their new sets signed and
+  banded, only pairs with a new set joined and verified, every other verified pair kept
+  (:mod:`lshjob.jobs.refresh_paths`); the first refresh, or one with a new plan, builds that
+  state for the whole window;
+* by the run (:func:`lshjob.jobs.run.run_job`) over the window's membership rows, recomposed
+  from the store: with ``full`` (``--full``), for a plan without bands, or when a bucket
+  would pass ``--max-bucket`` (the run's join splits such buckets; the state does not).
 
 The first refresh into an empty store lets the planner choose (data mode) and keeps its
 plan. A later refresh keeps it while the planner's expected recall of it, judged on the
-window's sample, still meets ``--recall`` (less :data:`RECALL_SLACK`); below it (or with another threshold, seed or
-scheme) the refresh re-plans, rebuilds and says why.
+window's sample (a new uniform sample each refresh), still meets ``--recall`` (less
+:data:`RECALL_SLACK`); below it (or with another threshold, seed or scheme) the refresh
+re-plans, rebuilds and says why (in the manifest, the history and on stderr).
 
 Order of the writes, so that a refresh killed at any moment (SIGKILL included) leaves the
 store and the index readable and consistent:
 
 1. the store's lock (one refresh per store: exit 75 for a second) and the index's lock;
    what killed refreshes left in the store is removed;
-2. the new period files, and the index built into ``STORE/versions/RUN`` (temporary names,
+2. the new period and state files, and the index built into ``STORE/versions/RUN`` (temporary names,
    renamed); nothing in the catalog names them yet, so a kill here leaves the previous state;
 3. the catalog, in one transaction: periods, files with their SHA-256, plan, versions kept
    (``--keep``), and the run;
@@ -33,34 +40,32 @@ from __future__ import annotations
 import json
 import os
 import shutil
+import sys
 import time
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from pathlib import Path
 
-import polars as pl
-
-from lshjob.errors import ParameterError
+from lshjob.errors import InputError, ParameterError
 from lshjob.index import publish
 from lshjob.ingest.spec import PERIODS, EventSpec
 from lshjob.jobs import refresh_fold as folding
-from lshjob.jobs.diff import diff_indexes
+from lshjob.jobs import refresh_index as index_state
+from lshjob.jobs import refresh_paths as paths
+from lshjob.jobs import refresh_store as stored
 from lshjob.jobs.options import default_of
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.runtime import provenance, stopping
 from lshjob.runtime.folder_lock import output_lock
 from lshjob.runtime.outputs import output_folder
 from lshjob.runtime.progress import QUIET, StageProgress
-from lshjob.sign.signatures import SignatureParams
-from lshjob.sign.slices import sign_sets
 from lshjob.store import catalog
 from lshjob.store import files as store_files
 
-STORE_FORMAT = "lshjob-store"
+INDEX_STATE = "index_state"  # the catalog's fact naming the state of the last index (refresh_index)
 # The planner keeps the cheapest plan at or above --recall, so its recall sits at the target:
 # a kept plan is judged against the target less this slack, or a new sample's noise alone
 # would re-plan most refreshes.
 RECALL_SLACK = 0.02
-DIFF_PATHS = ("old", "new", "out")  # of the diff summary: folders of the store's work, not kept
 
 
 @dataclass(frozen=True)
@@ -77,6 +82,7 @@ class RefreshOptions:
     max_candidates: float = default_of("max_candidates")
     memory: str | None = default_of("memory")
     wait: float = default_of("wait")
+    full: bool = False  # run the whole job over the window instead of updating the index state
 
     def validate(self) -> None:
         if self.window < 1:
@@ -105,7 +111,7 @@ def refresh_job(events: str | Path, store: str | Path, spec: EventSpec, options:
         raise ParameterError(f"--period must be one of {', '.join(PERIODS)}, with --time")
     store = output_folder(store, [events], "refresh", what="a store folder", option="--store")
     out = output_folder(out, [events], "refresh")
-    if _inside(out, store) or _inside(store, out):
+    if stored.inside(out, store) or stored.inside(store, out):
         raise ParameterError(f"--out {out} and --store {store} must be apart (neither inside the other)")
     if not store_files.is_store(store):
         raise ParameterError(f"--store {store} is a folder with other files and no {catalog.CATALOG}; "
@@ -129,7 +135,8 @@ def refresh_job(events: str | Path, store: str | Path, spec: EventSpec, options:
 
 def _refresh(events, store, spec, options, out, progress, command, run_id, started, started_at, warnings):
     state = catalog.read_state(store)
-    damaged = store_files.check_files(store, state)
+    # period signatures (the largest files, read only when their period changes) are checked when read
+    damaged = store_files.check_files(store, state, size_only=("signatures",))
     if damaged:
         raise ParameterError(f"{store}: the store is damaged ({damaged[0]}"
                              + (f"; and {len(damaged) - 1} more" if len(damaged) > 1 else "")
@@ -137,15 +144,12 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     removed = store_files.remove_strays(store, state)
     if removed:
         warnings.append(f"removed {len(removed)} file(s) a killed refresh left in the store (e.g. {removed[0]})")
-    _check_facts(state, spec, store)
+    stored.check_facts(state, spec, store)
     seconds: dict[str, float] = {}
 
     tick = time.perf_counter()
     batch = folding.read_batch(events, spec, state, options.window)
     folded = folding.fold(store, state, batch, run_id)
-    window_path = store / store_files.WORK / "window.parquet"
-    window_rows = folding.write_window(store, folded.periods, folded.changed, spec, window_path)
-    changed = folding.changed_entities(store, state.periods, folded.periods, folded.changed)
     seconds["fold"] = round(time.perf_counter() - tick, 3)
     if state.periods and len(folded.expired) == len(state.periods):
         warnings.append(f"the window moved past every period the store held (the newest event is in the period "
@@ -153,18 +157,20 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     if batch.rows_older_than_window:
         warnings.append(f"{batch.rows_older_than_window} event(s) older than the window (before "
                         f"{batch.window_first.isoformat()}) were dropped")
+    if not folded.periods:
+        raise InputError("no event falls in the window: nothing to index")
 
     plan, why = _plan_to_use(state.plan, options)
     built = store / store_files.WORK / "index"
-    run_spec = EventSpec(entity=spec.entity, element=spec.element, unicode=spec.unicode)
-    manifest = run_job(window_path, run_spec, options.run_options(plan), built, progress)
-    predicted = manifest["plan"].get("predicted", {}).get("expected_recall")
-    if plan is not None and why is None and predicted is not None and predicted < options.recall - RECALL_SLACK:
-        why = (f"the kept plan's expected recall on this window's sample, {predicted:.4f}, is below "
-               f"--recall {options.recall} less {RECALL_SLACK}: re-planned and rebuilt")
-        plan = None
-        shutil.rmtree(built)
-        manifest = run_job(window_path, run_spec, options.run_options(None), built, progress)
+    made = _by_state(store, state, batch, folded, plan, why, options, spec, events, built, run_id, warnings)
+    if made is None:  # the whole run over the window's events
+        manifest, plan, why, changed = _by_run(store, state, folded, plan, why, options, spec, built, progress,
+                                               seconds)
+        design, index_record, index_files, diff = "full run over the window", None, [], None
+    else:
+        manifest, plan, why, changed, index_record, index_files, diff = made
+        design = "incremental" if not manifest["refresh_steps"]["rebuilt"] else "state built from the whole window"
+        seconds.update({f"index.{k}": v for k, v in manifest["seconds"].items() if k != "total"})
     rebuilt = plan is None
     run_opts = options.run_options(plan)
     kept = {"perms": manifest["plan"].get("perms"), "bands": manifest["plan"].get("bands"),
@@ -172,26 +178,33 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
             "mode": manifest["plan"]["mode"] if rebuilt else state.plan["mode"],
             "threshold": options.threshold, "recall": options.recall,
             "chosen_by": run_id if rebuilt else state.plan["chosen_by"]}
-    for name, value in manifest["seconds"].items():
-        seconds[f"run.{name}"] = value
+    if why is not None and state.plan is not None:
+        _say(why)
 
     previous = store / store_files.VERSIONS / state.versions[-1].folder if state.versions else None
-    added, removed, diff = _pair_changes(previous, built)
     tick = time.perf_counter()
-    stored = _store_periods(store, folded, kept, rebuilt, run_id, {f.path: f for f in state.files})
+    if diff is None or previous is None or diff["old_run_id"] != previous.name:
+        added, removed, diff = stored.pair_changes(previous, built)
+    else:  # made with the index, from the rows that changed (refresh_publish)
+        added, removed = diff["pairs_added"], diff["pairs_removed"]
+    seconds["diff"] = round(time.perf_counter() - tick, 3)
+    tick = time.perf_counter()
+    periods_made = stored.store_periods(store, folded, kept, rebuilt, run_id, {f.path: f for f in state.files})
     seconds["sign_periods"] = round(time.perf_counter() - tick, 3)
 
     summary = {"store": str(store.absolute()), "events": str(events), "window": options.window,
                "period": spec.period, "window_first": batch.window_first.isoformat(),
                "window_last": batch.window_last.isoformat(), "window_periods": len(folded.periods),
-               "window_rows": window_rows, "batch_rows": batch.rows_read,
+               "period_rows": sum(p.membership_rows for p in folded.periods), "batch_rows": batch.rows_read,
                "null_rows_dropped": batch.null_rows_dropped,
                "rows_older_than_window": batch.rows_older_than_window, "changed_entities": changed,
                "pairs_added": added, "pairs_removed": removed,
                "pairs_jaccard_changed": diff["pairs_jaccard_changed"] if diff else 0,
                "churn_rate": diff["churn_rate"] if diff else None,
                "periods_changed": len(folded.changed), "periods_expired": len(folded.expired),
-               "rebuilt": rebuilt, "why": why or "kept plan", "design": "full run over the window"}
+               "rebuilt": rebuilt, "why": why or "kept plan", "design": design}
+    if made is not None:
+        summary["steps"] = manifest.pop("refresh_steps")
     seconds["total"] = round(time.perf_counter() - started, 3)  # to the index built and the store's files written
     manifest = dict(manifest, command=list(command) if command is not None else None,
                     plan=dict(manifest["plan"], seed=kept["seed"], scheme=kept["scheme"]),
@@ -200,15 +213,18 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
                     seconds=dict(manifest["seconds"], refresh=seconds))
     manifest = json.loads(json.dumps(manifest, default=str))  # what the file holds, exactly
     version = store / store_files.VERSIONS / run_id
-    _write_json(built / publish.MANIFEST, manifest)
+    stored.write_json(built / publish.MANIFEST, manifest)
     version.parent.mkdir(parents=True, exist_ok=True)
     os.replace(built, version)
 
     versions = [*state.versions, catalog.Version(run_id, run_id, manifest["output"]["sha256"],
                                                   manifest["output"]["rows"])][-options.keep:]
     dropped_versions = [v for v in state.versions if v not in versions]
-    new_state = catalog.State(facts=dict(_facts(spec), **batch.key_types), plan=kept, periods=stored["periods"],
-                              files=stored["files"], versions=versions)
+    facts = dict(stored.facts(spec), **batch.key_types)
+    if index_record is not None:
+        facts[INDEX_STATE] = json.dumps(index_record, sort_keys=True)
+    new_state = catalog.State(facts=facts, plan=kept, periods=periods_made["periods"],
+                              files=periods_made["files"] + index_files, versions=versions)
     run = dict(run_id=run_id, started_at=provenance.iso(started_at), finished_at=provenance.iso(provenance.utc_now()),
                window_first=batch.window_first, window_last=batch.window_last, window_periods=len(folded.periods),
                batch_rows=batch.rows_read, rows_older_than_window=batch.rows_older_than_window,
@@ -226,7 +242,7 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     staging = publish.staging_folder(out)
     shutil.rmtree(staging, ignore_errors=True)
     staging.mkdir(parents=True)
-    _link_or_copy(version / publish.NEIGHBOURS, staging / publish.NEIGHBOURS)
+    stored.link_or_copy(version / publish.NEIGHBOURS, staging / publish.NEIGHBOURS)
     with stopping.held():  # the index is renamed whole or not at all
         publish.commit_index(out, manifest)
         stopping.mark_published()
@@ -234,18 +250,103 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     return manifest
 
 
-def _pair_changes(previous: Path | None, built: Path) -> tuple[int, int, dict | None]:
-    """Unordered pairs of the published index added and removed since the previous version
-    (all of them added on a first refresh), and the summary of :func:`lshjob.jobs.diff.diff_indexes`
-    between the two (None on a first refresh), as the run's record keeps it."""
-    if previous is None:
-        rows = pl.scan_parquet(built / publish.NEIGHBOURS)
-        pairs = rows.select(pl.min_horizontal("entity", "neighbour").alias("a"),
-                            pl.max_horizontal("entity", "neighbour").alias("b")).unique()
-        return int(pairs.select(pl.len()).collect().item()), 0, None
-    summary = diff_indexes(previous, built)
-    kept = {k: v for k, v in summary.items() if k not in DIFF_PATHS}
-    return summary["pairs_added"], summary["pairs_removed"], dict(kept, old_run_id=previous.name)
+def _say(why: str) -> None:
+    print(f"lshjob refresh: {why}", file=sys.stderr)
+
+
+def _by_run(store, state, folded, plan, why, options, spec, built, progress, seconds):
+    """The index by ``lshjob run`` over the window's events (the full path)."""
+    tick = time.perf_counter()
+    window_path = store / store_files.WORK / "window.parquet"
+    folding.write_window(store, folded, spec, window_path)
+    changed = folding.changed_entities(store, state.periods, folded)
+    seconds["window"] = round(time.perf_counter() - tick, 3)
+    run_spec = EventSpec(entity=spec.entity, element=spec.element, unicode=spec.unicode)
+    manifest = run_job(window_path, run_spec, options.run_options(plan), built, progress)
+    predicted = manifest["plan"].get("predicted", {}).get("expected_recall")
+    if plan is not None and why is None and predicted is not None and predicted < options.recall - RECALL_SLACK:
+        why = (f"the kept plan's expected recall on this window's sample, {predicted:.4f}, is below "
+               f"--recall {options.recall} less {RECALL_SLACK}: re-planned and rebuilt")
+        plan = None
+        shutil.rmtree(built)
+        manifest = run_job(window_path, run_spec, options.run_options(None), built, progress)
+    for name, value in manifest["seconds"].items():
+        seconds[f"run.{name}"] = value
+    return manifest, plan, why, changed
+
+
+def _by_state(store, state, batch, folded, plan, why, options, spec, events, built, run_id, warnings):
+    """The index from the store's state (:mod:`lshjob.jobs.refresh_paths`): updated for the
+    touched entities when the state was made under the kept plan and the plan still meets
+    the recall target on a new sample of the window, else built for the whole window; None
+    when the full run must make it (--full, a plan without bands, a bucket over --max-bucket)."""
+    if options.full or (plan is not None and plan.get("bands") is None):
+        return None
+    clock = paths.Clock()
+    record = json.loads(state.facts[INDEX_STATE]) if INDEX_STATE in state.facts else None
+    work = store / store_files.WORK / "state"
+    steps, made, from_nothing = {}, None, False
+
+    def update(previous, touched, plan_now):
+        try:
+            return paths.build(store, previous, folded, touched,
+                               options.run_options(plan_now), work, run_id, clock)
+        except index_state.Oversize as exc:
+            warnings.append(f"{exc}: the whole run made this index (the state needs no bucket over the cap)")
+            return None
+
+    last, totals = None, None
+    if plan is not None and record is not None \
+            and record["plan"] == index_state.state_plan(plan, options.max_bucket, options.top_k):
+        with clock("touched"):
+            touched = paths.touched_entities(store, batch.rows, folded.expired)
+        made = update(index_state.read_state(store, record), touched, plan)
+        if made is None:
+            return None
+        if (store / store_files.VERSIONS / record.get("version", "-")).is_dir() and "totals" in record:
+            last, totals = store / store_files.VERSIONS / record["version"], record["totals"]
+        with clock("sample"):  # the window after this batch, sampled anew
+            recall, figures = paths.sampled_recall(store, made.state.members, folded, plan,
+                                                   options.run_options(plan), paths.sample_seed(batch.window_last))
+        steps["sampled_recall"] = recall
+        if recall is not None and recall < options.recall - RECALL_SLACK:
+            why = (f"the kept plan's expected recall on a new sample of the window, {recall:.4f}, is below "
+                   f"--recall {options.recall} less {RECALL_SLACK}: re-planned and rebuilt")
+            plan, made, last, totals = None, None, None, None
+        else:
+            plan_now, figures = dict(plan), dict(figures, mode=plan["mode"], why="kept plan")
+    if made is None:
+        if plan is None:
+            with clock("plan"):
+                chosen = paths.plan_from_window(store, folded, options.run_options(None))
+            if not chosen.banded:
+                return None
+            run_opts = options.run_options(None)
+            figures = chosen.to_dict()
+            plan_now = {"perms": chosen.perms, "bands": chosen.bands, "rows": chosen.rows, "seed": run_opts.seed,
+                        "scheme": run_opts.scheme, "threshold": options.threshold}
+        else:  # no state yet under the kept plan (a full run made the last index)
+            plan_now, figures = dict(plan), {"mode": plan["mode"], "why": "kept plan"}
+        empty = index_state.IndexState.empty(index_state.state_plan(plan_now, options.max_bucket, options.top_k),
+                                             batch.rows.schema["entity"])
+        made, from_nothing = update(empty, None, plan_now), True
+        if made is None:
+            return None
+    record, files = index_state.write_state(store, made.state, run_id)
+    known = {f.path: f for f in state.files}
+    new_paths = {f.path for f in made.new_files}
+    files += [known.get(p) or stored.entry(store, p, "buckets", run_id) for p in made.state.bucket_files
+              if p not in new_paths] + made.new_files
+    counts = {"changed_entities": made.changed_entities, "new_sets": made.new_sets,
+              "forgotten_sets": made.forgotten_sets, "candidate_pairs": made.candidate_pairs,
+              "verified_pairs": made.verified_pairs}
+    manifest, diff, totals = paths.publish_state(made, last, totals, built, options.run_options(plan_now), plan_now,
+                                                 figures, spec, events, clock, run_id, counts, [])
+    record = dict(record, version=run_id, totals=totals)
+    stored.write_json(built / publish.MANIFEST, manifest)  # read by the diff against the last version
+    steps.update(counts, rebuilt=from_nothing, affected_entities=manifest["counts"].get("affected_entities"))
+    manifest["refresh_steps"] = steps
+    return manifest, plan, why, made.changed_entities, record, files, diff
 
 
 def _plan_to_use(kept: dict | None, options: RefreshOptions) -> tuple[dict | None, str | None]:
@@ -263,77 +364,5 @@ def _plan_to_use(kept: dict | None, options: RefreshOptions) -> tuple[dict | Non
     return kept, None
 
 
-def _store_periods(store: Path, folded: folding.Folded, plan: dict, rebuilt: bool, run_id: str,
-                   known: dict[str, catalog.StoredFile]) -> dict:
-    """Write the changed periods' sets and every period's signatures that this plan has not
-    signed yet; return the catalog's periods and files."""
-    params = SignatureParams(scheme=plan["scheme"], perms=plan["perms"], seed=plan["seed"]) if plan["perms"] else None
-    held = {p.period: p for p in folded.periods}
-    periods, files = [], []
-    for p in folded.periods:
-        if p.period in folded.changed:
-            files.append(store_files.write_table(store, p.sets_file, folded.changed[p.period], "sets", run_id))
-        else:
-            files.append(known.get(p.sets_file) or _entry(store, p.sets_file, "sets", p.run_id))
-        signatures = p.signatures_file
-        if params is not None and (rebuilt or signatures is None or p.period in folded.changed):
-            table = folded.changed.get(p.period)
-            if table is None:
-                table = store_files.read_table(store, held[p.period].sets_file)
-            signatures = store_files.period_file(p.period, run_id, "signatures")
-            files.append(store_files.write_table(store, signatures, sign_sets(table, ["entity"], params),
-                                                 "signatures", run_id))
-        elif params is None:
-            signatures = None
-        elif signatures is not None:
-            files.append(known.get(signatures) or _entry(store, signatures, "signatures", p.run_id))
-        periods.append(catalog.Period(p.period, p.sets_file, signatures, p.entities, p.membership_rows,
-                                      p.run_id))
-    return {"periods": periods, "files": files}
 
-
-def _entry(store: Path, relative: str, kind: str, run_id: str) -> catalog.StoredFile:
-    path = Path(store) / relative
-    return catalog.StoredFile(relative, kind, store_files.sha256_of(path), path.stat().st_size, run_id)
-
-
-def _facts(spec: EventSpec) -> dict[str, str]:
-    return {"format": STORE_FORMAT, "format_version": "1", "spec": json.dumps(asdict(spec), sort_keys=True),
-            "period": spec.period}
-
-
-def _check_facts(state: catalog.State, spec: EventSpec, store: Path) -> None:
-    if state.facts.get("period") not in (None, spec.period):
-        raise ParameterError(f"--store {store} keeps {state.facts['period']} periods; got --period {spec.period} "
-                             "(start a new store for another period)")
-
-
-def _write_json(path: Path, data: dict) -> None:
-    temporary = path.with_name(f".{path.name}.tmp")
-    temporary.write_text(json.dumps(data, indent=2, sort_keys=True, default=str) + "\n")
-    os.replace(temporary, path)
-
-
-def _link_or_copy(source: Path, target: Path) -> None:
-    try:
-        os.link(source, target)
-    except OSError:
-        shutil.copyfile(source, target)
-
-
-def _inside(path: Path, folder: Path) -> bool:
-    path, folder = Path(os.path.realpath(path)), Path(os.path.realpath(folder))
-    return path == folder or folder in path.parents
-
-
-def history(store: str | Path) -> dict:
-    """Every refresh of ``store``, oldest first: id, start and end, window, batch rows, changed
-    entities, seconds and peak memory per stage, plan, output SHA-256; and the versions kept."""
-    store = Path(store)
-    if not (store / catalog.CATALOG).is_file():
-        raise ParameterError(f"{store}: no {catalog.CATALOG}; is this a store made by lshjob refresh?")
-    state = catalog.read_state(store)
-    return {"store": str(store.absolute()), "runs": catalog.runs(store), "plan": state.plan,
-            "periods": [p.period.isoformat() for p in state.periods],
-            "versions": [{"run_id": v.run_id, "folder": str(store / store_files.VERSIONS / v.folder),
-                          "sha256": v.sha256, "rows": v.rows} for v in state.versions]}
+history = stored.history

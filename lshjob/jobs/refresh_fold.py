@@ -10,7 +10,7 @@ every calendar period counted whether it holds events or not.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import date
 from pathlib import Path
 
@@ -76,72 +76,83 @@ def _kind(name: str, column: str, frame: pl.LazyFrame, state: State, where: str)
     return kind
 
 
+MAX_SET_DELTAS = 8  # delta files a period's sets keep before they are folded into one file
+
+
 @dataclass
 class Folded:
     """The window's periods after folding a batch in, and what changed."""
 
     periods: list[Period]  # the window's, oldest first; changed ones name files still to write
-    changed: dict[date, pl.DataFrame]  # period -> its new sets table (entity, element), sorted
+    changed: dict[date, pl.DataFrame]  # period -> rows to write: a sets delta, or the period's whole table
     expired: list[Period]
-    replaced: list[Period]  # periods whose earlier files the new ones replace
+    replaced: list[Period]  # periods whose earlier files the new ones replace or extend
+    pending: set[str] = field(default_factory=set)  # files the periods name, not written yet
 
 
 def fold(store: Path, state: State, batch: Batch, run_id: str) -> Folded:
-    """Add the batch's rows to their periods and drop the periods that left the window."""
+    """Add the batch's rows to their periods and drop the periods that left the window. A
+    period already held gains a sets delta file of the batch's rows (no file is read; its
+    set is the union of its files), or, past :data:`MAX_SET_DELTAS`, one file of them all."""
     held = {p.period: p for p in state.periods}
     changed: dict[date, pl.DataFrame] = {}
     replaced: list[Period] = []
+    periods: dict[date, Period] = {}
+    pending: set[str] = set()
     for (period,), rows in sorted(batch.rows.partition_by("period", as_dict=True, include_key=False).items()):
-        rows = rows.unique(PAIR)
-        if period in held:
-            before = store_files.read_table(store, held[period].sets_file)
-            added = rows.join(before, on=PAIR, how="anti")
-            if added.height == 0:
-                continue
-            rows = pl.concat([before, added], how="vertical")
-            replaced.append(held[period])
-        changed[period] = rows.sort(PAIR)
-    expired = [p for p in state.periods if p.period < batch.window_first]
-    periods = []
-    for period in sorted(set(held) | set(changed)):
-        if period < batch.window_first:
-            continue
-        if period in changed:
-            table = changed[period]
-            periods.append(Period(period, store_files.period_file(period, run_id, "sets"), None,
-                                  table["entity"].n_unique(), table.height, run_id))
+        rows = rows.unique(PAIR).sort(PAIR)
+        old = held.get(period)
+        if old is not None and len(old.set_deltas) < MAX_SET_DELTAS:
+            delta = store_files.period_file(period, run_id, "sets-delta")
+            periods[period] = replace(old, entities=old.entities + rows["entity"].n_unique(),
+                                      membership_rows=old.membership_rows + rows.height,
+                                      set_deltas=(*old.set_deltas, delta), run_id=run_id)
+            pending.add(delta)
         else:
-            periods.append(held[period])
-    return Folded(periods, changed, expired, replaced)
+            if old is not None:  # folded into one file with its earlier ones
+                rows = pl.concat([scan_periods(store, [old]), rows.lazy()]).unique(PAIR).sort(PAIR).collect()
+            base = store_files.period_file(period, run_id, "sets")
+            periods[period] = Period(period, base, None, rows["entity"].n_unique(), rows.height, run_id)
+            pending.add(base)
+        if old is not None:
+            replaced.append(old)
+        changed[period] = rows
+    expired = [p for p in state.periods if p.period < batch.window_first]
+    window = [periods.get(d) or held[d] for d in sorted(set(held) | set(periods)) if d >= batch.window_first]
+    return Folded(window, changed, expired, replaced, pending)
 
 
-def changed_entities(store: Path, before: list[Period], after: list[Period], fresh: dict[date, pl.DataFrame]) -> int:
+def scan_periods(store: Path, periods: list[Period], folded: Folded | None = None) -> pl.LazyFrame:
+    """The (entity, element) rows of ``periods``: their files (with a fold's rows not written
+    yet); an entity's element may repeat across a period's files."""
+    frames = []
+    for p in periods:
+        files = [f for f in (p.sets_file, *p.set_deltas) if folded is None or f not in folded.pending]
+        if files:
+            frames.append(store_files.scan_tables(store, files))
+        if folded is not None and p.period in folded.changed:
+            frames.append(folded.changed[p.period].lazy())
+    return pl.concat(frames, how="vertical") if frames else pl.LazyFrame(schema={"entity": pl.String,
+                                                                                 "element": pl.String})
+
+
+def changed_entities(store: Path, before: list[Period], folded: Folded) -> int:
     """Entities whose window set differs between the two windows (a pair gained or lost)."""
-    def pairs(periods: list[Period], new: bool) -> pl.LazyFrame:
-        frames = [fresh[p.period].lazy() if new and p.period in fresh else store_files.scan_tables(store, [p.sets_file])
-                  for p in periods]
-        return pl.concat(frames, how="vertical").unique(PAIR) if frames else pl.LazyFrame(schema=_schema(fresh))
-
+    new = scan_periods(store, folded.periods, folded).unique(PAIR)
     if not before:
-        return int(pairs(after, True).select(pl.col("entity").n_unique()).collect().item())
-    old, new = pairs(before, False), pairs(after, True)
+        return int(new.select(pl.col("entity").n_unique()).collect().item())
+    old = scan_periods(store, before).unique(PAIR)
     gained = new.join(old, on=PAIR, how="anti").select("entity")
     lost = old.join(new, on=PAIR, how="anti").select("entity")
     return int(pl.concat([gained, lost]).select(pl.col("entity").n_unique()).collect().item())
 
 
-def _schema(fresh: dict[date, pl.DataFrame]) -> dict:
-    return next(iter(fresh.values())).schema if fresh else {"entity": pl.String, "element": pl.String}
-
-
-def write_window(store: Path, periods: list[Period], fresh: dict[date, pl.DataFrame], spec: EventSpec,
-                 path: Path) -> int:
+def write_window(store: Path, folded: Folded, spec: EventSpec, path: Path) -> int:
     """The window's membership rows as events (columns named as the batch's) for ``lshjob run``."""
-    frames = [fresh[p.period].lazy() if p.period in fresh else store_files.scan_tables(store, [p.sets_file])
-              for p in periods]
-    if not frames:
+    if not folded.periods:
         raise InputError("no event falls in the window: nothing to index")
-    table = pl.concat(frames, how="vertical").rename({"entity": spec.entity, "element": spec.element})
+    table = scan_periods(store, folded.periods, folded).unique(PAIR).rename(
+        {"entity": spec.entity, "element": spec.element})
     path.parent.mkdir(parents=True, exist_ok=True)
     table.sink_parquet(path, compression="zstd")
     return pl.scan_parquet(path).select(pl.len()).collect().item()

@@ -15,6 +15,10 @@ Tables (all written whole by :func:`commit`, except ``runs`` which only grows):
   plan, one row or none;
 * ``periods(period, sets_file, signatures_file, entities, membership_rows, run_id)``: one
   row per period of the window;
+* ``period_deltas(period, kind, path, position)``: files added to a period's sets (``sets``)
+  or signatures (``signatures``) since its file of that kind was written: a period's set of an
+  entity is the union of its rows in the file and its deltas, its signature the element-wise
+  minimum of its rows (a delta signs the rows its sets delta added);
 * ``files(path, kind, sha256, bytes, run_id)``: every file of the store (paths relative to
   the store folder);
 * ``versions(run_id, folder, sha256, rows)``: the published indexes kept (``--keep``);
@@ -45,6 +49,8 @@ CREATE TABLE IF NOT EXISTS plan (perms INTEGER, bands INTEGER, "rows" INTEGER, s
                                  mode VARCHAR, threshold DOUBLE, recall DOUBLE, chosen_by VARCHAR);
 CREATE TABLE IF NOT EXISTS periods (period DATE NOT NULL, sets_file VARCHAR NOT NULL, signatures_file VARCHAR,
                                     entities BIGINT, membership_rows BIGINT, run_id VARCHAR);
+CREATE TABLE IF NOT EXISTS period_deltas (period DATE NOT NULL, kind VARCHAR NOT NULL, path VARCHAR NOT NULL,
+                                          "position" BIGINT);
 CREATE TABLE IF NOT EXISTS files (path VARCHAR NOT NULL, kind VARCHAR, sha256 VARCHAR, bytes BIGINT, run_id VARCHAR);
 CREATE TABLE IF NOT EXISTS versions (run_id VARCHAR NOT NULL, folder VARCHAR, sha256 VARCHAR, "rows" BIGINT,
                                      "position" BIGINT);
@@ -74,6 +80,11 @@ class Period:
     entities: int
     membership_rows: int
     run_id: str
+    signature_deltas: tuple[str, ...] = ()  # oldest first
+    set_deltas: tuple[str, ...] = ()  # oldest first
+
+    def row(self) -> list:
+        return [self.period, self.sets_file, self.signatures_file, self.entities, self.membership_rows, self.run_id]
 
 
 @dataclass(frozen=True)
@@ -145,7 +156,14 @@ def _state(con) -> State:
     if plan:
         state.plan = dict(zip(("perms", "bands", "rows", "seed", "scheme", "mode", "threshold", "recall",
                                "chosen_by"), plan[0]))
-    state.periods = [Period(*row) for row in con.execute(
+    deltas: dict = {}
+    if con.execute("SELECT count(*) FROM information_schema.tables WHERE table_name = 'period_deltas'"
+                   ).fetchone()[0]:  # a store made before them has none
+        for period, kind, path in con.execute(
+                'SELECT period, kind, path FROM period_deltas ORDER BY period, kind, "position"').fetchall():
+            deltas.setdefault((period, kind), []).append(path)
+    state.periods = [Period(*row, signature_deltas=tuple(deltas.get((row[0], "signatures"), ())),
+                            set_deltas=tuple(deltas.get((row[0], "sets"), ()))) for row in con.execute(
         "SELECT period, sets_file, signatures_file, entities, membership_rows, run_id FROM periods ORDER BY period"
     ).fetchall()]
     state.files = [StoredFile(*row) for row in con.execute(
@@ -160,7 +178,7 @@ def commit(store: Path, state: State, run: dict) -> None:
     with connection(store) as con:
         con.execute("BEGIN TRANSACTION")
         try:
-            for table in ("facts", "plan", "periods", "files", "versions"):
+            for table in ("facts", "plan", "periods", "period_deltas", "files", "versions"):
                 con.execute(f"DELETE FROM {table}")  # noqa: S608 (fixed names)
             if state.facts:
                 con.executemany("INSERT INTO facts VALUES (?, ?)", list(state.facts.items()))
@@ -170,8 +188,12 @@ def commit(store: Path, state: State, run: dict) -> None:
                             [p["perms"], p["bands"], p["rows"], p["seed"], p["scheme"], p["mode"], p["threshold"],
                              p["recall"], p["chosen_by"]])
             if state.periods:
-                con.executemany("INSERT INTO periods VALUES (?, ?, ?, ?, ?, ?)",
-                                [list(p.__dict__.values()) for p in state.periods])
+                con.executemany("INSERT INTO periods VALUES (?, ?, ?, ?, ?, ?)", [p.row() for p in state.periods])
+            deltas = [[p.period, kind, path, i] for p in state.periods
+                      for kind, paths in (("signatures", p.signature_deltas), ("sets", p.set_deltas))
+                      for i, path in enumerate(paths)]
+            if deltas:
+                con.executemany("INSERT INTO period_deltas VALUES (?, ?, ?, ?)", deltas)
             if state.files:
                 con.executemany("INSERT INTO files VALUES (?, ?, ?, ?, ?)",
                                 [list(f.__dict__.values()) for f in state.files])

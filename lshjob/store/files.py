@@ -7,6 +7,8 @@ Layout of a store folder::
     STORE/periods/2026-03-01.RUN.sets.parquet      entity, element: one row per distinct pair
     STORE/periods/2026-03-01.RUN.signatures.parquet entity, signature, set_size
     STORE/versions/RUN/                            a published index (neighbours.parquet, manifest.json)
+    STORE/state/RUN.members.parquet (and sets, pairs, buckets) the state of the last index
+                                                   (lshjob.jobs.refresh_index)
     STORE/work/                                    a refresh's scratch, removed at its end
 
 A file is never changed once written: a period that gains events gets new files named with
@@ -29,6 +31,7 @@ from lshjob.store.catalog import CATALOG, State, StoredFile
 
 PERIODS = "periods"
 VERSIONS = "versions"
+STATE = "state"
 WORK = "work"
 
 
@@ -42,12 +45,14 @@ def period_file(period: date, run_id: str, kind: str) -> str:
     return f"{PERIODS}/{period.isoformat()}.{run_id}.{kind}.parquet"
 
 
-def write_table(store: Path, relative: str, table: pl.DataFrame, kind: str, run_id: str) -> StoredFile:
-    """Write ``table`` to ``store/relative`` (temporary name, fsync, rename) and return its catalog row."""
+def write_table(store: Path, relative: str, table: pl.DataFrame, kind: str, run_id: str,
+                compression: str = "zstd") -> StoredFile:
+    """Write ``table`` to ``store/relative`` (temporary name, fsync, rename) and return its catalog row
+    (``compression`` lz4 for tables of hashes, which zstd does not shrink)."""
     path = Path(store) / relative
     path.parent.mkdir(parents=True, exist_ok=True)
     temporary = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    table.write_parquet(temporary, compression="zstd", statistics=True)
+    table.write_parquet(temporary, compression=compression, statistics=True)
     with open(temporary, "rb") as fh:
         os.fsync(fh.fileno())
     os.replace(temporary, path)
@@ -62,14 +67,15 @@ def scan_tables(store: Path, relatives: list[str]) -> pl.LazyFrame:
     return pl.scan_parquet([Path(store) / r for r in relatives])
 
 
-def check_files(store: Path, state: State) -> list[str]:
-    """Files of the catalog missing or not of their recorded size and SHA-256 (one line each)."""
+def check_files(store: Path, state: State, size_only: tuple[str, ...] = ()) -> list[str]:
+    """Files of the catalog missing or not of their recorded size and SHA-256 (one line each);
+    of the kinds ``size_only``, the size alone (their SHA-256 is checked where they are read)."""
     wrong = []
     for f in state.files:
         path = Path(store) / f.path
         if not path.is_file():
             wrong.append(f"{path}: missing")
-        elif path.stat().st_size != f.bytes or sha256_of(path) != f.sha256:
+        elif path.stat().st_size != f.bytes or (f.kind not in size_only and sha256_of(path) != f.sha256):
             wrong.append(f"{path}: not the file the catalog recorded (size or SHA-256 differ)")
     return wrong
 
@@ -81,7 +87,7 @@ def remove_strays(store: Path, state: State) -> list[str]:
     kept = {f.path for f in state.files} | {f"{VERSIONS}/{v.folder}" for v in state.versions}
     removed = []
     shutil.rmtree(store / WORK, ignore_errors=True)
-    for folder in (PERIODS, VERSIONS):
+    for folder in (PERIODS, VERSIONS, STATE):
         if not (store / folder).is_dir():
             continue
         for entry in sorted((store / folder).iterdir()):
