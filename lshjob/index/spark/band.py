@@ -24,24 +24,15 @@ import polars as pl
 from lshjob.index.band.base import BandOutput
 from lshjob.index.band.local import bucket_keys_by_position
 from lshjob.index.spark import _batches
-from lshjob.index.spark.session import quiet_pandas_warning, session
+from lshjob.index.spark.session import SparkStage, quiet_pandas_warning, session
 
 BUCKET_ROW_DDL = "band int, bucket long, rep long"
 KEY_GROUP_ROWS = 1 << 16  # representatives of a row group of the saved keys (Spark splits reads by row groups)
 
 
-class SparkBand:
+class SparkBand(SparkStage):
     """The band engine on Spark."""
 
-    name = "spark"
-
-    def prepare(self) -> None:
-        session()
-
-    def library_versions(self) -> dict[str, str]:
-        from lshjob.index.spark.session import versions
-
-        return versions()
 
     def keys(self, positions: np.ndarray, reps: np.ndarray, bands: int, rows: int) -> pl.DataFrame:
         return bucket_keys_by_position(positions, reps, bands, rows)

@@ -22,21 +22,12 @@ from lshjob.core.atomic import staged_folder, temp_name
 from lshjob.index.join.base import SKEW_COLUMNS, JoinOutput, JoinSettings
 from lshjob.index.spark import _batches
 from lshjob.index.spark.band import BUCKET_ROW_DDL
-from lshjob.index.spark.session import file_frame, quiet_pandas_warning, session
+from lshjob.index.spark.session import SparkStage, file_frame, quiet_pandas_warning, session
 
 
-class SparkJoin:
+class SparkJoin(SparkStage):
     """The join engine on Spark."""
 
-    name = "spark"
-
-    def prepare(self) -> None:
-        session()
-
-    def library_versions(self) -> dict[str, str]:
-        from lshjob.index.spark.session import versions
-
-        return versions()
 
     def candidates(self, bucket_files, bands: int, out: Path, settings: JoinSettings,
                    bucket_rows: int | None = None, ranges=None) -> JoinOutput:

@@ -80,3 +80,16 @@ def quiet_pandas_warning() -> None:
     """pyspark 4 warns on every Arrow call that pandas 3 is not fully supported; the engines
     hand Arrow batches only, never pandas."""
     warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas", category=FutureWarning)
+
+
+class SparkStage:
+    """What every Spark engine shares: its registry name, the session started before any work
+    (a missing Java or pyspark fails early), and the Spark version for the manifest."""
+
+    name = "spark"
+
+    def prepare(self) -> None:
+        session()
+
+    def library_versions(self) -> dict[str, str]:
+        return versions()

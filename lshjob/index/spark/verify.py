@@ -25,25 +25,16 @@ from lshjob.core.atomic import temp_name
 from lshjob.core.hashing import xxh64_integers
 from lshjob.core.sets import gather_sets
 from lshjob.index.spark import _batches
-from lshjob.index.spark.session import quiet_pandas_warning, session
+from lshjob.index.spark.session import SparkStage, quiet_pandas_warning, session
 from lshjob.index.verify.base import VERIFIED_SCHEMA, SetStore, VerifySettings, empty_verified
 from lshjob.sign.signatures import SignatureParams
 
 VERIFIED_DDL = "left_rep long, right_rep long, jaccard double, estimate double, bands_shared int"
 
 
-class SparkVerify:
+class SparkVerify(SparkStage):
     """The verify engine on Spark."""
 
-    name = "spark"
-
-    def prepare(self) -> None:
-        session()
-
-    def library_versions(self) -> dict[str, str]:
-        from lshjob.index.spark.session import versions
-
-        return versions()
 
     def verify(self, candidates: Path, sets: SetStore, threshold: float, params: SignatureParams | None,
                settings: VerifySettings, crowds: Path | None = None) -> pl.DataFrame:
