@@ -287,10 +287,10 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
     work = store / store_files.WORK / "state"
     steps, made, from_nothing = {}, None, False
 
-    def update(previous, touched, plan_now):
+    def update(previous, touched, plan_now, sets=None):
         try:
             return paths.build(store, previous, folded, touched,
-                               options.run_options(plan_now), work, run_id, clock)
+                               options.run_options(plan_now), work, run_id, clock, sets)
         except index_state.Oversize as exc:
             warnings.append(f"{exc}: the whole run made this index (the state needs no bucket over the cap)")
             return None
@@ -316,9 +316,10 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
         else:
             plan_now, figures = dict(plan), dict(figures, mode=plan["mode"], why="kept plan")
     if made is None:
+        held = None  # the window's sets, read once for the plan and the build
         if plan is None:
             with clock("plan"):
-                chosen = paths.plan_from_window(store, folded, options.run_options(None))
+                chosen, held = paths.plan_from_window(store, folded, options.run_options(None))
             if not chosen.banded:
                 return None
             run_opts = options.run_options(None)
@@ -329,7 +330,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
             plan_now, figures = dict(plan), {"mode": plan["mode"], "why": "kept plan"}
         empty = index_state.IndexState.empty(index_state.state_plan(plan_now, options.max_bucket, options.top_k),
                                              batch.rows.schema["entity"])
-        made, from_nothing = update(empty, None, plan_now), True
+        made, from_nothing = update(empty, None, plan_now, held), True
         if made is None:
             return None
     record, files = index_state.write_state(store, made.state, run_id)

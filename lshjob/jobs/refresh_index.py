@@ -81,7 +81,8 @@ SELECT least(a."set", b."set") AS "left", greatest(a."set", b."set") AS "right",
 FROM touched_rows AS a
 JOIN touched_rows AS b
   ON a.band = b.band AND a.bucket = b.bucket
-WHERE a."set" >= $first_new AND (b."set" < $first_new OR a."set" < b."set")
+WHERE a.size > 1 AND b.size > 1  -- a bucket of one set makes no pair: its rows never enter the join
+  AND a."set" >= $first_new AND (b."set" < $first_new OR a."set" < b."set")
 GROUP BY 1, 2
 """
 
@@ -219,7 +220,7 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
                 raise Oversize(f"a bucket would hold {largest} sets, over --max-bucket {plan['max_bucket']}")
     with clock("verify"):
         verified = _verify(store, folded, candidates, members, params, plan["threshold"], verify_engine,
-                           work)
+                           work, sets if touched is None else None)
         alive = previous.pairs.join(live, left_on="left", right_on="set", how="semi").join(
             live, left_on="right", right_on="set", how="semi")
         pairs = pl.concat([alive, verified]) if touched is not None else verified
@@ -270,14 +271,16 @@ def _join(store: Path, files: list[str], new_file: str, live: pl.DataFrame, firs
 
 
 def _verify(store: Path, folded: Folded, candidates: pl.DataFrame, members: pl.DataFrame,
-            params: SignatureParams, threshold: float, engine, work: Path) -> pl.DataFrame:
+            params: SignatureParams, threshold: float, engine, work: Path,
+            held: ElementSets | None = None) -> pl.DataFrame:
     """Exact Jaccard (and estimate) of the candidates, from the sets of one member of each,
-    through the run's verify engine; the pairs reaching ``threshold``, by set id."""
+    through the run's verify engine; the pairs reaching ``threshold``, by set id. ``held``:
+    every window set, already read (a build from nothing), else the members' sets are read."""
     if candidates.height == 0:
         return pl.DataFrame(schema=PAIR_SCHEMA)
     wanted = pl.concat([candidates["left"], candidates["right"]]).unique().to_frame("set")
     holder = members.join(wanted, on="set", how="semi").group_by("set").agg(pl.col("entity").min())
-    sets = window_sets(store, folded, holder["entity"])
+    sets = held if held is not None else window_sets(store, folded, holder["entity"])
     local = holder.join(pl.DataFrame({"entity": sets.keys, "id": np.arange(sets.size, dtype=np.int64)}),
                         on="entity").select("set", "id")
     pairs = (candidates.join(local.rename({"set": "left", "id": "a"}), on="left")
