@@ -76,6 +76,17 @@ live_rows AS (
 SELECT band, bucket, "set", count(*) OVER (PARTITION BY band, bucket) AS size
 FROM live_rows
 """
+# The same rows when every live set is new (a build from nothing: one file, every set live):
+# no bucket to look up, sizes by one grouping.
+ALL_ROWS_SQL = """
+CREATE OR REPLACE TEMP TABLE touched_rows AS
+WITH sizes AS (
+    SELECT band, bucket, count(*) AS size FROM read_parquet($new_file) GROUP BY band, bucket
+)
+SELECT r.band, r.bucket, r."set", s.size
+FROM read_parquet($new_file) AS r
+JOIN sizes AS s ON r.band = s.band AND r.bucket = s.bucket
+"""
 PAIRS_SQL = """
 SELECT least(a."set", b."set") AS "left", greatest(a."set", b."set") AS "right", count(*)::INTEGER AS bands_shared
 FROM touched_rows AS a
@@ -260,7 +271,11 @@ def _join(store: Path, files: list[str], new_file: str, live: pl.DataFrame, firs
         con.execute("SET enable_progress_bar = false")
         live.write_parquet(work / "live.parquet")  # handed over as files: no pyarrow needed
         con.execute('CREATE TEMP TABLE live AS SELECT "set" FROM read_parquet($f)', {"f": str(work / "live.parquet")})
-        con.execute(TOUCHED_ROWS_SQL, {"files": [str(store / f) for f in files], "new_file": str(store / new_file)})
+        if first_new == 0 and files == [new_file]:
+            con.execute(ALL_ROWS_SQL, {"new_file": str(store / new_file)})
+        else:
+            con.execute(TOUCHED_ROWS_SQL, {"files": [str(store / f) for f in files],
+                                           "new_file": str(store / new_file)})
         largest = con.execute("SELECT coalesce(max(size), 0) FROM touched_rows").fetchone()[0]
         query = PAIRS_SQL.replace("$first_new", str(int(first_new)))  # an integer of ours, not user text
         con.execute(f"COPY ({query}) TO '{work / 'pairs.parquet'}' (FORMAT parquet)")
