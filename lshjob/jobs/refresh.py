@@ -9,8 +9,9 @@ rows, seed, scheme). It is made one of two ways:
 * from the store's state of the last index (:mod:`lshjob.jobs.refresh_index`): only the
   entities the batch or an expired period touched are read, only their new sets signed and
   banded, only pairs with a new set joined and verified, every other verified pair kept
-  (:mod:`lshjob.jobs.refresh_paths`); the first refresh, or one with a new plan, builds that
-  state for the whole window;
+  (:mod:`lshjob.jobs.refresh_paths`); the first refresh, one with a new plan, or one whose
+  batch and expired periods touch :data:`WHOLE_WINDOW_SHARE` or more of the entities builds
+  that state for the whole window (``path`` ``whole_window``, the reason in ``why``);
 * by the run (:func:`lshjob.jobs.run.run_job`) over the window's membership rows, recomposed
   from the store: with ``full`` (``--full``), for a plan without bands, or when a bucket
   would pass ``--max-bucket`` (the run's join splits such buckets; the state does not).
