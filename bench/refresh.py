@@ -37,6 +37,7 @@ from common import branch_network_events, machine  # noqa: E402
 
 from lshjob.demo.generate import generate_events  # noqa: E402
 from lshjob.ingest.spec import EventSpec  # noqa: E402
+from lshjob.jobs import refresh as refresh_module  # noqa: E402
 from lshjob.jobs.refresh import RefreshOptions, refresh_job  # noqa: E402
 from lshjob.jobs.run import RunOptions, run_job  # noqa: E402
 from lshjob.runtime.budget import peak_bytes, reset_peak  # noqa: E402
@@ -54,7 +55,11 @@ def main() -> None:
     ap.add_argument("--data", choices=("library", "branches"), default="library",
                     help="library: lshjob demo's generator (12 months); branches: bench/common.py's branch "
                          "network (~40 loans a patron) with loan dates drawn uniformly over 2026-01-01..04-30")
+    ap.add_argument("--share", type=float, default=None,
+                    help="touched share that rebuilds the state (default: refresh.WHOLE_WINDOW_SHARE; 2: never)")
     args = ap.parse_args()
+    if args.share is not None:
+        refresh_module.WHOLE_WINDOW_SHARE = args.share
     started = time.perf_counter()
     if args.data == "library":
         events, _ = generate_events(args.patrons, 7)
@@ -66,7 +71,8 @@ def main() -> None:
     month = events["borrowed_at"].dt.month()
     print(f"machine: {machine()} (2 cores shared with other work: timings noisy, compare ratios)")
     print(f"command: python bench/refresh.py --patrons {args.patrons} --threshold {args.threshold} "
-          f"--fractions {args.fractions} --days {args.days} --data {args.data}")
+          f"--fractions {args.fractions} --days {args.days} --data {args.data}"
+          + (f" --share {args.share}" if args.share is not None else ""))
     print(f"events: {events.height} loans of {args.patrons} patrons ({args.data})", flush=True)
     rows = []
     with tempfile.TemporaryDirectory() as tmp:

@@ -59,6 +59,11 @@ def test_a_batch_touching_most_entities_rebuilds_and_the_next_small_one_updates(
             assert touched / events.filter(month <= 3)["patron"].n_unique() >= refresh.WHOLE_WINDOW_SHARE
             assert "touched" in manifest["refresh"]["why"] and not manifest["refresh"]["rebuilt"]
             assert "rebuilt from the whole window" in capsys.readouterr().err
+            # Oracle: Python sets of each patron's titles in the window before and after
+            before = {p: set(t) for p, t in batches[0].group_by("patron").agg("title").iter_rows()}
+            after = {p: set(t) for p, t in window.group_by("patron").agg("title").iter_rows()}
+            assert manifest["refresh"]["changed_entities"] == sum(
+                before.get(e) != after.get(e) for e in before.keys() | after.keys())
     assert 1 / len(patrons) < refresh.WHOLE_WINDOW_SHARE
     assert paths == ["whole_window", "whole_window", "incremental"]
     runs = history(tmp_path / "store")["runs"]

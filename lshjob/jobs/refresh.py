@@ -68,10 +68,11 @@ INDEX_STATE = "index_state"  # the catalog's fact naming the state of the last i
 # would re-plan most refreshes.
 RECALL_SLACK = 0.02
 # Share of the last index's entities touched (by the batch or an expired period) at or above which
-# the state is rebuilt from the whole window instead of updated: the update's join and
-# verification grow with the new sets (bench/RESULTS.md, "Refresh from the store's state", 1M
-# patrons: 0.72x of a full run at 5% touched, 1.40x at 20%, 3.9-4x at 38-99%; crossing 1x near 11%).
-WHOLE_WINDOW_SHARE = 0.12
+# the state is rebuilt from the whole window instead of updated. The update's join and
+# verification grow with the new sets (1M patrons: 0.72x of a full run at 5% touched, 1.40x at
+# 20%, 3.9-4x at 38-99%), but a rebuild costs several full runs too; side by side at 100,000
+# patrons (bench/RESULTS.md, "the switch") the update won at 20% and 41% touched, the rebuild at 99%.
+WHOLE_WINDOW_SHARE = 0.5
 
 
 @dataclass(frozen=True)
@@ -318,6 +319,8 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
                                     "from the whole window (cheaper than updating it) under the kept plan")
             empty = index_state.IndexState.empty(previous.plan, batch.rows.schema["entity"])
             made, from_nothing = update(empty, None, plan), True
+            if made is not None:
+                made.changed_entities = index_state.changed_between(previous, made.state)
         else:
             made = update(previous, touched, plan)
             if made is not None and (store / store_files.VERSIONS / record.get("version", "-")).is_dir() \

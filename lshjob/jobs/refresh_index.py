@@ -254,6 +254,17 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
                   moved["entity"], moved_sets, pair_sets, differ, previous.members.height)
 
 
+def changed_between(before: IndexState, after: IndexState) -> int:
+    """Entities whose set differs between two states (by fingerprint, so across set ids), or
+    that are in one only."""
+    def prints(state: IndexState) -> pl.DataFrame:
+        return state.members.join(state.sets, on="set").select("entity", "fa", "fb")
+
+    old, new = prints(before), prints(after)
+    return pl.concat([old.join(new, on=["entity", "fa", "fb"], how="anti")["entity"],
+                      new.join(old, on=["entity", "fa", "fb"], how="anti")["entity"]]).n_unique()
+
+
 def heads(members: pl.DataFrame, sets: pl.Series, cap: int) -> pl.DataFrame:
     """The first ``cap`` members (key order) of each of ``sets``: all the publish stage reads
     of a group of identical sets beside its own members' lists (:func:`lshjob.index.publish.expand`)."""
