@@ -20,6 +20,7 @@ from typer.testing import CliRunner
 from lshjob.cli.app import app
 from lshjob.demo.generate import generate_events
 from lshjob.ingest.spec import EventSpec
+from lshjob.jobs import refresh
 from lshjob.jobs.refresh import RefreshOptions, history, refresh_job
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.runtime.folder_lock import output_lock
@@ -30,6 +31,13 @@ WINDOW = 3
 THRESHOLD = 0.3
 TOP_K = 8
 FIRST_BATCH_MONTH = 3  # the first batch holds what arrived up to March; then one batch a month
+
+
+@pytest.fixture(autouse=True)
+def _update_at_any_share(monkeypatch):
+    # The batches here touch a large share of a few hundred patrons: the update path under test
+    # is kept for them (test_refresh_switch.py tests the switch at the real share).
+    monkeypatch.setattr(refresh, "WHOLE_WINDOW_SHARE", 2.0)
 
 
 def _library_batches(patrons: int = 100, seed: int = 11) -> tuple[list[pl.DataFrame], str, str]:

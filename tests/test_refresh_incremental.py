@@ -19,11 +19,19 @@ import pytest
 from helpers import sign_element_lists
 
 from lshjob.ingest.spec import EventSpec
+from lshjob.jobs import refresh
 from lshjob.jobs.refresh import RECALL_SLACK, RefreshOptions, history, refresh_job
 from lshjob.jobs.refresh_index import compose_signatures
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.sign.signatures import SignatureParams, comparable, signature_array
 from lshjob.sign.slices import sign_sets
+
+
+@pytest.fixture(autouse=True)
+def _update_at_any_share(monkeypatch):
+    # The batches here touch a large share of a few hundred patrons: the update path under test
+    # is kept for them (test_refresh_switch.py tests the switch at the real share).
+    monkeypatch.setattr(refresh, "WHOLE_WINDOW_SHARE", 2.0)
 
 
 def _full_run(events: pl.DataFrame, plan: dict, folder, threshold: float, top_k: int, **kw) -> pl.DataFrame:

@@ -9,8 +9,9 @@ rows, seed, scheme). It is made one of two ways:
 * from the store's state of the last index (:mod:`lshjob.jobs.refresh_index`): only the
   entities the batch or an expired period touched are read, only their new sets signed and
   banded, only pairs with a new set joined and verified, every other verified pair kept
-  (:mod:`lshjob.jobs.refresh_paths`); the first refresh, or one with a new plan, builds that
-  state for the whole window;
+  (:mod:`lshjob.jobs.refresh_paths`); the first refresh, one with a new plan, or one whose
+  batch and expired periods touch :data:`WHOLE_WINDOW_SHARE` or more of the entities builds
+  that state for the whole window (``path`` ``whole_window``, the reason in ``why``);
 * by the run (:func:`lshjob.jobs.run.run_job`) over the window's membership rows, recomposed
   from the store: with ``full`` (``--full``), for a plan without bands, or when a bucket
   would pass ``--max-bucket`` (the run's join splits such buckets; the state does not).
@@ -66,6 +67,12 @@ INDEX_STATE = "index_state"  # the catalog's fact naming the state of the last i
 # a kept plan is judged against the target less this slack, or a new sample's noise alone
 # would re-plan most refreshes.
 RECALL_SLACK = 0.02
+# Share of the last index's entities touched (by the batch or an expired period) at or above which
+# the state is rebuilt from the whole window instead of updated. The update's join and
+# verification grow with the new sets (1M patrons: 0.72x of a full run at 5% touched, 1.40x at
+# 20%, 3.9-4x at 38-99%), but a rebuild costs several full runs too; side by side at 100,000
+# patrons (bench/RESULTS.md, "the switch") the update won at 20% and 41% touched, the rebuild at 99%.
+WHOLE_WINDOW_SHARE = 0.5
 
 
 @dataclass(frozen=True)
@@ -170,6 +177,8 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
     else:
         manifest, plan, why, changed, index_record, index_files, diff = made
         design = "incremental" if not manifest["refresh_steps"]["rebuilt"] else "state built from the whole window"
+        if "path_reason" in manifest["refresh_steps"]:
+            _say(manifest["refresh_steps"]["path_reason"])
         seconds.update({f"index.{k}": v for k, v in manifest["seconds"].items() if k != "total"})
     rebuilt = plan is None
     run_opts = options.run_options(plan)
@@ -202,7 +211,9 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
                "pairs_jaccard_changed": diff["pairs_jaccard_changed"] if diff else 0,
                "churn_rate": diff["churn_rate"] if diff else None,
                "periods_changed": len(folded.changed), "periods_expired": len(folded.expired),
-               "rebuilt": rebuilt, "why": why or "kept plan", "design": design}
+               "rebuilt": rebuilt, "design": design,
+               "path": "full_run" if made is None else "incremental" if design == "incremental" else "whole_window",
+               "why": why or (made[0]["refresh_steps"].get("path_reason") if made else None) or "kept plan"}
     if made is not None:
         summary["steps"] = manifest.pop("refresh_steps")
     seconds["total"] = round(time.perf_counter() - started, 3)  # to the index built and the store's files written
@@ -287,10 +298,10 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
     work = store / store_files.WORK / "state"
     steps, made, from_nothing = {}, None, False
 
-    def update(previous, touched, plan_now):
+    def update(previous, touched, plan_now, sets=None):
         try:
             return paths.build(store, previous, folded, touched,
-                               options.run_options(plan_now), work, run_id, clock)
+                               options.run_options(plan_now), work, run_id, clock, sets)
         except index_state.Oversize as exc:
             warnings.append(f"{exc}: the whole run made this index (the state needs no bucket over the cap)")
             return None
@@ -300,11 +311,23 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
             and record["plan"] == index_state.state_plan(plan, options.max_bucket, options.top_k):
         with clock("touched"):
             touched = paths.touched_entities(store, batch.rows, folded.expired)
-        made = update(index_state.read_state(store, record), touched, plan)
+        previous = index_state.read_state(store, record)
+        share = min(1.0, len(touched) / max(1, previous.members.height))
+        if share >= WHOLE_WINDOW_SHARE:  # an update predicted slower than a build
+            steps["path_reason"] = (f"the batch and expired periods touched {share:.0%} of the window's "
+                                    f"entities, at least {WHOLE_WINDOW_SHARE:.0%}: the index state was rebuilt "
+                                    "from the whole window (cheaper than updating it) under the kept plan")
+            empty = index_state.IndexState.empty(previous.plan, batch.rows.schema["entity"])
+            made, from_nothing = update(empty, None, plan), True
+            if made is not None:
+                made.changed_entities = index_state.changed_between(previous, made.state)
+        else:
+            made = update(previous, touched, plan)
+            if made is not None and (store / store_files.VERSIONS / record.get("version", "-")).is_dir() \
+                    and "totals" in record:
+                last, totals = store / store_files.VERSIONS / record["version"], record["totals"]
         if made is None:
             return None
-        if (store / store_files.VERSIONS / record.get("version", "-")).is_dir() and "totals" in record:
-            last, totals = store / store_files.VERSIONS / record["version"], record["totals"]
         with clock("sample"):  # the window after this batch, sampled anew
             recall, figures = paths.sampled_recall(store, made.state.members, folded, plan,
                                                    options.run_options(plan), paths.sample_seed(batch.window_last))
@@ -316,9 +339,10 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
         else:
             plan_now, figures = dict(plan), dict(figures, mode=plan["mode"], why="kept plan")
     if made is None:
+        held = None  # the window's sets, read once for the plan and the build
         if plan is None:
             with clock("plan"):
-                chosen = paths.plan_from_window(store, folded, options.run_options(None))
+                chosen, held = paths.plan_from_window(store, folded, options.run_options(None))
             if not chosen.banded:
                 return None
             run_opts = options.run_options(None)
@@ -329,7 +353,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
             plan_now, figures = dict(plan), {"mode": plan["mode"], "why": "kept plan"}
         empty = index_state.IndexState.empty(index_state.state_plan(plan_now, options.max_bucket, options.top_k),
                                              batch.rows.schema["entity"])
-        made, from_nothing = update(empty, None, plan_now), True
+        made, from_nothing = update(empty, None, plan_now, held), True
         if made is None:
             return None
     record, files = index_state.write_state(store, made.state, run_id)

@@ -76,12 +76,24 @@ live_rows AS (
 SELECT band, bucket, "set", count(*) OVER (PARTITION BY band, bucket) AS size
 FROM live_rows
 """
+# The same rows when every live set is new (a build from nothing: one file, every set live):
+# no bucket to look up, sizes by one grouping.
+ALL_ROWS_SQL = """
+CREATE OR REPLACE TEMP TABLE touched_rows AS
+WITH sizes AS (
+    SELECT band, bucket, count(*) AS size FROM read_parquet($new_file) GROUP BY band, bucket
+)
+SELECT r.band, r.bucket, r."set", s.size
+FROM read_parquet($new_file) AS r
+JOIN sizes AS s ON r.band = s.band AND r.bucket = s.bucket
+"""
 PAIRS_SQL = """
 SELECT least(a."set", b."set") AS "left", greatest(a."set", b."set") AS "right", count(*)::INTEGER AS bands_shared
 FROM touched_rows AS a
 JOIN touched_rows AS b
   ON a.band = b.band AND a.bucket = b.bucket
-WHERE a."set" >= $first_new AND (b."set" < $first_new OR a."set" < b."set")
+WHERE a.size > 1 AND b.size > 1  -- a bucket of one set makes no pair: its rows never enter the join
+  AND a."set" >= $first_new AND (b."set" < $first_new OR a."set" < b."set")
 GROUP BY 1, 2
 """
 
@@ -219,7 +231,7 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
                 raise Oversize(f"a bucket would hold {largest} sets, over --max-bucket {plan['max_bucket']}")
     with clock("verify"):
         verified = _verify(store, folded, candidates, members, params, plan["threshold"], verify_engine,
-                           work)
+                           work, sets if touched is None else None)
         alive = previous.pairs.join(live, left_on="left", right_on="set", how="semi").join(
             live, left_on="right", right_on="set", how="semi")
         pairs = pl.concat([alive, verified]) if touched is not None else verified
@@ -242,6 +254,17 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
                   moved["entity"], moved_sets, pair_sets, differ, previous.members.height)
 
 
+def changed_between(before: IndexState, after: IndexState) -> int:
+    """Entities whose set differs between two states (by fingerprint, so across set ids), or
+    that are in one only."""
+    def prints(state: IndexState) -> pl.DataFrame:
+        return state.members.join(state.sets, on="set").select("entity", "fa", "fb")
+
+    old, new = prints(before), prints(after)
+    return pl.concat([old.join(new, on=["entity", "fa", "fb"], how="anti")["entity"],
+                      new.join(old, on=["entity", "fa", "fb"], how="anti")["entity"]]).n_unique()
+
+
 def heads(members: pl.DataFrame, sets: pl.Series, cap: int) -> pl.DataFrame:
     """The first ``cap`` members (key order) of each of ``sets``: all the publish stage reads
     of a group of identical sets beside its own members' lists (:func:`lshjob.index.publish.expand`)."""
@@ -259,7 +282,11 @@ def _join(store: Path, files: list[str], new_file: str, live: pl.DataFrame, firs
         con.execute("SET enable_progress_bar = false")
         live.write_parquet(work / "live.parquet")  # handed over as files: no pyarrow needed
         con.execute('CREATE TEMP TABLE live AS SELECT "set" FROM read_parquet($f)', {"f": str(work / "live.parquet")})
-        con.execute(TOUCHED_ROWS_SQL, {"files": [str(store / f) for f in files], "new_file": str(store / new_file)})
+        if first_new == 0 and files == [new_file]:
+            con.execute(ALL_ROWS_SQL, {"new_file": str(store / new_file)})
+        else:
+            con.execute(TOUCHED_ROWS_SQL, {"files": [str(store / f) for f in files],
+                                           "new_file": str(store / new_file)})
         largest = con.execute("SELECT coalesce(max(size), 0) FROM touched_rows").fetchone()[0]
         query = PAIRS_SQL.replace("$first_new", str(int(first_new)))  # an integer of ours, not user text
         con.execute(f"COPY ({query}) TO '{work / 'pairs.parquet'}' (FORMAT parquet)")
@@ -270,14 +297,16 @@ def _join(store: Path, files: list[str], new_file: str, live: pl.DataFrame, firs
 
 
 def _verify(store: Path, folded: Folded, candidates: pl.DataFrame, members: pl.DataFrame,
-            params: SignatureParams, threshold: float, engine, work: Path) -> pl.DataFrame:
+            params: SignatureParams, threshold: float, engine, work: Path,
+            held: ElementSets | None = None) -> pl.DataFrame:
     """Exact Jaccard (and estimate) of the candidates, from the sets of one member of each,
-    through the run's verify engine; the pairs reaching ``threshold``, by set id."""
+    through the run's verify engine; the pairs reaching ``threshold``, by set id. ``held``:
+    every window set, already read (a build from nothing), else the members' sets are read."""
     if candidates.height == 0:
         return pl.DataFrame(schema=PAIR_SCHEMA)
     wanted = pl.concat([candidates["left"], candidates["right"]]).unique().to_frame("set")
     holder = members.join(wanted, on="set", how="semi").group_by("set").agg(pl.col("entity").min())
-    sets = window_sets(store, folded, holder["entity"])
+    sets = held if held is not None else window_sets(store, folded, holder["entity"])
     local = holder.join(pl.DataFrame({"entity": sets.keys, "id": np.arange(sets.size, dtype=np.int64)}),
                         on="entity").select("set", "id")
     pairs = (candidates.join(local.rename({"set": "left", "id": "a"}), on="left")

@@ -22,6 +22,7 @@ from pathlib import Path
 import polars as pl
 
 from lshjob.contracts.manifest import Manifest
+from lshjob.core.sets import ElementSets
 from lshjob.index import publish
 from lshjob.jobs import refresh_index as index_state
 from lshjob.jobs import refresh_publish
@@ -80,22 +81,26 @@ def sampled_recall(store: Path, members: pl.DataFrame, folded: Folded, plan: dic
     return figures.get("predicted", {}).get("expected_recall"), figures
 
 
-def plan_from_window(store: Path, folded: Folded, run_options) -> Plan:
-    """The planner's choice on the window's sets, as ``lshjob run`` makes it (every set held)."""
-    sets = index_state.window_sets(store, folded, None)
+def plan_from_window(store: Path, folded: Folded, run_options,
+                     sets: ElementSets | None = None) -> tuple[Plan, ElementSets]:
+    """The planner's choice on the window's sets, as ``lshjob run`` makes it (every set held),
+    and those sets (read here when not given: a build from nothing then reuses them)."""
+    if sets is None:
+        sets = index_state.window_sets(store, folded, None)
     fa, fb = index_state.set_prints(sets)
     distinct = pl.DataFrame({"fa": fa, "fb": fb}).unique().height
-    return plan_run(sets, run_options, distinct_sets=distinct)
+    return plan_run(sets, run_options, distinct_sets=distinct), sets
 
 
 def build(store: Path, previous: index_state.IndexState, folded: Folded, touched: pl.Series | None,
-          run_options, work: Path, run_id: str, clock: Clock) -> index_state.Update:
-    """The state after reading ``touched`` anew (all entities when None); raises
-    :class:`lshjob.jobs.refresh_index.Oversize`."""
+          run_options, work: Path, run_id: str, clock: Clock, sets: ElementSets | None = None) -> index_state.Update:
+    """The state after reading ``touched`` anew (all entities when None; ``sets``: their window
+    sets when already read); raises :class:`lshjob.jobs.refresh_index.Oversize`."""
     plan = previous.plan
     params = SignatureParams(scheme=plan["scheme"], perms=plan["perms"], seed=plan["seed"])
-    with clock("read_sets"):
-        sets = index_state.window_sets(store, folded, touched)
+    if sets is None:
+        with clock("read_sets"):
+            sets = index_state.window_sets(store, folded, touched)
     return index_state.update(store, previous, folded, sets, touched, params,
                               run_options.stage_engine("band"), run_options.stage_engine("verify"), work, run_id,
                               memory_of(run_options), clock)

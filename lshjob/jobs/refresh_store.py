@@ -63,7 +63,10 @@ def store_periods(store: Path, folded: folding.Folded, plan: dict, rebuilt: bool
         if params is None:
             signatures, deltas = None, ()
         elif rebuilt or signatures is None:  # the whole period, one file
-            rows = folding.scan_periods(store, [p], folded).unique(folding.PAIR).sort(folding.PAIR).collect()
+            if p.sets_file in folded.pending and not p.set_deltas:  # held whole by the fold, unique and sorted
+                rows = folded.changed[p.period]
+            else:
+                rows = folding.scan_periods(store, [p], folded).unique(folding.PAIR).sort(folding.PAIR).collect()
             signatures, deltas = store_files.period_file(p.period, run_id, "signatures"), ()
             files.append(store_files.write_table(store, signatures, sign_sets(rows, ["entity"], params),
                                                  "signatures", run_id, compression="lz4"))
