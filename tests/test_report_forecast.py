@@ -32,7 +32,8 @@ def own_cache(tmp_path, monkeypatch):
 
 @pytest.fixture(scope="module")
 def store(tmp_path_factory):
-    """Two refreshes of the library demo (loans up to May, then June), a store and its index."""
+    """Two refreshes of the library demo (loans up to May, then June), a store and its index;
+    whole runs over the window (--full), whose counts the forecast compares against."""
     folder = tmp_path_factory.mktemp("store")
     events, _ = generate_events(120, seed=3)
     events = events.select("patron", "title", "borrowed_at")
@@ -41,7 +42,7 @@ def store(tmp_path_factory):
     for i, batch in enumerate([events.filter(month <= 5), events.filter(month == 6)]):
         batch.write_parquet(folder / f"batch-{i}.parquet")
         refresh_job(folder / f"batch-{i}.parquet", folder / "store", spec,
-                    RefreshOptions(window=3, threshold=0.3, top_k=5), folder / "index")
+                    RefreshOptions(window=3, threshold=0.3, top_k=5, full=True), folder / "index")
     return folder
 
 
@@ -104,3 +105,24 @@ def test_plan_report_page_holds_the_forecast_and_runners_up(tmp_path):
     assert not re.findall(r"https?://(?!www\.w3\.org/)", text)  # self-contained: no address but SVG's names
     bad = runner.invoke(app, ["plan", "--threshold", "0.5", "--report", str(tmp_path / "plan.txt")])
     assert bad.exit_code == 2 and "--report must end in .html" in bad.output
+
+
+def test_an_index_updated_from_the_store_state_has_no_forecast_and_says_why(tmp_path):
+    # an incremental refresh reads only the touched entities: its manifest has no window-wide
+    # event count (oracle: the manifest itself), so the page says why there is no forecast
+    events, _ = generate_events(120, seed=3)
+    events = events.select("patron", "title", "borrowed_at")
+    spec = EventSpec(entity="patron", element="title", time="borrowed_at", period="month")
+    month = pl.col("borrowed_at").dt.month()
+    first = events.filter(month <= 5)
+    late = first.filter(pl.col("patron") == first["patron"][0]).head(1)
+    for i, batch in enumerate([first, late]):
+        batch.write_parquet(tmp_path / f"batch-{i}.parquet")
+        done = refresh_job(tmp_path / f"batch-{i}.parquet", tmp_path / "store", spec,
+                           RefreshOptions(window=3, threshold=0.3, top_k=5), tmp_path / "index")
+    assert done["refresh"]["path"] == "incremental", done["refresh"]
+    assert "events" not in read_manifest(tmp_path / "index").counts
+    summary = write_report(tmp_path / "index", tmp_path / "r.html", sample=False)
+    text = (tmp_path / "r.html").read_text()
+    assert summary["forecast"] is False and "whose counts are not a whole run" in text
+    assert "reads only the touched entities" in text

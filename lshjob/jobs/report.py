@@ -77,6 +77,9 @@ def gather(index_dir: str | Path, audit: str | Path | dict | None = None, sample
     else:
         data.notes.append("sample histogram not drawn (--no-sample)")
     data.forecast = run_forecast(manifest)
+    if data.forecast is None and manifest.plan.get("bands") and "events" not in manifest.counts:
+        data.notes.append("no forecast: this index was updated by lshjob refresh from the store's state, which "
+                          "reads only the touched entities; the forecast compares whole runs (refresh --full)")
     if store is not None:
         data.history = refresh.history(store)["runs"]
     return data
@@ -89,7 +92,7 @@ def run_forecast(manifest: Manifest) -> dict | None:
     """The cost model (:func:`lshjob.plan.cost.load_model`, not refined by this run: the point
     shows how far the run is from it; a first run also compiles) applied to the run's counts
     (per stage, beside the measured) and to the same shape at other sizes."""
-    if not manifest.plan.get("bands"):
+    if not manifest.plan.get("bands") or "events" not in manifest.counts:  # no plan, or not a whole run
         return None
     record = manifest.to_json()
     model = load_model()

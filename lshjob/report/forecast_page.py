@@ -20,7 +20,8 @@ CURVE_CAPTION = ("forecast by the cost model (lshjob calibrate, or the shipped d
 def forecast_section(forecast: dict | None, budget: int) -> str:
     """Curves against N with the measured run as a point, and forecast beside measured per stage."""
     if not forecast:
-        return "<p>No forecast: the run has no banded plan (identical sets only).</p>"
+        return ("<p>No forecast: the run has no banded plan (identical sets only), or the index was updated by a "
+                "refresh from the store's state, whose counts are not a whole run's (see the notes).</p>")
     svg, points = forecast_figures.curves(forecast["curve"], forecast.get("point"), budget)
     rows = [(s, f"{forecast['seconds'][s]:.2f}", f"{forecast['measured_seconds'].get(s, 0):.2f}",
              size(forecast["peak_by_stage"][s]), size(forecast["measured_peak"].get(s)))
