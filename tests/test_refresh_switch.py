@@ -70,3 +70,27 @@ def test_a_batch_touching_most_entities_rebuilds_and_the_next_small_one_updates(
     assert "touched" in runs[1]["why"] and runs[2]["why"] == "kept plan"
     plans = [[r["plan"][k] for k in ("perms", "bands", "rows", "seed", "scheme")] for r in runs]
     assert plans[0] == plans[1] == plans[2]  # the switch keeps the plan
+
+
+def test_the_path_notice_goes_to_stderr_and_not_under_quiet(tmp_path):
+    # Oracle: the stderr of the command as typer's runner captures it, with and without --quiet
+    from typer.testing import CliRunner
+
+    from lshjob.cli.app import app
+
+    events, _ = generate_events(150, 5)
+    events = events.select("patron", "title", "borrowed_at")
+    month = pl.col("borrowed_at").dt.month()
+    for part, name in ((month <= 3, "first"), (month == 4, "next")):
+        events.filter(part).write_parquet(tmp_path / f"{name}.parquet")
+    said = []
+    for quiet in (False, True):  # two stores fed the same batches; the second batch touches most patrons
+        for name in ("first", "next"):
+            args = ["refresh", str(tmp_path / f"{name}.parquet"), "--store", str(tmp_path / f"store-{quiet}"),
+                    "--entity", "patron", "--element", "title", "--time", "borrowed_at", "--period", "month",
+                    "--window", "3", "--threshold", "0.3", "--out", str(tmp_path / f"index-{quiet}")]
+            done = CliRunner().invoke(app, args + (["--quiet"] if quiet else []))
+            assert done.exit_code == 0, done.output
+        said.append(done.stderr)
+    assert said[0].startswith("lshjob refresh: ") and "whole window" in said[0], said[0]
+    assert said[1] == ""

@@ -140,7 +140,7 @@ def refresh(
     options = RefreshOptions(**{k: settings[k] for k in RefreshOptions.__dataclass_fields__})
     with StageProgress(enabled=False if (quiet or as_json) else None) as progress:
         manifest = refresh_job(settings["events"], settings["store"], spec, options, settings["out"], progress,
-                               command=sys.argv)
+                               command=sys.argv, say=(lambda _line: None) if quiet else None)
     for warning in manifest.get("warnings", []):
         typer.echo(f"warning: {warning}", err=True)
     _emit(manifest, as_json, quiet, refresh_text(manifest))

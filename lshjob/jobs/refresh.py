@@ -43,6 +43,7 @@ import os
 import shutil
 import sys
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -110,9 +111,12 @@ class RefreshOptions:
 
 
 def refresh_job(events: str | Path, store: str | Path, spec: EventSpec, options: RefreshOptions, out: str | Path,
-                progress: StageProgress = QUIET, command: list[str] | None = None) -> dict:
+                progress: StageProgress = QUIET, command: list[str] | None = None,
+                say: Callable[[str], None] | None = None) -> dict:
     """Fold ``events`` into ``store`` and publish the window's index into ``out``; return the
-    manifest written (``lshjob run``'s, with ``plan`` holding seed and scheme, and ``refresh``)."""
+    manifest written (``lshjob run``'s, with ``plan`` holding seed and scheme, and ``refresh``).
+    ``say``: where the one-line notices go (the path taken, a re-plan); stderr by default."""
+    say = _say if say is None else say
     options.validate()
     if spec.time is None or spec.period not in PERIODS:
         raise ParameterError(f"--period must be one of {', '.join(PERIODS)}, with --time")
@@ -131,7 +135,7 @@ def refresh_job(events: str | Path, store: str | Path, spec: EventSpec, options:
         out_lock = output_lock(out, wait=options.wait, what="index").acquire()
         try:
             return _refresh(events, store, spec, options, out, progress, command, run_id, started, started_at,
-                            store_lock.notes + out_lock.notes)
+                            store_lock.notes + out_lock.notes, say)
         finally:
             publish.discard_staging(out)
             out_lock.release()
@@ -140,7 +144,9 @@ def refresh_job(events: str | Path, store: str | Path, spec: EventSpec, options:
         store_lock.release()
 
 
-def _refresh(events, store, spec, options, out, progress, command, run_id, started, started_at, warnings):
+def _refresh(events, store, spec, options, out, progress, command, run_id, started, started_at, warnings,
+             say=None):
+    say = _say if say is None else say
     state = catalog.read_state(store)
     # period signatures (the largest files, read only when their period changes) are checked when read
     damaged = store_files.check_files(store, state, size_only=("signatures",))
@@ -178,7 +184,7 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
         manifest, plan, why, changed, index_record, index_files, diff = made
         design = "incremental" if not manifest["refresh_steps"]["rebuilt"] else "state built from the whole window"
         if "path_reason" in manifest["refresh_steps"]:
-            _say(manifest["refresh_steps"]["path_reason"])
+            say(manifest["refresh_steps"]["path_reason"])
         seconds.update({f"index.{k}": v for k, v in manifest["seconds"].items() if k != "total"})
     rebuilt = plan is None
     run_opts = options.run_options(plan)
@@ -188,7 +194,7 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
             "threshold": options.threshold, "recall": options.recall,
             "chosen_by": run_id if rebuilt else state.plan["chosen_by"]}
     if why is not None and state.plan is not None:
-        _say(why)
+        say(why)
 
     previous = store / store_files.VERSIONS / state.versions[-1].folder if state.versions else None
     tick = time.perf_counter()
