@@ -14,11 +14,14 @@ import tempfile
 import time
 from pathlib import Path
 
+import numpy as np
 import polars as pl
 
 from lshjob.audit.check import audit_index
 from lshjob.core import compile_cache
+from lshjob.core.sets import ElementSets
 from lshjob.demo.generate import generate_events
+from lshjob.index.verify._crowds import crowd_pairs_between, verify_crowds
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.jobs.sign import merge_files, plan_banding, sign_file
@@ -105,7 +108,19 @@ def exercise(folder: Path) -> list[str]:
              paths[kind], spec, options, index)
         if i < 4:
             step(f"audit index {i}", audit_index, index, sample=50, memory=MEMORY, parts=2 if i % 2 else None)
+    step("verify crowds", verify_a_crowd)
     return steps
+
+
+def verify_a_crowd() -> None:
+    """The crowd kernel (:mod:`lshjob.index.verify._crowds`), which a run calls only on large
+    joins of long-tailed data: one bucket of 70 small sets, in one key range and across two."""
+    rows = pl.DataFrame({"entity": np.repeat(np.arange(70, dtype=np.int64), 3),
+                         "element": np.arange(210, dtype=np.int64) % 5})
+    sets = ElementSets.from_sets(rows)
+    crowds = pl.DataFrame({"crowd": np.zeros(70, dtype=np.int64), "rep": np.arange(70, dtype=np.int64)})
+    for left, right in (((0, 69), (0, 69)), ((0, 34), (35, 69))):
+        verify_crowds(crowd_pairs_between(crowds, left, right), sets, 0, sets, 0, 0.5)
 
 
 class _Recorder:
