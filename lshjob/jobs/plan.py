@@ -9,6 +9,7 @@ from pathlib import Path
 import polars as pl
 
 from lshjob.errors import InputError, ParameterError
+from lshjob.index.join.base import JoinSettings
 from lshjob.ingest.loading import load_membership
 from lshjob.ingest.spec import EventSpec, load_sets
 from lshjob.jobs.options import check_options, default_of
@@ -110,7 +111,8 @@ def plan_banding(
     return choose_plan(threshold, hist, perms=perms, bands=bands, rows=rows, recall=recall, fp_weight=fp_weight,
                        fn_weight=fn_weight, max_candidates=max_candidates, runners_up=runners_up,
                        signature_perms=meta.get("k"),
-                       seed=meta.get("seed"), scheme=scheme, plan_by=plan_by, costing=costing)
+                       seed=meta.get("seed"), scheme=scheme, plan_by=plan_by, costing=costing,
+                       crowd_size=JoinSettings.crowd_size)
 
 
 def _workload(figures: dict, shape: dict, entities: int | None, events: int | None, scheme: str,
