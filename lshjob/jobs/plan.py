@@ -162,7 +162,8 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
     expected = plan.predicted.get("expected_candidates", 0)
     out["warnings"] = ([f"the plan predicts {expected:.3g} candidate pairs at {int(load.entities)} entities, more "
                         f"than --max-candidates {bound:.3g}: lshjob run would refuse it; raise the threshold or "
-                        f"--max-candidates"] if expected > bound else [])
+                        f"--max-candidates"] if plan.predicted.get("expected_written_pairs", expected) > bound
+                       else [])
     if curve:  # the plan's page: the same shape at a tenth to a hundred times the size
         out["curve"] = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], memory, top_k)
     return out
