@@ -118,3 +118,20 @@ def test_a_plan_whose_written_pairs_exceed_the_cap_is_refused(loans, split, tmp_
     assert f"more than --max-candidates {cap:.3g}; raise the threshold or --max-candidates" in result.stderr
     assert len(result.stderr.strip().splitlines()) == 1
     assert not (tmp_path / "idx").exists()
+
+
+def test_over_the_cap_the_first_ranked_plan_whose_written_pairs_fit_is_chosen(split):
+    # Oracle: the ranking of data_plans (fewest candidates first) walked by hand, each plan's
+    # written pairs = candidates x (1 - its crowd share).
+    hist, best, _ = split
+    ranked = data_plans(0.5, hist)
+    written = [p.expected_candidates * (1 - crowd_split(hist, p.bands, p.rows, CROWD)) for p in ranked]
+    cap = min(written[:50])  # met by a plan among the first 50, and by none before it
+    first = next(i for i, w in enumerate(written) if w <= cap)
+    assert first > 0  # the plan with the fewest candidates does not fit: another is taken
+    plan = choose_plan(0.5, hist, max_candidates=cap, runners_up=0, crowd_size=CROWD)
+    chosen = ranked[first]
+    assert (plan.perms, plan.bands, plan.rows) == (chosen.perms, chosen.bands, chosen.rows)
+    assert plan.predicted["expected_written_pairs"] == pytest.approx(written[first])
+    assert plan.predicted["expected_recall"] >= 0.95
+    assert all(w > cap for w in written[:first])
