@@ -114,7 +114,9 @@ def test_a_plan_whose_written_pairs_exceed_the_cap_is_refused(loans, split, tmp_
                                       "--threshold", "0.5", "--sample-size", str(SAMPLE), "--max-candidates",
                                       str(cap), "--out", str(tmp_path / "idx")])
     assert result.exit_code == 2
-    assert f"predicts {best.expected_candidates:.3g} candidate pairs" in result.stderr
+    written = best.expected_candidates * (1 - crowded)
+    assert (f"predicts {best.expected_candidates:.3g} candidate pairs at threshold 0.5 ({written:.3g} outside "
+            "crowds, written by the join)") in result.stderr
     assert f"more than --max-candidates {cap:.3g}; raise the threshold or --max-candidates" in result.stderr
     assert len(result.stderr.strip().splitlines()) == 1
     assert not (tmp_path / "idx").exists()

@@ -191,9 +191,9 @@ def choose_plan(
             why, mode = _data_why(histogram, recall), PlanMode.DATA
         written = None
         if max_candidates is not None and crowd_size and ranked[0].expected_candidates > max_candidates:
-            fitted, written = _fit_cap(ranked if mode == PlanMode.DATA else ranked[:1], histogram,
-                                       max_candidates, crowd_size)
-            if written and mode == PlanMode.DATA:
+            fitted, written, fits = _fit_cap(ranked if mode == PlanMode.DATA else ranked[:1], histogram,
+                                             max_candidates, crowd_size)
+            if fits and mode == PlanMode.DATA:
                 ranked = fitted
                 why += (f"; the first plan ranked whose pairs outside crowds of {crowd_size}+ members fit "
                         f"--max-candidates")
@@ -224,24 +224,28 @@ def check_predicted(plan: Plan, max_candidates: float) -> None:
     if written > max_candidates:
         raise ParameterError(
             f"the plan (k={plan.perms}, b={plan.bands}, r={plan.rows}) predicts "
-            f"{expected:.3g} candidate pairs at threshold {plan.threshold}, "
-            f"more than --max-candidates {max_candidates:.3g}; raise the threshold or --max-candidates"
+            f"{expected:.3g} candidate pairs at threshold {plan.threshold}"
+            + (f" ({written:.3g} outside crowds, written by the join)" if written != expected else "")
+            + f", more than --max-candidates {max_candidates:.3g}; raise the threshold or --max-candidates"
         )
 
 
-def _fit_cap(ranked: list, histogram: PairHistogram, cap: float, crowd_size: int) -> tuple[list, dict | None]:
+def _fit_cap(ranked: list, histogram: PairHistogram, cap: float, crowd_size: int) -> tuple[list, dict | None, bool]:
     """The ranking with its first plan whose pairs outside crowds fit ``cap`` moved to the
-    front, and that plan's split (None, and the ranking unchanged, when none fits)."""
+    front, that plan's split and True; when none fits, the ranking unchanged, its first plan's
+    split (None without per-entity figures) and False."""
+    first = None
     for i, p in enumerate(ranked):
         crowded = crowd_split(histogram, p.bands, p.rows, crowd_size)
         if crowded is None:
             break
         written = p.expected_candidates * (1.0 - crowded)
+        split = {"expected_crowd_pairs": p.expected_candidates - written, "expected_written_pairs": written,
+                 "crowd_size": crowd_size}
+        first = first or split
         if written <= cap:
-            return [p, *ranked[:i], *ranked[i + 1:]], {
-                "expected_crowd_pairs": p.expected_candidates - written, "expected_written_pairs": written,
-                "crowd_size": crowd_size}
-    return ranked, None
+            return [p, *ranked[:i], *ranked[i + 1:]], split, True
+    return ranked, first, False
 
 
 def _by_cost(plans: list, costing: Callable[[dict], float]) -> list:
