@@ -9,6 +9,7 @@ from pathlib import Path
 import polars as pl
 
 from lshjob.errors import InputError, ParameterError
+from lshjob.index.join.base import JoinSettings
 from lshjob.ingest.loading import load_membership
 from lshjob.ingest.spec import EventSpec, load_sets
 from lshjob.jobs.options import check_options, default_of
@@ -110,7 +111,8 @@ def plan_banding(
     return choose_plan(threshold, hist, perms=perms, bands=bands, rows=rows, recall=recall, fp_weight=fp_weight,
                        fn_weight=fn_weight, max_candidates=max_candidates, runners_up=runners_up,
                        signature_perms=meta.get("k"),
-                       seed=meta.get("seed"), scheme=scheme, plan_by=plan_by, costing=costing)
+                       seed=meta.get("seed"), scheme=scheme, plan_by=plan_by, costing=costing,
+                       crowd_size=JoinSettings.crowd_size)
 
 
 def _workload(figures: dict, shape: dict, entities: int | None, events: int | None, scheme: str,
@@ -160,7 +162,8 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
     expected = plan.predicted.get("expected_candidates", 0)
     out["warnings"] = ([f"the plan predicts {expected:.3g} candidate pairs at {int(load.entities)} entities, more "
                         f"than --max-candidates {bound:.3g}: lshjob run would refuse it; raise the threshold or "
-                        f"--max-candidates"] if expected > bound else [])
+                        f"--max-candidates"] if plan.predicted.get("expected_written_pairs", expected) > bound
+                       else [])
     if curve:  # the plan's page: the same shape at a tenth to a hundred times the size
         out["curve"] = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], memory, top_k)
     return out

@@ -21,6 +21,7 @@ from lshjob.errors import InputError
 from lshjob.index import publish
 from lshjob.index.band import ROW_BYTES, save_keys
 from lshjob.index.collapse import collapse_identical, fingerprints, identical_candidates
+from lshjob.index.join.base import JoinSettings
 from lshjob.ingest.loading import EventSource, entity_counts, event_bytes, membership_of
 from lshjob.ingest.spec import IngestReport
 from lshjob.plan import similarity
@@ -219,4 +220,5 @@ def plan_run(sets: ElementSets | None, options: RunOptions, total_entities: int 
                                                      threshold=options.threshold)
     return choose_plan(options.threshold, hist, perms=options.perms, bands=options.bands, rows=options.rows,
                        recall=options.recall, max_candidates=options.max_candidates, runners_up=0,
-                       distinct_sets=distinct, seed=options.seed, scheme=options.scheme)
+                       distinct_sets=distinct, seed=options.seed, scheme=options.scheme,
+                       crowd_size=JoinSettings.crowd_size)

@@ -164,6 +164,9 @@ class PairHistogram:
     at_or_above: np.ndarray | None = None
     source_entities: int | None = None
     basis: str = "exact Jaccard"
+    # against_all only: entity_pairs[i, j] pairs of the i-th sampled entity with similarity in
+    # [j, j + 1) / its column count (identical sets apart), scaled like counts
+    entity_pairs: np.ndarray | None = field(default=None, compare=False, repr=False)
 
     def mask(self, threshold: float) -> np.ndarray:
         """Which entries hold pairs at or above ``threshold``. A histogram built for that
@@ -264,6 +267,26 @@ def data_plans(
     tied.sort(key=lambda p: (p.perms, p.bands, p.expected_candidates))
     rest = sorted((p for p in feasible if p not in tied), key=lambda p: p.expected_candidates)
     return tied + rest
+
+
+def crowd_split(histogram: PairHistogram, bands: int, rows: int, crowd_size: int) -> float | None:
+    """The fraction of a plan's expected candidate pairs that fall in crowds, buckets of
+    ``crowd_size`` members or more (the join lists their members; verification pairs them up,
+    a bucket at a time, so the join never writes those pairs); None without per-entity figures.
+
+    A sampled entity with pairs of similarity s_j shares one band's bucket with each with
+    probability s_j**r (MMDS section 3.4), so its bucket holds 1 + sum_j s_j**r members in
+    expectation (identical sets are collapsed first, so they add none); its candidate pairs,
+    sum_j P(s_j), count as crowd pairs when that expectation reaches ``crowd_size``. Bin
+    midpoints stand for the similarities (bins of 0.02)."""
+    pairs = histogram.entity_pairs
+    if pairs is None or not len(pairs):
+        return None
+    s = (np.arange(pairs.shape[1]) + 0.5) / pairs.shape[1]
+    crowded = 1.0 + pairs @ s**rows >= crowd_size
+    per_entity = pairs @ candidate_probability(s, bands, rows)
+    total = per_entity.sum()
+    return float(per_entity[crowded].sum() / total) if total > 0 else 0.0
 
 
 def _larger_k_hint(threshold, histogram, perms_choices, recall) -> str:

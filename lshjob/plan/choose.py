@@ -20,6 +20,7 @@ from lshjob.plan.banding import (
     PairHistogram,
     candidate_probability,
     check_explicit,
+    crowd_split,
     data_plans,
     theory_plans,
 )
@@ -119,6 +120,7 @@ def choose_plan(
     scheme: str | None = None,
     plan_by: str = "candidates",
     costing: Callable[[dict], float] | None = None,
+    crowd_size: int | None = None,
 ) -> Plan:
     """Choose (k, b, r) for Jaccard ``threshold``; options are checked by the caller.
 
@@ -131,7 +133,10 @@ def choose_plan(
 
     With ``bands`` and ``rows`` that plan is judged instead (``meets_target`` says whether it
     reaches ``recall``), and the runners-up are the chosen plans. Above ``max_candidates``
-    expected candidate pairs the plan is refused. ``seed`` and ``scheme`` are the hash family's
+    expected candidate pairs the plan is refused, unless ``crowd_size`` (the join's, data mode
+    sampled against all) is given: then only the pairs outside crowds count, the pairs the
+    join writes (:func:`lshjob.plan.banding.crowd_split`), and in data mode the first plan of
+    the ranking whose written pairs fit is chosen. ``seed`` and ``scheme`` are the hash family's
     (see :meth:`Plan.signature_params`).
 
     ``plan_by="cost"`` (data mode, with ``costing``: a plan's figures -> predicted total
@@ -184,7 +189,17 @@ def choose_plan(
         else:
             ranked = data_plans(threshold, histogram, choices, recall)
             why, mode = _data_why(histogram, recall), PlanMode.DATA
+        written = None
+        if max_candidates is not None and crowd_size and ranked[0].expected_candidates > max_candidates:
+            fitted, written, fits = _fit_cap(ranked if mode == PlanMode.DATA else ranked[:1], histogram,
+                                             max_candidates, crowd_size)
+            if fits and mode == PlanMode.DATA:
+                ranked = fitted
+                why += (f"; the first plan ranked whose pairs outside crowds of {crowd_size}+ members fit "
+                        f"--max-candidates")
         figures = [p.as_dict() for p in ranked[: runners_up + 1]]
+        if written:
+            figures[0].update(written)
         if plan_by == "cost":
             for f in figures:
                 f["predicted_seconds"] = costing(f)
@@ -201,14 +216,36 @@ def choose_plan(
 
 
 def check_predicted(plan: Plan, max_candidates: float) -> None:
-    """Refuse a plan predicting more than ``max_candidates`` candidate pairs."""
-    expected = (plan.predicted or {}).get("expected_candidates", 0)
-    if expected > max_candidates:
+    """Refuse a plan predicting more than ``max_candidates`` candidate pairs written by the
+    join (all its candidate pairs unless the pairs in crowds were predicted apart)."""
+    predicted = plan.predicted or {}
+    expected = predicted.get("expected_candidates", 0)
+    written = predicted.get("expected_written_pairs", expected)
+    if written > max_candidates:
         raise ParameterError(
             f"the plan (k={plan.perms}, b={plan.bands}, r={plan.rows}) predicts "
-            f"{expected:.3g} candidate pairs at threshold {plan.threshold}, "
-            f"more than --max-candidates {max_candidates:.3g}; raise the threshold or --max-candidates"
+            f"{expected:.3g} candidate pairs at threshold {plan.threshold}"
+            + (f" ({written:.3g} outside crowds, written by the join)" if written != expected else "")
+            + f", more than --max-candidates {max_candidates:.3g}; raise the threshold or --max-candidates"
         )
+
+
+def _fit_cap(ranked: list, histogram: PairHistogram, cap: float, crowd_size: int) -> tuple[list, dict | None, bool]:
+    """The ranking with its first plan whose pairs outside crowds fit ``cap`` moved to the
+    front, that plan's split and True; when none fits, the ranking unchanged, its first plan's
+    split (None without per-entity figures) and False."""
+    first = None
+    for i, p in enumerate(ranked):
+        crowded = crowd_split(histogram, p.bands, p.rows, crowd_size)
+        if crowded is None:
+            break
+        written = p.expected_candidates * (1.0 - crowded)
+        split = {"expected_crowd_pairs": p.expected_candidates - written, "expected_written_pairs": written,
+                 "crowd_size": crowd_size}
+        first = first or split
+        if written <= cap:
+            return [p, *ranked[:i], *ranked[i + 1:]], split, True
+    return ranked, first, False
 
 
 def _by_cost(plans: list, costing: Callable[[dict], float]) -> list:

@@ -22,6 +22,7 @@ from lshjob.plan.banding import PairHistogram
 from lshjob.sign.signatures import SignatureParams, comparable, signature_array
 
 HISTOGRAM_BINS = 1000
+ENTITY_BINS = 50  # each sampled entity's own pairs, coarser: for the sizes of its buckets
 
 
 def sample_keys(keys: pl.Series, m: int, seed: int = 0) -> pl.Series:
@@ -111,6 +112,7 @@ def _against_all_histogram(offsets, elements, starts, members, sizes, sample, nb
     counts = np.zeros((chunks, 2 * nbins), dtype=np.int64)
     sums = np.zeros((chunks, 2 * nbins), dtype=np.float64)
     identical = np.zeros(chunks, dtype=np.int64)
+    per_entity = np.zeros((len(sample), ENTITY_BINS), dtype=np.float64)  # [s, bin]: pairs of sample[s]
     for c in numba.prange(chunks):
         inter = np.zeros(n, dtype=np.int32)
         touched = np.empty(n, dtype=np.int64)
@@ -128,7 +130,8 @@ def _against_all_histogram(offsets, elements, starts, members, sizes, sample, nb
                     k = 2 * min(int(jac * nbins), nbins - 1) + (1 if jac >= threshold else 0)
                     counts[c, k] += 1
                     sums[c, k] += jac
-    return counts.sum(axis=0), sums.sum(axis=0), identical.sum()
+                    per_entity[s, min(int(jac * ENTITY_BINS), ENTITY_BINS - 1)] += 1
+    return counts.sum(axis=0), sums.sum(axis=0), identical.sum(), per_entity
 
 
 def visit_costs(offsets: np.ndarray, dense: np.ndarray, starts: np.ndarray) -> np.ndarray:
@@ -300,13 +303,14 @@ def sample_histogram_from_sets(
         affordable = 0
     if members.size > len(order) and affordable >= min(MIN_AGAINST_ALL, len(order)):
         picked = np.sort(order[:affordable])
-        counts, sums, identical = _against_all_histogram(
+        counts, sums, identical, per_entity = _against_all_histogram(
             offsets, dense, starts, posted, members.set_sizes, picked, HISTOGRAM_BINS,
             2.0 if threshold is None else threshold, min(len(picked), 2 * numba.get_num_threads()),
         )
         # factor rescales from the input's own entity count to the requested total.
         hist = _make(counts, sums, len(picked), n_total, identical, "against_all", threshold,
                      factor=n_total / members.size)
+        hist = replace(hist, entity_pairs=per_entity * (n_total / members.size))
     else:
         picked = np.sort(order)
         hist = histogram(_within_jaccard(members.subset(picked)), len(picked), n_total, threshold)
