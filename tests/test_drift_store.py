@@ -126,3 +126,32 @@ def test_store_refusals(signed, tmp_path):
         result = runner.invoke(app, ["drift", str(source), *extra, "--out", str(tmp_path / "x.parquet")])
         assert result.exit_code == 2 and message in result.stderr, (message, result.output)
         assert not (tmp_path / "x.parquet").exists()
+
+
+def test_the_store_gives_the_neighbour_signal_from_its_last_two_versions(tmp_path):
+    # Oracle: Python sets of each patron's published neighbours in the store's last two index
+    # versions (read from their Parquet files, not through lshjob diff)
+    events, _ = library_months(200, 6, drift_rate=0.2, seed=5, first_change=3)
+    month = pl.col("borrowed_at").dt.month()
+    first, rest = events.filter(month <= 4), events.filter(month > 4)
+    for i, batch in enumerate((first, rest)):
+        batch.write_parquet(tmp_path / f"batch-{i}.parquet")
+        refresh_job(tmp_path / f"batch-{i}.parquet", tmp_path / "store", SPEC, RefreshOptions(window=6, threshold=0.3),
+                    tmp_path / "index")
+    events.write_parquet(tmp_path / "events.parquet")
+    sign_file(tmp_path / "events.parquet", tmp_path / "monthly.parquet", SPEC, SignatureParams())
+    result = runner.invoke(app, ["drift", str(tmp_path / "monthly.parquet"), "--store", str(tmp_path / "store"),
+                                 "--out", str(tmp_path / "d.parquet"), "--json"])
+    assert result.exit_code == 0, result.output
+    signal = json.loads(result.stdout)["neighbour_drift"]
+    versions = sorted((tmp_path / "store" / "versions").iterdir(), key=lambda p: p.stat().st_mtime)[-2:]
+    lists = []
+    for folder in versions:
+        rows = pl.read_parquet(folder / "neighbours.parquet")
+        found: dict = {}
+        for entity, neighbour in rows.select("entity", "neighbour").iter_rows():
+            found.setdefault(entity, set()).add(neighbour)
+        lists.append(found)
+    changed = {e for e in lists[0].keys() | lists[1].keys() if lists[0].get(e, set()) != lists[1].get(e, set())}
+    assert signal["entities_list_changed"] == len(changed) > 0
+    assert "versions" in signal["source"]

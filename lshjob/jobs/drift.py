@@ -18,6 +18,7 @@ earlier period compared with; null for an entity's first period in the history w
 from __future__ import annotations
 
 import datetime as dt
+import tempfile
 import time
 from pathlib import Path
 
@@ -46,13 +47,16 @@ def drift_file(source: str | Path, out: str | Path, history: int = DEFAULT_HISTO
     rows and the summary. ``neighbours``: a table written by ``lshjob diff --out``; its
     ``list_change`` per entity is added as a second signal (:func:`neighbour_drift`).
     ``store``: a store written by ``lshjob refresh``; the flagged rows get the elements that
-    entered and left and their exact similarity and containment (:mod:`lshjob.drift.exact`)."""
+    entered and left and their exact similarity and containment (:mod:`lshjob.drift.exact`),
+    and without ``neighbours`` the second signal is the diff of its last two index versions."""
     if not 1 <= history <= 1000:
         raise ParameterError(f"--history must be from 1 to 1000 periods; got {history}")
     if not 0 < z < 100:
         raise ParameterError(f"--z must be in (0, 100); got {z}")
     out = output_file(out, [source] + ([neighbours] if neighbours else []), "drift")
     changes = read_list_changes(neighbours) if neighbours is not None else None
+    if changes is None and store is not None:  # the store's last two published versions, diffed
+        changes, neighbours = store_list_changes(Path(store))
     started = time.perf_counter()
     meta = signature_meta(source)
     keys = list(meta.get("keys") or [])
@@ -197,6 +201,24 @@ def drift_summary(rows: pl.DataFrame, per_period: pl.DataFrame, source, out, met
                      f"fewer than {MIN_POPULATION}; not scored"
                      for r in per_period.iter_rows(named=True) if 0 < r["compared"] < MIN_POPULATION],
     }
+
+
+def store_list_changes(store: Path) -> tuple[pl.DataFrame | None, str | None]:
+    """``entity``, ``list_change`` between the last two index versions a refresh store keeps
+    (``lshjob diff`` of them, :func:`lshjob.jobs.diff.diff_indexes`), and what was compared;
+    (None, None) when it keeps fewer than two (``lshjob refresh --keep``)."""
+    from lshjob.jobs.diff import diff_indexes
+    from lshjob.store import catalog
+    from lshjob.store import files as store_files
+
+    versions = catalog.read_state(store).versions if (store / catalog.CATALOG).is_file() else []
+    if len(versions) < 2:
+        return None, None
+    old, new = (store / store_files.VERSIONS / v.folder for v in versions[-2:])
+    with tempfile.TemporaryDirectory(prefix="lshjob-drift-") as work:
+        diff_indexes(old, new, Path(work) / "changes.parquet")
+        changes = read_list_changes(Path(work) / "changes.parquet")
+    return changes, f"{store}: versions {versions[-2].run_id} -> {versions[-1].run_id}"
 
 
 def read_list_changes(path: str | Path) -> pl.DataFrame:
