@@ -341,6 +341,19 @@ def _keep_previous(out_dir: Path, staging: Path) -> None:
                 raise
 
 
+def open_index(folder: str | Path) -> tuple[Manifest, Path]:
+    """The manifest and the neighbours file of the index in ``folder``; one-line errors for a
+    folder that is not an index."""
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise InputError(f"{folder}: no such index folder")
+    manifest = read_manifest(folder)
+    path = folder / NEIGHBOURS
+    if not path.is_file():
+        raise InputError(f"{folder}: no {NEIGHBOURS}; is this an lshjob index folder?")
+    return manifest, path
+
+
 def read_manifest(out_dir: Path) -> Manifest:
     """The manifest of the index in ``out_dir`` (checked: :mod:`lshjob.contracts.manifest`)."""
     path = Path(out_dir) / MANIFEST

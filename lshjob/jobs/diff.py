@@ -27,7 +27,7 @@ import polars as pl
 
 from lshjob.core.atomic import write_table
 from lshjob.errors import InputError
-from lshjob.index.publish import NEIGHBOURS, read_manifest
+from lshjob.index.publish import NEIGHBOURS, open_index
 from lshjob.runtime.outputs import output_file
 
 PAIR_COLUMNS = ("entity", "neighbour", "jaccard")
@@ -42,13 +42,7 @@ ENTITY_CHANGES = {  # the --out table
 def read_index(folder: str | Path) -> tuple[pl.DataFrame, dict]:
     """(entity, neighbour, jaccard) rows of an index folder and its manifest; one-line errors
     for a folder that is not an index."""
-    folder = Path(folder)
-    if not folder.is_dir():
-        raise InputError(f"{folder}: no such index folder")
-    manifest = read_manifest(folder)
-    path = folder / NEIGHBOURS
-    if not path.is_file():
-        raise InputError(f"{folder}: no {NEIGHBOURS}; is this an lshjob index folder?")
+    manifest, path = open_index(folder)
     try:
         schema = pl.read_parquet_schema(path)
     except Exception as exc:

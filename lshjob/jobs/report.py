@@ -18,7 +18,7 @@ import polars as pl
 
 from lshjob.contracts.manifest import Manifest
 from lshjob.errors import InputError
-from lshjob.index.publish import NEIGHBOURS, read_manifest
+from lshjob.index.publish import open_index
 from lshjob.ingest.loading import load_membership
 from lshjob.ingest.spec import EventSpec, load_sets
 from lshjob.jobs import refresh
@@ -54,12 +54,7 @@ def gather(index_dir: str | Path, audit: str | Path | dict | None = None, sample
     redraw the planner's sample histogram from the run's events when they exist. ``store``: a
     refresh store whose history is shown."""
     index_dir = Path(index_dir)
-    if not index_dir.is_dir():
-        raise InputError(f"{index_dir}: no such index folder")
-    manifest = read_manifest(index_dir)
-    neighbours = index_dir / NEIGHBOURS
-    if not neighbours.is_file():
-        raise InputError(f"{neighbours}: no such file; the index folder holds a manifest but no neighbour table")
+    manifest, neighbours = open_index(index_dir)
     table = pl.read_parquet(neighbours, columns=["entity", "jaccard"])
     per_entity = table.group_by("entity").len()["len"].to_numpy().astype(np.int64)
     without = max(0, int(manifest.counts.get("entities", per_entity.size)) - per_entity.size)
