@@ -72,7 +72,7 @@ def main() -> None:
                 lines.append(run(seed, season, Path(tmp)))
     report = "\n".join([
         f"Machine: {machine()} (shared with other jobs)",
-        "Data: tests/drift_data.library_months(2000 patrons, 12 months, 5% drifters, shelves of 8-12 authors, "
+        "Data: library_months in tests/drift_data.py (2000 patrons, 12 months, 5% drifters, shelves of 8-12 authors, "
         "95% own), 5-10 authors per patron and month; kperm k=128; drift defaults (--history 3, --z 3.5)",
         f"Command: `python bench/drift_small.py --seeds {' '.join(map(str, args.seeds))}`",
         "", *lines])

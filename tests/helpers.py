@@ -64,7 +64,7 @@ def planted_events_file(tmp_path_factory):
 
 def fmix64_np(x: np.ndarray) -> np.ndarray:
     """MurmurHash3 fmix64 on a uint64 array (wrapping arithmetic): keys scrambled like the
-    package's (checked against a transcription of MurmurHash3.cpp in tests/test_hashing.py)."""
+    package's (checked against MurmurHash3's fmix64 written out in tests/test_hashing.py)."""
     from lshjob.core.hashing import FMIX_C1, FMIX_C2
 
     x = x.astype(np.uint64, copy=True)

@@ -72,12 +72,12 @@ def get_engine(stage: str, name: str):
     return getattr(loaded, attribute)()
 
 
-def library_versions(chosen: dict[str, str]) -> dict[str, str]:
+def engine_versions(chosen: dict[str, str]) -> dict[str, str]:
     """What the chosen engines report of their libraries (e.g. the Spark version and master),
-    for the manifest; engines without ``library_versions`` report nothing."""
+    for the manifest; engines without ``engine_versions`` report nothing."""
     found: dict[str, str] = {}
     for stage, name in chosen.items():
-        report = getattr(get_engine(stage, name), "library_versions", None)
+        report = getattr(get_engine(stage, name), "engine_versions", None)
         if report is not None:
             found.update(report())
     return found

@@ -217,7 +217,7 @@ def run_job(
             counts=counts,
             skew=skew,
             peak_memory_bytes=stages.peak,
-            versions={**provenance.versions(), **stage_engines.library_versions(options.engine_names())},
+            versions={**provenance.versions(), **stage_engines.engine_versions(options.engine_names())},
             output=facts,
             out=str(out.absolute()),
             warnings=warnings,

@@ -91,5 +91,5 @@ class SparkStage:
     def prepare(self) -> None:
         session()
 
-    def library_versions(self) -> dict[str, str]:
+    def engine_versions(self) -> dict[str, str]:
         return versions()
