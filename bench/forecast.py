@@ -2,12 +2,14 @@
 
     python bench/forecast.py --runs flat:1000000 longtail:300000
 
-For each shape: (1) a tenth of the entities, drawn uniformly, is indexed with ``lshjob run``
-(warm); (2) ``lshjob plan --sample SAMPLE --entities N --events E --history SAMPLE_INDEX``
-forecasts the full run (E: the full data's event count, which a user knows; the model: a
-``lshjob calibrate`` run first, unless ``--shipped``, refined by the sample's run);
-(3) ``lshjob run`` on the full data, warm, is measured. The table gives forecast / measured for
-total seconds and peak memory (the largest per-stage peak of the manifest), and per stage.
+For each shape: (1) a tenth of the entities, drawn uniformly, and a quarter of that sample
+(nested) are indexed with ``lshjob run`` (warm); (2) ``lshjob plan --sample SAMPLE --entities N
+--events E --history SMALL_RUN --history SAMPLE_RUN`` forecasts the full run by scaling the
+sample's runs (lshjob/plan/scaling.py; E: the full data's event count, which a user knows;
+the cost model, for the runners-up: a ``lshjob calibrate`` run first with ``--calibrate``, else
+the shipped default); (3) ``lshjob run`` on the full data, warm, is measured. The table gives
+forecast / measured for total seconds and peak memory (the largest per-stage peak of the
+manifest), and per stage.
 
 Shapes: ``flat`` = bench/common.py branch network (log-normal set sizes, each patron with a
 bounded number of look-alikes); ``longtail`` = bench/common.py zipf_events (Zipf 1.2 element
@@ -77,14 +79,15 @@ def main() -> None:
                     help="shape:entities, shape flat or longtail")
     ap.add_argument("--share", type=float, default=0.1, help="the sample's share of the entities")
     ap.add_argument("--repeat", type=int, default=1, help="runs of each measurement; the fastest is kept")
-    ap.add_argument("--shipped", action="store_true", help="forecast with the shipped default, not calibrating first")
+    ap.add_argument("--calibrate", action="store_true", help="run lshjob calibrate first (the runners-up's costs)")
+    ap.add_argument("--small", type=float, default=0.25, help="the smaller run's share of the sample (nested)")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     rows, details = [], []
     with tempfile.TemporaryDirectory(prefix="lshjob-forecast-") as tmp:
         tmp = Path(tmp)
         env = dict(os.environ)
-        if not args.shipped:  # as a user would: lshjob calibrate on this machine, then plan
+        if args.calibrate:  # as a user would: lshjob calibrate on this machine, then plan
             calibrated = _lshjob("calibrate", "--out", str(tmp / "cost-model.json"))
             env["LSHJOB_COST_MODEL"] = calibrated["path"]
             details.append(f"calibration: {calibrated['provenance']} ({calibrated['seconds']} s)")
@@ -92,14 +95,17 @@ def main() -> None:
             shape, entities = spec.split(":")[0], int(spec.split(":")[1])
             full = _events(shape, entities)
             sample = _sample(full, args.share, tmp / f"{shape}-sample.parquet")
+            smaller = _sample(sample, args.small, tmp / f"{shape}-smaller.parquet", seed=1)
             _run(sample, tmp / f"{shape}-warm")  # untimed: kernels loaded, files in the page cache
-            small = _run(sample, tmp / f"{shape}-sample-index", args.repeat)
-            history = tmp / f"{shape}-sample-manifest.json"  # the fastest run's: the folder holds the last's
-            history.write_text(json.dumps(small))
+            histories = []
+            for name, path in (("smaller", smaller), ("sample", sample)):
+                small = _run(path, tmp / f"{shape}-{name}-index", args.repeat)
+                histories.append(tmp / f"{shape}-{name}-manifest.json")  # the fastest run's
+                histories[-1].write_text(json.dumps(small))
             events = pl.scan_parquet(_files(full)).select(pl.len()).collect().item()
             plan = _lshjob("plan", "--threshold", str(THRESHOLD), "--sample", str(sample), "--entity", "entity",
                            "--element", "element", "--entities", str(entities), "--events", str(events),
-                           "--history", str(history), env=env)
+                           *[a for h in histories for a in ("--history", str(h))], env=env)
             fc = plan["forecast"]
             try:
                 measured = _run(full, tmp / f"{shape}-full", args.repeat)
@@ -109,7 +115,11 @@ def main() -> None:
                             f"- | run refused: {str(refused)[-160:]}; forecast warnings: {fc['warnings']} |")
                 print(rows[-1], flush=True)
                 continue
+            load = os.getloadavg()[0]
             total_ratio = fc["seconds"]["total"] / measured["seconds"]["total"]
+            cpu_fc = (fc.get("cpu_seconds") or {}).get("total")
+            cpu_run = (measured.get("cpu_seconds") or {}).get("total")
+            cpu = f"{cpu_fc:.1f} / {cpu_run:.1f} = {cpu_fc / cpu_run:.2f}" if cpu_fc and cpu_run else "-"
             peak_ratio = fc["peak_memory_bytes"] / _peak(measured)
             rows.append(
                 f"| {shape} | {entities:,} | {events:,} | {small['counts']['entities']:,} "
@@ -117,15 +127,21 @@ def main() -> None:
                 f"{measured['plan']['perms']}, {measured['plan']['bands']}, {measured['plan']['rows']} | "
                 f"{fc['counts']['candidate_pairs']:.3g} / {measured['counts']['candidate_pairs']:.3g} | "
                 f"{fc['seconds']['total']:.2f} / {measured['seconds']['total']:.2f} = {total_ratio:.2f} | "
-                f"{fc['peak_memory_bytes'] / 2**30:.2f} / {_peak(measured) / 2**30:.2f} GiB = {peak_ratio:.2f} | "
+                f"{cpu} | {fc['peak_memory_bytes'] / 2**30:.2f} / {_peak(measured) / 2**30:.2f} GiB = "
+                f"{peak_ratio:.2f} | "
                 f"{'yes' if abs(total_ratio - 1) <= 0.25 and abs(peak_ratio - 1) <= 0.25 else 'no'} |")
             print(rows[-1], flush=True)
-            details.append(f"{shape} {entities:,}: per stage, forecast / measured seconds: " + ", ".join(
+            details.append(f"{shape} {entities:,} (load average {load:.1f} after the full run): per stage, forecast "
+                           "/ measured seconds: " + ", ".join(
                 f"{s} {fc['seconds'][s]:.2f} / {measured['seconds'].get(s, 0):.2f}" for s in fc["seconds"]
-                if s != "total") + "; peak MiB: " + ", ".join(
+                if s != "total") + "; CPU s: " + ", ".join(
+                f"{s} {v:.2f} / {(measured.get('cpu_seconds') or {}).get(s, 0):.2f}"
+                for s, v in (fc.get("cpu_seconds") or {}).items() if s != "total") + "; peak MiB: " + ", ".join(
                 f"{s} {fc['peak_memory_by_stage'][s] / 2**20:.0f} / "
                 f"{measured['peak_memory_bytes'].get(s, 0) / 2**20:.0f}" for s in fc["peak_memory_by_stage"])
-                + f"; coefficients: {fc['coefficients']['source']}, pair corrections {fc['pair_corrections']}")
+                + f"; method: {fc.get('method')}; scaling: {fc.get('scaling')}; counts forecast / run: " + ", ".join(
+                    f"{k} {fc['counts'][k]:.4g} / {measured['counts'].get(k, 0):.4g}" for k in
+                    ("representatives", "candidate_pairs", "verified_pairs", "published_rows")))
             print(details[-1], flush=True)
             keep = CACHE_OUT / f"{shape}-{entities}"
             keep.mkdir(parents=True, exist_ok=True)
@@ -133,12 +149,15 @@ def main() -> None:
                 (keep / f"{name}.json").write_text(json.dumps(record, indent=1, default=str))
     report = "\n".join([
         f"machine: {machine()} (shared with other jobs while it ran: timings noisy)",
-        f"command: python bench/forecast.py --runs {' '.join(args.runs)} --repeat {args.repeat}",
-        f"sample: {args.share:.0%} of the entities, uniform; threshold {THRESHOLD}; warm runs (kernels cached)",
+        f"command: python bench/forecast.py --runs {' '.join(args.runs)} --repeat {args.repeat}"
+        + (" --calibrate" if args.calibrate else ""),
+        f"sample: {args.share:.0%} of the entities, uniform, and {args.small:.0%} of it; threshold {THRESHOLD}; "
+        "warm runs (kernels cached)",
         "",
         "| shape | entities | events | sample entities (its run) | plan k, b, r: forecast / run | candidates: "
-        "forecast / run | total s: forecast / measured | peak memory: forecast / measured | within 25% |",
-        "| --- | ---: | ---: | ---: | --- | --- | --- | --- | --- |",
+        "forecast / run | total s: forecast / measured | CPU s: forecast / measured | peak memory: forecast / "
+        "measured | within 25% (seconds, memory) |",
+        "| --- | ---: | ---: | ---: | --- | --- | --- | --- | --- | --- |",
         *rows, "", *details,
     ])
     finish("Forecast from a 10% sample", report, not args.no_write)

@@ -30,7 +30,8 @@ class Manifest:
     rows and the predicted recall and candidates), ``counts`` (rows and pairs at each stage),
     ``skew`` (the bucket-size profile of the join, null without bands), ``seconds`` and
     ``peak_memory_bytes`` (per stage; ``seconds`` also ``total``: from the run's start to the
-    index staged), ``versions`` (of lshjob and its libraries), ``output`` (the neighbours
+    index staged; ``cpu_seconds`` the same in CPU time of the process), ``versions`` (of
+    lshjob and its libraries), ``output`` (the neighbours
     file: name, rows, sha256, bytes)."""
 
     run_id: str
@@ -53,6 +54,7 @@ class Manifest:
     out: str
     warnings: list[str]
     engines: dict | None = None  # engine of each engine-dependent stage (band, join, verify)
+    cpu_seconds: dict | None = None  # CPU seconds of the process (all threads) per stage, as ``seconds``
     format: str = FORMAT_NAME
     format_version: int = FORMAT_VERSION
 
@@ -79,7 +81,8 @@ class Manifest:
         if version not in READS_VERSIONS:
             raise InputError(f"{where}: manifest format version {version!r} is not supported; this lshjob "
                              f"reads version {', '.join(map(str, READS_VERSIONS))}; run lshjob run again")
-        names = [f.name for f in fields(cls) if f.name in record or f.name != "engines"]
+        optional = ("engines", "cpu_seconds")  # entries added since version 1 was first written
+        names = [f.name for f in fields(cls) if f.name in record or f.name not in optional]
         for name in names:
             if name not in record:
                 raise InputError(f"{where}: not an lshjob manifest (no '{name}' entry); run lshjob run again")

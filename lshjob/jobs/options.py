@@ -19,7 +19,7 @@ from lshjob.index import engines as stage_engines
 from lshjob.index.join import DEFAULT_MAX_BUCKET
 from lshjob.ingest.spec import EventSpec
 from lshjob.plan.banding import check_explicit
-from lshjob.plan.choose import THEORY_PERMS
+from lshjob.plan.choose import PLAN_BY, THEORY_PERMS
 from lshjob.runtime.budget import parse_size
 from lshjob.sign.params import SCHEMES
 
@@ -149,6 +149,8 @@ RUN_TABLE: tuple[Option, ...] = (  # in the order of lshjob run --help
     Option("unicode", str, _spec_default("unicode"),
            "Text keys: 'nfc' (one Unicode normal form) or 'asis' (as given).", part=SPEC),
     Option("sample_size", int, 2000, "Entities the planner samples.", low=2),
+    Option("plan_by", str, "candidates", "Planner's rule: 'candidates' (fewest expected candidate pairs) or 'cost' "
+           "(least seconds predicted by this machine's cost model, lshjob calibrate).", choices=PLAN_BY),
     Option("seed", int, 1, "Seed of the hash family."),
     Option("scheme", str, "kperm", "Signature scheme: kperm or oph.", choices=SCHEMES),
     Option("max_bucket", int, DEFAULT_MAX_BUCKET, "Skip buckets holding more entities.", low=2),
@@ -199,6 +201,7 @@ class RunOptions:
     rows: int | None = default_of("rows")
     recall: float = default_of("recall")
     sample_size: int = default_of("sample_size")
+    plan_by: str = default_of("plan_by")  # "cost": the plan of least predicted seconds (lshjob.plan.cost)
     seed: int = default_of("seed")
     scheme: str = default_of("scheme")
     max_bucket: int = default_of("max_bucket")

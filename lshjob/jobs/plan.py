@@ -8,6 +8,7 @@ from pathlib import Path
 
 import polars as pl
 
+from lshjob.core.sets import ElementSets
 from lshjob.errors import InputError, ParameterError
 from lshjob.index.join.base import JoinSettings
 from lshjob.ingest.loading import load_membership
@@ -17,7 +18,16 @@ from lshjob.plan import banding as planner
 from lshjob.plan import similarity
 from lshjob.plan.choose import Plan, choose_plan
 from lshjob.plan.cost import CostModel, Workload, count_factors, load_model
-from lshjob.plan.forecast import forecast, forecast_curve
+from lshjob.plan.forecast import SLICE_ROW_BYTES, forecast, forecast_curve
+from lshjob.plan.scaling import (
+    ROWS_PER_BAND_JOIN,
+    Projection,
+    project_counts,
+    sample_runs,
+    scale_memory,
+    scale_seconds,
+)
+from lshjob.runtime.budget import Budget, default_memory
 from lshjob.sign.signatures import params_from_metadata, read_signatures
 
 
@@ -98,6 +108,8 @@ def plan_banding(
             n_entities = sets["entity"].n_unique()
         shape.update(entities=n_entities, events=report.rows_read, membership_rows=report.membership_rows or
                      report.rows_read, dense_keys=report.entity_range is not None)
+        if isinstance(sets, ElementSets):  # a forecast scaled from runs of this sample profiles it
+            shape["sets"] = sets
         if n_entities < 2:
             raise InputError(f"{sample}: the sample needs at least 2 entities; got {n_entities}")
         hist = similarity.sample_histogram_from_sets(sets, sample_size, seed, entities, threshold)
@@ -149,8 +161,32 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
     pairs = count_factors(history or [])
     scheme = plan.scheme or "kperm"
     load = _workload(plan.predicted, shape, entities, events, scheme, top_k, pairs)
-    out = forecast(model, load, memory, parts, shape.get("dense_keys", True))
+    samples = sample_runs(history or [], load.entities)
+    scaled_from = None
+    if samples and shape.get("sets") is not None:  # runs of the sample: scale them (lshjob.plan.scaling)
+        scaled_from = _projection(plan, shape, samples, load, scheme, top_k)
+        load = scaled_from.workload
+    seconds = by_stage = None
+    if scaled_from is not None:
+        facts = scaled_from.facts  # a join grouping the sample's pairs, writing a row per band at full size
+        join_factor = ROWS_PER_BAND_JOIN if facts["rows_per_band"] and not facts["sample_rows_per_band"] else 1.0
+        seconds, fixed = scale_seconds(model, [(r.workload, r.seconds) for r in samples], load, scaled_from.visits,
+                                       join_factor)
+        budget = Budget(memory or default_memory())
+        by_stage = scale_memory(model, [(r.workload, r.peaks) for r in samples], load,
+                                budget.sign_slice_rows(load.bands * max(load.perms // max(load.bands, 1), 1),
+                                                       load.bands, SLICE_ROW_BYTES))
+    out = forecast(model, load, memory, parts, shape.get("dense_keys", True), seconds, by_stage)
     out["available"] = True
+    out["method"] = "cost model"
+    if scaled_from is not None:
+        out["method"] = f"scaled from {len(samples)} run(s) of the sample"
+        out["scaling"] = {**scaled_from.facts, "fixed_seconds": fixed,
+                          "sample_runs": [int(r.workload.entities) for r in samples]}
+        if all(r.cpu for r in samples):  # CPU time: what the machine's load changes least
+            cpu = scale_seconds(model, [(r.workload, r.cpu) for r in samples], load, scaled_from.visits,
+                                join_factor)[0]
+            out["cpu_seconds"] = {k: round(v, 3) for k, v in cpu.items()}
     out["pair_corrections"] = pairs  # measured / predicted pairs of the --history runs, their representatives' share
     out["runners_up"] = [
         {"perms": r["perms"], "bands": r["bands"], "rows": r["rows"],
@@ -167,6 +203,20 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
     if curve:  # the plan's page: the same shape at a tenth to a hundred times the size
         out["curve"] = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], memory, top_k)
     return out
+
+
+def _projection(plan: Plan, shape: dict, samples: list, load: Workload, scheme: str, top_k: int) -> Projection:
+    """The full run's counts projected from the sample's profile under ``plan`` and the
+    largest run of the sample (:func:`lshjob.plan.scaling.project_counts`)."""
+    from lshjob.jobs.sample_profile import sample_profile
+
+    profile = sample_profile(shape["sets"], plan.perms, plan.bands, plan.rows, scheme, plan.seed)
+    figures = dict(plan.predicted or {}, perms=plan.perms, bands=plan.bands)
+    projected = project_counts(profile, samples, figures, load.entities, load.events,
+                               load.membership_rows / max(load.events, 1), scheme, top_k, JoinSettings.max_bucket,
+                               JoinSettings.dedupe_up_to, JoinSettings.max_repeat)
+    projected.visits = profile.visits_at
+    return projected
 
 
 CURVE_FACTORS = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0)  # the plan page's curve: multiples of the forecast's size

@@ -218,7 +218,25 @@ def plan_run(sets: ElementSets | None, options: RunOptions, total_entities: int 
         sample = min(sets.size, int(options.sample_size * n_entities / sets.size))
         hist = similarity.sample_histogram_from_sets(sets, sample, seed=0, total_entities=n_entities,
                                                      threshold=options.threshold)
+    costing = None
+    if options.plan_by == "cost" and hist is not None:
+        costing = _costing(n_entities, sets.elements.shape[0] * n_entities / max(sets.size, 1), distinct / n_entities,
+                           options)
     return choose_plan(options.threshold, hist, perms=options.perms, bands=options.bands, rows=options.rows,
                        recall=options.recall, max_candidates=options.max_candidates, runners_up=0,
                        distinct_sets=distinct, seed=options.seed, scheme=options.scheme,
-                       crowd_size=JoinSettings.crowd_size)
+                       crowd_size=JoinSettings.crowd_size, plan_by=options.plan_by if hist is not None
+                       else "candidates", costing=costing)
+
+
+def _costing(entities: int, rows: float, representative_share: float, options: RunOptions):
+    """``--plan-by cost``: a plan's figures -> its total seconds predicted by this machine's cost
+    model (:func:`lshjob.plan.cost.load_model`, the shipped default when never calibrated) for
+    ``entities`` sets of ``rows`` membership rows in all, as ``lshjob plan --plan-by cost``
+    costs them."""
+    from lshjob.plan.cost import Workload, load_model
+
+    model = load_model()
+    return lambda figures: model.stage_seconds(Workload.predicted(
+        figures, entities, rows, representative_share=representative_share, scheme=options.scheme,
+        top_k=options.top_k))["total"]

@@ -61,6 +61,7 @@ class _Stages:
     def __init__(self, progress: StageProgress) -> None:
         self.progress = progress
         self.seconds: dict[str, float] = {}
+        self.cpu: dict[str, float] = {}  # the process's CPU seconds (all its threads), steadier than the wall clock
         self.peak: dict[str, int] = {}
 
     def __call__(self, name: str, total: int = 1):
@@ -70,14 +71,13 @@ class _Stages:
         class _Ctx:
             def __enter__(self):
                 reset_peak()
-                self.start = time.perf_counter()
+                self.start, self.cpu = time.perf_counter(), time.process_time()
                 self.task = stages.progress.stage(name, total)
                 return self.task.__enter__()
 
             def __exit__(self, *exc):
                 self.task.__exit__(*exc)
-                stages.seconds[name] = round(stages.seconds.get(name, 0.0) + time.perf_counter() - self.start, 3)
-                stages.peak[name] = max(stages.peak.get(name, 0), peak_bytes())
+                stages.add(name, self.start, self.cpu)
 
         return _Ctx()
 
@@ -88,13 +88,18 @@ class _Stages:
         class _Part:
             def __enter__(self):
                 reset_peak()
-                self.start = time.perf_counter()
+                self.start, self.cpu = time.perf_counter(), time.process_time()
 
             def __exit__(self, *exc):
-                stages.seconds[name] = round(stages.seconds.get(name, 0.0) + time.perf_counter() - self.start, 3)
-                stages.peak[name] = max(stages.peak.get(name, 0), peak_bytes())
+                stages.add(name, self.start, self.cpu)
 
         return _Part()
+
+    def add(self, name: str, start: float, cpu: float) -> None:
+        """Add the wall and CPU seconds since ``start`` and ``cpu`` to stage ``name``; its peak."""
+        self.seconds[name] = round(self.seconds.get(name, 0.0) + time.perf_counter() - start, 3)
+        self.cpu[name] = round(self.cpu.get(name, 0.0) + time.process_time() - cpu, 3)
+        self.peak[name] = max(self.peak.get(name, 0), peak_bytes())
 
 
 def run_job(
@@ -119,7 +124,7 @@ def run_job(
     work = work_folder(out, options.scratch)
     stages = _Stages(progress)
     counts: dict[str, object] = {}
-    started = time.perf_counter()
+    started, started_cpu = time.perf_counter(), time.process_time()
     started_at = provenance.utc_now()
     run_id = provenance.new_run_id(started_at)
     try:
@@ -222,6 +227,7 @@ def run_job(
             out=str(out.absolute()),
             warnings=warnings,
             seconds=dict(stages.seconds, total=round(time.perf_counter() - started, 3)),
+            cpu_seconds=dict(stages.cpu, total=round(time.process_time() - started_cpu, 3)),
             finished_at=provenance.iso(provenance.utc_now()),
         ).to_json()  # what the file holds, exactly, and what --json prints
         with stopping.held():  # a stop signal waits: the index is renamed whole or not at all

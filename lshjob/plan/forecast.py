@@ -27,13 +27,16 @@ def in_parts(w: Workload, memory: int, parts: int | None = None, dense_keys: boo
 
 
 def forecast(model: CostModel, w: Workload, memory: int | None = None, parts: int | None = None,
-             dense_keys: bool = True) -> dict:
+             dense_keys: bool = True, seconds: dict | None = None, by_stage: dict | None = None) -> dict:
     """What ``lshjob plan`` prints under ``forecast``. In parts, the seconds are those of one
-    part (each part's passes add a little) and the peak is held to the budget the run keeps to."""
+    part (each part's passes add a little) and the peak is held to the budget the run keeps to.
+    ``seconds`` and ``by_stage`` (peak memory): found otherwise (scaled from runs of a sample,
+    :mod:`lshjob.plan.scaling`) instead of the model's."""
     memory = memory or default_memory()
     split = in_parts(w, memory, parts, dense_keys)
-    seconds = model.stage_seconds(w)
-    by_stage = model.stage_memory(w, Budget(memory).sign_slice_rows(w.perms, w.bands, SLICE_ROW_BYTES))
+    seconds = dict(seconds) if seconds is not None else model.stage_seconds(w)
+    by_stage = (dict(by_stage) if by_stage is not None else
+                model.stage_memory(w, Budget(memory).sign_slice_rows(w.perms, w.bands, SLICE_ROW_BYTES)))
     notes = []
     held = [s for s in BOUNDED if by_stage[s] > memory]
     for s in held:  # DuckDB's limit and spill, verification's and publishing's blocks: sized from the budget

@@ -1,0 +1,316 @@
+"""A forecast scaled from runs of a sample: counts at the full size, and each stage's seconds.
+
+A run of a uniform sample of the entities measures what a calibration done at another
+moment cannot: this data's shape and this machine's speed now. Scaling it to N entities
+needs the counts the full run will see and how each stage's seconds grow with them.
+
+Counts (:func:`project_counts`), from the sample's own structure (:class:`SampleProfile`,
+made by :mod:`lshjob.jobs.sample_profile`):
+
+* distinct sets (representatives): Shlosser's estimator from how often each distinct set
+  occurs in the sample (:func:`shlosser_distinct`);
+* candidate pairs: a pair lies in a bucket of a band, and a bucket holding S representatives
+  at full size holds s of them in the sample with E[s(s-1)] = q^2 S(S-1) (each kept with
+  probability q = R(n)/R(N)), so sum over buckets of C(s,2) / q^2 estimates the full
+  size's pairs (Horvitz and Thompson, JASA 1952); a bucket of s members holds about s/q at
+  full size, and when that passes the join's ``max_bucket`` its pairs are not written
+  (the join's oversize rule: they are counted apart and skipped);
+* verified pairs and published rows in proportion to the pairs kept.
+
+Seconds (:func:`scale_seconds`): each stage's measured seconds are ``fixed + rate x driver``
+(:data:`DRIVERS`: the count the stage's work grows with); with runs of the sample at two
+sizes or more, ``fixed`` is the intercept of the line through them, kept between 0 and half
+the larger run's seconds (process start, imports and compiled-kernel loads are not scaled);
+with one run, the cost model's constant, at most half the run's seconds. The rate is the
+largest run's own: a run measured now, on this machine, under its present load.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from lshjob.plan.cost import STAGES, CostModel, Workload
+from lshjob.plan.similarity import AGAINST_ALL_BUDGET
+
+# the join writing a row per band a pair met in against grouping its pairs first, seconds a pair:
+# 1.7 s CPU against 28 s for the same 97M pair rows (docs/performance.md, long-tailed data at 300k)
+ROWS_PER_BAND_JOIN = 1.7 / 28
+MAX_FIXED_SHARE = 0.5  # a stage's fixed seconds: at most this share of the largest sample run's
+
+
+PLANNER_ROW_WEIGHT = 0.25  # the plan stage: a set's row read into the index against a posting visited
+
+
+def _driver_sign(w: Workload, visits) -> float:
+    return w.hashed_words + w.signature_words
+
+
+def _driver_plan(w: Workload, visits) -> float:
+    return PLANNER_ROW_WEIGHT * w.membership_rows + (visits(w.entities) if visits else 0.0)
+
+
+# the count each stage's seconds grow with (the cost model's terms, one sum a stage); ``visits``:
+# the planner's posting visits at a number of entities (SampleProfile.visits_at), when known
+DRIVERS = {
+    "ingest": lambda w, visits: w.events,
+    "collapse": lambda w, visits: w.membership_rows,
+    "plan": _driver_plan,
+    "sign": _driver_sign,
+    "band": lambda w, visits: w.bucket_rows,
+    "join": lambda w, visits: w.bucket_rows + w.candidate_pairs,
+    "verify": lambda w, visits: w.candidate_pairs,
+    "publish": lambda w, visits: w.verified_pairs + w.published_rows,
+}
+
+
+def _signed(w: Workload, slice_rows: float | None) -> float:
+    """Signature positions held at a time: a slice of representatives, b x r positions each."""
+    return min(w.representatives, slice_rows or w.representatives) * w.bands * max(w.perms // max(w.bands, 1), 1)
+
+
+# what each stage's peak resident memory grows with, in 8-byte words: the sets it holds, and
+# its own tables (signing and banding a slice of representatives at a time; verification its
+# candidates in blocks, the pairs it keeps whole)
+MEMORY_DRIVERS = {
+    "ingest": lambda w, rows: w.events,
+    "collapse": lambda w, rows: w.membership_rows,
+    "plan": lambda w, rows: w.membership_rows,
+    "sign": lambda w, rows: w.membership_rows + _signed(w, rows),
+    "band": lambda w, rows: w.membership_rows + w.bucket_rows + _signed(w, rows),
+    "join": lambda w, rows: w.membership_rows + w.bucket_rows,
+    "verify": lambda w, rows: w.membership_rows + 4 * w.verified_pairs,
+    "publish": lambda w, rows: w.membership_rows + 4 * w.verified_pairs + 4 * w.published_rows,
+}
+
+
+def shlosser_distinct(multiplicities: np.ndarray, share: float) -> float:
+    """Distinct values in the whole population from a Bernoulli sample of a ``share`` of its
+    rows in which distinct value i occurs ``multiplicities[i]`` times: Shlosser's estimator
+    d + f1 * sum_i (1-q)^i f_i / sum_i i q (1-q)^(i-1) f_i, f_i the values seen i times
+    (Shlosser 1981, as given by Haas, Naughton, Seshadri and Stokes, VLDB 1995, eq. 11)."""
+    m = np.asarray(multiplicities, dtype=np.int64)
+    d = float(len(m))
+    if share >= 1.0 or d == 0:
+        return d
+    f = np.bincount(m).astype(np.float64)
+    i = np.arange(len(f), dtype=np.float64)
+    q = float(share)
+    num = float((np.power(1 - q, i) * f)[1:].sum())
+    den = float((i * q * np.power(1 - q, np.maximum(i - 1, 0)) * f)[1:].sum())
+    return d + (f[1] if len(f) > 1 else 0.0) * num / den if den > 0 else d
+
+
+@dataclass(frozen=True)
+class SampleProfile:
+    """What a sample of ``entities`` of a population holds under a plan: its representatives'
+    ``multiplicities`` (entities a distinct set stands for), ``bucket_sizes`` and
+    ``bucket_counts`` (over all bands: how many buckets hold that many representatives, two
+    or more) and the plan's ``bands``."""
+
+    entities: int
+    multiplicities: np.ndarray
+    bucket_sizes: np.ndarray
+    bucket_counts: np.ndarray
+    bands: int
+    planner_visits: float = 0.0
+
+    def visits_at(self, entities: float) -> float:
+        """The planner's posting visits at ``entities``: posting lists grow with the entities
+        (a uniform sample holds its share of each), up to the planner's cut."""
+        return min(self.planner_visits * entities / max(self.entities, 1), AGAINST_ALL_BUDGET)
+
+    @property
+    def representatives(self) -> int:
+        return int(len(self.multiplicities))
+
+    def pair_rows(self, growth: float = 1.0, max_bucket: float = math.inf) -> tuple[float, float]:
+        """(all, kept) pairs counted once per band at ``growth`` times the representatives:
+        all the buckets' pairs, and those of buckets whose size times ``growth`` stays within
+        ``max_bucket`` (module docstring)."""
+        s = self.bucket_sizes.astype(np.float64)
+        pairs = self.bucket_counts * s * (s - 1) / 2 * growth * growth
+        return float(pairs.sum()), float(pairs[s * growth <= max_bucket].sum())
+
+
+@dataclass
+class Projection:
+    """The counts of the full run (``workload``) and how they were found (``facts``)."""
+
+    workload: Workload
+    facts: dict = field(default_factory=dict)
+    visits: object = None  # the planner's posting visits at a number of entities, when known
+
+
+def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict, entities: float, events: float,
+                   membership_share: float, scheme: str, top_k: int, max_bucket: float,
+                   rows_above: float = math.inf, max_repeat: float = 0.0) -> Projection:
+    """The counts a run of ``entities`` sets and ``events`` events would see under the plan
+    of ``figures`` (perms, bands), projected from the sample's ``profile`` (module docstring).
+    ``runs``: the counts of runs of the sample (or of nested samples of it), smallest first:
+    the largest one's candidate and verified pairs are scaled as the pairs kept; its published
+    rows an entity grow as they grew from the smaller run to it (at most ``top_k``). Without
+    runs the plan's predictions of ``figures`` are rescaled instead.
+
+    The join's way of writing pairs (:class:`lshjob.index.join.base.JoinSettings`): a row per
+    band a pair met in when the pair rows pass ``rows_above`` and pairs repeat at most
+    ``max_repeat`` times (as in the sample's run); else one row a pair, the rows divided by
+    the sample run's repeats."""
+    last = runs[-1] if runs else None
+    run = last.workload if last else None
+    share = profile.entities / max(entities, 1.0)
+    reps = max(shlosser_distinct(profile.multiplicities, share), float(profile.representatives))
+    reps = min(reps, entities)
+    growth = reps / max(profile.representatives, 1)
+    all_n, kept_n = profile.pair_rows(1.0, max_bucket)
+    all_full, kept_full = profile.pair_rows(growth, max_bucket)
+    kept_ratio = kept_full / kept_n if kept_n > 0 else growth * growth
+    rows_per_band = False
+    if run is not None and run.candidate_pairs > 0:
+        repeats = last.repeats
+        rows_per_band = kept_full > rows_above and repeats <= max_repeat
+        candidates = kept_full if rows_per_band else kept_full / repeats
+        if last.skew is None:  # no skew report: the run's own count, scaled
+            candidates = run.candidate_pairs * kept_ratio
+        verified = run.verified_pairs * kept_ratio
+        published = entities * per_entity_rows([r.workload for r in runs], entities, top_k)
+        basis = "the sample's run"
+    else:  # the planner's predictions at this size assume no collapse and no skipped buckets
+        candidates = kept_full
+        verified = figures.get("expected_verified", 0.0) * (kept_full / all_full if all_full > 0 else 1.0)
+        published = 2.0 * verified
+        basis = "the sample's buckets"
+    published = min(published, entities * top_k)
+    w = Workload(events=events, entities=entities, membership_rows=events * membership_share,
+                 representatives=reps, perms=figures["perms"], bands=figures["bands"], scheme=scheme,
+                 candidate_pairs=candidates, verified_pairs=verified, published_rows=published)
+    facts = {"sample_entities": profile.entities, "sample_representatives": profile.representatives,
+             "representatives": round(reps), "representative_growth": round(growth, 4),
+             "sample_pair_rows": round(all_n), "pair_rows": round(all_full), "pair_rows_kept": round(kept_full),
+             "pairs_basis": basis, "max_bucket": max_bucket, "rows_per_band": rows_per_band,
+             "sample_rows_per_band": bool(last and last.rows_per_band)}
+    return Projection(w, facts)
+
+
+def per_entity_rows(runs: list[Workload], entities: float, top_k: int) -> float:
+    """Published rows an entity at ``entities``: the largest run's, grown by the power of the
+    entities it grew by between the two largest runs (an exponent in [0, 1]; none with one
+    run), at most ``top_k``."""
+    big = runs[-1]
+    rows = big.published_rows / max(big.entities, 1)
+    small = next((w for w in reversed(runs[:-1]) if w.entities < big.entities and w.published_rows > 0), None)
+    if small is not None and rows > 0:
+        exponent = math.log(rows / (small.published_rows / small.entities)) / math.log(big.entities / small.entities)
+        rows *= (entities / big.entities) ** min(max(exponent, 0.0), 1.0)
+    return min(rows, float(top_k))
+
+
+def fixed_and_rate(drivers: list[float], seconds: list[float], constant: float) -> tuple[float, float]:
+    """A stage's (fixed seconds, seconds a unit of driver) from runs of the sample at the sizes
+    of ``drivers``, the largest last (module docstring); ``constant``: the cost model's."""
+    big_d, big_t = drivers[-1], seconds[-1]
+    cap = MAX_FIXED_SHARE * big_t
+    if len(drivers) > 1 and big_d > drivers[0]:
+        d, t = np.asarray(drivers, dtype=np.float64), np.asarray(seconds, dtype=np.float64)
+        slope = float(np.polyfit(d, t, 1)[0]) if len(d) > 2 else (t[-1] - t[0]) / (d[-1] - d[0])
+        fixed = big_t - max(slope, 0.0) * big_d
+        fixed = min(max(fixed, 0.0), cap, float(t.min()))
+    else:
+        fixed = min(max(constant, 0.0), cap)
+    rate = (big_t - fixed) / big_d if big_d > 0 else 0.0
+    return fixed, rate
+
+
+def scale_seconds(model: CostModel, runs: list[tuple[Workload, dict]], target: Workload,
+                  visits=None, join_factor: float = 1.0) -> tuple[dict, dict]:
+    """Seconds per stage (and ``total``) at ``target`` from ``runs`` of the sample (each its
+    counts and its manifest's ``seconds``, or ``cpu_seconds``), smallest first; and each
+    stage's fixed seconds.
+    ``visits``: the planner's posting visits at a number of entities (:meth:`SampleProfile.visits_at`);
+    ``join_factor`` multiplies the join's scaled part (:data:`ROWS_PER_BAND_JOIN`)."""
+    out, fixed_of = {}, {}
+    for stage in STAGES:
+        timed = [(DRIVERS[stage](w, visits), s[stage]) for w, s in runs if stage in s]
+        if not timed:
+            out[stage] = model.stage_seconds(target)[stage]
+            continue
+        drivers, seconds = [d for d, _ in timed], [t for _, t in timed]
+        fixed, rate = fixed_and_rate(drivers, seconds, model.seconds[stage].constant)
+        out[stage] = fixed + rate * DRIVERS[stage](target, visits) * (join_factor if stage == "join" else 1.0)
+        fixed_of[stage] = round(fixed, 3)
+    other = min(max(s["total"] - sum(s.get(st, 0.0) for st in STAGES), 0.0) for _, s in runs)
+    out["total"] = sum(out[s] for s in STAGES) + other
+    return out, fixed_of
+
+
+def scale_memory(model: CostModel, runs: list[tuple[Workload, dict]], target: Workload,
+                 slice_rows: float | None = None) -> dict:
+    """Peak resident memory per stage at ``target`` from ``runs`` of the sample (each its counts
+    and its manifest's ``peak_memory_bytes``), smallest first: the line through the runs
+    against :data:`MEMORY_DRIVERS` (the process's own memory the intercept, at most the
+    smallest run's peak); with one run, the cost model's constant as the intercept.
+    ``slice_rows``: the representatives signed and banded at a time at ``target``."""
+    out = {}
+    for stage in STAGES:
+        measured = [(MEMORY_DRIVERS[stage](w, None), float(m[stage])) for w, m in runs if m.get(stage)]
+        if not measured:
+            out[stage] = model.stage_memory(target)[stage]
+            continue
+        d, t = np.array([x for x, _ in measured]), np.array([y for _, y in measured])
+        if len(d) > 1 and d[-1] > d[0]:
+            slope = max(float(np.polyfit(d, t, 1)[0]), 0.0)
+            base = min(max(t[-1] - slope * d[-1], 0.0), float(t.min()))
+        else:
+            base = min(max(model.memory[stage].constant, 0.0), float(t[-1]))
+        rate = (t[-1] - base) / d[-1] if d[-1] > 0 else 0.0
+        out[stage] = base + rate * MEMORY_DRIVERS[stage](target, slice_rows)
+    return out
+
+
+@dataclass(frozen=True)
+class SampleRun:
+    """A run of a sample: its counts, and from its manifest ``seconds``, ``peaks``
+    (peak_memory_bytes), ``cpu`` (cpu_seconds; empty when not recorded) and the join's ``skew``."""
+
+    workload: Workload
+    seconds: dict
+    peaks: dict
+    cpu: dict
+    skew: dict | None
+
+    @property
+    def rows_per_band(self) -> bool:
+        """Whether its join wrote a row per band a pair met in (then it counts every pair row:
+        those of buckets within ``max_bucket``) rather than one row a pair."""
+        rows = _pair_rows(self.skew)
+        return rows is not None and self.workload.candidate_pairs >= rows > 0
+
+    @property
+    def repeats(self) -> float:
+        """Pair rows a distinct pair (1 when its join wrote a row per band)."""
+        rows = _pair_rows(self.skew)
+        if self.rows_per_band or not rows or self.workload.candidate_pairs <= 0:
+            return 1.0
+        return rows / self.workload.candidate_pairs
+
+
+def _pair_rows(skew: dict | None) -> float | None:
+    return None if not skew else float(skew.get("bucket_pairs", 0) + skew.get("split_pairs", 0))
+
+
+def sample_runs(manifests: list[tuple[str, dict]], entities: float) -> list[SampleRun]:
+    """The runs among ``manifests`` of fewer entities than ``entities`` with bands (runs of a
+    sample of the data to forecast), smallest first."""
+    found = []
+    for _, m in manifests:
+        counts = m.get("counts") or {}
+        if (m.get("plan") or {}).get("bands") and 0 < counts.get("entities", 0) < entities and m.get("seconds"):
+            found.append(SampleRun(Workload.from_manifest(m), dict(m["seconds"]),
+                                   dict(m.get("peak_memory_bytes") or {}), dict(m.get("cpu_seconds") or {}),
+                                   m.get("skew")))
+    found.sort(key=lambda r: r.workload.entities)
+    return found
+
+

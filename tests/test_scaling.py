@@ -1,0 +1,132 @@
+"""The forecast scaled from runs of a sample (lshjob/plan/scaling.py): distinct sets at full
+size, the pairs of the sample's buckets against the join's own count and against the exact
+count at full size, fixed seconds kept out of the scaling, and lshjob plan scaling real runs."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import polars as pl
+import pytest
+from typer.testing import CliRunner
+
+from lshjob.cli.app import app
+from lshjob.ingest.loading import load_membership
+from lshjob.ingest.spec import EventSpec
+from lshjob.jobs.calibrate import calibration_events
+from lshjob.jobs.run import RunOptions, run_job
+from lshjob.jobs.sample_profile import sample_profile
+from lshjob.plan import cost
+from lshjob.plan.cost import Workload
+from lshjob.plan.scaling import fixed_and_rate, project_counts, shlosser_distinct
+
+runner = CliRunner()
+SPEC = EventSpec(entity="entity", element="element")
+
+
+@pytest.fixture(autouse=True)
+def own_cache(tmp_path, monkeypatch):
+    """No calibration of the user running the tests is read."""
+    monkeypatch.delenv(cost.MODEL_ENV, raising=False)
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "cache"))
+
+
+def test_shlosser_counts_distinct_values_of_the_whole_from_a_tenth():
+    # Oracle: algebra for a population of distinct values only (a Bernoulli sample of a share
+    # q holds each value once: d / q exactly), and the exact distinct count of a skewed
+    # population (Python set) for the estimate from a 10% sample.
+    assert shlosser_distinct(np.ones(500, dtype=np.int64), 0.1) == pytest.approx(5000)
+    rng = np.random.default_rng(11)
+    n = 50_000
+    population = np.where(rng.random(n) < 0.4, rng.zipf(1.5, n) % 2000, 10**6 + np.arange(n))
+    truth = len(set(population.tolist()))
+    for seed in (5, 6):
+        picked = population[np.random.default_rng(seed).random(n) < 0.1]
+        _, multiplicities = np.unique(picked, return_counts=True)
+        estimate = shlosser_distinct(multiplicities, len(picked) / n)
+        assert abs(estimate / truth - 1) < 0.1, (estimate, truth)
+
+
+def _frame(n: int, seed: int, titles: int) -> pl.DataFrame:
+    return calibration_events(n, seed, titles)
+
+
+def test_the_sample_profile_counts_the_pairs_the_join_counts(tmp_path):
+    # Oracle: the DuckDB join of a real run of the same sets under the same plan (its skew
+    # report: pairs of written buckets plus pairs of oversize ones, a pair once per band).
+    events = tmp_path / "events.parquet"
+    _frame(3000, 3, 1500).write_parquet(events)
+    m = run_job(events, SPEC, RunOptions(threshold=0.5, perms=64, bands=16, rows=4), tmp_path / "idx")
+    sets, _ = load_membership(events, SPEC)
+    profile = sample_profile(sets, 64, 16, 4)
+    assert profile.representatives == m["counts"]["representatives"]
+    assert profile.pair_rows()[0] == m["skew"]["bucket_pairs"] + m["skew"]["oversize_pairs"]
+
+
+def test_pairs_projected_from_a_tenth_match_the_full_count(tmp_path):
+    # Oracle: the exact pair count of the whole population under the same plan (every bucket
+    # of every band counted), against the projection from a uniform 10% sample of entities.
+    # Few titles: many candidate pairs and repeated sets (identical sets collapse).
+    frame = _frame(20_000, 4, 3000)
+    full_path, part_path = tmp_path / "full.parquet", tmp_path / "part.parquet"
+    frame.write_parquet(full_path)
+    keys = frame["entity"].unique()
+    picked = keys.sample(fraction=0.1, seed=9)
+    frame.filter(pl.col("entity").is_in(picked.implode())).write_parquet(part_path)
+    full_sets, _ = load_membership(full_path, SPEC)
+    part_sets, _ = load_membership(part_path, SPEC)
+    truth = sample_profile(full_sets, 64, 16, 4)
+    profile = sample_profile(part_sets, 64, 16, 4)
+    figures = {"perms": 64, "bands": 16}
+    projected = project_counts(profile, [], figures, full_sets.size, len(full_sets.elements), 1.0, "kperm", 50,
+                               max_bucket=10**9)
+    assert projected.facts["pair_rows"] == pytest.approx(truth.pair_rows()[0], rel=0.25)
+    assert projected.workload.representatives == pytest.approx(truth.representatives, rel=0.1)
+    # the pairs of the sample scaled by the square of the entities overshoot (identical sets collapse)
+    naive = profile.pair_rows()[0] * (full_sets.size / part_sets.size) ** 2
+    assert naive > truth.pair_rows()[0]
+
+
+def test_fixed_seconds_are_the_intercept_and_are_not_scaled():
+    # Oracle: algebra. Seconds made exactly from 0.5 + 2e-7 x driver at two sizes give back
+    # 0.5 and 2e-7; a smaller run slower than the larger (noise) keeps the fixed part at half
+    # the larger run's seconds, so the rest still scales.
+    fixed, rate = fixed_and_rate([1e6, 4e6], [0.5 + 0.2, 0.5 + 0.8], 0.0)
+    assert fixed == pytest.approx(0.5) and rate == pytest.approx(2e-7)
+    fixed, rate = fixed_and_rate([1e6, 4e6], [3.0, 2.0], 0.0)
+    assert fixed == pytest.approx(1.0) and rate == pytest.approx(1.0 / 4e6)
+    fixed, _ = fixed_and_rate([4e6], [2.0], 0.3)  # one run: the model's constant
+    assert fixed == pytest.approx(0.3)
+
+
+def test_plan_scales_the_runs_of_its_sample(tmp_path):
+    # Oracle: the full run's own measured counts (its manifest), against the forecast scaled
+    # from two runs of nested samples (a quarter, a sixteenth) of its entities.
+    frame = _frame(4000, 6, 2000)
+    full = tmp_path / "full.parquet"
+    frame.write_parquet(full)
+    keys = frame["entity"].unique().sort()
+    quarter = keys.sample(fraction=0.25, seed=1)
+    paths = {}
+    for name, chosen in (("small", quarter.sample(fraction=0.25, seed=2)), ("sample", quarter)):
+        paths[name] = tmp_path / f"{name}.parquet"
+        frame.filter(pl.col("entity").is_in(chosen.implode())).write_parquet(paths[name])
+    options = RunOptions(threshold=0.5, perms=64, bands=16, rows=4)
+    histories = []
+    for name in ("small", "sample"):
+        run_job(paths[name], SPEC, options, tmp_path / f"{name}-idx")
+        histories += ["--history", str(tmp_path / f"{name}-idx")]
+    measured = run_job(full, SPEC, options, tmp_path / "full-idx")
+    out = runner.invoke(app, ["plan", "--threshold", "0.5", "--sample", str(paths["sample"]), "--entity", "entity",
+                              "--element", "element", "--perms", "64", "--bands", "16", "--rows", "4", "--entities",
+                              str(measured["counts"]["entities"]), "--events", str(measured["counts"]["events"]),
+                              *histories, "--json"])
+    assert out.exit_code == 0, out.output
+    fc = json.loads(out.output)["forecast"]
+    assert fc["method"] == "scaled from 2 run(s) of the sample"
+    assert fc["counts"]["candidate_pairs"] == pytest.approx(measured["counts"]["candidate_pairs"], rel=0.3)
+    assert fc["counts"]["representatives"] == pytest.approx(measured["counts"]["representatives"], rel=0.1)
+    assert fc["seconds"]["total"] > 0 and fc["peak_memory_bytes"] > 0
+    w = Workload.from_manifest(measured)
+    assert w.entities == fc["counts"]["entities"]
