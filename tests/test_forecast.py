@@ -187,3 +187,25 @@ def test_calibrate_writes_the_model_the_forecast_then_reads(tmp_path, monkeypatc
     assert load_model().source == "calibrated"
     out = runner.invoke(app, ["calibrate", "--seconds", "0"])
     assert out.exit_code == 2 and "--seconds must be above 0" in out.output
+
+
+def test_run_plans_by_cost_as_lshjob_plan_does(loans, tmp_path):
+    # Oracle: lshjob plan --plan-by cost on the same file (the sample is the whole file), the
+    # ranking tested above by brute force; the default run still plans by candidates.
+    args = ["--threshold", "0.5", "--entity", "patron", "--element", "title"]
+    planned = json.loads(runner.invoke(app, ["plan", *args, "--sample", str(loans), "--plan-by", "cost",
+                                             "--json"]).output)
+    ran = runner.invoke(app, ["run", str(loans), *args, "--out", str(tmp_path / "idx"), "--plan-by", "cost",
+                              "--json", "--quiet"])
+    assert ran.exit_code == 0, ran.output
+    plan = json.loads(ran.output)["plan"]
+    assert (plan["perms"], plan["bands"], plan["rows"]) == (planned["perms"], planned["bands"], planned["rows"])
+    assert "least predicted seconds" in plan["why"] and plan["predicted"]["predicted_seconds"] > 0
+    default = json.loads(runner.invoke(app, ["run", str(loans), *args, "--out", str(tmp_path / "idx2"), "--json",
+                                             "--quiet"]).output)["plan"]
+    by_candidates = json.loads(runner.invoke(app, ["plan", *args, "--sample", str(loans), "--json"]).output)
+    assert (default["perms"], default["bands"], default["rows"]) == (
+        by_candidates["perms"], by_candidates["bands"], by_candidates["rows"])
+    assert (plan["perms"], plan["bands"], plan["rows"]) != (default["perms"], default["bands"], default["rows"])
+    bad = runner.invoke(app, ["run", str(loans), *args, "--out", str(tmp_path / "idx3"), "--plan-by", "speed"])
+    assert bad.exit_code == 2 and "--plan-by must be one of" in bad.output

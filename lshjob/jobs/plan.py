@@ -118,6 +118,10 @@ def plan_banding(
     if plan_by == "cost" and hist is not None:
         model = model or load_model().refine(history or [])
         pairs = count_factors(history or [])
+        if not history and shape.get("sets") is not None:  # as lshjob run --plan-by cost costs its plans
+            from lshjob.index.collapse import collapse_identical
+
+            pairs["representative_share"] = len(collapse_identical(shape["sets"])[1]) / max(shape["sets"].size, 1)
         costing = lambda figures: model.stage_seconds(_workload(figures, shape, entities, events, scheme,
                                                                 top_k, pairs))["total"]
     return choose_plan(threshold, hist, perms=perms, bands=bands, rows=rows, recall=recall, fp_weight=fp_weight,

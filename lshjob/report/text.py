@@ -163,8 +163,17 @@ def forecast_report(forecast: dict) -> str:
     coeff = forecast["coefficients"]
     said = "this machine's calibration" if coeff["source"] == "calibrated" else \
         "the shipped default (run lshjob calibrate to fit this machine)"
-    lines.append(f"coefficients: {said}: {coeff['provenance']}")
-    if coeff["refined_from"]:
+    scaling = forecast.get("scaling")
+    if scaling:
+        cpu = forecast.get("cpu_seconds", {}).get("total")
+        lines.append(f"seconds and memory {forecast['method']} ({', '.join(_fmt(n) for n in scaling['sample_runs'])} "
+                     f"entities), counts projected from the sample's buckets: {_fmt(scaling['representatives'])} "
+                     f"distinct sets, {_fmt(scaling['pair_rows_kept'])} pair rows within --max-bucket"
+                     + (f"; CPU seconds {cpu:.1f}" if cpu else ""))
+        lines.append(f"coefficients (runners-up): {said}")
+    else:
+        lines.append(f"coefficients: {said}: {coeff['provenance']}")
+    if coeff["refined_from"] and not scaling:
         lines.append(f"refined from {len(coeff['refined_from'])} run(s): {', '.join(coeff['refined_from'])}")
     if coeff.get("not_refined_from"):
         lines.append("not refined from (under 100,000 events, or no bands): " + ", ".join(coeff["not_refined_from"]))
