@@ -28,23 +28,26 @@ def sample_profile(sets: ElementSets, perms: int, bands: int, rows: int, scheme:
     multiplicities = np.bincount(rep_of, minlength=sets.size)[reps]
     params = SignatureParams(scheme=scheme or default_of("scheme"), perms=perms,
                              seed=default_of("seed") if seed is None else seed)
+    once = pl.Series("once", multiplicities[np.arange(len(reps))] == 1 if len(reps) else [], dtype=pl.UInt32)
     keys = []
     for lo, hi in slice_bounds(len(reps), SLICE_REPS):
         ids = reps[lo:hi]
         columns = comparable_by_position(sets, ids, params, bands * rows)
         keys.append(bucket_keys_by_position(columns, ids, bands, rows).drop("rep"))
         del columns
-    table = pl.concat(keys) if keys else pl.DataFrame()
-    sizes = np.zeros(2, dtype=np.int64)
-    for name in table.columns:
-        counts = table.get_column(name).value_counts().get_column("count").to_numpy()
-        found = np.bincount(counts[counts >= 2])
-        if len(found) > len(sizes):
-            sizes = np.pad(sizes, (0, len(found) - len(sizes)))
-        sizes[:len(found)] += found
-    held = np.flatnonzero(sizes)
-    return SampleProfile(entities=int(sets.size), multiplicities=multiplicities, bucket_sizes=held,
-                         bucket_counts=sizes[held], bands=bands, planner_visits=planner_visits(sets))
+    table = pl.concat(keys).with_columns(once) if keys else pl.DataFrame()
+    shapes = [table.group_by(name).agg(members=pl.len(), single=pl.col("once").sum())
+              .filter(pl.col("members") >= 2).select(repeated=pl.col("members") - pl.col("single"), single="single")
+              for name in table.columns if name != "once"]
+    found = (pl.concat(shapes).group_by("repeated", "single").agg(buckets=pl.len()) if shapes else
+             pl.DataFrame({"repeated": [], "single": [], "buckets": []}, schema={"repeated": pl.UInt32,
+                                                                                 "single": pl.UInt32,
+                                                                                 "buckets": pl.UInt32}))
+    return SampleProfile(entities=int(sets.size), multiplicities=multiplicities,
+                         bucket_repeated=found["repeated"].to_numpy().astype(np.int64),
+                         bucket_single=found["single"].to_numpy().astype(np.int64),
+                         bucket_counts=found["buckets"].to_numpy().astype(np.int64), bands=bands,
+                         planner_visits=planner_visits(sets))
 
 
 def planner_visits(sets: ElementSets, sample: int = default_of("sample_size"), seed: int = 0) -> float:

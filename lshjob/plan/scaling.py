@@ -9,12 +9,14 @@ made by :mod:`lshjob.jobs.sample_profile`):
 
 * distinct sets (representatives): Shlosser's estimator from how often each distinct set
   occurs in the sample (:func:`shlosser_distinct`);
-* candidate pairs: a pair lies in a bucket of a band, and a bucket holding S representatives
-  at full size holds s of them in the sample with E[s(s-1)] = q^2 S(S-1) (each kept with
-  probability q = R(n)/R(N)), so sum over buckets of C(s,2) / q^2 estimates the full
-  size's pairs (Horvitz and Thompson, JASA 1952); a bucket of s members holds about s/q at
-  full size, and when that passes the join's ``max_bucket`` its pairs are not written
-  (the join's oversize rule: they are counted apart and skipped);
+* candidate pairs: a pair lies in a bucket of a band; each pair of representatives of the
+  sample's buckets stands for 1 / (p_u p_v) pairs at full size, p the chance a distinct set
+  of the full data is in the sample (Horvitz and Thompson, JASA 1952): about 1 for a set seen
+  more than once in the sample (it is frequent), and for the sets seen once the p that makes
+  them and the others add up to the estimated distinct sets. A bucket of a repeated and b
+  once-seen members so holds C(a,2) + a b / p + C(b,2) / p^2 pairs and a + b / p members at
+  full size; when that passes the join's ``max_bucket`` its pairs are not written (the
+  join's oversize rule: they are counted apart and skipped);
 * verified pairs and published rows in proportion to the pairs kept.
 
 Seconds (:func:`scale_seconds`): each stage's measured seconds are ``fixed + rate x driver``
@@ -106,13 +108,15 @@ def shlosser_distinct(multiplicities: np.ndarray, share: float) -> float:
 @dataclass(frozen=True)
 class SampleProfile:
     """What a sample of ``entities`` of a population holds under a plan: its representatives'
-    ``multiplicities`` (entities a distinct set stands for), ``bucket_sizes`` and
-    ``bucket_counts`` (over all bands: how many buckets hold that many representatives, two
-    or more) and the plan's ``bands``."""
+    ``multiplicities`` (entities a distinct set stands for), and its shared buckets over all
+    bands as ``bucket_counts`` buckets holding ``bucket_repeated`` representatives seen more
+    than once in the sample and ``bucket_single`` seen once (two or more in all); the plan's
+    ``bands``; the planner's posting visits on the sample."""
 
     entities: int
     multiplicities: np.ndarray
-    bucket_sizes: np.ndarray
+    bucket_repeated: np.ndarray
+    bucket_single: np.ndarray
     bucket_counts: np.ndarray
     bands: int
     planner_visits: float = 0.0
@@ -126,13 +130,18 @@ class SampleProfile:
     def representatives(self) -> int:
         return int(len(self.multiplicities))
 
-    def pair_rows(self, growth: float = 1.0, max_bucket: float = math.inf) -> tuple[float, float]:
-        """(all, kept) pairs counted once per band at ``growth`` times the representatives:
-        all the buckets' pairs, and those of buckets whose size times ``growth`` stays within
-        ``max_bucket`` (module docstring)."""
-        s = self.bucket_sizes.astype(np.float64)
-        pairs = self.bucket_counts * s * (s - 1) / 2 * growth * growth
-        return float(pairs.sum()), float(pairs[s * growth <= max_bucket].sum())
+    @property
+    def seen_once(self) -> int:
+        return int((self.multiplicities == 1).sum())
+
+    def pair_rows(self, weight: float = 1.0, max_bucket: float = math.inf) -> tuple[float, float]:
+        """(all, kept) pairs counted once per band when each representative seen once in the
+        sample stands for ``weight`` at full size and one seen more often for itself (module
+        docstring): all the buckets' pairs, and those of buckets whose size at full size stays
+        within ``max_bucket``."""
+        a, b = self.bucket_repeated.astype(np.float64), self.bucket_single.astype(np.float64)
+        pairs = self.bucket_counts * (a * (a - 1) / 2 + a * b * weight + b * (b - 1) / 2 * weight * weight)
+        return float(pairs.sum()), float(pairs[a + b * weight <= max_bucket].sum())
 
 
 @dataclass
@@ -164,8 +173,10 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
     reps = max(shlosser_distinct(profile.multiplicities, share), float(profile.representatives))
     reps = min(reps, entities)
     growth = reps / max(profile.representatives, 1)
+    once = profile.seen_once  # the sets seen more often are all there at full size: the others grow
+    weight = max((reps - (profile.representatives - once)) / once, 1.0) if once else 1.0
     all_n, kept_n = profile.pair_rows(1.0, max_bucket)
-    all_full, kept_full = profile.pair_rows(growth, max_bucket)
+    all_full, kept_full = profile.pair_rows(weight, max_bucket)
     kept_ratio = kept_full / kept_n if kept_n > 0 else growth * growth
     rows_per_band = False
     if run is not None and run.candidate_pairs > 0:
@@ -188,6 +199,7 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
                  candidate_pairs=candidates, verified_pairs=verified, published_rows=published)
     facts = {"sample_entities": profile.entities, "sample_representatives": profile.representatives,
              "representatives": round(reps), "representative_growth": round(growth, 4),
+             "weight_of_sets_seen_once": round(weight, 4),
              "sample_pair_rows": round(all_n), "pair_rows": round(all_full), "pair_rows_kept": round(kept_full),
              "pairs_basis": basis, "max_bucket": max_bucket, "rows_per_band": rows_per_band,
              "sample_rows_per_band": bool(last and last.rows_per_band)}
