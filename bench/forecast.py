@@ -46,10 +46,13 @@ def _lshjob(*args: str, env: dict | None = None) -> dict:
     return json.loads(done.stdout)
 
 
+MEMORY: list[str] = []  # --memory given to the runs and the plan, when the bench is told one
+
+
 def _run(events: Path, out: Path, repeat: int = 1) -> dict:
     """The fastest of ``repeat`` runs (by total seconds): the machine is shared, spikes are others'."""
     runs = [_lshjob("run", str(events), "--entity", "entity", "--element", "element", "--threshold",
-                    str(THRESHOLD), "--out", str(out)) for _ in range(repeat)]
+                    str(THRESHOLD), "--out", str(out), *MEMORY) for _ in range(repeat)]
     return min(runs, key=lambda m: m["seconds"]["total"])
 
 
@@ -81,8 +84,11 @@ def main() -> None:
     ap.add_argument("--repeat", type=int, default=1, help="runs of each measurement; the fastest is kept")
     ap.add_argument("--calibrate", action="store_true", help="run lshjob calibrate first (the runners-up's costs)")
     ap.add_argument("--small", type=float, default=0.25, help="the smaller run's share of the sample (nested)")
+    ap.add_argument("--memory", help="memory budget of the runs and the forecast, e.g. 14GB (default: the run's)")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
+    if args.memory:
+        MEMORY.extend(["--memory", args.memory])
     rows, details = [], []
     with tempfile.TemporaryDirectory(prefix="lshjob-forecast-") as tmp:
         tmp = Path(tmp)
@@ -105,7 +111,7 @@ def main() -> None:
             events = pl.scan_parquet(_files(full)).select(pl.len()).collect().item()
             plan = _lshjob("plan", "--threshold", str(THRESHOLD), "--sample", str(sample), "--entity", "entity",
                            "--element", "element", "--entities", str(entities), "--events", str(events),
-                           *[a for h in histories for a in ("--history", str(h))], env=env)
+                           *[a for h in histories for a in ("--history", str(h))], *MEMORY, env=env)
             fc = plan["forecast"]
             try:
                 measured = _run(full, tmp / f"{shape}-full", args.repeat)
@@ -150,7 +156,7 @@ def main() -> None:
     report = "\n".join([
         f"machine: {machine()} (shared with other jobs while it ran: timings noisy)",
         f"command: python bench/forecast.py --runs {' '.join(args.runs)} --repeat {args.repeat}"
-        + (" --calibrate" if args.calibrate else ""),
+        + (" --calibrate" if args.calibrate else "") + (f" --memory {args.memory}" if args.memory else ""),
         f"sample: {args.share:.0%} of the entities, uniform, and {args.small:.0%} of it; threshold {THRESHOLD}; "
         "warm runs (kernels cached)",
         "",

@@ -43,7 +43,9 @@ ROWS_PER_BAND_JOIN = 1.7 / 28
 MAX_FIXED_SHARE = 0.5  # a stage's fixed seconds: at most this share of the largest sample run's
 
 
-PLANNER_ROW_WEIGHT = 0.25  # the plan stage: a set's row read into the index against a posting visited
+# the plan stage: a set's row passed over while indexing the sampled entities' elements, against a
+# posting visited (a rough weight: the pass is a compiled scan; the visits are what grows)
+PLANNER_ROW_WEIGHT = 0.02
 
 
 def _driver_sign(w: Workload, visits) -> float:
