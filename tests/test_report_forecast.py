@@ -20,6 +20,7 @@ from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.refresh import RefreshOptions, history, refresh_job
 from lshjob.jobs.report import CURVE_FACTORS
 from lshjob.jobs.run import RunOptions, run_job
+from lshjob.plan.scaling import shlosser_distinct
 
 runner = CliRunner()
 
@@ -96,8 +97,13 @@ def test_plan_report_page_holds_the_forecast_and_runners_up(tmp_path):
     m = read_manifest(tmp_path / "idx")
     assert fc["pair_corrections"]["candidate_pairs"] == pytest.approx(
         m.counts["candidate_pairs"] / m.plan["predicted"]["expected_candidates"])
-    # and the share of entities left as representatives once identical sets collapse
-    assert fc["counts"]["representatives"] == round(3000 * m.counts["representatives"] / m.counts["entities"])
+    # The history run is of the sample (300 of 3,000 entities): the forecast is scaled from it,
+    # its distinct sets at 3,000 by Shlosser's estimator over how often each distinct set occurs
+    # in the sample (the sets grouped here with polars, apart from lshjob's collapse).
+    assert fc["method"] == "scaled from 1 run(s) of the sample"
+    sets = events.group_by("patron").agg(pl.col("title").unique().sort())
+    occurs = sets.group_by("title").len()["len"].to_numpy()
+    assert fc["counts"]["representatives"] == round(shlosser_distinct(occurs, 300 / 3000))
     assert f"{fc['seconds']['total']:.2f}" in text
     rows = re.search(r'<table id="runners-table">(.*?)</table>', text, flags=re.S).group(1)
     assert len(re.findall("<tr>", rows)) == 1 + 1 + len(fc["runners_up"])
