@@ -180,6 +180,10 @@ def run(
     Example (band, join and verify on Spark): lshjob run loans/ --entity patron --element title
     --threshold 0.5 --out /shared/index --scratch /shared/tmp --engine spark
     --spark-master spark://master.example:7077
+
+    Example (the plan of least predicted seconds, as lshjob plan --plan-by cost chooses it):
+    lshjob calibrate; lshjob run loans/ --entity patron --element title --threshold 0.5
+    --plan-by cost --out index
     """
     settings = merge_settings(run_defaults(), load_run_config(config) if config else {}, flags)
     missing = [name for name in required_options() if settings.get(name) is None]
