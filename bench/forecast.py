@@ -151,7 +151,8 @@ def main() -> None:
             print(details[-1], flush=True)
             keep = CACHE_OUT / f"{shape}-{entities}"
             keep.mkdir(parents=True, exist_ok=True)
-            for name, record in (("sample", small), ("plan", plan), ("full", measured)):
+            smaller_run = json.loads(histories[0].read_text())
+            for name, record in (("smaller", smaller_run), ("sample", small), ("plan", plan), ("full", measured)):
                 (keep / f"{name}.json").write_text(json.dumps(record, indent=1, default=str))
     report = "\n".join([
         f"machine: {machine()} (shared with other jobs while it ran: timings noisy)",

@@ -18,7 +18,7 @@ from lshjob.plan import banding as planner
 from lshjob.plan import similarity
 from lshjob.plan.choose import Plan, choose_plan
 from lshjob.plan.cost import CostModel, Workload, count_factors, load_model
-from lshjob.plan.forecast import SLICE_ROW_BYTES, forecast, forecast_curve
+from lshjob.plan.forecast import forecast, forecast_curve
 from lshjob.plan.scaling import (
     ROWS_PER_BAND_JOIN,
     Projection,
@@ -27,7 +27,7 @@ from lshjob.plan.scaling import (
     scale_memory,
     scale_seconds,
 )
-from lshjob.runtime.budget import Budget, default_memory
+from lshjob.runtime.budget import default_memory
 from lshjob.sign.signatures import params_from_metadata, read_signatures
 
 
@@ -176,10 +176,8 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
         join_factor = ROWS_PER_BAND_JOIN if facts["rows_per_band"] and not facts["sample_rows_per_band"] else 1.0
         seconds, fixed = scale_seconds(model, [(r.workload, r.seconds) for r in samples], load, scaled_from.visits,
                                        join_factor)
-        budget = Budget(memory or default_memory())
-        by_stage = scale_memory(model, [(r.workload, r.peaks) for r in samples], load,
-                                budget.sign_slice_rows(load.bands * max(load.perms // max(load.bands, 1), 1),
-                                                       load.bands, SLICE_ROW_BYTES))
+        by_stage = scale_memory(model, [(r.workload, r.peaks, r.memory) for r in samples], load,
+                                memory or default_memory())
     out = forecast(model, load, memory, parts, shape.get("dense_keys", True), seconds, by_stage)
     out["available"] = True
     out["method"] = "cost model"

@@ -35,7 +35,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from lshjob.plan.cost import STAGES, CostModel, Workload
+from lshjob.plan.forecast import SLICE_ROW_BYTES
 from lshjob.plan.similarity import AGAINST_ALL_BUDGET
+from lshjob.runtime.budget import Budget, default_memory
 
 # the join writing a row per band a pair met in against grouping its pairs first, seconds a pair:
 # 1.7 s CPU against 28 s for the same 97M pair rows (docs/performance.md, long-tailed data at 300k)
@@ -70,9 +72,20 @@ DRIVERS = {
 }
 
 
+def _positions(w: Workload) -> int:
+    """Signature positions banded (b x r; r about k / b)."""
+    return w.bands * max(w.perms // max(w.bands, 1), 1)
+
+
+def slice_rows_of(w: Workload, memory: float) -> float:
+    """Representatives a run of ``w`` under a ``memory`` budget signs and bands at a time
+    (:meth:`lshjob.runtime.budget.Budget.sign_slice_rows`)."""
+    return float(Budget(int(memory)).sign_slice_rows(_positions(w), w.bands, SLICE_ROW_BYTES))
+
+
 def _signed(w: Workload, slice_rows: float | None) -> float:
     """Signature positions held at a time: a slice of representatives, b x r positions each."""
-    return min(w.representatives, slice_rows or w.representatives) * w.bands * max(w.perms // max(w.bands, 1), 1)
+    return min(w.representatives, slice_rows or w.representatives) * _positions(w)
 
 
 # what each stage's peak resident memory grows with, in 8-byte words: the sets it holds, and
@@ -259,16 +272,19 @@ def scale_seconds(model: CostModel, runs: list[tuple[Workload, dict]], target: W
     return out, fixed_of
 
 
-def scale_memory(model: CostModel, runs: list[tuple[Workload, dict]], target: Workload,
-                 slice_rows: float | None = None) -> dict:
+def scale_memory(model: CostModel, runs: list[tuple[Workload, dict, float]], target: Workload,
+                 memory: float) -> dict:
     """Peak resident memory per stage at ``target`` from ``runs`` of the sample (each its counts
     and its manifest's ``peak_memory_bytes``), smallest first: the line through the runs
     against :data:`MEMORY_DRIVERS` (the process's own memory the intercept, at most the
     smallest run's peak); with one run, the cost model's constant as the intercept.
-    ``slice_rows``: the representatives signed and banded at a time at ``target``."""
+    Each run with its memory budget, ``memory`` the target's: they bound the representatives
+    signed and banded at a time."""
+    slice_rows = slice_rows_of(target, memory)
     out = {}
     for stage in STAGES:
-        measured = [(MEMORY_DRIVERS[stage](w, None), float(m[stage])) for w, m in runs if m.get(stage)]
+        measured = [(MEMORY_DRIVERS[stage](w, slice_rows_of(w, b)), float(m[stage])) for w, m, b in runs
+                    if m.get(stage)]
         if not measured:
             out[stage] = model.stage_memory(target)[stage]
             continue
@@ -286,13 +302,15 @@ def scale_memory(model: CostModel, runs: list[tuple[Workload, dict]], target: Wo
 @dataclass(frozen=True)
 class SampleRun:
     """A run of a sample: its counts, and from its manifest ``seconds``, ``peaks``
-    (peak_memory_bytes), ``cpu`` (cpu_seconds; empty when not recorded) and the join's ``skew``."""
+    (peak_memory_bytes), ``cpu`` (cpu_seconds; empty when not recorded), the join's ``skew``
+    and the run's ``memory`` budget."""
 
     workload: Workload
     seconds: dict
     peaks: dict
     cpu: dict
     skew: dict | None
+    memory: float  # its memory budget
 
     @property
     def rows_per_band(self) -> bool:
@@ -323,7 +341,7 @@ def sample_runs(manifests: list[tuple[str, dict]], entities: float) -> list[Samp
         if (m.get("plan") or {}).get("bands") and 0 < counts.get("entities", 0) < entities and m.get("seconds"):
             found.append(SampleRun(Workload.from_manifest(m), dict(m["seconds"]),
                                    dict(m.get("peak_memory_bytes") or {}), dict(m.get("cpu_seconds") or {}),
-                                   m.get("skew")))
+                                   m.get("skew"), float(m.get("memory_budget_bytes") or default_memory())))
     found.sort(key=lambda r: r.workload.entities)
     return found
 
