@@ -17,14 +17,19 @@ made by :mod:`lshjob.jobs.sample_profile`):
   once-seen members so holds C(a,2) + a b / p + C(b,2) / p^2 pairs and a + b / p members at
   full size; when that passes the join's ``max_bucket`` its pairs are not written (the
   join's oversize rule: they are counted apart and skipped);
-* verified pairs and published rows in proportion to the pairs kept.
+* whether the join writes a row per band a pair met in or one row a pair (its rule on the
+  pair rows, as the sample's run repeated its pairs);
+* verified pairs in proportion to the pairs kept; published rows an entity grown as they
+  grew between the two largest runs, at most top-k.
 
 Seconds (:func:`scale_seconds`): each stage's measured seconds are ``fixed + rate x driver``
 (:data:`DRIVERS`: the count the stage's work grows with); with runs of the sample at two
 sizes or more, ``fixed`` is the intercept of the line through them, kept between 0 and half
 the larger run's seconds (process start, imports and compiled-kernel loads are not scaled);
 with one run, the cost model's constant, at most half the run's seconds. The rate is the
-largest run's own: a run measured now, on this machine, under its present load.
+largest run's own: a run measured now, on this machine, under its present load. CPU seconds
+(a manifest's ``cpu_seconds``) scale the same way. Peak memory (:func:`scale_memory`): the
+line through the runs against :data:`MEMORY_DRIVERS`, the process's own memory its intercept.
 """
 
 from __future__ import annotations
