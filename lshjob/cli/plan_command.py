@@ -66,7 +66,8 @@ def plan(
     memory: Annotated[str | None, typer.Option(
         help="Memory budget of the run, e.g. 8GB: whether it goes in parts.  [default: half the machine]")] = None,
     history: Annotated[list[str] | None, typer.Option(
-        help="Index folder, manifest.json or refresh store of a real run: refines the forecast (repeatable).")] = None,
+        help="Index folder, manifest.json or refresh store of a real run: refines the forecast; runs of fewer "
+             "entities than --entities (of --sample, best two sizes) are scaled to it instead (repeatable).")] = None,
     report: Annotated[Path | None, typer.Option(
         help="Write an HTML page of the plan and its forecast (S-curve, per stage, curves against N).")] = None,
     quiet: Quiet = False,
@@ -83,6 +84,10 @@ def plan(
     Example (plan by predicted seconds, refined by a real run): lshjob plan --threshold 0.5
     --sample demo_data/loans.parquet --entity patron --element title --plan-by cost --scheme oph
     --history demo-run/index --report plan.html
+
+    Example (scaled from runs of a 10% sample and a quarter of it): lshjob plan --threshold 0.5
+    --sample sample.parquet --entity patron --element title --entities 10000000 --events 400000000
+    --history smaller-index --history sample-index
 
     Example (judge a given plan): lshjob plan --threshold 0.5 --perms 128 --bands 20 --rows 5
     """
