@@ -198,10 +198,14 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
         for r in plan.runners_up if "expected_candidates" in r]
     bound = max_candidates if max_candidates is not None else default_of("max_candidates")
     expected = plan.predicted.get("expected_candidates", 0)
-    out["warnings"] = ([f"the plan predicts {expected:.3g} candidate pairs at {int(load.entities)} entities, more "
-                        f"than --max-candidates {bound:.3g}: lshjob run would refuse it; raise the threshold or "
-                        f"--max-candidates"] if plan.predicted.get("expected_written_pairs", expected) > bound
-                       else [])
+    written = plan.predicted.get("expected_written_pairs")
+    if written is None:  # as the run counts them: the pairs outside crowds, which the join writes
+        crowded = planner.crowd_split(plan.histogram, plan.bands, plan.rows, JoinSettings.crowd_size)
+        written = expected if crowded is None else expected * (1.0 - crowded)
+    out["warnings"] = ([f"the plan predicts {expected:.3g} candidate pairs at {int(load.entities)} entities "
+                        f"({written:.3g} outside crowds, written by the join), more than --max-candidates "
+                        f"{bound:.3g}: lshjob run would refuse it; raise the threshold or --max-candidates"]
+                       if written > bound else [])
     if curve:  # the plan's page: the same shape at a tenth to a hundred times the size
         out["curve"] = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], memory, top_k)
     return out
