@@ -1,11 +1,12 @@
 """``lshjob run --engine spark``: the whole run on Spark, publishing the local engine's rows.
 
 Spark reads the events (``spark.read.parquet``: any path or URI Spark reads), groups them
-by entity, signs, bands, joins, verifies and ranks the top k in its executors
-(:mod:`lshjob.index.spark.events`, :mod:`lshjob.index.spark.ranking`); the driver holds
-counts, the plan and a planning sample of sets (every set when there are no more than
-``--sample-size`` entities: then the plan is the local run's in one part; else a uniform
-sample by a hash of the key, as a run in parts plans on a sample).
+by entity, signs, bands, joins, verifies and ranks the top k in its executors (the steps of
+:mod:`lshjob.index.spark.pipeline`, loaded through :func:`lshjob.index.engines.get_pipeline`
+so that only a Spark run imports pyspark); the driver holds counts, the plan and a planning
+sample of sets: every set when there are no more than ``--sample-size`` entities (then the
+plan is the local run's in one part), else a uniform sample by a hash of the key (as a run
+in parts plans on a sample).
 
 The final write goes through the driver, a Spark output file at a time: Spark writes the
 ranked rows, sorted, as Parquet parts in the work folder, and the driver streams them in
@@ -33,10 +34,6 @@ from lshjob.contracts.tables import NEIGHBOURS
 from lshjob.core.sets import ElementSets
 from lshjob.index import engines as stage_engines
 from lshjob.index import publish
-from lshjob.index.spark import events as spark_events
-from lshjob.index.spark import ranking
-from lshjob.index.spark.join import candidate_pairs
-from lshjob.index.spark.session import quiet_pandas_warning, session
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.prepare import plan_run
 from lshjob.runtime import provenance, stopping
@@ -61,8 +58,6 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
                  progress: StageProgress = QUIET, command: list[str] | None = None) -> dict:
     """The run of :func:`lshjob.jobs.run.run_job` on Spark (module docstring); ``stages``
     times each stage (:class:`lshjob.jobs.run._Stages`)."""
-    from pyspark import StorageLevel
-
     source = str(events)
     is_local = "://" not in source or source.startswith("file://")
     out = output_folder(local_path(out), [local_path(source)] if is_local else [], "run")
@@ -72,66 +67,51 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
     work = work_folder(out, options.scratch)
     started, started_at = time.perf_counter(), provenance.utc_now()
     run_id = provenance.new_run_id(started_at)
-    held = []
+    steps = stage_engines.get_pipeline(options.engine)
     try:
         warnings = lock.notes + remove_leftovers(out, options.scratch)
-        quiet_pandas_warning()
-        spark = session()
+        steps.prepare()  # a missing Java or a silent cluster stops the run here
         work.mkdir(parents=True)
         read_from = str(Path(source).absolute()) if "://" not in source else source
         with stages("ingest"):
-            frame, facts = spark_events.read_events(spark, read_from, spec)
-            sets = spark_events.element_sets(frame, spec, facts)
-            held.append(sets)
+            sets, facts = steps.read(read_from, spec)
         with stages("collapse"):
-            members = ranking.collapsed(ranking.numbered(sets)).persist(StorageLevel.MEMORY_AND_DISK)
-            held.append(members)
-            reps = ranking.representatives(members)
-            n_reps = reps.count()
+            members, reps, n_reps = steps.collapse(sets)
         if facts.empty_after_filter:
             warnings.append(f"{facts.empty_after_filter} entities had no element left after --min-count "
                             f"{spec.min_count:g}; they are not in the index")
         with stages("plan"):
-            sample, total = (planning_sets(sets, facts.entities, options.sample_size)
+            sample, total = (_planning_sets(steps, sets, facts.entities, options.sample_size)
                              if options.threshold < 1.0 and n_reps >= 2 else (None, facts.entities))
             plan = plan_run(sample, options, total_entities=total, distinct_sets=n_reps)
             del sample
         counts = dict(events=facts.rows_read, entities=facts.entities, membership_rows=facts.membership_rows,
                       empty_after_filter=facts.empty_after_filter, null_rows_dropped=facts.null_rows_dropped,
                       parts=1, representatives=n_reps, entities_in_identical_groups=facts.entities - n_reps)
-        skew = None
-        verified_at = work / "verified"
+        skew, verified = None, None
         if plan.banded:
             params = plan.signature_params()
-            counts.update(bucket_rows=n_reps * plan.bands)
-            with stages("join"):
-                rows = ranking.bucket_rows(reps, params, plan.bands, plan.rows)
-                with candidate_pairs(rows, plan.bands, options.max_bucket, n_reps * plan.bands) as (pairs, skew):
-                    pairs.write.parquet(_uri(work / "candidates"))
-            counts["shared_bucket_rows"] = None  # not counted apart: the join keeps them in Spark
+            counts["bucket_rows"] = n_reps * plan.bands
+            with stages("join"):  # signing and banding run in the join's first Spark stage
+                skew = steps.join(reps, params, plan.bands, plan.rows, options.max_bucket, _uri(work / "candidates"))
             if skew["skipped_pairs"]:
                 warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over --max-bucket "
                                 f"{options.max_bucket}, still over it once split) were not compared")
             with stages("verify"):
-                candidates = spark.read.parquet(_uri(work / "candidates"))
-                counts["candidate_pairs"] = candidates.count()
-                ranking.verified_pairs(candidates, reps, options.threshold, params).write.parquet(_uri(verified_at))
-                verified = spark.read.parquet(_uri(verified_at))
-                counts["verified_pairs"] = verified.count()
+                verified = _uri(work / "verified")
+                counts["candidate_pairs"], counts["verified_pairs"] = steps.verify(
+                    _uri(work / "candidates"), reps, options.threshold, params, verified)
         else:  # identical sets only: no bands; the groups are the index
             counts.update(bucket_rows=0, candidate_pairs=0, verified_pairs=0)
-            verified = spark.createDataFrame([], ranking.VERIFIED_DDL)
         top_k = publish.effective_top_k(options.top_k, facts.entities)
         if top_k < options.top_k and facts.entities > 1:
             warnings.append(f"--top-k {options.top_k} is more than the {facts.entities - 1} other entities; "
                             f"used {top_k}")
         with stages("publish"):
-            rows = ranking.with_keys(ranking.ranked(members, verified, top_k, plan.bands or 0), members)
-            rows.write.parquet(_uri(work / "neighbours"))
+            steps.publish(members, verified, top_k, plan.bands or 0, _uri(work / "neighbours"))
             meta = provenance.neighbours_metadata(run_id, options, spec, top_k)
-            key = pl.from_arrow(sets.select("entity").limit(0).toArrow()).schema["entity"]
-            facts_out = publish.stage_neighbours(out, _parts(work / "neighbours", key), meta)
-        counts["published_rows"] = facts_out["rows"]
+            written = publish.stage_neighbours(out, _parts(work / "neighbours", steps.key_dtype(sets)), meta)
+        counts["published_rows"] = written["rows"]
         if counts["published_rows"] == 0 and facts.entities > 1:
             warnings.append("no pair reached the threshold: the index is empty")
         manifest = Manifest(
@@ -142,8 +122,8 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
             spec=asdict(spec), options=asdict(options), top_k_effective=top_k, memory_budget_bytes=memory,
             plan=plan.to_dict(), engines=options.engine_names(), counts=counts, skew=skew,
             peak_memory_bytes=stages.peak,
-            versions={**provenance.versions(), **stage_engines.engine_versions(options.engine_names())},
-            output=facts_out, out=str(out.absolute()), warnings=warnings,
+            versions={**provenance.versions(), **steps.engine_versions()},
+            output=written, out=str(out.absolute()), warnings=warnings,
             seconds=dict(stages.seconds, total=round(time.perf_counter() - started, 3)),
             finished_at=provenance.iso(provenance.utc_now()),
         ).to_json()
@@ -152,24 +132,18 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
             stopping.mark_published()
         return manifest
     finally:
-        for frame in held:
-            frame.unpersist()
+        steps.release()
         shutil.rmtree(work, ignore_errors=True)
         publish.discard_staging(out)
         lock.release()
 
 
-def planning_sets(sets, entities: int, sample_size: int) -> tuple[ElementSets, int | None]:
+def _planning_sets(steps, sets, entities: int, sample_size: int) -> tuple[ElementSets, int | None]:
     """(sets, total_entities) for :func:`lshjob.jobs.prepare.plan_run`: every set when there
     are at most ``sample_size`` entities (total None: the local run's plan), else about
-    ``sample_size`` entities drawn by a hash of the key (a uniform sample, the same every run)."""
-    from pyspark.sql import functions as F  # noqa: N812
-
-    picked = sets
-    if entities > sample_size:
-        scale = 1 << 20
-        picked = sets.where(F.pmod(F.xxhash64("entity"), F.lit(scale)) < int(scale * sample_size / entities) + 1)
-    table = pl.from_arrow(picked.select("entity", "hashes").orderBy("entity").toArrow())
+    ``sample_size`` of them (:func:`lshjob.index.spark.events.planning_sample`). The codes
+    are the elements' hashes, which stand for them (exact Jaccard, as the run checked)."""
+    table = steps.planning_sample(sets, entities, sample_size)
     sizes = table["hashes"].list.len().to_numpy().astype(np.int64)
     offsets = np.zeros(len(sizes) + 1, dtype=np.int64)
     np.cumsum(sizes, out=offsets[1:])

@@ -19,6 +19,7 @@ from functools import partial
 
 from lshjob.errors import InputError
 from lshjob.index.spark import _events
+from lshjob.index.spark.session import quiet_pandas_warning
 from lshjob.ingest.spec import EventSpec
 
 EVENT_DDL = "entity {entity}, element {element}, hash long, weight double"
@@ -100,6 +101,7 @@ def element_sets(events, spec: EventSpec, facts: EventFacts):
     from pyspark import StorageLevel
     from pyspark.sql import functions as F  # noqa: N812
 
+    quiet_pandas_warning()
     types = dict(events.dtypes)
     ddl = EVENT_DDL.format(entity=types["entity"], element=types["element"])
     hashed = events.mapInArrow(partial(_events.hashed_events, spec.unicode == "nfc"), ddl)
@@ -142,3 +144,24 @@ def signature_frame(sets, params):
     types = dict(sets.dtypes)
     ddl = f"entity {types['entity']}, signature array<long>, set_size int"
     return sets.mapInArrow(partial(_events.signed_sets, params), ddl)
+
+
+def planning_sample(sets, entities: int, sample_size: int):
+    """The sets the driver plans on, as a polars table (``entity``, ``hashes``) sorted by
+    entity: every set when there are at most ``sample_size`` entities, else about
+    ``sample_size`` drawn by Spark's XXH64 of the key (uniform, and the same every run)."""
+    import polars as pl
+    from pyspark.sql import functions as F  # noqa: N812
+
+    picked = sets
+    if entities > sample_size:
+        scale = 1 << 20
+        picked = sets.where(F.pmod(F.xxhash64("entity"), F.lit(scale)) < int(scale * sample_size / entities) + 1)
+    return pl.from_arrow(picked.select("entity", "hashes").orderBy("entity").toArrow())
+
+
+def key_dtype(sets):
+    """The polars type of the entity keys of ``sets``."""
+    import polars as pl
+
+    return pl.from_arrow(sets.select("entity").limit(0).toArrow()).schema["entity"]

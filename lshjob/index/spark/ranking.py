@@ -33,6 +33,13 @@ VERIFIED_DDL = "left_rep long, right_rep long, jaccard double, estimate double, 
 BUCKET_ROW_DDL = "band int, bucket long, rep long"
 
 
+def held(frame):
+    """``frame`` kept by the executors (memory, then disk) once computed: used more than once."""
+    from pyspark import StorageLevel
+
+    return frame.persist(StorageLevel.MEMORY_AND_DISK)
+
+
 def numbered(sets):
     """``sets`` (``entity``, ``hashes``) with ``id``: rising with the key (module docstring)."""
     from pyspark.sql import functions as F  # noqa: N812
