@@ -5,6 +5,7 @@ for bit. Every test skips, saying why, without pyspark or Java (the ``spark_sess
 
 from __future__ import annotations
 
+import json
 import unicodedata
 
 import numpy as np
@@ -99,3 +100,28 @@ def test_a_run_on_spark_refuses_bad_input_with_one_line(mixed, spark_session, tm
     code, _, err = _run(mixed, "--entity", "patron", *given, "--out", tmp_path / "b")
     assert code == 2 and "column 'patron' has 1 null value(s)" in err and len(err.strip().splitlines()) == 1, err
     assert not (tmp_path / "a" / "neighbours.parquet").exists() and not (tmp_path / "b" / "neighbours.parquet").exists()
+
+
+def test_refresh_on_spark_publishes_the_local_refreshes_rows(spark_session, tmp_path):
+    # Oracle: lshjob refresh with the local engine, batch after batch into its own store: the
+    # same neighbours.parquet rows after each refresh (the first plans, the second keeps the plan).
+    from lshjob.demo.generate import generate_events
+
+    events, _ = generate_events(150, seed=3)
+    month = pl.col("borrowed_at").dt.month()
+    batches = [events.filter(month <= 4), events.filter(month > 4)]
+    base = ["--entity", "patron", "--element", "title", "--time", "borrowed_at", "--period", "month",
+            "--window", "3", "--threshold", "0.3", "--top-k", "5", "--quiet"]
+    for i, batch in enumerate(batches):
+        path = tmp_path / f"batch-{i}.parquet"
+        batch.select("patron", "title", "borrowed_at").write_parquet(path)
+        for engine in ("local", "spark"):
+            done = CliRunner().invoke(app, ["refresh", str(path), *base, "--store", str(tmp_path / f"store-{engine}"),
+                                            "--out", str(tmp_path / f"index-{engine}"), "--engine", engine])
+            assert done.exit_code == 0, done.stderr
+        expected = pl.read_parquet(tmp_path / "index-local" / "neighbours.parquet")
+        got = pl.read_parquet(tmp_path / "index-spark" / "neighbours.parquet")
+        assert expected.height > 50
+        assert got.equals(expected), i
+    manifest = json.loads((tmp_path / "index-spark" / "manifest.json").read_text())
+    assert manifest["refresh"]["path"] == "full_run" and manifest["engines"]["join"] == "spark"

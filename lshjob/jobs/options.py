@@ -252,3 +252,15 @@ def run_settings(settings: dict) -> tuple[str, str, EventSpec, RunOptions]:
     spec = EventSpec(**{o.name: settings[o.name] for o in RUN_TABLE if o.part == SPEC})
     options = RunOptions(**{o.name: settings[o.name] for o in RUN_TABLE if o.part == OPTIONS})
     return settings["events"], settings["out"], spec, options
+
+
+@dataclass(frozen=True, kw_only=True)
+class EngineChoice:
+    """Where a command that hands its work to a run runs it (``--engine``, ``--spark-master``;
+    ``lshjob refresh``): keyword-only fields, after the command's own."""
+
+    engine: str = default_of("engine")
+    spark_master: str | None = default_of("spark_master")
+
+    def engine_options(self) -> dict:
+        return {"engine": self.engine, "spark_master": self.spark_master}
