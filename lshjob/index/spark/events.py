@@ -110,17 +110,19 @@ def element_sets(events, spec: EventSpec, facts: EventFacts):
     try:
         check_distinct_hashes(summed, facts.where)
         kept = summed.where(F.col("weight") >= spec.min_count)
-        counts = summed.agg(F.countDistinct("entity").alias("before"),
-                            F.count(F.when(F.col("weight") >= spec.min_count, 1)).alias("rows"),
-                            F.countDistinct(F.when(F.col("weight") >= spec.min_count, F.col("entity")))
-                            .alias("after")).collect()[0]
-        facts.membership_rows, facts.entities = int(counts["rows"]), int(counts["after"])
-        facts.empty_after_filter = int(counts["before"]) - facts.entities
+        sets = (kept.groupBy("entity").agg(F.sort_array(F.collect_list("hash")).alias("hashes"))
+                .persist(StorageLevel.MEMORY_AND_DISK))
+        counts = sets.agg(F.count("*").alias("entities"), F.sum(F.size("hashes")).alias("rows")).collect()[0]
+        facts.entities, facts.membership_rows = int(counts["entities"]), int(counts["rows"] or 0)
+        # an event weighs 1 without --count: --min-count 1 or less leaves every entity something
+        filtered = spec.count is not None or spec.min_count > 1
+        before = summed.select("entity").distinct().count() if filtered else facts.entities
+        facts.empty_after_filter = before - facts.entities
         if facts.membership_rows == 0:
+            sets.unpersist()
             raise InputError(f"{facts.where}: no element is left after filtering (--min-count {spec.min_count}); "
                              "nothing to sign")
-        sets = kept.groupBy("entity").agg(F.sort_array(F.collect_list("hash")).alias("hashes"))
-        return sets.persist(StorageLevel.MEMORY_AND_DISK)
+        return sets
     finally:
         summed.unpersist()
 

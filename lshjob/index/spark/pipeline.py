@@ -36,7 +36,8 @@ class SparkPipeline(SparkStage):
 
     def collapse(self, sets):
         """(members, reps, representatives): ids, groups of identical sets (:mod:`ranking`)."""
-        members = self._hold(ranking.collapsed(ranking.numbered(sets)))
+        numbered = self._hold(ranking.numbered(sets))  # its ids computed once: both sides of the collapse read them
+        members = self._hold(ranking.collapsed(numbered))
         reps = ranking.representatives(members)
         return members, reps, reps.count()
 

@@ -48,11 +48,12 @@ def numbered(sets):
 
 
 def collapsed(numbered_sets):
-    """Each entity's ``id``, ``entity``, ``rep`` (its group's smallest id) and ``hashes``."""
-    from pyspark.sql import Window
+    """Each entity's ``id``, ``entity``, ``hashes`` and ``rep`` (its group's smallest id):
+    the sets grouped by their sorted hash lists (a hash aggregate), each group's ids listed."""
     from pyspark.sql import functions as F  # noqa: N812
 
-    return numbered_sets.withColumn("rep", F.min("id").over(Window.partitionBy("hashes")))
+    groups = numbered_sets.groupBy("hashes").agg(F.min("id").alias("rep"), F.collect_list("id").alias("ids"))
+    return numbered_sets.join(groups.select(F.explode("ids").alias("id"), "rep"), "id")
 
 
 def representatives(members):
