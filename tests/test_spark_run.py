@@ -125,3 +125,19 @@ def test_refresh_on_spark_publishes_the_local_refreshes_rows(spark_session, tmp_
         assert got.equals(expected), i
     manifest = json.loads((tmp_path / "index-spark" / "manifest.json").read_text())
     assert manifest["refresh"]["path"] == "full_run" and manifest["engines"]["join"] == "spark"
+
+
+def test_identical_sets_only_on_spark_publish_the_local_rows(mixed, spark_session, tmp_path):
+    # Oracle: the local engine's rows for --threshold 1 (no bands: the groups of identical sets
+    # are the index), and brute force: every published pair's sets are equal (Python sets).
+    options = ["--entity", "patron", "--element", "title", "--on-null", "drop", "--threshold", "1", "--top-k", "4"]
+    code, _, err = _run(mixed, *options, "--out", tmp_path / "local", "--quiet")
+    assert code == 0, err
+    code, _, err = _run(mixed, *options, "--out", tmp_path / "spark", "--engine", "spark", "--quiet")
+    assert code == 0, err
+    expected = pl.read_parquet(tmp_path / "local" / "neighbours.parquet")
+    got = pl.read_parquet(tmp_path / "spark" / "neighbours.parquet")
+    assert got.equals(expected) and expected.height >= 12 * 4 + 8 * 4
+    events = _mixed_events().drop_nulls()
+    sets = {p: {unicodedata.normalize("NFC", t) for t in g["title"]} for (p,), g in events.group_by("patron")}
+    assert all(sets[a] == sets[b] for a, b in got.select("entity", "neighbour").iter_rows())
