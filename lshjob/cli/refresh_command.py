@@ -24,6 +24,7 @@ REFRESH_KEYS = {
     "threshold": (int, float), "out": str, "top_k": int, "keep": int, "recall": float, "seed": int,
     "scheme": str, "sample_size": int, "max_bucket": int, "max_candidates": (int, float),
     "memory": (str, int), "wait": (int, float), "on_null": str, "unicode": str, "full": bool,
+    "engine": str, "spark_master": str,
 }
 # Defaults from where they are declared: RefreshOptions (itself on the run's option table) and
 # the spec's fields of that table; nothing repeated here.
@@ -110,6 +111,14 @@ def refresh(
     full: Annotated[bool, typer.Option(
         "--full", help="Run the whole job over the window instead of updating the last index's state.",
     )] = False,
+    engine: Annotated[str | None, typer.Option(
+        help="Where the window's index is built: local, or spark (the whole run over the window on Spark).  "
+             "[default: local]",
+    )] = None,
+    spark_master: Annotated[str | None, typer.Option(
+        help="Spark master URL for --engine spark, e.g. spark://host:7077, yarn, local[4].  "
+             "[default: spark-submit's master, else local[*]]",
+    )] = None,
     config: Annotated[Path | None, typer.Option(help="TOML file with any of these options; flags override it.")] = None,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars or summary text.")] = False,
     as_json: Annotated[bool, typer.Option("--json", help="Print the manifest as JSON on stdout.")] = False,
@@ -125,10 +134,14 @@ def refresh(
 
     Example (check against the whole job): lshjob refresh loans.parquet --store loans-store ...
     --full
+
+    Example (the window's index on a cluster): lshjob refresh loans.parquet --store loans-store ...
+    --engine spark --spark-master spark://head:7077
     """
     flags = dict(events=events, store=store, entity=entity, element=element, time=time, period=period,
                  window=window, threshold=threshold, out=out, top_k=top_k, keep=keep, recall=recall, seed=seed,
-                 scheme=scheme, memory=memory, wait=wait, on_null=on_null, full=full or None)
+                 scheme=scheme, memory=memory, wait=wait, on_null=on_null, full=full or None,
+                 engine=engine, spark_master=spark_master)
     settings = merge_settings(REFRESH_DEFAULTS,
                               load_run_config(config, REFRESH_KEYS, ("events", "store", "out")) if config else {},
                               flags)

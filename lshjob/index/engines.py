@@ -23,6 +23,10 @@ _ENGINES: dict[str, dict[str, str]] = {
     "verify": {"local": "lshjob.index.verify.local:LocalVerify", "spark": "lshjob.index.spark.verify:SparkVerify"},
 }
 
+# Engines that run a whole run, reading and signing the events too (``--engine spark``):
+# name -> "module:Class" of the run's steps (:mod:`lshjob.jobs.run_spark`)
+PIPELINES = {"spark": "lshjob.index.spark.pipeline:SparkPipeline"}
+
 # Settings an engine reads when it starts (``spark_master``: where the Spark engines run);
 # set by :func:`configure` from the run's options.
 SETTINGS: dict[str, object] = {}
@@ -68,6 +72,21 @@ def get_engine(stage: str, name: str):
         if exc.name is None or exc.name.split(".")[0] == "lshjob":
             raise
         raise ParameterError(f"the {name} {stage} engine needs {exc.name}, which is not installed "
+                             f"(pip install 'lshjob[{name}]')") from exc
+    return getattr(loaded, attribute)()
+
+
+def get_pipeline(name: str):
+    """The steps of a whole run on engine ``name`` (its module imported now)."""
+    if name not in PIPELINES:
+        raise ParameterError(f"--engine must be one of: {', '.join(sorted(PIPELINES))}; got {name!r}")
+    module, _, attribute = PIPELINES[name].partition(":")
+    try:
+        loaded = import_module(module)
+    except ModuleNotFoundError as exc:  # the engine's library (pyarrow, pyspark) is not installed
+        if exc.name is None or exc.name.split(".")[0] == "lshjob":
+            raise
+        raise ParameterError(f"--engine {name} needs {exc.name}, which is not installed "
                              f"(pip install 'lshjob[{name}]')") from exc
     return getattr(loaded, attribute)()
 

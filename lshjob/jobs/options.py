@@ -163,7 +163,8 @@ RUN_TABLE: tuple[Option, ...] = (  # in the order of lshjob run --help
            low=0, unit="seconds"),
     Option("scratch", str, None, "Folder for the work files (DuckDB spill, parts), e.g. on another disk.",
            default_text="inside --out"),
-    Option("engine", str, "local", "Where band, join and verify run: local (this process) or spark.",
+    Option("engine", str, "local", "Where the run runs: local (this process) or spark (events read, signed and "
+           "indexed on Spark).",
            choices=ENGINE_CHOICES),
     Option("spark_master", str, None, "Spark master URL for --engine spark, e.g. spark://host:7077, yarn, "
            "local[4].", default_text="spark-submit's master, else local[*]"),
@@ -210,7 +211,7 @@ class RunOptions:
     parts: int | None = default_of("parts")  # key ranges held one at a time; None: as the memory budget needs
     wait: float = default_of("wait")  # seconds to wait for another run's lock on the output folder
     scratch: str | None = default_of("scratch")  # folder for the work folder (spill, parts); None: inside the output
-    engine: str = default_of("engine")  # "spark": band, join and verify on Spark (overrides ``engines``)
+    engine: str = default_of("engine")  # "spark": the whole run on Spark (lshjob.jobs.run_spark)
     spark_master: str | None = default_of("spark_master")  # None: spark-submit's master, else local[*]
     # engine of each of the band, join and verify stages, by name (lshjob.index.engines), one
     # by one from the Python API; ``engine`` chooses one name for all three
@@ -255,3 +256,15 @@ def run_settings(settings: dict) -> tuple[str, str, EventSpec, RunOptions]:
     spec = EventSpec(**{o.name: settings[o.name] for o in RUN_TABLE if o.part == SPEC})
     options = RunOptions(**{o.name: settings[o.name] for o in RUN_TABLE if o.part == OPTIONS})
     return settings["events"], settings["out"], spec, options
+
+
+@dataclass(frozen=True, kw_only=True)
+class EngineChoice:
+    """Where a command that hands its work to a run runs it (``--engine``, ``--spark-master``;
+    ``lshjob refresh``): keyword-only fields, after the command's own."""
+
+    engine: str = default_of("engine")
+    spark_master: str | None = default_of("spark_master")
+
+    def engine_options(self) -> dict:
+        return {"engine": self.engine, "spark_master": self.spark_master}

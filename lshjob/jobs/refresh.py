@@ -54,7 +54,7 @@ from lshjob.jobs import refresh_fold as folding
 from lshjob.jobs import refresh_index as index_state
 from lshjob.jobs import refresh_paths as paths
 from lshjob.jobs import refresh_store as stored
-from lshjob.jobs.options import default_of
+from lshjob.jobs.options import EngineChoice, default_of
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.runtime import provenance, stopping
 from lshjob.runtime.folder_lock import output_lock
@@ -77,7 +77,7 @@ WHOLE_WINDOW_SHARE = 0.5
 
 
 @dataclass(frozen=True)
-class RefreshOptions:
+class RefreshOptions(EngineChoice):  # engine: local, or spark (README, "Refresh on Spark")
     window: int
     threshold: float
     top_k: int = default_of("top_k")  # the run's defaults, declared once (lshjob.jobs.options)
@@ -107,7 +107,7 @@ class RefreshOptions:
                           perms=plan["perms"] if banded else None, bands=plan["bands"] if banded else None,
                           rows=plan["rows"] if banded else None, seed=seed, scheme=scheme,
                           sample_size=self.sample_size, max_bucket=self.max_bucket,
-                          max_candidates=self.max_candidates, memory=self.memory)
+                          max_candidates=self.max_candidates, memory=self.memory, **self.engine_options())
 
 
 def refresh_job(events: str | Path, store: str | Path, spec: EventSpec, options: RefreshOptions, out: str | Path,
@@ -297,7 +297,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
     touched entities when the state was made under the kept plan and the plan still meets
     the recall target on a new sample of the window, else built for the whole window; None
     when the full run must make it (--full, a plan without bands, a bucket over --max-bucket)."""
-    if options.full or (plan is not None and plan.get("bands") is None):
+    if options.full or options.engine != "local" or (plan is not None and plan.get("bands") is None):
         return None
     clock = paths.Clock()
     record = json.loads(state.facts[INDEX_STATE]) if INDEX_STATE in state.facts else None

@@ -117,6 +117,10 @@ def run_job(
     stage_engines.configure(spark_master=options.spark_master)
     if spec.segment is not None or spec.period is not None:
         raise ParameterError("lshjob run signs one set per entity; sign segments or periods with lshjob sign")
+    if options.engine == "spark":  # the whole run on Spark, reading the events there too
+        from lshjob.jobs.run_spark import run_on_spark
+
+        return run_on_spark(events, spec, options, out, _Stages(progress), progress, command)
     out = output_folder(out, [events], "run")  # before anything is read or made
     scratch_folder(options.scratch)
     memory = parse_size(options.memory) if options.memory else default_memory()

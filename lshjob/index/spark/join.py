@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import os
 import shutil
+from contextlib import contextmanager
 from pathlib import Path
 
 from lshjob.core.atomic import staged_folder, temp_name
@@ -31,49 +32,58 @@ class SparkJoin(SparkStage):
 
     def candidates(self, bucket_files, bands: int, out: Path, settings: JoinSettings,
                    bucket_rows: int | None = None, ranges=None) -> JoinOutput:
-        from pyspark import StorageLevel
-        from pyspark.sql import Window
-        from pyspark.sql import functions as F
-
         quiet_pandas_warning()
         spark = session()
         out = Path(out)
         files = [str(Path(f).absolute()) for f in bucket_files]
-        cap = settings.max_bucket
         if files:
             paths = file_frame(spark, files)
             rows = paths.mapInArrow(_batches.bucket_rows_of_files, BUCKET_ROW_DDL)
         else:
             rows = spark.createDataFrame([], BUCKET_ROW_DDL)
-        sized = (rows.withColumn("size", F.count("*").over(Window.partitionBy("band", "bucket")))
-                 .where(F.col("size") >= 2).persist(StorageLevel.MEMORY_AND_DISK))
-        try:
-            oversize = sized.where(F.col("size") > cap).select("band", "bucket", "rep")
-            nxt = sized.select(F.col("rep").alias("next_rep"), F.col("band").alias("next_band"),
-                               F.col("bucket").alias("sub"))
-            split = (oversize.join(nxt, (nxt.next_rep == oversize.rep) & (nxt.next_band == (oversize.band + 1) % bands))
-                     .select("band", "bucket", "sub", "rep")
-                     .withColumn("size", F.count("*").over(Window.partitionBy("band", "bucket", "sub")))
-                     .persist(StorageLevel.MEMORY_AND_DISK))
-            try:
-                total = bucket_rows if bucket_rows is not None else _file_rows(files)
-                skew = _skew(sized, split, cap, total)
-                zero = F.lit(0).cast("long").alias("sub")
-                whole = sized.where(F.col("size") <= cap).select("band", "bucket", zero, "rep")
-                parted = split.where(F.col("size").between(2, cap)).select("band", "bucket", "sub", "rep")
-                usable = whole.unionByName(parted)
-                a, b = usable.alias("a"), usable.alias("b")
-                pairs = (a.join(b, (F.col("a.band") == F.col("b.band")) & (F.col("a.bucket") == F.col("b.bucket"))
-                                & (F.col("a.sub") == F.col("b.sub")) & (F.col("a.rep") < F.col("b.rep")))
-                         .groupBy(F.col("a.rep").alias("left_rep"), F.col("b.rep").alias("right_rep"))
-                         .agg(F.count("*").cast("int").alias("bands_shared")))
-                count = _write_one_file(pairs, out) if ranges is None else _write_blocks(pairs, out, list(ranges))
-            finally:
-                split.unpersist()
-        finally:
-            sized.unpersist()
-        skew["max_bucket"] = cap
+        total = bucket_rows if bucket_rows is not None else _file_rows(files)
+        with candidate_pairs(rows, bands, settings.max_bucket, total) as (pairs, skew):
+            count = _write_one_file(pairs, out) if ranges is None else _write_blocks(pairs, out, list(ranges))
         return JoinOutput(out, count, skew)
+
+
+@contextmanager
+def candidate_pairs(rows, bands: int, cap: int, bucket_rows: int):
+    """(pairs, skew) of bucket rows (``band``, ``bucket`` as Int64 bits, ``rep``; one row a
+    band and representative, ``bucket_rows`` of them): the pairs a DataFrame of CANDIDATES,
+    one row a pair, to use inside the ``with`` (its inputs are held until it ends); the skew
+    report collected (module docstring)."""
+    from pyspark import StorageLevel
+    from pyspark.sql import Window
+    from pyspark.sql import functions as F
+
+    sized = (rows.withColumn("size", F.count("*").over(Window.partitionBy("band", "bucket")))
+             .where(F.col("size") >= 2).persist(StorageLevel.MEMORY_AND_DISK))
+    try:
+        oversize = sized.where(F.col("size") > cap).select("band", "bucket", "rep")
+        nxt = sized.select(F.col("rep").alias("next_rep"), F.col("band").alias("next_band"),
+                           F.col("bucket").alias("sub"))
+        split = (oversize.join(nxt, (nxt.next_rep == oversize.rep) & (nxt.next_band == (oversize.band + 1) % bands))
+                 .select("band", "bucket", "sub", "rep")
+                 .withColumn("size", F.count("*").over(Window.partitionBy("band", "bucket", "sub")))
+                 .persist(StorageLevel.MEMORY_AND_DISK))
+        try:
+            skew = _skew(sized, split, cap, bucket_rows)
+            skew["max_bucket"] = cap
+            zero = F.lit(0).cast("long").alias("sub")
+            whole = sized.where(F.col("size") <= cap).select("band", "bucket", zero, "rep")
+            parted = split.where(F.col("size").between(2, cap)).select("band", "bucket", "sub", "rep")
+            usable = whole.unionByName(parted)
+            a, b = usable.alias("a"), usable.alias("b")
+            pairs = (a.join(b, (F.col("a.band") == F.col("b.band")) & (F.col("a.bucket") == F.col("b.bucket"))
+                            & (F.col("a.sub") == F.col("b.sub")) & (F.col("a.rep") < F.col("b.rep")))
+                     .groupBy(F.col("a.rep").alias("left_rep"), F.col("b.rep").alias("right_rep"))
+                     .agg(F.count("*").cast("int").alias("bands_shared")))
+            yield pairs, skew
+        finally:
+            split.unpersist()
+    finally:
+        sized.unpersist()
 
 
 def _skew(sized, split, cap: int, bucket_rows: int) -> dict:
