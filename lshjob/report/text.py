@@ -85,8 +85,11 @@ def run_report(m: dict) -> str:
         f"{c['verified_pairs']:,} -> published {c['published_rows']:,}"
     )
     versions = m.get("versions") or {}
-    if "spark" in versions:  # band, join or verify ran on Spark
-        on_spark = ", ".join(s for s, name in (m.get("engines") or {}).items() if name == "spark")
+    if "spark" in versions:  # the whole run, or some of band, join and verify, ran on Spark
+        if (m.get("options") or {}).get("engine") == "spark":
+            on_spark = "the whole run (the plan's sample on the driver)"
+        else:
+            on_spark = ", ".join(s for s, name in (m.get("engines") or {}).items() if name == "spark")
         lines.append(f"on Spark {versions['spark']} ({versions.get('spark_master')}): {on_spark}")
     skew = m.get("skew")
     if skew:
