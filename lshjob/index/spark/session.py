@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import atexit
 import os
+import re
 import shutil
 import sys
 import warnings
@@ -47,6 +48,9 @@ def session():
     builder = spark_sql.SparkSession.builder.appName("lshjob").config("spark.ui.showConsoleProgress", "false")
     if chosen is not None:
         builder = builder.master(chosen)
+    local_slots = _local_slots(chosen) if not submitted else None
+    if local_slots is not None:  # Spark's 200 shuffle partitions cost a task each on a few local cores
+        builder = builder.config("spark.sql.shuffle.partitions", str(4 * local_slots))
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*pandas", category=FutureWarning)
         try:
@@ -59,6 +63,19 @@ def session():
     spark.sparkContext.setLogLevel("ERROR")
     atexit.register(spark.stop)  # ours: stopped before the JVM goes, so executors end cleanly
     return spark
+
+
+def _local_slots(master: str | None) -> int | None:
+    """Task slots of a ``local``, ``local[N]``, ``local[*]`` or ``local[N,F]`` master; None for
+    any other master (a cluster's shuffle partitions are its operators' choice)."""
+    m = re.fullmatch(r"local(?:\[(\*|\d+)(?:,\d+)?\])?", master or "")
+    if m is None:
+        return None
+    if m.group(1) is None:
+        return 1
+    if m.group(1) == "*":
+        return os.cpu_count() or 1
+    return max(1, int(m.group(1)))
 
 
 def file_frame(spark, files: list[str]):
