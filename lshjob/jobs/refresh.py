@@ -148,8 +148,9 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
              say=None):
     say = _say if say is None else say
     state = catalog.read_state(store)
-    # period signatures (the largest files, read only when their period changes) are checked when read
-    damaged = store_files.check_files(store, state, size_only=("signatures",))
+    # period signatures (the largest files, read only when their period changes) are checked when read;
+    # bucket tables (looked up a few pages at a time, never read whole) by their size
+    damaged = store_files.check_files(store, state, size_only=("signatures", "buckets"))
     if damaged:
         raise ParameterError(f"{store}: the store is damaged ({damaged[0]}"
                              + (f"; and {len(damaged) - 1} more" if len(damaged) > 1 else "")

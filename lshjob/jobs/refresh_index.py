@@ -14,8 +14,9 @@ the last index (files named with the run that wrote them, their SHA-256 in the c
   the same set has the same fingerprint whatever refresh reads it); set ids only grow, a set
   that leaves the window is forgotten;
 * ``buckets`` (band, bucket, set): every band's bucket of every set, one file per refresh
-  holding the sets it made (rows of forgotten sets are skipped by the join, and dropped when
-  the files are compacted);
+  holding the sets it made, sorted by band and bucket and looked up by binary search
+  (:mod:`lshjob.jobs.refresh_buckets`; rows of forgotten sets are skipped by the join, and
+  dropped when the files are compacted);
 * ``pairs`` (left, right, jaccard, estimate, bands_shared): every verified pair of sets
   (left < right), not only the pairs the top-k publishes: an entity's list may need its
   (k+1)-th neighbour when one of its first k leaves.
@@ -25,7 +26,7 @@ keeps those whose fingerprint is unchanged, gives the others the id of an existi
 their fingerprint or a new id, signs and bands only the new sets (the window signature of an
 entity equals the element-wise minimum of its period signatures, :func:`compose_signatures`;
 signing the union directly gives those values from the few sets read), joins their bucket
-rows against all live bucket rows in DuckDB, verifies only pairs with a new set, keeps every
+rows against the live rows of the same buckets, verifies only pairs with a new set, keeps every
 other pair of live sets, and publishes through the run's own publish stage
 (:mod:`lshjob.index.publish`), so the index holds exactly the rows ``lshjob run`` builds.
 A bucket that a new set would take over ``--max-bucket`` makes the join of the full run
@@ -45,6 +46,7 @@ from lshjob.core.hashing import xxh64_integers
 from lshjob.core.sets import ElementSets
 from lshjob.index.collapse import fingerprints
 from lshjob.index.verify import VerifySettings
+from lshjob.jobs import refresh_buckets as buckets
 from lshjob.jobs.refresh_fold import Folded, scan_periods
 from lshjob.runtime.partitions import HeldSets
 from lshjob.sign.signatures import SignatureParams, comparable_by_position
@@ -57,27 +59,11 @@ SET_SCHEMA = {"set": pl.Int64, "fa": pl.UInt64, "fb": pl.UInt64}
 PAIR_SCHEMA = {"left": pl.Int64, "right": pl.Int64, "jaccard": pl.Float64, "estimate": pl.Float64,
                "bands_shared": pl.Int32}
 
-# Candidate pairs with a new set. Input: read_parquet($files) (band, bucket, set), table
-# live(set), read_parquet($new_file) (the new sets' rows); $first_new: the first new set id.
-# Output: the rows of buckets a new set is in, with the bucket's size (touched_rows), then
-# pairs (left < right, one of them new) and the bands they share: a new set's rows joined to
-# the others of its buckets (a pair of two new sets once, the pairs of two old sets never).
-TOUCHED_ROWS_SQL = """
-CREATE OR REPLACE TEMP TABLE touched_rows AS
-WITH touched AS (
-    SELECT DISTINCT band, bucket FROM read_parquet($new_file)
-),
-live_rows AS (
-    SELECT r.band, r.bucket, r."set"
-    FROM read_parquet($files) AS r
-    SEMI JOIN touched AS t ON r.band = t.band AND r.bucket = t.bucket
-    SEMI JOIN live AS l ON r."set" = l."set"
-)
-SELECT band, bucket, "set", count(*) OVER (PARTITION BY band, bucket) AS size
-FROM live_rows
-"""
-# The same rows when every live set is new (a build from nothing: one file, every set live):
-# no bucket to look up, sizes by one grouping.
+# Candidate pairs of a build from nothing (every set new). Input: read_parquet($new_file) (band,
+# bucket, set), every set's rows. Output: the rows with their bucket's size (touched_rows, sizes
+# by one grouping), then pairs (left < right) and the bands they share; a bucket of one set
+# never enters the self-join. PAIRS_SQL's condition on $first_new (0 here) is the one the
+# update's join (refresh_index._join_new) applies in memory.
 ALL_ROWS_SQL = """
 CREATE OR REPLACE TEMP TABLE touched_rows AS
 WITH sizes AS (
@@ -121,9 +107,9 @@ class IndexState:
 
 def state_plan(plan: dict, max_bucket: int, top_k: int) -> dict:
     """What the state (and the version published from it) depends on: a state made under
-    another is not used."""
+    another (or with bucket tables of another layout) is not used."""
     return {name: plan[name] for name in ("perms", "bands", "rows", "seed", "scheme", "threshold")} | {
-        "max_bucket": max_bucket, "top_k": top_k}
+        "max_bucket": max_bucket, "top_k": top_k, "bucket_tables": buckets.SUFFIX}
 
 
 def read_state(store: Path, record: dict) -> IndexState:
@@ -219,14 +205,19 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
             columns = comparable_by_position(sets, made["id"].to_numpy(), params, plan["bands"] * plan["rows"])
             wide = band_engine.keys(columns, made["set"].to_numpy(), plan["bands"], plan["rows"])
             del columns
-            rows = wide.unpivot(index="rep", variable_name="band", value_name="bucket").select(
-                pl.col("band").cast(pl.Int32), "bucket", pl.col("rep").alias("set"))
-            relative = f"{STATE}/{run_id}.buckets.parquet"
-            new_files.append(store_files.write_table(store, relative, rows, "buckets", run_id, compression="lz4"))
+            relative = f"{STATE}/{run_id}.{buckets.SUFFIX}"
+            new_files.append(buckets.write_wide(store, relative, wide, plan["bands"], run_id))
             bucket_files.append(relative)
-            del wide, rows
+            if previous.next_set == 0:  # a build from nothing: every set is new, one grouping finds the pairs
+                found = _long_rows(wide, work)
+            else:  # the new sets' buckets
+                found = [np.unique(wide[str(b)].to_numpy()) for b in range(plan["bands"])]
+            del wide
         with clock("join"):
-            candidates, largest = _join(store, bucket_files, relative, live, previous.next_set, memory, work)
+            if previous.next_set == 0:
+                candidates, largest = _join_all(found, memory, work)
+            else:
+                candidates, largest = _join_new(store, bucket_files, found, live, previous.next_set, next_set)
             if largest > plan["max_bucket"]:
                 raise Oversize(f"a bucket would hold {largest} sets, over --max-bucket {plan['max_bucket']}")
     with clock("verify"):
@@ -239,10 +230,10 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
         pair_sets = pl.concat([gone["left"], gone["right"], verified["left"], verified["right"]]).unique()
     if len(bucket_files) > COMPACT_AFTER:
         with clock("compact"):
-            table = pl.scan_parquet([store / f for f in bucket_files]).join(live.lazy(), on="set", how="semi")
-            relative = f"{STATE}/{run_id}.buckets-all.parquet"
+            relative = f"{STATE}/{run_id}.buckets-all.{buckets.SUFFIX}"
             new_files = [f for f in new_files if f.path not in bucket_files] + [
-                store_files.write_table(store, relative, table.collect(), "buckets", run_id, compression="lz4")]
+                buckets.compact(store, [store / f for f in bucket_files], relative, plan["bands"],
+                                _live_mask(live, next_set), run_id)]
             bucket_files = [relative]
     state = IndexState(members, sets_table, pairs, bucket_files, next_set, plan)
     moved_sets = pl.concat([moved["set"], moved["now"]]).drop_nulls().unique()
@@ -272,26 +263,53 @@ def heads(members: pl.DataFrame, sets: pl.Series, cap: int) -> pl.DataFrame:
             .group_by("set", maintain_order=True).head(cap).select("set", "entity"))
 
 
-def _join(store: Path, files: list[str], new_file: str, live: pl.DataFrame, first_new: int, memory: int,
-          work: Path) -> tuple[pl.DataFrame, int]:
-    """Candidate pairs with a new set (SQL above) and the largest bucket a new set is in."""
+def _live_mask(live: pl.DataFrame, next_set: int) -> np.ndarray:
+    mask = np.zeros(next_set, dtype=bool)
+    mask[live["set"].to_numpy()] = True
+    return mask
+
+
+def _join_new(store: Path, files: list[str], queries: list[np.ndarray], live: pl.DataFrame, first_new: int,
+              next_set: int) -> tuple[pl.DataFrame, int]:
+    """Candidate pairs with a new set and the largest bucket a new set is in (``queries``: each
+    band's buckets of the new sets, whose table is the last of ``files``): the live rows of
+    those buckets, found by binary search in the sorted tables (:mod:`lshjob.jobs.refresh_buckets`),
+    joined as :data:`PAIRS_SQL` joins them (a pair of two new sets once, of two old sets never)."""
+    rows = buckets.rows_in([store / f for f in files], queries, _live_mask(live, next_set))
+    rows = rows.with_columns(size=pl.len().over("band", "bucket"))
+    largest = int(rows["size"].max() or 0)
+    shared = rows.filter(pl.col("size") > 1).drop("size")
+    pairs = (shared.filter(pl.col("set") >= first_new)
+             .join(shared, on=["band", "bucket"], suffix="_b")
+             .filter((pl.col("set_b") < first_new) | (pl.col("set") < pl.col("set_b")))
+             .group_by(pl.min_horizontal("set", "set_b").alias("left"), pl.max_horizontal("set", "set_b").alias("right"))
+             .agg(pl.len().cast(pl.Int32).alias("bands_shared")))
+    return pairs.cast({"left": pl.Int64, "right": pl.Int64}), largest
+
+
+def _long_rows(wide: pl.DataFrame, work: Path) -> Path:
+    """The band engine's wide keys as bucket rows (band, bucket, set) in a work file."""
     work.mkdir(parents=True, exist_ok=True)
+    path = work / "buckets.parquet"
+    wide.unpivot(index="rep", variable_name="band", value_name="bucket").select(
+        pl.col("band").cast(pl.Int32), "bucket", pl.col("rep").alias("set")).write_parquet(path, compression="lz4")
+    return path
+
+
+def _join_all(rows_path: Path, memory: int, work: Path) -> tuple[pl.DataFrame, int]:
+    """Candidate pairs and the largest bucket when every set is new (SQL above, in DuckDB
+    within the memory budget)."""
     con = duckdb.connect(config={"memory_limit": f"{max(256, memory // 2 // 2**20)}MiB",
                                  "temp_directory": str(work / "spill"), "preserve_insertion_order": False})
     try:
         con.execute("SET enable_progress_bar = false")
-        live.write_parquet(work / "live.parquet")  # handed over as files: no pyarrow needed
-        con.execute('CREATE TEMP TABLE live AS SELECT "set" FROM read_parquet($f)', {"f": str(work / "live.parquet")})
-        if first_new == 0 and files == [new_file]:
-            con.execute(ALL_ROWS_SQL, {"new_file": str(store / new_file)})
-        else:
-            con.execute(TOUCHED_ROWS_SQL, {"files": [str(store / f) for f in files],
-                                           "new_file": str(store / new_file)})
+        con.execute(ALL_ROWS_SQL, {"new_file": str(rows_path)})
         largest = con.execute("SELECT coalesce(max(size), 0) FROM touched_rows").fetchone()[0]
-        query = PAIRS_SQL.replace("$first_new", str(int(first_new)))  # an integer of ours, not user text
+        query = PAIRS_SQL.replace("$first_new", "0")
         con.execute(f"COPY ({query}) TO '{work / 'pairs.parquet'}' (FORMAT parquet)")
     finally:
         con.close()
+    rows_path.unlink()
     pairs = pl.read_parquet(work / "pairs.parquet")
     return pairs.cast({"left": pl.Int64, "right": pl.Int64, "bands_shared": pl.Int32}), int(largest)
 
