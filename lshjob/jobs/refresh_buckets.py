@@ -128,6 +128,4 @@ def compact(store: Path, paths: list[Path], relative: str, bands: int, live: np.
         keys, ids = columns[band]
         return keys[np.argsort(ids, kind="stable")]
 
-    made = write(store, relative, bands, run_id, keys_of, sets)
-    del opened
-    return made
+    return write(store, relative, bands, run_id, keys_of, sets)

@@ -282,7 +282,8 @@ def _join_new(store: Path, files: list[str], queries: list[np.ndarray], live: pl
     pairs = (shared.filter(pl.col("set") >= first_new)
              .join(shared, on=["band", "bucket"], suffix="_b")
              .filter((pl.col("set_b") < first_new) | (pl.col("set") < pl.col("set_b")))
-             .group_by(pl.min_horizontal("set", "set_b").alias("left"), pl.max_horizontal("set", "set_b").alias("right"))
+             .group_by(pl.min_horizontal("set", "set_b").alias("left"),
+                       pl.max_horizontal("set", "set_b").alias("right"))
              .agg(pl.len().cast(pl.Int32).alias("bands_shared")))
     return pairs.cast({"left": pl.Int64, "right": pl.Int64}), largest
 
