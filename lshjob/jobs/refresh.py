@@ -305,10 +305,15 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
     work = store / store_files.WORK / "state"
     steps, made, from_nothing = {}, None, False
 
-    def update(previous, touched, plan_now, sets=None):
+    seed = paths.sample_seed(batch.window_last)
+
+    def sample(members):  # the kept plan's new sample, read in the verification's pass
+        return paths.sample_of(members, options.run_options(plan), seed)
+
+    def update(previous, touched, plan_now, sets=None, extra=None):
         try:
             return paths.build(store, previous, folded, touched,
-                               options.run_options(plan_now), work, run_id, clock, sets)
+                               options.run_options(plan_now), work, run_id, clock, sets, extra)
         except index_state.Oversize as exc:
             warnings.append(f"{exc}: the whole run made this index (the state needs no bucket over the cap)")
             return None
@@ -325,11 +330,11 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
                                     f"entities, at least {WHOLE_WINDOW_SHARE:.0%}: the index state was rebuilt "
                                     "from the whole window (cheaper than updating it) under the kept plan")
             empty = index_state.IndexState.empty(previous.plan, batch.rows.schema["entity"])
-            made, from_nothing = update(empty, None, plan), True
+            made, from_nothing = update(empty, None, plan, extra=sample), True
             if made is not None:
                 made.changed_entities = index_state.changed_between(previous, made.state)
         else:
-            made = update(previous, touched, plan)
+            made = update(previous, touched, plan, extra=sample)
             if made is not None and (store / store_files.VERSIONS / record.get("version", "-")).is_dir() \
                     and "totals" in record:
                 last, totals = store / store_files.VERSIONS / record["version"], record["totals"]
@@ -337,7 +342,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
             return None
         with clock("sample"):  # the window after this batch, sampled anew
             recall, figures = paths.sampled_recall(store, made.state.members, folded, plan,
-                                                   options.run_options(plan), paths.sample_seed(batch.window_last))
+                                                   options.run_options(plan), seed, made.extra_sets)
         steps["sampled_recall"] = recall
         if recall is not None and recall < options.recall - RECALL_SLACK:
             why = (f"the kept plan's expected recall on a new sample of the window, {recall:.4f}, is below "

@@ -164,14 +164,16 @@ class Update:
     pair_sets: pl.Series  # sets of a pair verified or forgotten by this update
     head_sets: pl.Series  # sets whose first top_k + 1 members (in key order) changed
     entities_before: int
+    extra_sets: ElementSets | None = None  # the sets of the entities ``extra`` named, read with the verification's
 
 
 def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets, touched: pl.Series | None,
            params: SignatureParams, band_engine, verify_engine, work: Path, run_id: str, memory: int,
-           clock) -> Update:
+           clock, extra=None) -> Update:
     """The state after the entities ``touched`` (all when None: a build from nothing) were read
     anew (module docstring); ``sets``: their window sets (:func:`window_sets`). ``clock(name)``
-    times a step. Raises :class:`Oversize`."""
+    times a step; ``extra(members)``: more entities whose window sets to read in the same pass
+    as the verification's (a planning sample of the new members). Raises :class:`Oversize`."""
     plan = previous.plan
     with clock("match_sets"):
         fa, fb = set_prints(sets)
@@ -221,8 +223,9 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
             if largest > plan["max_bucket"]:
                 raise Oversize(f"a bucket would hold {largest} sets, over --max-bucket {plan['max_bucket']}")
     with clock("verify"):
-        verified = _verify(store, folded, candidates, members, params, plan["threshold"], verify_engine,
-                           work, sets if touched is None else None)
+        verified, extra_sets = _verify(store, folded, candidates, members, params, plan["threshold"],
+                                       verify_engine, work, sets if touched is None else None,
+                                       extra(members) if extra is not None else None)
         alive = previous.pairs.join(live, left_on="left", right_on="set", how="semi").join(
             live, left_on="right", right_on="set", how="semi")
         pairs = pl.concat([alive, verified]) if touched is not None else verified
@@ -242,7 +245,7 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
     differ = pl.concat([old_heads.join(new_heads, on=["set", "entity"], how="anti"),
                         new_heads.join(old_heads, on=["set", "entity"], how="anti")])["set"].unique()
     return Update(state, changed, made.height, forgotten, candidates.height, verified.height, new_files,
-                  moved["entity"], moved_sets, pair_sets, differ, previous.members.height)
+                  moved["entity"], moved_sets, pair_sets, differ, previous.members.height, extra_sets)
 
 
 def changed_between(before: IndexState, after: IndexState) -> int:
@@ -317,15 +320,27 @@ def _join_all(rows_path: Path, memory: int, work: Path) -> tuple[pl.DataFrame, i
 
 def _verify(store: Path, folded: Folded, candidates: pl.DataFrame, members: pl.DataFrame,
             params: SignatureParams, threshold: float, engine, work: Path,
-            held: ElementSets | None = None) -> pl.DataFrame:
+            held: ElementSets | None = None, extra: pl.Series | None = None
+            ) -> tuple[pl.DataFrame, ElementSets | None]:
     """Exact Jaccard (and estimate) of the candidates, from the sets of one member of each,
     through the run's verify engine; the pairs reaching ``threshold``, by set id. ``held``:
-    every window set, already read (a build from nothing), else the members' sets are read."""
-    if candidates.height == 0:
-        return pl.DataFrame(schema=PAIR_SCHEMA)
+    every window set, already read (a build from nothing), else the members' sets are read,
+    with those of the ``extra`` entities (returned second, in key order)."""
+    if candidates.height == 0 and extra is None:
+        return pl.DataFrame(schema=PAIR_SCHEMA), None
     wanted = pl.concat([candidates["left"], candidates["right"]]).unique().to_frame("set")
     holder = members.join(wanted, on="set", how="semi").group_by("set").agg(pl.col("entity").min())
-    sets = held if held is not None else window_sets(store, folded, holder["entity"])
+    if held is not None:
+        sets = held
+    else:
+        read = holder["entity"] if extra is None else pl.concat([holder["entity"], extra]).unique()
+        sets = window_sets(store, folded, read)
+    extra_sets = None
+    if extra is not None:
+        ids = np.flatnonzero(sets.keys.is_in(extra.implode()).to_numpy())
+        extra_sets = sets.subset(ids)
+    if candidates.height == 0:
+        return pl.DataFrame(schema=PAIR_SCHEMA), extra_sets
     local = holder.join(pl.DataFrame({"entity": sets.keys, "id": np.arange(sets.size, dtype=np.int64)}),
                         on="entity").select("set", "id")
     pairs = (candidates.join(local.rename({"set": "left", "id": "a"}), on="left")
@@ -340,7 +355,7 @@ def _verify(store: Path, folded: Folded, candidates: pl.DataFrame, members: pl.D
     verified = (verified.join(by_set.rename({"rep": "left_rep", "set": "a"}), on="left_rep")
                 .join(by_set.rename({"rep": "right_rep", "set": "b"}), on="right_rep"))
     return verified.select(pl.min_horizontal("a", "b").alias("left"), pl.max_horizontal("a", "b").alias("right"),
-                           "jaccard", "estimate", pl.col("bands_shared").cast(pl.Int32))
+                           "jaccard", "estimate", pl.col("bands_shared").cast(pl.Int32)), extra_sets
 
 
 def compose_signatures(tables: list[pl.DataFrame]) -> pl.DataFrame:
