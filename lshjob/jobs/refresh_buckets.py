@@ -3,7 +3,7 @@
 A refresh needs, for each bucket its new sets fall in, the live sets already there: a few rows
 among tens of millions (1M sets x 38 bands). Scanning a Parquet table of every bucket row for
 them costs the same at any batch size, so a table is kept sorted and looked up by binary search
-over the memory-mapped file, touching only the pages of the buckets asked for.
+in it, a band at a time.
 
 A table is one file of little-endian unsigned 64-bit words: ``bands`` and ``n`` (the sets it
 holds), then for each band in turn the ``n`` bucket keys in ascending order (ties by set id)
@@ -60,14 +60,13 @@ def write_wide(store: Path, relative: str, wide: pl.DataFrame, bands: int, run_i
     return write(store, relative, bands, run_id, lambda b: wide[str(b)].to_numpy(), wide["rep"].to_numpy())
 
 
-def _open(path: Path) -> tuple[np.memmap, int, int]:
-    words = np.memmap(path, dtype=WORD, mode="r")
-    return words, int(words[0]), int(words[1])
-
-
-def _band(words: np.memmap, n: int, band: int) -> tuple[np.ndarray, np.ndarray]:
-    start = HEADER + 2 * band * n
-    return words[start:start + n], words[start + n:start + 2 * n]
+def _bands(path: Path):
+    """Each band's (keys, set ids) of a table, read one band at a time (so that memory holds
+    one band, not the file)."""
+    with open(path, "rb") as fh:
+        bands, n = (int(v) for v in np.fromfile(fh, dtype=WORD, count=HEADER))
+        for _ in range(bands):
+            yield np.fromfile(fh, dtype=WORD, count=n), np.fromfile(fh, dtype=WORD, count=n)
 
 
 def rows_in(paths: list[Path], queries: list[np.ndarray], live: np.ndarray) -> pl.DataFrame:
@@ -75,11 +74,7 @@ def rows_in(paths: list[Path], queries: list[np.ndarray], live: np.ndarray) -> p
     unique keys) whose set is live (``live[set]``; ids past its end are not)."""
     found = []
     for path in paths:
-        words, bands, n = _open(path)
-        if n == 0:
-            continue
-        for band in range(bands):
-            keys, ids = _band(words, n, band)
+        for band, (keys, ids) in enumerate(_bands(path)):
             wanted = queries[band]
             lo = np.searchsorted(keys, wanted, side="left")
             hi = np.searchsorted(keys, wanted, side="right")
@@ -87,14 +82,12 @@ def rows_in(paths: list[Path], queries: list[np.ndarray], live: np.ndarray) -> p
             total = int(counts.sum())
             if total == 0:
                 continue
-            starts = np.repeat(lo - (np.cumsum(counts) - counts), counts)
-            at = starts + np.arange(total)
+            at = np.repeat(lo - (np.cumsum(counts) - counts), counts) + np.arange(total)
             sets = ids[at].astype(np.int64)
             keep = sets < len(live)
             keep[keep] = live[sets[keep]]
             found.append(pl.DataFrame({"band": np.full(int(keep.sum()), band, dtype=np.int32),
                                        "bucket": keys[at][keep], "set": sets[keep]}))
-        del words
     if not found:
         return pl.DataFrame(schema={"band": pl.Int32, "bucket": pl.UInt64, "set": pl.Int64})
     return pl.concat(found)
@@ -102,30 +95,25 @@ def rows_in(paths: list[Path], queries: list[np.ndarray], live: np.ndarray) -> p
 
 def compact(store: Path, paths: list[Path], relative: str, bands: int, live: np.ndarray,
             run_id: str) -> StoredFile:
-    """One table of the live sets of ``paths`` (the tables of several refreshes)."""
-    opened = [_open(p) for p in paths]
-    columns: dict[int, tuple[np.ndarray, np.ndarray]] = {}
-
+    """One table of the live sets of ``paths`` (the tables of several refreshes), built a band
+    at a time."""
     def band_rows(band: int) -> tuple[np.ndarray, np.ndarray]:
         keys, ids = [], []
-        for words, _, n in opened:
-            if n:
-                k, s = _band(words, n, band)
-                s = np.array(s).astype(np.int64)
-                keep = (s < len(live))
-                keep[keep] = live[s[keep]]
-                keys.append(np.array(k)[keep])
-                ids.append(s[keep])
+        for path in paths:
+            with open(path, "rb") as fh:
+                n = int(np.fromfile(fh, dtype=WORD, count=HEADER)[1])
+                fh.seek(WORD.itemsize * (HEADER + 2 * band * n))
+                k, s = np.fromfile(fh, dtype=WORD, count=n), np.fromfile(fh, dtype=WORD, count=n).astype(np.int64)
+            keep = s < len(live)
+            keep[keep] = live[s[keep]]
+            keys.append(k[keep])
+            ids.append(s[keep])
         return np.concatenate(keys), np.concatenate(ids)
 
-    # every table lists its sets in the same order in no band: order each band's rows by set id
-    sets = np.sort(band_rows(0)[1])
+    sets = np.sort(band_rows(0)[1])  # every band holds the same sets
 
     def keys_of(band: int) -> np.ndarray:
-        if band not in columns:
-            columns.clear()
-            columns[band] = band_rows(band)
-        keys, ids = columns[band]
+        keys, ids = band_rows(band)
         return keys[np.argsort(ids, kind="stable")]
 
     return write(store, relative, bands, run_id, keys_of, sets)
