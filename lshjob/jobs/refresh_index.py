@@ -179,7 +179,11 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
         fa, fb = set_prints(sets)
         now = pl.DataFrame({"entity": sets.keys, "id": np.arange(sets.size, dtype=np.int64), "fa": fa, "fb": fb})
         known = previous.sets
-        distinct = now.group_by("fa", "fb").agg(pl.col("id").min()).join(known, on=["fa", "fb"], how="left")
+        distinct = now.group_by("fa", "fb").agg(pl.col("id").min())
+        # the few known sets with a fingerprint read (a filter on one column first: a join of two
+        # 64-bit columns against every known set would build its table over all of them)
+        met = known.filter(pl.col("fa").is_in(distinct["fa"].implode()))
+        distinct = distinct.join(met, on=["fa", "fb"], how="left")
         made = distinct.filter(pl.col("set").is_null()).sort("id").with_columns(
             set=pl.int_range(previous.next_set, previous.next_set + pl.len(), dtype=pl.Int64))
         ids = pl.concat([distinct.filter(pl.col("set").is_not_null()), made]).select("fa", "fb", "set")
@@ -194,8 +198,13 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
                                   coalesce=True)
         moved = before.filter(pl.col("set").is_null() | pl.col("now").is_null() | (pl.col("set") != pl.col("now")))
         changed = moved.height
-        members = pl.concat([kept, now.select("entity", "set")]).sort("entity")
-        live = members.select("set").unique()
+        # both sorted by entity, apart: merged, not sorted again (a sort of every member costs
+        # memory and time at any batch size); live sets by a mask over the ids
+        members = kept.merge_sorted(now.select("entity", "set").sort("entity"), key="entity")
+        mask = np.zeros(previous.next_set + made.height, dtype=bool)
+        mask[members["set"].to_numpy()] = True
+        live = pl.DataFrame({"set": np.flatnonzero(mask).astype(np.int64)})
+        del mask
         sets_table = pl.concat([known.join(live, on="set", how="semi"), made.select(SET_SCHEMA.keys())])
         forgotten = known.height - (sets_table.height - made.height)
         next_set = previous.next_set + made.height
