@@ -125,7 +125,8 @@ def write_state(store: Path, state: IndexState, run_id: str) -> tuple[dict, list
     record = {"next_set": state.next_set, "plan": state.plan, "buckets": state.bucket_files}
     for name in ("members", "sets", "pairs"):
         relative = f"{STATE}/{run_id}.{name}.parquet"
-        written.append(store_files.write_table(store, relative, getattr(state, name), name, run_id))
+        written.append(store_files.write_table(store, relative, getattr(state, name), name, run_id,
+                                               compression="lz4" if name == "sets" else "zstd"))  # hashes: lz4
         record[name] = relative
     return record, written
 
