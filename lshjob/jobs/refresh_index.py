@@ -137,7 +137,7 @@ def window_sets(store: Path, folded: Folded, wanted: pl.Series | None) -> Elemen
     rows = scan_periods(store, folded.periods, folded)
     if wanted is not None:
         rows = rows.filter(pl.col("entity").is_in(wanted.implode()))
-    rows = rows.unique(["entity", "element"]).collect()
+    rows = rows.unique(["entity", "element"]).collect(engine="streaming")  # a few pages held at a time
     return ElementSets.from_sets(rows)
 
 
