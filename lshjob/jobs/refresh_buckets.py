@@ -3,7 +3,7 @@
 A refresh needs, for each bucket its new sets fall in, the live sets already there: a few rows
 among tens of millions (1M sets x 38 bands). Scanning a Parquet table of every bucket row for
 them costs the same at any batch size, so a table is kept sorted and looked up by binary search
-in it, a band at a time.
+in it, a band mapped at a time.
 
 A table is one file of little-endian unsigned 64-bit words: ``bands`` and ``n`` (the sets it
 holds), then for each band in turn the ``n`` bucket keys in ascending order (ties by set id)
@@ -60,34 +60,43 @@ def write_wide(store: Path, relative: str, wide: pl.DataFrame, bands: int, run_i
     return write(store, relative, bands, run_id, lambda b: wide[str(b)].to_numpy(), wide["rep"].to_numpy())
 
 
-def _bands(path: Path):
-    """Each band's (keys, set ids) of a table, read one band at a time (so that memory holds
-    one band, not the file)."""
+def _header(path: Path) -> tuple[int, int]:
     with open(path, "rb") as fh:
         bands, n = (int(v) for v in np.fromfile(fh, dtype=WORD, count=HEADER))
-        for _ in range(bands):
-            yield np.fromfile(fh, dtype=WORD, count=n), np.fromfile(fh, dtype=WORD, count=n)
+    return bands, n
+
+
+def _band(path: Path, n: int, band: int) -> tuple[np.memmap, np.memmap]:
+    """A band's keys and set ids, mapped (only the pages touched are read; unmapped when dropped)."""
+    start = WORD.itemsize * (HEADER + 2 * band * n)
+    return (np.memmap(path, dtype=WORD, mode="r", offset=start, shape=(n,)),
+            np.memmap(path, dtype=WORD, mode="r", offset=start + WORD.itemsize * n, shape=(n,)))
 
 
 def rows_in(paths: list[Path], queries: list[np.ndarray], live: np.ndarray) -> pl.DataFrame:
     """Rows (band, bucket, set) of the tables ``paths`` in the buckets ``queries[band]`` (sorted
-    unique keys) whose set is live (``live[set]``; ids past its end are not)."""
+    unique keys) whose set is live (``live[set]``; ids past its end are not). A band is mapped
+    at a time, so that what is resident is one band's pages, not the file."""
     found = []
     for path in paths:
-        for band, (keys, ids) in enumerate(_bands(path)):
+        bands, n = _header(path)
+        if n == 0:
+            continue
+        for band in range(bands):
+            keys, ids = _band(path, n, band)
             wanted = queries[band]
             lo = np.searchsorted(keys, wanted, side="left")
             hi = np.searchsorted(keys, wanted, side="right")
             counts = hi - lo
             total = int(counts.sum())
-            if total == 0:
-                continue
-            at = np.repeat(lo - (np.cumsum(counts) - counts), counts) + np.arange(total)
-            sets = ids[at].astype(np.int64)
-            keep = sets < len(live)
-            keep[keep] = live[sets[keep]]
-            found.append(pl.DataFrame({"band": np.full(int(keep.sum()), band, dtype=np.int32),
-                                       "bucket": keys[at][keep], "set": sets[keep]}))
+            if total:
+                at = np.repeat(lo - (np.cumsum(counts) - counts), counts) + np.arange(total)
+                sets = np.asarray(ids[at], dtype=np.int64)
+                keep = sets < len(live)
+                keep[keep] = live[sets[keep]]
+                found.append(pl.DataFrame({"band": np.full(int(keep.sum()), band, dtype=np.int32),
+                                           "bucket": np.asarray(keys[at])[keep], "set": sets[keep]}))
+            del keys, ids
     if not found:
         return pl.DataFrame(schema={"band": pl.Int32, "bucket": pl.UInt64, "set": pl.Int64})
     return pl.concat(found)
@@ -100,10 +109,12 @@ def compact(store: Path, paths: list[Path], relative: str, bands: int, live: np.
     def band_rows(band: int) -> tuple[np.ndarray, np.ndarray]:
         keys, ids = [], []
         for path in paths:
-            with open(path, "rb") as fh:
-                n = int(np.fromfile(fh, dtype=WORD, count=HEADER)[1])
-                fh.seek(WORD.itemsize * (HEADER + 2 * band * n))
-                k, s = np.fromfile(fh, dtype=WORD, count=n), np.fromfile(fh, dtype=WORD, count=n).astype(np.int64)
+            n = _header(path)[1]
+            if n == 0:
+                continue
+            mapped = _band(path, n, band)
+            k, s = np.array(mapped[0]), np.array(mapped[1]).astype(np.int64)
+            del mapped
             keep = s < len(live)
             keep[keep] = live[s[keep]]
             keys.append(k[keep])
