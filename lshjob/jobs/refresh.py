@@ -148,13 +148,11 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
              say=None):
     say = _say if say is None else say
     state = catalog.read_state(store)
-    # period signatures (the largest files, read only when their period changes) are checked when read;
-    # bucket tables (looked up a few pages at a time, never read whole) by their size
-    damaged = store_files.check_files(store, state, size_only=("signatures", "buckets"))
+    damaged = store_files.check_files(store, state, size_only=("signatures", "buckets"),  # signatures: when read
+                                      hash_below=store_files.HASH_BELOW)
     if damaged:
-        raise ParameterError(f"{store}: the store is damaged ({damaged[0]}"
-                             + (f"; and {len(damaged) - 1} more" if len(damaged) > 1 else "")
-                             + "); start a new store")
+        more = f"; and {len(damaged) - 1} more" if len(damaged) > 1 else ""
+        raise ParameterError(f"{store}: the store is damaged ({damaged[0]}{more}); start a new store")
     removed = store_files.remove_strays(store, state)
     if removed:
         warnings.append(f"removed {len(removed)} file(s) a killed refresh left in the store (e.g. {removed[0]})")
@@ -306,9 +304,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
     steps, made, from_nothing = {}, None, False
 
     seed = paths.sample_seed(batch.window_last)
-
-    def sample(members):  # the kept plan's new sample, read in the verification's pass
-        return paths.sample_of(members, options.run_options(plan), seed)
+    sample = lambda members: paths.sample_of(members, options.run_options(plan), seed)  # noqa: E731 (read with verify)
 
     def update(previous, touched, plan_now, sets=None, extra=None):
         try:
