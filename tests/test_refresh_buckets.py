@@ -92,3 +92,25 @@ def test_a_small_store_file_changed_in_place_is_refused_as_damaged(tmp_path):
     path.write_bytes(bytes(data))
     with pytest.raises(ParameterError, match="the store is damaged .*members.parquet"):
         refresh_job(tmp_path / "b.parquet", tmp_path / "store", spec, options, tmp_path / "index")
+
+
+def test_pairs_of_a_build_from_nothing_are_the_brute_force_pairs_with_their_bands(tmp_path):
+    # Oracle: brute force: every two sets compared band by band with ==.
+    rng = np.random.default_rng(11)
+    bands = 5
+    sets = rng.permutation(40).astype(np.int64)
+    keys = {b: rng.integers(0, 9, len(sets)).astype(np.uint64) * np.uint64(3**39) for b in range(bands)}
+    made = buckets.write(tmp_path, "t." + buckets.SUFFIX, bands, "r", keys.__getitem__, sets)
+    pairs, largest = buckets.all_pairs(tmp_path / made.path, cap=1000)
+    key_of = {(b, int(s)): int(k) for b in range(bands) for s, k in zip(sets, keys[b])}
+    expected = {}
+    for a in range(40):
+        for c in range(a + 1, 40):
+            shared = sum(key_of[(b, a)] == key_of[(b, c)] for b in range(bands))
+            if shared:
+                expected[(a, c)] = shared
+    assert {(r[0], r[1]): r[2] for r in pairs.iter_rows()} == expected
+    assert pairs.height == len(expected)
+    assert largest == max(int(np.unique(keys[b], return_counts=True)[1].max()) for b in range(bands))
+    _, over = buckets.all_pairs(tmp_path / made.path, cap=2)
+    assert over > 2

@@ -128,3 +128,31 @@ def compact(store: Path, paths: list[Path], relative: str, bands: int, live: np.
         return keys[np.argsort(ids, kind="stable")]
 
     return write(store, relative, bands, run_id, keys_of, sets)
+
+
+def all_pairs(path: Path, cap: int) -> tuple[pl.DataFrame, int]:
+    """Every pair of sets sharing a bucket in a table (``left`` < ``right``) with the bands they
+    share, and the largest bucket: a bucket is a run of equal keys in its band, its set ids in
+    ascending order, so a run of s sets gives its s(s-1)/2 pairs in place (a build from
+    nothing, where every set is new). A bucket over ``cap`` sets stops the search (no pair is
+    returned; the caller gives the work to the full run)."""
+    bands, n = _header(path)
+    lefts, rights, largest = [], [], 0
+    for band in range(bands if n else 0):
+        keys, ids = _band(path, n, band)
+        starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]])
+        sizes = np.diff(np.r_[starts, n])
+        largest = max(largest, int(sizes.max()))
+        if largest > cap:
+            return pl.DataFrame(schema={"left": pl.Int64, "right": pl.Int64, "bands_shared": pl.Int32}), largest
+        for size in np.unique(sizes[sizes > 1]):
+            first = starts[sizes == size]
+            i, j = np.triu_indices(int(size), k=1)
+            lefts.append(np.asarray(ids[(first[:, None] + i).ravel()], dtype=np.int64))
+            rights.append(np.asarray(ids[(first[:, None] + j).ravel()], dtype=np.int64))
+        del keys, ids
+    if not lefts:
+        return pl.DataFrame(schema={"left": pl.Int64, "right": pl.Int64, "bands_shared": pl.Int32}), largest
+    rows = pl.DataFrame({"left": np.concatenate(lefts), "right": np.concatenate(rights)})
+    del lefts, rights
+    return rows.group_by("left", "right").agg(pl.len().cast(pl.Int32).alias("bands_shared")), largest

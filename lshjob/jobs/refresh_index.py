@@ -38,7 +38,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-import duckdb
 import numpy as np
 import polars as pl
 
@@ -58,31 +57,6 @@ COMPACT_AFTER = 8  # bucket files kept before they are rewritten as one, without
 SET_SCHEMA = {"set": pl.Int64, "fa": pl.UInt64, "fb": pl.UInt64}
 PAIR_SCHEMA = {"left": pl.Int64, "right": pl.Int64, "jaccard": pl.Float64, "estimate": pl.Float64,
                "bands_shared": pl.Int32}
-
-# Candidate pairs of a build from nothing (every set new). Input: read_parquet($new_file) (band,
-# bucket, set), every set's rows. Output: the rows with their bucket's size (touched_rows, sizes
-# by one grouping), then pairs (left < right) and the bands they share; a bucket of one set
-# never enters the self-join. PAIRS_SQL's condition on $first_new (0 here) is the one the
-# update's join (refresh_index._join_new) applies in memory.
-ALL_ROWS_SQL = """
-CREATE OR REPLACE TEMP TABLE touched_rows AS
-WITH sizes AS (
-    SELECT band, bucket, count(*) AS size FROM read_parquet($new_file) GROUP BY band, bucket
-)
-SELECT r.band, r.bucket, r."set", s.size
-FROM read_parquet($new_file) AS r
-JOIN sizes AS s ON r.band = s.band AND r.bucket = s.bucket
-"""
-PAIRS_SQL = """
-SELECT least(a."set", b."set") AS "left", greatest(a."set", b."set") AS "right", count(*)::INTEGER AS bands_shared
-FROM touched_rows AS a
-JOIN touched_rows AS b
-  ON a.band = b.band AND a.bucket = b.bucket
-WHERE a.size > 1 AND b.size > 1  -- a bucket of one set makes no pair: its rows never enter the join
-  AND a."set" >= $first_new AND (b."set" < $first_new OR a."set" < b."set")
-GROUP BY 1, 2
-"""
-
 
 class Oversize(Exception):
     """A bucket would hold more sets than --max-bucket: the full run's join splits it."""
@@ -220,14 +194,12 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
             relative = f"{STATE}/{run_id}.{buckets.SUFFIX}"
             new_files.append(buckets.write_wide(store, relative, wide, plan["bands"], run_id))
             bucket_files.append(relative)
-            if previous.next_set == 0:  # a build from nothing: every set is new, one grouping finds the pairs
-                found = _long_rows(wide, work)
-            else:  # the new sets' buckets
+            if previous.next_set != 0:  # the new sets' buckets
                 found = [np.unique(wide[str(b)].to_numpy()) for b in range(plan["bands"])]
             del wide
         with clock("join"):
-            if previous.next_set == 0:
-                candidates, largest = _join_all(found, memory, work)
+            if previous.next_set == 0:  # a build from nothing: every set is new, pairs from the runs of keys
+                candidates, largest = buckets.all_pairs(store / relative, plan["max_bucket"])
             else:
                 candidates, largest = _join_new(store, bucket_files, found, live, previous.next_set, next_set)
             if largest > plan["max_bucket"]:
@@ -287,7 +259,8 @@ def _join_new(store: Path, files: list[str], queries: list[np.ndarray], live: pl
     """Candidate pairs with a new set and the largest bucket a new set is in (``queries``: each
     band's buckets of the new sets, whose table is the last of ``files``): the live rows of
     those buckets, found by binary search in the sorted tables (:mod:`lshjob.jobs.refresh_buckets`),
-    joined as :data:`PAIRS_SQL` joins them (a pair of two new sets once, of two old sets never)."""
+    joined in memory: each new set's row with every other row of its bucket, a pair of two new sets
+    once, of two old sets never, buckets of one set left out; the bands a pair shares counted."""
     rows = buckets.rows_in([store / f for f in files], queries, _live_mask(live, next_set))
     rows = rows.with_columns(size=pl.len().over("band", "bucket"))
     largest = int(rows["size"].max() or 0)
@@ -299,33 +272,6 @@ def _join_new(store: Path, files: list[str], queries: list[np.ndarray], live: pl
                        pl.max_horizontal("set", "set_b").alias("right"))
              .agg(pl.len().cast(pl.Int32).alias("bands_shared")))
     return pairs.cast({"left": pl.Int64, "right": pl.Int64}), largest
-
-
-def _long_rows(wide: pl.DataFrame, work: Path) -> Path:
-    """The band engine's wide keys as bucket rows (band, bucket, set) in a work file."""
-    work.mkdir(parents=True, exist_ok=True)
-    path = work / "buckets.parquet"
-    wide.unpivot(index="rep", variable_name="band", value_name="bucket").select(
-        pl.col("band").cast(pl.Int32), "bucket", pl.col("rep").alias("set")).write_parquet(path, compression="lz4")
-    return path
-
-
-def _join_all(rows_path: Path, memory: int, work: Path) -> tuple[pl.DataFrame, int]:
-    """Candidate pairs and the largest bucket when every set is new (SQL above, in DuckDB
-    within the memory budget)."""
-    con = duckdb.connect(config={"memory_limit": f"{max(256, memory // 2 // 2**20)}MiB",
-                                 "temp_directory": str(work / "spill"), "preserve_insertion_order": False})
-    try:
-        con.execute("SET enable_progress_bar = false")
-        con.execute(ALL_ROWS_SQL, {"new_file": str(rows_path)})
-        largest = con.execute("SELECT coalesce(max(size), 0) FROM touched_rows").fetchone()[0]
-        query = PAIRS_SQL.replace("$first_new", "0")
-        con.execute(f"COPY ({query}) TO '{work / 'pairs.parquet'}' (FORMAT parquet)")
-    finally:
-        con.close()
-    rows_path.unlink()
-    pairs = pl.read_parquet(work / "pairs.parquet")
-    return pairs.cast({"left": pl.Int64, "right": pl.Int64, "bands_shared": pl.Int32}), int(largest)
 
 
 def _verify(store: Path, folded: Folded, candidates: pl.DataFrame, members: pl.DataFrame,
