@@ -143,7 +143,7 @@ class Update:
 
 
 def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets, touched: pl.Series | None,
-           params: SignatureParams, band_engine, verify_engine, work: Path, run_id: str, memory: int,
+           params: SignatureParams, band_engine, verify_engine, work: Path, run_id: str,
            clock, extra=None) -> Update:
     """The state after the entities ``touched`` (all when None: a build from nothing) were read
     anew (module docstring); ``sets``: their window sets (:func:`window_sets`). ``clock(name)``

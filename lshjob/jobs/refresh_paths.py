@@ -110,7 +110,7 @@ def build(store: Path, previous: index_state.IndexState, folded: Folded, touched
             sets = index_state.window_sets(store, folded, touched)
     return index_state.update(store, previous, folded, sets, touched, params,
                               run_options.stage_engine("band"), run_options.stage_engine("verify"), work, run_id,
-                              memory_of(run_options), clock, extra)
+                              clock, extra)
 
 
 def publish_state(upd: index_state.Update, last: Path | None, totals: dict | None, built: Path, run_options,
