@@ -148,12 +148,11 @@ def _refresh(events, store, spec, options, out, progress, command, run_id, start
              say=None):
     say = _say if say is None else say
     state = catalog.read_state(store)
-    # period signatures (the largest files, read only when their period changes) are checked when read
-    damaged = store_files.check_files(store, state, size_only=("signatures",))
+    damaged = store_files.check_files(store, state, size_only=("signatures", "buckets"),  # signatures: when read
+                                      hash_below=store_files.HASH_BELOW)
     if damaged:
-        raise ParameterError(f"{store}: the store is damaged ({damaged[0]}"
-                             + (f"; and {len(damaged) - 1} more" if len(damaged) > 1 else "")
-                             + "); start a new store")
+        more = f"; and {len(damaged) - 1} more" if len(damaged) > 1 else ""
+        raise ParameterError(f"{store}: the store is damaged ({damaged[0]}{more}); start a new store")
     removed = store_files.remove_strays(store, state)
     if removed:
         warnings.append(f"removed {len(removed)} file(s) a killed refresh left in the store (e.g. {removed[0]})")
@@ -304,10 +303,13 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
     work = store / store_files.WORK / "state"
     steps, made, from_nothing = {}, None, False
 
-    def update(previous, touched, plan_now, sets=None):
+    seed = paths.sample_seed(batch.window_last)
+    sample = lambda members: paths.sample_of(members, options.run_options(plan), seed)  # noqa: E731 (read with verify)
+
+    def update(previous, touched, plan_now, sets=None, extra=None):
         try:
             return paths.build(store, previous, folded, touched,
-                               options.run_options(plan_now), work, run_id, clock, sets)
+                               options.run_options(plan_now), work, run_id, clock, sets, extra)
         except index_state.Oversize as exc:
             warnings.append(f"{exc}: the whole run made this index (the state needs no bucket over the cap)")
             return None
@@ -324,11 +326,11 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
                                     f"entities, at least {WHOLE_WINDOW_SHARE:.0%}: the index state was rebuilt "
                                     "from the whole window (cheaper than updating it) under the kept plan")
             empty = index_state.IndexState.empty(previous.plan, batch.rows.schema["entity"])
-            made, from_nothing = update(empty, None, plan), True
+            made, from_nothing = update(empty, None, plan, extra=sample), True
             if made is not None:
                 made.changed_entities = index_state.changed_between(previous, made.state)
         else:
-            made = update(previous, touched, plan)
+            made = update(previous, touched, plan, extra=sample)
             if made is not None and (store / store_files.VERSIONS / record.get("version", "-")).is_dir() \
                     and "totals" in record:
                 last, totals = store / store_files.VERSIONS / record["version"], record["totals"]
@@ -336,7 +338,7 @@ def _by_state(store, state, batch, folded, plan, why, options, spec, events, bui
             return None
         with clock("sample"):  # the window after this batch, sampled anew
             recall, figures = paths.sampled_recall(store, made.state.members, folded, plan,
-                                                   options.run_options(plan), paths.sample_seed(batch.window_last))
+                                                   options.run_options(plan), seed, made.extra_sets)
         steps["sampled_recall"] = recall
         if recall is not None and recall < options.recall - RECALL_SLACK:
             why = (f"the kept plan's expected recall on a new sample of the window, {recall:.4f}, is below "

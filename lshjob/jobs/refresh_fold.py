@@ -100,7 +100,7 @@ def fold(store: Path, state: State, batch: Batch, run_id: str) -> Folded:
     periods: dict[date, Period] = {}
     pending: set[str] = set()
     for (period,), rows in sorted(batch.rows.partition_by("period", as_dict=True, include_key=False).items()):
-        rows = rows.unique(PAIR).sort(PAIR)
+        rows = rows.sort(PAIR)  # distinct already: the batch's rows are one per (entity, period, element)
         old = held.get(period)
         if old is not None and len(old.set_deltas) < MAX_SET_DELTAS:
             delta = store_files.period_file(period, run_id, "sets-delta")

@@ -14,8 +14,9 @@ the last index (files named with the run that wrote them, their SHA-256 in the c
   the same set has the same fingerprint whatever refresh reads it); set ids only grow, a set
   that leaves the window is forgotten;
 * ``buckets`` (band, bucket, set): every band's bucket of every set, one file per refresh
-  holding the sets it made (rows of forgotten sets are skipped by the join, and dropped when
-  the files are compacted);
+  holding the sets it made, sorted by band and bucket and looked up by binary search
+  (:mod:`lshjob.jobs.refresh_buckets`; rows of forgotten sets are skipped by the join, and
+  dropped when the files are compacted);
 * ``pairs`` (left, right, jaccard, estimate, bands_shared): every verified pair of sets
   (left < right), not only the pairs the top-k publishes: an entity's list may need its
   (k+1)-th neighbour when one of its first k leaves.
@@ -25,7 +26,7 @@ keeps those whose fingerprint is unchanged, gives the others the id of an existi
 their fingerprint or a new id, signs and bands only the new sets (the window signature of an
 entity equals the element-wise minimum of its period signatures, :func:`compose_signatures`;
 signing the union directly gives those values from the few sets read), joins their bucket
-rows against all live bucket rows in DuckDB, verifies only pairs with a new set, keeps every
+rows against the live rows of the same buckets, verifies only pairs with a new set, keeps every
 other pair of live sets, and publishes through the run's own publish stage
 (:mod:`lshjob.index.publish`), so the index holds exactly the rows ``lshjob run`` builds.
 A bucket that a new set would take over ``--max-bucket`` makes the join of the full run
@@ -37,7 +38,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-import duckdb
 import numpy as np
 import polars as pl
 
@@ -45,6 +45,7 @@ from lshjob.core.hashing import xxh64_integers
 from lshjob.core.sets import ElementSets
 from lshjob.index.collapse import fingerprints
 from lshjob.index.verify import VerifySettings
+from lshjob.jobs import refresh_buckets as buckets
 from lshjob.jobs.refresh_fold import Folded, scan_periods
 from lshjob.runtime.partitions import HeldSets
 from lshjob.sign.signatures import SignatureParams, comparable_by_position
@@ -56,47 +57,6 @@ COMPACT_AFTER = 8  # bucket files kept before they are rewritten as one, without
 SET_SCHEMA = {"set": pl.Int64, "fa": pl.UInt64, "fb": pl.UInt64}
 PAIR_SCHEMA = {"left": pl.Int64, "right": pl.Int64, "jaccard": pl.Float64, "estimate": pl.Float64,
                "bands_shared": pl.Int32}
-
-# Candidate pairs with a new set. Input: read_parquet($files) (band, bucket, set), table
-# live(set), read_parquet($new_file) (the new sets' rows); $first_new: the first new set id.
-# Output: the rows of buckets a new set is in, with the bucket's size (touched_rows), then
-# pairs (left < right, one of them new) and the bands they share: a new set's rows joined to
-# the others of its buckets (a pair of two new sets once, the pairs of two old sets never).
-TOUCHED_ROWS_SQL = """
-CREATE OR REPLACE TEMP TABLE touched_rows AS
-WITH touched AS (
-    SELECT DISTINCT band, bucket FROM read_parquet($new_file)
-),
-live_rows AS (
-    SELECT r.band, r.bucket, r."set"
-    FROM read_parquet($files) AS r
-    SEMI JOIN touched AS t ON r.band = t.band AND r.bucket = t.bucket
-    SEMI JOIN live AS l ON r."set" = l."set"
-)
-SELECT band, bucket, "set", count(*) OVER (PARTITION BY band, bucket) AS size
-FROM live_rows
-"""
-# The same rows when every live set is new (a build from nothing: one file, every set live):
-# no bucket to look up, sizes by one grouping.
-ALL_ROWS_SQL = """
-CREATE OR REPLACE TEMP TABLE touched_rows AS
-WITH sizes AS (
-    SELECT band, bucket, count(*) AS size FROM read_parquet($new_file) GROUP BY band, bucket
-)
-SELECT r.band, r.bucket, r."set", s.size
-FROM read_parquet($new_file) AS r
-JOIN sizes AS s ON r.band = s.band AND r.bucket = s.bucket
-"""
-PAIRS_SQL = """
-SELECT least(a."set", b."set") AS "left", greatest(a."set", b."set") AS "right", count(*)::INTEGER AS bands_shared
-FROM touched_rows AS a
-JOIN touched_rows AS b
-  ON a.band = b.band AND a.bucket = b.bucket
-WHERE a.size > 1 AND b.size > 1  -- a bucket of one set makes no pair: its rows never enter the join
-  AND a."set" >= $first_new AND (b."set" < $first_new OR a."set" < b."set")
-GROUP BY 1, 2
-"""
-
 
 class Oversize(Exception):
     """A bucket would hold more sets than --max-bucket: the full run's join splits it."""
@@ -121,9 +81,9 @@ class IndexState:
 
 def state_plan(plan: dict, max_bucket: int, top_k: int) -> dict:
     """What the state (and the version published from it) depends on: a state made under
-    another is not used."""
+    another (or with bucket tables of another layout) is not used."""
     return {name: plan[name] for name in ("perms", "bands", "rows", "seed", "scheme", "threshold")} | {
-        "max_bucket": max_bucket, "top_k": top_k}
+        "max_bucket": max_bucket, "top_k": top_k, "bucket_tables": buckets.SUFFIX}
 
 
 def read_state(store: Path, record: dict) -> IndexState:
@@ -139,7 +99,8 @@ def write_state(store: Path, state: IndexState, run_id: str) -> tuple[dict, list
     record = {"next_set": state.next_set, "plan": state.plan, "buckets": state.bucket_files}
     for name in ("members", "sets", "pairs"):
         relative = f"{STATE}/{run_id}.{name}.parquet"
-        written.append(store_files.write_table(store, relative, getattr(state, name), name, run_id))
+        written.append(store_files.write_table(store, relative, getattr(state, name), name, run_id,
+                                               compression="lz4" if name == "sets" else "zstd"))  # hashes: lz4
         record[name] = relative
     return record, written
 
@@ -150,7 +111,7 @@ def window_sets(store: Path, folded: Folded, wanted: pl.Series | None) -> Elemen
     rows = scan_periods(store, folded.periods, folded)
     if wanted is not None:
         rows = rows.filter(pl.col("entity").is_in(wanted.implode()))
-    rows = rows.unique(["entity", "element"]).collect()
+    rows = rows.unique(["entity", "element"]).collect(engine="streaming")  # a few pages held at a time
     return ElementSets.from_sets(rows)
 
 
@@ -178,20 +139,26 @@ class Update:
     pair_sets: pl.Series  # sets of a pair verified or forgotten by this update
     head_sets: pl.Series  # sets whose first top_k + 1 members (in key order) changed
     entities_before: int
+    extra_sets: ElementSets | None = None  # the sets of the entities ``extra`` named, read with the verification's
 
 
 def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets, touched: pl.Series | None,
-           params: SignatureParams, band_engine, verify_engine, work: Path, run_id: str, memory: int,
-           clock) -> Update:
+           params: SignatureParams, band_engine, verify_engine, work: Path, run_id: str,
+           clock, extra=None) -> Update:
     """The state after the entities ``touched`` (all when None: a build from nothing) were read
     anew (module docstring); ``sets``: their window sets (:func:`window_sets`). ``clock(name)``
-    times a step. Raises :class:`Oversize`."""
+    times a step; ``extra(members)``: more entities whose window sets to read in the same pass
+    as the verification's (a planning sample of the new members). Raises :class:`Oversize`."""
     plan = previous.plan
     with clock("match_sets"):
         fa, fb = set_prints(sets)
         now = pl.DataFrame({"entity": sets.keys, "id": np.arange(sets.size, dtype=np.int64), "fa": fa, "fb": fb})
         known = previous.sets
-        distinct = now.group_by("fa", "fb").agg(pl.col("id").min()).join(known, on=["fa", "fb"], how="left")
+        distinct = now.group_by("fa", "fb").agg(pl.col("id").min())
+        # the few known sets with a fingerprint read (a filter on one column first: a join of two
+        # 64-bit columns against every known set would build its table over all of them)
+        met = known.filter(pl.col("fa").is_in(distinct["fa"].implode()))
+        distinct = distinct.join(met, on=["fa", "fb"], how="left")
         made = distinct.filter(pl.col("set").is_null()).sort("id").with_columns(
             set=pl.int_range(previous.next_set, previous.next_set + pl.len(), dtype=pl.Int64))
         ids = pl.concat([distinct.filter(pl.col("set").is_not_null()), made]).select("fa", "fb", "set")
@@ -206,8 +173,13 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
                                   coalesce=True)
         moved = before.filter(pl.col("set").is_null() | pl.col("now").is_null() | (pl.col("set") != pl.col("now")))
         changed = moved.height
-        members = pl.concat([kept, now.select("entity", "set")]).sort("entity")
-        live = members.select("set").unique()
+        # both sorted by entity, apart: merged, not sorted again (a sort of every member costs
+        # memory and time at any batch size); live sets by a mask over the ids
+        members = kept.merge_sorted(now.select("entity", "set").sort("entity"), key="entity")
+        mask = np.zeros(previous.next_set + made.height, dtype=bool)
+        mask[members["set"].to_numpy()] = True
+        live = pl.DataFrame({"set": np.flatnonzero(mask).astype(np.int64)})
+        del mask
         sets_table = pl.concat([known.join(live, on="set", how="semi"), made.select(SET_SCHEMA.keys())])
         forgotten = known.height - (sets_table.height - made.height)
         next_set = previous.next_set + made.height
@@ -219,19 +191,23 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
             columns = comparable_by_position(sets, made["id"].to_numpy(), params, plan["bands"] * plan["rows"])
             wide = band_engine.keys(columns, made["set"].to_numpy(), plan["bands"], plan["rows"])
             del columns
-            rows = wide.unpivot(index="rep", variable_name="band", value_name="bucket").select(
-                pl.col("band").cast(pl.Int32), "bucket", pl.col("rep").alias("set"))
-            relative = f"{STATE}/{run_id}.buckets.parquet"
-            new_files.append(store_files.write_table(store, relative, rows, "buckets", run_id, compression="lz4"))
+            relative = f"{STATE}/{run_id}.{buckets.SUFFIX}"
+            new_files.append(buckets.write_wide(store, relative, wide, plan["bands"], run_id))
             bucket_files.append(relative)
-            del wide, rows
+            if previous.next_set != 0:  # the new sets' buckets
+                found = [np.unique(wide[str(b)].to_numpy()) for b in range(plan["bands"])]
+            del wide
         with clock("join"):
-            candidates, largest = _join(store, bucket_files, relative, live, previous.next_set, memory, work)
+            if previous.next_set == 0:  # a build from nothing: every set is new, pairs from the runs of keys
+                candidates, largest = buckets.all_pairs(store / relative, plan["max_bucket"])
+            else:
+                candidates, largest = _join_new(store, bucket_files, found, live, previous.next_set, next_set)
             if largest > plan["max_bucket"]:
                 raise Oversize(f"a bucket would hold {largest} sets, over --max-bucket {plan['max_bucket']}")
     with clock("verify"):
-        verified = _verify(store, folded, candidates, members, params, plan["threshold"], verify_engine,
-                           work, sets if touched is None else None)
+        verified, extra_sets = _verify(store, folded, candidates, members, params, plan["threshold"],
+                                       verify_engine, work, sets if touched is None else None,
+                                       extra(members) if extra is not None else None)
         alive = previous.pairs.join(live, left_on="left", right_on="set", how="semi").join(
             live, left_on="right", right_on="set", how="semi")
         pairs = pl.concat([alive, verified]) if touched is not None else verified
@@ -239,10 +215,10 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
         pair_sets = pl.concat([gone["left"], gone["right"], verified["left"], verified["right"]]).unique()
     if len(bucket_files) > COMPACT_AFTER:
         with clock("compact"):
-            table = pl.scan_parquet([store / f for f in bucket_files]).join(live.lazy(), on="set", how="semi")
-            relative = f"{STATE}/{run_id}.buckets-all.parquet"
+            relative = f"{STATE}/{run_id}.buckets-all.{buckets.SUFFIX}"
             new_files = [f for f in new_files if f.path not in bucket_files] + [
-                store_files.write_table(store, relative, table.collect(), "buckets", run_id, compression="lz4")]
+                buckets.compact(store, [store / f for f in bucket_files], relative, plan["bands"],
+                                _live_mask(live, next_set), run_id)]
             bucket_files = [relative]
     state = IndexState(members, sets_table, pairs, bucket_files, next_set, plan)
     moved_sets = pl.concat([moved["set"], moved["now"]]).drop_nulls().unique()
@@ -251,7 +227,7 @@ def update(store: Path, previous: IndexState, folded: Folded, sets: ElementSets,
     differ = pl.concat([old_heads.join(new_heads, on=["set", "entity"], how="anti"),
                         new_heads.join(old_heads, on=["set", "entity"], how="anti")])["set"].unique()
     return Update(state, changed, made.height, forgotten, candidates.height, verified.height, new_files,
-                  moved["entity"], moved_sets, pair_sets, differ, previous.members.height)
+                  moved["entity"], moved_sets, pair_sets, differ, previous.members.height, extra_sets)
 
 
 def changed_between(before: IndexState, after: IndexState) -> int:
@@ -272,41 +248,55 @@ def heads(members: pl.DataFrame, sets: pl.Series, cap: int) -> pl.DataFrame:
             .group_by("set", maintain_order=True).head(cap).select("set", "entity"))
 
 
-def _join(store: Path, files: list[str], new_file: str, live: pl.DataFrame, first_new: int, memory: int,
-          work: Path) -> tuple[pl.DataFrame, int]:
-    """Candidate pairs with a new set (SQL above) and the largest bucket a new set is in."""
-    work.mkdir(parents=True, exist_ok=True)
-    con = duckdb.connect(config={"memory_limit": f"{max(256, memory // 2 // 2**20)}MiB",
-                                 "temp_directory": str(work / "spill"), "preserve_insertion_order": False})
-    try:
-        con.execute("SET enable_progress_bar = false")
-        live.write_parquet(work / "live.parquet")  # handed over as files: no pyarrow needed
-        con.execute('CREATE TEMP TABLE live AS SELECT "set" FROM read_parquet($f)', {"f": str(work / "live.parquet")})
-        if first_new == 0 and files == [new_file]:
-            con.execute(ALL_ROWS_SQL, {"new_file": str(store / new_file)})
-        else:
-            con.execute(TOUCHED_ROWS_SQL, {"files": [str(store / f) for f in files],
-                                           "new_file": str(store / new_file)})
-        largest = con.execute("SELECT coalesce(max(size), 0) FROM touched_rows").fetchone()[0]
-        query = PAIRS_SQL.replace("$first_new", str(int(first_new)))  # an integer of ours, not user text
-        con.execute(f"COPY ({query}) TO '{work / 'pairs.parquet'}' (FORMAT parquet)")
-    finally:
-        con.close()
-    pairs = pl.read_parquet(work / "pairs.parquet")
-    return pairs.cast({"left": pl.Int64, "right": pl.Int64, "bands_shared": pl.Int32}), int(largest)
+def _live_mask(live: pl.DataFrame, next_set: int) -> np.ndarray:
+    mask = np.zeros(next_set, dtype=bool)
+    mask[live["set"].to_numpy()] = True
+    return mask
+
+
+def _join_new(store: Path, files: list[str], queries: list[np.ndarray], live: pl.DataFrame, first_new: int,
+              next_set: int) -> tuple[pl.DataFrame, int]:
+    """Candidate pairs with a new set and the largest bucket a new set is in (``queries``: each
+    band's buckets of the new sets, whose table is the last of ``files``): the live rows of
+    those buckets, found by binary search in the sorted tables (:mod:`lshjob.jobs.refresh_buckets`),
+    joined in memory: each new set's row with every other row of its bucket, a pair of two new sets
+    once, of two old sets never, buckets of one set left out; the bands a pair shares counted."""
+    rows = buckets.rows_in([store / f for f in files], queries, _live_mask(live, next_set))
+    rows = rows.with_columns(size=pl.len().over("band", "bucket"))
+    largest = int(rows["size"].max() or 0)
+    shared = rows.filter(pl.col("size") > 1).drop("size")
+    pairs = (shared.filter(pl.col("set") >= first_new)
+             .join(shared, on=["band", "bucket"], suffix="_b")
+             .filter((pl.col("set_b") < first_new) | (pl.col("set") < pl.col("set_b")))
+             .group_by(pl.min_horizontal("set", "set_b").alias("left"),
+                       pl.max_horizontal("set", "set_b").alias("right"))
+             .agg(pl.len().cast(pl.Int32).alias("bands_shared")))
+    return pairs.cast({"left": pl.Int64, "right": pl.Int64}), largest
 
 
 def _verify(store: Path, folded: Folded, candidates: pl.DataFrame, members: pl.DataFrame,
             params: SignatureParams, threshold: float, engine, work: Path,
-            held: ElementSets | None = None) -> pl.DataFrame:
+            held: ElementSets | None = None, extra: pl.Series | None = None
+            ) -> tuple[pl.DataFrame, ElementSets | None]:
     """Exact Jaccard (and estimate) of the candidates, from the sets of one member of each,
     through the run's verify engine; the pairs reaching ``threshold``, by set id. ``held``:
-    every window set, already read (a build from nothing), else the members' sets are read."""
-    if candidates.height == 0:
-        return pl.DataFrame(schema=PAIR_SCHEMA)
+    every window set, already read (a build from nothing), else the members' sets are read,
+    with those of the ``extra`` entities (returned second, in key order)."""
+    if candidates.height == 0 and extra is None:
+        return pl.DataFrame(schema=PAIR_SCHEMA), None
     wanted = pl.concat([candidates["left"], candidates["right"]]).unique().to_frame("set")
     holder = members.join(wanted, on="set", how="semi").group_by("set").agg(pl.col("entity").min())
-    sets = held if held is not None else window_sets(store, folded, holder["entity"])
+    if held is not None:
+        sets = held
+    else:
+        read = holder["entity"] if extra is None else pl.concat([holder["entity"], extra]).unique()
+        sets = window_sets(store, folded, read)
+    extra_sets = None
+    if extra is not None:
+        ids = np.flatnonzero(sets.keys.is_in(extra.implode()).to_numpy())
+        extra_sets = sets.subset(ids)
+    if candidates.height == 0:
+        return pl.DataFrame(schema=PAIR_SCHEMA), extra_sets
     local = holder.join(pl.DataFrame({"entity": sets.keys, "id": np.arange(sets.size, dtype=np.int64)}),
                         on="entity").select("set", "id")
     pairs = (candidates.join(local.rename({"set": "left", "id": "a"}), on="left")
@@ -321,7 +311,7 @@ def _verify(store: Path, folded: Folded, candidates: pl.DataFrame, members: pl.D
     verified = (verified.join(by_set.rename({"rep": "left_rep", "set": "a"}), on="left_rep")
                 .join(by_set.rename({"rep": "right_rep", "set": "b"}), on="right_rep"))
     return verified.select(pl.min_horizontal("a", "b").alias("left"), pl.max_horizontal("a", "b").alias("right"),
-                           "jaccard", "estimate", pl.col("bands_shared").cast(pl.Int32))
+                           "jaccard", "estimate", pl.col("bands_shared").cast(pl.Int32)), extra_sets
 
 
 def compose_signatures(tables: list[pl.DataFrame]) -> pl.DataFrame:

@@ -66,14 +66,19 @@ def touched_entities(store: Path, batch_rows: pl.DataFrame, expired) -> pl.Serie
     return pl.concat(keys).unique()["entity"]
 
 
+def sample_of(members: pl.DataFrame, run_options, seed: int) -> pl.Series:
+    """The entities of the planning sample: ``sample_size`` of ``members``, uniform, drawn with ``seed``."""
+    return sample_keys(members["entity"], run_options.sample_size, seed)
+
+
 def sampled_recall(store: Path, members: pl.DataFrame, folded: Folded, plan: dict, run_options,
-                   seed: int) -> tuple[float | None, dict]:
+                   seed: int, sets: ElementSets | None = None) -> tuple[float | None, dict]:
     """The kept plan's expected recall (the planner's own formula, 1 - (1 - s^r)^b over the
-    pair histogram) on a new uniform sample of the window's entities (``sample_size`` of them,
-    drawn with ``seed``), and the plan as judged (its ``predicted`` and ``sample``)."""
+    pair histogram) on a new uniform sample of the window's entities (:func:`sample_of`; their
+    ``sets`` when already read), and the plan as judged (its ``predicted`` and ``sample``)."""
     keys = members["entity"]
-    sample = sample_keys(keys, run_options.sample_size, seed)
-    sets = index_state.window_sets(store, folded, sample)
+    if sets is None:
+        sets = index_state.window_sets(store, folded, sample_of(members, run_options, seed))
     if sets.size < 2:
         return None, {}
     judged = plan_run(sets, run_options, total_entities=len(keys))
@@ -93,9 +98,11 @@ def plan_from_window(store: Path, folded: Folded, run_options,
 
 
 def build(store: Path, previous: index_state.IndexState, folded: Folded, touched: pl.Series | None,
-          run_options, work: Path, run_id: str, clock: Clock, sets: ElementSets | None = None) -> index_state.Update:
+          run_options, work: Path, run_id: str, clock: Clock, sets: ElementSets | None = None,
+          extra=None) -> index_state.Update:
     """The state after reading ``touched`` anew (all entities when None; ``sets``: their window
-    sets when already read); raises :class:`lshjob.jobs.refresh_index.Oversize`."""
+    sets when already read; ``extra``: see :func:`lshjob.jobs.refresh_index.update`); raises
+    :class:`lshjob.jobs.refresh_index.Oversize`."""
     plan = previous.plan
     params = SignatureParams(scheme=plan["scheme"], perms=plan["perms"], seed=plan["seed"])
     if sets is None:
@@ -103,7 +110,7 @@ def build(store: Path, previous: index_state.IndexState, folded: Folded, touched
             sets = index_state.window_sets(store, folded, touched)
     return index_state.update(store, previous, folded, sets, touched, params,
                               run_options.stage_engine("band"), run_options.stage_engine("verify"), work, run_id,
-                              memory_of(run_options), clock)
+                              clock, extra)
 
 
 def publish_state(upd: index_state.Update, last: Path | None, totals: dict | None, built: Path, run_options,

@@ -39,8 +39,10 @@ def affected(upd: index_state.Update, top_k: int) -> tuple[pl.Series, pl.DataFra
         return both.join(sets, left_on="left", right_on="set", how="semi").select(pl.col("right").alias("set"))
 
     head = upd.head_sets.to_frame("set")
-    crowded = upd.state.members.group_by("set").len().filter(pl.col("len") > top_k).select("set")
-    paired = pl.concat([upd.pair_sets.to_frame("set"), partners(head)]).unique().join(crowded, on="set", how="anti")
+    paired = pl.concat([upd.pair_sets.to_frame("set"), partners(head)]).unique()
+    crowded = (upd.state.members.join(paired, on="set", how="semi").group_by("set").len()
+               .filter(pl.col("len") > top_k).select("set"))  # of these sets only, not of every member
+    paired = paired.join(crowded, on="set", how="anti")
     own = pl.concat([paired, head]).unique()
     entities = pl.concat([upd.state.members.join(own, on="set", how="semi")["entity"], upd.moved_entities]).unique()
     whole = pl.concat([own, upd.moved_sets.to_frame("set")]).unique()

@@ -265,7 +265,8 @@ def data_plans(
     fewest = min(p.expected_candidates for p in feasible)
     tied = [p for p in feasible if p.expected_candidates <= fewest * (1 + TIE_TOLERANCE) + 1e-9]
     tied.sort(key=lambda p: (p.perms, p.bands, p.expected_candidates))
-    rest = sorted((p for p in feasible if p not in tied), key=lambda p: p.expected_candidates)
+    in_tied = {id(p) for p in tied}  # by identity: a list's `in` compares every field of every plan
+    rest = sorted((p for p in feasible if id(p) not in in_tied), key=lambda p: p.expected_candidates)
     return tied + rest
 
 
