@@ -87,23 +87,29 @@ def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: in
     a_members = _by_size(a_members, a_crowd, left_sets, left_first)  # each crowd's members by set size
     b_members = a_members if same else _by_size(b_members, b_crowd, right_sets, right_first)
     cum = np.cumsum(pairs)
-    pieces, lo = [], 0
+    bounds, lo = [], 0
     while lo < len(pairs):
         done = cum[lo - 1] if lo else 0
         hi = max(lo + 1, int(np.searchsorted(cum, done + max_pairs, side="right")))
+        bounds.append((lo, hi, int(done)))
+        lo = hi
+    # one set of buffers for every chunk: fresh ones cost a page fault each 4 KiB
+    size = max(int(cum[hi - 1] - done) for lo, hi, done in bounds)
+    out_left = np.empty(size, dtype=np.int64)
+    out_right = np.empty(size, dtype=np.int64)
+    out_jac = np.empty(size)
+    pieces = []
+    for lo, hi, done in bounds:
         size = int(cum[hi - 1] - done)
         base = np.concatenate([[0], cum[lo:hi - 1] - done]).astype(np.int64)
-        out_left = np.empty(size, dtype=np.int64)
-        out_right = np.empty(size, dtype=np.int64)
-        out_jac = np.full(size, -1.0)
+        out_jac[:size] = -1.0
         _crowd_pairs(left_sets.offsets, left_sets.elements, left_first, right_sets.offsets, right_sets.elements,
                      right_first, a_members, a_start[lo:hi], a_count[lo:hi], b_members, b_start[lo:hi],
                      b_count[lo:hi], same, base, threshold, out_left, out_right, out_jac)
-        keep = out_jac >= threshold
+        keep = np.flatnonzero(out_jac[:size] >= threshold)
         pieces.append(pl.DataFrame({"left_rep": out_left[keep], "right_rep": out_right[keep],
                                     "jaccard": out_jac[keep],
-                                    "bands_shared": np.ones(int(keep.sum()), dtype=np.int32)}))
-        lo = hi
+                                    "bands_shared": np.ones(len(keep), dtype=np.int32)}))
     return pl.concat(pieces)
 
 
