@@ -206,27 +206,50 @@ class _Side:
 
 def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
     """The index's rows (module contract), a block of entities at a time, each block
-    expanding at most ``block_rows`` rows (or one entity's list)."""
+    expanding at most ``block_rows`` rows (or one entity's list). ``per_group`` is sorted by
+    ``src`` and rank (:func:`expand`), so a member's rows are its representative's list
+    gathered by position, without itself, cut at top_k: no join, no sort."""
     members, per_group, top_k = expansion.members, expansion.per_group, expansion.top_k
-    cum = np.cumsum(members["rows"].to_numpy())
+    ids, reps, lengths = (members[c].to_numpy() for c in ("id", "rep", "rows"))
+    src = per_group["src"].to_numpy()
+    listed = per_group["neighbour"].to_numpy()
+    cum = np.cumsum(lengths)
     start = 0
     while start < members.height:
         base = cum[start - 1] if start else 0
         stop = max(start + 1, int(np.searchsorted(cum, base + block_rows, side="right")))
-        block = members.slice(start, stop - start).select("id", "rep")
+        first = np.searchsorted(src, reps[start:stop])  # where each member's list begins
+        owner, at = _gathered(ids[start:stop], first, lengths[start:stop])
         start = stop
-        table = (
-            block.join(per_group, left_on="rep", right_on="src")
-            .filter(pl.col("id") != pl.col("neighbour"))
-            .sort(["id", "jaccard", "neighbour"], descending=[False, True, False])
-            .group_by("id", maintain_order=True)
-            .head(top_k)
-            .with_columns(rank=(pl.int_range(pl.len()).over("id") + 1).cast(pl.UInt32))
-        )
+        keep = listed[at] != owner  # not its own neighbour
+        owner, at = owner[keep], at[keep]
+        rank = _ranks(owner)
+        keep = rank <= top_k
+        table = per_group.select(pl.col("neighbour", "jaccard", "estimate", "bands_shared")
+                                 .gather(pl.Series(at[keep]))).with_columns(
+            id=pl.Series(owner[keep]), rank=pl.Series(rank[keep], dtype=pl.UInt32))
         yield _with_keys(table, keys)
-        del table, block
+        del table, owner, at, keep, rank
     if members.height == 0:
         yield NEIGHBOUR_ROWS.empty(key=keys.dtype)
+
+
+def _gathered(ids: np.ndarray, first: np.ndarray, lengths: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each of ``ids`` repeated ``lengths`` times, and beside it the positions
+    ``first .. first + length - 1`` of its rows."""
+    total = int(lengths.sum())
+    starts = np.cumsum(lengths) - lengths
+    at = np.arange(total, dtype=np.int64) + np.repeat(first.astype(np.int64) - starts, lengths)
+    return np.repeat(ids, lengths), at
+
+
+def _ranks(owner: np.ndarray) -> np.ndarray:
+    """1, 2, ... within each run of equal ``owner`` values."""
+    if len(owner) == 0:
+        return np.zeros(0, dtype=np.int64)
+    new = np.concatenate([[True], owner[1:] != owner[:-1]])
+    firsts = np.flatnonzero(new)
+    return np.arange(len(owner)) - np.repeat(firsts, np.diff(np.append(firsts, len(owner)))) + 1
 
 
 def _with_keys(table: pl.DataFrame, keys: pl.Series) -> pl.DataFrame:
