@@ -48,6 +48,7 @@ from lshjob.contracts.manifest import read_manifest as read_manifest_file
 from lshjob.contracts.tables import NEIGHBOURS as NEIGHBOUR_ROWS
 from lshjob.core.atomic import file_sha256
 from lshjob.errors import InputError, ParameterError
+from lshjob.index._ranking import gathered, ranks, top_rows
 from lshjob.runtime.budget import release_freed
 
 NEIGHBOURS = "neighbours.parquet"
@@ -157,10 +158,9 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
         intra = head.filter(pl.col("rep").is_in(groups.implode())).select(
             pl.col("rep").alias("src"), "neighbour", pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
             pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
-        piece = (pl.concat([intra, inter])
-                 .sort(["src", "jaccard", "neighbour"], descending=[False, True, False])
-                 .group_by("src", maintain_order=True)
-                 .head(cap))
+        piece = pl.concat([intra, inter])
+        piece = piece[top_rows(piece["src"].to_numpy(), piece["jaccard"].to_numpy(), piece["neighbour"].to_numpy(),
+                               start, stop - start, cap)]
         del inter, intra, groups
         # a representative's list length, and the members its own list holds
         src, neighbour = piece["src"].to_numpy(), piece["neighbour"].to_numpy()
@@ -219,11 +219,11 @@ def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
         base = cum[start - 1] if start else 0
         stop = max(start + 1, int(np.searchsorted(cum, base + block_rows, side="right")))
         first = np.searchsorted(src, reps[start:stop])  # where each member's list begins
-        owner, at = _gathered(ids[start:stop], first, lengths[start:stop])
+        owner, at = gathered(ids[start:stop], first, lengths[start:stop])
         start = stop
         keep = listed[at] != owner  # not its own neighbour
         owner, at = owner[keep], at[keep]
-        rank = _ranks(owner)
+        rank = ranks(owner)
         keep = rank <= top_k
         table = per_group.select(pl.col("neighbour", "jaccard", "estimate", "bands_shared")
                                  .gather(pl.Series(at[keep]))).with_columns(
@@ -232,24 +232,6 @@ def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
         del table, owner, at, keep, rank
     if members.height == 0:
         yield NEIGHBOUR_ROWS.empty(key=keys.dtype)
-
-
-def _gathered(ids: np.ndarray, first: np.ndarray, lengths: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Each of ``ids`` repeated ``lengths`` times, and beside it the positions
-    ``first .. first + length - 1`` of its rows."""
-    total = int(lengths.sum())
-    starts = np.cumsum(lengths) - lengths
-    at = np.arange(total, dtype=np.int64) + np.repeat(first.astype(np.int64) - starts, lengths)
-    return np.repeat(ids, lengths), at
-
-
-def _ranks(owner: np.ndarray) -> np.ndarray:
-    """1, 2, ... within each run of equal ``owner`` values."""
-    if len(owner) == 0:
-        return np.zeros(0, dtype=np.int64)
-    new = np.concatenate([[True], owner[1:] != owner[:-1]])
-    firsts = np.flatnonzero(new)
-    return np.arange(len(owner)) - np.repeat(firsts, np.diff(np.append(firsts, len(owner)))) + 1
 
 
 def _with_keys(table: pl.DataFrame, keys: pl.Series) -> pl.DataFrame:
