@@ -28,10 +28,10 @@ def add_estimates_between(verified: pl.DataFrame, left_sets: ElementSets, left_f
     same = left_sets is right_sets and left_first == right_first
     est = np.empty(len(left_all), dtype=np.float64)
     if len(left_all):
-        per_set = 2 * 8 * params.perms  # raw and comparable
+        per_set = (2 if params.scheme == "oph" else 1) * 8 * params.perms  # raw (and comparable, densified)
         block = None if max_bytes is None else max(1024, max_bytes // (2 * per_set))
-        left_ids = np.unique(np.concatenate([left_all, right_all]) if same else left_all)
-        right_ids = left_ids if same else np.unique(right_all)
+        left_ids = _distinct(left_sets.size, left_all, right_all if same else None)
+        right_ids = left_ids if same else _distinct(right_sets.size, right_all)
         left_blocks, left_of = _blocks(left_ids, left_all, block)
         right_blocks, right_of = _blocks(right_ids, right_all, block)
         # pairs grouped by their two blocks (a stable radix sort when the key fits 16 bits)
@@ -56,6 +56,15 @@ def add_estimates_between(verified: pl.DataFrame, left_sets: ElementSets, left_f
             del left_matrix, left_row
     return verified.with_columns(pl.Series("estimate", est)).select(
         "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
+
+
+def _distinct(size: int, ids: np.ndarray, more: np.ndarray | None = None) -> np.ndarray:
+    """The distinct values of ``ids`` (and ``more``), all in 0..size-1, ascending."""
+    seen = np.zeros(size, dtype=bool)
+    seen[ids] = True
+    if more is not None:
+        seen[more] = True
+    return np.flatnonzero(seen)
 
 
 def _blocks(ids: np.ndarray, wanted: np.ndarray, size: int | None) -> tuple[list[np.ndarray], np.ndarray]:
