@@ -135,7 +135,7 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     by_rep = reps[order]
     first = np.searchsorted(by_rep, by_rep)
     keep = order[np.arange(len(order)) - first < cap]
-    head = pl.DataFrame({"rep": reps[keep], "neighbour": ids[keep].astype(key)})
+    head_rep, head_id = reps[keep], ids[keep].astype(key)
     del order, by_rep, first, keep
 
     before_cut = np.where(sizes > 1, np.minimum(cap, sizes), 0).astype(np.int64)
@@ -152,16 +152,21 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     while start < n:  # representatives start..stop-1
         base = cum[start - 1] if start else 0
         stop = max(start + 1, int(np.searchsorted(cum, base + chunk_rows, side="right")))
-        inter = pl.concat([side.edges(start, stop) for side in sides]).join(
-            head.rename({"rep": "dst"}), on="dst").select("src", "neighbour", "jaccard", "estimate", "bands_shared")
-        groups = pl.Series(np.flatnonzero(sizes[start:stop] > 1) + start)
-        intra = head.filter(pl.col("rep").is_in(groups.implode())).select(
-            pl.col("rep").alias("src"), "neighbour", pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
-            pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
+        # each edge's rows: the head of its dst's group, gathered by position (head is sorted by rep)
+        edges = pl.concat([side.edges(start, stop) for side in sides])
+        dst = edges["dst"].to_numpy()
+        row, at = gathered(np.arange(len(dst)), np.searchsorted(head_rep, dst), np.minimum(cap, sizes[dst]))
+        inter = edges.select(pl.col("src", "jaccard", "estimate", "bands_shared").gather(pl.Series(row))).with_columns(
+            neighbour=pl.Series(head_id[at])).select("src", "neighbour", "jaccard", "estimate", "bands_shared")
+        lo, hi = np.searchsorted(head_rep, [start, stop])
+        mine = np.flatnonzero(sizes[head_rep[lo:hi]] > 1) + lo  # the range's groups of identical sets
+        intra = pl.DataFrame({"src": head_rep[mine], "neighbour": head_id[mine]}).with_columns(
+            pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"), pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
+        del edges, dst, row, at, mine
         piece = pl.concat([intra, inter])
         piece = piece[top_rows(piece["src"].to_numpy(), piece["jaccard"].to_numpy(), piece["neighbour"].to_numpy(),
                                start, stop - start, cap)]
-        del inter, intra, groups
+        del inter, intra
         # a representative's list length, and the members its own list holds
         src, neighbour = piece["src"].to_numpy(), piece["neighbour"].to_numpy()
         listed.append(np.bincount(src - start, minlength=stop - start).astype(np.int32))
@@ -173,7 +178,7 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     per_group = pl.concat(pieces, rechunk=False) if pieces else pl.DataFrame(schema={
         "src": pl.Int32, "neighbour": pl.Int32, "jaccard": pl.Float64, "estimate": pl.Float64,
         "bands_shared": pl.Int32})
-    del sides, head, pieces
+    del sides, head_rep, head_id, pieces
     # rows expanded for a member: its representative's list; published: without itself, cut at top_k
     rows = np.concatenate(listed)[reps].astype(np.int64) if listed else np.zeros(0, dtype=np.int64)
     published = int(np.minimum(rows - own[ids], top_k).sum())
