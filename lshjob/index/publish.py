@@ -161,7 +161,8 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
         lo, hi = np.searchsorted(head_rep, [start, stop])
         mine = np.flatnonzero(sizes[head_rep[lo:hi]] > 1) + lo  # the range's groups of identical sets
         intra = pl.DataFrame({"src": head_rep[mine], "neighbour": head_id[mine]}).with_columns(
-            pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"), pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
+            pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
+            pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
         del edges, dst, row, at, mine
         piece = pl.concat([intra, inter])
         piece = piece[top_rows(piece["src"].to_numpy(), piece["jaccard"].to_numpy(), piece["neighbour"].to_numpy(),
