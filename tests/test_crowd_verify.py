@@ -41,10 +41,12 @@ def _crowded_sets(seed: int, crowds: int = 6):
 def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold):
     sets, crowd_rows = _crowded_sets(seed)
     keys = pl.Series("entity", np.arange(len(sets)))
-    element_sets = ElementSets.from_sets(pl.DataFrame({"entity": np.repeat(np.arange(len(sets)), [len(s) for s in sets]),
-                                                       "element": np.concatenate([np.array(s) for s in sets])}))
+    rows = pl.DataFrame({"entity": np.repeat(np.arange(len(sets)), [len(s) for s in sets]),
+                         "element": np.concatenate([np.array(s) for s in sets])})
+    element_sets = ElementSets.from_sets(rows)
     assert element_sets.keys.equals(keys)
-    table = pl.DataFrame(crowd_rows, schema={"crowd": pl.Int64, "rep": pl.Int64}, orient="row").unique().sort("crowd", "rep")
+    table = (pl.DataFrame(crowd_rows, schema={"crowd": pl.Int64, "rep": pl.Int64}, orient="row")
+             .unique().sort("crowd", "rep"))
     block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
     got = verify_crowds(block, element_sets, 0, element_sets, 0, threshold, max_pairs=500)
     # oracle: exact Jaccard with Python sets, every pair of every crowd (a pair once per crowd it is in)

@@ -70,6 +70,110 @@ def _position(values, x):
     return lo
 
 
+@numba.njit(cache=True)
+def _rarity(offsets, elements, first, mem):
+    """A crowd's distinct elements (sorted), how many members hold each, the rank of each,
+    rarest first (ties by element code), and the members' set sizes."""
+    m = len(mem)
+    size = np.empty(m, dtype=np.int64)
+    total = 0
+    for x in range(m):
+        size[x] = offsets[mem[x] - first + 1] - offsets[mem[x] - first]
+        total += size[x]
+    flat = np.empty(total, dtype=np.int64)
+    p = 0
+    for x in range(m):
+        for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
+            flat[p] = elements[j]
+            p += 1
+    flat.sort()
+    values = np.empty(total, dtype=np.int64)
+    freq = np.zeros(total, dtype=np.int64)
+    nu = 0
+    for j in range(total):
+        if j == 0 or flat[j] != flat[j - 1]:
+            values[nu] = flat[j]
+            nu += 1
+        freq[nu - 1] += 1
+    values, freq = values[:nu], freq[:nu]
+    rank = np.empty(nu, dtype=np.int64)
+    by_freq = np.argsort(freq, kind="mergesort")
+    for r in range(nu):
+        rank[by_freq[r]] = r
+    return values, freq, rank, size
+
+
+@numba.njit(cache=True)
+def _prefix_index(offsets, elements, first, mem, threshold):
+    """A crowd's prefix index (:func:`_crowd_pairs_prefix`): (sizes, |C|, each member's A' as
+    ranks ascending in CSR, its prefix length, and the members posted under each rank,
+    ascending)."""
+    m = len(mem)
+    values, freq, rank, size = _rarity(offsets, elements, first, mem)
+    nu = len(values)
+    common = 0
+    for u in range(nu):
+        if freq[u] == m:
+            common += 1
+    local_off = np.zeros(m + 1, dtype=np.int64)
+    for x in range(m):
+        local_off[x + 1] = local_off[x] + size[x] - common
+    local = np.empty(local_off[m], dtype=np.int64)
+    prefix = np.empty(m, dtype=np.int64)
+    for x in range(m):
+        q = local_off[x]
+        for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
+            u = _position(values, elements[j])
+            if freq[u] < m:
+                local[q] = rank[u]
+                q += 1
+        local[local_off[x]:local_off[x + 1]].sort()
+        smallest = int(np.ceil(threshold * size[x] - 1e-9))  # the smallest partner the size filter allows
+        o = _need(size[x], smallest, threshold) - common
+        prefix[x] = min(size[x] - common, size[x] - common - max(o, 1) + 1)
+    post_off = np.zeros(nu + 1, dtype=np.int64)
+    for x in range(m):
+        for q in range(local_off[x], local_off[x] + prefix[x]):
+            post_off[local[q] + 1] += 1
+    for r in range(nu):
+        post_off[r + 1] += post_off[r]
+    fill = post_off[:nu].copy()
+    posted = np.empty(post_off[nu], dtype=np.int64)
+    for x in range(m):
+        for q in range(local_off[x], local_off[x] + prefix[x]):
+            posted[fill[local[q]]] = x
+            fill[local[q]] += 1
+    return size, common, local_off, local, prefix, post_off, posted
+
+
+@numba.njit(inline="always")
+def _keep(offsets, elements, first, mem, x, y, la, lb, need, threshold, out, out_left, out_right, out_jac):
+    """Intersect members x and y (sizes la >= lb); write the pair at ``out`` when it reaches
+    the threshold (the filters of :func:`_crowd_pairs`); the next free slot."""
+    a0, a1 = offsets[mem[x] - first], offsets[mem[x] - first + 1]
+    b0, b1 = offsets[mem[y] - first], offsets[mem[y] - first + 1]
+    inter = _intersection(elements, b0, b1, elements, a0, a1, need)
+    value = inter / (lb + la - inter)
+    if inter >= need and value >= threshold:
+        out_left[out] = min(mem[x], mem[y])
+        out_right[out] = max(mem[x], mem[y])
+        out_jac[out] = value
+        return out + 1
+    return out
+
+
+@numba.njit(inline="always")
+def _first_at_least(values, lo, hi, x):
+    """The first position in ``values[lo:hi]`` (ascending) holding at least ``x`` (or hi)."""
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if values[mid] < x:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
 @numba.njit(parallel=True, cache=True)
 def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, threshold,
                         out_left, out_right, out_jac, found):
@@ -88,125 +192,34 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
     prefix is cut for the smallest o of any partner its size allows, and the members sharing
     a prefix element are intersected, each pair once."""
     for c in numba.prange(start.shape[0]):
-        m = count[c]
-        mem = members[start[c]:start[c] + m]
-        size = np.empty(m, dtype=np.int64)
-        total = 0
-        for x in range(m):
-            size[x] = offsets[mem[x] - first + 1] - offsets[mem[x] - first]
-            total += size[x]
-        flat = np.empty(total, dtype=np.int64)
-        p = 0
-        for x in range(m):
-            for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
-                flat[p] = elements[j]
-                p += 1
-        flat.sort()
-        values = np.empty(total, dtype=np.int64)
-        freq = np.zeros(total, dtype=np.int64)
-        nu = 0
-        for j in range(total):
-            if j == 0 or flat[j] != flat[j - 1]:
-                values[nu] = flat[j]
-                nu += 1
-            freq[nu - 1] += 1
-        values, freq = values[:nu], freq[:nu]
-        common = 0
-        for u in range(nu):
-            if freq[u] == m:
-                common += 1
-        rank = np.empty(nu, dtype=np.int64)  # rarest first, ties by element code
-        by_freq = np.argsort(freq, kind="mergesort")
-        for r in range(nu):
-            rank[by_freq[r]] = r
-        # each member's A' as ranks, ascending, and the length of its prefix
-        local_off = np.zeros(m + 1, dtype=np.int64)
-        for x in range(m):
-            local_off[x + 1] = local_off[x] + size[x] - common
-        local = np.empty(local_off[m], dtype=np.int64)
-        prefix = np.empty(m, dtype=np.int64)
-        for x in range(m):
-            q = local_off[x]
-            for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
-                u = _position(values, elements[j])
-                if freq[u] < m:
-                    local[q] = rank[u]
-                    q += 1
-            local[local_off[x]:local_off[x + 1]].sort()
-            smallest = int(np.ceil(threshold * size[x] - 1e-9))  # the smallest partner the size filter allows
-            o = _need(size[x], smallest, threshold) - common
-            prefix[x] = min(size[x] - common, size[x] - common - max(o, 1) + 1)
-        # postings of the prefix elements, members ascending
-        post_off = np.zeros(nu + 1, dtype=np.int64)
-        for x in range(m):
-            for q in range(local_off[x], local_off[x] + prefix[x]):
-                post_off[local[q] + 1] += 1
-        for r in range(nu):
-            post_off[r + 1] += post_off[r]
-        fill = post_off[:nu].copy()
-        posted = np.empty(post_off[nu], dtype=np.int64)
-        for x in range(m):
-            for q in range(local_off[x], local_off[x] + prefix[x]):
-                posted[fill[local[q]]] = x
-                fill[local[q]] += 1
-        seen = np.full(m, -1, dtype=np.int64)
+        mem = members[start[c]:start[c] + count[c]]
+        size, common, local_off, local, prefix, post_off, posted = _prefix_index(offsets, elements, first, mem,
+                                                                                 threshold)
+        seen = np.full(len(mem), -1, dtype=np.int64)
         out = base[c]
-        for x in range(m):
+        for x in range(len(mem)):
             la = size[x]
-            a0, a1 = offsets[mem[x] - first], offsets[mem[x] - first + 1]
             for y in range(x):  # partners whose needed intersection C alone gives
-                lb = size[y]
-                need = _need(la, lb, threshold)
+                need = _need(la, size[y], threshold)
                 if need > common:
                     break  # later partners are at least as large
-                if lb < threshold * la - 1e-9:
-                    continue
-                b0, b1 = offsets[mem[y] - first], offsets[mem[y] - first + 1]
-                inter = _intersection(elements, b0, b1, elements, a0, a1, need)
-                value = inter / (lb + la - inter)
-                if inter >= need and value >= threshold:
-                    out_left[out] = min(mem[x], mem[y])
-                    out_right[out] = max(mem[x], mem[y])
-                    out_jac[out] = value
-                    out += 1
-            lo, hi = 0, x  # low: the first member the size filter lets pair with x (sizes ascending)
-            while lo < hi:
-                mid = (lo + hi) >> 1
-                if size[mid] < threshold * la - 1e-9:
-                    lo = mid + 1
-                else:
-                    hi = mid
-            low = lo
+                if size[y] >= threshold * la - 1e-9:
+                    out = _keep(offsets, elements, first, mem, x, y, la, size[y], need, threshold, out,
+                                out_left, out_right, out_jac)
+            low = _first_at_least(size, 0, x, threshold * la - 1e-9)  # the size filter, sizes ascending
             for q in range(local_off[x], local_off[x] + prefix[x]):
                 r = local[q]
-                lo, hi = post_off[r], post_off[r + 1]
-                while lo < hi:  # the first posted member from ``low`` on
-                    mid = (lo + hi) >> 1
-                    if posted[mid] < low:
-                        lo = mid + 1
-                    else:
-                        hi = mid
-                for t in range(lo, post_off[r + 1]):
+                for t in range(_first_at_least(posted, post_off[r], post_off[r + 1], low), post_off[r + 1]):
                     y = posted[t]
                     if y >= x:
                         break
                     if seen[y] == x:
                         continue
                     seen[y] = x
-                    lb = size[y]
-                    if lb < threshold * la - 1e-9:
-                        continue
-                    need = _need(la, lb, threshold)
-                    if need <= common:
-                        continue  # intersected above
-                    b0, b1 = offsets[mem[y] - first], offsets[mem[y] - first + 1]
-                    inter = _intersection(elements, b0, b1, elements, a0, a1, need)
-                    value = inter / (lb + la - inter)
-                    if inter >= need and value >= threshold:
-                        out_left[out] = min(mem[x], mem[y])
-                        out_right[out] = max(mem[x], mem[y])
-                        out_jac[out] = value
-                        out += 1
+                    need = _need(la, size[y], threshold)
+                    if need > common:  # (the others were intersected above)
+                        out = _keep(offsets, elements, first, mem, x, y, la, size[y], need, threshold, out,
+                                    out_left, out_right, out_jac)
         found[c] = out - base[c]
 
 
