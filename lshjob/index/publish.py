@@ -136,6 +136,7 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     first = np.searchsorted(by_rep, by_rep)
     keep = order[np.arange(len(order)) - first < cap]
     head_rep, head_id = reps[keep], ids[keep].astype(key)
+    head_first = np.searchsorted(head_rep, np.arange(len(rep_of), dtype=key))  # where each group's head begins
     del order, by_rep, first, keep
 
     before_cut = np.where(sizes > 1, np.minimum(cap, sizes), 0).astype(np.int64)
@@ -145,7 +146,8 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     del before_cut
     # A range's edges are gathered from the pairs by position, each side in its own order:
     # both directions of every pair are never made at once.
-    sides = [_Side(verified, left, "left_rep", "right_rep", key), _Side(verified, right, "right_rep", "left_rep", key)]
+    columns = {c: verified[c].to_numpy() for c in ("left_rep", "right_rep", "jaccard", "estimate", "bands_shared")}
+    sides = [_Side(columns, left, "left_rep", "right_rep", key), _Side(columns, right, "right_rep", "left_rep", key)]
     del left, right
     pieces, listed, start, n = [], [], 0, len(rep_of)
     own = np.zeros(n, dtype=bool)
@@ -155,9 +157,9 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
         # each edge's rows: the head of its dst's group, gathered by position (head is sorted by rep)
         edges = pl.concat([side.edges(start, stop) for side in sides])
         dst = edges["dst"].to_numpy()
-        row, at = gathered(np.arange(len(dst)), np.searchsorted(head_rep, dst), np.minimum(cap, sizes[dst]))
-        inter = edges.select(pl.col("src", "jaccard", "estimate", "bands_shared").gather(pl.Series(row))).with_columns(
-            neighbour=pl.Series(head_id[at])).select("src", "neighbour", "jaccard", "estimate", "bands_shared")
+        row, at = gathered(np.arange(len(dst)), head_first[dst], np.minimum(cap, sizes[dst]))
+        inter = pl.DataFrame({"src": edges["src"].to_numpy()[row], "neighbour": head_id[at],
+                              **{c: edges[c].to_numpy()[row] for c in ("jaccard", "estimate", "bands_shared")}})
         lo, hi = np.searchsorted(head_rep, [start, stop])
         mine = np.flatnonzero(sizes[head_rep[lo:hi]] > 1) + lo  # the range's groups of identical sets
         intra = pl.DataFrame({"src": head_rep[mine], "neighbour": head_id[mine]}).with_columns(
@@ -179,7 +181,7 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     per_group = pl.concat(pieces, rechunk=False) if pieces else pl.DataFrame(schema={
         "src": pl.Int32, "neighbour": pl.Int32, "jaccard": pl.Float64, "estimate": pl.Float64,
         "bands_shared": pl.Int32})
-    del sides, head_rep, head_id, pieces
+    del sides, columns, head_rep, head_id, head_first, pieces
     # rows expanded for a member: its representative's list; published: without itself, cut at top_k
     rows = np.concatenate(listed)[reps].astype(np.int64) if listed else np.zeros(0, dtype=np.int64)
     published = int(np.minimum(rows - own[ids], top_k).sum())
@@ -189,11 +191,12 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
 
 class _Side:
     """One side of the verified pairs, in the order of its representative: the pairs whose
-    ``src`` side is in a range of representatives are a slice of ``order``."""
+    ``src`` side is in a range of representatives are a slice of ``order``. The columns are
+    numpy arrays, gathered by position (a gather from polars' columns of many chunks, as
+    verification's pieces make them, took several times as long)."""
 
-    def __init__(self, verified: pl.DataFrame, reps: np.ndarray, src: str, dst: str, key: type) -> None:
-        self.verified, self.src, self.dst = verified, src, dst
-        self.key = pl.Int32 if key is np.int32 else pl.Int64
+    def __init__(self, columns: dict, reps: np.ndarray, src: str, dst: str, key: type) -> None:
+        self.columns, self.src, self.dst, self.key = columns, src, dst, key
         narrow = np.int32 if len(reps) < 2**31 else np.int64  # positions of pairs
         self.order = np.argsort(reps, kind="stable").astype(narrow)
         self.sorted_reps = reps[self.order].astype(key)
@@ -202,12 +205,11 @@ class _Side:
         """(src, dst, jaccard, estimate, bands_shared) of the pairs whose ``src`` side is in
         start..stop-1."""
         lo, hi = np.searchsorted(self.sorted_reps, [start, stop])
-        rows = pl.Series(self.order[lo:hi])
-        return self.verified.select(
-            pl.col(self.src).gather(rows).cast(self.key).alias("src"),
-            pl.col(self.dst).gather(rows).cast(self.key).alias("dst"),
-            pl.col("jaccard").gather(rows), pl.col("estimate").gather(rows),
-            pl.col("bands_shared").gather(rows).cast(pl.Int32))
+        rows = self.order[lo:hi]
+        c = self.columns
+        return pl.DataFrame({"src": self.sorted_reps[lo:hi], "dst": c[self.dst][rows].astype(self.key),
+                             "jaccard": c["jaccard"][rows], "estimate": c["estimate"][rows],
+                             "bands_shared": c["bands_shared"][rows].astype(np.int32)})
 
 
 def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
@@ -219,12 +221,13 @@ def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
     ids, reps, lengths = (members[c].to_numpy() for c in ("id", "rep", "rows"))
     src = per_group["src"].to_numpy()
     listed = per_group["neighbour"].to_numpy()
+    list_first = np.searchsorted(src, np.arange(int(reps.max()) + 1 if len(reps) else 0, dtype=src.dtype))
     cum = np.cumsum(lengths)
     start = 0
     while start < members.height:
         base = cum[start - 1] if start else 0
         stop = max(start + 1, int(np.searchsorted(cum, base + block_rows, side="right")))
-        first = np.searchsorted(src, reps[start:stop])  # where each member's list begins
+        first = list_first[reps[start:stop]]  # where each member's list begins
         owner, at = gathered(ids[start:stop], first, lengths[start:stop])
         start = stop
         keep = listed[at] != owner  # not its own neighbour
