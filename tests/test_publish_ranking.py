@@ -7,7 +7,7 @@ from itertools import groupby
 
 import numpy as np
 
-from lshjob.index._ranking import gathered, ranks, top_rows
+from lshjob.index._ranking import by_value, edges_that_count, gathered, ranks, top_rows
 
 
 def test_top_rows_rank_each_list_and_cut_it_with_ties_by_neighbour():
@@ -29,3 +29,21 @@ def test_gathered_and_ranks():
     # oracle: the lists written out by hand
     assert ids.tolist() == [5, 5, 7, 7, 7] and at.tolist() == [10, 11, 3, 4, 5]
     assert ranks(np.array([4, 4, 4, 9, 2, 2])).tolist() == [1, 2, 3, 1, 1, 2]
+
+
+def test_by_value_is_a_stable_sort():
+    values = np.random.default_rng(2).integers(0, 50, 3000)
+    # oracle: numpy's stable argsort
+    assert by_value(values, 50).tolist() == np.argsort(values, kind="stable").tolist()
+
+
+def test_edges_that_count_keep_every_edge_at_or_above_the_cut():
+    # one list (src 0) of cap 5 with 2 rows of its own group: edges of weights 2, 1, 3, 1 at
+    # Jaccard 0.9, 0.8, 0.8, 0.6: 2 + 2 = 4 rows above 0.8, the 5th row at 0.8, so both edges
+    # at 0.8 stay (their ties go by neighbour later) and the one at 0.6 goes; worked by hand
+    keep = edges_that_count(np.zeros(4, dtype=np.int64), np.array([0.9, 0.8, 0.8, 0.6]), np.array([2, 1, 3, 1]),
+                            np.array([2]), 0, 1, 5)
+    assert keep.tolist() == [True, True, True, False]
+    # a group of its own filling the list: no edge can enter
+    assert not edges_that_count(np.zeros(2, dtype=np.int64), np.array([0.9, 0.7]), np.array([1, 1]),
+                                np.array([5]), 0, 1, 5).any()

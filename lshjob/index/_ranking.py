@@ -52,6 +52,12 @@ def _ranked(starts, order, jaccard, neighbour, cap, out_starts, out_rows):
             held = min(held + 1, cap)
 
 
+def by_value(values: np.ndarray, bound: int) -> np.ndarray:
+    """The positions of ``values`` (0..bound-1) ordered by value, stably (a counting sort:
+    the same order as ``np.argsort(values, kind="stable")``, in linear time)."""
+    return _grouped(np.ascontiguousarray(values), 0, bound)[1]
+
+
 def top_rows(src: np.ndarray, jaccard: np.ndarray, neighbour: np.ndarray, first: int, groups: int,
              cap: int) -> np.ndarray:
     """Positions of the rows that make each ``src``'s list (values first..first + groups - 1):
@@ -84,3 +90,40 @@ def ranks(owner: np.ndarray) -> np.ndarray:
     new = np.concatenate([[True], owner[1:] != owner[:-1]])
     firsts = np.flatnonzero(new)
     return np.arange(len(owner)) - np.repeat(firsts, np.diff(np.append(firsts, len(owner)))) + 1
+
+
+@numba.njit(parallel=True, cache=True)
+def _cut(starts, order, jaccard, weight, own, cap, keep):
+    """Per group: the edges a list of ``cap`` can take rows from. An edge brings ``weight``
+    rows of its Jaccard (a group's head), ``own[g]`` rows of 1.0 come first; once ``cap`` rows
+    are reached at value v, no row below v can enter, so edges below v are dropped (those at
+    v stay: their ties are broken by neighbour later)."""
+    for g in numba.prange(len(starts) - 1):
+        rows = order[starts[g]:starts[g + 1]]
+        if len(rows) == 0:
+            continue
+        values = -np.sort(-jaccard[rows])
+        weights = weight[rows][np.argsort(-jaccard[rows], kind="mergesort")]
+        held = own[g]
+        cutoff = -1.0
+        for i in range(len(values)):
+            held += weights[i]
+            if held >= cap:
+                cutoff = values[i]
+                break
+        if own[g] >= cap:
+            cutoff = 1.0
+        for r in rows:
+            keep[r] = jaccard[r] >= cutoff
+
+
+def edges_that_count(src: np.ndarray, jaccard: np.ndarray, weight: np.ndarray, own: np.ndarray, first: int,
+                     groups: int, cap: int) -> np.ndarray:
+    """Which edges can bring a row into their ``src``'s first ``cap`` (:func:`_cut`): the rows
+    of the others rank below ``cap`` rows of the kept ones, so ranking only the kept edges'
+    rows gives the same lists."""
+    starts, order = _grouped(np.ascontiguousarray(src), first, groups)
+    keep = np.zeros(len(src), dtype=np.bool_)
+    _cut(starts, order, np.ascontiguousarray(jaccard, dtype=np.float64), np.ascontiguousarray(weight, dtype=np.int64),
+         np.ascontiguousarray(own, dtype=np.int64), cap, keep)
+    return keep

@@ -48,7 +48,7 @@ from lshjob.contracts.manifest import read_manifest as read_manifest_file
 from lshjob.contracts.tables import NEIGHBOURS as NEIGHBOUR_ROWS
 from lshjob.core.atomic import file_sha256
 from lshjob.errors import InputError, ParameterError
-from lshjob.index._ranking import gathered, ranks, top_rows
+from lshjob.index._ranking import by_value, edges_that_count, gathered, ranks, top_rows
 from lshjob.runtime.budget import release_freed
 
 NEIGHBOURS = "neighbours.parquet"
@@ -140,8 +140,8 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     del order, by_rep, first, keep
 
     before_cut = np.where(sizes > 1, np.minimum(cap, sizes), 0).astype(np.int64)
-    np.add.at(before_cut, left, np.minimum(cap, sizes[right]))
-    np.add.at(before_cut, right, np.minimum(cap, sizes[left]))
+    before_cut += np.bincount(left, weights=np.minimum(cap, sizes[right]), minlength=len(sizes)).astype(np.int64)
+    before_cut += np.bincount(right, weights=np.minimum(cap, sizes[left]), minlength=len(sizes)).astype(np.int64)
     cum = np.cumsum(before_cut)
     del before_cut
     # A range's edges are gathered from the pairs by position, each side in its own order:
@@ -156,6 +156,10 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
         stop = max(start + 1, int(np.searchsorted(cum, base + chunk_rows, side="right")))
         # each edge's rows: the head of its dst's group, gathered by position (head is sorted by rep)
         edges = pl.concat([side.edges(start, stop) for side in sides])
+        own_rows = np.where(sizes[start:stop] > 1, np.minimum(cap, sizes[start:stop]), 0)
+        edges = edges.filter(pl.Series(edges_that_count(
+            edges["src"].to_numpy(), edges["jaccard"].to_numpy(), np.minimum(cap, sizes[edges["dst"].to_numpy()]),
+            own_rows, start, stop - start, cap)))
         dst = edges["dst"].to_numpy()
         row, at = gathered(np.arange(len(dst)), head_first[dst], np.minimum(cap, sizes[dst]))
         inter = pl.DataFrame({"src": edges["src"].to_numpy()[row], "neighbour": head_id[at],
@@ -198,7 +202,7 @@ class _Side:
     def __init__(self, columns: dict, reps: np.ndarray, src: str, dst: str, key: type) -> None:
         self.columns, self.src, self.dst, self.key = columns, src, dst, key
         narrow = np.int32 if len(reps) < 2**31 else np.int64  # positions of pairs
-        self.order = np.argsort(reps, kind="stable").astype(narrow)
+        self.order = by_value(reps, int(reps.max()) + 1 if len(reps) else 0).astype(narrow)  # stable
         self.sorted_reps = reps[self.order].astype(key)
 
     def edges(self, start: int, stop: int) -> pl.DataFrame:
