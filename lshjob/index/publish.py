@@ -48,6 +48,7 @@ from lshjob.contracts.manifest import read_manifest as read_manifest_file
 from lshjob.contracts.tables import NEIGHBOURS as NEIGHBOUR_ROWS
 from lshjob.core.atomic import file_sha256
 from lshjob.errors import InputError, ParameterError
+from lshjob.index._ranking import by_value, edges_that_count, gathered, ranks, top_rows
 from lshjob.runtime.budget import release_freed
 
 NEIGHBOURS = "neighbours.parquet"
@@ -134,34 +135,45 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     by_rep = reps[order]
     first = np.searchsorted(by_rep, by_rep)
     keep = order[np.arange(len(order)) - first < cap]
-    head = pl.DataFrame({"rep": reps[keep], "neighbour": ids[keep].astype(key)})
+    head_rep, head_id = reps[keep], ids[keep].astype(key)
+    head_first = np.searchsorted(head_rep, np.arange(len(rep_of), dtype=key))  # where each group's head begins
     del order, by_rep, first, keep
 
     before_cut = np.where(sizes > 1, np.minimum(cap, sizes), 0).astype(np.int64)
-    np.add.at(before_cut, left, np.minimum(cap, sizes[right]))
-    np.add.at(before_cut, right, np.minimum(cap, sizes[left]))
+    before_cut += np.bincount(left, weights=np.minimum(cap, sizes[right]), minlength=len(sizes)).astype(np.int64)
+    before_cut += np.bincount(right, weights=np.minimum(cap, sizes[left]), minlength=len(sizes)).astype(np.int64)
     cum = np.cumsum(before_cut)
     del before_cut
     # A range's edges are gathered from the pairs by position, each side in its own order:
     # both directions of every pair are never made at once.
-    sides = [_Side(verified, left, "left_rep", "right_rep", key), _Side(verified, right, "right_rep", "left_rep", key)]
+    columns = {c: verified[c].to_numpy() for c in ("left_rep", "right_rep", "jaccard", "estimate", "bands_shared")}
+    sides = [_Side(columns, left, "left_rep", "right_rep", key), _Side(columns, right, "right_rep", "left_rep", key)]
     del left, right
     pieces, listed, start, n = [], [], 0, len(rep_of)
     own = np.zeros(n, dtype=bool)
     while start < n:  # representatives start..stop-1
         base = cum[start - 1] if start else 0
         stop = max(start + 1, int(np.searchsorted(cum, base + chunk_rows, side="right")))
-        inter = pl.concat([side.edges(start, stop) for side in sides]).join(
-            head.rename({"rep": "dst"}), on="dst").select("src", "neighbour", "jaccard", "estimate", "bands_shared")
-        groups = pl.Series(np.flatnonzero(sizes[start:stop] > 1) + start)
-        intra = head.filter(pl.col("rep").is_in(groups.implode())).select(
-            pl.col("rep").alias("src"), "neighbour", pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
+        # each edge's rows: the head of its dst's group, gathered by position (head is sorted by rep)
+        edges = pl.concat([side.edges(start, stop) for side in sides])
+        own_rows = np.where(sizes[start:stop] > 1, np.minimum(cap, sizes[start:stop]), 0)
+        edges = edges.filter(pl.Series(edges_that_count(
+            edges["src"].to_numpy(), edges["jaccard"].to_numpy(), np.minimum(cap, sizes[edges["dst"].to_numpy()]),
+            own_rows, start, stop - start, cap)))
+        dst = edges["dst"].to_numpy()
+        row, at = gathered(np.arange(len(dst)), head_first[dst], np.minimum(cap, sizes[dst]))
+        inter = pl.DataFrame({"src": edges["src"].to_numpy()[row], "neighbour": head_id[at],
+                              **{c: edges[c].to_numpy()[row] for c in ("jaccard", "estimate", "bands_shared")}})
+        lo, hi = np.searchsorted(head_rep, [start, stop])
+        mine = np.flatnonzero(sizes[head_rep[lo:hi]] > 1) + lo  # the range's groups of identical sets
+        intra = pl.DataFrame({"src": head_rep[mine], "neighbour": head_id[mine]}).with_columns(
+            pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
             pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
-        piece = (pl.concat([intra, inter])
-                 .sort(["src", "jaccard", "neighbour"], descending=[False, True, False])
-                 .group_by("src", maintain_order=True)
-                 .head(cap))
-        del inter, intra, groups
+        del edges, dst, row, at, mine
+        piece = pl.concat([intra, inter])
+        piece = piece[top_rows(piece["src"].to_numpy(), piece["jaccard"].to_numpy(), piece["neighbour"].to_numpy(),
+                               start, stop - start, cap)]
+        del inter, intra
         # a representative's list length, and the members its own list holds
         src, neighbour = piece["src"].to_numpy(), piece["neighbour"].to_numpy()
         listed.append(np.bincount(src - start, minlength=stop - start).astype(np.int32))
@@ -173,7 +185,7 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     per_group = pl.concat(pieces, rechunk=False) if pieces else pl.DataFrame(schema={
         "src": pl.Int32, "neighbour": pl.Int32, "jaccard": pl.Float64, "estimate": pl.Float64,
         "bands_shared": pl.Int32})
-    del sides, head, pieces
+    del sides, columns, head_rep, head_id, head_first, pieces
     # rows expanded for a member: its representative's list; published: without itself, cut at top_k
     rows = np.concatenate(listed)[reps].astype(np.int64) if listed else np.zeros(0, dtype=np.int64)
     published = int(np.minimum(rows - own[ids], top_k).sum())
@@ -183,48 +195,54 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
 
 class _Side:
     """One side of the verified pairs, in the order of its representative: the pairs whose
-    ``src`` side is in a range of representatives are a slice of ``order``."""
+    ``src`` side is in a range of representatives are a slice of ``order``. The columns are
+    numpy arrays, gathered by position (a gather from polars' columns of many chunks, as
+    verification's pieces make them, took several times as long)."""
 
-    def __init__(self, verified: pl.DataFrame, reps: np.ndarray, src: str, dst: str, key: type) -> None:
-        self.verified, self.src, self.dst = verified, src, dst
-        self.key = pl.Int32 if key is np.int32 else pl.Int64
+    def __init__(self, columns: dict, reps: np.ndarray, src: str, dst: str, key: type) -> None:
+        self.columns, self.src, self.dst, self.key = columns, src, dst, key
         narrow = np.int32 if len(reps) < 2**31 else np.int64  # positions of pairs
-        self.order = np.argsort(reps, kind="stable").astype(narrow)
+        self.order = by_value(reps, int(reps.max()) + 1 if len(reps) else 0).astype(narrow)  # stable
         self.sorted_reps = reps[self.order].astype(key)
 
     def edges(self, start: int, stop: int) -> pl.DataFrame:
         """(src, dst, jaccard, estimate, bands_shared) of the pairs whose ``src`` side is in
         start..stop-1."""
         lo, hi = np.searchsorted(self.sorted_reps, [start, stop])
-        rows = pl.Series(self.order[lo:hi])
-        return self.verified.select(
-            pl.col(self.src).gather(rows).cast(self.key).alias("src"),
-            pl.col(self.dst).gather(rows).cast(self.key).alias("dst"),
-            pl.col("jaccard").gather(rows), pl.col("estimate").gather(rows),
-            pl.col("bands_shared").gather(rows).cast(pl.Int32))
+        rows = self.order[lo:hi]
+        c = self.columns
+        return pl.DataFrame({"src": self.sorted_reps[lo:hi], "dst": c[self.dst][rows].astype(self.key),
+                             "jaccard": c["jaccard"][rows], "estimate": c["estimate"][rows],
+                             "bands_shared": c["bands_shared"][rows].astype(np.int32)})
 
 
 def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
     """The index's rows (module contract), a block of entities at a time, each block
-    expanding at most ``block_rows`` rows (or one entity's list)."""
+    expanding at most ``block_rows`` rows (or one entity's list). ``per_group`` is sorted by
+    ``src`` and rank (:func:`expand`), so a member's rows are its representative's list
+    gathered by position, without itself, cut at top_k: no join, no sort."""
     members, per_group, top_k = expansion.members, expansion.per_group, expansion.top_k
-    cum = np.cumsum(members["rows"].to_numpy())
+    ids, reps, lengths = (members[c].to_numpy() for c in ("id", "rep", "rows"))
+    src = per_group["src"].to_numpy()
+    listed = per_group["neighbour"].to_numpy()
+    list_first = np.searchsorted(src, np.arange(int(reps.max()) + 1 if len(reps) else 0, dtype=src.dtype))
+    cum = np.cumsum(lengths)
     start = 0
     while start < members.height:
         base = cum[start - 1] if start else 0
         stop = max(start + 1, int(np.searchsorted(cum, base + block_rows, side="right")))
-        block = members.slice(start, stop - start).select("id", "rep")
+        first = list_first[reps[start:stop]]  # where each member's list begins
+        owner, at = gathered(ids[start:stop], first, lengths[start:stop])
         start = stop
-        table = (
-            block.join(per_group, left_on="rep", right_on="src")
-            .filter(pl.col("id") != pl.col("neighbour"))
-            .sort(["id", "jaccard", "neighbour"], descending=[False, True, False])
-            .group_by("id", maintain_order=True)
-            .head(top_k)
-            .with_columns(rank=(pl.int_range(pl.len()).over("id") + 1).cast(pl.UInt32))
-        )
+        keep = listed[at] != owner  # not its own neighbour
+        owner, at = owner[keep], at[keep]
+        rank = ranks(owner)
+        keep = rank <= top_k
+        table = per_group.select(pl.col("neighbour", "jaccard", "estimate", "bands_shared")
+                                 .gather(pl.Series(at[keep]))).with_columns(
+            id=pl.Series(owner[keep]), rank=pl.Series(rank[keep], dtype=pl.UInt32))
         yield _with_keys(table, keys)
-        del table, block
+        del table, owner, at, keep, rank
     if members.height == 0:
         yield NEIGHBOUR_ROWS.empty(key=keys.dtype)
 

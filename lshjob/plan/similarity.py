@@ -105,20 +105,38 @@ def overlap_counts(offsets, elements, starts, members, a, allowed, inter, touche
     return nt
 
 
+@numba.njit(inline="always")
+def _overlaps(offsets, elements, starts, members, a, inter, touched):
+    """:func:`overlap_counts` with every entity allowed: the loop that visits every posting
+    of a sampled set, with one random access a visit (``inter``) instead of two."""
+    nt = 0
+    for j in range(offsets[a], offsets[a + 1]):
+        e = elements[j]
+        for t in range(starts[e], starts[e + 1]):
+            b = members[t]
+            if b == a:
+                continue
+            if inter[b] == 0:
+                touched[nt] = b
+                nt += 1
+            inter[b] += 1
+    return nt
+
+
 @numba.njit(parallel=True, cache=True)
 def _against_all_histogram(offsets, elements, starts, members, sizes, sample, nbins, threshold, chunks):
+    """``members``: the postings, int32 when the ids fit (half the bytes read a visit)."""
     n = offsets.shape[0] - 1
-    allowed = np.ones(n, dtype=np.bool_)
     counts = np.zeros((chunks, 2 * nbins), dtype=np.int64)
     sums = np.zeros((chunks, 2 * nbins), dtype=np.float64)
     identical = np.zeros(chunks, dtype=np.int64)
     per_entity = np.zeros((len(sample), ENTITY_BINS), dtype=np.float64)  # [s, bin]: pairs of sample[s]
     for c in numba.prange(chunks):
         inter = np.zeros(n, dtype=np.int32)
-        touched = np.empty(n, dtype=np.int64)
+        touched = np.empty(n, dtype=members.dtype)
         for s in range(c, len(sample), chunks):
             a = sample[s]
-            nt = overlap_counts(offsets, elements, starts, members, a, allowed, inter, touched)
+            nt = _overlaps(offsets, elements, starts, members, a, inter, touched)
             size_a = sizes[a]
             for q in range(nt):
                 b = touched[q]
@@ -304,7 +322,8 @@ def sample_histogram_from_sets(
     if members.size > len(order) and affordable >= min(MIN_AGAINST_ALL, len(order)):
         picked = np.sort(order[:affordable])
         counts, sums, identical, per_entity = _against_all_histogram(
-            offsets, dense, starts, posted, members.set_sizes, picked, HISTOGRAM_BINS,
+            offsets, dense, starts, posted.astype(np.int32) if members.size < 2**31 else posted,
+            members.set_sizes, picked, HISTOGRAM_BINS,
             2.0 if threshold is None else threshold, min(len(picked), 2 * numba.get_num_threads()),
         )
         # factor rescales from the input's own entity count to the requested total.

@@ -42,6 +42,20 @@ def exact_jaccard(offsets, elements, left, right):
     return out
 
 
+@numba.njit(parallel=True, cache=True)
+def exact_jaccard_between(left_offsets, left_elements, left, right_offsets, right_elements, right):
+    """Exact Jaccard of set ``left[p]`` of the first CSR and ``right[p]`` of the second (no
+    filtering; the same division as :func:`jaccard_between`, so the same float)."""
+    n = left.shape[0]
+    out = np.empty(n, dtype=np.float64)
+    for p in numba.prange(n):
+        a0, a1 = left_offsets[left[p]], left_offsets[left[p] + 1]
+        b0, b1 = right_offsets[right[p]], right_offsets[right[p] + 1]
+        inter = _intersection(left_elements, a0, a1, right_elements, b0, b1, 0)
+        out[p] = inter / ((a1 - a0) + (b1 - b0) - inter)
+    return out
+
+
 def jaccard_at_least(offsets, elements, left, right, threshold):
     """Exact Jaccard where it reaches ``threshold``, -1.0 elsewhere (both sides in one CSR)."""
     return jaccard_between(offsets, elements, left, offsets, elements, right, threshold)

@@ -7,7 +7,6 @@ import numpy as np
 import polars as pl
 
 from lshjob.core.sets import ElementSets
-from lshjob.core.slicing import slice_bounds
 from lshjob.index.verify._agreement import signature_agreement
 from lshjob.sign.signatures import SignatureParams, comparable, sign_membership
 
@@ -18,31 +17,67 @@ def add_estimates_between(verified: pl.DataFrame, left_sets: ElementSets, left_f
     """``estimate``, the signature estimate of each verified pair, by signing again only the sets
     that appear in a verified pair (no n x k matrix is kept for this); the two sides' sets given
     apart, as in :func:`lshjob.index.verify.local.verify_between`.
-    With ``max_bytes``, the pairs are taken a slice at a time whose signatures (two rows a
-    pair, raw and comparable, 8 bytes a position) take at most that many bytes."""
+
+    The sets are signed a block at a time (consecutive ids among those in a pair), each block
+    once per block of the other side it meets, and the pairs taken a pair of blocks at a time:
+    a set is signed a few times at most, however many pairs it is in. With ``max_bytes``, the
+    two blocks held (raw and comparable signatures, 8 bytes a position) take at most that many
+    bytes."""
     left_all = verified["left_rep"].to_numpy() - left_first
     right_all = verified["right_rep"].to_numpy() - right_first
-    step = len(left_all) if max_bytes is None else max(1024, max_bytes // (4 * 8 * params.perms))
-    estimates = []
-    for lo, hi in slice_bounds(len(left_all), step):
-        left, right = left_all[lo:hi], right_all[lo:hi]
-        if left_sets is right_sets and left_first == right_first:
-            left_matrix, left_row = _signed(left_sets, np.concatenate([left, right]), params)
-            right_matrix, right_row = left_matrix, left_row
-        else:
-            left_matrix, left_row = _signed(left_sets, left, params)
-            right_matrix, right_row = _signed(right_sets, right, params)
-        estimates.append(signature_agreement(left_matrix, left_row, np.ascontiguousarray(left),
-                                             right_matrix, right_row, np.ascontiguousarray(right)))
-        del left_matrix, right_matrix, left_row, right_row
-    est = np.concatenate(estimates) if estimates else np.empty(0, dtype=np.float64)
+    same = left_sets is right_sets and left_first == right_first
+    est = np.empty(len(left_all), dtype=np.float64)
+    if len(left_all):
+        per_set = (2 if params.scheme == "oph" else 1) * 8 * params.perms  # raw (and comparable, densified)
+        block = None if max_bytes is None else max(1024, max_bytes // (2 * per_set))
+        left_ids = _distinct(left_sets.size, left_all, right_all if same else None)
+        right_ids = left_ids if same else _distinct(right_sets.size, right_all)
+        left_blocks, left_of = _blocks(left_ids, left_all, block)
+        right_blocks, right_of = _blocks(right_ids, right_all, block)
+        # pairs grouped by their two blocks (a stable radix sort when the key fits 16 bits)
+        key = left_of.astype(np.int64) * len(right_blocks) + right_of
+        order = np.argsort(key.astype(np.uint16) if key.max() < 2**16 else key, kind="stable")
+        bounds = np.searchsorted(key[order], np.arange(len(left_blocks) * len(right_blocks) + 1))
+        for i, left_block in enumerate(left_blocks):
+            todo = [j for j in range(len(right_blocks))
+                    if bounds[i * len(right_blocks) + j + 1] > bounds[i * len(right_blocks) + j]]
+            if not todo:
+                continue
+            left_matrix, left_row = _signed(left_sets, left_block, params)
+            for j in todo:
+                if same and j == i:
+                    right_matrix, right_row = left_matrix, left_row
+                else:
+                    right_matrix, right_row = _signed(right_sets, right_blocks[j], params)
+                at = order[bounds[i * len(right_blocks) + j]:bounds[i * len(right_blocks) + j + 1]]
+                est[at] = signature_agreement(left_matrix, left_row, np.ascontiguousarray(left_all[at]),
+                                              right_matrix, right_row, np.ascontiguousarray(right_all[at]))
+                del right_matrix, right_row
+            del left_matrix, left_row
     return verified.with_columns(pl.Series("estimate", est)).select(
         "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
 
 
-def _signed(sets: ElementSets, wanted: np.ndarray, params: SignatureParams) -> tuple[np.ndarray, np.ndarray]:
-    """Signatures of the distinct ``wanted`` sets, and the row of each set id in them."""
-    ids = np.unique(wanted)
+def _distinct(size: int, ids: np.ndarray, more: np.ndarray | None = None) -> np.ndarray:
+    """The distinct values of ``ids`` (and ``more``), all in 0..size-1, ascending."""
+    seen = np.zeros(size, dtype=bool)
+    seen[ids] = True
+    if more is not None:
+        seen[more] = True
+    return np.flatnonzero(seen)
+
+
+def _blocks(ids: np.ndarray, wanted: np.ndarray, size: int | None) -> tuple[list[np.ndarray], np.ndarray]:
+    """``ids`` (sorted, distinct) cut into blocks of at most ``size`` (None: one block), and
+    the block of each of ``wanted`` (all among ``ids``)."""
+    if size is None or len(ids) <= size:
+        return [ids], np.zeros(len(wanted), dtype=np.int64)
+    firsts = ids[::size]
+    return [ids[lo:lo + size] for lo in range(0, len(ids), size)], np.searchsorted(firsts, wanted, side="right") - 1
+
+
+def _signed(sets: ElementSets, ids: np.ndarray, params: SignatureParams) -> tuple[np.ndarray, np.ndarray]:
+    """Signatures of the distinct sets ``ids`` (sorted), and the row of each set id in them."""
     matrix = comparable(sign_membership(sets, ids, params), params)
     row_of = np.full(sets.size, -1, dtype=np.int64)
     row_of[ids] = np.arange(len(ids))

@@ -7,6 +7,7 @@ pairs kept (:mod:`lshjob.index.verify.estimates`). Contract in :mod:`lshjob.inde
 
 from __future__ import annotations
 
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -15,7 +16,7 @@ import polars as pl
 from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
 from lshjob.index.verify._crowds import crowd_pairs_between, verify_crowds
-from lshjob.index.verify._jaccard import jaccard_between
+from lshjob.index.verify._jaccard import exact_jaccard_between, jaccard_between
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
 from lshjob.index.verify.estimates import add_estimates_between
 from lshjob.sign.signatures import SignatureParams
@@ -64,7 +65,7 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
             block = pl.concat(kept) if kept else None
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
                 continue
-            block = one_row_a_pair(block)
+            block = one_row_a_pair(block, partial(_exact, left, store.ranges[i][0], right, store.ranges[j][0]))
             if params is None:  # identical sets only, no signatures: the estimate is exact
                 block = block.with_columns(estimate=pl.col("jaccard")).select(
                     "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
@@ -99,26 +100,47 @@ def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first:
     )
 
 
-def one_row_a_pair(verified: pl.DataFrame) -> pl.DataFrame:
+def one_row_a_pair(verified: pl.DataFrame, jaccard_of=None) -> pl.DataFrame:
     """Verified rows with one row per pair: a join that wrote a row per band a pair met in
     (:mod:`lshjob.index.join.base`) repeats the pair, with the same Jaccard; its
     ``bands_shared`` is the sum of its rows'. A pair lies in one block of parts, so a block's
-    rows hold all of a pair's."""
+    rows hold all of a pair's. ``jaccard_of(left, right)``: the exact Jaccard of pairs, when
+    the caller holds the sets (lets rows of one band each be deduplicated by sorting the
+    pairs' keys alone, a third of the time of ordering the rows)."""
     left, right = verified["left_rep"].to_numpy(), verified["right_rep"].to_numpy()
     if len(left) < 2:
         return verified
     if right.max() < 2**32 and left.min() >= 0:  # one packed 64-bit key a pair: a numpy sort, no hash table
         key = (left.astype(np.uint64) << np.uint64(32)) | right.astype(np.uint64)
+        bands = verified["bands_shared"].to_numpy()
+        if jaccard_of is not None and bands.min() == 1 and bands.max() == 1:
+            key.sort()
+            starts = np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1]]))
+            if len(starts) == len(key):
+                return verified
+            counts = np.diff(np.append(starts, len(key))).astype(np.int32)
+            key = key[starts]
+            left = (key >> np.uint64(32)).astype(np.int64)
+            right = (key & np.uint64(0xFFFFFFFF)).astype(np.int64)
+            return pl.DataFrame({"left_rep": left, "right_rep": right, "jaccard": jaccard_of(left, right),
+                                 "bands_shared": counts}).select(verified.columns)
         order = np.argsort(key)
         key = key[order]
         starts = np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1]]))
         if len(starts) == len(key):
             return verified
-        bands = np.add.reduceat(verified["bands_shared"].to_numpy()[order], starts).astype(np.int32)
+        bands = np.add.reduceat(bands[order], starts).astype(np.int32)
         return verified[order[starts]].with_columns(bands_shared=pl.Series(bands))
     return (verified.group_by("left_rep", "right_rep")
             .agg(pl.col("jaccard").first(), pl.col("bands_shared").sum())
             .select(verified.columns))
+
+
+def _exact(left_sets: ElementSets, left_first: int, right_sets: ElementSets, right_first: int,
+           left: np.ndarray, right: np.ndarray) -> np.ndarray:
+    """Exact Jaccard of pairs of entity ids, the sets held as in :func:`verify_between`."""
+    return exact_jaccard_between(left_sets.offsets, left_sets.elements, left - left_first,
+                                 right_sets.offsets, right_sets.elements, right - right_first)
 
 
 def _check_within(ids: np.ndarray, first: int, size: int, side: str) -> None:

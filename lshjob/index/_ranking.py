@@ -1,0 +1,129 @@
+"""Publishing's compiled and numpy helpers: each representative's list ranked and cut
+(:func:`top_rows`), and a member's rows gathered from its representative's list by position
+(:func:`gathered`, :func:`ranks`)."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from lshjob.core._jit import numba
+
+
+@numba.njit(cache=True)
+def _grouped(src, first, groups):
+    """Rows by ``src`` (a counting sort; values first..first + groups - 1): (starts, order)."""
+    counts = np.zeros(groups + 1, dtype=np.int64)
+    for s in src:
+        counts[s - first + 1] += 1
+    starts = np.cumsum(counts)
+    fill = starts[:-1].copy()
+    order = np.empty(len(src), dtype=np.int64)
+    for i in range(len(src)):
+        g = src[i] - first
+        order[fill[g]] = i
+        fill[g] += 1
+    return starts, order
+
+
+@numba.njit(inline="always")
+def _before(x, y, jaccard, neighbour):
+    """Row x ranks before row y: higher Jaccard, or the same and a smaller neighbour."""
+    return jaccard[x] > jaccard[y] or (jaccard[x] == jaccard[y] and neighbour[x] < neighbour[y])
+
+
+@numba.njit(parallel=True, cache=True)
+def _ranked(starts, order, jaccard, neighbour, cap, out_starts, out_rows):
+    """Each group's first ``cap`` rows by Jaccard descending, ties by neighbour ascending,
+    written in rank order at ``out_starts[g]``: an insertion into the sorted first ``cap``
+    (the output slice itself), so a row that does not enter costs one comparison."""
+    for g in numba.prange(len(starts) - 1):
+        out = out_starts[g]
+        held = 0
+        for i in range(starts[g], starts[g + 1]):
+            row = order[i]
+            if held == cap and not _before(row, out_rows[out + cap - 1], jaccard, neighbour):
+                continue
+            at = held if held < cap else cap - 1  # the place of the new row, moved up
+            while at > 0 and _before(row, out_rows[out + at - 1], jaccard, neighbour):
+                if at < cap:
+                    out_rows[out + at] = out_rows[out + at - 1]
+                at -= 1
+            out_rows[out + at] = row
+            held = min(held + 1, cap)
+
+
+def by_value(values: np.ndarray, bound: int) -> np.ndarray:
+    """The positions of ``values`` (0..bound-1) ordered by value, stably (a counting sort:
+    the same order as ``np.argsort(values, kind="stable")``, in linear time)."""
+    return _grouped(np.ascontiguousarray(values), 0, bound)[1]
+
+
+def top_rows(src: np.ndarray, jaccard: np.ndarray, neighbour: np.ndarray, first: int, groups: int,
+             cap: int) -> np.ndarray:
+    """Positions of the rows that make each ``src``'s list (values first..first + groups - 1):
+    its rows ranked by Jaccard descending, ties by neighbour ascending (neighbours distinct
+    within a ``src``), cut at ``cap``; in order of ``src``, then rank. The same rows and order
+    as a sort by (src, -jaccard, neighbour) and the first ``cap`` of each src, without
+    sorting across lists."""
+    starts, order = _grouped(np.ascontiguousarray(src), first, groups)
+    kept = np.minimum(np.diff(starts), cap)
+    out_starts = np.concatenate([[0], np.cumsum(kept)]).astype(np.int64)
+    out_rows = np.empty(int(out_starts[-1]), dtype=np.int64)
+    _ranked(starts, order, np.ascontiguousarray(jaccard, dtype=np.float64), np.ascontiguousarray(neighbour),
+            cap, out_starts, out_rows)
+    return out_rows
+
+
+def gathered(ids: np.ndarray, first: np.ndarray, lengths: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each of ``ids`` repeated ``lengths`` times, and beside it the positions
+    ``first .. first + length - 1`` of its rows."""
+    total = int(lengths.sum())
+    starts = np.cumsum(lengths) - lengths
+    at = np.arange(total, dtype=np.int64) + np.repeat(first.astype(np.int64) - starts, lengths)
+    return np.repeat(ids, lengths), at
+
+
+def ranks(owner: np.ndarray) -> np.ndarray:
+    """1, 2, ... within each run of equal ``owner`` values."""
+    if len(owner) == 0:
+        return np.zeros(0, dtype=np.int64)
+    new = np.concatenate([[True], owner[1:] != owner[:-1]])
+    firsts = np.flatnonzero(new)
+    return np.arange(len(owner)) - np.repeat(firsts, np.diff(np.append(firsts, len(owner)))) + 1
+
+
+@numba.njit(parallel=True, cache=True)
+def _cut(starts, order, jaccard, weight, own, cap, keep):
+    """Per group: the edges a list of ``cap`` can take rows from. An edge brings ``weight``
+    rows of its Jaccard (a group's head), ``own[g]`` rows of 1.0 come first; once ``cap`` rows
+    are reached at value v, no row below v can enter, so edges below v are dropped (those at
+    v stay: their ties are broken by neighbour later)."""
+    for g in numba.prange(len(starts) - 1):
+        rows = order[starts[g]:starts[g + 1]]
+        if len(rows) == 0:
+            continue
+        values = -np.sort(-jaccard[rows])
+        weights = weight[rows][np.argsort(-jaccard[rows], kind="mergesort")]
+        held = own[g]
+        cutoff = -1.0
+        for i in range(len(values)):
+            held += weights[i]
+            if held >= cap:
+                cutoff = values[i]
+                break
+        if own[g] >= cap:
+            cutoff = 1.0
+        for r in rows:
+            keep[r] = jaccard[r] >= cutoff
+
+
+def edges_that_count(src: np.ndarray, jaccard: np.ndarray, weight: np.ndarray, own: np.ndarray, first: int,
+                     groups: int, cap: int) -> np.ndarray:
+    """Which edges can bring a row into their ``src``'s first ``cap`` (:func:`_cut`): the rows
+    of the others rank below ``cap`` rows of the kept ones, so ranking only the kept edges'
+    rows gives the same lists."""
+    starts, order = _grouped(np.ascontiguousarray(src), first, groups)
+    keep = np.zeros(len(src), dtype=np.bool_)
+    _cut(starts, order, np.ascontiguousarray(jaccard, dtype=np.float64), np.ascontiguousarray(weight, dtype=np.int64),
+         np.ascontiguousarray(own, dtype=np.int64), cap, keep)
+    return keep

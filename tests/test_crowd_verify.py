@@ -1,0 +1,63 @@
+"""Verification of crowds (lshjob/index/verify/_crowds.py): every pair of a crowd's members
+whose exact Jaccard reaches the threshold, found by prefix filtering within the crowd.
+Oracle: exact Jaccard of every pair of members with Python sets (itertools.combinations)."""
+
+from __future__ import annotations
+
+from itertools import combinations
+
+import numpy as np
+import polars as pl
+import pytest
+
+from lshjob.core.sets import ElementSets
+from lshjob.index.verify._crowds import crowd_pairs_between, verify_crowds
+
+
+def _crowded_sets(seed: int, crowds: int = 6):
+    """Long-tailed little sets: each crowd's members hold its popular element (one or two of
+    them, as a bucket of small sets of popular elements does) and a few others drawn from a
+    skewed catalogue, so pairs sharing one, two or more elements are all there; a few
+    members hold only the common elements."""
+    rng = np.random.default_rng(seed)
+    sets, crowd_rows = [], []
+    for c in range(crowds):
+        common = [1000 + c] if c % 2 else [1000 + c, 2000 + c]
+        for _ in range(int(rng.integers(20, 70))):
+            extra = int(min(rng.lognormal(1.0, 0.9), 14))
+            others = set(int(x) for x in rng.zipf(1.6, extra) % 60)
+            s = sorted(set(common) | others)
+            crowd_rows.append((c + 1, len(sets)))
+            sets.append(s)
+    # a set in two crowds, and identical members of one crowd
+    crowd_rows.append((2, 0))
+    sets.append(list(sets[-1]))
+    crowd_rows.append((crowds, len(sets) - 1))
+    return sets, crowd_rows
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+@pytest.mark.parametrize("threshold", [0.3, 0.5, 0.8])
+def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold):
+    sets, crowd_rows = _crowded_sets(seed)
+    keys = pl.Series("entity", np.arange(len(sets)))
+    rows = pl.DataFrame({"entity": np.repeat(np.arange(len(sets)), [len(s) for s in sets]),
+                         "element": np.concatenate([np.array(s) for s in sets])})
+    element_sets = ElementSets.from_sets(rows)
+    assert element_sets.keys.equals(keys)
+    table = (pl.DataFrame(crowd_rows, schema={"crowd": pl.Int64, "rep": pl.Int64}, orient="row")
+             .unique().sort("crowd", "rep"))
+    block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
+    got = verify_crowds(block, element_sets, 0, element_sets, 0, threshold, max_pairs=500)
+    # oracle: exact Jaccard with Python sets, every pair of every crowd (a pair once per crowd it is in)
+    want = []
+    for _, members in table.group_by("crowd"):
+        for a, b in combinations(sorted(members["rep"].to_list()), 2):
+            sa, sb = set(sets[a]), set(sets[b])
+            j = len(sa & sb) / len(sa | sb)
+            if j >= threshold:
+                want.append((a, b, j))
+    got_rows = sorted(zip(got["left_rep"].to_list(), got["right_rep"].to_list(), got["jaccard"].to_list()))
+    assert len(want) > 20  # the case holds pairs to find
+    assert got_rows == sorted(want)
+    assert (got["bands_shared"] == 1).all()
