@@ -57,19 +57,6 @@ def _need(la, lb, threshold):
     return int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9))
 
 
-@numba.njit(inline="always")
-def _position(values, x):
-    """Position of ``x`` in the sorted ``values`` (present)."""
-    lo, hi = 0, len(values)
-    while lo < hi:
-        mid = (lo + hi) >> 1
-        if values[mid] < x:
-            lo = mid + 1
-        else:
-            hi = mid
-    return lo
-
-
 @numba.njit(cache=True)
 def _rarity(offsets, elements, first, mem):
     """A crowd's distinct elements (sorted), how many members hold each, the rank of each,
@@ -123,7 +110,7 @@ def _prefix_index(offsets, elements, first, mem, threshold):
     for x in range(m):
         q = local_off[x]
         for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
-            u = _position(values, elements[j])
+            u = _first_at_least(values, 0, len(values), elements[j])  # present
             if freq[u] < m:
                 local[q] = rank[u]
                 q += 1

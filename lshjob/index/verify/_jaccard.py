@@ -29,17 +29,9 @@ def _intersection(a_elements, a0, a1, b_elements, b0, b1, need):
     return inter
 
 
-@numba.njit(parallel=True, cache=True)
 def exact_jaccard(offsets, elements, left, right):
-    """Exact Jaccard of each pair (no filtering)."""
-    n = left.shape[0]
-    out = np.empty(n, dtype=np.float64)
-    for p in numba.prange(n):
-        a0, a1 = offsets[left[p]], offsets[left[p] + 1]
-        b0, b1 = offsets[right[p]], offsets[right[p] + 1]
-        inter = _intersection(elements, a0, a1, elements, b0, b1, 0)
-        out[p] = inter / ((a1 - a0) + (b1 - b0) - inter)
-    return out
+    """Exact Jaccard of each pair (no filtering), both sides in one CSR."""
+    return exact_jaccard_between(offsets, elements, left, offsets, elements, right)
 
 
 @numba.njit(parallel=True, cache=True)
