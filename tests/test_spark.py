@@ -113,3 +113,16 @@ def test_a_run_on_a_cluster_of_separate_processes_publishes_the_local_rows(loans
     assert json.loads(done.stdout)["versions"]["spark_master"] == CLUSTER
     expected = pl.read_parquet(tmp_path / "local" / "neighbours.parquet")
     assert pl.read_parquet(tmp_path / "cluster" / "neighbours.parquet").equals(expected)
+
+
+@pytest.mark.parametrize(("master", "slots"), [
+    ("local", 1), ("local[3]", 3), ("local[3,2]", 3), ("local[*]", os.cpu_count()),
+    ("local-cluster[2,1,1024]", None), ("spark://master.example:7077", None), ("yarn", None), (None, None),
+])
+def test_local_masters_get_shuffle_partitions_by_their_task_slots(master, slots):
+    # Oracle: Spark's documented master URLs ("Master URLs", Spark configuration docs, from
+    # memory): local is one thread, local[K] and local[K,F] K threads, local[*] one per core;
+    # any other master is a cluster whose settings are left alone.
+    from lshjob.index.spark.session import _local_slots
+
+    assert _local_slots(master) == slots
