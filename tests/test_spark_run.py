@@ -89,6 +89,17 @@ def test_a_run_on_spark_from_file_uris_publishes_the_local_rows(mixed, spark_ses
     got = pl.read_parquet(tmp_path / "spark" / "neighbours.parquet")
     assert expected.height > 300 and (expected["jaccard"] == 1.0).sum() >= 12 * 3
     assert got.equals(expected)
+    # Oracle for the input's digest (hashed on the executors): hashlib over the file's bytes,
+    # chained as lshjob.core.digest documents (the sha256 of the files' hex digests, a line
+    # each), and the local run's manifest, which lshjob audit compares its events with.
+    import hashlib
+
+    file_sha = hashlib.sha256(mixed.read_bytes()).hexdigest()
+    inputs = json.loads((tmp_path / "spark" / "manifest.json").read_text())["inputs"]
+    local_inputs = json.loads((tmp_path / "local" / "manifest.json").read_text())["inputs"]
+    assert inputs["files"][0]["sha256"] == file_sha
+    assert inputs["files"][0]["bytes"] == mixed.stat().st_size
+    assert inputs["sha256"] == hashlib.sha256(f"{file_sha}\n".encode()).hexdigest() == local_inputs["sha256"]
 
 
 def test_a_run_on_spark_refuses_bad_input_with_one_line(mixed, spark_session, tmp_path):

@@ -75,6 +75,10 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
         read_from = str(Path(source).absolute()) if "://" not in source else source
         with stages("ingest"):
             sets, facts = steps.read(read_from, spec)
+            total_digest, file_records, no_digest = steps.input_digest(facts.files)
+            if no_digest:
+                warnings.append(f"{source}: the input files were not digested ({no_digest}); "
+                                "lshjob audit will not compare its events with them")
         with stages("collapse"):
             members, reps, n_reps = steps.collapse(sets)
         if facts.empty_after_filter:
@@ -117,8 +121,9 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
         manifest = Manifest(
             run_id=run_id, started_at=provenance.iso(started_at), host=provenance.host(),
             command=list(command) if command is not None else None,
-            inputs={"source": read_from, "given": source, "files": [{"path": f} for f in facts.files],
-                    "bytes": None, "rows": facts.rows_read, "sha256": None, "time_range": None},
+            inputs={"source": read_from, "given": source, "files": file_records or [{"path": f} for f in facts.files],
+                    "bytes": total_digest and total_digest[0], "rows": facts.rows_read,
+                    "sha256": total_digest and total_digest[1], "time_range": None},
             spec=asdict(spec), options=asdict(options), top_k_effective=top_k, memory_budget_bytes=memory,
             plan=plan.to_dict(), engines=options.engine_names(), counts=counts, skew=skew,
             peak_memory_bytes=stages.peak,

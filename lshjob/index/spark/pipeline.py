@@ -10,7 +10,7 @@ executor reaches. What each computes: :mod:`lshjob.index.spark.events` and
 
 from __future__ import annotations
 
-from lshjob.index.spark import events, ranking
+from lshjob.index.spark import digest, events, ranking
 from lshjob.index.spark.join import candidate_pairs
 from lshjob.index.spark.session import SparkStage, quiet_pandas_warning, session
 
@@ -33,6 +33,11 @@ class SparkPipeline(SparkStage):
         sets = events.element_sets(frame, spec, facts)
         self.held.append(sets)
         return sets, facts
+
+    def input_digest(self, files: list[str]):
+        """((bytes, sha256), records, None) of the files read, hashed on the executors, or
+        (None, [], why) (:mod:`lshjob.index.spark.digest`)."""
+        return digest.input_digest(session(), files)
 
     def collapse(self, sets):
         """(members, reps, representatives): ids, groups of identical sets (:mod:`ranking`)."""
