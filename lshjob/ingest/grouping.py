@@ -14,6 +14,7 @@ import numpy as np
 
 from lshjob.core._jit import numba
 from lshjob.core.compile_cache import readonly
+from lshjob.core.search import first_at_least
 
 
 def count_keys(slots, values, first, last, shares):
@@ -125,13 +126,7 @@ def lookup_bucketed(keys, starts, shift, values):
     for j in numba.prange(len(values)):
         v = values[j]
         b = 0 if v < first else min((v - first) >> shift, nb - 1)
-        lo, hi = starts[b], starts[b + 1]
-        while lo < hi:
-            mid = (lo + hi) >> 1
-            if keys[mid] < v:
-                lo = mid + 1
-            else:
-                hi = mid
+        lo = first_at_least(keys, starts[b], starts[b + 1], v)
         out[j] = lo if lo < len(keys) and keys[lo] == v else -1
     return out
 

@@ -16,6 +16,7 @@ import polars as pl
 from lshjob.core import hashing
 from lshjob.core._jit import numba
 from lshjob.core.compile_cache import readonly
+from lshjob.core.search import first_at_least
 from lshjob.core.sets import ElementSets
 from lshjob.errors import InputError
 from lshjob.plan.banding import PairHistogram
@@ -221,13 +222,7 @@ def _wanted_id(x, wanted, bitmap, shift):
     h = (np.uint64(x) * GOLDEN) >> shift
     if not (bitmap[h >> np.uint64(6)] >> (h & np.uint64(63))) & np.uint64(1):
         return -1
-    lo, hi = 0, len(wanted)  # binary search (numba's np.searchsorted costs a second to compile)
-    while lo < hi:
-        mid = (lo + hi) >> 1
-        if wanted[mid] < x:
-            lo = mid + 1
-        else:
-            hi = mid
+    lo = first_at_least(wanted, 0, len(wanted), x)
     if lo < len(wanted) and wanted[lo] == x:
         return lo
     return -1

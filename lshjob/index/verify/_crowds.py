@@ -9,6 +9,7 @@ import numpy as np
 import polars as pl
 
 from lshjob.core._jit import numba
+from lshjob.core.search import first_at_least
 from lshjob.index.verify._jaccard import _intersection
 
 MAX_PAIRS = 1 << 22  # pairs made at a time (three 8-byte values each)
@@ -110,7 +111,7 @@ def _prefix_index(offsets, elements, first, mem, threshold):
     for x in range(m):
         q = local_off[x]
         for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
-            u = _first_at_least(values, 0, len(values), elements[j])  # present
+            u = first_at_least(values, 0, len(values), elements[j])  # present
             if freq[u] < m:
                 local[q] = rank[u]
                 q += 1
@@ -149,18 +150,6 @@ def _keep(offsets, elements, first, mem, x, y, la, lb, need, threshold, out, out
     return out
 
 
-@numba.njit(inline="always")
-def _first_at_least(values, lo, hi, x):
-    """The first position in ``values[lo:hi]`` (ascending) holding at least ``x`` (or hi)."""
-    while lo < hi:
-        mid = (lo + hi) >> 1
-        if values[mid] < x:
-            lo = mid + 1
-        else:
-            hi = mid
-    return lo
-
-
 @numba.njit(parallel=True, cache=True)
 def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, threshold,
                         out_left, out_right, out_jac, found):
@@ -193,10 +182,10 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                 if size[y] >= threshold * la - 1e-9:
                     out = _keep(offsets, elements, first, mem, x, y, la, size[y], need, threshold, out,
                                 out_left, out_right, out_jac)
-            low = _first_at_least(size, 0, x, threshold * la - 1e-9)  # the size filter, sizes ascending
+            low = first_at_least(size, 0, x, threshold * la - 1e-9)  # the size filter, sizes ascending
             for q in range(local_off[x], local_off[x] + prefix[x]):
                 r = local[q]
-                for t in range(_first_at_least(posted, post_off[r], post_off[r + 1], low), post_off[r + 1]):
+                for t in range(first_at_least(posted, post_off[r], post_off[r + 1], low), post_off[r + 1]):
                     y = posted[t]
                     if y >= x:
                         break
