@@ -8,7 +8,6 @@ Oracle throughout: numba's own cache statistics (``dispatcher.stats.cache_hits``
 
 from __future__ import annotations
 
-import json
 import os
 import subprocess
 import sys
@@ -130,19 +129,19 @@ def test_quicksort_fallback_heapsort_sorts_like_numpy():
             assert np.array_equal(a[1:-1], np.sort(values))
 
 
-def test_compile_kernels_fills_the_cache_then_a_run_compiles_nothing(tmp_path):
-    """SLOW (pays the cold compile once: about a minute of one core). ``lshjob compile-kernels``
-    into an empty folder; then, in fresh processes, a run, a signing and an audit on data the
-    command never saw compile nothing (numba's misses), and the CLI prints no notice."""
-    cache = tmp_path / "cache"
-    filled = subprocess.run([sys.executable, "-m", "lshjob.cli.app", "compile-kernels", "--json"],
-                            env=_env(LSHJOB_CACHE_DIR=cache), capture_output=True, text=True, timeout=900)
-    assert filled.returncode == 0, filled.stderr
-    summary = json.loads(filled.stdout)
+def test_compile_kernels_fills_the_cache_then_a_run_compiles_nothing(tmp_path, compiled_kernels):
+    """``lshjob compile-kernels`` into the session's cache folder (tests/conftest.py runs it at
+    the session's start, paying the cold compile once; in a fresh clone the folder starts
+    empty); then, in fresh processes, a run, a signing and an audit on data the command never
+    saw compile nothing (numba's misses), and the CLI prints no notice."""
+    cache = Path(os.environ["LSHJOB_CACHE_DIR"])  # the session's folder (tests/conftest.py)
+    summary = compiled_kernels["summary"]
     assert summary["cache_dir"] == str(cache)
-    assert summary["kernels_compiled"] >= 10 and summary["compiled"]
     index, code = _cache_files(cache)
-    assert len(index) >= summary["kernels_compiled"] and code
+    assert index and code
+    if compiled_kernels["was_empty"]:  # a fresh clone, as in CI: the command filled an empty folder
+        assert summary["kernels_compiled"] >= 10 and summary["compiled"]
+        assert len(index) >= summary["kernels_compiled"]
 
     from lshjob.demo.generate import generate_events
 
