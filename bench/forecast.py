@@ -85,6 +85,8 @@ def main() -> None:
     ap.add_argument("--calibrate", action="store_true", help="run lshjob calibrate first (the runners-up's costs)")
     ap.add_argument("--small", type=float, default=0.25, help="the smaller run's share of the sample (nested)")
     ap.add_argument("--memory", help="memory budget of the runs and the forecast, e.g. 14GB (default: the run's)")
+    ap.add_argument("--replan", action="store_true",
+                    help="no runs: forecast again from the samples and runs kept under bench/cache/forecast")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     if args.memory:
@@ -100,21 +102,30 @@ def main() -> None:
         for spec in args.runs:
             shape, entities = spec.split(":")[0], int(spec.split(":")[1])
             full = _events(shape, entities)
-            sample = _sample(full, args.share, tmp / f"{shape}-sample.parquet")
-            smaller = _sample(sample, args.small, tmp / f"{shape}-smaller.parquet", seed=1)
-            _run(sample, tmp / f"{shape}-warm")  # untimed: kernels loaded, files in the page cache
-            histories = []
-            for name, path in (("smaller", smaller), ("sample", sample)):
-                small = _run(path, tmp / f"{shape}-{name}-index", args.repeat)
-                histories.append(tmp / f"{shape}-{name}-manifest.json")  # the fastest run's
-                histories[-1].write_text(json.dumps(small))
+            keep = CACHE_OUT / f"{shape}-{entities}"
+            keep.mkdir(parents=True, exist_ok=True)
+            sample, smaller = keep / "sample.parquet", keep / "smaller.parquet"
+            histories = [keep / "smaller.json", keep / "sample.json"]
+            if not args.replan:
+                _sample(full, args.share, sample)
+                _sample(sample, args.small, smaller, seed=1)
+                _run(sample, tmp / f"{shape}-warm")  # untimed: kernels loaded, files in the page cache
+                for name, path, history in (("smaller", smaller, histories[0]), ("sample", sample, histories[1])):
+                    history.write_text(json.dumps(_run(path, tmp / f"{shape}-{name}-index", args.repeat),
+                                                  indent=1, default=str))  # the fastest run's manifest
+            small = json.loads(histories[1].read_text())
             events = pl.scan_parquet(_files(full)).select(pl.len()).collect().item()
             plan = _lshjob("plan", "--threshold", str(THRESHOLD), "--sample", str(sample), "--entity", "entity",
                            "--element", "element", "--entities", str(entities), "--events", str(events),
                            *[a for h in histories for a in ("--history", str(h))], *MEMORY, env=env)
+            (keep / "plan.json").write_text(json.dumps(plan, indent=1, default=str))
             fc = plan["forecast"]
             try:
-                measured = _run(full, tmp / f"{shape}-full", args.repeat)
+                if args.replan:  # the full run kept from an earlier bench run
+                    measured = json.loads((keep / "full.json").read_text())
+                else:
+                    measured = _run(full, tmp / f"{shape}-full", args.repeat)
+                    (keep / "full.json").write_text(json.dumps(measured, indent=1, default=str))
             except SystemExit as refused:  # e.g. above --max-candidates: the forecast's warning says so
                 rows.append(f"| {shape} | {entities:,} | {events:,} | - | - | "
                             f"{fc['counts']['candidate_pairs']:.3g} / refused | {fc['seconds']['total']:.2f} / - | "
@@ -149,11 +160,6 @@ def main() -> None:
                     f"{k} {fc['counts'][k]:.4g} / {measured['counts'].get(k, 0):.4g}" for k in
                     ("representatives", "candidate_pairs", "verified_pairs", "published_rows")))
             print(details[-1], flush=True)
-            keep = CACHE_OUT / f"{shape}-{entities}"
-            keep.mkdir(parents=True, exist_ok=True)
-            smaller_run = json.loads(histories[0].read_text())
-            for name, record in (("smaller", smaller_run), ("sample", small), ("plan", plan), ("full", measured)):
-                (keep / f"{name}.json").write_text(json.dumps(record, indent=1, default=str))
     report = "\n".join([
         f"machine: {machine()} (shared with other jobs while it ran: timings noisy)",
         f"command: python bench/forecast.py --runs {' '.join(args.runs)} --repeat {args.repeat}"
@@ -167,7 +173,7 @@ def main() -> None:
         "| --- | ---: | ---: | ---: | --- | --- | --- | --- | --- | --- |",
         *rows, "", *details,
     ])
-    finish("Forecast from a 10% sample", report, not args.no_write)
+    finish("Forecast from a 10% sample", report, not (args.no_write or args.replan))
 
 
 if __name__ == "__main__":
