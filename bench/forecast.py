@@ -14,8 +14,12 @@ manifest), and per stage.
 Shapes: ``flat`` = bench/common.py branch network (log-normal set sizes, each patron with a
 bounded number of look-alikes); ``longtail`` = bench/common.py zipf_events (Zipf 1.2 element
 popularity, half the sets 1-5 popular elements, a fifth near-copies: candidates grow faster
-than N). Whole processes, wall clock; one untimed warm-up run first (kernels compiled); with
-``--repeat R`` the sample's run and the full run are each the fastest of R.
+than N). Whole processes, wall clock; one untimed warm-up run first (kernels compiled); each of
+the sample's runs is the fastest of ``--sample-repeat`` (default 3: on a shared machine, the one
+least slowed by others), the full run the fastest of ``--repeat``. The samples, the runs'
+manifests and the plan are kept under bench/cache/forecast/SHAPE-N; ``--replan`` forecasts
+again from them (no runs): a change of the forecast alone is compared on the same
+measurements.
 """
 
 from __future__ import annotations
@@ -82,6 +86,8 @@ def main() -> None:
                     help="shape:entities, shape flat or longtail")
     ap.add_argument("--share", type=float, default=0.1, help="the sample's share of the entities")
     ap.add_argument("--repeat", type=int, default=1, help="runs of each measurement; the fastest is kept")
+    ap.add_argument("--sample-repeat", type=int, default=3,
+                    help="runs of each of the sample's runs (cheap); the fastest is kept: the least loaded")
     ap.add_argument("--calibrate", action="store_true", help="run lshjob calibrate first (the runners-up's costs)")
     ap.add_argument("--small", type=float, default=0.25, help="the smaller run's share of the sample (nested)")
     ap.add_argument("--memory", help="memory budget of the runs and the forecast, e.g. 14GB (default: the run's)")
@@ -111,7 +117,7 @@ def main() -> None:
                 _sample(sample, args.small, smaller, seed=1)
                 _run(sample, tmp / f"{shape}-warm")  # untimed: kernels loaded, files in the page cache
                 for name, path, history in (("smaller", smaller, histories[0]), ("sample", sample, histories[1])):
-                    history.write_text(json.dumps(_run(path, tmp / f"{shape}-{name}-index", args.repeat),
+                    history.write_text(json.dumps(_run(path, tmp / f"{shape}-{name}-index", args.sample_repeat),
                                                   indent=1, default=str))  # the fastest run's manifest
             small = json.loads(histories[1].read_text())
             events = pl.scan_parquet(_files(full)).select(pl.len()).collect().item()
@@ -124,7 +130,9 @@ def main() -> None:
                 if args.replan:  # the full run kept from an earlier bench run
                     measured = json.loads((keep / "full.json").read_text())
                 else:
+                    load_before = os.getloadavg()[0]
                     measured = _run(full, tmp / f"{shape}-full", args.repeat)
+                    measured["bench_load_before"] = load_before
                     (keep / "full.json").write_text(json.dumps(measured, indent=1, default=str))
             except SystemExit as refused:  # e.g. above --max-candidates: the forecast's warning says so
                 rows.append(f"| {shape} | {entities:,} | {events:,} | - | - | "
@@ -132,7 +140,7 @@ def main() -> None:
                             f"- | run refused: {str(refused)[-160:]}; forecast warnings: {fc['warnings']} |")
                 print(rows[-1], flush=True)
                 continue
-            load = os.getloadavg()[0]
+            load = f"{measured.get('bench_load_before', float('nan')):.1f} before, {os.getloadavg()[0]:.1f} after"
             total_ratio = fc["seconds"]["total"] / measured["seconds"]["total"]
             cpu_fc = (fc.get("cpu_seconds") or {}).get("total")
             cpu_run = (measured.get("cpu_seconds") or {}).get("total")
@@ -148,7 +156,7 @@ def main() -> None:
                 f"{peak_ratio:.2f} | "
                 f"{'yes' if abs(total_ratio - 1) <= 0.25 and abs(peak_ratio - 1) <= 0.25 else 'no'} |")
             print(rows[-1], flush=True)
-            details.append(f"{shape} {entities:,} (load average {load:.1f} after the full run): per stage, forecast "
+            details.append(f"{shape} {entities:,} (load average {load} the full run): per stage, forecast "
                            "/ measured seconds: " + ", ".join(
                 f"{s} {fc['seconds'][s]:.2f} / {measured['seconds'].get(s, 0):.2f}" for s in fc["seconds"]
                 if s != "total") + "; CPU s: " + ", ".join(
@@ -162,7 +170,8 @@ def main() -> None:
             print(details[-1], flush=True)
     report = "\n".join([
         f"machine: {machine()} (shared with other jobs while it ran: timings noisy)",
-        f"command: python bench/forecast.py --runs {' '.join(args.runs)} --repeat {args.repeat}"
+        f"command: python bench/forecast.py --runs {' '.join(args.runs)} --repeat {args.repeat} "
+        f"--sample-repeat {args.sample_repeat}" + (" --replan (the runs kept from an earlier bench run)" if args.replan else "")
         + (" --calibrate" if args.calibrate else "") + (f" --memory {args.memory}" if args.memory else ""),
         f"sample: {args.share:.0%} of the entities, uniform, and {args.small:.0%} of it; threshold {THRESHOLD}; "
         "warm runs (kernels cached)",
@@ -173,7 +182,7 @@ def main() -> None:
         "| --- | ---: | ---: | ---: | --- | --- | --- | --- | --- | --- |",
         *rows, "", *details,
     ])
-    finish("Forecast from a 10% sample", report, not (args.no_write or args.replan))
+    finish("Forecast from a 10% sample", report, not args.no_write)
 
 
 if __name__ == "__main__":

@@ -152,3 +152,70 @@ def test_plan_scales_the_runs_of_its_sample(tmp_path):
     assert fc["seconds"]["total"] > 0 and fc["peak_memory_bytes"] > 0
     w = Workload.from_manifest(measured)
     assert w.entities == fc["counts"]["entities"]
+
+
+def _brute_similar(frame: pl.DataFrame, threshold: float) -> int:
+    """Pairs of distinct sets with Jaccard >= threshold, by Python sets (identical sets are one)."""
+    sets = {frozenset(g["element"].to_list()) for _, g in frame.group_by("entity")}
+    sets = list(sets)
+    return sum(len(a & b) / len(a | b) >= threshold for i, a in enumerate(sets) for b in sets[i + 1:])
+
+
+def test_similar_pairs_of_the_sample_are_those_verification_finds(tmp_path):
+    # Oracle: the verified pairs of a real run under the same plan (its manifest), and exact
+    # Jaccard by Python sets over all pairs (a bound: the buckets find most of them). Looking at
+    # a share of the first members only is unbiased: the mean over draws is near the whole count.
+    frame = _frame(1500, 8, 900)
+    events = tmp_path / "events.parquet"
+    frame.write_parquet(events)
+    m = run_job(events, SPEC, RunOptions(threshold=0.5, perms=64, bands=16, rows=4), tmp_path / "idx")
+    sets, _ = load_membership(events, SPEC)
+    profile = sample_profile(sets, 64, 16, 4, threshold=0.5)
+    left, right, looked = profile.similar_found(1.0, 10**9)
+    assert looked == 1.0 and len(left) == 2 * m["counts"]["verified_pairs"]
+    assert 0.8 * _brute_similar(frame, 0.5) <= len(left) / 2 <= _brute_similar(frame, 0.5)
+    from lshjob.jobs.sample_profile import similar_found
+    table = _profile_table(sets)
+    shares = [similar_found(table, sets, 0.5, 1.0, 10**9, limit=limit) for limit in (20_000, 60_000)]
+    for lo, hi, share in shares:
+        assert share < 1.0
+        assert len(lo) / (2 * share) == pytest.approx(m["counts"]["verified_pairs"], rel=0.35)
+
+
+def _profile_table(sets):
+    """The key table sample_profile builds (rep, a column a band, once), for looking at a share."""
+    from lshjob.index.band.local import bucket_keys_by_position
+    from lshjob.index.collapse import collapse_identical
+    from lshjob.sign.signatures import SignatureParams, comparable_by_position
+
+    rep_of, reps = collapse_identical(sets)
+    once = np.bincount(rep_of, minlength=sets.size)[reps] == 1
+    columns = comparable_by_position(sets, reps, SignatureParams(scheme="kperm", perms=64, seed=42), 64)
+    return bucket_keys_by_position(columns, reps, 16, 4).with_columns(once=pl.Series(once))
+
+
+def test_verified_pairs_projected_from_a_tenth_match_the_full_run(tmp_path):
+    # Oracle: the verified pairs of the full run (its manifest), against the projection from a
+    # uniform 10% sample of its entities and a run of that sample. Sets repeat (a third hold one
+    # of 300 sets of popular titles): weighting every pair of sets seen once in the sample by the
+    # average weight squared overcounts; the weights by partners must come closer.
+    from lshjob.plan.sample_weights import once_weight
+
+    frame = _repeating_sets(20_000, 4)
+    full_path, part_path = tmp_path / "full.parquet", tmp_path / "part.parquet"
+    frame.write_parquet(full_path)
+    picked = frame["entity"].unique().sample(fraction=0.1, seed=9)
+    frame.filter(pl.col("entity").is_in(picked.implode())).write_parquet(part_path)
+    options = RunOptions(threshold=0.5, perms=64, bands=32, rows=2)
+    full = run_job(full_path, SPEC, options, tmp_path / "full-idx")
+    part_sets, _ = load_membership(part_path, SPEC)
+    profile = sample_profile(part_sets, 64, 32, 2, threshold=0.5)
+    projected = project_counts(profile, [], {"perms": 64, "bands": 32}, 20_000, len(frame), 1.0, "kperm", 50,
+                               max_bucket=10**9)
+    truth = full["counts"]["verified_pairs"]
+    assert projected.workload.verified_pairs == pytest.approx(truth, rel=0.25)
+    w = once_weight(profile.multiplicities, profile.entities / 20_000)
+    left, right, _ = profile.similar_found(w, 10**9)
+    weights = np.where(profile.multiplicities == 1, w, 1.0)
+    flat = float((weights[left] * weights[right]).sum()) / 2
+    assert abs(flat / truth - 1) > abs(projected.workload.verified_pairs / truth - 1)
