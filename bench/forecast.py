@@ -50,7 +50,7 @@ def _lshjob(*args: str, env: dict | None = None) -> dict:
     return json.loads(done.stdout)
 
 
-MEMORY: list[str] = []  # --memory given to the runs and the plan, when the bench is told one
+MEMORY: list[str] = []  # --memory (and --max-candidates) given to the runs and the plan, when told one
 
 
 def _run(events: Path, out: Path, repeat: int = 1) -> dict:
@@ -93,10 +93,13 @@ def main() -> None:
     ap.add_argument("--memory", help="memory budget of the runs and the forecast, e.g. 14GB (default: the run's)")
     ap.add_argument("--replan", action="store_true",
                     help="no runs: forecast again from the samples and runs kept under bench/cache/forecast")
+    ap.add_argument("--max-candidates", help="--max-candidates of the runs and the forecast, e.g. 1e10")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     if args.memory:
         MEMORY.extend(["--memory", args.memory])
+    if args.max_candidates:
+        MEMORY.extend(["--max-candidates", args.max_candidates])
     rows, details = [], []
     with tempfile.TemporaryDirectory(prefix="lshjob-forecast-") as tmp:
         tmp = Path(tmp)
@@ -171,8 +174,10 @@ def main() -> None:
     report = "\n".join([
         f"machine: {machine()} (shared with other jobs while it ran: timings noisy)",
         f"command: python bench/forecast.py --runs {' '.join(args.runs)} --repeat {args.repeat} "
-        f"--sample-repeat {args.sample_repeat}" + (" --replan (the runs kept from an earlier bench run)" if args.replan else "")
-        + (" --calibrate" if args.calibrate else "") + (f" --memory {args.memory}" if args.memory else ""),
+        f"--sample-repeat {args.sample_repeat}"
+        + (" --replan (the runs kept from an earlier bench run)" if args.replan else "")
+        + (" --calibrate" if args.calibrate else "") + (f" --memory {args.memory}" if args.memory else "")
+        + (f" --max-candidates {args.max_candidates}" if args.max_candidates else ""),
         f"sample: {args.share:.0%} of the entities, uniform, and {args.small:.0%} of it; threshold {THRESHOLD}; "
         "warm runs (kernels cached)",
         "",

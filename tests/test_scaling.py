@@ -15,6 +15,7 @@ from lshjob.cli.app import app
 from lshjob.ingest.loading import load_membership
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.calibrate import calibration_events
+from lshjob.jobs.options import default_of
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.jobs.sample_profile import sample_profile
 from lshjob.plan import cost
@@ -154,6 +155,27 @@ def test_plan_scales_the_runs_of_its_sample(tmp_path):
     assert w.entities == fc["counts"]["entities"]
 
 
+def _long_tailed(n: int, seed: int) -> pl.DataFrame:
+    """Zipf(1.2) popular titles over a catalogue of 2n, log-normal set sizes (median 6), a fifth
+    of the entities near-copies of another (each title replaced with probability U(0, 0.4))."""
+    rng = np.random.default_rng(seed)
+    sizes = np.clip(np.round(rng.lognormal(np.log(6.0), 1.6, n)), 1, 500).astype(np.int64)
+    element = rng.zipf(1.2, int(sizes.sum())).astype(np.int64)
+    element[element > 2 * n] = rng.integers(1, 2 * n + 1, int((element > 2 * n).sum()))
+    entity = np.repeat(np.arange(n, dtype=np.int64), sizes)
+    copies = rng.choice(n, n // 5, replace=False)
+    offsets = np.concatenate([[0], np.cumsum(sizes)])
+    keep = ~np.isin(entity, copies)
+    ent, elem = [entity[keep]], [element[keep]]
+    for c, src in zip(copies, rng.integers(0, n, len(copies)), strict=True):
+        held = element[offsets[src]:offsets[src + 1]].copy()
+        swap = rng.random(len(held)) < rng.uniform(0, 0.4)
+        held[swap] = rng.integers(10**9, 2 * 10**9, int(swap.sum()))
+        ent.append(np.full(len(held), c, dtype=np.int64))
+        elem.append(held)
+    return pl.DataFrame({"entity": np.concatenate(ent), "element": np.concatenate(elem)}).unique()
+
+
 def _brute_similar(frame: pl.DataFrame, threshold: float) -> int:
     """Pairs of distinct sets with Jaccard >= threshold, by Python sets (identical sets are one)."""
     sets = {frozenset(g["element"].to_list()) for _, g in frame.group_by("entity")}
@@ -176,10 +198,11 @@ def test_similar_pairs_of_the_sample_are_those_verification_finds(tmp_path):
     assert 0.8 * _brute_similar(frame, 0.5) <= len(left) / 2 <= _brute_similar(frame, 0.5)
     from lshjob.jobs.sample_profile import similar_found
     table = _profile_table(sets)
-    shares = [similar_found(table, sets, 0.5, 1.0, 10**9, limit=limit) for limit in (20_000, 60_000)]
-    for lo, hi, share in shares:
-        assert share < 1.0
-        assert len(lo) / (2 * share) == pytest.approx(m["counts"]["verified_pairs"], rel=0.35)
+    ordered = 2 * profile.pair_rows()[0]
+    for part in (0.4, 0.7):
+        lo, _, share = similar_found(table, sets, 0.5, 1.0, 10**9, limit=int(part * ordered))
+        assert share == pytest.approx(part)
+        assert len(lo) / (2 * share) == pytest.approx(m["counts"]["verified_pairs"], rel=0.3)
 
 
 def _profile_table(sets):
@@ -190,32 +213,33 @@ def _profile_table(sets):
 
     rep_of, reps = collapse_identical(sets)
     once = np.bincount(rep_of, minlength=sets.size)[reps] == 1
-    columns = comparable_by_position(sets, reps, SignatureParams(scheme="kperm", perms=64, seed=42), 64)
+    params = SignatureParams(scheme=default_of("scheme"), perms=64, seed=default_of("seed"))
+    columns = comparable_by_position(sets, reps, params, 64)
     return bucket_keys_by_position(columns, reps, 16, 4).with_columns(once=pl.Series(once))
 
 
 def test_verified_pairs_projected_from_a_tenth_match_the_full_run(tmp_path):
     # Oracle: the verified pairs of the full run (its manifest), against the projection from a
-    # uniform 10% sample of its entities and a run of that sample. Sets repeat (a third hold one
-    # of 300 sets of popular titles): weighting every pair of sets seen once in the sample by the
-    # average weight squared overcounts; the weights by partners must come closer.
+    # uniform 10% sample of its entities. Long-tailed sets (half hold 1-5 titles, mostly popular
+    # ones, often repeated): weighting every pair of sets seen once in the sample by the average
+    # weight squared overcounts; the weights by partners must come closer.
     from lshjob.plan.sample_weights import once_weight
 
-    frame = _repeating_sets(20_000, 4)
+    frame = _long_tailed(30_000, 5)
     full_path, part_path = tmp_path / "full.parquet", tmp_path / "part.parquet"
     frame.write_parquet(full_path)
     picked = frame["entity"].unique().sample(fraction=0.1, seed=9)
     frame.filter(pl.col("entity").is_in(picked.implode())).write_parquet(part_path)
-    options = RunOptions(threshold=0.5, perms=64, bands=32, rows=2)
+    options = RunOptions(threshold=0.5, perms=64, bands=16, rows=4, max_bucket=10**6)
     full = run_job(full_path, SPEC, options, tmp_path / "full-idx")
     part_sets, _ = load_membership(part_path, SPEC)
-    profile = sample_profile(part_sets, 64, 32, 2, threshold=0.5)
-    projected = project_counts(profile, [], {"perms": 64, "bands": 32}, 20_000, len(frame), 1.0, "kperm", 50,
-                               max_bucket=10**9)
+    profile = sample_profile(part_sets, 64, 16, 4, threshold=0.5)
+    projected = project_counts(profile, [], {"perms": 64, "bands": 16}, 30_000, len(frame), 1.0, "kperm", 50,
+                               max_bucket=10**6)
     truth = full["counts"]["verified_pairs"]
     assert projected.workload.verified_pairs == pytest.approx(truth, rel=0.25)
-    w = once_weight(profile.multiplicities, profile.entities / 20_000)
-    left, right, _ = profile.similar_found(w, 10**9)
+    w = once_weight(profile.multiplicities, profile.entities / 30_000)
+    left, right, _ = profile.similar_found(w, 10**6)
     weights = np.where(profile.multiplicities == 1, w, 1.0)
     flat = float((weights[left] * weights[right]).sum()) / 2
     assert abs(flat / truth - 1) > abs(projected.workload.verified_pairs / truth - 1)

@@ -19,8 +19,11 @@ made by :mod:`lshjob.jobs.sample_profile`):
   join's oversize rule: they are counted apart and skipped);
 * whether the join writes a row per band a pair met in or one row a pair (its rule on the
   pair rows, as the sample's run repeated its pairs);
-* verified pairs in proportion to the pairs kept; published rows an entity grown as they
-  grew between the two largest runs, at most top-k.
+* verified pairs: the sample's similar pairs that share a bucket the join keeps at full size,
+  each counted once and weighted by what its two sets stand for at full size
+  (:func:`lshjob.plan.sample_weights.similar_at_full_size`; without them, the run's verified
+  pairs in proportion to the pairs kept); published rows an entity grown as they grew between
+  the two largest runs, at most top-k.
 
 Seconds (:func:`scale_seconds`): each stage's measured seconds are ``fixed + rate x driver``
 (:data:`DRIVERS`: the count the stage's work grows with); with runs of the sample at two
@@ -167,7 +170,8 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
     """The counts a run of ``entities`` sets and ``events`` events would see under the plan
     of ``figures`` (perms, bands), projected from the sample's ``profile`` (module docstring).
     ``runs``: the counts of runs of the sample (or of nested samples of it), smallest first:
-    the largest one's candidate and verified pairs are scaled as the pairs kept; its published
+    the largest one's candidate pairs are scaled as the pairs kept (its verified pairs too when
+    the profile has no similar pairs: ``SampleProfile.similar_found``); its published
     rows an entity grow as they grew from the smaller run to it (at most ``top_k``). Without
     runs the plan's predictions of ``figures`` are rescaled instead.
 
