@@ -94,6 +94,7 @@ def main() -> None:
     ap.add_argument("--replan", action="store_true",
                     help="no runs: forecast again from the samples and runs kept under bench/cache/forecast")
     ap.add_argument("--max-candidates", help="--max-candidates of the runs and the forecast, e.g. 1e10")
+    ap.add_argument("--forecast-only", action="store_true", help="the sample's runs and the forecast, no full run")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     if args.memory:
@@ -129,6 +130,15 @@ def main() -> None:
                            *[a for h in histories for a in ("--history", str(h))], *MEMORY, env=env)
             (keep / "plan.json").write_text(json.dumps(plan, indent=1, default=str))
             fc = plan["forecast"]
+            if args.forecast_only:  # the full run not made (its forecast says what it would take)
+                rows.append(f"| {shape} | {entities:,} | {events:,} | {small['counts']['entities']:,} "
+                            f"({small['seconds']['total']:.2f} s) | {plan['perms']}, {plan['bands']}, {plan['rows']} / "
+                            f"not run | {fc['counts']['candidate_pairs']:.3g} / - | {fc['seconds']['total']:.2f} / - | "
+                            f"{fc.get('cpu_seconds', {}).get('total', 0):.1f} / - | "
+                            f"{fc['peak_memory_bytes'] / 2**30:.2f} / - GiB | disk "
+                            f"{fc['disk_bytes']['total'] / 2**30:.1f} GiB forecast; warnings: {fc['warnings']} |")
+                print(rows[-1], flush=True)
+                continue
             try:
                 if args.replan:  # the full run kept from an earlier bench run
                     measured = json.loads((keep / "full.json").read_text())
@@ -177,7 +187,8 @@ def main() -> None:
         f"--sample-repeat {args.sample_repeat}"
         + (" --replan (the runs kept from an earlier bench run)" if args.replan else "")
         + (" --calibrate" if args.calibrate else "") + (f" --memory {args.memory}" if args.memory else "")
-        + (f" --max-candidates {args.max_candidates}" if args.max_candidates else ""),
+        + (f" --max-candidates {args.max_candidates}" if args.max_candidates else "")
+        + (" --forecast-only" if args.forecast_only else ""),
         f"sample: {args.share:.0%} of the entities, uniform, and {args.small:.0%} of it; threshold {THRESHOLD}; "
         "warm runs (kernels cached)",
         "",
