@@ -57,17 +57,17 @@ def sample_profile(sets: ElementSets, perms: int, bands: int, rows: int, scheme:
 
 
 def similar_found(table: pl.DataFrame, sets: ElementSets, threshold: float, weight, max_bucket: float,
-                  limit: int = PAIR_ROWS) -> float:
-    """Pairs of Jaccard similarity at least ``threshold`` that share a bucket of at most
-    ``max_bucket`` members at full size (the join skips larger ones), where each representative
-    seen once in the sample stands for ``weight`` at full size and the others for themselves:
-    the Horvitz-Thompson sum of the product of its members' weights (:mod:`lshjob.plan.scaling`);
-    ``weight``: one a representative, in the order of ``table``, or one number for all those seen
-    once (1 for the others). ``table``: the sample's key table (``rep``, ``once``, a
-    column a band). A pair that meets in several bands is counted once: it is verified if
-    any of its buckets is kept. When the kept buckets hold more than ``limit`` ordered pairs,
-    only the pairs whose first member is in a uniform share of the representatives are
-    looked at, and the sum is divided by that share."""
+                  limit: int = PAIR_ROWS) -> tuple[np.ndarray, np.ndarray, float]:
+    """The sample's pairs of Jaccard similarity at least ``threshold`` that share a bucket of
+    at most ``max_bucket`` members at full size (the join skips larger ones), as (first
+    members, second members, share looked at): positions in ``table``, each pair in both
+    orders. A bucket's size at full size is the sum of its members' weights: ``weight``, one a
+    representative in the order of ``table``, or one number for those seen once (1 for the
+    others; :mod:`lshjob.plan.sample_weights`). ``table``: the sample's key table (``rep``,
+    ``once``, a column a band). A pair that meets in several bands is there once: it is
+    verified if any of its buckets is kept. When the kept buckets hold more than ``limit``
+    ordered pairs, only those whose first member is in a uniform share of the representatives
+    are looked at (the share returned)."""
     n = table.height
     once = table["once"].to_numpy().astype(bool)
     weights = (np.asarray(weight, dtype=np.float64) if np.ndim(weight) else np.where(once, float(weight), 1.0))
@@ -80,7 +80,7 @@ def similar_found(table: pl.DataFrame, sets: ElementSets, threshold: float, weig
         ordered += float((sizes["m"].cast(pl.Float64) * (sizes["m"] - 1)).sum())
         kept.append(sizes.select(name))
     if ordered == 0:
-        return 0.0
+        return np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64), 1.0
     share = min(1.0, limit / ordered)
     # the first members looked at: drawn by a hash of the position, the same whatever the band
     indexed = indexed.with_columns(picked=pl.col("idx").hash(seed=7).cast(pl.Float64) / 2.0**64 < share)

@@ -129,7 +129,8 @@ class SampleProfile:
     bucket_counts: np.ndarray
     bands: int
     planner_visits: float = 0.0
-    # similar pairs found at full size: (weight of a set seen once, max_bucket) -> pairs, when known
+    # the similar pairs of buckets kept at full size, when known: (weights, max_bucket) -> (first
+    # members, second members, share looked at) (lshjob.jobs.sample_profile.similar_found)
     similar_found: object = field(default=None, compare=False, repr=False)
 
     def visits_at(self, entities: float) -> float:
@@ -201,7 +202,7 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
         candidates = kept_full if rows_per_band else kept_full / repeats
         if last.skew is None:  # no skew report: the run's own count, scaled
             candidates = run.candidate_pairs * kept_ratio
-        verified = similar_full if similar_full is not None else run.verified_pairs * kept_ratio
+        verified = similar_full if similar_n else run.verified_pairs * kept_ratio
         published = entities * per_entity_rows([r.workload for r in runs], entities, top_k)
         basis = "the sample's run"
     else:  # the planner's predictions at this size assume no collapse and no skipped buckets
