@@ -15,6 +15,7 @@ from lshjob.cli.app import app
 from lshjob.ingest.loading import load_membership
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.calibrate import calibration_events
+from lshjob.jobs.options import default_of
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.jobs.sample_profile import sample_profile
 from lshjob.plan import cost
@@ -152,3 +153,119 @@ def test_plan_scales_the_runs_of_its_sample(tmp_path):
     assert fc["seconds"]["total"] > 0 and fc["peak_memory_bytes"] > 0
     w = Workload.from_manifest(measured)
     assert w.entities == fc["counts"]["entities"]
+
+
+def _long_tailed(n: int, seed: int) -> pl.DataFrame:
+    """Zipf(1.2) popular titles over a catalogue of 2n, log-normal set sizes (median 6), a fifth
+    of the entities near-copies of another (each title replaced with probability U(0, 0.4))."""
+    rng = np.random.default_rng(seed)
+    sizes = np.clip(np.round(rng.lognormal(np.log(6.0), 1.6, n)), 1, 500).astype(np.int64)
+    element = rng.zipf(1.2, int(sizes.sum())).astype(np.int64)
+    element[element > 2 * n] = rng.integers(1, 2 * n + 1, int((element > 2 * n).sum()))
+    entity = np.repeat(np.arange(n, dtype=np.int64), sizes)
+    copies = rng.choice(n, n // 5, replace=False)
+    offsets = np.concatenate([[0], np.cumsum(sizes)])
+    keep = ~np.isin(entity, copies)
+    ent, elem = [entity[keep]], [element[keep]]
+    for c, src in zip(copies, rng.integers(0, n, len(copies)), strict=True):
+        held = element[offsets[src]:offsets[src + 1]].copy()
+        swap = rng.random(len(held)) < rng.uniform(0, 0.4)
+        held[swap] = rng.integers(10**9, 2 * 10**9, int(swap.sum()))
+        ent.append(np.full(len(held), c, dtype=np.int64))
+        elem.append(held)
+    return pl.DataFrame({"entity": np.concatenate(ent), "element": np.concatenate(elem)}).unique()
+
+
+def _brute_similar(frame: pl.DataFrame, threshold: float) -> int:
+    """Pairs of distinct sets with Jaccard >= threshold, by Python sets (identical sets are one)."""
+    sets = {frozenset(g["element"].to_list()) for _, g in frame.group_by("entity")}
+    sets = list(sets)
+    return sum(len(a & b) / len(a | b) >= threshold for i, a in enumerate(sets) for b in sets[i + 1:])
+
+
+def test_similar_pairs_of_the_sample_are_those_verification_finds(tmp_path):
+    # Oracle: the verified pairs of a real run under the same plan (its manifest), and exact
+    # Jaccard by Python sets over all pairs (a bound: the buckets find most of them). Looking at
+    # a share of the first members only is unbiased: the mean over draws is near the whole count.
+    frame = _frame(800, 8, 500)
+    events = tmp_path / "events.parquet"
+    frame.write_parquet(events)
+    m = run_job(events, SPEC, RunOptions(threshold=0.5, perms=64, bands=16, rows=4), tmp_path / "idx")
+    sets, _ = load_membership(events, SPEC)
+    profile = sample_profile(sets, 64, 16, 4, threshold=0.5)
+    left, right, looked = profile.similar_found(1.0, 10**9)
+    assert looked == 1.0 and len(left) == 2 * m["counts"]["verified_pairs"]
+    exact = _brute_similar(frame, 0.5)
+    assert 0.8 * exact <= len(left) / 2 <= exact
+    from lshjob.jobs.sample_profile import similar_found
+    table = _profile_table(sets)
+    ordered = 2 * profile.pair_rows()[0]
+    for part in (0.4, 0.7):
+        lo, _, share = similar_found(table, sets, 0.5, 1.0, 10**9, limit=int(part * ordered))
+        assert share == pytest.approx(part, rel=0.01)
+        assert len(lo) / (2 * share) == pytest.approx(m["counts"]["verified_pairs"], rel=0.3)
+
+
+def _profile_table(sets):
+    """The key table sample_profile builds (rep, a column a band, once), for looking at a share."""
+    from lshjob.index.band.local import bucket_keys_by_position
+    from lshjob.index.collapse import collapse_identical
+    from lshjob.sign.signatures import SignatureParams, comparable_by_position
+
+    rep_of, reps = collapse_identical(sets)
+    once = np.bincount(rep_of, minlength=sets.size)[reps] == 1
+    params = SignatureParams(scheme=default_of("scheme"), perms=64, seed=default_of("seed"))
+    columns = comparable_by_position(sets, reps, params, 64)
+    return bucket_keys_by_position(columns, reps, 16, 4).with_columns(once=pl.Series(once))
+
+
+def test_verified_pairs_projected_from_a_tenth_match_the_full_run(tmp_path):
+    # Oracle: the verified pairs of the full run (its manifest), against the projection from a
+    # uniform 10% sample of its entities. Long-tailed sets (half hold 1-5 titles, mostly popular
+    # ones, often repeated): weighting every pair of sets seen once in the sample by the average
+    # weight squared overcounts; the weights by partners must come closer.
+    from lshjob.plan.sample_weights import once_weight
+
+    frame = _long_tailed(30_000, 5)
+    full_path, part_path = tmp_path / "full.parquet", tmp_path / "part.parquet"
+    frame.write_parquet(full_path)
+    picked = frame["entity"].unique().sample(fraction=0.1, seed=9)
+    frame.filter(pl.col("entity").is_in(picked.implode())).write_parquet(part_path)
+    options = RunOptions(threshold=0.5, perms=64, bands=16, rows=4, max_bucket=10**6)
+    full = run_job(full_path, SPEC, options, tmp_path / "full-idx")
+    part_sets, _ = load_membership(part_path, SPEC)
+    profile = sample_profile(part_sets, 64, 16, 4, threshold=0.5)
+    projected = project_counts(profile, [], {"perms": 64, "bands": 16}, 30_000, len(frame), 1.0, "kperm", 50,
+                               max_bucket=10**6)
+    truth = full["counts"]["verified_pairs"]
+    assert projected.workload.verified_pairs == pytest.approx(truth, rel=0.25)
+    w = once_weight(profile.multiplicities, profile.entities / 30_000)
+    left, right, _ = profile.similar_found(w, 10**6)
+    weights = np.where(profile.multiplicities == 1, w, 1.0)
+    flat = float((weights[left] * weights[right]).sum()) / 2
+    assert abs(flat / truth - 1) > abs(projected.workload.verified_pairs / truth - 1)
+
+
+def test_memory_grows_from_the_larger_run_at_most_a_word_a_word():
+    # Oracle: algebra on the rule of scale_memory. A stage whose peak grows by 100 MB between
+    # two small runs (the process's own buffers) grows beyond the larger run by at most 8 bytes
+    # a driver word; one growing gently follows the line through the runs from the larger run's
+    # peak; none is forecast below the larger run's own peak.
+    from lshjob.plan.scaling import MEMORY_DRIVERS, WORD_BYTES, scale_memory
+
+    def load(n):
+        return Workload(events=40 * n, entities=n, membership_rows=40 * n, representatives=n, perms=64, bands=16,
+                        scheme="kperm", candidate_pairs=50 * n, verified_pairs=n, published_rows=5 * n)
+
+    small, big, target = load(10_000), load(40_000), load(1_000_000)
+    steep = {s: 300e6 for s in cost.STAGES} | {"verify": 300e6}
+    steep_big = {s: 300e6 for s in cost.STAGES} | {"verify": 400e6}
+    memory = 8 * 2**30
+    out = scale_memory(cost.shipped_model(), [(small, steep, memory), (big, steep_big, memory)], target, memory)
+    grow = MEMORY_DRIVERS["verify"](target, None) - MEMORY_DRIVERS["verify"](big, None)
+    assert out["verify"] == pytest.approx(400e6 + WORD_BYTES * grow)
+    assert out["ingest"] == pytest.approx(300e6)  # flat between the runs: the larger run's own peak
+    d0, d1 = MEMORY_DRIVERS["verify"](small, None), MEMORY_DRIVERS["verify"](big, None)
+    gentle_big = dict(steep) | {"verify": 300e6 + 2.0 * (d1 - d0)}  # 2 bytes a word
+    out = scale_memory(cost.shipped_model(), [(small, steep, memory), (big, gentle_big, memory)], target, memory)
+    assert out["verify"] == pytest.approx(gentle_big["verify"] + 2.0 * grow)

@@ -216,7 +216,7 @@ def _projection(plan: Plan, shape: dict, samples: list, load: Workload, scheme: 
     largest run of the sample (:func:`lshjob.plan.scaling.project_counts`)."""
     from lshjob.jobs.sample_profile import sample_profile
 
-    profile = sample_profile(shape["sets"], plan.perms, plan.bands, plan.rows, scheme, plan.seed)
+    profile = sample_profile(shape["sets"], plan.perms, plan.bands, plan.rows, scheme, plan.seed, plan.threshold)
     figures = dict(plan.predicted or {}, perms=plan.perms, bands=plan.bands)
     projected = project_counts(profile, samples, figures, load.entities, load.events,
                                load.membership_rows / max(load.events, 1), scheme, top_k, JoinSettings.max_bucket,

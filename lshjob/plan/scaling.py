@@ -19,8 +19,11 @@ made by :mod:`lshjob.jobs.sample_profile`):
   join's oversize rule: they are counted apart and skipped);
 * whether the join writes a row per band a pair met in or one row a pair (its rule on the
   pair rows, as the sample's run repeated its pairs);
-* verified pairs in proportion to the pairs kept; published rows an entity grown as they
-  grew between the two largest runs, at most top-k.
+* verified pairs: the sample's similar pairs that share a bucket the join keeps at full size,
+  each counted once and weighted by what its two sets stand for at full size
+  (:func:`lshjob.plan.sample_weights.similar_at_full_size`; without them, the run's verified
+  pairs in proportion to the pairs kept); published rows an entity grown as they grew between
+  the two largest runs, at most top-k.
 
 Seconds (:func:`scale_seconds`): each stage's measured seconds are ``fixed + rate x driver``
 (:data:`DRIVERS`: the count the stage's work grows with); with runs of the sample at two
@@ -29,7 +32,8 @@ the larger run's seconds (process start, imports and compiled-kernel loads are n
 with one run, the cost model's constant, at most half the run's seconds. The rate is the
 largest run's own: a run measured now, on this machine, under its present load. CPU seconds
 (a manifest's ``cpu_seconds``) scale the same way. Peak memory (:func:`scale_memory`): the
-line through the runs against :data:`MEMORY_DRIVERS`, the process's own memory its intercept.
+largest run's own peak, grown by the slope of the line through the runs against
+:data:`MEMORY_DRIVERS`, at most a word a word of the driver.
 """
 
 from __future__ import annotations
@@ -41,6 +45,7 @@ import numpy as np
 
 from lshjob.plan.cost import STAGES, CostModel, Workload
 from lshjob.plan.forecast import SLICE_ROW_BYTES
+from lshjob.plan.sample_weights import shlosser_distinct, similar_at_full_size
 from lshjob.plan.similarity import AGAINST_ALL_BUDGET
 from lshjob.runtime.budget import Budget, default_memory
 
@@ -48,6 +53,7 @@ from lshjob.runtime.budget import Budget, default_memory
 # 1.7 s CPU against 28 s for the same 97M pair rows (docs/performance.md, long-tailed data at 300k)
 ROWS_PER_BAND_JOIN = 1.7 / 28
 MAX_FIXED_SHARE = 0.5  # a stage's fixed seconds: at most this share of the largest sample run's
+WORD_BYTES = 8.0  # a stage's peak grows beyond the sample run's by at most a word a word of its driver
 
 
 # the plan stage: a set's row passed over while indexing the sampled entities' elements, against a
@@ -95,7 +101,7 @@ def _signed(w: Workload, slice_rows: float | None) -> float:
 
 # what each stage's peak resident memory grows with, in 8-byte words: the sets it holds, and
 # its own tables (signing and banding a slice of representatives at a time; verification its
-# candidates in blocks, the pairs it keeps whole)
+# candidates, publishing the pairs it keeps)
 MEMORY_DRIVERS = {
     "ingest": lambda w, rows: w.events,
     "collapse": lambda w, rows: w.membership_rows,
@@ -103,26 +109,9 @@ MEMORY_DRIVERS = {
     "sign": lambda w, rows: w.membership_rows + _signed(w, rows),
     "band": lambda w, rows: w.membership_rows + w.bucket_rows + _signed(w, rows),
     "join": lambda w, rows: w.membership_rows + w.bucket_rows,
-    "verify": lambda w, rows: w.membership_rows + 4 * w.verified_pairs,
+    "verify": lambda w, rows: w.membership_rows + w.candidate_pairs,
     "publish": lambda w, rows: w.membership_rows + 4 * w.verified_pairs + 4 * w.published_rows,
 }
-
-
-def shlosser_distinct(multiplicities: np.ndarray, share: float) -> float:
-    """Distinct values in the whole population from a Bernoulli sample of a ``share`` of its
-    rows in which distinct value i occurs ``multiplicities[i]`` times: Shlosser's estimator
-    d + f1 * sum_i (1-q)^i f_i / sum_i i q (1-q)^(i-1) f_i, f_i the values seen i times
-    (Shlosser 1981, as given by Haas, Naughton, Seshadri and Stokes, VLDB 1995, eq. 11)."""
-    m = np.asarray(multiplicities, dtype=np.int64)
-    d = float(len(m))
-    if share >= 1.0 or d == 0:
-        return d
-    f = np.bincount(m).astype(np.float64)
-    i = np.arange(len(f), dtype=np.float64)
-    q = float(share)
-    num = float((np.power(1 - q, i) * f)[1:].sum())
-    den = float((i * q * np.power(1 - q, np.maximum(i - 1, 0)) * f)[1:].sum())
-    return d + (f[1] if len(f) > 1 else 0.0) * num / den if den > 0 else d
 
 
 @dataclass(frozen=True)
@@ -140,6 +129,9 @@ class SampleProfile:
     bucket_counts: np.ndarray
     bands: int
     planner_visits: float = 0.0
+    # the similar pairs of buckets kept at full size, when known: (weights, max_bucket) -> (first
+    # members, second members, share looked at) (lshjob.jobs.sample_profile.similar_found)
+    similar_found: object = field(default=None, compare=False, repr=False)
 
     def visits_at(self, entities: float) -> float:
         """The planner's posting visits at ``entities``: posting lists grow with the entities
@@ -179,7 +171,8 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
     """The counts a run of ``entities`` sets and ``events`` events would see under the plan
     of ``figures`` (perms, bands), projected from the sample's ``profile`` (module docstring).
     ``runs``: the counts of runs of the sample (or of nested samples of it), smallest first:
-    the largest one's candidate and verified pairs are scaled as the pairs kept; its published
+    the largest one's candidate pairs are scaled as the pairs kept (its verified pairs too when
+    the profile has no similar pairs: ``SampleProfile.similar_found``); its published
     rows an entity grow as they grew from the smaller run to it (at most ``top_k``). Without
     runs the plan's predictions of ``figures`` are rescaled instead.
 
@@ -198,6 +191,10 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
     all_n, kept_n = profile.pair_rows(1.0, max_bucket)
     all_full, kept_full = profile.pair_rows(weight, max_bucket)
     kept_ratio = kept_full / kept_n if kept_n > 0 else growth * growth
+    similar_n = similar_full = None  # similar pairs of kept buckets, in the sample and at full size
+    if profile.similar_found is not None:
+        similar_n, similar_full = similar_at_full_size(profile.similar_found, profile.multiplicities, share,
+                                                       max_bucket)
     rows_per_band = False
     if run is not None and run.candidate_pairs > 0:
         repeats = last.repeats
@@ -205,12 +202,13 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
         candidates = kept_full if rows_per_band else kept_full / repeats
         if last.skew is None:  # no skew report: the run's own count, scaled
             candidates = run.candidate_pairs * kept_ratio
-        verified = run.verified_pairs * kept_ratio
+        verified = similar_full if similar_n else run.verified_pairs * kept_ratio
         published = entities * per_entity_rows([r.workload for r in runs], entities, top_k)
         basis = "the sample's run"
     else:  # the planner's predictions at this size assume no collapse and no skipped buckets
         candidates = kept_full
-        verified = figures.get("expected_verified", 0.0) * (kept_full / all_full if all_full > 0 else 1.0)
+        verified = (similar_full if similar_full is not None else
+                    figures.get("expected_verified", 0.0) * (kept_full / all_full if all_full > 0 else 1.0))
         published = 2.0 * verified
         basis = "the sample's buckets"
     published = min(published, entities * top_k)
@@ -222,7 +220,9 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
              "weight_of_sets_seen_once": round(weight, 4),
              "sample_pair_rows": round(all_n), "pair_rows": round(all_full), "pair_rows_kept": round(kept_full),
              "pairs_basis": basis, "max_bucket": max_bucket, "rows_per_band": rows_per_band,
-             "sample_rows_per_band": bool(last and last.rows_per_band)}
+             "sample_rows_per_band": bool(last and last.rows_per_band),
+             "similar_pairs": None if similar_full is None else round(similar_full),
+             "sample_similar_pairs": None if similar_n is None else round(similar_n)}
     return Projection(w, facts)
 
 
@@ -280,9 +280,11 @@ def scale_seconds(model: CostModel, runs: list[tuple[Workload, dict]], target: W
 def scale_memory(model: CostModel, runs: list[tuple[Workload, dict, float]], target: Workload,
                  memory: float) -> dict:
     """Peak resident memory per stage at ``target`` from ``runs`` of the sample (each its counts
-    and its manifest's ``peak_memory_bytes``), smallest first: the line through the runs
-    against :data:`MEMORY_DRIVERS` (the process's own memory the intercept, at most the
-    smallest run's peak); with one run, the cost model's constant as the intercept.
+    and its manifest's ``peak_memory_bytes``), smallest first: the largest run's own peak, and
+    beyond it the slope of the line through the runs against :data:`MEMORY_DRIVERS`, at most
+    :data:`WORD_BYTES` a word (with one run: above the cost model's constant). Between runs
+    of a few ten thousand entities a stage's peak grows mostly with the process's own buffers,
+    not with its tables: a slope steeper than a word a word would be scaled 10-60 times over.
     Each run with its memory budget, ``memory`` the target's: they bound the representatives
     signed and banded at a time."""
     slice_rows = slice_rows_of(target, memory)
@@ -293,14 +295,13 @@ def scale_memory(model: CostModel, runs: list[tuple[Workload, dict, float]], tar
         if not measured:
             out[stage] = model.stage_memory(target)[stage]
             continue
-        d, t = np.array([x for x, _ in measured]), np.array([y for _, y in measured])
-        if len(d) > 1 and d[-1] > d[0]:
-            slope = max(float(np.polyfit(d, t, 1)[0]), 0.0)
-            base = min(max(t[-1] - slope * d[-1], 0.0), float(t.min()))
+        (d0, t0), (d1, t1) = measured[0], measured[-1]
+        if d1 > d0:
+            slope = (t1 - t0) / (d1 - d0)
         else:
-            base = min(max(model.memory[stage].constant, 0.0), float(t[-1]))
-        rate = (t[-1] - base) / d[-1] if d[-1] > 0 else 0.0
-        out[stage] = base + rate * MEMORY_DRIVERS[stage](target, slice_rows)
+            slope = (t1 - min(max(model.memory[stage].constant, 0.0), t1)) / d1 if d1 > 0 else 0.0
+        slope = min(max(slope, 0.0), WORD_BYTES)
+        out[stage] = t1 + slope * max(MEMORY_DRIVERS[stage](target, slice_rows) - d1, 0.0)
     return out
 
 
