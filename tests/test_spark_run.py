@@ -89,6 +89,14 @@ def test_a_run_on_spark_from_file_uris_publishes_the_local_rows(mixed, spark_ses
     got = pl.read_parquet(tmp_path / "spark" / "neighbours.parquet")
     assert expected.height > 300 and (expected["jaccard"] == 1.0).sum() >= 12 * 3
     assert got.equals(expected)
+    assert [p.name for p in (tmp_path / "spark").iterdir() if p.name.startswith(".")] == []  # work, staging gone
+    # Oracle: the audit of the local engine's index (brute force, tests/test_audit.py): the
+    # same figures from the index read by its file:// URI.
+    audits = [CliRunner().invoke(app, ["audit", str(index), "--sample", "40", "--json"])
+              for index in (tmp_path / "local", (tmp_path / "spark").absolute().as_uri())]
+    assert all(a.exit_code == 0 for a in audits), audits[1].stderr
+    figures = [{k: json.loads(a.stdout)[k] for k in ("recall", "true_pairs", "wrong_pairs", "failed")} for a in audits]
+    assert figures[0] == figures[1] and figures[0]["true_pairs"] > 0
     # Oracle for the input's digest (hashed on the executors): hashlib over the file's bytes,
     # chained as lshjob.core.digest documents (the sha256 of the files' hex digests, a line
     # each), and the local run's manifest, which lshjob audit compares its events with.

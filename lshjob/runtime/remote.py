@@ -184,3 +184,31 @@ class MarkerLock:
         waited = f"waited {self.wait:g} s; " if self.wait > 0 else ""
         return (f"{self.folder.uri}: another lshjob run is writing this {self.what} ({who}); {waited}retry later, "
                 f"pass --wait SECONDS, or remove {self.folder.uri_of(MARKER)} if no run writes there")
+
+
+def refuse_uri(given, command: str) -> None:
+    """One line for a command that reads an index folder of this machine only."""
+    if is_uri(given) and not str(given).startswith("file://"):
+        raise InputError(f"{given}: lshjob {command} reads an index folder of this machine; copy the folder "
+                         "here first (lshjob audit reads an index from a URI)")
+
+
+def local_or_none(given) -> Path | None:
+    """A ``file://`` URI as the path it names (None for any other URI)."""
+    text = str(given)
+    return Path(text.removeprefix("file://")) if text.startswith("file://") else None
+
+
+def fetch_index(given: str, into: Path, names: tuple[str, ...]) -> None:
+    """Copy the files ``names`` of the index folder ``given`` (a URI) into ``into``, in that
+    order (the manifest first: a folder being published has none, and is refused here)."""
+    from pyarrow import fs
+
+    folder = Location.open(given, option="index")
+    if folder.kind() != "folder":
+        raise InputError(f"{folder.uri}: no such index folder")
+    for name in names:
+        if folder.kind(name) != "file":
+            raise InputError(f"{folder.uri}: no {name}; is this an lshjob index folder (or one being published)?")
+        fs.copy_files(folder.path(name), str(into / name), source_filesystem=folder.fs,
+                      destination_filesystem=fs.LocalFileSystem())
