@@ -89,6 +89,7 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
     if not neighbours.is_file():
         raise InputError(f"{neighbours}: no such file; the index folder holds a manifest but no neighbour table")
     source = events if events is not None else manifest.inputs["source"]
+    source = local_or_none(source) or source  # a Spark run's file:// input is a path here
     if events is None:
         _recorded_input_exists(source)
     warnings: list[str] = []
