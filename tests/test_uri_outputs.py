@@ -194,3 +194,20 @@ def test_audit_reads_an_index_from_s3_as_from_its_folder(s3, tmp_path):
     loc.remove("manifest.json")  # as while an object store is being published to
     done = runner.invoke(app, ["audit", loc.uri])
     assert done.exit_code == 2 and "no manifest.json" in done.stderr, done.stderr
+
+
+def test_the_local_engine_refuses_an_out_uri_and_reads_a_file_uri_as_its_path(tmp_path, monkeypatch):
+    # Oracle: the documented refusal (one line, exit 2, nothing made: no folder named "s3a:");
+    # and a file:// --out is the folder it names (Python's pathlib as_uri).
+    from lshjob.demo.generate import generate_events
+
+    generate_events(100, seed=1)[0].select("patron", "title").write_parquet(tmp_path / "loans.parquet")
+    base = ["run", str(tmp_path / "loans.parquet"), "--entity", "patron", "--element", "title", "--threshold", "0.3",
+            "--quiet"]
+    monkeypatch.chdir(tmp_path)
+    done = CliRunner().invoke(app, [*base, "--out", "s3a://library-indexes/loans"])
+    assert done.exit_code == 2 and len(done.stderr.strip().splitlines()) == 1, done.stderr
+    assert "written by --engine spark" in done.stderr and not (tmp_path / "s3a:").exists()
+    done = CliRunner().invoke(app, [*base, "--out", (tmp_path / "index").as_uri()])
+    assert done.exit_code == 0, done.stderr
+    assert (tmp_path / "index" / "manifest.json").is_file() and not (tmp_path / "file:").exists()

@@ -181,6 +181,9 @@ def run(
     --threshold 0.5 --out /shared/index --scratch /shared/tmp --engine spark
     --spark-master spark://master.example:7077
 
+    Example (the whole run on Spark, the index on S3): lshjob run s3a://library-events/loans/
+    --entity patron --element title --threshold 0.5 --out s3a://library-indexes/loans --engine spark
+
     Example (the plan of least predicted seconds, as lshjob plan --plan-by cost chooses it):
     lshjob calibrate; lshjob run loans/ --entity patron --element title --threshold 0.5
     --plan-by cost --out index
