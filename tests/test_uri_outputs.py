@@ -208,6 +208,10 @@ def test_the_local_engine_refuses_an_out_uri_and_reads_a_file_uri_as_its_path(tm
     done = CliRunner().invoke(app, [*base, "--out", "s3a://library-indexes/loans"])
     assert done.exit_code == 2 and len(done.stderr.strip().splitlines()) == 1, done.stderr
     assert "written by --engine spark" in done.stderr and not (tmp_path / "s3a:").exists()
+    done = CliRunner().invoke(app, ["sign", str(tmp_path / "loans.parquet"), "--entity", "patron", "--element",
+                                    "title", "--out", "s3a://library-indexes/signatures.parquet"])
+    assert done.exit_code == 2 and "a URI; this writes to a path of this machine" in done.stderr, done.stderr
+    assert not (tmp_path / "s3a:").exists()
     done = CliRunner().invoke(app, [*base, "--out", (tmp_path / "index").as_uri()])
     assert done.exit_code == 0, done.stderr
     assert (tmp_path / "index" / "manifest.json").is_file() and not (tmp_path / "file:").exists()
