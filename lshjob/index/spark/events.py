@@ -7,7 +7,7 @@ keys, counts are finite and >= 0, nulls are refused or dropped (``--on-null``).
 :func:`element_sets` hashes each distinct element once on the executors (the local XXH64 of
 the canonical text, NFC applied as the local ingest does, :mod:`lshjob.index.spark._events`)
 and joins the hashes back to the events in the JVM (a broadcast join when the distinct
-elements are few enough, :data:`BROADCAST_ELEMENTS`), so the events never pass through
+elements' lookup is small enough, :data:`BROADCAST_BYTES`), so the events never pass through
 Python; text entity keys holding a non-ASCII character (counted while reading) are put in
 NFC on the executors, the others left as they are. Each entity's set is then its distinct
 hashes, sorted, in one shuffle by entity; with ``--count`` or ``--min-count`` above 1 each
@@ -27,7 +27,9 @@ from lshjob.index.spark.session import quiet_pandas_warning
 from lshjob.ingest.spec import EventSpec
 
 ELEMENT_DDL = "element {element}, canonical {element}, hash long"
-BROADCAST_ELEMENTS = 4_000_000  # distinct elements up to which each executor holds them all for the join
+# the distinct elements' lookup (element, hash) is sent whole to every executor for the join up
+# to this size (about 32 bytes a row besides the text of text keys), else joined by a shuffle
+BROADCAST_BYTES = 256 << 20
 KEY_TYPES = ("string", "tinyint", "smallint", "int", "bigint")
 
 
@@ -117,7 +119,9 @@ def element_sets(events, spec: EventSpec, facts: EventFacts):
     try:
         check_distinct_hashes(elements, facts.where)
         lookup = elements.select("element", "hash")
-        if elements.count() <= BROADCAST_ELEMENTS:
+        text = F.sum(F.octet_length("element")) if types["element"] == "string" else F.lit(0)
+        size = elements.agg(F.count("*").alias("n"), text.alias("text")).collect()[0]
+        if size["n"] * 32 + (size["text"] or 0) <= BROADCAST_BYTES:
             lookup = F.broadcast(lookup)
         if nfc and facts.odd_entities:  # only those rows pass through Python
             odd = _non_ascii("entity")
