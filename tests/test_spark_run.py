@@ -89,6 +89,14 @@ def test_a_run_on_spark_from_file_uris_publishes_the_local_rows(mixed, spark_ses
     got = pl.read_parquet(tmp_path / "spark" / "neighbours.parquet")
     assert expected.height > 300 and (expected["jaccard"] == 1.0).sum() >= 12 * 3
     assert got.equals(expected)
+    assert [p.name for p in (tmp_path / "spark").iterdir() if p.name.startswith(".")] == []  # work, staging gone
+    # Oracle: the audit of the local engine's index (brute force, tests/test_audit.py): the
+    # same figures from the index read by its file:// URI.
+    audits = [CliRunner().invoke(app, ["audit", str(index), "--sample", "40", "--json"])
+              for index in (tmp_path / "local", (tmp_path / "spark").absolute().as_uri())]
+    assert all(a.exit_code == 0 for a in audits), audits[1].stderr
+    figures = [{k: json.loads(a.stdout)[k] for k in ("recall", "true_pairs", "wrong_pairs", "failed")} for a in audits]
+    assert figures[0] == figures[1] and figures[0]["true_pairs"] > 0
     # Oracle for the input's digest (hashed on the executors): hashlib over the file's bytes,
     # chained as lshjob.core.digest documents (the sha256 of the files' hex digests, a line
     # each), and the local run's manifest, which lshjob audit compares its events with.
@@ -152,3 +160,29 @@ def test_identical_sets_only_on_spark_publish_the_local_rows(mixed, spark_sessio
     events = _mixed_events().drop_nulls()
     sets = {p: {unicodedata.normalize("NFC", t) for t in g["title"]} for (p,), g in events.group_by("patron")}
     assert all(sets[a] == sets[b] for a, b in got.select("entity", "neighbour").iter_rows())
+
+
+def test_text_entity_keys_in_two_unicode_forms_are_one_entity_on_spark(spark_session, tmp_path, monkeypatch):
+    # Oracle: the local engine's rows (its ingest puts text keys in NFC) for text entity keys
+    # given in NFC and NFD forms of one name, beside ASCII ones: the same entities, the same
+    # neighbours; and Python's unicodedata: the published keys are all NFC. The elements'
+    # hashes are joined to the events by a shuffle here (the other tests: a broadcast).
+    from lshjob.index.spark import events
+
+    monkeypatch.setattr(events, "BROADCAST_BYTES", 0)
+    titles = [f"t{i}" for i in range(12)]
+    rows = []
+    for n, patron in enumerate(["Zoë Brontë", "Ana", "Noël", "Bob", "Chloé", "Dan"] * 2):
+        given = unicodedata.normalize("NFD" if n >= 6 else "NFC", patron)
+        rows += [(given, titles[(n % 6 + j) % 12]) for j in range(4 + n // 6)]
+    path = tmp_path / "loans.parquet"
+    pl.DataFrame(rows, schema={"patron": pl.String, "title": pl.String}, orient="row").write_parquet(path)
+    options = ["--entity", "patron", "--element", "title", "--threshold", "0.2", "--top-k", "3", "--quiet"]
+    code, _, err = _run(path, *options, "--out", tmp_path / "local")
+    assert code == 0, err
+    code, _, err = _run(path, *options, "--out", tmp_path / "spark", "--engine", "spark")
+    assert code == 0, err
+    expected = pl.read_parquet(tmp_path / "local" / "neighbours.parquet")
+    got = pl.read_parquet(tmp_path / "spark" / "neighbours.parquet")
+    assert got.equals(expected) and expected["entity"].n_unique() == 6
+    assert all(unicodedata.is_normalized("NFC", k) for k in got["entity"].to_list())

@@ -15,6 +15,7 @@ index file is a failed check, different events a warning.
 from __future__ import annotations
 
 import math
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -27,7 +28,7 @@ from lshjob.core.digest import digest_in_background
 from lshjob.core.sets import ElementSets
 from lshjob.errors import InputError, ParameterError
 from lshjob.index.collapse import fingerprints
-from lshjob.index.publish import NEIGHBOURS, read_manifest
+from lshjob.index.publish import MANIFEST, NEIGHBOURS, read_manifest
 from lshjob.index.verify import exact_jaccard
 from lshjob.ingest.loading import entity_counts, event_bytes, grouping_need, membership_of, open_events
 from lshjob.ingest.spec import EventSpec, resolve_paths
@@ -37,6 +38,7 @@ from lshjob.plan.similarity import overlap_counts, postings_of, restricted_index
 from lshjob.runtime import budget
 from lshjob.runtime.budget import Budget, default_memory, peak_bytes
 from lshjob.runtime.partitions import entities_of, key_ranges
+from lshjob.runtime.remote import fetch_index, is_uri, local_or_none
 
 MAX_BRUTE_FORCE_WORK = 5e9  # posting visits; beyond this the audit compares within the sample
 
@@ -80,11 +82,14 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
         raise ParameterError(f"--sample must be at least 1; got {sample}")
     if min_recall is not None and not 0.0 <= min_recall <= 1.0:
         raise ParameterError(f"--min-recall must be in [0, 1]; got {min_recall}")
+    if is_uri(index_dir):
+        return _audit_uri(str(index_dir), events, sample, seed, memory, parts, min_recall)
     manifest = read_manifest(index_dir)
     neighbours = Path(index_dir) / NEIGHBOURS
     if not neighbours.is_file():
         raise InputError(f"{neighbours}: no such file; the index folder holds a manifest but no neighbour table")
     source = events if events is not None else manifest.inputs["source"]
+    source = local_or_none(source) or source  # a Spark run's file:// input is a path here
     if events is None:
         _recorded_input_exists(source)
     warnings: list[str] = []
@@ -149,6 +154,23 @@ def audit_index(index_dir, events=None, sample: int = 200, seed: int = 0, memory
         "warnings": warnings,
         "peak_memory_bytes": peak_bytes(),
     }
+
+
+def _audit_uri(given: str, events, sample, seed, memory, parts, min_recall) -> dict:
+    """The audit of an index folder named by a URI: a ``file://`` one where it is, any other
+    copied here first (the manifest, then the neighbours file: :func:`lshjob.runtime.remote.fetch_index`);
+    the report names the URI."""
+    local = local_or_none(given)
+    if local is not None:
+        return audit_index(local, events, sample, seed, memory, parts, min_recall)
+    with tempfile.TemporaryDirectory(prefix="lshjob-audit-") as held:
+        fetch_index(given, Path(held), (MANIFEST, NEIGHBOURS))
+        report = audit_index(held, events, sample, seed, memory, parts, min_recall)
+    named = given.split("?", 1)[0].rstrip("/")
+    report["index"] = named
+    for entry in ("failed", "warnings"):
+        report[entry] = [line.replace(held, named) for line in report[entry]]
+    return report
 
 
 def _recorded_input_exists(source) -> None:

@@ -181,6 +181,9 @@ def run(
     --threshold 0.5 --out /shared/index --scratch /shared/tmp --engine spark
     --spark-master spark://master.example:7077
 
+    Example (the whole run on Spark, the index on S3): lshjob run s3a://library-events/loans/
+    --entity patron --element title --threshold 0.5 --out s3a://library-indexes/loans --engine spark
+
     Example (the plan of least predicted seconds, as lshjob plan --plan-by cost chooses it):
     lshjob calibrate; lshjob run loans/ --entity patron --element title --threshold 0.5
     --plan-by cost --out index
@@ -200,7 +203,8 @@ def run(
 @app.command()
 @_fail_cleanly
 def audit(
-    index: Annotated[Path, typer.Argument(help="Index folder written by lshjob run.")],
+    index: Annotated[str, typer.Argument(
+        help="Index folder written by lshjob run: a path, or a URI (s3://, hdfs://, gs://, file://).")],
     events: Annotated[str | None, typer.Option(help="Events to check against (default: the run's input).")] = None,
     sample: Annotated[int, typer.Option(help="Entities to check by brute force.")] = 200,
     seed: Annotated[int, typer.Option(help="Seed for drawing the sample.")] = 0,
@@ -220,6 +224,8 @@ def audit(
     Example (a gate after each run): lshjob audit index --sample 1000 --min-recall 0.95
 
     Example (sets larger than memory): lshjob audit index --sample 2000 --memory 4GB
+
+    Example (an index a Spark run published to S3): lshjob audit s3://library-indexes/loans --sample 500
     """
     if parts is not None and parts < 1:
         raise ParameterError(f"--parts must be at least 1; got {parts}")

@@ -21,8 +21,8 @@ def _warn(summary: dict) -> None:
 
 @ends_cleanly
 def diff(
-    old: Annotated[Path, typer.Argument(help="The earlier index folder.")],
-    new: Annotated[Path, typer.Argument(help="The later index folder.")],
+    old: Annotated[str, typer.Argument(help="The earlier index folder.")],
+    new: Annotated[str, typer.Argument(help="The later index folder.")],
     out: Annotated[Path | None, typer.Option(
         "--out", "-o", help="Write the entities whose top-k list changed (Parquet), most changed first.")] = None,
     quiet: Quiet = False,

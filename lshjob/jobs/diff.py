@@ -29,6 +29,7 @@ from lshjob.core.atomic import write_table
 from lshjob.errors import InputError
 from lshjob.index.publish import NEIGHBOURS, open_index
 from lshjob.runtime.outputs import output_file
+from lshjob.runtime.remote import local_or_none, refuse_uri
 
 PAIR_COLUMNS = ("entity", "neighbour", "jaccard")
 TOP_ENTITIES = 10  # most changed entities named in the summary
@@ -42,7 +43,8 @@ ENTITY_CHANGES = {  # the --out table
 def read_index(folder: str | Path) -> tuple[pl.DataFrame, dict]:
     """(entity, neighbour, jaccard) rows of an index folder and its manifest; one-line errors
     for a folder that is not an index."""
-    manifest, path = open_index(folder)
+    refuse_uri(folder, "diff")
+    manifest, path = open_index(local_or_none(folder) or folder)
     try:
         schema = pl.read_parquet_schema(path)
     except Exception as exc:

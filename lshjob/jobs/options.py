@@ -136,7 +136,8 @@ RUN_TABLE: tuple[Option, ...] = (  # in the order of lshjob run --help
     Option("element", str, help="Element column (e.g. title).", part=SPEC),
     Option("threshold", float, help="Jaccard similarity a neighbour must reach, in (0, 1].",
            low=0.0, high=1.0, open_low=True),
-    Option("out", str, help="Index folder (neighbours.parquet, manifest.json).", part=INPUT, short="-o"),
+    Option("out", str, help="Index folder (neighbours.parquet, manifest.json); with --engine spark also a URI "
+           "(s3a://, hdfs://, gs://, file://).", part=INPUT, short="-o"),
     Option("top_k", int, 50, "Neighbours kept per entity.", low=1, high=MAX_TOP_K),
     Option("perms", int, None, "Signature length k.", low=1, default_text="chosen by the planner"),
     Option("bands", int, None, "Override the planner: number of bands b.", low=1),

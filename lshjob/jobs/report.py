@@ -26,6 +26,7 @@ from lshjob.plan import similarity
 from lshjob.plan.banding import PairHistogram
 from lshjob.plan.cost import Workload, load_model
 from lshjob.plan.forecast import forecast, forecast_curve
+from lshjob.runtime.remote import local_or_none, refuse_uri
 
 AUDIT_KEYS = ("recall", "predicted_recall", "sampled_entities")  # entries of an audit the report reads
 
@@ -53,7 +54,8 @@ def gather(index_dir: str | Path, audit: str | Path | dict | None = None, sample
     :func:`lshjob.audit.check.audit_index` returns) or a file holding it as JSON. ``sample``:
     redraw the planner's sample histogram from the run's events when they exist. ``store``: a
     refresh store whose history is shown."""
-    index_dir = Path(index_dir)
+    refuse_uri(index_dir, "report")
+    index_dir = local_or_none(index_dir) or Path(index_dir)
     manifest, neighbours = open_index(index_dir)
     table = pl.read_parquet(neighbours, columns=["entity", "jaccard"])
     per_entity = table.group_by("entity").len()["len"].to_numpy().astype(np.int64)

@@ -46,6 +46,7 @@ from lshjob.runtime.folder_lock import output_lock
 from lshjob.runtime.outputs import output_folder, scratch_folder
 from lshjob.runtime.partitions import HeldSets
 from lshjob.runtime.progress import QUIET, StageProgress
+from lshjob.runtime.remote import is_uri, local_or_none
 from lshjob.runtime.workspace import remove_leftovers, work_folder
 
 
@@ -121,7 +122,10 @@ def run_job(
         from lshjob.jobs.run_spark import run_on_spark
 
         return run_on_spark(events, spec, options, out, _Stages(progress), progress, command)
-    out = output_folder(out, [events], "run")  # before anything is read or made
+    if is_uri(out) and local_or_none(out) is None:
+        raise ParameterError(f"--out {out}: an index folder named by a URI is written by --engine spark; "
+                             "this engine writes a folder of this machine")
+    out = output_folder(local_or_none(out) or out, [events], "run")  # before anything is read or made
     scratch_folder(options.scratch)
     memory = parse_size(options.memory) if options.memory else default_memory()
     lock = output_lock(out, wait=options.wait, what="index").acquire()  # before any work, or Busy

@@ -9,49 +9,34 @@ plan is the local run's in one part), else a uniform sample by a hash of the key
 in parts plans on a sample).
 
 The final write goes through the driver, a Spark output file at a time: Spark writes the
-ranked rows, sorted, as Parquet parts in the work folder, and the driver streams them in
-order into ``neighbours.parquet`` (:func:`lshjob.index.publish.stage_neighbours`). The
-contract's one file has a ``rank`` of UInt32 and the ``lshjob`` key-value record, which
-Spark's writer cannot give (no unsigned type, no footer metadata), and the index is
-published by renames under the output folder's lock (:mod:`lshjob.runtime.folder_lock`), which
-object stores do not offer: ``--out`` is a folder of the driver's file system (a path or a
-``file://`` URI). The work folder (``--scratch``, else inside ``--out``) must be one every
-executor writes too: on one machine any folder, on a cluster a shared mount.
+ranked rows, sorted, as Parquet parts in a work folder beside the index (or in ``--scratch``),
+and the driver streams them in order into ``neighbours.parquet``. The contract's one file has
+a ``rank`` of UInt32 and the ``lshjob`` key-value record, which Spark's writer cannot give (no
+unsigned type, no footer metadata). ``--out`` is a path of the driver (published as a local
+run publishes, under the folder's lock) or a URI Arrow's file systems open (``file://``,
+``hdfs://``, ``s3a://``, ``gs://``): how each is published, and locked, is
+:mod:`lshjob.jobs.run_spark_out`. The work folder must be one every executor writes too.
 """
 
 from __future__ import annotations
 
-import shutil
 import time
 from dataclasses import asdict
 from pathlib import Path
 
 import numpy as np
-import polars as pl
 
 from lshjob.contracts.manifest import Manifest
-from lshjob.contracts.tables import NEIGHBOURS
 from lshjob.core.sets import ElementSets
 from lshjob.index import engines as stage_engines
 from lshjob.index import publish
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.prepare import plan_run
+from lshjob.jobs.run_spark_out import index_folder
 from lshjob.runtime import provenance, stopping
 from lshjob.runtime.budget import default_memory, parse_size
-from lshjob.runtime.folder_lock import output_lock
-from lshjob.runtime.outputs import output_folder, scratch_folder
+from lshjob.runtime.outputs import scratch_folder
 from lshjob.runtime.progress import QUIET, StageProgress
-from lshjob.runtime.workspace import remove_leftovers, work_folder
-
-
-def local_path(given: str | Path) -> str | Path:
-    """A ``file://`` URI as the path it names; anything else as given."""
-    text = str(given)
-    return text[len("file://"):] if text.startswith("file://") else given
-
-
-def _uri(path: Path) -> str:
-    return path.absolute().as_uri()
 
 
 def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, stages,
@@ -59,19 +44,16 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
     """The run of :func:`lshjob.jobs.run.run_job` on Spark (module docstring); ``stages``
     times each stage (:class:`lshjob.jobs.run._Stages`)."""
     source = str(events)
-    is_local = "://" not in source or source.startswith("file://")
-    out = output_folder(local_path(out), [local_path(source)] if is_local else [], "run")
+    folder = index_folder(out, source, options.scratch, options.wait)  # before anything is read or made
     scratch_folder(options.scratch)
     memory = parse_size(options.memory) if options.memory else default_memory()
-    lock = output_lock(out, wait=options.wait, what="index").acquire()
-    work = work_folder(out, options.scratch)
     started, started_at = time.perf_counter(), provenance.utc_now()
     run_id = provenance.new_run_id(started_at)
     steps = stage_engines.get_pipeline(options.engine)
     try:
-        warnings = lock.notes + remove_leftovers(out, options.scratch)
+        warnings = folder.acquire()
         steps.prepare()  # a missing Java or a silent cluster stops the run here
-        work.mkdir(parents=True)
+        folder.make_work()
         read_from = str(Path(source).absolute()) if "://" not in source else source
         with stages("ingest"):
             sets, facts = steps.read(read_from, spec)
@@ -97,14 +79,15 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
             params = plan.signature_params()
             counts["bucket_rows"] = n_reps * plan.bands
             with stages("join"):  # signing and banding run in the join's first Spark stage
-                skew = steps.join(reps, params, plan.bands, plan.rows, options.max_bucket, _uri(work / "candidates"))
+                skew = steps.join(reps, params, plan.bands, plan.rows, options.max_bucket,
+                                  folder.work_uri("candidates"))
             if skew["skipped_pairs"]:
                 warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over --max-bucket "
                                 f"{options.max_bucket}, still over it once split) were not compared")
             with stages("verify"):
-                verified = _uri(work / "verified")
+                verified = folder.work_uri("verified")
                 counts["candidate_pairs"], counts["verified_pairs"] = steps.verify(
-                    _uri(work / "candidates"), reps, options.threshold, params, verified)
+                    folder.work_uri("candidates"), reps, options.threshold, params, verified)
         else:  # identical sets only: no bands; the groups are the index
             counts.update(bucket_rows=0, candidate_pairs=0, verified_pairs=0)
         top_k = publish.effective_top_k(options.top_k, facts.entities)
@@ -112,9 +95,9 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
             warnings.append(f"--top-k {options.top_k} is more than the {facts.entities - 1} other entities; "
                             f"used {top_k}")
         with stages("publish"):
-            steps.publish(members, verified, top_k, plan.bands or 0, _uri(work / "neighbours"))
+            steps.publish(members, verified, top_k, plan.bands or 0, folder.work_uri("neighbours"))
             meta = provenance.neighbours_metadata(run_id, options, spec, top_k)
-            written = publish.stage_neighbours(out, _parts(work / "neighbours", steps.key_dtype(sets)), meta)
+            written = folder.stage(steps.key_dtype(sets), meta, warnings)
         counts["published_rows"] = written["rows"]
         if counts["published_rows"] == 0 and facts.entities > 1:
             warnings.append("no pair reached the threshold: the index is empty")
@@ -128,19 +111,17 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
             plan=plan.to_dict(), engines=options.engine_names(), counts=counts, skew=skew,
             peak_memory_bytes=stages.peak,
             versions={**provenance.versions(), **steps.engine_versions()},
-            output=written, out=str(out.absolute()), warnings=warnings,
+            output=written, out=folder.name, warnings=warnings,
             seconds=dict(stages.seconds, total=round(time.perf_counter() - started, 3)),
             finished_at=provenance.iso(provenance.utc_now()),
         ).to_json()
         with stopping.held():
-            publish.commit_index(out, manifest)
+            folder.commit(manifest)
             stopping.mark_published()
         return manifest
     finally:
         steps.release()
-        shutil.rmtree(work, ignore_errors=True)
-        publish.discard_staging(out)
-        lock.release()
+        folder.close()
 
 
 def _planning_sets(steps, sets, entities: int, sample_size: int) -> tuple[ElementSets, int | None]:
@@ -154,16 +135,3 @@ def _planning_sets(steps, sets, entities: int, sample_size: int) -> tuple[Elemen
     np.cumsum(sizes, out=offsets[1:])
     codes = np.ascontiguousarray(table["hashes"].explode().to_numpy(), dtype=np.int64)  # sorted in each set
     return ElementSets(table["entity"], offsets, codes), (entities if entities > sample_size else None)
-
-
-def _parts(folder: Path, key: pl.DataType):
-    """The rows Spark wrote into ``folder``, part after part (their names are in partition
-    order, the order of the sort), as NEIGHBOURS tables; one empty table when none holds a row."""
-    wrote = False
-    for part in sorted(folder.glob("part-*.parquet")):
-        table = pl.read_parquet(part)
-        if table.height:
-            wrote = True
-            yield NEIGHBOURS.conform(table)
-    if not wrote:
-        yield NEIGHBOURS.empty(key=key)

@@ -15,6 +15,8 @@ the path and what it is.
   it), and the link is kept.
 * A folder output must be a folder or not exist; a symbolic link to a folder is followed.
 * Every existing folder above the output must be a folder (``--out afile/s.parquet``).
+* A URI (``s3a://...``) is refused here: only a run on Spark writes to one
+  (:mod:`lshjob.jobs.run_spark_out`).
 * ``--scratch`` must be an existing folder: it is meant to be on a disk of its own, and a
   mistyped path made on the spot would put the spill on another disk unnoticed.
 * ``demo`` writes only into a new or empty folder, or one an earlier demo wrote (it holds
@@ -126,6 +128,9 @@ def _given(out: str | Path, option: str) -> Path:
         raise ParameterError(f"{option} is empty; give a path (an unset variable in the command line?)")
     if not text.strip():
         raise ParameterError(f"{option} {text!r} is only whitespace; give a path")
+    if "://" in text:  # Path() would make "s3a:/bucket/..." here; only a run on Spark writes to a URI
+        raise ParameterError(f"{option} {text}: a URI; this writes to a path of this machine (a run with "
+                             "--engine spark writes an index to a URI)")
     return Path(os.path.expanduser(text))
 
 

@@ -1,5 +1,5 @@
-"""What a run on Spark runs inside the executors' Python workers before the join: events
-hashed, sets signed and banded, on Arrow batches (``DataFrame.mapInArrow``).
+"""What a run on Spark runs inside the executors' Python workers before the join: elements
+hashed (each distinct one once), sets signed and banded, on Arrow batches (``DataFrame.mapInArrow``).
 
 As in :mod:`lshjob.index.spark._batches`, each function takes its settings first (bound with
 :func:`functools.partial`) and an iterator of ``pyarrow.RecordBatch``; the values come from
@@ -37,9 +37,9 @@ def _nfc(column: pa.Array) -> pa.Array:
     return pa.array(values, pa.string())
 
 
-def hashed_events(nfc: bool, batches: Iterator[pa.RecordBatch]) -> Iterator[pa.RecordBatch]:
-    """Events (``entity``, ``element``, ``weight``) -> the same with the text keys in NFC
-    (``nfc``) and ``hash``: the XXH64 of the element's canonical text as Int64 bits."""
+def hashed_elements(nfc: bool, batches: Iterator[pa.RecordBatch]) -> Iterator[pa.RecordBatch]:
+    """Distinct elements (``element``) -> ``element`` as read, ``canonical`` (the same in NFC
+    for text, ``nfc``) and ``hash``: the XXH64 of the canonical text as Int64 bits."""
     import polars as pl
 
     from lshjob.core.hashing import element_hashes
@@ -47,15 +47,22 @@ def hashed_events(nfc: bool, batches: Iterator[pa.RecordBatch]) -> Iterator[pa.R
     for batch in batches:
         if batch.num_rows == 0:
             continue
-        entity, element = batch.column("entity"), batch.column("element")
-        if nfc and pa.types.is_string(entity.type):
-            entity = _nfc(entity)
-        if nfc and pa.types.is_string(element.type):
-            element = _nfc(element)
-        h0 = element_hashes(pl.Series(pl.from_arrow(element)))
+        element = batch.column("element")
+        canonical = _nfc(element) if nfc and pa.types.is_string(element.type) else element
+        h0 = element_hashes(pl.Series(pl.from_arrow(canonical)))
         yield pa.RecordBatch.from_arrays(
-            [entity, element, pa.array(np.asarray(h0, dtype=np.uint64).view(np.int64)), batch.column("weight")],
-            names=["entity", "element", "hash", "weight"])
+            [element, canonical, pa.array(np.asarray(h0, dtype=np.uint64).view(np.int64))],
+            names=["element", "canonical", "hash"])
+
+
+def nfc_entities(batches: Iterator[pa.RecordBatch]) -> Iterator[pa.RecordBatch]:
+    """Events whose text ``entity`` key is to be put in NFC, the other columns as they are."""
+    for batch in batches:
+        if batch.num_rows == 0:
+            continue
+        columns = [_nfc(batch.column(i)) if name == "entity" else batch.column(i)
+                   for i, name in enumerate(batch.schema.names)]
+        yield pa.RecordBatch.from_arrays(columns, names=batch.schema.names)
 
 
 def _element_sets(batch: pa.RecordBatch):

@@ -14,15 +14,9 @@ from __future__ import annotations
 import hashlib
 
 from lshjob.core.digest import iso, overall
+from lshjob.runtime.remote import arrow_uri
 
 BLOCK = 1 << 20
-_ARROW_SCHEMES = {"s3a": "s3", "s3n": "s3"}  # Spark's names of the S3 file system, Arrow's
-
-
-def arrow_uri(path: str) -> str:
-    """``path`` as Arrow's file systems name it."""
-    scheme, sep, rest = path.partition("://")
-    return f"{_ARROW_SCHEMES.get(scheme, scheme)}{sep}{rest}" if sep else path
 
 
 def file_record(path: str) -> dict:

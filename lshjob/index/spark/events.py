@@ -4,10 +4,14 @@
 local path, ``file://``, ``hdfs://``, ``s3a://``...) with the local ingest's checks, as
 Spark aggregates (the driver gets counts, never rows): the named columns exist and hold
 keys, counts are finite and >= 0, nulls are refused or dropped (``--on-null``).
-:func:`element_sets` hashes the elements on the executors (the local XXH64 of the canonical
-text, NFC applied as the local ingest does, :mod:`lshjob.index.spark._events`), sums each
-(entity, element)'s weight in a shuffle, keeps what reaches ``--min-count`` and groups each
-entity's element hashes into one sorted list (a second shuffle, by entity).
+:func:`element_sets` hashes each distinct element once on the executors (the local XXH64 of
+the canonical text, NFC applied as the local ingest does, :mod:`lshjob.index.spark._events`)
+and joins the hashes back to the events in the JVM (a broadcast join when the distinct
+elements' lookup is small enough, :data:`BROADCAST_BYTES`), so the events never pass through
+Python; text entity keys holding a non-ASCII character (counted while reading) are put in
+NFC on the executors, the others left as they are. Each entity's set is then its distinct
+hashes, sorted, in one shuffle by entity; with ``--count`` or ``--min-count`` above 1 each
+(entity, element)'s weight is summed first and what reaches ``--min-count`` kept.
 :func:`signature_frame` signs those sets on the executors: the SIGNATURES rows the local
 signing makes, bit for bit.
 """
@@ -22,7 +26,10 @@ from lshjob.index.spark import _events
 from lshjob.index.spark.session import quiet_pandas_warning
 from lshjob.ingest.spec import EventSpec
 
-EVENT_DDL = "entity {entity}, element {element}, hash long, weight double"
+ELEMENT_DDL = "element {element}, canonical {element}, hash long"
+# the distinct elements' lookup (element, hash) is sent whole to every executor for the join up
+# to this size (about 32 bytes a row besides the text of text keys), else joined by a shuffle
+BROADCAST_BYTES = 256 << 20
 KEY_TYPES = ("string", "tinyint", "smallint", "int", "bigint")
 
 
@@ -37,6 +44,7 @@ class EventFacts:
     membership_rows: int = 0
     entities: int = 0
     empty_after_filter: int = 0
+    odd_entities: int = 0  # rows whose text entity key holds a non-ASCII character (NFC may change it)
 
 
 def read_events(spark, path: str, spec: EventSpec):
@@ -75,8 +83,9 @@ def read_events(spark, path: str, spec: EventSpec):
         F.count(F.when(null, 1)).alias("any_null"),
         F.count(F.when(F.isnan("weight") | (F.col("weight") < 0) | F.col("weight").isin(float("inf")), 1))
         .alias("bad_count"),
+        (F.count(F.when(_non_ascii("entity"), 1)) if types[spec.entity] == "string" else F.lit(0)).alias("odd"),
     ).collect()[0]
-    facts = EventFacts(where, list(raw.inputFiles()), int(stats["rows"]))
+    facts = EventFacts(where, list(raw.inputFiles()), int(stats["rows"]), odd_entities=int(stats["odd"]))
     if facts.rows_read == 0:
         raise InputError(f"{where}: no events (0 rows)")
     if spec.count is not None and stats["bad_count"]:
@@ -102,21 +111,35 @@ def element_sets(events, spec: EventSpec, facts: EventFacts):
     from pyspark.sql import functions as F  # noqa: N812
 
     quiet_pandas_warning()
+    nfc = spec.unicode == "nfc"
     types = dict(events.dtypes)
-    ddl = EVENT_DDL.format(entity=types["entity"], element=types["element"])
-    hashed = events.mapInArrow(partial(_events.hashed_events, spec.unicode == "nfc"), ddl)
-    summed = (hashed.groupBy("entity", "element", "hash").agg(F.sum("weight").alias("weight"))
-              .persist(StorageLevel.MEMORY_AND_DISK))
-    try:
-        check_distinct_hashes(summed, facts.where)
-        kept = summed.where(F.col("weight") >= spec.min_count)
-        sets = (kept.groupBy("entity").agg(F.sort_array(F.collect_list("hash")).alias("hashes"))
+    elements = (events.select("element").distinct()
+                .mapInArrow(partial(_events.hashed_elements, nfc), ELEMENT_DDL.format(element=types["element"]))
                 .persist(StorageLevel.MEMORY_AND_DISK))
+    try:
+        check_distinct_hashes(elements, facts.where)
+        lookup = elements.select("element", "hash")
+        text = F.sum(F.octet_length("element")) if types["element"] == "string" else F.lit(0)
+        size = elements.agg(F.count("*").alias("n"), text.alias("text")).collect()[0]
+        if size["n"] * 32 + (size["text"] or 0) <= BROADCAST_BYTES:
+            lookup = F.broadcast(lookup)
+        if nfc and facts.odd_entities:  # only those rows pass through Python
+            odd = _non_ascii("entity")
+            events = events.where(~odd).unionByName(
+                events.where(odd).mapInArrow(_events.nfc_entities, ", ".join(f"{c} {t}" for c, t in events.dtypes)))
+        hashed = events.join(lookup, "element").select("entity", "hash", "weight")
+        # an event weighs 1 without --count: --min-count 1 or less leaves every element it names
+        filtered = spec.count is not None and spec.min_count > 0 or spec.min_count > 1
+        if filtered:
+            summed = hashed.groupBy("entity", "hash").agg(F.sum("weight").alias("weight"))
+            grouped = summed.where(F.col("weight") >= spec.min_count).groupBy("entity").agg(
+                F.sort_array(F.collect_list("hash")).alias("hashes"))
+        else:
+            grouped = hashed.groupBy("entity").agg(F.sort_array(F.collect_set("hash")).alias("hashes"))
+        sets = grouped.persist(StorageLevel.MEMORY_AND_DISK)
         counts = sets.agg(F.count("*").alias("entities"), F.sum(F.size("hashes")).alias("rows")).collect()[0]
         facts.entities, facts.membership_rows = int(counts["entities"]), int(counts["rows"] or 0)
-        # an event weighs 1 without --count: --min-count 1 or less leaves every entity something
-        filtered = spec.count is not None or spec.min_count > 1
-        before = summed.select("entity").distinct().count() if filtered else facts.entities
+        before = hashed.select("entity").distinct().count() if filtered else facts.entities
         facts.empty_after_filter = before - facts.entities
         if facts.membership_rows == 0:
             sets.unpersist()
@@ -124,20 +147,28 @@ def element_sets(events, spec: EventSpec, facts: EventFacts):
                              "nothing to sign")
         return sets
     finally:
-        summed.unpersist()
+        elements.unpersist()
 
 
-def check_distinct_hashes(summed, where: str) -> None:
-    """Refuse to go on when two distinct elements share an XXH64 (about n^2 / 2^65 for n
-    distinct elements): the hash stands for the element from here on, and the exact Jaccard
-    the local engine counts on element codes would differ."""
+def _non_ascii(column: str):
+    """True where the text ``column`` holds a character outside ASCII (more bytes than characters)."""
     from pyspark.sql import functions as F  # noqa: N812
 
-    shared = (summed.select("element", "hash").distinct().groupBy("hash").count()
+    return F.octet_length(column) != F.length(column)
+
+
+def check_distinct_hashes(elements, where: str) -> None:
+    """Refuse to go on when two distinct elements share an XXH64 (about n^2 / 2^65 for n
+    distinct elements): the hash stands for the element from here on, and the exact Jaccard
+    the local engine counts on element codes would differ. ``elements``: each element as
+    read, its ``canonical`` text (NFC) and ``hash``."""
+    from pyspark.sql import functions as F  # noqa: N812
+
+    shared = (elements.select("canonical", "hash").distinct().groupBy("hash").count()
               .where(F.col("count") > 1).limit(1).collect())
     if shared:
         raise InputError(f"{where}: two distinct elements share the XXH64 {shared[0]['hash'] & (2**64 - 1):#018x}; "
-                            "run this input with --engine local")
+                         "run this input with --engine local")
 
 
 def signature_frame(sets, params):
