@@ -127,3 +127,28 @@ def edges_that_count(src: np.ndarray, jaccard: np.ndarray, weight: np.ndarray, o
     _cut(starts, order, np.ascontiguousarray(jaccard, dtype=np.float64), np.ascontiguousarray(weight, dtype=np.int64),
          np.ascontiguousarray(own, dtype=np.int64), cap, keep)
     return keep
+
+
+def pairs_in_lists(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, group_sizes: np.ndarray,
+                   top_k: int) -> np.ndarray:
+    """Which pairs of representatives (``left``, ``right``, their ``jaccard``; each pair once)
+    can bring a row into the list publishing makes for either side (:func:`edges_that_count`
+    on both directions, with the weights of :func:`lshjob.index.publish.expand`: a partner's
+    group counts min(top_k + 1, its size) rows, a group's own members as many rows of 1.0).
+
+    A pair kept by neither side lies below both sides' cut: dropping it changes no list,
+    and the cut of a side is reached at the same value without it. Given only some of the
+    pairs (a block of parts), a side's cut can only be lower than with all of them, so the
+    pairs dropped are still below the cut of the whole run."""
+    cap = top_k + 1
+    n = len(left)
+    if n == 0:
+        return np.zeros(0, dtype=np.bool_)
+    sizes = np.asarray(group_sizes, dtype=np.int64)
+    capped = np.minimum(cap, sizes)
+    own = np.where(sizes > 1, capped, 0)
+    src = np.concatenate([left, right])
+    dst = np.concatenate([right, left])
+    lo, hi = int(src.min()), int(src.max()) + 1
+    keep = edges_that_count(src, np.concatenate([jaccard, jaccard]), capped[dst], own[lo:hi], lo, hi - lo, cap)
+    return keep[:n] | keep[n:]
