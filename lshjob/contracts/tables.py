@@ -157,7 +157,8 @@ VERIFIED = Contract(
         BANDS_SHARED, PAIR_IDS, PAIR_REPS,
     ],
     row=("a candidate whose exact Jaccard reached the threshold, with the signature estimate "
-         "(fraction of equal positions); in no particular order"),
+         "(fraction of equal positions); in no particular order; given the run's top-k, only the "
+         "pairs that can enter one side's list"),
     producer="lshjob.index.verify.local.verify_blocks (the verify engine)",
     consumer="lshjob.index.publish.expand",
 )

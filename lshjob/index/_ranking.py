@@ -102,17 +102,17 @@ def _cut(starts, order, jaccard, weight, own, cap, keep):
         rows = order[starts[g]:starts[g + 1]]
         if len(rows) == 0:
             continue
-        values = -np.sort(-jaccard[rows])
-        weights = weight[rows][np.argsort(-jaccard[rows], kind="mergesort")]
-        held = own[g]
         cutoff = -1.0
-        for i in range(len(values)):
-            held += weights[i]
-            if held >= cap:
-                cutoff = values[i]
-                break
         if own[g] >= cap:
             cutoff = 1.0
+        elif own[g] + weight[rows].sum() >= cap:  # else the list never fills: every edge counts
+            values = jaccard[rows]
+            held = own[g]
+            for i in np.argsort(-values, kind="mergesort"):
+                held += weight[rows[i]]
+                if held >= cap:
+                    cutoff = values[i]
+                    break
         for r in rows:
             keep[r] = jaccard[r] >= cutoff
 
@@ -126,4 +126,87 @@ def edges_that_count(src: np.ndarray, jaccard: np.ndarray, weight: np.ndarray, o
     keep = np.zeros(len(src), dtype=np.bool_)
     _cut(starts, order, np.ascontiguousarray(jaccard, dtype=np.float64), np.ascontiguousarray(weight, dtype=np.int64),
          np.ascontiguousarray(own, dtype=np.int64), cap, keep)
+    return keep
+
+
+
+@numba.njit(cache=True)
+def _by_side(left, right, groups):
+    """Each pair under both its sides (a counting sort): (starts, pair) with the pairs of
+    side g at ``pair[starts[g]:starts[g + 1]]``."""
+    starts = np.zeros(groups + 1, dtype=np.int64)
+    for p in range(len(left)):
+        starts[left[p] + 1] += 1
+        starts[right[p] + 1] += 1
+    for g in range(groups):
+        starts[g + 1] += starts[g]
+    fill = starts[:-1].copy()
+    pair = np.empty(2 * len(left), dtype=np.int64)
+    for p in range(len(left)):
+        pair[fill[left[p]]] = p
+        fill[left[p]] += 1
+        pair[fill[right[p]]] = p
+        fill[right[p]] += 1
+    return starts, pair
+
+
+@numba.njit(parallel=True, cache=True)
+def _cut_both(starts, pair, left, right, jaccard, capped, cap, keep):
+    """For each side g, the rule of :func:`_cut` over the pairs of g (a partner's group brings
+    ``capped`` rows, g's own group ``capped[g]`` rows of 1.0 when it has members): a pair at
+    or above the value where ``cap`` rows are reached is kept (by either side: ``keep`` is
+    only ever set)."""
+    for g in numba.prange(len(starts) - 1):
+        lo, hi = starts[g], starts[g + 1]
+        if lo == hi:
+            continue
+        own = capped[g] if capped[g] > 1 else 0
+        total = own
+        for i in range(lo, hi):
+            p = pair[i]
+            total += capped[right[p] if left[p] == g else left[p]]
+        cutoff = -1.0
+        if own >= cap:
+            cutoff = 1.0
+        elif total >= cap:
+            values = np.empty(hi - lo, dtype=np.float64)
+            weights = np.empty(hi - lo, dtype=np.int64)
+            for i in range(lo, hi):
+                p = pair[i]
+                values[i - lo] = jaccard[p]
+                weights[i - lo] = capped[right[p] if left[p] == g else left[p]]
+            order = np.argsort(-values, kind="mergesort")
+            held = own
+            for i in order:
+                held += weights[i]
+                if held >= cap:
+                    cutoff = values[i]
+                    break
+        for i in range(lo, hi):
+            p = pair[i]
+            if jaccard[p] >= cutoff:
+                keep[p] = True
+
+
+def pairs_in_lists(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, group_sizes: np.ndarray,
+                   top_k: int) -> np.ndarray:
+    """Which pairs of representatives (``left``, ``right``, their ``jaccard``; each pair once)
+    can bring a row into the list publishing makes for either side (:func:`edges_that_count`
+    on both directions, with the weights of :func:`lshjob.index.publish.expand`: a partner's
+    group counts min(top_k + 1, its size) rows, a group's own members as many rows of 1.0).
+
+    A pair kept by neither side lies below both sides' cut: dropping it changes no list,
+    and the cut of a side is reached at the same value without it. Given only some of the
+    pairs (a block of parts), a side's cut can only be lower than with all of them, so the
+    pairs dropped are still below the cut of the whole run."""
+    cap = top_k + 1
+    keep = np.zeros(len(left), dtype=np.bool_)
+    if len(left) == 0:
+        return keep
+    groups = int(max(left.max(), right.max())) + 1
+    starts, pair = _by_side(np.ascontiguousarray(left, dtype=np.int64), np.ascontiguousarray(right, dtype=np.int64),
+                            groups)
+    capped = np.minimum(cap, np.asarray(group_sizes[:groups], dtype=np.int64))
+    _cut_both(starts, pair, np.ascontiguousarray(left, dtype=np.int64), np.ascontiguousarray(right, dtype=np.int64),
+              np.ascontiguousarray(jaccard, dtype=np.float64), capped, cap, keep)
     return keep

@@ -21,6 +21,8 @@ import time
 from dataclasses import asdict
 from pathlib import Path
 
+import numpy as np
+
 from lshjob.contracts.manifest import Manifest
 from lshjob.core.digest import digest_in_background
 from lshjob.errors import ParameterError
@@ -50,10 +52,13 @@ from lshjob.runtime.remote import is_uri, local_or_none
 from lshjob.runtime.workspace import remove_leftovers, work_folder
 
 
-def _verify_settings(memory: int) -> VerifySettings:
-    """How much verification holds at a time (:class:`lshjob.runtime.budget.Budget`)."""
+def _verify_settings(memory: int, top_k: int | None = None, group_sizes=None, tally: dict | None = None
+                     ) -> VerifySettings:
+    """How much verification holds at a time (:class:`lshjob.runtime.budget.Budget`); with
+    ``top_k``, the pairs that can enter no list are left out (:class:`VerifySettings`)."""
     limit = Budget(memory)
-    return VerifySettings(slice_rows=limit.verify_slice_rows(), estimate_bytes=limit.estimate_bytes())
+    return VerifySettings(slice_rows=limit.verify_slice_rows(), estimate_bytes=limit.estimate_bytes(),
+                          top_k=top_k, group_sizes=group_sizes, tally=tally)
 
 
 class _Stages:
@@ -191,9 +196,14 @@ def run_job(
 
             with stages("verify"):
                 crowds = {} if joined.crowds is None else {"crowds": joined.crowds}  # large buckets' members
+                # pairs that can enter no list are dropped before their estimates (never published)
+                tally: dict = {}
+                settings = _verify_settings(memory, publish.effective_top_k(options.top_k, len(built.keys)),
+                                            np.bincount(built.rep_of, minlength=len(built.rep_of)), tally)
                 verified = options.stage_engine("verify").verify(candidates, built.store, options.threshold,
-                                                                 built.params, _verify_settings(memory), **crowds)
-            counts["verified_pairs"] = verified.height
+                                                                 built.params, settings, **crowds)
+            counts["verified_pairs"] = tally.get("over_threshold", verified.height)
+            counts["pairs_for_lists"] = verified.height
         built.store = None  # the sets are not needed any more: publishing gets their memory
 
         top_k = publish.effective_top_k(options.top_k, len(built.keys))

@@ -9,7 +9,9 @@ Output, VERIFIED (a table): ``left_rep`` < ``right_rep`` (Int64), ``jaccard`` Fl
 intersection / union of the sets' integer counts, never from signatures), ``estimate``
 Float64 (the fraction of equal positions of the two comparable signatures; equal to
 ``jaccard`` when no signatures are made, identical sets only), ``bands_shared`` Int32; the
-candidates with ``jaccard >= threshold``, each once, in no particular order.
+candidates with ``jaccard >= threshold``, each once, in no particular order. Given
+``VerifySettings.top_k`` and ``group_sizes``, an engine may leave out the pairs that can enter
+neither side's list (they are never published).
 
 :mod:`lshjob.index.conformance` checks an engine against this definition.
 """
@@ -18,7 +20,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
-from typing import ClassVar, Protocol, runtime_checkable
+from typing import Any, ClassVar, Protocol, runtime_checkable
 
 import polars as pl
 
@@ -43,6 +45,14 @@ class SetStore(Protocol):
 class VerifySettings:
     slice_rows: int = 1 << 20  # candidates read and verified at a time
     estimate_bytes: int | None = None  # signatures made at a time for the estimates (None: all)
+    # With both: keep only the pairs that can enter the top_k list of one of their sides
+    # (group_sizes: the members of each representative's group of identical sets, by entity
+    # id), before the estimates; the lists published are the same (lshjob.index._ranking.pairs_in_lists).
+    # An engine may ignore them and keep every pair.
+    top_k: int | None = None
+    group_sizes: Any = None
+    # counts an engine may fill: "over_threshold", the pairs that reached the threshold before that cut
+    tally: dict | None = None
 
 
 @runtime_checkable

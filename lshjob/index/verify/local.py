@@ -15,6 +15,7 @@ import polars as pl
 
 from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
+from lshjob.index._ranking import pairs_in_lists
 from lshjob.index.verify._crowds import crowd_pairs_between, verify_crowds
 from lshjob.index.verify._jaccard import exact_jaccard_between, jaccard_between
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
@@ -39,9 +40,11 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
     so memory stays bounded whatever their number. ``candidates`` is the join's file (one
     part) or folder (parts); a pair given a row per band is verified per row and kept once,
     with the rows' ``bands_shared`` summed (:func:`one_row_a_pair`). ``crowds``: the join's
-    CROWDS file, whose pairs are made here (:mod:`lshjob.index.verify._crowds`)."""
+    CROWDS file, whose pairs are made here (:mod:`lshjob.index.verify._crowds`). With
+    ``settings.top_k``, a block's pairs that can enter neither side's list are dropped before
+    their estimates are made (:func:`lshjob.index._ranking.pairs_in_lists`)."""
     step = settings.slice_rows
-    pieces = []
+    pieces, over = [], 0
     parts = len(store.ranges)
     crowd_table = pl.read_parquet(crowds) if crowds is not None else None
     for i in range(parts):
@@ -66,6 +69,11 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
                 continue
             block = one_row_a_pair(block, partial(_exact, left, store.ranges[i][0], right, store.ranges[j][0]))
+            over += block.height
+            if settings.top_k is not None and settings.group_sizes is not None:  # before the estimates
+                block = block.filter(pl.Series(pairs_in_lists(
+                    block["left_rep"].to_numpy(), block["right_rep"].to_numpy(), block["jaccard"].to_numpy(),
+                    settings.group_sizes, settings.top_k)))
             if params is None:  # identical sets only, no signatures: the estimate is exact
                 block = block.with_columns(estimate=pl.col("jaccard")).select(
                     "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
@@ -74,6 +82,8 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                                               max_bytes=settings.estimate_bytes)
             pieces.append(block)
             del right
+    if settings.tally is not None:
+        settings.tally["over_threshold"] = over
     return pl.concat(pieces) if pieces else empty_verified()
 
 

@@ -1,0 +1,137 @@
+"""Pairs that can enter no top-k list are left out before their estimates
+(lshjob/index/_ranking.py pairs_in_lists, lshjob/index/verify/local.py). Oracle: the whole index
+written out by brute force with Python's sorted(): each entity's rows (its group's other members
+at 1.0, every member of each partner's group at the pair's Jaccard) ranked by (-jaccard,
+neighbour) and cut at top_k; the index from the pairs kept must equal the index from all."""
+
+from __future__ import annotations
+
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+from lshjob.core.sets import ElementSets
+from lshjob.index._ranking import pairs_in_lists
+from lshjob.index.publish import expand, neighbour_blocks
+from lshjob.index.verify.base import VerifySettings
+from lshjob.index.verify.local import verify_blocks
+from lshjob.runtime.partitions import HeldSets
+from lshjob.sign.signatures import SignatureParams
+
+
+def _groups(rng, n):
+    """rep_of: entity -> the smallest id of its group of identical sets (groups of 1-9)."""
+    rep_of = np.arange(n)
+    e = 0
+    while e < n:
+        size = int(rng.choice([1, 1, 1, 2, 3, 9]))
+        rep_of[e:e + size] = e
+        e += size
+    return rep_of
+
+
+def _brute_index(left, right, jaccard, rep_of, top_k):
+    """{entity: [(neighbour, jaccard), ...]} by brute force (module docstring)."""
+    members = {}
+    for e, r in enumerate(rep_of.tolist()):
+        members.setdefault(r, []).append(e)
+    partners = {}
+    for a, b, j in zip(left.tolist(), right.tolist(), jaccard.tolist()):
+        partners.setdefault(a, []).append((b, j))
+        partners.setdefault(b, []).append((a, j))
+    index = {}
+    for e, r in enumerate(rep_of.tolist()):
+        rows = [(m, 1.0) for m in members[r] if m != e]
+        rows += [(m, j) for s, j in partners.get(r, []) for m in members[s]]
+        ranked = sorted(rows, key=lambda row: (-row[1], row[0]))[:top_k]
+        if ranked:
+            index[e] = ranked
+    return index
+
+
+def test_the_pairs_kept_publish_the_same_index_as_all_pairs():
+    rng = np.random.default_rng(11)
+    n, top_k = 400, 4
+    rep_of = _groups(rng, n)
+    reps = np.unique(rep_of)
+    a, b = rng.choice(reps, 6000), rng.choice(reps, 6000)
+    key = np.unique(np.minimum(a, b)[a != b] * n + np.maximum(a, b)[a != b])
+    left, right = key // n, key % n
+    jaccard = rng.integers(5, 10, len(left)) / 10.0  # few values: ties at the cut
+    sizes = np.bincount(rep_of, minlength=n)
+    keep = pairs_in_lists(left, right, jaccard, sizes, top_k)
+    assert 0 < keep.sum() < len(keep) // 2  # the cut leaves out most pairs here
+    want = _brute_index(left, right, jaccard, rep_of, top_k)
+    assert _brute_index(left[keep], right[keep], jaccard[keep], rep_of, top_k) == want
+    # and publishing from the kept pairs gives that index too (oracle: the brute force above)
+    verified = pl.DataFrame({"left_rep": left[keep], "right_rep": right[keep], "jaccard": jaccard[keep],
+                             "estimate": jaccard[keep], "bands_shared": np.ones(int(keep.sum()), dtype=np.int32)})
+    keys = pl.Series("entity", np.arange(n))
+    table = pl.concat(list(neighbour_blocks(expand(verified, rep_of, top_k, 3), keys, 1000)))
+    got = {}
+    for e, m, j in table.select("entity", "neighbour", "jaccard").iter_rows():
+        got.setdefault(e, []).append((m, j))
+    assert got == want
+
+
+def _random_sets(rng, n):
+    elements = [np.unique(rng.integers(0, 12, int(rng.integers(2, 7)))) for _ in range(n)]
+    offsets = np.concatenate([[0], np.cumsum([len(s) for s in elements])]).astype(np.int64)
+    return (ElementSets(pl.Series("entity", np.arange(n)), offsets, np.concatenate(elements).astype(np.int64)),
+            [set(s.tolist()) for s in elements])
+
+
+def test_verification_with_top_k_keeps_what_the_lists_need_in_one_range_and_in_three():
+    rng = np.random.default_rng(5)
+    n, top_k, threshold = 240, 2, 0.3
+    sets, python_sets = _random_sets(rng, n)
+    pairs = [(a, b) for a in range(n) for b in range(a + 1, n) if rng.random() < 0.2]
+    candidates = pl.DataFrame({"left_rep": [p[0] for p in pairs], "right_rep": [p[1] for p in pairs],
+                               "bands_shared": np.ones(len(pairs), dtype=np.int32)},
+                              schema={"left_rep": pl.Int64, "right_rep": pl.Int64, "bands_shared": pl.Int32})
+    rep_of = np.arange(n)
+    sizes = np.ones(n, dtype=np.int64)
+    # oracle: exact Jaccard with Python sets, every candidate over the threshold
+    exact = {(a, b): len(python_sets[a] & python_sets[b]) / len(python_sets[a] | python_sets[b]) for a, b in pairs}
+    over = {p: j for p, j in exact.items() if j >= threshold}
+    left, right = np.array([p[0] for p in over]), np.array([p[1] for p in over])
+    want = _brute_index(left, right, np.array(list(over.values())), rep_of, top_k)
+    params = SignatureParams(perms=16, seed=3)
+
+    class Ranges:  # the sets held in consecutive ranges of entity ids
+        def __init__(self, cuts):
+            bounds = [0, *cuts, n]
+            self.ranges = [(lo, hi - 1) for lo, hi in zip(bounds[:-1], bounds[1:])]
+
+        def load(self, i):
+            lo, hi = self.ranges[i][0], self.ranges[i][1] + 1
+            return ElementSets(sets.keys[lo:hi], sets.offsets[lo:hi + 1] - sets.offsets[lo],
+                               sets.elements[sets.offsets[lo]:sets.offsets[hi]])
+
+    with tempfile.TemporaryDirectory() as tmp:
+        whole = Path(tmp) / "candidates.parquet"
+        candidates.write_parquet(whole)
+        blocks = Path(tmp) / "blocks"
+        three = Ranges([80, 160])
+        for i, (lo_i, hi_i) in enumerate(three.ranges):
+            for j, (lo_j, hi_j) in enumerate(three.ranges[i:], start=i):
+                part = candidates.filter(pl.col("left_rep").is_between(lo_i, hi_i)
+                                         & pl.col("right_rep").is_between(lo_j, hi_j))
+                folder = blocks / f"left_part={i}" / f"right_part={j}"
+                folder.mkdir(parents=True)
+                part.write_parquet(folder / "0.parquet")
+        for path, store in ((whole, HeldSets(sets)), (blocks, three)):
+            tally: dict = {}
+            settings = VerifySettings(top_k=top_k, group_sizes=sizes, tally=tally)
+            verified = verify_blocks(path, store, threshold, params, settings)
+            assert tally["over_threshold"] == len(over)  # oracle: the Python sets above
+            assert verified.height < len(over)
+            assert all(over[(a, b)] == j for a, b, j in verified.select("left_rep", "right_rep", "jaccard").iter_rows())
+            table = pl.concat(list(neighbour_blocks(expand(verified, rep_of, top_k, 3),
+                                                    pl.Series("entity", np.arange(n)), 1000)))
+            got = {}
+            for e, m, j in table.select("entity", "neighbour", "jaccard").iter_rows():
+                got.setdefault(e, []).append((m, j))
+            assert got == want
