@@ -13,7 +13,7 @@ from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
 from lshjob.index.band.local import bucket_keys_by_position
 from lshjob.index.collapse import collapse_identical
-from lshjob.jobs._overlap import pair_jaccard
+from lshjob.index.verify._jaccard import exact_jaccard
 from lshjob.jobs.options import default_of
 from lshjob.plan.scaling import SampleProfile
 from lshjob.plan.similarity import postings_of, restricted_index, visit_costs
@@ -95,7 +95,7 @@ def similar_found(table: pl.DataFrame, sets: ElementSets, threshold: float, weig
     pairs = pl.concat(found)["pair"].unique().to_numpy()
     left, right = pairs // n, pairs % n
     reps = table["rep"].to_numpy()
-    similar = pair_jaccard(sets.offsets, sets.elements, reps[left], reps[right]) >= threshold
+    similar = exact_jaccard(sets.offsets, sets.elements, reps[left], reps[right]) >= threshold
     return left[similar], right[similar], share
 
 
