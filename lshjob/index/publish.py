@@ -286,11 +286,15 @@ def stage_neighbours(out_dir: Path, tables, metadata: dict) -> dict:
         first.write_parquet(path, compression="zstd", metadata=kv)
         rows = first.height
     else:
-        rows = _stream(first, second, pending, path, kv)
+        rows = stream_parquet(first, second, pending, path, kv)
     return {"neighbours": NEIGHBOURS, "rows": rows, "sha256": file_sha256(path), "bytes": path.stat().st_size}
 
 
-def _stream(first: pl.DataFrame, second: pl.DataFrame, pending, path: Path, kv: dict) -> int:
+def stream_parquet(first: pl.DataFrame, second: pl.DataFrame, pending, sink, kv: dict) -> int:
+    """Write ``first``, ``second`` and then the tables of the iterator ``pending`` (one schema,
+    in order) into ``sink`` (a path or a binary stream) as one Parquet file with the key-value
+    metadata ``kv``, a table held at a time; the rows written. An error raised while making
+    the tables is raised as it is, not as polars' wrapping of it."""
     held = [second, first]
     schema = first.schema
     rows = [0]
@@ -310,7 +314,7 @@ def _stream(first: pl.DataFrame, second: pl.DataFrame, pending, path: Path, kv: 
 
     del first, second
     try:
-        register_io_source(source, schema=schema).sink_parquet(path, compression="zstd", metadata=kv,
+        register_io_source(source, schema=schema).sink_parquet(sink, compression="zstd", metadata=kv,
                                                                maintain_order=True)
     except Exception:
         if failure:

@@ -31,12 +31,11 @@ import shutil
 from pathlib import Path
 
 import polars as pl
-from polars.io.plugins import register_io_source
 
 from lshjob.contracts.tables import NEIGHBOURS as NEIGHBOUR_ROWS
 from lshjob.errors import ParameterError
 from lshjob.index import publish
-from lshjob.index.publish import MANIFEST, METADATA_KEY, NEIGHBOURS, PREVIOUS
+from lshjob.index.publish import MANIFEST, METADATA_KEY, NEIGHBOURS, PREVIOUS, stream_parquet
 from lshjob.runtime.folder_lock import output_lock
 from lshjob.runtime.outputs import output_folder
 from lshjob.runtime.remote import Location, MarkerLock, is_uri
@@ -215,28 +214,8 @@ def _stream(tables, sink, kv: dict) -> int:
     Parquet file, a table at a time; the rows written."""
     pending = iter(tables)
     first = next(pending)
-    rows = [0]
-    failure: list[BaseException] = []
-
-    def source(with_columns, predicate, n_rows, batch_size):
-        held = [first]
-        try:
-            while held or (table := next(pending, None)) is not None:
-                table = held.pop() if held else table
-                rows[0] += table.height
-                yield table
-        except Exception as exc:
-            failure.append(exc)
-            raise
-
-    try:
-        register_io_source(source, schema=first.schema).sink_parquet(sink, compression="zstd", metadata=kv,
-                                                                     maintain_order=True)
-    except Exception:
-        if failure:
-            raise failure[0] from None
-        raise
-    return rows[0]
+    second = next(pending, None)
+    return stream_parquet(first, first.clear() if second is None else second, pending, sink, kv)
 
 
 def _parts(work: Location, name: str, key: pl.DataType):
