@@ -84,16 +84,22 @@ def _repeating_sets(n: int, seed: int) -> pl.DataFrame:
     return pl.DataFrame({"entity": entity, "element": element})
 
 
+def _whole_and_tenth(frame: pl.DataFrame, folder):
+    """``frame`` written whole, and a uniform 10% sample of its entities (seeded)."""
+    full_path, part_path = folder / "full.parquet", folder / "part.parquet"
+    frame.write_parquet(full_path)
+    picked = frame["entity"].unique().sample(fraction=0.1, seed=9)
+    frame.filter(pl.col("entity").is_in(picked.implode())).write_parquet(part_path)
+    return full_path, part_path
+
+
 def test_pairs_projected_from_a_tenth_match_the_full_count(tmp_path):
     # Oracle: the exact pair rows of the whole population under the same plan (every bucket of
     # every band counted) and its exact distinct sets, against the projection from a uniform
     # 10% sample of the entities. Scaling the sample's pairs by the square of the entities
     # overshoots (repeated sets collapse: their pairs do not grow); the projection must not.
     frame = _repeating_sets(20_000, 4)
-    full_path, part_path = tmp_path / "full.parquet", tmp_path / "part.parquet"
-    frame.write_parquet(full_path)
-    picked = frame["entity"].unique().sample(fraction=0.1, seed=9)
-    frame.filter(pl.col("entity").is_in(picked.implode())).write_parquet(part_path)
+    full_path, part_path = _whole_and_tenth(frame, tmp_path)
     full_sets, _ = load_membership(full_path, SPEC)
     part_sets, _ = load_membership(part_path, SPEC)
     truth = sample_profile(full_sets, 64, 32, 2)
@@ -227,10 +233,7 @@ def test_verified_pairs_projected_from_a_tenth_match_the_full_run(tmp_path):
     from lshjob.plan.sample_weights import once_weight
 
     frame = _long_tailed(30_000, 5)
-    full_path, part_path = tmp_path / "full.parquet", tmp_path / "part.parquet"
-    frame.write_parquet(full_path)
-    picked = frame["entity"].unique().sample(fraction=0.1, seed=9)
-    frame.filter(pl.col("entity").is_in(picked.implode())).write_parquet(part_path)
+    full_path, part_path = _whole_and_tenth(frame, tmp_path)
     options = RunOptions(threshold=0.5, perms=64, bands=16, rows=4, max_bucket=10**6)
     full = run_job(full_path, SPEC, options, tmp_path / "full-idx")
     part_sets, _ = load_membership(part_path, SPEC)
