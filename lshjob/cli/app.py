@@ -52,8 +52,6 @@ app = typer.Typer(
 )
 
 
-
-
 def _progress(quiet: bool, as_json: bool) -> StageProgress:
     return StageProgress(enabled=False if (quiet or as_json) else None)
 

@@ -129,7 +129,6 @@ def edges_that_count(src: np.ndarray, jaccard: np.ndarray, weight: np.ndarray, o
     return keep
 
 
-
 @numba.njit(cache=True)
 def _by_side(left, right, groups):
     """Each pair under both its sides (a counting sort): (starts, pair) with the pairs of

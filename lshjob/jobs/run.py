@@ -160,6 +160,7 @@ def run_job(
             warnings.append(f"{report.empty_after_filter} entities had no element left after --min-count "
                             f"{source.min_count:g}; they are not in the index")
 
+        top_k = publish.effective_top_k(options.top_k, len(built.keys))
         if built.bucket_files is None:  # identical sets only: no bands; across parts, by fingerprint
             skew = None
             counts.update(bucket_rows=0, candidate_pairs=built.identical_pairs)
@@ -198,15 +199,14 @@ def run_job(
                 crowds = {} if joined.crowds is None else {"crowds": joined.crowds}  # large buckets' members
                 # pairs that can enter no list are dropped before their estimates (never published)
                 tally: dict = {}
-                settings = _verify_settings(memory, publish.effective_top_k(options.top_k, len(built.keys)),
-                                            np.bincount(built.rep_of, minlength=len(built.rep_of)), tally)
+                settings = _verify_settings(memory, top_k, np.bincount(built.rep_of, minlength=len(built.rep_of)),
+                                            tally)
                 verified = options.stage_engine("verify").verify(candidates, built.store, options.threshold,
                                                                  built.params, settings, **crowds)
             counts["verified_pairs"] = tally.get("over_threshold", verified.height)
             counts["pairs_for_lists"] = verified.height
         built.store = None  # the sets are not needed any more: publishing gets their memory
 
-        top_k = publish.effective_top_k(options.top_k, len(built.keys))
         if top_k < options.top_k and len(built.keys) > 1:
             warnings.append(f"--top-k {options.top_k} is more than the {len(built.keys) - 1} other entities; "
                             f"used {top_k}")
