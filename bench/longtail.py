@@ -119,7 +119,8 @@ def _stages(manifest: dict) -> dict:
     return {k: round(v, 2) for k, v in manifest["seconds"].items() if isinstance(v, (int, float))}
 
 
-def recall(events: Path, neighbours: Path, sample: int, seed: int = 0) -> tuple[float, int, int]:
+def recall(events: Path, neighbours: Path, sample: int, seed: int = 0, threshold: float = THRESHOLD,
+           top_k: int = TOP_K) -> tuple[float, int, int]:
     """(recall, true pairs, sampled entities): exact Jaccard of each sampled entity against all
     (oracle: intersection counts from a 0/1 sparse matrix product, scipy), true top-k among pairs
     >= threshold; a published neighbour whose exact Jaccard reaches the k-th value is correct."""
@@ -144,13 +145,13 @@ def recall(events: Path, neighbours: Path, sample: int, seed: int = 0) -> tuple[
         jac = inter / (sizes[block][:, None] + sizes[None, :] - inter)
         for i, e in enumerate(block):
             jac[i, e] = -1.0  # not its own neighbour
-            above = jac[i][jac[i] >= THRESHOLD]
-            need = min(TOP_K, len(above))
+            above = jac[i][jac[i] >= threshold]
+            need = min(top_k, len(above))
             if need == 0:
                 continue
             kth = np.partition(above, len(above) - need)[len(above) - need]
             got = found.get(keys[e], np.zeros(0, dtype=np.int64))
-            hit_total += min(need, int((jac[i][got] >= max(kth, THRESHOLD)).sum()))
+            hit_total += min(need, int((jac[i][got] >= max(kth, threshold)).sum()))
             need_total += need
     return (hit_total / need_total if need_total else float("nan")), need_total, len(picked)
 

@@ -51,6 +51,31 @@ def _brute_index(left, right, jaccard, rep_of, top_k):
     return index
 
 
+def _cut_rule(left, right, jaccard, sizes, top_k):
+    """The rule of pairs_in_lists in Python (sorted()): per side, its partners' rows
+    (min(top_k + 1, group size) each) and its own group's rows at 1.0, by Jaccard descending;
+    a pair is kept when its Jaccard reaches the value at which top_k + 1 rows are reached (every
+    pair when the side never gets there), by either side."""
+    cap = top_k + 1
+    sides = {}
+    for p, (a, b) in enumerate(zip(left.tolist(), right.tolist())):
+        sides.setdefault(a, []).append((p, b))
+        sides.setdefault(b, []).append((p, a))
+    keep = [False] * len(left)
+    for g, pairs in sides.items():
+        own = min(cap, int(sizes[g])) if sizes[g] > 1 else 0
+        held, cutoff = own, 1.0 if own >= cap else -1.0
+        if own < cap:
+            for p, other in sorted(pairs, key=lambda x: -jaccard[x[0]]):
+                held += min(cap, int(sizes[other]))
+                if held >= cap:
+                    cutoff = jaccard[p]
+                    break
+        for p, _ in pairs:
+            keep[p] = keep[p] or bool(jaccard[p] >= cutoff)
+    return keep
+
+
 def test_the_pairs_kept_publish_the_same_index_as_all_pairs():
     rng = np.random.default_rng(11)
     n, top_k = 400, 4
@@ -63,6 +88,7 @@ def test_the_pairs_kept_publish_the_same_index_as_all_pairs():
     sizes = np.bincount(rep_of, minlength=n)
     keep = pairs_in_lists(left, right, jaccard, sizes, top_k)
     assert 0 < keep.sum() < len(keep) // 2  # the cut leaves out most pairs here
+    assert keep.tolist() == _cut_rule(left, right, jaccard, sizes, top_k)
     want = _brute_index(left, right, jaccard, rep_of, top_k)
     assert _brute_index(left[keep], right[keep], jaccard[keep], rep_of, top_k) == want
     # and publishing from the kept pairs gives that index too (oracle: the brute force above)

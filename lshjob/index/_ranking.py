@@ -154,33 +154,45 @@ def _cut_both(starts, pair, left, right, jaccard, capped, cap, keep):
     """For each side g, the rule of :func:`_cut` over the pairs of g (a partner's group brings
     ``capped`` rows, g's own group ``capped[g]`` rows of 1.0 when it has members): a pair at
     or above the value where ``cap`` rows are reached is kept (by either side: ``keep`` is
-    only ever set)."""
+    only ever set). Every pair brings a row or more, so that value lies among the side's
+    ``cap`` highest: they are held sorted (an insertion, one comparison for a pair that does
+    not enter), not the whole side."""
     for g in numba.prange(len(starts) - 1):
         lo, hi = starts[g], starts[g + 1]
         if lo == hi:
             continue
         own = capped[g] if capped[g] > 1 else 0
-        total = own
-        for i in range(lo, hi):
-            p = pair[i]
-            total += capped[right[p] if left[p] == g else left[p]]
         cutoff = -1.0
         if own >= cap:
             cutoff = 1.0
-        elif total >= cap:
-            values = np.empty(hi - lo, dtype=np.float64)
-            weights = np.empty(hi - lo, dtype=np.int64)
+        else:
+            values = np.empty(cap, dtype=np.float64)  # the highest values, descending
+            weights = np.empty(cap, dtype=np.int64)
+            held = 0
+            total = own
             for i in range(lo, hi):
                 p = pair[i]
-                values[i - lo] = jaccard[p]
-                weights[i - lo] = capped[right[p] if left[p] == g else left[p]]
-            order = np.argsort(-values, kind="mergesort")
-            held = own
-            for i in order:
-                held += weights[i]
-                if held >= cap:
-                    cutoff = values[i]
-                    break
+                w = capped[right[p] if left[p] == g else left[p]]
+                total += w
+                v = jaccard[p]
+                if held == cap and v <= values[cap - 1]:
+                    continue
+                at = held if held < cap else cap - 1
+                while at > 0 and values[at - 1] < v:
+                    if at < cap:
+                        values[at] = values[at - 1]
+                        weights[at] = weights[at - 1]
+                    at -= 1
+                values[at] = v
+                weights[at] = w
+                held = min(held + 1, cap)
+            if total >= cap:
+                reached = own
+                for i in range(held):
+                    reached += weights[i]
+                    if reached >= cap:
+                        cutoff = values[i]
+                        break
         for i in range(lo, hi):
             p = pair[i]
             if jaccard[p] >= cutoff:

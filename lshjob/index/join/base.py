@@ -47,9 +47,11 @@ class JoinSettings:
     max_bucket: int = DEFAULT_MAX_BUCKET
     # Over this many pair rows (pairs counted once per band), an engine may write a row per
     # band instead of one per pair when pairs repeat at most ``max_repeat`` times on average:
-    # verifying a repeat costs less than deduplicating tens of millions of pairs.
+    # verifying a repeat costs less than deduplicating tens of millions of pairs. (At 1.5, Zipf
+    # 2.0 data with pairs repeating 1.65 times went to the GROUP BY: 113 s against 2 s for the
+    # join, the same index; bench/RESULTS.md, "Other long-tailed shapes".)
     dedupe_up_to: int = 4_000_000
-    max_repeat: float = 1.5
+    max_repeat: float = 4.0
     # Then buckets of this many members or more are crowds (module docstring): their pairs,
     # most of them on long-tailed data, are made by verification, a bucket's sets at a time.
     crowd_size: int = 64
