@@ -52,7 +52,8 @@ def run_case(events: Path, out: Path, threshold: float, top_k: int) -> tuple[int
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
     manifest = json.loads(done.stdout) if done.returncode == 0 else None
-    return done.returncode, wall, cpu, manifest, done.stderr.strip().splitlines()[-1:] and done.stderr.strip().splitlines()[-1] or ""
+    last = done.stderr.strip().splitlines()
+    return done.returncode, wall, cpu, manifest, last[-1] if last else ""
 
 
 def main() -> None:
