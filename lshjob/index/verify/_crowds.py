@@ -232,6 +232,13 @@ def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: in
     """The crowds' pairs whose Jaccard reaches ``threshold``, as :func:`lshjob.index.verify.local.verify_between`
     gives them (``bands_shared`` 1: a row per band, summed with the pair's other rows later).
     ``block``: from :func:`crowd_pairs_between`; at most ``max_pairs`` pairs (or one crowd's) made at a time."""
+    return pl.concat(list(crowd_pieces(block, left_sets, left_first, right_sets, right_first, threshold, max_pairs)))
+
+
+def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int, threshold: float,
+                 max_pairs: int = MAX_PAIRS):
+    """:func:`verify_crowds`'s rows, a chunk of at most ``max_pairs`` pairs made at a time, so
+    the caller can deduplicate as they come."""
     (a_members, a_crowd, a_start, a_count, b_members, b_crowd, b_start, b_count, same), pairs = block
     a_members = _by_size(a_members, a_crowd, left_sets, left_first)  # each crowd's members by set size
     b_members = a_members if same else _by_size(b_members, b_crowd, right_sets, right_first)
@@ -247,7 +254,6 @@ def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: in
     out_left = np.empty(size, dtype=np.int64)
     out_right = np.empty(size, dtype=np.int64)
     out_jac = np.empty(size)
-    pieces = []
     for lo, hi, done in bounds:
         size = int(cum[hi - 1] - done)
         base = np.concatenate([[0], cum[lo:hi - 1] - done]).astype(np.int64)
@@ -262,10 +268,8 @@ def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: in
                          right_first, a_members, a_start[lo:hi], a_count[lo:hi], b_members, b_start[lo:hi],
                          b_count[lo:hi], same, base, threshold, out_left, out_right, out_jac)
             keep = np.flatnonzero(out_jac[:size] >= threshold)
-        pieces.append(pl.DataFrame({"left_rep": out_left[keep], "right_rep": out_right[keep],
-                                    "jaccard": out_jac[keep],
-                                    "bands_shared": np.ones(len(keep), dtype=np.int32)}))
-    return pl.concat(pieces)
+        yield pl.DataFrame({"left_rep": out_left[keep], "right_rep": out_right[keep], "jaccard": out_jac[keep],
+                            "bands_shared": np.ones(len(keep), dtype=np.int32)})
 
 
 def _by_size(members: np.ndarray, crowd: np.ndarray, sets, first: int) -> np.ndarray:

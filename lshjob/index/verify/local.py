@@ -16,7 +16,7 @@ import polars as pl
 from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
 from lshjob.index._ranking import pairs_in_lists
-from lshjob.index.verify._crowds import crowd_pairs_between, verify_crowds
+from lshjob.index.verify._crowds import crowd_pairs_between, crowd_pieces
 from lshjob.index.verify._jaccard import exact_jaccard_between, jaccard_between
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
 from lshjob.index.verify.estimates import add_estimates_between
@@ -56,19 +56,19 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 continue
             left = store.load(i) if left is None else left
             right = left if j == i else store.load(j)
-            kept = []
+            held = HeldRows(step, partial(one_row_a_pair, jaccard_of=partial(
+                _exact, left, store.ranges[i][0], right, store.ranges[j][0])))
             if files:
                 frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
                 for lo, hi in slice_bounds(_rows(files), step):
                     chunk = frame.slice(lo, hi - lo).collect()
-                    kept.append(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0],
-                                               threshold))
+                    held.add(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
             if crowded is not None:
-                kept.append(verify_crowds(crowded, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
-            block = pl.concat(kept) if kept else None
+                for piece in crowd_pieces(crowded, left, store.ranges[i][0], right, store.ranges[j][0], threshold):
+                    held.add(piece)
+            block = held.result()
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
                 continue
-            block = one_row_a_pair(block, partial(_exact, left, store.ranges[i][0], right, store.ranges[j][0]))
             over += block.height
             if settings.top_k is not None and settings.group_sizes is not None:  # before the estimates
                 block = block.filter(pl.Series(pairs_in_lists(
@@ -85,6 +85,37 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
     if settings.tally is not None:
         settings.tally["over_threshold"] = over
     return pl.concat(pieces) if pieces else empty_verified()
+
+
+class HeldRows:
+    """A block's verified rows as they come, one row a pair: ``dedup`` (:func:`one_row_a_pair`)
+    runs whenever the rows added since its last run outnumber both a slice (``step``) and the
+    rows it kept then. Rows held stay under about twice the block's distinct pairs plus a
+    slice, whatever the bands a pair repeats in; each row is sorted about twice (amortised)."""
+
+    def __init__(self, step: int, dedup) -> None:
+        self.step, self.dedup = step, dedup
+        self.kept: pl.DataFrame | None = None
+        self.fresh: list[pl.DataFrame] = []
+        self.fresh_rows = 0
+
+    def add(self, rows: pl.DataFrame) -> None:
+        if rows.height == 0:
+            return
+        self.fresh.append(rows)
+        self.fresh_rows += rows.height
+        if self.fresh_rows > max(self.step, self.kept.height if self.kept is not None else 0):
+            self._dedup()
+
+    def _dedup(self) -> None:
+        self.kept = self.dedup(pl.concat(([self.kept] if self.kept is not None else []) + self.fresh))
+        self.fresh, self.fresh_rows = [], 0
+
+    def result(self) -> pl.DataFrame | None:
+        """The rows, one a pair (``bands_shared`` summed), or None when none was added."""
+        if self.fresh:
+            self._dedup()
+        return self.kept
 
 
 def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first: int,
