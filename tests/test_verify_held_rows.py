@@ -57,8 +57,9 @@ def test_rows_per_band_and_crowds_verified_once_whatever_the_slice(tmp_path):
             want[(a, b)] = (jac, count)
     assert len(want) > 200 and max(c for _, c in want.values()) >= 4
 
-    for step in (7, 100, 1 << 20):  # many deduplications, a few, one
-        got = verify_blocks(path, HeldSets(sets), threshold, None, VerifySettings(slice_rows=step), crowd_path)
+    for step in (7, 100, None):  # many deduplications, a few, one at the end
+        settings = VerifySettings(slice_rows=step or 1 << 20, held_rows=step)
+        got = verify_blocks(path, HeldSets(sets), threshold, None, settings, crowd_path)
         assert got.height == len(want)
         table = {(a, b): (j, s) for a, b, j, s in got.select("left_rep", "right_rep", "jaccard", "bands_shared")
                  .iter_rows()}

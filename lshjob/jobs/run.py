@@ -58,6 +58,7 @@ def _verify_settings(memory: int, top_k: int | None = None, group_sizes=None, ta
     ``top_k``, the pairs that can enter no list are left out (:class:`VerifySettings`)."""
     limit = Budget(memory)
     return VerifySettings(slice_rows=limit.verify_slice_rows(), estimate_bytes=limit.estimate_bytes(),
+                          held_rows=limit.verify_held_rows(),
                           top_k=top_k, group_sizes=group_sizes, tally=tally)
 
 

@@ -253,6 +253,11 @@ class Budget:
         """Candidates verified at a time: an eighth of the budget."""
         return max(MIN_VERIFY_SLICE, self.memory // SLICE_SHARE // VERIFY_BYTES_PER_PAIR)
 
+    def verify_held_rows(self) -> int:
+        """Verified rows a block holds before deduplicating them (pairs repeat, a row per band):
+        a quarter of the budget."""
+        return max(MIN_VERIFY_SLICE, self.memory // 4 // VERIFY_BYTES_PER_PAIR)
+
     def estimate_bytes(self) -> int:
         return self.memory // ESTIMATE_SHARE
 

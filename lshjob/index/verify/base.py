@@ -45,6 +45,7 @@ class SetStore(Protocol):
 class VerifySettings:
     slice_rows: int = 1 << 20  # candidates read and verified at a time
     estimate_bytes: int | None = None  # signatures made at a time for the estimates (None: all)
+    held_rows: int | None = None  # verified rows held before they are deduplicated (None: a block's all)
     # With both: keep only the pairs that can enter the top_k list of one of their sides
     # (group_sizes: the members of each representative's group of identical sets, by entity
     # id), before the estimates; the lists published are the same (lshjob.index._ranking.pairs_in_lists).

@@ -56,7 +56,7 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 continue
             left = store.load(i) if left is None else left
             right = left if j == i else store.load(j)
-            held = HeldRows(step, partial(one_row_a_pair, jaccard_of=partial(
+            held = HeldRows(settings.held_rows, partial(one_row_a_pair, jaccard_of=partial(
                 _exact, left, store.ranges[i][0], right, store.ranges[j][0])))
             if files:
                 frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
@@ -89,11 +89,12 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
 
 class HeldRows:
     """A block's verified rows as they come, one row a pair: ``dedup`` (:func:`one_row_a_pair`)
-    runs whenever the rows added since its last run outnumber both a slice (``step``) and the
-    rows it kept then. Rows held stay under about twice the block's distinct pairs plus a
-    slice, whatever the bands a pair repeats in; each row is sorted about twice (amortised)."""
+    runs whenever the rows added since its last run outnumber both ``step`` and the rows it
+    kept then, and once at the end. Rows held stay under about twice the block's distinct
+    pairs plus ``step`` (and a piece), whatever the bands a pair repeats in; each row is sorted
+    about twice (amortised). ``step`` None: one deduplication at the end."""
 
-    def __init__(self, step: int, dedup) -> None:
+    def __init__(self, step: int | None, dedup) -> None:
         self.step, self.dedup = step, dedup
         self.kept: pl.DataFrame | None = None
         self.fresh: list[pl.DataFrame] = []
@@ -104,7 +105,8 @@ class HeldRows:
             return
         self.fresh.append(rows)
         self.fresh_rows += rows.height
-        if self.fresh_rows > max(self.step, self.kept.height if self.kept is not None else 0):
+        if self.step is not None and self.fresh_rows > max(self.step,
+                                                           self.kept.height if self.kept is not None else 0):
             self._dedup()
 
     def _dedup(self) -> None:
