@@ -94,3 +94,56 @@ def test_held_rows_stay_within_twice_the_pairs_plus_a_slice():
     assert result.equals(whole)
     assert len(given) > 3
     assert max(given) <= 2 * len(pairs) + step + 30
+
+
+def _cut_rule(want: dict, sizes: np.ndarray, top_k: int) -> set:
+    """The pairs the top-k cut keeps, by its rule in Python (sorted()): per side, its partners'
+    rows (min(top_k + 1, group size) each) and its own group's rows at 1.0, by Jaccard
+    descending; a pair is kept when its Jaccard reaches the value where top_k + 1 rows are
+    reached (every pair when they never are), by either side."""
+    cap, sides, kept = top_k + 1, {}, set()
+    for (a, b), (jac, _) in want.items():
+        sides.setdefault(a, []).append((jac, b, (a, b)))
+        sides.setdefault(b, []).append((jac, a, (a, b)))
+    for g, pairs in sides.items():
+        held = min(cap, int(sizes[g])) if sizes[g] > 1 else 0
+        cutoff = 1.0 if held >= cap else -1.0
+        for jac, other, _ in sorted(pairs, key=lambda x: -x[0]):
+            if held >= cap:
+                break
+            held += min(cap, int(sizes[other]))
+            if held >= cap:
+                cutoff = jac
+        kept |= {pair for jac, _, pair in pairs if jac >= cutoff}
+    return kept
+
+
+def test_the_top_k_cut_while_rows_come_keeps_the_pairs_and_counts_of_one_cut_at_the_end(tmp_path):
+    # Oracle: the pairs reaching the threshold by Python sets, their rows counted with Counter,
+    # cut by the rule above; the rows held checked by a spy on what each cut is given.
+    rng = np.random.default_rng(5)
+    n, threshold, top_k = 150, 0.3, 3
+    sets, python_sets = _sets(rng, n)
+    rows = [(a, b) for a, b in combinations(range(n), 2) if rng.random() < 0.3 for _ in range(int(rng.integers(1, 5)))]
+    rng.shuffle(rows)
+    path = tmp_path / "candidates.parquet"
+    pl.DataFrame({"left_rep": [a for a, _ in rows], "right_rep": [b for _, b in rows],
+                  "bands_shared": np.ones(len(rows), dtype=np.int32)},
+                 schema={"left_rep": pl.Int64, "right_rep": pl.Int64, "bands_shared": pl.Int32}).write_parquet(path)
+    sizes = rng.choice([1, 1, 1, 2, 5], n)  # members of each representative's group
+    met, want = Counter(rows), {}
+    for (a, b), count in met.items():
+        jac = len(python_sets[a] & python_sets[b]) / len(python_sets[a] | python_sets[b])
+        if jac >= threshold:
+            want[(a, b)] = (jac, count)
+    kept = _cut_rule(want, sizes, top_k)
+    assert 0 < len(kept) < len(want) // 2  # the cut leaves out most pairs here
+    for step in (40, None):  # cuts as rows come, one cut at the end
+        settings = VerifySettings(slice_rows=step or 1 << 20, held_rows=step, top_k=top_k, group_sizes=sizes,
+                                  tally={})
+        got = verify_blocks(path, HeldSets(sets), threshold, None, settings)
+        table = {(a, b): (j, s) for a, b, j, s in got.select("left_rep", "right_rep", "jaccard", "bands_shared")
+                 .iter_rows()}
+        assert table.keys() == kept, step
+        assert all(table[pair] == want[pair] for pair in kept), step
+        assert settings.tally["over_threshold"] >= len(want)

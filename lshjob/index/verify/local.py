@@ -56,8 +56,11 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 continue
             left = store.load(i) if left is None else left
             right = left if j == i else store.load(j)
+            cut = None
+            if settings.top_k is not None and settings.group_sizes is not None:
+                cut = partial(_in_lists, group_sizes=settings.group_sizes, top_k=settings.top_k)
             held = HeldRows(settings.held_rows, partial(one_row_a_pair, jaccard_of=partial(
-                _exact, left, store.ranges[i][0], right, store.ranges[j][0])))
+                _exact, left, store.ranges[i][0], right, store.ranges[j][0])), cut)
             if files:
                 frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
                 for lo, hi in slice_bounds(_rows(files), step):
@@ -69,11 +72,9 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
             block = held.result()
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
                 continue
-            over += block.height
-            if settings.top_k is not None and settings.group_sizes is not None:  # before the estimates
-                block = block.filter(pl.Series(pairs_in_lists(
-                    block["left_rep"].to_numpy(), block["right_rep"].to_numpy(), block["jaccard"].to_numpy(),
-                    settings.group_sizes, settings.top_k)))
+            over += block.height + held.dropped
+            if cut is not None:  # before the estimates
+                block = cut(block)
             if params is None:  # identical sets only, no signatures: the estimate is exact
                 block = block.with_columns(estimate=pl.col("jaccard")).select(
                     "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
@@ -92,13 +93,23 @@ class HeldRows:
     runs whenever the rows added since its last run outnumber both ``step`` and the rows it
     kept then, and once at the end. Rows held stay under about twice the block's distinct
     pairs plus ``step`` (and a piece), whatever the bands a pair repeats in; each row is sorted
-    about twice (amortised). ``step`` None: one deduplication at the end."""
+    about twice (amortised). ``step`` None: one deduplication at the end.
 
-    def __init__(self, step: int | None, dedup) -> None:
-        self.step, self.dedup = step, dedup
+    ``cut`` (the top-k cut, :func:`_in_lists`), when given, runs after each deduplication but
+    the last, so the rows held are bounded by the pairs the lists can take, not by all pairs
+    over the threshold. It drops only pairs below both sides' cut among the pairs held; a
+    side's cut only rises as pairs come, and dropping pairs below it leaves it where it is, so
+    a pair dropped stays below the block's final cut (even if met again in a later band) and a
+    pair the final cut keeps was never dropped: the same pairs, with the same rows counted, as
+    one cut at the end. ``dropped``: pairs the cuts dropped (a pair met again after being
+    dropped counts again)."""
+
+    def __init__(self, step: int | None, dedup, cut=None) -> None:
+        self.step, self.dedup, self.cut = step, dedup, cut
         self.kept: pl.DataFrame | None = None
         self.fresh: list[pl.DataFrame] = []
         self.fresh_rows = 0
+        self.dropped = 0
 
     def add(self, rows: pl.DataFrame) -> None:
         if rows.height == 0:
@@ -108,6 +119,10 @@ class HeldRows:
         if self.step is not None and self.fresh_rows > max(self.step,
                                                            self.kept.height if self.kept is not None else 0):
             self._dedup()
+            if self.cut is not None:
+                height = self.kept.height
+                self.kept = self.cut(self.kept)
+                self.dropped += height - self.kept.height
 
     def _dedup(self) -> None:
         self.kept = self.dedup(pl.concat(([self.kept] if self.kept is not None else []) + self.fresh))
@@ -118,6 +133,12 @@ class HeldRows:
         if self.fresh:
             self._dedup()
         return self.kept
+
+
+def _in_lists(pairs: pl.DataFrame, group_sizes, top_k: int) -> pl.DataFrame:
+    """The pairs that can enter a list (:func:`lshjob.index._ranking.pairs_in_lists`)."""
+    return pairs.filter(pl.Series(pairs_in_lists(pairs["left_rep"].to_numpy(), pairs["right_rep"].to_numpy(),
+                                                 pairs["jaccard"].to_numpy(), group_sizes, top_k)))
 
 
 def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first: int,
