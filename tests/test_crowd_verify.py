@@ -4,6 +4,7 @@ Oracle: exact Jaccard of every pair of members with Python sets (itertools.combi
 
 from __future__ import annotations
 
+from collections import Counter
 from itertools import combinations
 
 import numpy as np
@@ -33,12 +34,15 @@ def _crowded_sets(seed: int, crowds: int = 6):
     crowd_rows.append((2, 0))
     sets.append(list(sets[-1]))
     crowd_rows.append((crowds, len(sets) - 1))
+    # members of crowds 1 and 3 met again in one more crowd (another band): pairs in several crowds
+    crowd_rows.extend((crowds + 1, rep) for crowd, rep in list(crowd_rows) if crowd in (1, 3))
     return sets, crowd_rows
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])
 @pytest.mark.parametrize("threshold", [0.3, 0.5, 0.8])
-def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold):
+@pytest.mark.parametrize("with_bands", [False, True])
+def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold, with_bands):
     sets, crowd_rows = _crowded_sets(seed)
     keys = pl.Series("entity", np.arange(len(sets)))
     rows = pl.DataFrame({"entity": np.repeat(np.arange(len(sets)), [len(s) for s in sets]),
@@ -47,17 +51,25 @@ def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold):
     assert element_sets.keys.equals(keys)
     table = (pl.DataFrame(crowd_rows, schema={"crowd": pl.Int64, "rep": pl.Int64}, orient="row")
              .unique().sort("crowd", "rep"))
+    if with_bands:  # crowd c in band c - 1 (one crowd a band: a rep is in one crowd a band at most)
+        table = table.with_columns(band=(pl.col("crowd") - 1).cast(pl.Int32))
     block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
     got = verify_crowds(block, element_sets, 0, element_sets, 0, threshold, max_pairs=500)
-    # oracle: exact Jaccard with Python sets, every pair of every crowd (a pair once per crowd it is in)
-    want = []
+    # oracle: exact Jaccard with Python sets, every pair of every crowd; a row per crowd it is
+    # in, or, given the bands, one row with the number of crowds it is in
+    crowds_in = Counter()
     for _, members in table.group_by("crowd"):
         for a, b in combinations(sorted(members["rep"].to_list()), 2):
             sa, sb = set(sets[a]), set(sets[b])
-            j = len(sa & sb) / len(sa | sb)
-            if j >= threshold:
-                want.append((a, b, j))
-    got_rows = sorted(zip(got["left_rep"].to_list(), got["right_rep"].to_list(), got["jaccard"].to_list()))
+            if len(sa & sb) / len(sa | sb) >= threshold:
+                crowds_in[a, b] += 1
+    jaccard = {(a, b): len(set(sets[a]) & set(sets[b])) / len(set(sets[a]) | set(sets[b])) for a, b in crowds_in}
+    if with_bands:
+        want = sorted((a, b, jaccard[a, b], n) for (a, b), n in crowds_in.items())
+    else:
+        want = sorted((a, b, jaccard[a, b], 1) for (a, b), n in crowds_in.items() for _ in range(n))
+    got_rows = sorted(zip(got["left_rep"].to_list(), got["right_rep"].to_list(), got["jaccard"].to_list(),
+                          got["bands_shared"].to_list()))
     assert len(want) > 20  # the case holds pairs to find
-    assert got_rows == sorted(want)
-    assert (got["bands_shared"] == 1).all()
+    assert any(n > 1 for n in crowds_in.values())  # and pairs met in more than one crowd
+    assert got_rows == want

@@ -20,9 +20,13 @@ def crowd_rows(crowds: Path | None) -> list[tuple[int, int, int]]:
     if crowds is None:
         return []
     table = pl.read_parquet(crowds)
-    _expect(table.columns == ["crowd", "rep"] and table.equals(table.sort("crowd", "rep"))
+    _expect(table.columns in (["crowd", "rep"], ["crowd", "rep", "band"]) and table.equals(table.sort("crowd", "rep"))
             and table.select(pl.struct("crowd", "rep").is_unique().all()).item(),
-            "crowds: columns crowd, rep; one row per (crowd, rep), sorted")
+            "crowds: columns crowd, rep (and band); one row per (crowd, rep), sorted")
+    if "band" in table.columns:
+        _expect(table.group_by("crowd").agg(pl.col("band").n_unique())["band"].max() == 1
+                and table.select(pl.struct("rep", "band").is_unique().all()).item(),
+                "crowds: one band a crowd, a rep in one crowd a band at most")
     return [(a, b, 1) for _, members in table.group_by("crowd")
             for a, b in combinations(sorted(members["rep"].to_list()), 2)]
 

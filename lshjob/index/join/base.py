@@ -12,8 +12,10 @@ the engine leaves deduplication to verification, a row per band the pair met in 
 ``bands_shared`` is then the sum of its rows'; verification sums them). Such an engine may
 also leave the pairs of large buckets unwritten and list their members instead, CROWDS
 (``JoinOutput.crowds``, a Parquet file: ``crowd`` Int64, ``rep`` Int64, one row per (crowd,
-rep), sorted by crowd then rep): every pair of a crowd's members is a candidate row with
-``bands_shared`` 1, made by verification (:mod:`lshjob.index.verify.local`). Given
+rep), sorted by crowd then rep; and, when the engine gives it, ``band`` Int32, the crowd's
+band, a rep in one crowd a band at most): every pair of a crowd's members is a candidate row
+with ``bands_shared`` 1, made by verification (:mod:`lshjob.index.verify.local`; given the
+bands, a pair met in several crowds is verified once, with their number). Given
 the entity id ranges of a run's parts (consecutive, :mod:`lshjob.jobs.parts`), a folder
 instead: the same rows split by the parts of their two sides,
 ``left_part=i/right_part=j/*.parquet`` (``i <= j``). With the pairs, the skew report: the

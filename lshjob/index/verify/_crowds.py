@@ -135,9 +135,23 @@ def _prefix_index(offsets, elements, first, mem, threshold):
 
 
 @numba.njit(inline="always")
-def _keep(offsets, elements, first, mem, x, y, la, lb, need, threshold, out, out_left, out_right, out_jac):
+def _keep(offsets, elements, first, mem, x, y, la, lb, need, threshold, crowd_at, in_bands, row_of, band, out,
+          out_left, out_right, out_jac, out_bands):
     """Intersect members x and y (sizes la >= lb); write the pair at ``out`` when it reaches
-    the threshold (the filters of :func:`_crowd_pairs`); the next free slot."""
+    the threshold (the filters of :func:`_crowd_pairs`); the next free slot. With the crowds'
+    bands (``crowd_at``: each member's crowd a band, 0 for none; ``row_of``: its row; ``band``:
+    this crowd's), a pair sharing a crowd of an earlier band is left to it, and a pair written
+    gets the number of crowds it shares as its ``out_bands``."""
+    both = np.uint64(0)
+    rx = ry = 0
+    if band >= 0:
+        rx, ry = row_of[mem[x] - first], row_of[mem[y] - first]
+        both = in_bands[rx] & in_bands[ry]
+        if both & ((np.uint64(1) << np.uint64(band)) - np.uint64(1) if band < 64 else ~np.uint64(0)):
+            for b in range(band):
+                if (both >> np.uint64(b & 63)) & np.uint64(1) and crowd_at[rx, b] == crowd_at[ry, b] \
+                        and crowd_at[rx, b] != 0:
+                    return out
     a0, a1 = offsets[mem[x] - first], offsets[mem[x] - first + 1]
     b0, b1 = offsets[mem[y] - first], offsets[mem[y] - first + 1]
     inter = _intersection(elements, b0, b1, elements, a0, a1, need)
@@ -146,13 +160,20 @@ def _keep(offsets, elements, first, mem, x, y, la, lb, need, threshold, out, out
         out_left[out] = min(mem[x], mem[y])
         out_right[out] = max(mem[x], mem[y])
         out_jac[out] = value
+        shared = 1
+        if band >= 0:
+            for b in range(band + 1, crowd_at.shape[1]):
+                if (both >> np.uint64(b & 63)) & np.uint64(1) and crowd_at[rx, b] == crowd_at[ry, b] \
+                        and crowd_at[rx, b] != 0:
+                    shared += 1
+        out_bands[out] = shared
         return out + 1
     return out
 
 
 @numba.njit(parallel=True, cache=True)
-def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, threshold,
-                        out_left, out_right, out_jac, found):
+def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, threshold, crowd_at, in_bands,
+                        row_of, bands, out_left, out_right, out_jac, out_bands, found):
     """The pairs of each crowd (members ``members[start[c]:start[c] + count[c]]``, one range,
     by set size ascending) whose Jaccard reaches ``threshold``: the same pairs, with the same
     values, as :func:`_crowd_pairs`, without intersecting every pair. Written from slot
@@ -166,7 +187,12 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
     first, it shares one among the first |A'| - o + 1 of each side (prefix filtering:
     Chaudhuri, Ganti, Kaushik, ICDE 2006; Xiao, Wang, Lin, Yu, WWW 2008). Each member's
     prefix is cut for the smallest o of any partner its size allows, and the members sharing
-    a prefix element are intersected, each pair once."""
+    a prefix element are intersected, each pair once.
+
+    ``bands[c]``: crowd c's band, or -1 when the bands are not known. Known, a pair of members
+    of crowds of several bands is intersected and written by the crowd of its first band
+    only, with the number of crowds it shares (:func:`_keep`): one row where a crowd each
+    would give one, and one intersection."""
     for c in numba.prange(start.shape[0]):
         mem = members[start[c]:start[c] + count[c]]
         size, common, local_off, local, prefix, post_off, posted = _prefix_index(offsets, elements, first, mem,
@@ -180,8 +206,8 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                 if need > common:
                     break  # later partners are at least as large
                 if size[y] >= threshold * la - 1e-9:
-                    out = _keep(offsets, elements, first, mem, x, y, la, size[y], need, threshold, out,
-                                out_left, out_right, out_jac)
+                    out = _keep(offsets, elements, first, mem, x, y, la, size[y], need, threshold, crowd_at,
+                                in_bands, row_of, bands[c], out, out_left, out_right, out_jac, out_bands)
             low = first_at_least(size, 0, x, threshold * la - 1e-9)  # the size filter, sizes ascending
             for q in range(local_off[x], local_off[x] + prefix[x]):
                 r = local[q]
@@ -194,35 +220,40 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                     seen[y] = x
                     need = _need(la, size[y], threshold)
                     if need > common:  # (the others were intersected above)
-                        out = _keep(offsets, elements, first, mem, x, y, la, size[y], need, threshold, out,
-                                    out_left, out_right, out_jac)
+                        out = _keep(offsets, elements, first, mem, x, y, la, size[y], need, threshold,
+                                    crowd_at, in_bands, row_of, bands[c], out, out_left, out_right, out_jac, out_bands)
         found[c] = out - base[c]
 
 
-def _by_crowd(crowds: np.ndarray, reps: np.ndarray, first: int, last: int):
-    """The members of each crowd within entity ids first..last: (crowd ids, start, count, reps)."""
+def _by_crowd(crowds: np.ndarray, reps: np.ndarray, bands: np.ndarray | None, first: int, last: int):
+    """The members of each crowd within entity ids first..last: (crowd ids, start, count, reps,
+    each member's crowd, each member's band or None)."""
     inside = (reps >= first) & (reps <= last)
     crowd, members = crowds[inside], reps[inside]
     ids, start, count = np.unique(crowd, return_index=True, return_counts=True)
-    return ids, start.astype(np.int64), count.astype(np.int64), np.ascontiguousarray(members, dtype=np.int64), crowd
+    return (ids, start.astype(np.int64), count.astype(np.int64), np.ascontiguousarray(members, dtype=np.int64), crowd,
+            None if bands is None else bands[inside])
 
 
 def crowd_pairs_between(crowds: pl.DataFrame | None, left_range: tuple[int, int], right_range: tuple[int, int]):
     """What :func:`verify_crowds` needs for the block of ranges (i, j), or None when no crowd
-    has a pair there. ``crowds``: CROWDS (sorted by crowd then rep)."""
+    has a pair there. ``crowds``: CROWDS (sorted by crowd then rep; with ``band`` when the
+    join gave it)."""
     if crowds is None or crowds.height == 0:
         return None
     crowd, reps = crowds["crowd"].to_numpy(), crowds["rep"].to_numpy()
-    a_ids, a_start, a_count, a_members, a_crowd = _by_crowd(crowd, reps, *left_range)
+    bands = crowds["band"].to_numpy().astype(np.int64) if "band" in crowds.columns else None
+    a_ids, a_start, a_count, a_members, a_crowd, a_band = _by_crowd(crowd, reps, bands, *left_range)
     if left_range == right_range:
         keep = a_count >= 2
         block = (a_members, a_crowd, a_start[keep], a_count[keep], a_members, a_crowd, a_start[keep], a_count[keep],
-                 True)
+                 True, a_band)
         pairs = a_count[keep] * (a_count[keep] - 1) // 2
     else:
-        b_ids, b_start, b_count, b_members, b_crowd = _by_crowd(crowd, reps, *right_range)
+        b_ids, b_start, b_count, b_members, b_crowd, _ = _by_crowd(crowd, reps, None, *right_range)
         both, ia, ib = np.intersect1d(a_ids, b_ids, assume_unique=True, return_indices=True)
-        block = (a_members, a_crowd, a_start[ia], a_count[ia], b_members, b_crowd, b_start[ib], b_count[ib], False)
+        block = (a_members, a_crowd, a_start[ia], a_count[ia], b_members, b_crowd, b_start[ib], b_count[ib], False,
+                 None)
         pairs = a_count[ia] * b_count[ib]
     return (block, pairs) if pairs.sum() > 0 else None
 
@@ -230,8 +261,10 @@ def crowd_pairs_between(crowds: pl.DataFrame | None, left_range: tuple[int, int]
 def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: int, threshold: float,
                   max_pairs: int = MAX_PAIRS) -> pl.DataFrame:
     """The crowds' pairs whose Jaccard reaches ``threshold``, as :func:`lshjob.index.verify.local.verify_between`
-    gives them (``bands_shared`` 1: a row per band, summed with the pair's other rows later).
-    ``block``: from :func:`crowd_pairs_between`; at most ``max_pairs`` pairs (or one crowd's) made at a time."""
+    gives them: a row a crowd, ``bands_shared`` 1 (summed with the pair's other rows later);
+    within one range and given the crowds' bands, a row a pair, ``bands_shared`` the crowds it
+    lies in. ``block``: from :func:`crowd_pairs_between`; at most ``max_pairs`` pairs (or one
+    crowd's) made at a time."""
     return pl.concat(list(crowd_pieces(block, left_sets, left_first, right_sets, right_first, threshold, max_pairs)))
 
 
@@ -239,7 +272,9 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
                  max_pairs: int = MAX_PAIRS):
     """:func:`verify_crowds`'s rows, a chunk of at most ``max_pairs`` pairs made at a time, so
     the caller can deduplicate as they come."""
-    (a_members, a_crowd, a_start, a_count, b_members, b_crowd, b_start, b_count, same), pairs = block
+    (a_members, a_crowd, a_start, a_count, b_members, b_crowd, b_start, b_count, same, a_band), pairs = block
+    crowd_at, in_bands, row_of, crowd_band = _crowds_by_band(a_members, a_crowd, a_band, a_start, left_first,
+                                                   len(left_sets.offsets) - 1)
     a_members = _by_size(a_members, a_crowd, left_sets, left_first)  # each crowd's members by set size
     b_members = a_members if same else _by_size(b_members, b_crowd, right_sets, right_first)
     cum = np.cumsum(pairs)
@@ -254,13 +289,15 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
     out_left = np.empty(size, dtype=np.int64)
     out_right = np.empty(size, dtype=np.int64)
     out_jac = np.empty(size)
+    out_bands = np.ones(size, dtype=np.int32)
     for lo, hi, done in bounds:
         size = int(cum[hi - 1] - done)
         base = np.concatenate([[0], cum[lo:hi - 1] - done]).astype(np.int64)
         if same:  # the pairs found written first in each crowd's slots
             found = np.zeros(hi - lo, dtype=np.int64)
             _crowd_pairs_prefix(left_sets.offsets, left_sets.elements, left_first, a_members, a_start[lo:hi],
-                                a_count[lo:hi], base, threshold, out_left, out_right, out_jac, found)
+                                a_count[lo:hi], base, threshold, crowd_at, in_bands, row_of, crowd_band[lo:hi],
+                                out_left, out_right, out_jac, out_bands, found)
             keep = np.arange(int(found.sum())) + np.repeat(base - (np.cumsum(found) - found), found)
         else:
             out_jac[:size] = -1.0
@@ -269,7 +306,26 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
                          b_count[lo:hi], same, base, threshold, out_left, out_right, out_jac)
             keep = np.flatnonzero(out_jac[:size] >= threshold)
         yield pl.DataFrame({"left_rep": out_left[keep], "right_rep": out_right[keep], "jaccard": out_jac[keep],
-                            "bands_shared": np.ones(len(keep), dtype=np.int32)})
+                            "bands_shared": out_bands[keep] if same else np.ones(len(keep), dtype=np.int32)})
+
+
+def _crowds_by_band(members: np.ndarray, crowd: np.ndarray, band: np.ndarray | None, start: np.ndarray, first: int,
+                    sets: int):
+    """Each member's crowd a band (a matrix, a row a member, 0 where none), the bands (mod 64) it
+    has a crowd in (bits), each entity id's row (from ``first``; -1 for none), and each crowd's
+    band (-1 for all when the bands are not known)."""
+    if band is None:
+        return (np.zeros((1, 1), dtype=np.int64), np.zeros(1, dtype=np.uint64), np.zeros(1, dtype=np.int64),
+                np.full(len(start), -1, dtype=np.int64))
+    local = members - first
+    ids = np.unique(local)
+    row_of = np.full(sets, -1, dtype=np.int64)
+    row_of[ids] = np.arange(len(ids))
+    crowd_at = np.zeros((len(ids), int(band.max()) + 1), dtype=np.int64)
+    crowd_at[row_of[local], band] = crowd
+    in_bands = np.zeros(len(ids), dtype=np.uint64)
+    np.bitwise_or.at(in_bands, row_of[local], np.left_shift(np.uint64(1), (band % 64).astype(np.uint64)))
+    return crowd_at, in_bands, row_of, np.ascontiguousarray(band[start], dtype=np.int64)
 
 
 def _by_size(members: np.ndarray, crowd: np.ndarray, sets, first: int) -> np.ndarray:
