@@ -1,0 +1,105 @@
+"""The planner's sample under a visit budget: who is visited, what their pairs count for, and
+that the weighted histogram still stands for the whole uniform sample."""
+
+from itertools import combinations
+
+import numpy as np
+import polars as pl
+import pytest
+
+from lshjob.core.sets import ElementSets
+from lshjob.plan import similarity
+from lshjob.plan.similarity import HISTOGRAM_BINS, sample_histogram_from_sets, visit_chances
+
+
+def long_tailed_sets(n: int, seed: int) -> ElementSets:
+    """Sets of 1 to 8 elements drawn with Zipf-like popularity (exponent 1.2), as the
+    long-tailed benchmark draws them: a few elements held by most sets."""
+    rng = np.random.default_rng(seed)
+    ranks = np.arange(1, 301, dtype=np.float64)
+    popularity = ranks**-1.2 / (ranks**-1.2).sum()
+    rows = []
+    for e in range(n):
+        for x in np.unique(rng.choice(300, int(rng.integers(1, 9)), p=popularity)):
+            rows.append((e, int(x) * 7919 - 1000))  # codes neither dense nor positive
+    return ElementSets.from_sets(pl.DataFrame(rows, schema={"entity": pl.Int64, "element": pl.Int64}, orient="row"))
+
+
+def python_sets(sets: ElementSets) -> list[set]:
+    return [set(sets.elements[sets.offsets[i]:sets.offsets[i + 1]].tolist()) for i in range(sets.size)]
+
+
+def test_visit_chances_spend_the_budget_exactly():
+    # Oracle: the expected visits sum(chance * cost) by plain arithmetic, and the cap c0 found
+    # apart by bisection on sum(min(cost, c0)) = budget.
+    costs = np.random.default_rng(4).pareto(1.1, 500) * 1000 + 1
+    budget = costs.sum() / 7
+    chance = visit_chances(costs, budget)
+    assert (chance * costs).sum() == pytest.approx(budget, rel=1e-9)
+    lo, hi = 0.0, costs.max()
+    for _ in range(200):
+        mid = (lo + hi) / 2
+        lo, hi = (lo, mid) if np.minimum(costs, mid).sum() > budget else (mid, hi)
+    assert chance == pytest.approx(np.minimum(1.0, lo / costs), rel=1e-9)
+    assert visit_chances(costs, costs.sum()).tolist() == [1.0] * 500  # all fit: all visited
+
+
+def test_budgeted_histogram_is_the_weighted_brute_force_of_the_visited(monkeypatch):
+    # Oracle: brute force with Python sets over the same draws (the seed's permutation, then
+    # its uniform numbers against the chances): every visited entity against every other
+    # entity, each pair counted 1 / chance of the visited one.
+    sets = long_tailed_sets(600, seed=8)
+    members = python_sets(sets)
+    m, seed = 150, 3
+    rng = np.random.default_rng(seed)
+    order = rng.permutation(sets.size)[:m]
+    holders = {}
+    for s in members:
+        for x in s:
+            holders[x] = holders.get(x, 0) + 1
+    costs = np.array([sum(holders[x] for x in members[a]) for a in order], dtype=np.float64)
+    budget = costs.sum() / 5
+    monkeypatch.setattr(similarity, "AGAINST_ALL_BUDGET", budget)
+    monkeypatch.setattr(similarity, "MIN_AGAINST_ALL", 20)
+    chance = visit_chances(costs, budget)
+    assert chance.min() < 0.5  # the budget bites: popular sets are visited with a small chance
+    visited = rng.random(m) < chance
+
+    counts = np.zeros(2 * HISTOGRAM_BINS)
+    identical = 0.0
+    for a, w in zip(order[visited], 1.0 / chance[visited]):
+        for b in range(sets.size):
+            inter = len(members[a] & members[b])
+            if b == a or inter == 0:
+                continue
+            jac = inter / len(members[a] | members[b])
+            if jac == 1.0:
+                identical += w
+            else:
+                counts[2 * min(int(jac * HISTOGRAM_BINS), HISTOGRAM_BINS - 1) + (jac >= 0.5)] += w
+
+    hist = sample_histogram_from_sets(sets, m, seed=seed, threshold=0.5)
+    assert hist.design == "against_all" and hist.sample_entities == m
+    assert hist.visited_entities == int(visited.sum()) < m
+    assert hist.identical_pairs == pytest.approx(identical)
+    assert hist.counts == pytest.approx(counts[counts > 0])
+    assert hist.pairs_at_or_above(0.5) == pytest.approx(counts[1::2].sum())
+
+
+def test_budgeted_histogram_estimates_the_population_without_bias(monkeypatch):
+    # Oracle: the population's pairs at or above 0.5 by brute force over Python sets; the
+    # mean of the weighted estimates over many seeds must fall within 4 standard errors.
+    sets = long_tailed_sets(400, seed=5)
+    members = python_sets(sets)
+    truth = sum(1 for a, b in combinations(members, 2) if a != b and len(a & b) / len(a | b) >= 0.5)
+    assert truth > 100
+    monkeypatch.setattr(similarity, "AGAINST_ALL_BUDGET", 8000.0)  # about a quarter of the 100 sets' visits
+    monkeypatch.setattr(similarity, "MIN_AGAINST_ALL", 20)
+    estimates, visited = [], []
+    for seed in range(80):
+        hist = sample_histogram_from_sets(sets, 100, seed=seed, threshold=0.5)
+        estimates.append(hist.pairs_at_or_above(0.5) * hist.scale)
+        visited.append(hist.visited_entities)
+    assert max(visited) < 100
+    estimates = np.array(estimates)
+    assert abs(estimates.mean() - truth) < 4 * estimates.std(ddof=1) / np.sqrt(len(estimates))
