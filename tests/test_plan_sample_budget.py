@@ -103,3 +103,31 @@ def test_budgeted_histogram_estimates_the_population_without_bias(monkeypatch):
     assert max(visited) < 100
     estimates = np.array(estimates)
     assert abs(estimates.mean() - truth) < 4 * estimates.std(ddof=1) / np.sqrt(len(estimates))
+
+
+@pytest.mark.parametrize("share", [0.0, 0.05, 1.0])
+def test_wanted_postings_list_every_holder_in_order(share):
+    # Oracle: a Python dict of code -> entities holding it, filled set by set; codes span the
+    # int64 range (negative, extreme), sets may be empty.
+    from lshjob.plan._postings import wanted_postings
+
+    rng = np.random.default_rng(17)
+    pool = np.concatenate([rng.integers(-2**63, 2**63 - 1, 2000, dtype=np.int64),
+                           np.array([-2**63, 2**63 - 1, 0, -1], dtype=np.int64)])
+    sets = []
+    for _ in range(900):
+        sets.append(sorted(set(rng.choice(pool, int(rng.integers(0, 30))).tolist())))
+    offsets = np.concatenate([[0], np.cumsum([len(s) for s in sets])]).astype(np.int64)
+    elements = np.array([x for s in sets for x in s], dtype=np.int64)
+    wanted = np.unique(rng.choice(pool, int(share * len(pool))) if share < 1 else pool)
+
+    starts, members = wanted_postings(offsets, elements, wanted)
+
+    holders = {int(x): [] for x in wanted}
+    for i, s in enumerate(sets):
+        for x in s:
+            if x in holders:
+                holders[x].append(i)
+    assert members.dtype == np.int32 and len(starts) == len(wanted) + 1
+    for p, x in enumerate(wanted.tolist()):
+        assert members[starts[p]:starts[p + 1]].tolist() == holders[x]

@@ -13,11 +13,11 @@ from dataclasses import replace
 import numpy as np
 import polars as pl
 
-from lshjob.core import hashing
 from lshjob.core._jit import numba
 from lshjob.core.compile_cache import readonly
 from lshjob.core.sets import ElementSets
 from lshjob.errors import InputError
+from lshjob.plan._postings import restricted, wanted_postings
 from lshjob.plan.banding import PairHistogram
 from lshjob.sign.signatures import SignatureParams, comparable, signature_array
 
@@ -106,11 +106,12 @@ def overlap_counts(offsets, elements, starts, members, a, allowed, inter, touche
 
 
 @numba.njit(inline="always")
-def _overlaps(offsets, elements, starts, members, a, inter, touched):
-    """:func:`overlap_counts` with every entity allowed: the loop that visits every posting
-    of a sampled set, with one random access a visit (``inter``) instead of two."""
+def _overlaps(offsets, elements, starts, members, s, a, inter, touched):
+    """:func:`overlap_counts` with every entity allowed, for the set ``s`` of a CSR of the
+    sampled sets alone (entity id ``a``): the loop that visits every posting of a sampled
+    set, with one random access a visit (``inter``) instead of two."""
     nt = 0
-    for j in range(offsets[a], offsets[a + 1]):
+    for j in range(offsets[s], offsets[s + 1]):
         e = elements[j]
         for t in range(starts[e], starts[e + 1]):
             b = members[t]
@@ -125,9 +126,10 @@ def _overlaps(offsets, elements, starts, members, a, inter, touched):
 
 @numba.njit(parallel=True, cache=True)
 def _against_all_histogram(offsets, elements, starts, members, sizes, sample, weights, nbins, threshold, chunks):
-    """``members``: the postings, int32 when the ids fit (half the bytes read a visit);
-    ``weights[s]``: what sample[s]'s pairs count for (1 / its chance to be visited)."""
-    n = offsets.shape[0] - 1
+    """``offsets``, ``elements``: the sets of ``sample`` (entity ids) alone, their elements as
+    ids of the postings ``starts``, ``members`` (int32 when the ids fit: half the bytes read a
+    visit); ``weights[s]``: what sample[s]'s pairs count for (1 / its chance to be visited)."""
+    n = sizes.shape[0]
     counts = np.zeros((chunks, 2 * nbins), dtype=np.float64)
     sums = np.zeros((chunks, 2 * nbins), dtype=np.float64)
     identical = np.zeros(chunks, dtype=np.float64)
@@ -138,7 +140,7 @@ def _against_all_histogram(offsets, elements, starts, members, sizes, sample, we
         for s in range(c, len(sample), chunks):
             a = sample[s]
             w = weights[s]
-            nt = _overlaps(offsets, elements, starts, members, a, inter, touched)
+            nt = _overlaps(offsets, elements, starts, members, s, a, inter, touched)
             size_a = sizes[a]
             for q in range(nt):
                 b = touched[q]
@@ -171,78 +173,8 @@ def restricted_index(sets: ElementSets, wanted: np.ndarray) -> tuple[np.ndarray,
     (offsets, dense ids, number of ids). Pairing sampled entities with all entities needs
     only the elements the sampled sets hold."""
     wanted = np.unique(np.asarray(wanted, dtype=np.int64))
-    offsets, dense = _restricted(sets.offsets, sets.elements, wanted)
+    offsets, dense = restricted(sets.offsets, sets.elements, wanted)
     return offsets, dense, len(wanted)
-
-
-GOLDEN = np.uint64(hashing.GOLDEN)  # odd: multiplicative hashing of codes to bitmap bits and slots
-
-
-@numba.njit(parallel=True, cache=True)
-def _restricted(offsets, elements, wanted):
-    """:func:`restricted_index` in two passes, both cores: count each set's wanted elements,
-    then write the dense ids of the sets that hold any (at 1M sets, 13k of them).
-    Most elements of flat data are not wanted (0.3M of 40M at 1M): a bitmap of the wanted
-    codes' multiplicative hashes (16 bits or more per wanted code, so a few percent of the
-    rest pass) rules them out. On long-tailed data most are (9.6M of 14.4M at 1M: the
-    popular elements): an open-addressing table of the wanted codes (linear probing, at most
-    half full) gives their dense ids in about one probe, where a binary search in ``wanted``
-    took fourteen."""
-    bits = 6
-    while (1 << bits) < 16 * len(wanted):
-        bits += 1
-    shift = np.uint64(64 - bits)
-    bitmap = np.zeros(1 << (bits - 6), dtype=np.uint64)
-    slot_bits = 1
-    while (1 << slot_bits) < 2 * len(wanted):
-        slot_bits += 1
-    slot_shift = np.uint64(64 - slot_bits)
-    keys = np.zeros(1 << slot_bits, dtype=np.int64)
-    ids = np.full(1 << slot_bits, -1, dtype=np.int64)
-    for p in range(len(wanted)):
-        x = wanted[p]
-        h = (np.uint64(x) * GOLDEN) >> shift
-        bitmap[h >> np.uint64(6)] |= np.uint64(1) << (h & np.uint64(63))
-        t = np.int64((np.uint64(x) * GOLDEN) >> slot_shift)
-        while ids[t] >= 0:
-            t = (t + 1) & ((1 << slot_bits) - 1)
-        keys[t] = x
-        ids[t] = p
-    n = len(offsets) - 1
-    counts = np.zeros(n + 1, dtype=np.int64)
-    for i in numba.prange(n):
-        c = 0
-        for j in range(offsets[i], offsets[i + 1]):
-            if _wanted_id(elements[j], bitmap, shift, keys, ids, slot_shift) >= 0:
-                c += 1
-        counts[i + 1] = c
-    kept = np.cumsum(counts)
-    dense = np.empty(kept[-1], dtype=np.int64)
-    for i in numba.prange(n):
-        at = kept[i]
-        if kept[i + 1] == at:  # most sets hold no wanted element: not read again
-            continue
-        for j in range(offsets[i], offsets[i + 1]):
-            p = _wanted_id(elements[j], bitmap, shift, keys, ids, slot_shift)
-            if p >= 0:
-                dense[at] = p
-                at += 1
-    return kept, dense
-
-
-@numba.njit(inline="always")
-def _wanted_id(x, bitmap, shift, keys, ids, slot_shift):
-    """Position of ``x`` in the wanted codes, or -1."""
-    h = (np.uint64(x) * GOLDEN) >> shift
-    if not (bitmap[h >> np.uint64(6)] >> (h & np.uint64(63))) & np.uint64(1):
-        return -1
-    last = len(ids) - 1
-    t = np.int64((np.uint64(x) * GOLDEN) >> slot_shift)
-    while ids[t] >= 0:
-        if keys[t] == x:
-            return ids[t]
-        t = (t + 1) & last
-    return -1
 
 
 def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:
@@ -344,17 +276,20 @@ def sample_histogram_from_sets(
     order = rng.permutation(members.size)[: min(sample, members.size)]
     visited = np.zeros(0, dtype=np.int64)
     if members.size > len(order):
-        offsets, dense, n_ids = restricted_index(members, members.subset(order).elements)
-        starts, posted = postings_of(offsets, dense, n_ids)
-        chance = visit_chances(visit_costs(offsets, dense, starts)[order], AGAINST_ALL_BUDGET)
+        drawn = members.subset(order)
+        wanted = np.unique(drawn.elements)
+        starts, posted = wanted_postings(members.offsets, members.elements, wanted)
+        ids = np.searchsorted(wanted, drawn.elements)  # every drawn element is wanted
+        chance = visit_chances(segment_sums(np.diff(starts)[ids], drawn.offsets), AGAINST_ALL_BUDGET)
         visited = np.flatnonzero(rng.random(len(order)) < chance)
     if len(visited) >= min(MIN_AGAINST_ALL, len(order)) > 0:
-        by_id = np.argsort(order[visited])
-        picked, weights = order[visited][by_id], 1.0 / chance[visited][by_id]
+        by_id = visited[np.argsort(order[visited])]
+        picked, weights = order[by_id], 1.0 / chance[by_id]
+        mine = drawn.subset(by_id)
         counts, sums, identical, per_entity = _against_all_histogram(
-            offsets, dense, starts, posted.astype(np.int32) if members.size < 2**31 else posted,
-            members.set_sizes, picked, weights, HISTOGRAM_BINS,
-            2.0 if threshold is None else threshold, min(len(picked), 2 * numba.get_num_threads()),
+            mine.offsets, np.searchsorted(wanted, mine.elements), starts, posted, members.set_sizes, picked,
+            weights, HISTOGRAM_BINS, 2.0 if threshold is None else threshold,
+            min(len(picked), 2 * numba.get_num_threads()),
         )
         # factor rescales from the input's own entity count to the requested total.
         hist = _make(counts, sums, len(order), n_total, identical, "against_all", threshold,
