@@ -111,12 +111,14 @@ def _wanted_postings(offsets, elements, wanted, cuts, template):
     bitmap, shift, keys, ids, slot_shift = _wanted_table(wanted)
     chunks = len(cuts) - 1
     per_chunk = np.zeros((chunks, len(wanted)), dtype=np.int64)
+    holds = np.zeros(len(offsets) - 1, dtype=np.bool_)  # sets holding none are not read again
     for c in numba.prange(chunks):
         for i in range(cuts[c], cuts[c + 1]):
             for j in range(offsets[i], offsets[i + 1]):
                 p = _wanted_id(elements[j], bitmap, shift, keys, ids, slot_shift)
                 if p >= 0:
                     per_chunk[c, p] += 1
+                    holds[i] = True
     starts = np.zeros(len(wanted) + 1, dtype=np.int64)
     for p in range(len(wanted)):
         at = starts[p]
@@ -129,6 +131,8 @@ def _wanted_postings(offsets, elements, wanted, cuts, template):
     for c in numba.prange(chunks):
         fill = per_chunk[c]
         for i in range(cuts[c], cuts[c + 1]):
+            if not holds[i]:
+                continue
             for j in range(offsets[i], offsets[i + 1]):
                 p = _wanted_id(elements[j], bitmap, shift, keys, ids, slot_shift)
                 if p >= 0:
