@@ -131,3 +131,23 @@ def test_wanted_postings_list_every_holder_in_order(share):
     assert members.dtype == np.int32 and len(starts) == len(wanted) + 1
     for p, x in enumerate(wanted.tolist()):
         assert members[starts[p]:starts[p + 1]].tolist() == holders[x]
+
+
+def test_crowd_split_counts_each_row_by_its_weight():
+    # Oracle: the same histogram with each sampled entity's row repeated by hand as many times
+    # as its (whole-number) weight, no weights; then the crowd shares must agree, and differ
+    # from the unweighted rows (the heavy entity sits in a crowd, the others do not).
+    from lshjob.plan.banding import PairHistogram, crowd_split
+
+    rng = np.random.default_rng(2)
+    rows = rng.integers(0, 5, (4, 50)).astype(np.float64)
+    rows[2, 45:] = 400  # many near-identical partners: a crowd at r = 4
+    weights = np.array([1.0, 3.0, 5.0, 2.0])
+    base = dict(similarity=np.array([0.5]), counts=np.array([1.0]), sample_entities=4, total_entities=100,
+                design="against_all")
+    weighted = PairHistogram(**base, entity_pairs=rows, entity_weights=weights)
+    repeated = PairHistogram(**base, entity_pairs=np.repeat(rows, weights.astype(int), axis=0))
+    plain = PairHistogram(**base, entity_pairs=rows)
+    assert crowd_split(weighted, 40, 4, 64) == pytest.approx(crowd_split(repeated, 40, 4, 64), rel=1e-12)
+    assert 0 < crowd_split(weighted, 40, 4, 64) < 1
+    assert crowd_split(weighted, 40, 4, 64) != pytest.approx(crowd_split(plain, 40, 4, 64), rel=1e-3)
