@@ -151,3 +151,15 @@ def test_crowd_split_counts_each_row_by_its_weight():
     assert crowd_split(weighted, 40, 4, 64) == pytest.approx(crowd_split(repeated, 40, 4, 64), rel=1e-12)
     assert 0 < crowd_split(weighted, 40, 4, 64) < 1
     assert crowd_split(weighted, 40, 4, 64) != pytest.approx(crowd_split(plain, 40, 4, 64), rel=1e-3)
+
+
+def test_budget_rises_until_enough_are_visited(monkeypatch):
+    # Oracle: the rule as documented: with a budget of one visit, far too small, the budget is
+    # raised until about 1.5 x the minimum are visited, and the sample is still paired with
+    # all entities (not within itself, which a cut at one visit would force).
+    sets = long_tailed_sets(600, seed=8)
+    monkeypatch.setattr(similarity, "AGAINST_ALL_BUDGET", 1.0)
+    monkeypatch.setattr(similarity, "MIN_AGAINST_ALL", 40)
+    hist = sample_histogram_from_sets(sets, 150, seed=3, threshold=0.5)
+    assert hist.design == "against_all"
+    assert 40 <= hist.visited_entities < 150

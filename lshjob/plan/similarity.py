@@ -231,6 +231,7 @@ def _make(counts, sums, sample_entities, total_entities, identical, design, thre
 
 
 AGAINST_ALL_BUDGET = 1e8  # expected posting visits, about a second of one core
+MAX_AGAINST_ALL_BUDGET = 1e9  # raised up to this while fewer than 1.5 x 200 would be visited
 MIN_AGAINST_ALL = 200
 
 
@@ -265,7 +266,8 @@ def sample_histogram_from_sets(
     sample's posting visits would pass 1e8 (long-tailed data: a set holding a popular element
     visits that element's whole posting list), each sampled entity is visited with a chance
     that falls with its visits (:func:`visit_chances`, drawn with the same seed) and its pairs
-    count 1 / that chance, so the histogram still stands for the whole uniform sample. If
+    count 1 / that chance, so the histogram still stands for the whole uniform sample. The
+    budget is doubled, up to 1e9, while fewer than 300 would be visited in expectation; if
     fewer than 200 entities are visited, the sample is paired within itself instead.
     """
     members = sets if isinstance(sets, ElementSets) else ElementSets.from_sets(sets)
@@ -280,7 +282,13 @@ def sample_histogram_from_sets(
         wanted = np.unique(drawn.elements)
         starts, posted = wanted_postings(members.offsets, members.elements, wanted)
         ids = np.searchsorted(wanted, drawn.elements)  # every drawn element is wanted
-        chance = visit_chances(segment_sums(np.diff(starts)[ids], drawn.offsets), AGAINST_ALL_BUDGET)
+        costs = segment_sums(np.diff(starts)[ids], drawn.offsets)
+        budget = AGAINST_ALL_BUDGET
+        chance = visit_chances(costs, budget)
+        enough = min(1.5 * MIN_AGAINST_ALL, len(order))  # so that fewer than 200 visited is rare
+        while chance.sum() < enough and budget < MAX_AGAINST_ALL_BUDGET:
+            budget = min(2 * budget, MAX_AGAINST_ALL_BUDGET)
+            chance = visit_chances(costs, budget)
         visited = np.flatnonzero(rng.random(len(order)) < chance)
     if len(visited) >= min(MIN_AGAINST_ALL, len(order)) > 0:
         by_id = visited[np.argsort(order[visited])]
