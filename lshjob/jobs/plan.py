@@ -238,6 +238,8 @@ def plan_summary(plan: Plan, sample: str | Path | None = None) -> dict:
             "path": str(sample),
             "similarity": hist.basis,
             "sampled_entities": hist.sample_entities,
+            # past the planner's visit budget, fewer are visited and their pairs weighted
+            "visited_entities": hist.sample_entities if hist.visited_entities is None else hist.visited_entities,
             "total_entities": hist.total_entities,
             "design": hist.design,
             "sampled_pairs": int(hist.counts.sum() + hist.identical_pairs),

@@ -167,6 +167,10 @@ class PairHistogram:
     # against_all only: entity_pairs[i, j] pairs of the i-th sampled entity with similarity in
     # [j, j + 1) / its column count (identical sets apart), scaled like counts
     entity_pairs: np.ndarray | None = field(default=None, compare=False, repr=False)
+    # against_all only: what each row of entity_pairs counts for (1 / its chance to be visited;
+    # None: 1 each), and how many sampled entities were visited (None: all of them)
+    entity_weights: np.ndarray | None = field(default=None, compare=False, repr=False)
+    visited_entities: int | None = None
 
     def mask(self, threshold: float) -> np.ndarray:
         """Which entries hold pairs at or above ``threshold``. A histogram built for that
@@ -278,14 +282,17 @@ def crowd_split(histogram: PairHistogram, bands: int, rows: int, crowd_size: int
     A sampled entity with pairs of similarity s_j shares one band's bucket with each with
     probability s_j**r (MMDS section 3.4), so its bucket holds 1 + sum_j s_j**r members in
     expectation (identical sets are collapsed first, so they add none); its candidate pairs,
-    sum_j P(s_j), count as crowd pairs when that expectation reaches ``crowd_size``. Bin
-    midpoints stand for the similarities (bins of 0.02)."""
+    sum_j P(s_j), count as crowd pairs when that expectation reaches ``crowd_size``, and each
+    entity's pairs count its weight (``entity_weights``). Bin midpoints stand for the
+    similarities (bins of 0.02)."""
     pairs = histogram.entity_pairs
     if pairs is None or not len(pairs):
         return None
     s = (np.arange(pairs.shape[1]) + 0.5) / pairs.shape[1]
     crowded = 1.0 + pairs @ s**rows >= crowd_size
     per_entity = pairs @ candidate_probability(s, bands, rows)
+    if histogram.entity_weights is not None:
+        per_entity = per_entity * histogram.entity_weights
     total = per_entity.sum()
     return float(per_entity[crowded].sum() / total) if total > 0 else 0.0
 

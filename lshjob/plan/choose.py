@@ -261,8 +261,12 @@ def _data_why(hist: PairHistogram, recall: float, rule: str = "fewest expected c
     against = "all" if hist.design == "against_all" else "each other"
     drawn = hist.source_entities
     scaled = f"; pairs scaled from a uniform sample of {drawn}" if drawn and drawn != hist.total_entities else ""
+    visited = hist.visited_entities
+    weighed = (f", {visited} of them visited and weighted by 1 / their chance" if visited is not None
+               and visited < hist.sample_entities else "")
     return (f"data mode: {rule} with expected recall >= {recall}; {hist.basis} of "
-            f"{hist.sample_entities} sampled entities against {against} ({hist.total_entities} entities{scaled})")
+            f"{hist.sample_entities} sampled entities against {against}{weighed} "
+            f"({hist.total_entities} entities{scaled})")
 
 
 def _sample_facts(hist: PairHistogram, threshold: float) -> dict:

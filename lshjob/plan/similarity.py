@@ -13,12 +13,11 @@ from dataclasses import replace
 import numpy as np
 import polars as pl
 
-from lshjob.core import hashing
 from lshjob.core._jit import numba
 from lshjob.core.compile_cache import readonly
-from lshjob.core.search import first_at_least
 from lshjob.core.sets import ElementSets
 from lshjob.errors import InputError
+from lshjob.plan._postings import restricted, wanted_postings
 from lshjob.plan.banding import PairHistogram
 from lshjob.sign.signatures import SignatureParams, comparable, signature_array
 
@@ -107,11 +106,12 @@ def overlap_counts(offsets, elements, starts, members, a, allowed, inter, touche
 
 
 @numba.njit(inline="always")
-def _overlaps(offsets, elements, starts, members, a, inter, touched):
-    """:func:`overlap_counts` with every entity allowed: the loop that visits every posting
-    of a sampled set, with one random access a visit (``inter``) instead of two."""
+def _overlaps(offsets, elements, starts, members, s, a, inter, touched):
+    """:func:`overlap_counts` with every entity allowed, for the set ``s`` of a CSR of the
+    sampled sets alone (entity id ``a``): the loop that visits every posting of a sampled
+    set, with one random access a visit (``inter``) instead of two."""
     nt = 0
-    for j in range(offsets[a], offsets[a + 1]):
+    for j in range(offsets[s], offsets[s + 1]):
         e = elements[j]
         for t in range(starts[e], starts[e + 1]):
             b = members[t]
@@ -125,30 +125,33 @@ def _overlaps(offsets, elements, starts, members, a, inter, touched):
 
 
 @numba.njit(parallel=True, cache=True)
-def _against_all_histogram(offsets, elements, starts, members, sizes, sample, nbins, threshold, chunks):
-    """``members``: the postings, int32 when the ids fit (half the bytes read a visit)."""
-    n = offsets.shape[0] - 1
-    counts = np.zeros((chunks, 2 * nbins), dtype=np.int64)
+def _against_all_histogram(offsets, elements, starts, members, sizes, sample, weights, nbins, threshold, chunks):
+    """``offsets``, ``elements``: the sets of ``sample`` (entity ids) alone, their elements as
+    ids of the postings ``starts``, ``members`` (int32 when the ids fit: half the bytes read a
+    visit); ``weights[s]``: what sample[s]'s pairs count for (1 / its chance to be visited)."""
+    n = sizes.shape[0]
+    counts = np.zeros((chunks, 2 * nbins), dtype=np.float64)
     sums = np.zeros((chunks, 2 * nbins), dtype=np.float64)
-    identical = np.zeros(chunks, dtype=np.int64)
+    identical = np.zeros(chunks, dtype=np.float64)
     per_entity = np.zeros((len(sample), ENTITY_BINS), dtype=np.float64)  # [s, bin]: pairs of sample[s]
     for c in numba.prange(chunks):
         inter = np.zeros(n, dtype=np.int32)
         touched = np.empty(n, dtype=members.dtype)
         for s in range(c, len(sample), chunks):
             a = sample[s]
-            nt = _overlaps(offsets, elements, starts, members, a, inter, touched)
+            w = weights[s]
+            nt = _overlaps(offsets, elements, starts, members, s, a, inter, touched)
             size_a = sizes[a]
             for q in range(nt):
                 b = touched[q]
                 jac = inter[b] / (size_a + sizes[b] - inter[b])
                 inter[b] = 0
                 if jac >= 1.0:
-                    identical[c] += 1
+                    identical[c] += w
                 else:
                     k = 2 * min(int(jac * nbins), nbins - 1) + (1 if jac >= threshold else 0)
-                    counts[c, k] += 1
-                    sums[c, k] += jac
+                    counts[c, k] += w
+                    sums[c, k] += w * jac
                     per_entity[s, min(int(jac * ENTITY_BINS), ENTITY_BINS - 1)] += 1
     return counts.sum(axis=0), sums.sum(axis=0), identical.sum(), per_entity
 
@@ -170,62 +173,8 @@ def restricted_index(sets: ElementSets, wanted: np.ndarray) -> tuple[np.ndarray,
     (offsets, dense ids, number of ids). Pairing sampled entities with all entities needs
     only the elements the sampled sets hold."""
     wanted = np.unique(np.asarray(wanted, dtype=np.int64))
-    offsets, dense = _restricted(sets.offsets, sets.elements, wanted)
+    offsets, dense = restricted(sets.offsets, sets.elements, wanted)
     return offsets, dense, len(wanted)
-
-
-GOLDEN = np.uint64(hashing.GOLDEN)  # odd: multiplicative hashing of codes to bitmap bits
-
-
-@numba.njit(parallel=True, cache=True)
-def _restricted(offsets, elements, wanted):
-    """:func:`restricted_index` in two passes, both cores: count each set's wanted elements,
-    then write the dense ids of the sets that hold any (at 1M sets, 13k of them).
-    Most elements are not wanted (0.3M of 40M at 1M): a bitmap of the wanted codes'
-    multiplicative hashes (16 bits or more per wanted code, so a few percent of the rest
-    pass) rules them out, and a binary search in ``wanted`` (sorted) settles the rest and
-    gives the dense id. Twice as fast as polars' ``is_in`` with numpy indexing (0.10 s
-    against 0.22 s at 1M, measured)."""
-    bits = 6
-    while (1 << bits) < 16 * len(wanted):
-        bits += 1
-    shift = np.uint64(64 - bits)
-    bitmap = np.zeros(1 << (bits - 6), dtype=np.uint64)
-    for x in wanted:
-        h = (np.uint64(x) * GOLDEN) >> shift
-        bitmap[h >> np.uint64(6)] |= np.uint64(1) << (h & np.uint64(63))
-    n = len(offsets) - 1
-    counts = np.zeros(n + 1, dtype=np.int64)
-    for i in numba.prange(n):
-        c = 0
-        for j in range(offsets[i], offsets[i + 1]):
-            if _wanted_id(elements[j], wanted, bitmap, shift) >= 0:
-                c += 1
-        counts[i + 1] = c
-    kept = np.cumsum(counts)
-    dense = np.empty(kept[-1], dtype=np.int64)
-    for i in numba.prange(n):
-        at = kept[i]
-        if kept[i + 1] == at:  # most sets hold no wanted element: not read again
-            continue
-        for j in range(offsets[i], offsets[i + 1]):
-            p = _wanted_id(elements[j], wanted, bitmap, shift)
-            if p >= 0:
-                dense[at] = p
-                at += 1
-    return kept, dense
-
-
-@numba.njit(inline="always")
-def _wanted_id(x, wanted, bitmap, shift):
-    """Position of ``x`` in ``wanted``, or -1."""
-    h = (np.uint64(x) * GOLDEN) >> shift
-    if not (bitmap[h >> np.uint64(6)] >> (h & np.uint64(63))) & np.uint64(1):
-        return -1
-    lo = first_at_least(wanted, 0, len(wanted), x)
-    if lo < len(wanted) and wanted[lo] == x:
-        return lo
-    return -1
 
 
 def exact_pair_similarities(sets: pl.DataFrame) -> np.ndarray:
@@ -281,8 +230,25 @@ def _make(counts, sums, sample_entities, total_entities, identical, design, thre
     )
 
 
-AGAINST_ALL_BUDGET = 1e9  # posting visits, a few seconds on two cores
+AGAINST_ALL_BUDGET = 1e8  # expected posting visits, about a second of one core
+MAX_AGAINST_ALL_BUDGET = 1e9  # raised up to this while fewer than 1.5 x 200 would be visited
 MIN_AGAINST_ALL = 200
+
+
+def visit_chances(costs: np.ndarray, budget: float) -> np.ndarray:
+    """Each sampled entity's chance to be visited so that the expected visits stay within
+    ``budget``: 1 for all when they fit, else min(1, c0 / cost) with c0 such that
+    sum min(cost, c0) = budget (costs proportional to size: Horvitz and Thompson, JASA 1952,
+    weigh what is seen by 1 / its chance, so the estimate stays unbiased)."""
+    costs = np.asarray(costs, dtype=np.float64)
+    if costs.sum() <= budget:
+        return np.ones(len(costs))
+    ascending = np.sort(costs)
+    below = np.concatenate(([0.0], np.cumsum(ascending)[:-1]))  # sum of the costs before each
+    reach = below + ascending * (len(costs) - np.arange(len(costs)))  # visits were c0 = that cost
+    j = int(np.searchsorted(reach, budget, "left"))
+    cap = (budget - below[j]) / (len(costs) - j)
+    return np.minimum(1.0, cap / np.maximum(costs, 1.0))
 
 
 def sample_histogram_from_sets(
@@ -296,10 +262,13 @@ def sample_histogram_from_sets(
 
     Sampled entities are paired with every entity of the input (exact Jaccard through an
     inverted index), which sees m x N pairs instead of the m^2 within the sample: similar
-    pairs are rare, and a within-sample histogram often holds too few to plan on. The sample
-    is a prefix of a random order of entities, cut where its posting visits would pass
-    1e9 (so it stays a uniform sample); if fewer than 200 entities fit, the sample of
-    ``sample`` entities is paired within itself instead.
+    pairs are rare, and a within-sample histogram often holds too few to plan on. When the
+    sample's posting visits would pass 1e8 (long-tailed data: a set holding a popular element
+    visits that element's whole posting list), each sampled entity is visited with a chance
+    that falls with its visits (:func:`visit_chances`, drawn with the same seed) and its pairs
+    count 1 / that chance, so the histogram still stands for the whole uniform sample. The
+    budget is doubled, up to 1e9, while fewer than 300 would be visited in expectation; if
+    fewer than 200 entities are visited, the sample is paired within itself instead.
     """
     members = sets if isinstance(sets, ElementSets) else ElementSets.from_sets(sets)
     if members.size < 2:
@@ -307,24 +276,34 @@ def sample_histogram_from_sets(
     n_total = total_entities or members.size
     rng = np.random.default_rng(seed)
     order = rng.permutation(members.size)[: min(sample, members.size)]
+    visited = np.zeros(0, dtype=np.int64)
     if members.size > len(order):
-        offsets, dense, n_ids = restricted_index(members, members.subset(order).elements)
-        starts, posted = postings_of(offsets, dense, n_ids)
-        costs = visit_costs(offsets, dense, starts)[order]
-        affordable = int(np.searchsorted(np.cumsum(costs), AGAINST_ALL_BUDGET, "right"))
-    else:
-        affordable = 0
-    if members.size > len(order) and affordable >= min(MIN_AGAINST_ALL, len(order)):
-        picked = np.sort(order[:affordable])
+        drawn = members.subset(order)
+        wanted = np.unique(drawn.elements)
+        starts, posted = wanted_postings(members.offsets, members.elements, wanted)
+        ids = np.searchsorted(wanted, drawn.elements)  # every drawn element is wanted
+        costs = segment_sums(np.diff(starts)[ids], drawn.offsets)
+        budget = AGAINST_ALL_BUDGET
+        chance = visit_chances(costs, budget)
+        enough = min(1.5 * MIN_AGAINST_ALL, len(order))  # so that fewer than 200 visited is rare
+        while chance.sum() < enough and budget < MAX_AGAINST_ALL_BUDGET:
+            budget = min(2 * budget, MAX_AGAINST_ALL_BUDGET)
+            chance = visit_chances(costs, budget)
+        visited = np.flatnonzero(rng.random(len(order)) < chance)
+    if len(visited) >= min(MIN_AGAINST_ALL, len(order)) > 0:
+        by_id = visited[np.argsort(order[visited])]
+        picked, weights = order[by_id], 1.0 / chance[by_id]
+        mine = drawn.subset(by_id)
         counts, sums, identical, per_entity = _against_all_histogram(
-            offsets, dense, starts, posted.astype(np.int32) if members.size < 2**31 else posted,
-            members.set_sizes, picked, HISTOGRAM_BINS,
-            2.0 if threshold is None else threshold, min(len(picked), 2 * numba.get_num_threads()),
+            mine.offsets, np.searchsorted(wanted, mine.elements), starts, posted, members.set_sizes, picked,
+            weights, HISTOGRAM_BINS, 2.0 if threshold is None else threshold,
+            min(len(picked), 2 * numba.get_num_threads()),
         )
         # factor rescales from the input's own entity count to the requested total.
-        hist = _make(counts, sums, len(picked), n_total, identical, "against_all", threshold,
+        hist = _make(counts, sums, len(order), n_total, identical, "against_all", threshold,
                      factor=n_total / members.size)
-        hist = replace(hist, entity_pairs=per_entity * (n_total / members.size))
+        hist = replace(hist, entity_pairs=per_entity * (n_total / members.size), entity_weights=weights,
+                       visited_entities=len(picked))
     else:
         picked = np.sort(order)
         hist = histogram(_within_jaccard(members.subset(picked)), len(picked), n_total, threshold)
