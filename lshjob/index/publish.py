@@ -17,8 +17,9 @@ index would not fit the memory budget is refused with the figures.
 
 Each representative's list is ranked as it is made, straight from the verified pairs and
 the groups' first members (:func:`lshjob.index._ranking.ranked_lists`): the rows a pair
-brings before the cut are never held, only the lists and an index of the pairs by either
-side (16 bytes a pair, less than the pairs themselves). The rows are made a block of
+brings before the cut are never held, only the lists (at most top_k + 1 rows a
+representative) and the pairs laid out by either side with their values (48 bytes a pair,
+beside the 36 of the verified pairs verification handed on). The rows are made a block of
 entities at a time (an eighth of the budget in flight, or a quarter of what it leaves
 beside the process, :func:`block_rows`) and streamed into the Parquet file, so publishing
 holds the table's size only when it fits a block.
