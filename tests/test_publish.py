@@ -45,8 +45,8 @@ def test_the_count_made_before_expanding_is_the_number_of_rows_published():
     for k in (1, 4, 59, 60, 399):
         whole = neighbour_table(verified, rep_of, keys, k, 3)
         assert expand(verified, rep_of, k, 3).published_rows == whole.height
-        # Lists made a few representatives at a time, rows a few entities at a time: the same table.
-        chunked = pl.concat(list(neighbour_blocks(expand(verified, rep_of, k, 3, chunk_rows=50), keys, 70)))
+        # Rows made a few entities at a time: the same table.
+        chunked = pl.concat(list(neighbour_blocks(expand(verified, rep_of, k, 3), keys, 70)))
         assert chunked.equals(whole)
     alone = verified.clear()
     assert expand(alone, rep_of, 10, 3).published_rows == 60 * 10 + 3 * 2

@@ -1,6 +1,7 @@
-"""Publishing's compiled and numpy helpers: each representative's list ranked and cut
-(:func:`top_rows`), and a member's rows gathered from its representative's list by position
-(:func:`gathered`, :func:`ranks`)."""
+"""Publishing's compiled helpers: each representative's list ranked and cut, made straight
+from the verified pairs and the groups of identical sets (:func:`ranked_lists`), a member's
+rows made from its representative's list in one pass (:func:`member_rows`), and the pairs
+that can enter a list at all (:func:`pairs_in_lists`, used by verification)."""
 
 from __future__ import annotations
 
@@ -9,124 +10,197 @@ import numpy as np
 from lshjob.core._jit import numba
 
 
+@numba.njit(inline="always")
+def _append(out, held, limit, count, firsts, given, side, j, bands, head_id, estimates, side_bands, neighbour, jaccard,
+            estimate, bands_shared, own):
+    """Append rows to a list (``held`` of ``limit`` rows so far): ``count`` neighbours, from
+    ``head_id[firsts:]`` (or ``given``, when ``firsts`` < 0), at Jaccard ``j`` with the
+    values of the side's pair at ``side`` (or, when ``side`` < 0, the list's own group:
+    estimate 1 and every band, its members marked ``own``). Returns the rows held."""
+    for t in range(count):
+        if held == limit:
+            break
+        n = head_id[firsts + t] if firsts >= 0 else given[t]
+        neighbour[out + held] = n
+        jaccard[out + held] = j
+        if side < 0:
+            estimate[out + held], bands_shared[out + held] = 1.0, bands
+            own[n] = True
+        else:
+            estimate[out + held], bands_shared[out + held] = estimates[side], side_bands[side]
+        held += 1
+    return held
+
+
 @numba.njit(cache=True)
-def _grouped(src, first, groups):
-    """Rows by ``src`` (a counting sort; values first..first + groups - 1): (starts, order)."""
-    counts = np.zeros(groups + 1, dtype=np.int64)
-    for s in src:
-        counts[s - first + 1] += 1
-    starts = np.cumsum(counts)
+def _sides(left, right, jaccard, estimate, bands_shared, groups, starts, other, value, estimates, side_bands):
+    """Each pair under both its sides, laid out by side (a counting sort): side g's pairs at
+    ``starts[g]:starts[g + 1]`` of ``other`` (its other side), ``value`` (its Jaccard),
+    ``estimates`` and ``side_bands``, so a list reads its pairs in one run."""
+    for p in range(len(left)):
+        starts[left[p] + 1] += 1
+        starts[right[p] + 1] += 1
+    for g in range(groups):
+        starts[g + 1] += starts[g]
     fill = starts[:-1].copy()
-    order = np.empty(len(src), dtype=np.int64)
-    for i in range(len(src)):
-        g = src[i] - first
-        order[fill[g]] = i
-        fill[g] += 1
-    return starts, order
+    for p in range(len(left)):
+        a, b = left[p], right[p]
+        j, e, s = jaccard[p], estimate[p], bands_shared[p]
+        at = fill[a]
+        other[at], value[at], estimates[at], side_bands[at] = b, j, e, s
+        fill[a] += 1
+        at = fill[b]
+        other[at], value[at], estimates[at], side_bands[at] = a, j, e, s
+        fill[b] += 1
 
 
 @numba.njit(inline="always")
-def _before(x, y, jaccard, neighbour):
-    """Row x ranks before row y: higher Jaccard, or the same and a smaller neighbour."""
-    return jaccard[x] > jaccard[y] or (jaccard[x] == jaccard[y] and neighbour[x] < neighbour[y])
+def _sort_down(lo, hi, value, other, estimates, side_bands):
+    """Sort a side's pairs ``lo:hi`` by Jaccard descending, in place (an insertion sort for
+    the few pairs most sides have)."""
+    if hi - lo > 32:
+        order = np.argsort(-value[lo:hi]) + lo
+        v, o, e, b = value[order], other[order], estimates[order], side_bands[order]
+        value[lo:hi], other[lo:hi], estimates[lo:hi], side_bands[lo:hi] = v, o, e, b
+        return
+    for i in range(lo + 1, hi):
+        v, o, e, b = value[i], other[i], estimates[i], side_bands[i]
+        at = i
+        while at > lo and value[at - 1] < v:
+            value[at], other[at], estimates[at], side_bands[at] = (value[at - 1], other[at - 1], estimates[at - 1],
+                                                                  side_bands[at - 1])
+            at -= 1
+        value[at], other[at], estimates[at], side_bands[at] = v, o, e, b
 
 
 @numba.njit(parallel=True, cache=True)
-def _ranked(starts, order, jaccard, neighbour, cap, out_starts, out_rows):
-    """Each group's first ``cap`` rows by Jaccard descending, ties by neighbour ascending,
-    written in rank order at ``out_starts[g]``: an insertion into the sorted first ``cap``
-    (the output slice itself), so a row that does not enter costs one comparison."""
-    for g in numba.prange(len(starts) - 1):
-        out = out_starts[g]
-        held = 0
-        for i in range(starts[g], starts[g + 1]):
-            row = order[i]
-            if held == cap and not _before(row, out_rows[out + cap - 1], jaccard, neighbour):
-                continue
-            at = held if held < cap else cap - 1  # the place of the new row, moved up
-            while at > 0 and _before(row, out_rows[out + at - 1], jaccard, neighbour):
-                if at < cap:
-                    out_rows[out + at] = out_rows[out + at - 1]
-                at -= 1
-            out_rows[out + at] = row
-            held = min(held + 1, cap)
-
-
-def by_value(values: np.ndarray, bound: int) -> np.ndarray:
-    """The positions of ``values`` (0..bound-1) ordered by value, stably (a counting sort:
-    the same order as ``np.argsort(values, kind="stable")``, in linear time)."""
-    return _grouped(np.ascontiguousarray(values), 0, bound)[1]
-
-
-def top_rows(src: np.ndarray, jaccard: np.ndarray, neighbour: np.ndarray, first: int, groups: int,
-             cap: int) -> np.ndarray:
-    """Positions of the rows that make each ``src``'s list (values first..first + groups - 1):
-    its rows ranked by Jaccard descending, ties by neighbour ascending (neighbours distinct
-    within a ``src``), cut at ``cap``; in order of ``src``, then rank. The same rows and order
-    as a sort by (src, -jaccard, neighbour) and the first ``cap`` of each src, without
-    sorting across lists."""
-    starts, order = _grouped(np.ascontiguousarray(src), first, groups)
-    kept = np.minimum(np.diff(starts), cap)
-    out_starts = np.concatenate([[0], np.cumsum(kept)]).astype(np.int64)
-    out_rows = np.empty(int(out_starts[-1]), dtype=np.int64)
-    _ranked(starts, order, np.ascontiguousarray(jaccard, dtype=np.float64), np.ascontiguousarray(neighbour),
-            cap, out_starts, out_rows)
-    return out_rows
-
-
-def gathered(ids: np.ndarray, first: np.ndarray, lengths: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Each of ``ids`` repeated ``lengths`` times, and beside it the positions
-    ``first .. first + length - 1`` of its rows."""
-    total = int(lengths.sum())
-    starts = np.cumsum(lengths) - lengths
-    at = np.arange(total, dtype=np.int64) + np.repeat(first.astype(np.int64) - starts, lengths)
-    return np.repeat(ids, lengths), at
-
-
-def ranks(owner: np.ndarray) -> np.ndarray:
-    """1, 2, ... within each run of equal ``owner`` values."""
-    if len(owner) == 0:
-        return np.zeros(0, dtype=np.int64)
-    new = np.concatenate([[True], owner[1:] != owner[:-1]])
-    firsts = np.flatnonzero(new)
-    return np.arange(len(owner)) - np.repeat(firsts, np.diff(np.append(firsts, len(owner)))) + 1
-
-
-@numba.njit(parallel=True, cache=True)
-def _cut(starts, order, jaccard, weight, own, cap, keep):
-    """Per group: the edges a list of ``cap`` can take rows from. An edge brings ``weight``
-    rows of its Jaccard (a group's head), ``own[g]`` rows of 1.0 come first; once ``cap`` rows
-    are reached at value v, no row below v can enter, so edges below v are dropped (those at
-    v stay: their ties are broken by neighbour later)."""
-    for g in numba.prange(len(starts) - 1):
-        rows = order[starts[g]:starts[g + 1]]
-        if len(rows) == 0:
+def _lists(starts, other, value, estimates, side_bands, capped, head_first, head_id, bands, list_starts, neighbour,
+           jaccard, estimate, bands_shared, own):
+    """Each representative g's list, ranked, at ``list_starts[g]``: the first ``capped[g]``
+    members of its own group (when it has more than one) at Jaccard 1, and for each of its
+    pairs the first ``capped`` members of the partner's group at the pair's values; cut at
+    the list's length. The pairs of g are sorted by Jaccard descending; the rows of a pair
+    come in neighbour order at one Jaccard, so they are appended as they are, and only the
+    rows of pairs of equal Jaccard (its own group's at 1 among them) are merged by a sort on
+    the neighbour. Marks ``own`` the members a representative's list holds of its own group."""
+    for g in numba.prange(len(list_starts) - 1):
+        out = list_starts[g]
+        limit = list_starts[g + 1] - out
+        if limit == 0:
             continue
-        cutoff = -1.0
-        if own[g] >= cap:
-            cutoff = 1.0
-        elif own[g] + weight[rows].sum() >= cap:  # else the list never fills: every edge counts
-            values = jaccard[rows]
-            held = own[g]
-            for i in np.argsort(-values, kind="mergesort"):
-                held += weight[rows[i]]
-                if held >= cap:
-                    cutoff = values[i]
-                    break
-        for r in rows:
-            keep[r] = jaccard[r] >= cutoff
+        lo, hi = starts[g], starts[g + 1]
+        _sort_down(lo, hi, value, other, estimates, side_bands)
+        mine = capped[g] > 1  # its own group comes at Jaccard 1, before or among the pairs at 1
+        held, x = 0, lo
+        while held < limit and (mine or x < hi):
+            j = 1.0 if mine else value[x]
+            y = x
+            while y < hi and value[y] == j:
+                y += 1
+            if y - x + mine == 1:  # one pair, or its own group, at this Jaccard: its rows in order
+                if mine:
+                    held = _append(out, held, limit, capped[g], head_first[g], head_id, -1, j, bands, head_id,
+                                   estimates, side_bands, neighbour, jaccard, estimate, bands_shared, own)
+                else:
+                    q = other[x]
+                    held = _append(out, held, limit, capped[q], head_first[q], head_id, x, j, bands, head_id,
+                                   estimates, side_bands, neighbour, jaccard, estimate, bands_shared, own)
+            else:  # the rows of pairs at one Jaccard: merged by neighbour
+                total = capped[g] if mine else 0
+                for z in range(x, y):
+                    total += capped[other[z]]
+                tied = np.empty(total, dtype=np.int64)
+                from_pair = np.empty(total, dtype=np.int64)
+                at = 0
+                if mine:
+                    for t in range(head_first[g], head_first[g] + capped[g]):
+                        tied[at], from_pair[at] = head_id[t], -1
+                        at += 1
+                for z in range(x, y):
+                    for t in range(head_first[other[z]], head_first[other[z]] + capped[other[z]]):
+                        tied[at], from_pair[at] = head_id[t], z
+                        at += 1
+                for t in np.argsort(tied):
+                    held = _append(out, held, limit, 1, -1, tied[t:t + 1], from_pair[t], j, bands, head_id,
+                                   estimates, side_bands, neighbour, jaccard, estimate, bands_shared, own)
+            mine = False
+            x = y
 
 
-def edges_that_count(src: np.ndarray, jaccard: np.ndarray, weight: np.ndarray, own: np.ndarray, first: int,
-                     groups: int, cap: int) -> np.ndarray:
-    """Which edges can bring a row into their ``src``'s first ``cap`` (:func:`_cut`): the rows
-    of the others rank below ``cap`` rows of the kept ones, so ranking only the kept edges'
-    rows gives the same lists."""
-    starts, order = _grouped(np.ascontiguousarray(src), first, groups)
-    keep = np.zeros(len(src), dtype=np.bool_)
-    _cut(starts, order, np.ascontiguousarray(jaccard, dtype=np.float64), np.ascontiguousarray(weight, dtype=np.int64),
-         np.ascontiguousarray(own, dtype=np.int64), cap, keep)
-    return keep
+def ranked_lists(left: np.ndarray, right: np.ndarray, pair_jaccard: np.ndarray, pair_estimate: np.ndarray,
+                 pair_bands: np.ndarray, sizes: np.ndarray, head_first: np.ndarray, head_id: np.ndarray,
+                 cap: int, bands: int, key: type):
+    """Each representative's neighbour list (:func:`_lists`) ranked by Jaccard descending,
+    ties by neighbour ascending (neighbours distinct within a list), cut at ``cap``; the
+    rows each pair brings are never made beside the lists. Returns ``list_starts`` (the
+    list of g is rows ``list_starts[g]:list_starts[g + 1]``), the lists' columns
+    (neighbour, jaccard, estimate, bands_shared) and ``own`` (the members their own
+    representative's list holds). The same lists as a sort of every row by (src, -jaccard,
+    neighbour) and the first ``cap`` of each src."""
+    n = len(sizes)
+    capped = np.minimum(cap, sizes).astype(np.int64)
+    rows = np.where(capped > 1, capped, 0)  # rows before the cut: its own group's, and each pair's
+    rows += np.bincount(left, weights=capped[right], minlength=n).astype(np.int64)
+    rows += np.bincount(right, weights=capped[left], minlength=n).astype(np.int64)
+    list_starts = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(np.minimum(rows, cap), out=list_starts[1:])
+    del rows
+    total = int(list_starts[-1])
+    neighbour, jaccard = np.empty(total, dtype=key), np.empty(total, dtype=np.float64)
+    estimate, bands_shared = np.empty(total, dtype=np.float64), np.empty(total, dtype=np.int32)
+    own = np.zeros(n, dtype=np.bool_)
+    if total:
+        left64, right64 = np.ascontiguousarray(left, dtype=np.int64), np.ascontiguousarray(right, dtype=np.int64)
+        sides = 2 * len(left)  # each pair under both its sides: 24 bytes each
+        starts, other = np.zeros(n + 1, dtype=np.int64), np.empty(sides, dtype=key)
+        value, estimates, side_bands = np.empty(sides), np.empty(sides), np.empty(sides, dtype=np.int32)
+        _sides(left64, right64, np.ascontiguousarray(pair_jaccard, dtype=np.float64),
+               np.ascontiguousarray(pair_estimate, dtype=np.float64), np.ascontiguousarray(pair_bands, dtype=np.int32),
+               n, starts, other, value, estimates, side_bands)
+        del left64, right64
+        _lists(starts, other, value, estimates, side_bands, capped, np.ascontiguousarray(head_first, dtype=np.int64),
+               head_id, np.int32(bands), list_starts, neighbour, jaccard, estimate, bands_shared, own)
+    return list_starts, neighbour, jaccard, estimate, bands_shared, own
+
+
+@numba.njit(parallel=True, cache=True)
+def _rows(ids, reps, offsets, list_starts, listed, jaccard, estimate, bands_shared, keys,
+          out_entity, out_neighbour, out_jaccard, out_estimate, out_bands, out_rank):
+    """Member m's rows at ``offsets[m]``: its representative's list without itself, as many
+    as ``offsets[m + 1] - offsets[m]`` (the cut at top-k), ranked 1, 2, ...; the entities'
+    keys gathered from ``keys`` by id."""
+    for m in numba.prange(len(ids)):
+        me = ids[m]
+        out, want = offsets[m], offsets[m + 1] - offsets[m]
+        r = 0
+        for t in range(list_starts[reps[m]], list_starts[reps[m] + 1]):
+            if r == want:
+                break
+            if listed[t] == me:
+                continue
+            out_entity[out + r] = keys[me]
+            out_neighbour[out + r] = keys[listed[t]]
+            out_jaccard[out + r] = jaccard[t]
+            out_estimate[out + r] = estimate[t]
+            out_bands[out + r] = bands_shared[t]
+            out_rank[out + r] = r + 1
+            r += 1
+
+
+def member_rows(ids: np.ndarray, reps: np.ndarray, counts: np.ndarray, list_starts: np.ndarray,
+                listed: np.ndarray, jaccard: np.ndarray, estimate: np.ndarray, bands_shared: np.ndarray,
+                keys: np.ndarray) -> tuple[np.ndarray, ...]:
+    """The rows of the members ``ids`` (their representatives ``reps``, ``counts`` rows each):
+    (entity, neighbour, jaccard, estimate, bands_shared, rank) in member order, then rank,
+    in one pass (:func:`_rows`); entity and neighbour are ``keys[id]``."""
+    offsets = np.zeros(len(ids) + 1, dtype=np.int64)
+    np.cumsum(counts, out=offsets[1:])
+    total = int(offsets[-1])
+    out = (np.empty(total, dtype=keys.dtype), np.empty(total, dtype=keys.dtype), np.empty(total, dtype=np.float64),
+           np.empty(total, dtype=np.float64), np.empty(total, dtype=np.int32), np.empty(total, dtype=np.uint32))
+    if total:
+        _rows(ids, reps, offsets, list_starts, listed, jaccard, estimate, bands_shared, keys, *out)
+    return out
 
 
 @numba.njit(cache=True)
@@ -151,12 +225,13 @@ def _by_side(left, right, groups):
 
 @numba.njit(parallel=True, cache=True)
 def _cut_both(starts, pair, left, right, jaccard, capped, cap, keep):
-    """For each side g, the rule of :func:`_cut` over the pairs of g (a partner's group brings
-    ``capped`` rows, g's own group ``capped[g]`` rows of 1.0 when it has members): a pair at
-    or above the value where ``cap`` rows are reached is kept (by either side: ``keep`` is
-    only ever set). Every pair brings a row or more, so that value lies among the side's
-    ``cap`` highest: they are held sorted (an insertion, one comparison for a pair that does
-    not enter), not the whole side."""
+    """For each side g, over the pairs of g (a partner's group brings ``capped`` rows, g's own
+    group ``capped[g]`` rows of 1.0 when it has members): once ``cap`` rows are reached at
+    value v, no row below v can enter g's list, so a pair at or above v is kept (those at v
+    stay: their ties are broken by neighbour when ranking) by either side: ``keep`` is only
+    ever set. Every pair brings a row or more, so v lies among the side's ``cap`` highest
+    values: they are held sorted (an insertion, one comparison for a pair that does not
+    enter), not the whole side."""
     for g in numba.prange(len(starts) - 1):
         lo, hi = starts[g], starts[g + 1]
         if lo == hi:
@@ -202,9 +277,9 @@ def _cut_both(starts, pair, left, right, jaccard, capped, cap, keep):
 def pairs_in_lists(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, group_sizes: np.ndarray,
                    top_k: int) -> np.ndarray:
     """Which pairs of representatives (``left``, ``right``, their ``jaccard``; each pair once)
-    can bring a row into the list publishing makes for either side (:func:`edges_that_count`
-    on both directions, with the weights of :func:`lshjob.index.publish.expand`: a partner's
-    group counts min(top_k + 1, its size) rows, a group's own members as many rows of 1.0).
+    can bring a row into the list publishing makes for either side (:func:`ranked_lists`,
+    with its weights: a partner's group counts min(top_k + 1, its size) rows, a group's own
+    members as many rows of 1.0).
 
     A pair kept by neither side lies below both sides' cut: dropping it changes no list,
     and the cut of a side is reached at the same value without it. Given only some of the

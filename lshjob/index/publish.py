@@ -15,11 +15,14 @@ top_k >= m - 1 still publishes m(m - 1) rows: that is the index asked for, so it
 counted before anything is expanded (:func:`expand`, :func:`check_output`) and a run whose
 index would not fit the memory budget is refused with the figures.
 
-Each representative's list is made a range of representatives at a time, from the verified
-pairs of the range gathered by position (both directions of every pair are never made at
-once). The rows are made a block of entities at a time (an eighth of the budget in flight,
-or a quarter of what it leaves beside the process, :func:`block_rows`) and streamed into
-the Parquet file, so publishing holds the table's size only when it fits a block.
+Each representative's list is ranked as it is made, straight from the verified pairs and
+the groups' first members (:func:`lshjob.index._ranking.ranked_lists`): the rows a pair
+brings before the cut are never held, only the lists (at most top_k + 1 rows a
+representative) and the pairs laid out by either side with their values (48 bytes a pair,
+beside the 36 of the verified pairs verification handed on). The rows are made a block of
+entities at a time (an eighth of the budget in flight, or a quarter of what it leaves
+beside the process, :func:`block_rows`) and streamed into the Parquet file, so publishing
+holds the table's size only when it fits a block.
 
 :func:`stage_neighbours` writes ``neighbours.parquet`` in a staging folder inside the output
 folder; :func:`commit_index` writes ``manifest.json`` beside it (the manifest records the
@@ -48,8 +51,7 @@ from lshjob.contracts.manifest import read_manifest as read_manifest_file
 from lshjob.contracts.tables import NEIGHBOURS as NEIGHBOUR_ROWS
 from lshjob.core.atomic import file_sha256
 from lshjob.errors import InputError, ParameterError
-from lshjob.index._ranking import by_value, edges_that_count, gathered, ranks, top_rows
-from lshjob.runtime.budget import release_freed
+from lshjob.index._ranking import member_rows, ranked_lists
 
 NEIGHBOURS = "neighbours.parquet"
 MANIFEST = "manifest.json"
@@ -61,17 +63,23 @@ VALUE_BYTES = 24  # jaccard, estimate (Float64), bands_shared, rank (32 bits) of
 # (about 100 bytes a row with integer keys; measured on the memory test of tests/test_publish.py)
 BLOCK_BYTES_PER_ROW = 160
 MIN_BLOCK_ROWS = 65_536
+# zstd at level 1 rather than polars' default 3: on the long-tailed 1M index (20.6M rows) the
+# encoding took 1.91 s CPU instead of 2.24 s for a file 3.5% larger (63.6 MB against 61.5 MB;
+# bench/RESULTS.md, "Publishing on long-tailed data")
+ZSTD_LEVEL = 1
 
 
 @dataclass
 class Expansion:
     """What publishing will expand, counted before anything is: ``members`` (``id``
-    ascending, ``rep``, ``rows``: rows expanded for it) and each representative's neighbour
-    list ``per_group`` (``src``, ``neighbour``, ``jaccard``, ``estimate``, ``bands_shared``,
-    in rank order), and the exact number of rows the index will hold."""
+    ascending, ``rep``, ``rows``: the rows it publishes), each representative's neighbour
+    list (``lists``: ``neighbour``, ``jaccard``, ``estimate``, ``bands_shared`` in rank
+    order; representative g's list is rows ``list_starts[g]:list_starts[g + 1]``), and the
+    exact number of rows the index will hold."""
 
     members: pl.DataFrame
-    per_group: pl.DataFrame
+    lists: pl.DataFrame
+    list_starts: np.ndarray
     published_rows: int
     top_k: int
 
@@ -113,13 +121,12 @@ def check_output(rows: int, keys: pl.Series, top_k: int, memory: int, largest_gr
     )
 
 
-def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
-           chunk_rows: int = 1 << 62) -> Expansion:
+def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int) -> Expansion:
     """Each representative's ranked neighbour list and each member's row count (no rows of
     the index are made here). Before its cut at top_k + 1, a representative's list holds
-    the first top_k + 1 members of each group it is paired with; the lists are made for a
-    range of representatives at a time, each range holding at most about ``chunk_rows``
-    rows before the cut (or one representative's)."""
+    the first top_k + 1 members of each group it is paired with; the lists are ranked as
+    they are made (:func:`lshjob.index._ranking.ranked_lists`), so those rows are never
+    held, only the lists."""
     cap = top_k + 1
     sizes = np.bincount(rep_of, minlength=len(rep_of))
     left, right = verified["left_rep"].to_numpy(), verified["right_rep"].to_numpy()
@@ -137,122 +144,48 @@ def expand(verified: pl.DataFrame, rep_of: np.ndarray, top_k: int, bands: int,
     keep = order[np.arange(len(order)) - first < cap]
     head_rep, head_id = reps[keep], ids[keep].astype(key)
     head_first = np.searchsorted(head_rep, np.arange(len(rep_of), dtype=key))  # where each group's head begins
-    del order, by_rep, first, keep
-
-    before_cut = np.where(sizes > 1, np.minimum(cap, sizes), 0).astype(np.int64)
-    before_cut += np.bincount(left, weights=np.minimum(cap, sizes[right]), minlength=len(sizes)).astype(np.int64)
-    before_cut += np.bincount(right, weights=np.minimum(cap, sizes[left]), minlength=len(sizes)).astype(np.int64)
-    cum = np.cumsum(before_cut)
-    del before_cut
-    # A range's edges are gathered from the pairs by position, each side in its own order:
-    # both directions of every pair are never made at once.
-    columns = {c: verified[c].to_numpy() for c in ("left_rep", "right_rep", "jaccard", "estimate", "bands_shared")}
-    sides = [_Side(columns, left, "left_rep", "right_rep", key), _Side(columns, right, "right_rep", "left_rep", key)]
-    del left, right
-    pieces, listed, start, n = [], [], 0, len(rep_of)
-    own = np.zeros(n, dtype=bool)
-    while start < n:  # representatives start..stop-1
-        base = cum[start - 1] if start else 0
-        stop = max(start + 1, int(np.searchsorted(cum, base + chunk_rows, side="right")))
-        # each edge's rows: the head of its dst's group, gathered by position (head is sorted by rep)
-        edges = pl.concat([side.edges(start, stop) for side in sides])
-        own_rows = np.where(sizes[start:stop] > 1, np.minimum(cap, sizes[start:stop]), 0)
-        edges = edges.filter(pl.Series(edges_that_count(
-            edges["src"].to_numpy(), edges["jaccard"].to_numpy(), np.minimum(cap, sizes[edges["dst"].to_numpy()]),
-            own_rows, start, stop - start, cap)))
-        dst = edges["dst"].to_numpy()
-        row, at = gathered(np.arange(len(dst)), head_first[dst], np.minimum(cap, sizes[dst]))
-        inter = pl.DataFrame({"src": edges["src"].to_numpy()[row], "neighbour": head_id[at],
-                              **{c: edges[c].to_numpy()[row] for c in ("jaccard", "estimate", "bands_shared")}})
-        lo, hi = np.searchsorted(head_rep, [start, stop])
-        mine = np.flatnonzero(sizes[head_rep[lo:hi]] > 1) + lo  # the range's groups of identical sets
-        intra = pl.DataFrame({"src": head_rep[mine], "neighbour": head_id[mine]}).with_columns(
-            pl.lit(1.0).alias("jaccard"), pl.lit(1.0).alias("estimate"),
-            pl.lit(bands, dtype=pl.Int32).alias("bands_shared"))
-        del edges, dst, row, at, mine
-        piece = pl.concat([intra, inter])
-        piece = piece[top_rows(piece["src"].to_numpy(), piece["jaccard"].to_numpy(), piece["neighbour"].to_numpy(),
-                               start, stop - start, cap)]
-        del inter, intra
-        # a representative's list length, and the members its own list holds
-        src, neighbour = piece["src"].to_numpy(), piece["neighbour"].to_numpy()
-        listed.append(np.bincount(src - start, minlength=stop - start).astype(np.int32))
-        own[neighbour[rep_of[neighbour] == src]] = True
-        pieces.append(piece)
-        start = stop
-        del piece, src, neighbour
-        release_freed()
-    per_group = pl.concat(pieces, rechunk=False) if pieces else pl.DataFrame(schema={
-        "src": pl.Int32, "neighbour": pl.Int32, "jaccard": pl.Float64, "estimate": pl.Float64,
-        "bands_shared": pl.Int32})
-    del sides, columns, head_rep, head_id, head_first, pieces
-    # rows expanded for a member: its representative's list; published: without itself, cut at top_k
-    rows = np.concatenate(listed)[reps].astype(np.int64) if listed else np.zeros(0, dtype=np.int64)
-    published = int(np.minimum(rows - own[ids], top_k).sum())
+    del order, by_rep, first, keep, head_rep
+    list_starts, neighbour, jaccard, estimate, bands_shared, own = ranked_lists(
+        left, right, verified["jaccard"].to_numpy(), verified["estimate"].to_numpy(),
+        verified["bands_shared"].to_numpy(), sizes, head_first, head_id, cap, bands, key)
+    del left, right, head_first, head_id
+    # rows published for a member: its representative's list, without itself, cut at top_k
+    rows = np.minimum(np.diff(list_starts)[reps] - own[ids], top_k).astype(np.int64)
     members = pl.DataFrame({"id": ids.astype(key), "rep": reps, "rows": rows})
-    return Expansion(members, per_group, published, top_k)
-
-
-class _Side:
-    """One side of the verified pairs, in the order of its representative: the pairs whose
-    ``src`` side is in a range of representatives are a slice of ``order``. The columns are
-    numpy arrays, gathered by position (a gather from polars' columns of many chunks, as
-    verification's pieces make them, took several times as long)."""
-
-    def __init__(self, columns: dict, reps: np.ndarray, src: str, dst: str, key: type) -> None:
-        self.columns, self.src, self.dst, self.key = columns, src, dst, key
-        narrow = np.int32 if len(reps) < 2**31 else np.int64  # positions of pairs
-        self.order = by_value(reps, int(reps.max()) + 1 if len(reps) else 0).astype(narrow)  # stable
-        self.sorted_reps = reps[self.order].astype(key)
-
-    def edges(self, start: int, stop: int) -> pl.DataFrame:
-        """(src, dst, jaccard, estimate, bands_shared) of the pairs whose ``src`` side is in
-        start..stop-1."""
-        lo, hi = np.searchsorted(self.sorted_reps, [start, stop])
-        rows = self.order[lo:hi]
-        c = self.columns
-        return pl.DataFrame({"src": self.sorted_reps[lo:hi], "dst": c[self.dst][rows].astype(self.key),
-                             "jaccard": c["jaccard"][rows], "estimate": c["estimate"][rows],
-                             "bands_shared": c["bands_shared"][rows].astype(np.int32)})
+    lists = pl.DataFrame({"neighbour": neighbour, "jaccard": jaccard, "estimate": estimate,
+                          "bands_shared": bands_shared})
+    return Expansion(members, lists, list_starts, int(rows.sum()), top_k)
 
 
 def neighbour_blocks(expansion: Expansion, keys: pl.Series, block_rows: int):
-    """The index's rows (module contract), a block of entities at a time, each block
-    expanding at most ``block_rows`` rows (or one entity's list). ``per_group`` is sorted by
-    ``src`` and rank (:func:`expand`), so a member's rows are its representative's list
-    gathered by position, without itself, cut at top_k: no join, no sort."""
-    members, per_group, top_k = expansion.members, expansion.per_group, expansion.top_k
-    ids, reps, lengths = (members[c].to_numpy() for c in ("id", "rep", "rows"))
-    src = per_group["src"].to_numpy()
-    listed = per_group["neighbour"].to_numpy()
-    list_first = np.searchsorted(src, np.arange(int(reps.max()) + 1 if len(reps) else 0, dtype=src.dtype))
-    cum = np.cumsum(lengths)
+    """The index's rows (module contract), a block of entities at a time, each block at most
+    ``block_rows`` rows (or one entity's list). A member's rows are its representative's
+    list, without itself, cut at top_k, made in one compiled pass with the keys
+    (:func:`lshjob.index._ranking.member_rows`): no join, no sort."""
+    members, lists = expansion.members, expansion.lists
+    ids, reps, counts = (members[c].to_numpy() for c in ("id", "rep", "rows"))
+    columns = [lists[c].to_numpy() for c in ("neighbour", "jaccard", "estimate", "bands_shared")]
+    # integer keys are gathered in the pass; others by polars from the ids the pass gives
+    integer = keys.dtype.is_integer()
+    source = keys.to_numpy() if integer else np.arange(len(keys), dtype=np.int64)
+    cum = np.cumsum(counts)
     start = 0
     while start < members.height:
         base = cum[start - 1] if start else 0
         stop = max(start + 1, int(np.searchsorted(cum, base + block_rows, side="right")))
-        first = list_first[reps[start:stop]]  # where each member's list begins
-        owner, at = gathered(ids[start:stop], first, lengths[start:stop])
+        entity, neighbour, jaccard, estimate, bands_shared, rank = member_rows(
+            ids[start:stop], reps[start:stop], counts[start:stop], expansion.list_starts, *columns, source)
         start = stop
-        keep = listed[at] != owner  # not its own neighbour
-        owner, at = owner[keep], at[keep]
-        rank = ranks(owner)
-        keep = rank <= top_k
-        table = per_group.select(pl.col("neighbour", "jaccard", "estimate", "bands_shared")
-                                 .gather(pl.Series(at[keep]))).with_columns(
-            id=pl.Series(owner[keep]), rank=pl.Series(rank[keep], dtype=pl.UInt32))
-        yield _with_keys(table, keys)
-        del table, owner, at, keep, rank
+        if integer:
+            entity, neighbour = pl.Series(entity, dtype=keys.dtype), pl.Series(neighbour, dtype=keys.dtype)
+        else:
+            entity, neighbour = keys.gather(entity), keys.gather(neighbour)
+        yield pl.DataFrame([entity.alias("entity"), neighbour.alias("neighbour"), pl.Series("jaccard", jaccard),
+                            pl.Series("estimate", estimate), pl.Series("bands_shared", bands_shared),
+                            pl.Series("rank", rank)])
+        del entity, neighbour, jaccard, estimate, bands_shared, rank
     if members.height == 0:
         yield NEIGHBOUR_ROWS.empty(key=keys.dtype)
-
-
-def _with_keys(table: pl.DataFrame, keys: pl.Series) -> pl.DataFrame:
-    """The rows with the entities' keys, in NEIGHBOURS's columns and types."""
-    return NEIGHBOUR_ROWS.conform(table.with_columns(
-        keys.gather(table["id"].to_numpy()).alias("entity"),
-        keys.gather(table["neighbour"].to_numpy()).alias("neighbour"),
-    ))
 
 
 def block_rows(memory: int, held: int = 0) -> int:
@@ -283,7 +216,7 @@ def stage_neighbours(out_dir: Path, tables, metadata: dict) -> dict:
     first = next(pending)
     second = next(pending, None)
     if second is None:
-        first.write_parquet(path, compression="zstd", metadata=kv)
+        first.write_parquet(path, compression="zstd", compression_level=ZSTD_LEVEL, metadata=kv)
         rows = first.height
     else:
         rows = stream_parquet(first, second, pending, path, kv)
@@ -315,7 +248,7 @@ def stream_parquet(first: pl.DataFrame, second: pl.DataFrame, pending, sink, kv:
     del first, second
     try:
         register_io_source(source, schema=schema).sink_parquet(sink, compression="zstd", metadata=kv,
-                                                               maintain_order=True)
+                                                               compression_level=ZSTD_LEVEL, maintain_order=True)
     except Exception:
         if failure:
             raise failure[0] from None

@@ -55,7 +55,7 @@ def rows_of(members: pl.DataFrame, pairs: pl.DataFrame, top_k: int, bands: int, 
     run's publish stage; and the rows it will hold."""
     keys, rep_of, verified = index_state.published_inputs(members, pairs)
     release_freed()
-    expansion = publish.expand(verified, rep_of, top_k, bands, publish.block_rows(memory, current_bytes()))
+    expansion = publish.expand(verified, rep_of, top_k, bands)
     publish.check_output(expansion.published_rows, keys, top_k, memory, publish.identical_rows(rep_of, top_k)[2])
     return publish.neighbour_blocks(expansion, keys, publish.block_rows(memory, current_bytes())), keys
 

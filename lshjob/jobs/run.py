@@ -214,8 +214,7 @@ def run_job(
         with stages("publish"):
             # blocks sized from what the budget leaves beside what the process holds
             release_freed()
-            expansion = publish.expand(verified, built.rep_of, top_k, plan.bands or 0,
-                                       publish.block_rows(memory, current_bytes()))
+            expansion = publish.expand(verified, built.rep_of, top_k, plan.bands or 0)
             del verified
             publish.check_output(expansion.published_rows, built.keys, options.top_k, memory,
                                  publish.identical_rows(built.rep_of, top_k)[2])
