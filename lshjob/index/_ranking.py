@@ -224,7 +224,7 @@ def _by_side(left, right, groups):
 
 
 @numba.njit(parallel=True, cache=True)
-def _cut_both(starts, pair, left, right, jaccard, capped, cap, keep):
+def _cut_both(starts, pair, left, right, jaccard, capped, cap, keep, cutoffs):
     """For each side g, over the pairs of g (a partner's group brings ``capped`` rows, g's own
     group ``capped[g]`` rows of 1.0 when it has members): once ``cap`` rows are reached at
     value v, no row below v can enter g's list, so a pair at or above v is kept (those at v
@@ -268,6 +268,7 @@ def _cut_both(starts, pair, left, right, jaccard, capped, cap, keep):
                     if reached >= cap:
                         cutoff = values[i]
                         break
+        cutoffs[g] = cutoff
         for i in range(lo, hi):
             p = pair[i]
             if jaccard[p] >= cutoff:
@@ -285,14 +286,31 @@ def pairs_in_lists(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, gro
     and the cut of a side is reached at the same value without it. Given only some of the
     pairs (a block of parts), a side's cut can only be lower than with all of them, so the
     pairs dropped are still below the cut of the whole run."""
+    return list_cuts(left, right, jaccard, group_sizes, top_k)[0]
+
+
+def list_cuts(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, group_sizes: np.ndarray,
+              top_k: int) -> tuple[np.ndarray, np.ndarray]:
+    """(:func:`pairs_in_lists`, each representative's cut): the Jaccard below which no pair
+    can enter its list given these pairs, -1.0 where its list is not yet full (1.0 for a group
+    of more than ``top_k`` members, whose own rows fill it). More pairs only raise a cut, so
+    it is a floor for the cut of the whole run: a pair below both its sides' floors is
+    dropped whatever pairs come later."""
     cap = top_k + 1
     keep = np.zeros(len(left), dtype=np.bool_)
+    cutoffs = own_cuts(group_sizes, top_k)
     if len(left) == 0:
-        return keep
+        return keep, cutoffs
     groups = int(max(left.max(), right.max())) + 1
     starts, pair = _by_side(np.ascontiguousarray(left, dtype=np.int64), np.ascontiguousarray(right, dtype=np.int64),
                             groups)
     capped = np.minimum(cap, np.asarray(group_sizes[:groups], dtype=np.int64))
     _cut_both(starts, pair, np.ascontiguousarray(left, dtype=np.int64), np.ascontiguousarray(right, dtype=np.int64),
-              np.ascontiguousarray(jaccard, dtype=np.float64), capped, cap, keep)
-    return keep
+              np.ascontiguousarray(jaccard, dtype=np.float64), capped, cap, keep, cutoffs[:groups])
+    return keep, cutoffs
+
+
+def own_cuts(group_sizes: np.ndarray, top_k: int) -> np.ndarray:
+    """Each representative's cut before any pair (:func:`list_cuts`): 1.0 for a group of more
+    than ``top_k`` members, -1.0 otherwise."""
+    return np.where(np.asarray(group_sizes) > top_k, 1.0, -1.0)

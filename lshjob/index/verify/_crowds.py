@@ -172,8 +172,8 @@ def _keep(offsets, elements, first, mem, x, y, la, lb, need, threshold, crowd_at
 
 
 @numba.njit(parallel=True, cache=True)
-def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, threshold, crowd_at, in_bands,
-                        row_of, bands, out_left, out_right, out_jac, out_bands, found):
+def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, threshold, floor, crowd_at,
+                        in_bands, row_of, bands, out_left, out_right, out_jac, out_bands, found):
     """The pairs of each crowd (members ``members[start[c]:start[c] + count[c]]``, one range,
     by set size ascending) whose Jaccard reaches ``threshold``: the same pairs, with the same
     values, as :func:`_crowd_pairs`, without intersecting every pair. Written from slot
@@ -192,11 +192,24 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
     ``bands[c]``: crowd c's band, or -1 when the bands are not known. Known, a pair of members
     of crowds of several bands is intersected and written by the crowd of its first band
     only, with the number of crowds it shares (:func:`_keep`): one row where a crowd each
-    would give one, and one intersection."""
+    would give one, and one intersection.
+
+    ``floor`` (by entity id from ``first``; empty for none): each set's top-k floor
+    (:func:`lshjob.index._ranking.list_cuts`). A pair below both its sides' floors enters
+    neither list, so pair (x, y) is sought at max(threshold, min(floor x, floor y)) only: its
+    size filter, needed intersection and early exit grow with it, and the prefixes serve the
+    crowd's lowest, the least any of its pairs is sought at."""
     for c in numba.prange(start.shape[0]):
         mem = members[start[c]:start[c] + count[c]]
+        at = np.full(len(mem), threshold)  # each member's floor, at least the threshold
+        lowest = threshold
+        if len(floor):
+            lowest = 1.0
+            for x in range(len(mem)):
+                at[x] = max(threshold, floor[mem[x] - first])
+                lowest = min(lowest, at[x])
         size, common, local_off, local, prefix, post_off, posted = _prefix_index(offsets, elements, first, mem,
-                                                                                 threshold)
+                                                                                 lowest)
         seen = np.full(len(mem), -1, dtype=np.int64)
         out = base[c]
         for x in range(len(mem)):
@@ -205,10 +218,11 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                 need = _need(la, size[y], threshold)
                 if need > common:
                     break  # later partners are at least as large
-                if size[y] >= threshold * la - 1e-9:
-                    out = _keep(offsets, elements, first, mem, x, y, la, size[y], need, threshold, crowd_at,
-                                in_bands, row_of, bands[c], out, out_left, out_right, out_jac, out_bands)
-            low = first_at_least(size, 0, x, threshold * la - 1e-9)  # the size filter, sizes ascending
+                sought = min(at[x], at[y])
+                if size[y] >= sought * la - 1e-9:
+                    out = _keep(offsets, elements, first, mem, x, y, la, size[y], _need(la, size[y], sought), sought,
+                                crowd_at, in_bands, row_of, bands[c], out, out_left, out_right, out_jac, out_bands)
+            low = first_at_least(size, 0, x, lowest * la - 1e-9)  # the size filter, sizes ascending
             for q in range(local_off[x], local_off[x] + prefix[x]):
                 r = local[q]
                 for t in range(first_at_least(posted, post_off[r], post_off[r + 1], low), post_off[r + 1]):
@@ -220,8 +234,11 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                     seen[y] = x
                     need = _need(la, size[y], threshold)
                     if need > common:  # (the others were intersected above)
-                        out = _keep(offsets, elements, first, mem, x, y, la, size[y], need, threshold,
-                                    crowd_at, in_bands, row_of, bands[c], out, out_left, out_right, out_jac, out_bands)
+                        sought = min(at[x], at[y])
+                        if size[y] >= sought * la - 1e-9:
+                            out = _keep(offsets, elements, first, mem, x, y, la, size[y], _need(la, size[y], sought),
+                                        sought, crowd_at, in_bands, row_of, bands[c], out, out_left, out_right, out_jac,
+                                        out_bands)
         found[c] = out - base[c]
 
 
@@ -269,9 +286,11 @@ def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: in
 
 
 def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int, threshold: float,
-                 max_pairs: int = MAX_PAIRS):
+                 max_pairs: int = MAX_PAIRS, floors=None):
     """:func:`verify_crowds`'s rows, a chunk of at most ``max_pairs`` pairs made at a time, so
-    the caller can deduplicate as they come."""
+    the caller can deduplicate as they come. ``floors()``, when given, returns each entity id's
+    top-k floor now (:func:`lshjob.index._ranking.list_cuts`), read before each chunk: the
+    pairs below both sides' floors are not sought (within one range), nor returned."""
     (a_members, a_crowd, a_start, a_count, b_members, b_crowd, b_start, b_count, same, a_band), pairs = block
     crowd_at, in_bands, row_of, crowd_band = _crowds_by_band(a_members, a_crowd, a_band, a_start, left_first,
                                                    len(left_sets.offsets) - 1)
@@ -295,8 +314,9 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
         base = np.concatenate([[0], cum[lo:hi - 1] - done]).astype(np.int64)
         if same:  # the pairs found written first in each crowd's slots
             found = np.zeros(hi - lo, dtype=np.int64)
+            floor = _floor_within(floors, left_first, len(left_sets.offsets) - 1)
             _crowd_pairs_prefix(left_sets.offsets, left_sets.elements, left_first, a_members, a_start[lo:hi],
-                                a_count[lo:hi], base, threshold, crowd_at, in_bands, row_of, crowd_band[lo:hi],
+                                a_count[lo:hi], base, threshold, floor, crowd_at, in_bands, row_of, crowd_band[lo:hi],
                                 out_left, out_right, out_jac, out_bands, found)
             keep = np.arange(int(found.sum())) + np.repeat(base - (np.cumsum(found) - found), found)
         else:
@@ -309,6 +329,15 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
                             "bands_shared": out_bands[keep] if same else np.ones(len(keep), dtype=np.int32)})
 
 
+def _floor_within(floors, first: int, sets: int) -> np.ndarray:
+    """The floors of entity ids first..first + sets - 1 (-1.0 beyond those known), or an
+    empty array without ``floors``."""
+    if floors is None:
+        return np.empty(0)
+    known = np.asarray(floors(), dtype=np.float64)[first:first + sets]
+    return np.ascontiguousarray(np.concatenate([known, np.full(sets - len(known), -1.0)]))
+
+
 def _crowds_by_band(members: np.ndarray, crowd: np.ndarray, band: np.ndarray | None, start: np.ndarray, first: int,
                     sets: int):
     """Each member's crowd a band (a matrix, a row a member, 0 where none), the bands (mod 64) it
@@ -317,19 +346,50 @@ def _crowds_by_band(members: np.ndarray, crowd: np.ndarray, band: np.ndarray | N
     if band is None:
         return (np.zeros((1, 1), dtype=np.int64), np.zeros(1, dtype=np.uint64), np.zeros(1, dtype=np.int64),
                 np.full(len(start), -1, dtype=np.int64))
-    local = members - first
-    ids = np.unique(local)
-    row_of = np.full(sets, -1, dtype=np.int64)
-    row_of[ids] = np.arange(len(ids))
-    crowd_at = np.zeros((len(ids), int(band.max()) + 1), dtype=np.int64)
-    crowd_at[row_of[local], band] = crowd
-    in_bands = np.zeros(len(ids), dtype=np.uint64)
-    np.bitwise_or.at(in_bands, row_of[local], np.left_shift(np.uint64(1), (band % 64).astype(np.uint64)))
+    band = np.ascontiguousarray(band, dtype=np.int64)
+    crowd_at, in_bands, row_of = _band_rows(np.ascontiguousarray(members - first, dtype=np.int64),
+                                            np.ascontiguousarray(crowd, dtype=np.int64), band, sets,
+                                            int(band.max()) + 1)
     return crowd_at, in_bands, row_of, np.ascontiguousarray(band[start], dtype=np.int64)
 
 
+@numba.njit(cache=True)
+def _band_rows(local, crowd, band, sets, bands):
+    """:func:`_crowds_by_band`'s matrix, bits and rows in two passes (rows in order of first
+    appearance)."""
+    row_of = np.full(sets, -1, dtype=np.int64)
+    rows = 0
+    for m in range(len(local)):
+        if row_of[local[m]] < 0:
+            row_of[local[m]] = rows
+            rows += 1
+    crowd_at = np.zeros((rows, bands), dtype=np.int64)
+    in_bands = np.zeros(rows, dtype=np.uint64)
+    for m in range(len(local)):
+        r = row_of[local[m]]
+        crowd_at[r, band[m]] = crowd[m]
+        in_bands[r] |= np.uint64(1) << np.uint64(band[m] % 64)
+    return crowd_at, in_bands, row_of
+
+
 def _by_size(members: np.ndarray, crowd: np.ndarray, sets, first: int) -> np.ndarray:
-    """``members`` (grouped by ``crowd``) reordered by set size within each crowd."""
-    ids = members - first
-    sizes = sets.offsets[ids + 1] - sets.offsets[ids]
-    return np.ascontiguousarray(members[np.lexsort((members, sizes, crowd))])
+    """``members`` (grouped by ``crowd``) reordered by set size, then id, within each crowd."""
+    out = np.ascontiguousarray(members, dtype=np.int64).copy()
+    if len(out):
+        crowd = np.ascontiguousarray(crowd, dtype=np.int64)
+        bounds = np.flatnonzero(np.concatenate([[True], crowd[1:] != crowd[:-1], [True]])).astype(np.int64)
+        _sort_by_size(out, bounds, sets.offsets, first)
+    return out
+
+
+@numba.njit(parallel=True, cache=True)
+def _sort_by_size(members, bounds, offsets, first):
+    """Sort each run ``members[bounds[g]:bounds[g + 1]]`` by (set size, id), in place."""
+    for g in numba.prange(len(bounds) - 1):
+        lo, hi = bounds[g], bounds[g + 1]
+        key = np.empty(hi - lo, dtype=np.int64)
+        for m in range(lo, hi):
+            key[m - lo] = ((offsets[members[m] - first + 1] - offsets[members[m] - first]) << 32) | (members[m] - first)
+        key.sort()
+        for m in range(lo, hi):
+            members[m] = (key[m - lo] & 0xFFFFFFFF) + first

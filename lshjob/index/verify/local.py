@@ -15,7 +15,7 @@ import polars as pl
 
 from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
-from lshjob.index._ranking import pairs_in_lists
+from lshjob.index._ranking import list_cuts, own_cuts
 from lshjob.index.verify._crowds import crowd_pairs_between, crowd_pieces
 from lshjob.index.verify._jaccard import exact_jaccard_between, jaccard_between
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
@@ -56,25 +56,29 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 continue
             left = store.load(i) if left is None else left
             right = left if j == i else store.load(j)
-            cut = None
+            cut, floors = None, None
             if settings.top_k is not None and settings.group_sizes is not None:
                 cut = partial(_in_lists, group_sizes=settings.group_sizes, top_k=settings.top_k)
-            held = HeldRows(settings.held_rows, partial(one_row_a_pair, jaccard_of=partial(
-                _exact, left, store.ranges[i][0], right, store.ranges[j][0])), cut)
+                floors = own_cuts(settings.group_sizes, settings.top_k)
+            held = HeldRows(settings.held_rows, partial(
+                one_row_a_pair, jaccard_of=partial(_exact, left, store.ranges[i][0], right, store.ranges[j][0]),
+                sizes_of=partial(_sizes, left, store.ranges[i][0], right, store.ranges[j][0])), cut, floors)
             if files:
                 frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
                 for lo, hi in slice_bounds(_rows(files), step):
                     chunk = frame.slice(lo, hi - lo).collect()
                     held.add(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
             if crowded is not None:
-                for piece in crowd_pieces(crowded, left, store.ranges[i][0], right, store.ranges[j][0], threshold):
+                held.settle()  # the join's pairs give the first floors
+                for piece in crowd_pieces(crowded, left, store.ranges[i][0], right, store.ranges[j][0], threshold,
+                                          floors=held.floors_now if cut is not None else None):
                     held.add(piece)
             block = held.result()
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
                 continue
             over += block.height + held.dropped
             if cut is not None:  # before the estimates
-                block = cut(block)
+                block = cut(block)[0]
             if params is None:  # identical sets only, no signatures: the estimate is exact
                 block = block.with_columns(estimate=pl.col("jaccard")).select(
                     "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
@@ -102,10 +106,12 @@ class HeldRows:
     a pair dropped stays below the block's final cut (even if met again in a later band) and a
     pair the final cut keeps was never dropped: the same pairs, with the same rows counted, as
     one cut at the end. ``dropped``: pairs the cuts dropped (a pair met again after being
-    dropped counts again)."""
+    dropped counts again). ``cut`` returns the rows kept and each side's cut, kept as the
+    floors (:func:`lshjob.index._ranking.list_cuts`; ``floors``: the first ones): a pair
+    below both its sides' floors need not be added."""
 
-    def __init__(self, step: int | None, dedup, cut=None) -> None:
-        self.step, self.dedup, self.cut = step, dedup, cut
+    def __init__(self, step: int | None, dedup, cut=None, floors: np.ndarray | None = None) -> None:
+        self.step, self.dedup, self.cut, self.floors = step, dedup, cut, floors
         self.kept: pl.DataFrame | None = None
         self.fresh: list[pl.DataFrame] = []
         self.fresh_rows = 0
@@ -118,11 +124,22 @@ class HeldRows:
         self.fresh_rows += rows.height
         if self.step is not None and self.fresh_rows > max(self.step,
                                                            self.kept.height if self.kept is not None else 0):
-            self._dedup()
-            if self.cut is not None:
-                height = self.kept.height
-                self.kept = self.cut(self.kept)
-                self.dropped += height - self.kept.height
+            self.settle()
+
+    def settle(self) -> None:
+        """Deduplicate the rows added since the last time, and cut them (raising the floors)."""
+        if not self.fresh:
+            return
+        self._dedup()
+        if self.cut is not None:
+            height = self.kept.height
+            self.kept, floors = self.cut(self.kept)
+            self.floors = floors if self.floors is None else np.maximum(self.floors, floors)
+            self.dropped += height - self.kept.height
+
+    def floors_now(self) -> np.ndarray:
+        """Each entity id's floor as the rows cut so far give it."""
+        return self.floors
 
     def _dedup(self) -> None:
         self.kept = self.dedup(pl.concat(([self.kept] if self.kept is not None else []) + self.fresh))
@@ -135,10 +152,11 @@ class HeldRows:
         return self.kept
 
 
-def _in_lists(pairs: pl.DataFrame, group_sizes, top_k: int) -> pl.DataFrame:
-    """The pairs that can enter a list (:func:`lshjob.index._ranking.pairs_in_lists`)."""
-    return pairs.filter(pl.Series(pairs_in_lists(pairs["left_rep"].to_numpy(), pairs["right_rep"].to_numpy(),
-                                                 pairs["jaccard"].to_numpy(), group_sizes, top_k)))
+def _in_lists(pairs: pl.DataFrame, group_sizes, top_k: int) -> tuple[pl.DataFrame, np.ndarray]:
+    """The pairs that can enter a list, and each side's cut (:func:`lshjob.index._ranking.list_cuts`)."""
+    keep, cuts = list_cuts(pairs["left_rep"].to_numpy(), pairs["right_rep"].to_numpy(), pairs["jaccard"].to_numpy(),
+                           group_sizes, top_k)
+    return pairs.filter(pl.Series(keep)), cuts
 
 
 def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first: int,
@@ -164,18 +182,26 @@ def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first:
     )
 
 
-def one_row_a_pair(verified: pl.DataFrame, jaccard_of=None) -> pl.DataFrame:
+def one_row_a_pair(verified: pl.DataFrame, jaccard_of=None, sizes_of=None) -> pl.DataFrame:
     """Verified rows with one row per pair: a join that wrote a row per band a pair met in
     (:mod:`lshjob.index.join.base`) repeats the pair, with the same Jaccard; its
     ``bands_shared`` is the sum of its rows'. A pair lies in one block of parts, so a block's
-    rows hold all of a pair's. ``jaccard_of(left, right)``: the exact Jaccard of pairs, when
-    the caller holds the sets (lets the rows be deduplicated by sorting 64-bit keys alone, a
-    third of the time of ordering the rows: the pair and its rows' bands in one key while ids
-    fit 26 bits, the pair alone for rows of one band each while they fit 32)."""
+    rows hold all of a pair's. ``sizes_of(left, right)``: the set sizes of pairs, and
+    ``jaccard_of(left, right)``: their exact Jaccard, when the caller holds the sets. They let
+    the rows be deduplicated by sorting 64-bit keys alone, a third of the time of ordering the
+    rows: the pair, its intersection (from the Jaccard and the sizes, J = i / (|A| + |B| - i))
+    and its rows' bands in one key while they fit 64 bits, the Jaccard then divided again from
+    the intersection (the same float as the kernels' division); else the pair and its rows'
+    bands while ids fit 26 bits, or the pair alone for rows of one band each while they fit 32,
+    the Jaccard taken again from the sets."""
     left, right = verified["left_rep"].to_numpy(), verified["right_rep"].to_numpy()
     if len(left) < 2:
         return verified
     bands = verified["bands_shared"].to_numpy()
+    if sizes_of is not None and left.min() >= 0 and bands.min() >= 1:
+        packed = _one_row_packed(left, right, verified["jaccard"].to_numpy(), bands, sizes_of)
+        if packed is not None:
+            return verified if packed is True else packed.select(verified.columns)
     if jaccard_of is not None and right.max() < 2**26 and left.min() >= 0 and bands.min() >= 1 and bands.max() < 2**12:
         # pair and bands in one 64-bit key (26 + 26 + 12 bits): one sort of the keys alone, the
         # bands summed over each pair's run, the Jaccard taken again from the sets
@@ -215,6 +241,41 @@ def one_row_a_pair(verified: pl.DataFrame, jaccard_of=None) -> pl.DataFrame:
     return (verified.group_by("left_rep", "right_rep")
             .agg(pl.col("jaccard").first(), pl.col("bands_shared").sum())
             .select(verified.columns))
+
+
+def _one_row_packed(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, bands: np.ndarray, sizes_of):
+    """:func:`one_row_a_pair` by one sort of (pair, intersection, bands) keys: the rows, True
+    when every pair has one row, or None when the key does not fit 64 bits."""
+    la, lb = sizes_of(left, right)
+    inter = np.rint(jaccard * (la + lb) / (1.0 + jaccard)).astype(np.int64)
+    id_bits = int(max(left.max(), right.max())).bit_length()
+    inter_bits, band_bits = max(int(inter.max()).bit_length(), 1), int(bands.max()).bit_length()
+    if 2 * id_bits + inter_bits + band_bits > 64:
+        return None
+    low = np.uint64(inter_bits + band_bits)
+    key = ((left.astype(np.uint64) << (low + np.uint64(id_bits))) | (right.astype(np.uint64) << low)
+           | (inter.astype(np.uint64) << np.uint64(band_bits)) | bands.astype(np.uint64))
+    key.sort()
+    pair = key >> np.uint64(band_bits)
+    starts = np.flatnonzero(np.concatenate([[True], pair[1:] != pair[:-1]]))
+    if len(starts) == len(key):
+        return True
+    counts = np.add.reduceat((key & np.uint64((1 << band_bits) - 1)).astype(np.int64), starts).astype(np.int32)
+    pair = pair[starts]
+    inter = (pair & np.uint64((1 << inter_bits) - 1)).astype(np.int64)
+    pair >>= np.uint64(inter_bits)
+    left = (pair >> np.uint64(id_bits)).astype(np.int64)
+    right = (pair & np.uint64((1 << id_bits) - 1)).astype(np.int64)
+    la, lb = sizes_of(left, right)
+    return pl.DataFrame({"left_rep": left, "right_rep": right, "jaccard": inter / (la + lb - inter),
+                         "bands_shared": counts})
+
+
+def _sizes(left_sets: ElementSets, left_first: int, right_sets: ElementSets, right_first: int,
+           left: np.ndarray, right: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The set sizes of pairs of entity ids, the sets held as in :func:`verify_between`."""
+    return (left_sets.offsets[left - left_first + 1] - left_sets.offsets[left - left_first],
+            right_sets.offsets[right - right_first + 1] - right_sets.offsets[right - right_first])
 
 
 def _exact(left_sets: ElementSets, left_first: int, right_sets: ElementSets, right_first: int,
