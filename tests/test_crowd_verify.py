@@ -12,7 +12,7 @@ import polars as pl
 import pytest
 
 from lshjob.core.sets import ElementSets
-from lshjob.index.verify._crowds import crowd_pairs_between, verify_crowds
+from lshjob.index.verify._crowds import crowd_pairs_between, crowd_pieces, verify_crowds
 
 
 def _crowded_sets(seed: int, crowds: int = 6):
@@ -73,3 +73,37 @@ def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold, w
     assert len(want) > 20  # the case holds pairs to find
     assert any(n > 1 for n in crowds_in.values())  # and pairs met in more than one crowd
     assert got_rows == want
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_crowd_pairs_below_both_floors_are_not_sought(seed):
+    """With top-k floors (lshjob.index._ranking.list_cuts), every pair reaching
+    max(threshold, min(floor a, floor b)) is found with its exact Jaccard and its crowds, and
+    none below the threshold. Oracle: exact Jaccard with Python sets, as above."""
+    sets, crowd_rows = _crowded_sets(seed)
+    rows = pl.DataFrame({"entity": np.repeat(np.arange(len(sets)), [len(s) for s in sets]),
+                         "element": np.concatenate([np.array(s) for s in sets])})
+    element_sets = ElementSets.from_sets(rows)
+    table = (pl.DataFrame(crowd_rows, schema={"crowd": pl.Int64, "rep": pl.Int64}, orient="row")
+             .unique().sort("crowd", "rep").with_columns(band=(pl.col("crowd") - 1).cast(pl.Int32)))
+    threshold = 0.3
+    rng = np.random.default_rng(seed)
+    floors = np.where(rng.random(len(sets)) < 0.7, rng.choice([0.4, 0.5, 0.6, 1.0], len(sets)), -1.0)
+    floors[table.filter(pl.col("crowd") == 2)["rep"].to_numpy()] = 0.5  # one crowd floored throughout
+    block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
+    got = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, threshold, max_pairs=500,
+                                      floors=lambda: floors)))
+    crowds_in, jaccard = Counter(), {}
+    for _, members in table.group_by("crowd"):
+        for a, b in combinations(sorted(members["rep"].to_list()), 2):
+            sa, sb = set(sets[a]), set(sets[b])
+            jaccard[a, b] = len(sa & sb) / len(sa | sb)
+            crowds_in[a, b] += 1
+    sought = {p for p, j in jaccard.items() if j >= max(threshold, min(floors[p[0]], floors[p[1]]))}
+    got_rows = {(a, b): (j, n) for a, b, j, n in got.select("left_rep", "right_rep", "jaccard", "bands_shared")
+                .iter_rows()}
+    assert got.height == len(got_rows)  # a row a pair
+    assert sought <= set(got_rows)
+    assert all(jaccard[p] >= threshold and got_rows[p] == (jaccard[p], crowds_in[p]) for p in got_rows)
+    skipped = {p for p, j in jaccard.items() if j >= threshold} - set(got_rows)
+    assert len(skipped) > 10  # the floors left pairs out

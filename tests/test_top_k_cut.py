@@ -13,7 +13,7 @@ import numpy as np
 import polars as pl
 
 from lshjob.core.sets import ElementSets
-from lshjob.index._ranking import pairs_in_lists
+from lshjob.index._ranking import list_cuts, pairs_in_lists
 from lshjob.index.publish import expand, neighbour_blocks
 from lshjob.index.verify.base import VerifySettings
 from lshjob.index.verify.local import verify_blocks
@@ -51,11 +51,12 @@ def _brute_index(left, right, jaccard, rep_of, top_k):
     return index
 
 
-def _cut_rule(left, right, jaccard, sizes, top_k):
+def _cut_rule(left, right, jaccard, sizes, top_k, cutoffs=None):
     """The rule of pairs_in_lists in Python (sorted()): per side, its partners' rows
     (min(top_k + 1, group size) each) and its own group's rows at 1.0, by Jaccard descending;
     a pair is kept when its Jaccard reaches the value at which top_k + 1 rows are reached (every
-    pair when the side never gets there), by either side."""
+    pair when the side never gets there), by either side. ``cutoffs``: a dict filled with each
+    side's value."""
     cap = top_k + 1
     sides = {}
     for p, (a, b) in enumerate(zip(left.tolist(), right.tolist())):
@@ -71,6 +72,8 @@ def _cut_rule(left, right, jaccard, sizes, top_k):
                 if held >= cap:
                     cutoff = jaccard[p]
                     break
+        if cutoffs is not None:
+            cutoffs[g] = cutoff
         for p, _ in pairs:
             keep[p] = keep[p] or bool(jaccard[p] >= cutoff)
     return keep
@@ -161,3 +164,30 @@ def test_verification_with_top_k_keeps_what_the_lists_need_in_one_range_and_in_t
             for e, m, j in table.select("entity", "neighbour", "jaccard").iter_rows():
                 got.setdefault(e, []).append((m, j))
             assert got == want
+
+
+def test_each_sides_cut_is_the_value_its_list_fills_at_and_a_floor_for_more_pairs():
+    """list_cuts' cuts against the Python rule (_cut_rule), and the floor they give: the
+    cuts of some of the pairs are at most those of all of them, and a pair below both its
+    sides' cuts from some pairs is not kept with all of them."""
+    rng = np.random.default_rng(5)
+    n, top_k = 300, 3
+    rep_of = _groups(rng, n)
+    reps = np.unique(rep_of)
+    a, b = rng.choice(reps, 5000), rng.choice(reps, 5000)
+    key = np.unique(np.minimum(a, b)[a != b] * n + np.maximum(a, b)[a != b])
+    left, right = key // n, key % n
+    jaccard = rng.integers(5, 11, len(left)) / 10.0
+    sizes = np.bincount(rep_of, minlength=n)
+    want = {}
+    keep_want = _cut_rule(left, right, jaccard, sizes, top_k, want)
+    keep, cuts = list_cuts(left, right, jaccard, sizes, top_k)
+    assert keep.tolist() == keep_want
+    assert {g: cuts[g] for g in want} == want
+    assert (cuts[sizes > top_k] == 1.0).all()  # a group filling its own list
+    assert sorted(set(want.values()) - {-1.0, 1.0})  # cuts of several values are checked
+    some = rng.random(len(left)) < 0.4
+    _, floors = list_cuts(left[some], right[some], jaccard[some], sizes, top_k)
+    assert (floors <= cuts).all()
+    below = (jaccard < floors[left]) & (jaccard < floors[right])
+    assert below.sum() > 0 and not keep[below].any()

@@ -147,3 +147,25 @@ def test_the_top_k_cut_while_rows_come_keeps_the_pairs_and_counts_of_one_cut_at_
         assert table.keys() == kept, step
         assert all(table[pair] == want[pair] for pair in kept), step
         assert settings.tally["over_threshold"] >= len(want)
+
+
+def test_rows_deduplicated_by_packed_keys_keep_each_pairs_exact_jaccard_and_bands():
+    """one_row_a_pair given the set sizes (a key of pair, intersection and bands) against the
+    same rows grouped by polars, and the Jaccard against Python's division of the exact
+    intersection and union (Python sets)."""
+    rng = np.random.default_rng(4)
+    sets = [set(rng.integers(0, 40, int(rng.integers(1, 30))).tolist()) for _ in range(300)]
+    sizes = np.array([len(s) for s in sets])
+    pairs = np.unique(np.sort(rng.integers(0, 300, size=(3000, 2)), axis=1), axis=0)
+    pairs = pairs[pairs[:, 0] != pairs[:, 1]]
+    pick = pairs[rng.integers(0, len(pairs), 8000)]  # pairs met in several rows
+    jac = np.array([len(sets[a] & sets[b]) / len(sets[a] | sets[b]) for a, b in pick])
+    rows = pl.DataFrame({"left_rep": pick[:, 0], "right_rep": pick[:, 1], "jaccard": jac,
+                         "bands_shared": rng.integers(1, 5, len(pick)).astype(np.int32)})
+    got = one_row_a_pair(rows, sizes_of=lambda a, b: (sizes[a], sizes[b])).sort("left_rep", "right_rep")
+    want = (rows.group_by("left_rep", "right_rep").agg(pl.col("jaccard").first(), pl.col("bands_shared").sum())
+            .select(rows.columns).sort("left_rep", "right_rep"))
+    assert got.height < rows.height  # pairs were repeated
+    assert got.equals(want)
+    assert got["jaccard"].to_list() == [len(sets[a] & sets[b]) / len(sets[a] | sets[b])
+                                        for a, b in got.select("left_rep", "right_rep").iter_rows()]
