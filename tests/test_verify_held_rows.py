@@ -155,14 +155,14 @@ def test_rows_deduplicated_by_packed_keys_keep_each_pairs_exact_jaccard_and_band
     intersection and union (Python sets)."""
     rng = np.random.default_rng(4)
     sets = [set(rng.integers(0, 40, int(rng.integers(1, 30))).tolist()) for _ in range(300)]
-    sizes = np.array([len(s) for s in sets])
+    offsets = np.concatenate([[0], np.cumsum([len(s) for s in sets])]).astype(np.int64)
     pairs = np.unique(np.sort(rng.integers(0, 300, size=(3000, 2)), axis=1), axis=0)
     pairs = pairs[pairs[:, 0] != pairs[:, 1]]
     pick = pairs[rng.integers(0, len(pairs), 8000)]  # pairs met in several rows
     jac = np.array([len(sets[a] & sets[b]) / len(sets[a] | sets[b]) for a, b in pick])
     rows = pl.DataFrame({"left_rep": pick[:, 0], "right_rep": pick[:, 1], "jaccard": jac,
                          "bands_shared": rng.integers(1, 5, len(pick)).astype(np.int32)})
-    got = one_row_a_pair(rows, sizes_of=lambda a, b: (sizes[a], sizes[b])).sort("left_rep", "right_rep")
+    got = one_row_a_pair(rows, held_sets=(offsets, 0, offsets, 0)).sort("left_rep", "right_rep")
     want = (rows.group_by("left_rep", "right_rep").agg(pl.col("jaccard").first(), pl.col("bands_shared").sum())
             .select(rows.columns).sort("left_rep", "right_rep"))
     assert got.height < rows.height  # pairs were repeated

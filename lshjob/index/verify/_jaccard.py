@@ -77,3 +77,27 @@ def jaccard_between(left_offsets, left_elements, left, right_offsets, right_elem
         jac = inter / (la + lb - inter)
         out[p] = jac if (inter >= need and jac >= threshold) else -1.0
     return out
+
+
+@numba.njit(parallel=True, cache=True)
+def intersections_of(left, right, jaccard, left_offsets, left_first, right_offsets, right_first):
+    """|A n B| of pairs given their exact Jaccard J = i / (|A| + |B| - i): i = J (|A| + |B|) / (1 + J),
+    rounded (entity ids ``left[p]`` from ``left_first`` in the first CSR's offsets, and so on)."""
+    out = np.empty(len(left), dtype=np.int64)
+    for p in numba.prange(len(left)):
+        a, b = left[p] - left_first, right[p] - right_first
+        total = (left_offsets[a + 1] - left_offsets[a]) + (right_offsets[b + 1] - right_offsets[b])
+        out[p] = int(np.rint(jaccard[p] * total / (1.0 + jaccard[p])))
+    return out
+
+
+@numba.njit(parallel=True, cache=True)
+def jaccard_from(left, right, inter, left_offsets, left_first, right_offsets, right_first):
+    """Jaccard of pairs from their intersections (as :func:`intersections_of` takes them): the
+    same division as the kernels, so the same float."""
+    out = np.empty(len(left), dtype=np.float64)
+    for p in numba.prange(len(left)):
+        a, b = left[p] - left_first, right[p] - right_first
+        total = (left_offsets[a + 1] - left_offsets[a]) + (right_offsets[b + 1] - right_offsets[b])
+        out[p] = inter[p] / (total - inter[p])
+    return out

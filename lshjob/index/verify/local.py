@@ -17,7 +17,7 @@ from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
 from lshjob.index._ranking import list_cuts, own_cuts
 from lshjob.index.verify._crowds import crowd_pairs_between, crowd_pieces
-from lshjob.index.verify._jaccard import exact_jaccard_between, jaccard_between
+from lshjob.index.verify._jaccard import exact_jaccard_between, intersections_of, jaccard_between, jaccard_from
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
 from lshjob.index.verify.estimates import add_estimates_between
 from lshjob.sign.signatures import SignatureParams
@@ -62,7 +62,7 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 floors = own_cuts(settings.group_sizes, settings.top_k)
             held = HeldRows(settings.held_rows, partial(
                 one_row_a_pair, jaccard_of=partial(_exact, left, store.ranges[i][0], right, store.ranges[j][0]),
-                sizes_of=partial(_sizes, left, store.ranges[i][0], right, store.ranges[j][0])), cut, floors)
+                held_sets=(left.offsets, store.ranges[i][0], right.offsets, store.ranges[j][0])), cut, floors)
             if files:
                 frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
                 for lo, hi in slice_bounds(_rows(files), step):
@@ -182,12 +182,13 @@ def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first:
     )
 
 
-def one_row_a_pair(verified: pl.DataFrame, jaccard_of=None, sizes_of=None) -> pl.DataFrame:
+def one_row_a_pair(verified: pl.DataFrame, jaccard_of=None, held_sets=None) -> pl.DataFrame:
     """Verified rows with one row per pair: a join that wrote a row per band a pair met in
     (:mod:`lshjob.index.join.base`) repeats the pair, with the same Jaccard; its
     ``bands_shared`` is the sum of its rows'. A pair lies in one block of parts, so a block's
-    rows hold all of a pair's. ``sizes_of(left, right)``: the set sizes of pairs, and
-    ``jaccard_of(left, right)``: their exact Jaccard, when the caller holds the sets. They let
+    rows hold all of a pair's. ``held_sets``: (left offsets, left first id, right offsets,
+    right first id) of the sets held (as in :func:`verify_between`), and ``jaccard_of(left,
+    right)``: the exact Jaccard of pairs, when the caller holds the sets. They let
     the rows be deduplicated by sorting 64-bit keys alone, a third of the time of ordering the
     rows: the pair, its intersection (from the Jaccard and the sizes, J = i / (|A| + |B| - i))
     and its rows' bands in one key while they fit 64 bits, the Jaccard then divided again from
@@ -198,8 +199,8 @@ def one_row_a_pair(verified: pl.DataFrame, jaccard_of=None, sizes_of=None) -> pl
     if len(left) < 2:
         return verified
     bands = verified["bands_shared"].to_numpy()
-    if sizes_of is not None and left.min() >= 0 and bands.min() >= 1:
-        packed = _one_row_packed(left, right, verified["jaccard"].to_numpy(), bands, sizes_of)
+    if held_sets is not None and left.min() >= 0 and bands.min() >= 1:
+        packed = _one_row_packed(left, right, verified["jaccard"].to_numpy(), bands, held_sets)
         if packed is not None:
             return verified if packed is True else packed.select(verified.columns)
     if jaccard_of is not None and right.max() < 2**26 and left.min() >= 0 and bands.min() >= 1 and bands.max() < 2**12:
@@ -243,11 +244,12 @@ def one_row_a_pair(verified: pl.DataFrame, jaccard_of=None, sizes_of=None) -> pl
             .select(verified.columns))
 
 
-def _one_row_packed(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, bands: np.ndarray, sizes_of):
+def _one_row_packed(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, bands: np.ndarray, held_sets):
     """:func:`one_row_a_pair` by one sort of (pair, intersection, bands) keys: the rows, True
     when every pair has one row, or None when the key does not fit 64 bits."""
-    la, lb = sizes_of(left, right)
-    inter = np.rint(jaccard * (la + lb) / (1.0 + jaccard)).astype(np.int64)
+    left = np.ascontiguousarray(left, dtype=np.int64)
+    right = np.ascontiguousarray(right, dtype=np.int64)
+    inter = intersections_of(left, right, np.ascontiguousarray(jaccard, dtype=np.float64), *held_sets)
     id_bits = int(max(left.max(), right.max())).bit_length()
     inter_bits, band_bits = max(int(inter.max()).bit_length(), 1), int(bands.max()).bit_length()
     if 2 * id_bits + inter_bits + band_bits > 64:
@@ -266,16 +268,8 @@ def _one_row_packed(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, ba
     pair >>= np.uint64(inter_bits)
     left = (pair >> np.uint64(id_bits)).astype(np.int64)
     right = (pair & np.uint64((1 << id_bits) - 1)).astype(np.int64)
-    la, lb = sizes_of(left, right)
-    return pl.DataFrame({"left_rep": left, "right_rep": right, "jaccard": inter / (la + lb - inter),
+    return pl.DataFrame({"left_rep": left, "right_rep": right, "jaccard": jaccard_from(left, right, inter, *held_sets),
                          "bands_shared": counts})
-
-
-def _sizes(left_sets: ElementSets, left_first: int, right_sets: ElementSets, right_first: int,
-           left: np.ndarray, right: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The set sizes of pairs of entity ids, the sets held as in :func:`verify_between`."""
-    return (left_sets.offsets[left - left_first + 1] - left_sets.offsets[left - left_first],
-            right_sets.offsets[right - right_first + 1] - right_sets.offsets[right - right_first])
 
 
 def _exact(left_sets: ElementSets, left_first: int, right_sets: ElementSets, right_first: int,
