@@ -15,6 +15,24 @@ import polars as pl
 CACHE = Path(__file__).parent / "cache"
 
 
+# Runs ``python -m lshjob ...`` from another checkout (argv[1]): an editable install's import
+# hook comes before sys.path, so PYTHONPATH alone would still import the installed tree.
+FROM_TREE = """
+import runpy, sys
+tree = sys.argv.pop(1)
+sys.meta_path[:] = [f for f in sys.meta_path if "editable" not in repr(f).lower()]
+sys.path.insert(0, tree)
+runpy.run_module("lshjob", run_name="__main__", alter_sys=True)
+"""
+
+
+def lshjob_command(tree: Path | None = None) -> list[str]:
+    """The command that runs lshjob: this environment's, or ``tree``'s (an older checkout)."""
+    import sys
+
+    return [sys.executable, "-m", "lshjob"] if tree is None else [sys.executable, "-c", FROM_TREE, str(tree)]
+
+
 def machine() -> str:
     mem_gb = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
     return (

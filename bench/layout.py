@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import subprocess
 import sys
 import tempfile
@@ -24,21 +23,16 @@ from pathlib import Path
 import polars as pl
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import branch_network_events, finish, machine  # noqa: E402
+from common import branch_network_events, finish, lshjob_command, machine  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
 
 
-def _module(tree: Path) -> str:
-    return "lshjob.cli.app" if (tree / "lshjob" / "cli" / "app.py").exists() else "lshjob.cli"
-
-
 def _run(tree: Path, events: Path, out: Path, threshold: float) -> tuple[float, dict]:
-    env = {**os.environ, "PYTHONPATH": str(tree)}
-    cmd = [sys.executable, "-m", _module(tree), "run", str(events), "--entity", "entity", "--element", "element",
+    cmd = [*lshjob_command(tree), "run", str(events), "--entity", "entity", "--element", "element",
            "--threshold", str(threshold), "--out", str(out), "--json", "--quiet"]
     start = time.perf_counter()
-    done = subprocess.run(cmd, env=env, cwd=out.parent, capture_output=True, text=True)
+    done = subprocess.run(cmd, cwd=out.parent, capture_output=True, text=True)
     wall = time.perf_counter() - start
     if done.returncode:
         raise SystemExit(f"{tree}: exit {done.returncode}: {done.stderr[-2000:]}")

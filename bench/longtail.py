@@ -21,7 +21,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import resource
 import subprocess
 import sys
@@ -33,7 +32,7 @@ import numpy as np
 import polars as pl
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import finish, machine, zipf_events  # noqa: E402
+from common import finish, lshjob_command, machine, zipf_events  # noqa: E402
 
 THRESHOLD, TOP_K, PERMS = 0.5, 50, 128
 
@@ -88,11 +87,10 @@ def _process(cmd: list[str], cwd: Path, timeout: float | None = None, env: dict 
 
 
 def _lshjob(events: Path, out: Path, tree: Path | None = None) -> tuple[float, dict]:
-    """One run; ``tree``: an older checkout to run instead (put first on PYTHONPATH)."""
-    env = None if tree is None else {**os.environ, "PYTHONPATH": str(tree)}
-    wall, stdout = _process([sys.executable, "-m", "lshjob", "run", str(events), "--entity", "entity",
+    """One run; ``tree``: an older checkout to run instead (:func:`common.lshjob_command`)."""
+    wall, stdout = _process([*lshjob_command(tree), "run", str(events), "--entity", "entity",
                              "--element", "element", "--threshold", str(THRESHOLD), "--top-k", str(TOP_K),
-                             "--out", str(out), "--json", "--quiet"], out.parent, env=env)
+                             "--out", str(out), "--json", "--quiet"], out.parent)
     return wall, json.loads(stdout)
 
 
