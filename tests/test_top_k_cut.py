@@ -79,16 +79,23 @@ def _cut_rule(left, right, jaccard, sizes, top_k, cutoffs=None):
     return keep
 
 
-def test_the_pairs_kept_publish_the_same_index_as_all_pairs():
-    rng = np.random.default_rng(11)
-    n, top_k = 400, 4
+def _random_pairs(seed: int, n: int, draws: int, top_value: int):
+    """Groups of identical sets over n entities, pairs of their representatives drawn at
+    random, each pair once, with Jaccard of few values (ties at the cut): (rep_of, left, right,
+    jaccard, group sizes)."""
+    rng = np.random.default_rng(seed)
     rep_of = _groups(rng, n)
     reps = np.unique(rep_of)
-    a, b = rng.choice(reps, 6000), rng.choice(reps, 6000)
+    a, b = rng.choice(reps, draws), rng.choice(reps, draws)
     key = np.unique(np.minimum(a, b)[a != b] * n + np.maximum(a, b)[a != b])
     left, right = key // n, key % n
-    jaccard = rng.integers(5, 10, len(left)) / 10.0  # few values: ties at the cut
-    sizes = np.bincount(rep_of, minlength=n)
+    jaccard = rng.integers(5, top_value, len(left)) / 10.0
+    return rep_of, left, right, jaccard, np.bincount(rep_of, minlength=n)
+
+
+def test_the_pairs_kept_publish_the_same_index_as_all_pairs():
+    n, top_k = 400, 4
+    rep_of, left, right, jaccard, sizes = _random_pairs(11, n, 6000, 10)
     keep = pairs_in_lists(left, right, jaccard, sizes, top_k)
     assert 0 < keep.sum() < len(keep) // 2  # the cut leaves out most pairs here
     assert keep.tolist() == _cut_rule(left, right, jaccard, sizes, top_k)
@@ -170,15 +177,9 @@ def test_each_sides_cut_is_the_value_its_list_fills_at_and_a_floor_for_more_pair
     """list_cuts' cuts against the Python rule (_cut_rule), and the floor they give: the
     cuts of some of the pairs are at most those of all of them, and a pair below both its
     sides' cuts from some pairs is not kept with all of them."""
+    top_k = 3
+    rep_of, left, right, jaccard, sizes = _random_pairs(5, 300, 5000, 11)
     rng = np.random.default_rng(5)
-    n, top_k = 300, 3
-    rep_of = _groups(rng, n)
-    reps = np.unique(rep_of)
-    a, b = rng.choice(reps, 5000), rng.choice(reps, 5000)
-    key = np.unique(np.minimum(a, b)[a != b] * n + np.maximum(a, b)[a != b])
-    left, right = key // n, key % n
-    jaccard = rng.integers(5, 11, len(left)) / 10.0
-    sizes = np.bincount(rep_of, minlength=n)
     want = {}
     keep_want = _cut_rule(left, right, jaccard, sizes, top_k, want)
     keep, cuts = list_cuts(left, right, jaccard, sizes, top_k)
