@@ -32,17 +32,25 @@ def _append(out, held, limit, count, firsts, given, side, j, bands, head_id, est
     return held
 
 
-@numba.njit(cache=True)
-def _sides(left, right, jaccard, estimate, bands_shared, groups, starts, other, value, estimates, side_bands):
-    """Each pair under both its sides, laid out by side (a counting sort): side g's pairs at
-    ``starts[g]:starts[g + 1]`` of ``other`` (its other side), ``value`` (its Jaccard),
-    ``estimates`` and ``side_bands``, so a list reads its pairs in one run."""
+@numba.njit(inline="always")
+def _side_starts(left, right, groups, starts):
+    """A counting sort's first pass over pairs under both their sides: side g's slots begin at
+    ``starts[g]`` (filled in; zeros given, ``groups + 1`` of them); returns a copy of the
+    starts, the next free slot of each side."""
     for p in range(len(left)):
         starts[left[p] + 1] += 1
         starts[right[p] + 1] += 1
     for g in range(groups):
         starts[g + 1] += starts[g]
-    fill = starts[:-1].copy()
+    return starts[:-1].copy()
+
+
+@numba.njit(cache=True)
+def _sides(left, right, jaccard, estimate, bands_shared, groups, starts, other, value, estimates, side_bands):
+    """Each pair under both its sides, laid out by side (a counting sort): side g's pairs at
+    ``starts[g]:starts[g + 1]`` of ``other`` (its other side), ``value`` (its Jaccard),
+    ``estimates`` and ``side_bands``, so a list reads its pairs in one run."""
+    fill = _side_starts(left, right, groups, starts)
     for p in range(len(left)):
         a, b = left[p], right[p]
         j, e, s = jaccard[p], estimate[p], bands_shared[p]
@@ -208,12 +216,7 @@ def _by_side(left, right, groups):
     """Each pair under both its sides (a counting sort): (starts, pair) with the pairs of
     side g at ``pair[starts[g]:starts[g + 1]]``."""
     starts = np.zeros(groups + 1, dtype=np.int64)
-    for p in range(len(left)):
-        starts[left[p] + 1] += 1
-        starts[right[p] + 1] += 1
-    for g in range(groups):
-        starts[g + 1] += starts[g]
-    fill = starts[:-1].copy()
+    fill = _side_starts(left, right, groups, starts)
     pair = np.empty(2 * len(left), dtype=np.int64)
     for p in range(len(left)):
         pair[fill[left[p]]] = p
