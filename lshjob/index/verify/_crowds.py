@@ -135,10 +135,11 @@ def _prefix_index(offsets, elements, first, mem, threshold):
 
 
 @numba.njit(inline="always")
-def _keep(offsets, elements, first, mem, x, y, la, lb, need, threshold, crowd_at, in_bands, row_of, band, out,
+def _keep(local, local_off, common, first, mem, x, y, la, lb, need, threshold, crowd_at, in_bands, row_of, band, out,
           out_left, out_right, out_jac, out_bands):
-    """Intersect members x and y (sizes la >= lb); write the pair at ``out`` when it reaches
-    the threshold (the filters of :func:`_crowd_pairs`); the next free slot. With the crowds'
+    """Intersect members x and y (sizes la >= lb): |C| plus the intersection of what they do
+    not all share (``local``, the crowd's ranks: small, in cache); write the pair at ``out``
+    when it reaches the threshold (the filters of :func:`_crowd_pairs`); the next free slot. With the crowds'
     bands (``crowd_at``: each member's crowd a band, 0 for none; ``row_of``: its row; ``band``:
     this crowd's), a pair sharing a crowd of an earlier band is left to it, and a pair written
     gets the number of crowds it shares as its ``out_bands``."""
@@ -152,9 +153,8 @@ def _keep(offsets, elements, first, mem, x, y, la, lb, need, threshold, crowd_at
                 if (both >> np.uint64(b & 63)) & np.uint64(1) and crowd_at[rx, b] == crowd_at[ry, b] \
                         and crowd_at[rx, b] != 0:
                     return out
-    a0, a1 = offsets[mem[x] - first], offsets[mem[x] - first + 1]
-    b0, b1 = offsets[mem[y] - first], offsets[mem[y] - first + 1]
-    inter = _intersection(elements, b0, b1, elements, a0, a1, need)
+    inter = common + _intersection(local, local_off[y], local_off[y + 1], local, local_off[x], local_off[x + 1],
+                                   need - common)
     value = inter / (lb + la - inter)
     if inter >= need and value >= threshold:
         out_left[out] = min(mem[x], mem[y])
@@ -220,8 +220,9 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                     break  # later partners are at least as large
                 sought = min(at[x], at[y])
                 if size[y] >= sought * la - 1e-9:
-                    out = _keep(offsets, elements, first, mem, x, y, la, size[y], _need(la, size[y], sought), sought,
-                                crowd_at, in_bands, row_of, bands[c], out, out_left, out_right, out_jac, out_bands)
+                    out = _keep(local, local_off, common, first, mem, x, y, la, size[y], _need(la, size[y], sought),
+                                sought, crowd_at, in_bands, row_of, bands[c], out, out_left, out_right, out_jac,
+                                out_bands)
             low = first_at_least(size, 0, x, lowest * la - 1e-9)  # the size filter, sizes ascending
             for q in range(local_off[x], local_off[x] + prefix[x]):
                 r = local[q]
@@ -236,9 +237,9 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                     if need > common:  # (the others were intersected above)
                         sought = min(at[x], at[y])
                         if size[y] >= sought * la - 1e-9:
-                            out = _keep(offsets, elements, first, mem, x, y, la, size[y], _need(la, size[y], sought),
-                                        sought, crowd_at, in_bands, row_of, bands[c], out, out_left, out_right, out_jac,
-                                        out_bands)
+                            out = _keep(local, local_off, common, first, mem, x, y, la, size[y],
+                                        _need(la, size[y], sought), sought, crowd_at, in_bands, row_of, bands[c],
+                                        out, out_left, out_right, out_jac, out_bands)
         found[c] = out - base[c]
 
 
