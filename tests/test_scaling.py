@@ -5,6 +5,7 @@ count at full size, fixed seconds kept out of the scaling, and lshjob plan scali
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import numpy as np
 import polars as pl
@@ -272,3 +273,77 @@ def test_memory_grows_from_the_larger_run_at_most_a_word_a_word():
     gentle_big = dict(steep) | {"verify": 300e6 + 2.0 * (d1 - d0)}  # 2 bytes a word
     out = scale_memory(cost.shipped_model(), [(small, steep, memory), (big, gentle_big, memory)], target, memory)
     assert out["verify"] == pytest.approx(gentle_big["verify"] + 2.0 * grow)
+
+
+HELD_PROBE = """
+import sys
+from functools import partial
+import numpy as np, polars as pl
+from lshjob.index.verify.local import HeldRows, one_row_a_pair
+
+def status(field):
+    with open("/proc/self/status") as fh:
+        return next(int(line.split()[1]) * 1024 for line in fh if line.startswith(field + ":"))
+
+rows, pairs, ids = 2_000_000, 1_500_000, 200_000
+rng = np.random.default_rng(0)
+with open("/proc/self/clear_refs", "w") as fh:
+    fh.write("5")
+start = status("VmRSS")
+held = HeldRows(None, partial(one_row_a_pair, jaccard_of=lambda left, right: np.full(len(left), 0.5)))
+for lo in range(0, rows, 250_000):  # pieces as verification adds them, pairs repeating
+    p = rng.integers(0, pairs, 250_000)
+    held.add(pl.DataFrame({"left_rep": p % ids, "right_rep": ids + p // ids, "jaccard": np.full(len(p), 0.6),
+                           "bands_shared": np.ones(len(p), dtype=np.int32)}))
+held.result()
+print((status("VmHWM") - start) / rows)
+"""
+
+
+@pytest.mark.skipif(not Path("/proc/self/clear_refs").exists(), reason="needs Linux's resident-memory high-water mark")
+def test_verification_holds_about_the_words_the_memory_rule_counts_a_verified_row():
+    # Oracle: the kernel's resident-memory high-water mark (VmHWM, reset through clear_refs) of a
+    # fresh process holding 2M verified rows as verification adds them and deduplicating them
+    # (lshjob.index.verify.local.HeldRows: the peak of verification at full size). The rule
+    # counts HELD_ROW_WORDS 8-byte words a row; measured 86-104 bytes at 1M-8M rows on the
+    # development machine, 108 in the 1M long-tailed run.
+    import subprocess
+    import sys
+
+    from lshjob.plan.scaling import HELD_ROW_WORDS, WORD_BYTES
+
+    done = subprocess.run([sys.executable, "-c", HELD_PROBE], capture_output=True, text=True, check=True)
+    per_row = float(done.stdout.split()[-1])
+    assert 0.6 <= per_row / (WORD_BYTES * HELD_ROW_WORDS) <= 1.4, per_row
+
+
+def test_rows_held_stay_within_the_steps_the_memory_rule_bounds_them_by():
+    # Oracle: the rows lshjob.index.verify.local.HeldRows holds when it deduplicates (counted
+    # on the class itself, pieces added as verification adds them), against the rule's bound
+    # (HELD_STEPS of the budget's step) once the top-k cut keeps fewer rows than a step; and a
+    # rule that keeps its driver below it, whatever the verified pairs.
+    from lshjob.index.verify.local import HeldRows, one_row_a_pair
+    from lshjob.plan.scaling import HELD_ROW_WORDS, HELD_STEPS, MEMORY_DRIVERS
+    from lshjob.runtime.budget import Budget
+
+    step, piece, most = 50_000, 5_000, 0
+    rng = np.random.default_rng(3)
+
+    def dedup(rows):
+        nonlocal most
+        most = max(most, rows.height)
+        return one_row_a_pair(rows)
+
+    held = HeldRows(step, dedup, cut=lambda rows: rows.sort("jaccard", descending=True).head(step // 2))
+    for _ in range(200):  # 1M rows, pairs repeating
+        p = rng.integers(0, 400_000, piece)
+        held.add(pl.DataFrame({"left_rep": p % 1000, "right_rep": 1000 + p // 1000, "jaccard": rng.random(piece),
+                               "bands_shared": np.ones(piece, dtype=np.int32)}))
+    held.result()
+    assert step + piece < most <= HELD_STEPS * step + piece, most  # above one step: one step would not do
+    memory = 8 * 2**30
+    bound = HELD_STEPS * Budget(memory).verify_held_rows()
+    big = Workload(events=1e9, entities=1e8, membership_rows=1e9, representatives=1e8, perms=256, bands=40,
+                   scheme="kperm", candidate_pairs=1e11, verified_pairs=10 * bound, published_rows=1e9)
+    assert MEMORY_DRIVERS["verify"](big, memory) == pytest.approx(1e9 + HELD_ROW_WORDS * bound)
+    assert MEMORY_DRIVERS["verify"](big, None) == pytest.approx(1e9 + HELD_ROW_WORDS * 10 * bound)

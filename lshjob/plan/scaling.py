@@ -33,7 +33,10 @@ with one run, the cost model's constant, at most half the run's seconds. The rat
 largest run's own: a run measured now, on this machine, under its present load. CPU seconds
 (a manifest's ``cpu_seconds``) scale the same way. Peak memory (:func:`scale_memory`): the
 largest run's own peak, grown by the slope of the line through the runs against
-:data:`MEMORY_DRIVERS`, at most a word a word of the driver.
+:data:`MEMORY_DRIVERS`, at most a word a word of the driver. Verification's peak grows with the
+verified rows it holds and deduplicates (:data:`HELD_ROW_WORDS` a pair, at most
+:data:`HELD_STEPS` of the budget's step), not with the candidates: those are read a slice of
+the budget at a time, the crowds' pairs made a chunk at a time.
 """
 
 from __future__ import annotations
@@ -99,19 +102,46 @@ def _signed(w: Workload, slice_rows: float | None) -> float:
     return min(w.representatives, slice_rows or w.representatives) * _positions(w)
 
 
-# what each stage's peak resident memory grows with, in 8-byte words: the sets it holds, and
-# its own tables (signing and banding a slice of representatives at a time; verification its
-# candidates, publishing the pairs it keeps)
+# verification's peak: deduplicating the verified rows a block holds (lshjob.index.verify.local.HeldRows)
+# at its end. Words a row then: the row (left, right, jaccard, bands: 3.5), its copy when the rows
+# are concatenated (3.5), the pair-and-bands key and the pair key (2), the rows kept, one a pair,
+# with their Jaccard taken again (4.5): about 13.5; 108 bytes a held row measured at 1M long-tailed
+# entities (21.0M rows held, 15.8M distinct pairs; bench/RESULTS.md, the forecast section)
+HELD_ROW_WORDS = 14
+# rows held at most: the deduplication runs when the rows added pass the budget's step
+# (Budget.verify_held_rows) and the rows it kept; the top-k cut then keeps what the lists can
+# take. Held: the kept rows and up to as many again, a step when the kept rows are fewer
+HELD_STEPS = 2
+
+
+def _held(w: Workload, memory: float | None) -> float:
+    """Verified rows a block holds when it deduplicates them: a row a verified pair (more when a
+    pair repeats, a row per band it met in: 1.33 rows a pair at 1M long-tailed entities), at
+    most ``HELD_STEPS`` of the budget's step (``memory`` None: no bound)."""
+    if memory is None:
+        return w.verified_pairs
+    return min(w.verified_pairs, HELD_STEPS * float(Budget(int(memory)).verify_held_rows()))
+
+
+# what each stage's peak resident memory grows with, in 8-byte words, given the run's memory
+# budget (None: unbounded): the sets it holds, and its own tables (signing and banding a slice
+# of representatives at a time; verification the verified rows it holds, the candidates being
+# read a slice at a time and the crowds' pairs made a chunk at a time; publishing the pairs it
+# keeps)
 MEMORY_DRIVERS = {
-    "ingest": lambda w, rows: w.events,
-    "collapse": lambda w, rows: w.membership_rows,
-    "plan": lambda w, rows: w.membership_rows,
-    "sign": lambda w, rows: w.membership_rows + _signed(w, rows),
-    "band": lambda w, rows: w.membership_rows + w.bucket_rows + _signed(w, rows),
-    "join": lambda w, rows: w.membership_rows + w.bucket_rows,
-    "verify": lambda w, rows: w.membership_rows + w.candidate_pairs,
-    "publish": lambda w, rows: w.membership_rows + 4 * w.verified_pairs + 4 * w.published_rows,
+    "ingest": lambda w, memory: w.events,
+    "collapse": lambda w, memory: w.membership_rows,
+    "plan": lambda w, memory: w.membership_rows,
+    "sign": lambda w, memory: w.membership_rows + _signed(w, _slice(w, memory)),
+    "band": lambda w, memory: w.membership_rows + w.bucket_rows + _signed(w, _slice(w, memory)),
+    "join": lambda w, memory: w.membership_rows + w.bucket_rows,
+    "verify": lambda w, memory: w.membership_rows + HELD_ROW_WORDS * _held(w, memory),
+    "publish": lambda w, memory: w.membership_rows + 4 * w.verified_pairs + 4 * w.published_rows,
 }
+
+
+def _slice(w: Workload, memory: float | None) -> float | None:
+    return None if memory is None else slice_rows_of(w, memory)
 
 
 @dataclass(frozen=True)
@@ -287,11 +317,9 @@ def scale_memory(model: CostModel, runs: list[tuple[Workload, dict, float]], tar
     not with its tables: a slope steeper than a word a word would be scaled 10-60 times over.
     Each run with its memory budget, ``memory`` the target's: they bound the representatives
     signed and banded at a time."""
-    slice_rows = slice_rows_of(target, memory)
     out = {}
     for stage in STAGES:
-        measured = [(MEMORY_DRIVERS[stage](w, slice_rows_of(w, b)), float(m[stage])) for w, m, b in runs
-                    if m.get(stage)]
+        measured = [(MEMORY_DRIVERS[stage](w, b), float(m[stage])) for w, m, b in runs if m.get(stage)]
         if not measured:
             out[stage] = model.stage_memory(target)[stage]
             continue
@@ -301,7 +329,7 @@ def scale_memory(model: CostModel, runs: list[tuple[Workload, dict, float]], tar
         else:
             slope = (t1 - min(max(model.memory[stage].constant, 0.0), t1)) / d1 if d1 > 0 else 0.0
         slope = min(max(slope, 0.0), WORD_BYTES)
-        out[stage] = t1 + slope * max(MEMORY_DRIVERS[stage](target, slice_rows) - d1, 0.0)
+        out[stage] = t1 + slope * max(MEMORY_DRIVERS[stage](target, memory) - d1, 0.0)
     return out
 
 
