@@ -255,7 +255,7 @@ def test_memory_grows_from_the_larger_run_at_most_a_word_a_word():
     # two small runs (the process's own buffers) grows beyond the larger run by at most 8 bytes
     # a driver word; one growing gently follows the line through the runs from the larger run's
     # peak; none is forecast below the larger run's own peak.
-    from lshjob.plan.scaling import MEMORY_DRIVERS, WORD_BYTES, scale_memory
+    from lshjob.plan.peak_memory import MEMORY_DRIVERS, WORD_BYTES, scale_memory
 
     def load(n):
         return Workload(events=40 * n, entities=n, membership_rows=40 * n, representatives=n, perms=64, bands=16,
@@ -310,7 +310,7 @@ def test_verification_holds_about_the_words_the_memory_rule_counts_a_verified_ro
     import subprocess
     import sys
 
-    from lshjob.plan.scaling import HELD_ROW_WORDS, WORD_BYTES
+    from lshjob.plan.peak_memory import HELD_ROW_WORDS, WORD_BYTES
 
     done = subprocess.run([sys.executable, "-c", HELD_PROBE], capture_output=True, text=True, check=True)
     per_row = float(done.stdout.split()[-1])
@@ -323,7 +323,7 @@ def test_rows_held_stay_within_the_steps_the_memory_rule_bounds_them_by():
     # (HELD_STEPS of the budget's step) once the top-k cut keeps fewer rows than a step; and a
     # rule that keeps its driver below it, whatever the verified pairs.
     from lshjob.index.verify.local import HeldRows, one_row_a_pair
-    from lshjob.plan.scaling import HELD_ROW_WORDS, HELD_STEPS, MEMORY_DRIVERS
+    from lshjob.plan.peak_memory import HELD_ROW_WORDS, HELD_STEPS, MEMORY_DRIVERS
     from lshjob.runtime.budget import Budget
 
     step, piece, most = 50_000, 5_000, 0
@@ -347,3 +347,35 @@ def test_rows_held_stay_within_the_steps_the_memory_rule_bounds_them_by():
                    scheme="kperm", candidate_pairs=1e11, verified_pairs=10 * bound, published_rows=1e9)
     assert MEMORY_DRIVERS["verify"](big, memory) == pytest.approx(1e9 + HELD_ROW_WORDS * bound)
     assert MEMORY_DRIVERS["verify"](big, None) == pytest.approx(1e9 + HELD_ROW_WORDS * 10 * bound)
+
+
+def test_the_crowds_share_of_the_sample_is_the_joins(tmp_path):
+    # Oracle: the DuckDB join of the same sample's bucket rows, writing a row per band and
+    # listing buckets of 3-8 members or more as crowds (lshjob.index.join.duckdb): the pairs its
+    # CROWDS file stands for (every pair of a crowd, by itertools in the conformance checks)
+    # over all the pairs it counts, against the share SampleProfile.crowd_share finds.
+    from lshjob.index._crowd_checks import crowd_rows
+    from lshjob.index.band.local import bucket_keys_by_position, write_shared_bucket_rows
+    from lshjob.index.collapse import collapse_identical
+    from lshjob.index.engines import get_engine
+    from lshjob.index.join import JoinSettings
+    from lshjob.sign.signatures import SignatureParams, comparable_by_position
+
+    frame = _repeating_sets(4000, 8)
+    events = tmp_path / "events.parquet"
+    frame.write_parquet(events)
+    sets, _ = load_membership(events, SPEC)
+    profile = sample_profile(sets, 64, 16, 4)
+    _, reps = collapse_identical(sets)
+    params = SignatureParams(scheme=default_of("scheme"), perms=64, seed=default_of("seed"))
+    keys = bucket_keys_by_position(comparable_by_position(sets, reps, params, 64), reps, 16, 4)
+    band = write_shared_bucket_rows(keys, 16, tmp_path / "buckets")
+    for size in (3, 4, 5, 6, 8):
+        settings = JoinSettings(memory_limit="512MB", temp_directory=str(tmp_path / "spill"), threads=2,
+                                max_bucket=10**6, dedupe_up_to=0, max_repeat=1e9, crowd_size=size)
+        out = get_engine("join", "duckdb").candidates(band.files, 16, tmp_path / f"candidates-{size}.parquet",
+                                                      settings, bucket_rows=band.rows_total)
+        crowded = len(crowd_rows(out.crowds))
+        assert 0 < crowded < out.pairs, (size, crowded, out.pairs)
+        assert profile.crowd_share(size, 10**6) == pytest.approx(crowded / out.pairs, rel=1e-9), size
+    assert profile.crowd_share(10**5, 10**6) == 0.0
