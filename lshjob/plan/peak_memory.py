@@ -6,7 +6,9 @@ Verification's peak at full size is the deduplication of the verified rows a blo
 (:class:`lshjob.index.verify.local.HeldRows`): it grows with the verified pairs
 (:data:`HELD_ROW_WORDS` words a pair), up to what the memory budget lets a block hold
 (:data:`HELD_STEPS` of its step), not with the candidates: they are read a slice of the budget
-at a time, and the crowds' pairs made a chunk at a time.
+at a time, and the crowds' pairs made a chunk at a time. After it, the estimates hold a
+signature of each set in a pair kept (at most the budget's share): the larger of the two
+phases counts.
 """
 
 from __future__ import annotations
@@ -55,6 +57,22 @@ def _held(w: Workload, memory: float | None) -> float:
     return min(w.verified_pairs, HELD_STEPS * float(Budget(int(memory)).verify_held_rows()))
 
 
+def _estimated(w: Workload, memory: float | None) -> float:
+    """Signature positions verification holds for the estimates after it (a set's k positions
+    for each set in a verified pair, at most two per verified pair and every representative;
+    two blocks of the budget's share at a time: lshjob.index.verify.estimates)."""
+    sets = min(w.representatives, 2.0 * w.verified_pairs)
+    if memory is not None:
+        sets = min(sets, Budget(int(memory)).estimate_bytes() / (WORD_BYTES * max(w.perms, 1)))
+    return sets * w.perms
+
+
+def _verify(w: Workload, memory: float | None) -> float:
+    """Verification: the sets it holds, and the larger of its two phases' tables: the verified
+    rows it deduplicates, then the signatures of the estimates."""
+    return w.membership_rows + max(HELD_ROW_WORDS * _held(w, memory), _estimated(w, memory))
+
+
 # what each stage's peak resident memory grows with, in 8-byte words, given the run's memory
 # budget (None: unbounded): the sets it holds, and its own tables (signing and banding a slice
 # of representatives at a time; verification the verified rows it holds, the candidates being
@@ -67,7 +85,7 @@ MEMORY_DRIVERS = {
     "sign": lambda w, memory: w.membership_rows + _signed(w, _slice(w, memory)),
     "band": lambda w, memory: w.membership_rows + w.bucket_rows + _signed(w, _slice(w, memory)),
     "join": lambda w, memory: w.membership_rows + w.bucket_rows,
-    "verify": lambda w, memory: w.membership_rows + HELD_ROW_WORDS * _held(w, memory),
+    "verify": _verify,
     "publish": lambda w, memory: w.membership_rows + 4 * w.verified_pairs + 4 * w.published_rows,
 }
 
