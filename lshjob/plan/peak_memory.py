@@ -40,7 +40,7 @@ def _signed(w: Workload, slice_rows: float | None) -> float:
 # at its end. Words a row then: the row (left, right, jaccard, bands: 3.5), its copy when the rows
 # are concatenated (3.5), the pair-and-bands key and the pair key (2), the rows kept, one a pair,
 # with their Jaccard taken again (4.5): about 13.5; 108 bytes a held row measured at 1M long-tailed
-# entities (21.0M rows held, 15.8M distinct pairs; bench/RESULTS.md, the forecast section)
+# entities (21.0M rows held, 15.8M distinct pairs; bench/RESULTS.md, "verification's peak and crowds")
 HELD_ROW_WORDS = 14
 # rows held at most: the deduplication runs when the rows added pass the budget's step
 # (Budget.verify_held_rows) and the rows it kept; the top-k cut then keeps what the lists can
@@ -60,7 +60,7 @@ def _held(w: Workload, memory: float | None) -> float:
 def _estimated(w: Workload, memory: float | None) -> float:
     """Signature positions verification holds for the estimates after it (a set's k positions
     for each set in a verified pair, at most two per verified pair and every representative;
-    two blocks of the budget's share at a time: lshjob.index.verify.estimates)."""
+    at most the budget's share, two blocks of sets at a time: lshjob.index.verify.estimates)."""
     sets = min(w.representatives, 2.0 * w.verified_pairs)
     if memory is not None:
         sets = min(sets, Budget(int(memory)).estimate_bytes() / (WORD_BYTES * max(w.perms, 1)))
@@ -104,7 +104,7 @@ def scale_memory(model: CostModel, runs: list[tuple[Workload, dict, float]], tar
     of a few ten thousand entities a stage's peak grows mostly with the process's own buffers,
     not with its tables: a slope steeper than a word a word would be scaled 10-60 times over.
     Each run with its memory budget, ``memory`` the target's: they bound the representatives
-    signed and banded at a time."""
+    signed and banded at a time, and verification's held rows and estimates."""
     out = {}
     for stage in STAGES:
         measured = [(MEMORY_DRIVERS[stage](w, b), float(m[stage])) for w, m, b in runs if m.get(stage)]
