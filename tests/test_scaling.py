@@ -5,6 +5,7 @@ count at full size, fixed seconds kept out of the scaling, and lshjob plan scali
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import numpy as np
 import polars as pl
@@ -254,7 +255,7 @@ def test_memory_grows_from_the_larger_run_at_most_a_word_a_word():
     # two small runs (the process's own buffers) grows beyond the larger run by at most 8 bytes
     # a driver word; one growing gently follows the line through the runs from the larger run's
     # peak; none is forecast below the larger run's own peak.
-    from lshjob.plan.scaling import MEMORY_DRIVERS, WORD_BYTES, scale_memory
+    from lshjob.plan.peak_memory import MEMORY_DRIVERS, WORD_BYTES, scale_memory
 
     def load(n):
         return Workload(events=40 * n, entities=n, membership_rows=40 * n, representatives=n, perms=64, bands=16,
@@ -272,3 +273,164 @@ def test_memory_grows_from_the_larger_run_at_most_a_word_a_word():
     gentle_big = dict(steep) | {"verify": 300e6 + 2.0 * (d1 - d0)}  # 2 bytes a word
     out = scale_memory(cost.shipped_model(), [(small, steep, memory), (big, gentle_big, memory)], target, memory)
     assert out["verify"] == pytest.approx(gentle_big["verify"] + 2.0 * grow)
+
+
+HELD_PROBE = """
+import sys
+from functools import partial
+import numpy as np, polars as pl
+from lshjob.index.verify.local import HeldRows, one_row_a_pair
+
+def status(field):
+    with open("/proc/self/status") as fh:
+        return next(int(line.split()[1]) * 1024 for line in fh if line.startswith(field + ":"))
+
+rows, pairs, ids = 2_000_000, 1_500_000, 200_000
+rng = np.random.default_rng(0)
+with open("/proc/self/clear_refs", "w") as fh:
+    fh.write("5")
+start = status("VmRSS")
+held = HeldRows(None, partial(one_row_a_pair, jaccard_of=lambda left, right: np.full(len(left), 0.5)))
+for lo in range(0, rows, 250_000):  # pieces as verification adds them, pairs repeating
+    p = rng.integers(0, pairs, 250_000)
+    held.add(pl.DataFrame({"left_rep": p % ids, "right_rep": ids + p // ids, "jaccard": np.full(len(p), 0.6),
+                           "bands_shared": np.ones(len(p), dtype=np.int32)}))
+held.result()
+print((status("VmHWM") - start) / rows)
+"""
+
+
+@pytest.mark.skipif(not Path("/proc/self/clear_refs").exists(), reason="needs Linux's resident-memory high-water mark")
+def test_verification_holds_about_the_words_the_memory_rule_counts_a_verified_row():
+    # Oracle: the kernel's resident-memory high-water mark (VmHWM, reset through clear_refs) of a
+    # fresh process holding 2M verified rows as verification adds them and deduplicating them
+    # (lshjob.index.verify.local.HeldRows: the peak of verification at full size). The rule
+    # counts HELD_ROW_WORDS 8-byte words a row; measured 86-104 bytes at 1M-8M rows on the
+    # development machine, 108 in the 1M long-tailed run.
+    import subprocess
+    import sys
+
+    from lshjob.plan.peak_memory import HELD_ROW_WORDS, WORD_BYTES
+
+    done = subprocess.run([sys.executable, "-c", HELD_PROBE], capture_output=True, text=True, check=True)
+    per_row = float(done.stdout.split()[-1])
+    assert 0.6 <= per_row / (WORD_BYTES * HELD_ROW_WORDS) <= 1.4, per_row
+
+
+ESTIMATE_PROBE = """
+import sys
+import numpy as np, polars as pl
+from lshjob.core.sets import ElementSets
+from lshjob.index.verify.estimates import add_estimates_between
+from lshjob.jobs.options import default_of
+from lshjob.sign.signatures import SignatureParams
+
+def status(field):
+    with open("/proc/self/status") as fh:
+        return next(int(line.split()[1]) * 1024 for line in fh if line.startswith(field + ":"))
+
+n, perms, bound = 40_000, 256, int(sys.argv[1]) or None
+rng = np.random.default_rng(0)
+sizes = rng.integers(3, 20, n)
+elements = np.concatenate([np.sort(rng.choice(5000, s, replace=False)) for s in sizes]).astype(np.int64)
+sets = ElementSets(keys=pl.Series("k", np.arange(n)), offsets=np.concatenate([[0], np.cumsum(sizes)]),
+                   elements=elements)
+left, right = rng.integers(0, n, 60_000), rng.integers(0, n, 60_000)
+keep = left < right
+pairs = pl.DataFrame({"left_rep": left[keep], "right_rep": right[keep], "jaccard": np.full(keep.sum(), 0.6),
+                      "bands_shared": np.ones(keep.sum(), dtype=np.int32)})
+params = SignatureParams(scheme=default_of("scheme"), perms=perms, seed=default_of("seed"))
+add_estimates_between(pairs[:10], sets, 0, sets, 0, params)  # kernels compiled first
+with open("/proc/self/clear_refs", "w") as fh:
+    fh.write("5")
+start = status("VmRSS")
+add_estimates_between(pairs, sets, 0, sets, 0, params, max_bytes=bound)
+used = len(np.unique(np.concatenate([pairs["left_rep"].to_numpy(), pairs["right_rep"].to_numpy()])))
+print(used, status("VmHWM") - start)
+"""
+
+
+@pytest.mark.skipif(not Path("/proc/self/clear_refs").exists(), reason="needs Linux's resident-memory high-water mark")
+def test_the_estimates_hold_about_the_signature_words_the_memory_rule_counts():
+    # Oracle: the kernel's resident-memory high-water mark of a fresh process making the
+    # estimates of 30k pairs over 31k sets (lshjob.index.verify.estimates, k = 256), whole and
+    # under a 16 MiB budget share, against the rule's words: k a set in a pair, at most the
+    # budget's share (lshjob.plan.peak_memory._estimated). Measured 1.04 and 0.99 of it.
+    import subprocess
+    import sys
+
+    from lshjob.plan.peak_memory import MEMORY_DRIVERS, WORD_BYTES
+    from lshjob.runtime.budget import ESTIMATE_SHARE
+
+    for bound in (0, 16 << 20):
+        done = subprocess.run([sys.executable, "-c", ESTIMATE_PROBE, str(bound)], capture_output=True, text=True,
+                              check=True)
+        used, peak = (int(v) for v in done.stdout.split())
+        w = Workload(events=0, entities=used, membership_rows=0, representatives=used, perms=256, bands=32,
+                     scheme="kperm", candidate_pairs=0, verified_pairs=used, published_rows=0)
+        words = MEMORY_DRIVERS["verify"](w, bound * ESTIMATE_SHARE if bound else None)
+        assert 0.6 <= peak / (WORD_BYTES * words) <= 1.6, (bound, peak, words)
+
+
+def test_rows_held_stay_within_the_steps_the_memory_rule_bounds_them_by():
+    # Oracle: the rows lshjob.index.verify.local.HeldRows holds when it deduplicates (counted
+    # on the class itself, pieces added as verification adds them), against the rule's bound
+    # (HELD_STEPS of the budget's step) once the top-k cut keeps fewer rows than a step; and a
+    # rule that keeps its driver below it, whatever the verified pairs.
+    from lshjob.index.verify.local import HeldRows, one_row_a_pair
+    from lshjob.plan.peak_memory import HELD_ROW_WORDS, HELD_STEPS, MEMORY_DRIVERS
+    from lshjob.runtime.budget import Budget
+
+    step, piece, most = 50_000, 5_000, 0
+    rng = np.random.default_rng(3)
+
+    def dedup(rows):
+        nonlocal most
+        most = max(most, rows.height)
+        return one_row_a_pair(rows)
+
+    held = HeldRows(step, dedup, cut=lambda rows: rows.sort("jaccard", descending=True).head(step // 2))
+    for _ in range(200):  # 1M rows, pairs repeating
+        p = rng.integers(0, 400_000, piece)
+        held.add(pl.DataFrame({"left_rep": p % 1000, "right_rep": 1000 + p // 1000, "jaccard": rng.random(piece),
+                               "bands_shared": np.ones(piece, dtype=np.int32)}))
+    held.result()
+    assert step + piece < most <= HELD_STEPS * step + piece, most  # above one step: one step would not do
+    memory = 8 * 2**30
+    bound = HELD_STEPS * Budget(memory).verify_held_rows()
+    big = Workload(events=1e9, entities=1e8, membership_rows=1e9, representatives=1e6, perms=256, bands=40,
+                   scheme="kperm", candidate_pairs=1e11, verified_pairs=10 * bound, published_rows=1e9)
+    assert MEMORY_DRIVERS["verify"](big, memory) == pytest.approx(1e9 + HELD_ROW_WORDS * bound)
+    assert MEMORY_DRIVERS["verify"](big, None) == pytest.approx(1e9 + HELD_ROW_WORDS * 10 * bound)
+
+
+def test_the_crowds_share_of_the_sample_is_the_joins(tmp_path):
+    # Oracle: the DuckDB join of the same sample's bucket rows, writing a row per band and
+    # listing buckets of 3-8 members or more as crowds (lshjob.index.join.duckdb): the pairs its
+    # CROWDS file stands for (every pair of a crowd, by itertools in the conformance checks)
+    # over all the pairs it counts, against the share SampleProfile.crowd_share finds.
+    from lshjob.index._crowd_checks import crowd_rows
+    from lshjob.index.band.local import bucket_keys_by_position, write_shared_bucket_rows
+    from lshjob.index.collapse import collapse_identical
+    from lshjob.index.engines import get_engine
+    from lshjob.index.join import JoinSettings
+    from lshjob.sign.signatures import SignatureParams, comparable_by_position
+
+    frame = _repeating_sets(4000, 8)
+    events = tmp_path / "events.parquet"
+    frame.write_parquet(events)
+    sets, _ = load_membership(events, SPEC)
+    profile = sample_profile(sets, 64, 16, 4)
+    _, reps = collapse_identical(sets)
+    params = SignatureParams(scheme=default_of("scheme"), perms=64, seed=default_of("seed"))
+    keys = bucket_keys_by_position(comparable_by_position(sets, reps, params, 64), reps, 16, 4)
+    band = write_shared_bucket_rows(keys, 16, tmp_path / "buckets")
+    for size in (3, 4, 5, 6, 8):
+        settings = JoinSettings(memory_limit="512MB", temp_directory=str(tmp_path / "spill"), threads=2,
+                                max_bucket=10**6, dedupe_up_to=0, max_repeat=1e9, crowd_size=size)
+        out = get_engine("join", "duckdb").candidates(band.files, 16, tmp_path / f"candidates-{size}.parquet",
+                                                      settings, bucket_rows=band.rows_total)
+        crowded = len(crowd_rows(out.crowds))
+        assert 0 < crowded < out.pairs, (size, crowded, out.pairs)
+        assert profile.crowd_share(size, 10**6) == pytest.approx(crowded / out.pairs, rel=1e-9), size
+    assert profile.crowd_share(10**5, 10**6) == 0.0

@@ -19,12 +19,12 @@ from lshjob.plan import similarity
 from lshjob.plan.choose import Plan, choose_plan
 from lshjob.plan.cost import CostModel, Workload, count_factors, load_model
 from lshjob.plan.forecast import forecast, forecast_curve
+from lshjob.plan.peak_memory import scale_memory
 from lshjob.plan.scaling import (
     ROWS_PER_BAND_JOIN,
     Projection,
     project_counts,
     sample_runs,
-    scale_memory,
     scale_seconds,
 )
 from lshjob.runtime.budget import default_memory
@@ -174,8 +174,9 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
     if scaled_from is not None:
         facts = scaled_from.facts  # a join grouping the sample's pairs, writing a row per band at full size
         join_factor = ROWS_PER_BAND_JOIN if facts["rows_per_band"] and not facts["sample_rows_per_band"] else 1.0
-        seconds, fixed = scale_seconds(model, [(r.workload, r.seconds) for r in samples], load, scaled_from.visits,
-                                       join_factor)
+        counted = scaled_from.runs or [r.workload for r in samples]  # with their crowds' share
+        seconds, fixed = scale_seconds(model, [(w, r.seconds) for w, r in zip(counted, samples, strict=True)], load,
+                                       scaled_from.visits, join_factor)
         by_stage = scale_memory(model, [(r.workload, r.peaks, r.memory) for r in samples], load,
                                 memory or default_memory())
     out = forecast(model, load, memory, parts, shape.get("dense_keys", True), seconds, by_stage)
@@ -186,8 +187,8 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
         out["scaling"] = {**scaled_from.facts, "fixed_seconds": fixed,
                           "sample_runs": [int(r.workload.entities) for r in samples]}
         if all(r.cpu for r in samples):  # CPU time: what the machine's load changes least
-            cpu = scale_seconds(model, [(r.workload, r.cpu) for r in samples], load, scaled_from.visits,
-                                join_factor)[0]
+            cpu = scale_seconds(model, [(w, r.cpu) for w, r in zip(counted, samples, strict=True)], load,
+                                scaled_from.visits, join_factor)[0]
             out["cpu_seconds"] = {k: round(v, 3) for k, v in cpu.items()}
     out["pair_corrections"] = pairs  # measured / predicted pairs of the --history runs, their representatives' share
     out["runners_up"] = [
@@ -220,7 +221,7 @@ def _projection(plan: Plan, shape: dict, samples: list, load: Workload, scheme: 
     figures = dict(plan.predicted or {}, perms=plan.perms, bands=plan.bands)
     projected = project_counts(profile, samples, figures, load.entities, load.events,
                                load.membership_rows / max(load.events, 1), scheme, top_k, JoinSettings.max_bucket,
-                               JoinSettings.dedupe_up_to, JoinSettings.max_repeat)
+                               JoinSettings.dedupe_up_to, JoinSettings.max_repeat, JoinSettings.crowd_size)
     projected.visits = profile.visits_at
     return projected
 

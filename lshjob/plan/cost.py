@@ -94,6 +94,9 @@ class Workload:
     verified_pairs: float
     published_rows: float
     shared_bucket_rows: float | None = None
+    # the share of the candidate pairs in crowds (verification pairs a large bucket's members up
+    # itself, the join writing none of their pairs; lshjob.index.join.base), when known
+    crowd_share: float = 0.0
 
     @property
     def hashed_words(self) -> float:
@@ -328,6 +331,6 @@ def load_model(path: Path | None = None) -> CostModel:
 def point_of(manifest: dict) -> dict:
     """A calibration point: a run's counts and its measured seconds and peaks."""
     w = Workload.from_manifest(manifest)
-    load = {k: v for k, v in w.__dict__.items() if k != "shared_bucket_rows"}
+    load = {k: v for k, v in w.__dict__.items() if k not in ("shared_bucket_rows", "crowd_share")}
     return {"workload": load, "seconds": dict(manifest["seconds"]),
             "peak_memory_bytes": dict(manifest["peak_memory_bytes"])}

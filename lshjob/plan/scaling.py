@@ -31,29 +31,39 @@ sizes or more, ``fixed`` is the intercept of the line through them, kept between
 the larger run's seconds (process start, imports and compiled-kernel loads are not scaled);
 with one run, the cost model's constant, at most half the run's seconds. The rate is the
 largest run's own: a run measured now, on this machine, under its present load. CPU seconds
-(a manifest's ``cpu_seconds``) scale the same way. Peak memory (:func:`scale_memory`): the
-largest run's own peak, grown by the slope of the line through the runs against
-:data:`MEMORY_DRIVERS`, at most a word a word of the driver.
+(a manifest's ``cpu_seconds``) scale the same way; verification's driver counts a crowd's pair
+(:data:`CROWD_PAIR_COST`) below a written candidate row, the crowds' share of the pairs found
+from the sample's buckets (:meth:`SampleProfile.crowd_share`). Peak memory:
+:mod:`lshjob.plan.peak_memory`.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from lshjob.plan.cost import STAGES, CostModel, Workload
-from lshjob.plan.forecast import SLICE_ROW_BYTES
 from lshjob.plan.sample_weights import shlosser_distinct, similar_at_full_size
 from lshjob.plan.similarity import AGAINST_ALL_BUDGET
-from lshjob.runtime.budget import Budget, default_memory
+from lshjob.runtime.budget import default_memory
 
 # the join writing a row per band a pair met in against grouping its pairs first, seconds a pair:
 # 1.7 s CPU against 28 s for the same 97M pair rows (docs/performance.md, long-tailed data at 300k)
 ROWS_PER_BAND_JOIN = 1.7 / 28
 MAX_FIXED_SHARE = 0.5  # a stage's fixed seconds: at most this share of the largest sample run's
-WORD_BYTES = 8.0  # a stage's peak grows beyond the sample run's by at most a word a word of its driver
+
+
+# verification, seconds a candidate pair of a crowd (made and intersected a crowd's prefix index at
+# a time, lshjob.index.verify._crowds) against a written candidate row: CPU seconds of long-tailed
+# runs, 0.17 us a written row (30k entities, no crowds) against 0.064-0.072 us a crowd pair (100k,
+# 300k, 1M entities, 86-94% of their candidates in crowds)
+CROWD_PAIR_COST = 0.4
+
+
+def _driver_verify(w: Workload, visits) -> float:
+    return w.candidate_pairs * (1.0 - (1.0 - CROWD_PAIR_COST) * w.crowd_share)
 
 
 # the plan stage: a set's row passed over while indexing the sampled entities' elements, against a
@@ -78,39 +88,8 @@ DRIVERS = {
     "sign": _driver_sign,
     "band": lambda w, visits: w.bucket_rows,
     "join": lambda w, visits: w.bucket_rows + w.candidate_pairs,
-    "verify": lambda w, visits: w.candidate_pairs,
+    "verify": _driver_verify,
     "publish": lambda w, visits: w.verified_pairs + w.published_rows,
-}
-
-
-def _positions(w: Workload) -> int:
-    """Signature positions banded (b x r; r about k / b)."""
-    return w.bands * max(w.perms // max(w.bands, 1), 1)
-
-
-def slice_rows_of(w: Workload, memory: float) -> float:
-    """Representatives a run of ``w`` under a ``memory`` budget signs and bands at a time
-    (:meth:`lshjob.runtime.budget.Budget.sign_slice_rows`)."""
-    return float(Budget(int(memory)).sign_slice_rows(_positions(w), w.bands, SLICE_ROW_BYTES))
-
-
-def _signed(w: Workload, slice_rows: float | None) -> float:
-    """Signature positions held at a time: a slice of representatives, b x r positions each."""
-    return min(w.representatives, slice_rows or w.representatives) * _positions(w)
-
-
-# what each stage's peak resident memory grows with, in 8-byte words: the sets it holds, and
-# its own tables (signing and banding a slice of representatives at a time; verification its
-# candidates, publishing the pairs it keeps)
-MEMORY_DRIVERS = {
-    "ingest": lambda w, rows: w.events,
-    "collapse": lambda w, rows: w.membership_rows,
-    "plan": lambda w, rows: w.membership_rows,
-    "sign": lambda w, rows: w.membership_rows + _signed(w, rows),
-    "band": lambda w, rows: w.membership_rows + w.bucket_rows + _signed(w, rows),
-    "join": lambda w, rows: w.membership_rows + w.bucket_rows,
-    "verify": lambda w, rows: w.membership_rows + w.candidate_pairs,
-    "publish": lambda w, rows: w.membership_rows + 4 * w.verified_pairs + 4 * w.published_rows,
 }
 
 
@@ -155,6 +134,20 @@ class SampleProfile:
         pairs = self.bucket_counts * (a * (a - 1) / 2 + a * b * weight + b * (b - 1) / 2 * weight * weight)
         return float(pairs.sum()), float(pairs[a + b * weight <= max_bucket].sum())
 
+    def crowd_share(self, crowd_size: float, max_bucket: float, weight: float = 1.0, thin: float = 1.0) -> float:
+        """The share of the kept pairs (:meth:`pair_rows`) in buckets of ``crowd_size`` members or
+        more: at full size (``weight``), or in a uniform share ``thin`` of the sample (a nested
+        sample: each bucket keeps that share of its members)."""
+        a, b = self.bucket_repeated.astype(np.float64), self.bucket_single.astype(np.float64)
+        if thin < 1.0:
+            size = (a + b) * thin
+            pairs = self.bucket_counts * np.maximum(size * (size - 1) / 2, 0.0)
+        else:
+            size = a + b * weight
+            pairs = self.bucket_counts * (a * (a - 1) / 2 + a * b * weight + b * (b - 1) / 2 * weight * weight)
+        kept = pairs[size <= max_bucket].sum()
+        return float(pairs[(size <= max_bucket) & (size >= crowd_size)].sum() / kept) if kept > 0 else 0.0
+
 
 @dataclass
 class Projection:
@@ -163,11 +156,13 @@ class Projection:
     workload: Workload
     facts: dict = field(default_factory=dict)
     visits: object = None  # the planner's posting visits at a number of entities, when known
+    runs: list = field(default_factory=list)  # the sample's runs' counts, with their crowds' share
 
 
 def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict, entities: float, events: float,
                    membership_share: float, scheme: str, top_k: int, max_bucket: float,
-                   rows_above: float = math.inf, max_repeat: float = 0.0) -> Projection:
+                   rows_above: float = math.inf, max_repeat: float = 0.0,
+                   crowd_size: float = math.inf) -> Projection:
     """The counts a run of ``entities`` sets and ``events`` events would see under the plan
     of ``figures`` (perms, bands), projected from the sample's ``profile`` (module docstring).
     ``runs``: the counts of runs of the sample (or of nested samples of it), smallest first:
@@ -179,7 +174,9 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
     The join's way of writing pairs (:class:`lshjob.index.join.base.JoinSettings`): a row per
     band a pair met in when the pair rows pass ``rows_above`` and pairs repeat at most
     ``max_repeat`` times (as in the sample's run); else one row a pair, the rows divided by
-    the sample run's repeats."""
+    the sample run's repeats. Written a row per band, the pairs of buckets of ``crowd_size``
+    members or more are left to verification (crowds): their share of the pairs, at full size
+    and in each run (``Projection.runs``), from the sample's buckets."""
     last = runs[-1] if runs else None
     run = last.workload if last else None
     share = profile.entities / max(entities, 1.0)
@@ -212,9 +209,13 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
         published = 2.0 * verified
         basis = "the sample's buckets"
     published = min(published, entities * top_k)
+    crowded = profile.crowd_share(crowd_size, max_bucket, weight) if rows_per_band else 0.0
     w = Workload(events=events, entities=entities, membership_rows=events * membership_share,
                  representatives=reps, perms=figures["perms"], bands=figures["bands"], scheme=scheme,
-                 candidate_pairs=candidates, verified_pairs=verified, published_rows=published)
+                 candidate_pairs=candidates, verified_pairs=verified, published_rows=published, crowd_share=crowded)
+    measured = [replace(r.workload, crowd_share=profile.crowd_share(
+        crowd_size, max_bucket, thin=r.workload.entities / max(profile.entities, 1)) if r.rows_per_band else 0.0)
+        for r in runs]
     facts = {"sample_entities": profile.entities, "sample_representatives": profile.representatives,
              "representatives": round(reps), "representative_growth": round(growth, 4),
              "weight_of_sets_seen_once": round(weight, 4),
@@ -222,8 +223,9 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
              "pairs_basis": basis, "max_bucket": max_bucket, "rows_per_band": rows_per_band,
              "sample_rows_per_band": bool(last and last.rows_per_band),
              "similar_pairs": None if similar_full is None else round(similar_full),
-             "sample_similar_pairs": None if similar_n is None else round(similar_n)}
-    return Projection(w, facts)
+             "sample_similar_pairs": None if similar_n is None else round(similar_n),
+             "crowd_share": round(crowded, 4), "sample_crowd_shares": [round(r.crowd_share, 4) for r in measured]}
+    return Projection(w, facts, runs=measured)
 
 
 def per_entity_rows(runs: list[Workload], entities: float, top_k: int) -> float:
@@ -275,34 +277,6 @@ def scale_seconds(model: CostModel, runs: list[tuple[Workload, dict]], target: W
     other = min(max(s["total"] - sum(s.get(st, 0.0) for st in STAGES), 0.0) for _, s in runs)
     out["total"] = sum(out[s] for s in STAGES) + other
     return out, fixed_of
-
-
-def scale_memory(model: CostModel, runs: list[tuple[Workload, dict, float]], target: Workload,
-                 memory: float) -> dict:
-    """Peak resident memory per stage at ``target`` from ``runs`` of the sample (each its counts
-    and its manifest's ``peak_memory_bytes``), smallest first: the largest run's own peak, and
-    beyond it the slope of the line through the runs against :data:`MEMORY_DRIVERS`, at most
-    :data:`WORD_BYTES` a word (with one run: above the cost model's constant). Between runs
-    of a few ten thousand entities a stage's peak grows mostly with the process's own buffers,
-    not with its tables: a slope steeper than a word a word would be scaled 10-60 times over.
-    Each run with its memory budget, ``memory`` the target's: they bound the representatives
-    signed and banded at a time."""
-    slice_rows = slice_rows_of(target, memory)
-    out = {}
-    for stage in STAGES:
-        measured = [(MEMORY_DRIVERS[stage](w, slice_rows_of(w, b)), float(m[stage])) for w, m, b in runs
-                    if m.get(stage)]
-        if not measured:
-            out[stage] = model.stage_memory(target)[stage]
-            continue
-        (d0, t0), (d1, t1) = measured[0], measured[-1]
-        if d1 > d0:
-            slope = (t1 - t0) / (d1 - d0)
-        else:
-            slope = (t1 - min(max(model.memory[stage].constant, 0.0), t1)) / d1 if d1 > 0 else 0.0
-        slope = min(max(slope, 0.0), WORD_BYTES)
-        out[stage] = t1 + slope * max(MEMORY_DRIVERS[stage](target, slice_rows) - d1, 0.0)
-    return out
 
 
 @dataclass(frozen=True)
