@@ -290,7 +290,9 @@ rng = np.random.default_rng(0)
 with open("/proc/self/clear_refs", "w") as fh:
     fh.write("5")
 start = status("VmRSS")
-held = HeldRows(None, partial(one_row_a_pair, jaccard_of=lambda left, right: np.full(len(left), 0.5)))
+offsets = np.arange(0, 5 * (2 * ids + 1), 5, dtype=np.int64)  # sets of 5: what verification holds beside the rows
+held = HeldRows(None, partial(one_row_a_pair, jaccard_of=lambda left, right: np.full(len(left), 0.5),
+                              held_sets=(offsets, 0, offsets, 0)))
 for lo in range(0, rows, 250_000):  # pieces as verification adds them, pairs repeating
     p = rng.integers(0, pairs, 250_000)
     held.add(pl.DataFrame({"left_rep": p % ids, "right_rep": ids + p // ids, "jaccard": np.full(len(p), 0.6),
@@ -389,7 +391,10 @@ def test_rows_held_stay_within_the_steps_the_memory_rule_bounds_them_by():
         most = max(most, rows.height)
         return one_row_a_pair(rows)
 
-    held = HeldRows(step, dedup, cut=lambda rows: rows.sort("jaccard", descending=True).head(step // 2))
+    def cut(rows):  # the rows kept, and no floor (HeldRows' cut returns both)
+        return rows.sort("jaccard", descending=True).head(step // 2), np.full(1, -1.0)
+
+    held = HeldRows(step, dedup, cut=cut)
     for _ in range(200):  # 1M rows, pairs repeating
         p = rng.integers(0, 400_000, piece)
         held.add(pl.DataFrame({"left_rep": p % 1000, "right_rep": 1000 + p // 1000, "jaccard": rng.random(piece),

@@ -101,3 +101,16 @@ def jaccard_from(left, right, inter, left_offsets, left_first, right_offsets, ri
         total = (left_offsets[a + 1] - left_offsets[a]) + (right_offsets[b + 1] - right_offsets[b])
         out[p] = inter[p] / (total - inter[p])
     return out
+
+
+@numba.njit(parallel=True, cache=True)
+def pair_keys(left, right, inter, bands, id_bits, inter_bits, band_bits):
+    """One 64-bit key a row: (left, right, intersection, bands) packed high to low in
+    ``id_bits``, ``id_bits``, ``inter_bits`` and ``band_bits`` bits (the caller checks they
+    fit), so sorting the keys groups a pair's rows."""
+    out = np.empty(len(left), dtype=np.uint64)
+    low = inter_bits + band_bits
+    for p in numba.prange(len(left)):
+        out[p] = ((np.uint64(left[p]) << np.uint64(low + id_bits)) | (np.uint64(right[p]) << np.uint64(low))
+                  | (np.uint64(inter[p]) << np.uint64(band_bits)) | np.uint64(bands[p]))
+    return out

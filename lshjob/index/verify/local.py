@@ -17,7 +17,13 @@ from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
 from lshjob.index._ranking import list_cuts, own_cuts
 from lshjob.index.verify._crowds import crowd_pairs_between, crowd_pieces
-from lshjob.index.verify._jaccard import exact_jaccard_between, intersections_of, jaccard_between, jaccard_from
+from lshjob.index.verify._jaccard import (
+    exact_jaccard_between,
+    intersections_of,
+    jaccard_between,
+    jaccard_from,
+    pair_keys,
+)
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
 from lshjob.index.verify.estimates import add_estimates_between
 from lshjob.sign.signatures import SignatureParams
@@ -254,9 +260,8 @@ def _one_row_packed(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, ba
     inter_bits, band_bits = max(int(inter.max()).bit_length(), 1), int(bands.max()).bit_length()
     if 2 * id_bits + inter_bits + band_bits > 64:
         return None
-    low = np.uint64(inter_bits + band_bits)
-    key = ((left.astype(np.uint64) << (low + np.uint64(id_bits))) | (right.astype(np.uint64) << low)
-           | (inter.astype(np.uint64) << np.uint64(band_bits)) | bands.astype(np.uint64))
+    key = pair_keys(left, right, inter, np.ascontiguousarray(bands, dtype=np.int64), id_bits, inter_bits, band_bits)
+    del inter
     key.sort()
     pair = key >> np.uint64(band_bits)
     starts = np.flatnonzero(np.concatenate([[True], pair[1:] != pair[:-1]]))
