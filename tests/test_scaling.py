@@ -308,7 +308,8 @@ def test_verification_holds_about_the_words_the_memory_rule_counts_a_verified_ro
     # fresh process holding 2M verified rows as verification adds them and deduplicating them
     # (lshjob.index.verify.local.HeldRows: the peak of verification at full size). The rule
     # counts HELD_ROW_WORDS 8-byte words a row; measured 86-104 bytes at 1M-8M rows on the
-    # development machine, 108 in the 1M long-tailed run.
+    # development machine, 108 in the 1M long-tailed run, before the rows carried their
+    # intersection for the packed deduplication; 136-147 bytes since.
     import subprocess
     import sys
 

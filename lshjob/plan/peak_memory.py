@@ -40,8 +40,10 @@ def _signed(w: Workload, slice_rows: float | None) -> float:
 # at its end. Words a row then: the row (left, right, jaccard, bands: 3.5), its copy when the rows
 # are concatenated (3.5), the pair-and-bands key and the pair key (2), the rows kept, one a pair,
 # with their Jaccard taken again (4.5): about 13.5; 108 bytes a held row measured at 1M long-tailed
-# entities (21.0M rows held, 15.8M distinct pairs; bench/RESULTS.md, "verification's peak and crowds")
-HELD_ROW_WORDS = 14
+# entities (21.0M rows held, 15.8M distinct pairs; bench/RESULTS.md, "verification's peak and crowds").
+# Since the pairs are deduplicated by (pair, intersection, bands) keys, the intersection of every row
+# is held too (one more word, and its key): 136-147 bytes a row in tests/test_scaling.py's probe, so 16.
+HELD_ROW_WORDS = 16
 # rows held at most: the deduplication runs when the rows added pass the budget's step
 # (Budget.verify_held_rows) and the rows it kept; the top-k cut then keeps what the lists can
 # take. Held: the kept rows and up to as many again, a step when the kept rows are fewer
