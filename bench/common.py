@@ -203,34 +203,57 @@ def best(fn, repeat: int) -> tuple[float, float]:
 
 
 def zipf_events(entities: int, exponent: float = 1.2, copies: float = 0.2, seed: int = 0) -> Path:
-    """Long-tailed events (entity, element), cached as Parquet under bench/cache/.
+    """Long-tailed events (entity, element), cached under bench/cache/: one Parquet file up to
+    ZIPF_CHUNK entities, above it a directory of one file a chunk of ZIPF_CHUNK entities.
 
     Element popularity close to Zipf (P(rank i) ~ i**-exponent over a catalogue of
     2 x entities titles; draws beyond it are spread uniformly over the catalogue); set sizes
     log-normal (median 6, mean ~20), so about half the entities hold 1-5 elements, mostly
     popular ones; a fraction ``copies`` of entities are near-copies of another entity (each
-    element replaced with probability q ~ U(0, 0.4)). One row per (entity, element).
+    element replaced with probability q ~ U(0, 0.4)). One row per (entity, element). In
+    chunks, a copy's source is an entity of its own chunk (the catalogue stays the whole
+    one), so 10M entities are made in the memory 2M take (one shot at 10M, about 144M
+    events, was killed at 24 GB resident). Up to ZIPF_CHUNK, the data are those of one shot.
     """
     CACHE.mkdir(exist_ok=True)
-    path = CACHE / f"zipf_{entities}_{exponent}_{copies}_{seed}.parquet"
-    if path.exists():
+    name = f"zipf_{entities}_{exponent}_{copies}_{seed}"
+    if entities <= ZIPF_CHUNK:
+        path = CACHE / f"{name}.parquet"
+        if not path.exists():
+            _zipf_chunk(0, entities, 2 * entities, exponent, copies, np.random.default_rng(seed)).write_parquet(path)
         return path
-    rng = np.random.default_rng(seed)
+    root = CACHE / name
+    if (root / "_done").exists():
+        return root
+    root.mkdir(exist_ok=True)
+    for part, first in enumerate(range(0, entities, ZIPF_CHUNK)):
+        n = min(ZIPF_CHUNK, entities - first)
+        _zipf_chunk(first, n, 2 * entities, exponent, copies, np.random.default_rng([seed, part])).write_parquet(
+            root / f"events-{part:04d}.parquet")
+    (root / "_done").write_text("")
+    return root
+
+
+ZIPF_CHUNK = 2_000_000
+
+
+def _zipf_chunk(first: int, entities: int, catalogue: int, exponent: float, copies: float,
+                rng: np.random.Generator) -> pl.DataFrame:
+    """Entities first..first+entities-1 of :func:`zipf_events`, sorted by (entity, element)."""
     sizes = np.clip(np.round(rng.lognormal(np.log(6.0), 1.6, entities)), 1, 5000).astype(np.int64)
     n = int(sizes.sum())
-    catalogue = 2 * entities
     element = rng.zipf(exponent, n).astype(np.int64)
     far = element > catalogue
     element[far] = rng.integers(1, catalogue + 1, int(far.sum()))
-    base = pl.DataFrame({"entity": np.repeat(np.arange(entities, dtype=np.int64), sizes), "element": element})
+    base = pl.DataFrame({"entity": np.repeat(np.arange(first, first + entities, dtype=np.int64), sizes),
+                         "element": element})
     n_copies = int(entities * copies)
-    targets = rng.choice(entities, size=n_copies, replace=False)
-    sources = rng.integers(0, entities, size=n_copies)
+    targets = first + rng.choice(entities, size=n_copies, replace=False)
+    sources = first + rng.integers(0, entities, size=n_copies)
     mapping = pl.DataFrame({"entity": sources, "copy": targets, "q": rng.uniform(0, 0.4, n_copies)})
     dup = base.join(mapping, on="entity").select(pl.col("copy").alias("entity"), "element", "q")
     dup = dup.with_columns(u=pl.Series(rng.random(dup.height)),
                            fresh=pl.Series(rng.integers(catalogue + 1, 50 * catalogue, dup.height)))
     dup = dup.select("entity", element=pl.when(pl.col("u") < pl.col("q")).then("fresh").otherwise("element"))
     kept = base.filter(~pl.col("entity").is_in(pl.Series(targets).implode()))
-    pl.concat([kept, dup]).unique(maintain_order=False).sort("entity", "element").write_parquet(path)
-    return path
+    return pl.concat([kept, dup]).unique(maintain_order=False).sort("entity", "element")
