@@ -135,19 +135,20 @@ def _prefix_index(offsets, elements, first, mem, threshold):
 
 
 @numba.njit(inline="always")
-def _keep(local, local_off, common, first, mem, x, y, la, lb, need, threshold, crowd_at, in_bands, row_of, band, out,
+def _keep(local, local_off, common, mem, x, y, la, lb, need, threshold, crowd_at, bits, rows, band, out,
           out_left, out_right, out_jac, out_bands):
     """Intersect members x and y (sizes la >= lb): |C| plus the intersection of what they do
     not all share (``local``, the crowd's ranks: small, in cache); write the pair at ``out``
     when it reaches the threshold (the filters of :func:`_crowd_pairs`); the next free slot. With the crowds'
-    bands (``crowd_at``: each member's crowd a band, 0 for none; ``row_of``: its row; ``band``:
+    bands (``crowd_at``: each member's crowd a band, 0 for none, a row an entity; ``rows``,
+    ``bits``: member x's row and the bands it has a crowd in, gathered for this crowd; ``band``:
     this crowd's), a pair sharing a crowd of an earlier band is left to it, and a pair written
     gets the number of crowds it shares as its ``out_bands``."""
     both = np.uint64(0)
     rx = ry = 0
     if band >= 0:
-        rx, ry = row_of[mem[x] - first], row_of[mem[y] - first]
-        both = in_bands[rx] & in_bands[ry]
+        rx, ry = rows[x], rows[y]
+        both = bits[x] & bits[y]
         if both & ((np.uint64(1) << np.uint64(band)) - np.uint64(1) if band < 64 else ~np.uint64(0)):
             for b in range(band):
                 if (both >> np.uint64(b & 63)) & np.uint64(1) and crowd_at[rx, b] == crowd_at[ry, b] \
@@ -211,6 +212,10 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
         size, common, local_off, local, prefix, post_off, posted = _prefix_index(offsets, elements, first, mem,
                                                                                  lowest)
         seen = np.full(len(mem), -1, dtype=np.int64)
+        rows, bits = np.zeros(len(mem), dtype=np.int64), np.zeros(len(mem), dtype=np.uint64)
+        for x in range(len(mem) if bands[c] >= 0 else 0):  # each member's row of crowd_at and bands, once
+            rows[x] = row_of[mem[x] - first]
+            bits[x] = in_bands[rows[x]]
         out = base[c]
         for x in range(len(mem)):
             la = size[x]
@@ -220,9 +225,8 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                     break  # later partners are at least as large
                 sought = min(at[x], at[y])
                 if size[y] >= sought * la - 1e-9:
-                    out = _keep(local, local_off, common, first, mem, x, y, la, size[y], _need(la, size[y], sought),
-                                sought, crowd_at, in_bands, row_of, bands[c], out, out_left, out_right, out_jac,
-                                out_bands)
+                    out = _keep(local, local_off, common, mem, x, y, la, size[y], _need(la, size[y], sought),
+                                sought, crowd_at, bits, rows, bands[c], out, out_left, out_right, out_jac, out_bands)
             low = first_at_least(size, 0, x, lowest * la - 1e-9)  # the size filter, sizes ascending
             for q in range(local_off[x], local_off[x] + prefix[x]):
                 r = local[q]
@@ -237,8 +241,8 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                     if need > common:  # (the others were intersected above)
                         sought = min(at[x], at[y])
                         if size[y] >= sought * la - 1e-9:
-                            out = _keep(local, local_off, common, first, mem, x, y, la, size[y],
-                                        _need(la, size[y], sought), sought, crowd_at, in_bands, row_of, bands[c],
+                            out = _keep(local, local_off, common, mem, x, y, la, size[y],
+                                        _need(la, size[y], sought), sought, crowd_at, bits, rows, bands[c],
                                         out, out_left, out_right, out_jac, out_bands)
         found[c] = out - base[c]
 
@@ -341,11 +345,11 @@ def _floor_within(floors, first: int, sets: int) -> np.ndarray:
 
 def _crowds_by_band(members: np.ndarray, crowd: np.ndarray, band: np.ndarray | None, start: np.ndarray, first: int,
                     sets: int):
-    """Each member's crowd a band (a matrix, a row a member, 0 where none), the bands (mod 64) it
-    has a crowd in (bits), each entity id's row (from ``first``; -1 for none), and each crowd's
-    band (-1 for all when the bands are not known)."""
+    """Each member's crowd a band (a matrix, a row a member, 0 where none; int32: crowds have 3
+    members or more), the bands (mod 64) it has a crowd in (bits), each entity id's row (from
+    ``first``; -1 for none), and each crowd's band (-1 for all when the bands are not known)."""
     if band is None:
-        return (np.zeros((1, 1), dtype=np.int64), np.zeros(1, dtype=np.uint64), np.zeros(1, dtype=np.int64),
+        return (np.zeros((1, 1), dtype=np.int32), np.zeros(1, dtype=np.uint64), np.zeros(1, dtype=np.int64),
                 np.full(len(start), -1, dtype=np.int64))
     band = np.ascontiguousarray(band, dtype=np.int64)
     crowd_at, in_bands, row_of = _band_rows(np.ascontiguousarray(members - first, dtype=np.int64),
@@ -364,7 +368,7 @@ def _band_rows(local, crowd, band, sets, bands):
         if row_of[local[m]] < 0:
             row_of[local[m]] = rows
             rows += 1
-    crowd_at = np.zeros((rows, bands), dtype=np.int64)
+    crowd_at = np.zeros((rows, bands), dtype=np.int32)  # crowd ids: 1..crowds, each of 3 members or more
     in_bands = np.zeros(rows, dtype=np.uint64)
     for m in range(len(local)):
         r = row_of[local[m]]
