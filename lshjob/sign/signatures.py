@@ -90,6 +90,15 @@ def comparable_by_position(sets: ElementSets, ids: np.ndarray, params: Signature
     return _sign(*_membership_source(sets, ids), prefix, True)
 
 
+def comparable_positions(sets: ElementSets, ids: np.ndarray, params: SignatureParams, lo: int, hi: int) -> np.ndarray:
+    """Positions lo..hi-1 of the comparable signatures of the sets ``ids`` (len(ids) x (hi - lo)):
+    for ``kperm`` only those positions are computed (each has its own salt); ``oph`` signs and
+    densifies all k, its positions depending on one another."""
+    if params.scheme == "oph":
+        return np.ascontiguousarray(comparable(sign_membership(sets, ids, params), params)[:, lo:hi])
+    return sign_kperm(*_membership_source(sets, ids), np.ascontiguousarray(params.salts()[lo:hi]), False)
+
+
 def _membership_source(sets: ElementSets, ids: np.ndarray) -> tuple:
     table = NO_ARRAY if sets.text_hashes is None else np.ascontiguousarray(sets.text_hashes, dtype=np.uint64)
     return sets.offsets, sets.elements, table, np.ascontiguousarray(ids, dtype=np.int64)
