@@ -169,3 +169,31 @@ def test_rows_deduplicated_by_packed_keys_keep_each_pairs_exact_jaccard_and_band
     assert got.equals(want)
     assert got["jaccard"].to_list() == [len(sets[a] & sets[b]) / len(sets[a] | sets[b])
                                         for a, b in got.select("left_rep", "right_rep").iter_rows()]
+
+
+def test_packed_keys_cap_an_intersection_too_large_for_the_bits_left():
+    """Ids of 30 bits and bands of 3 leave the intersection one bit of the key: intersections
+    of 1 and more are capped, and those pairs' Jaccard taken from ``jaccard_of`` (here Python
+    sets, the oracle), the same rows as polars' group_by."""
+    rng = np.random.default_rng(5)
+    first = 1 << 29
+    sets = [set(rng.integers(0, 12, int(rng.integers(1, 8))).tolist()) for _ in range(200)]
+    offsets = np.concatenate([[0], np.cumsum([len(s) for s in sets])]).astype(np.int64)
+    pairs = np.unique(np.sort(rng.integers(0, 200, size=(2000, 2)), axis=1), axis=0)
+    pairs = pairs[pairs[:, 0] != pairs[:, 1]]
+    pick = pairs[rng.integers(0, len(pairs), 5000)]
+
+    def python_jaccard(left, right):
+        return np.array([len(sets[a - first] & sets[b - first]) / len(sets[a - first] | sets[b - first])
+                         for a, b in zip(left, right)])
+
+    rows = pl.DataFrame({"left_rep": pick[:, 0] + first, "right_rep": pick[:, 1] + first,
+                         "jaccard": python_jaccard(pick[:, 0] + first, pick[:, 1] + first),
+                         "bands_shared": rng.integers(1, 5, len(pick)).astype(np.int32)})
+    asked = []
+    got = one_row_a_pair(rows, jaccard_of=lambda a, b: asked.append(len(a)) or python_jaccard(a, b),
+                         held_sets=(offsets, first, offsets, first)).sort("left_rep", "right_rep")
+    want = (rows.group_by("left_rep", "right_rep").agg(pl.col("jaccard").first(), pl.col("bands_shared").sum())
+            .select(rows.columns).sort("left_rep", "right_rep"))
+    assert got.equals(want)
+    assert 0 < asked[0] < got.height  # only the capped pairs were asked again

@@ -339,8 +339,8 @@ def _floor_within(floors, first: int, sets: int) -> np.ndarray:
     empty array without ``floors``."""
     if floors is None:
         return np.empty(0)
-    known = np.asarray(floors(), dtype=np.float64)[first:first + sets]
-    return np.ascontiguousarray(np.concatenate([known, np.full(sets - len(known), -1.0)]))
+    known = np.asarray(floors(), dtype=np.float64)[first:first + sets]  # a view (no copy: once a chunk)
+    return known if len(known) == sets else np.concatenate([known, np.full(sets - len(known), -1.0)])
 
 
 def _crowds_by_band(members: np.ndarray, crowd: np.ndarray, band: np.ndarray | None, start: np.ndarray, first: int,
