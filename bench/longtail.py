@@ -2,6 +2,7 @@
 
     python bench/longtail.py --entities 300000 [--reference-entities 50000 100000] [--sample 500]
     python bench/longtail.py --entities 300000 --reference-entities --baseline /path/to/old/checkout --repeat 2
+    python bench/longtail.py --entities 300000 1000000 --reference-entities --variant "--recall-of lists" --repeat 2
 
 Data (bench/common.py zipf_events): element popularity close to Zipf with exponent 1.2,
 log-normal set sizes (about half the entities hold 1-5 elements, mostly popular ones), a
@@ -22,6 +23,7 @@ from __future__ import annotations
 import argparse
 import json
 import resource
+import shlex
 import subprocess
 import sys
 import tempfile
@@ -32,7 +34,7 @@ import numpy as np
 import polars as pl
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import finish, lshjob_command, machine, zipf_events  # noqa: E402
+from common import compile_bytecode, finish, lshjob_command, machine, zipf_events  # noqa: E402
 
 THRESHOLD, TOP_K, PERMS = 0.5, 50, 128
 
@@ -86,25 +88,30 @@ def _process(cmd: list[str], cwd: Path, timeout: float | None = None, env: dict 
     return wall, done.stdout
 
 
-def _lshjob(events: Path, out: Path, tree: Path | None = None) -> tuple[float, dict]:
-    """One run; ``tree``: an older checkout to run instead (:func:`common.lshjob_command`)."""
+def _lshjob(events: Path, out: Path, tree: Path | None = None, extra: tuple[str, ...] = ()) -> tuple[float, dict]:
+    """One run; ``tree``: an older checkout to run instead (:func:`common.lshjob_command`);
+    ``extra``: more options."""
     wall, stdout = _process([*lshjob_command(tree), "run", str(events), "--entity", "entity",
                              "--element", "element", "--threshold", str(THRESHOLD), "--top-k", str(TOP_K),
-                             "--out", str(out), "--json", "--quiet"], out.parent)
+                             "--out", str(out), "--json", "--quiet", *extra], out.parent)
     return wall, json.loads(stdout)
 
 
-def _best_of(events: Path, tmp: Path, n: int, repeat: int, baseline: Path | None) -> dict:
+def _best_of(events: Path, tmp: Path, n: int, repeat: int, baseline: Path | None,
+             variant: tuple[str, ...] = ()) -> dict:
     """Warm runs of this tree (and of ``baseline``, alternating, so a slow phase of the shared
-    machine hits both): the fastest wall time, its manifest and its output folder, per tree."""
-    trees = {"this tree": None} if baseline is None else {"baseline": baseline, "this tree": None}
-    for name, tree in trees.items():  # one untimed run each: kernels compiled and cached
-        _lshjob(events, tmp / f"warm-{n}-{name.replace(' ', '-')}", tree)
+    machine hits both): the fastest wall time, its manifest and its output folder, per tree.
+    With ``variant`` options, "this tree" runs with them and the baseline is this tree without
+    them unless ``baseline`` names another checkout."""
+    trees = ({"this tree": (None, variant)} if baseline is None and not variant else
+             {"baseline": (baseline, ()), "this tree": (None, variant)})
+    for name, (tree, extra) in trees.items():  # one untimed run each: kernels compiled and cached
+        _lshjob(events, tmp / f"warm-{n}-{name.replace(' ', '-')}", tree, extra)
     best: dict[str, tuple[float, dict, Path, float]] = {}
     for r in range(repeat):
-        for name, tree in trees.items():
+        for name, (tree, extra) in trees.items():
             out = tmp / f"run-{n}-{name.replace(' ', '-')}-{r}"
-            wall, manifest = _lshjob(events, out, tree)
+            wall, manifest = _lshjob(events, out, tree, extra)
             cpu = min(CPU["last"], best[name][3]) if name in best else CPU["last"]
             if name not in best or wall < best[name][0]:
                 best[name] = (wall, manifest, out, cpu)
@@ -164,12 +171,18 @@ def main() -> None:
     ap.add_argument("--sample", type=int, default=500, help="entities whose true top-k is found by brute force")
     ap.add_argument("--baseline", type=Path, default=None,
                     help="an older checkout of lshjob, run beside this tree (alternating); the neighbours are compared")
+    ap.add_argument("--variant", default="", help="options of this tree's runs, e.g. \"--recall-of lists\"; "
+                    "the baseline is then this tree without them (unless --baseline is given)")
     ap.add_argument("--repeat", type=int, default=1, help="timed runs of lshjob per tree; the fastest is reported")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     if args.repeat < 1:
         raise SystemExit("--repeat must be at least 1")
     ref_sizes = args.entities if args.reference_entities is None else args.reference_entities
+    variant = tuple(shlex.split(args.variant))
+    compile_bytecode()  # as an installed copy has it: not compiled again by every process
+    if args.baseline is not None:
+        compile_bytecode(args.baseline)
     lines = [
         f"Machine: {machine()}",
         f"Command: `python bench/longtail.py --entities {' '.join(map(str, args.entities))}"
@@ -177,6 +190,7 @@ def main() -> None:
         + ("" if args.reference_entities is None else
            f" --reference-entities {' '.join(map(str, args.reference_entities))}") + f" --sample {args.sample}"
         + ("" if args.baseline is None else f" --baseline {args.baseline}")
+        + ("" if not variant else f" --variant {shlex.quote(args.variant)}")
         + ("" if args.repeat == 1 else f" --repeat {args.repeat}") + "`",
         f"Data: bench/common.py zipf_events (Zipf 1.2 popularity, log-normal sizes, a fifth near-copies); "
         f"threshold {THRESHOLD}, top-{TOP_K}. Whole processes, wall clock, run outside the repository; "
@@ -208,19 +222,23 @@ def main() -> None:
                     ref_bound = True
             cells = ["", "", "", "", ""]
             if n in args.entities:
-                best = _best_of(events, tmp, n, args.repeat, args.baseline)
+                best = _best_of(events, tmp, n, args.repeat, args.baseline, variant)
                 wall, m, run_out, cpu = best["this tree"]
                 rec, pairs, sampled = recall(events, run_out / "neighbours.parquet", args.sample)
                 plan, c = m["plan"], m["counts"]
                 stages = _stages(m)
-                if args.baseline is not None:
+                if "baseline" in best:
                     base_wall, base_m, base_out, base_cpu = best["baseline"]
+                    base_rec = recall(events, base_out / "neighbours.parquet", args.sample)[0]
                     mine = pl.read_parquet(run_out / "neighbours.parquet")
                     theirs = pl.read_parquet(base_out / "neighbours.parquet")
                     cols = sorted(set(mine.columns) & set(theirs.columns))
                     same = mine.select(cols).sort(cols).equals(theirs.select(cols).sort(cols))
-                    notes.append(f"{n:,} entities, baseline {args.baseline}: {base_wall:.2f} s "
-                                 f"({base_m['counts']['candidate_pairs']:,} candidates; {_stages(base_m)}); "
+                    base_plan = base_m["plan"]
+                    notes.append(f"{n:,} entities, baseline {args.baseline or 'this tree without ' + args.variant}: "
+                                 f"{base_wall:.2f} s (k, b, r {base_plan['perms']}, {base_plan['bands']}, "
+                                 f"{base_plan['rows']}; {base_m['counts']['candidate_pairs']:,} candidates; recall "
+                                 f"{base_rec:.3f}; {_stages(base_m)}); "
                                  f"this tree / baseline {wall / base_wall:.3f}; CPU time (user + system, best of "
                                  f"{args.repeat}; steadier than the wall clock on a shared machine) {cpu:.1f} s "
                                  f"against {base_cpu:.1f} s, {cpu / base_cpu:.3f}; neighbours identical: {same}")

@@ -38,7 +38,11 @@ def plan(
     perms: Annotated[int | None, typer.Option(
         help="Signature length k (default: 128 in theory mode; chosen in data mode).")] = None,
     recall: Annotated[float, typer.Option(
-        help="Data mode: expected recall of pairs at or above the threshold.")] = default_of("recall"),
+        help="Data mode: expected recall of pairs at or above the threshold (or of the top-k lists: "
+             "--recall-of).")] = default_of("recall"),
+    recall_of: Annotated[str, typer.Option(
+        help="Data mode: what --recall is the recall of: 'pairs' (every pair at or above the threshold) or "
+             "'lists' (the --top-k lists the run publishes), as lshjob run --recall-of.")] = default_of("recall_of"),
     sample: Annotated[str | None, typer.Option(help="Signature file or events to plan from (data mode).")] = None,
     entity: Annotated[str | None, typer.Option(help="Events sample: entity column.")] = None,
     element: Annotated[str | None, typer.Option(help="Events sample: element column.")] = None,
@@ -109,7 +113,7 @@ def plan(
     result = api.plan_banding(
         threshold, perms, recall, sample, spec, sample_size, entities, fp_weight, fn_weight, seed,
         bands=bands, rows=rows, max_candidates=max_candidates, plan_by=plan_by, scheme=scheme, events=events,
-        top_k=top_k, model=model, shape=shape, history=runs,
+        top_k=top_k, model=model, shape=shape, history=runs, recall_of=recall_of,
     )
     summary = api.plan_summary(result, sample)
     summary["plan_by"] = plan_by

@@ -19,7 +19,7 @@ from lshjob.index import engines as stage_engines
 from lshjob.index.join import DEFAULT_MAX_BUCKET
 from lshjob.ingest.spec import EventSpec
 from lshjob.plan.banding import check_explicit
-from lshjob.plan.choose import PLAN_BY, THEORY_PERMS
+from lshjob.plan.choose import PLAN_BY, RECALL_OF, THEORY_PERMS
 from lshjob.runtime.budget import parse_size
 from lshjob.sign.params import SCHEMES
 
@@ -144,6 +144,8 @@ RUN_TABLE: tuple[Option, ...] = (  # in the order of lshjob run --help
     Option("rows", int, None, "Override the planner: rows per band r.", low=1),
     Option("recall", float, 0.95, "Planner's expected-recall target.", low=0.0, high=1.0,
            open_low=True, open_high=True),
+    Option("recall_of", str, "pairs", "What --recall is the recall of: 'lists' (the published top-k lists) or "
+           "'pairs' (every pair at or above the threshold).", choices=RECALL_OF),
     Option("count", str, _spec_default("count"), "Column with a count or weight per event.", part=SPEC),
     Option("min_count", float, _spec_default("min_count"), "Keep elements seen at least this often.", part=SPEC),
     Option("on_null", str, _spec_default("on_null"), "Null keys: error or drop.", part=SPEC),
@@ -202,6 +204,7 @@ class RunOptions:
     bands: int | None = default_of("bands")
     rows: int | None = default_of("rows")
     recall: float = default_of("recall")
+    recall_of: str = default_of("recall_of")  # "lists": the planner's target is the top-k lists' recall
     sample_size: int = default_of("sample_size")
     plan_by: str = default_of("plan_by")  # "cost": the plan of least predicted seconds (lshjob.plan.cost)
     seed: int = default_of("seed")

@@ -51,6 +51,7 @@ def plan_banding(
     events: int | None = None,
     top_k: int = default_of("top_k"),
     model: CostModel | None = None,
+    recall_of: str = default_of("recall_of"),
     shape: dict | None = None,
     history: list | None = None,
 ) -> Plan:
@@ -69,7 +70,7 @@ def plan_banding(
     :func:`forecast_plan` scales from. ``history``: manifests of real runs that correct the
     predicted pairs in the costs (``model`` is refined by them already, when given)."""
     check_options({"threshold": threshold, "perms": perms, "recall": recall, "sample_size": sample_size,
-                   "bands": bands, "rows": rows})
+                   "bands": bands, "rows": rows, "recall_of": recall_of})
     if max_candidates is not None:
         check_options({"max_candidates": max_candidates})
     if entities is not None and entities < 2:
@@ -128,7 +129,7 @@ def plan_banding(
                        fn_weight=fn_weight, max_candidates=max_candidates, runners_up=runners_up,
                        signature_perms=meta.get("k"),
                        seed=meta.get("seed"), scheme=scheme, plan_by=plan_by, costing=costing,
-                       crowd_size=JoinSettings.crowd_size)
+                       crowd_size=JoinSettings.crowd_size, top_k=top_k if recall_of == "lists" else None)
 
 
 def _workload(figures: dict, shape: dict, entities: int | None, events: int | None, scheme: str,

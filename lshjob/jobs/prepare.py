@@ -226,7 +226,8 @@ def plan_run(sets: ElementSets | None, options: RunOptions, total_entities: int 
                        recall=options.recall, max_candidates=options.max_candidates, runners_up=0,
                        distinct_sets=distinct, seed=options.seed, scheme=options.scheme,
                        crowd_size=JoinSettings.crowd_size, plan_by=options.plan_by if hist is not None
-                       else "candidates", costing=costing)
+                       else "candidates", costing=costing,
+                       top_k=options.top_k if options.recall_of == "lists" else None)
 
 
 def _costing(entities: int, rows: float, representative_share: float, options: RunOptions):

@@ -279,7 +279,7 @@ def _by_run(store, state, folded, plan, why, options, spec, built, progress, sec
     seconds["window"] = round(time.perf_counter() - tick, 3)
     run_spec = EventSpec(entity=spec.entity, element=spec.element, unicode=spec.unicode)
     manifest = run_job(window_path, run_spec, options.run_options(plan), built, progress)
-    predicted = manifest["plan"].get("predicted", {}).get("expected_recall")
+    predicted = paths.target_recall_of(manifest["plan"].get("predicted", {}))
     if plan is not None and why is None and predicted is not None and predicted < options.recall - RECALL_SLACK:
         why = (f"the kept plan's expected recall on this window's sample, {predicted:.4f}, is below "
                f"--recall {options.recall} less {RECALL_SLACK}: re-planned and rebuilt")

@@ -83,7 +83,14 @@ def sampled_recall(store: Path, members: pl.DataFrame, folded: Folded, plan: dic
         return None, {}
     judged = plan_run(sets, run_options, total_entities=len(keys))
     figures = judged.to_dict()
-    return figures.get("predicted", {}).get("expected_recall"), figures
+    return target_recall_of(figures.get("predicted", {})), figures
+
+
+def target_recall_of(predicted: dict) -> float | None:
+    """The expected recall a plan's figures met the target on: of the top-k lists when planned
+    so (``--recall-of lists``), else of every pair at or above the threshold."""
+    lists = predicted.get("expected_list_recall")
+    return predicted.get("expected_recall") if lists is None else lists
 
 
 def plan_from_window(store: Path, folded: Folded, run_options,

@@ -171,6 +171,9 @@ class PairHistogram:
     # None: 1 each), and how many sampled entities were visited (None: all of them)
     entity_weights: np.ndarray | None = field(default=None, compare=False, repr=False)
     visited_entities: int | None = None
+    # against_all with a threshold only: entity_lists[i, 0] identical sets of the i-th sampled
+    # entity, entity_lists[i, 1 + j] its pairs in the j-th of equal bins of [threshold, 1), scaled
+    entity_lists: np.ndarray | None = field(default=None, compare=False, repr=False)
 
     def mask(self, threshold: float) -> np.ndarray:
         """Which entries hold pairs at or above ``threshold``. A histogram built for that
@@ -207,6 +210,8 @@ class DataPlan:
     approximate_threshold: float
     meets_target: bool = False
     notes: list[str] = field(default_factory=list)
+    # of the published top-k lists (data_plans' top_k), the recall the target was then met on
+    expected_list_recall: float | None = None
 
     def as_dict(self) -> dict:
         return asdict(self)
@@ -217,10 +222,13 @@ def data_plans(
     histogram: PairHistogram,
     perms_choices: tuple[int, ...] = DEFAULT_PERMS_CHOICES,
     recall: float = 0.95,
+    top_k: int | None = None,
 ) -> list[DataPlan]:
     """Judge every (k, b, r) against the histogram; those meeting ``recall`` first, fewest
     expected candidates first (plans within 1% of the fewest are ordered by smaller k, then
-    fewer bands, as they cost less to sign and to bucket)."""
+    fewer bands, as they cost less to sign and to bucket). With ``top_k`` and per-entity
+    figures in the histogram, ``recall`` is met by the expected recall of the published
+    top-k lists (:func:`list_recall`) instead of that of every pair at or above the threshold."""
     validate(threshold)
     if not 0.0 < recall < 1.0:
         raise ParameterError(f"--recall must be in (0, 1); got {recall}")
@@ -241,6 +249,8 @@ def data_plans(
             rec = (candidate_probability(s_hi[None, :], b, r) * w_hi).sum(axis=1) / (1.0 - threshold)
         else:
             rec = verified / (cnt[above].sum() * histogram.scale)
+        lists = None if top_k is None or uniform_basis else list_recall(histogram, top_k, b[:, 0], r[:, 0])
+        target = rec if lists is None else lists
         for i, (bb, rr) in enumerate(pairs):
             plans.append(
                 DataPlan(
@@ -252,19 +262,21 @@ def data_plans(
                     expected_false_candidates=float(expected[i] - verified[i]),
                     bucket_rows=histogram.total_entities * bb,
                     approximate_threshold=approximate_threshold(bb, rr),
-                    meets_target=bool(rec[i] >= recall),
+                    meets_target=bool(target[i] >= recall),
+                    expected_list_recall=None if lists is None else float(lists[i]),
                     notes=["recall assumes similarities uniform on [t, 1]: the sample has fewer "
                            "than 20 pairs at or above the threshold"] if uniform_basis else [],
                 )
             )
     feasible = [p for p in plans if p.meets_target]
     if not feasible:
-        best = max(plans, key=lambda p: (p.expected_recall, -p.perms))
+        best = max(plans, key=lambda p: (target_recall(p), -p.perms))
+        what = "recall" if best.expected_list_recall is None else f"recall of the top-{top_k} lists"
         raise ParameterError(
-            f"no plan reaches expected recall {recall} at threshold {threshold} with k in "
+            f"no plan reaches expected {what} {recall} at threshold {threshold} with k in "
             f"{', '.join(map(str, perms_choices))}; the nearest is k={best.perms}, b={best.bands}, "
-            f"r={best.rows} with expected recall {best.expected_recall:.4f}"
-            + _larger_k_hint(threshold, histogram, perms_choices, recall)
+            f"r={best.rows} with expected {what} {target_recall(best):.4f}"
+            + _larger_k_hint(threshold, histogram, perms_choices, recall, top_k)
         )
     fewest = min(p.expected_candidates for p in feasible)
     tied = [p for p in feasible if p.expected_candidates <= fewest * (1 + TIE_TOLERANCE) + 1e-9]
@@ -297,12 +309,46 @@ def crowd_split(histogram: PairHistogram, bands: int, rows: int, crowd_size: int
     return float(per_entity[crowded].sum() / total) if total > 0 else 0.0
 
 
-def _larger_k_hint(threshold, histogram, perms_choices, recall) -> str:
+def list_recall(histogram: PairHistogram, top_k: int, bands, rows) -> np.ndarray | None:
+    """Expected recall of the published top-``top_k`` lists for each (``bands``, ``rows``) (arrays
+    of one shape), from each sampled entity's pairs at or above the threshold; None without them.
+
+    An entity's true list is its ``top_k`` most similar partners at or above the threshold:
+    identical sets first (found always: they are paired before banding), then its pairs from
+    the most similar bin down. Each listed pair is found with the S-curve's probability at its
+    bin's midpoint, and each entity counts its weight (``entity_weights``), so the recall is
+    found list places over all list places. A missed pair whose place a tied pair takes is
+    counted missed: the figure errs low when many pairs tie at the k-th value."""
+    lists = histogram.entity_lists
+    if lists is None or not len(lists) or histogram.threshold is None:
+        return None
+    weights = np.ones(len(lists)) if histogram.entity_weights is None else histogram.entity_weights
+    counts = np.concatenate((lists[:, :1], lists[:, :0:-1]), axis=1)  # identical, then bins from the top down
+    before = np.cumsum(counts, axis=1) - counts
+    taken = np.clip(top_k - before, 0.0, counts)  # list places each bin fills
+    places = weights @ taken.sum(axis=1)
+    if places <= 0:
+        return None
+    t = histogram.threshold
+    mids = t + (1.0 - t) * (np.arange(lists.shape[1] - 1)[::-1] + 0.5) / (lists.shape[1] - 1)
+    chance = np.concatenate(([1.0], mids))  # found chance of each column of ``taken``
+    b, r = np.broadcast_arrays(np.asarray(bands, dtype=np.float64), np.asarray(rows, dtype=np.float64))
+    found = candidate_probability(chance[None, :], b.reshape(-1, 1), r.reshape(-1, 1))
+    found[:, 0] = 1.0
+    return (found @ (weights @ taken) / places).reshape(b.shape)
+
+
+def target_recall(plan: DataPlan) -> float:
+    """The expected recall a plan's target was judged on: of the top-k lists when figured."""
+    return plan.expected_recall if plan.expected_list_recall is None else plan.expected_list_recall
+
+
+def _larger_k_hint(threshold, histogram, perms_choices, recall, top_k=None) -> str:
     k = max(perms_choices)
     while k < 1024:
         k *= 2
         try:
-            plan = data_plans(threshold, histogram, (k,), recall)[0]
+            plan = data_plans(threshold, histogram, (k,), recall, top_k)[0]
         except ParameterError:
             continue
         return f"; k={plan.perms} (b={plan.bands}, r={plan.rows}) would reach it"

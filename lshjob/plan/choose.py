@@ -22,11 +22,13 @@ from lshjob.plan.banding import (
     check_explicit,
     crowd_split,
     data_plans,
+    target_recall,
     theory_plans,
 )
 from lshjob.sign.signatures import SignatureParams
 
 THEORY_PERMS = 128  # k when none is given and the plan is not chosen from a sample
+RECALL_OF = ("lists", "pairs")  # what the recall target is met on: the top-k lists, or every pair >= threshold
 PLAN_BY = ("candidates", "cost")  # the rule of data mode: fewest expected candidates, or least predicted seconds
 COST_PERMS_OPH = (512, 1024)  # k tried beyond the default choices when planning by cost with oph
 JUDGED_RECALL = 1e-12  # a given (b, r) is judged, never refused: every plan reaches this
@@ -121,6 +123,7 @@ def choose_plan(
     plan_by: str = "candidates",
     costing: Callable[[dict], float] | None = None,
     crowd_size: int | None = None,
+    top_k: int | None = None,
 ) -> Plan:
     """Choose (k, b, r) for Jaccard ``threshold``; options are checked by the caller.
 
@@ -143,6 +146,10 @@ def choose_plan(
     seconds, :mod:`lshjob.plan.cost`): among the plans meeting ``recall``, the least predicted
     seconds; k also 512 and 1024 with ``scheme="oph"`` (one hash an element: a longer
     signature costs little to sign). Each plan's figures then hold ``predicted_seconds``.
+
+    ``top_k``: data mode meets ``recall`` on the published top-k lists rather than on every pair
+    at or above the threshold (:func:`lshjob.plan.banding.list_recall`), when the histogram holds
+    each sampled entity's pairs (sampled against all); otherwise on every pair.
     """
     if plan_by not in PLAN_BY:
         raise ParameterError(f"--plan-by must be one of {', '.join(PLAN_BY)}; got {plan_by!r}")
@@ -171,24 +178,24 @@ def choose_plan(
         if explicit:
             k = k or THEORY_PERMS
             check_explicit(k, *explicit)
-            judged = next(p for p in data_plans(threshold, histogram, (k,), JUDGED_RECALL)
+            judged = next(p for p in data_plans(threshold, histogram, (k,), JUDGED_RECALL, top_k)
                           if (p.bands, p.rows) == explicit)
-            judged.meets_target = judged.expected_recall >= recall
+            judged.meets_target = target_recall(judged) >= recall
             ranked = [judged]
             if runners_up:
                 try:
-                    ranked += data_plans(threshold, histogram, choices, recall)
+                    ranked += data_plans(threshold, histogram, choices, recall, top_k)
                 except ParameterError:
                     pass
             why, mode = f"given by --bands {bands} --rows {rows}", PlanMode.EXPLICIT
         elif plan_by == "cost":
             if not k and scheme == "oph":
                 choices = DEFAULT_PERMS_CHOICES + COST_PERMS_OPH
-            ranked = _by_cost(data_plans(threshold, histogram, choices, recall), costing)
-            why, mode = _data_why(histogram, recall, "least predicted seconds"), PlanMode.DATA
+            ranked = _by_cost(data_plans(threshold, histogram, choices, recall, top_k), costing)
+            why, mode = _data_why(histogram, recall, ranked, "least predicted seconds"), PlanMode.DATA
         else:
-            ranked = data_plans(threshold, histogram, choices, recall)
-            why, mode = _data_why(histogram, recall), PlanMode.DATA
+            ranked = data_plans(threshold, histogram, choices, recall, top_k)
+            why, mode = _data_why(histogram, recall, ranked), PlanMode.DATA
         written = None
         if max_candidates is not None and crowd_size and ranked[0].expected_candidates > max_candidates:
             fitted, written, fits = _fit_cap(ranked if mode == PlanMode.DATA else ranked[:1], histogram,
@@ -257,14 +264,16 @@ def _by_cost(plans: list, costing: Callable[[dict], float]) -> list:
     return sorted(plans, key=lambda p: (round(seconds(p), 6), p.perms, p.bands))
 
 
-def _data_why(hist: PairHistogram, recall: float, rule: str = "fewest expected candidates") -> str:
+def _data_why(hist: PairHistogram, recall: float, ranked: list, rule: str = "fewest expected candidates") -> str:
     against = "all" if hist.design == "against_all" else "each other"
     drawn = hist.source_entities
     scaled = f"; pairs scaled from a uniform sample of {drawn}" if drawn and drawn != hist.total_entities else ""
     visited = hist.visited_entities
     weighed = (f", {visited} of them visited and weighted by 1 / their chance" if visited is not None
                and visited < hist.sample_entities else "")
-    return (f"data mode: {rule} with expected recall >= {recall}; {hist.basis} of "
+    lists = ranked[0].expected_list_recall is not None
+    what = "recall of the top-k lists" if lists else "recall"
+    return (f"data mode: {rule} with expected {what} >= {recall}; {hist.basis} of "
             f"{hist.sample_entities} sampled entities against {against}{weighed} "
             f"({hist.total_entities} entities{scaled})")
 

@@ -23,6 +23,7 @@ from lshjob.sign.signatures import SignatureParams, comparable, signature_array
 
 HISTOGRAM_BINS = 1000
 ENTITY_BINS = 50  # each sampled entity's own pairs, coarser: for the sizes of its buckets
+LIST_BINS = 100  # each sampled entity's pairs at or above the threshold: for the recall of its top-k list
 
 
 def sample_keys(keys: pl.Series, m: int, seed: int = 0) -> pl.Series:
@@ -134,6 +135,9 @@ def _against_all_histogram(offsets, elements, starts, members, sizes, sample, we
     sums = np.zeros((chunks, 2 * nbins), dtype=np.float64)
     identical = np.zeros(chunks, dtype=np.float64)
     per_entity = np.zeros((len(sample), ENTITY_BINS), dtype=np.float64)  # [s, bin]: pairs of sample[s]
+    # [s, 0]: sample[s]'s identical sets; [s, 1 + bin]: its pairs in [threshold, 1), LIST_BINS bins
+    at_or_above = np.zeros((len(sample), 1 + LIST_BINS), dtype=np.float64)
+    width = (1.0 - threshold) / LIST_BINS
     for c in numba.prange(chunks):
         inter = np.zeros(n, dtype=np.int32)
         touched = np.empty(n, dtype=members.dtype)
@@ -148,12 +152,15 @@ def _against_all_histogram(offsets, elements, starts, members, sizes, sample, we
                 inter[b] = 0
                 if jac >= 1.0:
                     identical[c] += w
+                    at_or_above[s, 0] += 1
                 else:
+                    if jac >= threshold:
+                        at_or_above[s, 1 + min(int((jac - threshold) / width), LIST_BINS - 1)] += 1
                     k = 2 * min(int(jac * nbins), nbins - 1) + (1 if jac >= threshold else 0)
                     counts[c, k] += w
                     sums[c, k] += w * jac
                     per_entity[s, min(int(jac * ENTITY_BINS), ENTITY_BINS - 1)] += 1
-    return counts.sum(axis=0), sums.sum(axis=0), identical.sum(), per_entity
+    return counts.sum(axis=0), sums.sum(axis=0), identical.sum(), per_entity, at_or_above
 
 
 def visit_costs(offsets: np.ndarray, dense: np.ndarray, starts: np.ndarray) -> np.ndarray:
@@ -294,7 +301,7 @@ def sample_histogram_from_sets(
         by_id = visited[np.argsort(order[visited])]
         picked, weights = order[by_id], 1.0 / chance[by_id]
         mine = drawn.subset(by_id)
-        counts, sums, identical, per_entity = _against_all_histogram(
+        counts, sums, identical, per_entity, at_or_above = _against_all_histogram(
             mine.offsets, np.searchsorted(wanted, mine.elements), starts, posted, members.set_sizes, picked,
             weights, HISTOGRAM_BINS, 2.0 if threshold is None else threshold,
             min(len(picked), 2 * numba.get_num_threads()),
@@ -303,7 +310,8 @@ def sample_histogram_from_sets(
         hist = _make(counts, sums, len(order), n_total, identical, "against_all", threshold,
                      factor=n_total / members.size)
         hist = replace(hist, entity_pairs=per_entity * (n_total / members.size), entity_weights=weights,
-                       visited_entities=len(picked))
+                       visited_entities=len(picked),
+                       entity_lists=at_or_above * (n_total / members.size) if threshold is not None else None)
     else:
         picked = np.sort(order)
         hist = histogram(_within_jaccard(members.subset(picked)), len(picked), n_total, threshold)

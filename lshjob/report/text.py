@@ -40,14 +40,16 @@ def plan_report(summary: dict) -> str:
             f"{s['sampled_identical_pairs']:,} of identical sets (found by collapsing, not banding)"
         )
         lines.append("")
+        lists = chosen.get("expected_list_recall") is not None  # --recall-of lists: the target's column
         lines.append(
-            f"{'':2}{'k':>5}{'b':>5}{'r':>4}{'recall':>8}{'candidates':>13}{'per entity':>12}"
-            f"{'verified':>12}{'false cand.':>13}{'bucket rows':>13}"
+            f"{'':2}{'k':>5}{'b':>5}{'r':>4}{'recall':>8}" + (f"{'lists':>8}" if lists else "")
+            + f"{'candidates':>13}{'per entity':>12}{'verified':>12}{'false cand.':>13}{'bucket rows':>13}"
         )
         for i, p in enumerate(rows):
             mark = "> " if i == 0 else "  "
             lines.append(
                 f"{mark}{p['perms']:>5}{p['bands']:>5}{p['rows']:>4}{p['expected_recall']:>8.3f}"
+                + (f"{p.get('expected_list_recall') or 0:>8.3f}" if lists else "") +
                 f"{_fmt(p['expected_candidates']):>13}{_fmt(p['candidates_per_entity']):>12}"
                 f"{_fmt(p['expected_verified']):>12}{_fmt(p['expected_false_candidates']):>13}"
                 f"{p['bucket_rows']:>13,}"
@@ -72,7 +74,10 @@ def run_report(m: dict) -> str:
         p = plan["predicted"]
         lines.append(
             f"plan ({plan['mode']}): k={plan['perms']}, b={plan['bands']}, r={plan['rows']}; predicted recall "
-            f"{p['expected_recall']:.3f}, {p['expected_candidates']:,.0f} candidate pairs"
+            f"{p['expected_recall']:.3f}"
+            + ("" if p.get("expected_list_recall") is None else
+               f" (of the top-{m['top_k_effective']} lists: {p['expected_list_recall']:.3f})")
+            + f", {p['expected_candidates']:,.0f} candidate pairs"
         )
     lines.append(
         f"entities {c['entities']:,} ({c['representatives']:,} after collapsing identical sets), "
