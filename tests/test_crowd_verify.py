@@ -107,3 +107,29 @@ def test_crowd_pairs_below_both_floors_are_not_sought(seed):
     assert all(jaccard[p] >= threshold and got_rows[p] == (jaccard[p], crowds_in[p]) for p in got_rows)
     skipped = {p for p, j in jaccard.items() if j >= threshold} - set(got_rows)
     assert len(skipped) > 10  # the floors left pairs out
+
+
+def test_a_crowd_finding_more_pairs_than_its_room_keeps_that_many_and_is_counted():
+    # Oracle: exact Jaccard with Python sets. Crowd 1: 40 near-copies (every pair similar, 780
+    # pairs) with room for 100; crowd 2: 30 sets whose pairs reach the threshold rarely, untouched.
+    rng = np.random.default_rng(5)
+    base = list(range(100, 140))
+    sets = [sorted(set(base) - {int(rng.integers(100, 140))}) for _ in range(40)]
+    sets += [sorted({7} | set(int(x) for x in rng.integers(200, 260, 3))) for _ in range(30)]
+    rows = pl.DataFrame({"entity": np.repeat(np.arange(len(sets)), [len(s) for s in sets]),
+                         "element": np.concatenate([np.array(s) for s in sets])})
+    element_sets = ElementSets.from_sets(rows)
+    table = pl.DataFrame({"crowd": [1] * 40 + [2] * 30, "rep": np.arange(70)})
+    block = crowd_pairs_between(table, (0, 69), (0, 69))
+    truth = {(a, b) for lo, hi in ((0, 40), (40, 70)) for a, b in combinations(range(lo, hi), 2)
+             if len(set(sets[a]) & set(sets[b])) / len(set(sets[a]) | set(sets[b])) >= 0.5}
+    tally: dict = {}
+    got = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, 0.5, tally=tally, room=100)))
+    pairs = set(zip(got["left_rep"].to_list(), got["right_rep"].to_list()))
+    first = {p for p in pairs if p[1] < 40}
+    assert len(first) == 100 and first <= truth  # room for 100: the first 100 found, each right
+    assert {p for p in truth if p[0] >= 40} == pairs - first  # the other crowd whole
+    assert tally == {"crowds_cut": 1}
+    whole: dict = {}
+    every = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, 0.5, tally=whole)))
+    assert set(zip(every["left_rep"].to_list(), every["right_rep"].to_list())) == truth and whole == {}

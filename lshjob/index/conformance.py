@@ -210,7 +210,6 @@ def _check_join_case(engine, tmp: Path, name: str, every: pl.DataFrame, shared: 
         path = tmp / f"{name}-buckets-{n}.parquet"
         shared.slice(start, stop - start).write_parquet(path)
         files.append(path)
-    pairs, skew = reference_candidates(every, bands, settings.max_bucket)
     for split in (None, ranges):
         how = f"{name}, {'whole' if split is None else 'split by ranges'}"
         target = tmp / f"{name}-candidates{'' if split is None else '-ranges'}"
@@ -218,6 +217,8 @@ def _check_join_case(engine, tmp: Path, name: str, every: pl.DataFrame, shared: 
         out = engine.candidates(files, bands, target, settings, bucket_rows=every.height, ranges=split)
         table, blocks = _read_candidates(out, split)
         crowded = crowd_rows(out.crowds)
+        # an engine listing crowds takes the crowd cap (lshjob.index.join.base)
+        pairs, skew = reference_candidates(every, bands, settings.crowd_cap() if out.crowds else settings.max_bucket)
         check_contract(table, f"candidates ({how})", CANDIDATES_SCHEMA,
                        [("left_rep < right_rep", pl.col("left_rep") < pl.col("right_rep")),
                         ("bands_shared >= 1", pl.col("bands_shared") >= 1)])
@@ -254,7 +255,11 @@ def check_join(engine, folder: Path | None = None) -> None:
         rows_per_band = replace(settings, dedupe_up_to=0, max_repeat=4.0)
         _check_join_case(engine, tmp, "rows-per-band", every, shared, 4, rows_per_band, ranges)
         # and may list the members of large buckets (crowds) instead of their pairs
-        _check_join_case(engine, tmp, "crowds", every, shared, 4, replace(rows_per_band, crowd_size=4), ranges)
+        _check_join_case(engine, tmp, "crowds", every, shared, 4, replace(rows_per_band, crowd_size=4, max_crowd=8),
+                         ranges)
+        # crowds up to a larger cap than the pairs it writes (the largest bucket still over it)
+        _check_join_case(engine, tmp, "large-crowds", every, shared, 4,
+                         replace(rows_per_band, crowd_size=4, max_crowd=20), ranges)
 
         alone = pl.DataFrame({"band": [0, 0, 1, 1], "bucket": [1, 2, 3, 4], "rep": [11, 13, 11, 13]},
                              schema=BUCKET_ROWS_SCHEMA)

@@ -16,7 +16,7 @@ from dataclasses import dataclass, field, fields
 
 from lshjob.errors import ParameterError
 from lshjob.index import engines as stage_engines
-from lshjob.index.join import DEFAULT_MAX_BUCKET
+from lshjob.index.join import DEFAULT_MAX_BUCKET, DEFAULT_MAX_CROWD
 from lshjob.ingest.spec import EventSpec
 from lshjob.plan.banding import check_explicit
 from lshjob.plan.choose import PLAN_BY, RECALL_OF, THEORY_PERMS
@@ -144,7 +144,7 @@ RUN_TABLE: tuple[Option, ...] = (  # in the order of lshjob run --help
     Option("rows", int, None, "Override the planner: rows per band r.", low=1),
     Option("recall", float, 0.95, "Planner's expected-recall target.", low=0.0, high=1.0,
            open_low=True, open_high=True),
-    Option("recall_of", str, "pairs", "What --recall is the recall of: 'lists' (the published top-k lists) or "
+    Option("recall_of", str, "lists", "What --recall is the recall of: 'lists' (the published top-k lists) or "
            "'pairs' (every pair at or above the threshold).", choices=RECALL_OF),
     Option("count", str, _spec_default("count"), "Column with a count or weight per event.", part=SPEC),
     Option("min_count", float, _spec_default("min_count"), "Keep elements seen at least this often.", part=SPEC),
@@ -157,6 +157,9 @@ RUN_TABLE: tuple[Option, ...] = (  # in the order of lshjob run --help
     Option("seed", int, 1, "Seed of the hash family."),
     Option("scheme", str, "kperm", "Signature scheme: kperm or oph.", choices=SCHEMES),
     Option("max_bucket", int, DEFAULT_MAX_BUCKET, "Skip buckets holding more entities.", low=2),
+    Option("max_crowd", int, DEFAULT_MAX_CROWD, "Buckets verified as crowds (long-tailed data, one part, local "
+           "verification) may hold this many entities; larger ones are split by the next band, then skipped.",
+           low=2),
     Option("max_candidates", float, 2e9, "Refuse plans predicting more candidate pairs.", low=0),
     Option("memory", str, None, "Memory budget, e.g. 8GB; sets that do not fit are read a key range at a time.",
            default_text="half the machine", config_types=(str, int)),
@@ -210,6 +213,7 @@ class RunOptions:
     seed: int = default_of("seed")
     scheme: str = default_of("scheme")
     max_bucket: int = default_of("max_bucket")
+    max_crowd: int = default_of("max_crowd")  # buckets verification pairs as crowds (lshjob.index.join.base)
     max_candidates: float = default_of("max_candidates")
     memory: str | None = default_of("memory")
     parts: int | None = default_of("parts")  # key ranges held one at a time; None: as the memory budget needs

@@ -222,7 +222,8 @@ def _projection(plan: Plan, shape: dict, samples: list, load: Workload, scheme: 
     figures = dict(plan.predicted or {}, perms=plan.perms, bands=plan.bands)
     projected = project_counts(profile, samples, figures, load.entities, load.events,
                                load.membership_rows / max(load.events, 1), scheme, top_k, JoinSettings.max_bucket,
-                               JoinSettings.dedupe_up_to, JoinSettings.max_repeat, JoinSettings.crowd_size)
+                               JoinSettings.dedupe_up_to, JoinSettings.max_repeat, JoinSettings.crowd_size,
+                               JoinSettings().crowd_cap())
     projected.visits = profile.visits_at
     return projected
 

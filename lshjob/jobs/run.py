@@ -109,6 +109,15 @@ class _Stages:
         self.peak[name] = max(self.peak.get(name, 0), peak_bytes())
 
 
+def _crowd_cap(options: RunOptions, in_parts: bool) -> int:
+    """``--max-crowd`` where the local verification pairs crowds of one part, whose kernel
+    writes only the pairs found; else ``--max-bucket`` (pairs made between parts, or by
+    another engine, are made whether found or not)."""
+    if in_parts or options.engine_names()["verify"] != "local":
+        return options.max_bucket
+    return max(options.max_bucket, options.max_crowd)
+
+
 def run_job(
     events: str | Path,
     spec: EventSpec,
@@ -185,7 +194,8 @@ def run_job(
                     limit = duckdb_limit(memory, current_bytes(), built.shared_rows, threads)
                 require_duckdb_memory(limit, built.shared_rows, current_bytes(), memory, threads)
                 settings = JoinSettings(memory_limit=f"{limit // 2**20}MiB", temp_directory=str(work / "spill"),
-                                        threads=threads, max_bucket=options.max_bucket)
+                                        threads=threads, max_bucket=options.max_bucket,
+                                        max_crowd=_crowd_cap(options, in_parts))
                 candidates = work / ("candidates" if in_parts else "candidates.parquet")
                 joined = options.stage_engine("join").candidates(
                     built.bucket_files, plan.bands, candidates, settings, built.bucket_rows,
@@ -193,8 +203,9 @@ def run_job(
             skew = joined.skew
             counts["candidate_pairs"] = joined.pairs
             if skew["skipped_pairs"]:
-                warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over --max-bucket "
-                                f"{options.max_bucket}, still over it once split) were not compared")
+                flag = "--max-bucket" if skew["max_bucket"] == options.max_bucket else "--max-crowd"
+                warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over {flag} "
+                                f"{skew['max_bucket']}, still over it once split) were not compared")
 
             with stages("verify"):
                 crowds = {} if joined.crowds is None else {"crowds": joined.crowds}  # large buckets' members
@@ -206,6 +217,9 @@ def run_job(
                                                                  built.params, settings, **crowds)
             counts["verified_pairs"] = tally.get("over_threshold", verified.height)
             counts["pairs_for_lists"] = verified.height
+            if tally.get("crowds_cut"):
+                warnings.append(f"{tally['crowds_cut']} crowds found more pairs over the threshold than one crowd may "
+                                "write (16.8 million); only those were kept: lower --max-crowd to split them")
         built.store = None  # the sets are not needed any more: publishing gets their memory
 
         if top_k < options.top_k and len(built.keys) > 1:

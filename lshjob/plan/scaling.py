@@ -162,7 +162,7 @@ class Projection:
 def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict, entities: float, events: float,
                    membership_share: float, scheme: str, top_k: int, max_bucket: float,
                    rows_above: float = math.inf, max_repeat: float = 0.0,
-                   crowd_size: float = math.inf) -> Projection:
+                   crowd_size: float = math.inf, crowd_cap: float | None = None) -> Projection:
     """The counts a run of ``entities`` sets and ``events`` events would see under the plan
     of ``figures`` (perms, bands), projected from the sample's ``profile`` (module docstring).
     ``runs``: the counts of runs of the sample (or of nested samples of it), smallest first:
@@ -176,7 +176,8 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
     ``max_repeat`` times (as in the sample's run); else one row a pair, the rows divided by
     the sample run's repeats. Written a row per band, the pairs of buckets of ``crowd_size``
     members or more are left to verification (crowds): their share of the pairs, at full size
-    and in each run (``Projection.runs``), from the sample's buckets."""
+    and in each run (``Projection.runs``), from the sample's buckets; buckets are then kept up
+    to ``crowd_cap`` members (``JoinSettings.crowd_cap``) instead of ``max_bucket``."""
     last = runs[-1] if runs else None
     run = last.workload if last else None
     share = profile.entities / max(entities, 1.0)
@@ -196,6 +197,9 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
     if run is not None and run.candidate_pairs > 0:
         repeats = last.repeats
         rows_per_band = kept_full > rows_above and repeats <= max_repeat
+        if rows_per_band and crowd_cap is not None and crowd_cap > max_bucket:  # more kept: still a row per band
+            return project_counts(profile, runs, figures, entities, events, membership_share, scheme, top_k,
+                                  crowd_cap, rows_above, max_repeat, crowd_size)
         candidates = kept_full if rows_per_band else kept_full / repeats
         if last.skew is None:  # no skew report: the run's own count, scaled
             candidates = run.candidate_pairs * kept_ratio

@@ -4,6 +4,7 @@
 from lshjob.index.join.base import (
                                     CANDIDATES_SCHEMA,
                                     DEFAULT_MAX_BUCKET,
+                                    DEFAULT_MAX_CROWD,
                                     SKEW_COLUMNS,
                                     JoinEngine,
                                     JoinOutput,
@@ -11,5 +12,6 @@ from lshjob.index.join.base import (
 )
 from lshjob.index.join.memory import duckdb_beyond, duckdb_limit, duckdb_need, join_threads, require_duckdb_memory
 
-__all__ = ["CANDIDATES_SCHEMA", "DEFAULT_MAX_BUCKET", "SKEW_COLUMNS", "JoinEngine", "JoinOutput", "JoinSettings",
+__all__ = ["CANDIDATES_SCHEMA", "DEFAULT_MAX_BUCKET", "DEFAULT_MAX_CROWD", "SKEW_COLUMNS", "JoinEngine", "JoinOutput",
+           "JoinSettings",
            "duckdb_beyond", "duckdb_limit", "duckdb_need", "join_threads", "require_duckdb_memory"]

@@ -3,7 +3,9 @@
 Input: BUCKET_ROWS files (:mod:`lshjob.index.band.base`; rows of shared buckets only) and
 the number of all bucket rows. Buckets holding more than ``max_bucket`` representatives are
 split by each member's bucket in the next band ((j + 1) mod b); sub-buckets still over the
-cap are left out and counted.
+cap are left out and counted. An engine that lists crowds (below) takes ``max_crowd`` as the
+cap instead, when it writes a row per band and ``crowd_size`` <= ``max_bucket`` (every bucket
+over ``max_bucket`` is then a crowd); the skew report's ``max_bucket`` is the cap it took.
 
 Output, CANDIDATES: Parquet with ``left_rep`` < ``right_rep`` (Int64 entity ids of
 representatives), ``bands_shared`` Int32 >= 1 (the buckets within the cap, or sub-buckets of
@@ -34,6 +36,7 @@ from typing import ClassVar, Protocol, runtime_checkable
 from lshjob.contracts.tables import CANDIDATES
 
 DEFAULT_MAX_BUCKET = 2000
+DEFAULT_MAX_CROWD = 50_000
 
 CANDIDATES_SCHEMA = dict(CANDIDATES.schema)  # declared once, in lshjob.contracts.tables
 
@@ -57,6 +60,20 @@ class JoinSettings:
     # Then buckets of this many members or more are crowds (module docstring): their pairs,
     # most of them on long-tailed data, are made by verification, a bucket's sets at a time.
     crowd_size: int = 64
+    # And crowds may hold up to this many members (at least ``max_bucket``; ``crowd_size`` at
+    # most ``max_bucket``): a larger bucket is split by the next band and, still over, left out.
+    # Verification pairs a crowd by prefix filtering, so a crowd of many tiny sets of popular
+    # elements costs about its members, not its pairs; capped at ``max_bucket``, the buckets
+    # every tiny set of a popular element lands in were left out, and with them its list
+    # (bench/RESULTS.md, "Crowds up to 50,000 members").
+    max_crowd: int = DEFAULT_MAX_CROWD
+
+    def crowd_cap(self) -> int:
+        """The cap on a bucket's members when large buckets go to verification as crowds: the
+        crowd cap when every bucket over ``max_bucket`` is a crowd (``crowd_size`` <= ``max_bucket``)."""
+        if self.crowd_size <= self.max_bucket:
+            return max(self.max_bucket, self.max_crowd)
+        return self.max_bucket
 
 
 @dataclass(frozen=True)

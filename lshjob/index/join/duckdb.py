@@ -10,7 +10,8 @@ bucket), ``sql/bucket_skew.sql``, ``sql/candidates.sql`` and, for a run in parts
 seven times the join on long-tailed data; verification deduplicates the pairs it keeps.
 Then buckets of ``settings.crowd_size`` members or more are not paired in SQL at all: their
 members go to a CROWDS file (``sql/crowds.sql``) and verification pairs them up, a bucket's
-sets at a time (no pair row written or read back).
+sets at a time (no pair row written or read back); buckets are then split, or left out, only
+over ``settings.max_crowd`` members (``JoinSettings.crowd_cap``).
 DuckDB runs with a memory limit and a spill directory, so a
 join larger than memory spills to disk instead of failing (its memory model:
 :mod:`lshjob.index.join.memory`).
@@ -74,6 +75,13 @@ def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings,
         query = load_sql("candidate_rows" if per_band else "candidates").strip().rstrip(";")
         if per_band:
             params["crowd_size"] = max(3, settings.crowd_size)
+            cap = settings.crowd_cap()
+            if cap != settings.max_bucket:  # buckets over max_bucket are crowds up to the crowd cap
+                params["max_bucket"] = cap
+                con.execute(load_sql("split_oversize"), {"max_bucket": cap, "bands": bands})
+                skew_row = con.execute(load_sql("bucket_skew"),
+                                       {"max_bucket": cap, "bucket_rows": bucket_rows}).fetchone()
+                skew = {name: int(value) for name, value in zip(columns, skew_row)}
         # scratch of the run (not flushed to disk: a crashed run never reads it again)
         if part_ranges is None:
             with atomic_file(out, fsync=False) as tmp:
@@ -93,7 +101,7 @@ def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings,
         crowds, crowd_pairs = _write_crowds(con, params, out) if per_band else (None, 0)
     finally:
         con.close()
-    skew["max_bucket"] = settings.max_bucket
+    skew["max_bucket"] = params["max_bucket"]
     return {"candidate_pairs": int(count) + crowd_pairs, "skew": skew, "rows_per_band": per_band,
             "crowds": crowds}
 

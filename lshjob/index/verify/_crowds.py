@@ -10,9 +10,13 @@ import polars as pl
 
 from lshjob.core._jit import numba
 from lshjob.core.search import first_at_least
+from lshjob.index.verify._crowd_members import by_size, crowds_by_band, floor_within
 from lshjob.index.verify._jaccard import _intersection
 
 MAX_PAIRS = 1 << 22  # pairs made at a time (three 8-byte values each)
+# Pairs one crowd may write (within one range): 470 MB of buffers. A crowd finding more (tens of
+# thousands of sets, every pair similar) keeps those and is counted (``tally["crowds_cut"]``).
+CROWD_ROOM = 1 << 24
 
 
 @numba.njit(parallel=True, cache=True)
@@ -173,12 +177,13 @@ def _keep(local, local_off, common, mem, x, y, la, lb, need, threshold, crowd_at
 
 
 @numba.njit(parallel=True, cache=True)
-def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, threshold, floor, crowd_at,
-                        in_bands, row_of, bands, out_left, out_right, out_jac, out_bands, found):
+def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, room, threshold, floor, crowd_at,
+                        in_bands, row_of, bands, out_left, out_right, out_jac, out_bands, found, full):
     """The pairs of each crowd (members ``members[start[c]:start[c] + count[c]]``, one range,
     by set size ascending) whose Jaccard reaches ``threshold``: the same pairs, with the same
     values, as :func:`_crowd_pairs`, without intersecting every pair. Written from slot
-    ``base[c]`` on, their number in ``found[c]``.
+    ``base[c]`` on, their number in ``found[c]``; at most ``room[c]`` of them: a crowd that
+    finds more stops there, with ``full[c]`` set.
 
     A crowd's members share the elements every one of them holds (C; on long-tailed data the
     popular element that made the bucket), so |A n B| = |C| + |A' n B'| with A' = A minus C. A
@@ -217,6 +222,8 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
             rows[x] = row_of[mem[x] - first]
             bits[x] = in_bands[rows[x]]
         out = base[c]
+        end = base[c] + room[c]
+        stop = False
         for x in range(len(mem)):
             la = size[x]
             for y in range(x):  # partners whose needed intersection C alone gives
@@ -225,10 +232,13 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                     break  # later partners are at least as large
                 sought = min(at[x], at[y])
                 if size[y] >= sought * la - 1e-9:
+                    if out >= end:
+                        stop = True
+                        break
                     out = _keep(local, local_off, common, mem, x, y, la, size[y], _need(la, size[y], sought),
                                 sought, crowd_at, bits, rows, bands[c], out, out_left, out_right, out_jac, out_bands)
             low = first_at_least(size, 0, x, lowest * la - 1e-9)  # the size filter, sizes ascending
-            for q in range(local_off[x], local_off[x] + prefix[x]):
+            for q in range(local_off[x], local_off[x] + (0 if stop else prefix[x])):
                 r = local[q]
                 for t in range(first_at_least(posted, post_off[r], post_off[r + 1], low), post_off[r + 1]):
                     y = posted[t]
@@ -241,10 +251,18 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, t
                     if need > common:  # (the others were intersected above)
                         sought = min(at[x], at[y])
                         if size[y] >= sought * la - 1e-9:
+                            if out >= end:
+                                stop = True
+                                break
                             out = _keep(local, local_off, common, mem, x, y, la, size[y],
                                         _need(la, size[y], sought), sought, crowd_at, bits, rows, bands[c],
                                         out, out_left, out_right, out_jac, out_bands)
+                if stop:
+                    break
+            if stop:
+                break
         found[c] = out - base[c]
+        full[c] = stop
 
 
 def _by_crowd(crowds: np.ndarray, reps: np.ndarray, bands: np.ndarray | None, first: int, last: int):
@@ -291,19 +309,21 @@ def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: in
 
 
 def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int, threshold: float,
-                 max_pairs: int = MAX_PAIRS, floors=None):
+                 max_pairs: int = MAX_PAIRS, floors=None, tally: dict | None = None, room: int = CROWD_ROOM):
     """:func:`verify_crowds`'s rows, a chunk of at most ``max_pairs`` pairs made at a time, so
     the caller can deduplicate as they come. ``floors()``, when given, returns each entity id's
     top-k floor now (:func:`lshjob.index._ranking.list_cuts`), read before each chunk: the
-    pairs below both sides' floors are not sought (within one range), nor returned."""
+    pairs below both sides' floors are not sought (within one range), nor returned. Within one
+    range a crowd writes at most ``room`` pairs; ``tally["crowds_cut"]`` counts those cut there."""
     (a_members, a_crowd, a_start, a_count, b_members, b_crowd, b_start, b_count, same, a_band), pairs = block
-    crowd_at, in_bands, row_of, crowd_band = _crowds_by_band(a_members, a_crowd, a_band, a_start, left_first,
+    crowd_at, in_bands, row_of, crowd_band = crowds_by_band(a_members, a_crowd, a_band, a_start, left_first,
                                                    len(left_sets.offsets) - 1)
-    a_members = _by_size(a_members, a_crowd, left_sets, left_first)  # each crowd's members by set size
-    b_members = a_members if same else _by_size(b_members, b_crowd, right_sets, right_first)
-    cum = np.cumsum(pairs)
+    a_members = by_size(a_members, a_crowd, left_sets, left_first)  # each crowd's members by set size
+    b_members = a_members if same else by_size(b_members, b_crowd, right_sets, right_first)
+    slots = np.minimum(pairs, room) if same else pairs  # found pairs only, within one range
+    cum = np.cumsum(slots)
     bounds, lo = [], 0
-    while lo < len(pairs):
+    while lo < len(slots):
         done = cum[lo - 1] if lo else 0
         hi = max(lo + 1, int(np.searchsorted(cum, done + max_pairs, side="right")))
         bounds.append((lo, hi, int(done)))
@@ -318,11 +338,14 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
         size = int(cum[hi - 1] - done)
         base = np.concatenate([[0], cum[lo:hi - 1] - done]).astype(np.int64)
         if same:  # the pairs found written first in each crowd's slots
-            found = np.zeros(hi - lo, dtype=np.int64)
-            floor = _floor_within(floors, left_first, len(left_sets.offsets) - 1)
+            found, full = np.zeros(hi - lo, dtype=np.int64), np.zeros(hi - lo, dtype=np.bool_)
+            floor = floor_within(floors, left_first, len(left_sets.offsets) - 1)
             _crowd_pairs_prefix(left_sets.offsets, left_sets.elements, left_first, a_members, a_start[lo:hi],
-                                a_count[lo:hi], base, threshold, floor, crowd_at, in_bands, row_of, crowd_band[lo:hi],
-                                out_left, out_right, out_jac, out_bands, found)
+                                a_count[lo:hi], base, np.ascontiguousarray(slots[lo:hi], dtype=np.int64), threshold,
+                                floor, crowd_at, in_bands, row_of, crowd_band[lo:hi], out_left, out_right, out_jac,
+                                out_bands, found, full)
+            if tally is not None and full.any():
+                tally["crowds_cut"] = tally.get("crowds_cut", 0) + int(full.sum())
             keep = np.arange(int(found.sum())) + np.repeat(base - (np.cumsum(found) - found), found)
         else:
             out_jac[:size] = -1.0
@@ -332,69 +355,3 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
             keep = np.flatnonzero(out_jac[:size] >= threshold)
         yield pl.DataFrame({"left_rep": out_left[keep], "right_rep": out_right[keep], "jaccard": out_jac[keep],
                             "bands_shared": out_bands[keep] if same else np.ones(len(keep), dtype=np.int32)})
-
-
-def _floor_within(floors, first: int, sets: int) -> np.ndarray:
-    """The floors of entity ids first..first + sets - 1 (-1.0 beyond those known), or an
-    empty array without ``floors``."""
-    if floors is None:
-        return np.empty(0)
-    known = np.asarray(floors(), dtype=np.float64)[first:first + sets]  # a view (no copy: once a chunk)
-    return known if len(known) == sets else np.concatenate([known, np.full(sets - len(known), -1.0)])
-
-
-def _crowds_by_band(members: np.ndarray, crowd: np.ndarray, band: np.ndarray | None, start: np.ndarray, first: int,
-                    sets: int):
-    """Each member's crowd a band (a matrix, a row a member, 0 where none; int32: crowds have 3
-    members or more), the bands (mod 64) it has a crowd in (bits), each entity id's row (from
-    ``first``; -1 for none), and each crowd's band (-1 for all when the bands are not known)."""
-    if band is None:
-        return (np.zeros((1, 1), dtype=np.int32), np.zeros(1, dtype=np.uint64), np.zeros(1, dtype=np.int64),
-                np.full(len(start), -1, dtype=np.int64))
-    band = np.ascontiguousarray(band, dtype=np.int64)
-    crowd_at, in_bands, row_of = _band_rows(np.ascontiguousarray(members - first, dtype=np.int64),
-                                            np.ascontiguousarray(crowd, dtype=np.int64), band, sets,
-                                            int(band.max()) + 1)
-    return crowd_at, in_bands, row_of, np.ascontiguousarray(band[start], dtype=np.int64)
-
-
-@numba.njit(cache=True)
-def _band_rows(local, crowd, band, sets, bands):
-    """:func:`_crowds_by_band`'s matrix, bits and rows in two passes (rows in order of first
-    appearance)."""
-    row_of = np.full(sets, -1, dtype=np.int64)
-    rows = 0
-    for m in range(len(local)):
-        if row_of[local[m]] < 0:
-            row_of[local[m]] = rows
-            rows += 1
-    crowd_at = np.zeros((rows, bands), dtype=np.int32)  # crowd ids: 1..crowds, each of 3 members or more
-    in_bands = np.zeros(rows, dtype=np.uint64)
-    for m in range(len(local)):
-        r = row_of[local[m]]
-        crowd_at[r, band[m]] = crowd[m]
-        in_bands[r] |= np.uint64(1) << np.uint64(band[m] % 64)
-    return crowd_at, in_bands, row_of
-
-
-def _by_size(members: np.ndarray, crowd: np.ndarray, sets, first: int) -> np.ndarray:
-    """``members`` (grouped by ``crowd``) reordered by set size, then id, within each crowd."""
-    out = np.ascontiguousarray(members, dtype=np.int64).copy()
-    if len(out):
-        crowd = np.ascontiguousarray(crowd, dtype=np.int64)
-        bounds = np.flatnonzero(np.concatenate([[True], crowd[1:] != crowd[:-1], [True]])).astype(np.int64)
-        _sort_by_size(out, bounds, sets.offsets, first)
-    return out
-
-
-@numba.njit(parallel=True, cache=True)
-def _sort_by_size(members, bounds, offsets, first):
-    """Sort each run ``members[bounds[g]:bounds[g + 1]]`` by (set size, id), in place."""
-    for g in numba.prange(len(bounds) - 1):
-        lo, hi = bounds[g], bounds[g + 1]
-        key = np.empty(hi - lo, dtype=np.int64)
-        for m in range(lo, hi):
-            key[m - lo] = ((offsets[members[m] - first + 1] - offsets[members[m] - first]) << 32) | (members[m] - first)
-        key.sort()
-        for m in range(lo, hi):
-            members[m] = (key[m - lo] & 0xFFFFFFFF) + first

@@ -77,7 +77,8 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
             if crowded is not None:
                 held.settle()  # the join's pairs give the first floors
                 for piece in crowd_pieces(crowded, left, store.ranges[i][0], right, store.ranges[j][0], threshold,
-                                          floors=held.floors_now if cut is not None else None):
+                                          floors=held.floors_now if cut is not None else None,
+                                          tally=settings.tally):
                     held.add(piece)
             block = held.result()
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
