@@ -321,19 +321,28 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
     a_members = by_size(a_members, a_crowd, left_sets, left_first)  # each crowd's members by set size
     b_members = a_members if same else by_size(b_members, b_crowd, right_sets, right_first)
     slots = np.minimum(pairs, room) if same else pairs  # found pairs only, within one range
+    large = 0
+    if same:  # crowds that would fill a chunk alone go first, as many a chunk as there are threads
+        big = slots > max_pairs // numba.get_num_threads()
+        order = np.concatenate([np.flatnonzero(big)[np.argsort(-a_count[big], kind="stable")], np.flatnonzero(~big)])
+        a_start, a_count, crowd_band, slots = a_start[order], a_count[order], crowd_band[order], slots[order]
+        large = int(big.sum())
     cum = np.cumsum(slots)
-    bounds, lo = [], 0
+    bounds = [(lo, min(lo + numba.get_num_threads(), large)) for lo in range(0, large, numba.get_num_threads())]
+    lo = large
     while lo < len(slots):
         done = cum[lo - 1] if lo else 0
         hi = max(lo + 1, int(np.searchsorted(cum, done + max_pairs, side="right")))
-        bounds.append((lo, hi, int(done)))
+        bounds.append((lo, hi))
         lo = hi
-    # one set of buffers for every chunk: fresh ones cost a page fault each 4 KiB
+    bounds = [(lo, hi, int(cum[lo - 1]) if lo else 0) for lo, hi in bounds]
+    # one set of buffers for every chunk (slots are written only by the pairs found; fresh
+    # buffers cost a page fault each 4 KiB)
     size = max(int(cum[hi - 1] - done) for lo, hi, done in bounds)
     out_left = np.empty(size, dtype=np.int64)
     out_right = np.empty(size, dtype=np.int64)
     out_jac = np.empty(size)
-    out_bands = np.ones(size, dtype=np.int32)
+    out_bands = np.empty(size, dtype=np.int32) if same else np.ones(size, dtype=np.int32)
     for lo, hi, done in bounds:
         size = int(cum[hi - 1] - done)
         base = np.concatenate([[0], cum[lo:hi - 1] - done]).astype(np.int64)
