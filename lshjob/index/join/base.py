@@ -65,7 +65,7 @@ class JoinSettings:
     # Verification pairs a crowd by prefix filtering, so a crowd of many tiny sets of popular
     # elements costs about its members, not its pairs; capped at ``max_bucket``, the buckets
     # every tiny set of a popular element lands in were left out, and with them its list
-    # (bench/RESULTS.md, "Crowds up to 50,000 members").
+    # (docs/performance.md, "plans on the lists' recall, crowds up to 50,000 members").
     max_crowd: int = DEFAULT_MAX_CROWD
 
     def crowd_cap(self) -> int:

@@ -57,12 +57,12 @@ def by_size(members: np.ndarray, crowd: np.ndarray, sets, first: int) -> np.ndar
     if len(out):
         crowd = np.ascontiguousarray(crowd, dtype=np.int64)
         bounds = np.flatnonzero(np.concatenate([[True], crowd[1:] != crowd[:-1], [True]])).astype(np.int64)
-        _sortby_size(out, bounds, sets.offsets, first)
+        _sort_by_size(out, bounds, sets.offsets, first)
     return out
 
 
 @numba.njit(parallel=True, cache=True)
-def _sortby_size(members, bounds, offsets, first):
+def _sort_by_size(members, bounds, offsets, first):
     """Sort each run ``members[bounds[g]:bounds[g + 1]]`` by (set size, id), in place."""
     for g in numba.prange(len(bounds) - 1):
         lo, hi = bounds[g], bounds[g + 1]
