@@ -13,7 +13,6 @@ from lshjob.cli.app import app
 from lshjob.errors import ParameterError
 from lshjob.index.join.base import JoinSettings
 from lshjob.ingest.loading import load_membership
-from lshjob.jobs.options import default_of
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.plan import similarity
 from lshjob.plan.banding import crowd_split, data_plans
@@ -21,7 +20,6 @@ from lshjob.plan.choose import choose_plan
 
 SPEC = EventSpec(entity="patron", element="title")
 N, SAMPLE, CROWD = 4000, 300, JoinSettings.crowd_size
-TOP_K = default_of("top_k")  # the run plans on the recall of its top-k lists (--recall-of lists)
 
 
 def long_tailed(n: int, seed: int = 7, median: float = 4.0, spread: float = 1.2, exponent: float = 1.2) -> pl.DataFrame:
@@ -57,7 +55,7 @@ def loans(tmp_path_factory) -> tuple[Path, pl.DataFrame]:
 def split(loans):
     sets = load_membership(loans[0], SPEC)[0]
     hist = similarity.sample_histogram_from_sets(sets, SAMPLE, seed=0, threshold=0.5)
-    best = data_plans(0.5, hist, top_k=TOP_K)[0]
+    best = data_plans(0.5, hist)[0]
     crowded = crowd_split(hist, best.bands, best.rows, CROWD)
     return hist, best, crowded
 
@@ -93,7 +91,7 @@ def test_a_plan_over_the_cap_only_by_its_crowds_runs(loans, split, tmp_path):
     hist, best, crowded = split
     cap = best.expected_candidates * (1 - crowded / 2)  # over all candidates, above those written
     with pytest.raises(ParameterError, match="more than --max-candidates"):  # the cap on all pairs
-        choose_plan(0.5, hist, max_candidates=cap, runners_up=0, top_k=TOP_K)
+        choose_plan(0.5, hist, max_candidates=cap, runners_up=0)
     path, events = loans
     capped = run_job(path, SPEC, RunOptions(threshold=0.5, sample_size=SAMPLE, max_candidates=cap), tmp_path / "a")
     run_job(path, SPEC, RunOptions(threshold=0.5, sample_size=SAMPLE), tmp_path / "b")
