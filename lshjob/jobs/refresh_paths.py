@@ -28,6 +28,7 @@ from lshjob.jobs import refresh_index as index_state
 from lshjob.jobs import refresh_publish
 from lshjob.jobs.prepare import plan_run
 from lshjob.jobs.refresh_fold import Folded, scan_periods
+from lshjob.plan.banding import target_recall_of
 from lshjob.plan.choose import Plan
 from lshjob.plan.similarity import sample_keys
 from lshjob.runtime import provenance
@@ -84,13 +85,6 @@ def sampled_recall(store: Path, members: pl.DataFrame, folded: Folded, plan: dic
     judged = plan_run(sets, run_options, total_entities=len(keys))
     figures = judged.to_dict()
     return target_recall_of(figures.get("predicted", {})), figures
-
-
-def target_recall_of(predicted: dict) -> float | None:
-    """The expected recall a plan's figures met the target on: of the top-k lists when planned
-    so (``--recall-of lists``), else of every pair at or above the threshold."""
-    lists = predicted.get("expected_list_recall")
-    return predicted.get("expected_recall") if lists is None else lists
 
 
 def plan_from_window(store: Path, folded: Folded, run_options,

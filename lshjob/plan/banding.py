@@ -333,14 +333,19 @@ def list_recall(histogram: PairHistogram, top_k: int, bands, rows) -> np.ndarray
     mids = t + (1.0 - t) * (np.arange(lists.shape[1] - 1)[::-1] + 0.5) / (lists.shape[1] - 1)
     chance = np.concatenate(([1.0], mids))  # found chance of each column of ``taken``
     b, r = np.broadcast_arrays(np.asarray(bands, dtype=np.float64), np.asarray(rows, dtype=np.float64))
-    found = candidate_probability(chance[None, :], b.reshape(-1, 1), r.reshape(-1, 1))
-    found[:, 0] = 1.0
+    found = candidate_probability(chance[None, :], b.reshape(-1, 1), r.reshape(-1, 1))  # 1 at chance 1
     return (found @ (weights @ taken) / places).reshape(b.shape)
 
 
 def target_recall(plan: DataPlan) -> float:
     """The expected recall a plan's target was judged on: of the top-k lists when figured."""
-    return plan.expected_recall if plan.expected_list_recall is None else plan.expected_list_recall
+    return target_recall_of(plan.as_dict())
+
+
+def target_recall_of(figures: dict) -> float | None:
+    """:func:`target_recall` of a plan's figures (``Plan.predicted``, a manifest's ``plan.predicted``)."""
+    lists = figures.get("expected_list_recall")
+    return figures.get("expected_recall") if lists is None else lists
 
 
 def _larger_k_hint(threshold, histogram, perms_choices, recall, top_k=None) -> str:
