@@ -93,8 +93,9 @@ def test_a_plan_over_the_cap_only_by_its_crowds_runs(loans, split, tmp_path):
     with pytest.raises(ParameterError, match="more than --max-candidates"):  # the cap on all pairs
         choose_plan(0.5, hist, max_candidates=cap, runners_up=0)
     path, events = loans
-    capped = run_job(path, SPEC, RunOptions(threshold=0.5, sample_size=SAMPLE, max_candidates=cap), tmp_path / "a")
-    run_job(path, SPEC, RunOptions(threshold=0.5, sample_size=SAMPLE), tmp_path / "b")
+    capped = run_job(path, SPEC, RunOptions(threshold=0.5, sample_size=SAMPLE, max_candidates=cap, recall_of="pairs"),
+                     tmp_path / "a")
+    run_job(path, SPEC, RunOptions(threshold=0.5, sample_size=SAMPLE, recall_of="pairs"), tmp_path / "b")
     plan = capped["plan"]  # the manifest's
     assert (plan["perms"], plan["bands"], plan["rows"]) == (best.perms, best.bands, best.rows)
     assert plan["predicted"]["expected_written_pairs"] <= cap < best.expected_candidates
@@ -111,7 +112,8 @@ def test_a_plan_whose_written_pairs_exceed_the_cap_is_refused(loans, split, tmp_
     hist, best, crowded = split
     cap = best.expected_candidates * (1 - crowded) / 1000
     result = CliRunner().invoke(app, ["run", str(loans[0]), "--entity", "patron", "--element", "title",
-                                      "--threshold", "0.5", "--sample-size", str(SAMPLE), "--max-candidates",
+                                      "--threshold", "0.5", "--sample-size", str(SAMPLE), "--recall-of", "pairs",
+                                      "--max-candidates",
                                       str(cap), "--out", str(tmp_path / "idx")])
     assert result.exit_code == 2
     written = best.expected_candidates * (1 - crowded)

@@ -410,16 +410,19 @@ def test_rows_held_stay_within_the_steps_the_memory_rule_bounds_them_by():
     assert MEMORY_DRIVERS["verify"](big, None) == pytest.approx(1e9 + HELD_ROW_WORDS * 10 * bound)
 
 
-def test_the_crowds_share_of_the_sample_is_the_joins(tmp_path):
+def test_the_crowds_share_of_the_sample_is_the_joins(tmp_path, monkeypatch):
     # Oracle: the DuckDB join of the same sample's bucket rows, writing a row per band and
     # listing buckets of 3-8 members or more as crowds (lshjob.index.join.duckdb): the pairs its
     # CROWDS file stands for (every pair of a crowd, by itertools in the conformance checks)
-    # over all the pairs it counts, against the share SampleProfile.crowd_share finds.
+    # over all the pairs it counts, against the share SampleProfile.crowd_share finds; and the
+    # crowds' cost scale (SampleProfile.crowds) against the same sum over the CROWDS file's
+    # crowds by their members m, each pair weighted min(1, sqrt(F / m)), F set to 5 here.
     from lshjob.index._crowd_checks import crowd_rows
     from lshjob.index.band.local import bucket_keys_by_position, write_shared_bucket_rows
     from lshjob.index.collapse import collapse_identical
     from lshjob.index.engines import get_engine
     from lshjob.index.join import JoinSettings
+    from lshjob.plan import scaling
     from lshjob.sign.signatures import SignatureParams, comparable_by_position
 
     frame = _repeating_sets(4000, 8)
@@ -439,4 +442,13 @@ def test_the_crowds_share_of_the_sample_is_the_joins(tmp_path):
         crowded = len(crowd_rows(out.crowds))
         assert 0 < crowded < out.pairs, (size, crowded, out.pairs)
         assert profile.crowd_share(size, 10**6) == pytest.approx(crowded / out.pairs, rel=1e-9), size
+        m = pl.read_parquet(out.crowds).group_by("crowd").len()["len"].to_numpy().astype(np.float64)
+        pairs = m * (m - 1) / 2
+        monkeypatch.setattr(scaling, "CROWD_FLAT_UP_TO", 5)
+        share, scale = profile.crowds(size, 10**6)
+        monkeypatch.undo()
+        assert share == pytest.approx(crowded / out.pairs, rel=1e-9)
+        expected = float((pairs * np.minimum(1.0, np.sqrt(5 / m))).sum() / pairs.sum())
+        assert scale == pytest.approx(expected, rel=1e-9) and (scale < 1.0) == bool((m > 5).any()), size
     assert profile.crowd_share(10**5, 10**6) == 0.0
+    assert profile.crowds(10**5, 10**6) == (0.0, 1.0)

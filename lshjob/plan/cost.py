@@ -97,6 +97,8 @@ class Workload:
     # the share of the candidate pairs in crowds (verification pairs a large bucket's members up
     # itself, the join writing none of their pairs; lshjob.index.join.base), when known
     crowd_share: float = 0.0
+    # a crowd pair's cost against one of a crowd of at most CROWD_FLAT_UP_TO members (lshjob.plan.scaling)
+    crowd_scale: float = 1.0
 
     @property
     def hashed_words(self) -> float:
@@ -331,6 +333,6 @@ def load_model(path: Path | None = None) -> CostModel:
 def point_of(manifest: dict) -> dict:
     """A calibration point: a run's counts and its measured seconds and peaks."""
     w = Workload.from_manifest(manifest)
-    load = {k: v for k, v in w.__dict__.items() if k not in ("shared_bucket_rows", "crowd_share")}
+    load = {k: v for k, v in w.__dict__.items() if k not in ("shared_bucket_rows", "crowd_share", "crowd_scale")}
     return {"workload": load, "seconds": dict(manifest["seconds"]),
             "peak_memory_bytes": dict(manifest["peak_memory_bytes"])}

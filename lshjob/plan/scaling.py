@@ -55,15 +55,29 @@ ROWS_PER_BAND_JOIN = 1.7 / 28
 MAX_FIXED_SHARE = 0.5  # a stage's fixed seconds: at most this share of the largest sample run's
 
 
-# verification, seconds a candidate pair of a crowd (made and intersected a crowd's prefix index at
-# a time, lshjob.index.verify._crowds) against a written candidate row: CPU seconds of long-tailed
-# runs, 0.17 us a written row (30k entities, no crowds) against 0.064-0.072 us a crowd pair (100k,
-# 300k, 1M entities, 86-94% of their candidates in crowds)
-CROWD_PAIR_COST = 0.4
+# Verification's driver, in written candidate rows (each read and intersected): a crowd's pair
+# (made and intersected a crowd's prefix index at a time, lshjob.index.verify._crowds) costs
+# CROWD_PAIR_COST of a row, and a published row LIST_ROW_COST (the deduplication, the top-k cuts
+# and the estimates, which grow with the lists, not the pairs). Fitted on a profiled run of the
+# long-tailed bench's 100k sample (bench/forecast.py, lists' recall, crowds up to 50,000): 0.149 s
+# for 1.5M written rows, 0.152 s for 12.5M crowd pairs, 0.264 s for 1.56M published rows.
+CROWD_PAIR_COST = 0.12
+LIST_ROW_COST = 1.7
+# A pair of a crowd over CROWD_FLAT_UP_TO members costs sqrt(CROWD_FLAT_UP_TO / members) of one in
+# a smaller crowd (a crowd's work grows as members^1.5 beyond it: the prefix filter and the top-k
+# floors pass over more of its pairs). Fitted, not derived: at 1M the crowds' pairs (up to 23,246
+# members) cost 6.0 ns against 12.2 ns in the 100k sample (crowds up to 2,493), both profiled.
+CROWD_FLAT_UP_TO = 2000
 
 
 def _driver_verify(w: Workload, visits) -> float:
-    return w.candidate_pairs * (1.0 - (1.0 - CROWD_PAIR_COST) * w.crowd_share)
+    return (w.candidate_pairs * (1.0 - w.crowd_share * (1.0 - CROWD_PAIR_COST * w.crowd_scale))
+            + LIST_ROW_COST * w.published_rows)
+
+
+def _driver_join(w: Workload, visits) -> float:
+    """The bucket rows and the pairs written: a crowd's pairs are not (its members are listed)."""
+    return w.bucket_rows + w.candidate_pairs * (1.0 - w.crowd_share)
 
 
 # the plan stage: a set's row passed over while indexing the sampled entities' elements, against a
@@ -87,7 +101,7 @@ DRIVERS = {
     "plan": _driver_plan,
     "sign": _driver_sign,
     "band": lambda w, visits: w.bucket_rows,
-    "join": lambda w, visits: w.bucket_rows + w.candidate_pairs,
+    "join": _driver_join,
     "verify": _driver_verify,
     "publish": lambda w, visits: w.verified_pairs + w.published_rows,
 }
@@ -138,6 +152,13 @@ class SampleProfile:
         """The share of the kept pairs (:meth:`pair_rows`) in buckets of ``crowd_size`` members or
         more: at full size (``weight``), or in a uniform share ``thin`` of the sample (a nested
         sample: each bucket keeps that share of its members)."""
+        return self.crowds(crowd_size, max_bucket, weight, thin)[0]
+
+    def crowds(self, crowd_size: float, max_bucket: float, weight: float = 1.0,
+               thin: float = 1.0) -> tuple[float, float]:
+        """(:meth:`crowd_share`, the crowds' cost a pair against a crowd of at most
+        :data:`CROWD_FLAT_UP_TO` members: the mean of sqrt(CROWD_FLAT_UP_TO / members), at most 1,
+        over the crowds' pairs)."""
         a, b = self.bucket_repeated.astype(np.float64), self.bucket_single.astype(np.float64)
         if thin < 1.0:
             size = (a + b) * thin
@@ -146,7 +167,12 @@ class SampleProfile:
             size = a + b * weight
             pairs = self.bucket_counts * (a * (a - 1) / 2 + a * b * weight + b * (b - 1) / 2 * weight * weight)
         kept = pairs[size <= max_bucket].sum()
-        return float(pairs[(size <= max_bucket) & (size >= crowd_size)].sum() / kept) if kept > 0 else 0.0
+        crowded = (size <= max_bucket) & (size >= crowd_size)
+        in_crowds = pairs[crowded].sum()
+        if kept <= 0 or in_crowds <= 0:
+            return 0.0, 1.0
+        scale = np.minimum(1.0, np.sqrt(CROWD_FLAT_UP_TO / np.maximum(size[crowded], 1.0)))
+        return float(in_crowds / kept), float((pairs[crowded] * scale).sum() / in_crowds)
 
 
 @dataclass
@@ -213,13 +239,16 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
         published = 2.0 * verified
         basis = "the sample's buckets"
     published = min(published, entities * top_k)
-    crowded = profile.crowd_share(crowd_size, max_bucket, weight) if rows_per_band else 0.0
+    crowded, scale = profile.crowds(crowd_size, max_bucket, weight) if rows_per_band else (0.0, 1.0)
     w = Workload(events=events, entities=entities, membership_rows=events * membership_share,
                  representatives=reps, perms=figures["perms"], bands=figures["bands"], scheme=scheme,
-                 candidate_pairs=candidates, verified_pairs=verified, published_rows=published, crowd_share=crowded)
-    measured = [replace(r.workload, crowd_share=profile.crowd_share(
-        crowd_size, max_bucket, thin=r.workload.entities / max(profile.entities, 1)) if r.rows_per_band else 0.0)
-        for r in runs]
+                 candidate_pairs=candidates, verified_pairs=verified, published_rows=published, crowd_share=crowded,
+                 crowd_scale=scale)
+    measured = []
+    for r in runs:
+        share, cost = (profile.crowds(crowd_size, max_bucket, thin=r.workload.entities / max(profile.entities, 1))
+                       if r.rows_per_band else (0.0, 1.0))
+        measured.append(replace(r.workload, crowd_share=share, crowd_scale=cost))
     facts = {"sample_entities": profile.entities, "sample_representatives": profile.representatives,
              "representatives": round(reps), "representative_growth": round(growth, 4),
              "weight_of_sets_seen_once": round(weight, 4),
@@ -228,7 +257,8 @@ def project_counts(profile: SampleProfile, runs: list[SampleRun], figures: dict,
              "sample_rows_per_band": bool(last and last.rows_per_band),
              "similar_pairs": None if similar_full is None else round(similar_full),
              "sample_similar_pairs": None if similar_n is None else round(similar_n),
-             "crowd_share": round(crowded, 4), "sample_crowd_shares": [round(r.crowd_share, 4) for r in measured]}
+             "crowd_share": round(crowded, 4), "crowd_pair_scale": round(scale, 4),
+             "sample_crowd_shares": [round(r.crowd_share, 4) for r in measured]}
     return Projection(w, facts, runs=measured)
 
 

@@ -36,8 +36,7 @@ from typing import ClassVar, Protocol, runtime_checkable
 from lshjob.contracts.tables import CANDIDATES
 
 DEFAULT_MAX_BUCKET = 2000
-DEFAULT_MAX_CROWD = DEFAULT_MAX_BUCKET  # 50,000 pays on long-tailed data with --recall-of lists, but the forecast
-# does not cost such crowds yet (docs/performance.md)
+DEFAULT_MAX_CROWD = 50_000  # crowds' members (JoinSettings.max_crowd; docs/performance.md)
 
 CANDIDATES_SCHEMA = dict(CANDIDATES.schema)  # declared once, in lshjob.contracts.tables
 
