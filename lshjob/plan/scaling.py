@@ -80,6 +80,10 @@ def _driver_join(w: Workload, visits) -> float:
     return w.bucket_rows + w.candidate_pairs * (1.0 - w.crowd_share)
 
 
+def _driver_join_all(w: Workload, visits) -> float:
+    return w.bucket_rows + w.candidate_pairs
+
+
 # the plan stage: a set's row passed over while indexing the sampled entities' elements, against a
 # posting visited (a rough weight: the pass is a compiled scan; the visits are what grows)
 PLANNER_ROW_WEIGHT = 0.02
@@ -300,13 +304,15 @@ def scale_seconds(model: CostModel, runs: list[tuple[Workload, dict]], target: W
     ``join_factor`` multiplies the join's scaled part (:data:`ROWS_PER_BAND_JOIN`)."""
     out, fixed_of = {}, {}
     for stage in STAGES:
-        timed = [(DRIVERS[stage](w, visits), s[stage]) for w, s in runs if stage in s]
+        # ROWS_PER_BAND_JOIN was measured against all the pair rows, the crowds' included
+        driver = _driver_join_all if stage == "join" and join_factor != 1.0 else DRIVERS[stage]
+        timed = [(driver(w, visits), s[stage]) for w, s in runs if stage in s]
         if not timed:
             out[stage] = model.stage_seconds(target)[stage]
             continue
         drivers, seconds = [d for d, _ in timed], [t for _, t in timed]
         fixed, rate = fixed_and_rate(drivers, seconds, model.seconds[stage].constant)
-        out[stage] = fixed + rate * DRIVERS[stage](target, visits) * (join_factor if stage == "join" else 1.0)
+        out[stage] = fixed + rate * driver(target, visits) * (join_factor if stage == "join" else 1.0)
         fixed_of[stage] = round(fixed, 3)
     other = min(max(s["total"] - sum(s.get(st, 0.0) for st in STAGES), 0.0) for _, s in runs)
     out["total"] = sum(out[s] for s in STAGES) + other
