@@ -122,7 +122,7 @@ def test_plan_command_chooses_on_lists_as_the_run_does(loans, hist):
     assert (chosen["perms"], chosen["bands"], chosen["rows"]) == (best.perms, best.bands, best.rows)
     assert chosen["expected_list_recall"] == pytest.approx(best.expected_list_recall)
     assert " lists " in runner.invoke(app, [*args, "--recall-of", "lists"]).stdout
-    assert " lists " in runner.invoke(app, args).stdout  # the default: lists
+    assert " lists " not in runner.invoke(app, args).stdout  # the default: pairs
     assert " lists " not in runner.invoke(app, [*args, "--recall-of", "pairs"]).stdout
     bad = runner.invoke(app, [*args, "--recall-of", "entities"])
     assert bad.exit_code == 2 and "--recall-of must be one of lists, pairs; got 'entities'" in bad.output

@@ -36,7 +36,8 @@ from typing import ClassVar, Protocol, runtime_checkable
 from lshjob.contracts.tables import CANDIDATES
 
 DEFAULT_MAX_BUCKET = 2000
-DEFAULT_MAX_CROWD = 50_000  # crowds' members (JoinSettings.max_crowd; docs/performance.md)
+DEFAULT_MAX_CROWD = DEFAULT_MAX_BUCKET  # 50,000 pays on long-tailed data with --recall-of lists up to 3M
+# entities, but at 10M verification's held rows passed 22 GB (docs/performance.md)
 
 CANDIDATES_SCHEMA = dict(CANDIDATES.schema)  # declared once, in lshjob.contracts.tables
 
