@@ -5,7 +5,7 @@ peak grows with (:data:`MEMORY_DRIVERS`, in 8-byte words), the counts projected 
 Verification's peak at full size is the deduplication of the verified rows a block holds
 (:class:`lshjob.index.verify.local.HeldRows`): it grows with the verified pairs
 (:data:`HELD_ROW_WORDS` words a pair), up to what the memory budget lets a block hold
-(:data:`HELD_STEPS` of its step), not with the candidates: they are read a slice of the budget
+(:meth:`lshjob.runtime.budget.Budget.verify_held_rows`), not with the candidates: they are read a slice of the budget
 at a time, and the crowds' pairs made a chunk at a time. After it, the estimates hold a
 signature of each set in a pair kept (at most the budget's share): the larger of the two
 phases counts.
@@ -15,7 +15,7 @@ from __future__ import annotations
 
 from lshjob.plan.cost import STAGES, CostModel, Workload
 from lshjob.plan.forecast import SLICE_ROW_BYTES
-from lshjob.runtime.budget import Budget
+from lshjob.runtime.budget import VERIFY_HELD_ROW_BYTES, Budget
 
 WORD_BYTES = 8.0  # a stage's peak grows beyond the sample run's by at most a word a word of its driver
 
@@ -36,27 +36,26 @@ def _signed(w: Workload, slice_rows: float | None) -> float:
     return min(w.representatives, slice_rows or w.representatives) * _positions(w)
 
 
-# verification's peak: deduplicating the verified rows a block holds (lshjob.index.verify.local.HeldRows)
-# at its end. Words a row then: the row (left, right, jaccard, bands: 3.5), its copy when the rows
-# are concatenated (3.5), the pair-and-bands key and the pair key (2), the rows kept, one a pair,
-# with their Jaccard taken again (4.5): about 13.5; 108 bytes a held row measured at 1M long-tailed
-# entities (21.0M rows held, 15.8M distinct pairs; bench/RESULTS.md, "verification's peak and crowds").
-# Since the pairs are deduplicated by (pair, intersection, bands) keys, the intersection of every row
-# is held too (one more word, and its key): 136-147 bytes a row in tests/test_scaling.py's probe, so 16.
-HELD_ROW_WORDS = 16
-# rows held at most: the deduplication runs when the rows added pass the budget's step
-# (Budget.verify_held_rows) and the rows it kept; the top-k cut then keeps what the lists can
-# take. Held: the kept rows and up to as many again, a step when the kept rows are fewer
-HELD_STEPS = 2
+# verification's peak: deduplicating the verified rows a block holds (lshjob.index.verify.local.HeldRows).
+# Words a row then: the row (left, right, jaccard, bands: 3.5), copied into one buffer a column
+# while its pieces are freed, its intersection and its (pair, intersection, bands) key (2), and the
+# rows kept, one a pair, with their Jaccard taken again (4.5 a pair): 93 bytes a row in
+# tests/test_scaling.py's probe (136-147 before the rows were copied into one buffer and the pairs
+# read from the sorted keys in one pass), so 12: the budget's own figure, which sizes the rows held
+# (Budget.verify_held_rows)
+HELD_ROW_WORDS = VERIFY_HELD_ROW_BYTES // 8
+# rows held at most: the deduplication runs when the rows kept and added pass the budget's bound
+# (Budget.verify_held_rows); the top-k cut then keeps what the lists can take. Held: the bound
+# while the cut keeps less than three quarters of it (more only when the lists take more)
 
 
 def _held(w: Workload, memory: float | None) -> float:
     """Verified rows a block holds when it deduplicates them: a row a verified pair (more when a
     pair repeats, a row per band it met in: 1.33 rows a pair at 1M long-tailed entities), at
-    most ``HELD_STEPS`` of the budget's step (``memory`` None: no bound)."""
+    most the budget's bound (``memory`` None: no bound)."""
     if memory is None:
         return w.verified_pairs
-    return min(w.verified_pairs, HELD_STEPS * float(Budget(int(memory)).verify_held_rows()))
+    return min(w.verified_pairs, float(Budget(int(memory)).verify_held_rows()))
 
 
 def _estimated(w: Workload, memory: float | None) -> float:

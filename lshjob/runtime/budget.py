@@ -138,6 +138,12 @@ MERGE_COPIES = 4  # rows read (with decode buffers), the merged matrix and its c
 SLICES_IN_FLIGHT = 4  # slices the streaming writer may hold at once
 BYTES_PER_SIGNATURE_VALUE = 8  # one uint64 a permutation
 VERIFY_BYTES_PER_PAIR = 64  # candidate row in polars and numpy, plus the float results
+# a verified row verification holds when it deduplicates its rows (lshjob.index.verify.local.HeldRows),
+# with what it makes of it then (its copy in one buffer, its key, the rows kept): 93 bytes in the
+# resident-memory probe of tests/test_scaling.py (2M rows), so 12 words; the rows held then take at
+# most half the budget
+VERIFY_HELD_ROW_BYTES = 96
+VERIFY_HELD_SHARE = 2
 MIN_VERIFY_SLICE = 1_000_000
 MIN_SIGN_SLICE = 10_000  # representatives signed at a time in a run, at the least
 MIN_BAND_BATCH = 64 << 20  # bytes of a batch of the band search, at the least
@@ -254,9 +260,11 @@ class Budget:
         return max(MIN_VERIFY_SLICE, self.memory // SLICE_SHARE // VERIFY_BYTES_PER_PAIR)
 
     def verify_held_rows(self) -> int:
-        """Verified rows a block holds before deduplicating them (pairs repeat, a row per band):
-        a quarter of the budget."""
-        return max(MIN_VERIFY_SLICE, self.memory // 4 // VERIFY_BYTES_PER_PAIR)
+        """Verified rows a block holds at most when it deduplicates them, those kept and those
+        new (pairs repeat, a row per band): half the budget at ``VERIFY_HELD_ROW_BYTES`` a row.
+        At 10M long-tailed entities a quarter of the budget at 64 bytes a row, as new rows only,
+        let verification peak at 12.9 GiB under a budget of 11.8 (bench/RESULTS.md)."""
+        return max(MIN_VERIFY_SLICE, self.memory // VERIFY_HELD_SHARE // VERIFY_HELD_ROW_BYTES)
 
     def estimate_bytes(self) -> int:
         return self.memory // ESTIMATE_SHARE

@@ -114,3 +114,32 @@ def pair_keys(left, right, inter, bands, id_bits, inter_bits, band_bits):
         out[p] = ((np.uint64(left[p]) << np.uint64(low + id_bits)) | (np.uint64(right[p]) << np.uint64(low))
                   | (np.uint64(inter[p]) << np.uint64(band_bits)) | np.uint64(bands[p]))
     return out
+
+
+@numba.njit(cache=True)
+def pairs_of_keys(key, id_bits, inter_bits, band_bits):
+    """The runs of sorted :func:`pair_keys`: each pair's (left, right, intersection) and the sum
+    of its rows' bands, in key order; one pass to count the pairs and one to fill them (no
+    array of shifted keys or run starts)."""
+    n = len(key)
+    shift, id_mask = np.uint64(band_bits), np.uint64((1 << id_bits) - 1)
+    inter_mask, band_mask = np.uint64((1 << inter_bits) - 1), np.uint64((1 << band_bits) - 1)
+    pairs = 0
+    for p in range(n):
+        if p == 0 or (key[p] >> shift) != (key[p - 1] >> shift):
+            pairs += 1
+    left = np.empty(pairs, dtype=np.int64)
+    right = np.empty(pairs, dtype=np.int64)
+    inter = np.empty(pairs, dtype=np.int64)
+    bands = np.zeros(pairs, dtype=np.int32)
+    q = -1
+    for p in range(n):
+        pair = key[p] >> shift
+        if p == 0 or pair != (key[p - 1] >> shift):
+            q += 1
+            inter[q] = np.int64(pair & inter_mask)
+            pair >>= np.uint64(inter_bits)
+            left[q] = np.int64(pair >> np.uint64(id_bits))
+            right[q] = np.int64(pair & id_mask)
+        bands[q] += np.int32(key[p] & band_mask)
+    return left, right, inter, bands

@@ -23,6 +23,7 @@ from lshjob.index.verify._jaccard import (
     jaccard_between,
     jaccard_from,
     pair_keys,
+    pairs_of_keys,
 )
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
 from lshjob.index.verify.estimates import add_estimates_between
@@ -99,12 +100,20 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
     return pl.concat(pieces) if pieces else empty_verified()
 
 
+# a deduplication of held rows takes at least this share of their bound new (HeldRows)
+FRESH_SHARE = 4
+
+
 class HeldRows:
     """A block's verified rows as they come, one row a pair: ``dedup`` (:func:`one_row_a_pair`)
-    runs whenever the rows added since its last run outnumber both ``step`` and the rows it
-    kept then, and once at the end. Rows held stay under about twice the block's distinct
-    pairs plus ``step`` (and a piece), whatever the bands a pair repeats in; each row is sorted
-    about twice (amortised). ``step`` None: one deduplication at the end.
+    runs when the rows held, those it kept at its last run and those added since, would pass
+    ``bound`` (at least ``bound // FRESH_SHARE`` of them new), and once at the end. So the rows a
+    deduplication is given are at most ``bound`` plus a piece while it keeps at most
+    ``bound - bound // FRESH_SHARE`` of them, and those it keeps plus ``bound // FRESH_SHARE``
+    and a piece when it keeps more, whatever the bands a pair repeats in: the memory budget
+    sizes ``bound`` (:meth:`lshjob.runtime.budget.Budget.verify_held_rows`). While the rows
+    kept stay under ``bound``, a deduplication sorts at most ``FRESH_SHARE`` rows for each
+    new one. ``bound`` None: one deduplication at the end.
 
     ``cut`` (the top-k cut, :func:`_in_lists`), when given, runs after each deduplication but
     the last, so the rows held are bounded by the pairs the lists can take, not by all pairs
@@ -117,8 +126,8 @@ class HeldRows:
     floors (:func:`lshjob.index._ranking.list_cuts`; ``floors``: the first ones): a pair
     below both its sides' floors need not be added."""
 
-    def __init__(self, step: int | None, dedup, cut=None, floors: np.ndarray | None = None) -> None:
-        self.step, self.dedup, self.cut, self.floors = step, dedup, cut, floors
+    def __init__(self, bound: int | None, dedup, cut=None, floors: np.ndarray | None = None) -> None:
+        self.bound, self.dedup, self.cut, self.floors = bound, dedup, cut, floors
         self.kept: pl.DataFrame | None = None
         self.fresh: list[pl.DataFrame] = []
         self.fresh_rows = 0
@@ -129,8 +138,8 @@ class HeldRows:
             return
         self.fresh.append(rows)
         self.fresh_rows += rows.height
-        if self.step is not None and self.fresh_rows > max(self.step,
-                                                           self.kept.height if self.kept is not None else 0):
+        kept = self.kept.height if self.kept is not None else 0
+        if self.bound is not None and kept + self.fresh_rows > self.bound and self.fresh_rows >= self.bound // FRESH_SHARE:
             self.settle()
 
     def settle(self) -> None:
@@ -149,8 +158,11 @@ class HeldRows:
         return self.floors
 
     def _dedup(self) -> None:
-        self.kept = self.dedup(pl.concat(([self.kept] if self.kept is not None else []) + self.fresh))
-        self.fresh, self.fresh_rows = [], 0
+        # one buffer a column, so the deduplication reads them without copies, and the pieces
+        # freed as soon as they are copied there
+        rows = pl.concat(([self.kept] if self.kept is not None else []) + self.fresh, rechunk=True)
+        self.kept, self.fresh, self.fresh_rows = None, [], 0
+        self.kept = self.dedup(rows)
 
     def result(self) -> pl.DataFrame | None:
         """The rows, one a pair (``bands_shared`` summed), or None when none was added."""
@@ -273,16 +285,10 @@ def _one_row_packed(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, ba
     key = pair_keys(left, right, inter, np.ascontiguousarray(bands, dtype=np.int64), id_bits, inter_bits, band_bits)
     del inter
     key.sort()
-    pair = key >> np.uint64(band_bits)
-    starts = np.flatnonzero(np.concatenate([[True], pair[1:] != pair[:-1]]))
-    if len(starts) == len(key):
+    left, right, inter, counts = pairs_of_keys(key, id_bits, inter_bits, band_bits)
+    del key
+    if len(left) == len(jaccard):
         return True
-    counts = np.add.reduceat((key & np.uint64((1 << band_bits) - 1)).astype(np.int64), starts).astype(np.int32)
-    pair = pair[starts]
-    inter = (pair & np.uint64((1 << inter_bits) - 1)).astype(np.int64)
-    pair >>= np.uint64(inter_bits)
-    left = (pair >> np.uint64(id_bits)).astype(np.int64)
-    right = (pair & np.uint64((1 << id_bits) - 1)).astype(np.int64)
     jac = jaccard_from(left, right, inter, *held_sets)
     if capped and (at := np.flatnonzero(inter == cap)).size:
         jac[at] = jaccard_of(left[at], right[at])
