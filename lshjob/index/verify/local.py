@@ -138,8 +138,9 @@ class HeldRows:
             return
         self.fresh.append(rows)
         self.fresh_rows += rows.height
-        kept = self.kept.height if self.kept is not None else 0
-        if self.bound is not None and kept + self.fresh_rows > self.bound and self.fresh_rows >= self.bound // FRESH_SHARE:
+        if self.bound is None or self.fresh_rows < self.bound // FRESH_SHARE:
+            return
+        if (self.kept.height if self.kept is not None else 0) + self.fresh_rows > self.bound:
             self.settle()
 
     def settle(self) -> None:
