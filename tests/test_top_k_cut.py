@@ -51,11 +51,14 @@ def _brute_index(left, right, jaccard, rep_of, top_k):
     return index
 
 
-def _cut_rule(left, right, jaccard, sizes, top_k, cutoffs=None):
+def _cut_rule(left, right, jaccard, sizes, top_k, cutoffs=None, ties=True):
     """The rule of pairs_in_lists in Python (sorted()): per side, its partners' rows
     (min(top_k + 1, group size) each) and its own group's rows at 1.0, by Jaccard descending;
-    a pair is kept when its Jaccard reaches the value at which top_k + 1 rows are reached (every
-    pair when the side never gets there), by either side. ``cutoffs``: a dict filled with each
+    the cut is the value at which top_k + 1 rows are reached (-1.0 when the side never gets
+    there, 1.0 when its own group does). A pair is kept by a side when its Jaccard is above
+    the cut, or at it and its partner among the smallest partner ids at the cut that the rows
+    above leave room for (every pair at a cut of -1.0 or 1.0; every pair at the cut with
+    ``ties`` False); a pair kept by either side is kept. ``cutoffs``: a dict filled with each
     side's value."""
     cap = top_k + 1
     sides = {}
@@ -74,8 +77,13 @@ def _cut_rule(left, right, jaccard, sizes, top_k, cutoffs=None):
                     break
         if cutoffs is not None:
             cutoffs[g] = cutoff
-        for p, _ in pairs:
-            keep[p] = keep[p] or bool(jaccard[p] >= cutoff)
+        winners = None
+        if ties and -1.0 < cutoff < 1.0:
+            room = cap - own - sum(min(cap, int(sizes[o])) for p, o in pairs if jaccard[p] > cutoff)
+            winners = set(sorted(o for p, o in pairs if jaccard[p] == cutoff)[:room])
+        for p, other in pairs:
+            at_cut_kept = jaccard[p] == cutoff and (winners is None or other in winners)
+            keep[p] = keep[p] or bool(jaccard[p] > cutoff) or at_cut_kept
     return keep
 
 
@@ -99,6 +107,8 @@ def test_the_pairs_kept_publish_the_same_index_as_all_pairs():
     keep = pairs_in_lists(left, right, jaccard, sizes, top_k)
     assert 0 < keep.sum() < len(keep) // 2  # the cut leaves out most pairs here
     assert keep.tolist() == _cut_rule(left, right, jaccard, sizes, top_k)
+    # Jaccard of five values: many pairs tie at a side's cut, and fewer are kept than all of those
+    assert keep.sum() < sum(_cut_rule(left, right, jaccard, sizes, top_k, ties=False))
     want = _brute_index(left, right, jaccard, rep_of, top_k)
     assert _brute_index(left[keep], right[keep], jaccard[keep], rep_of, top_k) == want
     # and publishing from the kept pairs gives that index too (oracle: the brute force above)
@@ -192,3 +202,7 @@ def test_each_sides_cut_is_the_value_its_list_fills_at_and_a_floor_for_more_pair
     assert (floors <= cuts).all()
     below = (jaccard < floors[left]) & (jaccard < floors[right])
     assert below.sum() > 0 and not keep[below].any()
+    # a pair left out of some pairs (below both cuts, or behind the ties at one) is left out of all
+    kept_some = pairs_in_lists(left[some], right[some], jaccard[some], sizes, top_k)
+    dropped = np.flatnonzero(some)[~kept_some]
+    assert len(dropped) > 0 and not keep[dropped].any()

@@ -101,8 +101,10 @@ def test_held_rows_stay_within_the_bound_or_the_pairs_kept_and_a_share_of_it():
 def _cut_rule(want: dict, sizes: np.ndarray, top_k: int) -> set:
     """The pairs the top-k cut keeps, by its rule in Python (sorted()): per side, its partners'
     rows (min(top_k + 1, group size) each) and its own group's rows at 1.0, by Jaccard
-    descending; a pair is kept when its Jaccard reaches the value where top_k + 1 rows are
-    reached (every pair when they never are), by either side."""
+    descending; the cut is the value where top_k + 1 rows are reached. A pair is kept by a
+    side when its Jaccard is above the cut, or at it and its partner among the smallest
+    partner ids there that the rows above leave room for (every pair at a cut of 1.0, and
+    every pair when the rows are never reached), by either side."""
     cap, sides, kept = top_k + 1, {}, set()
     for (a, b), (jac, _) in want.items():
         sides.setdefault(a, []).append((jac, b, (a, b)))
@@ -116,7 +118,13 @@ def _cut_rule(want: dict, sizes: np.ndarray, top_k: int) -> set:
             held += min(cap, int(sizes[other]))
             if held >= cap:
                 cutoff = jac
-        kept |= {pair for jac, _, pair in pairs if jac >= cutoff}
+        own = min(cap, int(sizes[g])) if sizes[g] > 1 else 0
+        winners = None
+        if -1.0 < cutoff < 1.0:
+            room = cap - own - sum(min(cap, int(sizes[other])) for jac, other, _ in pairs if jac > cutoff)
+            winners = set(sorted(other for jac, other, _ in pairs if jac == cutoff)[:room])
+        kept |= {pair for jac, other, pair in pairs
+                 if jac > cutoff or (jac == cutoff and (winners is None or other in winners))}
     return kept
 
 

@@ -226,55 +226,97 @@ def _by_side(left, right, groups):
     return starts, pair
 
 
+@numba.njit(inline="always")
+def _partner(left, right, p, g):
+    return right[p] if left[p] == g else left[p]
+
+
+@numba.njit(inline="always")
+def _side_cut(lo, hi, pair, left, right, jaccard, capped, cap, g, own):
+    """The value at which side g's pairs ``pair[lo:hi]`` and its own group's ``own`` rows
+    reach ``cap`` rows (:func:`_cut_both`), -1.0 when they never do. Every pair brings a row
+    or more, so the value lies among the side's ``cap`` highest: they are held sorted (an
+    insertion, one comparison for a pair that does not enter), not the whole side."""
+    values = np.empty(cap, dtype=np.float64)  # the highest values, descending
+    weights = np.empty(cap, dtype=np.int64)
+    held = 0
+    total = own
+    for i in range(lo, hi):
+        p = pair[i]
+        w = capped[_partner(left, right, p, g)]
+        total += w
+        v = jaccard[p]
+        if held == cap and v <= values[cap - 1]:
+            continue
+        at = held if held < cap else cap - 1
+        while at > 0 and values[at - 1] < v:
+            if at < cap:
+                values[at] = values[at - 1]
+                weights[at] = weights[at - 1]
+            at -= 1
+        values[at] = v
+        weights[at] = w
+        held = min(held + 1, cap)
+    if total >= cap:
+        reached = own
+        for i in range(held):
+            reached += weights[i]
+            if reached >= cap:
+                return values[i]
+    return -1.0
+
+
+@numba.njit(inline="always")
+def _last_at_cut(lo, hi, pair, left, right, jaccard, capped, cap, g, own, cutoff):
+    """The largest partner id of side g's pairs at ``cutoff`` that can bring a row into its
+    list (-1: every one); keeps the pairs above it. The rows above leave ``need`` places,
+    taken by the smallest neighbour ids at the cut."""
+    need, ties = cap - own, 0
+    for i in range(lo, hi):
+        p = pair[i]
+        if jaccard[p] > cutoff:
+            need -= capped[_partner(left, right, p, g)]
+        elif jaccard[p] == cutoff:
+            ties += 1
+    if ties <= need:
+        return -1
+    tied = np.empty(ties, dtype=np.int64)
+    t = 0
+    for i in range(lo, hi):
+        if jaccard[pair[i]] == cutoff:
+            tied[t] = _partner(left, right, pair[i], g)
+            t += 1
+    tied.sort()
+    return tied[need - 1]
+
+
 @numba.njit(parallel=True, cache=True)
 def _cut_both(starts, pair, left, right, jaccard, capped, cap, keep, cutoffs):
     """For each side g, over the pairs of g (a partner's group brings ``capped`` rows, g's own
     group ``capped[g]`` rows of 1.0 when it has members): once ``cap`` rows are reached at
-    value v, no row below v can enter g's list, so a pair at or above v is kept (those at v
-    stay: their ties are broken by neighbour when ranking) by either side: ``keep`` is only
-    ever set. Every pair brings a row or more, so v lies among the side's ``cap`` highest
-    values: they are held sorted (an insertion, one comparison for a pair that does not
-    enter), not the whole side."""
+    value v (:func:`_side_cut`), no row below v can enter g's list, so a pair above v is
+    kept, by either side: ``keep`` is only ever set.
+
+    Of the pairs at v, g's list takes the rows of smallest neighbour id (:func:`_lists`), as
+    many as the rows above v leave room for. A partner group's rows are its members from its
+    representative on (the smallest id of its group), so a pair at v whose partner is not
+    among that many smallest partners at v brings no row: only those are kept
+    (:func:`_last_at_cut`; all of them at v = 1.0, where g's own group ties with them). More
+    pairs only raise v, or add rows above it and partners at it, so a pair left out here is
+    left out with them too."""
     for g in numba.prange(len(starts) - 1):
         lo, hi = starts[g], starts[g + 1]
         if lo == hi:
             continue
         own = capped[g] if capped[g] > 1 else 0
-        cutoff = -1.0
-        if own >= cap:
-            cutoff = 1.0
-        else:
-            values = np.empty(cap, dtype=np.float64)  # the highest values, descending
-            weights = np.empty(cap, dtype=np.int64)
-            held = 0
-            total = own
-            for i in range(lo, hi):
-                p = pair[i]
-                w = capped[right[p] if left[p] == g else left[p]]
-                total += w
-                v = jaccard[p]
-                if held == cap and v <= values[cap - 1]:
-                    continue
-                at = held if held < cap else cap - 1
-                while at > 0 and values[at - 1] < v:
-                    if at < cap:
-                        values[at] = values[at - 1]
-                        weights[at] = weights[at - 1]
-                    at -= 1
-                values[at] = v
-                weights[at] = w
-                held = min(held + 1, cap)
-            if total >= cap:
-                reached = own
-                for i in range(held):
-                    reached += weights[i]
-                    if reached >= cap:
-                        cutoff = values[i]
-                        break
+        cutoff = 1.0 if own >= cap else _side_cut(lo, hi, pair, left, right, jaccard, capped, cap, g, own)
         cutoffs[g] = cutoff
+        last = -1
+        if -1.0 < cutoff < 1.0:
+            last = _last_at_cut(lo, hi, pair, left, right, jaccard, capped, cap, g, own, cutoff)
         for i in range(lo, hi):
             p = pair[i]
-            if jaccard[p] >= cutoff:
+            if jaccard[p] > cutoff or (jaccard[p] == cutoff and (last < 0 or _partner(left, right, p, g) <= last)):
                 keep[p] = True
 
 
@@ -285,10 +327,12 @@ def pairs_in_lists(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, gro
     with its weights: a partner's group counts min(top_k + 1, its size) rows, a group's own
     members as many rows of 1.0).
 
-    A pair kept by neither side lies below both sides' cut: dropping it changes no list,
-    and the cut of a side is reached at the same value without it. Given only some of the
-    pairs (a block of parts), a side's cut can only be lower than with all of them, so the
-    pairs dropped are still below the cut of the whole run."""
+    A pair kept by neither side lies below both sides' cut, or at a side's cut behind the
+    partners that fill its list there (ties are broken by neighbour id): dropping it changes
+    no list, and the cut of a side is reached at the same value without it. Given only some
+    of the pairs (a block of parts), a side's cut can only be lower than with all of them,
+    and at the same cut the room left no larger, so the pairs dropped are still dropped with
+    all of them."""
     return list_cuts(left, right, jaccard, group_sizes, top_k)[0]
 
 
