@@ -286,8 +286,7 @@ def _last_at_cut(lo, hi, pair, left, right, jaccard, capped, cap, g, own, cutoff
         if jaccard[pair[i]] == cutoff:
             tied[t] = _partner(left, right, pair[i], g)
             t += 1
-    tied.sort()
-    return tied[need - 1]
+    return np.partition(tied, need - 1)[need - 1]  # the need-th smallest, in linear time
 
 
 @numba.njit(parallel=True, cache=True)
