@@ -32,8 +32,9 @@ the larger run's seconds (process start, imports and compiled-kernel loads are n
 with one run, the cost model's constant, at most half the run's seconds. The rate is the
 largest run's own: a run measured now, on this machine, under its present load. CPU seconds
 (a manifest's ``cpu_seconds``) scale the same way; verification's driver counts a crowd's pair
-(:data:`CROWD_PAIR_COST`) below a written candidate row, the crowds' share of the pairs found
-from the sample's buckets (:meth:`SampleProfile.crowd_share`). Peak memory:
+at :data:`CROWD_PAIR_COST` of a written candidate row (less in crowds over
+:data:`CROWD_FLAT_UP_TO` members) and a published row at :data:`LIST_ROW_COST`, the crowds'
+share and cost scale from the sample's buckets (:meth:`SampleProfile.crowds`). Peak memory:
 :mod:`lshjob.plan.peak_memory`.
 """
 
