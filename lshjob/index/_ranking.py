@@ -269,8 +269,8 @@ def _side_cut(lo, hi, pair, left, right, jaccard, capped, cap, g, own):
 @numba.njit(inline="always")
 def _last_at_cut(lo, hi, pair, left, right, jaccard, capped, cap, g, own, cutoff):
     """The largest partner id of side g's pairs at ``cutoff`` that can bring a row into its
-    list (-1: every one); keeps the pairs above it. The rows above leave ``need`` places,
-    taken by the smallest neighbour ids at the cut."""
+    list (-1: every one). The rows above the cut leave ``need`` places, taken by the smallest
+    neighbour ids at it."""
     need, ties = cap - own, 0
     for i in range(lo, hi):
         p = pair[i]

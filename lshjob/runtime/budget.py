@@ -263,7 +263,7 @@ class Budget:
         """Verified rows a block holds at most when it deduplicates them, those kept and those
         new (pairs repeat, a row per band): half the budget at ``VERIFY_HELD_ROW_BYTES`` a row.
         At 10M long-tailed entities a quarter of the budget at 64 bytes a row, as new rows only,
-        let verification peak at 12.9 GiB under a budget of 11.8 (bench/RESULTS.md)."""
+        let verification peak at 13.4 GiB under a budget of 11.8 (bench/RESULTS.md)."""
         return max(MIN_VERIFY_SLICE, self.memory // VERIFY_HELD_SHARE // VERIFY_HELD_ROW_BYTES)
 
     def estimate_bytes(self) -> int:
