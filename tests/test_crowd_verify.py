@@ -12,6 +12,7 @@ import polars as pl
 import pytest
 
 from lshjob.core.sets import ElementSets
+from lshjob.index._ranking import own_cuts, pairs_in_lists
 from lshjob.index.verify._crowds import crowd_pairs_between, crowd_pieces, verify_crowds
 
 
@@ -133,3 +134,74 @@ def test_a_crowd_finding_more_pairs_than_its_room_keeps_that_many_and_is_counted
     whole: dict = {}
     every = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, 0.5, tally=whole)))
     assert set(zip(every["left_rep"].to_list(), every["right_rep"].to_list())) == truth and whole == {}
+
+
+def _distinct_crowds(seed: int):
+    """:func:`_crowded_sets` with each set once, as representatives are (lshjob/index/collapse.py):
+    a repeated set's crowd rows go to its first holder. Crowd c in band c - 1."""
+    sets, crowd_rows = _crowded_sets(seed)
+    first, ids = {}, []
+    for s in sets:
+        ids.append(first.setdefault(tuple(s), len(first)))
+    distinct = [list(s) for s in first]
+    rows = pl.DataFrame({"entity": np.repeat(np.arange(len(distinct)), [len(s) for s in distinct]),
+                         "element": np.concatenate([np.array(s) for s in distinct])})
+    table = (pl.DataFrame([(c, ids[r]) for c, r in crowd_rows], schema={"crowd": pl.Int64, "rep": pl.Int64},
+                          orient="row")
+             .unique().sort("crowd", "rep").with_columns(band=(pl.col("crowd") - 1).cast(pl.Int32)))
+    return distinct, ElementSets.from_sets(rows), table
+
+
+def _every_pair(sets, table, threshold):
+    """Oracle: exact Jaccard with Python sets of every pair of every crowd reaching ``threshold``."""
+    found = {}
+    for _, members in table.group_by("crowd"):
+        for a, b in combinations(sorted(members["rep"].to_list()), 2):
+            j = len(set(sets[a]) & set(sets[b])) / len(set(sets[a]) | set(sets[b]))
+            if j >= threshold:
+                found[a, b] = j
+    return found
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+@pytest.mark.parametrize("threshold", [0.3, 0.5, 0.6])
+def test_distinct_members_of_one_size_spared_lose_no_pair(seed, threshold):
+    """``distinct=True`` skips pairs of one size whose bound (|A| - 1) / (|A| + 1) is below the
+    threshold: the same pairs and values as the oracle (exact Jaccard, Python sets)."""
+    sets, element_sets, table = _distinct_crowds(seed)
+    block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
+    got = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, threshold, distinct=True)))
+    want = _every_pair(sets, table, threshold)
+    assert len(want) > 20
+    assert {(a, b): j for a, b, j in got.select("left_rep", "right_rep", "jaccard").iter_rows()} == want
+    assert got.height == len(want)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_floors_a_crowd_raises_drop_only_pairs_no_list_takes(seed):
+    """With top-k floors, group sizes and top_k, a crowd raises its members' floors with the
+    pairs it finds (lshjob/index/verify/_crowd_members.py rise): fewer rows, and the pairs
+    the top-k cut keeps (lshjob.index._ranking.pairs_in_lists) are those it keeps from every
+    pair of the oracle (exact Jaccard, Python sets), with the same values."""
+    sets, element_sets, table = _distinct_crowds(seed)
+    rng = np.random.default_rng(seed)
+    group_sizes = rng.choice([1, 1, 1, 2, 3], len(sets))
+    group_sizes[0] = 5  # a group that fills its list alone (floor 1.0)
+    top_k, threshold = 3, 0.3
+    floors = own_cuts(group_sizes, top_k)
+    block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
+    got = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, threshold, floors=lambda: floors,
+                                      group_sizes=group_sizes, top_k=top_k, distinct=True)))
+    lower = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, threshold, floors=lambda: floors,
+                                        distinct=True)))  # the given floors only
+    want = _every_pair(sets, table, threshold)
+
+    def kept(pairs):
+        left, right = np.array([p[0] for p in pairs]), np.array([p[1] for p in pairs])
+        keep = pairs_in_lists(left, right, np.array([pairs[p] for p in pairs]), group_sizes, top_k)
+        return {p: pairs[p] for p, k in zip(pairs, keep) if k}
+
+    rows = {(a, b): j for a, b, j in got.select("left_rep", "right_rep", "jaccard").iter_rows()}
+    assert got.height == len(rows) and all(want[p] == j for p, j in rows.items())
+    assert got.height < lower.height  # the floors rose and left pairs out
+    assert kept(rows) == kept(want) and len(kept(want)) > 20

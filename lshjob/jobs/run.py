@@ -55,11 +55,12 @@ from lshjob.runtime.workspace import remove_leftovers, work_folder
 def _verify_settings(memory: int, top_k: int | None = None, group_sizes=None, tally: dict | None = None
                      ) -> VerifySettings:
     """How much verification holds at a time (:class:`lshjob.runtime.budget.Budget`); with
-    ``top_k``, the pairs that can enter no list are left out (:class:`VerifySettings`)."""
+    ``top_k``, the pairs that can enter no list are left out (:class:`VerifySettings`). The
+    candidates are pairs of representatives, whose sets differ."""
     limit = Budget(memory)
     return VerifySettings(slice_rows=limit.verify_slice_rows(), estimate_bytes=limit.estimate_bytes(),
                           held_rows=limit.verify_held_rows(),
-                          top_k=top_k, group_sizes=group_sizes, tally=tally)
+                          top_k=top_k, group_sizes=group_sizes, tally=tally, distinct_sets=True)
 
 
 class _Stages:

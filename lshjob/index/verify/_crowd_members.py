@@ -72,3 +72,85 @@ def _sort_by_size(members, bounds, offsets, first):
         key.sort()
         for m in range(lo, hi):
             members[m] = (key[m - lo] & 0xFFFFFFFF) + first
+
+
+def weight_within(group_sizes, top_k: int | None, first: int, sets: int) -> np.ndarray:
+    """The rows each set of entity ids first..first + sets - 1 brings a list, min(top_k + 1,
+    its group's size) (:func:`lshjob.index._ranking.list_cuts`), or an empty array without a
+    top-k."""
+    if group_sizes is None or top_k is None:
+        return np.empty(0, dtype=np.int64)
+    return np.minimum(top_k + 1, np.asarray(group_sizes[first:first + sets], dtype=np.int64))
+
+
+BINS = 64  # bins of [threshold, 1] a crowd tallies each member's pairs in (_rise)
+
+
+@numba.njit(inline="always")
+def may_reach(la, lb, sought, distinct):
+    """Whether sets of sizes ``la`` >= ``lb`` can reach Jaccard ``sought``: ``distinct`` sets of
+    one size share at most all but one element, the value (la - 1) / (la + 1) as the kernels
+    divide it."""
+    return not distinct or la != lb or (la - 1) / (la + 1) >= sought
+
+
+@numba.njit(cache=True)
+def list_tallies(mem, first, weight, cap, rising):
+    """A crowd's tallies for :func:`rise`: each member's rows found a bin, its floor bin, the
+    rows in that bin and above, and the rows its list takes from partners (``cap`` less its own
+    group's, when it has members)."""
+    m = len(mem) if rising else 0
+    tally = np.zeros((m, BINS), dtype=np.int64)
+    need = np.empty(m, dtype=np.int64)
+    for x in range(m):
+        own = weight[mem[x] - first]
+        need[x] = cap - (own if own > 1 else 0)
+    return tally, np.zeros(m, dtype=np.int64), np.zeros(m, dtype=np.int64), need
+
+
+@numba.njit(inline="always")
+def _edge(b, threshold):
+    return threshold + b * ((1.0 - threshold) / BINS)
+
+
+@numba.njit(inline="always")
+def _tally_side(s, w, b, threshold, tally, top, above, need, at):
+    if need[s] <= 0 or b < top[s]:
+        return
+    tally[s, b] += w
+    above[s] += w
+    while top[s] + 1 < BINS and above[s] - tally[s, top[s]] >= need[s]:
+        above[s] -= tally[s, top[s]]
+        top[s] += 1
+    if above[s] >= need[s]:
+        at[s] = max(at[s], _edge(top[s], threshold))
+
+
+@numba.njit(inline="always")
+def rise(x, y, value, threshold, mem, first, weight, tally, top, above, need, at):
+    """Pair (x, y) of a crowd found at ``value``: each side tallies the rows its partner's
+    group brings in value's bin of [threshold, 1], and once the rows in its floor bin and
+    above fill its list, that bin's lower edge is a floor for it (``at``): each of those rows
+    is at the edge or above, so a pair below it ranks behind a full list and enters it with
+    no other pair (:func:`lshjob.index._ranking.list_cuts`'s floors, from the crowd's pairs)."""
+    b = min(max(int((value - threshold) / max(1.0 - threshold, 1e-12) * BINS), 0), BINS - 1)
+    while b > 0 and _edge(b, threshold) > value:
+        b -= 1
+    while b + 1 < BINS and _edge(b + 1, threshold) <= value:
+        b += 1
+    _tally_side(x, weight[mem[y] - first], b, threshold, tally, top, above, need, at)
+    _tally_side(y, weight[mem[x] - first], b, threshold, tally, top, above, need, at)
+
+
+@numba.njit(cache=True)
+def member_floors(mem, first, floor, threshold):
+    """Each member's floor, at least the threshold (``floor`` by entity id from ``first``; empty
+    for none), and the lowest of them."""
+    at = np.full(len(mem), threshold)
+    if len(floor) == 0:
+        return at, threshold
+    lowest = 1.0
+    for x in range(len(mem)):
+        at[x] = max(threshold, floor[mem[x] - first])
+        lowest = min(lowest, at[x])
+    return at, lowest

@@ -10,7 +10,16 @@ import polars as pl
 
 from lshjob.core._jit import numba
 from lshjob.core.search import first_at_least
-from lshjob.index.verify._crowd_members import by_size, crowds_by_band, floor_within
+from lshjob.index.verify._crowd_members import (
+    by_size,
+    crowds_by_band,
+    floor_within,
+    list_tallies,
+    may_reach,
+    member_floors,
+    rise,
+    weight_within,
+)
 from lshjob.index.verify._jaccard import _intersection
 
 MAX_PAIRS = 1 << 22  # pairs made at a time (three 8-byte values each)
@@ -177,8 +186,9 @@ def _keep(local, local_off, common, mem, x, y, la, lb, need, threshold, crowd_at
 
 
 @numba.njit(parallel=True, cache=True)
-def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, room, threshold, floor, crowd_at,
-                        in_bands, row_of, bands, out_left, out_right, out_jac, out_bands, found, full):
+def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, room, threshold, floor, weight, cap,
+                        distinct, crowd_at, in_bands, row_of, bands, out_left, out_right, out_jac, out_bands, found,
+                        full):
     """The pairs of each crowd (members ``members[start[c]:start[c] + count[c]]``, one range,
     by set size ascending) whose Jaccard reaches ``threshold``: the same pairs, with the same
     values, as :func:`_crowd_pairs`, without intersecting every pair. Written from slot
@@ -204,18 +214,21 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, r
     (:func:`lshjob.index._ranking.list_cuts`). A pair below both its sides' floors enters
     neither list, so pair (x, y) is sought at max(threshold, min(floor x, floor y)) only: its
     size filter, needed intersection and early exit grow with it, and the prefixes serve the
-    crowd's lowest, the least any of its pairs is sought at."""
+    crowd's lowest, the least any of its pairs is sought at. With ``weight`` (by entity id
+    from ``first``: the rows a set's group brings a list, min(top_k + 1, group size)) and
+    ``cap`` (top_k + 1), the floors also rise with the pairs the crowd finds
+    (:func:`lshjob.index.verify._crowd_members.rise`).
+
+    ``distinct``: the members are distinct sets (representatives, :mod:`lshjob.index.collapse`),
+    so two of one size share at most all but one element, J <= (|A| - 1) / (|A| + 1), and a
+    pair of equal sizes that bound puts below what it is sought at is not intersected."""
     for c in numba.prange(start.shape[0]):
         mem = members[start[c]:start[c] + count[c]]
-        at = np.full(len(mem), threshold)  # each member's floor, at least the threshold
-        lowest = threshold
-        if len(floor):
-            lowest = 1.0
-            for x in range(len(mem)):
-                at[x] = max(threshold, floor[mem[x] - first])
-                lowest = min(lowest, at[x])
+        at, lowest = member_floors(mem, first, floor, threshold)
         size, common, local_off, local, prefix, post_off, posted = _prefix_index(offsets, elements, first, mem,
                                                                                  lowest)
+        rising = len(weight) > 0 and len(floor) > 0
+        tally, top, above, wanted = list_tallies(mem, first, weight, cap, rising)
         seen = np.full(len(mem), -1, dtype=np.int64)
         rows, bits = np.zeros(len(mem), dtype=np.int64), np.zeros(len(mem), dtype=np.uint64)
         for x in range(len(mem) if bands[c] >= 0 else 0):  # each member's row of crowd_at and bands, once
@@ -231,12 +244,15 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, r
                 if need > common:
                     break  # later partners are at least as large
                 sought = min(at[x], at[y])
-                if size[y] >= sought * la - 1e-9:
+                if size[y] >= sought * la - 1e-9 and may_reach(la, size[y], sought, distinct):
                     if out >= end:
                         stop = True
                         break
-                    out = _keep(local, local_off, common, mem, x, y, la, size[y], _need(la, size[y], sought),
-                                sought, crowd_at, bits, rows, bands[c], out, out_left, out_right, out_jac, out_bands)
+                    kept = _keep(local, local_off, common, mem, x, y, la, size[y], _need(la, size[y], sought),
+                                 sought, crowd_at, bits, rows, bands[c], out, out_left, out_right, out_jac, out_bands)
+                    if rising and kept > out:
+                        rise(x, y, out_jac[out], threshold, mem, first, weight, tally, top, above, wanted, at)
+                    out = kept
             low = first_at_least(size, 0, x, lowest * la - 1e-9)  # the size filter, sizes ascending
             for q in range(local_off[x], local_off[x] + (0 if stop else prefix[x])):
                 r = local[q]
@@ -250,13 +266,16 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, r
                     need = _need(la, size[y], threshold)
                     if need > common:  # (the others were intersected above)
                         sought = min(at[x], at[y])
-                        if size[y] >= sought * la - 1e-9:
+                        if size[y] >= sought * la - 1e-9 and may_reach(la, size[y], sought, distinct):
                             if out >= end:
                                 stop = True
                                 break
-                            out = _keep(local, local_off, common, mem, x, y, la, size[y],
-                                        _need(la, size[y], sought), sought, crowd_at, bits, rows, bands[c],
-                                        out, out_left, out_right, out_jac, out_bands)
+                            kept = _keep(local, local_off, common, mem, x, y, la, size[y],
+                                         _need(la, size[y], sought), sought, crowd_at, bits, rows, bands[c],
+                                         out, out_left, out_right, out_jac, out_bands)
+                            if rising and kept > out:
+                                rise(x, y, out_jac[out], threshold, mem, first, weight, tally, top, above, wanted, at)
+                            out = kept
                 if stop:
                     break
             if stop:
@@ -309,18 +328,23 @@ def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: in
 
 
 def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int, threshold: float,
-                 max_pairs: int = MAX_PAIRS, floors=None, tally: dict | None = None, room: int = CROWD_ROOM):
+                 max_pairs: int = MAX_PAIRS, floors=None, tally: dict | None = None, room: int = CROWD_ROOM,
+                 group_sizes=None, top_k: int | None = None, distinct: bool = False):
     """:func:`verify_crowds`'s rows, a chunk of at most ``max_pairs`` pairs made at a time, so
     the caller can deduplicate as they come. ``floors()``, when given, returns each entity id's
     top-k floor now (:func:`lshjob.index._ranking.list_cuts`), read before each chunk: the
     pairs below both sides' floors are not sought (within one range), nor returned. Within one
-    range a crowd writes at most ``room`` pairs; ``tally["crowds_cut"]`` counts those cut there."""
+    range a crowd writes at most ``room`` pairs; ``tally["crowds_cut"]`` counts those cut there.
+    With the floors, ``group_sizes`` (by entity id) and ``top_k``, a crowd raises its members'
+    floors with the pairs it finds. ``distinct``: no two members of a range hold the same set
+    (representatives), which spares pairs of one size (:func:`_crowd_pairs_prefix`)."""
     (a_members, a_crowd, a_start, a_count, b_members, b_crowd, b_start, b_count, same, a_band), pairs = block
     crowd_at, in_bands, row_of, crowd_band = crowds_by_band(a_members, a_crowd, a_band, a_start, left_first,
                                                    len(left_sets.offsets) - 1)
     a_members = by_size(a_members, a_crowd, left_sets, left_first)  # each crowd's members by set size
     b_members = a_members if same else by_size(b_members, b_crowd, right_sets, right_first)
     slots = np.minimum(pairs, room) if same else pairs  # found pairs only, within one range
+    weight = weight_within(group_sizes if floors is not None else None, top_k, left_first, len(left_sets.offsets) - 1)
     large = 0
     if same:  # crowds that would fill a chunk alone go first, as many a chunk as there are threads
         big = slots > max_pairs // numba.get_num_threads()
@@ -351,8 +375,8 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
             floor = floor_within(floors, left_first, len(left_sets.offsets) - 1)
             _crowd_pairs_prefix(left_sets.offsets, left_sets.elements, left_first, a_members, a_start[lo:hi],
                                 a_count[lo:hi], base, np.ascontiguousarray(slots[lo:hi], dtype=np.int64), threshold,
-                                floor, crowd_at, in_bands, row_of, crowd_band[lo:hi], out_left, out_right, out_jac,
-                                out_bands, found, full)
+                                floor, weight, (top_k or 0) + 1, distinct, crowd_at, in_bands, row_of,
+                                crowd_band[lo:hi], out_left, out_right, out_jac, out_bands, found, full)
             if tally is not None and full.any():
                 tally["crowds_cut"] = tally.get("crowds_cut", 0) + int(full.sum())
             keep = np.arange(int(found.sum())) + np.repeat(base - (np.cumsum(found) - found), found)

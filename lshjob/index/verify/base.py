@@ -54,6 +54,10 @@ class VerifySettings:
     group_sizes: Any = None
     # counts an engine may fill: "over_threshold", the pairs that reached the threshold before that cut
     tally: dict | None = None
+    # True: no two entities of one range hold the same set (representatives, lshjob.index.collapse),
+    # so two sets of one size share all their elements but one at most; an engine may skip the
+    # pairs of one size that bound puts below the threshold (or below the floors of the lists)
+    distinct_sets: bool = False
 
 
 @runtime_checkable

@@ -79,7 +79,8 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 held.settle()  # the join's pairs give the first floors
                 for piece in crowd_pieces(crowded, left, store.ranges[i][0], right, store.ranges[j][0], threshold,
                                           floors=held.floors_now if cut is not None else None,
-                                          tally=settings.tally):
+                                          tally=settings.tally, group_sizes=settings.group_sizes,
+                                          top_k=settings.top_k, distinct=settings.distinct_sets):
                     held.add(piece)
             block = held.result()
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
