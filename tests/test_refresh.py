@@ -420,3 +420,29 @@ def test_a_store_made_before_the_diff_column_reads_and_refreshes(tmp_path):
     assert runs[0]["diff"] is None
     assert runs[1]["diff"]["pairs_added"] == len(after - before)
     assert runs[1]["diff"]["pairs_removed"] == len(before - after)
+
+
+def test_recall_of_lists_plans_the_window_as_lshjob_run_does(tmp_path):
+    # Oracle: lshjob run over the window's events with the same options (--recall-of lists, a
+    # planner sample smaller than the window, so the lists' recall is predicted): the same
+    # plan, the same rows; and the exit code of lshjob.errors for a value outside the choices.
+    batches, _, _ = _library_batches(patrons=300, seed=7)
+    manifest = _refresh(tmp_path, batches[0], 0, recall_of="lists", sample_size=120)
+    predicted = manifest["plan"]["predicted"]
+    assert predicted["expected_list_recall"] is not None and predicted["expected_list_recall"] >= 0.95
+    window, _ = _window_events(batches[0])
+    window.write_parquet(tmp_path / "window.parquet")
+    ran = run_job(tmp_path / "window.parquet", EventSpec(entity="patron", element="title"),
+                  RunOptions(threshold=THRESHOLD, top_k=TOP_K, recall_of="lists", sample_size=120), tmp_path / "ran")
+    assert [manifest["plan"][k] for k in ("perms", "bands", "rows")] == [ran["plan"][k] for k in ("perms", "bands",
+                                                                                                  "rows")]
+    assert pl.read_parquet(tmp_path / "index" / "neighbours.parquet").equals(
+        pl.read_parquet(tmp_path / "ran" / "neighbours.parquet"))
+    (tmp_path / "pairs").mkdir()
+    pairs = _refresh(tmp_path / "pairs", batches[0], 0, sample_size=120)
+    assert pairs["plan"]["predicted"].get("expected_list_recall") is None  # the default plans on pairs
+    bad = CliRunner().invoke(app, ["refresh", str(tmp_path / "batch-0.parquet"), "--store", str(tmp_path / "s2"),
+                                   "--entity", "patron", "--element", "title", "--time", "borrowed_at", "--period",
+                                   "month", "--window", "3", "--threshold", "0.3", "--out", str(tmp_path / "i2"),
+                                   "--recall-of", "neighbours"])
+    assert bad.exit_code == 2 and "recall" in bad.output and "neighbours" in bad.output, bad.output

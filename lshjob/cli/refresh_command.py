@@ -21,7 +21,7 @@ from lshjob.runtime.progress import StageProgress
 
 REFRESH_KEYS = {
     "events": str, "store": str, "entity": str, "element": str, "time": str, "period": str, "window": int,
-    "threshold": (int, float), "out": str, "top_k": int, "keep": int, "recall": float, "seed": int,
+    "threshold": (int, float), "out": str, "top_k": int, "keep": int, "recall": float, "recall_of": str, "seed": int,
     "scheme": str, "sample_size": int, "max_bucket": int, "max_candidates": (int, float),
     "memory": (str, int), "wait": (int, float), "on_null": str, "unicode": str, "full": bool,
     "engine": str, "spark_master": str,
@@ -101,6 +101,10 @@ def refresh(
     recall: Annotated[float | None, typer.Option(
         help="Expected recall the kept plan must still meet.  [default: 0.95]",
     )] = None,
+    recall_of: Annotated[str | None, typer.Option(
+        help="What --recall is the recall of: 'pairs' (every pair at or above the threshold) or 'lists' "
+             "(the --top-k lists published), as lshjob run --recall-of.  [default: pairs]",
+    )] = None,
     seed: Annotated[int | None, typer.Option(help="Seed of the hash family.  [default: the kept plan's, or 1]")] = None,
     scheme: Annotated[str | None, typer.Option(help="kperm or oph.  [default: the kept plan's, or kperm]")] = None,
     memory: Annotated[str | None, typer.Option(help="Memory budget, e.g. 8GB.  [default: half the machine]")] = None,
@@ -139,7 +143,8 @@ def refresh(
     --engine spark --spark-master spark://head:7077
     """
     flags = dict(events=events, store=store, entity=entity, element=element, time=time, period=period,
-                 window=window, threshold=threshold, out=out, top_k=top_k, keep=keep, recall=recall, seed=seed,
+                 window=window, threshold=threshold, out=out, top_k=top_k, keep=keep, recall=recall,
+                 recall_of=recall_of, seed=seed,
                  scheme=scheme, memory=memory, wait=wait, on_null=on_null, full=full or None,
                  engine=engine, spark_master=spark_master)
     settings = merge_settings(REFRESH_DEFAULTS,

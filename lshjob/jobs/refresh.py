@@ -83,6 +83,7 @@ class RefreshOptions(EngineChoice):  # engine: local, or spark (README, "Refresh
     top_k: int = default_of("top_k")  # the run's defaults, declared once (lshjob.jobs.options)
     keep: int = 3  # published indexes kept in the store
     recall: float = default_of("recall")
+    recall_of: str = default_of("recall_of")  # "lists": --recall is the top-k lists' (as lshjob run --recall-of)
     seed: int | None = None  # None: the kept plan's (1 for a new store)
     scheme: str | None = None  # None: the kept plan's (kperm for a new store)
     sample_size: int = default_of("sample_size")
@@ -103,7 +104,7 @@ class RefreshOptions(EngineChoice):  # engine: local, or spark (README, "Refresh
         seed = self.seed if self.seed is not None else (plan or {}).get("seed", 1)
         scheme = self.scheme or (plan or {}).get("scheme", "kperm")
         banded = plan is not None and plan.get("bands") is not None
-        return RunOptions(threshold=self.threshold, top_k=self.top_k, recall=self.recall,
+        return RunOptions(threshold=self.threshold, top_k=self.top_k, recall=self.recall, recall_of=self.recall_of,
                           perms=plan["perms"] if banded else None, bands=plan["bands"] if banded else None,
                           rows=plan["rows"] if banded else None, seed=seed, scheme=scheme,
                           sample_size=self.sample_size, max_bucket=self.max_bucket,

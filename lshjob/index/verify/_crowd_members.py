@@ -83,7 +83,7 @@ def weight_within(group_sizes, top_k: int | None, first: int, sets: int) -> np.n
     return np.minimum(top_k + 1, np.asarray(group_sizes[first:first + sets], dtype=np.int64))
 
 
-BINS = 64  # bins of [threshold, 1] a crowd tallies each member's pairs in (_rise)
+BINS = 64  # bins of [threshold, 1] a crowd tallies each member's pairs in (rise)
 
 
 @numba.njit(inline="always")
