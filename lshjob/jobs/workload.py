@@ -12,6 +12,7 @@ from __future__ import annotations
 import os
 import tempfile
 import time
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -22,9 +23,12 @@ from lshjob.core import compile_cache
 from lshjob.core.sets import ElementSets
 from lshjob.demo.generate import generate_events
 from lshjob.index.verify._crowds import crowd_pairs_between, verify_crowds
+from lshjob.index.verify.base import VerifySettings
+from lshjob.index.verify.local import verify_blocks
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.jobs.sign import merge_files, plan_banding, sign_file
+from lshjob.runtime.partitions import HeldSets
 from lshjob.sign.signatures import SignatureParams
 
 PATRONS = 300
@@ -109,18 +113,41 @@ def exercise(folder: Path) -> list[str]:
         if i < 4:
             step(f"audit index {i}", audit_index, index, sample=50, memory=MEMORY, parts=2 if i % 2 else None)
     step("verify crowds", verify_a_crowd)
+    step("verify rows per band and crowds by band", verify_rows_and_crowds, folder)
     return steps
+
+
+def _crowd_sets() -> tuple[ElementSets, ElementSets]:
+    """70 distinct small sets (entity e holds e // 10, 10 + e % 10 and 20 + e % 3), read-only
+    (as saved parts are read) and writable (as a run loads them)."""
+    e = np.arange(70, dtype=np.int64)
+    rows = pl.DataFrame({"entity": np.repeat(e, 3), "element": np.stack([e // 10, 10 + e % 10, 20 + e % 3], 1).ravel()})
+    sets = ElementSets.from_sets(rows)
+    return sets, replace(sets, offsets=sets.offsets.copy(), elements=sets.elements.copy())
 
 
 def verify_a_crowd() -> None:
     """The crowd kernel (:mod:`lshjob.index.verify._crowds`), which a run calls only on large
     joins of long-tailed data: one bucket of 70 small sets, in one key range and across two."""
-    rows = pl.DataFrame({"entity": np.repeat(np.arange(70, dtype=np.int64), 3),
-                         "element": np.arange(210, dtype=np.int64) % 5})
-    sets = ElementSets.from_sets(rows)
     crowds = pl.DataFrame({"crowd": np.zeros(70, dtype=np.int64), "rep": np.arange(70, dtype=np.int64)})
-    for left, right in (((0, 69), (0, 69)), ((0, 34), (35, 69))):
-        verify_crowds(crowd_pairs_between(crowds, left, right), sets, 0, sets, 0, 0.5)
+    for sets in _crowd_sets():
+        for left, right in (((0, 69), (0, 69)), ((0, 34), (35, 69))):
+            verify_crowds(crowd_pairs_between(crowds, left, right), sets, 0, sets, 0, 0.5)
+
+
+def verify_rows_and_crowds(folder: Path) -> None:
+    """Verification as a large run on long-tailed data makes it, which the tiny runs above do
+    not: pairs given a row per band (deduplicated as they come), crowds whose bands are known,
+    top-k floors, the sets both as loaded (writable) and as saved parts are read (read-only)."""
+    e = np.arange(67, dtype=np.int64)  # e and e + 3 share two elements within a ten: J 0.5, met in two bands
+    pl.DataFrame({"left_rep": np.concatenate([e, e]), "right_rep": np.concatenate([e + 3, e + 3]),
+                  "bands_shared": np.ones(134, dtype=np.int32)}).write_parquet(folder / "rows.parquet")
+    pl.DataFrame({"crowd": np.repeat(np.arange(1, 3, dtype=np.int64), 35), "rep": np.arange(70, dtype=np.int64),
+                  "band": np.repeat(np.arange(2, dtype=np.int32), 35)}).write_parquet(folder / "crowds.parquet")
+    settings = VerifySettings(held_rows=40, top_k=3, group_sizes=np.ones(70, dtype=np.int64), distinct_sets=True)
+    for sets in _crowd_sets():
+        verify_blocks(folder / "rows.parquet", HeldSets(sets), 0.3, SignatureParams(perms=64), settings,
+                      folder / "crowds.parquet")
 
 
 class _Recorder:

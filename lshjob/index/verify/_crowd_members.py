@@ -1,11 +1,15 @@
 """The layout of crowds' members for :mod:`lshjob.index.verify._crowds`: each member's crowd a
-band, members by set size within a crowd, and the top-k floors of a range of entity ids."""
+band, members by set size within a crowd, the top-k floors of a range of entity ids and how a
+crowd raises them, and the sets as the kernels read them."""
 
 from __future__ import annotations
+
+from dataclasses import replace
 
 import numpy as np
 
 from lshjob.core._jit import numba
+from lshjob.core.compile_cache import readonly
 
 
 def floor_within(floors, first: int, sets: int) -> np.ndarray:
@@ -154,3 +158,8 @@ def member_floors(mem, first, floor, threshold):
         at[x] = max(threshold, floor[mem[x] - first])
         lowest = min(lowest, at[x])
     return at, lowest
+
+
+def read_only(sets):
+    """``sets`` with read-only views of its offsets and elements (:func:`lshjob.core.compile_cache.readonly`)."""
+    return replace(sets, offsets=readonly(sets.offsets), elements=readonly(sets.elements))

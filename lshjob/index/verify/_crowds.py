@@ -17,6 +17,7 @@ from lshjob.index.verify._crowd_members import (
     list_tallies,
     may_reach,
     member_floors,
+    read_only,
     rise,
     weight_within,
 )
@@ -339,6 +340,9 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
     floors with the pairs it finds. ``distinct``: no two members of a range hold the same set
     (representatives), which spares pairs of one size (:func:`_crowd_pairs_prefix`)."""
     (a_members, a_crowd, a_start, a_count, b_members, b_crowd, b_start, b_count, same, a_band), pairs = block
+    # read-only views: one compiled kernel whether a run loaded the sets or read a saved part
+    same_sets, left_sets = right_sets is left_sets, read_only(left_sets)
+    right_sets = left_sets if same_sets else read_only(right_sets)
     crowd_at, in_bands, row_of, crowd_band = crowds_by_band(a_members, a_crowd, a_band, a_start, left_first,
                                                    len(left_sets.offsets) - 1)
     a_members = by_size(a_members, a_crowd, left_sets, left_first)  # each crowd's members by set size

@@ -13,6 +13,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
+from lshjob.core.compile_cache import readonly
 from lshjob.core.sets import ElementSets
 from lshjob.core.slicing import slice_bounds
 from lshjob.index._ranking import list_cuts, own_cuts
@@ -69,7 +70,8 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 floors = own_cuts(settings.group_sizes, settings.top_k)
             held = HeldRows(settings.held_rows, partial(
                 one_row_a_pair, jaccard_of=partial(_exact, left, store.ranges[i][0], right, store.ranges[j][0]),
-                held_sets=(left.offsets, store.ranges[i][0], right.offsets, store.ranges[j][0])), cut, floors)
+                held_sets=(readonly(left.offsets), store.ranges[i][0], readonly(right.offsets), store.ranges[j][0])),
+                cut, floors)
             if files:
                 frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
                 for lo, hi in slice_bounds(_rows(files), step):
