@@ -64,9 +64,8 @@ from lshjob.store import catalog
 from lshjob.store import files as store_files
 
 INDEX_STATE = "index_state"  # the catalog's fact naming the state of the last index (refresh_index)
-# The planner keeps the cheapest plan at or above --recall, so its recall sits at the target:
-# a kept plan is judged against the target less this slack, or a new sample's noise alone
-# would re-plan most refreshes.
+# The planner keeps the cheapest plan at or above --recall, so its recall sits at the target: a kept plan is
+# judged against the target less this slack, or a new sample's noise alone would re-plan most refreshes.
 RECALL_SLACK = 0.02
 # Share of the last index's entities touched (by the batch or an expired period) at or above which
 # the state is rebuilt from the whole window instead of updated. The update's join and
@@ -106,9 +105,9 @@ class RefreshOptions(EngineChoice):  # engine: local, or spark (README, "Refresh
         banded = plan is not None and plan.get("bands") is not None
         return RunOptions(threshold=self.threshold, top_k=self.top_k, recall=self.recall, recall_of=self.recall_of,
                           perms=plan["perms"] if banded else None, bands=plan["bands"] if banded else None,
-                          rows=plan["rows"] if banded else None, seed=seed, scheme=scheme,
-                          sample_size=self.sample_size, max_bucket=self.max_bucket,
-                          max_candidates=self.max_candidates, memory=self.memory, **self.engine_options())
+                          rows=plan["rows"] if banded else None, seed=seed, scheme=scheme, sample_size=self.sample_size,
+                          max_bucket=self.max_bucket, max_candidates=self.max_candidates, memory=self.memory,
+                          **self.engine_options())
 
 
 def refresh_job(events: str | Path, store: str | Path, spec: EventSpec, options: RefreshOptions, out: str | Path,
