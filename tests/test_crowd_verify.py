@@ -1,5 +1,6 @@
 """Verification of crowds (lshjob/index/verify/_crowds.py): every pair of a crowd's members
-whose exact Jaccard reaches the threshold, found by prefix filtering within the crowd.
+whose exact Jaccard reaches the threshold, found by prefix filtering within the crowd or by
+counting shared elements (each way forced, and chosen by cost).
 Oracle: exact Jaccard of every pair of members with Python sets (itertools.combinations)."""
 
 from __future__ import annotations
@@ -43,7 +44,8 @@ def _crowded_sets(seed: int, crowds: int = 6):
 @pytest.mark.parametrize("seed", [1, 2, 3])
 @pytest.mark.parametrize("threshold", [0.3, 0.5, 0.8])
 @pytest.mark.parametrize("with_bands", [False, True])
-def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold, with_bands):
+@pytest.mark.parametrize("how", ["prefix", "counted", "auto"])
+def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold, with_bands, how):
     sets, crowd_rows = _crowded_sets(seed)
     keys = pl.Series("entity", np.arange(len(sets)))
     rows = pl.DataFrame({"entity": np.repeat(np.arange(len(sets)), [len(s) for s in sets]),
@@ -55,7 +57,7 @@ def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold, w
     if with_bands:  # crowd c in band c - 1 (one crowd a band: a rep is in one crowd a band at most)
         table = table.with_columns(band=(pl.col("crowd") - 1).cast(pl.Int32))
     block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
-    got = verify_crowds(block, element_sets, 0, element_sets, 0, threshold, max_pairs=500)
+    got = verify_crowds(block, element_sets, 0, element_sets, 0, threshold, max_pairs=500, how=how)
     # oracle: exact Jaccard with Python sets, every pair of every crowd; a row per crowd it is
     # in, or, given the bands, one row with the number of crowds it is in
     crowds_in = Counter()
@@ -77,7 +79,8 @@ def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold, w
 
 
 @pytest.mark.parametrize("seed", [1, 2])
-def test_crowd_pairs_below_both_floors_are_not_sought(seed):
+@pytest.mark.parametrize("how", ["prefix", "counted", "auto"])
+def test_crowd_pairs_below_both_floors_are_not_sought(seed, how):
     """With top-k floors (lshjob.index._ranking.list_cuts), every pair reaching
     max(threshold, min(floor a, floor b)) is found with its exact Jaccard and its crowds, and
     none below the threshold. Oracle: exact Jaccard with Python sets, as above."""
@@ -93,7 +96,7 @@ def test_crowd_pairs_below_both_floors_are_not_sought(seed):
     floors[table.filter(pl.col("crowd") == 2)["rep"].to_numpy()] = 0.5  # one crowd floored throughout
     block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
     got = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, threshold, max_pairs=500,
-                                      floors=lambda: floors)))
+                                      floors=lambda: floors, how=how)))
     crowds_in, jaccard = Counter(), {}
     for _, members in table.group_by("crowd"):
         for a, b in combinations(sorted(members["rep"].to_list()), 2):
@@ -110,7 +113,8 @@ def test_crowd_pairs_below_both_floors_are_not_sought(seed):
     assert len(skipped) > 10  # the floors left pairs out
 
 
-def test_a_crowd_finding_more_pairs_than_its_room_keeps_that_many_and_is_counted():
+@pytest.mark.parametrize("how", ["prefix", "counted", "auto"])
+def test_a_crowd_finding_more_pairs_than_its_room_keeps_that_many_and_is_counted(how):
     # Oracle: exact Jaccard with Python sets. Crowd 1: 40 near-copies (every pair similar, 780
     # pairs) with room for 100; crowd 2: 30 sets whose pairs reach the threshold rarely, untouched.
     rng = np.random.default_rng(5)
@@ -125,14 +129,14 @@ def test_a_crowd_finding_more_pairs_than_its_room_keeps_that_many_and_is_counted
     truth = {(a, b) for lo, hi in ((0, 40), (40, 70)) for a, b in combinations(range(lo, hi), 2)
              if len(set(sets[a]) & set(sets[b])) / len(set(sets[a]) | set(sets[b])) >= 0.5}
     tally: dict = {}
-    got = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, 0.5, tally=tally, room=100)))
+    got = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, 0.5, tally=tally, room=100, how=how)))
     pairs = set(zip(got["left_rep"].to_list(), got["right_rep"].to_list()))
     first = {p for p in pairs if p[1] < 40}
     assert len(first) == 100 and first <= truth  # room for 100: the first 100 found, each right
     assert {p for p in truth if p[0] >= 40} == pairs - first  # the other crowd whole
     assert tally == {"crowds_cut": 1}
     whole: dict = {}
-    every = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, 0.5, tally=whole)))
+    every = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, 0.5, tally=whole, how=how)))
     assert set(zip(every["left_rep"].to_list(), every["right_rep"].to_list())) == truth and whole == {}
 
 
@@ -165,12 +169,13 @@ def _every_pair(sets, table, threshold):
 
 @pytest.mark.parametrize("seed", [1, 2, 3])
 @pytest.mark.parametrize("threshold", [0.3, 0.5, 0.6])
-def test_distinct_members_of_one_size_spared_lose_no_pair(seed, threshold):
+@pytest.mark.parametrize("how", ["prefix", "counted", "auto"])
+def test_distinct_members_of_one_size_spared_lose_no_pair(seed, threshold, how):
     """``distinct=True`` skips pairs of one size whose bound (|A| - 1) / (|A| + 1) is below the
     threshold: the same pairs and values as the oracle (exact Jaccard, Python sets)."""
     sets, element_sets, table = _distinct_crowds(seed)
     block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
-    got = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, threshold, distinct=True)))
+    got = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, threshold, distinct=True, how=how)))
     want = _every_pair(sets, table, threshold)
     assert len(want) > 20
     assert {(a, b): j for a, b, j in got.select("left_rep", "right_rep", "jaccard").iter_rows()} == want
@@ -178,7 +183,8 @@ def test_distinct_members_of_one_size_spared_lose_no_pair(seed, threshold):
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])
-def test_floors_a_crowd_raises_drop_only_pairs_no_list_takes(seed):
+@pytest.mark.parametrize("how", ["prefix", "counted", "auto"])
+def test_floors_a_crowd_raises_drop_only_pairs_no_list_takes(seed, how):
     """With top-k floors, group sizes and top_k, a crowd raises its members' floors with the
     pairs it finds (lshjob/index/verify/_crowd_members.py rise): fewer rows, and the pairs
     the top-k cut keeps (lshjob.index._ranking.pairs_in_lists) are those it keeps from every
@@ -191,9 +197,9 @@ def test_floors_a_crowd_raises_drop_only_pairs_no_list_takes(seed):
     floors = own_cuts(group_sizes, top_k)
     block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
     got = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, threshold, floors=lambda: floors,
-                                      group_sizes=group_sizes, top_k=top_k, distinct=True)))
+                                      group_sizes=group_sizes, top_k=top_k, distinct=True, how=how)))
     lower = pl.concat(list(crowd_pieces(block, element_sets, 0, element_sets, 0, threshold, floors=lambda: floors,
-                                        distinct=True)))  # the given floors only
+                                        distinct=True, how=how)))  # the given floors only
     want = _every_pair(sets, table, threshold)
 
     def kept(pairs):

@@ -10,6 +10,7 @@ import polars as pl
 
 from lshjob.core._jit import numba
 from lshjob.core.search import first_at_least
+from lshjob.index.verify._crowd_index import HOW, crowd_index, need_for
 from lshjob.index.verify._crowd_members import (
     by_size,
     crowds_by_band,
@@ -66,110 +67,37 @@ def _crowd_pairs(left_offsets, left_elements, left_first, right_offsets, right_e
 
 
 @numba.njit(inline="always")
-def _need(la, lb, threshold):
-    """The intersection J(A, B) >= t needs: ceil(t / (1 + t) (|A| + |B|)) (as in
-    :func:`lshjob.index.verify._jaccard.jaccard_between`)."""
-    return int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9))
-
-
-@numba.njit(cache=True)
-def _rarity(offsets, elements, first, mem):
-    """A crowd's distinct elements (sorted), how many members hold each, the rank of each,
-    rarest first (ties by element code), and the members' set sizes."""
-    m = len(mem)
-    size = np.empty(m, dtype=np.int64)
-    total = 0
-    for x in range(m):
-        size[x] = offsets[mem[x] - first + 1] - offsets[mem[x] - first]
-        total += size[x]
-    flat = np.empty(total, dtype=np.int64)
-    p = 0
-    for x in range(m):
-        for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
-            flat[p] = elements[j]
-            p += 1
-    flat.sort()
-    values = np.empty(total, dtype=np.int64)
-    freq = np.zeros(total, dtype=np.int64)
-    nu = 0
-    for j in range(total):
-        if j == 0 or flat[j] != flat[j - 1]:
-            values[nu] = flat[j]
-            nu += 1
-        freq[nu - 1] += 1
-    values, freq = values[:nu], freq[:nu]
-    rank = np.empty(nu, dtype=np.int64)
-    by_freq = np.argsort(freq, kind="mergesort")
-    for r in range(nu):
-        rank[by_freq[r]] = r
-    return values, freq, rank, size
-
-
-@numba.njit(cache=True)
-def _prefix_index(offsets, elements, first, mem, threshold):
-    """A crowd's prefix index (:func:`_crowd_pairs_prefix`): (sizes, |C|, each member's A' as
-    ranks ascending in CSR, its prefix length, and the members posted under each rank,
-    ascending)."""
-    m = len(mem)
-    values, freq, rank, size = _rarity(offsets, elements, first, mem)
-    nu = len(values)
-    common = 0
-    for u in range(nu):
-        if freq[u] == m:
-            common += 1
-    local_off = np.zeros(m + 1, dtype=np.int64)
-    for x in range(m):
-        local_off[x + 1] = local_off[x] + size[x] - common
-    local = np.empty(local_off[m], dtype=np.int64)
-    prefix = np.empty(m, dtype=np.int64)
-    for x in range(m):
-        q = local_off[x]
-        for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
-            u = first_at_least(values, 0, len(values), elements[j])  # present
-            if freq[u] < m:
-                local[q] = rank[u]
-                q += 1
-        local[local_off[x]:local_off[x + 1]].sort()
-        smallest = int(np.ceil(threshold * size[x] - 1e-9))  # the smallest partner the size filter allows
-        o = _need(size[x], smallest, threshold) - common
-        prefix[x] = min(size[x] - common, size[x] - common - max(o, 1) + 1)
-    post_off = np.zeros(nu + 1, dtype=np.int64)
-    for x in range(m):
-        for q in range(local_off[x], local_off[x] + prefix[x]):
-            post_off[local[q] + 1] += 1
-    for r in range(nu):
-        post_off[r + 1] += post_off[r]
-    fill = post_off[:nu].copy()
-    posted = np.empty(post_off[nu], dtype=np.int64)
-    for x in range(m):
-        for q in range(local_off[x], local_off[x] + prefix[x]):
-            posted[fill[local[q]]] = x
-            fill[local[q]] += 1
-    return size, common, local_off, local, prefix, post_off, posted
+def _crowds_shared(crowd_at, x, y, lo, hi):
+    """The bands lo..hi-1 where rows x and y of ``crowd_at`` are in one crowd (no branch: the
+    compiler makes it a few vector compares)."""
+    n = 0
+    for b in range(lo, hi):
+        n += (crowd_at[x, b] == crowd_at[y, b]) & (crowd_at[x, b] != 0)
+    return n
 
 
 @numba.njit(inline="always")
-def _keep(local, local_off, common, mem, x, y, la, lb, need, threshold, crowd_at, bits, rows, band, out,
+def _keep(local, local_off, common, mem, x, y, la, lb, need, threshold, inter, crowd_at, bits, band, out,
           out_left, out_right, out_jac, out_bands):
-    """Intersect members x and y (sizes la >= lb): |C| plus the intersection of what they do
-    not all share (``local``, the crowd's ranks: small, in cache); write the pair at ``out``
-    when it reaches the threshold (the filters of :func:`_crowd_pairs`); the next free slot. With the crowds'
-    bands (``crowd_at``: each member's crowd a band, 0 for none, a row an entity; ``rows``,
-    ``bits``: member x's row and the bands it has a crowd in, gathered for this crowd; ``band``:
-    this crowd's), a pair sharing a crowd of an earlier band is left to it, and a pair written
-    gets the number of crowds it shares as its ``out_bands``."""
+    """Members x and y (sizes la >= lb): their intersection ``inter`` when counted, or (-1) |C|
+    plus the intersection of what they do not all share (``local``, the crowd's ranks: small,
+    in cache); write the pair at ``out`` when it reaches the threshold (the filters of
+    :func:`_crowd_pairs`); the next free slot. With the crowds' bands (``crowd_at``: each
+    member's crowd a band, 0 for none, a row a member of this crowd; ``bits``: the bands (mod
+    64) member x has a crowd in; ``band``: this crowd's), a pair
+    sharing a crowd of an earlier band is left to it, and a pair written gets the number of
+    crowds it shares as its ``out_bands``."""
+    if inter >= 0 and (inter < need or inter / (lb + la - inter) < threshold):
+        return out  # counted: below, before its bands are looked up
     both = np.uint64(0)
-    rx = ry = 0
     if band >= 0:
-        rx, ry = rows[x], rows[y]
         both = bits[x] & bits[y]
-        if both & ((np.uint64(1) << np.uint64(band)) - np.uint64(1) if band < 64 else ~np.uint64(0)):
-            for b in range(band):
-                if (both >> np.uint64(b & 63)) & np.uint64(1) and crowd_at[rx, b] == crowd_at[ry, b] \
-                        and crowd_at[rx, b] != 0:
-                    return out
-    inter = common + _intersection(local, local_off[y], local_off[y + 1], local, local_off[x], local_off[x + 1],
-                                   need - common)
+        if both & ((np.uint64(1) << np.uint64(band)) - np.uint64(1) if band < 64 else ~np.uint64(0)) \
+                and _crowds_shared(crowd_at, x, y, 0, band):
+            return out
+    if inter < 0:
+        inter = common + _intersection(local, local_off[y], local_off[y + 1], local, local_off[x], local_off[x + 1],
+                                       need - common)
     value = inter / (lb + la - inter)
     if inter >= need and value >= threshold:
         out_left[out] = min(mem[x], mem[y])
@@ -177,19 +105,54 @@ def _keep(local, local_off, common, mem, x, y, la, lb, need, threshold, crowd_at
         out_jac[out] = value
         shared = 1
         if band >= 0:
-            for b in range(band + 1, crowd_at.shape[1]):
-                if (both >> np.uint64(b & 63)) & np.uint64(1) and crowd_at[rx, b] == crowd_at[ry, b] \
-                        and crowd_at[rx, b] != 0:
-                    shared += 1
+            if both >> np.uint64(band + 1) if band < 63 else True:
+                shared += _crowds_shared(crowd_at, x, y, band + 1, crowd_at.shape[1])
         out_bands[out] = shared
         return out + 1
     return out
 
 
+@numba.njit(inline="always")
+def _try(x, y, inter, size, at, distinct, common, local, local_off, mem, crowd_at, bits, band, out, end,
+         rising, threshold, first, weight, tally, top, above, wanted, out_left, out_right, out_jac, out_bands):
+    """Pair (x, y) of a crowd, y before x (:func:`_keep`), sought at the lower of its sides'
+    floors; (the next free slot, whether the crowd's room is full)."""
+    la, lb = size[x], size[y]
+    sought = min(at[x], at[y])
+    if lb < sought * la - 1e-9 or not may_reach(la, lb, sought, distinct):
+        return out, False
+    if out >= end:
+        return out, True
+    kept = _keep(local, local_off, common, mem, x, y, la, lb, need_for(la, lb, sought), sought, inter, crowd_at,
+                 bits, band, out, out_left, out_right, out_jac, out_bands)
+    if rising and kept > out:
+        rise(x, y, out_jac[out], threshold, mem, first, weight, tally, top, above, wanted, at)
+    return kept, False
+
+
+@numba.njit(inline="always")
+def _count_shared(local, local_off, post_off, posted, x, low, shared, touched):
+    """Member x counts, through the postings of each element of its A', the elements each
+    earlier member from ``low`` shares with it (``shared``, zero before), and lists the
+    members met in ``touched``; their number."""
+    met = 0
+    for q in range(local_off[x], local_off[x + 1]):
+        r = local[q]
+        for t in range(first_at_least(posted, post_off[r], post_off[r + 1], low), post_off[r + 1]):
+            y = posted[t]
+            if y >= x:
+                break
+            if shared[y] == 0:
+                touched[met] = y
+                met += 1
+            shared[y] += 1
+    return met
+
+
 @numba.njit(parallel=True, cache=True)
-def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, room, threshold, floor, weight, cap,
-                        distinct, crowd_at, in_bands, row_of, bands, out_left, out_right, out_jac, out_bands, found,
-                        full):
+def _crowd_pairs_within(offsets, elements, first, members, start, count, base, room, threshold, floor, weight, cap,
+                        distinct, how, crowd_at, in_bands, row_of, bands, out_left, out_right, out_jac, out_bands,
+                        found, full):
     """The pairs of each crowd (members ``members[start[c]:start[c] + count[c]]``, one range,
     by set size ascending) whose Jaccard reaches ``threshold``: the same pairs, with the same
     values, as :func:`_crowd_pairs`, without intersecting every pair. Written from slot
@@ -198,18 +161,25 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, r
 
     A crowd's members share the elements every one of them holds (C; on long-tailed data the
     popular element that made the bucket), so |A n B| = |C| + |A' n B'| with A' = A minus C. A
-    pair whose needed intersection (:func:`_need`) is at most |C| is intersected directly
-    (few: tiny sets). Any other pair that reaches the threshold shares at least
-    o = need - |C| >= 1 elements of A' and B', so with the crowd's elements ordered rarest
-    first, it shares one among the first |A'| - o + 1 of each side (prefix filtering:
-    Chaudhuri, Ganti, Kaushik, ICDE 2006; Xiao, Wang, Lin, Yu, WWW 2008). Each member's
-    prefix is cut for the smallest o of any partner its size allows, and the members sharing
-    a prefix element are intersected, each pair once.
+    pair whose needed intersection (:func:`need_for`) is at most |C| may reach the threshold
+    with no other shared element. Any other pair that reaches it shares an element of A', and
+    a crowd finds those one of two ways (:mod:`lshjob.index.verify._crowd_index`, by cost, or
+    ``how``):
+
+    - by prefixes: with the crowd's elements ordered rarest first, a pair that needs
+      o = need - |C| >= 1 elements of A' shares one among the first |A'| - o + 1 of each side
+      (prefix filtering: Chaudhuri, Ganti, Kaushik, ICDE 2006; Xiao, Wang, Lin, Yu, WWW 2008);
+      each member's prefix is cut for the smallest o of any partner its size allows, and the
+      members sharing a prefix element are intersected, each pair once;
+    - counted: every member posted under each element of its A', a member counts, through the
+      postings of its own elements, the elements each earlier member shares with it (|A' n B'|
+      exactly, an increment each; the ScanCount of Li, Lu, Lu, ICDE 2008), so no pair is
+      merged. Tiny sets of popular elements (long-tailed data) leave prefixes nearly their
+      whole sets, where this is several times faster.
 
     ``bands[c]``: crowd c's band, or -1 when the bands are not known. Known, a pair of members
-    of crowds of several bands is intersected and written by the crowd of its first band
-    only, with the number of crowds it shares (:func:`_keep`): one row where a crowd each
-    would give one, and one intersection.
+    of crowds of several bands is written by the crowd of its first band only, with the
+    number of crowds it shares (:func:`_keep`): one row where a crowd each would give one.
 
     ``floor`` (by entity id from ``first``; empty for none): each set's top-k floor
     (:func:`lshjob.index._ranking.list_cuts`). A pair below both its sides' floors enters
@@ -225,37 +195,42 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, r
     pair of equal sizes that bound puts below what it is sought at is not intersected."""
     for c in numba.prange(start.shape[0]):
         mem = members[start[c]:start[c] + count[c]]
+        m = len(mem)
         at, lowest = member_floors(mem, first, floor, threshold)
-        size, common, local_off, local, prefix, post_off, posted = _prefix_index(offsets, elements, first, mem,
-                                                                                 lowest)
+        size, common, local_off, local, prefix, counted, post_off, posted = crowd_index(offsets, elements, first, mem,
+                                                                                        lowest, how)
         rising = len(weight) > 0 and len(floor) > 0
         tally, top, above, wanted = list_tallies(mem, first, weight, cap, rising)
-        seen = np.full(len(mem), -1, dtype=np.int64)
-        rows, bits = np.zeros(len(mem), dtype=np.int64), np.zeros(len(mem), dtype=np.uint64)
-        for x in range(len(mem) if bands[c] >= 0 else 0):  # each member's row of crowd_at and bands, once
-            rows[x] = row_of[mem[x] - first]
-            bits[x] = in_bands[rows[x]]
-        out = base[c]
-        end = base[c] + room[c]
-        stop = False
-        for x in range(len(mem)):
+        seen = np.full(m if not counted else 0, -1, dtype=np.int64)
+        shared = np.zeros(m if counted else 0, dtype=np.int64)  # |A' n B'| of each earlier member, counted
+        touched = np.empty(m if counted else 0, dtype=np.int64)
+        # each member's row of crowd_at and bands, gathered once (a pair reads them in cache)
+        mine = np.zeros((m if bands[c] >= 0 else 0, crowd_at.shape[1]), dtype=np.int32)
+        bits = np.zeros(m, dtype=np.uint64)
+        for x in range(m if bands[c] >= 0 else 0):
+            mine[x] = crowd_at[row_of[mem[x] - first]]
+            bits[x] = in_bands[row_of[mem[x] - first]]
+        out, end, stop = base[c], base[c] + room[c], False
+        for x in range(m):
             la = size[x]
-            for y in range(x):  # partners whose needed intersection C alone gives
-                need = _need(la, size[y], threshold)
-                if need > common:
-                    break  # later partners are at least as large
-                sought = min(at[x], at[y])
-                if size[y] >= sought * la - 1e-9 and may_reach(la, size[y], sought, distinct):
-                    if out >= end:
-                        stop = True
-                        break
-                    kept = _keep(local, local_off, common, mem, x, y, la, size[y], _need(la, size[y], sought),
-                                 sought, crowd_at, bits, rows, bands[c], out, out_left, out_right, out_jac, out_bands)
-                    if rising and kept > out:
-                        rise(x, y, out_jac[out], threshold, mem, first, weight, tally, top, above, wanted, at)
-                    out = kept
             low = first_at_least(size, 0, x, lowest * la - 1e-9)  # the size filter, sizes ascending
-            for q in range(local_off[x], local_off[x] + (0 if stop else prefix[x])):
+            met = _count_shared(local, local_off, post_off, posted, x, low, shared, touched) if counted else 0
+            for y in range(x):  # partners whose needed intersection C alone may give
+                if need_for(la, size[y], threshold) > common:
+                    break  # later partners are at least as large
+                out, stop = _try(x, y, common + shared[y] if counted else -1, size, at, distinct, common, local,
+                                 local_off, mem, mine, bits, bands[c], out, end, rising, threshold, first,
+                                 weight, tally, top, above, wanted, out_left, out_right, out_jac, out_bands)
+                if stop:
+                    break
+            for i in range(met):
+                y = touched[i]
+                inter, shared[y] = common + shared[y], 0
+                if not stop and need_for(la, size[y], threshold) > common:  # (the others were tried above)
+                    out, stop = _try(x, y, inter, size, at, distinct, common, local, local_off, mem, mine, bits,
+                                     bands[c], out, end, rising, threshold, first, weight, tally, top, above,
+                                     wanted, out_left, out_right, out_jac, out_bands)
+            for q in range(local_off[x], local_off[x] + (0 if stop or counted else prefix[x])):
                 r = local[q]
                 for t in range(first_at_least(posted, post_off[r], post_off[r + 1], low), post_off[r + 1]):
                     y = posted[t]
@@ -264,19 +239,12 @@ def _crowd_pairs_prefix(offsets, elements, first, members, start, count, base, r
                     if seen[y] == x:
                         continue
                     seen[y] = x
-                    need = _need(la, size[y], threshold)
-                    if need > common:  # (the others were intersected above)
-                        sought = min(at[x], at[y])
-                        if size[y] >= sought * la - 1e-9 and may_reach(la, size[y], sought, distinct):
-                            if out >= end:
-                                stop = True
-                                break
-                            kept = _keep(local, local_off, common, mem, x, y, la, size[y],
-                                         _need(la, size[y], sought), sought, crowd_at, bits, rows, bands[c],
-                                         out, out_left, out_right, out_jac, out_bands)
-                            if rising and kept > out:
-                                rise(x, y, out_jac[out], threshold, mem, first, weight, tally, top, above, wanted, at)
-                            out = kept
+                    if need_for(la, size[y], threshold) > common:  # (the others were tried above)
+                        out, stop = _try(x, y, -1, size, at, distinct, common, local, local_off, mem, mine, bits,
+                                         bands[c], out, end, rising, threshold, first, weight, tally, top,
+                                         above, wanted, out_left, out_right, out_jac, out_bands)
+                        if stop:
+                            break
                 if stop:
                     break
             if stop:
@@ -319,18 +287,19 @@ def crowd_pairs_between(crowds: pl.DataFrame | None, left_range: tuple[int, int]
 
 
 def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: int, threshold: float,
-                  max_pairs: int = MAX_PAIRS) -> pl.DataFrame:
+                  max_pairs: int = MAX_PAIRS, how: str = "auto") -> pl.DataFrame:
     """The crowds' pairs whose Jaccard reaches ``threshold``, as :func:`lshjob.index.verify.local.verify_between`
     gives them: a row a crowd, ``bands_shared`` 1 (summed with the pair's other rows later);
     within one range and given the crowds' bands, a row a pair, ``bands_shared`` the crowds it
     lies in. ``block``: from :func:`crowd_pairs_between`; at most ``max_pairs`` pairs (or one
-    crowd's) made at a time."""
-    return pl.concat(list(crowd_pieces(block, left_sets, left_first, right_sets, right_first, threshold, max_pairs)))
+    crowd's) made at a time; ``how``: as :func:`crowd_pieces`."""
+    return pl.concat(list(crowd_pieces(block, left_sets, left_first, right_sets, right_first, threshold, max_pairs,
+                                       how=how)))
 
 
 def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int, threshold: float,
                  max_pairs: int = MAX_PAIRS, floors=None, tally: dict | None = None, room: int = CROWD_ROOM,
-                 group_sizes=None, top_k: int | None = None, distinct: bool = False):
+                 group_sizes=None, top_k: int | None = None, distinct: bool = False, how: str = "auto"):
     """:func:`verify_crowds`'s rows, a chunk of at most ``max_pairs`` pairs made at a time, so
     the caller can deduplicate as they come. ``floors()``, when given, returns each entity id's
     top-k floor now (:func:`lshjob.index._ranking.list_cuts`), read before each chunk: the
@@ -338,7 +307,8 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
     range a crowd writes at most ``room`` pairs; ``tally["crowds_cut"]`` counts those cut there.
     With the floors, ``group_sizes`` (by entity id) and ``top_k``, a crowd raises its members'
     floors with the pairs it finds. ``distinct``: no two members of a range hold the same set
-    (representatives), which spares pairs of one size (:func:`_crowd_pairs_prefix`)."""
+    (representatives), which spares pairs of one size (:func:`_crowd_pairs_within`). ``how``:
+    "auto" (each crowd by cost), "prefix" or "counted" (every crowd that way; for tests)."""
     (a_members, a_crowd, a_start, a_count, b_members, b_crowd, b_start, b_count, same, a_band), pairs = block
     # read-only views: one compiled kernel whether a run loaded the sets or read a saved part
     same_sets, left_sets = right_sets is left_sets, read_only(left_sets)
@@ -377,9 +347,9 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
         if same:  # the pairs found written first in each crowd's slots
             found, full = np.zeros(hi - lo, dtype=np.int64), np.zeros(hi - lo, dtype=np.bool_)
             floor = floor_within(floors, left_first, len(left_sets.offsets) - 1)
-            _crowd_pairs_prefix(left_sets.offsets, left_sets.elements, left_first, a_members, a_start[lo:hi],
+            _crowd_pairs_within(left_sets.offsets, left_sets.elements, left_first, a_members, a_start[lo:hi],
                                 a_count[lo:hi], base, np.ascontiguousarray(slots[lo:hi], dtype=np.int64), threshold,
-                                floor, weight, (top_k or 0) + 1, distinct, crowd_at, in_bands, row_of,
+                                floor, weight, (top_k or 0) + 1, distinct, HOW[how], crowd_at, in_bands, row_of,
                                 crowd_band[lo:hi], out_left, out_right, out_jac, out_bands, found, full)
             if tally is not None and full.any():
                 tally["crowds_cut"] = tally.get("crowds_cut", 0) + int(full.sum())

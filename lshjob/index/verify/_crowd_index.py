@@ -1,0 +1,122 @@
+"""A crowd's index for :mod:`lshjob.index.verify._crowds`: its members' sets less the elements
+every member holds, as ranks rarest first, each member's prefix, and the members posted
+under each rank; and which of the two ways of finding the crowd's pairs it takes."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from lshjob.core._jit import numba
+from lshjob.core.search import first_at_least
+
+# How a crowd's pairs are found (the kernels' ``how``): chosen per crowd by cost, or forced.
+AUTO, PREFIX, COUNTED = 0, 1, 2
+HOW = {"auto": AUTO, "prefix": PREFIX, "counted": COUNTED}
+
+
+@numba.njit(inline="always")
+def need_for(la, lb, threshold):
+    """The intersection J(A, B) >= t needs: ceil(t / (1 + t) (|A| + |B|)) (as in
+    :func:`lshjob.index.verify._jaccard.jaccard_between`)."""
+    return int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9))
+
+
+@numba.njit(cache=True)
+def _rarity(offsets, elements, first, mem):
+    """A crowd's distinct elements (sorted), how many members hold each, the rank of each,
+    rarest first (ties by element code), and the members' set sizes."""
+    m = len(mem)
+    size = np.empty(m, dtype=np.int64)
+    total = 0
+    for x in range(m):
+        size[x] = offsets[mem[x] - first + 1] - offsets[mem[x] - first]
+        total += size[x]
+    flat = np.empty(total, dtype=np.int64)
+    p = 0
+    for x in range(m):
+        for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
+            flat[p] = elements[j]
+            p += 1
+    flat.sort()
+    values = np.empty(total, dtype=np.int64)
+    freq = np.zeros(total, dtype=np.int64)
+    nu = 0
+    for j in range(total):
+        if j == 0 or flat[j] != flat[j - 1]:
+            values[nu] = flat[j]
+            nu += 1
+        freq[nu - 1] += 1
+    values, freq = values[:nu], freq[:nu]
+    rank = np.empty(nu, dtype=np.int64)
+    by_freq = np.argsort(freq, kind="mergesort")
+    for r in range(nu):
+        rank[by_freq[r]] = r
+    return values, freq, rank, size
+
+
+@numba.njit(cache=True)
+def crowd_index(offsets, elements, first, mem, threshold, how):
+    """A crowd's index: (sizes, |C| (the elements every member holds), each member's A' = A
+    minus C as ranks ascending (rarest first) in CSR, its prefix length at ``threshold``,
+    whether the pairs are counted (:func:`counting_pays`, or ``how``), and the members posted
+    under each rank, ascending: each member's prefix, or all of A' when counted)."""
+    m = len(mem)
+    values, freq, rank, size = _rarity(offsets, elements, first, mem)
+    nu = len(values)
+    common = 0
+    for u in range(nu):
+        if freq[u] == m:
+            common += 1
+    local_off = np.zeros(m + 1, dtype=np.int64)
+    for x in range(m):
+        local_off[x + 1] = local_off[x] + size[x] - common
+    local = np.empty(local_off[m], dtype=np.int64)
+    prefix = np.empty(m, dtype=np.int64)
+    for x in range(m):
+        q = local_off[x]
+        for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
+            u = first_at_least(values, 0, len(values), elements[j])  # present
+            if freq[u] < m:
+                local[q] = rank[u]
+                q += 1
+        local[local_off[x]:local_off[x + 1]].sort()
+        smallest = int(np.ceil(threshold * size[x] - 1e-9))  # the smallest partner the size filter allows
+        o = need_for(size[x], smallest, threshold) - common
+        prefix[x] = min(size[x] - common, size[x] - common - max(o, 1) + 1)
+    counted = how == COUNTED or (how == AUTO and counting_pays(local_off, local, prefix, nu))
+    post_off = np.zeros(nu + 1, dtype=np.int64)
+    for x in range(m):
+        for q in range(local_off[x], local_off[x + 1] if counted else local_off[x] + prefix[x]):
+            post_off[local[q] + 1] += 1
+    for r in range(nu):
+        post_off[r + 1] += post_off[r]
+    fill = post_off[:nu].copy()
+    posted = np.empty(post_off[nu], dtype=np.int64)
+    for x in range(m):
+        for q in range(local_off[x], local_off[x + 1] if counted else local_off[x] + prefix[x]):
+            posted[fill[local[q]]] = x
+            fill[local[q]] += 1
+    return size, common, local_off, local, prefix, counted, post_off, posted
+
+
+@numba.njit(cache=True)
+def counting_pays(local_off, local, prefix, ranks):
+    """Whether counting every shared element of A' (an increment a shared element and pair)
+    costs less than intersecting the pairs the prefixes propose (a proposal, with repeats, a
+    rank two prefixes share, and a merge of the pair's A' at each). Measured on the crowds of
+    long-tailed data (Zipf exponent 1.6, 300k entities, this machine): an increment about 4
+    ns, a proposal about 50 ns with A' of about 5 elements; a proposal is costed at
+    (mean |A'| + 2) increments."""
+    m = len(prefix)
+    held = np.zeros(ranks, dtype=np.int64)
+    in_prefix = np.zeros(ranks, dtype=np.int64)
+    for x in range(m):
+        for q in range(local_off[x], local_off[x + 1]):
+            held[local[q]] += 1
+        for q in range(local_off[x], local_off[x] + prefix[x]):
+            in_prefix[local[q]] += 1
+    increments = proposals = 0
+    for r in range(ranks):
+        increments += held[r] * (held[r] - 1) // 2
+        proposals += in_prefix[r] * (in_prefix[r] - 1) // 2
+    return increments <= proposals * (local_off[m] / max(m, 1) + 2.0)
