@@ -104,11 +104,11 @@ def counting_pays(local_off, local, prefix, ranks):
     """Whether counting every shared element of A' (an increment a shared element and pair)
     costs less than intersecting the pairs the prefixes propose (a proposal, with repeats, a
     rank two prefixes share, and a merge of the pair's A' at each, which stops early). A
-    proposal is costed at (mean |A'| / 2 + 8) increments, fitted on this machine (2 cores) to
-    crowds of long-tailed data (Zipf exponent 1.6, 300k entities: A' of about 5 elements, an
-    increment about 4 ns, a proposal about 50 ns) and to synthetic crowds of 600 sets of
-    100-200 elements at thresholds 0.5 and 0.8 (A' of about 103: an increment about 2 ns, a
-    proposal about 127 ns)."""
+    proposal is costed at (mean |A'| / 2 + 4) increments, fitted on this machine (2 cores,
+    each way timed alone on every crowd of a run, index included): long-tailed data of Zipf
+    exponent 1.6 at 300k (mean |A'| 5: about 6.6 increments a proposal) and of exponent 1.2 at
+    1M (mean |A'| 9.3: about 8.3), and synthetic crowds of 600 sets of 100-200 elements at
+    thresholds 0.5 and 0.8 (mean |A'| 103: about 60)."""
     m = len(prefix)
     held = np.zeros(ranks, dtype=np.int64)
     in_prefix = np.zeros(ranks, dtype=np.int64)
@@ -121,4 +121,4 @@ def counting_pays(local_off, local, prefix, ranks):
     for r in range(ranks):
         increments += held[r] * (held[r] - 1) // 2
         proposals += in_prefix[r] * (in_prefix[r] - 1) // 2
-    return increments <= proposals * (local_off[m] / max(m, 1) / 2.0 + 8.0)
+    return increments <= proposals * (local_off[m] / max(m, 1) / 2.0 + 4.0)
