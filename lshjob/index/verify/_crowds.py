@@ -134,7 +134,8 @@ def _try(x, y, inter, size, at, distinct, common, local, local_off, mem, crowd_a
 def _count_shared(local, local_off, post_off, posted, x, low, shared, touched):
     """Member x counts, through the postings of each element of its A', the elements each
     earlier member from ``low`` shares with it (``shared``, zero before), and lists the
-    members met in ``touched``; their number."""
+    members met in ``touched``; their number. (The plan's sample counts overlaps the same way,
+    over the members a sample set may meet: :mod:`lshjob.plan.similarity`.)"""
     met = 0
     for q in range(local_off[x], local_off[x + 1]):
         r = local[q]
