@@ -7,7 +7,6 @@ from __future__ import annotations
 import numpy as np
 
 from lshjob.core._jit import numba
-from lshjob.core.search import first_at_least
 
 # How a crowd's pairs are found (the kernels' ``how``): chosen per crowd by cost, or forced.
 AUTO, PREFIX, COUNTED = 0, 1, 2
@@ -24,7 +23,8 @@ def need_for(la, lb, threshold):
 @numba.njit(cache=True)
 def _rarity(offsets, elements, first, mem):
     """A crowd's distinct elements (sorted), how many members hold each, the rank of each,
-    rarest first (ties by element code), and the members' set sizes."""
+    rarest first (ties by element code), the members' set sizes, and the distinct element of
+    each of the members' elements (members in order, each set in order)."""
     m = len(mem)
     size = np.empty(m, dtype=np.int64)
     total = 0
@@ -37,21 +37,23 @@ def _rarity(offsets, elements, first, mem):
         for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
             flat[p] = elements[j]
             p += 1
-    flat.sort()
+    order = np.argsort(flat)
     values = np.empty(total, dtype=np.int64)
     freq = np.zeros(total, dtype=np.int64)
+    which = np.empty(total, dtype=np.int64)
     nu = 0
     for j in range(total):
-        if j == 0 or flat[j] != flat[j - 1]:
-            values[nu] = flat[j]
+        if j == 0 or flat[order[j]] != flat[order[j - 1]]:
+            values[nu] = flat[order[j]]
             nu += 1
         freq[nu - 1] += 1
+        which[order[j]] = nu - 1
     values, freq = values[:nu], freq[:nu]
     rank = np.empty(nu, dtype=np.int64)
     by_freq = np.argsort(freq, kind="mergesort")
     for r in range(nu):
         rank[by_freq[r]] = r
-    return values, freq, rank, size
+    return values, freq, rank, size, which
 
 
 @numba.njit(cache=True)
@@ -61,7 +63,7 @@ def crowd_index(offsets, elements, first, mem, threshold, how):
     whether the pairs are counted (:func:`counting_pays`, or ``how``), and the members posted
     under each rank, ascending: each member's prefix, or all of A' when counted)."""
     m = len(mem)
-    values, freq, rank, size = _rarity(offsets, elements, first, mem)
+    values, freq, rank, size, which = _rarity(offsets, elements, first, mem)
     nu = len(values)
     common = 0
     for u in range(nu):
@@ -70,30 +72,48 @@ def crowd_index(offsets, elements, first, mem, threshold, how):
     local_off = np.zeros(m + 1, dtype=np.int64)
     for x in range(m):
         local_off[x + 1] = local_off[x] + size[x] - common
+    # every member posted under each rank of its A', ascending (members in order); read in
+    # rank order, they give each member's A' ascending with no sort
+    every_off = np.zeros(nu + 1, dtype=np.int64)
+    for p in range(len(which)):
+        if freq[which[p]] < m:
+            every_off[rank[which[p]] + 1] += 1
+    for r in range(nu):
+        every_off[r + 1] += every_off[r]
+    fill = every_off[:nu].copy()
+    every = np.empty(every_off[nu], dtype=np.int64)
+    p = 0
+    for x in range(m):
+        for _ in range(size[x]):
+            u = which[p]
+            p += 1
+            if freq[u] < m:
+                every[fill[rank[u]]] = x
+                fill[rank[u]] += 1
     local = np.empty(local_off[m], dtype=np.int64)
+    at = local_off[:m].copy()
+    for r in range(nu):
+        for t in range(every_off[r], every_off[r + 1]):
+            local[at[every[t]]] = r
+            at[every[t]] += 1
     prefix = np.empty(m, dtype=np.int64)
     for x in range(m):
-        q = local_off[x]
-        for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
-            u = first_at_least(values, 0, len(values), elements[j])  # present
-            if freq[u] < m:
-                local[q] = rank[u]
-                q += 1
-        local[local_off[x]:local_off[x + 1]].sort()
         smallest = int(np.ceil(threshold * size[x] - 1e-9))  # the smallest partner the size filter allows
         o = need_for(size[x], smallest, threshold) - common
         prefix[x] = min(size[x] - common, size[x] - common - max(o, 1) + 1)
     counted = how == COUNTED or (how == AUTO and counting_pays(local_off, local, prefix, nu))
+    if counted:
+        return size, common, local_off, local, prefix, counted, every_off, every
     post_off = np.zeros(nu + 1, dtype=np.int64)
     for x in range(m):
-        for q in range(local_off[x], local_off[x + 1] if counted else local_off[x] + prefix[x]):
+        for q in range(local_off[x], local_off[x] + prefix[x]):
             post_off[local[q] + 1] += 1
     for r in range(nu):
         post_off[r + 1] += post_off[r]
     fill = post_off[:nu].copy()
     posted = np.empty(post_off[nu], dtype=np.int64)
     for x in range(m):
-        for q in range(local_off[x], local_off[x + 1] if counted else local_off[x] + prefix[x]):
+        for q in range(local_off[x], local_off[x] + prefix[x]):
             posted[fill[local[q]]] = x
             fill[local[q]] += 1
     return size, common, local_off, local, prefix, counted, post_off, posted
