@@ -43,7 +43,7 @@ def _crowded_sets(seed: int, crowds: int = 6):
 
 @pytest.mark.parametrize("seed", [1, 2, 3])
 @pytest.mark.parametrize("threshold", [0.3, 0.5, 0.8])
-@pytest.mark.parametrize("with_bands", [False, True])
+@pytest.mark.parametrize("with_bands", [False, True, "past 64"])
 @pytest.mark.parametrize("how", ["prefix", "counted", "auto"])
 def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold, with_bands, how):
     sets, crowd_rows = _crowded_sets(seed)
@@ -55,7 +55,8 @@ def test_crowd_pairs_are_exactly_those_reaching_the_threshold(seed, threshold, w
     table = (pl.DataFrame(crowd_rows, schema={"crowd": pl.Int64, "rep": pl.Int64}, orient="row")
              .unique().sort("crowd", "rep"))
     if with_bands:  # crowd c in band c - 1 (one crowd a band: a rep is in one crowd a band at most)
-        table = table.with_columns(band=(pl.col("crowd") - 1).cast(pl.Int32))
+        # "past 64": bands 60.. on, so a crowd's bands pass 64, where their bits wrap around
+        table = table.with_columns(band=(pl.col("crowd") - 1 + (60 if with_bands == "past 64" else 0)).cast(pl.Int32))
     block = crowd_pairs_between(table, (0, len(sets) - 1), (0, len(sets) - 1))
     got = verify_crowds(block, element_sets, 0, element_sets, 0, threshold, max_pairs=500, how=how)
     # oracle: exact Jaccard with Python sets, every pair of every crowd; a row per crowd it is

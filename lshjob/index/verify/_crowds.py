@@ -105,7 +105,7 @@ def _keep(local, local_off, common, mem, x, y, la, lb, need, threshold, inter, c
         out_jac[out] = value
         shared = 1
         if band >= 0:
-            if both >> np.uint64(band + 1) if band < 63 else True:
+            if crowd_at.shape[1] > 64 or band >= 63 or both >> np.uint64(band + 1):  # (bits are bands mod 64)
                 shared += _crowds_shared(crowd_at, x, y, band + 1, crowd_at.shape[1])
         out_bands[out] = shared
         return out + 1
