@@ -212,3 +212,34 @@ def test_floors_a_crowd_raises_drop_only_pairs_no_list_takes(seed, how):
     assert got.height == len(rows) and all(want[p] == j for p, j in rows.items())
     assert got.height < lower.height  # the floors rose and left pairs out
     assert kept(rows) == kept(want) and len(kept(want)) > 20
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_a_crowds_ranks_count_each_element_and_order_rarest_first_ties_by_key(seed):
+    """The crowd index's rarity (``_rarity``: a hash table of the crowd's elements) against
+    collections.Counter: each distinct element once, how many members hold it, and its rank
+    among (members holding it, key) ascending. Keys span the int64 range, negatives included,
+    and thousands of them, so the table's probes run into one another."""
+    from lshjob.index.verify._crowd_index import _rarity
+
+    rng = np.random.default_rng(seed)
+    catalogue = np.unique(np.concatenate([rng.integers(-2**63, 2**63 - 1, 3000, dtype=np.int64),
+                                          np.arange(-50, 2000, dtype=np.int64) * 4096]))
+    sets = []
+    for _ in range(400):
+        popular = rng.choice(catalogue[:40], size=int(rng.integers(0, 4)), replace=False)
+        rest = rng.choice(catalogue, size=int(rng.integers(1, 30)), replace=False)
+        sets.append(sorted(set(popular.tolist()) | set(rest.tolist())))
+    sets.append(list(sets[0]))  # a member twice: its elements counted for each
+    offsets = np.cumsum([0] + [len(s) for s in sets]).astype(np.int64)
+    elements = np.array([x for s in sets for x in s], dtype=np.int64)
+    members = np.arange(len(sets), dtype=np.int64)[::-1].copy()  # members in any order
+    values, freq, rank, size, which = _rarity(offsets, elements, 0, members)
+    sets = sets[::-1]
+    held = Counter(x for s in sets for x in s)
+    order = sorted(held, key=lambda x: (held[x], x))
+    flat = [x for s in sets for x in s]
+    assert len(values) == len(held) and list(size) == [len(s) for s in sets]
+    assert [int(values[u]) for u in which] == flat
+    assert [int(freq[u]) for u in which] == [held[x] for x in flat]
+    assert [int(rank[u]) for u in which] == [order.index(x) for x in flat]

@@ -20,39 +20,78 @@ def need_for(la, lb, threshold):
     return int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9))
 
 
+# Fibonacci hashing (Knuth, TAOCP vol. 3, 6.4): the key times 2^64 / golden ratio, its top bits
+FIBONACCI = np.uint64(0x9E3779B97F4A7C15)
+
+
 @numba.njit(cache=True)
 def _rarity(offsets, elements, first, mem):
-    """A crowd's distinct elements (sorted), how many members hold each, the rank of each,
-    rarest first (ties by element code), the members' set sizes, and the distinct element of
-    each of the members' elements (members in order, each set in order)."""
+    """A crowd's distinct elements (in the order first met), how many members hold each, the
+    rank of each, rarest first (ties by element key), the members' set sizes, and the distinct
+    element of each of the members' elements (members in order, each set in order).
+
+    The distinct elements are found with an open-addressing table (linear probing, at most
+    half full) over the crowd's elements, one pass; only the ranks are sorted: a counting sort
+    by how many members hold an element, then each run of equal counts by key. Sorting every
+    element of the crowd instead was 90% of building its index (1M long-tailed run: 1.1-1.4 s
+    against 0.6-0.7 s for all crowds, the same ranks)."""
     m = len(mem)
     size = np.empty(m, dtype=np.int64)
     total = 0
     for x in range(m):
         size[x] = offsets[mem[x] - first + 1] - offsets[mem[x] - first]
         total += size[x]
-    flat = np.empty(total, dtype=np.int64)
-    p = 0
-    for x in range(m):
-        for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
-            flat[p] = elements[j]
-            p += 1
-    order = np.argsort(flat)
+    bits = 4
+    while (1 << bits) < 2 * total:
+        bits += 1
+    mask = np.int64((1 << bits) - 1)
+    shift = np.uint64(64 - bits)
+    slot = np.full(1 << bits, -1, dtype=np.int64)  # distinct element held there, -1: none
     values = np.empty(total, dtype=np.int64)
     freq = np.zeros(total, dtype=np.int64)
     which = np.empty(total, dtype=np.int64)
     nu = 0
-    for j in range(total):
-        if j == 0 or flat[order[j]] != flat[order[j - 1]]:
-            values[nu] = flat[order[j]]
-            nu += 1
-        freq[nu - 1] += 1
-        which[order[j]] = nu - 1
+    p = 0
+    for x in range(m):
+        for j in range(offsets[mem[x] - first], offsets[mem[x] - first + 1]):
+            v = elements[j]
+            s = np.int64((np.uint64(v) * FIBONACCI) >> shift)
+            while True:
+                u = slot[s]
+                if u < 0:
+                    slot[s] = nu
+                    values[nu] = v
+                    u = nu
+                    nu += 1
+                    break
+                if values[u] == v:
+                    break
+                s = np.int64((s + 1) & mask)
+            freq[u] += 1
+            which[p] = u
+            p += 1
     values, freq = values[:nu], freq[:nu]
+    # ranks: a counting sort by frequency (at most m), each run of one frequency by key
+    start = np.zeros(m + 2, dtype=np.int64)
+    for u in range(nu):
+        start[freq[u] + 1] += 1
+    for f in range(m + 1):
+        start[f + 1] += start[f]
+    fill = start[:m + 1].copy()
+    by_freq = np.empty(nu, dtype=np.int64)
+    for u in range(nu):
+        by_freq[fill[freq[u]]] = u
+        fill[freq[u]] += 1
     rank = np.empty(nu, dtype=np.int64)
-    by_freq = np.argsort(freq, kind="mergesort")
-    for r in range(nu):
-        rank[by_freq[r]] = r
+    for f in range(1, m + 1):
+        lo, hi = start[f], start[f + 1]
+        if hi - lo == 1:
+            rank[by_freq[lo]] = lo
+        elif hi > lo:
+            run = by_freq[lo:hi]
+            order = np.argsort(values[run])
+            for t in range(hi - lo):
+                rank[run[order[t]]] = lo + t
     return values, freq, rank, size, which
 
 
