@@ -14,6 +14,7 @@ import pytest
 
 from lshjob.core.sets import ElementSets
 from lshjob.index._ranking import own_cuts, pairs_in_lists
+from lshjob.index.verify._crowd_index import _rarity
 from lshjob.index.verify._crowds import crowd_pairs_between, crowd_pieces, verify_crowds
 
 
@@ -220,8 +221,6 @@ def test_a_crowds_ranks_count_each_element_and_order_rarest_first_ties_by_key(se
     collections.Counter: each distinct element once, how many members hold it, and its rank
     among (members holding it, key) ascending. Keys span the int64 range, negatives included,
     and thousands of them, so the table's probes run into one another."""
-    from lshjob.index.verify._crowd_index import _rarity
-
     rng = np.random.default_rng(seed)
     catalogue = np.unique(np.concatenate([rng.integers(-2**63, 2**63 - 1, 3000, dtype=np.int64),
                                           np.arange(-50, 2000, dtype=np.int64) * 4096]))
