@@ -19,10 +19,11 @@ from lshjob.core.slicing import slice_bounds
 from lshjob.index._ranking import list_cuts, own_cuts
 from lshjob.index.verify._crowds import crowd_pairs_between, crowd_pieces
 from lshjob.index.verify._jaccard import (
+    element_masks,
     exact_jaccard_between,
     intersections_of,
-    jaccard_between,
     jaccard_from,
+    jaccard_screened,
     pair_keys,
     pairs_of_keys,
 )
@@ -56,7 +57,7 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
     parts = len(store.ranges)
     crowd_table = pl.read_parquet(crowds) if crowds is not None else None
     for i in range(parts):
-        left = None
+        left = left_masks = None
         for j in range(i, parts):
             files = _block_files(candidates, parts, i, j)
             crowded = crowd_pairs_between(crowd_table, store.ranges[i], store.ranges[j])
@@ -64,6 +65,8 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 continue
             left = store.load(i) if left is None else left
             right = left if j == i else store.load(j)
+            if files and left_masks is None:
+                left_masks = element_masks(left.offsets, left.elements)
             cut, floors = None, None
             if settings.top_k is not None and settings.group_sizes is not None:
                 cut = partial(_in_lists, group_sizes=settings.group_sizes, top_k=settings.top_k)
@@ -73,10 +76,13 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 held_sets=(readonly(left.offsets), store.ranges[i][0], readonly(right.offsets), store.ranges[j][0])),
                 cut, floors)
             if files:
+                masks = (left_masks, left_masks if j == i else element_masks(right.offsets, right.elements))
                 frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
                 for lo, hi in slice_bounds(_rows(files), step):
                     chunk = frame.slice(lo, hi - lo).collect()
-                    held.add(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold))
+                    held.add(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold,
+                                            masks))
+                del masks
             if crowded is not None:
                 held.settle()  # the join's pairs give the first floors
                 for piece in crowd_pieces(crowded, left, store.ranges[i][0], right, store.ranges[j][0], threshold,
@@ -183,17 +189,23 @@ def _in_lists(pairs: pl.DataFrame, group_sizes, top_k: int) -> tuple[pl.DataFram
 
 
 def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first: int,
-                   right_sets: ElementSets, right_first: int, threshold: float) -> pl.DataFrame:
+                   right_sets: ElementSets, right_first: int, threshold: float,
+                   masks: tuple[np.ndarray, np.ndarray] | None = None) -> pl.DataFrame:
     """Exact Jaccard of each candidate, kept where it reaches ``threshold`` (``left_rep``,
     ``right_rep``, ``jaccard``, ``bands_shared``, in the order of the candidates). The left
     entities' sets are ``left_sets`` (entity id ``left_first + i`` is its set i), the right
-    ones' ``right_sets`` (from ``right_first``): the sets held a key range at a time."""
+    ones' ``right_sets`` (from ``right_first``): the sets held a key range at a time.
+    ``masks``: both sides' :func:`lshjob.index.verify._jaccard.element_masks`, when the caller
+    keeps them for several calls (made here otherwise)."""
     left = np.ascontiguousarray(candidates["left_rep"].to_numpy(), dtype=np.int64)
     right = np.ascontiguousarray(candidates["right_rep"].to_numpy(), dtype=np.int64)
     _check_within(left, left_first, left_sets.size, "left")
     _check_within(right, right_first, right_sets.size, "right")
-    jac = jaccard_between(left_sets.offsets, left_sets.elements, left - left_first,
-                          right_sets.offsets, right_sets.elements, right - right_first, threshold)
+    if masks is None:
+        masks = (element_masks(left_sets.offsets, left_sets.elements),
+                 element_masks(right_sets.offsets, right_sets.elements))
+    jac = jaccard_screened(left_sets.offsets, left_sets.elements, masks[0], left - left_first,
+                           right_sets.offsets, right_sets.elements, masks[1], right - right_first, threshold)
     keep = jac >= threshold
     return pl.DataFrame(
         {
