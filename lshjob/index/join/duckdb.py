@@ -112,15 +112,17 @@ def crowds_path(out: Path) -> Path:
 
 
 def _write_crowds(con: duckdb.DuckDBPyConnection, params: dict, out: Path) -> tuple[Path | None, int]:
-    """CROWDS (sql/crowds.sql) beside ``out``, and the pairs they hold; no crowd, no file."""
+    """CROWDS (sql/crowds.sql) beside ``out``, and the pairs they hold; no crowd, no file. The
+    pairs are counted from the file written, not by running the query a second time."""
     query = load_sql("crowds").strip().rstrip(";")
-    pairs = con.execute(f"SELECT coalesce(sum(m * (m - 1) // 2), 0)::BIGINT FROM "
-                        f"(SELECT count(*) AS m FROM ({query}) GROUP BY crowd)", params).fetchone()[0]
-    if not pairs:
-        return None, 0
     path = crowds_path(out)
     with atomic_file(path, fsync=False) as tmp:
         con.execute(f"COPY ({query}) TO {string_literal(str(tmp))} (FORMAT parquet)", params)
+    pairs = con.execute("SELECT coalesce(sum(m * (m - 1) // 2), 0)::BIGINT FROM "
+                        "(SELECT count(*) AS m FROM read_parquet($f) GROUP BY crowd)", {"f": str(path)}).fetchone()[0]
+    if not pairs:
+        path.unlink()
+        return None, 0
     return path, int(pairs)
 
 
