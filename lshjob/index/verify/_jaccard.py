@@ -6,9 +6,7 @@ from __future__ import annotations
 import numpy as np
 
 from lshjob.core._jit import numba
-from lshjob.core.hashing import GOLDEN
-
-FIBONACCI = np.uint64(GOLDEN)
+from lshjob.index.verify._crowd_index import FIBONACCI
 
 
 @numba.njit(inline="always")

@@ -202,7 +202,8 @@ def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first:
     _check_within(left, left_first, left_sets.size, "left")
     _check_within(right, right_first, right_sets.size, "right")
     if masks is None:
-        masks = (element_masks(left_sets.offsets, left_sets.elements),
+        left_masks = element_masks(left_sets.offsets, left_sets.elements)
+        masks = (left_masks, left_masks if right_sets is left_sets else
                  element_masks(right_sets.offsets, right_sets.elements))
     jac = jaccard_screened(left_sets.offsets, left_sets.elements, masks[0], left - left_first,
                            right_sets.offsets, right_sets.elements, masks[1], right - right_first, threshold)
