@@ -90,7 +90,7 @@ def nfc_codes(dictionary: pl.Series) -> tuple[pl.Series, np.ndarray | None]:
     forms = [unicodedata.normalize("NFC", t) for t in texts]
     if forms == texts:
         return dictionary, None
-    normal = dictionary.scatter(odd, forms)
+    normal = dictionary.clone().scatter(odd, forms)  # (scatter writes in place: the dictionary stays as read)
     canonical = normal.unique().sort()
     return canonical, canonical.search_sorted(normal).to_numpy().astype(np.int64)
 

@@ -15,6 +15,7 @@ import numpy as np
 from lshjob.core._jit import numba
 from lshjob.core.compile_cache import readonly
 from lshjob.core.search import first_at_least
+from lshjob.ingest.text_keys import text_positions
 
 
 def count_keys(slots, values, first, last, shares):
@@ -327,8 +328,9 @@ def compact(offsets, elements, sizes):
 
 def key_positions(keys):
     """A function mapping a batch of entity keys to their positions in the sorted ``keys``:
-    -1 for an integer that is not a key, a position out of range for text past the last key
-    (text before it is not checked). Dense-ish integer keys use a direct table built once."""
+    -1 for a value that is not a key (for keys neither integer nor text, a position out of
+    range past the last key; one before it is not checked). Dense-ish integer keys use a
+    direct table built once, text keys a hash table (:mod:`lshjob.ingest.text_keys`)."""
     if keys.dtype.is_integer() and len(keys):
         k = ordered_int64(keys)
         span = int(k[-1]) - int(k[0])
@@ -341,6 +343,9 @@ def key_positions(keys):
             starts = bucket_starts(k, shift)
             return lambda values: lookup_bucketed(k, starts, shift, ordered_int64(values))
         return lambda values: search_sorted_parallel(k, ordered_int64(values))
+    text = text_positions(keys)
+    if text is not None:
+        return text
     return lambda values: keys.search_sorted(values).to_numpy()
 
 

@@ -15,7 +15,8 @@ costs several seconds and about 100 bytes per event:
    summed and elements under ``--min-count`` dropped (compiled, both cores).
 
 Peak memory is therefore about 20 bytes per event (36 with a count column or a minimum
-count above 1), plus the batch polars holds and the distinct keys.
+count above 1), plus the batch polars holds and the distinct keys (text keys with a hash
+table of 16 to 24 bytes a key: :mod:`lshjob.ingest.text_keys`).
 
 Integer entity keys whose range is at most a quarter of the event count (the common case of
 numbered customers) take a shorter way: one pass reads only the entity column and counts
@@ -41,6 +42,7 @@ from lshjob.core.sets import INT64_MAX, ElementSets, nfc_codes
 from lshjob.errors import InputError, ParameterError, key_text
 from lshjob.ingest import grouping
 from lshjob.ingest.spec import EventSpec, IngestReport, validated_events
+from lshjob.ingest.text_keys import TextPositions
 from lshjob.runtime import budget
 from lshjob.runtime.partitions import EntitySelection, events_per_entity
 
@@ -113,6 +115,8 @@ class EventSource:
     describe: Callable[[pl.Series], list[str]] | None = None
     # code of each dictionary entry when texts of one NFC form are one element, else None
     remap: np.ndarray | None = None
+    # each text element's position in the dictionary (built once, shared by the selections)
+    positions: TextPositions | None = None
 
     @property
     def events(self) -> int:
@@ -154,7 +158,9 @@ def _source(frame, report, where, spec, dictionary, describe) -> EventSource:
     weighted = spec.count is not None or spec.min_count > 1
     canonical, remap = (dictionary, None) if dictionary is None or spec.unicode != "nfc" else nfc_codes(dictionary)
     text_hashes = None if dictionary is None else xxh64_strings(canonical)
-    return EventSource(frame, report, where, weighted, float(spec.min_count), dictionary, text_hashes, describe, remap)
+    positions = None if dictionary is None else TextPositions(dictionary)
+    return EventSource(frame, report, where, weighted, float(spec.min_count), dictionary, text_hashes, describe, remap,
+                       positions)
 
 
 def check_budget(events: EventSource, selection: EntitySelection | None, memory: int | None) -> None:
@@ -212,7 +218,7 @@ def read_and_group(events: EventSource, selection: EntitySelection | None) -> Gr
         frame = frame.filter(selection.condition)
         report = IngestReport(files=report.files, rows_read=n, entity_range=entity_range)
     span = budget.dense_span(entity_range, n)
-    codes = (events.dictionary, events.remap)
+    codes = (events.positions, events.remap)
     with events.report.reading(where):
         if span:
             keys, offsets, elements, kept_weights = _read_in_range(
@@ -224,13 +230,16 @@ def read_and_group(events: EventSource, selection: EntitySelection | None) -> Gr
                          events.text_hashes, report, where)
 
 
-def _codes(element: pl.Series, dictionary: tuple[pl.Series | None, np.ndarray | None]) -> np.ndarray:
-    """Element codes of a batch (:mod:`lshjob.core.sets`); ``dictionary``: the sorted
-    distinct texts and, when some are one NFC form, their codes."""
+def _codes(element: pl.Series, dictionary: tuple[TextPositions | None, np.ndarray | None], where: str) -> np.ndarray:
+    """Element codes of a batch (:mod:`lshjob.core.sets`); ``dictionary``: the positions among
+    the sorted distinct texts (:mod:`lshjob.ingest.text_keys`) and, when some are one NFC
+    form, their codes."""
     texts, remap = dictionary
     if texts is None:
         return element.cast(pl.Int64).to_numpy()
-    found = texts.search_sorted(element.cast(pl.String)).to_numpy()
+    found = texts(element)
+    if len(found) and found.min() < 0:
+        raise InputError(f"{where}: the files changed while being read (an element key the first pass did not see)")
     return found if remap is None else remap[found]
 
 
@@ -267,7 +276,7 @@ def _read_in_range(frame, first, span, n, weighted, dictionary, where, known=Non
         v = _wide(batch["entity"])
         w = batch["weight"].to_numpy() if weighted else no_weights
         misplaced += grouping.place_codes(slots, v, v.dtype.type(first), v.dtype.type(first + span - 1),
-                            _codes(batch["element"], dictionary), w, elements, kept_weights, shares)
+                            _codes(batch["element"], dictionary, where), w, elements, kept_weights, shares)
     if misplaced or counted != n or not np.array_equal(slots[present], offsets[1:]):
         raise InputError(f"{where}: the files changed while being read ({n} events counted, then read again)")
     dtype = frame.collect_schema()["entity"]
@@ -325,7 +334,7 @@ def _read_and_group(frame, n, weighted, dictionary, where):
         if m and (found.min() < 0 or found.max() >= len(keys)):
             raise InputError(f"{where}: the files changed while being read (an entity key the first pass did not see)")
         ids[pos:pos + m] = found
-        codes[pos:pos + m] = _codes(batch["element"], dictionary)
+        codes[pos:pos + m] = _codes(batch["element"], dictionary, where)
         if weighted:
             weights[pos:pos + m] = batch["weight"].to_numpy()
         pos += m

@@ -1,0 +1,106 @@
+"""Positions of text keys among the sorted distinct keys, by a hash table built once.
+
+The one-pass reader (:mod:`lshjob.ingest.loading`) turns each batch of events into entity
+ids (the position of the entity key among the sorted distinct keys) and, for text elements,
+element codes (the position among the sorted distinct element texts). polars'
+``search_sorted`` on text is a binary search of string comparisons, on one core: 1.5 s for
+1.8M keys among 545k, most of the ingest of text-keyed data (long-tailed 300k entities, the
+same events as integers and as text: ingest 0.4 s against 3.8 s; bench/RESULTS.md).
+
+Here the distinct keys go once into an open-addressing table (linear probing, at most half
+full) under polars' 64-bit hash of each; a batch is hashed (polars, all cores), each hash
+looked up (compiled, all cores), and every position found checked by comparing the key held
+there with the value. The hash only proposes: a value whose proposal fails the check (two
+keys with one hash, or a value that is no key) is searched again by ``search_sorted`` and
+checked again, so the positions are exact whatever the hash gives. polars promises its hash
+stable within one version only, which is all this needs: the table and the batches are
+hashed in the same process, and nothing hashed here is kept.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import polars as pl
+
+from lshjob.core._jit import numba
+from lshjob.core.hashing import GOLDEN
+
+HASH_SEED = 0x6C73686A  # any fixed seed: the table and the batches take the same one
+FIBONACCI = np.uint64(GOLDEN)  # Fibonacci hashing (Knuth, TAOCP vol. 3, 6.4; from memory): its top bits
+
+
+class TextPositions:
+    """``positions(values)``: each value's position among ``keys`` (sorted, distinct, text,
+    no nulls), -1 for a value that is not a key. Holds 8 bytes a key for the hashes and 8 to
+    16 for the table (int32 slots while the keys number under 2**31)."""
+
+    def __init__(self, keys: pl.Series) -> None:
+        self.keys = keys.cast(pl.String)
+        self.hashes = _hashes(self.keys)
+        self.bits = max(4, int(2 * len(self.keys)).bit_length())
+        self.table = np.full(1 << self.bits, -1, dtype=np.int32 if len(self.keys) < 2**31 else np.int64)
+        _fill(self.table, self.hashes, self.bits)
+
+    def __call__(self, values: pl.Series) -> np.ndarray:
+        return self.positions(values)
+
+    def positions(self, values: pl.Series) -> np.ndarray:
+        values = values.cast(pl.String)
+        if len(values) == 0 or len(self.keys) == 0:
+            return np.full(len(values), -1, dtype=np.int64)
+        found = _probe(self.table, self.hashes, self.bits, _hashes(values))
+        wrong = ~_same(self.keys, found, values)
+        if wrong.any():  # a value of no key, or a key sharing its hash with another: searched
+            at = np.flatnonzero(wrong)
+            again = values.gather(at)
+            searched = self.keys.search_sorted(again).to_numpy().astype(np.int64)
+            found[at] = np.where(_same(self.keys, searched, again), searched, -1)
+        return found
+
+
+def text_positions(keys: pl.Series) -> TextPositions | None:
+    """A :class:`TextPositions` for text keys, None for keys of another type."""
+    return TextPositions(keys) if keys.dtype == pl.String else None
+
+
+def _hashes(values: pl.Series) -> np.ndarray:
+    return np.ascontiguousarray(values.hash(HASH_SEED).to_numpy(), dtype=np.uint64)
+
+
+def _same(keys: pl.Series, found: np.ndarray, values: pl.Series) -> np.ndarray:
+    """Whether each position holds its value (a position out of range holds none)."""
+    inside = (found >= 0) & (found < len(keys))
+    held = keys.gather(np.where(inside, found, 0))
+    return inside & (held == values).fill_null(False).to_numpy()
+
+
+@numba.njit(cache=True)
+def _fill(table, hashes, bits):
+    """Put each key's position (``table``: 2**bits slots, -1 for empty) in the first free slot
+    from its hash's top bits on."""
+    mask = (1 << bits) - 1
+    shift = np.uint64(64 - bits)
+    for i in range(len(hashes)):
+        s = np.int64((hashes[i] * FIBONACCI) >> shift)
+        while table[s] >= 0:
+            s = (s + 1) & mask
+        table[s] = i
+
+
+@numba.njit(parallel=True, cache=True)
+def _probe(table, hashes, bits, wanted):
+    """The first key position whose hash is each wanted hash, -1 for none."""
+    mask = (1 << bits) - 1
+    shift = np.uint64(64 - bits)
+    out = np.empty(len(wanted), dtype=np.int64)
+    for j in numba.prange(len(wanted)):
+        h = wanted[j]
+        s = np.int64((h * FIBONACCI) >> shift)
+        found = -1
+        while table[s] >= 0:
+            if hashes[table[s]] == h:
+                found = np.int64(table[s])
+                break
+            s = (s + 1) & mask
+        out[j] = found
+    return out
