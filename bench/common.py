@@ -251,6 +251,17 @@ def zipf_events(entities: int, exponent: float = 1.2, copies: float = 0.2, seed:
 ZIPF_CHUNK = 2_000_000
 
 
+def as_text_keys(events: Path) -> Path:
+    """The same events with text keys, as data from a service holds them: patron ``p-<id>``
+    and title ``t-<id>`` (cached beside them; one file)."""
+    path = events.with_name(f"{events.stem}_text.parquet")
+    if not path.exists():
+        frame = pl.read_parquet(events)
+        frame.select(pl.format("p-{}", "entity").alias("entity"),
+                     pl.format("t-{}", "element").alias("element")).write_parquet(path)
+    return path
+
+
 def _zipf_chunk(first: int, entities: int, catalogue: int, exponent: float, copies: float,
                 rng: np.random.Generator) -> pl.DataFrame:
     """Entities first..first+entities-1 of :func:`zipf_events`, sorted by (entity, element)."""

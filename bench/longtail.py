@@ -3,10 +3,12 @@
     python bench/longtail.py --entities 300000 [--reference-entities 50000 100000] [--sample 500]
     python bench/longtail.py --entities 300000 --reference-entities --baseline /path/to/old/checkout --repeat 2
     python bench/longtail.py --entities 300000 1000000 --reference-entities --variant "--recall-of lists" --repeat 2
+    python bench/longtail.py --entities 300000 1000000 --reference-entities --text-keys --baseline /old --repeat 2
 
 Data (bench/common.py zipf_events): element popularity close to Zipf with exponent 1.2,
 log-normal set sizes (about half the entities hold 1-5 elements, mostly popular ones), a
-fifth of the entities near-copies of others. Three whole processes, run from outside the
+fifth of the entities near-copies of others; with ``--text-keys``, the same events with text
+keys (``p-<id>``, ``t-<id>``: bench/common.py as_text_keys). Three whole processes, run from outside the
 repository, timed by the wall clock:
   (a) ``python -m lshjob run --threshold 0.5 --top-k 50`` (one untimed run first: warm, kernels compiled);
   (b) the reference pipeline with datasketch: MinHash k=128 per entity, MinHashLSH at threshold
@@ -34,7 +36,7 @@ import numpy as np
 import polars as pl
 
 sys.path.insert(0, str(Path(__file__).parent))
-from common import compile_bytecode, finish, lshjob_command, machine, zipf_events  # noqa: E402
+from common import as_text_keys, compile_bytecode, finish, lshjob_command, machine, zipf_events  # noqa: E402
 
 THRESHOLD, TOP_K, PERMS = 0.5, 50, 128
 
@@ -174,6 +176,7 @@ def main() -> None:
     ap.add_argument("--variant", default="", help="options of this tree's runs, e.g. \"--recall-of lists\"; "
                     "the baseline is then this tree without them (unless --baseline is given)")
     ap.add_argument("--repeat", type=int, default=1, help="timed runs of lshjob per tree; the fastest is reported")
+    ap.add_argument("--text-keys", action="store_true", help="the same events with text keys (p-<id>, t-<id>)")
     ap.add_argument("--no-write", action="store_true")
     args = ap.parse_args()
     if args.repeat < 1:
@@ -191,8 +194,9 @@ def main() -> None:
            f" --reference-entities {' '.join(map(str, args.reference_entities))}") + f" --sample {args.sample}"
         + ("" if args.baseline is None else f" --baseline {args.baseline}")
         + ("" if not variant else f" --variant {shlex.quote(args.variant)}")
-        + ("" if args.repeat == 1 else f" --repeat {args.repeat}") + "`",
-        f"Data: bench/common.py zipf_events (Zipf 1.2 popularity, log-normal sizes, a fifth near-copies); "
+        + ("" if args.repeat == 1 else f" --repeat {args.repeat}") + (" --text-keys" if args.text_keys else "") + "`",
+        "Data: bench/common.py zipf_events (Zipf 1.2 popularity, log-normal sizes, a fifth near-copies"
+        + ("; text keys p-<id>, t-<id>" if args.text_keys else "") + "); "
         f"threshold {THRESHOLD}, top-{TOP_K}. Whole processes, wall clock, run outside the repository; "
         f"lshjob warm (one untimed run first, kernels compiled); datasketch {PERMS} permutations, its own b, r.",
         "",
@@ -204,7 +208,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory(dir=Path(__file__).parent / "cache") as tmp:
         tmp = Path(tmp)
         for n in sorted(set(args.entities) | set(ref_sizes)):
-            events = zipf_events(n)
+            events = as_text_keys(zipf_events(n)) if args.text_keys else zipf_events(n)
             n_events = pl.scan_parquet(events).select(pl.len()).collect().item()
             floors = []
             for _ in range(3):

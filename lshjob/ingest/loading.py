@@ -16,7 +16,7 @@ costs several seconds and about 100 bytes per event:
 
 Peak memory is therefore about 20 bytes per event (36 with a count column or a minimum
 count above 1), plus the batch polars holds and the distinct keys (text keys with a hash
-table of 16 to 24 bytes a key: :mod:`lshjob.ingest.text_keys`).
+table of 16 to 32 bytes a key: :mod:`lshjob.ingest.text_keys`).
 
 Integer entity keys whose range is at most a quarter of the event count (the common case of
 numbered customers) take a shorter way: one pass reads only the entity column and counts

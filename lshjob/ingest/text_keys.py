@@ -31,15 +31,17 @@ FIBONACCI = np.uint64(GOLDEN)  # Fibonacci hashing (Knuth, TAOCP vol. 3, 6.4; fr
 
 class TextPositions:
     """``positions(values)``: each value's position among ``keys`` (sorted, distinct, text,
-    no nulls), -1 for a value that is not a key. Holds 8 bytes a key for the hashes and 8 to
-    16 for the table (int32 slots while the keys number under 2**31)."""
+    no nulls, fewer than 2**32 - 1), -1 for a value that is not a key. Holds 16 to 32 bytes a
+    key (a table of 8-byte slots, at most half of them full)."""
 
     def __init__(self, keys: pl.Series) -> None:
         self.keys = keys.cast(pl.String)
-        self.hashes = _hashes(self.keys)
+        hashes = _hashes(self.keys)
         self.bits = max(4, int(2 * len(self.keys)).bit_length())
-        self.table = np.full(1 << self.bits, -1, dtype=np.int32 if len(self.keys) < 2**31 else np.int64)
-        _fill(self.table, self.hashes, self.bits)
+        # a slot: the low 32 bits of a key's hash over its position + 1 (0: empty), so a probe
+        # reads one word a slot, not a slot and then the key's hash elsewhere
+        self.table = np.zeros(1 << self.bits, dtype=np.uint64)
+        _fill(self.table, hashes, self.bits)
 
     def __call__(self, values: pl.Series) -> np.ndarray:
         return self.positions(values)
@@ -48,7 +50,7 @@ class TextPositions:
         values = values.cast(pl.String)
         if len(values) == 0 or len(self.keys) == 0:
             return np.full(len(values), -1, dtype=np.int64)
-        found = _probe(self.table, self.hashes, self.bits, _hashes(values))
+        found = _probe(self.table, self.bits, _hashes(values))
         wrong = ~_same(self.keys, found, values)
         if wrong.any():  # a value of no key, or a key sharing its hash with another: searched
             at = np.flatnonzero(wrong)
@@ -58,9 +60,12 @@ class TextPositions:
         return found
 
 
+MAX_KEYS = 2**32 - 2  # positions + 1 in the 32 low bits of a slot
+
+
 def text_positions(keys: pl.Series) -> TextPositions | None:
-    """A :class:`TextPositions` for text keys, None for keys of another type."""
-    return TextPositions(keys) if keys.dtype == pl.String else None
+    """A :class:`TextPositions` for text keys, None for keys of another type (or too many)."""
+    return TextPositions(keys) if keys.dtype == pl.String and len(keys) <= MAX_KEYS else None
 
 
 def _hashes(values: pl.Series) -> np.ndarray:
@@ -74,32 +79,37 @@ def _same(keys: pl.Series, found: np.ndarray, values: pl.Series) -> np.ndarray:
     return inside & (held == values).fill_null(False).to_numpy()
 
 
+LOW = np.uint64(0xFFFFFFFF)
+
+
 @numba.njit(cache=True)
 def _fill(table, hashes, bits):
-    """Put each key's position (``table``: 2**bits slots, -1 for empty) in the first free slot
-    from its hash's top bits on."""
+    """Put each key (``table``: 2**bits slots, 0 for empty) in the first free slot from its
+    hash's top bits on: its hash's low 32 bits over its position + 1."""
     mask = (1 << bits) - 1
     shift = np.uint64(64 - bits)
     for i in range(len(hashes)):
         s = np.int64((hashes[i] * FIBONACCI) >> shift)
-        while table[s] >= 0:
+        while table[s] != 0:
             s = (s + 1) & mask
-        table[s] = i
+        table[s] = ((hashes[i] & LOW) << np.uint64(32)) | np.uint64(i + 1)
 
 
 @numba.njit(parallel=True, cache=True)
-def _probe(table, hashes, bits, wanted):
-    """The first key position whose hash is each wanted hash, -1 for none."""
+def _probe(table, bits, wanted):
+    """The first key position whose slot holds each wanted hash's low 32 bits, -1 for none
+    (a key with other high bits may be proposed: the caller checks every proposal)."""
     mask = (1 << bits) - 1
     shift = np.uint64(64 - bits)
     out = np.empty(len(wanted), dtype=np.int64)
     for j in numba.prange(len(wanted)):
         h = wanted[j]
+        check = h & LOW
         s = np.int64((h * FIBONACCI) >> shift)
         found = -1
-        while table[s] >= 0:
-            if hashes[table[s]] == h:
-                found = np.int64(table[s])
+        while table[s] != 0:
+            if table[s] >> np.uint64(32) == check:
+                found = np.int64(table[s] & LOW) - 1
                 break
             s = (s + 1) & mask
         out[j] = found
