@@ -10,9 +10,10 @@ same events as integers and as text: ingest 0.4 s against 3.8 s; bench/RESULTS.m
 Here the distinct keys go once into an open-addressing table (linear probing, at most half
 full) under polars' 64-bit hash of each; a batch is hashed (polars, all cores), each hash
 looked up (compiled, all cores), and every position found checked by comparing the key held
-there with the value. The hash only proposes: a value whose proposal fails the check (two
-keys with one hash, or a value that is no key) is searched again by ``search_sorted`` and
-checked again, so the positions are exact whatever the hash gives. polars promises its hash
+there with the value. The hash only proposes: a value whose proposal fails the check (a key
+whose hash shares the value's low 32 bits met first in the probe, or a value that is no key)
+is searched again by ``search_sorted`` and checked again, so the positions are exact whatever
+the hash gives. polars promises its hash
 stable within one version only, which is all this needs: the table and the batches are
 hashed in the same process, and nothing hashed here is kept.
 """
@@ -52,7 +53,7 @@ class TextPositions:
             return np.full(len(values), -1, dtype=np.int64)
         found = _probe(self.table, self.bits, _hashes(values))
         wrong = ~_same(self.keys, found, values)
-        if wrong.any():  # a value of no key, or a key sharing its hash with another: searched
+        if wrong.any():  # a value of no key, or another key proposed for it: searched
             at = np.flatnonzero(wrong)
             again = values.gather(at)
             searched = self.keys.search_sorted(again).to_numpy().astype(np.int64)
@@ -76,7 +77,7 @@ def _same(keys: pl.Series, found: np.ndarray, values: pl.Series) -> np.ndarray:
     """Whether each position holds its value (a position out of range holds none)."""
     inside = (found >= 0) & (found < len(keys))
     held = keys.gather(np.where(inside, found, 0))
-    return inside & (held == values).fill_null(False).to_numpy()
+    return inside & (held == values).to_numpy()
 
 
 LOW = np.uint64(0xFFFFFFFF)
