@@ -69,10 +69,12 @@ def test_an_element_missing_from_the_dictionary_names_the_file():
         _codes(pl.Series(["b"]), (TextPositions(pl.Series(["a"])), None), "loans.parquet")
 
 
-def test_text_keyed_events_group_as_from_sets(tmp_path):
+@pytest.mark.parametrize("text_patrons", [True, False])  # False: numbered patrons, the reader's two-pass way
+def test_text_keyed_events_group_as_from_sets(tmp_path, text_patrons):
     # Oracle: ElementSets.from_sets on the deduplicated rows (polars' dense rank of the texts)
     rng = np.random.default_rng(3)
-    patrons = [f"patron-{i}" for i in rng.integers(0, 4000, 30000)]
+    numbers = rng.integers(0, 4000, 30000)
+    patrons = [f"patron-{i}" for i in numbers] if text_patrons else numbers
     titles = [f"title-{i}" for i in rng.zipf(1.3, 30000) % 9000]
     events = pl.DataFrame({"patron": patrons, "title": titles})
     path = tmp_path / "loans.parquet"
