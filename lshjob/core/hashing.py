@@ -35,6 +35,9 @@ P5 = U64(0x27D4EB2F165667C5)
 FMIX_C1 = 0xFF51AFD7ED558CCD
 FMIX_C2 = 0xC4CEB9FE1A85EC53
 GOLDEN = 0x9E3779B97F4A7C15
+# Fibonacci hashing (Knuth, TAOCP vol. 3, 6.4; from memory): a key times 2^64 / golden ratio
+# (the constant SplitMix64 also steps by), its top bits a slot of a table of a power of two
+FIBONACCI = np.uint64(GOLDEN)
 
 
 @numba.njit(inline="always")

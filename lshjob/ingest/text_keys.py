@@ -24,10 +24,9 @@ import numpy as np
 import polars as pl
 
 from lshjob.core._jit import numba
-from lshjob.core.hashing import GOLDEN
+from lshjob.core.hashing import FIBONACCI
 
 HASH_SEED = 0x6C73686A  # any fixed seed: the table and the batches take the same one
-FIBONACCI = np.uint64(GOLDEN)  # Fibonacci hashing (Knuth, TAOCP vol. 3, 6.4; from memory): its top bits
 
 
 class TextPositions:

@@ -7,7 +7,7 @@ from __future__ import annotations
 import numpy as np
 
 from lshjob.core._jit import numba
-from lshjob.core.hashing import GOLDEN
+from lshjob.core.hashing import FIBONACCI
 
 # How a crowd's pairs are found (the kernels' ``how``): chosen per crowd by cost, or forced.
 AUTO, PREFIX, COUNTED = 0, 1, 2
@@ -21,9 +21,6 @@ def need_for(la, lb, threshold):
     return int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9))
 
 
-# Fibonacci hashing (Knuth, TAOCP vol. 3, 6.4; from memory): the key times 2^64 / golden ratio
-# (the constant SplitMix64 also steps by), its top bits
-FIBONACCI = np.uint64(GOLDEN)
 
 
 @numba.njit(cache=True)

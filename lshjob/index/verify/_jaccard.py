@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 
 from lshjob.core._jit import numba
-from lshjob.index.verify._crowd_index import FIBONACCI
+from lshjob.core.hashing import FIBONACCI
 
 
 @numba.njit(inline="always")
