@@ -52,7 +52,7 @@ def test_an_index_built_in_parts_equals_the_index_built_in_one(tmp_path, integer
     one = run_job(src, SPEC, RunOptions(**options), tmp_path / "one")
     four = run_job(src, SPEC, RunOptions(**options, parts=4), tmp_path / "four")
     assert one["counts"]["parts"] == 1 and four["counts"]["parts"] == 4
-    # Identical sets in different parts keep a representative each, and meet through the bands.
+    # Identical sets in different parts keep a representative each, paired by fingerprint too.
     assert four["counts"]["representatives"] > one["counts"]["representatives"]
     for name in ("events", "entities", "membership_rows"):
         assert four["counts"][name] == one["counts"][name]
@@ -178,6 +178,33 @@ def test_threshold_one_in_parts_pairs_identical_sets_across_parts(tmp_path):
     truth = brute_force_pairs(events, 1.0)
     got = published_pairs(tmp_path / "four")
     assert len(truth) > 20 and set(got) == set(truth)
+
+
+def test_identical_sets_in_different_parts_are_paired_when_their_buckets_are_oversize(tmp_path):
+    # Reference: brute force (every pair of identical sets has Jaccard 1 and shares every band)
+    # and the one-part run, where identical sets are grouped exactly. Patrons borrowing only
+    # the popular title, or it and one other, fill each band's bucket of the lone-title set
+    # past --max-bucket 2, so identical sets in different parts never meet through a band.
+    patrons, titles = [], []
+    for p in range(90):
+        held = ["popular"] if p % 15 == 0 else ["popular", f"other-{p}"]
+        patrons += [p] * len(held)
+        titles += held
+    events = pl.DataFrame({"patron": patrons, "title": titles})
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    options = dict(threshold=0.5, perms=32, bands=8, rows=4, top_k=5, max_bucket=2)
+    one = run_job(src, SPEC, RunOptions(**options), tmp_path / "one")
+    three = run_job(src, SPEC, RunOptions(**options, parts=3), tmp_path / "three")
+    # the six lone-title sets: one representative in one part, three in three parts
+    assert one["counts"]["representatives"] == 85 and three["counts"]["representatives"] == 87
+    got = pl.read_parquet(tmp_path / "three/neighbours.parquet")
+    lone = list(range(0, 90, 15))
+    pairs = got.filter(pl.col("entity").is_in(lone), pl.col("neighbour").is_in(lone))
+    assert sorted(zip(pairs["entity"], pairs["neighbour"])) == [(a, b) for a in lone for b in lone if a != b]
+    assert set(pairs["jaccard"]) == {1.0} and set(pairs["bands_shared"]) == {8}
+    expected = pl.read_parquet(tmp_path / "one/neighbours.parquet").filter(pl.col("jaccard") == 1.0)
+    assert got.filter(pl.col("jaccard") == 1.0).equals(expected)
 
 
 def test_no_candidate_in_any_part(tmp_path):

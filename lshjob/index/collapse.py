@@ -16,7 +16,10 @@ representative (the smallest id of its group, ``rep_of[r] == r``); ``reps`` are 
 representatives, ascending.
 
 A run in parts collapses each part alone; :func:`identical_candidates` pairs the
-representatives of different parts whose fingerprints agree, for verification to confirm.
+representatives of different parts whose fingerprints agree, for verification to confirm:
+with bands too, as identical sets would meet through them only while their buckets stay
+under --max-bucket (tiny sets of a popular element on long-tailed data are the ones whose
+buckets do not).
 """
 
 from __future__ import annotations
@@ -87,17 +90,21 @@ def collapse_identical(sets: ElementSets, prints: tuple[np.ndarray, np.ndarray] 
     return rep_of, reps
 
 
-def identical_candidates(prints: pl.DataFrame, ranges: list[tuple[int, int]], out: Path) -> tuple[Path, int]:
+def identical_candidates(prints: pl.DataFrame, ranges: list[tuple[int, int]], out: Path,
+                         bands_shared: int = 0, name: str = "pairs.parquet") -> int:
     """Pairs of representatives (of different parts) with the same set fingerprint, written
-    split by parts as the join writes candidates: verification at threshold 1.0 keeps the
-    identical ones. ``prints``: ``rep``, ``fa``, ``fb`` (:func:`fingerprints`).
+    into ``out`` split by parts as the join writes candidates (a file ``name`` a block, beside
+    any the join wrote there); their number. Verification keeps those whose sets are
+    identical (Jaccard 1). ``prints``: ``rep``, ``fa``, ``fb`` (:func:`fingerprints`).
+    ``bands_shared``: 0 for a run without bands, else 1, a row like the join's (the pair's
+    every band is given back after verification, :func:`every_band_when_identical`).
     A group holds at most one representative a part (identical sets within a part were
     collapsed), so every pair of a group is listed."""
     grouped = prints.with_columns(size=pl.len().over("fa", "fb")).filter(pl.col("size") > 1)
     pairs = (grouped.join(grouped, on=["fa", "fb"], suffix="_other")
              .filter(pl.col("rep") < pl.col("rep_other"))
              .select(pl.col("rep").alias("left_rep"), pl.col("rep_other").alias("right_rep"),
-                     pl.lit(0, dtype=pl.Int32).alias("bands_shared")))
+                     pl.lit(bands_shared, dtype=pl.Int32).alias("bands_shared")))
     firsts = np.array([a for a, _ in ranges], dtype=np.int64)
     pairs = pairs.with_columns(
         left_part=pl.Series(np.searchsorted(firsts, pairs["left_rep"].to_numpy(), side="right") - 1),
@@ -107,5 +114,22 @@ def identical_candidates(prints: pl.DataFrame, ranges: list[tuple[int, int]], ou
     for (i, j), block in pairs.group_by("left_part", "right_part"):
         folder = out / f"left_part={i}" / f"right_part={j}"
         folder.mkdir(parents=True, exist_ok=True)
-        block.select("left_rep", "right_rep", "bands_shared").write_parquet(folder / "pairs.parquet")
-    return out, pairs.height
+        block.select("left_rep", "right_rep", "bands_shared").write_parquet(folder / name)
+    return pairs.height
+
+
+def move_pair_blocks(source: Path, target: Path) -> None:
+    """Move the block files of :func:`identical_candidates` from ``source`` into the folder of
+    the join's candidates ``target`` (each to the same block: ``left_part=i/right_part=j``)."""
+    for file in sorted(source.rglob("*.parquet")):
+        place = target / file.relative_to(source)
+        place.parent.mkdir(parents=True, exist_ok=True)
+        file.replace(place)
+
+
+def every_band_when_identical(verified: pl.DataFrame, bands: int) -> pl.DataFrame:
+    """VERIFIED with ``bands_shared`` = ``bands`` for the pairs of Jaccard 1: identical sets have
+    identical signatures, so they share every band's bucket, even one over --max-bucket that
+    the join left out (the value the groups of identical sets publish)."""
+    return verified.with_columns(pl.when(pl.col("jaccard") == 1.0).then(pl.lit(bands, dtype=pl.Int32))
+                                 .otherwise(pl.col("bands_shared")).alias("bands_shared"))

@@ -48,8 +48,8 @@ class Prepared:
     bucket_files: list[Path] | None = None  # None: no bands (identical sets only)
     shared_rows: int = 0
     bucket_rows: int = 0
-    # without bands, in parts: pairs of representatives of different parts whose sets may be
-    # identical (same fingerprint), split by parts as the join writes them
+    # in parts: pairs of representatives of different parts whose sets may be identical (same
+    # fingerprint), split by parts as the join writes them; with bands, moved beside its pairs
     candidates: Path | None = None
     identical_pairs: int = 0  # how many such pairs
     warnings: list[str] = field(default_factory=list)  # for the manifest
@@ -108,7 +108,9 @@ def in_parts(source: EventSource, options: RunOptions, memory: int, work: Path, 
     keys, rep_of, representatives = [], [], 0
     band_engine = options.stage_engine("band")
     bands = SignAndBand(params, plan, memory, stages, band_engine, spill=work / "keys") if banded else None
-    prints = []  # without bands: each representative's fingerprint, to find identical sets across parts
+    # each part's representatives' fingerprints, saved beside its sets (not held across parts),
+    # to find identical sets across parts once the parts are freed
+    prints = []
     with stages.progress.stage("parts", len(ranges)) as task:
         for selection in ranges:
             with stages.part("ingest"):
@@ -118,13 +120,14 @@ def in_parts(source: EventSource, options: RunOptions, memory: int, work: Path, 
             with stages.part("collapse"):
                 fa, fb = fingerprints(sets)
                 part_rep_of, reps = collapse_identical(sets, (fa, fb))
+                prints.append(work / "prints" / f"part-{len(prints):06d}.parquet")
+                prints[-1].parent.mkdir(parents=True, exist_ok=True)
+                pl.DataFrame({"rep": reps + first, "fa": fa[reps], "fb": fb[reps]}).write_parquet(prints[-1])
             keys.append(sets.keys)
             rep_of.append(part_rep_of + first)
             representatives += len(reps)
             if banded:
                 bands.add(sets, reps, first, None)
-            else:
-                prints.append(pl.DataFrame({"rep": reps + first, "fa": fa[reps], "fb": fb[reps]}))
             with stages.part("ingest"):
                 store.save(sets)
             del sets, part_rep_of, reps
@@ -137,13 +140,17 @@ def in_parts(source: EventSource, options: RunOptions, memory: int, work: Path, 
     _check_output(rep_of, keys, options, memory)  # groups within parts: a lower bound
     prepared = Prepared(keys, rep_of, representatives, store, report, plan, params,
                         warnings=_few_sets(len(keys), None))
+    # identical sets of different parts, by fingerprint: with bands, beside the join's pairs
+    # (:func:`lshjob.index.collapse.identical_candidates`)
+    with stages.part("collapse"):
+        prepared.candidates = work / ("identical" if banded else "candidates")
+        prepared.identical_pairs = identical_candidates(pl.read_parquet(prints), store.ranges, prepared.candidates,
+                                                        bands_shared=1 if banded else 0,
+                                                        name="identical.parquet" if banded else "pairs.parquet")
+    del prints
     if banded:
         prepared.bucket_files, prepared.shared_rows = bands.write(work / "buckets")
         prepared.bucket_rows = representatives * plan.bands
-    else:
-        with stages.part("collapse"):
-            prepared.candidates, prepared.identical_pairs = identical_candidates(
-                pl.concat(prints), store.ranges, work / "candidates")
     return prepared
 
 

@@ -28,6 +28,7 @@ from lshjob.core.digest import digest_in_background
 from lshjob.errors import ParameterError
 from lshjob.index import engines as stage_engines
 from lshjob.index import publish
+from lshjob.index.collapse import every_band_when_identical, move_pair_blocks
 from lshjob.index.join import JoinSettings, duckdb_limit, duckdb_need, join_threads, require_duckdb_memory
 from lshjob.index.verify import VerifySettings, empty_verified
 from lshjob.ingest.loading import grouping_need, open_events
@@ -203,6 +204,9 @@ def run_job(
                     ranges=built.store.ranges if in_parts else None)
             skew = joined.skew
             counts["candidate_pairs"] = joined.pairs
+            if in_parts and built.identical_pairs:  # identical sets of different parts, met or not in a band
+                move_pair_blocks(built.candidates, candidates)
+                counts["candidate_pairs"] += built.identical_pairs
             if skew["skipped_pairs"]:
                 flag = "--max-bucket" if skew["max_bucket"] == options.max_bucket else "--max-crowd"
                 warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over {flag} "
@@ -216,6 +220,8 @@ def run_job(
                                             tally)
                 verified = options.stage_engine("verify").verify(candidates, built.store, options.threshold,
                                                                  built.params, settings, **crowds)
+                if in_parts:
+                    verified = every_band_when_identical(verified, plan.bands)
             counts["verified_pairs"] = tally.get("over_threshold", verified.height)
             counts["pairs_for_lists"] = verified.height
             if tally.get("crowds_cut"):
