@@ -14,6 +14,7 @@ from lshjob.core.sets import ElementSets
 from lshjob.index.verify import jaccard_between
 from lshjob.ingest.loading import entity_counts, event_bytes, membership_of, open_events
 from lshjob.jobs.run import RunOptions, run_job
+from lshjob.report.text import run_report
 from lshjob.runtime import budget, partitions
 
 SPEC = EventSpec(entity="patron", element="title")
@@ -205,6 +206,27 @@ def test_identical_sets_in_different_parts_are_paired_when_their_buckets_are_ove
     assert set(pairs["jaccard"]) == {1.0} and set(pairs["bands_shared"]) == {8}
     expected = pl.read_parquet(tmp_path / "one/neighbours.parquet").filter(pl.col("jaccard") == 1.0)
     assert got.filter(pl.col("jaccard") == 1.0).equals(expected)
+
+
+def test_a_planner_sample_emptied_by_min_count_in_parts_gives_the_index_of_one_part(tmp_path):
+    # Reference: the one-part run of the same loans. --min-count empties one of the two
+    # patrons, so the planner's sample in parts holds a single set: no histogram can be made,
+    # and the run goes on (an empty index, with the same warnings) instead of stopping.
+    events = pl.DataFrame({"patron": ["p-0", "p-1"], "title": ["t-4", "t-4"], "loans": [0, 3]})
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    spec = EventSpec(entity="patron", element="title", count="loans", min_count=1)
+    one = run_job(src, spec, RunOptions(threshold=0.3), tmp_path / "one")
+    three = run_job(src, spec, RunOptions(threshold=0.3, parts=3), tmp_path / "three")
+    assert three["counts"]["parts"] > 1 and three["warnings"] == one["warnings"]
+    assert any("only 1 entity" in w for w in one["warnings"])
+    assert pl.read_parquet(tmp_path / "three/neighbours.parquet").height == 0
+    # The plan then comes from theory, and the run's summary gives the S-curve's chance at the
+    # threshold, 1 - (1 - s^r)^b (Leskovec, Rajaraman, Ullman, Mining of Massive Datasets, 3.4.2).
+    plan = three["plan"]
+    assert plan["mode"] == "theory"
+    chance = 1 - (1 - 0.3 ** plan["rows"]) ** plan["bands"]
+    assert f"chance of a pair at the threshold {chance:.3f}" in run_report(three)
 
 
 def test_no_candidate_in_any_part(tmp_path):

@@ -215,11 +215,13 @@ def plan_run(sets: ElementSets | None, options: RunOptions, total_entities: int 
              distinct_sets: int | None = None) -> Plan:
     """The run's plan (:func:`lshjob.plan.choose.choose_plan`), from exact Jaccard of a sample of
     ``sets`` (all entities, or a uniform sample of ``total_entities``). Without two different
-    sets (``distinct_sets``, when known) or two entities, nothing is banded and nothing sampled."""
+    sets (``distinct_sets``, when known) or two entities, nothing is banded and nothing sampled;
+    a sample left with fewer than two sets (its entities emptied by --min-count) gives no
+    histogram, and the plan is made from theory."""
     n_entities = total_entities or sets.size
     distinct = min(n_entities, distinct_sets or n_entities)
     hist = None
-    if options.threshold < 1.0 and distinct >= 2:
+    if options.threshold < 1.0 and distinct >= 2 and sets is not None and sets.size >= 2:
         # Against a uniform sample of a fraction f of the entities, a sampled entity meets only
         # a fraction f of its similar pairs: 1/f times as many sampled entities see as many pairs.
         sample = min(sets.size, int(options.sample_size * n_entities / sets.size))

@@ -137,5 +137,8 @@ def _sample_histogram(manifest: Manifest, notes: list[str]) -> PairHistogram | N
         return None
     spec = EventSpec(**manifest.spec)
     sets = load_membership(source, spec)[0] if spec.key_columns == ["entity"] else load_sets(source, spec)[0]
+    if sets.size < 2:
+        notes.append(f"the run's events hold {sets.size} set(s) once filtered: no sample histogram")
+        return None
     return similarity.sample_histogram_from_sets(sets, manifest.options.get("sample_size", 2000), 0,
                                                  None, threshold)

@@ -25,7 +25,7 @@ def curves(curve: list[dict], point: dict | None, budget: int) -> tuple[str, dic
     for ax, y, label in zip(panels, (seconds, memory, disk), labels):
         ax.plot(n, y, color=CURVE, linewidth=2, label="forecast")
         ax.set_xscale("log")
-        ax.set_yscale("log")
+        ax.set_yscale("log" if (y > 0).any() else "linear")  # an empty index forecasts no disk
         ax.set_xlabel("entities N")
         ax.set_ylabel(label)
     panels[1].axhline(budget / 2**30, color=MARK, linestyle="--", label="budget")

@@ -72,13 +72,16 @@ def run_report(m: dict) -> str:
         lines.append(f"plan: {plan['why']}")
     else:
         p = plan["predicted"]
-        lines.append(
-            f"plan ({plan['mode']}): k={plan['perms']}, b={plan['bands']}, r={plan['rows']}; predicted recall "
-            f"{p['expected_recall']:.3f}"
-            + ("" if p.get("expected_list_recall") is None else
-               f" (of the top-{m['top_k_effective']} lists: {p['expected_list_recall']:.3f})")
-            + f", {p['expected_candidates']:,.0f} candidate pairs"
-        )
+        head = f"plan ({plan['mode']}): k={plan['perms']}, b={plan['bands']}, r={plan['rows']}; "
+        if "expected_recall" not in p:  # theory mode: no sample, only the S-curve
+            lines.append(head + f"chance of a pair at the threshold {p['probability_at_threshold']:.3f}")
+        else:
+            lines.append(
+                head + f"predicted recall {p['expected_recall']:.3f}"
+                + ("" if p.get("expected_list_recall") is None else
+                   f" (of the top-{m['top_k_effective']} lists: {p['expected_list_recall']:.3f})")
+                + f", {p['expected_candidates']:,.0f} candidate pairs"
+            )
     lines.append(
         f"entities {c['entities']:,} ({c['representatives']:,} after collapsing identical sets), "
         f"events {c['events']:,}"
