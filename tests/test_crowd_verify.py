@@ -242,3 +242,33 @@ def test_a_crowds_ranks_count_each_element_and_order_rarest_first_ties_by_key(se
     assert [int(values[u]) for u in which] == flat
     assert [int(freq[u]) for u in which] == [held[x] for x in flat]
     assert [int(rank[u]) for u in which] == [order.index(x) for x in flat]
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+@pytest.mark.parametrize("threshold", [0.3, 0.5, 0.8])
+def test_crowd_pairs_between_two_ranges_are_exactly_those_reaching_the_threshold(seed, threshold):
+    # A run in parts: a crowd's members in two key ranges, each range's sets held apart; the
+    # pairs across them are made here (one side in each range), a row per crowd they share.
+    # Oracle: exact Jaccard with Python sets of every such pair of every crowd.
+    sets, crowd_rows = _crowded_sets(seed)
+    middle = len(sets) // 2
+    table = (pl.DataFrame(crowd_rows, schema={"crowd": pl.Int64, "rep": pl.Int64}, orient="row")
+             .unique().sort("crowd", "rep"))
+
+    def held(ids):
+        rows = pl.DataFrame({"entity": np.repeat(ids, [len(sets[i]) for i in ids]),
+                             "element": np.concatenate([np.array(sets[i]) for i in ids])})
+        return ElementSets.from_sets(rows)
+
+    left, right = held(np.arange(middle)), held(np.arange(middle, len(sets)))
+    block = crowd_pairs_between(table, (0, middle - 1), (middle, len(sets) - 1))
+    got = verify_crowds(block, left, 0, right, middle, threshold, max_pairs=500)
+    want = Counter()
+    for _, members in table.group_by("crowd"):
+        for a, b in combinations(sorted(members["rep"].to_list()), 2):
+            sa, sb = set(sets[a]), set(sets[b])
+            if a < middle <= b and len(sa & sb) / len(sa | sb) >= threshold:
+                want[a, b, len(sa & sb) / len(sa | sb)] += 1
+    got_rows = Counter(zip(got["left_rep"].to_list(), got["right_rep"].to_list(), got["jaccard"].to_list()))
+    assert len(want) >= 5 and set(got["bands_shared"]) == {1}
+    assert got_rows == want

@@ -22,7 +22,7 @@ from lshjob.index.verify._crowd_members import (
     rise,
     weight_within,
 )
-from lshjob.index.verify._jaccard import _intersection
+from lshjob.index.verify._jaccard import _bits, _intersection, element_masks
 
 MAX_PAIRS = 1 << 22  # pairs made at a time (three 8-byte values each)
 # Pairs one crowd may write (within one range): 470 MB of buffers. A crowd finding more (tens of
@@ -31,24 +31,26 @@ CROWD_ROOM = 1 << 24
 
 
 @numba.njit(parallel=True, cache=True)
-def _crowd_pairs(left_offsets, left_elements, left_first, right_offsets, right_elements, right_first,
-                 a_members, a_start, a_count, b_members, b_start, b_count, same, base, threshold,
-                 out_left, out_right, out_jac):
+def _crowd_pairs(left_offsets, left_elements, left_masks, left_first, right_offsets, right_elements, right_masks,
+                 right_first, a_members, a_start, a_count, b_members, b_start, b_count, same, base, threshold,
+                 out_left, out_right, out_jac, found):
     """Crowd c pairs its a-members ``a_members[a_start[c]:a_start[c] + a_count[c]]`` (entity ids
     of the left sets, by set size ascending) with its b-members (right sets, by size); ``same``:
-    both sides are one range, so the pairs are those of the a-members, x < y. Pair (x, y) of
-    crowd c goes to slot ``base[c]`` + its rank among the crowd's pairs (row-major); its Jaccard
-    where it reaches ``threshold`` (filters as in :func:`lshjob.index.verify._jaccard.jaccard_between`),
-    and ``out_jac`` keeps its -1.0 elsewhere. Sizes ascending, so once a partner is more than
-    |A| / threshold the rest are too (the size filter ends the loop)."""
+    both sides are one range, so the pairs are those of the a-members, x < y. The pairs whose
+    Jaccard reaches ``threshold`` are written from slot ``base[c]`` on, in the order they are
+    made (row-major), their number in ``found[c]`` (filters as in
+    :func:`lshjob.index.verify._jaccard.jaccard_screened`, the sets' masks
+    ``left_masks``/``right_masks`` by set first). Sizes ascending, so once a partner is more
+    than |A| / threshold the rest are too (the size filter ends the loop)."""
     for c in numba.prange(a_start.shape[0]):
         na = a_count[c]
         nb = na if same else b_count[c]
+        p = base[c]
         for x in range(na):
             left = a_members[a_start[c] + x]
             a0, a1 = left_offsets[left - left_first], left_offsets[left - left_first + 1]
             la = a1 - a0
-            p = base[c] + (x * (2 * na - x - 1) // 2 if same else x * nb)
+            ma = left_masks[left - left_first]
             for y in range(x + 1 if same else 0, nb):
                 right = a_members[a_start[c] + y] if same else b_members[b_start[c] + y]
                 b0, b1 = right_offsets[right - right_first], right_offsets[right - right_first + 1]
@@ -57,13 +59,17 @@ def _crowd_pairs(left_offsets, left_elements, left_first, right_offsets, right_e
                     break  # every later partner is at least as large
                 if lb >= threshold * la - 1e-9:
                     need = int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9))
+                    mb = right_masks[right - right_first]
+                    if min(la - np.int64(_bits(ma & ~mb)), lb - np.int64(_bits(mb & ~ma))) < need:
+                        continue  # the masks' bound on |A n B| is below what the threshold needs
                     inter = _intersection(left_elements, a0, a1, right_elements, b0, b1, need)
                     value = inter / (la + lb - inter)
                     if inter >= need and value >= threshold:
                         out_left[p] = min(left, right)
                         out_right[p] = max(left, right)
                         out_jac[p] = value
-                p += 1
+                        p += 1
+        found[c] = p - base[c]
 
 
 @numba.njit(inline="always")
@@ -342,10 +348,11 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
     out_right = np.empty(size, dtype=np.int64)
     out_jac = np.empty(size)
     out_bands = np.empty(size, dtype=np.int32) if same else np.ones(size, dtype=np.int32)
+    masks = None if same else (element_masks(left_sets.offsets, left_sets.elements),
+                               element_masks(right_sets.offsets, right_sets.elements))
     for lo, hi, done in bounds:
-        size = int(cum[hi - 1] - done)
         base = np.concatenate([[0], cum[lo:hi - 1] - done]).astype(np.int64)
-        if same:  # the pairs found written first in each crowd's slots
+        if same:  # either way, the pairs found are written first in each crowd's slots
             found, full = np.zeros(hi - lo, dtype=np.int64), np.zeros(hi - lo, dtype=np.bool_)
             floor = floor_within(floors, left_first, len(left_sets.offsets) - 1)
             _crowd_pairs_within(left_sets.offsets, left_sets.elements, left_first, a_members, a_start[lo:hi],
@@ -356,10 +363,11 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
                 tally["crowds_cut"] = tally.get("crowds_cut", 0) + int(full.sum())
             keep = np.arange(int(found.sum())) + np.repeat(base - (np.cumsum(found) - found), found)
         else:
-            out_jac[:size] = -1.0
-            _crowd_pairs(left_sets.offsets, left_sets.elements, left_first, right_sets.offsets, right_sets.elements,
-                         right_first, a_members, a_start[lo:hi], a_count[lo:hi], b_members, b_start[lo:hi],
-                         b_count[lo:hi], same, base, threshold, out_left, out_right, out_jac)
-            keep = np.flatnonzero(out_jac[:size] >= threshold)
+            found = np.zeros(hi - lo, dtype=np.int64)
+            _crowd_pairs(left_sets.offsets, left_sets.elements, masks[0], left_first, right_sets.offsets,
+                         right_sets.elements, masks[1], right_first, a_members, a_start[lo:hi], a_count[lo:hi],
+                         b_members, b_start[lo:hi], b_count[lo:hi], same, base, threshold, out_left, out_right,
+                         out_jac, found)
+            keep = np.arange(int(found.sum())) + np.repeat(base - (np.cumsum(found) - found), found)
         yield pl.DataFrame({"left_rep": out_left[keep], "right_rep": out_right[keep], "jaccard": out_jac[keep],
                             "bands_shared": out_bands[keep] if same else np.ones(len(keep), dtype=np.int32)})
