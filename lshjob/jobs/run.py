@@ -113,8 +113,8 @@ class _Stages:
 
 def _crowd_cap(options: RunOptions, in_parts: bool) -> int:
     """``--max-crowd`` where the local verification pairs crowds of one part, whose kernel
-    writes only the pairs found; else ``--max-bucket`` (pairs made between parts, or by
-    another engine, are made whether found or not)."""
+    writes only the pairs found; else ``--max-bucket`` (between parts, or by another engine,
+    every pair of a crowd is visited, with a slot of its own, whether found or not)."""
     if in_parts or options.engine_names()["verify"] != "local":
         return options.max_bucket
     return max(options.max_bucket, options.max_crowd)
