@@ -197,8 +197,10 @@ def test_identical_sets_in_different_parts_are_paired_when_their_buckets_are_ove
     options = dict(threshold=0.5, perms=32, bands=8, rows=4, top_k=5, max_bucket=2)
     one = run_job(src, SPEC, RunOptions(**options), tmp_path / "one")
     three = run_job(src, SPEC, RunOptions(**options, parts=3), tmp_path / "three")
-    # the six lone-title sets: one representative in one part, three in three parts
+    # the six lone-title sets: one representative in one part, three in three parts, so three
+    # pairs of the same fingerprint across parts, beside the join's candidates
     assert one["counts"]["representatives"] == 85 and three["counts"]["representatives"] == 87
+    assert three["counts"]["identical_pairs_across_parts"] == 3
     got = pl.read_parquet(tmp_path / "three/neighbours.parquet")
     lone = list(range(0, 90, 15))
     pairs = got.filter(pl.col("entity").is_in(lone), pl.col("neighbour").is_in(lone))

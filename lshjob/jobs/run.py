@@ -204,9 +204,9 @@ def run_job(
                     ranges=built.store.ranges if in_parts else None)
             skew = joined.skew
             counts["candidate_pairs"] = joined.pairs
-            if in_parts and built.identical_pairs:  # identical sets of different parts, met or not in a band
+            if in_parts:  # identical sets of different parts, met or not in a band (not the join's pairs)
                 move_pair_blocks(built.candidates, candidates)
-                counts["candidate_pairs"] += built.identical_pairs
+                counts["identical_pairs_across_parts"] = built.identical_pairs
             if skew["skipped_pairs"]:
                 flag = "--max-bucket" if skew["max_bucket"] == options.max_bucket else "--max-crowd"
                 warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over {flag} "
