@@ -306,7 +306,8 @@ def verify_crowds(block, left_sets, left_first: int, right_sets, right_first: in
 
 def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int, threshold: float,
                  max_pairs: int = MAX_PAIRS, floors=None, tally: dict | None = None, room: int = CROWD_ROOM,
-                 group_sizes=None, top_k: int | None = None, distinct: bool = False, how: str = "auto"):
+                 group_sizes=None, top_k: int | None = None, distinct: bool = False, how: str = "auto",
+                 masks: tuple[np.ndarray, np.ndarray] | None = None):
     """:func:`verify_crowds`'s rows, a chunk of at most ``max_pairs`` pairs made at a time, so
     the caller can deduplicate as they come. ``floors()``, when given, returns each entity id's
     top-k floor now (:func:`lshjob.index._ranking.list_cuts`), read before each chunk: the
@@ -315,7 +316,9 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
     With the floors, ``group_sizes`` (by entity id) and ``top_k``, a crowd raises its members'
     floors with the pairs it finds. ``distinct``: no two members of a range hold the same set
     (representatives), which spares pairs of one size (:func:`_crowd_pairs_within`). ``how``:
-    "auto" (each crowd by cost), "prefix" or "counted" (every crowd that way; for tests)."""
+    "auto" (each crowd by cost), "prefix" or "counted" (every crowd that way; for tests).
+    ``masks``: both sides' :func:`lshjob.index.verify._jaccard.element_masks`, when the caller
+    has them (made here otherwise; read between two ranges only)."""
     (a_members, a_crowd, a_start, a_count, b_members, b_crowd, b_start, b_count, same, a_band), pairs = block
     # read-only views: one compiled kernel whether a run loaded the sets or read a saved part
     same_sets, left_sets = right_sets is left_sets, read_only(left_sets)
@@ -348,8 +351,9 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
     out_right = np.empty(size, dtype=np.int64)
     out_jac = np.empty(size)
     out_bands = np.empty(size, dtype=np.int32) if same else np.ones(size, dtype=np.int32)
-    masks = None if same else (element_masks(left_sets.offsets, left_sets.elements),
-                               element_masks(right_sets.offsets, right_sets.elements))
+    if masks is None and not same:
+        masks = (element_masks(left_sets.offsets, left_sets.elements),
+                 element_masks(right_sets.offsets, right_sets.elements))
     for lo, hi, done in bounds:
         base = np.concatenate([[0], cum[lo:hi - 1] - done]).astype(np.int64)
         if same:  # either way, the pairs found are written first in each crowd's slots

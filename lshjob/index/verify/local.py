@@ -65,8 +65,11 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 continue
             left = store.load(i) if left is None else left
             right = left if j == i else store.load(j)
-            if files and left_masks is None:
+            screened = files or (crowded is not None and j != i)  # what reads the sets' masks
+            if screened and left_masks is None:
                 left_masks = element_masks(left.offsets, left.elements)
+            masks = (left_masks, left_masks if j == i else element_masks(right.offsets, right.elements)) \
+                if screened else None
             cut, floors = None, None
             if settings.top_k is not None and settings.group_sizes is not None:
                 cut = partial(_in_lists, group_sizes=settings.group_sizes, top_k=settings.top_k)
@@ -76,20 +79,19 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 held_sets=(readonly(left.offsets), store.ranges[i][0], readonly(right.offsets), store.ranges[j][0])),
                 cut, floors)
             if files:
-                masks = (left_masks, left_masks if j == i else element_masks(right.offsets, right.elements))
                 frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
                 for lo, hi in slice_bounds(_rows(files), step):
                     chunk = frame.slice(lo, hi - lo).collect()
                     held.add(verify_between(chunk, left, store.ranges[i][0], right, store.ranges[j][0], threshold,
                                             masks))
-                del masks
             if crowded is not None:
                 held.settle()  # the join's pairs give the first floors
                 for piece in crowd_pieces(crowded, left, store.ranges[i][0], right, store.ranges[j][0], threshold,
                                           floors=held.floors_now if cut is not None else None,
                                           tally=settings.tally, group_sizes=settings.group_sizes,
-                                          top_k=settings.top_k, distinct=settings.distinct_sets):
+                                          top_k=settings.top_k, distinct=settings.distinct_sets, masks=masks):
                     held.add(piece)
+            del masks
             block = held.result()
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
                 continue
