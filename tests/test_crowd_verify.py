@@ -272,3 +272,39 @@ def test_crowd_pairs_between_two_ranges_are_exactly_those_reaching_the_threshold
     got_rows = Counter(zip(got["left_rep"].to_list(), got["right_rep"].to_list(), got["jaccard"].to_list()))
     assert len(want) >= 5 and set(got["bands_shared"]) == {1}
     assert got_rows == want
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_crowd_pairs_between_two_ranges_below_both_floors_are_not_sought(seed):
+    # A run in parts, with the top-k floors the blocks before gave: every pair across the two
+    # ranges reaching max(threshold, min(floor a, floor b)) is found with its exact Jaccard, a
+    # row per crowd it shares, and no pair below that. Oracle: exact Jaccard with Python sets.
+    sets, crowd_rows = _crowded_sets(seed)
+    middle = len(sets) // 2
+    table = (pl.DataFrame(crowd_rows, schema={"crowd": pl.Int64, "rep": pl.Int64}, orient="row")
+             .unique().sort("crowd", "rep"))
+
+    def held(ids):
+        rows = pl.DataFrame({"entity": np.repeat(ids, [len(sets[i]) for i in ids]),
+                             "element": np.concatenate([np.array(sets[i]) for i in ids])})
+        return ElementSets.from_sets(rows)
+
+    threshold = 0.3
+    rng = np.random.default_rng(seed)
+    floors = np.where(rng.random(len(sets)) < 0.7, rng.choice([0.4, 0.5, 0.6, 1.0], len(sets)), -1.0)
+    left, right = held(np.arange(middle)), held(np.arange(middle, len(sets)))
+    block = crowd_pairs_between(table, (0, middle - 1), (middle, len(sets) - 1))
+    got = pl.concat(list(crowd_pieces(block, left, 0, right, middle, threshold, max_pairs=500,
+                                      floors=lambda: floors)))
+    want, reached = Counter(), 0
+    for _, members in table.group_by("crowd"):
+        for a, b in combinations(sorted(members["rep"].to_list()), 2):
+            sa, sb = set(sets[a]), set(sets[b])
+            jaccard = len(sa & sb) / len(sa | sb)
+            if a < middle <= b and jaccard >= threshold:
+                reached += 1
+                if jaccard >= max(threshold, min(floors[a], floors[b])):
+                    want[a, b, jaccard] += 1
+    got_rows = Counter(zip(got["left_rep"].to_list(), got["right_rep"].to_list(), got["jaccard"].to_list()))
+    assert len(want) >= 5 and reached - sum(want.values()) >= 5  # pairs to find, and pairs the floors leave out
+    assert got_rows == want

@@ -393,7 +393,7 @@ def test_rows_held_stay_within_the_steps_the_memory_rule_bounds_them_by():
         most = max(most, rows.height)
         return one_row_a_pair(rows)
 
-    def cut(rows):  # the rows kept, and no floor (HeldRows' cut returns both)
+    def cut(rows, floors=None):  # the rows kept, and no floor (HeldRows' cut returns both)
         return rows.sort("jaccard", descending=True).head(step // 2), np.full(1, -1.0)
 
     held = HeldRows(step, dedup, cut=cut)

@@ -33,7 +33,7 @@ CROWD_ROOM = 1 << 24
 @numba.njit(parallel=True, cache=True)
 def _crowd_pairs(left_offsets, left_elements, left_masks, left_first, right_offsets, right_elements, right_masks,
                  right_first, a_members, a_start, a_count, b_members, b_start, b_count, same, base, threshold,
-                 out_left, out_right, out_jac, found):
+                 left_floor, right_floor, out_left, out_right, out_jac, found):
     """Crowd c pairs its a-members ``a_members[a_start[c]:a_start[c] + a_count[c]]`` (entity ids
     of the left sets, by set size ascending) with its b-members (right sets, by size); ``same``:
     both sides are one range, so the pairs are those of the a-members, x < y. The pairs whose
@@ -41,7 +41,13 @@ def _crowd_pairs(left_offsets, left_elements, left_masks, left_first, right_offs
     made (row-major), their number in ``found[c]`` (filters as in
     :func:`lshjob.index.verify._jaccard.jaccard_screened`, the sets' masks
     ``left_masks``/``right_masks`` by set first). Sizes ascending, so once a partner is more
-    than |A| / threshold the rest are too (the size filter ends the loop)."""
+    than |A| / threshold the rest are too (the size filter ends the loop).
+
+    ``left_floor``/``right_floor`` (by set, as the masks; empty for none): each set's top-k
+    floor (:func:`lshjob.index._ranking.list_cuts`). A pair below both its sides' floors
+    enters neither list, so it is sought at max(threshold, min(floor a, floor b)): its size
+    filter and the intersection its masks must allow grow with it, and it is written only
+    when it reaches it."""
     for c in numba.prange(a_start.shape[0]):
         na = a_count[c]
         nb = na if same else b_count[c]
@@ -51,20 +57,22 @@ def _crowd_pairs(left_offsets, left_elements, left_masks, left_first, right_offs
             a0, a1 = left_offsets[left - left_first], left_offsets[left - left_first + 1]
             la = a1 - a0
             ma = left_masks[left - left_first]
+            floor_a = left_floor[left - left_first] if len(left_floor) else -1.0
             for y in range(x + 1 if same else 0, nb):
                 right = a_members[a_start[c] + y] if same else b_members[b_start[c] + y]
                 b0, b1 = right_offsets[right - right_first], right_offsets[right - right_first + 1]
                 lb = b1 - b0
                 if la < threshold * lb - 1e-9:
                     break  # every later partner is at least as large
-                if lb >= threshold * la - 1e-9:
-                    need = int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9))
+                sought = max(threshold, min(floor_a, right_floor[right - right_first] if len(right_floor) else -1.0))
+                if lb >= sought * la - 1e-9 and la >= sought * lb - 1e-9:
+                    need = need_for(la, lb, sought)
                     mb = right_masks[right - right_first]
                     if min(la - np.int64(_bits(ma & ~mb)), lb - np.int64(_bits(mb & ~ma))) < need:
-                        continue  # the masks' bound on |A n B| is below what the threshold needs
+                        continue  # the masks' bound on |A n B| is below what the pair is sought at
                     inter = _intersection(left_elements, a0, a1, right_elements, b0, b1, need)
                     value = inter / (la + lb - inter)
-                    if inter >= need and value >= threshold:
+                    if inter >= need and value >= sought:
                         out_left[p] = min(left, right)
                         out_right[p] = max(left, right)
                         out_jac[p] = value
@@ -311,7 +319,7 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
     """:func:`verify_crowds`'s rows, a chunk of at most ``max_pairs`` pairs made at a time, so
     the caller can deduplicate as they come. ``floors()``, when given, returns each entity id's
     top-k floor now (:func:`lshjob.index._ranking.list_cuts`), read before each chunk: the
-    pairs below both sides' floors are not sought (within one range), nor returned. Within one
+    pairs below both sides' floors are not sought, nor returned. Within one
     range a crowd writes at most ``room`` pairs; ``tally["crowds_cut"]`` counts those cut there.
     With the floors, ``group_sizes`` (by entity id) and ``top_k``, a crowd raises its members'
     floors with the pairs it finds. ``distinct``: no two members of a range hold the same set
@@ -370,7 +378,9 @@ def crowd_pieces(block, left_sets, left_first: int, right_sets, right_first: int
             found = np.zeros(hi - lo, dtype=np.int64)
             _crowd_pairs(left_sets.offsets, left_sets.elements, masks[0], left_first, right_sets.offsets,
                          right_sets.elements, masks[1], right_first, a_members, a_start[lo:hi], a_count[lo:hi],
-                         b_members, b_start[lo:hi], b_count[lo:hi], same, base, threshold, out_left, out_right,
+                         b_members, b_start[lo:hi], b_count[lo:hi], same, base, threshold,
+                         floor_within(floors, left_first, len(left_sets.offsets) - 1),
+                         floor_within(floors, right_first, len(right_sets.offsets) - 1), out_left, out_right,
                          out_jac, found)
             keep = np.arange(int(found.sum())) + np.repeat(base - (np.cumsum(found) - found), found)
         yield pl.DataFrame({"left_rep": out_left[keep], "right_rep": out_right[keep], "jaccard": out_jac[keep],

@@ -51,11 +51,17 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
     with the rows' ``bands_shared`` summed (:func:`one_row_a_pair`). ``crowds``: the join's
     CROWDS file, whose pairs are made here (:mod:`lshjob.index.verify._crowds`). With
     ``settings.top_k``, a block's pairs that can enter neither side's list are dropped before
-    their estimates are made (:func:`lshjob.index._ranking.pairs_in_lists`)."""
+    their estimates are made (:func:`lshjob.index._ranking.pairs_in_lists`). The floors a
+    block's pairs give (each side's cut) are kept for the blocks after it: a cut from some of
+    an entity's pairs is a floor for its cut from all of them, so a later block neither seeks
+    (its crowds) nor keeps a pair below both its sides' floors."""
     step = settings.slice_rows
     pieces, over = [], 0
     parts = len(store.ranges)
     crowd_table = pl.read_parquet(crowds) if crowds is not None else None
+    known = None  # each entity id's floor from the blocks done (with a top-k)
+    if settings.top_k is not None and settings.group_sizes is not None:
+        known = own_cuts(settings.group_sizes, settings.top_k)
     for i in range(parts):
         left = left_masks = None
         for j in range(i, parts):
@@ -70,14 +76,13 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 left_masks = element_masks(left.offsets, left.elements)
             masks = (left_masks, left_masks if j == i else element_masks(right.offsets, right.elements)) \
                 if screened else None
-            cut, floors = None, None
-            if settings.top_k is not None and settings.group_sizes is not None:
+            cut = None
+            if known is not None:
                 cut = partial(_in_lists, group_sizes=settings.group_sizes, top_k=settings.top_k)
-                floors = own_cuts(settings.group_sizes, settings.top_k)
             held = HeldRows(settings.held_rows, partial(
                 one_row_a_pair, jaccard_of=partial(_exact, left, store.ranges[i][0], right, store.ranges[j][0]),
                 held_sets=(readonly(left.offsets), store.ranges[i][0], readonly(right.offsets), store.ranges[j][0])),
-                cut, floors)
+                cut, known)
             if files:
                 frame = pl.scan_parquet(files, hive_partitioning=False).select("left_rep", "right_rep", "bands_shared")
                 for lo, hi in slice_bounds(_rows(files), step):
@@ -93,11 +98,14 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                     held.add(piece)
             del masks
             block = held.result()
+            if cut is not None:
+                known = held.floors
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
                 continue
             over += block.height + held.dropped
             if cut is not None:  # before the estimates
-                block = cut(block)[0]
+                block, cuts = cut(block, known)
+                known = np.maximum(known, cuts)
             if params is None:  # identical sets only, no signatures: the estimate is exact
                 block = block.with_columns(estimate=pl.col("jaccard")).select(
                     "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
@@ -161,7 +169,7 @@ class HeldRows:
         self._dedup()
         if self.cut is not None:
             height = self.kept.height
-            self.kept, floors = self.cut(self.kept)
+            self.kept, floors = self.cut(self.kept, self.floors)
             self.floors = floors if self.floors is None else np.maximum(self.floors, floors)
             self.dropped += height - self.kept.height
 
@@ -183,10 +191,15 @@ class HeldRows:
         return self.kept
 
 
-def _in_lists(pairs: pl.DataFrame, group_sizes, top_k: int) -> tuple[pl.DataFrame, np.ndarray]:
-    """The pairs that can enter a list, and each side's cut (:func:`lshjob.index._ranking.list_cuts`)."""
-    keep, cuts = list_cuts(pairs["left_rep"].to_numpy(), pairs["right_rep"].to_numpy(), pairs["jaccard"].to_numpy(),
-                           group_sizes, top_k)
+def _in_lists(pairs: pl.DataFrame, floors: np.ndarray | None, group_sizes, top_k: int
+              ) -> tuple[pl.DataFrame, np.ndarray]:
+    """The pairs that can enter a list, and each side's cut (:func:`lshjob.index._ranking.list_cuts`);
+    with ``floors`` (by entity id: cuts from other pairs), a pair below both its sides' floors
+    is dropped too."""
+    left, right, jaccard = pairs["left_rep"].to_numpy(), pairs["right_rep"].to_numpy(), pairs["jaccard"].to_numpy()
+    keep, cuts = list_cuts(left, right, jaccard, group_sizes, top_k)
+    if floors is not None and len(left):
+        keep &= (jaccard >= floors[left]) | (jaccard >= floors[right])
     return pairs.filter(pl.Series(keep)), cuts
 
 
