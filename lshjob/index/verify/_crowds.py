@@ -47,32 +47,52 @@ def _crowd_pairs(left_offsets, left_elements, left_masks, left_first, right_offs
     floor (:func:`lshjob.index._ranking.list_cuts`). A pair below both its sides' floors
     enters neither list, so it is sought at max(threshold, min(floor a, floor b)): its size
     filter and the intersection its masks must allow grow with it, and it is written only
-    when it reaches it."""
+    when it reaches it.
+
+    Each crowd's b-members' ids, starts, sizes, masks and floors are gathered once into arrays
+    of their own, read in order by every a-member (before: four random reads a pair, by entity
+    id); and since both sides ascend by size, the b-members too small for an a-member (below
+    threshold x |A|) are too small for the next ones, so each a-member starts where the last
+    one's size filter began."""
     for c in numba.prange(a_start.shape[0]):
         na = a_count[c]
         nb = na if same else b_count[c]
+        b_ids = a_members[a_start[c]:a_start[c] + na] if same else b_members[b_start[c]:b_start[c] + nb]
+        b_at = np.empty(nb, dtype=np.int64)
+        b_size = np.empty(nb, dtype=np.int64)
+        b_mask = np.empty(nb, dtype=np.uint64)
+        b_floor = np.full(nb, -1.0)
+        for y in range(nb):
+            r = b_ids[y] - right_first
+            b_at[y] = right_offsets[r]
+            b_size[y] = right_offsets[r + 1] - right_offsets[r]
+            b_mask[y] = right_masks[r]
+            if len(right_floor):
+                b_floor[y] = right_floor[r]
         p = base[c]
+        low = 0
         for x in range(na):
             left = a_members[a_start[c] + x]
             a0, a1 = left_offsets[left - left_first], left_offsets[left - left_first + 1]
             la = a1 - a0
             ma = left_masks[left - left_first]
             floor_a = left_floor[left - left_first] if len(left_floor) else -1.0
-            for y in range(x + 1 if same else 0, nb):
-                right = a_members[a_start[c] + y] if same else b_members[b_start[c] + y]
-                b0, b1 = right_offsets[right - right_first], right_offsets[right - right_first + 1]
-                lb = b1 - b0
+            while low < nb and b_size[low] < threshold * la - 1e-9:
+                low += 1  # too small for this member and every later (larger) one
+            for y in range(max(low, x + 1) if same else low, nb):
+                lb = b_size[y]
                 if la < threshold * lb - 1e-9:
                     break  # every later partner is at least as large
-                sought = max(threshold, min(floor_a, right_floor[right - right_first] if len(right_floor) else -1.0))
+                sought = max(threshold, min(floor_a, b_floor[y]))
                 if lb >= sought * la - 1e-9 and la >= sought * lb - 1e-9:
                     need = need_for(la, lb, sought)
-                    mb = right_masks[right - right_first]
+                    mb = b_mask[y]
                     if min(la - np.int64(_bits(ma & ~mb)), lb - np.int64(_bits(mb & ~ma))) < need:
                         continue  # the masks' bound on |A n B| is below what the pair is sought at
-                    inter = _intersection(left_elements, a0, a1, right_elements, b0, b1, need)
+                    inter = _intersection(left_elements, a0, a1, right_elements, b_at[y], b_at[y] + lb, need)
                     value = inter / (la + lb - inter)
                     if inter >= need and value >= sought:
+                        right = b_ids[y]
                         out_left[p] = min(left, right)
                         out_right[p] = max(left, right)
                         out_jac[p] = value
