@@ -126,3 +126,35 @@ def test_rows_per_band_publish_the_same_index_as_deduplicated_pairs(crowd_size, 
                     <= deduplicated["counts"]["verified_pairs"])
     mine = pl.read_parquet(tmp_path / "rows" / "neighbours.parquet")
     assert mine.height > 0 and mine.equals(pl.read_parquet(tmp_path / "dedup" / "neighbours.parquet"))
+
+
+def test_a_run_in_parts_keeps_only_pairs_a_list_can_take_and_publishes_the_one_part_index(tmp_path, monkeypatch):
+    # Each block of parts is cut by the top-k with only its own pairs; the blocks are then cut
+    # again together, so what verification hands to publishing holds no pair that can enter
+    # neither side's list (lshjob.index._ranking.pairs_in_lists, itself checked against a
+    # Python sort of every list in tests/test_top_k_cut.py), and the index is the one-part run's.
+    from lshjob.index._ranking import pairs_in_lists
+    from lshjob.index.verify import local
+
+    src = tmp_path / "loans.parquet"
+    _long_tailed().write_parquet(src)
+    options = RunOptions(threshold=0.5, top_k=3, perms=64, bands=16, rows=4)
+    seen = []
+    original = local.LocalVerify.verify
+
+    def kept(self, candidates, store, threshold, params, settings, crowds=None):
+        got = original(self, candidates, store, threshold, params, settings, crowds)
+        seen.append((got, settings.group_sizes))
+        return got
+
+    monkeypatch.setattr(local.LocalVerify, "verify", kept)
+    one = run_job(src, SPEC, options, tmp_path / "one")
+    three = run_job(src, SPEC, replace(options, parts=3), tmp_path / "three")
+    assert three["counts"]["parts"] == 3
+    got, sizes = seen[1]
+    assert three["counts"]["verified_pairs"] > 2 * got.height  # the cuts dropped pairs
+    keep = pairs_in_lists(got["left_rep"].to_numpy(), got["right_rep"].to_numpy(), got["jaccard"].to_numpy(), sizes, 3)
+    assert keep.all()
+    assert pl.read_parquet(tmp_path / "one/neighbours.parquet").equals(
+        pl.read_parquet(tmp_path / "three/neighbours.parquet"))
+    assert one["counts"]["published_rows"] == three["counts"]["published_rows"]
