@@ -244,6 +244,13 @@ def test_a_crowds_ranks_count_each_element_and_order_rarest_first_ties_by_key(se
     assert [int(rank[u]) for u in which] == [order.index(x) for x in flat]
 
 
+def _held(sets, ids):
+    """The sets ``ids`` held as one key range's are (set t is entity ids[t])."""
+    rows = pl.DataFrame({"entity": np.repeat(ids, [len(sets[i]) for i in ids]),
+                         "element": np.concatenate([np.array(sets[i]) for i in ids])})
+    return ElementSets.from_sets(rows)
+
+
 @pytest.mark.parametrize("seed", [1, 2, 3])
 @pytest.mark.parametrize("threshold", [0.3, 0.5, 0.8])
 def test_crowd_pairs_between_two_ranges_are_exactly_those_reaching_the_threshold(seed, threshold):
@@ -255,12 +262,7 @@ def test_crowd_pairs_between_two_ranges_are_exactly_those_reaching_the_threshold
     table = (pl.DataFrame(crowd_rows, schema={"crowd": pl.Int64, "rep": pl.Int64}, orient="row")
              .unique().sort("crowd", "rep"))
 
-    def held(ids):
-        rows = pl.DataFrame({"entity": np.repeat(ids, [len(sets[i]) for i in ids]),
-                             "element": np.concatenate([np.array(sets[i]) for i in ids])})
-        return ElementSets.from_sets(rows)
-
-    left, right = held(np.arange(middle)), held(np.arange(middle, len(sets)))
+    left, right = _held(sets, np.arange(middle)), _held(sets, np.arange(middle, len(sets)))
     block = crowd_pairs_between(table, (0, middle - 1), (middle, len(sets) - 1))
     got = verify_crowds(block, left, 0, right, middle, threshold, max_pairs=500)
     want = Counter()
@@ -284,15 +286,10 @@ def test_crowd_pairs_between_two_ranges_below_both_floors_are_not_sought(seed):
     table = (pl.DataFrame(crowd_rows, schema={"crowd": pl.Int64, "rep": pl.Int64}, orient="row")
              .unique().sort("crowd", "rep"))
 
-    def held(ids):
-        rows = pl.DataFrame({"entity": np.repeat(ids, [len(sets[i]) for i in ids]),
-                             "element": np.concatenate([np.array(sets[i]) for i in ids])})
-        return ElementSets.from_sets(rows)
-
     threshold = 0.3
     rng = np.random.default_rng(seed)
     floors = np.where(rng.random(len(sets)) < 0.7, rng.choice([0.4, 0.5, 0.6, 1.0], len(sets)), -1.0)
-    left, right = held(np.arange(middle)), held(np.arange(middle, len(sets)))
+    left, right = _held(sets, np.arange(middle)), _held(sets, np.arange(middle, len(sets)))
     block = crowd_pairs_between(table, (0, middle - 1), (middle, len(sets) - 1))
     got = pl.concat(list(crowd_pieces(block, left, 0, right, middle, threshold, max_pairs=500,
                                       floors=lambda: floors)))
