@@ -99,29 +99,30 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                                           top_k=settings.top_k, distinct=settings.distinct_sets, masks=masks):
                     held.add(piece)
             del masks
-            block = held.result()
+            block, dropped = held.result(), held.dropped
             if cut is not None:
                 known = held.floors
+            del held  # its deduplication holds the two parts' sets
             if block is None or block.height == 0:  # no candidate here, or none reached the threshold
+                del right
                 continue
-            over += block.height + held.dropped
+            over += block.height + dropped
             if cut is not None:  # before the estimates
                 block, cuts = cut(block, known)
                 known = np.maximum(known, cuts)
-            if deferred:
+            if deferred:  # estimates once every block is cut (_cut_then_estimate)
                 pieces.append((i, j, block))
-                continue
-            if params is None:  # identical sets only, no signatures: the estimate is exact
-                block = block.with_columns(estimate=pl.col("jaccard")).select(
-                    "left_rep", "right_rep", "jaccard", "estimate", "bands_shared")
+            elif params is None:  # identical sets only, no signatures: the estimate is exact
+                pieces.append(block.with_columns(estimate=pl.col("jaccard")).select(
+                    "left_rep", "right_rep", "jaccard", "estimate", "bands_shared"))
             else:
-                block = add_estimates_between(block, left, store.ranges[i][0], right, store.ranges[j][0], params,
-                                              max_bytes=settings.estimate_bytes)
-            pieces.append(block)
+                pieces.append(add_estimates_between(block, left, store.ranges[i][0], right, store.ranges[j][0],
+                                                    params, max_bytes=settings.estimate_bytes))
             del right
     if settings.tally is not None:
         settings.tally["over_threshold"] = over
     if deferred:
+        left = left_masks = None  # two parts' sets held at most, as above
         pieces = _cut_then_estimate(pieces, store, params, settings, known)
     return pl.concat(pieces) if pieces else empty_verified()
 
