@@ -8,6 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 from lshjob.core._jit import numba
+from lshjob.core.search import kth_smallest
 
 
 @numba.njit(inline="always")
@@ -286,7 +287,7 @@ def _last_at_cut(lo, hi, pair, left, right, jaccard, capped, cap, g, own, cutoff
         if jaccard[pair[i]] == cutoff:
             tied[t] = _partner(left, right, pair[i], g)
             t += 1
-    return np.partition(tied, need - 1)[need - 1]  # the need-th smallest, in linear time
+    return kth_smallest(tied, need - 1)  # the need-th smallest, in linear time
 
 
 @numba.njit(parallel=True, cache=True)
