@@ -177,26 +177,27 @@ def _crowd_pairs_within(offsets, elements, first, members, start, count, base, r
             mine[x] = crowd_at[row_of[mem[x] - first]]
             bits[x] = in_bands[row_of[mem[x] - first]]
         out, end, stop = base[c], base[c] + room[c], False
+        # each member's partners, gathered in the order of the three ways below, then tried
+        # by one call site (each inlined copy of _try costs the compile about 15 s)
+        cand_y = np.empty(m, dtype=np.int64)
+        cand_inter = np.empty(m, dtype=np.int64)
         for x in range(m):
             la = size[x]
             low = first_at_least(size, 0, x, lowest * la - 1e-9)  # the size filter, sizes ascending
             met = _count_shared(local, local_off, post_off, posted, x, low, shared, touched) if counted else 0
+            n = 0
             for y in range(x):  # partners whose needed intersection C alone may give
                 if need_for(la, size[y], threshold) > common:
                     break  # later partners are at least as large
-                out, stop = _try(x, y, common + shared[y] if counted else -1, size, at, distinct, common, local,
-                                 local_off, mem, mine, bits, bands[c], out, end, rising, threshold, first,
-                                 weight, tally, top, above, wanted, out_left, out_right, out_jac, out_bands)
-                if stop:
-                    break
+                cand_y[n], cand_inter[n] = y, common + shared[y] if counted else -1
+                n += 1
             for i in range(met):
                 y = touched[i]
                 inter, shared[y] = common + shared[y], 0
-                if not stop and need_for(la, size[y], threshold) > common:  # (the others were tried above)
-                    out, stop = _try(x, y, inter, size, at, distinct, common, local, local_off, mem, mine, bits,
-                                     bands[c], out, end, rising, threshold, first, weight, tally, top, above,
-                                     wanted, out_left, out_right, out_jac, out_bands)
-            for q in range(local_off[x], local_off[x] + (0 if stop or counted else prefix[x])):
+                if need_for(la, size[y], threshold) > common:  # (the others were gathered above)
+                    cand_y[n], cand_inter[n] = y, inter
+                    n += 1
+            for q in range(local_off[x], local_off[x] + (0 if counted else prefix[x])):
                 r = local[q]
                 for t in range(first_at_least(posted, post_off[r], post_off[r + 1], low), post_off[r + 1]):
                     y = posted[t]
@@ -205,12 +206,13 @@ def _crowd_pairs_within(offsets, elements, first, members, start, count, base, r
                     if seen[y] == x:
                         continue
                     seen[y] = x
-                    if need_for(la, size[y], threshold) > common:  # (the others were tried above)
-                        out, stop = _try(x, y, -1, size, at, distinct, common, local, local_off, mem, mine, bits,
-                                         bands[c], out, end, rising, threshold, first, weight, tally, top,
-                                         above, wanted, out_left, out_right, out_jac, out_bands)
-                        if stop:
-                            break
+                    if need_for(la, size[y], threshold) > common:  # (the others were gathered above)
+                        cand_y[n], cand_inter[n] = y, -1
+                        n += 1
+            for i in range(n):
+                out, stop = _try(x, cand_y[i], cand_inter[i], size, at, distinct, common, local, local_off, mem,
+                                 mine, bits, bands[c], out, end, rising, threshold, first, weight, tally, top,
+                                 above, wanted, out_left, out_right, out_jac, out_bands)
                 if stop:
                     break
             if stop:
