@@ -25,7 +25,9 @@ import os
 import sys
 
 ENV = "LSHJOB_CACHE_DIR"
-COLD_SECONDS = 25  # the notice's estimate: a cold `lshjob demo` on 2 cores (bench/RESULTS.md)
+# the notice's estimate, on 2 cores (bench/RESULTS.md, "Cold start", 2026-12-05): a cold
+# `lshjob demo` 50-59 s, a cold long-tailed run of 1M entities about 110 s (24 s warm)
+COLD_TIME = "about a minute for a small run, up to about 2 minutes for a large one"
 
 
 def configure_cache_dir() -> str | None:
@@ -90,7 +92,7 @@ class _Notice:
         if not module.startswith("lshjob.") or _quiet_command():
             return
         self.shown = True
-        print(f"lshjob: compiling kernels for this machine (once, up to about {COLD_SECONDS} s; "
+        print(f"lshjob: compiling kernels for this machine (once: {COLD_TIME}; "
               f"kept in {cache_folder(dispatcher)})", file=sys.stderr, flush=True)
 
     def on_end(self, event) -> None:
