@@ -13,11 +13,13 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
+from dataclasses import replace
 
 import polars as pl
 import pytest
 
 from lshjob import EventSpec
+from lshjob.index.join import duckdb as duckdb_join
 from lshjob.jobs.run import RunOptions, run_job
 
 SPEC = EventSpec(entity="patron", element="title")
@@ -152,3 +154,45 @@ def test_a_run_that_fails_early_leaves_no_folder(tmp_path):
     with pytest.raises(Exception, match="reader"):
         run_job(src, EventSpec(entity="reader", element="title"), RunOptions(threshold=0.5), tmp_path / "idx")
     assert not (tmp_path / "idx").exists()
+
+
+@pytest.mark.parametrize("large_join", [False, True], ids=["pairs-deduplicated", "rows-per-band"])
+def test_a_bestseller_skipped_as_oversize_is_named_with_the_cap_that_compares_it(tmp_path, monkeypatch, large_join):
+    # 1,200 patrons holding a bestseller and one title of their own, one holding the bestseller
+    # alone: each pair (alone, pair) is at Jaccard 0.5 (1 shared of 2), the pairs of two
+    # holders at 1/3. With rows=1 the bestseller is the minimum of a holder in half the bands,
+    # so its bucket holds about 600 sets a band, over a cap of 100 even once split by the next
+    # band: every (alone, pair) pair is left out. The warning names the cap that verifies
+    # them, and with it the index is the brute-force index (oracle: expected_index above,
+    # Python set arithmetic; r=1 over 32 bands misses such a pair with chance 2^-32).
+    rows = [("p0", "best")] + [(f"p{i}", "best") for i in range(1, 1201)] + [(f"p{i}", f"own{i}")
+                                                                             for i in range(1, 1201)]
+    # A large join (forced here, as tests/test_candidate_rows.py does) leaves buckets of 64
+    # members or more to verification as crowds, up to --max-crowd; a small one writes the
+    # pairs of buckets up to --max-bucket. The warning names the cap that binds.
+    events = events_of(rows, False)
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    if large_join:
+        original = duckdb_join.candidate_pairs
+        monkeypatch.setattr(duckdb_join, "candidate_pairs", lambda files, out, settings, *a, **k: original(
+            files, out, replace(settings, dedupe_up_to=0, max_repeat=64.0), *a, **k))
+    plan = {"threshold": 0.5, "top_k": 5, "perms": 32, "bands": 32, "rows": 1, "max_bucket": 100}
+    truth = expected_index(events, 0.5, 5)
+
+    capped = run_job(src, SPEC, RunOptions(**plan, max_crowd=100), tmp_path / "capped")
+    largest = capped["skew"]["largest_bucket"]
+    assert capped["skew"]["skipped_pairs"] > 0 and largest > 100
+    flag = "--max-crowd" if large_join else "--max-bucket"
+    assert any(f"run with {flag} {largest}" in w for w in capped["warnings"]), capped["warnings"]
+    published = pl.read_parquet(tmp_path / "capped" / "neighbours.parquet")
+    lost = 1200 - published.filter(pl.col("neighbour") == "p0").height  # each holder's one true neighbour
+    assert lost > 600  # most were in the skipped sub-buckets
+
+    cap = {"max_crowd": largest} if flag == "--max-crowd" else {"max_bucket": largest, "max_crowd": largest}
+    widened = run_job(src, SPEC, RunOptions(**{**plan, **cap}), tmp_path / "widened")
+    assert widened["skew"]["skipped_pairs"] == 0
+    assert not any("not compared" in w for w in widened["warnings"])
+    table = pl.read_parquet(tmp_path / "widened" / "neighbours.parquet")
+    got = {(e, n): (j, r) for e, n, j, r in table.select("entity", "neighbour", "jaccard", "rank").iter_rows()}
+    assert got == truth

@@ -120,6 +120,25 @@ def _crowd_cap(options: RunOptions, in_parts: bool) -> int:
     return max(options.max_bucket, options.max_crowd)
 
 
+def _skipped_warning(skew: dict, options: RunOptions, in_parts: bool, rows_per_band: bool) -> str:
+    """The warning for pairs of oversize buckets left out: how many, and the cap that would
+    compare them. The planner's expected recall does not count them; where many tiny sets
+    hold one popular element (a bestseller and one other title) they are most of some lists'
+    pairs (bench/RESULTS.md, "A bestseller's buckets"). A large join (a row per band) leaves
+    buckets of ``crowd_size`` members or more to verification as crowds, up to --max-crowd;
+    a small one writes the pairs of buckets up to --max-bucket (module docstring of
+    :mod:`lshjob.index.join.duckdb`)."""
+    flag = "--max-bucket" if skew["max_bucket"] == options.max_bucket else "--max-crowd"
+    largest = skew["largest_bucket"]
+    text = (f"{skew['skipped_pairs']} pairs of oversize buckets (over {flag} {skew['max_bucket']}, still over it "
+            f"once split) were not compared; the expected recall does not count them")
+    if in_parts or options.engine_names()["verify"] != "local":
+        return text + f"; crowds up to --max-crowd {largest} would compare them in a run of one part, verified locally"
+    if rows_per_band:
+        return text + f"; to compare them as crowds, run with --max-crowd {largest}"
+    return text + f"; to compare them, run with --max-bucket {largest}"
+
+
 def run_job(
     events: str | Path,
     spec: EventSpec,
@@ -208,9 +227,7 @@ def run_job(
                 move_pair_blocks(built.candidates, candidates)
                 counts["identical_pairs_across_parts"] = built.identical_pairs
             if skew["skipped_pairs"]:
-                flag = "--max-bucket" if skew["max_bucket"] == options.max_bucket else "--max-crowd"
-                warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over {flag} "
-                                f"{skew['max_bucket']}, still over it once split) were not compared")
+                warnings.append(_skipped_warning(skew, options, in_parts, joined.rows_per_band))
 
             with stages("verify"):
                 crowds = {} if joined.crowds is None else {"crowds": joined.crowds}  # large buckets' members

@@ -83,6 +83,7 @@ class JoinOutput:
     pairs: int  # rows written, and the pairs of crowds (a pair written a row per band counts once per band)
     skew: dict  # SKEW_COLUMNS and max_bucket, integers
     crowds: Path | None = None  # CROWDS (module docstring), when the engine left large buckets unpaired
+    rows_per_band: bool = False  # the join was large enough to write a row per band, crowds apart
 
 
 @runtime_checkable

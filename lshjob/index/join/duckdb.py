@@ -37,7 +37,7 @@ class DuckDBJoin:
                    bucket_rows: int | None = None, ranges=None) -> JoinOutput:
         joined = candidate_pairs(list(bucket_files), out, settings, bands, bucket_rows,
                                  part_ranges=list(ranges) if ranges is not None else None)
-        return JoinOutput(out, joined["candidate_pairs"], joined["skew"], joined["crowds"])
+        return JoinOutput(out, joined["candidate_pairs"], joined["skew"], joined["crowds"], joined["rows_per_band"])
 
 
 def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
