@@ -83,7 +83,9 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
                                   folder.work_uri("candidates"))
             if skew["skipped_pairs"]:
                 warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over --max-bucket "
-                                f"{options.max_bucket}, still over it once split) were not compared")
+                                f"{options.max_bucket}, still over it once split) were not compared; the expected "
+                                f"recall does not count them; crowds up to --max-crowd {skew['largest_bucket']} "
+                                "would compare them in a run of one part, verified locally")
             with stages("verify"):
                 verified = folder.work_uri("verified")
                 counts["candidate_pairs"], counts["verified_pairs"] = steps.verify(
