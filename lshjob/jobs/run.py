@@ -34,6 +34,7 @@ from lshjob.index.verify import VerifySettings, empty_verified
 from lshjob.ingest.loading import grouping_need, open_events
 from lshjob.ingest.spec import EventSpec, resolve_paths
 from lshjob.jobs import prepare
+from lshjob.jobs.crowd_caps import crowd_cap, skipped_warning
 from lshjob.jobs.options import RunOptions  # the run's Python API (declared with the options)
 from lshjob.runtime import provenance, stopping
 from lshjob.runtime.budget import (
@@ -109,34 +110,6 @@ class _Stages:
         self.seconds[name] = round(self.seconds.get(name, 0.0) + time.perf_counter() - start, 3)
         self.cpu[name] = round(self.cpu.get(name, 0.0) + time.process_time() - cpu, 3)
         self.peak[name] = max(self.peak.get(name, 0), peak_bytes())
-
-
-def _crowd_cap(options: RunOptions, in_parts: bool) -> int:
-    """``--max-crowd`` where the local verification pairs crowds of one part, whose kernel
-    writes only the pairs found; else ``--max-bucket`` (between parts, or by another engine,
-    every pair of a crowd is visited, with a slot of its own, whether found or not)."""
-    if in_parts or options.engine_names()["verify"] != "local":
-        return options.max_bucket
-    return max(options.max_bucket, options.max_crowd)
-
-
-def _skipped_warning(skew: dict, options: RunOptions, in_parts: bool, rows_per_band: bool) -> str:
-    """The warning for pairs of oversize buckets left out: how many, and the cap that would
-    compare them. The planner's expected recall does not count them; where many tiny sets
-    hold one popular element (a bestseller and one other title) they are most of some lists'
-    pairs (bench/RESULTS.md, "A bestseller's buckets"). A large join (a row per band) leaves
-    buckets of ``crowd_size`` members or more to verification as crowds, up to --max-crowd;
-    a small one writes the pairs of buckets up to --max-bucket (module docstring of
-    :mod:`lshjob.index.join.duckdb`)."""
-    flag = "--max-bucket" if skew["max_bucket"] == options.max_bucket else "--max-crowd"
-    largest = skew["largest_bucket"]
-    text = (f"{skew['skipped_pairs']} pairs of oversize buckets (over {flag} {skew['max_bucket']}, still over it "
-            f"once split) were not compared; the expected recall does not count them")
-    if in_parts or options.engine_names()["verify"] != "local":
-        return text + f"; crowds up to --max-crowd {largest} would compare them in a run of one part, verified locally"
-    if rows_per_band:
-        return text + f"; to compare them as crowds, run with --max-crowd {largest}"
-    return text + f"; to compare them, run with --max-bucket {largest}"
 
 
 def run_job(
@@ -216,7 +189,7 @@ def run_job(
                 require_duckdb_memory(limit, built.shared_rows, current_bytes(), memory, threads)
                 settings = JoinSettings(memory_limit=f"{limit // 2**20}MiB", temp_directory=str(work / "spill"),
                                         threads=threads, max_bucket=options.max_bucket,
-                                        max_crowd=_crowd_cap(options, in_parts))
+                                        max_crowd=crowd_cap(options, in_parts))
                 candidates = work / ("candidates" if in_parts else "candidates.parquet")
                 joined = options.stage_engine("join").candidates(
                     built.bucket_files, plan.bands, candidates, settings, built.bucket_rows,
@@ -227,7 +200,7 @@ def run_job(
                 move_pair_blocks(built.candidates, candidates)
                 counts["identical_pairs_across_parts"] = built.identical_pairs
             if skew["skipped_pairs"]:
-                warnings.append(_skipped_warning(skew, options, in_parts, joined.rows_per_band))
+                warnings.append(skipped_warning(skew, options, in_parts, joined.rows_per_band))
 
             with stages("verify"):
                 crowds = {} if joined.crowds is None else {"crowds": joined.crowds}  # large buckets' members

@@ -31,6 +31,7 @@ from lshjob.core.sets import ElementSets
 from lshjob.index import engines as stage_engines
 from lshjob.index import publish
 from lshjob.ingest.spec import EventSpec
+from lshjob.jobs.crowd_caps import skipped_warning
 from lshjob.jobs.prepare import plan_run
 from lshjob.jobs.run_spark_out import index_folder
 from lshjob.runtime import provenance, stopping
@@ -82,10 +83,7 @@ def run_on_spark(events: str | Path, spec: EventSpec, options, out: str | Path, 
                 skew = steps.join(reps, params, plan.bands, plan.rows, options.max_bucket,
                                   folder.work_uri("candidates"))
             if skew["skipped_pairs"]:
-                warnings.append(f"{skew['skipped_pairs']} pairs of oversize buckets (over --max-bucket "
-                                f"{options.max_bucket}, still over it once split) were not compared; the expected "
-                                f"recall does not count them; crowds up to --max-crowd {skew['largest_bucket']} "
-                                "would compare them in a run of one part, verified locally")
+                warnings.append(skipped_warning({**skew, "max_bucket": options.max_bucket}, options, False, False))
             with stages("verify"):
                 verified = folder.work_uri("verified")
                 counts["candidate_pairs"], counts["verified_pairs"] = steps.verify(
