@@ -20,6 +20,7 @@ import pytest
 
 from lshjob import EventSpec
 from lshjob.index.join import duckdb as duckdb_join
+from lshjob.jobs import crowd_caps
 from lshjob.jobs.run import RunOptions, run_job
 
 SPEC = EventSpec(entity="patron", element="title")
@@ -51,11 +52,13 @@ def _failing():
 
 
 CASES = {
-    # name: (rows, options, whether every true pair must be found: LSH cannot miss here)
+    # name: (rows, options, whether every true pair must be found: LSH cannot miss here; "one-part": in one part)
     "disjoint": (_disjoint, {}, True),
     "all-identical": (_all_same, {"top_k": 3}, True),
     "all-identical-and-a-pair": (_all_same_and_a_pair, {"top_k": 3}, True),
-    "every-bucket-oversize": (_crowd, {"max_bucket": 2, "perms": 32, "bands": 8, "rows": 4}, False),
+    # in one part the join holds the buckets in reserve, and verification compares them: every
+    # patron's list has room (lshjob.index.verify._reserve); in parts they are skipped
+    "every-bucket-oversize": (_crowd, {"max_bucket": 2, "perms": 32, "bands": 8, "rows": 4}, "one-part"),
     "threshold-1-no-identical": (_disjoint, {"threshold": 1.0}, True),
     "one-entity": (lambda: [("p0", "t0"), ("p0", "t1")], {}, True),
     "all-fail-verification": (_failing, {"threshold": 0.9, "perms": 32, "bands": 32, "rows": 1}, True),
@@ -120,8 +123,15 @@ def test_little_to_pair_still_publishes_a_valid_index(tmp_path, case, parts, sch
     assert m["output"]["rows"] == m["counts"]["published_rows"] == table.height
     got = {(e, n): (j, r) for e, n, j, r in table.select("entity", "neighbour", "jaccard", "rank").iter_rows()}
     truth = expected_index(events, options.threshold, options.top_k)
-    if complete:
+    if complete is True:
         assert got == truth
+    elif complete == "one-part" and parts is None:  # found through the reserve, nothing left to warn of
+        assert m["counts"]["oversize_buckets_compared"] > 0 and m["skew"]["skipped_pairs"] > 0
+        assert not any("not compared" in w for w in m["warnings"])
+        assert all(abs(truth[pair][0] - jac) < 1e-12 for pair, (jac, _) in got.items())
+        # each pair at J = 9/11 meets in some band with chance 1 - (1 - (9/11)^4)^8 = 0.992 (the
+        # S-curve); skipped, none would be found
+        assert len(got) >= 0.95 * len(truth)
     else:  # pairs of skipped buckets are lost, and reported; what is published is exact
         assert all(abs(truth[pair][0] - jac) < 1e-12 for pair, (jac, _) in got.items())
         assert m["skew"]["skipped_pairs"] > 0 and any("not compared" in w for w in m["warnings"])
@@ -173,6 +183,7 @@ def test_a_bestseller_skipped_as_oversize_is_named_with_the_cap_that_compares_it
     events = events_of(rows, False)
     src = tmp_path / "loans.parquet"
     events.write_parquet(src)
+    monkeypatch.setattr(crowd_caps, "RESERVE_MEMBERS", 0)  # no bucket held in reserve (test below)
     if large_join:
         original = duckdb_join.candidate_pairs
         monkeypatch.setattr(duckdb_join, "candidate_pairs", lambda files, out, settings, *a, **k: original(
@@ -196,3 +207,37 @@ def test_a_bestseller_skipped_as_oversize_is_named_with_the_cap_that_compares_it
     table = pl.read_parquet(tmp_path / "widened" / "neighbours.parquet")
     got = {(e, n): (j, r) for e, n, j, r in table.select("entity", "neighbour", "jaccard", "rank").iter_rows()}
     assert got == truth
+
+
+@pytest.mark.parametrize("large_join", [False, True], ids=["pairs-deduplicated", "rows-per-band"])
+def test_a_bestseller_over_the_cap_is_compared_from_the_reserve_in_one_part(tmp_path, monkeypatch, large_join):
+    # The patrons above, at the default caps' shape (a cap of 100 under buckets of about 600):
+    # in one part the join holds the oversize buckets in reserve, and a sample of their members
+    # shows lists with nothing else in them, so verification compares them whole. The index is
+    # the brute-force index (oracle: expected_index, Python set arithmetic), with no warning;
+    # in parts there is no reserve, and the pairs are lost and warned of.
+    rows = [("p0", "best")] + [(f"p{i}", "best") for i in range(1, 1201)] + [(f"p{i}", f"own{i}")
+                                                                             for i in range(1, 1201)]
+    events = events_of(rows, False)
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    if large_join:
+        original = duckdb_join.candidate_pairs
+        monkeypatch.setattr(duckdb_join, "candidate_pairs", lambda files, out, settings, *a, **k: original(
+            files, out, replace(settings, dedupe_up_to=0, max_repeat=64.0), *a, **k))
+    plan = {"threshold": 0.5, "top_k": 5, "perms": 32, "bands": 32, "rows": 1, "max_bucket": 100, "max_crowd": 100}
+    truth = expected_index(events, 0.5, 5)
+
+    one = run_job(src, SPEC, RunOptions(**plan), tmp_path / "one")
+    assert one["skew"]["skipped_pairs"] > 0 and one["counts"]["oversize_buckets_compared"] > 0
+    assert not any("not compared" in w for w in one["warnings"]), one["warnings"]
+    table = pl.read_parquet(tmp_path / "one" / "neighbours.parquet")
+    got = {(e, n): (j, r) for e, n, j, r in table.select("entity", "neighbour", "jaccard", "rank").iter_rows()}
+    assert got == truth
+    assert table["bands_shared"].min() >= 1
+
+    parts = run_job(src, SPEC, RunOptions(**plan, parts=2), tmp_path / "parts")
+    assert "oversize_buckets_compared" not in parts["counts"]
+    assert any("not compared" in w and "a run of one part" in w for w in parts["warnings"]), parts["warnings"]
+    published = pl.read_parquet(tmp_path / "parts" / "neighbours.parquet")
+    assert 1200 - published.filter(pl.col("neighbour") == "p0").height > 600

@@ -16,18 +16,37 @@ def crowd_cap(options: RunOptions, in_parts: bool) -> int:
     return max(options.max_bucket, options.max_crowd)
 
 
-def skipped_warning(skew: dict, options: RunOptions, in_parts: bool, rows_per_band: bool) -> str:
+# the largest bucket over the cap held in reserve for verification to judge (lshjob.index.verify._reserve)
+RESERVE_MEMBERS = 1_000_000
+
+
+def reserve_cap(options: RunOptions, in_parts: bool) -> int:
+    """How large a bucket over the cap the join holds in reserve: none in parts or where
+    verification is not the local kernel (the reserve is judged and compared within one part)."""
+    return 0 if in_parts or options.engine_names()["verify"] != "local" else RESERVE_MEMBERS
+
+
+def skipped_warning(skew: dict, options: RunOptions, in_parts: bool, rows_per_band: bool,
+                    reserve: dict | None = None) -> str | None:
     """The warning for pairs of oversize buckets left out: how many, and the cap that would
     compare them. The planner's expected recall does not count them; where many tiny sets
     hold one popular element (a bestseller and one other title) they are most of some lists'
     pairs (bench/RESULTS.md, "A bestseller's buckets"). A large join (a row per band) leaves
     buckets of ``crowd_size`` members or more to verification as crowds, up to --max-crowd;
     a small one writes the pairs of buckets up to --max-bucket (module docstring of
-    :mod:`lshjob.index.join.duckdb`)."""
+    :mod:`lshjob.index.join.duckdb`). ``reserve``: what verification did with the buckets held
+    in reserve (``buckets``, ``compared``, ``pairs_compared``; :mod:`lshjob.index.verify._reserve`);
+    None when every skipped pair was compared there."""
+    left = skew["skipped_pairs"] - (reserve["pairs_compared"] if reserve else 0)
+    if left <= 0:
+        return None
     flag = "--max-bucket" if skew["max_bucket"] == options.max_bucket else "--max-crowd"
     largest = skew["largest_bucket"]
-    text = (f"{skew['skipped_pairs']} pairs of oversize buckets (over {flag} {skew['max_bucket']}, still over it "
-            f"once split) were not compared; the expected recall does not count them")
+    text = (f"{left} pairs of oversize buckets (over {flag} {skew['max_bucket']}, still over it once split) were not "
+            "compared; the expected recall does not count them")
+    if reserve:
+        text += (f"; of the {reserve['buckets']} such buckets verification judged by a sample of their members, it "
+                 f"compared the {reserve['compared']} whose pairs would fill lists")
     if in_parts or options.engine_names()["verify"] != "local":
         return text + f"; crowds up to --max-crowd {largest} would compare them in a run of one part, verified locally"
     if rows_per_band:

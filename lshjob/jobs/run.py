@@ -34,7 +34,7 @@ from lshjob.index.verify import VerifySettings, empty_verified
 from lshjob.ingest.loading import grouping_need, open_events
 from lshjob.ingest.spec import EventSpec, resolve_paths
 from lshjob.jobs import prepare
-from lshjob.jobs.crowd_caps import crowd_cap, skipped_warning
+from lshjob.jobs.crowd_caps import crowd_cap, reserve_cap, skipped_warning
 from lshjob.jobs.options import RunOptions  # the run's Python API (declared with the options)
 from lshjob.runtime import provenance, stopping
 from lshjob.runtime.budget import (
@@ -189,7 +189,8 @@ def run_job(
                 require_duckdb_memory(limit, built.shared_rows, current_bytes(), memory, threads)
                 settings = JoinSettings(memory_limit=f"{limit // 2**20}MiB", temp_directory=str(work / "spill"),
                                         threads=threads, max_bucket=options.max_bucket,
-                                        max_crowd=crowd_cap(options, in_parts))
+                                        max_crowd=crowd_cap(options, in_parts),
+                                        reserve_cap=reserve_cap(options, in_parts))
                 candidates = work / ("candidates" if in_parts else "candidates.parquet")
                 joined = options.stage_engine("join").candidates(
                     built.bucket_files, plan.bands, candidates, settings, built.bucket_rows,
@@ -199,11 +200,11 @@ def run_job(
             if in_parts:  # identical sets of different parts, met or not in a band (not the join's pairs)
                 move_pair_blocks(built.candidates, candidates)
                 counts["identical_pairs_across_parts"] = built.identical_pairs
-            if skew["skipped_pairs"]:
-                warnings.append(skipped_warning(skew, options, in_parts, joined.rows_per_band))
 
             with stages("verify"):
                 crowds = {} if joined.crowds is None else {"crowds": joined.crowds}  # large buckets' members
+                if joined.reserve is not None:  # buckets over the cap, compared when their lists have room
+                    crowds["reserve"] = joined.reserve
                 # pairs that can enter no list are dropped before their estimates (never published)
                 tally: dict = {}
                 settings = _verify_settings(memory, top_k, np.bincount(built.rep_of, minlength=len(built.rep_of)),
@@ -214,6 +215,11 @@ def run_job(
                     verified = every_band_when_identical(verified, plan.bands)
             counts["verified_pairs"] = tally.get("over_threshold", verified.height)
             counts["pairs_for_lists"] = verified.height
+            if "reserve" in tally:
+                counts["oversize_buckets_compared"] = tally["reserve"]["compared"]
+            skipped = skipped_warning(skew, options, in_parts, joined.rows_per_band, tally.get("reserve"))
+            if skipped:
+                warnings.append(skipped)
             if tally.get("crowds_cut"):
                 warnings.append(f"{tally['crowds_cut']} crowds found more pairs over the threshold than one crowd may "
                                 "write (16.8 million); only those were kept: lower --max-crowd to split them")

@@ -108,6 +108,9 @@ def run_report(m: dict) -> str:
                 f"next band ({skew['split_pairs']:,} of {skew['oversize_pairs']:,} potential pairs kept, "
                 f"{skew['skipped_pairs']:,} left out)"
             )
+            compared = (m.get("counts") or {}).get("oversize_buckets_compared")
+            if compared:  # buckets held in reserve (lshjob.index.verify._reserve)
+                text += f"; verification compared {compared:,} of them whole, judged by a sample of their members"
         else:
             text += f", within --max-bucket {skew['max_bucket']:,}"
         lines.append(text)

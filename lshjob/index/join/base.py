@@ -23,6 +23,14 @@ instead: the same rows split by the parts of their two sides,
 ``left_part=i/right_part=j/*.parquet`` (``i <= j``). With the pairs, the skew report: the
 columns of ``sql/bucket_skew.sql`` and ``max_bucket``.
 
+Asked for it (``JoinSettings.reserve_cap``, one file of candidates only), an engine may also
+hold the buckets it left over the cap in reserve, RESERVE (``JoinOutput.reserve``, a Parquet
+file: ``crowd``, ``rep`` and ``band`` as CROWDS, and ``skipped`` Int64, the bucket's pairs no
+sub-bucket within the cap holds), buckets of up to ``reserve_cap`` members: local
+verification compares a reserve bucket whole when a sample of its members shows lists it
+would fill (:mod:`lshjob.index.verify._reserve`). They are not candidates: the skew report
+counts their pairs as skipped.
+
 :mod:`lshjob.index.conformance` checks an engine against this definition.
 """
 
@@ -68,6 +76,9 @@ class JoinSettings:
     # every tiny set of a popular element lands in were left out, and with them its list
     # (docs/performance.md, "plans on the lists' recall, crowds up to 50,000 members").
     max_crowd: int = DEFAULT_MAX_CROWD
+    # Buckets over the cap, up to this many members, are listed in reserve (module docstring);
+    # 0: none is.
+    reserve_cap: int = 0
 
     def crowd_cap(self) -> int:
         """The cap on a bucket's members when large buckets go to verification as crowds: the
@@ -84,6 +95,7 @@ class JoinOutput:
     skew: dict  # SKEW_COLUMNS and max_bucket, integers
     crowds: Path | None = None  # CROWDS (module docstring), when the engine left large buckets unpaired
     rows_per_band: bool = False  # the join was large enough to write a row per band, crowds apart
+    reserve: Path | None = None  # RESERVE (module docstring), when asked for and a bucket was over the cap
 
 
 @runtime_checkable

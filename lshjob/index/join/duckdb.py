@@ -37,7 +37,8 @@ class DuckDBJoin:
                    bucket_rows: int | None = None, ranges=None) -> JoinOutput:
         joined = candidate_pairs(list(bucket_files), out, settings, bands, bucket_rows,
                                  part_ranges=list(ranges) if ranges is not None else None)
-        return JoinOutput(out, joined["candidate_pairs"], joined["skew"], joined["crowds"], joined["rows_per_band"])
+        return JoinOutput(out, joined["candidate_pairs"], joined["skew"], joined["crowds"], joined["rows_per_band"],
+                          joined["reserve"])
 
 
 def connect(settings: JoinSettings) -> duckdb.DuckDBPyConnection:
@@ -99,11 +100,14 @@ def candidate_pairs(bucket_files: list[Path], out: Path, settings: JoinSettings,
         found = part_ranges is None or any(out.rglob("*.parquet"))
         count = con.execute("SELECT count(*) FROM read_parquet($f)", {"f": pattern}).fetchone()[0] if found else 0
         crowds, crowd_pairs = _write_crowds(con, params, out) if per_band else (None, 0)
+        reserve = None
+        if settings.reserve_cap and part_ranges is None and skew["skipped_pairs"]:
+            reserve = _write_reserve(con, params["max_bucket"], settings.reserve_cap, out)
     finally:
         con.close()
     skew["max_bucket"] = params["max_bucket"]
     return {"candidate_pairs": int(count) + crowd_pairs, "skew": skew, "rows_per_band": per_band,
-            "crowds": crowds}
+            "crowds": crowds, "reserve": reserve}
 
 
 def crowds_path(out: Path) -> Path:
@@ -124,6 +128,20 @@ def _write_crowds(con: duckdb.DuckDBPyConnection, params: dict, out: Path) -> tu
         path.unlink()
         return None, 0
     return path, int(pairs)
+
+
+def _write_reserve(con: duckdb.DuckDBPyConnection, cap: int, reserve_cap: int, out: Path) -> Path | None:
+    """RESERVE (sql/reserve.sql) beside ``out``: the buckets over ``cap``, up to ``reserve_cap``
+    members; none, no file."""
+    query = load_sql("reserve").strip().rstrip(";")
+    path = out.parent / f"{out.stem}-reserve.parquet"
+    with atomic_file(path, fsync=False) as tmp:
+        con.execute(f"COPY ({query}) TO {string_literal(str(tmp))} (FORMAT parquet)",
+                    {"max_bucket": cap, "reserve_cap": reserve_cap})
+    if not con.execute("SELECT count(*) FROM read_parquet($f)", {"f": str(path)}).fetchone()[0]:
+        path.unlink()
+        return None
+    return path
 
 
 SAMPLED_ROWS = 1_000_000  # pair rows the repeat sample aims at

@@ -27,6 +27,7 @@ from lshjob.index.verify._jaccard import (
     pair_keys,
     pairs_of_keys,
 )
+from lshjob.index.verify._reserve import reserve_pieces
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
 from lshjob.index.verify.estimates import add_estimates_between
 from lshjob.sign.signatures import SignatureParams
@@ -38,12 +39,13 @@ class LocalVerify:
     name = "local"
 
     def verify(self, candidates: Path, sets: SetStore, threshold: float, params: SignatureParams | None,
-               settings: VerifySettings, crowds: Path | None = None) -> pl.DataFrame:
-        return verify_blocks(candidates, sets, threshold, params, settings, crowds)
+               settings: VerifySettings, crowds: Path | None = None, reserve: Path | None = None) -> pl.DataFrame:
+        return verify_blocks(candidates, sets, threshold, params, settings, crowds, reserve)
 
 
 def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: SignatureParams | None,
-                  settings: VerifySettings, crowds: Path | None = None) -> pl.DataFrame:
+                  settings: VerifySettings, crowds: Path | None = None, reserve: Path | None = None
+                  ) -> pl.DataFrame:
     """Exact Jaccard of every candidate, two parts' sets held at a time (P parts cost
     P + P(P-1)/2 loads of saved sets); candidates are read ``settings.slice_rows`` at a time,
     so memory stays bounded whatever their number. ``candidates`` is the join's file (one
@@ -55,7 +57,9 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
     block's pairs give (each side's cut) are kept for the blocks after it: a cut from some of
     an entity's pairs is a floor for its cut from all of them, so a later block neither seeks
     (its crowds) nor keeps a pair below both its sides' floors. In parts, the estimates wait
-    for every block's pairs, cut again together (:func:`_cut_then_estimate`)."""
+    for every block's pairs, cut again together (:func:`_cut_then_estimate`). ``reserve``: the
+    join's RESERVE file (one part), whose buckets worth it are compared once the rest is
+    (:mod:`lshjob.index.verify._reserve`)."""
     step = settings.slice_rows
     pieces, over = [], 0
     parts = len(store.ranges)
@@ -69,7 +73,8 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
         for j in range(i, parts):
             files = _block_files(candidates, parts, i, j)
             crowded = crowd_pairs_between(crowd_table, store.ranges[i], store.ranges[j])
-            if not files and crowded is None:
+            held_back = reserve if parts == 1 else None  # the join holds them in reserve in one part only
+            if not files and crowded is None and held_back is None:
                 continue
             left = store.load(i) if left is None else left
             right = left if j == i else store.load(j)
@@ -98,6 +103,9 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                                           floors=held.floors_now if cut is not None else None,
                                           tally=settings.tally, group_sizes=settings.group_sizes,
                                           top_k=settings.top_k, distinct=settings.distinct_sets, masks=masks):
+                    held.add(piece)
+            if held_back is not None:  # once the floors are known (lshjob.index.verify._reserve)
+                for piece in reserve_pieces(held_back, held, left, threshold, settings, masks=masks):
                     held.add(piece)
             del masks
             block, dropped = held.result(), held.dropped
