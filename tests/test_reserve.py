@@ -16,7 +16,7 @@ from lshjob.index.conformance import fmix64_int, join_input
 from lshjob.index.join.base import JoinSettings
 from lshjob.index.join.duckdb import DuckDBJoin
 from lshjob.index.verify._jaccard import element_masks
-from lshjob.index.verify._reserve import SAMPLED, bucket_gains, drawn_members
+from lshjob.index.verify._reserve import SAMPLED, bucket_gains, drawn_members, worth_comparing
 
 
 def reference_reserve(rows: pl.DataFrame, bands: int, cap: int, reserve_cap: int) -> dict:
@@ -124,3 +124,14 @@ def test_bucket_gains_against_python_sets(seed):
                                            top_k) for a in picked])
         assert got.filter(pl.col("crowd") == crowd)["gain"].item() == pytest.approx(expected, abs=1e-12)
     assert got["gain"].max() > 0  # the check sees gains, not only zeros
+
+
+def test_buckets_worth_comparing_come_by_gain_within_the_work_budget():
+    # By hand: gains over RESCUE_GAIN (0.25) in order 0.9 (crowd 4), 0.8 (2), 0.5 (1), 0.3 (5);
+    # with a budget of 100 merges: 4 (60) fits, 2 (50) would pass 100 and is left, 1 (30) fits,
+    # 5 (20) would pass it. Crowd 3 gains too little, however cheap.
+    gains = pl.DataFrame({"crowd": [1, 2, 3, 4, 5], "members": [10] * 5, "gain": [0.5, 0.8, 0.1, 0.9, 0.3],
+                          "work": [30.0, 50.0, 1.0, 60.0, 20.0]})
+    assert worth_comparing(gains, 100.0).to_list() == [4, 1]
+    assert worth_comparing(gains, 1e9).to_list() == [4, 2, 1, 5]
+    assert worth_comparing(gains, 10.0).to_list() == []

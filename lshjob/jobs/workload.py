@@ -138,16 +138,20 @@ def verify_a_crowd() -> None:
 def verify_rows_and_crowds(folder: Path) -> None:
     """Verification as a large run on long-tailed data makes it, which the tiny runs above do
     not: pairs given a row per band (deduplicated as they come), crowds whose bands are known,
-    top-k floors, the sets both as loaded (writable) and as saved parts are read (read-only)."""
+    top-k floors, a bucket held in reserve (judged by its members drawn: :mod:`lshjob.index.verify._reserve`),
+    the sets both as loaded (writable) and as saved parts are read (read-only)."""
     e = np.arange(67, dtype=np.int64)  # e and e + 3 share two elements within a ten: J 0.5, met in two bands
     pl.DataFrame({"left_rep": np.concatenate([e, e]), "right_rep": np.concatenate([e + 3, e + 3]),
                   "bands_shared": np.ones(134, dtype=np.int32)}).write_parquet(folder / "rows.parquet")
     pl.DataFrame({"crowd": np.repeat(np.arange(1, 3, dtype=np.int64), 35), "rep": np.arange(70, dtype=np.int64),
                   "band": np.repeat(np.arange(2, dtype=np.int32), 35)}).write_parquet(folder / "crowds.parquet")
+    pl.DataFrame({"crowd": np.ones(70, dtype=np.int64), "rep": np.arange(70, dtype=np.int64),
+                  "band": np.full(70, 2, dtype=np.int32), "skipped": np.full(70, 2415, dtype=np.int64)}
+                 ).write_parquet(folder / "reserve.parquet")
     settings = VerifySettings(held_rows=40, top_k=3, group_sizes=np.ones(70, dtype=np.int64), distinct_sets=True)
     for sets in _crowd_sets():
         verify_blocks(folder / "rows.parquet", HeldSets(sets), 0.3, SignatureParams(perms=64), settings,
-                      folder / "crowds.parquet")
+                      folder / "crowds.parquet", folder / "reserve.parquet")
 
 
 class _Recorder:

@@ -17,7 +17,8 @@ its identical group, at most ``top_k + 1``) that would come from this bucket: it
 rows held (its own group's and its partners'), at most k. A member whose only partners are in
 the bucket gains 1, whatever k; one whose list is full gains the share its new partners would
 take. A bucket whose drawn
-members gain ``RESCUE_GAIN`` on average is compared whole, as a crowd, with the floors
+members gain ``RESCUE_GAIN`` on average is compared whole, the highest gains first while the
+merges the draw foresees stay within a budget (``RESCUE_WORK``), as a crowd, with the floors
 (:func:`lshjob.index.verify._crowds.crowd_pieces`); pairs already held are not added again
 (their ``bands_shared`` counts the buckets within the cap).
 """
@@ -36,6 +37,9 @@ from lshjob.index.verify._crowds import crowd_pairs_between, crowd_pieces
 from lshjob.index.verify._jaccard import _bits, _intersection, element_masks
 
 SAMPLED = 64  # members drawn from each reserve bucket
+# the merges all buckets compared whole may take, about: 1e9 (a few seconds on two cores) or
+# 1,000 a set, whichever is more (a bucket of near-copies would take members^2 / 2)
+RESCUE_WORK, RESCUE_WORK_PER_SET = 1e9, 1000
 RESCUE_GAIN = 0.25  # mean share of a drawn member's list a bucket must fill to be compared (module docstring)
 
 
@@ -49,8 +53,10 @@ def _gains(offsets, elements, masks, members, sizes, start, count, drawn, drawn_
     (:func:`lshjob.index.verify._jaccard.jaccard_screened`), then a merge. ``held_keys``:
     sorted ``a * n + b`` of the pairs held, both orders; ``weights``: each id's rows in a
     list; ``drawn_rows``: the rows each drawn member's list holds already; ``top_k`` 0: lists
-    without a cap."""
+    without a cap. With the gains, the pairs each drawn member merged: the bucket's work
+    compared whole is about its members times their mean, halved."""
     out = np.zeros(len(drawn))
+    merged = np.zeros(len(drawn))
     for d in numba.prange(len(drawn)):
         a, c = drawn[d], drawn_bucket[d]
         la = offsets[a + 1] - offsets[a]
@@ -71,6 +77,7 @@ def _gains(offsets, elements, masks, members, sizes, start, count, drawn, drawn_
             ma, mb = masks[a], masks[b]
             if min(la - np.int64(_bits(ma & ~mb)), lb - np.int64(_bits(mb & ~ma))) < need:
                 continue
+            merged[d] += 1
             inter = _intersection(elements, offsets[a], offsets[a + 1], elements, offsets[b], offsets[b + 1], need)
             jac = inter / (la + lb - inter)
             if inter < need or jac < threshold or jac <= floor:
@@ -80,11 +87,9 @@ def _gains(offsets, elements, masks, members, sizes, start, count, drawn, drawn_
             if at < len(held_keys) and held_keys[at] == key:
                 continue
             rows += weights[b]
-            if rows >= enough:
-                break
         if rows > 0:
             out[d] = min(rows, enough) / min(rows + drawn_rows[d], enough)
-    return out
+    return out, merged
 
 
 def held_keys(pairs: pl.DataFrame | None, n: int, ids: pl.Series | None = None) -> np.ndarray:
@@ -110,7 +115,8 @@ def drawn_members(reserve: pl.DataFrame, per_bucket: int = SAMPLED) -> pl.DataFr
 
 def bucket_gains(reserve: pl.DataFrame, sets, masks: np.ndarray, threshold: float, floors: np.ndarray,
                  weights: np.ndarray, top_k: int, held: pl.DataFrame | None, group_sizes=None) -> pl.DataFrame:
-    """Each reserve bucket (``crowd``) with its drawn members' mean gain (module docstring).
+    """Each reserve bucket (``crowd``, ``members``) with its drawn members' mean gain and the
+    merges comparing it whole would take, about (``work``; module docstring).
     ``held``: the pairs held so far (``left_rep``, ``right_rep``); ``group_sizes``: by entity id,
     the identical sets each stands for (one each when None)."""
     set_sizes = np.diff(sets.offsets)
@@ -130,14 +136,29 @@ def bucket_gains(reserve: pl.DataFrame, sets, masks: np.ndarray, threshold: floa
                                minlength=len(distinct))
     own_rows = np.asarray(group_sizes)[distinct] - 1 if group_sizes is not None else 0
     drawn_rows = (partner_rows + own_rows)[np.searchsorted(distinct, ids)].astype(np.int64)
-    gain = _gains(sets.offsets, sets.elements, masks, np.ascontiguousarray(by_size["rep"].to_numpy(), dtype=np.int64),
+    members = np.ascontiguousarray(by_size["rep"].to_numpy(), dtype=np.int64)
+    gain, merged = _gains(sets.offsets, sets.elements, masks, members,
                   np.ascontiguousarray(by_size["size"].to_numpy(), dtype=np.int64), starts, counts,
                   np.ascontiguousarray(ids, dtype=np.int64), bucket_of.astype(np.int64), drawn_rows,
                   np.ascontiguousarray(floors, dtype=np.float64), np.ascontiguousarray(weights, dtype=np.int64),
                   threshold, top_k, keys, n)
-    mean = np.bincount(bucket_of, weights=gain, minlength=len(counts)) / np.maximum(
-        np.bincount(bucket_of, minlength=len(counts)), 1)
-    return buckets.with_columns(gain=pl.Series(mean))
+    drawn_per = np.maximum(np.bincount(bucket_of, minlength=len(counts)), 1)
+    mean = np.bincount(bucket_of, weights=gain, minlength=len(counts)) / drawn_per
+    work = counts * np.bincount(bucket_of, weights=merged, minlength=len(counts)) / drawn_per / 2
+    return buckets.with_columns(gain=pl.Series(mean), work=pl.Series(work))
+
+
+def worth_comparing(gains: pl.DataFrame, budget: float) -> pl.Series:
+    """The buckets (``crowd``) of ``gains`` (:func:`bucket_gains`) to compare: those whose
+    members gain ``RESCUE_GAIN`` on average, the highest gains first, while their work adds up
+    to at most ``budget`` merges (one that would pass it is left, and the next tried)."""
+    worth = gains.filter(pl.col("gain") >= RESCUE_GAIN).sort("gain", "crowd", descending=[True, False])
+    chosen, spent = [], 0.0
+    for crowd, work in worth.select("crowd", "work").iter_rows():
+        if spent + work <= budget:
+            chosen.append(crowd)
+            spent += work
+    return pl.Series("crowd", chosen, dtype=gains["crowd"].dtype)
 
 
 def reserve_pieces(reserve_file: Path, held, sets, threshold: float, settings, masks=None) -> Iterator[pl.DataFrame]:
@@ -154,7 +175,7 @@ def reserve_pieces(reserve_file: Path, held, sets, threshold: float, settings, m
     if masks is None:
         masks = (element_masks(sets.offsets, sets.elements),) * 2
     gains = bucket_gains(reserve, sets, masks[0], threshold, floors, weights, top_k, held.kept, settings.group_sizes)
-    chosen = gains.filter(pl.col("gain") >= RESCUE_GAIN)["crowd"]
+    chosen = worth_comparing(gains, max(RESCUE_WORK, RESCUE_WORK_PER_SET * n))
     rescued = reserve.filter(pl.col("crowd").is_in(chosen.implode()))
     if settings.tally is not None:
         settings.tally["reserve"] = {
