@@ -17,6 +17,7 @@ from lshjob.audit.check import audit_index
 from lshjob.cli.app import app
 from lshjob.index.conformance import reference_bucket_rows, reference_candidates
 from lshjob.index.sqlfiles import load_sql, sql_dir
+from lshjob.jobs import crowd_caps
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.plan.banding import candidate_probability
 
@@ -121,11 +122,16 @@ def test_skew_trap_and_identical_groups_do_not_blow_up(tmp_path):
     assert x2 == [("x3", 1.0)]  # single-element sets: identical pair found, nothing else qualifies
 
 
-def test_oversize_buckets_are_split_and_counted(tmp_path):
+@pytest.mark.parametrize("reserve", [False, True], ids=["skipped", "held-in-reserve"])
+def test_oversize_buckets_are_split_and_counted(tmp_path, monkeypatch, reserve):
     # 40 patrons sharing 20 titles, each with 5 of their own (every pair J = 20/30): with
     # 16 bands of 4 rows many buckets hold more than the cap of 10. Oracle for the counts
     # and pairs: every bucket row from the key definition, pairs per bucket and per
     # sub-bucket of oversize ones by brute force (lshjob.index.conformance.reference_candidates).
+    # Held in reserve, oversize buckets may be compared whole: the pairs lie between those of
+    # the cap and those of every bucket (the same oracle without a cap).
+    if not reserve:
+        monkeypatch.setattr(crowd_caps, "RESERVE_MEMBERS", 0)
     rows = ([(f"p{i:02d}", f"c{j}") for i in range(40) for j in range(20)]
             + [(f"p{i:02d}", f"u{i}-{j}") for i in range(40) for j in range(5)])
     events = pl.DataFrame(rows, schema=["patron", "title"], orient="row")
@@ -141,7 +147,14 @@ def test_oversize_buckets_are_split_and_counted(tmp_path):
     assert skew["oversize_buckets"] > 0 and skew["split_pairs"] > 0
     assert m["skew"] == skew
     names = sorted(f"p{i:02d}" for i in range(40))
-    assert published_pairs(tmp_path / "idx") == {(names[a], names[b]): 20 / 30 for a, b in pairs}
+    capped = {(names[a], names[b]): 20 / 30 for a, b in pairs}
+    got = published_pairs(tmp_path / "idx")
+    if not reserve:
+        assert got == capped and "oversize_buckets_compared" not in m["counts"]
+    else:
+        every = reference_candidates(reference_bucket_rows(matrix, np.arange(40), 16, 4), 16, 10**6)[0]
+        assert m["counts"]["oversize_buckets_compared"] > 0
+        assert capped.items() < got.items() <= {(names[a], names[b]): 20 / 30 for a, b in every}.items()
 
 
 def test_threshold_one_pairs_identical_sets_only(tmp_path):
