@@ -45,8 +45,8 @@ def skipped_warning(skew: dict, options: RunOptions, in_parts: bool, rows_per_ba
     text = (f"{left} pairs of oversize buckets (over {flag} {skew['max_bucket']}, still over it once split) were not "
             "compared; the expected recall does not count them")
     if reserve:
-        text += (f"; of the {reserve['buckets']} such buckets verification judged by a sample of their members, it "
-                 f"compared the {reserve['compared']} whose pairs would fill lists")
+        text += (f"; verification judged {reserve['buckets']} such buckets by a sample of their members and compared "
+                 f"{reserve['compared']} (those whose pairs would fill lists, within a budget of work)")
     if in_parts or options.engine_names()["verify"] != "local":
         return text + f"; crowds up to --max-crowd {largest} would compare them in a run of one part, verified locally"
     if rows_per_band:

@@ -217,6 +217,10 @@ def run_job(
             counts["pairs_for_lists"] = verified.height
             if "reserve" in tally:
                 counts["oversize_buckets_compared"] = tally["reserve"]["compared"]
+                if tally["reserve"].get("crowds_cut"):
+                    warnings.append(f"{tally['reserve']['crowds_cut']} oversize buckets compared whole found more "
+                                    "pairs over the threshold than one crowd may write (16.8 million); only those "
+                                    "were kept")
             skipped = skipped_warning(skew, options, in_parts, joined.rows_per_band, tally.get("reserve"))
             if skipped:
                 warnings.append(skipped)
