@@ -108,7 +108,7 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 for piece in reserve_pieces(held_back, held, left, threshold, settings, masks=masks):
                     held.add(piece)
             del masks
-            block, dropped = held.result(), held.dropped
+            block, dropped, already_cut = held.result(), held.dropped, held.cut_current
             if cut is not None:
                 known = held.floors
             del held  # its deduplication holds the two parts' sets
@@ -116,7 +116,7 @@ def verify_blocks(candidates: Path, store: SetStore, threshold: float, params: S
                 del right
                 continue
             over += block.height + dropped
-            if cut is not None:  # before the estimates
+            if cut is not None and not already_cut:  # before the estimates (held rows cut last stay so)
                 block, cuts = cut(block, known)
                 known = np.maximum(known, cuts)
             if deferred:  # estimates once every block is cut (_cut_then_estimate)
@@ -193,12 +193,14 @@ class HeldRows:
         self.fresh: list[pl.DataFrame] = []
         self.fresh_rows = 0
         self.dropped = 0
+        self.cut_current = False  # the rows held are cut, none added since
 
     def add(self, rows: pl.DataFrame) -> None:
         if rows.height == 0:
             return
         self.fresh.append(rows)
         self.fresh_rows += rows.height
+        self.cut_current = False
         if self.bound is None or self.fresh_rows < self.bound // FRESH_SHARE:
             return
         if (self.kept.height if self.kept is not None else 0) + self.fresh_rows > self.bound:
@@ -214,6 +216,7 @@ class HeldRows:
             self.kept, floors = self.cut(self.kept, self.floors)
             self.floors = floors if self.floors is None else np.maximum(self.floors, floors)
             self.dropped += height - self.kept.height
+            self.cut_current = True  # until rows are added: cutting these again keeps them all, same cuts
 
     def floors_now(self) -> np.ndarray:
         """Each entity id's floor as the rows cut so far give it."""
