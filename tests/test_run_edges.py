@@ -166,6 +166,24 @@ def test_a_run_that_fails_early_leaves_no_folder(tmp_path):
     assert not (tmp_path / "idx").exists()
 
 
+def _bestseller_loans(tmp_path, monkeypatch, large_join: bool):
+    """1,200 patrons holding a bestseller and one title of their own, one holding the
+    bestseller alone (tests below), written as a loans file; with ``large_join``, the join is
+    made to write a row per band (as tests/test_candidate_rows.py forces it), so that buckets
+    of 64 members or more go to verification as crowds, up to --max-crowd; a small join writes
+    the pairs of buckets up to --max-bucket."""
+    rows = [("p0", "best")] + [(f"p{i}", "best") for i in range(1, 1201)] + [(f"p{i}", f"own{i}")
+                                                                             for i in range(1, 1201)]
+    events = events_of(rows, False)
+    src = tmp_path / "loans.parquet"
+    events.write_parquet(src)
+    if large_join:
+        original = duckdb_join.candidate_pairs
+        monkeypatch.setattr(duckdb_join, "candidate_pairs", lambda files, out, settings, *a, **k: original(
+            files, out, replace(settings, dedupe_up_to=0, max_repeat=64.0), *a, **k))
+    return src, events
+
+
 @pytest.mark.parametrize("large_join", [False, True], ids=["pairs-deduplicated", "rows-per-band"])
 def test_a_bestseller_skipped_as_oversize_is_named_with_the_cap_that_compares_it(tmp_path, monkeypatch, large_join):
     # 1,200 patrons holding a bestseller and one title of their own, one holding the bestseller
@@ -175,19 +193,9 @@ def test_a_bestseller_skipped_as_oversize_is_named_with_the_cap_that_compares_it
     # band: every (alone, pair) pair is left out. The warning names the cap that verifies
     # them, and with it the index is the brute-force index (oracle: expected_index above,
     # Python set arithmetic; r=1 over 32 bands misses such a pair with chance 2^-32).
-    rows = [("p0", "best")] + [(f"p{i}", "best") for i in range(1, 1201)] + [(f"p{i}", f"own{i}")
-                                                                             for i in range(1, 1201)]
-    # A large join (forced here, as tests/test_candidate_rows.py does) leaves buckets of 64
-    # members or more to verification as crowds, up to --max-crowd; a small one writes the
-    # pairs of buckets up to --max-bucket. The warning names the cap that binds.
-    events = events_of(rows, False)
-    src = tmp_path / "loans.parquet"
-    events.write_parquet(src)
+    # The warning names the cap that binds: --max-crowd for a large join, --max-bucket for a small one.
     monkeypatch.setattr(crowd_caps, "RESERVE_MEMBERS", 0)  # no bucket held in reserve (test below)
-    if large_join:
-        original = duckdb_join.candidate_pairs
-        monkeypatch.setattr(duckdb_join, "candidate_pairs", lambda files, out, settings, *a, **k: original(
-            files, out, replace(settings, dedupe_up_to=0, max_repeat=64.0), *a, **k))
+    src, events = _bestseller_loans(tmp_path, monkeypatch, large_join)
     plan = {"threshold": 0.5, "top_k": 5, "perms": 32, "bands": 32, "rows": 1, "max_bucket": 100}
     truth = expected_index(events, 0.5, 5)
 
@@ -216,15 +224,7 @@ def test_a_bestseller_over_the_cap_is_compared_from_the_reserve_in_one_part(tmp_
     # shows lists with nothing else in them, so verification compares them whole. The index is
     # the brute-force index (oracle: expected_index, Python set arithmetic), with no warning;
     # in parts there is no reserve, and the pairs are lost and warned of.
-    rows = [("p0", "best")] + [(f"p{i}", "best") for i in range(1, 1201)] + [(f"p{i}", f"own{i}")
-                                                                             for i in range(1, 1201)]
-    events = events_of(rows, False)
-    src = tmp_path / "loans.parquet"
-    events.write_parquet(src)
-    if large_join:
-        original = duckdb_join.candidate_pairs
-        monkeypatch.setattr(duckdb_join, "candidate_pairs", lambda files, out, settings, *a, **k: original(
-            files, out, replace(settings, dedupe_up_to=0, max_repeat=64.0), *a, **k))
+    src, events = _bestseller_loans(tmp_path, monkeypatch, large_join)
     plan = {"threshold": 0.5, "top_k": 5, "perms": 32, "bands": 32, "rows": 1, "max_bucket": 100, "max_crowd": 100}
     truth = expected_index(events, 0.5, 5)
 
