@@ -39,7 +39,8 @@ def build_page(data: ReportData) -> str:
         rows=m.output.get("rows", "?"), threshold=threshold, top_k=m.options["top_k"],
         notes=data.notes, plan_text=_plan_text(m.plan), s_curve=markup(_s_curve(data)),
         recall=markup(_recall(data)), budget=_bytes(m.memory_budget_bytes), total_seconds=m.seconds["total"],
-        stages=markup(_stages(data)), skew=markup(_skew(m.skew)), neighbours=markup(_neighbours(data)),
+        stages=markup(_stages(data)), skew=markup(_skew(m.skew, m.counts.get("oversize_buckets_compared"))),
+        neighbours=markup(_neighbours(data)),
         forecast=markup(forecast_section(data.forecast, m.memory_budget_bytes)),
         history=markup(history_section(data.history)),
     )
@@ -101,7 +102,9 @@ def _stages(data: ReportData) -> str:
             + _table(("stage", "seconds", "peak memory", "of budget"), rows, "stage-table"))
 
 
-def _skew(skew: dict | None) -> str:
+def _skew(skew: dict | None, compared: int | None = None) -> str:
+    """The skew report; ``compared``: the buckets over the limit verification compared whole
+    (held in reserve, :mod:`lshjob.index.verify._reserve`)."""
     if not skew:
         return "<p>No bands, no buckets: the run compared sets exactly.</p>"
     said = (f"{skew.get('buckets', 0)} buckets, {skew.get('buckets_with_pairs', 0)} of them holding two or more "
@@ -111,6 +114,9 @@ def _skew(skew: dict | None) -> str:
         said += (f"{skew['oversize_buckets']} bucket(s) over the limit ({skew.get('oversize_rows', 0)} rows, "
                  f"{skew.get('oversize_pairs', 0)} pairs) were split into {skew.get('oversize_sub_buckets', 0)} "
                  f"sub-buckets ({skew.get('split_pairs', 0)} pairs kept, {skew.get('skipped_pairs', 0)} skipped).")
+        if compared:
+            said += (f" Verification compared {compared} of them whole, judged by a sample of their members: "
+                     "their pairs, counted as skipped here, were compared.")
     else:
         said += "No bucket was over the limit: skew handling did nothing."
     rows = [(key, str(value)) for key, value in sorted(skew.items())]
