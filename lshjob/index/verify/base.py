@@ -68,7 +68,9 @@ class VerifyEngine(Protocol):
                settings: VerifySettings, crowds: Path | None = None) -> pl.DataFrame:
         """CANDIDATES -> VERIFIED. ``params``: how the signatures were made (for ``estimate``),
         None when there are none (the estimate is then the exact value). ``crowds``: the
-        join's CROWDS (:mod:`lshjob.index.join.base`), whose members' pairs are candidates too."""
+        join's CROWDS (:mod:`lshjob.index.join.base`), whose members' pairs are candidates too.
+        The local engine also takes ``reserve=``, the join's RESERVE, which the run gives it
+        alone (:func:`lshjob.jobs.crowd_caps.reserve_cap`); another engine need not."""
         ...
 
 
