@@ -19,6 +19,7 @@ from __future__ import annotations
 import argparse
 import json
 import resource
+import shlex
 import subprocess
 import sys
 import tempfile
@@ -42,9 +43,10 @@ CASES = [
 ]
 
 
-def run_case(events: Path, out: Path, threshold: float, top_k: int) -> tuple[int, float, float, dict | None, str]:
+def run_case(events: Path, out: Path, threshold: float, top_k: int, extra: tuple[str, ...] = ()
+             ) -> tuple[int, float, float, dict | None, str]:
     cmd = [sys.executable, "-m", "lshjob", "run", str(events), "--entity", "entity", "--element", "element",
-           "--threshold", str(threshold), "--top-k", str(top_k), "--out", str(out), "--json", "--quiet"]
+           "--threshold", str(threshold), "--top-k", str(top_k), "--out", str(out), "--json", "--quiet", *extra]
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     start = time.perf_counter()
     done = subprocess.run(cmd, capture_output=True, text=True, cwd=out.parent)
@@ -61,9 +63,12 @@ def main() -> None:
     parser.add_argument("--entities", type=int, default=200_000)
     parser.add_argument("--sample", type=int, default=200)
     parser.add_argument("--no-write", action="store_true")
+    parser.add_argument("--variant", default="", help='options added to every run, e.g. "--recall-of pairs"')
     args = parser.parse_args()
+    extra = tuple(shlex.split(args.variant))
+    variant = f" --variant {shlex.quote(args.variant)}" if extra else ""
     lines = [f"Machine: {machine()}",
-             f"Command: `python bench/shapes.py --entities {args.entities} --sample {args.sample}`",
+             f"Command: `python bench/shapes.py --entities {args.entities} --sample {args.sample}{variant}`",
              "Each case one warm process (kernels compiled by an untimed first run); recall of the true "
              "top-k on the sampled entities (ties honoured).", "",
              "| Zipf exponent | near-copies | threshold | top-k | events | exit | wall s | CPU s | peak memory "
@@ -76,7 +81,7 @@ def main() -> None:
         for i, (exponent, copies, threshold, top_k) in enumerate(CASES):
             events = zipf_events(args.entities, exponent, copies)
             out = tmp / f"case{i}"
-            code, wall, cpu, manifest, err = run_case(events, out, threshold, top_k)
+            code, wall, cpu, manifest, err = run_case(events, out, threshold, top_k, extra)
             if manifest is None:
                 lines.append(f"| {exponent} | {copies} | {threshold} | {top_k} | | {code} | {wall:.1f} | {cpu:.1f} "
                              f"| | | | | | {err[:200]} |")
@@ -93,7 +98,7 @@ def main() -> None:
                 f"| {plan.get('perms')}, {plan.get('bands')}, {plan.get('rows')} | {counts['candidate_pairs']:,} "
                 f"| {counts['verified_pairs']:,} | {rec:.3f} ({pairs:,}) | {len(manifest.get('warnings', []))} |")
             print(lines[-1], flush=True)
-    finish(f"Other long-tailed shapes, {args.entities:,} entities", "\n".join(lines), not args.no_write)
+    finish(f"Other long-tailed shapes, {args.entities:,} entities{variant}", "\n".join(lines), not args.no_write)
 
 
 if __name__ == "__main__":
