@@ -5,6 +5,7 @@ integers (lshjob.index.conformance.fmix64_int) for the members drawn."""
 
 from __future__ import annotations
 
+import math
 from dataclasses import replace
 
 import numpy as np
@@ -126,12 +127,55 @@ def test_bucket_gains_against_python_sets(seed):
     assert got["gain"].max() > 0  # the check sees gains, not only zeros
 
 
-def test_buckets_worth_comparing_come_by_gain_within_the_work_budget():
-    # By hand: gains over RESCUE_GAIN (0.25) in order 0.9 (crowd 4), 0.8 (2), 0.5 (1), 0.3 (5);
-    # with a budget of 100 merges: 4 (60) fits, 2 (50) would pass 100 and is left, 1 (30) fits,
-    # 5 (20) would pass it. Crowd 3 gains too little, however cheap.
-    gains = pl.DataFrame({"crowd": [1, 2, 3, 4, 5], "members": [10] * 5, "gain": [0.5, 0.8, 0.1, 0.9, 0.3],
-                          "work": [30.0, 50.0, 1.0, 60.0, 20.0]})
+def test_bucket_work_counts_the_partners_comparing_it_whole_would_try():
+    # Oracle: Python sets, the crowd kernel's rule (lshjob/index/verify/_crowds.py
+    # _crowd_pairs_within): in a member's size range at the threshold, a partner is tried when
+    # the elements every member holds (C) may bring the pair to the threshold alone (needed
+    # intersection ceil(t / (1 + t) * (|A| + |B|)) <= |C|), or when it shares another element.
+    rng = np.random.default_rng(5)
+    n, threshold = 300, 0.5
+    # bucket 1: every member holds element 0, a popular title; bucket 2: no element in common
+    sets = [{0, *rng.choice(np.arange(1, 20), size=rng.integers(0, 5), replace=False).tolist()} for _ in range(150)]
+    sets += [set(rng.choice(np.arange(1, 20), size=rng.integers(1, 6), replace=False).tolist()) for _ in range(150)]
+    frame = pl.DataFrame({"entity": np.repeat(np.arange(n), [len(s) for s in sets]),
+                          "element": [e for s in sets for e in sorted(s)]})
+    element_sets = ElementSets.from_sets(frame)
+    masks = element_masks(element_sets.offsets, element_sets.elements)
+    codes = element_sets.elements
+    # the check is exact only where no two elements share a mask bit (element_masks)
+    assert len({int(m) for m in element_masks(np.arange(21), np.arange(20))}) == 20
+    buckets = [list(range(0, 150)), list(range(150, 300))]
+    reserve = pl.DataFrame({"crowd": np.repeat([1, 2], 150), "rep": [r for b in buckets for r in b]})
+    got = bucket_gains(reserve, element_sets, masks, threshold, np.full(n, -1.0), np.ones(n, dtype=np.int64), 0,
+                       None)
+    as_codes = [set(codes[element_sets.offsets[i]:element_sets.offsets[i + 1]].tolist()) for i in range(n)]
+    drawn = drawn_members(reserve)
+    for crowd, bucket in enumerate(buckets, start=1):
+        common = set.intersection(*(as_codes[b] for b in bucket))
+        tried = []
+        for a in drawn.filter(pl.col("crowd") == crowd)["rep"].to_list():
+            la = len(as_codes[a])
+            tried.append(sum(
+                1 for b in bucket if b != a and threshold * la <= len(as_codes[b]) <= la / threshold and (
+                    math.ceil(threshold / (1 + threshold) * (la + len(as_codes[b])) - 1e-9) <= len(common)
+                    or (as_codes[a] - common) & as_codes[b])))
+        expected = len(bucket) * np.mean(tried) / 2
+        assert got.filter(pl.col("crowd") == crowd)["work"].item() == pytest.approx(expected)
+    assert len(set.intersection(*(as_codes[b] for b in buckets[0]))) == 1  # the first bucket has its C
+    assert got["work"].min() > 0
+
+
+def test_buckets_worth_comparing_come_in_two_tiers_within_their_budgets():
+    # By hand. Tier one, gains of RESCUE_GAIN (0.25) or more, by gain: 0.9 (crowd 4), 0.8 (2),
+    # 0.5 (1), 0.3 (5); with a budget of 100: 4 (60) fits, 2 (50) would pass 100 and is left, 1
+    # (30) fits, 5 (20) would pass it. Tier two, gains of RESCUE_SOME (0.02) up to 0.25, by
+    # members x gain / work: crowd 3 (10 x 0.1 / 1 = 1.0), 6 (100 x 0.2 / 400 = 0.05), 7
+    # (10 x 0.05 / 50 = 0.01); crowd 8 gains too little (0.01), however cheap.
+    gains = pl.DataFrame({"crowd": [1, 2, 3, 4, 5, 6, 7, 8], "members": [10, 10, 10, 10, 10, 100, 10, 10],
+                          "gain": [0.5, 0.8, 0.1, 0.9, 0.3, 0.2, 0.05, 0.01],
+                          "work": [30.0, 50.0, 1.0, 60.0, 20.0, 400.0, 50.0, 0.5]})
     assert worth_comparing(gains, 100.0).to_list() == [4, 1]
     assert worth_comparing(gains, 1e9).to_list() == [4, 2, 1, 5]
     assert worth_comparing(gains, 10.0).to_list() == []
+    assert worth_comparing(gains, 100.0, 60.0).to_list() == [4, 1, 3, 7]  # 6 (400) would pass 60
+    assert worth_comparing(gains, 10.0, 1e9).to_list() == [3, 6, 7]

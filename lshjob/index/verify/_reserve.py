@@ -16,10 +16,15 @@ its identical group, at most ``top_k + 1``) that would come from this bucket: it
 :func:`lshjob.index._ranking.list_cuts`, not already held), at most k, over those plus the
 rows held (its own group's and its partners'), at most k. A member whose only partners are in
 the bucket gains 1, whatever k; one whose list is full gains the share its new partners would
-take. A bucket whose drawn
-members gain ``RESCUE_GAIN`` on average is compared whole, the highest gains first while the
-merges the draw foresees stay within a budget (``RESCUE_WORK``), as a crowd, with the floors
-(:func:`lshjob.index.verify._crowds.crowd_pieces`); pairs already held are not added again
+take. A bucket's work is the pairs comparing it whole would try: each drawn member's
+partners that its size and the element masks allow at the threshold, times the members over
+two (the crowd kernel's cost is these proposals, about 12-20 ns each on two cores).
+
+Buckets are compared whole, as crowds with the floors
+(:func:`lshjob.index.verify._crowds.crowd_pieces`), in two tiers: those whose members' lists
+hang on them (mean gain ``RESCUE_GAIN`` or more) by gain, within ``RESCUE_WORK``; then those
+that would add a little to many lists (mean gain ``RESCUE_SOME`` or more), the most rows for
+their work first, within a smaller ``SPARE_WORK``. Pairs already held are not added again
 (their ``bands_shared`` counts the buckets within the cap).
 """
 
@@ -37,16 +42,16 @@ from lshjob.index.verify._crowds import crowd_pairs_between, crowd_pieces
 from lshjob.index.verify._jaccard import _bits, _intersection, element_masks
 
 SAMPLED = 64  # members drawn from each reserve bucket
-# the merges all buckets compared whole may take, about: 2e8 or 200 a set, whichever is more. A
-# bucket of near-copies takes members^2 / 2: 9.7e8 foreseen took 31 s of two cores (30,000
-# patrons sharing 9 of their 10 titles), where a bestseller's buckets take little (masks)
+RESCUE_GAIN = 0.25  # mean share of a drawn member's list that makes a bucket one lists hang on
+# the pairs those buckets may try, about: 2e8 or 200 a set, whichever is more (a few seconds)
 RESCUE_WORK, RESCUE_WORK_PER_SET = 2e8, 200
-RESCUE_GAIN = 0.25  # mean share of a drawn member's list a bucket must fill to be compared (module docstring)
+RESCUE_SOME = 0.02  # mean share that makes a bucket worth its work when cheap
+SPARE_WORK, SPARE_WORK_PER_SET = 5e7, 50  # the pairs those may try, about (under a second)
 
 
 @numba.njit(parallel=True, cache=True)
-def _gains(offsets, elements, masks, members, sizes, start, count, drawn, drawn_bucket, drawn_rows, floors, weights,
-           threshold, top_k, held_keys, n):
+def _gains(offsets, elements, masks, members, sizes, start, count, shared, drawn, drawn_bucket, drawn_rows, floors,
+           weights, threshold, top_k, held_keys, n):
     """Each drawn member's gain (module docstring): ``drawn[d]`` of bucket ``drawn_bucket[d]``,
     whose members are ``members[start[c]:start[c] + count[c]]`` sorted by set size
     (``sizes``, the same order). Partners are sought above max(threshold, the member's floor):
@@ -54,31 +59,40 @@ def _gains(offsets, elements, masks, members, sizes, start, count, drawn, drawn_
     (:func:`lshjob.index.verify._jaccard.jaccard_screened`), then a merge. ``held_keys``:
     sorted ``a * n + b`` of the pairs held, both orders; ``weights``: each id's rows in a
     list; ``drawn_rows``: the rows each drawn member's list holds already; ``top_k`` 0: lists
-    without a cap. With the gains, the pairs each drawn member merged: the bucket's work
-    compared whole is about its members times their mean, halved."""
+    without a cap. With the gains, the partners each drawn member would be tried against when
+    the bucket is compared whole (:func:`lshjob.index.verify._crowds._crowd_pairs_within`, at
+    the threshold: a pair is sought at the lower of its sides' floors): in its size range,
+    those the elements all members share (``shared[c]``: the AND of their masks, at least
+    those elements' bits) may bring to the threshold alone, and those whose mask meets its
+    other elements'. The bucket's work is about its members times their mean, halved."""
     out = np.zeros(len(drawn))
-    merged = np.zeros(len(drawn))
+    proposed = np.zeros(len(drawn))
     for d in numba.prange(len(drawn)):
         a, c = drawn[d], drawn_bucket[d]
         la = offsets[a + 1] - offsets[a]
         floor = floors[a]
-        if floor >= 1.0:  # its own group fills its list
-            continue
         bar = max(threshold, floor)
         lo, hi = start[c], start[c] + count[c]
-        first = lo + np.searchsorted(sizes[lo:hi], np.ceil(bar * la - 1e-9))
-        last = lo + np.searchsorted(sizes[lo:hi], np.floor(la / bar + 1e-9), side="right")
+        first = lo + np.searchsorted(sizes[lo:hi], np.ceil(threshold * la - 1e-9))
+        last = lo + np.searchsorted(sizes[lo:hi], np.floor(la / threshold + 1e-9), side="right")
         rows, enough = 0, top_k if top_k > 0 else 1 << 62
+        common, own = np.int64(_bits(shared[c])), masks[a] & ~shared[c]
         for t in range(first, last):
             b = members[t]
             if b == a:
                 continue
             lb = sizes[t]
-            need = int(np.ceil(bar / (1.0 + bar) * (la + lb) - 1e-9))
             ma, mb = masks[a], masks[b]
+            # what the crowd kernel tries: partners the shared elements alone may bring to the
+            # threshold, and those sharing one of the rest (its postings)
+            if int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9)) <= common or own & mb:
+                proposed[d] += 1
+            # (a floor of 1.0: its own group fills its list)
+            if floor >= 1.0 or lb < np.ceil(bar * la - 1e-9) or lb > np.floor(la / bar + 1e-9):
+                continue
+            need = int(np.ceil(bar / (1.0 + bar) * (la + lb) - 1e-9))
             if min(la - np.int64(_bits(ma & ~mb)), lb - np.int64(_bits(mb & ~ma))) < need:
                 continue
-            merged[d] += 1
             inter = _intersection(elements, offsets[a], offsets[a + 1], elements, offsets[b], offsets[b + 1], need)
             jac = inter / (la + lb - inter)
             if inter < need or jac < threshold or jac <= floor:
@@ -90,7 +104,7 @@ def _gains(offsets, elements, masks, members, sizes, start, count, drawn, drawn_
             rows += weights[b]
         if rows > 0:
             out[d] = min(rows, enough) / min(rows + drawn_rows[d], enough)
-    return out, merged
+    return out, proposed
 
 
 def held_keys(pairs: pl.DataFrame | None, n: int, ids: pl.Series | None = None) -> np.ndarray:
@@ -117,7 +131,7 @@ def drawn_members(reserve: pl.DataFrame, per_bucket: int = SAMPLED) -> pl.DataFr
 def bucket_gains(reserve: pl.DataFrame, sets, masks: np.ndarray, threshold: float, floors: np.ndarray,
                  weights: np.ndarray, top_k: int, held: pl.DataFrame | None, group_sizes=None) -> pl.DataFrame:
     """Each reserve bucket (``crowd``, ``members``) with its drawn members' mean gain and the
-    merges comparing it whole would take, about (``work``; module docstring).
+    pairs comparing it whole would try, about (``work``; module docstring).
     ``held``: the pairs held so far (``left_rep``, ``right_rep``); ``group_sizes``: by entity id,
     the identical sets each stands for (one each when None)."""
     set_sizes = np.diff(sets.offsets)
@@ -138,27 +152,34 @@ def bucket_gains(reserve: pl.DataFrame, sets, masks: np.ndarray, threshold: floa
     own_rows = np.asarray(group_sizes)[distinct] - 1 if group_sizes is not None else 0
     drawn_rows = (partner_rows + own_rows)[np.searchsorted(distinct, ids)].astype(np.int64)
     members = np.ascontiguousarray(by_size["rep"].to_numpy(), dtype=np.int64)
-    gain, merged = _gains(sets.offsets, sets.elements, masks, members,
-                  np.ascontiguousarray(by_size["size"].to_numpy(), dtype=np.int64), starts, counts,
+    shared = np.bitwise_and.reduceat(masks[members], starts) if len(members) else masks[:0]
+    gain, proposed = _gains(sets.offsets, sets.elements, masks, members,
+                  np.ascontiguousarray(by_size["size"].to_numpy(), dtype=np.int64), starts, counts, shared,
                   np.ascontiguousarray(ids, dtype=np.int64), bucket_of.astype(np.int64), drawn_rows,
                   np.ascontiguousarray(floors, dtype=np.float64), np.ascontiguousarray(weights, dtype=np.int64),
                   threshold, top_k, keys, n)
     drawn_per = np.maximum(np.bincount(bucket_of, minlength=len(counts)), 1)
     mean = np.bincount(bucket_of, weights=gain, minlength=len(counts)) / drawn_per
-    work = counts * np.bincount(bucket_of, weights=merged, minlength=len(counts)) / drawn_per / 2
+    work = counts * np.bincount(bucket_of, weights=proposed, minlength=len(counts)) / drawn_per / 2
     return buckets.with_columns(gain=pl.Series(mean), work=pl.Series(work))
 
 
-def worth_comparing(gains: pl.DataFrame, budget: float) -> pl.Series:
-    """The buckets (``crowd``) of ``gains`` (:func:`bucket_gains`) to compare: those whose
-    members gain ``RESCUE_GAIN`` on average, the highest gains first, while their work adds up
-    to at most ``budget`` merges (one that would pass it is left, and the next tried)."""
-    worth = gains.filter(pl.col("gain") >= RESCUE_GAIN).sort("gain", "crowd", descending=[True, False])
-    chosen, spent = [], 0.0
-    for crowd, work in worth.select("crowd", "work").iter_rows():
-        if spent + work <= budget:
-            chosen.append(crowd)
-            spent += work
+def worth_comparing(gains: pl.DataFrame, budget: float, spare: float = 0.0) -> pl.Series:
+    """The buckets (``crowd``) of ``gains`` (:func:`bucket_gains`) to compare, in two tiers
+    (module docstring): those whose members gain ``RESCUE_GAIN`` on average, the highest gains
+    first, while their work adds up to at most ``budget``; then those gaining ``RESCUE_SOME``,
+    the most list rows a unit of work first (members x gain / work), within ``spare``. A
+    bucket that would pass its tier's budget is left, and the next tried."""
+    chosen: list = []
+    ranked = gains.with_columns(density=pl.col("members") * pl.col("gain") / pl.max_horizontal("work", 1.0))
+    for tier, key, allowed in ((pl.col("gain") >= RESCUE_GAIN, "gain", budget),
+                               (pl.col("gain").is_between(RESCUE_SOME, RESCUE_GAIN, closed="left"), "density", spare)):
+        spent = 0.0
+        for crowd, work in ranked.filter(tier).sort(key, "crowd", descending=[True, False]).select(
+                "crowd", "work").iter_rows():
+            if spent + work <= allowed:
+                chosen.append(crowd)
+                spent += work
     return pl.Series("crowd", chosen, dtype=gains["crowd"].dtype)
 
 
@@ -176,7 +197,7 @@ def reserve_pieces(reserve_file: Path, held, sets, threshold: float, settings, m
     if masks is None:
         masks = (element_masks(sets.offsets, sets.elements),) * 2
     gains = bucket_gains(reserve, sets, masks[0], threshold, floors, weights, top_k, held.kept, settings.group_sizes)
-    chosen = worth_comparing(gains, max(RESCUE_WORK, RESCUE_WORK_PER_SET * n))
+    chosen = worth_comparing(gains, max(RESCUE_WORK, RESCUE_WORK_PER_SET * n), max(SPARE_WORK, SPARE_WORK_PER_SET * n))
     rescued = reserve.filter(pl.col("crowd").is_in(chosen.implode()))
     if settings.tally is not None:
         settings.tally["reserve"] = {
