@@ -18,7 +18,7 @@ rows held (its own group's and its partners'), at most k. A member whose only pa
 the bucket gains 1, whatever k; one whose list is full gains the share its new partners would
 take. A bucket's work is the pairs comparing it whole would try: each drawn member's
 partners that its size and the element masks allow at the threshold, times the members over
-two (the crowd kernel's cost is these proposals, about 12-20 ns each on two cores).
+two (the crowd kernel's cost is these proposals, some 10-25 ns each on two cores).
 
 Buckets are compared whole, as crowds with the floors
 (:func:`lshjob.index.verify._crowds.crowd_pieces`), in two tiers: those whose members' lists
@@ -45,8 +45,8 @@ SAMPLED = 64  # members drawn from each reserve bucket
 RESCUE_GAIN = 0.25  # mean share of a drawn member's list that makes a bucket one lists hang on
 # the pairs those buckets may try, about: 2e8 or 200 a set, whichever is more (a few seconds)
 RESCUE_WORK, RESCUE_WORK_PER_SET = 2e8, 200
-RESCUE_SOME = 0.02  # mean share that makes a bucket worth its work when cheap
-SPARE_WORK, SPARE_WORK_PER_SET = 5e7, 50  # the pairs those may try, about (under a second)
+RESCUE_SOME = 0.05  # mean share that makes a bucket worth its work when cheap
+SPARE_WORK, SPARE_WORK_PER_SET = 2e7, 20  # the pairs those may try, about (half a second)
 
 
 @numba.njit(parallel=True, cache=True)
