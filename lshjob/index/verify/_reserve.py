@@ -17,8 +17,10 @@ its identical group, at most ``top_k + 1``) that would come from this bucket: it
 rows held (its own group's and its partners'), at most k. A member whose only partners are in
 the bucket gains 1, whatever k; one whose list is full gains the share its new partners would
 take. A bucket's work is the pairs comparing it whole would try: each drawn member's
-partners that its size and the element masks allow at the threshold, times the members over
-two (the crowd kernel's cost is these proposals, some 10-25 ns each on two cores).
+partners in its size range at the threshold that the elements every member holds may bring
+to the threshold alone, or that share another element (by the element masks), times the
+members over two (the crowd kernel's cost is these proposals, some 10-25 ns each on two
+cores; bench/RESULTS.md, "A second tier of reserve buckets").
 
 Buckets are compared whole, as crowds with the floors
 (:func:`lshjob.index.verify._crowds.crowd_pieces`), in two tiers: those whose members' lists
