@@ -15,7 +15,14 @@ from lshjob.cli.app import app
 from lshjob.ingest.loading import load_membership
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.plan import similarity
-from lshjob.plan.banding import PairHistogram, candidate_probability, data_plans, list_recall
+from lshjob.plan.banding import (
+    LIST_BOUND_Z,
+    PairHistogram,
+    candidate_probability,
+    data_plans,
+    list_recall,
+    list_recall_bound,
+)
 
 SPEC = EventSpec(entity="patron", element="title")
 N, SAMPLE, THRESHOLD, TOP_K = 3000, 250, 0.5, 5
@@ -88,6 +95,40 @@ def test_plans_meet_the_target_on_lists_or_on_pairs(hist):
     assert on_lists.expected_candidates < on_pairs.expected_candidates
 
 
+def test_list_recall_bound_is_its_estimate_less_a_bootstrap_standard_error(hist):
+    # Oracle: the bootstrap (Efron and Tibshirani, An Introduction to the Bootstrap, 1993,
+    # chapter 6): the sampled entities drawn again with replacement, each keeping its weight,
+    # and list_recall recomputed; the spread of those estimates is the standard error the
+    # bound subtracts LIST_BOUND_Z times (1.645: the normal's 95% quantile, one-sided).
+    assert hist.entity_weights is None or len(hist.entity_weights) == len(hist.entity_lists)
+    rng = np.random.default_rng(7)
+    n = len(hist.entity_lists)
+    weights = np.ones(n) if hist.entity_weights is None else hist.entity_weights
+    for bands, rows in ((5, 4), (12, 4), (20, 5)):
+        estimate = float(list_recall(hist, TOP_K, bands, rows))
+        drawn = []
+        for _ in range(400):
+            pick = rng.integers(0, n, n)
+            again = PairHistogram(hist.similarity, hist.counts, hist.sample_entities, hist.total_entities,
+                                  threshold=THRESHOLD, entity_lists=hist.entity_lists[pick],
+                                  entity_weights=weights[pick])
+            drawn.append(float(list_recall(again, TOP_K, bands, rows)))
+        error = (estimate - float(list_recall_bound(hist, TOP_K, bands, rows))) / LIST_BOUND_Z
+        assert error > 0
+        assert error == pytest.approx(np.std(drawn), rel=0.2)
+
+
+def test_plans_on_lists_meet_the_target_by_the_bound_and_the_cheapest_is_chosen(hist):
+    # Every plan with fewer expected candidates than the chosen one has a bound under the
+    # target, though some of them have an estimate over it: the margin costs candidates.
+    judged = data_plans(THRESHOLD, hist, (128,), 1e-9, TOP_K)
+    chosen = data_plans(THRESHOLD, hist, (128,), 0.95, TOP_K)[0]
+    assert chosen.list_recall_low >= 0.95 and chosen.expected_list_recall > chosen.list_recall_low
+    cheaper = [p for p in judged if p.expected_candidates < chosen.expected_candidates]
+    assert cheaper and all(p.list_recall_low < 0.95 for p in cheaper)
+    assert any(p.expected_list_recall >= 0.95 for p in cheaper)
+
+
 def test_a_run_planned_on_lists_finds_its_predicted_share_of_the_true_lists(loans, tmp_path):
     # Oracle: brute force with Python sets of every patron's true top-k (ties at the k-th value
     # honoured: a published neighbour at or above it counts), against the run's index.
@@ -111,7 +152,7 @@ def test_a_run_planned_on_lists_finds_its_predicted_share_of_the_true_lists(loan
 
 def test_plan_command_chooses_on_lists_as_the_run_does(loans, hist):
     # Oracle: the planner's own ranking on the same sample (seed 0, as lshjob plan and run draw),
-    # and the text table shows the lists' column only when planning on them.
+    # and the text table shows the lists' column only when planning on them (the default).
     args = ["plan", "--threshold", str(THRESHOLD), "--sample", str(loans[0]), "--entity", "patron",
             "--element", "title", "--sample-size", str(SAMPLE), "--top-k", str(TOP_K)]
     runner = CliRunner()
@@ -122,7 +163,7 @@ def test_plan_command_chooses_on_lists_as_the_run_does(loans, hist):
     assert (chosen["perms"], chosen["bands"], chosen["rows"]) == (best.perms, best.bands, best.rows)
     assert chosen["expected_list_recall"] == pytest.approx(best.expected_list_recall)
     assert " lists " in runner.invoke(app, [*args, "--recall-of", "lists"]).stdout
-    assert " lists " not in runner.invoke(app, args).stdout  # the default: pairs
+    assert " lists " in runner.invoke(app, args).stdout  # the default: lists
     assert " lists " not in runner.invoke(app, [*args, "--recall-of", "pairs"]).stdout
     bad = runner.invoke(app, [*args, "--recall-of", "entities"])
     assert bad.exit_code == 2 and "--recall-of must be one of lists, pairs; got 'entities'" in bad.output

@@ -23,6 +23,8 @@ from lshjob.errors import ParameterError
 DEFAULT_PERMS_CHOICES = (32, 64, 128, 256)
 MAX_QUADRATURE_POINTS = 2048  # Gauss-Legendre: exact for polynomials of degree < 4096
 TIE_TOLERANCE = 0.01  # plans within 1% of the fewest candidates count as tied
+# a plan on the lists meets its target with its list recall's one-sided 95% lower bound (normal quantile)
+LIST_BOUND_Z = 1.645
 
 
 def candidate_probability(s, bands: int, rows: int):
@@ -210,8 +212,9 @@ class DataPlan:
     approximate_threshold: float
     meets_target: bool = False
     notes: list[str] = field(default_factory=list)
-    # of the published top-k lists (data_plans' top_k), the recall the target was then met on
+    # of the published top-k lists (data_plans' top_k), and its lower bound, which met the target
     expected_list_recall: float | None = None
+    list_recall_low: float | None = None
 
     def as_dict(self) -> dict:
         return asdict(self)
@@ -249,8 +252,9 @@ def data_plans(
             rec = (candidate_probability(s_hi[None, :], b, r) * w_hi).sum(axis=1) / (1.0 - threshold)
         else:
             rec = verified / (cnt[above].sum() * histogram.scale)
-        lists = None if top_k is None or uniform_basis else list_recall(histogram, top_k, b[:, 0], r[:, 0])
-        target = rec if lists is None else lists
+        figures = None if top_k is None or uniform_basis else _list_figures(histogram, top_k, b[:, 0], r[:, 0])
+        lists, low = (None, None) if figures is None else (figures[0], figures[0] - LIST_BOUND_Z * figures[1])
+        target = rec if low is None else low
         for i, (bb, rr) in enumerate(pairs):
             plans.append(
                 DataPlan(
@@ -264,11 +268,18 @@ def data_plans(
                     approximate_threshold=approximate_threshold(bb, rr),
                     meets_target=bool(target[i] >= recall),
                     expected_list_recall=None if lists is None else float(lists[i]),
+                    list_recall_low=None if low is None else float(low[i]),
                     notes=["recall assumes similarities uniform on [t, 1]: the sample has fewer "
                            "than 20 pairs at or above the threshold"] if uniform_basis else [],
                 )
             )
     feasible = [p for p in plans if p.meets_target]
+    if not feasible and top_k is not None:  # too few sampled lists for the margin: their estimate meets it
+        feasible = [p for p in plans if (p.expected_list_recall or 0.0) >= recall]
+        for p in feasible:
+            p.meets_target = True
+            p.notes.append(f"no plan's lower bound on the list recall reaches {recall} (too few sampled "
+                           "lists for the margin): met by the estimate")
     if not feasible:
         best = max(plans, key=lambda p: (target_recall(p), -p.perms))
         what = "recall" if best.expected_list_recall is None else f"recall of the top-{top_k} lists"
@@ -319,6 +330,23 @@ def list_recall(histogram: PairHistogram, top_k: int, bands, rows) -> np.ndarray
     bin's midpoint, and each entity counts its weight (``entity_weights``), so the recall is
     found list places over all list places. A missed pair whose place a tied pair takes is
     counted missed: the figure errs low when many pairs tie at the k-th value."""
+    figures = _list_figures(histogram, top_k, bands, rows)
+    return None if figures is None else figures[0]
+
+
+def list_recall_bound(histogram: PairHistogram, top_k: int, bands, rows, z: float = LIST_BOUND_Z) -> np.ndarray | None:
+    """A one-sided lower confidence bound on :func:`list_recall`: the estimate less ``z``
+    standard errors. The estimate is a ratio (found places over places, each sampled entity
+    weighted), so its variance is the linearized one of a ratio estimator (Cochran, Sampling
+    Techniques, 3rd ed., section 6.3; the with-replacement form, which errs wide):
+    sum_i w_i^2 (f_i - R p_i)^2 / (sum_i w_i p_i)^2. The sample's few hundred lists leave
+    the estimate a standard error of about 0.005-0.01."""
+    figures = _list_figures(histogram, top_k, bands, rows)
+    return None if figures is None else figures[0] - z * figures[1]
+
+
+def _list_figures(histogram: PairHistogram, top_k: int, bands, rows) -> tuple[np.ndarray, np.ndarray] | None:
+    """(:func:`list_recall`, its standard error), each of the shape of ``bands`` and ``rows``."""
     lists = histogram.entity_lists
     if lists is None or not len(lists) or histogram.threshold is None:
         return None
@@ -326,20 +354,30 @@ def list_recall(histogram: PairHistogram, top_k: int, bands, rows) -> np.ndarray
     counts = np.concatenate((lists[:, :1], lists[:, :0:-1]), axis=1)  # identical, then bins from the top down
     before = np.cumsum(counts, axis=1) - counts
     taken = np.clip(top_k - before, 0.0, counts)  # list places each bin fills
-    places = weights @ taken.sum(axis=1)
-    if places <= 0:
+    places = taken.sum(axis=1)
+    total = weights @ places
+    if total <= 0:
         return None
     t = histogram.threshold
     mids = t + (1.0 - t) * (np.arange(lists.shape[1] - 1)[::-1] + 0.5) / (lists.shape[1] - 1)
     chance = np.concatenate(([1.0], mids))  # found chance of each column of ``taken``
     b, r = np.broadcast_arrays(np.asarray(bands, dtype=np.float64), np.asarray(rows, dtype=np.float64))
     found = candidate_probability(chance[None, :], b.reshape(-1, 1), r.reshape(-1, 1))  # 1 at chance 1
-    return (found @ (weights @ taken) / places).reshape(b.shape)
+    per_entity = found @ taken.T  # plans x entities: each entity's found places
+    ratio = per_entity @ weights / total
+    spread = (per_entity - ratio[:, None] * places[None, :]) * weights[None, :]
+    error = np.sqrt((spread**2).sum(axis=1)) / total
+    return ratio.reshape(b.shape), error.reshape(b.shape)
 
 
 def target_recall(plan: DataPlan) -> float:
     """The expected recall a plan's target was judged on: of the top-k lists when figured."""
     return target_recall_of(plan.as_dict())
+
+
+def meets(plan: DataPlan, recall: float) -> bool:
+    """Whether ``plan`` meets ``recall``: by the lists' lower bound when figured (data_plans)."""
+    return (target_recall(plan) if plan.list_recall_low is None else plan.list_recall_low) >= recall
 
 
 def target_recall_of(figures: dict) -> float | None:

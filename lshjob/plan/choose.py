@@ -22,7 +22,7 @@ from lshjob.plan.banding import (
     check_explicit,
     crowd_split,
     data_plans,
-    target_recall,
+    meets,
     theory_plans,
 )
 from lshjob.sign.signatures import SignatureParams
@@ -180,7 +180,7 @@ def choose_plan(
             check_explicit(k, *explicit)
             judged = next(p for p in data_plans(threshold, histogram, (k,), JUDGED_RECALL, top_k)
                           if (p.bands, p.rows) == explicit)
-            judged.meets_target = target_recall(judged) >= recall
+            judged.meets_target = meets(judged, recall)
             ranked = [judged]
             if runners_up:
                 try:
@@ -272,7 +272,7 @@ def _data_why(hist: PairHistogram, recall: float, ranked: list, rule: str = "few
     weighed = (f", {visited} of them visited and weighted by 1 / their chance" if visited is not None
                and visited < hist.sample_entities else "")
     lists = ranked[0].expected_list_recall is not None
-    what = "recall of the top-k lists" if lists else "recall"
+    what = "recall of the top-k lists (its one-sided 95% lower bound)" if lists else "recall"
     return (f"data mode: {rule} with expected {what} >= {recall}; {hist.basis} of "
             f"{hist.sample_entities} sampled entities against {against}{weighed} "
             f"({hist.total_entities} entities{scaled})")
