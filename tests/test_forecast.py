@@ -12,6 +12,7 @@ from typer.testing import CliRunner
 
 from lshjob.cli.app import app
 from lshjob.demo.generate import generate_events
+from lshjob.index.join.base import JoinSettings
 from lshjob.ingest.spec import EventSpec
 from lshjob.jobs.calibrate import calibration_events, refine_sources
 from lshjob.jobs.plan import forecast_plan, plan_banding
@@ -130,6 +131,27 @@ def test_a_plan_over_max_candidates_at_the_forecast_size_is_warned_of(loans):
     plan = plan_banding(0.5, sample=loans, spec=spec, entities=10_000_000, shape=shape)
     fc = forecast_plan(plan, shape, 10_000_000, max_candidates=1e6)
     assert any("more than --max-candidates" in w for w in fc["warnings"])
+
+
+def test_a_forecast_whose_pairs_fall_in_crowds_calls_the_cost_model_an_upper_bound(tmp_path, loans):
+    # Oracle: crowd_split, the crowds' share of the plan's pairs (checked against bucket sizes
+    # from Python sets in tests/test_plan_crowds.py). Long-tailed patrons forecast at 10M put
+    # most of their predicted pairs in crowds, and the warning says so with that share; the flat
+    # library loans put none there, and have no such warning.
+    from test_plan_crowds import long_tailed
+
+    from lshjob.plan.banding import crowd_split
+
+    spec = EventSpec(entity="patron", element="title")
+    path = tmp_path / "tail.parquet"
+    long_tailed(3000, median=3.0, exponent=1.6).write_parquet(path)
+    for sample, size, crowded in ((path, 10_000_000, True), (loans, 5000, False)):
+        shape: dict = {}
+        plan = plan_banding(0.5, sample=sample, spec=spec, entities=size, shape=shape, sample_size=300)
+        share = crowd_split(plan.histogram, plan.bands, plan.rows, JoinSettings.crowd_size) or 0.0
+        said = [w for w in forecast_plan(plan, shape, size)["warnings"] if "fall in crowds" in w]
+        assert (share >= 0.5) is crowded
+        assert len(said) == crowded and all(w.startswith(f"{share:.0%} of the predicted") for w in said)
 
 
 def test_forecast_ranks_plans_as_measured_runs_do(tmp_path):

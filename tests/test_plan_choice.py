@@ -10,7 +10,6 @@ from typer.testing import CliRunner
 from lshjob.cli.app import app
 from lshjob.ingest.loading import load_membership
 from lshjob.ingest.spec import EventSpec
-from lshjob.jobs.options import default_of
 from lshjob.plan.banding import DEFAULT_PERMS_CHOICES, data_plans
 from lshjob.plan.choose import Plan, PlanMode, choose_plan
 from lshjob.plan.similarity import sample_histogram_from_sets
@@ -37,7 +36,7 @@ def test_plan_and_run_choose_the_same_banding(tmp_path, loans, threshold, sample
     # (seed 0, the run's sampling seed), k among 32, 64, 128 and 256.
     sets = load_membership(loans, EventSpec(entity="patron", element="title"))[0]
     hist = sample_histogram_from_sets(sets, sample_size, seed=0, threshold=threshold)
-    best = data_plans(threshold, hist, DEFAULT_PERMS_CHOICES, 0.95, default_of("top_k"))[0]  # on the lists
+    best = data_plans(threshold, hist, DEFAULT_PERMS_CHOICES, 0.95)[0]
     expected = (best.perms, best.bands, best.rows)
 
     planned = invoke("plan", "--threshold", threshold, "--sample", loans, *SPEC, "--sample-size", sample_size,

@@ -152,7 +152,7 @@ def test_a_run_planned_on_lists_finds_its_predicted_share_of_the_true_lists(loan
 
 def test_plan_command_chooses_on_lists_as_the_run_does(loans, hist):
     # Oracle: the planner's own ranking on the same sample (seed 0, as lshjob plan and run draw),
-    # and the text table shows the lists' column only when planning on them (the default).
+    # and the text table shows the lists' column only when planning on them.
     args = ["plan", "--threshold", str(THRESHOLD), "--sample", str(loans[0]), "--entity", "patron",
             "--element", "title", "--sample-size", str(SAMPLE), "--top-k", str(TOP_K)]
     runner = CliRunner()
@@ -163,7 +163,7 @@ def test_plan_command_chooses_on_lists_as_the_run_does(loans, hist):
     assert (chosen["perms"], chosen["bands"], chosen["rows"]) == (best.perms, best.bands, best.rows)
     assert chosen["expected_list_recall"] == pytest.approx(best.expected_list_recall)
     assert " lists " in runner.invoke(app, [*args, "--recall-of", "lists"]).stdout
-    assert " lists " in runner.invoke(app, args).stdout  # the default: lists
+    assert " lists " not in runner.invoke(app, args).stdout  # the default: pairs
     assert " lists " not in runner.invoke(app, [*args, "--recall-of", "pairs"]).stdout
     bad = runner.invoke(app, [*args, "--recall-of", "entities"])
     assert bad.exit_code == 2 and "--recall-of must be one of lists, pairs; got 'entities'" in bad.output

@@ -41,8 +41,8 @@ def plan(
         help="Data mode: expected recall of pairs at or above the threshold (or of the top-k lists: "
              "--recall-of).")] = default_of("recall"),
     recall_of: Annotated[str, typer.Option(
-        help="Data mode: what --recall is the recall of: 'lists' (the --top-k lists the run publishes) or "
-             "'pairs' (every pair at or above the threshold), as lshjob run --recall-of.")] = default_of("recall_of"),
+        help="Data mode: what --recall is the recall of: 'pairs' (every pair at or above the threshold) or "
+             "'lists' (the --top-k lists the run publishes), as lshjob run --recall-of.")] = default_of("recall_of"),
     sample: Annotated[str | None, typer.Option(help="Signature file or events to plan from (data mode).")] = None,
     entity: Annotated[str | None, typer.Option(help="Events sample: entity column.")] = None,
     element: Annotated[str | None, typer.Option(help="Events sample: element column.")] = None,

@@ -103,7 +103,7 @@ def refresh(
     )] = None,
     recall_of: Annotated[str | None, typer.Option(
         help="What --recall is the recall of: 'pairs' (every pair at or above the threshold) or 'lists' "
-             "(the --top-k lists published), as lshjob run --recall-of.  [default: lists]",
+             "(the --top-k lists published), as lshjob run --recall-of.  [default: pairs]",
     )] = None,
     seed: Annotated[int | None, typer.Option(help="Seed of the hash family.  [default: the kept plan's, or 1]")] = None,
     scheme: Annotated[str | None, typer.Option(help="kperm or oph.  [default: the kept plan's, or kperm]")] = None,

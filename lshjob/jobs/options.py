@@ -144,8 +144,8 @@ RUN_TABLE: tuple[Option, ...] = (  # in the order of lshjob run --help
     Option("rows", int, None, "Override the planner: rows per band r.", low=1),
     Option("recall", float, 0.95, "Planner's expected-recall target.", low=0.0, high=1.0,
            open_low=True, open_high=True),
-    Option("recall_of", str, "lists", "What --recall is the recall of: 'lists' (the published top-k lists, met "
-           "by its one-sided 95% lower bound) or 'pairs' (every pair at or above the threshold).",
+    Option("recall_of", str, "pairs", "What --recall is the recall of: 'pairs' (every pair at or above the "
+           "threshold) or 'lists' (the published top-k lists, met by its one-sided 95% lower bound).",
            choices=RECALL_OF),
     Option("count", str, _spec_default("count"), "Column with a count or weight per event.", part=SPEC),
     Option("min_count", float, _spec_default("min_count"), "Keep elements seen at least this often.", part=SPEC),

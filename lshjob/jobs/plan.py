@@ -200,14 +200,21 @@ def forecast_plan(plan: Plan, shape: dict, entities: int | None = None, events: 
         for r in plan.runners_up if "expected_candidates" in r]
     bound = max_candidates if max_candidates is not None else default_of("max_candidates")
     expected = plan.predicted.get("expected_candidates", 0)
+    crowded = planner.crowd_split(plan.histogram, plan.bands, plan.rows, JoinSettings.crowd_size)
     written = plan.predicted.get("expected_written_pairs")
     if written is None:  # as the run counts them: the pairs outside crowds, which the join writes
-        crowded = planner.crowd_split(plan.histogram, plan.bands, plan.rows, JoinSettings.crowd_size)
         written = expected if crowded is None else expected * (1.0 - crowded)
     out["warnings"] = ([f"the plan predicts {expected:.3g} candidate pairs at {int(load.entities)} entities "
                         f"({written:.3g} outside crowds, written by the join), more than --max-candidates "
                         f"{bound:.3g}: lshjob run would refuse it; raise the threshold or --max-candidates"]
                        if written > bound else [])
+    if scaled_from is None and (crowded or 0.0) >= CROWDED_FORECAST:
+        out["warnings"].append(
+            f"{crowded:.0%} of the predicted candidate pairs fall in crowds (buckets of "
+            f"{JoinSettings.crowd_size} members or more), which verification pairs up itself with the "
+            "top-k lists' floors: the cost model counts them as written and verified pairs, so its join, "
+            "verify and publish seconds are upper bounds, far above the run on such data; give --history "
+            "the indexes of runs of a uniform sample of the entities to forecast from them instead")
     if curve:  # the plan's page: the same shape at a tenth to a hundred times the size
         out["curve"] = forecast_curve(model, load, [load.entities * f for f in CURVE_FACTORS], memory, top_k)
     return out
@@ -228,6 +235,8 @@ def _projection(plan: Plan, shape: dict, samples: list, load: Workload, scheme: 
     return projected
 
 
+# the share of candidate pairs in crowds from which the cost model's forecast is called an upper bound
+CROWDED_FORECAST = 0.5
 CURVE_FACTORS = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0)  # the plan page's curve: multiples of the forecast's size
 
 
