@@ -97,14 +97,14 @@ def main() -> None:
              "| run | wall s | plan k, b, r | expected recall | buckets over the cap (compared) | pairs left out | "
              "recall (true top-50) |",
              "| --- | ---: | --- | --- | --- | ---: | --- |"]
-    for name, wall, m, (rec, true_pairs, sampled) in rows:
+    for name, wall, m, (rec, true_pairs, sampled, err) in rows:
         plan, skew = m["plan"], m["skew"]
         compared = m["counts"].get("oversize_buckets_compared")
         left = next((int(w.split()[0]) for w in m["warnings"] if "not compared" in w), 0)
         lines.append(f"| {name} | {wall:.2f} | {plan['perms']}, {plan['bands']}, {plan['rows']} | "
                      f"{plan['predicted']['expected_recall']:.3f} | {skew['oversize_buckets']}"
                      f" ({'-' if compared is None else compared}) | {left:,} | "
-                     f"{rec:.3f} ({sampled} patrons, {true_pairs:,} true pairs) |")
+                     f"{rec:.3f} ± {err:.3f} ({sampled} patrons, {true_pairs:,} true pairs) |")
     lines += ["", "Warning of the run at its defaults: " + (rows[0][2]["warnings"] or ["none"])[0]]
     finish("A bestseller's buckets", "\n".join(lines), not args.no_write)
 

@@ -127,10 +127,14 @@ def _stages(manifest: dict) -> dict:
 
 
 def recall(events: Path, neighbours: Path, sample: int, seed: int = 0, threshold: float = THRESHOLD,
-           top_k: int = TOP_K) -> tuple[float, int, int]:
-    """(recall, true pairs, sampled entities): exact Jaccard of each sampled entity against all
-    (oracle: intersection counts from a 0/1 sparse matrix product, scipy), true top-k among pairs
-    >= threshold; a published neighbour whose exact Jaccard reaches the k-th value is correct."""
+           top_k: int = TOP_K) -> tuple[float, int, int, float]:
+    """(recall, true pairs, sampled entities, standard error): exact Jaccard of each sampled
+    entity against all (oracle: intersection counts from a 0/1 sparse matrix product, scipy),
+    true top-k among pairs >= threshold; a published neighbour whose exact Jaccard reaches the
+    k-th value is correct. The standard error is a ratio estimator's (found places over places,
+    entity by entity: Cochran, Sampling Techniques, section 6.3). It is large on long-tailed
+    data: a list of tied partners that are copies of one set is found or missed whole (0.017
+    at 300 entities, 0.007 at 2,000, for a recall of 0.948)."""
     from scipy import sparse
 
     frame = pl.read_parquet(events)
@@ -145,7 +149,7 @@ def recall(events: Path, neighbours: Path, sample: int, seed: int = 0, threshold
     found = {e: np.searchsorted(keys, np.asarray(n)) for e, n in
              published.group_by("entity").agg("neighbour").iter_rows()}
     mt = m.T.tocsc()
-    need_total = hit_total = 0
+    needs, hits = [], []
     for lo in range(0, len(picked), 50):
         block = picked[lo:lo + 50]
         inter = (m[block] @ mt).toarray()
@@ -158,9 +162,14 @@ def recall(events: Path, neighbours: Path, sample: int, seed: int = 0, threshold
                 continue
             kth = np.partition(above, len(above) - need)[len(above) - need]
             got = found.get(keys[e], np.zeros(0, dtype=np.int64))
-            hit_total += min(need, int((jac[i][got] >= max(kth, threshold)).sum()))
-            need_total += need
-    return (hit_total / need_total if need_total else float("nan")), need_total, len(picked)
+            hits.append(min(need, int((jac[i][got] >= max(kth, threshold)).sum())))
+            needs.append(need)
+    need, hit = np.asarray(needs, dtype=np.float64), np.asarray(hits, dtype=np.float64)
+    if not need.sum():
+        return float("nan"), 0, len(picked), float("nan")
+    found = hit.sum() / need.sum()
+    error = float(np.sqrt(((hit - found * need) ** 2).sum()) / need.sum())
+    return float(found), int(need.sum()), len(picked), error
 
 
 def main() -> None:
@@ -228,12 +237,12 @@ def main() -> None:
             if n in args.entities:
                 best = _best_of(events, tmp, n, args.repeat, args.baseline, variant)
                 wall, m, run_out, cpu = best["this tree"]
-                rec, pairs, sampled = recall(events, run_out / "neighbours.parquet", args.sample)
+                rec, pairs, sampled, err = recall(events, run_out / "neighbours.parquet", args.sample)
                 plan, c = m["plan"], m["counts"]
                 stages = _stages(m)
                 if "baseline" in best:
                     base_wall, base_m, base_out, base_cpu = best["baseline"]
-                    base_rec = recall(events, base_out / "neighbours.parquet", args.sample)[0]
+                    base_rec, _, _, base_err = recall(events, base_out / "neighbours.parquet", args.sample)
                     mine = pl.read_parquet(run_out / "neighbours.parquet")
                     theirs = pl.read_parquet(base_out / "neighbours.parquet")
                     cols = sorted(set(mine.columns) & set(theirs.columns))
@@ -242,14 +251,14 @@ def main() -> None:
                     notes.append(f"{n:,} entities, baseline {args.baseline or 'this tree without ' + args.variant}: "
                                  f"{base_wall:.2f} s (k, b, r {base_plan['perms']}, {base_plan['bands']}, "
                                  f"{base_plan['rows']}; {base_m['counts']['candidate_pairs']:,} candidates; recall "
-                                 f"{base_rec:.3f}; {_stages(base_m)}); "
+                                 f"{base_rec:.3f} ± {base_err:.3f}; {_stages(base_m)}); "
                                  f"this tree / baseline {wall / base_wall:.3f}; CPU time (user + system, best of "
                                  f"{args.repeat}; steadier than the wall clock on a shared machine) {cpu:.1f} s "
                                  f"against {base_cpu:.1f} s, {cpu / base_cpu:.3f}; neighbours identical: {same}")
                 ratio = f"{'< ' if ref_bound else ''}{wall / ref:.2f}x" if ref else ""
                 cells = [f"{wall:.2f}", ratio, f"{wall / floor:.0f}x (CPU {cpu / floor_cpu:.0f}x)",
                          f"{plan['perms']}, {plan['bands']}, {plan['rows']}", f"{c['candidate_pairs']:,}",
-                         f"{rec:.3f} ({sampled} entities, {pairs:,} true pairs)", f"{stages}"]
+                         f"{rec:.3f} ± {err:.3f} ({sampled} entities, {pairs:,} true pairs)", f"{stages}"]
             else:
                 cells = ["", "", "", "", "", "", ""]
             ref_cell = "" if ref is None else ("> " if ref_bound else "") + f"{ref:.1f}{ref_note}"

@@ -90,13 +90,15 @@ def main() -> None:
             peaks = manifest["peak_memory_bytes"]
             stage = max(peaks, key=peaks.get)
             plan = manifest["plan"]
-            rec, pairs, _ = recall(events, out / "neighbours.parquet", args.sample, threshold=threshold, top_k=top_k)
+            rec, pairs, _, err = recall(events, out / "neighbours.parquet", args.sample, threshold=threshold,
+                                        top_k=top_k)
             counts = manifest["counts"]
             lines.append(
                 f"| {exponent} | {copies} | {threshold} | {top_k} | {counts['events']:,} | 0 | {wall:.1f} | {cpu:.1f} "
                 f"| {peaks[stage] / 2**30:.2f} GiB ({stage}) / {manifest['memory_budget_bytes'] / 2**30:.2f} GiB "
                 f"| {plan.get('perms')}, {plan.get('bands')}, {plan.get('rows')} | {counts['candidate_pairs']:,} "
-                f"| {counts['verified_pairs']:,} | {rec:.3f} ({pairs:,}) | {len(manifest.get('warnings', []))} |")
+                f"| {counts['verified_pairs']:,} | {rec:.3f} ± {err:.3f} ({pairs:,}) "
+                f"| {len(manifest.get('warnings', []))} |")
             print(lines[-1], flush=True)
     finish(f"Other long-tailed shapes, {args.entities:,} entities{variant}", "\n".join(lines), not args.no_write)
 

@@ -42,14 +42,15 @@ def plan_report(summary: dict) -> str:
         lines.append("")
         lists = chosen.get("expected_list_recall") is not None  # --recall-of lists: the target's column
         lines.append(
-            f"{'':2}{'k':>5}{'b':>5}{'r':>4}{'recall':>8}" + (f"{'lists':>8}" if lists else "")
+            f"{'':2}{'k':>5}{'b':>5}{'r':>4}{'recall':>8}" + (f"{'lists':>8}{'bound':>8}" if lists else "")
             + f"{'candidates':>13}{'per entity':>12}{'verified':>12}{'false cand.':>13}{'bucket rows':>13}"
         )
         for i, p in enumerate(rows):
             mark = "> " if i == 0 else "  "
             lines.append(
                 f"{mark}{p['perms']:>5}{p['bands']:>5}{p['rows']:>4}{p['expected_recall']:>8.3f}"
-                + (f"{p.get('expected_list_recall') or 0:>8.3f}" if lists else "") +
+                + (f"{p.get('expected_list_recall') or 0:>8.3f}{p.get('list_recall_low') or 0:>8.3f}" if lists
+                   else "") +
                 f"{_fmt(p['expected_candidates']):>13}{_fmt(p['candidates_per_entity']):>12}"
                 f"{_fmt(p['expected_verified']):>12}{_fmt(p['expected_false_candidates']):>13}"
                 f"{p['bucket_rows']:>13,}"
@@ -79,7 +80,9 @@ def run_report(m: dict) -> str:
             lines.append(
                 head + f"predicted recall {p['expected_recall']:.3f}"
                 + ("" if p.get("expected_list_recall") is None else
-                   f" (of the top-{m['top_k_effective']} lists: {p['expected_list_recall']:.3f})")
+                   f" (of the top-{m['top_k_effective']} lists: {p['expected_list_recall']:.3f}"
+                   + ("" if p.get("list_recall_low") is None else f", lower bound {p['list_recall_low']:.3f}")
+                   + ")")
                 + f", {p['expected_candidates']:,.0f} candidate pairs"
             )
     lines.append(
