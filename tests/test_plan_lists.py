@@ -12,6 +12,7 @@ from typer.testing import CliRunner
 
 from lshjob import EventSpec
 from lshjob.cli.app import app
+from lshjob.errors import ParameterError
 from lshjob.ingest.loading import load_membership
 from lshjob.jobs.run import RunOptions, run_job
 from lshjob.plan import similarity
@@ -127,6 +128,17 @@ def test_plans_on_lists_meet_the_target_by_the_bound_and_the_cheapest_is_chosen(
     cheaper = [p for p in judged if p.expected_candidates < chosen.expected_candidates]
     assert cheaper and all(p.list_recall_low < 0.95 for p in cheaper)
     assert any(p.expected_list_recall >= 0.95 for p in cheaper)
+
+
+def test_a_target_the_estimate_reaches_but_its_bound_does_not_is_refused_with_both(hist):
+    # With k=4 the best plan (4 bands of 1 row) has an estimate above the bound; a target
+    # between the two is refused, and the message gives the estimate and the bound.
+    (best,) = [p for p in data_plans(THRESHOLD, hist, (4,), 1e-9, TOP_K) if (p.bands, p.rows) == (4, 1)]
+    target = round((best.expected_list_recall + best.list_recall_low) / 2, 6)
+    assert best.list_recall_low < target < best.expected_list_recall
+    with pytest.raises(ParameterError, match=rf"nearest is k=4, b=4, r=1 with expected recall of the top-{TOP_K} "
+                       rf"lists {best.expected_list_recall:.4f} \(lower bound {best.list_recall_low:.4f}\)"):
+        data_plans(THRESHOLD, hist, (4,), target, TOP_K)
 
 
 def test_a_run_planned_on_lists_finds_its_predicted_share_of_the_true_lists(loans, tmp_path):

@@ -274,19 +274,14 @@ def data_plans(
                 )
             )
     feasible = [p for p in plans if p.meets_target]
-    if not feasible and top_k is not None:  # too few sampled lists for the margin: their estimate meets it
-        feasible = [p for p in plans if (p.expected_list_recall or 0.0) >= recall]
-        for p in feasible:
-            p.meets_target = True
-            p.notes.append(f"no plan's lower bound on the list recall reaches {recall} (too few sampled "
-                           "lists for the margin): met by the estimate")
     if not feasible:
-        best = max(plans, key=lambda p: (target_recall(p), -p.perms))
+        best = max(plans, key=lambda p: (met_on(p), -p.perms))
         what = "recall" if best.expected_list_recall is None else f"recall of the top-{top_k} lists"
+        bound = "" if best.list_recall_low is None else f" (lower bound {best.list_recall_low:.4f})"
         raise ParameterError(
             f"no plan reaches expected {what} {recall} at threshold {threshold} with k in "
             f"{', '.join(map(str, perms_choices))}; the nearest is k={best.perms}, b={best.bands}, "
-            f"r={best.rows} with expected {what} {target_recall(best):.4f}"
+            f"r={best.rows} with expected {what} {target_recall(best):.4f}{bound}"
             + _larger_k_hint(threshold, histogram, perms_choices, recall, top_k)
         )
     fewest = min(p.expected_candidates for p in feasible)
@@ -375,9 +370,13 @@ def target_recall(plan: DataPlan) -> float:
     return target_recall_of(plan.as_dict())
 
 
+def met_on(plan: DataPlan) -> float:
+    """The figure a plan meets its target on: the lists' lower bound when figured (data_plans)."""
+    return target_recall(plan) if plan.list_recall_low is None else plan.list_recall_low
+
+
 def meets(plan: DataPlan, recall: float) -> bool:
-    """Whether ``plan`` meets ``recall``: by the lists' lower bound when figured (data_plans)."""
-    return (target_recall(plan) if plan.list_recall_low is None else plan.list_recall_low) >= recall
+    return met_on(plan) >= recall
 
 
 def target_recall_of(figures: dict) -> float | None:
