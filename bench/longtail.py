@@ -167,9 +167,9 @@ def recall(events: Path, neighbours: Path, sample: int, seed: int = 0, threshold
     need, hit = np.asarray(needs, dtype=np.float64), np.asarray(hits, dtype=np.float64)
     if not need.sum():
         return float("nan"), 0, len(picked), float("nan")
-    found = hit.sum() / need.sum()
-    error = float(np.sqrt(((hit - found * need) ** 2).sum()) / need.sum())
-    return float(found), int(need.sum()), len(picked), error
+    share = hit.sum() / need.sum()  # not ``found``: that names the published lists above
+    error = float(np.sqrt(((hit - share * need) ** 2).sum()) / need.sum())
+    return float(share), int(need.sum()), len(picked), error
 
 
 def main() -> None:
