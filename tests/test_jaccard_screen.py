@@ -1,6 +1,7 @@
 """The mask screen of verification (lshjob/index/verify/_jaccard.py jaccard_screened): the same
 values as the merge without it, and both as exact brute force with Python sets gives them
-(J = |A n B| / |A u B|, kept where J >= t, -1.0 elsewhere)."""
+(J = |A n B| / |A u B|, kept where J >= t, -1.0 elsewhere); the rows kept by the screen in two
+passes over blocks (screened_rows), the same as brute force's, in the candidates' order."""
 
 from __future__ import annotations
 
@@ -9,7 +10,7 @@ import polars as pl
 import pytest
 
 from lshjob.core.sets import ElementSets
-from lshjob.index.verify._jaccard import element_masks, jaccard_between, jaccard_screened
+from lshjob.index.verify._jaccard import SCREEN_BLOCK, element_masks, jaccard_between, jaccard_screened, screened_rows
 from lshjob.index.verify.local import verify_between
 
 
@@ -89,3 +90,47 @@ def test_verify_between_with_masks_kept_or_made_gives_the_same_rows():
     truth = [(a + 1000, b + 1000) for a, b in zip(left, right)
              if len(set(sets[a]) & set(sets[b])) / len(set(sets[a]) | set(sets[b])) >= 0.4]
     assert list(zip(made["left_rep"].to_list(), made["right_rep"].to_list())) == truth
+
+
+@pytest.mark.parametrize("threshold", [0.3, 0.5, 1.0])
+def test_the_rows_kept_block_by_block_are_brute_forces_in_the_candidates_order(threshold):
+    """Oracle: exact Jaccard of Python sets, candidate by candidate. More candidates than three
+    blocks, and both sides' ids offset (sets held from an entity id on), so rows cross blocks."""
+    rng = np.random.default_rng(11)
+    sets = _sets(rng, 500)
+    offsets, elements = _csr(sets)
+    masks = element_masks(offsets, elements)
+    n = 3 * SCREEN_BLOCK + 1234
+    left, right = rng.integers(0, 250, size=n), rng.integers(250, 500, size=n)
+    near = rng.integers(0, 499, size=n // 4)  # neighbours in order: near-copies, pairs at the threshold
+    left[: n // 4], right[: n // 4] = near, near + 1
+    rng.shuffle(order := np.arange(n))
+    left, right = left[order], right[order]
+    bands = rng.integers(1, 5, size=n).astype(np.int32)
+    got = screened_rows(offsets, elements, masks, left + 700, 700, offsets, elements, masks, right + 900, 900, bands,
+                        threshold)
+    jaccard = np.array([len(set(sets[a]) & set(sets[b])) / len(set(sets[a]) | set(sets[b]))
+                        for a, b in zip(left, right)])
+    kept = np.flatnonzero(jaccard >= threshold)
+    assert len(kept) > 100 and len(kept) < n  # both sides of the threshold were met
+    assert np.array_equal(got[0], left[kept] + 700) and np.array_equal(got[1], right[kept] + 900)
+    assert np.array_equal(got[2], jaccard[kept]) and np.array_equal(got[3], bands[kept])
+    assert got[4] == 0 and got[5] == 0
+
+
+def test_ids_outside_the_sets_held_are_counted_by_side_and_refused_by_verification():
+    rng = np.random.default_rng(3)
+    sets = _sets(rng, 50)
+    offsets, elements = _csr(sets)
+    masks = element_masks(offsets, elements)
+    left = np.array([0, 1, 49, 50, 2])  # 50: one past the last set
+    right = np.array([1, -1, 3, 4, 60])
+    got = screened_rows(offsets, elements, masks, left, 0, offsets, elements, masks, right, 0,
+                        np.ones(5, dtype=np.int32), 0.5)
+    assert (got[4], got[5]) == (1, 2)
+    assert not np.isin(got[0], [49, 50, 2]).any()  # no row of a pair with an id outside
+    held = ElementSets(pl.Series("entity", np.arange(len(sets))), offsets, elements)
+    chunk = pl.DataFrame({"left_rep": left + 10, "right_rep": np.array([1, 2, 3, 4, 5]) + 10,
+                          "bands_shared": np.ones(5, dtype=np.int32)})
+    with pytest.raises(AssertionError, match="left ids outside the sets given"):
+        verify_between(chunk, held, 10, held, 10, 0.5)

@@ -104,6 +104,23 @@ def _bits(x):
     return (x * np.uint64(0x0101010101010101)) >> np.uint64(56)
 
 
+@numba.njit(inline="always")
+def _screened(left_offsets, left_elements, left_masks, a, right_offsets, right_elements, right_masks, b, threshold):
+    """The Jaccard of sets a and b when it reaches ``threshold``, else -1.0 (:func:`jaccard_screened`)."""
+    a0, a1 = left_offsets[a], left_offsets[a + 1]
+    b0, b1 = right_offsets[b], right_offsets[b + 1]
+    la, lb = a1 - a0, b1 - b0
+    if min(la, lb) < threshold * max(la, lb) - 1e-9:
+        return -1.0
+    need = int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9))
+    ma, mb = left_masks[a], right_masks[b]
+    if min(la - np.int64(_bits(ma & ~mb)), lb - np.int64(_bits(mb & ~ma))) < need:
+        return -1.0
+    inter = _intersection(left_elements, a0, a1, right_elements, b0, b1, need)
+    jac = inter / (la + lb - inter)
+    return jac if (inter >= need and jac >= threshold) else -1.0
+
+
 @numba.njit(parallel=True, cache=True)
 def jaccard_screened(left_offsets, left_elements, left_masks, left, right_offsets, right_elements, right_masks,
                      right, threshold):
@@ -115,22 +132,55 @@ def jaccard_screened(left_offsets, left_elements, left_masks, left, right_offset
     n = left.shape[0]
     out = np.empty(n, dtype=np.float64)
     for p in numba.prange(n):
-        a, b = left[p], right[p]
-        a0, a1 = left_offsets[a], left_offsets[a + 1]
-        b0, b1 = right_offsets[b], right_offsets[b + 1]
-        la, lb = a1 - a0, b1 - b0
-        if min(la, lb) < threshold * max(la, lb) - 1e-9:
-            out[p] = -1.0
-            continue
-        need = int(np.ceil(threshold / (1.0 + threshold) * (la + lb) - 1e-9))
-        ma, mb = left_masks[a], right_masks[b]
-        if min(la - np.int64(_bits(ma & ~mb)), lb - np.int64(_bits(mb & ~ma))) < need:
-            out[p] = -1.0
-            continue
-        inter = _intersection(left_elements, a0, a1, right_elements, b0, b1, need)
-        jac = inter / (la + lb - inter)
-        out[p] = jac if (inter >= need and jac >= threshold) else -1.0
+        out[p] = _screened(left_offsets, left_elements, left_masks, left[p], right_offsets, right_elements,
+                           right_masks, right[p], threshold)
     return out
+
+
+SCREEN_BLOCK = 1 << 16  # candidates a task of :func:`screened_rows`
+
+
+@numba.njit(parallel=True, cache=True)
+def screened_rows(left_offsets, left_elements, left_masks, left, left_first, right_offsets, right_elements,
+                  right_masks, right, right_first, bands, threshold):
+    """The candidates (entity ids ``left[p]`` from ``left_first``, ``right[p]`` from
+    ``right_first``, ``bands[p]``) whose Jaccard (:func:`jaccard_screened`'s) reaches
+    ``threshold``, in the candidates' order: (left, right, jaccard, bands), made in two passes
+    over blocks of candidates (the values and each block's count, then the rows kept), so no
+    mask or gather of every candidate is made beside them; and how many left and right ids lie
+    outside the sets given (their pairs are not kept; the caller refuses them)."""
+    n = left.shape[0]
+    blocks = (n + SCREEN_BLOCK - 1) // SCREEN_BLOCK
+    values = np.empty(n, dtype=np.float64)
+    kept = np.zeros(blocks + 1, dtype=np.int64)
+    outside = np.zeros((blocks, 2), dtype=np.int64)
+    na, nb = len(left_offsets) - 1, len(right_offsets) - 1
+    for k in numba.prange(blocks):
+        count = 0
+        for p in range(k * SCREEN_BLOCK, min(n, (k + 1) * SCREEN_BLOCK)):
+            a, b = left[p] - left_first, right[p] - right_first
+            if a < 0 or a >= na or b < 0 or b >= nb:
+                outside[k, 0] += a < 0 or a >= na
+                outside[k, 1] += b < 0 or b >= nb
+                values[p] = -1.0
+                continue
+            values[p] = _screened(left_offsets, left_elements, left_masks, a, right_offsets, right_elements,
+                                  right_masks, b, threshold)
+            count += values[p] >= threshold
+        kept[k + 1] = count
+    for k in range(blocks):
+        kept[k + 1] += kept[k]
+    out_left = np.empty(kept[blocks], dtype=np.int64)
+    out_right = np.empty(kept[blocks], dtype=np.int64)
+    out_jaccard = np.empty(kept[blocks], dtype=np.float64)
+    out_bands = np.empty(kept[blocks], dtype=np.int32)
+    for k in numba.prange(blocks):
+        q = kept[k]
+        for p in range(k * SCREEN_BLOCK, min(n, (k + 1) * SCREEN_BLOCK)):
+            if values[p] >= threshold:
+                out_left[q], out_right[q], out_jaccard[q], out_bands[q] = left[p], right[p], values[p], bands[p]
+                q += 1
+    return out_left, out_right, out_jaccard, out_bands, outside[:, 0].sum(), outside[:, 1].sum()
 
 
 @numba.njit(parallel=True, cache=True)

@@ -23,9 +23,9 @@ from lshjob.index.verify._jaccard import (
     exact_jaccard_between,
     intersections_of,
     jaccard_from,
-    jaccard_screened,
     pair_keys,
     pairs_of_keys,
+    screened_rows,
 )
 from lshjob.index.verify._reserve import reserve_pieces
 from lshjob.index.verify.base import SetStore, VerifySettings, empty_verified
@@ -261,23 +261,19 @@ def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first:
     keeps them for several calls (made here otherwise)."""
     left = np.ascontiguousarray(candidates["left_rep"].to_numpy(), dtype=np.int64)
     right = np.ascontiguousarray(candidates["right_rep"].to_numpy(), dtype=np.int64)
-    _check_within(left, left_first, left_sets.size, "left")
-    _check_within(right, right_first, right_sets.size, "right")
     if masks is None:
         left_masks = element_masks(left_sets.offsets, left_sets.elements)
         masks = (left_masks, left_masks if right_sets is left_sets else
                  element_masks(right_sets.offsets, right_sets.elements))
-    jac = jaccard_screened(left_sets.offsets, left_sets.elements, masks[0], left - left_first,
-                           right_sets.offsets, right_sets.elements, masks[1], right - right_first, threshold)
-    keep = jac >= threshold
-    return pl.DataFrame(
-        {
-            "left_rep": left[keep],
-            "right_rep": right[keep],
-            "jaccard": jac[keep],
-            "bands_shared": candidates["bands_shared"].to_numpy()[keep].astype(np.int32),
-        }
-    )
+    left, right, jac, bands, left_out, right_out = screened_rows(
+        left_sets.offsets, left_sets.elements, masks[0], left, left_first, right_sets.offsets, right_sets.elements,
+        masks[1], right, right_first, np.ascontiguousarray(candidates["bands_shared"].to_numpy(), dtype=np.int32),
+        threshold)
+    if left_out:
+        _outside(left_first, left_sets.size, "left")
+    if right_out:
+        _outside(right_first, right_sets.size, "right")
+    return pl.DataFrame({"left_rep": left, "right_rep": right, "jaccard": jac, "bands_shared": bands})
 
 
 def one_row_a_pair(verified: pl.DataFrame, jaccard_of=None, held_sets=None) -> pl.DataFrame:
@@ -381,9 +377,8 @@ def _exact(left_sets: ElementSets, left_first: int, right_sets: ElementSets, rig
                                  right_sets.offsets, right_sets.elements, right - right_first)
 
 
-def _check_within(ids: np.ndarray, first: int, size: int, side: str) -> None:
-    if len(ids) and (ids.min() < first or ids.max() >= first + size):
-        raise AssertionError(f"{side} ids outside the sets given ({first}..{first + size - 1})")
+def _outside(first: int, size: int, side: str) -> None:
+    raise AssertionError(f"{side} ids outside the sets given ({first}..{first + size - 1})")
 
 
 def _block_files(candidates: Path, parts: int, i: int, j: int) -> list[str]:
