@@ -206,3 +206,23 @@ def test_each_sides_cut_is_the_value_its_list_fills_at_and_a_floor_for_more_pair
     kept_some = pairs_in_lists(left[some], right[some], jaccard[some], sizes, top_k)
     dropped = np.flatnonzero(some)[~kept_some]
     assert len(dropped) > 0 and not keep[dropped].any()
+
+
+def test_pairs_laid_out_by_side_in_tasks_are_a_stable_sort_of_both_sides():
+    """lshjob/index/_ranking.py _by_side, in 1, 2 and 3 tasks. Oracle: numpy's stable argsort of
+    each pair's two sides (left then right, pairs in order), and a count of each side for the
+    starts; the tasks share a side's slots out in their order, so every count of tasks gives
+    the one layout."""
+    from lshjob.index._ranking import _by_side
+
+    rng = np.random.default_rng(8)
+    groups, n = 5000, 40_001
+    left = rng.integers(0, groups - 1, size=n)
+    right = np.minimum(groups - 1, left + 1 + rng.zipf(1.5, size=n) % 300)  # popular sides: long runs
+    sides = np.empty(2 * n, dtype=np.int64)
+    sides[0::2], sides[1::2] = left, right
+    starts = np.concatenate([[0], np.cumsum(np.bincount(sides, minlength=groups))])
+    pair = np.argsort(sides, kind="stable") // 2
+    for tasks in (1, 2, 3):
+        got_starts, got_pair = _by_side(left, right, groups, tasks)
+        assert np.array_equal(got_starts, starts) and np.array_equal(got_pair, pair)

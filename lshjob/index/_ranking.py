@@ -212,18 +212,37 @@ def member_rows(ids: np.ndarray, reps: np.ndarray, counts: np.ndarray, list_star
     return out
 
 
-@numba.njit(cache=True)
-def _by_side(left, right, groups):
+SIDE_TASK = 1 << 18  # pairs a task of :func:`_by_side` at least
+
+
+@numba.njit(parallel=True, cache=True)
+def _by_side(left, right, groups, tasks):
     """Each pair under both its sides (a counting sort): (starts, pair) with the pairs of
-    side g at ``pair[starts[g]:starts[g + 1]]``."""
+    side g at ``pair[starts[g]:starts[g + 1]]``, ascending. ``tasks`` of consecutive pairs
+    count and then place their own; a side's slots are shared out in task order, so the pairs
+    are where one pass over them in order would put them."""
+    n = len(left)
+    step = (n + tasks - 1) // tasks
+    fill = np.zeros((tasks, groups), dtype=np.int64)
+    for t in numba.prange(tasks):
+        for p in range(t * step, min(n, (t + 1) * step)):
+            fill[t, left[p]] += 1
+            fill[t, right[p]] += 1
     starts = np.zeros(groups + 1, dtype=np.int64)
-    fill = _side_starts(left, right, groups, starts)
-    pair = np.empty(2 * len(left), dtype=np.int64)
-    for p in range(len(left)):
-        pair[fill[left[p]]] = p
-        fill[left[p]] += 1
-        pair[fill[right[p]]] = p
-        fill[right[p]] += 1
+    for g in range(groups):  # each task's first slot in side g, in task order
+        at = starts[g]
+        for t in range(tasks):
+            count = fill[t, g]
+            fill[t, g] = at
+            at += count
+        starts[g + 1] = at
+    pair = np.empty(2 * n, dtype=np.int64)
+    for t in numba.prange(tasks):
+        for p in range(t * step, min(n, (t + 1) * step)):
+            pair[fill[t, left[p]]] = p
+            fill[t, left[p]] += 1
+            pair[fill[t, right[p]]] = p
+            fill[t, right[p]] += 1
     return starts, pair
 
 
@@ -349,8 +368,9 @@ def list_cuts(left: np.ndarray, right: np.ndarray, jaccard: np.ndarray, group_si
     if len(left) == 0:
         return keep, cutoffs
     groups = int(max(left.max(), right.max())) + 1
+    tasks = max(1, min(numba.get_num_threads(), len(left) // SIDE_TASK))
     starts, pair = _by_side(np.ascontiguousarray(left, dtype=np.int64), np.ascontiguousarray(right, dtype=np.int64),
-                            groups)
+                            groups, tasks)
     capped = np.minimum(cap, np.asarray(group_sizes[:groups], dtype=np.int64))
     _cut_both(starts, pair, np.ascontiguousarray(left, dtype=np.int64), np.ascontiguousarray(right, dtype=np.int64),
               np.ascontiguousarray(jaccard, dtype=np.float64), capped, cap, keep, cutoffs[:groups])
