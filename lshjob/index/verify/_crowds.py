@@ -194,7 +194,10 @@ def _crowd_pairs_within(offsets, elements, first, members, start, count, base, r
             for i in range(met):
                 y = touched[i]
                 inter, shared[y] = common + shared[y], 0
-                if need_for(la, size[y], threshold) > common:  # (the others were gathered above)
+                need = need_for(la, size[y], threshold)
+                # (those C alone may take there were gathered above; one sharing fewer than the
+                # threshold needs is below every value it is sought at: not tried)
+                if need > common and inter >= need:
                     cand_y[n], cand_inter[n] = y, inter
                     n += 1
             for q in range(local_off[x], local_off[x] + (0 if counted else prefix[x])):
