@@ -259,20 +259,22 @@ def verify_between(candidates: pl.DataFrame, left_sets: ElementSets, left_first:
     ones' ``right_sets`` (from ``right_first``): the sets held a key range at a time.
     ``masks``: both sides' :func:`lshjob.index.verify._jaccard.element_masks`, when the caller
     keeps them for several calls (made here otherwise)."""
-    left = np.ascontiguousarray(candidates["left_rep"].to_numpy(), dtype=np.int64)
-    right = np.ascontiguousarray(candidates["right_rep"].to_numpy(), dtype=np.int64)
     if masks is None:
         left_masks = element_masks(left_sets.offsets, left_sets.elements)
         masks = (left_masks, left_masks if right_sets is left_sets else
                  element_masks(right_sets.offsets, right_sets.elements))
-    left, right, jac, bands, left_out, right_out = screened_rows(
-        left_sets.offsets, left_sets.elements, masks[0], left, left_first, right_sets.offsets, right_sets.elements,
-        masks[1], right, right_first, np.ascontiguousarray(candidates["bands_shared"].to_numpy(), dtype=np.int32),
-        threshold)
-    if left_out:
-        _outside(left_first, left_sets.size, "left")
-    if right_out:
-        _outside(right_first, right_sets.size, "right")
+    # a chunk of the columns at a time (the Parquet file's row groups): read-only views, no copy
+    columns = [candidates.get_column(name) for name in ("left_rep", "right_rep", "bands_shared")]
+    chunks = [column.get_chunks() for column in columns]
+    if len({tuple(len(chunk) for chunk in pieces) for pieces in chunks}) != 1:
+        chunks = [[column.rechunk()] for column in columns]
+    kept = [screened_rows(left_sets.offsets, left_sets.elements, masks[0], _ids(left, np.int64), left_first,
+                          right_sets.offsets, right_sets.elements, masks[1], _ids(right, np.int64), right_first,
+                          _ids(bands, np.int32), threshold) for left, right, bands in zip(*chunks)]
+    for side, first, size, at in (("left", left_first, left_sets.size, 4), ("right", right_first, right_sets.size, 5)):
+        if any(rows[at] for rows in kept):
+            raise AssertionError(f"{side} ids outside the sets given ({first}..{first + size - 1})")
+    left, right, jac, bands = (np.concatenate([rows[i] for rows in kept]) for i in range(4))
     return pl.DataFrame({"left_rep": left, "right_rep": right, "jaccard": jac, "bands_shared": bands})
 
 
@@ -377,8 +379,9 @@ def _exact(left_sets: ElementSets, left_first: int, right_sets: ElementSets, rig
                                  right_sets.offsets, right_sets.elements, right - right_first)
 
 
-def _outside(first: int, size: int, side: str) -> None:
-    raise AssertionError(f"{side} ids outside the sets given ({first}..{first + size - 1})")
+def _ids(column: pl.Series, dtype) -> np.ndarray:
+    """A column chunk as a read-only view (:func:`lshjob.core.compile_cache.readonly`)."""
+    return readonly(column.to_numpy().astype(dtype, copy=False))
 
 
 def _block_files(candidates: Path, parts: int, i: int, j: int) -> list[str]:
