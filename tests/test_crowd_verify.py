@@ -216,11 +216,12 @@ def test_floors_a_crowd_raises_drop_only_pairs_no_list_takes(seed, how):
 
 
 @pytest.mark.parametrize("seed", [1, 2])
-def test_a_crowds_ranks_count_each_element_and_order_rarest_first_ties_by_key(seed):
+def test_a_crowds_ranks_count_each_element_and_order_rarest_first_ties_as_met(seed):
     """The crowd index's rarity (``_rarity``: a hash table of the crowd's elements) against
     collections.Counter: each distinct element once, how many members hold it, and its rank
-    among (members holding it, key) ascending. Keys span the int64 range, negatives included,
-    and thousands of them, so the table's probes run into one another."""
+    among (members holding it, place first met in the members' sets in order) ascending. Keys
+    span the int64 range, negatives included, and thousands of them, so the table's probes run
+    into one another."""
     rng = np.random.default_rng(seed)
     catalogue = np.unique(np.concatenate([rng.integers(-2**63, 2**63 - 1, 3000, dtype=np.int64),
                                           np.arange(-50, 2000, dtype=np.int64) * 4096]))
@@ -236,8 +237,9 @@ def test_a_crowds_ranks_count_each_element_and_order_rarest_first_ties_by_key(se
     values, freq, rank, size, which = _rarity(offsets, elements, 0, members)
     sets = sets[::-1]
     held = Counter(x for s in sets for x in s)
-    order = sorted(held, key=lambda x: (held[x], x))
     flat = [x for s in sets for x in s]
+    met = {x: flat.index(x) for x in held}
+    order = sorted(held, key=lambda x: (held[x], met[x]))
     assert len(values) == len(held) and list(size) == [len(s) for s in sets]
     assert [int(values[u]) for u in which] == flat
     assert [int(freq[u]) for u in which] == [held[x] for x in flat]
