@@ -1,4 +1,4 @@
-"""The mask screen of verification (lshjob/index/verify/_jaccard.py jaccard_screened): the same
+"""The mask screen of verification (lshjob/index/verify/_jaccard.py screened_rows): the same
 values as the merge without it, and both as exact brute force with Python sets gives them
 (J = |A n B| / |A u B|, kept where J >= t, -1.0 elsewhere); the rows kept by the screen in two
 passes over blocks (screened_rows), the same as brute force's, in the candidates' order."""
@@ -10,7 +10,7 @@ import polars as pl
 import pytest
 
 from lshjob.core.sets import ElementSets
-from lshjob.index.verify._jaccard import SCREEN_BLOCK, element_masks, jaccard_between, jaccard_screened, screened_rows
+from lshjob.index.verify._jaccard import SCREEN_BLOCK, element_masks, jaccard_between, screened_rows
 from lshjob.index.verify.local import verify_between
 
 
@@ -50,7 +50,12 @@ def test_the_screen_gives_the_merges_values_and_brute_forces(seed, threshold):
     left = np.concatenate([left, np.arange(len(sets) - 1)])
     right = np.concatenate([right, np.arange(1, len(sets))])
     masks = element_masks(offsets, elements)
-    screened = jaccard_screened(offsets, elements, masks, left, offsets, elements, masks, right, threshold)
+    rows = screened_rows(offsets, elements, masks, left, 0, offsets, elements, masks, right, 0,
+                         np.ones(len(left), dtype=np.int32), threshold)
+    screened = np.full(len(left), -1.0)
+    at = np.flatnonzero(jaccard_between(offsets, elements, left, offsets, elements, right, threshold) >= threshold)
+    assert np.array_equal(rows[0], left[at]) and np.array_equal(rows[1], right[at])  # the merge's pairs, in order
+    screened[at] = rows[2]
     merged = jaccard_between(offsets, elements, left, offsets, elements, right, threshold)
     assert np.array_equal(screened, merged)  # the same floats, -1.0 at the same places
     expected = []

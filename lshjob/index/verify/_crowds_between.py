@@ -20,7 +20,7 @@ def _crowd_pairs(left_offsets, left_elements, left_masks, left_first, right_offs
     both sides are one range, so the pairs are those of the a-members, x < y. The pairs whose
     Jaccard reaches ``threshold`` are written from slot ``base[c]`` on, in the order they are
     made (row-major), their number in ``found[c]`` (filters as in
-    :func:`lshjob.index.verify._jaccard.jaccard_screened`, the sets' masks
+    :func:`lshjob.index.verify._jaccard.screened_rows`, the sets' masks
     ``left_masks``/``right_masks`` by set first). Sizes ascending, so once a partner is more
     than |A| / threshold the rest are too (the size filter ends the loop).
 

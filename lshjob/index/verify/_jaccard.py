@@ -84,7 +84,7 @@ def jaccard_between(left_offsets, left_elements, left, right_offsets, right_elem
 def element_masks(offsets, elements):
     """One 64-bit mask a set of a CSR: each element sets bit (code x 2^64/phi) >> 58 (Fibonacci
     hashing; any fixed map of elements to bits would do). Two sets' masks bound their
-    intersection (:func:`jaccard_screened`)."""
+    intersection (:func:`_screened`)."""
     n = offsets.shape[0] - 1
     out = np.empty(n, dtype=np.uint64)
     for s in numba.prange(n):
@@ -106,7 +106,12 @@ def _bits(x):
 
 @numba.njit(inline="always")
 def _screened(left_offsets, left_elements, left_masks, a, right_offsets, right_elements, right_masks, b, threshold):
-    """The Jaccard of sets a and b when it reaches ``threshold``, else -1.0 (:func:`jaccard_screened`)."""
+    """The Jaccard of sets a and b when it reaches ``threshold``, else -1.0: :func:`jaccard_between`'s
+    values, with the sets' :func:`element_masks` read first. A bit of A's mask that B's lacks
+    comes from an element of A outside B, and distinct bits from distinct elements, so
+    |A n B| <= |A| - popcount(mA & ~mB), and likewise from B's side. A pair whose bound is below
+    the intersection the threshold needs is not merged: on long-tailed data most candidates
+    fail there, reading 8 bytes a set instead of its elements."""
     a0, a1 = left_offsets[a], left_offsets[a + 1]
     b0, b1 = right_offsets[b], right_offsets[b + 1]
     la, lb = a1 - a0, b1 - b0
@@ -121,22 +126,6 @@ def _screened(left_offsets, left_elements, left_masks, a, right_offsets, right_e
     return jac if (inter >= need and jac >= threshold) else -1.0
 
 
-@numba.njit(parallel=True, cache=True)
-def jaccard_screened(left_offsets, left_elements, left_masks, left, right_offsets, right_elements, right_masks,
-                     right, threshold):
-    """:func:`jaccard_between`, the same values, with the sets' :func:`element_masks` read first:
-    a bit of A's mask that B's lacks comes from an element of A outside B, and distinct bits
-    from distinct elements, so |A n B| <= |A| - popcount(mA & ~mB), and likewise from B's side.
-    A pair whose bound is below the intersection the threshold needs is not merged: on
-    long-tailed data most candidates fail there, reading 8 bytes a set instead of its elements."""
-    n = left.shape[0]
-    out = np.empty(n, dtype=np.float64)
-    for p in numba.prange(n):
-        out[p] = _screened(left_offsets, left_elements, left_masks, left[p], right_offsets, right_elements,
-                           right_masks, right[p], threshold)
-    return out
-
-
 SCREEN_BLOCK = 1 << 16  # candidates a task of :func:`screened_rows`
 
 
@@ -144,7 +133,7 @@ SCREEN_BLOCK = 1 << 16  # candidates a task of :func:`screened_rows`
 def screened_rows(left_offsets, left_elements, left_masks, left, left_first, right_offsets, right_elements,
                   right_masks, right, right_first, bands, threshold):
     """The candidates (entity ids ``left[p]`` from ``left_first``, ``right[p]`` from
-    ``right_first``, ``bands[p]``) whose Jaccard (:func:`jaccard_screened`'s) reaches
+    ``right_first``, ``bands[p]``) whose Jaccard (:func:`_screened`'s) reaches
     ``threshold``, in the candidates' order: (left, right, jaccard, bands), made in two passes
     over blocks of candidates (the values and each block's count, then the rows kept), so no
     mask or gather of every candidate is made beside them; and how many left and right ids lie

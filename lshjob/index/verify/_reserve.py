@@ -58,7 +58,7 @@ def _gains(offsets, elements, masks, members, sizes, start, count, shared, drawn
     whose members are ``members[start[c]:start[c] + count[c]]`` sorted by set size
     (``sizes``, the same order). Partners are sought above max(threshold, the member's floor):
     only sizes that allow it (a range of the sorted members), then the masks' bound
-    (:func:`lshjob.index.verify._jaccard.jaccard_screened`), then a merge. ``held_keys``:
+    (:func:`lshjob.index.verify._jaccard.screened_rows`), then a merge. ``held_keys``:
     sorted ``a * n + b`` of the pairs held, both orders; ``weights``: each id's rows in a
     list; ``drawn_rows``: the rows each drawn member's list holds already; ``top_k`` 0: lists
     without a cap. With the gains, the partners each drawn member would be tried against when
